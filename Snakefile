@@ -1,0 +1,30 @@
+# tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> (later stages) -> study numbers.
+# Read the pipeline off the include list; each stage has rules/<stage>.smk,
+# scripts/<stage>.py and tessera/<stage>.py.
+
+from snakemake.utils import min_version
+
+min_version("9.0")
+
+
+configfile: "config/config.yaml"
+
+
+include: "rules/common.smk"
+include: "rules/demo.smk"
+include: "rules/ingest.smk"
+include: "rules/pyramid.smk"
+include: "rules/qc.smk"
+
+
+rule all:
+    default_target: True
+    input:
+        expand(
+            "results/{dataset}/qc/sections.tsv",
+            dataset=DATASETS.index,
+        ),
+        expand(
+            "results/{dataset}/pyramid/raw.ome.zarr",
+            dataset=DATASETS.index,
+        ),

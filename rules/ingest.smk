@@ -1,0 +1,25 @@
+# Raw stack (TIFF, PNG slices, MRC, zarr) -> single-level OME-Zarr of uint8 sections.
+
+
+rule ingest:
+    input:
+        stack=dataset_path,
+    output:
+        image=directory("results/{dataset}/ingest/raw.ome.zarr"),
+    log:
+        "logs/ingest/{dataset}.log",
+    benchmark:
+        "benchmarks/runs/ingest/{dataset}.tsv"
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(2000),
+        runtime=scaled_by_attempt(60),
+    params:
+        format=dataset_format,
+        spacing=dataset_spacing,
+        chunks=config["ingest"]["chunks"],
+        percentiles=config["ingest"]["percentiles"],
+        code=stage_code("ingest"),
+    script:
+        "../scripts/ingest.py"

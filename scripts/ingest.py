@@ -1,0 +1,21 @@
+"""Snakemake adapter: ingest one dataset's stack into a single-level OME-Zarr image."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.ingest import ingest_stack
+from tessera.jobs import run_job
+
+run_job(
+    snakemake.log[0],
+    ingest_stack,
+    source_path=snakemake.input.stack,
+    out_path=snakemake.output.image,
+    fmt=snakemake.params.format,
+    spacing=snakemake.params.spacing,
+    name=snakemake.wildcards.dataset,
+    chunks=snakemake.params.chunks,
+    percentiles=snakemake.params.percentiles,
+)

@@ -1,0 +1,18 @@
+"""Snakemake adapter: build the multiscale pyramid of one dataset."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.pyramid import build_pyramid
+
+run_job(
+    snakemake.log[0],
+    build_pyramid,
+    image_path=snakemake.input.image,
+    out_path=snakemake.output.image,
+    levels=snakemake.params.levels,
+    downsample_z=snakemake.params.downsample_z,
+)

@@ -1,0 +1,19 @@
+"""Snakemake adapter: per-section quality control of one dataset."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.qc import qc_image
+
+run_job(
+    snakemake.log[0],
+    qc_image,
+    image_path=snakemake.input.image,
+    table_path=snakemake.output.table,
+    plot_path=snakemake.output.plot,
+    title=snakemake.wildcards.dataset,
+    **snakemake.params.qc,
+)

@@ -1,0 +1,183 @@
+"""Validate the study config and the datasets sheet before anything runs.
+
+Both are checked against the JSON Schemas in ``config/schemas/`` (strict: unknown keys are
+errors, values have ranges), defaults from the schema are filled in, and every error is raised as
+one line naming the file, the key or row and column, and what was expected.
+"""
+
+import math
+from pathlib import Path
+
+import jsonschema
+import pandas as pd
+import yaml
+
+from .errors import TesseraInputError
+
+SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
+
+
+def read_yaml(path):
+    """Load a YAML file safely (plain data only, never objects)."""
+    path = Path(path)
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return yaml.safe_load(fh)
+    except FileNotFoundError:
+        raise TesseraInputError("file not found", source=path) from None
+    except yaml.YAMLError as exc:
+        raise TesseraInputError(f"not valid YAML: {exc}".replace("\n", " "), source=path) from None
+
+
+def _with_defaults(validator_class):
+    # Fill "default" values of object properties while validating (jsonschema leaves this to
+    # the caller). Defaults are filled before the object's own properties are checked.
+    check_properties = validator_class.VALIDATORS["properties"]
+
+    def properties(validator, props, instance, schema):
+        if isinstance(instance, dict):
+            for key, sub in props.items():
+                if "default" in sub and key not in instance:
+                    instance[key] = _copy(sub["default"])
+        yield from check_properties(validator, props, instance, schema)
+
+    return jsonschema.validators.extend(validator_class, {"properties": properties})
+
+
+def _copy(value):
+    return yaml.safe_load(yaml.safe_dump(value))
+
+
+_Validator = _with_defaults(jsonschema.Draft202012Validator)
+
+
+def _describe(error):
+    where = ".".join(str(p) for p in error.absolute_path) or "(top level)"
+    if error.validator == "additionalProperties":
+        return f"key {where}: {error.message} (check the spelling; allowed keys are in the schema)"
+    if error.validator == "required":
+        return f"key {where}: {error.message}"
+    return f"key {where}: {error.message}"
+
+
+def validate(instance, schema, *, source):
+    """Validate `instance` in place against `schema`, filling defaults; raise on the first error.
+
+    Errors are sorted by their position so the message is stable between runs.
+    """
+    errors = sorted(_Validator(schema).iter_errors(instance), key=lambda e: [str(p) for p in e.absolute_path])
+    if errors:
+        extra = f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""
+        raise TesseraInputError(_describe(errors[0]) + extra, source=source)
+    return instance
+
+
+def load_config(config, schema_path, *, source="config/config.yaml"):
+    """Validate a study config dict against its schema; return it with defaults filled.
+
+    Examples
+    --------
+    >>> schema = {"type": "object", "additionalProperties": False,
+    ...           "properties": {"levels": {"type": "integer", "default": 3}}}
+    >>> import tempfile, pathlib, yaml
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "s.yaml"; _ = p.write_text(yaml.safe_dump(schema))
+    >>> load_config({}, p)
+    {'levels': 3}
+    >>> load_config({"levles": 2}, p)
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: key (top level): Additional properties are not allowed ('levles' was unexpected) (check the spelling; allowed keys are in the schema)
+    """
+    if not isinstance(config, dict):
+        raise TesseraInputError("expected a mapping of settings at the top level", source=source)
+    return validate(config, read_yaml(schema_path), source=source)
+
+
+def _parse_number(text, *, where):
+    if text.strip() == "":
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        raise TesseraInputError(f"expected a number in nm, got {text!r}", source=where) from None
+    if not math.isfinite(value):
+        raise TesseraInputError(f"expected a finite number in nm, got {text!r}", source=where)
+    return value
+
+
+def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None):
+    """Read and validate the datasets sheet.
+
+    Parameters
+    ----------
+    sheet_path : str or Path
+        Tab-separated sheet, one row per dataset, with a header line.
+    schema_path : str or Path
+        JSON Schema of one row.
+    base_dir : str or Path, optional
+        Relative ``path`` and ``roi_mask`` cells are resolved against this folder for the
+        existence check.
+    generated_dir : str or Path, optional
+        Paths under this folder are made by the workflow itself (the demo study) and need not
+        exist yet.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per dataset, indexed by ``dataset``; voxel sizes as float or None.
+    """
+    sheet_path = Path(sheet_path)
+    schema = read_yaml(schema_path)
+    try:
+        table = pd.read_csv(sheet_path, sep="\t", dtype=str, keep_default_na=False, comment=None)
+    except FileNotFoundError:
+        raise TesseraInputError("datasets sheet not found", source=sheet_path) from None
+    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
+        raise TesseraInputError(f"not a readable tab-separated sheet: {exc}", source=sheet_path) from None
+    if table.empty:
+        raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
+    rows = []
+    for i, raw in enumerate(table.to_dict(orient="records")):
+        row_name = f"{sheet_path}, row {i + 2}"  # header is line 1
+        record = {k: v.strip() for k, v in raw.items()}
+        for column in SHEET_NUMBER_COLUMNS:
+            if column in record:
+                record[column] = _parse_number(record[column], where=f"{row_name}, column {column}")
+        if record.get("roi_mask") == "":
+            record["roi_mask"] = None
+        for column in ("condition", "subject"):
+            if record.get(column) == "":
+                raise TesseraInputError(
+                    f"column {column} is empty; every dataset needs a {column}", source=row_name
+                )
+        validate(record, schema, source=row_name)
+        rows.append(record)
+    frame = pd.DataFrame(rows, dtype=object)  # keep None for blank cells (no NaN)
+    duplicated = frame["dataset"][frame["dataset"].duplicated()].unique()
+    if len(duplicated):
+        raise TesseraInputError(
+            f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
+        )
+    _check_paths(frame, sheet_path, Path(base_dir), generated_dir)
+    return frame.set_index("dataset", drop=False)
+
+
+def _check_paths(frame, sheet_path, base_dir, generated_dir):
+    generated = None if generated_dir is None else (base_dir / generated_dir).resolve()
+    for i, row in enumerate(frame.to_dict(orient="records")):
+        for column in ("path", "roi_mask"):
+            value = row.get(column)
+            if value is None:
+                continue
+            full = (base_dir / value).resolve()
+            if generated is not None and full.is_relative_to(generated):
+                continue
+            if not full.exists():
+                raise TesseraInputError(
+                    f"column {column}: file or folder {value!r} not found", source=f"{sheet_path}, row {i + 2}"
+                )
+
+
+def sheet_spacing(row):
+    """The sheet's voxel size (z, y, x) in nm for one dataset row; None where blank."""
+    return tuple(None if pd.isna(row[c]) else float(row[c]) for c in SHEET_NUMBER_COLUMNS)

@@ -1,0 +1,143 @@
+"""Config and datasets sheet: the shipped files validate; every bad input is one clear error."""
+
+import copy
+
+import pytest
+import yaml
+
+from tessera.config import load_config, load_datasets, read_yaml, sheet_spacing
+from tessera.errors import TesseraInputError
+
+HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
+
+
+@pytest.fixture
+def schemas(repo):
+    return repo / "config" / "schemas"
+
+
+@pytest.fixture
+def shipped_config(repo):
+    return read_yaml(repo / "config" / "config.yaml")
+
+
+def test_shipped_config_and_sheet_validate(repo, schemas, shipped_config):
+    config = load_config(shipped_config, schemas / "config.schema.yaml")
+    assert config["pyramid"]["levels"] == 3 and config["qc"]["exclude_flagged"] is True
+    sheet = load_datasets(repo / config["datasets"], schemas / "datasets.schema.yaml", base_dir=repo, generated_dir="demo/data")
+    assert list(sheet.index) == ["tn1", "tn2", "tn3", "cd1", "cd2", "cd3"]
+    assert set(sheet["condition"]) == {"thermoneutral", "cold"}
+    assert sheet_spacing(sheet.loc["tn1"]) == (40.0, 8.0, 8.0)
+
+
+def test_defaults_are_filled_from_the_schema(schemas):
+    config = load_config({"datasets": "x.tsv", "targets": {"mitochondria": {"downsample": 2}}}, schemas / "config.schema.yaml")
+    assert config["ingest"]["chunks"] == [1, 512, 512]
+    assert config["qc"]["max_flat_fraction"] == 0.1
+    assert "demo" not in config
+
+
+@pytest.mark.parametrize(
+    ("edit", "message"),
+    [
+        (lambda c: c.update(colour="red"), r"key \(top level\): Additional properties are not allowed \('colour'"),
+        (lambda c: c["pyramid"].update(levles=3), r"key pyramid: Additional properties.*'levles'"),
+        (lambda c: c["pyramid"].update(levels=-1), r"key pyramid.levels: -1 is less than the minimum of 0"),
+        (lambda c: c["qc"].update(max_flat_fraction=1.5), r"key qc.max_flat_fraction: 1.5 is greater than the maximum of 1"),
+        (lambda c: c["targets"]["mitochondria"].update(downsample=3), r"key targets.mitochondria.downsample: 3 is not one of"),
+        (lambda c: c["ingest"].update(chunks=[1, 256]), r"key ingest.chunks: \[1, 256\] is too short"),
+        (lambda c: c.pop("datasets"), r"'datasets' is a required property"),
+        (lambda c: c["targets"].update({"Bad Name": {"downsample": 2}}), r"key targets: 'Bad Name' does not match"),
+        (lambda c: c["qc"].update(exclude_flagged="yes"), r"key qc.exclude_flagged: 'yes' is not of type 'boolean'"),
+    ],
+)
+def test_bad_config_values_name_the_key(schemas, shipped_config, edit, message):
+    config = copy.deepcopy(shipped_config)
+    edit(config)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        load_config(config, schemas / "config.schema.yaml", source="config/config.yaml")
+    assert str(info.value).startswith("config/config.yaml: ")
+
+
+def test_yaml_is_loaded_safely(tmp_path):
+    # yaml.safe_load refuses Python object tags (PyYAML documentation): no code runs on load.
+    path = tmp_path / "c.yaml"
+    path.write_text("datasets: !!python/object/apply:os.system ['echo hacked']\n")
+    with pytest.raises(TesseraInputError, match="not valid YAML"):
+        read_yaml(path)
+
+
+def _sheet(tmp_path, *rows, header=HEADER):
+    (tmp_path / "stack.tif").write_bytes(b"")
+    path = tmp_path / "datasets.tsv"
+    path.write_text("\n".join([header, *rows]) + "\n")
+    return path
+
+
+GOOD = "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"
+
+
+def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
+    sheet = load_datasets(_sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.tif\tmrc\t\t\t\t"), schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert sheet_spacing(sheet.loc["a2"]) == (None, None, None)
+    assert sheet.loc["a1", "roi_mask"] is None
+
+
+@pytest.mark.parametrize(
+    ("rows", "message"),
+    [
+        ([GOOD, GOOD], "dataset ids must be unique; repeated: a1"),
+        (["a 1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: key dataset: 'a 1' does not match"),
+        (["a/1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: key dataset: 'a/1' does not match"),
+        (["a1\t\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column condition is empty"),
+        (["a1\tctrl\t\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column subject is empty"),
+        (["a1\tctrl\tm1\tstack.tif\tjpeg\t40\t8\t8\t"], r"row 2: key format: 'jpeg' is not one of"),
+        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t8\t8\t"], r"row 2: key voxel_z_nm: 0.0 is less than or equal to the minimum of 0"),
+        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t-8\t8\t"], r"row 2: key voxel_y_nm: -8.0 is less than or equal"),
+        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\teight\t"], r"row 2, column voxel_x_nm: expected a number in nm, got 'eight'"),
+        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\tnan\t"], r"row 2, column voxel_x_nm: expected a finite number"),
+        (["a1\tctrl\tm1\tmissing.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column path: file or folder 'missing.tif' not found"),
+        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tcells.tif"], r"row 2: column roi_mask: file or folder 'cells.tif' not found"),
+        ([], "the sheet has no dataset rows"),
+    ],
+)
+def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, message):
+    path = _sheet(tmp_path, *rows)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(path) in str(info.value)
+
+
+def test_unknown_sheet_column_is_refused(tmp_path, schemas):
+    path = _sheet(tmp_path, GOOD + "\tx", header=HEADER + "\tcolour")
+    with pytest.raises(TesseraInputError, match=r"row 2: key \(top level\): Additional properties.*'colour'"):
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+
+
+def test_missing_sheet_is_named(tmp_path, schemas):
+    with pytest.raises(TesseraInputError, match="nope.tsv: datasets sheet not found"):
+        load_datasets(tmp_path / "nope.tsv", schemas / "datasets.schema.yaml")
+
+
+def test_demo_paths_need_not_exist_yet(tmp_path, schemas):
+    path = _sheet(tmp_path, "d1\tctrl\tm1\tdemo/data/d1/raw.tif\ttiff_stack\t40\t8\t8\t")
+    sheet = load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path, generated_dir="demo/data")
+    assert list(sheet.index) == ["d1"]
+
+
+def test_schema_files_are_strict(schemas):
+    # Common practice for workflow schemas: every object forbids keys it does not define.
+    def objects(node):
+        if isinstance(node, dict):
+            if node.get("type") == "object":
+                yield node
+            for value in node.values():
+                yield from objects(value)
+        elif isinstance(node, list):
+            for value in node:
+                yield from objects(value)
+
+    for name in ("config.schema.yaml", "datasets.schema.yaml"):
+        schema = yaml.safe_load((schemas / name).read_text())
+        for node in objects(schema):
+            assert "additionalProperties" in node, f"{name}: an object schema allows unknown keys"

@@ -1,0 +1,343 @@
+"""Tests for per-section quality control (tessera.qc)."""
+
+import numpy as np
+import pandas as pd
+import pytest
+import zarr
+from scipy import ndimage
+from skimage.registration import phase_cross_correlation
+from skimage.util import view_as_blocks
+
+from tessera import qc
+from tessera.errors import TesseraInputError
+
+
+def textured(shape, seed, *, sigma=1.0, level=100.0, contrast=25.0):
+    """Smoothed Gaussian noise scaled to a given mean and standard deviation (float64)."""
+    rng = np.random.default_rng(seed)
+    field = ndimage.gaussian_filter(rng.normal(size=shape), sigma)
+    return level + contrast * (field - field.mean()) / field.std()
+
+
+# --------------------------------------------------------------------------------------------
+# phase_shift
+
+
+@pytest.mark.parametrize("shift", [(3, -5), (-7, 0), (0, 12), (-15, -9), (20, 31), (-1, 1)])
+def test_phase_shift_recovers_circular_shift(shift):
+    ref = textured((64, 80), seed=1)
+    moving = np.roll(ref, shift, axis=(0, 1))
+    got = qc.phase_shift(ref, moving)
+    # np.roll moves content by +shift, so registering it back needs -shift
+    assert got == (-shift[0], -shift[1])
+    # reference library: skimage.registration.phase_cross_correlation, same sign convention
+    expected, _, _ = phase_cross_correlation(ref, moving)
+    np.testing.assert_array_equal(got, expected)
+
+
+@pytest.mark.parametrize("shift", [(6, -4), (-11, 9), (0, -17), (14, 14)])
+@pytest.mark.parametrize("window", [False, True])
+def test_phase_shift_recovers_cropped_shift(shift, window):
+    big = np.rint(textured((160, 160), seed=2))
+    y0 = x0 = 40
+    ref = big[y0 : y0 + 80, x0 : x0 + 80]
+    dy, dx = shift
+    moving = big[y0 + dy : y0 + dy + 80, x0 + dx : x0 + dx + 80]
+    # moving[y, x] == ref[y + dy, x + dx]: moving is ref moved by (-dy, -dx)
+    got = qc.phase_shift(ref, moving, window=window)
+    assert got == (dy, dx)
+    # reference library on the same pair (skimage does not taper, compare the plain form)
+    if not window:
+        expected, _, _ = phase_cross_correlation(ref, moving)
+        np.testing.assert_array_equal(got, expected)
+
+
+def test_phase_shift_subpixel():
+    ref = textured((64, 64), seed=3)
+    true = (1.3, -2.6)
+    # scipy.ndimage.fourier_shift moves content by +true (periodic), so expect -true
+    moving = np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(ref), true)).real
+    got = qc.phase_shift(ref, moving, upsample=10)
+    np.testing.assert_allclose(got, (-true[0], -true[1]), atol=0.1)
+    # reference library with the same resolution
+    expected, _, _ = phase_cross_correlation(ref, moving, upsample_factor=10)
+    np.testing.assert_allclose(got, expected, atol=0.1 + 1e-9)
+
+
+def test_phase_shift_constant_image_gives_no_shift():
+    # a section with no signal carries no evidence of displacement (definition in docstring)
+    ref = textured((32, 32), seed=4)
+    assert qc.phase_shift(ref, np.zeros((32, 32)), window=True) == (0.0, 0.0)
+
+
+# --------------------------------------------------------------------------------------------
+# section_metrics
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32, np.float64])
+@pytest.mark.parametrize("strip_pixels", [None, 300])
+def test_section_metrics_match_reference(dtype, strip_pixels, monkeypatch):
+    if strip_pixels is not None:
+        # force many strips: the result must not depend on the strip size
+        monkeypatch.setattr(qc, "_STRIP_PIXELS", strip_pixels)
+    section = np.clip(np.rint(textured((70, 53), seed=5, level=120)), 0, 255).astype(dtype)
+    m = qc.section_metrics(section)
+    ref = section.astype(float)
+    # reference: numpy mean / population std
+    assert m["mean"] == pytest.approx(np.mean(ref), rel=1e-12)
+    assert m["std"] == pytest.approx(np.std(ref), rel=1e-10)
+    # reference: scipy.ndimage.laplace (default mode 'reflect'), variance by numpy
+    assert m["sharpness"] == pytest.approx(np.var(ndimage.laplace(ref)), rel=1e-10)
+
+
+@pytest.mark.parametrize("strip_pixels", [None, 300])
+@pytest.mark.parametrize("sigma", [1.0, 2.5])
+def test_smoothed_sharpness_matches_gaussian_laplace(sigma, strip_pixels, monkeypatch):
+    if strip_pixels is not None:
+        monkeypatch.setattr(qc, "_STRIP_PIXELS", strip_pixels)  # halo rows make strips exact
+    section = textured((70, 53), seed=8, level=120)
+    m = qc.section_metrics(section, sharpness_sigma=sigma)
+    # reference: scipy.ndimage.gaussian_laplace (Laplacian of Gaussian, mode 'reflect')
+    assert m["sharpness"] == pytest.approx(np.var(ndimage.gaussian_laplace(section, sigma)), rel=1e-10)
+
+
+def test_smoothing_reveals_defocus_under_detector_noise():
+    # Defocus happens before the detector adds noise; the plain Laplacian of the noise then
+    # dominates, the Laplacian of Gaussian does not (common practice for noisy images).
+    rng = np.random.default_rng(9)
+    clean = textured((128, 128), seed=9, sigma=2.0, level=120, contrast=30)
+    sharp = clean + rng.normal(0, 12, clean.shape)
+    defocused = ndimage.gaussian_filter(clean, 4.0) + rng.normal(0, 12, clean.shape)
+    plain = [qc.section_metrics(x)["sharpness"] for x in (sharp, defocused)]
+    smoothed = [qc.section_metrics(x, sharpness_sigma=1.5)["sharpness"] for x in (sharp, defocused)]
+    assert plain[1] > 0.5 * plain[0]
+    assert smoothed[1] < 0.25 * smoothed[0]
+
+
+def test_small_relative_changes_are_not_flagged_in_a_uniform_stack():
+    # Sharpness within 5 % and means within 3 grey levels of the trend: no section is
+    # defective, however small the spread makes the robust z-scores.
+    t = pd.DataFrame({"z": range(8), "mean": [100, 100, 100, 100, 100, 100, 100, 103.0],
+                      "sharpness": [50, 50.2, 49.9, 50.1, 47.5, 50, 50.1, 49.9],
+                      "flat_fraction": 0.0, "shift_y": 0.0, "shift_x": 0.0, "shift": 0.0})
+    assert not qc.flag_sections(t)["excluded"].any()
+    strict = qc.flag_sections(t, min_sharpness_drop=0.0, min_intensity_change=0.0)
+    assert strict["reason"].tolist()[4] == "blurred" and strict["reason"].tolist()[7] == "intensity"
+
+
+def test_sharpness_drops_for_blurred_section():
+    # variance of the Laplacian, a common focus measure (common practice): blur lowers it
+    section = textured((96, 96), seed=6)
+    sharp = qc.section_metrics(section)["sharpness"]
+    blurred = qc.section_metrics(ndimage.gaussian_filter(section, 2.0))["sharpness"]
+    assert blurred < 0.05 * sharp
+
+
+def test_flat_fraction_constant_and_half_blank():
+    # a constant section is flat everywhere (std 0 in every tile)
+    assert qc.section_metrics(np.full((64, 64), 200, np.uint8))["flat_fraction"] == 1.0
+    section = np.rint(textured((64, 64), seed=7))
+    section[:, 32:] = 0
+    assert qc.section_metrics(section, flat_block=16)["flat_fraction"] == pytest.approx(0.5)
+    # torn area not aligned with the tiles: within one tile column of the true fraction
+    section = np.rint(textured((100, 100), seed=8))
+    section[:, 60:] = 255
+    frac = qc.section_metrics(section, flat_block=16)["flat_fraction"]
+    assert abs(frac - 0.4) <= 16 / 100
+
+
+def test_flat_fraction_matches_block_reference():
+    # reference: skimage.util.view_as_blocks, tile std by numpy, on a tile-aligned shape
+    section = textured((96, 128), seed=9, contrast=3.0)
+    section[20:70, 10:90] = 50.0
+    blocks = view_as_blocks(section, (16, 16))
+    expected = np.mean(blocks.std(axis=(2, 3)) < 2.0)
+    got = qc.section_metrics(section, flat_block=16, flat_std=2.0)["flat_fraction"]
+    assert got == pytest.approx(expected)
+    assert 0 < expected < 1  # the check covers both flat and textured tiles
+
+
+# --------------------------------------------------------------------------------------------
+# a synthetic stack with known defects
+
+N, SIZE, MARGIN, PAD = 30, 96, 24, 6
+BLANK, TORN, BLUR, SHIFT, BRIGHT = 5, 10, 15, 20, 25
+JUMP = (18, -15)  # displacement in pixels, length 23.4 > the default 20
+
+
+def make_stack(*, drift=1.5, defects=True, displaced_only=False, seed=11):
+    """Correlated sections of one smooth 3D field plus a linear intensity drift.
+
+    With `defects`, one section is blank, one torn (half blank), one blurred, one brighter
+    (charging) and the field jumps by JUMP at SHIFT: from there on (a step), or only for that
+    one section when `displaced_only`.
+    """
+    rng = np.random.default_rng(seed)
+    shape = (N + 2 * PAD, SIZE + 2 * MARGIN, SIZE + 2 * MARGIN)
+    field = ndimage.gaussian_filter(rng.normal(size=shape), (1.2, 1.0, 1.0))
+    field = field[PAD:-PAD] / field.std() * 25  # drop the ends, where smoothing is one-sided
+    vol = np.empty((N, SIZE, SIZE), np.uint8)
+    for z in range(N):
+        moved = defects and (z == SHIFT if displaced_only else z >= SHIFT)
+        oy, ox = (MARGIN + JUMP[0], MARGIN + JUMP[1]) if moved else (MARGIN, MARGIN)
+        sec = field[z, oy : oy + SIZE, ox : ox + SIZE] + 90 + drift * z
+        if defects and z == BLUR:
+            sec = ndimage.gaussian_filter(sec, 2.5)
+        if defects and z == BRIGHT:
+            sec = sec + 40
+        sec = np.clip(np.rint(sec), 0, 255)
+        if defects and z == BLANK:
+            sec[:] = 0
+        if defects and z == TORN:
+            sec[:, SIZE // 2 :] = 255
+        vol[z] = sec
+    return vol
+
+
+@pytest.mark.parametrize("displaced_only", [False, True])
+def test_flags_exactly_the_defective_sections(displaced_only):
+    vol = make_stack(displaced_only=displaced_only)
+    table = qc.flag_sections(qc.measure_sections(vol, shift_crop=64))
+    expected = {BLANK: "flat", TORN: "flat", BLUR: "blurred", SHIFT: "shift", BRIGHT: "intensity"}
+    reasons = dict(zip(table["z"], table["reason"]))
+    assert {z: r for z, r in reasons.items() if r} == expected
+    assert table["excluded"].tolist() == [z in expected for z in range(N)]
+    for name in ("flat", "blurred", "intensity", "shift"):
+        col = table[f"flag_{name}"]
+        assert col.dtype == bool
+        assert set(table.loc[col, "z"]) == {z for z, r in expected.items() if r == name}
+    # measured jump: registering back needs (dy, dx) == JUMP (phase_shift sign convention)
+    assert (table.loc[SHIFT, "shift_y"], table.loc[SHIFT, "shift_x"]) == JUMP
+    assert table.loc[SHIFT, "shift"] == pytest.approx(np.hypot(*JUMP))
+
+
+def test_drift_alone_is_not_flagged():
+    # a steady drift of 3 grey levels per section, 87 over the stack, and no defects
+    table = qc.flag_sections(qc.measure_sections(make_stack(drift=3.0, defects=False)))
+    assert not table[["flag_flat", "flag_blurred", "flag_intensity", "flag_shift"]].any().any()
+    assert (table["reason"] == "").all()
+    assert not table["excluded"].any()
+    # the drift is really there (numpy reference)
+    assert np.polyfit(table["z"], table["mean"], 1)[0] == pytest.approx(3.0, rel=0.1)
+
+
+def test_flags_kept_but_not_excluded_on_request():
+    table = qc.measure_sections(make_stack(), shift_crop=64)
+    kept = qc.flag_sections(table, exclude_flagged=False)
+    assert (kept["reason"] != "").sum() == 5
+    assert not kept["excluded"].any()
+
+
+def test_measure_sections_zarr_equals_numpy(tmp_path):
+    vol = make_stack()
+    arr = zarr.create_array(
+        store=tmp_path / "a.zarr", shape=vol.shape, chunks=(1, 32, 32), dtype="uint8"
+    )
+    arr[:] = vol
+    from_zarr = qc.measure_sections(arr, shift_crop=64)
+    from_numpy = qc.measure_sections(vol, shift_crop=64)
+    pd.testing.assert_frame_equal(from_zarr, from_numpy)
+    assert list(from_numpy.columns) == [
+        "z",
+        "mean",
+        "std",
+        "sharpness",
+        "flat_fraction",
+        "shift_y",
+        "shift_x",
+        "shift",
+    ]
+    assert from_numpy["z"].tolist() == list(range(N))
+
+
+class _OneSectionOnly:
+    """Array-like that allows only single-section reads, and counts them."""
+
+    def __init__(self, array):
+        self._array = array
+        self.shape, self.dtype, self.reads = array.shape, array.dtype, []
+
+    def __getitem__(self, key):
+        assert isinstance(key, int), f"read other than one section: {key!r}"
+        self.reads.append(key)
+        return self._array[key]
+
+
+def test_measure_sections_reads_one_section_at_a_time():
+    vol = make_stack(defects=False)[:6]
+    proxy = _OneSectionOnly(vol)
+    table = qc.measure_sections(proxy, shift_crop=32)
+    assert proxy.reads == list(range(6))
+    pd.testing.assert_frame_equal(table, qc.measure_sections(vol, shift_crop=32))
+
+
+# --------------------------------------------------------------------------------------------
+# bad input
+
+
+def _table():
+    return qc.measure_sections(make_stack(defects=False)[:5], shift_crop=32)
+
+
+@pytest.mark.parametrize(
+    "call, name",
+    [
+        (lambda: qc.section_metrics(np.zeros((4, 4, 4))), "section"),
+        (lambda: qc.section_metrics(np.zeros((0, 5))), "section"),
+        (lambda: qc.section_metrics(np.zeros((5, 5), bool)), "section"),
+        (lambda: qc.section_metrics(np.array([["a", "b"]])), "section"),
+        (lambda: qc.section_metrics(np.full((5, 5), np.nan)), "section"),
+        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_block=1), "flat_block"),
+        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_block=4.5), "flat_block"),
+        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_std=0), "flat_std"),
+        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_std=float("inf")), "flat_std"),
+        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
+        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), upsample=0), "upsample"),
+        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), window=1), "window"),
+        (lambda: qc.measure_sections(np.zeros((8, 8))), "volume"),
+        (lambda: qc.measure_sections(np.zeros((0, 8, 8))), "volume"),
+        (lambda: qc.measure_sections([[[1]]]), "volume"),
+        (lambda: qc.measure_sections(np.zeros((2, 8, 8)), shift_crop=4), "shift_crop"),
+        (lambda: qc.flag_sections({"z": [0]}), "table"),
+        (lambda: qc.flag_sections(_table().drop(columns="sharpness")), "sharpness"),
+        (lambda: qc.flag_sections(_table(), max_flat_fraction=1.5), "max_flat_fraction"),
+        (lambda: qc.flag_sections(_table(), sharpness_z=-1), "sharpness_z"),
+        (lambda: qc.flag_sections(_table(), intensity_z=0), "intensity_z"),
+        (lambda: qc.flag_sections(_table(), max_shift_px=-2), "max_shift_px"),
+        (lambda: qc.flag_sections(_table(), intensity_neighbours=1), "intensity_neighbours"),
+        (lambda: qc.flag_sections(_table(), exclude_flagged="yes"), "exclude_flagged"),
+        (lambda: qc.flag_sections(_table().iloc[::-1]), "increasing"),
+        (lambda: qc.plot_sections(_table().drop(columns="shift"), "x.png"), "shift"),
+    ],
+)
+def test_bad_input_raises(call, name):
+    with pytest.raises(TesseraInputError, match=name):
+        call()
+
+
+# --------------------------------------------------------------------------------------------
+# output
+
+
+def test_plot_sections_writes_png(tmp_path):
+    table = qc.flag_sections(qc.measure_sections(make_stack(), shift_crop=64))
+    path = tmp_path / "sections.png"
+    qc.plot_sections(table, path, title="synthetic stack")
+    data = path.read_bytes()
+    # PNG file signature (PNG specification, ISO/IEC 15948, section 5.2)
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    assert len(data) > 1000
+    # unflagged tables plot too
+    qc.plot_sections(table[list(qc.METRIC_COLUMNS)], tmp_path / "plain.png")
+    assert (tmp_path / "plain.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_write_sections_round_trip(tmp_path):
+    table = qc.flag_sections(qc.measure_sections(make_stack(), shift_crop=64))
+    path = tmp_path / "sections.tsv"
+    qc.write_sections(table, path)
+    back = pd.read_csv(path, sep="\t", keep_default_na=False)  # pandas reader as reference
+    assert list(back.columns) == list(table.columns)
+    np.testing.assert_allclose(back["sharpness"], table["sharpness"], rtol=1e-5)
+    assert back["reason"].tolist() == table["reason"].tolist()
+    assert back["excluded"].tolist() == table["excluded"].tolist()

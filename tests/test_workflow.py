@@ -1,0 +1,149 @@
+"""The Snakemake layer: lint, formatting, dry run of the demo, and a real run of a tiny study."""
+
+import json
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import yaml
+
+from tessera.omezarr import open_image
+
+pytestmark = pytest.mark.workflow
+
+BIN = Path(sys.executable).parent
+
+
+def snakemake(*args, cwd, check=True):
+    result = subprocess.run(
+        [str(BIN / "snakemake"), *args], cwd=cwd, capture_output=True, text=True, timeout=900
+    )
+    if check and result.returncode != 0:
+        raise AssertionError(f"snakemake {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}")
+    return result
+
+
+def test_lint_is_clean(repo):
+    # `snakemake --lint` is Snakemake's own best-practice checker.
+    result = snakemake("--lint", cwd=repo)
+    assert "Lints for" not in result.stdout + result.stderr
+
+
+def test_rule_files_are_formatted(repo):
+    # snakefmt is the registry's formatter for Snakemake files (black style).
+    result = subprocess.run(
+        [str(BIN / "snakefmt"), "--check", "Snakefile", "rules"], cwd=repo, capture_output=True, text=True
+    )
+    assert result.returncode == 0, result.stderr
+
+
+def test_demo_dry_run_plans_every_dataset(repo, tmp_path):
+    # A fresh working directory with the shipped demo config: nothing exists yet.
+    shutil.copytree(repo / "config", tmp_path / "config")
+    result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path)
+    counts = {}
+    for line in result.stdout.splitlines():
+        parts = line.split()
+        if len(parts) == 2 and parts[1].isdigit():
+            counts[parts[0]] = int(parts[1])
+    sheet = pd.read_csv(repo / "config" / "datasets.tsv", sep="\t")
+    for rule in ("demo_dataset", "ingest", "pyramid", "section_qc"):
+        assert counts[rule] == len(sheet) == 6
+
+
+TINY_SHEET = (
+    "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask\n"
+    "w1\twarm\tw1\tdemo/data/w1/raw.tif\ttiff_stack\t40\t8\t8\tdemo/data/w1/cells.tif\n"
+    "c1\tcold\tc1\tdemo/data/c1/raw.tif\ttiff_stack\t40\t8\t8\t\n"
+)
+
+
+def tiny_config(**pyramid):
+    return {
+        "study": {"name": "tiny test study"},
+        "datasets": "config/datasets.tsv",
+        "demo": {"seed": 5, "shape": [12, 160, 160], "mito_volume_scale": {"cold": 1.25}, "tile_size": 32},
+        "ingest": {"chunks": [1, 64, 64]},
+        "pyramid": {"levels": 2, **pyramid},
+        "qc": {"shift_crop": 128},
+        "targets": {"mitochondria": {"downsample": 2}},
+    }
+
+
+@pytest.fixture(scope="module")
+def tiny_study(tmp_path_factory):
+    root = tmp_path_factory.mktemp("study")
+    (root / "config").mkdir()
+    (root / "config" / "config.yaml").write_text(yaml.safe_dump(tiny_config()))
+    (root / "config" / "datasets.tsv").write_text(TINY_SHEET)
+    return root
+
+
+@pytest.fixture(scope="module")
+def finished_study(tiny_study, repo=Path(__file__).resolve().parents[1]):
+    snakemake("--cores", "2", "--snakefile", str(repo / "Snakefile"), cwd=tiny_study)
+    return tiny_study
+
+
+def test_tiny_study_produces_every_output(finished_study):
+    for dataset in ("w1", "c1"):
+        group, info = open_image(finished_study / f"results/{dataset}/pyramid/raw.ome.zarr")
+        assert info["factors"] == [(1, 1, 1), (1, 2, 2), (1, 4, 4)]
+        assert info["levels"][0].shape == (12, 160, 160)
+        assert info["spacing"] == (40.0, 8.0, 8.0)
+        table = pd.read_csv(finished_study / f"results/{dataset}/qc/sections.tsv", sep="\t")
+        assert len(table) == 12
+        assert (finished_study / f"results/{dataset}/qc/sections.png").stat().st_size > 0
+        assert (finished_study / f"logs/ingest/{dataset}.log").exists()
+
+
+def test_qc_finds_the_rendered_defects(finished_study):
+    # The demo renders one blank/torn and one blurred section per dataset and records where.
+    for dataset in ("w1", "c1"):
+        truth = json.loads((finished_study / f"demo/data/{dataset}/truth.json").read_text())
+        defects = {int(z) for zs in truth["defects"].values() for z in zs}
+        table = pd.read_csv(finished_study / f"results/{dataset}/qc/sections.tsv", sep="\t", keep_default_na=False)
+        assert set(table.loc[table["excluded"], "z"]) == defects
+
+
+def test_second_run_has_nothing_to_do(finished_study, repo=Path(__file__).resolve().parents[1]):
+    result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+    assert "Nothing to be done" in result.stdout + result.stderr
+
+
+def test_changed_pyramid_setting_reruns_only_the_pyramid(finished_study, repo=Path(__file__).resolve().parents[1]):
+    config = finished_study / "config" / "config.yaml"
+    original = config.read_text()
+    try:
+        config.write_text(yaml.safe_dump(tiny_config(levels=3)))
+        result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
+        assert "pyramid" in planned
+        assert not planned & {"ingest", "section_qc", "demo_dataset"}
+    finally:
+        config.write_text(original)
+
+
+def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
+    (tmp_path / "config").mkdir()
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(tiny_config()))
+    lines = TINY_SHEET.splitlines()
+    (tmp_path / "config" / "datasets.tsv").write_text("\n".join([*lines, lines[1]]) + "\n")
+    result = snakemake("--cores", "1", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path, check=False)
+    assert result.returncode != 0
+    assert "config/datasets.tsv: dataset ids must be unique; repeated: w1" in result.stderr
+    assert sorted(p.name for p in tmp_path.iterdir() if p.name != ".snakemake") == ["config"]
+
+
+def test_stage_code_version_follows_the_import_graph():
+    from tessera.provenance import module_closure
+
+    # pyramid reads images through omezarr and writes through atomic; it must not depend on qc,
+    # so editing qc.py does not rerun the pyramid of a large stack.
+    closure = module_closure("tessera.pyramid")
+    assert {"tessera.omezarr", "tessera.atomic", "tessera.errors"} <= closure
+    assert "tessera.qc" not in closure and "tessera.ingest" not in closure
+    assert "tessera.omezarr" in module_closure("tessera.qc")  # imported inside a function
