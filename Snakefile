@@ -1,4 +1,4 @@
-# tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> (later stages) -> study numbers.
+# tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> tiles -> cascade -> (later stages).
 # Read the pipeline off the include list; each stage has rules/<stage>.smk,
 # scripts/<stage>.py and tessera/<stage>.py.
 
@@ -15,6 +15,8 @@ include: "rules/demo.smk"
 include: "rules/ingest.smk"
 include: "rules/pyramid.smk"
 include: "rules/qc.smk"
+include: "rules/tiles.smk"
+include: "rules/train.smk"
 
 
 rule all:
@@ -27,4 +29,8 @@ rule all:
         expand(
             "results/{dataset}/pyramid/raw.ome.zarr",
             dataset=DATASETS.index,
+        ),
+        expand(
+            "results/study/{target}/tiles_predicted/scores.tsv",
+            target=config["targets"],
         ),

@@ -7,6 +7,7 @@ sys.path.insert(
 
 from snakemake.exceptions import WorkflowError
 
+from tessera.cascade.model import CascadeSpec, ancestors, nodes
 from tessera.config import load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.provenance import code_version
@@ -69,3 +70,63 @@ def scaled_by_attempt(base):
         return base * attempt
 
     return resource
+
+
+wildcard_constraints:
+    target="|".join(config["targets"]),
+    stage=r"\d+",
+    level=r"\d+",
+
+
+def target_settings(wildcards):
+    return config["targets"][wildcards.target]
+
+
+def target_labels(wildcards):
+    pattern = target_settings(wildcards)["annotations"]["labels"]
+    return pattern.format(dataset=wildcards.dataset)
+
+
+def target_downsample(wildcards):
+    return target_settings(wildcards)["downsample"]
+
+
+def target_tiles(wildcards):
+    return target_settings(wildcards)["tiles"]
+
+
+def target_split(wildcards):
+    return target_settings(wildcards)["split"]
+
+
+def node_cascade(wildcards):
+    """Cascade settings a node depends on: all but the number of stages, so that adding a
+    stage leaves the earlier nodes' jobs untouched."""
+    settings = dict(target_settings(wildcards)["cascade"])
+    settings.pop("stages")
+    return settings
+
+
+def _target_spec(target, stages):
+    return CascadeSpec.from_dict(
+        {**config["targets"][target]["cascade"], "stages": stages}
+    )
+
+
+def _model_path(target, node):
+    return f"results/study/{target}/cascade/stage{node[0]}_level{node[1]}.npz"
+
+
+def upstream_models(wildcards):
+    stage, level = int(wildcards.stage), int(wildcards.level)
+    spec = _target_spec(wildcards.target, stage)
+    return [
+        _model_path(wildcards.target, n) for n in ancestors(spec, (stage, level))[:-1]
+    ]
+
+
+def cascade_models(wildcards):
+    spec = _target_spec(
+        wildcards.target, target_settings(wildcards)["cascade"]["stages"]
+    )
+    return [_model_path(wildcards.target, n) for n in nodes(spec)]

@@ -9,6 +9,8 @@ if "demo" in config:
             raw="demo/data/{dataset}/raw.tif",
             cells="demo/data/{dataset}/cells.tif",
             truth="demo/data/{dataset}/truth.json",
+            mitochondria="demo/data/{dataset}/truth/mitochondria.tif",
+            nuclei="demo/data/{dataset}/truth/nuclei.tif",
             points="demo/data/{dataset}/tiles/points.tsv",
         log:
             "logs/demo_dataset/{dataset}.log",

@@ -31,9 +31,12 @@ def test_shipped_config_and_sheet_validate(repo, schemas, shipped_config):
 
 
 def test_defaults_are_filled_from_the_schema(schemas):
-    config = load_config({"datasets": "x.tsv", "targets": {"mitochondria": {"downsample": 2}}}, schemas / "config.schema.yaml")
+    target = {"downsample": 2, "annotations": {"labels": "truth/{dataset}.tif"}}
+    config = load_config({"datasets": "x.tsv", "targets": {"mitochondria": target}}, schemas / "config.schema.yaml")
     assert config["ingest"]["chunks"] == [1, 512, 512]
     assert config["qc"]["max_flat_fraction"] == 0.1
+    assert config["targets"]["mitochondria"]["cascade"]["stages"] == 2
+    assert config["targets"]["mitochondria"]["split"]["guard_sections"] == 2
     assert "demo" not in config
 
 
@@ -49,6 +52,10 @@ def test_defaults_are_filled_from_the_schema(schemas):
         (lambda c: c.pop("datasets"), r"'datasets' is a required property"),
         (lambda c: c["targets"].update({"Bad Name": {"downsample": 2}}), r"key targets: 'Bad Name' does not match"),
         (lambda c: c["qc"].update(exclude_flagged="yes"), r"key qc.exclude_flagged: 'yes' is not of type 'boolean'"),
+        (lambda c: c["targets"]["mitochondria"]["cascade"].update(stages=0), r"key targets.mitochondria.cascade.stages: 0 is less than the minimum of 1"),
+        (lambda c: c["targets"]["mitochondria"]["cascade"].update(classifier="svm"), r"key targets.mitochondria.cascade.classifier: 'svm' is not one of"),
+        (lambda c: c["targets"]["mitochondria"]["annotations"].update(labels="truth.tif"), r"key targets.mitochondria.annotations.labels: 'truth.tif' does not match"),
+        (lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.5, 0.5]), r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short"),
     ],
 )
 def test_bad_config_values_name_the_key(schemas, shipped_config, edit, message):

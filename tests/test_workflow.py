@@ -1,6 +1,7 @@
 """The Snakemake layer: lint, formatting, dry run of the demo, and a real run of a tiny study."""
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -61,15 +62,27 @@ TINY_SHEET = (
 )
 
 
-def tiny_config(**pyramid):
+def tiny_config(stages=2, **pyramid):
+    # Nuclei fill about a tenth of this small field; a 2-stage x 1-level cascade with a small
+    # network keeps the whole study to well under a minute.
+    cascade = {"stages": stages, "levels": 1, "classifier": "mlp", "folds": 2, "samples_per_tile": 400,
+               "sigmas": [1.0, 2.0], "coarse_sigmas": [1.0], "stencil_radii": [1, 2, 4]}
     return {
         "study": {"name": "tiny test study"},
         "datasets": "config/datasets.tsv",
-        "demo": {"seed": 5, "shape": [12, 160, 160], "mito_volume_scale": {"cold": 1.25}, "tile_size": 32},
+        "demo": {"seed": 5, "shape": [12, 192, 192], "mito_volume_scale": {"cold": 1.25}, "tile_size": 32},
         "ingest": {"chunks": [1, 64, 64]},
         "pyramid": {"levels": 2, **pyramid},
         "qc": {"shift_crop": 128},
-        "targets": {"mitochondria": {"downsample": 2}},
+        "targets": {
+            "nuclei": {
+                "downsample": 2,
+                "annotations": {"labels": "demo/data/{dataset}/truth/nuclei.tif"},
+                "tiles": {"size": 32, "per_dataset": 5},
+                "split": {"fractions": [0.6, 0.2, 0.2], "guard_sections": 1},
+                "cascade": cascade,
+            }
+        },
     }
 
 
@@ -92,12 +105,18 @@ def test_tiny_study_produces_every_output(finished_study):
     for dataset in ("w1", "c1"):
         group, info = open_image(finished_study / f"results/{dataset}/pyramid/raw.ome.zarr")
         assert info["factors"] == [(1, 1, 1), (1, 2, 2), (1, 4, 4)]
-        assert info["levels"][0].shape == (12, 160, 160)
+        assert info["levels"][0].shape == (12, 192, 192)
         assert info["spacing"] == (40.0, 8.0, 8.0)
         table = pd.read_csv(finished_study / f"results/{dataset}/qc/sections.tsv", sep="\t")
         assert len(table) == 12
         assert (finished_study / f"results/{dataset}/qc/sections.png").stat().st_size > 0
         assert (finished_study / f"logs/ingest/{dataset}.log").exists()
+    for stage in (1, 2):
+        for level in (0, 1):
+            assert (finished_study / f"results/study/nuclei/cascade/stage{stage}_level{level}.npz").exists()
+    scores = pd.read_csv(finished_study / "results/study/nuclei/tiles_predicted/scores.tsv", sep="\t")
+    assert list(scores["role"]) == ["validation", "test"]
+    assert scores["f1"].between(0, 1).all()
 
 
 def test_qc_finds_the_rendered_defects(finished_study):
@@ -123,6 +142,20 @@ def test_changed_pyramid_setting_reruns_only_the_pyramid(finished_study, repo=Pa
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
         assert "pyramid" in planned
         assert not planned & {"ingest", "section_qc", "demo_dataset"}
+    finally:
+        config.write_text(original)
+
+
+def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__file__).resolve().parents[1]):
+    config = finished_study / "config" / "config.yaml"
+    original = config.read_text()
+    try:
+        config.write_text(yaml.safe_dump(tiny_config(stages=3)))
+        result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        trained = re.findall(r"stage(\d)_level(\d)\.npz\n\s+log:", result.stdout)
+        planned = {line.split()[1] for line in result.stdout.splitlines() if line.startswith("rule ")}
+        assert sorted(trained) == [("3", "0"), ("3", "1")]
+        assert planned == {"train_node:", "predict_tiles:", "all:"}
     finally:
         config.write_text(original)
 

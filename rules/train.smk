@@ -1,0 +1,58 @@
+# The cascade: one job per (target, stage, level) node, each reading the models of the nodes it
+# depends on; then the held-out tiles are predicted and scored.
+
+
+rule train_node:
+    input:
+        tiles="results/study/{target}/tiles",
+        images=expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        upstream=upstream_models,
+    output:
+        model="results/study/{target}/cascade/stage{stage}_level{level}.npz",
+    log:
+        "logs/train_node/{target}_stage{stage}_level{level}.log",
+    benchmark:
+        "benchmarks/runs/train_node/{target}_stage{stage}_level{level}.tsv"
+    conda:
+        "../envs/tessera.yaml"
+    threads: 2
+    resources:
+        mem_mb=scaled_by_attempt(4000),
+        runtime=scaled_by_attempt(120),
+    params:
+        cascade=node_cascade,
+        downsample=target_downsample,
+        datasets=list(DATASETS.index),
+        code=stage_code("train"),
+    script:
+        "../scripts/train_node.py"
+
+
+rule predict_tiles:
+    input:
+        tiles="results/study/{target}/tiles",
+        images=expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        models=cascade_models,
+    output:
+        probabilities="results/study/{target}/tiles_predicted/probabilities.npz",
+        scores=report(
+            "results/study/{target}/tiles_predicted/scores.tsv",
+            caption="../report/tile_scores.rst",
+            category="Accuracy",
+            labels={"target": "{target}"},
+        ),
+    log:
+        "logs/predict_tiles/{target}.log",
+    benchmark:
+        "benchmarks/runs/predict_tiles/{target}.tsv"
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(4000),
+        runtime=scaled_by_attempt(60),
+    params:
+        downsample=target_downsample,
+        datasets=list(DATASETS.index),
+        code=stage_code("train"),
+    script:
+        "../scripts/predict_tiles.py"

@@ -1,0 +1,21 @@
+"""Snakemake adapter: predict and score one target's validation and test tiles."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.train import predict_tiles_job
+
+run_job(
+    snakemake.log[0],
+    predict_tiles_job,
+    annotations=snakemake.input.tiles,
+    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),
+    model_paths=list(snakemake.input.models),
+    out_probabilities=snakemake.output.probabilities,
+    out_table=snakemake.output.scores,
+    target=snakemake.wildcards.target,
+    downsample=snakemake.params.downsample,
+)

@@ -1,0 +1,26 @@
+"""Snakemake adapter: sample one target's annotation tiles of one dataset from its label volume."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.tiles import sample_tiles_job
+
+tiles = snakemake.params.tiles
+run_job(
+    snakemake.log[0],
+    sample_tiles_job,
+    labels_path=snakemake.input.labels,
+    image_path=snakemake.input.image,
+    qc_table=snakemake.input.qc,
+    out_dir=snakemake.output.tiles,
+    dataset=snakemake.wildcards.dataset,
+    target=snakemake.wildcards.target,
+    downsample=snakemake.params.downsample,
+    size=tiles["size"],
+    count=tiles["per_dataset"],
+    seed=tiles["seed"],
+    exclude_flagged=snakemake.params.exclude_flagged,
+)

@@ -1,0 +1,20 @@
+"""Snakemake adapter: merge one target's tiles of every dataset and split them by section."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.tiles import split_job
+
+split = snakemake.params.split
+run_job(
+    snakemake.log[0],
+    split_job,
+    annotation_dirs=list(snakemake.input.tiles),
+    out_dir=snakemake.output.tiles,
+    fractions=split["fractions"],
+    guard_sections=split["guard_sections"],
+    seed=split["seed"],
+)

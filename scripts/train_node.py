@@ -1,0 +1,24 @@
+"""Snakemake adapter: train one (stage, level) node of a target's cascade."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.train import train_node_job
+
+run_job(
+    snakemake.log[0],
+    train_node_job,
+    annotations=snakemake.input.tiles,
+    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),
+    upstream=list(snakemake.input.upstream),
+    out_path=snakemake.output.model,
+    target=snakemake.wildcards.target,
+    downsample=snakemake.params.downsample,
+    cascade=snakemake.params.cascade,
+    stage=int(snakemake.wildcards.stage),
+    level=int(snakemake.wildcards.level),
+    threads=snakemake.threads,
+)

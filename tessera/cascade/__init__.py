@@ -1,0 +1,1 @@
+"""The cascaded hierarchical model: image features, classifiers, stages and levels."""

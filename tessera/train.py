@@ -1,0 +1,179 @@
+"""Training stage of the workflow: tiles in, one cascade node (or tile predictions) out.
+
+The workflow trains each (stage, level) node of a target's cascade as its own job
+(:func:`train_node_job`), so the cascade is visible in the DAG and adding a stage trains only the
+new nodes. Annotation tiles are read from the target's working pyramid level with a halo large
+enough for the node's receptive field, mirrored beyond the volume.
+"""
+
+import hashlib
+
+import numpy as np
+import pandas as pd
+
+from .atomic import atomic_path, write_table
+from .cascade.model import (
+    CascadeSpec,
+    ancestors,
+    cascade_spec,
+    load_node,
+    mirrored_window,
+    predict_frame,
+    prepare_tile,
+    receptive_radius,
+    save_node,
+    train_node,
+)
+from .errors import TesseraInputError
+from .omezarr import open_image, working_level
+from .tiles import read_annotation_set
+
+
+def assign_folds(tile_ids, folds, seed):
+    """Deterministic fold per tile id: a seeded shuffle of the sorted ids, then round robin.
+
+    Examples
+    --------
+    >>> assign_folds(["a", "b", "c", "d"], 2, 0) == assign_folds(["d", "c", "b", "a"], 2, 0)
+    True
+    """
+    ids = sorted(tile_ids)
+    order = sorted(ids, key=lambda t: hashlib.sha256(f"{seed}:{t}".encode()).hexdigest())
+    return {t: i % folds for i, t in enumerate(order)}
+
+
+def _window(level_array, row, halo):
+    z, y0, x0 = int(row["z"]), int(row["y0"]), int(row["x0"])
+    h, w = int(row["height"]), int(row["width"])
+    return mirrored_window(level_array, z, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
+
+
+def _level_arrays(pyramids, registry, *, downsample):
+    arrays = {}
+    for dataset in sorted(set(registry["dataset"])):
+        if dataset not in pyramids:
+            raise TesseraInputError(f"tiles name dataset {dataset!r}, which has no image in this study")
+        _, info = open_image(pyramids[dataset])
+        level = working_level(info["factors"], downsample, source=pyramids[dataset])
+        arrays[dataset] = info["levels"][level]
+    return arrays
+
+
+def _training_tiles(spec, registry, labels, arrays, *, final):
+    train = registry[registry["role"] == "train"]
+    if train.empty:
+        raise TesseraInputError("the split has no training tiles; annotate more tiles or change split.fractions")
+    folds = assign_folds(train["tile_id"], spec.folds, spec.seed)
+    halo = receptive_radius(spec, final)
+    tiles = []
+    for _, row in train.iterrows():
+        image = _window(arrays[row["dataset"]], row, halo)
+        tiles.append(prepare_tile(spec, row["tile_id"], image, labels[row["tile_id"]], fold=folds[row["tile_id"]], final=final))
+    return tiles
+
+
+def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsample, cascade, stage, level, threads=1):
+    """Train node (stage, level) of a target's cascade and save it.
+
+    Parameters
+    ----------
+    annotations : path
+        Split annotation set of the target (``role`` column).
+    pyramids : dict
+        Dataset id → multiscale OME-Zarr image.
+    upstream : list of path
+        Saved models of every ancestor node.
+    out_path : path
+        The model file to write (.npz, arrays and JSON only).
+    target : str
+    downsample : int
+        The target's working level factor.
+    cascade : dict
+        Cascade settings (see :class:`CascadeSpec`); ``stages`` is replaced by `stage`.
+    """
+    spec = CascadeSpec.from_dict({**cascade, "stages": stage})
+    node = (stage, level)
+    registry, labels = read_annotation_set(annotations)
+    arrays = _level_arrays(pyramids, registry, downsample=downsample)
+    models = {}
+    for path in upstream:
+        model = load_node(path, target=target, spec=spec)  # refuses models of other settings
+        models[model.node] = model
+    for a in ancestors(spec, node)[:-1]:
+        if a not in models:
+            raise TesseraInputError(f"node {node} needs the model of node {a}; it was not among the inputs")
+    tiles = _training_tiles(spec, registry, labels, arrays, final=node)
+    model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
+    with atomic_path(out_path) as tmp:
+        save_node(model, tmp)
+    return {"node": list(node), "training_tiles": len(tiles), "training_pixels": model.meta["training_pixels"]}
+
+
+def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out_table, *, target, downsample):
+    """Predict the validation and test tiles with the finished cascade; score them.
+
+    The threshold is the one with the best F1 on the validation tiles; test scores use it.
+    Writes every tile's probability map (``<tile_id>`` arrays in an .npz) and a TSV of pixel
+    precision, recall, F1 and Jaccard per role.
+    """
+    registry, labels = read_annotation_set(annotations)
+    models = {}
+    for path in model_paths:
+        model = load_node(path, target=target)
+        models[model.node] = model
+    spec = cascade_spec(models)
+    arrays = _level_arrays(pyramids, registry, downsample=downsample)
+    halo = receptive_radius(spec)
+    held = registry[registry["role"].isin(["validation", "test"])]
+    probabilities = {}
+    for _, row in held.iterrows():
+        image = _window(arrays[row["dataset"]], row, halo)
+        probabilities[row["tile_id"]] = predict_frame(models, image, (int(row["height"]), int(row["width"])))
+    table = score_tiles(held, labels, probabilities)
+    with atomic_path(out_probabilities) as tmp:
+        with open(tmp, "wb") as fh:
+            np.savez_compressed(fh, **{k: v.astype(np.float32) for k, v in probabilities.items()})
+    write_table(out_table, table)
+    return table.to_dict(orient="records")
+
+
+def _pixel_scores(prob, truth, threshold):
+    pred = prob >= threshold
+    tp = float(np.sum(pred & (truth == 1)))
+    fp = float(np.sum(pred & (truth == 0)))
+    fn = float(np.sum(~pred & (truth == 1)))
+    precision = tp / (tp + fp) if tp + fp else 0.0
+    recall = tp / (tp + fn) if tp + fn else 0.0
+    f1 = 2 * tp / (2 * tp + fp + fn) if tp + fp + fn else 0.0
+    jaccard = tp / (tp + fp + fn) if tp + fp + fn else 0.0
+    return {"precision": precision, "recall": recall, "f1": f1, "jaccard": jaccard}
+
+
+def score_tiles(registry, labels, probabilities, *, thresholds=np.linspace(0.05, 0.95, 19)):
+    """Pixel scores per role; the threshold is chosen by the best F1 on validation tiles.
+
+    Pixels labelled 255 (ignore) are left out.
+    """
+
+    def pooled(role):
+        ids = registry.loc[registry["role"] == role, "tile_id"]
+        probs, truth = [], []
+        for t in ids:
+            keep = labels[t] != 255
+            probs.append(probabilities[t][keep])
+            truth.append(labels[t][keep])
+        if not probs:
+            return None, None
+        return np.concatenate(probs), np.concatenate(truth)
+
+    val_p, val_t = pooled("validation")
+    if val_p is None:
+        raise TesseraInputError("no validation tiles to choose the threshold on")
+    best = max(thresholds, key=lambda t: _pixel_scores(val_p, val_t, t)["f1"])
+    rows = []
+    for role in ("validation", "test"):
+        p, t = pooled(role)
+        if p is not None:
+            rows.append({"role": role, "tiles": int((registry["role"] == role).sum()), "threshold": float(best),
+                         **_pixel_scores(p, t, best)})
+    return pd.DataFrame(rows)

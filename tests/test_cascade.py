@@ -1,0 +1,189 @@
+"""The cascaded hierarchical model: structure, out-of-fold context, exact blocks, safe storage."""
+
+import numpy as np
+import pytest
+from scipy import ndimage
+from sklearn.metrics import f1_score
+
+from tessera.cascade.model import (
+    CascadeSpec,
+    ancestors,
+    fit_cascade,
+    load_node,
+    margins,
+    mirrored_window,
+    node_inputs,
+    nodes,
+    out_of_fold_maps,
+    predict_frame,
+    predict_section,
+    prepare_tile,
+    receptive_radius,
+    save_node,
+)
+from tessera.errors import TesseraInputError
+
+SMALL = dict(sigmas=(1.0, 2.0), coarse_sigmas=(1.0,), stencil_radii=(1, 2, 4), classifier="mlp",
+             samples_per_tile=600, folds=2, seed=3)
+
+
+def blobs(seed, shape=(96, 96)):
+    """Dark round 'organelles' on a textured background, with noise; labels = the blobs."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[: shape[0], : shape[1]]
+    truth = np.zeros(shape, bool)
+    for _ in range(6):
+        cy, cx, r = rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(5, 10)
+        truth |= (yy - cy) ** 2 + (xx - cx) ** 2 < r**2
+    texture = ndimage.gaussian_filter(rng.normal(size=shape), 2) * 60
+    image = 150 + texture - 70 * truth + rng.normal(0, 15, shape)
+    return np.clip(image, 0, 255).astype(np.float32), truth.astype(np.uint8)
+
+
+def make_tiles(spec, count=6, final=None):
+    radius = receptive_radius(spec, final)
+    tiles = []
+    for i in range(count):
+        image, truth = blobs(i)
+        window = mirrored_window(image[np.newaxis], 0, -radius, 96 + radius, -radius, 96 + radius)
+        tiles.append(prepare_tile(spec, f"t{i}", window, truth, fold=i % spec.folds, final=final))
+    return tiles
+
+
+@pytest.fixture(scope="module")
+def trained():
+    spec = CascadeSpec(stages=2, levels=1, **SMALL)
+    tiles = make_tiles(spec)
+    return spec, tiles, fit_cascade(spec, tiles, target="blobs")
+
+
+def test_graph_of_stages_and_levels():
+    # Each level sees the level below; the full-resolution node sees every level; stages chain.
+    spec = CascadeSpec(stages=2, levels=2)
+    assert nodes(spec) == [(1, 1), (1, 2), (1, 0), (2, 1), (2, 2), (2, 0)]
+    assert node_inputs(spec, 1, 1) == []
+    assert node_inputs(spec, 1, 2) == [(1, 1)]
+    assert node_inputs(spec, 2, 1) == [(1, 0)]
+    assert node_inputs(spec, 2, 2) == [(2, 1), (1, 0)]
+    assert ancestors(spec, (1, 0)) == [(1, 1), (1, 2), (1, 0)]
+    assert margins(spec)[(2, 0)] == 0
+    assert receptive_radius(spec) % 4 == 0
+
+
+def test_cascade_learns_and_beats_the_first_stage_alone(trained):
+    spec, _, models = trained
+    image, truth = blobs(100)
+    prob = predict_section(models, image)
+    assert prob.dtype == np.float32 and prob.shape == image.shape
+    # Reference metric: sklearn.metrics.f1_score.
+    assert f1_score(truth.ravel(), prob.ravel() >= 0.5) > 0.85
+
+
+def test_block_prediction_equals_whole_image(trained):
+    # The core of a block read with the receptive-radius halo equals the whole-image prediction
+    # (block origins on multiples of 2^L), whatever the block size.
+    spec, _, models = trained
+    image, _ = blobs(101, shape=(80, 72))
+    whole = predict_section(models, image)
+    halo = receptive_radius(spec)
+    volume = image[np.newaxis]
+    for block in (16, 40):
+        stitched = np.zeros_like(whole)
+        for y0 in range(0, 80, block):
+            for x0 in range(0, 72, block):
+                h, w = min(block, 80 - y0), min(block, 72 - x0)
+                window = mirrored_window(volume, 0, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
+                stitched[y0 : y0 + h, x0 : x0 + w] = predict_frame(models, window, (h, w))
+        np.testing.assert_allclose(stitched, whole, atol=1e-6)
+
+
+def test_training_context_is_out_of_fold(trained):
+    # A tile's out-of-fold map must not come from a model that saw the tile: it differs from
+    # the full model's map, and the full model fits its own training tiles at least as well.
+    spec, tiles, models = trained
+    oof = out_of_fold_maps(models, tiles)
+    full = {t.tile_id: predict_section(models, blobs(int(t.tile_id[1:]))[0]) for t in tiles}
+    assert all(not np.allclose(oof[k], full[k]) for k in oof)
+    truth = np.concatenate([t.labels.ravel() for t in tiles])
+    f1_oof = f1_score(truth, np.concatenate([oof[t.tile_id].ravel() for t in tiles]) >= 0.5)
+    f1_full = f1_score(truth, np.concatenate([full[t.tile_id].ravel() for t in tiles]) >= 0.5)
+    assert f1_full >= f1_oof
+
+
+def test_same_seed_same_model_bytes(trained, tmp_path):
+    spec, _, models = trained
+    again = fit_cascade(spec, make_tiles(spec), target="blobs")
+    for node in nodes(spec):
+        save_node(models[node], tmp_path / "a.npz")
+        save_node(again[node], tmp_path / "b.npz")
+        assert (tmp_path / "a.npz").read_bytes() == (tmp_path / "b.npz").read_bytes()
+
+
+def test_nodes_do_not_depend_on_later_stages(trained):
+    # Training stage 1 alone gives the same stage-1 models as inside a 2-stage cascade, so
+    # adding a stage never retrains the earlier ones.
+    spec, _, models = trained
+    one = CascadeSpec(stages=1, levels=1, **SMALL)
+    alone = fit_cascade(one, make_tiles(one), target="blobs")
+    for node in nodes(one):
+        a, b = alone[node].classifier.to_state()[0], models[node].classifier.to_state()[0]
+        assert a.keys() == b.keys() and all(np.array_equal(a[k], b[k]) for k in a)
+
+
+def test_saved_nodes_load_without_pickle_and_predict_the_same(trained, tmp_path):
+    spec, _, models = trained
+    loaded = {}
+    for node in nodes(spec):
+        path = tmp_path / f"{node}.npz"
+        save_node(models[node], path)
+        with np.load(path, allow_pickle=False) as data:  # would raise if an object array were inside
+            assert all(data[k].dtype != object for k in data.files)
+        loaded[node] = load_node(path, target="blobs", spec=spec, stage=node[0], level=node[1])
+    image, _ = blobs(103)
+    np.testing.assert_array_equal(predict_section(loaded, image), predict_section(models, image))
+
+
+def test_model_made_for_something_else_is_refused(trained, tmp_path):
+    spec, _, models = trained
+    path = tmp_path / "m.npz"
+    save_node(models[(1, 0)], path)
+    with pytest.raises(TesseraInputError, match="model is for target 'blobs', expected 'nuclei'"):
+        load_node(path, target="nuclei")
+    other = CascadeSpec(stages=2, levels=1, **{**SMALL, "stencil_radii": (1, 2)})
+    with pytest.raises(TesseraInputError, match=r"other cascade settings \(stencil_radii\)"):
+        load_node(path, spec=other)
+    truncated = tmp_path / "cut.npz"
+    truncated.write_bytes(path.read_bytes()[:200])
+    with pytest.raises(TesseraInputError, match="cut.npz: not a readable model file"):
+        load_node(truncated)
+    foreign = tmp_path / "foreign.npz"
+    np.savez(foreign, weights=np.zeros(3))
+    with pytest.raises(TesseraInputError, match="no metadata"):
+        load_node(foreign)
+
+
+def test_too_few_tiles_for_the_folds_is_refused():
+    spec = CascadeSpec(stages=1, levels=0, **{**SMALL, "folds": 3})
+    tiles = make_tiles(spec, count=2)
+    with pytest.raises(TesseraInputError, match=r"folds \[0, 1\]; out-of-fold context needs tiles in each of the 3 folds"):
+        fit_cascade(spec, tiles)
+
+
+def test_single_class_training_is_refused():
+    spec = CascadeSpec(stages=1, levels=0, **SMALL)
+    radius = receptive_radius(spec)
+    tiles = [
+        prepare_tile(spec, f"b{i}", np.zeros((32 + 2 * radius,) * 2, np.float32), np.zeros((32, 32), np.uint8), fold=i % 2)
+        for i in range(2)
+    ]
+    with pytest.raises(TesseraInputError, match="hold only class 0"):
+        fit_cascade(spec, tiles)
+
+
+def test_bad_settings_are_named():
+    with pytest.raises(TesseraInputError, match="stages must be an integer >= 1"):
+        CascadeSpec(stages=0)
+    with pytest.raises(TesseraInputError, match="classifier must be one of"):
+        CascadeSpec(classifier="svm")
+    with pytest.raises(TesseraInputError, match="pooling must be 'mean' or 'max'"):
+        CascadeSpec(pooling="median")

@@ -1,0 +1,484 @@
+"""Annotation tiles: export, painted-mask import, sampling from label volumes, split, halos.
+
+References named beside each check: numpy / scikit-image / Pillow / tifffile as reference
+libraries, the open ssTEM stack of Gerhard et al. 2013 (doi:10.6084/m9.figshare.856713), and
+common practice of the field (marked so).
+"""
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+import zarr
+from PIL import Image
+from skimage.exposure import rescale_intensity
+from skimage.transform import downscale_local_mean
+
+from tessera import tiles
+from tessera.errors import TesseraInputError
+
+FACTORS = (1, 2, 2)
+
+
+POINTS = [(1, 40, 40), (4, 50, 60), (2, 60, 30)]
+
+
+def volume(shape=(6, 96, 96), seed=0, centres=()):
+    """A uint8 image and a blob-like truth label volume (level 0); blobs at `centres` too."""
+    rng = np.random.default_rng(seed)
+    zz, yy, xx = np.indices(shape)
+    truth = np.zeros(shape, dtype=np.uint16)
+    blobs = [(c, 10.0) for c in centres] + [
+        ((rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(0, shape[2])),
+         rng.uniform(6, 14)) for _ in range(8)]
+    for k, ((cz, cy, cx), r) in enumerate(blobs, start=1):
+        truth[((yy - cy) ** 2 + (xx - cx) ** 2 + (4 * (zz - cz)) ** 2) < r * r] = k
+    raw = np.where(truth > 0, 90, 170) + rng.normal(0, 12, shape)
+    return np.clip(np.rint(raw), 0, 255).astype(np.uint8), truth
+
+
+def write_points(path, rows, columns=("dataset", "target", "z", "y", "x")):
+    lines = ["\t".join(columns)] + ["\t".join(str(v) for v in r) for r in rows]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def save_png(path, array):
+    Image.fromarray(array).save(path)
+    return path
+
+
+def listing(directory):
+    return sorted(p.name for p in Path(directory).iterdir())
+
+
+@pytest.fixture
+def exported(tmp_path):
+    raw0, truth0 = volume(centres=POINTS)
+    level1 = np.rint(downscale_local_mean(raw0, FACTORS)).astype(np.uint8)
+    store = zarr.create_array(store=str(tmp_path / "level1.zarr"), shape=level1.shape,
+                              chunks=(1, 16, 16), dtype="uint8")
+    store[:] = level1
+    sheet = write_points(tmp_path / "points.tsv",
+                         [("d1", "mito", *p) for p in POINTS])
+    points = tiles.read_points(sheet, datasets=["d1", "d2"], targets=["mito", "nuclei"])
+    out = tmp_path / "tiles"
+    registry = tiles.export_tiles(store, points, level=1, factors=FACTORS, size=16, out_dir=out)
+    return {"raw0": raw0, "truth0": truth0, "level1": level1, "registry": registry, "out": out,
+            "points": points, "store": store, "tmp": tmp_path}
+
+
+def paint(exported, masks_dir, *, fg=255, ignore=None):
+    """Paint every exported tile from the truth, as a person would, as 0/fg PNGs."""
+    masks_dir.mkdir(exist_ok=True)
+    truth1 = tiles.labels_to_target_mask(exported["truth0"], factors=FACTORS)
+    expected = {}
+    for r in exported["registry"].itertuples(index=False):
+        t = truth1[r.z, r.y0:r.y0 + r.height, r.x0:r.x0 + r.width]
+        img = np.where(t > 0, fg, 0).astype(np.uint8)
+        lab = t.astype(np.uint8)
+        if ignore is not None:
+            img[0, :] = ignore
+            lab[0, :] = 255
+        save_png(masks_dir / f"{r.tile_id}.png", img)
+        expected[r.tile_id] = lab
+    return expected
+
+
+# --------------------------------------------------------------------------------------------
+# export -> paint -> import
+
+
+def test_export_writes_tiles_previews_and_registry(exported):
+    out, reg, level1 = exported["out"], exported["registry"], exported["level1"]
+    assert listing(out) == sorted(["tiles.tsv"] + [f"{t}{s}" for t in reg["tile_id"]
+                                                    for s in (".tif", ".preview.png")])
+    for p, r in zip(exported["points"].itertuples(), reg.itertuples()):
+        # centre mapped to the level by integer division; tile of 16 centred as y - size // 2
+        assert (r.z, r.y0, r.x0) == (p.z, p.y // 2 - 8, p.x // 2 - 8)
+        # reference: numpy slicing of the whole level, read back with tifffile
+        cut = level1[r.z, r.y0:r.y0 + 16, r.x0:r.x0 + 16]
+        np.testing.assert_array_equal(tifffile.imread(out / f"{r.tile_id}.tif"), cut)
+        # reference: skimage.exposure.rescale_intensity over the 1st-99th percentile range
+        lo, hi = np.percentile(cut, [1, 99])
+        ref = rescale_intensity(cut.astype(np.float64), in_range=(lo, hi), out_range=(0, 255))
+        got = np.asarray(Image.open(out / f"{r.tile_id}.preview.png"))
+        assert np.abs(got.astype(int) - np.rint(ref)).max() <= 1
+    assert set(reg["source"]) == {"painted"} and set(reg["level"]) == {1}
+    pd.testing.assert_frame_equal(tiles.read_registry(out / "tiles.tsv"), reg)
+
+
+def test_round_trip_export_paint_import_store(exported):
+    expected = paint(exported, exported["tmp"] / "masks")
+    reg, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+    assert sorted(labels) == sorted(exported["registry"]["tile_id"])
+    for tid, lab in expected.items():
+        np.testing.assert_array_equal(labels[tid], lab)
+        assert labels[tid].dtype == np.uint8
+    target = exported["tmp"] / "set"
+    tiles.write_annotation_set(target, reg, labels)
+    assert listing(target) == ["labels", "tiles.tsv"]
+    reg2, labels2 = tiles.read_annotation_set(target)
+    pd.testing.assert_frame_equal(reg2, reg)
+    for tid in labels:
+        np.testing.assert_array_equal(labels2[tid], labels[tid])
+
+
+def test_import_maps_ignore_value_to_255(exported):
+    # unsure pixels carry their own value and are ignored (common practice, see FIELD.md)
+    expected = paint(exported, exported["tmp"] / "masks", fg=255, ignore=128)
+    _, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks",
+                                     ignore_value=128)
+    for tid, lab in expected.items():
+        np.testing.assert_array_equal(labels[tid], lab)
+        assert (labels[tid][0] == 255).all()
+
+
+def test_missing_mask_names_tile_and_expected_file(exported):
+    paint(exported, exported["tmp"] / "masks")
+    gone = exported["registry"].loc[1, "tile_id"]
+    (exported["tmp"] / "masks" / f"{gone}.png").unlink()
+    with pytest.raises(TesseraInputError, match=rf"{gone}.*{gone}\.png"):
+        tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+
+
+def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_path):
+    sheet = write_points(tmp_path / "edge.tsv", [("d1", "mito", 0, 40, 40),
+                                                 ("d1", "mito", 1, 10, 60)])
+    points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    before = listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2"):
+        tiles.export_tiles(exported["store"], points, level=1, factors=FACTORS, size=16,
+                           out_dir=tmp_path / "edge_tiles")
+    assert listing(tmp_path) == before
+    # a section beyond the stack is outside too
+    sheet = write_points(tmp_path / "deep.tsv", [("d1", "mito", 6, 40, 40)])
+    points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    with pytest.raises(TesseraInputError, match=r"deep\.tsv.*row 1"):
+        tiles.export_tiles(exported["store"], points, level=1, factors=FACTORS, size=16,
+                           out_dir=tmp_path / "deep_tiles")
+    assert not (tmp_path / "deep_tiles").exists()
+
+
+def test_export_uses_per_row_size(tmp_path):
+    img = np.arange(3 * 40 * 40, dtype=np.uint32).reshape(3, 40, 40).astype(np.uint8)
+    sheet = write_points(tmp_path / "p.tsv", [("d", "m", 0, 20, 20, "a", ""),
+                                              ("d", "m", 1, 20, 20, "b", "6")],
+                         columns=("dataset", "target", "z", "y", "x", "tile_id", "size"))
+    pts = tiles.read_points(sheet, datasets=["d"], targets=["m"])
+    reg = tiles.export_tiles(img, pts, level=0, factors=(1, 1, 1), size=10,
+                             out_dir=tmp_path / "t")
+    assert reg["height"].tolist() == [10, 6]
+    np.testing.assert_array_equal(tifffile.imread(tmp_path / "t" / "b.tif"), img[1, 17:23, 17:23])
+
+
+# --------------------------------------------------------------------------------------------
+# points sheet
+
+
+@pytest.mark.parametrize("row, message", [
+    (("d9", "mito", 1, 40, 40), r"row 2.*dataset.*'d9'"),
+    (("d1", "golgi", 1, 40, 40), r"row 2.*target.*'golgi'"),
+    (("d1", "mito", 1, -4, 40), r"row 2.*'y'.*-4"),
+    (("d1", "mito", 1.5, 4, 40), r"row 2.*'z'.*1\.5"),
+    (("d1", "mito", 1, "", 40), r"row 2.*'y'.*''"),
+])
+def test_points_errors_name_file_and_row(tmp_path, row, message):
+    sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", 0, 10, 10), row])
+    with pytest.raises(TesseraInputError, match=rf"points\.tsv.*{message}"):
+        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+
+
+def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
+    sheet = write_points(tmp_path / "p.tsv", [("d1", "mito", 0, 10, 10, 3)],
+                         columns=("dataset", "target", "z", "y", "x", "colour"))
+    with pytest.raises(TesseraInputError, match=r"p\.tsv.*unknown \['colour'\]"):
+        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    sheet = write_points(tmp_path / "q.tsv", [("d1", "mito", 0, 10, 10)] * 2)
+    with pytest.raises(TesseraInputError, match=r"q\.tsv.*duplicate"):
+        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+
+
+# --------------------------------------------------------------------------------------------
+# painted masks
+
+
+def mask_pair():
+    rng = np.random.default_rng(3)
+    lab = (rng.random((12, 10)) < 0.4).astype(np.uint8)
+    lab[0, 0], lab[0, 1] = 0, 1
+    return lab
+
+
+def test_mask_encodings_read_identically(tmp_path):
+    # Editors save 0/1, 0/255, grey RGB(A), palette and 16-bit images (common practice).
+    lab = mask_pair()
+    files = {
+        "01.png": save_png(tmp_path / "01.png", lab),
+        "0255.png": save_png(tmp_path / "0255.png", lab * 255),
+        "rgb.png": save_png(tmp_path / "rgb.png", np.repeat((lab * 255)[..., None], 3, axis=2)),
+        "rgba.png": save_png(tmp_path / "rgba.png", np.dstack(
+            [lab * 255] * 3 + [np.full_like(lab, 255)])),
+        "p.png": tmp_path / "p.png",
+        "16.png": tmp_path / "16.png",
+        "16.tif": tmp_path / "16.tif",
+        "1bit.png": tmp_path / "1bit.png",
+        "8.tif": tmp_path / "8.tif",
+    }
+    Image.fromarray(lab * 255).convert("P").save(files["p.png"])
+    Image.fromarray(lab.astype(np.uint16) * 255).save(files["16.png"])  # Pillow writes I;16
+    tifffile.imwrite(files["16.tif"], lab.astype(np.uint16) * 65535)
+    Image.fromarray(lab.astype(bool)).save(files["1bit.png"])
+    tifffile.imwrite(files["8.tif"], lab)
+    for name, f in files.items():
+        got = tiles.read_painted_mask(f, shape=lab.shape)
+        assert got.dtype == np.uint8, name
+        np.testing.assert_array_equal(got, lab, err_msg=name)
+
+
+def test_zero_one_mask_with_ignore_255(tmp_path):
+    lab = mask_pair()
+    img = lab.copy()
+    img[5:7] = 255
+    got = tiles.read_painted_mask(save_png(tmp_path / "m.png", img), shape=lab.shape,
+                                  ignore_value=255)
+    expected = lab.copy()
+    expected[5:7] = 255
+    np.testing.assert_array_equal(got, expected)
+
+
+@pytest.mark.parametrize("case, message", [
+    ("shape", r"shape \(12, 10\)"),
+    ("float", r"integer pixels.*float32"),
+    ("seven", r"unexpected values \[7\]"),
+    ("both", r"unexpected values \[1, 255\].*ignore"),
+    ("background", r"no target pixels"),
+    ("foreground", r"no background pixels"),
+    ("colour", r"colour pixels"),
+])
+def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
+    lab = mask_pair()
+    path = tmp_path / f"bad-{case}.png"
+    if case == "shape":
+        save_png(path, lab[:, :8] * 255)
+    elif case == "float":
+        path = path.with_suffix(".tif")
+        tifffile.imwrite(path, lab.astype(np.float32))
+    elif case == "seven":
+        save_png(path, lab * 7)
+    elif case == "both":
+        img = lab * 255
+        img[0, 2] = 1
+        save_png(path, img)
+    elif case == "background":
+        save_png(path, np.zeros_like(lab))
+    elif case == "foreground":
+        save_png(path, np.full_like(lab, 255))
+    elif case == "colour":
+        rgb = np.repeat((lab * 255)[..., None], 3, axis=2)
+        rgb[0, 0] = (255, 0, 0)
+        save_png(path, rgb)
+    with pytest.raises(TesseraInputError, match=rf"{path.name}.*{message}"):
+        tiles.read_painted_mask(path, shape=lab.shape)
+
+
+def test_single_class_allowed_when_asked(tmp_path):
+    path = save_png(tmp_path / "empty.png", np.zeros((4, 4), np.uint8))
+    assert not tiles.read_painted_mask(path, shape=(4, 4), allow_single_class=True).any()
+
+
+def test_bad_mask_in_import_writes_nothing(exported):
+    paint(exported, exported["tmp"] / "masks")
+    tid = exported["registry"].loc[0, "tile_id"]
+    save_png(exported["tmp"] / "masks" / f"{tid}.png", np.full((16, 16), 7, np.uint8))
+    before = listing(exported["tmp"])
+    with pytest.raises(TesseraInputError, match=rf"{tid}\.png.*\[7\]"):
+        tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+    assert listing(exported["tmp"]) == before
+
+
+def test_write_annotation_set_rejects_bad_labels_and_writes_nothing(tmp_path):
+    reg = pd.DataFrame({"tile_id": ["a"], "dataset": ["d"], "target": ["m"], "level": [0],
+                        "z": [0], "y0": [0], "x0": [0], "height": [4], "width": [4],
+                        "source": ["labels"]})
+    for bad in (np.full((4, 4), 2, np.uint8), np.zeros((4, 5), np.uint8),
+                np.zeros((4, 4), np.float32)):
+        with pytest.raises(TesseraInputError, match="'a'"):
+            tiles.write_annotation_set(tmp_path / "set", reg, {"a": bad})
+    with pytest.raises(TesseraInputError, match=r"row 1.*'z'.*-1"):
+        tiles.write_annotation_set(tmp_path / "set", reg.assign(z=[-1]),
+                                   {"a": np.zeros((4, 4), np.uint8)})
+    assert listing(tmp_path) == []
+
+
+def test_read_annotation_set_validates_stored_labels(tmp_path):
+    reg = pd.DataFrame({"tile_id": ["a"], "dataset": ["d"], "target": ["m"], "level": [0],
+                        "z": [0], "y0": [0], "x0": [0], "height": [4], "width": [4],
+                        "source": ["labels"]})
+    tiles.write_annotation_set(tmp_path / "set", reg, {"a": np.eye(4, dtype=np.uint8)})
+    save_png(tmp_path / "set" / "labels" / "a.png", np.full((4, 4), 9, np.uint8))
+    with pytest.raises(TesseraInputError, match=r"a\.png.*\[9\]"):
+        tiles.read_annotation_set(tmp_path / "set")
+
+
+# --------------------------------------------------------------------------------------------
+# label volumes
+
+
+@pytest.mark.parametrize("factors", [(1, 2, 2), (1, 4, 4), (2, 2, 2)])
+def test_target_mask_is_majority_of_downscale_local_mean(factors):
+    # Reference library: skimage.transform.downscale_local_mean of the binary mask, > 0.5.
+    _, truth = volume(shape=(4, 64, 64), seed=5)
+    got = tiles.labels_to_target_mask(truth, factors=factors)
+    expected = downscale_local_mean((truth > 0).astype(np.float64), factors) > 0.5
+    assert got.dtype == np.uint8
+    np.testing.assert_array_equal(got, expected)
+    assert 0 < got.mean() < 1
+
+
+def sampled(label_source, **options):
+    base = dict(dataset="d1", target="mito", level=1, factors=FACTORS, size=16, count=12,
+                seed=4, exclude_z=(2, 5))
+    base.update(options)
+    return tiles.sample_tiles_from_labels(label_source, **base)
+
+
+def test_sampling_deterministic_inside_and_off_excluded_sections(tmp_path):
+    _, truth = volume(shape=(8, 96, 96))
+    store = zarr.create_array(store=str(tmp_path / "truth.zarr"), shape=truth.shape,
+                              chunks=(1, 32, 32), dtype="uint16")
+    store[:] = truth
+    reg, labels = sampled(store)
+    reg2, labels2 = sampled(truth)
+    pd.testing.assert_frame_equal(reg, reg2)
+    assert all((labels[t] == labels2[t]).all() for t in labels)
+    other, _ = sampled(truth, seed=5)
+    assert not other[["z", "y0", "x0"]].equals(reg[["z", "y0", "x0"]])
+    assert len(reg) == 12 and set(reg["source"]) == {"labels"}
+    assert not set(reg["z"]) & {2, 5}
+    assert set(reg["z"]) == {0, 1, 3, 4, 6, 7}  # spread: every allowed section used
+    assert (reg["y0"] >= 0).all() and (reg["y0"] + 16 <= 48).all()
+    assert (reg["x0"] >= 0).all() and (reg["x0"] + 16 <= 48).all()
+    # labels match the reference computed on the whole volume (downscale_local_mean > 0.5)
+    ref = downscale_local_mean((truth > 0).astype(np.float64), FACTORS) > 0.5
+    for r in reg.itertuples(index=False):
+        np.testing.assert_array_equal(labels[r.tile_id],
+                                      ref[r.z, r.y0:r.y0 + 16, r.x0:r.x0 + 16])
+
+
+def test_sampling_min_fraction(tmp_path):
+    _, truth = volume(shape=(8, 96, 96))
+    reg, labels = sampled(truth, min_fraction=0.2, count=6)
+    assert all(labels[t].mean() >= 0.2 for t in reg["tile_id"])
+    with pytest.raises(TesseraInputError, match="min_fraction"):
+        sampled(np.zeros((8, 96, 96), np.uint8), min_fraction=0.1, max_tries=20)
+
+
+# --------------------------------------------------------------------------------------------
+# split
+
+
+def registry_for_split(seed=0):
+    rng = np.random.default_rng(seed)
+    rows = []
+    for dataset in ("d1", "d2"):
+        for target in ("mito", "nuclei"):
+            zs = rng.integers(0, 40, 30)
+            for i, z in enumerate(zs):
+                rows.append({"tile_id": f"{dataset}-{target}-{i}", "dataset": dataset,
+                             "target": target, "level": 1, "z": int(z), "y0": 0, "x0": 0,
+                             "height": 8, "width": 8, "source": "labels"})
+    return pd.DataFrame(rows)
+
+
+@pytest.mark.parametrize("guard", [1, 2, 5])
+def test_split_guard_distance_holds_for_all_pairs(guard):
+    # Held-out tiles must be spatially separate from training tiles (common practice).
+    reg = registry_for_split()
+    out = tiles.split_tiles(reg, guard_sections=guard, seed=3)
+    assert out["tile_id"].tolist() == reg["tile_id"].tolist()
+    assert set(out["role"]) <= set(tiles.ROLES) and out["role"].notna().all()
+    for (_, _), g in out.groupby(["dataset", "target"]):
+        train = g.loc[g["role"] == "train", "z"].to_numpy()
+        held = g.loc[g["role"].isin(["validation", "test"]), "z"].to_numpy()
+        assert len(train) and len(held)
+        assert np.abs(held[:, None] - train[None, :]).min() >= guard
+        for role in ("train", "validation", "test"):  # a section never shared between roles
+            others = g.loc[g["role"] != role, "z"]
+            assert not set(g.loc[g["role"] == role, "z"]) & set(others)
+        share = (g["role"] == "train").mean()
+        assert abs(share - 0.6) <= 0.25
+
+
+def test_split_is_deterministic_and_written_atomically(tmp_path):
+    reg = registry_for_split()
+    a = tiles.split_tiles(reg, seed=7)
+    pd.testing.assert_frame_equal(a, tiles.split_tiles(reg, seed=7))
+    tiles.write_split(tmp_path / "split.tsv", a)
+    assert listing(tmp_path) == ["split.tsv"]
+    pd.testing.assert_frame_equal(tiles.read_registry(tmp_path / "split.tsv"), a)
+    with pytest.raises(TesseraInputError, match="role"):
+        tiles.write_split(tmp_path / "nosplit.tsv", reg)
+    with pytest.raises(TesseraInputError, match="fractions"):
+        tiles.split_tiles(reg, fractions=(0.5, 0.2, 0.2))
+    assert listing(tmp_path) == ["split.tsv"]
+
+
+def test_split_without_guard_drops_nothing():
+    out = tiles.split_tiles(registry_for_split(), guard_sections=0)
+    assert "guard" not in set(out["role"])
+
+
+# --------------------------------------------------------------------------------------------
+# halo
+
+
+@pytest.mark.parametrize("y0, x0, halo", [(0, 0, 5), (10, 30, 4), (34, 1, 7), (12, 12, 0)])
+def test_tile_slices_reflect_pad_matches_numpy_pad_of_section(y0, x0, halo):
+    # Reference: numpy.pad(mode="reflect") of the whole section, then the tile plus halo.
+    section = np.random.default_rng(1).integers(0, 255, (3, 48, 40)).astype(np.uint8)
+    row = {"z": 1, "y0": y0, "x0": x0, "height": 14, "width": 9}
+    index, pad = tiles.tile_slices(row, halo=halo, shape=section.shape)
+    got = np.pad(section[index], pad, mode="reflect")
+    ref = np.pad(section[1], halo, mode="reflect")[y0:y0 + 14 + 2 * halo, x0:x0 + 9 + 2 * halo]
+    np.testing.assert_array_equal(got, ref)
+    with pytest.raises(TesseraInputError, match="outside"):
+        tiles.tile_slices({**row, "y0": 40}, halo=halo, shape=section.shape)
+
+
+# --------------------------------------------------------------------------------------------
+# open data
+
+
+def load_vnc_mitochondria(root):
+    files = sorted((root / "mitochondria").glob("*.png"))
+    return np.stack([np.asarray(Image.open(f)) for f in files])
+
+
+def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):
+    # Gerhard et al. 2013 (doi:10.6084/m9.figshare.856713): 20 sections of 1024 x 1024,
+    # mitochondria/NN.png with values > 127 marking mitochondria (per its README).
+    masks = load_vnc_mitochondria(vnc_sstem)
+    assert masks.shape == (20, 1024, 1024)
+    keep = list(range(14))
+    reg, labels = tiles.sample_tiles_from_labels(
+        masks, dataset="vnc", target="mitochondria", level=1, factors=FACTORS, size=128,
+        count=28, seed=11, exclude_z=range(14, 20), threshold=127)
+    assert set(reg["z"]) == set(keep)
+    fractions = []
+    for r in reg.itertuples(index=False):
+        region = masks[r.z, 2 * r.y0:2 * (r.y0 + 128), 2 * r.x0:2 * (r.x0 + 128)] > 127
+        blocks = region.reshape(128, 2, 128, 2).sum(axis=(1, 3))
+        mixed = np.mean((blocks > 0) & (blocks < 4))
+        # numpy on the same region: 2 x 2 majority voting can only change blocks that hold
+        # both classes, so the fractions differ by at most the share of such blocks
+        assert abs(labels[r.tile_id].mean() - region.mean()) <= mixed
+        fractions.append(labels[r.tile_id].mean())
+    fractions = np.array(fractions)
+    # numpy on the whole of sections 0-13: the tile mean estimates it; within 3 standard errors
+    whole = np.mean(masks[keep] > 127)
+    assert 0 < whole < 0.5
+    standard_error = fractions.std(ddof=1) / np.sqrt(len(fractions))
+    assert abs(fractions.mean() - whole) <= 3 * standard_error
