@@ -26,7 +26,7 @@ from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_sco
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, predict_section, prepare_tile, receptive_radius  # noqa: E402
+from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_stack, predict_section, prepare_tile, receptive_radius  # noqa: E402
 from tessera.pyramid import block_mean  # noqa: E402
 
 DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
@@ -35,16 +35,16 @@ CONFIGS = {"1x0": (1, 0), "1x2": (1, 2), "2x2": (2, 2), "3x2": (3, 2)}
 
 def load(factor=2):
     raw = np.stack([np.asarray(Image.open(DATA / "raw" / f"{z:02d}.tif")) for z in range(20)])
-    masks = np.stack([np.asarray(Image.open(DATA / "mitochondria" / f"{z:02d}.png")) for z in range(20)])
-    if masks.ndim == 4:
-        masks = masks[..., 0]
+    # Some masks are 1-bit PNGs (True = mitochondrion), others 8-bit with anti-aliased edges;
+    # converting to 8-bit greyscale maps both to 0..255.
+    masks = np.stack([np.asarray(Image.open(DATA / "mitochondria" / f"{z:02d}.png").convert("L")) for z in range(20)])
     image = block_mean(raw, (1, factor, factor)).astype(np.float32)
     truth = (block_mean((masks > 127).astype(np.float32), (1, factor, factor)) > 0.5).astype(np.uint8)
     return image, truth
 
 
 def best_threshold(prob, truth):
-    grid = np.linspace(0.05, 0.95, 91)
+    grid = np.linspace(0.01, 0.99, 99)
     scores = [f1_score(truth, prob >= t) for t in grid]
     return float(grid[int(np.argmax(scores))])
 
@@ -53,14 +53,20 @@ def evaluate(spec, image, truth, *, threads):
     radius = receptive_radius(spec)
     h, w = image.shape[1:]
     tiles = [
-        prepare_tile(spec, f"z{z:02d}", mirrored_window(image, z, -radius, h + radius, -radius, w + radius), truth[z], fold=z % spec.folds)
+        prepare_tile(
+            spec,
+            f"z{z:02d}",
+            mirrored_stack(image, z, spec.neighbours, -radius, h + radius, -radius, w + radius),
+            truth[z],
+            fold=z % spec.folds,
+        )
         for z in range(14)
     ]
     start = time.perf_counter()
     models = fit_cascade(spec, tiles, target="mitochondria", threads=threads)
     train_s = time.perf_counter() - start
     start = time.perf_counter()
-    prob = {z: predict_section(models, image[z]) for z in range(14, 20)}
+    prob = {z: predict_section(models, image, z) for z in range(14, 20)}
     predict_s = time.perf_counter() - start
     val_p = np.concatenate([prob[z].ravel() for z in (14, 15)])
     val_t = np.concatenate([truth[z].ravel() for z in (14, 15)])
@@ -84,6 +90,7 @@ def main():
     parser.add_argument("--configs", default=",".join(CONFIGS))
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--samples", type=int, default=6000)
+    parser.add_argument("--neighbours", type=int, default=1)
     args = parser.parse_args()
     if not (DATA / "raw").is_dir():
         raise SystemExit(f"{DATA} is not present; this benchmark needs the open VNC stack")
@@ -91,13 +98,15 @@ def main():
     results, rows = {}, []
     for name in args.configs.split(","):
         stages, levels = CONFIGS[name]
-        spec = CascadeSpec(stages=stages, levels=levels, classifier=args.classifier, samples_per_tile=args.samples)
+        spec = CascadeSpec(
+            stages=stages, levels=levels, classifier=args.classifier, samples_per_tile=args.samples, neighbours=args.neighbours
+        )
         results[name] = evaluate(spec, image, truth, threads=args.threads)
         r = results[name]
         rows.append((f"{name} F1 (P {r['precision']:.3f} R {r['recall']:.3f} J {r['jaccard']:.3f})", r["f1"],
                      f"thr {r['threshold']:.2f}, train {r['train_s']:.0f} s, predict {r['predict_s']:.0f} s"))
         print(rows[-1], flush=True)
-    report("accuracy_real", rows, {"classifier": args.classifier, "vnc_mito": results})
+    report("accuracy_real", rows, {"classifier": args.classifier, "neighbours": args.neighbours, "vnc_mito": results})
 
 
 if __name__ == "__main__":

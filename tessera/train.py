@@ -17,7 +17,7 @@ from .cascade.model import (
     ancestors,
     cascade_spec,
     load_node,
-    mirrored_window,
+    mirrored_stack,
     predict_frame,
     prepare_tile,
     receptive_radius,
@@ -42,10 +42,10 @@ def assign_folds(tile_ids, folds, seed):
     return {t: i % folds for i, t in enumerate(order)}
 
 
-def _window(level_array, row, halo):
+def _window(level_array, row, halo, neighbours):
     z, y0, x0 = int(row["z"]), int(row["y0"]), int(row["x0"])
     h, w = int(row["height"]), int(row["width"])
-    return mirrored_window(level_array, z, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
+    return mirrored_stack(level_array, z, neighbours, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
 
 
 def _level_arrays(pyramids, registry, *, downsample):
@@ -67,7 +67,7 @@ def _training_tiles(spec, registry, labels, arrays, *, final):
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():
-        image = _window(arrays[row["dataset"]], row, halo)
+        image = _window(arrays[row["dataset"]], row, halo, spec.neighbours)
         tiles.append(prepare_tile(spec, row["tile_id"], image, labels[row["tile_id"]], fold=folds[row["tile_id"]], final=final))
     return tiles
 
@@ -127,7 +127,7 @@ def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out
     held = registry[registry["role"].isin(["validation", "test"])]
     probabilities = {}
     for _, row in held.iterrows():
-        image = _window(arrays[row["dataset"]], row, halo)
+        image = _window(arrays[row["dataset"]], row, halo, spec.neighbours)
         probabilities[row["tile_id"]] = predict_frame(models, image, (int(row["height"]), int(row["width"])))
     table = score_tiles(held, labels, probabilities)
     with atomic_path(out_probabilities) as tmp:
@@ -149,7 +149,7 @@ def _pixel_scores(prob, truth, threshold):
     return {"precision": precision, "recall": recall, "f1": f1, "jaccard": jaccard}
 
 
-def score_tiles(registry, labels, probabilities, *, thresholds=np.linspace(0.05, 0.95, 19)):
+def score_tiles(registry, labels, probabilities, *, thresholds=np.linspace(0.01, 0.99, 99)):
     """Pixel scores per role; the threshold is chosen by the best F1 on validation tiles.
 
     Pixels labelled 255 (ignore) are left out.

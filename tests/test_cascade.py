@@ -187,3 +187,22 @@ def test_bad_settings_are_named():
         CascadeSpec(classifier="svm")
     with pytest.raises(TesseraInputError, match="pooling must be 'mean' or 'max'"):
         CascadeSpec(pooling="median")
+
+
+def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
+    spec = CascadeSpec(stages=1, levels=1, neighbours=1, **SMALL)
+    radius = receptive_radius(spec)
+    volume = np.stack([blobs(7)[0], blobs(8)[0], blobs(9)[0]])
+    truth = np.stack([blobs(7)[1], blobs(8)[1], blobs(9)[1]])
+    from tessera.cascade.model import mirrored_stack
+
+    tiles = [
+        prepare_tile(spec, f"z{z}", mirrored_stack(volume, z, 1, -radius, 96 + radius, -radius, 96 + radius), truth[z], fold=z % 2)
+        for z in range(3)
+    ]
+    models = fit_cascade(spec, tiles)
+    assert any(name.startswith("L0:z-1_") for name in models[(1, 0)].meta["features"])
+    for z in (0, 1):  # z = 0 reads a mirrored neighbour beyond the stack
+        whole = predict_section(models, volume, z)
+        window = mirrored_stack(volume, z, 1, 32 - radius, 64 + radius, 16 - radius, 48 + radius)
+        np.testing.assert_allclose(predict_frame(models, window, (32, 32)), whole[32:64, 16:48], atol=1e-6)

@@ -454,7 +454,8 @@ def test_tile_slices_reflect_pad_matches_numpy_pad_of_section(y0, x0, halo):
 
 def load_vnc_mitochondria(root):
     files = sorted((root / "mitochondria").glob("*.png"))
-    return np.stack([np.asarray(Image.open(f)) for f in files])
+    # convert("L"): some of these masks are 1-bit PNGs, which numpy would read as bool
+    return np.stack([np.asarray(Image.open(f).convert("L")) for f in files])
 
 
 def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):

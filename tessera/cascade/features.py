@@ -197,3 +197,37 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
             j = [ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE) for a, b in pairs]
             channels.extend(_eigvals_sym3(j))
     return np.stack(channels, axis=-1).astype(np.float32, copy=False)
+
+
+def neighbour_feature_names(sigmas=DEFAULT_SIGMAS, *, offset):
+    """Names of the channels :func:`neighbour_features` returns for the section at `offset`."""
+    sigmas = _check_sigmas(sigmas)
+    names = [f"z{offset:+d}_raw"]
+    for s in sigmas:
+        names += [f"z{offset:+d}_smooth_s{s:g}", f"z{offset:+d}_log_s{s:g}"]
+    return names
+
+
+def neighbour_features(section, *, sigmas=DEFAULT_SIGMAS):
+    """A lighter bank for neighbouring sections: raw, smoothed intensity and LoG per σ.
+
+    In anisotropic stacks an organelle seen in one section usually continues in the next
+    (sections are 25-70 nm apart, organelles hundreds of nm), so the neighbours' intensity
+    around a pixel is strong evidence; edges are left to the centre section's full bank.
+    No mirroring is done here: pass a section with a halo of :func:`feature_radius`.
+
+    Returns
+    -------
+    (M, N, 1 + 2 len(sigmas)) ndarray of float32
+    """
+    section = np.asarray(section, dtype=np.float32)
+    if section.ndim != 2:
+        raise TesseraInputError(f"section must be 2D, got shape {section.shape}")
+    sigmas = _check_sigmas(sigmas)
+    channels = [section]
+    for s in sigmas:
+        g = ndimage.gaussian_filter(section, s, mode=_MODE, truncate=_TRUNCATE)
+        gy, gx = _derivatives(g, (1.0, 1.0))
+        lap = _derivatives(gy, (1.0, 1.0))[0] + _derivatives(gx, (1.0, 1.0))[1]
+        channels += [g, np.float32(s * s) * lap]
+    return np.stack(channels, axis=-1)

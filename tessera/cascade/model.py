@@ -41,7 +41,14 @@ from .. import __version__
 from ..errors import TesseraInputError
 from ..pyramid import block_mean
 from .classifiers import KINDS, classifier_from_state, make_classifier
-from .features import DEFAULT_SIGMAS, feature_names, feature_radius, filter_bank
+from .features import (
+    DEFAULT_SIGMAS,
+    feature_names,
+    feature_radius,
+    filter_bank,
+    neighbour_feature_names,
+    neighbour_features,
+)
 
 MODEL_FORMAT = 1
 IGNORE = 255
@@ -71,6 +78,9 @@ class CascadeSpec:
         Folds for out-of-fold context (≥ 2).
     samples_per_tile : int
         Training pixels drawn per tile and node, half per class where possible.
+    neighbours : int
+        Sections on each side whose intensity (smoothed, LoG) joins the image features; useful
+        for anisotropic stacks where organelles continue from section to section.
     seed : int
         Makes sampling, folds and classifiers deterministic.
     """
@@ -85,6 +95,7 @@ class CascadeSpec:
     classifier_options: dict = field(default_factory=dict)
     folds: int = 3
     samples_per_tile: int = 4000
+    neighbours: int = 0
     seed: int = 0
 
     def __post_init__(self):
@@ -103,6 +114,8 @@ class CascadeSpec:
             fail(f"folds must be an integer >= 2, got {self.folds!r}")
         if not isinstance(self.samples_per_tile, int) or self.samples_per_tile < 10:
             fail(f"samples_per_tile must be an integer >= 10, got {self.samples_per_tile!r}")
+        if not isinstance(self.neighbours, int) or not 0 <= self.neighbours <= 4:
+            fail(f"neighbours must be an integer from 0 to 4, got {self.neighbours!r}")
         radii = tuple(self.stencil_radii)
         if not radii or any(not isinstance(r, int) or r < 1 for r in radii):
             fail(f"stencil_radii must be positive integers, got {self.stencil_radii!r}")
@@ -272,6 +285,17 @@ def mirrored_window(array, z, y0, y1, x0, x1):
     return block[np.ix_(iy - iy.min(), ix - ix.min())]
 
 
+def mirrored_stack(array, z, neighbours, y0, y1, x0, x1):
+    """Sections z - neighbours .. z + neighbours of a (Z, Y, X) array, mirrored beyond every edge.
+
+    Returns a (2 neighbours + 1, y1 - y0, x1 - x0) array (see :func:`mirrored_window`).
+    """
+    nz = array.shape[0]
+    zs = np.arange(z - neighbours, z + neighbours + 1) % (2 * nz)
+    zs = np.where(zs < nz, zs, 2 * nz - 1 - zs)
+    return np.stack([mirrored_window(array, int(k), y0, y1, x0, x1) for k in zs])
+
+
 def _pool(prob, factor, how):
     if factor == 1:
         return prob
@@ -305,13 +329,15 @@ class _Frame:
         self.spec, self.halo = spec, halo
         self.core_shape = core_shape  # multiples of 2^L
         self.margins = margin_table
-        self._levels = {0: np.asarray(image, dtype=np.float32)}
+        image = np.asarray(image, dtype=np.float32)
+        # (2k + 1, H, W): the section and k neighbours on each side; the centre is index k
+        self._levels = {0: image if image.ndim == 3 else image[np.newaxis]}
         self._features = {}
         self.maps = {}
 
     def image(self, level):
         if level not in self._levels:
-            self._levels[level] = block_mean(self._levels[0], (2**level, 2**level))
+            self._levels[level] = block_mean(self._levels[0], (1, 2**level, 2**level))
         return self._levels[level]
 
     def region(self, level, margin):
@@ -332,8 +358,12 @@ class _Frame:
             extra = _feature_halo(self.spec, level)
             rows, cols = self.region(level, widest)
             # receptive_radius guarantees rows.start - extra >= 0: the window lies inside the frame
-            window = self.image(level)[rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra]
-            feats = filter_bank(window, sigmas=_sigmas(self.spec, level), mirror_edges=False)
+            stack = self.image(level)[:, rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra]
+            centre = stack.shape[0] // 2
+            sigmas = _sigmas(self.spec, level)
+            parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False)]
+            parts += [neighbour_features(stack[k], sigmas=sigmas) for k in range(stack.shape[0]) if k != centre]
+            feats = np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
             self._features[level] = (feats[extra:-extra, extra:-extra], widest)
         feats, widest = self._features[level]
         trim = (widest - margin) // (2**level)
@@ -379,7 +409,11 @@ def _node_matrix(frame, node, margin):
 
 def node_feature_names(spec, stage, level):
     """Names of the columns a node's classifier sees, in order."""
-    names = [f"L{level}:{n}" for n in feature_names(_sigmas(spec, level))]
+    sigmas = _sigmas(spec, level)
+    image_names = feature_names(sigmas)
+    for offset in [o for o in range(-spec.neighbours, spec.neighbours + 1) if o]:
+        image_names += neighbour_feature_names(sigmas, offset=offset)
+    names = [f"L{level}:{n}" for n in image_names]
     offsets = ["c"] + [f"r{k}{d}" for k in spec.stencil_radii for d in ("n", "s", "w", "e", "nw", "ne", "sw", "se")]
     for producer in node_inputs(spec, stage, level):
         names += [f"ctx(s{producer[0]},l{producer[1]}):{o}" for o in offsets]
@@ -401,13 +435,18 @@ def make_frame(spec, image, core_shape, *, final=None):
     """
     halo = receptive_radius(spec, final)
     image = np.asarray(image, dtype=np.float32)
-    expected = tuple(c + 2 * halo for c in core_shape)
+    if image.ndim == 2:
+        image = image[np.newaxis]
+    expected = (2 * spec.neighbours + 1, *(c + 2 * halo for c in core_shape))
     if image.shape != expected:
-        raise TesseraInputError(f"image must have shape {expected} (core {core_shape} + halo {halo}), got {image.shape}")
+        raise TesseraInputError(
+            f"image must have shape {expected} (sections z-{spec.neighbours}..z+{spec.neighbours}, "
+            f"core {core_shape} + halo {halo}), got {image.shape}"
+        )
     padded_core = _core_shape(spec, core_shape)
     extra = [p - c for p, c in zip(padded_core, core_shape)]
     if any(extra):
-        image = np.pad(image, [(0, e) for e in extra], mode="symmetric")
+        image = np.pad(image, [(0, 0)] + [(0, e) for e in extra], mode="symmetric")
     return _Frame(spec, image, padded_core, halo, margins(spec, final))
 
 
@@ -654,13 +693,19 @@ def predict_frame(models, image, core_shape):
     return prob[: core_shape[0], : core_shape[1]]
 
 
-def predict_section(models, section):
-    """Probability map of a whole 2D section (mirrored edges), in one piece."""
+def predict_section(models, volume, z=None):
+    """Probability map of one whole section (mirrored edges), in one piece.
+
+    `volume` is a 2D section, or a (Z, Y, X) array with `z` the section (needed when the
+    cascade reads neighbouring sections).
+    """
     spec = cascade_spec(models)
     halo = receptive_radius(spec)
-    section = np.asarray(section)
-    h, w = section.shape
-    image = mirrored_window(section[np.newaxis], 0, -halo, h + halo, -halo, w + halo)
+    volume = np.asarray(volume)
+    if volume.ndim == 2:
+        volume, z = volume[np.newaxis], 0
+    h, w = volume.shape[1:]
+    image = mirrored_stack(volume, z, spec.neighbours, -halo, h + halo, -halo, w + halo)
     return predict_frame(models, image, (h, w))
 
 

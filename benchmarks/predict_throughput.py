@@ -1,0 +1,66 @@
+"""Prediction throughput of a 2 x 2 cascade, features included, per classifier, one thread.
+
+For each classifier a cascade is trained quickly on a few tiles of a synthetic demo volume,
+then one block of 1024 x 1024 core pixels is predicted with its receptive-field halo (the
+block-prediction path sharded prediction uses). Throughput counts core voxels only, so the
+halo's overhead is part of the figure.
+
+Run from the repository root: .venv/bin/python benchmarks/predict_throughput.py
+"""
+
+import os
+import sys
+import time
+from pathlib import Path
+
+for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[var] = "1"  # one core: the figure is per core
+
+import numpy as np  # noqa: E402
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import report  # noqa: E402
+
+from tessera.cascade.classifiers import KINDS  # noqa: E402
+from tessera.cascade.model import (  # noqa: E402
+    CascadeSpec,
+    fit_cascade,
+    mirrored_stack,
+    predict_frame,
+    prepare_tile,
+    receptive_radius,
+)
+from tessera.demo import render_dataset  # noqa: E402
+
+CORE = 1024
+
+
+def main():
+    volume = render_dataset(seed=5, shape=(8, 1024, 1024), defects=False)
+    image = volume["raw"].astype(np.float32)
+    truth = (volume["mitochondria"] > 0).astype(np.uint8)
+    default = CascadeSpec().classifier
+    figures, rows = {"by_classifier": {}}, []
+    for kind in KINDS:
+        spec = CascadeSpec(stages=2, levels=2, classifier=kind, samples_per_tile=1500)
+        radius = receptive_radius(spec)
+        tiles = []
+        for z in range(6):
+            window = mirrored_stack(image, z, spec.neighbours, 200 - radius, 456 + radius, 200 - radius, 456 + radius)
+            tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, 200:456, 200:456], fold=z % spec.folds))
+        models = fit_cascade(spec, tiles, target="mitochondria", threads=1)
+        block = mirrored_stack(image, 7, spec.neighbours, -radius, CORE + radius, -radius, CORE + radius)
+        start = time.perf_counter()
+        predict_frame(models, block, (CORE, CORE))
+        seconds = time.perf_counter() - start
+        rate = CORE * CORE / seconds / 1e6
+        figures["by_classifier"][kind] = rate
+        rows.append((f"{kind} (halo {radius} px)", rate, "Mvox/s/core"))
+        print(rows[-1], flush=True)
+    figures["mvox_per_s_per_core"] = figures["by_classifier"][default]
+    figures["default_classifier"] = default
+    report("predict_throughput", rows, figures)
+
+
+if __name__ == "__main__":
+    main()
