@@ -1,5 +1,6 @@
 # Validation of config and sheet (before any rule runs) and the input functions rules share.
 import sys
+from pathlib import Path
 
 sys.path.insert(
     0, workflow.basedir
@@ -11,6 +12,7 @@ from tessera.cascade.model import CascadeSpec, ancestors, nodes
 from tessera.config import load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.provenance import code_version
+from tessera.tiles import read_points
 
 DEMO_DIR = (
     "demo/data"  # where the demo rule writes; sheet paths below it need not exist yet
@@ -85,6 +87,61 @@ def target_settings(wildcards):
 def target_labels(wildcards):
     pattern = target_settings(wildcards)["annotations"]["labels"]
     return pattern.format(dataset=wildcards.dataset)
+
+
+def _painted(target):
+    return config["targets"][target]["annotations"].get("painted")
+
+
+def _points_by_target():
+    """Datasets with points per painted target, read (and validated) before anything runs."""
+    out = {}
+    for target in config["targets"]:
+        painted = _painted(target)
+        if painted:
+            try:
+                points = read_points(
+                    painted["points"],
+                    datasets=DATASETS.index,
+                    targets=config["targets"],
+                )
+            except TesseraInputError as error:
+                raise WorkflowError(f"invalid input: {error}") from None
+            out[target] = sorted(set(points.loc[points["target"] == target, "dataset"]))
+    return out
+
+
+POINTS = _points_by_target()
+
+
+def annotation_sets(wildcards):
+    target = wildcards.target
+    if _painted(target):
+        return [f"results/{d}/tiles_painted/{target}" for d in POINTS[target]]
+    return [f"results/{d}/tiles/{target}" for d in DATASETS.index]
+
+
+def target_points(wildcards):
+    return _painted(wildcards.target)["points"]
+
+
+def painted_masks_folder(wildcards):
+    return _painted(wildcards.target)["masks"]
+
+
+def painted_masks(wildcards):
+    # Declared as input only once it exists, so that the job can explain what to paint.
+    folder = painted_masks_folder(wildcards)
+    return [folder] if Path(folder).is_dir() else []
+
+
+def painted_options(wildcards):
+    painted = _painted(wildcards.target)
+    return {k: painted[k] for k in ("ignore_value", "allow_single_class")}
+
+
+def target_tile_size(wildcards):
+    return target_settings(wildcards)["tiles"]["size"]
 
 
 def target_downsample(wildcards):

@@ -1,5 +1,6 @@
-# Annotation tiles: sampled per dataset from label volumes, then merged and split per target
-# into training, validation and test tiles kept apart in z.
+# Annotation tiles: sampled per dataset from label volumes, or cut around points for painting
+# and read back once painted; then merged and split per target into training, validation and
+# test tiles kept apart in z.
 
 
 rule sample_tiles:
@@ -25,9 +26,53 @@ rule sample_tiles:
         "../scripts/sample_tiles.py"
 
 
+rule export_tiles:
+    input:
+        image="results/{dataset}/pyramid/raw.ome.zarr",
+        points=target_points,
+    output:
+        tiles=directory("results/{dataset}/to_paint/{target}"),
+    log:
+        "logs/export_tiles/{dataset}_{target}.log",
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(1000),
+        runtime=scaled_by_attempt(10),
+    params:
+        downsample=target_downsample,
+        size=target_tile_size,
+        datasets=list(DATASETS.index),
+        targets=list(config["targets"]),
+        code=stage_code("tiles"),
+    script:
+        "../scripts/export_tiles.py"
+
+
+rule import_tiles:
+    input:
+        exported="results/{dataset}/to_paint/{target}",
+        masks=painted_masks,
+    output:
+        tiles=directory("results/{dataset}/tiles_painted/{target}"),
+    log:
+        "logs/import_tiles/{dataset}_{target}.log",
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(1000),
+        runtime=scaled_by_attempt(10),
+    params:
+        masks=painted_masks_folder,
+        painted=painted_options,
+        code=stage_code("tiles"),
+    script:
+        "../scripts/import_tiles.py"
+
+
 rule split_tiles:
     input:
-        tiles=expand("results/{dataset}/tiles/{{target}}", dataset=DATASETS.index),
+        tiles=annotation_sets,
     output:
         tiles=directory("results/study/{target}/tiles"),
     log:

@@ -1093,3 +1093,31 @@ def split_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed):
     split = split_tiles(merged, fractions=tuple(fractions), guard_sections=guard_sections, seed=seed)
     write_annotation_set(out_dir, split, labels)
     return split["role"].value_counts().to_dict()
+
+
+def export_tiles_job(image_path, points_path, out_dir, *, dataset, target, downsample, size, datasets, targets):
+    """Cut this dataset's tiles of one target from the points sheet, for painting."""
+    _, info = open_image(image_path)
+    level = working_level(info["factors"], downsample, source=image_path)
+    points = read_points(points_path, datasets=datasets, targets=targets)
+    mine = points[(points["dataset"] == dataset) & (points["target"] == target)]
+    if mine.empty:
+        raise TesseraInputError(f"no points for dataset {dataset!r} and target {target!r}", source=points_path)
+    registry = export_tiles(info["levels"][level], mine, level=level, factors=info["factors"][level], size=size,
+                            out_dir=out_dir)
+    return {"tiles": len(registry), "level": level}
+
+
+def import_tiles_job(exported_dir, masks_dir, out_dir, *, ignore_value=None, allow_single_class=False):
+    """Read the painted masks of exported tiles and register them as an annotation set."""
+    if masks_dir is None or not Path(masks_dir).is_dir():
+        raise TesseraInputError(
+            f"no painted masks yet: paint the tiles in {exported_dir} (previews *.preview.png) and "
+            f"save one mask per tile as <tile_id>.png (0 = background, 1 or 255 = target) in the "
+            f"folder named by annotations.painted.masks",
+            source=masks_dir,
+        )
+    registry, labels = import_painted(exported_dir, masks_dir, ignore_value=ignore_value,
+                                      allow_single_class=allow_single_class)
+    write_annotation_set(out_dir, registry, labels)
+    return {"tiles": len(registry)}

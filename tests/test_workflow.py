@@ -7,6 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 import yaml
@@ -180,3 +181,45 @@ def test_stage_code_version_follows_the_import_graph():
     assert {"tessera.omezarr", "tessera.atomic", "tessera.errors"} <= closure
     assert "tessera.qc" not in closure and "tessera.ingest" not in closure
     assert "tessera.omezarr" in module_closure("tessera.qc")  # imported inside a function
+
+
+def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, repo):
+    import tifffile
+    from PIL import Image
+
+    from tessera.tiles import labels_to_target_mask, read_annotation_set
+
+    config = tiny_config()
+    # Tiles with no nucleus are useful background examples: declare them allowed.
+    painted = {"points": "config/points.tsv", "masks": "painted/nuclei", "allow_single_class": True}
+    config["targets"]["nuclei"]["annotations"] = {"painted": painted}
+    (tmp_path / "config").mkdir()
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
+    (tmp_path / "config" / "datasets.tsv").write_text(TINY_SHEET)
+    points = ["dataset\ttarget\tz\ty\tx"]
+    points += [f"{d}\tnuclei\t{z}\t96\t96" for d in ("w1", "c1") for z in (0, 2, 6, 10)]
+    (tmp_path / "config" / "points.tsv").write_text("\n".join(points) + "\n")
+    run = ["--cores", "2", "--snakefile", str(repo / "Snakefile")]
+    snakemake(*run, "results/w1/to_paint/nuclei", "results/c1/to_paint/nuclei", cwd=tmp_path)
+    exported = pd.read_csv(tmp_path / "results/w1/to_paint/nuclei/tiles.tsv", sep="\t")
+    assert len(exported) == 4 and (tmp_path / "results/w1/to_paint/nuclei" / f"{exported.tile_id[0]}.preview.png").exists()
+
+    result = snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path, check=False)
+    assert result.returncode != 0
+    assert "no painted masks yet" in result.stderr + result.stdout
+
+    # Paint: every tile's mask from the demo truth, as 0/255 PNGs.
+    masks = tmp_path / "painted" / "nuclei"
+    masks.mkdir(parents=True)
+    for dataset in ("w1", "c1"):
+        truth = tifffile.imread(tmp_path / f"demo/data/{dataset}/truth/nuclei.tif")
+        table = pd.read_csv(tmp_path / f"results/{dataset}/to_paint/nuclei/tiles.tsv", sep="\t")
+        for row in table.itertuples():
+            crop = truth[row.z, 2 * row.y0 : 2 * (row.y0 + row.height), 2 * row.x0 : 2 * (row.x0 + row.width)]
+            mask = labels_to_target_mask(crop[np.newaxis], factors=(1, 2, 2))[0]
+            Image.fromarray((mask * 255).astype(np.uint8)).save(masks / f"{row.tile_id}.png")
+    snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path)
+    registry, labels = read_annotation_set(tmp_path / "results/study/nuclei/tiles")
+    assert len(registry) == 8 and set(registry["source"]) == {"painted"}
+    assert set(registry["role"]) <= {"train", "validation", "test", "guard"}
+    assert all(set(np.unique(v)) <= {0, 1} for v in labels.values())

@@ -1,0 +1,18 @@
+"""Snakemake adapter: register the painted masks of one dataset's exported tiles."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.tiles import import_tiles_job
+
+run_job(
+    snakemake.log[0],
+    import_tiles_job,
+    exported_dir=snakemake.input.exported,
+    masks_dir=snakemake.params.masks,
+    out_dir=snakemake.output.tiles,
+    **snakemake.params.painted,
+)
