@@ -6,8 +6,6 @@ new nodes. Annotation tiles are read from the target's working pyramid level wit
 enough for the node's receptive field, mirrored beyond the volume.
 """
 
-import hashlib
-
 import numpy as np
 import pandas as pd
 
@@ -29,17 +27,38 @@ from .omezarr import open_image, working_level
 from .tiles import read_annotation_set
 
 
-def assign_folds(tile_ids, folds, seed):
-    """Deterministic fold per tile id: a seeded shuffle of the sorted ids, then round robin.
+def assign_folds(tiles, folds, seed):
+    """Fold per training tile: contiguous runs of sections within each dataset.
+
+    Neighbouring sections are highly correlated, so a tile's out-of-fold context must come from
+    models that saw no nearby section either: each dataset's tiles are ordered by z and cut into
+    `folds` contiguous runs. The seed only decides which run gets which fold number.
+
+    Parameters
+    ----------
+    tiles : pandas.DataFrame
+        Registry rows (``tile_id``, ``dataset``, ``z``).
+
+    Returns
+    -------
+    dict
+        tile_id → fold.
 
     Examples
     --------
-    >>> assign_folds(["a", "b", "c", "d"], 2, 0) == assign_folds(["d", "c", "b", "a"], 2, 0)
-    True
+    >>> t = pd.DataFrame({"tile_id": list("abcdef"), "dataset": ["d"] * 6, "z": [5, 0, 1, 4, 2, 3]})
+    >>> f = assign_folds(t, 3, 0)
+    >>> sorted("".join(sorted(k for k in f if f[k] == i)) for i in range(3))
+    ['ad', 'bc', 'ef']
     """
-    ids = sorted(tile_ids)
-    order = sorted(ids, key=lambda t: hashlib.sha256(f"{seed}:{t}".encode()).hexdigest())
-    return {t: i % folds for i, t in enumerate(order)}
+    rng = np.random.default_rng(seed)
+    out = {}
+    for _, group in tiles.sort_values(["dataset", "z", "tile_id"]).groupby("dataset", sort=True):
+        names = rng.permutation(folds)
+        n = len(group)
+        for rank, tile_id in enumerate(group["tile_id"]):
+            out[tile_id] = int(names[rank * folds // n])
+    return out
 
 
 def _window(level_array, row, halo, neighbours):
@@ -63,7 +82,7 @@ def _training_tiles(spec, registry, labels, arrays, *, final):
     train = registry[registry["role"] == "train"]
     if train.empty:
         raise TesseraInputError("the split has no training tiles; annotate more tiles or change split.fractions")
-    folds = assign_folds(train["tile_id"], spec.folds, spec.seed)
+    folds = assign_folds(train, spec.folds, spec.seed)
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():

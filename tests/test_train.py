@@ -9,12 +9,17 @@ from tessera.errors import TesseraInputError
 from tessera.train import assign_folds, score_tiles
 
 
-def test_folds_are_deterministic_balanced_and_order_free():
-    ids = [f"tile{i}" for i in range(10)]
-    folds = assign_folds(ids, 3, seed=1)
-    assert folds == assign_folds(list(reversed(ids)), 3, seed=1)
-    assert sorted(np.bincount(list(folds.values()))) == [3, 3, 4]
-    assert folds != assign_folds(ids, 3, seed=2)
+def test_folds_are_contiguous_in_z_balanced_and_order_free():
+    # Neighbouring sections are highly correlated (common practice), so folds are runs of z.
+    tiles = pd.DataFrame({"tile_id": [f"a{i}" for i in range(9)] + [f"b{i}" for i in range(6)],
+                          "dataset": ["a"] * 9 + ["b"] * 6, "z": list(range(0, 18, 2)) + list(range(6))})
+    folds = assign_folds(tiles, 3, seed=1)
+    assert folds == assign_folds(tiles.iloc[::-1], 3, seed=1)
+    assert sorted(np.bincount(list(folds.values()))) == [5, 5, 5]
+    for dataset, group in tiles.groupby("dataset"):
+        sequence = [folds[t] for t in group.sort_values("z")["tile_id"]]
+        changes = sum(a != b for a, b in zip(sequence, sequence[1:]))
+        assert changes == 2  # three contiguous runs
 
 
 def test_scores_match_sklearn_with_threshold_chosen_on_validation():

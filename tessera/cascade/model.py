@@ -91,7 +91,7 @@ class CascadeSpec:
     coarse_sigmas: tuple = (0.7, 1.6, 3.5)
     stencil_radii: tuple = (1, 2, 4, 8, 16)
     pooling: str = "mean"
-    classifier: str = "ldnn"
+    classifier: str = "mlp"
     classifier_options: dict = field(default_factory=dict)
     folds: int = 3
     samples_per_tile: int = 4000
