@@ -2,9 +2,8 @@
 import sys
 from pathlib import Path
 
-sys.path.insert(
-    0, workflow.basedir
-)  # the package, when it is not pip-installed (conda deploys)
+# Import the package from the workflow folder when it is not pip-installed (conda deploys).
+sys.path.insert(0, workflow.basedir)
 
 from snakemake.exceptions import WorkflowError
 
@@ -14,9 +13,8 @@ from tessera.errors import TesseraInputError
 from tessera.provenance import code_version
 from tessera.tiles import read_points
 
-DEMO_DIR = (
-    "demo/data"  # where the demo rule writes; sheet paths below it need not exist yet
-)
+# Where the demo rule writes; sheet paths below it need not exist yet.
+DEMO_DIR = "demo/data"
 
 try:
     config = load_config(
