@@ -377,27 +377,18 @@ class _Frame:
         for producer in node_inputs(spec, *consumer):
             prob, p_margin = self.maps[producer]
             p_level = producer[1]
+            reach = _read_reach(spec, level, p_level)
+            trim = (p_margin - (margin + reach)) // (2**p_level)
+            src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
             if p_level <= level:
-                factor = 2 ** (level - p_level)
-                # bring the producer's map to the consumer's level, then read the stencil there
-                reach = _read_reach(spec, level, p_level)
-                need = margin + reach
-                trim = (p_margin - need) // (2**p_level)
-                src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
-                pooled = _pool(src, factor, spec.pooling)
-                samples = _stencil(pooled, spec.stencil_radii)
-                cut = reach // (2**level)
-                out.append(samples[cut : samples.shape[0] - cut, cut : samples.shape[1] - cut])
+                # pool a finer map down to the consumer's level, then read the stencil there
+                samples = _stencil(_pool(src, 2 ** (level - p_level), spec.pooling), spec.stencil_radii)
             else:
+                # read a coarser map's stencil at its own level, then bring it up
                 factor = 2 ** (p_level - level)
-                reach = _read_reach(spec, level, p_level)
-                need = margin + reach
-                trim = (p_margin - need) // (2**p_level)
-                src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
-                samples = _stencil(src, spec.stencil_radii)
-                up = np.repeat(np.repeat(samples, factor, axis=0), factor, axis=1)
-                cut = reach // (2**level)
-                out.append(up[cut : up.shape[0] - cut, cut : up.shape[1] - cut])
+                samples = np.repeat(np.repeat(_stencil(src, spec.stencil_radii), factor, axis=0), factor, axis=1)
+            cut = reach // (2**level)
+            out.append(samples[cut : samples.shape[0] - cut, cut : samples.shape[1] - cut])
         return out
 
 
