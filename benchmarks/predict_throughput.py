@@ -46,8 +46,12 @@ def main():
         radius = receptive_radius(spec)
         tiles = []
         for z in range(6):
-            window = mirrored_stack(image, z, spec.neighbours, 200 - radius, 456 + radius, 200 - radius, 456 + radius)
-            tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, 200:456, 200:456], fold=z % spec.folds))
+            # a 256-px tile around the section's mitochondria, so both classes are present
+            ys, xs = np.nonzero(truth[z])
+            y0 = int(np.clip(np.median(ys) - 128, 0, 1024 - 256)) if ys.size else 384
+            x0 = int(np.clip(np.median(xs) - 128, 0, 1024 - 256)) if xs.size else 384
+            window = mirrored_stack(image, z, spec.neighbours, y0 - radius, y0 + 256 + radius, x0 - radius, x0 + 256 + radius)
+            tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, y0 : y0 + 256, x0 : x0 + 256], fold=z % spec.folds))
         models = fit_cascade(spec, tiles, target="mitochondria", threads=1)
         block = mirrored_stack(image, 7, spec.neighbours, -radius, CORE + radius, -radius, CORE + radius)
         start = time.perf_counter()

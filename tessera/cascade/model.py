@@ -307,17 +307,6 @@ def _pool(prob, factor, how):
     return padded.reshape(ph // factor, factor, pw // factor, factor).max(axis=(1, 3))
 
 
-def _stencil(prob, radii):
-    """(H, W, 1 + 8·len(radii)) samples of `prob` at the stencil offsets (edges mirrored)."""
-    r = max(radii)
-    padded = np.pad(prob, r, mode="symmetric")
-    h, w = prob.shape
-    offsets = [(0, 0)]
-    for k in radii:
-        offsets += [(-k, 0), (k, 0), (0, -k), (0, k), (-k, -k), (-k, k), (k, -k), (k, k)]
-    return np.stack([padded[r + dy : r + dy + h, r + dx : r + dx + w] for dy, dx in offsets], axis=-1)
-
-
 class _Frame:
     """One core region with its mirrored halo; caches image levels and per-node maps.
 
@@ -369,8 +358,14 @@ class _Frame:
         trim = (widest - margin) // (2**level)
         return feats[trim : feats.shape[0] - trim, trim : feats.shape[1] - trim] if trim else feats
 
-    def context(self, consumer, margin):
-        """Stencil features of every input map of `consumer`, over its core + margin."""
+    def context_maps(self, consumer, margin):
+        """Every input map of `consumer` at the consumer's level, with its stencil's offset scale.
+
+        Each map covers the consumer's core + margin plus the stencil's reach (level-l pixels
+        `cut` on each side). A finer map is pooled down; a coarser one is repeated up (nearest)
+        and its stencil offsets are scaled by the factor, which equals reading the stencil at the
+        coarse level and upsampling the samples.
+        """
         spec = self.spec
         level = consumer[1]
         out = []
@@ -381,21 +376,37 @@ class _Frame:
             trim = (p_margin - (margin + reach)) // (2**p_level)
             src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
             if p_level <= level:
-                # pool a finer map down to the consumer's level, then read the stencil there
-                samples = _stencil(_pool(src, 2 ** (level - p_level), spec.pooling), spec.stencil_radii)
+                out.append((_pool(src, 2 ** (level - p_level), spec.pooling), 1, reach // (2**level)))
             else:
-                # read a coarser map's stencil at its own level, then bring it up
                 factor = 2 ** (p_level - level)
-                samples = np.repeat(np.repeat(_stencil(src, spec.stencil_radii), factor, axis=0), factor, axis=1)
-            cut = reach // (2**level)
-            out.append(samples[cut : samples.shape[0] - cut, cut : samples.shape[1] - cut])
+                out.append((np.repeat(np.repeat(src, factor, axis=0), factor, axis=1), factor, reach // (2**level)))
         return out
 
 
+def _stencil_offsets(radii):
+    offsets = [(0, 0)]
+    for k in radii:
+        offsets += [(-k, 0), (k, 0), (0, -k), (0, k), (-k, -k), (-k, k), (k, -k), (k, k)]
+    return offsets
+
+
 def _node_matrix(frame, node, margin):
-    """(H, W, C) features of `node` over the core + margin: image features then context."""
-    parts = [frame.features(node[1], margin)] + frame.context(node, margin)
-    return np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
+    """(H, W, C) float32 features of `node` over the core + margin: image features, then the
+    stencil samples of every context map, written straight into one array."""
+    feats = frame.features(node[1], margin)
+    maps = frame.context_maps(node, margin)
+    offsets = _stencil_offsets(frame.spec.stencil_radii)
+    h, w, c = feats.shape
+    out = np.empty((h, w, c + len(maps) * len(offsets)), dtype=np.float32)
+    out[..., :c] = feats
+    channel = c
+    for prob, scale, cut in maps:
+        # `cut` >= the widest offset, so every sample lies inside the map: no padding needed
+        for dy, dx in offsets:
+            y0, x0 = cut + dy * scale, cut + dx * scale
+            out[..., channel] = prob[y0 : y0 + h, x0 : x0 + w]
+            channel += 1
+    return out
 
 
 def node_feature_names(spec, stage, level):
