@@ -9,7 +9,8 @@ into folds of contiguous sections for out-of-fold context), choose the threshold
 report pixel precision, recall, F1 and Jaccard on sections 16-19. The images are block-averaged
 2x in-plane first (9.2 nm pixels; mitochondria stay tens of pixels across), masks by majority.
 
-Configurations: 1x0 (one stage, no levels: plain pixel classification), 1x2, 2x2, 3x2.
+Configurations: 1x0 (one stage, no levels: plain pixel classification), 1x2, 2x2, 3x2, and
+2x1, 3x1 (one coarser level only).
 
 Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--classifier KIND]
 """
@@ -30,7 +31,7 @@ from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_stack, pred
 from tessera.pyramid import block_mean  # noqa: E402
 
 DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
-CONFIGS = {"1x0": (1, 0), "1x2": (1, 2), "2x2": (2, 2), "3x2": (3, 2)}
+CONFIGS = {"1x0": (1, 0), "1x2": (1, 2), "2x2": (2, 2), "3x2": (3, 2), "2x1": (2, 1), "3x1": (3, 1)}
 
 
 def load(factor=2):

@@ -89,7 +89,7 @@ class CascadeSpec:
     levels: int = 2
     sigmas: tuple = DEFAULT_SIGMAS
     coarse_sigmas: tuple = (0.7, 1.6, 3.5)
-    stencil_radii: tuple = (1, 2, 4, 8, 16)
+    stencil_radii: tuple = (1, 2, 4, 8)
     pooling: str = "mean"
     classifier: str = "mlp"
     classifier_options: dict = field(default_factory=dict)
