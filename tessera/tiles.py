@@ -1059,7 +1059,11 @@ def _check_label_dict(table, labels):
 
 def sample_tiles_job(labels_path, image_path, qc_table, out_dir, *, dataset, target, downsample, size, count, seed,
                      exclude_flagged=True):
-    """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target)."""
+    """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
+
+    The label stack is read whole: full label volumes exist for synthetic and open benchmark
+    data of modest size; real studies annotate tiles (the painted route) instead.
+    """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
     try:
