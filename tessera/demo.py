@@ -16,9 +16,6 @@ shot-noise-like noise, drift along z) and finally the section defects.
 
 import json
 import math
-import os
-import shutil
-import tempfile
 import zlib
 from pathlib import Path
 
@@ -27,6 +24,7 @@ import tifffile
 from PIL import Image
 from scipy import ndimage
 
+from .atomic import atomic_path
 from .errors import TesseraInputError
 from .spacing import normalize_spacing
 
@@ -337,10 +335,8 @@ def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(32, 512,
     tiles = _choose_tiles(_streams(seed)["tiles"], out, bad, dataset, tile_size, n_painted,
                           n_heldout)
 
-    parent = out_dir.parent
-    parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.writing-", dir=parent))
-    try:
+    with atomic_path(out_dir) as tmp:
+        tmp.mkdir()
         _write_tiff(tmp / "raw.tif", out["raw"], spacing)
         _write_tiff(tmp / "cells.tif", out["cells"], spacing)
         (tmp / "truth").mkdir()
@@ -375,10 +371,6 @@ def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(32, 512,
         }
         (tmp / "truth.json").write_text(json.dumps(truth, indent=2, sort_keys=True) + "\n",
                                         encoding="utf-8")
-        _swap_into_place(tmp, out_dir)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1048,14 +1040,3 @@ def _pick_centre(rng, mask, pool, size, chosen, n_candidates=64):
 def _write_tiff(path, array, spacing):
     tifffile.imwrite(path, array, photometric="minisblack", compression="zlib",
                      metadata={"axes": "ZYX", "spacing_nm": [float(s) for s in spacing]})
-
-
-def _swap_into_place(tmp, out_dir):
-    """Rename the finished temporary directory to `out_dir`, replacing an older one."""
-    old = None
-    if out_dir.exists() or out_dir.is_symlink():
-        old = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old-", dir=out_dir.parent))
-        os.replace(out_dir, old / "previous")
-    os.replace(tmp, out_dir)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
