@@ -1,4 +1,5 @@
-# tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> tiles -> cascade -> (later stages).
+# tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> tiles -> cascade -> sharded
+# prediction -> stitched probability map -> labelled objects -> (later stages).
 # Read the pipeline off the include list; each stage has rules/<stage>.smk,
 # scripts/<stage>.py and tessera/<stage>.py.
 
@@ -17,6 +18,8 @@ include: "rules/pyramid.smk"
 include: "rules/qc.smk"
 include: "rules/tiles.smk"
 include: "rules/train.smk"
+include: "rules/predict.smk"
+include: "rules/objects.smk"
 
 
 rule all:
@@ -32,5 +35,10 @@ rule all:
         ),
         expand(
             "results/study/{target}/tiles_predicted/scores.tsv",
+            target=config["targets"],
+        ),
+        expand(
+            "results/{dataset}/objects/{target}.tsv",
+            dataset=DATASETS.index,
             target=config["targets"],
         ),

@@ -185,3 +185,20 @@ def cascade_models(wildcards):
         wildcards.target, target_settings(wildcards)["cascade"]["stages"]
     )
     return [_model_path(wildcards.target, n) for n in nodes(spec)]
+
+
+wildcard_constraints:
+    job=r"\d+",
+
+
+def shard_outputs(wildcards):
+    return expand(
+        "results/{dataset}/predicted/{target}/shards/job{job}",
+        dataset=wildcards.dataset,
+        target=wildcards.target,
+        job=range(config["predict"]["shard_jobs"]),
+    )
+
+
+def target_objects(wildcards):
+    return target_settings(wildcards)["objects"]

@@ -90,7 +90,26 @@ def load_config(config, schema_path, *, source="config/config.yaml"):
     """
     if not isinstance(config, dict):
         raise TesseraInputError("expected a mapping of settings at the top level", source=source)
-    return validate(config, read_yaml(schema_path), source=source)
+    validate(config, read_yaml(schema_path), source=source)
+    _check_related_keys(config, source)
+    return config
+
+
+def _check_related_keys(config, source):
+    """Checks between keys that a JSON Schema cannot express."""
+    for name, target in (config.get("targets") or {}).items():
+        objects = target.get("objects") or {}
+        high, low = objects.get("high"), objects.get("low")
+        if high is not None and low is not None and low > high:
+            raise TesseraInputError(
+                f"key targets.{name}.objects: low ({low}) must not exceed high ({high})", source=source
+            )
+        smallest, largest = objects.get("min_volume_um3", 0), objects.get("max_volume_um3")
+        if largest is not None and smallest > largest:
+            raise TesseraInputError(
+                f"key targets.{name}.objects: min_volume_um3 ({smallest}) is larger than max_volume_um3 ({largest})",
+                source=source,
+            )
 
 
 def _parse_number(text, *, where):

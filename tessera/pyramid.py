@@ -63,11 +63,13 @@ def block_mean(image, factors):
 
 
 def _round_to(values, dtype):
+    if np.issubdtype(dtype, np.floating):
+        return values.astype(dtype)
     info = np.iinfo(dtype)
     return np.clip(np.rint(values), info.min, info.max).astype(dtype)
 
 
-def _link_or_copy_tree(src, dst):
+def link_tree(src, dst):
     """Hard-link every file of `src` into `dst` (copy where links are impossible).
 
     Level 0 of the pyramid is the ingested array itself; hard links make it part of the new
@@ -141,7 +143,7 @@ def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
         out.attrs.update(
             {"ome": multiscale_attrs(name=name, spacing=info["spacing"], factors=factors), "tessera": extra}
         )
-        _link_or_copy_tree(Path(image_path) / "0", tmp / "0")
+        link_tree(Path(image_path) / "0", tmp / "0")
         previous = zarr.open_array(store=str(tmp / "0"), mode="r")
         for level in range(1, levels + 1):
             shape = tuple(-(-s // k) for s, k in zip(previous.shape, step))

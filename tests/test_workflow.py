@@ -54,6 +54,10 @@ def test_demo_dry_run_plans_every_dataset(repo, tmp_path):
     sheet = pd.read_csv(repo / "config" / "datasets.tsv", sep="\t")
     for rule in ("demo_dataset", "ingest", "pyramid", "section_qc"):
         assert counts[rule] == len(sheet) == 6
+    config = yaml.safe_load((repo / "config" / "config.yaml").read_text())
+    pairs = len(sheet) * len(config["targets"])
+    assert counts["stitch"] == counts["objects"] == counts["shard_plan"] == pairs
+    assert counts["predict_shard"] == pairs * config["predict"]["shard_jobs"]
 
 
 TINY_SHEET = (
@@ -118,6 +122,12 @@ def test_tiny_study_produces_every_output(finished_study):
     scores = pd.read_csv(finished_study / "results/study/nuclei/tiles_predicted/scores.tsv", sep="\t")
     assert list(scores["role"]) == ["validation", "test"]
     assert scores["f1"].between(0, 1).all()
+    for dataset in ("w1", "c1"):
+        group, info = open_image(finished_study / f"results/{dataset}/predicted/nuclei/probability.ome.zarr")
+        assert info["levels"][0].shape == (12, 96, 96) and info["levels"][0].dtype == np.uint8
+        objects = pd.read_csv(finished_study / f"results/{dataset}/objects/nuclei.tsv", sep="\t")
+        labels = open_image(finished_study / f"results/{dataset}/objects/nuclei.ome.zarr")[0]["labels/nuclei/0"][:]
+        assert labels.max() == len(objects) and objects["voxels"].sum() == (labels > 0).sum()
 
 
 def test_qc_finds_the_rendered_defects(finished_study):
@@ -154,9 +164,26 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         config.write_text(yaml.safe_dump(tiny_config(stages=3)))
         result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         trained = re.findall(r"stage(\d)_level(\d)\.npz\n\s+log:", result.stdout)
-        planned = {line.split()[1] for line in result.stdout.splitlines() if line.startswith("rule ")}
+        # grouped jobs (shards) are printed indented under their group
+        planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
-        assert planned == {"train_node:", "predict_tiles:", "all:"}
+        downstream = {"predict_tiles:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "all:"}
+        assert planned == {"train_node:"} | downstream
+    finally:
+        config.write_text(original)
+
+
+def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path(__file__).resolve().parents[1]):
+    config = finished_study / "config" / "config.yaml"
+    original = config.read_text()
+    try:
+        changed = tiny_config()
+        changed["targets"]["nuclei"]["objects"] = {"min_volume_um3": 0.01}
+        config.write_text(yaml.safe_dump(changed))
+        result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
+        assert planned & {"objects", "all"} == {"objects", "all"}
+        assert not planned & {"stitch", "predict_shard", "shard_plan", "train_node", "pyramid"}
     finally:
         config.write_text(original)
 

@@ -1,0 +1,23 @@
+"""Snakemake adapter: plan the prediction blocks of one dataset and target."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.predict import plan_job
+
+run_job(
+    snakemake.log[0],
+    plan_job,
+    pyramid=snakemake.input.image,
+    model_paths=list(snakemake.input.models),
+    out_plan=snakemake.output.plan,
+    target=snakemake.wildcards.target,
+    downsample=snakemake.params.downsample,
+    block=snakemake.params.block,
+    shard_jobs=snakemake.params.shard_jobs,
+    max_halo=snakemake.params.max_halo,
+    dtype=snakemake.params.dtype,
+)

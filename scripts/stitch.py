@@ -1,0 +1,18 @@
+"""Snakemake adapter: verify the shard outputs and stitch the probability map."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.predict import stitch_job
+
+run_job(
+    snakemake.log[0],
+    stitch_job,
+    plan_path=snakemake.input.plan,
+    shard_dirs=list(snakemake.input.shards),
+    out_path=snakemake.output.image,
+    viewing_levels=snakemake.params.viewing_levels,
+)

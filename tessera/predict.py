@@ -1,0 +1,315 @@
+"""Sharded prediction of whole volumes and exact stitching into one probability map.
+
+A volume at a target's working level is cut into *blocks* (cores that tile the volume without
+overlap). Each block is predicted from a window that adds a halo of the cascade's receptive
+radius around its core, mirrored beyond the volume, so a core's probabilities depend on nothing
+outside its window. Block origins in y and x are multiples of 2^L (L = the cascade's levels), so
+every coarse level of a block lies on the same grid as for the whole volume: stitched cores then
+equal the prediction of the volume in one piece, whatever the block size.
+
+Work is shared among a fixed number of *shard jobs* per dataset and target (a contiguous run of
+blocks each), so the workflow's job count does not grow with the volume. Each job writes its
+blocks as separate ``.npy`` files with a manifest of shapes and SHA-256 checksums; the stitch
+step checks every block against the plan and the manifest before it copies it into the
+OME-Zarr probability map, which it alone writes (one writer per zarr chunk).
+"""
+
+import hashlib
+import json
+import logging
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from .atomic import atomic_path, write_text
+from .cascade.model import cascade_spec, load_node, mirrored_stack, predict_frame, receptive_radius
+from .errors import TesseraInputError
+from .omezarr import AXES, multiscale_attrs, open_image, working_level
+from .pyramid import downsample_level
+
+PLAN_FORMAT = 1
+DTYPES = ("uint8", "float16", "float32")
+_log = logging.getLogger(__name__)
+
+
+def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
+    """Cut a (Z, Y, X) volume into blocks and share them among `jobs` jobs.
+
+    Parameters
+    ----------
+    shape : (int, int, int)
+        Volume shape at the working level.
+    block : (int, int, int)
+        Core size per block, z y x. y and x are rounded up to multiples of `align`; blocks at
+        the far edges are cut by the volume.
+    halo : int
+        In-plane halo (pixels of the working level) each block is read with: the model's
+        receptive radius.
+    align : int
+        Block origins in y and x are multiples of this (2^L for an L-level cascade).
+    jobs : int
+        Number of shard jobs; each gets a contiguous run of blocks (possibly none).
+    max_halo : int, optional
+        Refuse a model whose halo is larger (it would make every block mostly halo).
+
+    Returns
+    -------
+    dict
+        ``shape``, ``block`` (as used), ``halo``, ``align``, ``blocks`` (list of
+        ``[z0, z1, y0, y1, x0, x1]``) and ``jobs`` (list of lists of block indices).
+
+    Examples
+    --------
+    >>> plan = plan_shards((3, 100, 60), block=(2, 64, 64), halo=16, align=4, jobs=2)
+    >>> plan["blocks"]
+    [[0, 2, 0, 64, 0, 60], [0, 2, 64, 100, 0, 60], [2, 3, 0, 64, 0, 60], [2, 3, 64, 100, 0, 60]]
+    >>> plan["jobs"]
+    [[0, 1], [2, 3]]
+    """
+    shape = tuple(int(s) for s in shape)
+    if len(shape) != 3 or min(shape) < 1:
+        raise TesseraInputError(f"volume shape must be 3 positive integers, got {shape}")
+    block = [int(b) for b in block]
+    if len(block) != 3 or min(block) < 1:
+        raise TesseraInputError(f"predict.block must be 3 positive integers (z, y, x), got {block}")
+    if not isinstance(jobs, int) or jobs < 1:
+        raise TesseraInputError(f"predict.shard_jobs must be an integer >= 1, got {jobs!r}")
+    if max_halo is not None and halo > max_halo:
+        raise TesseraInputError(
+            f"the model's receptive field needs a halo of {halo} px, more than predict.max_halo = {max_halo}; "
+            "use fewer levels, smaller sigmas or stencil radii, or raise predict.max_halo"
+        )
+    if min(block[1:]) < halo:
+        raise TesseraInputError(
+            f"predict.block {block} is smaller in y or x than the model's halo of {halo} px: every block would "
+            f"read more halo than core; use blocks of at least {halo} px (a few times more is efficient)"
+        )
+    block[1:] = [-(-b // align) * align for b in block[1:]]
+    blocks = []
+    for z0 in range(0, shape[0], block[0]):
+        for y0 in range(0, shape[1], block[1]):
+            for x0 in range(0, shape[2], block[2]):
+                blocks.append([z0, min(z0 + block[0], shape[0]), y0, min(y0 + block[1], shape[1]),
+                               x0, min(x0 + block[2], shape[2])])
+    n = len(blocks)
+    shares = [list(range(j * n // jobs, (j + 1) * n // jobs)) for j in range(jobs)]
+    return {"format": PLAN_FORMAT, "shape": list(shape), "block": block, "halo": int(halo), "align": int(align),
+            "blocks": blocks, "jobs": shares}
+
+
+def predict_block(models, volume, box, *, halo=None):
+    """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
+
+    Each section is read with a halo of the receptive radius (mirrored beyond the volume) and
+    predicted with :func:`tessera.cascade.model.predict_frame`; `volume` may be a zarr array.
+    """
+    spec = cascade_spec(models)
+    halo = receptive_radius(spec) if halo is None else halo
+    z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
+    out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
+    for z in range(z0, z1):
+        window = mirrored_stack(volume, z, spec.neighbours, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
+        out[z - z0] = predict_frame(models, window, (y1 - y0, x1 - x0))
+    return out
+
+
+def encode_probability(prob, dtype):
+    """Store probabilities as uint8 (round(255 p)), float16 or float32.
+
+    Examples
+    --------
+    >>> encode_probability(np.array([0.0, 0.5, 1.0], np.float32), "uint8")
+    array([  0, 128, 255], dtype=uint8)
+    """
+    if dtype not in DTYPES:
+        raise TesseraInputError(f"predict.dtype must be one of {', '.join(DTYPES)}, got {dtype!r}")
+    prob = np.asarray(prob, dtype=np.float32)
+    if dtype == "uint8":
+        return np.rint(np.clip(prob, 0.0, 1.0) * 255.0).astype(np.uint8)
+    return prob.astype(dtype)
+
+
+def probability_scale(dtype):
+    """Divide stored values by this to get probabilities (255 for uint8, else 1)."""
+    return 255.0 if dtype == "uint8" else 1.0
+
+
+def load_cascade(model_paths, *, target):
+    """Load every node model of a cascade (each checked against `target`)."""
+    models = {}
+    for path in model_paths:
+        model = load_node(path, target=target)
+        models[model.node] = model
+    return models
+
+
+def _sha256(path):
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def read_plan(path):
+    """Read a shard plan written by :func:`plan_job`, checking its format."""
+    try:
+        plan = json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise TesseraInputError("shard plan not found (rule shard_plan writes it)", source=path) from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise TesseraInputError(f"shard plan is damaged: {exc}", source=path) from None
+    if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT:
+        raise TesseraInputError(f"not a shard plan of format {PLAN_FORMAT}", source=path)
+    return plan
+
+
+def _working_array(pyramid, downsample):
+    _, info = open_image(pyramid)
+    level = working_level(info["factors"], downsample, source=pyramid)
+    spacing = tuple(s * f for s, f in zip(info["spacing"], info["factors"][level]))
+    return info["levels"][level], spacing, info["factors"][level]
+
+
+def plan_job(pyramid, model_paths, out_plan, *, target, downsample, block, shard_jobs, max_halo, dtype):
+    """Write the shard plan of one dataset and target (a recorded artifact)."""
+    models = load_cascade(model_paths, target=target)
+    spec = cascade_spec(models)
+    array, spacing, factors = _working_array(pyramid, downsample)
+    plan = plan_shards(array.shape, block=block, halo=receptive_radius(spec), align=spec.align,
+                       jobs=shard_jobs, max_halo=max_halo)
+    encode_probability(np.zeros(1, np.float32), dtype)  # validates the dtype before any job runs
+    plan.update({"target": target, "downsample": downsample, "spacing": list(spacing),
+                 "factors": list(factors), "dtype": dtype,
+                 "models": {Path(p).name: _sha256(p) for p in sorted(model_paths)}})
+    write_text(out_plan, json.dumps(plan, indent=1) + "\n")
+    return {"blocks": len(plan["blocks"]), "halo": plan["halo"], "block": plan["block"]}
+
+
+def _block_name(index):
+    return f"block_{index:07d}.npy"
+
+
+def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
+    """Predict the blocks of shard job `job` and write them with a checksummed manifest.
+
+    The output folder holds one ``.npy`` per block and ``manifest.json``; it appears only when
+    every block is written (atomic rename), so a killed job leaves no output.
+    """
+    plan = read_plan(plan_path)
+    if not 0 <= job < len(plan["jobs"]):
+        raise TesseraInputError(f"job {job} is not in the plan (it has {len(plan['jobs'])} jobs)", source=plan_path)
+    models = load_cascade(model_paths, target=target)
+    spec = cascade_spec(models)
+    halo = receptive_radius(spec)
+    if halo != plan["halo"] or spec.align != plan["align"]:
+        raise TesseraInputError("the plan was made for another cascade (halo or alignment differ); rerun shard_plan",
+                                source=plan_path)
+    array, _, _ = _working_array(pyramid, plan["downsample"])
+    if list(array.shape) != plan["shape"]:
+        raise TesseraInputError(f"the plan is for a volume of shape {plan['shape']}, the image has {list(array.shape)}",
+                                source=plan_path)
+    entries = []
+    with atomic_path(out_dir) as tmp:
+        tmp.mkdir()
+        for index in plan["jobs"][job]:
+            box = plan["blocks"][index]
+            values = encode_probability(predict_block(models, array, box, halo=halo), plan["dtype"])
+            path = tmp / _block_name(index)
+            np.save(path, values, allow_pickle=False)
+            entries.append({"block": index, "file": path.name, "shape": list(values.shape),
+                            "dtype": str(values.dtype), "sha256": _sha256(path)})
+            _log.info("block %d %s done", index, box)
+        manifest = {"format": PLAN_FORMAT, "job": job, "blocks": entries}
+        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1) + "\n", encoding="utf-8")
+    return {"job": job, "blocks": len(entries)}
+
+
+def verified_blocks(plan, shard_dirs):
+    """Yield (box, array) for every block of the plan, each checked against its manifest.
+
+    Raises
+    ------
+    TesseraInputError
+        A shard folder, manifest or block file that is missing, or a block whose checksum,
+        shape or dtype is not what the plan and manifest say; the message names the file and
+        the rule that rebuilds it.
+    """
+    if len(shard_dirs) != len(plan["jobs"]):
+        raise TesseraInputError(f"expected {len(plan['jobs'])} shard outputs, got {len(shard_dirs)}")
+    manifests = []
+    for job, folder in enumerate(shard_dirs):
+        path = Path(folder) / "manifest.json"
+        hint = f"rerun rule predict_shard for job {job}"
+        try:
+            manifest = json.loads(path.read_text(encoding="utf-8"))
+            by_block = {e["block"]: e for e in manifest["blocks"]}
+        except FileNotFoundError:
+            raise TesseraInputError(f"shard manifest missing; {hint}", source=path) from None
+        except (json.JSONDecodeError, UnicodeDecodeError, KeyError, TypeError) as exc:
+            raise TesseraInputError(f"shard manifest damaged ({exc}); {hint}", source=path) from None
+        if manifest.get("job") != job or sorted(by_block) != sorted(plan["jobs"][job]):
+            raise TesseraInputError(f"shard output is not job {job} of this plan; {hint}", source=path)
+        manifests.append((Path(folder), by_block, hint))
+    for folder, by_block, hint in manifests:
+        for index in sorted(by_block):
+            entry = by_block[index]
+            box = plan["blocks"][index]
+            path = folder / entry["file"]
+            expected = [box[1] - box[0], box[3] - box[2], box[5] - box[4]]
+            if not path.is_file():
+                raise TesseraInputError(f"block file missing; {hint}", source=path)
+            if _sha256(path) != entry["sha256"]:
+                raise TesseraInputError(f"block file does not match its recorded checksum (truncated or altered); {hint}",
+                                        source=path)
+            try:
+                values = np.load(path, allow_pickle=False)
+            except (ValueError, OSError, EOFError) as exc:
+                raise TesseraInputError(f"block file unreadable ({exc}); {hint}", source=path) from None
+            if list(values.shape) != expected or str(values.dtype) != plan["dtype"]:
+                raise TesseraInputError(
+                    f"block holds {values.dtype} {list(values.shape)}, the plan expects {plan['dtype']} {expected}; {hint}",
+                    source=path,
+                )
+            yield box, values
+
+
+def stitch_job(plan_path, shard_dirs, out_path, *, viewing_levels=2, chunks=(1, 512, 512)):
+    """Assemble the shard outputs into a multiscale OME-Zarr probability map.
+
+    Level 0 has the working level's shape and spacing; `viewing_levels` 2x block-mean levels
+    follow for viewers. The store is written under a temporary name and appears only when every
+    block has been verified and copied.
+    """
+    plan = read_plan(plan_path)
+    shape = tuple(plan["shape"])
+    factors = [(1, 1, 1)] + [(1, 2**k, 2**k) for k in range(1, viewing_levels + 1)]
+    with atomic_path(out_path) as tmp:
+        root = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
+        root.attrs.update({
+            "ome": multiscale_attrs(name=f"{plan['target']} probability", spacing=plan["spacing"], factors=factors),
+            "tessera": {"probability": {
+                "target": plan["target"], "dtype": plan["dtype"], "scale": probability_scale(plan["dtype"]),
+                "meaning": "probability of the target = stored value / scale",
+                "working_level_downsample": plan["downsample"], "z_factor": plan["factors"][0], "halo": plan["halo"],
+                "block": plan["block"], "models": plan["models"],
+            }},
+        })
+        level0 = root.create_array(name="0", shape=shape, dtype=plan["dtype"],
+                                   chunks=tuple(min(c, s) for c, s in zip(chunks, shape)), dimension_names=AXES)
+        written = 0
+        for box, values in verified_blocks(plan, shard_dirs):
+            level0[box[0]:box[1], box[2]:box[3], box[4]:box[5]] = values
+            written += values.size
+        if written != int(np.prod(shape)):
+            raise TesseraInputError(f"the shards cover {written} of {int(np.prod(shape))} voxels", source=plan_path)
+        previous = level0
+        for k in range(1, viewing_levels + 1):
+            level_shape = tuple(-(-s // f) for s, f in zip(shape, factors[k]))
+            current = root.create_array(name=str(k), shape=level_shape, dtype=plan["dtype"],
+                                        chunks=tuple(min(c, s) for c, s in zip(chunks, level_shape)),
+                                        dimension_names=AXES)
+            downsample_level(previous, current, factors=(1, 2, 2))
+            previous = current
+    return {"shape": list(shape), "dtype": plan["dtype"], "blocks": len(plan["blocks"])}

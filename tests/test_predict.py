@@ -1,0 +1,181 @@
+"""Sharded prediction: the plan, exact stitching, and refusal of damaged or missing shard outputs."""
+
+import json
+
+import numpy as np
+import pytest
+import zarr
+from ome_zarr_models.v05 import Image
+from scipy import ndimage
+
+from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, prepare_tile, receptive_radius, save_node
+from tessera.cascade.model import predict_section
+from tessera.errors import TesseraInputError
+from tessera.omezarr import AXES, multiscale_attrs, open_image
+from tessera import predict
+from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
+
+SPEC = dict(stages=2, levels=1, sigmas=(1.0, 2.0), coarse_sigmas=(1.0,), stencil_radii=(1, 2), classifier="mlp",
+            samples_per_tile=400, folds=2, seed=1, neighbours=1)
+
+
+def blobs(seed, shape):
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[: shape[0], : shape[1]]
+    truth = np.zeros(shape, bool)
+    for _ in range(5):
+        cy, cx, r = rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(4, 8)
+        truth |= (yy - cy) ** 2 + (xx - cx) ** 2 < r**2
+    image = 150 + ndimage.gaussian_filter(rng.normal(size=shape), 2) * 40 - 70 * truth + rng.normal(0, 12, shape)
+    return np.clip(image, 0, 255).astype(np.uint8), truth.astype(np.uint8)
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    """A trained 2 x 1 cascade saved as node files, and a 5-section image stored as OME-Zarr."""
+    root = tmp_path_factory.mktemp("predict")
+    spec = CascadeSpec(**SPEC)
+    radius = receptive_radius(spec)
+    tiles = []
+    for i in range(4):
+        image, truth = blobs(i, (64, 64))
+        stack = np.stack([image] * 3)
+        window = np.stack([mirrored_window(stack, k, -radius, 64 + radius, -radius, 64 + radius) for k in range(3)])
+        tiles.append(prepare_tile(spec, f"t{i}", window, truth, fold=i % 2))
+    models = fit_cascade(spec, tiles, target="blobs")
+    paths = []
+    for node, model in models.items():
+        paths.append(root / f"stage{node[0]}_level{node[1]}.npz")
+        save_node(model, paths[-1])
+    volume = np.stack([blobs(10 + z, (70, 90))[0] for z in range(5)])
+    image = root / "raw.ome.zarr"
+    group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
+    group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
+    group.create_array(name="0", data=volume, chunks=(1, 32, 32), dimension_names=AXES)
+    return {"root": root, "models": models, "paths": paths, "image": image, "volume": volume, "spec": spec}
+
+
+def whole_volume(study):
+    return np.stack([predict_section(study["models"], study["volume"], z) for z in range(5)])
+
+
+def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512):
+    out = study["root"] / name
+    plan = out / "plan.json"
+    plan_job(study["image"], study["paths"], plan, target="blobs", downsample=1, block=block, shard_jobs=jobs,
+             max_halo=max_halo, dtype=dtype)
+    shards = [out / f"job{j}" for j in range(jobs)]
+    for j, folder in enumerate(shards):
+        predict_shard_job(plan, study["image"], study["paths"], folder, job=j, target="blobs")
+    stitch_job(plan, shards, out / "probability.ome.zarr", viewing_levels=1, chunks=(1, 32, 32))
+    return out
+
+
+def test_plan_tiles_the_volume_once_on_the_level_grid():
+    plan = plan_shards((7, 300, 250), block=(3, 100, 90), halo=40, align=8, jobs=4)
+    assert plan["block"] == [3, 104, 96]  # rounded up to the 2^L grid
+    cover = np.zeros((7, 300, 250), int)
+    for z0, z1, y0, y1, x0, x1 in plan["blocks"]:
+        assert y0 % 8 == 0 and x0 % 8 == 0
+        cover[z0:z1, y0:y1, x0:x1] += 1
+    assert (cover == 1).all()
+    shared = sorted(i for job in plan["jobs"] for i in job)
+    assert shared == list(range(len(plan["blocks"]))) and len(plan["jobs"]) == 4
+
+
+@pytest.mark.parametrize(
+    "kwargs, message",
+    [
+        (dict(block=(1, 32, 32), halo=40), "smaller in y or x than the model's halo of 40 px"),
+        (dict(block=(1, 512, 512), halo=600, max_halo=512), "halo of 600 px, more than predict.max_halo = 512"),
+        (dict(block=(1, 64, 64), halo=8, jobs=0), "predict.shard_jobs must be an integer >= 1"),
+        (dict(block=(0, 64, 64), halo=8), "predict.block must be 3 positive integers"),
+    ],
+)
+def test_bad_plans_are_refused(kwargs, message):
+    kwargs = {"align": 4, "jobs": 2, **kwargs}
+    with pytest.raises(TesseraInputError, match=message.replace(".", r"\.")):
+        plan_shards((4, 128, 128), **kwargs)
+
+
+def test_stitched_map_equals_the_whole_volume_in_one_piece(study):
+    # The property that makes results independent of how the work was cut up: float output
+    # within 1e-6 of predicting each section whole, for two block sizes and job counts.
+    whole = whole_volume(study)
+    halo = receptive_radius(study["spec"])
+    maps = []
+    for name, block, jobs in (("a", (2, halo, halo), 3), ("b", (5, 2 * halo, 2 * halo), 2)):
+        out = run(study, f"float_{name}", block=block, jobs=jobs)
+        _, info = open_image(out / "probability.ome.zarr")
+        maps.append(info["levels"][0][:])
+        assert info["spacing"] == (40.0, 8.0, 8.0)
+    assert np.abs(maps[0] - whole).max() <= 1e-6
+    assert np.abs(maps[1] - whole).max() <= 1e-6
+
+
+def test_uint8_map_is_byte_identical_and_valid_ngff(study):
+    whole = encode_probability(whole_volume(study), "uint8")
+    out = run(study, "uint8", block=(3, 64, 64), jobs=2, dtype="uint8")
+    group, info = open_image(out / "probability.ome.zarr")
+    assert info["levels"][0][:].tobytes() == whole.tobytes()
+    assert info["extra"]["probability"]["scale"] == 255.0
+    assert [a.shape for a in info["levels"]] == [(5, 70, 90), (5, 35, 45)]
+    Image.from_zarr(group)  # NGFF 0.5 reference implementation (ome-zarr-models)
+
+
+def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study, tmp_path):
+    out = run(study, "damage", block=(5, 64, 64), jobs=2, dtype="uint8")
+    plan = out / "plan.json"
+    shards = [out / "job0", out / "job1"]
+    target = tmp_path / "probability.ome.zarr"
+    block_file = sorted(shards[1].glob("block_*.npy"))[0]
+    good = block_file.read_bytes()
+
+    block_file.write_bytes(good[:-10])  # truncated
+    with pytest.raises(TesseraInputError, match=f"{block_file.name}.*recorded checksum.*predict_shard for job 1"):
+        stitch_job(plan, shards, target)
+    assert not target.exists() and not list(tmp_path.iterdir())
+
+    wrong = np.zeros((1, 2, 3), np.uint8)  # wrong shape, checksum updated to match
+    np.save(block_file, wrong)
+    manifest = json.loads((shards[1] / "manifest.json").read_text())
+    for entry in manifest["blocks"]:
+        if entry["file"] == block_file.name:
+            entry["sha256"] = predict._sha256(block_file)
+    (shards[1] / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(TesseraInputError, match=r"the plan expects uint8 \["):
+        stitch_job(plan, shards, target)
+
+    (shards[0] / "manifest.json").unlink()
+    with pytest.raises(TesseraInputError, match="manifest.json: shard manifest missing; rerun rule predict_shard for job 0"):
+        stitch_job(plan, shards, target)
+    assert not target.exists()
+
+
+def test_killed_shard_job_leaves_no_output_and_reruns_identically(study, monkeypatch):
+    out = run(study, "kill", block=(5, 64, 64), jobs=1, dtype="uint8")
+    reference = {p.name: p.read_bytes() for p in (out / "job0").iterdir()}
+    calls = []
+    original = predict.predict_block
+
+    def dies_after_first_block(*args, **kwargs):
+        if calls:
+            raise KeyboardInterrupt  # stands in for a kill between blocks
+        calls.append(1)
+        return original(*args, **kwargs)
+
+    folder = out / "again"
+    monkeypatch.setattr(predict, "predict_block", dies_after_first_block)
+    with pytest.raises(KeyboardInterrupt):
+        predict_shard_job(out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs")
+    assert not folder.exists() and not list(out.glob("again*"))
+    monkeypatch.setattr(predict, "predict_block", original)
+    predict_shard_job(out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs")
+    assert {p.name: p.read_bytes() for p in folder.iterdir()} == reference
+
+
+def test_plan_refuses_a_model_for_another_target(study, tmp_path):
+    with pytest.raises(TesseraInputError, match="model is for target 'blobs', expected 'nuclei'"):
+        plan_job(study["image"], study["paths"], tmp_path / "plan.json", target="nuclei", downsample=1,
+                 block=(1, 512, 512), shard_jobs=1, max_halo=512, dtype="uint8")
+    assert not (tmp_path / "plan.json").exists()
