@@ -300,6 +300,7 @@ class BinaryClassifier:
         merged = {**self._defaults, **options}
         self.options = self._check_options(merged)
         self.n_features_ = None
+        self._folded = None  # first layer with the standardisation folded in (networks)
 
     # -- to be provided by each kind --------------------------------------------------------
     def _check_options(self, options):
@@ -345,6 +346,7 @@ class BinaryClassifier:
         X = _as_float32_finite(_check_features_shape(X))
         y = _check_labels(y, X.shape[0])
         w = _check_weights(sample_weight, y)
+        self._folded = None
         self._fit(X, y, w)
         self.n_features_ = X.shape[1]
         return self
@@ -416,6 +418,17 @@ def _standardisation(X):
 
 def _standardise(X, mean, scale):
     return (X - mean) / scale
+
+
+def _folded_first_layer(W, b, mean, scale):
+    """First-layer weights and bias that apply to raw features what (W, b) applies to
+    standardised ones: ((X - mean) / scale) W + b = X (W / scale) + (b - (mean / scale) W).
+
+    Saves standardising every predicted row (a full pass over the feature matrix).
+    """
+    W64 = W.astype(np.float64) / scale.astype(np.float64)[:, None]
+    b64 = b.astype(np.float64) - mean.astype(np.float64) @ W64
+    return W64.astype(np.float32), b64.astype(np.float32)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -592,9 +605,9 @@ class LDNNClassifier(BinaryClassifier):
                     p -= lr * mhat / (np.sqrt(vhat) + eps_adam)
 
     def _predict_chunk(self, X):
-        Xs = _standardise(X, self.mean_, self.scale_)
-        f, *_ = _ldnn_forward(Xs, self.weights_, self.bias_, self.options["n_groups"],
-                              self.options["n_per_group"])
+        if self._folded is None:
+            self._folded = _folded_first_layer(self.weights_, self.bias_, self.mean_, self.scale_)
+        f, *_ = _ldnn_forward(X, *self._folded, self.options["n_groups"], self.options["n_per_group"])
         return f.astype(np.float32)
 
     def _arrays(self):
@@ -693,9 +706,12 @@ class MLPBinaryClassifier(BinaryClassifier):
         self.intercepts_ = [c.astype(np.float32) for c in model.intercepts_]
 
     def _predict_chunk(self, X):
-        h = _standardise(X, self.mean_, self.scale_)
-        last = len(self.coefs_) - 1
-        for layer, (W, b) in enumerate(zip(self.coefs_, self.intercepts_)):
+        if self._folded is None:
+            self._folded = _folded_first_layer(self.coefs_[0], self.intercepts_[0], self.mean_, self.scale_)
+        layers = [self._folded, *zip(self.coefs_[1:], self.intercepts_[1:])]
+        h = X
+        last = len(layers) - 1
+        for layer, (W, b) in enumerate(layers):
             h = h @ W + b
             if layer < last:
                 np.maximum(h, 0, out=h)
