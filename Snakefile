@@ -1,5 +1,5 @@
 # tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> tiles -> cascade -> sharded
-# prediction -> stitched probability map -> labelled objects -> (later stages).
+# prediction -> stitched probability map -> labelled objects -> morphometry -> statistics.
 # Read the pipeline off the include list; each stage has rules/<stage>.smk,
 # scripts/<stage>.py and tessera/<stage>.py.
 
@@ -20,6 +20,8 @@ include: "rules/tiles.smk"
 include: "rules/train.smk"
 include: "rules/predict.smk"
 include: "rules/objects.smk"
+include: "rules/morphometry.smk"
+include: "rules/statistics.smk"
 
 
 rule all:
@@ -38,7 +40,6 @@ rule all:
             target=config["targets"],
         ),
         expand(
-            "results/{dataset}/objects/{target}.tsv",
-            dataset=DATASETS.index,
+            "results/study/{target}/statistics/comparison.tsv",
             target=config["targets"],
         ),

@@ -202,3 +202,17 @@ def shard_outputs(wildcards):
 
 def target_objects(wildcards):
     return target_settings(wildcards)["objects"]
+
+
+def dataset_roi(wildcards):
+    roi = DATASETS.loc[wildcards.dataset, "roi_mask"]
+    return [] if roi is None else [roi]
+
+
+def dataset_groups(wildcards):
+    """Condition and animal of every dataset, in sheet order (the first condition is the
+    default reference)."""
+    return {
+        d: {"condition": row["condition"], "subject": row["subject"]}
+        for d, row in DATASETS.iterrows()
+    }

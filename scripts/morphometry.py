@@ -1,0 +1,20 @@
+"""Snakemake adapter: measure the objects of one dataset and target."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.morphometry import morphometry_job
+
+run_job(
+    snakemake.log[0],
+    morphometry_job,
+    objects_image=snakemake.input.image,
+    objects_table=snakemake.input.table,
+    out_objects=snakemake.output.objects,
+    out_regions=snakemake.output.regions,
+    target=snakemake.wildcards.target,
+    roi_mask=snakemake.input.roi[0] if snakemake.input.roi else None,
+)

@@ -1,0 +1,26 @@
+"""Snakemake adapter: per-animal summaries and condition comparisons of one target."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.stats import statistics_job
+
+datasets = snakemake.params.datasets
+run_job(
+    snakemake.log[0],
+    statistics_job,
+    object_tables=dict(zip(datasets, snakemake.input.objects)),
+    region_tables=dict(zip(datasets, snakemake.input.regions)),
+    datasets=datasets,
+    scores=snakemake.input.scores,
+    out_animals=snakemake.output.animals,
+    out_comparison=snakemake.output.comparison,
+    out_plot=snakemake.output.plot,
+    target=snakemake.wildcards.target,
+    measures=snakemake.params.statistics["measures"],
+    reference=snakemake.params.statistics["reference_condition"],
+    confidence=snakemake.params.statistics["confidence"],
+)
