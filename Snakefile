@@ -21,6 +21,7 @@ include: "rules/train.smk"
 include: "rules/predict.smk"
 include: "rules/objects.smk"
 include: "rules/morphometry.smk"
+include: "rules/meshes.smk"
 include: "rules/statistics.smk"
 
 
@@ -41,5 +42,10 @@ rule all:
         ),
         expand(
             "results/study/{target}/statistics/comparison.tsv",
+            target=config["targets"],
+        ),
+        expand(
+            "results/{dataset}/meshes/{target}.png",
+            dataset=DATASETS.index,
             target=config["targets"],
         ),

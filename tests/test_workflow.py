@@ -58,6 +58,7 @@ def test_demo_dry_run_plans_every_dataset(repo, tmp_path):
     pairs = len(sheet) * len(config["targets"])
     assert counts["stitch"] == counts["objects"] == counts["shard_plan"] == pairs
     assert counts["predict_shard"] == pairs * config["predict"]["shard_jobs"]
+    assert counts["morphometry"] == pairs and counts["statistics"] == len(config["targets"])
 
 
 TINY_SHEET = (
@@ -128,6 +129,14 @@ def test_tiny_study_produces_every_output(finished_study):
         objects = pd.read_csv(finished_study / f"results/{dataset}/objects/nuclei.tsv", sep="\t")
         labels = open_image(finished_study / f"results/{dataset}/objects/nuclei.ome.zarr")[0]["labels/nuclei/0"][:]
         assert labels.max() == len(objects) and objects["voxels"].sum() == (labels > 0).sum()
+        measured = pd.read_csv(finished_study / f"results/{dataset}/morphometry/nuclei_objects.tsv", sep="\t")
+        assert list(measured["id"]) == list(objects["id"]) and "sphericity" in measured.columns
+    comparison = pd.read_csv(finished_study / "results/study/nuclei/statistics/comparison.tsv", sep="\t",
+                             keep_default_na=False)
+    # one animal per condition in this tiny study: a warning, not a failure
+    assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
+    assert comparison["warning"].str.contains("only 1 animal").all()
+    assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
 
 
 def test_qc_finds_the_rendered_defects(finished_study):
@@ -167,7 +176,8 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         # grouped jobs (shards) are printed indented under their group
         planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
-        downstream = {"predict_tiles:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "all:"}
+        downstream = {"predict_tiles:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
+                      "statistics:", "all:"}
         assert planned == {"train_node:"} | downstream
     finally:
         config.write_text(original)
@@ -182,7 +192,7 @@ def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path
         config.write_text(yaml.safe_dump(changed))
         result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
-        assert planned & {"objects", "all"} == {"objects", "all"}
+        assert planned >= {"objects", "morphometry", "statistics", "all"}
         assert not planned & {"stitch", "predict_shard", "shard_plan", "train_node", "pyramid"}
     finally:
         config.write_text(original)
