@@ -23,6 +23,7 @@ include: "rules/objects.smk"
 include: "rules/morphometry.smk"
 include: "rules/meshes.smk"
 include: "rules/statistics.smk"
+include: "rules/methods.smk"
 
 
 rule all:
@@ -44,6 +45,7 @@ rule all:
             "results/study/{target}/statistics/comparison.tsv",
             target=config["targets"],
         ),
+        "results/study/methods.md",
         expand(
             "results/{dataset}/meshes/{target}.png",
             dataset=DATASETS.index,

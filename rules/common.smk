@@ -216,3 +216,9 @@ def dataset_groups(wildcards):
         d: {"condition": row["condition"], "subject": row["subject"]}
         for d, row in DATASETS.iterrows()
     }
+
+
+def dataset_inputs(wildcards):
+    """The files a dataset's results rest on: the stack and the optional ROI mask."""
+    row = DATASETS.loc[wildcards.dataset]
+    return [p for p in (row["path"], row["roi_mask"]) if p]

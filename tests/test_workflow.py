@@ -137,6 +137,9 @@ def test_tiny_study_produces_every_output(finished_study):
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert comparison["warning"].str.contains("only 1 animal").all()
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
+    methods = (finished_study / "results/study/methods.md").read_text()
+    test_f1 = scores.loc[scores["role"] == "test", "f1"].iloc[0]
+    assert f"F1 {test_f1:.3f}" in methods and "demo/data/w1/raw.tif" in methods
 
 
 def test_qc_finds_the_rendered_defects(finished_study):
@@ -177,7 +180,7 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
         downstream = {"predict_tiles:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
-                      "statistics:", "all:"}
+                      "meshes:", "statistics:", "methods:", "all:"}
         assert planned == {"train_node:"} | downstream
     finally:
         config.write_text(original)
@@ -192,7 +195,7 @@ def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path
         config.write_text(yaml.safe_dump(changed))
         result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
-        assert planned >= {"objects", "morphometry", "statistics", "all"}
+        assert planned >= {"objects", "morphometry", "statistics", "meshes", "methods", "all"}
         assert not planned & {"stitch", "predict_shard", "shard_plan", "train_node", "pyramid"}
     finally:
         config.write_text(original)

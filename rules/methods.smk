@@ -1,0 +1,60 @@
+# Audit trail: checksums of every input file, and a methods paragraph written from the run.
+
+
+rule checksum_inputs:
+    input:
+        dataset_inputs,
+    output:
+        "results/{dataset}/audit/inputs.sha256",
+    log:
+        "logs/checksum_inputs/{dataset}.log",
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(500),
+        runtime=scaled_by_attempt(120),
+    params:
+        code=stage_code("methods"),
+    script:
+        "../scripts/checksum_inputs.py"
+
+
+rule methods:
+    input:
+        scores=expand(
+            "results/study/{target}/tiles_predicted/scores.tsv",
+            target=config["targets"],
+        ),
+        comparisons=expand(
+            "results/study/{target}/statistics/comparison.tsv",
+            target=config["targets"],
+        ),
+        objects=expand(
+            "results/{dataset}/objects/{target}.json",
+            target=config["targets"],
+            dataset=DATASETS.index,
+        ),
+        checksums=expand(
+            "results/{dataset}/audit/inputs.sha256", dataset=DATASETS.index
+        ),
+        qc=expand("results/{dataset}/qc/sections.tsv", dataset=DATASETS.index),
+    output:
+        report(
+            "results/study/methods.md",
+            caption="../report/methods.rst",
+            category="Methods",
+        ),
+    log:
+        "logs/methods/study.log",
+    conda:
+        "../envs/tessera.yaml"
+    params:
+        sections={
+            k: config[k] for k in ("ingest", "pyramid", "qc", "statistics", "targets")
+        },
+        datasets=dataset_groups,
+        targets=list(config["targets"]),
+        dataset_ids=list(DATASETS.index),
+        code=stage_code("methods"),
+    script:
+        "../scripts/methods.py"

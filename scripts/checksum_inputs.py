@@ -1,0 +1,11 @@
+"""Snakemake adapter: SHA-256 of one dataset's input files."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.methods import checksum_job
+
+run_job(snakemake.log[0], checksum_job, paths=list(snakemake.input), out_path=snakemake.output[0])

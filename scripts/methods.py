@@ -1,0 +1,24 @@
+"""Snakemake adapter: the methods paragraph of the study."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.methods import methods_job
+
+targets, datasets = snakemake.params.targets, snakemake.params.dataset_ids
+objects = list(snakemake.input.objects)  # ordered target-major by expand()
+run_job(
+    snakemake.log[0],
+    methods_job,
+    config_sections=snakemake.params.sections,
+    sheet_rows=snakemake.params.datasets,
+    scores=dict(zip(targets, snakemake.input.scores)),
+    object_settings={t: objects[i * len(datasets) : (i + 1) * len(datasets)] for i, t in enumerate(targets)},
+    comparisons=dict(zip(targets, snakemake.input.comparisons)),
+    checksums=list(snakemake.input.checksums),
+    qc_tables=list(snakemake.input.qc),
+    out_path=snakemake.output[0],
+)
