@@ -18,6 +18,7 @@ include: "rules/pyramid.smk"
 include: "rules/qc.smk"
 include: "rules/tiles.smk"
 include: "rules/train.smk"
+include: "rules/evaluate.smk"
 include: "rules/predict.smk"
 include: "rules/objects.smk"
 include: "rules/morphometry.smk"
@@ -38,7 +39,7 @@ rule all:
             dataset=DATASETS.index,
         ),
         expand(
-            "results/study/{target}/tiles_predicted/scores.tsv",
+            "results/study/{target}/evaluation/summary.tsv",
             target=config["targets"],
         ),
         expand(

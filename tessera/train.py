@@ -61,13 +61,15 @@ def assign_folds(tiles, folds, seed):
     return out
 
 
-def _window(level_array, row, halo, neighbours):
+def tile_window(level_array, row, halo, neighbours):
+    """A tile's image (sections z ± neighbours) with `halo` pixels around it, mirrored beyond the volume."""
     z, y0, x0 = int(row["z"]), int(row["y0"]), int(row["x0"])
     h, w = int(row["height"]), int(row["width"])
     return mirrored_stack(level_array, z, neighbours, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
 
 
-def _level_arrays(pyramids, registry, *, downsample):
+def level_arrays(pyramids, registry, *, downsample):
+    """Dataset id → the working-level array of every dataset the registry names."""
     arrays = {}
     for dataset in sorted(set(registry["dataset"])):
         if dataset not in pyramids:
@@ -86,7 +88,7 @@ def _training_tiles(spec, registry, labels, arrays, *, final):
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():
-        image = _window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
         tiles.append(prepare_tile(spec, row["tile_id"], image, labels[row["tile_id"]], fold=folds[row["tile_id"]], final=final))
     return tiles
 
@@ -113,7 +115,7 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
     spec = CascadeSpec.from_dict({**cascade, "stages": stage})
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
-    arrays = _level_arrays(pyramids, registry, downsample=downsample)
+    arrays = level_arrays(pyramids, registry, downsample=downsample)
     models = {}
     for path in upstream:
         model = load_node(path, target=target, spec=spec)  # refuses models of other settings
@@ -141,12 +143,12 @@ def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out
         model = load_node(path, target=target)
         models[model.node] = model
     spec = cascade_spec(models)
-    arrays = _level_arrays(pyramids, registry, downsample=downsample)
+    arrays = level_arrays(pyramids, registry, downsample=downsample)
     halo = receptive_radius(spec)
     held = registry[registry["role"].isin(["validation", "test"])]
     probabilities = {}
     for _, row in held.iterrows():
-        image = _window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
         probabilities[row["tile_id"]] = predict_frame(models, image, (int(row["height"]), int(row["width"])))
     table = score_tiles(held, labels, probabilities)
     with atomic_path(out_probabilities) as tmp:

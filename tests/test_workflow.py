@@ -137,6 +137,9 @@ def test_tiny_study_produces_every_output(finished_study):
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert comparison["warning"].str.contains("only 1 animal").all()
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
+    evaluation = pd.read_csv(finished_study / "results/study/nuclei/evaluation/summary.tsv", sep="\t")
+    assert list(evaluation["dataset"]) == ["all", "c1", "w1"]
+    assert evaluation.loc[0, "f1"] == pytest.approx(scores.loc[scores["role"] == "test", "f1"].iloc[0])
     methods = (finished_study / "results/study/methods.md").read_text()
     test_f1 = scores.loc[scores["role"] == "test", "f1"].iloc[0]
     assert f"F1 {test_f1:.3f}" in methods and "demo/data/w1/raw.tif" in methods
@@ -179,7 +182,7 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         # grouped jobs (shards) are printed indented under their group
         planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
-        downstream = {"predict_tiles:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
+        downstream = {"predict_tiles:", "evaluate:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
                       "meshes:", "statistics:", "methods:", "all:"}
         assert planned == {"train_node:"} | downstream
     finally:

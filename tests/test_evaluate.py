@@ -1,0 +1,141 @@
+"""Evaluation against scikit-learn and scikit-image, and a hand-worked object matching."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from skimage.metrics import adapted_rand_error, variation_of_information
+from sklearn.metrics import (
+    average_precision_score,
+    f1_score,
+    jaccard_score,
+    precision_recall_curve as sk_precision_recall_curve,
+    precision_score,
+    recall_score,
+)
+
+from tessera.errors import TesseraInputError
+from tessera.evaluate import (
+    average_precision,
+    bootstrap_interval,
+    check_no_leakage,
+    confusion,
+    evaluate_tiles,
+    match_objects,
+    partition_errors,
+    precision_recall_curve,
+    scores_from_counts,
+)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_pixel_scores_equal_scikit_learn(seed):
+    # Reference: sklearn.metrics precision/recall/F1/Jaccard on the same binary decisions.
+    rng = np.random.default_rng(seed)
+    prob = rng.random(2000)
+    truth = (rng.random(2000) < prob * 0.8).astype(np.uint8)
+    truth[rng.random(2000) < 0.1] = 255  # ignored pixels
+    keep = truth != 255
+    s = scores_from_counts(*confusion(prob, truth, 0.4)[:3])
+    pred = prob[keep] >= 0.4
+    assert s["precision"] == pytest.approx(precision_score(truth[keep], pred))
+    assert s["recall"] == pytest.approx(recall_score(truth[keep], pred))
+    assert s["f1"] == pytest.approx(f1_score(truth[keep], pred))
+    assert s["jaccard"] == pytest.approx(jaccard_score(truth[keep], pred))
+    # identities: F1 = Dice, J = F1 / (2 - F1)
+    tp, fp, fn, _ = confusion(prob, truth, 0.4)
+    assert s["f1"] == pytest.approx(2 * tp / (2 * tp + fp + fn))
+    assert s["jaccard"] == pytest.approx(s["f1"] / (2 - s["f1"]))
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_precision_recall_curve_and_average_precision_equal_scikit_learn(seed):
+    rng = np.random.default_rng(seed)
+    prob = np.round(rng.random(800), 2)  # ties, as in quantised maps
+    truth = (rng.random(800) < prob).astype(np.uint8)
+    ours = precision_recall_curve(prob, truth)
+    ref = sk_precision_recall_curve(truth, prob)
+    for a, b in zip(ours, ref):
+        np.testing.assert_allclose(a, b)
+    assert average_precision(ours[0], ours[1]) == pytest.approx(average_precision_score(truth, prob))
+
+
+def test_partition_errors_equal_scikit_image():
+    # Reference: skimage.metrics with background kept as a region (ignore_labels=()). Note
+    # skimage's adapted_rand_error returns (error, precision, recall) with the last two swapped
+    # relative to its docstring; we report rand_precision = fraction of predicted same-object
+    # pairs that are truly together, which is skimage's *third* value.
+    rng = np.random.default_rng(3)
+    truth = rng.integers(0, 4, (40, 40))
+    pred = rng.integers(0, 5, (40, 40))
+    pred[:15] = truth[:15]
+    ours = partition_errors(truth, pred)
+    error, second, third = adapted_rand_error(truth, pred, ignore_labels=())
+    assert ours["adapted_rand_error"] == pytest.approx(error)
+    assert ours["rand_precision"] == pytest.approx(third) and ours["rand_recall"] == pytest.approx(second)
+    split, merge = variation_of_information(truth, pred, ignore_labels=())
+    assert (ours["voi_split"], ours["voi_merge"]) == pytest.approx((split, merge))
+
+
+def test_object_matching_hand_worked():
+    # Truth: A (4x4 = 16 px) and B (2x2 = 4 px). Prediction: A' covers A's left 3 columns
+    # (IoU 12/16 = 0.75, a match), B' is B shifted by one column (IoU 2/6 = 0.33, no match),
+    # C' is a false object. So 2 true, 3 predicted, 1 matched: precision 1/3, recall 1/2.
+    truth = np.zeros((10, 12), np.uint8)
+    truth[1:5, 1:5] = 1
+    truth[7:9, 8:10] = 1
+    pred = np.zeros_like(truth, dtype=bool)
+    pred[1:5, 1:4] = True
+    pred[7:9, 9:11] = True
+    pred[1:3, 9:11] = True
+    assert match_objects(truth, pred) == {"true_objects": 2, "predicted_objects": 3, "matched": 1}
+
+
+def test_bootstrap_interval_brackets_the_pooled_value():
+    rng = np.random.default_rng(0)
+    counts = np.stack([rng.integers(50, 100, 20), rng.integers(0, 30, 20), rng.integers(0, 30, 20)], 1)
+    f1 = lambda tp, fp, fn: scores_from_counts(tp, fp, fn)["f1"]  # noqa: E731
+    low, high = bootstrap_interval(counts, f1, reps=500)
+    assert low < f1(*counts.sum(axis=0)) < high and high - low < 0.2
+
+
+def registry(roles):
+    rows = [{"tile_id": f"t{i}", "dataset": "d1" if i % 2 else "d2", "z": i, "y0": 0, "x0": 0, "height": 8,
+             "width": 8, "role": r} for i, r in enumerate(roles)]
+    return pd.DataFrame(rows)
+
+
+def test_evaluate_tiles_pools_test_tiles_only():
+    rng = np.random.default_rng(1)
+    reg = registry(["train", "validation", "validation", "test", "test", "test"])
+    labels = {t: (rng.random((8, 8)) < 0.4).astype(np.uint8) for t in reg["tile_id"]}
+    probs = {t: np.clip(labels[t] * 0.7 + rng.random((8, 8)) * 0.5, 0, 1).astype(np.float32) for t in reg["tile_id"]}
+    probs["t0"] = np.zeros((8, 8), np.float32)  # a training tile: must not matter
+    summary, per_tile, curve = evaluate_tiles(reg, labels, probs, reps=200)
+    assert list(per_tile["tile_id"]) == ["t3", "t4", "t5"]
+    overall = summary.iloc[0]
+    pooled = np.concatenate([probs[t].ravel() for t in ("t3", "t4", "t5")])
+    truth = np.concatenate([labels[t].ravel() for t in ("t3", "t4", "t5")])
+    assert overall["f1"] == pytest.approx(f1_score(truth, pooled >= overall["threshold"]))
+    assert overall["average_precision"] == pytest.approx(average_precision_score(truth, pooled))
+    assert list(summary["dataset"]) == ["all", "d1", "d2"]
+
+
+def test_missing_test_tiles_and_leakage_are_refused():
+    reg = registry(["train", "validation", "train"])
+    with pytest.raises(TesseraInputError, match="no test tiles"):
+        evaluate_tiles(reg, {}, {})
+    leaky = registry(["train", "test"])
+    leaky.loc[1, ["dataset", "z"]] = ["d2", 0]  # same dataset and section as t0
+    with pytest.raises(TesseraInputError, match="test tile t1 overlaps training tile t0"):
+        check_no_leakage(leaky)
+    twice = pd.concat([registry(["train"]), registry(["test"])], ignore_index=True)
+    with pytest.raises(TesseraInputError, match="appear more than once"):
+        check_no_leakage(twice)
+
+
+def test_empty_predictions_score_zero_without_failing():
+    reg = registry(["validation", "test"])
+    labels = {"t0": np.ones((8, 8), np.uint8), "t1": np.ones((8, 8), np.uint8)}
+    probs = {"t0": np.zeros((8, 8), np.float32), "t1": np.zeros((8, 8), np.float32)}
+    summary, _, _ = evaluate_tiles(reg, labels, probs, reps=50)
+    assert summary.iloc[0]["f1"] == 0.0 and summary.iloc[0]["object_recall"] == 0.0
