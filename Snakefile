@@ -19,6 +19,7 @@ include: "rules/qc.smk"
 include: "rules/tiles.smk"
 include: "rules/train.smk"
 include: "rules/evaluate.smk"
+include: "rules/downsampling.smk"
 include: "rules/predict.smk"
 include: "rules/objects.smk"
 include: "rules/morphometry.smk"
@@ -38,17 +39,23 @@ rule all:
             "results/{dataset}/pyramid/raw.ome.zarr",
             dataset=DATASETS.index,
         ),
+        # every target and variant is scored on its test tiles
         expand(
             "results/study/{target}/evaluation/summary.tsv",
             target=config["targets"],
         ),
         expand(
+            "results/study/{target}/downsampling/curve.tsv",
+            target=STUDY_TARGETS,
+        ),
+        # whole volumes, objects and statistics for the targets themselves
+        expand(
             "results/study/{target}/statistics/comparison.tsv",
-            target=config["targets"],
+            target=BASE_TARGETS,
         ),
         "results/study/methods.md",
         expand(
             "results/{dataset}/meshes/{target}.png",
             dataset=DATASETS.index,
-            target=config["targets"],
+            target=BASE_TARGETS,
         ),

@@ -1,4 +1,5 @@
 # Validation of config and sheet (before any rule runs) and the input functions rules share.
+import re
 import sys
 from pathlib import Path
 
@@ -8,7 +9,7 @@ sys.path.insert(0, workflow.basedir)
 from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.model import CascadeSpec, ancestors, nodes
-from tessera.config import load_config, load_datasets, sheet_spacing
+from tessera.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.provenance import code_version
 from tessera.tiles import read_points
@@ -17,6 +18,11 @@ from tessera.tiles import read_points
 DEMO_DIR = "demo/data"
 
 try:
+    config = load_config(
+        config, f"{workflow.basedir}/config/schemas/config.schema.yaml"
+    )
+    # variants become targets of their own, checked like any other
+    VARIANT_BASE = expand_variants(config)
     config = load_config(
         config, f"{workflow.basedir}/config/schemas/config.schema.yaml"
     )
@@ -72,8 +78,12 @@ def scaled_by_attempt(base):
     return resource
 
 
+# Targets of the study proper (variants are trained and scored only).
+BASE_TARGETS = [t for t in config["targets"] if VARIANT_BASE[t] == t]
+
+
 wildcard_constraints:
-    target="|".join(config["targets"]),
+    target="|".join(re.escape(t) for t in config["targets"]),
     stage=r"\d+",
     level=r"\d+",
 
@@ -105,7 +115,8 @@ def _points_by_target():
                 )
             except TesseraInputError as error:
                 raise WorkflowError(f"invalid input: {error}") from None
-            out[target] = sorted(set(points.loc[points["target"] == target, "dataset"]))
+            base = VARIANT_BASE[target]
+            out[target] = sorted(set(points.loc[points["target"] == base, "dataset"]))
     return out
 
 
@@ -115,7 +126,9 @@ POINTS = _points_by_target()
 def annotation_sets(wildcards):
     target = wildcards.target
     if _painted(target):
-        return [f"results/{d}/tiles_painted/{target}" for d in POINTS[target]]
+        # a variant of a painted target reuses the base target's painted tiles
+        base = VARIANT_BASE[target]
+        return [f"results/{d}/tiles_painted/{base}" for d in POINTS[target]]
     return [f"results/{d}/tiles/{target}" for d in DATASETS.index]
 
 
@@ -222,3 +235,16 @@ def dataset_inputs(wildcards):
     """The files a dataset's results rest on: the stack and the optional ROI mask."""
     row = DATASETS.loc[wildcards.dataset]
     return [p for p in (row["path"], row["roi_mask"]) if p]
+
+
+def study_factors(wildcards):
+    """Evaluation summaries of a target at every factor of its downsampling study."""
+    target = config["targets"][wildcards.target]
+    names = [
+        wildcards.target if f == target["downsample"] else f"{wildcards.target}.x{f}"
+        for f in target["downsampling_study"]["factors"]
+    ]
+    return [f"results/study/{n}/evaluation/summary.tsv" for n in names]
+
+
+STUDY_TARGETS = [t for t in BASE_TARGETS if config["targets"][t]["downsampling_study"]]

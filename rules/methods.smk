@@ -23,15 +23,15 @@ rule methods:
     input:
         scores=expand(
             "results/study/{target}/tiles_predicted/scores.tsv",
-            target=config["targets"],
+            target=BASE_TARGETS,
         ),
         comparisons=expand(
             "results/study/{target}/statistics/comparison.tsv",
-            target=config["targets"],
+            target=BASE_TARGETS,
         ),
         objects=expand(
             "results/{dataset}/objects/{target}.json",
-            target=config["targets"],
+            target=BASE_TARGETS,
             dataset=DATASETS.index,
         ),
         checksums=expand(
@@ -50,10 +50,11 @@ rule methods:
         "../envs/tessera.yaml"
     params:
         sections={
-            k: config[k] for k in ("ingest", "pyramid", "qc", "statistics", "targets")
+            **{k: config[k] for k in ("ingest", "pyramid", "qc", "statistics")},
+            "targets": {t: config["targets"][t] for t in BASE_TARGETS},
         },
         datasets=dataset_groups,
-        targets=list(config["targets"]),
+        targets=BASE_TARGETS,
         dataset_ids=list(DATASETS.index),
         code=stage_code("methods"),
     script:

@@ -200,3 +200,61 @@ def _check_paths(frame, sheet_path, base_dir, generated_dir):
 def sheet_spacing(row):
     """The sheet's voxel size (z, y, x) in nm for one dataset row; None where blank."""
     return tuple(None if pd.isna(row[c]) else float(row[c]) for c in SHEET_NUMBER_COLUMNS)
+
+
+def expand_variants(config, *, source="config/config.yaml"):
+    """Add every variant and downsampling-study factor of each target as a target of its own.
+
+    A variant ``<target>.<name>`` is the target with the variant's settings merged over it (one
+    level deep: ``cascade: {stages: 3}`` changes only the stages). A downsampling study adds
+    ``<target>.x<f>`` per factor f other than the target's own, with tiles of the same physical
+    size. Variants get their own result folders and are trained and scored on their own; only
+    label-volume annotations can be re-sampled at another factor.
+
+    Returns
+    -------
+    dict
+        Variant target name → its base target name (base targets map to themselves).
+
+    Examples
+    --------
+    >>> cfg = {"targets": {"mito": {"downsample": 2, "annotations": {"labels": "{dataset}.tif"},
+    ...        "tiles": {"size": 96}, "cascade": {"stages": 2}, "variants": {"s3": {"cascade": {"stages": 3}}},
+    ...        "downsampling_study": {"factors": [1, 2], "tolerance": 0.02}}}}
+    >>> sorted(expand_variants(cfg).items())
+    [('mito', 'mito'), ('mito.s3', 'mito'), ('mito.x1', 'mito')]
+    >>> cfg["targets"]["mito.x1"]["tiles"]["size"], cfg["targets"]["mito.s3"]["cascade"]["stages"]
+    (192, 3)
+    """
+    targets = config["targets"]
+    base_of = {name: name for name in targets}
+    added = {}
+    for name, target in targets.items():
+        own = {k: v for k, v in target.items() if k not in ("variants", "downsampling_study")}
+        wanted = dict(target.get("variants") or {})
+        study = target.get("downsampling_study")
+        if study:
+            for factor in study["factors"]:
+                if factor != target["downsample"]:
+                    size = max(16, int(round(target["tiles"]["size"] * target["downsample"] / factor)))
+                    wanted[f"x{factor}"] = {"downsample": factor, "tiles": {"size": size}}
+        for variant, overrides in wanted.items():
+            if "labels" not in target["annotations"] and "downsample" in overrides:
+                raise TesseraInputError(
+                    f"key targets.{name}: variant {variant} changes the downsampling factor, which needs label "
+                    "volumes (annotations.labels) to re-sample tiles; painted tiles exist at one factor only",
+                    source=source,
+                )
+            merged = _copy(own)
+            for key, value in overrides.items():
+                if isinstance(value, dict) and isinstance(merged.get(key), dict):
+                    merged[key] = {**merged[key], **value}
+                else:
+                    merged[key] = value
+            if f"{name}.{variant}" in targets:
+                raise TesseraInputError(f"key targets: {name}.{variant} is both a target and a variant of {name}",
+                                        source=source)
+            added[f"{name}.{variant}"] = merged
+            base_of[f"{name}.{variant}"] = name
+    targets.update(added)
+    return base_of

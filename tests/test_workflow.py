@@ -204,6 +204,22 @@ def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path
         config.write_text(original)
 
 
+def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=Path(__file__).resolve().parents[1]):
+    config = finished_study / "config" / "config.yaml"
+    original = config.read_text()
+    try:
+        changed = tiny_config()
+        changed["targets"]["nuclei"]["variants"] = {"single": {"cascade": {"stages": 1}}}
+        config.write_text(yaml.safe_dump(changed))
+        result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        outputs = re.findall(r"output: (\S+)", result.stdout)
+        assert outputs and all("nuclei.single" in o for o in outputs), outputs
+        assert any(o.endswith("results/study/nuclei.single/evaluation/summary.tsv") or "evaluation" in o
+                   for o in outputs)
+    finally:
+        config.write_text(original)
+
+
 def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
     (tmp_path / "config").mkdir()
     (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(tiny_config()))

@@ -1,0 +1,20 @@
+"""Snakemake adapter: accuracy against downsampling factor for one target."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.downsampling import downsampling_job
+from tessera.jobs import run_job
+
+run_job(
+    snakemake.log[0],
+    downsampling_job,
+    summaries=list(snakemake.input.summaries),
+    factors=snakemake.params.factors,
+    out_curve=snakemake.output.curve,
+    out_plot=snakemake.output.plot,
+    target=snakemake.wildcards.target,
+    tolerance=snakemake.params.tolerance,
+)
