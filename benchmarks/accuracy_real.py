@@ -10,7 +10,8 @@ report pixel precision, recall, F1 and Jaccard on sections 16-19. The images are
 2x in-plane first (9.2 nm pixels; mitochondria stay tens of pixels across), masks by majority.
 
 Configurations: 1x0 (one stage, no levels: plain pixel classification), 1x2, 2x2, 3x2, and
-2x1, 3x1 (one coarser level only).
+2x1, 3x1 (one coarser level only). Every configuration is scored with the final map smoothed
+(Gaussian, --output-sigma px, the workflow's default) and, for comparison, unsmoothed.
 
 Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--classifier KIND]
 """
@@ -50,7 +51,22 @@ def best_threshold(prob, truth):
     return float(grid[int(np.argmax(scores))])
 
 
-def evaluate(spec, image, truth, *, threads):
+def scores(prob, truth):
+    val_p = np.concatenate([prob[z].ravel() for z in (14, 15)])
+    val_t = np.concatenate([truth[z].ravel() for z in (14, 15)])
+    threshold = best_threshold(val_p, val_t)
+    test_p = np.concatenate([prob[z].ravel() for z in range(16, 20)]) >= threshold
+    test_t = np.concatenate([truth[z].ravel() for z in range(16, 20)])
+    return {
+        "precision": float(precision_score(test_t, test_p)),
+        "recall": float(recall_score(test_t, test_p)),
+        "f1": float(f1_score(test_t, test_p)),
+        "jaccard": float(jaccard_score(test_t, test_p)),
+        "threshold": threshold,
+    }
+
+
+def evaluate(spec, image, truth, *, threads, output_sigma):
     radius = receptive_radius(spec)
     h, w = image.shape[1:]
     tiles = [
@@ -68,22 +84,10 @@ def evaluate(spec, image, truth, *, threads):
     models = fit_cascade(spec, tiles, target="mitochondria", threads=threads)
     train_s = time.perf_counter() - start
     start = time.perf_counter()
-    prob = {z: predict_section(models, image, z) for z in range(14, 20)}
+    prob = {z: predict_section(models, image, z, output_sigma=output_sigma) for z in range(14, 20)}
     predict_s = time.perf_counter() - start
-    val_p = np.concatenate([prob[z].ravel() for z in (14, 15)])
-    val_t = np.concatenate([truth[z].ravel() for z in (14, 15)])
-    threshold = best_threshold(val_p, val_t)
-    test_p = np.concatenate([prob[z].ravel() for z in range(16, 20)]) >= threshold
-    test_t = np.concatenate([truth[z].ravel() for z in range(16, 20)])
-    return {
-        "precision": float(precision_score(test_t, test_p)),
-        "recall": float(recall_score(test_t, test_p)),
-        "f1": float(f1_score(test_t, test_p)),
-        "jaccard": float(jaccard_score(test_t, test_p)),
-        "threshold": threshold,
-        "train_s": train_s,
-        "predict_s": predict_s,
-    }
+    raw = {z: predict_section(models, image, z) for z in range(14, 20)}
+    return {**scores(prob, truth), "train_s": train_s, "predict_s": predict_s}, scores(raw, truth)
 
 
 def main():
@@ -93,22 +97,29 @@ def main():
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--samples", type=int, default=6000)
     parser.add_argument("--neighbours", type=int, default=1)
+    parser.add_argument("--output-sigma", type=float, default=2.0)
+    parser.add_argument("--seed", type=int, default=0)
     args = parser.parse_args()
     if not (DATA / "raw").is_dir():
         raise SystemExit(f"{DATA} is not present; this benchmark needs the open VNC stack")
     image, truth = load()
-    results, rows = {}, []
+    results, unsmoothed, rows = {}, {}, []
     for name in args.configs.split(","):
         stages, levels = CONFIGS[name]
         spec = CascadeSpec(
-            stages=stages, levels=levels, classifier=args.classifier, samples_per_tile=args.samples, neighbours=args.neighbours
+            stages=stages, levels=levels, classifier=args.classifier, samples_per_tile=args.samples,
+            neighbours=args.neighbours, seed=args.seed,
         )
-        results[name] = evaluate(spec, image, truth, threads=args.threads)
-        r = results[name]
+        results[name], unsmoothed[name] = evaluate(spec, image, truth, threads=args.threads,
+                                                   output_sigma=args.output_sigma)
+        r, u = results[name], unsmoothed[name]
         rows.append((f"{name} F1 (P {r['precision']:.3f} R {r['recall']:.3f} J {r['jaccard']:.3f})", r["f1"],
-                     f"thr {r['threshold']:.2f}, train {r['train_s']:.0f} s, predict {r['predict_s']:.0f} s"))
+                     f"unsmoothed {u['f1']:.3f}; thr {r['threshold']:.2f}, train {r['train_s']:.0f} s, "
+                     f"predict {r['predict_s']:.0f} s"))
         print(rows[-1], flush=True)
-    report("accuracy_real", rows, {"classifier": args.classifier, "neighbours": args.neighbours, "vnc_mito": results})
+    report("accuracy_real", rows, {"classifier": args.classifier, "neighbours": args.neighbours, "seed": args.seed,
+                                   "output_sigma": args.output_sigma, "vnc_mito": results,
+                                   "vnc_mito_unsmoothed": unsmoothed})
 
 
 if __name__ == "__main__":

@@ -248,3 +248,16 @@ def study_factors(wildcards):
 
 
 STUDY_TARGETS = [t for t in BASE_TARGETS if config["targets"][t]["downsampling_study"]]
+
+
+def target_without_variants(target):
+    """A target's own settings, without its variants (so adding one reruns nothing else)."""
+    return {
+        k: v
+        for k, v in config["targets"][target].items()
+        if k not in ("variants", "downsampling_study")
+    }
+
+
+def target_output_sigma(wildcards):
+    return target_settings(wildcards)["output_smoothing_px"]

@@ -51,7 +51,7 @@ rule methods:
     params:
         sections={
             **{k: config[k] for k in ("ingest", "pyramid", "qc", "statistics")},
-            "targets": {t: config["targets"][t] for t in BASE_TARGETS},
+            "targets": {t: target_without_variants(t) for t in BASE_TARGETS},
         },
         datasets=dataset_groups,
         targets=BASE_TARGETS,

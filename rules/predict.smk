@@ -21,6 +21,7 @@ rule shard_plan:
         shard_jobs=config["predict"]["shard_jobs"],
         max_halo=config["predict"]["max_halo"],
         dtype=config["predict"]["dtype"],
+        output_sigma=target_output_sigma,
         code=stage_code("predict"),
     script:
         "../scripts/shard_plan.py"

@@ -52,6 +52,7 @@ rule predict_tiles:
         runtime=scaled_by_attempt(60),
     params:
         downsample=target_downsample,
+        output_sigma=target_output_sigma,
         datasets=list(DATASETS.index),
         code=stage_code("train"),
     script:

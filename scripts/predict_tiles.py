@@ -18,4 +18,5 @@ run_job(
     out_table=snakemake.output.scores,
     target=snakemake.wildcards.target,
     downsample=snakemake.params.downsample,
+    output_sigma=snakemake.params.output_sigma,
 )

@@ -20,4 +20,5 @@ run_job(
     shard_jobs=snakemake.params.shard_jobs,
     max_halo=snakemake.params.max_halo,
     dtype=snakemake.params.dtype,
+    output_sigma=snakemake.params.output_sigma,
 )

@@ -98,19 +98,19 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
             "blocks": blocks, "jobs": shares}
 
 
-def predict_block(models, volume, box, *, halo=None):
+def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
     Each section is read with a halo of the receptive radius (mirrored beyond the volume) and
     predicted with :func:`tessera.cascade.model.predict_frame`; `volume` may be a zarr array.
     """
     spec = cascade_spec(models)
-    halo = receptive_radius(spec) if halo is None else halo
+    halo = receptive_radius(spec, output_sigma=output_sigma) if halo is None else halo
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
     for z in range(z0, z1):
         window = mirrored_stack(volume, z, spec.neighbours, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
-        out[z - z0] = predict_frame(models, window, (y1 - y0, x1 - x0))
+        out[z - z0] = predict_frame(models, window, (y1 - y0, x1 - x0), output_sigma=output_sigma)
     return out
 
 
@@ -172,15 +172,16 @@ def _working_array(pyramid, downsample):
     return info["levels"][level], spacing, info["factors"][level]
 
 
-def plan_job(pyramid, model_paths, out_plan, *, target, downsample, block, shard_jobs, max_halo, dtype):
+def plan_job(pyramid, model_paths, out_plan, *, target, downsample, block, shard_jobs, max_halo, dtype,
+             output_sigma=0.0):
     """Write the shard plan of one dataset and target (a recorded artifact)."""
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
     array, spacing, factors = _working_array(pyramid, downsample)
-    plan = plan_shards(array.shape, block=block, halo=receptive_radius(spec), align=spec.align,
-                       jobs=shard_jobs, max_halo=max_halo)
+    plan = plan_shards(array.shape, block=block, halo=receptive_radius(spec, output_sigma=output_sigma),
+                       align=spec.align, jobs=shard_jobs, max_halo=max_halo)
     encode_probability(np.zeros(1, np.float32), dtype)  # validates the dtype before any job runs
-    plan.update({"target": target, "downsample": downsample, "spacing": list(spacing),
+    plan.update({"target": target, "downsample": downsample, "output_sigma": output_sigma, "spacing": list(spacing),
                  "factors": list(factors), "dtype": dtype,
                  "models": {Path(p).name: _sha256(p) for p in sorted(model_paths)}})
     write_text(out_plan, json.dumps(plan, indent=1) + "\n")
@@ -202,7 +203,8 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
         raise TesseraInputError(f"job {job} is not in the plan (it has {len(plan['jobs'])} jobs)", source=plan_path)
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
-    halo = receptive_radius(spec)
+    output_sigma = plan.get("output_sigma", 0.0)
+    halo = receptive_radius(spec, output_sigma=output_sigma)
     if halo != plan["halo"] or spec.align != plan["align"]:
         raise TesseraInputError("the plan was made for another cascade (halo or alignment differ); rerun shard_plan",
                                 source=plan_path)
@@ -215,7 +217,8 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
         tmp.mkdir()
         for index in plan["jobs"][job]:
             box = plan["blocks"][index]
-            values = encode_probability(predict_block(models, array, box, halo=halo), plan["dtype"])
+            prob = predict_block(models, array, box, halo=halo, output_sigma=output_sigma)
+            values = encode_probability(prob, plan["dtype"])
             path = tmp / _block_name(index)
             np.save(path, values, allow_pickle=False)
             entries.append({"block": index, "file": path.name, "shape": list(values.shape),
@@ -293,6 +296,7 @@ def stitch_job(plan_path, shard_dirs, out_path, *, viewing_levels=2, chunks=(1, 
                 "target": plan["target"], "dtype": plan["dtype"], "scale": probability_scale(plan["dtype"]),
                 "meaning": "probability of the target = stored value / scale",
                 "working_level_downsample": plan["downsample"], "z_factor": plan["factors"][0], "halo": plan["halo"],
+                "output_smoothing_px": plan.get("output_sigma", 0.0),
                 "block": plan["block"], "models": plan["models"],
             }},
         })

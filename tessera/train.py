@@ -130,7 +130,8 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
     return {"node": list(node), "training_tiles": len(tiles), "training_pixels": model.meta["training_pixels"]}
 
 
-def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out_table, *, target, downsample):
+def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out_table, *, target, downsample,
+                      output_sigma=0.0):
     """Predict the validation and test tiles with the finished cascade; score them.
 
     The threshold is the one with the best F1 on the validation tiles; test scores use it.
@@ -144,12 +145,13 @@ def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out
         models[model.node] = model
     spec = cascade_spec(models)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
-    halo = receptive_radius(spec)
+    halo = receptive_radius(spec, output_sigma=output_sigma)
     held = registry[registry["role"].isin(["validation", "test"])]
     probabilities = {}
     for _, row in held.iterrows():
         image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
-        probabilities[row["tile_id"]] = predict_frame(models, image, (int(row["height"]), int(row["width"])))
+        core = (int(row["height"]), int(row["width"]))
+        probabilities[row["tile_id"]] = predict_frame(models, image, core, output_sigma=output_sigma)
     table = score_tiles(held, labels, probabilities)
     with atomic_path(out_probabilities) as tmp:
         with open(tmp, "wb") as fh:

@@ -55,15 +55,16 @@ def study(tmp_path_factory):
     return {"root": root, "models": models, "paths": paths, "image": image, "volume": volume, "spec": spec}
 
 
-def whole_volume(study):
-    return np.stack([predict_section(study["models"], study["volume"], z) for z in range(5)])
+def whole_volume(study, output_sigma=0.0):
+    return np.stack([predict_section(study["models"], study["volume"], z, output_sigma=output_sigma)
+                     for z in range(5)])
 
 
-def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512):
+def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0):
     out = study["root"] / name
     plan = out / "plan.json"
     plan_job(study["image"], study["paths"], plan, target="blobs", downsample=1, block=block, shard_jobs=jobs,
-             max_halo=max_halo, dtype=dtype)
+             max_halo=max_halo, dtype=dtype, output_sigma=output_sigma)
     shards = [out / f"job{j}" for j in range(jobs)]
     for j, folder in enumerate(shards):
         predict_shard_job(plan, study["image"], study["paths"], folder, job=j, target="blobs")
@@ -98,14 +99,16 @@ def test_bad_plans_are_refused(kwargs, message):
         plan_shards((4, 128, 128), **kwargs)
 
 
-def test_stitched_map_equals_the_whole_volume_in_one_piece(study):
+@pytest.mark.parametrize("output_sigma", [0.0, 1.5])
+def test_stitched_map_equals_the_whole_volume_in_one_piece(study, output_sigma):
     # The property that makes results independent of how the work was cut up: float output
-    # within 1e-6 of predicting each section whole, for two block sizes and job counts.
-    whole = whole_volume(study)
-    halo = receptive_radius(study["spec"])
+    # within 1e-6 of predicting each section whole, for two block sizes and job counts, with
+    # and without smoothing of the output.
+    whole = whole_volume(study, output_sigma)
+    halo = receptive_radius(study["spec"], output_sigma=output_sigma)
     maps = []
     for name, block, jobs in (("a", (2, halo, halo), 3), ("b", (5, 2 * halo, 2 * halo), 2)):
-        out = run(study, f"float_{name}", block=block, jobs=jobs)
+        out = run(study, f"float_{name}_{output_sigma}", block=block, jobs=jobs, output_sigma=output_sigma)
         _, info = open_image(out / "probability.ome.zarr")
         maps.append(info["levels"][0][:])
         assert info["spacing"] == (40.0, 8.0, 8.0)
