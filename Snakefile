@@ -22,6 +22,7 @@ include: "rules/evaluate.smk"
 include: "rules/downsampling.smk"
 include: "rules/predict.smk"
 include: "rules/objects.smk"
+include: "rules/next_tiles.smk"
 include: "rules/morphometry.smk"
 include: "rules/meshes.smk"
 include: "rules/statistics.smk"
@@ -54,6 +55,10 @@ rule all:
             target=BASE_TARGETS,
         ),
         "results/study/methods.md",
+        expand(
+            "results/study/{target}/next_tiles/points.tsv",
+            target=BASE_TARGETS,
+        ),
         expand(
             "results/{dataset}/meshes/{target}.png",
             dataset=DATASETS.index,

@@ -137,6 +137,11 @@ def test_tiny_study_produces_every_output(finished_study):
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert comparison["warning"].str.contains(r"only [01] animal\(s\) in a group").all()
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
+    from tessera.tiles import read_points
+
+    suggested = read_points(finished_study / "results/study/nuclei/next_tiles/points.tsv", datasets=["w1", "c1"],
+                            targets=["nuclei"])
+    assert len(suggested) == 10  # the default count; a sheet the tile export accepts
     evaluation = pd.read_csv(finished_study / "results/study/nuclei/evaluation/summary.tsv", sep="\t")
     assert list(evaluation["dataset"]) == ["all", "c1", "w1"]
     assert evaluation.loc[0, "f1"] == pytest.approx(scores.loc[scores["role"] == "test", "f1"].iloc[0])
@@ -183,7 +188,7 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
         downstream = {"predict_tiles:", "evaluate:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
-                      "meshes:", "statistics:", "methods:", "all:"}
+                      "meshes:", "statistics:", "methods:", "next_tiles:", "all:"}
         assert planned == {"train_node:"} | downstream
     finally:
         config.write_text(original)

@@ -1,0 +1,24 @@
+"""Snakemake adapter: suggest the next tiles to annotate for one target."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.jobs import run_job
+from tessera.next_tiles import next_tiles_job
+
+datasets = snakemake.params.datasets
+run_job(
+    snakemake.log[0],
+    next_tiles_job,
+    probabilities=dict(zip(datasets, snakemake.input.probabilities)),
+    annotations=snakemake.input.tiles,
+    qc_tables=dict(zip(datasets, snakemake.input.qc)),
+    out_points=snakemake.output.points,
+    out_preview=snakemake.output.preview,
+    target=snakemake.wildcards.target,
+    size=snakemake.params.size,
+    count=snakemake.params.suggest["count"],
+    min_sections=snakemake.params.suggest["min_sections"],
+)
