@@ -21,6 +21,7 @@ rule train_node:
         runtime=scaled_by_attempt(120),
     params:
         cascade=node_cascade,
+        train_datasets=lambda wildcards: target_settings(wildcards)["train_datasets"],
         downsample=target_downsample,
         datasets=list(DATASETS.index),
         code=stage_code("train"),

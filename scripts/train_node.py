@@ -21,4 +21,5 @@ run_job(
     stage=int(snakemake.wildcards.stage),
     level=int(snakemake.wildcards.level),
     threads=snakemake.threads,
+    train_datasets=snakemake.params.train_datasets,
 )

@@ -80,8 +80,13 @@ def level_arrays(pyramids, registry, *, downsample):
     return arrays
 
 
-def _training_tiles(spec, registry, labels, arrays, *, final):
+def _training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None):
     train = registry[registry["role"] == "train"]
+    if train_datasets is not None:
+        unknown = sorted(set(train_datasets) - set(registry["dataset"]))
+        if unknown:
+            raise TesseraInputError(f"train_datasets names dataset(s) {unknown} without annotated tiles")
+        train = train[train["dataset"].isin(list(train_datasets))]
     if train.empty:
         raise TesseraInputError("the split has no training tiles; annotate more tiles or change split.fractions")
     folds = assign_folds(train, spec.folds, spec.seed)
@@ -93,7 +98,8 @@ def _training_tiles(spec, registry, labels, arrays, *, final):
     return tiles
 
 
-def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsample, cascade, stage, level, threads=1):
+def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsample, cascade, stage, level, threads=1,
+                   train_datasets=None):
     """Train node (stage, level) of a target's cascade and save it.
 
     Parameters
@@ -111,6 +117,9 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
         The target's working level factor.
     cascade : dict
         Cascade settings (see :class:`CascadeSpec`); ``stages`` is replaced by `stage`.
+    train_datasets : list of str, optional
+        Train on the tiles of these datasets only (the others' test tiles then measure how the
+        model transfers to other animals).
     """
     spec = CascadeSpec.from_dict({**cascade, "stages": stage})
     node = (stage, level)
@@ -123,7 +132,7 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
     for a in ancestors(spec, node)[:-1]:
         if a not in models:
             raise TesseraInputError(f"node {node} needs the model of node {a}; it was not among the inputs")
-    tiles = _training_tiles(spec, registry, labels, arrays, final=node)
+    tiles = _training_tiles(spec, registry, labels, arrays, final=node, train_datasets=train_datasets)
     model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
     with atomic_path(out_path) as tmp:
         save_node(model, tmp)

@@ -51,3 +51,19 @@ def test_scoring_needs_validation_tiles():
     registry = pd.DataFrame({"tile_id": ["t1"], "role": ["test"]})
     with pytest.raises(TesseraInputError, match="no validation tiles"):
         score_tiles(registry, {"t1": np.zeros((2, 2), np.uint8)}, {"t1": np.zeros((2, 2), np.float32)})
+
+
+def test_training_can_be_restricted_to_some_datasets():
+    from tessera.cascade.model import CascadeSpec
+    from tessera.train import _training_tiles
+
+    spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,), folds=2)
+    rows = [{"tile_id": f"{d}{i}", "dataset": d, "z": i, "y0": 0, "x0": 0, "height": 8, "width": 8, "role": "train"}
+            for d in ("a", "b") for i in range(2)]
+    registry = pd.DataFrame(rows)
+    labels = {r["tile_id"]: np.tile([0, 1], (8, 4)).astype(np.uint8) for r in rows}
+    arrays = {d: np.zeros((2, 8, 8), np.float32) for d in ("a", "b")}
+    tiles = _training_tiles(spec, registry, labels, arrays, final=None, train_datasets=["b"])
+    assert sorted(t.tile_id for t in tiles) == ["b0", "b1"]
+    with pytest.raises(TesseraInputError, match=r"train_datasets names dataset\(s\) \['c'\]"):
+        _training_tiles(spec, registry, labels, arrays, final=None, train_datasets=["c"])
