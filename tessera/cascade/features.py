@@ -73,6 +73,21 @@ def feature_radius(sigmas=DEFAULT_SIGMAS):
     return 2 * reach + 4
 
 
+class _ChannelWriter:
+    """Writes channels one by one into the last axis of a preallocated array."""
+
+    def __init__(self, out):
+        self.out, self.count = out, 0
+
+    def append(self, channel):
+        self.out[..., self.count] = channel
+        self.count += 1
+
+    def extend(self, channels):
+        for channel in channels:
+            self.append(channel)
+
+
 def _eigvals_sym2(a, b, c):
     """Eigenvalues (descending) of [[a, b], [b, c]] per pixel."""
     mean = 0.5 * (a + c)
@@ -165,7 +180,10 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         core = tuple(slice(t, t + n) for t, n in zip(total, data.shape))
         features = filter_bank(padded, sigmas=sigmas, spacing=spacing, mirror_edges=False)
         return np.ascontiguousarray(features[core])
-    channels = [data]
+    # each channel goes straight into the output as it is made (no list of arrays, no stacking copy)
+    out = np.empty(data.shape + (len(feature_names(sigmas, ndim=ndim)),), dtype=np.float32)
+    channels = _ChannelWriter(out)
+    channels.append(data)
     smoothed_all = [
         ndimage.gaussian_filter(data, [s * r for r in ratio], mode=_MODE, truncate=_TRUNCATE) for s in sigmas
     ]
@@ -196,7 +214,7 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
             pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
             j = [ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE) for a, b in pairs]
             channels.extend(_eigvals_sym3(j))
-    return np.stack(channels, axis=-1).astype(np.float32, copy=False)
+    return out
 
 
 def neighbour_feature_names(sigmas=DEFAULT_SIGMAS, *, offset):
