@@ -82,7 +82,10 @@ def train(root):
     radius = receptive_radius(spec)
     tiles = []
     for z in range(6):
-        y0 = x0 = 384
+        # a 256-px tile around the section's mitochondria, so both classes are present
+        ys, xs = np.nonzero(truth[z])
+        y0 = int(np.clip(np.median(ys) - 128, 0, SIDE - 256)) if ys.size else 384
+        x0 = int(np.clip(np.median(xs) - 128, 0, SIDE - 256)) if xs.size else 384
         window = mirrored_stack(image, z, spec.neighbours, y0 - radius, y0 + 256 + radius, x0 - radius, x0 + 256 + radius)
         tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, y0 : y0 + 256, x0 : x0 + 256], fold=z % spec.folds))
     models = fit_cascade(spec, tiles, target="mitochondria", threads=2)
