@@ -185,7 +185,9 @@ def _face_pairs(provisional, origin, end, shape, structure):
             touch = (pa > 0) & (pb > 0)
             if touch.any():
                 pairs.append(np.stack([pa[touch], pb[touch]], 1))
-    return pairs
+    # one row per pair of labels, not per touching voxel: what is kept grows with the number of
+    # objects crossing faces, not with the face area
+    return [np.unique(np.concatenate(pairs), axis=0)] if pairs else []
 
 
 def _cavity(mask, others, structure):
@@ -203,7 +205,7 @@ def _cavity(mask, others, structure):
 
 def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, close_radius_nm=0.0,
                   fill_holes=True, min_volume_um3=0.0, max_volume_um3=None, connectivity=26,
-                  block=(32, 512, 512), excluded_sections=(), scale=1.0, workdir=None):
+                  block=(32, 512, 512), excluded_sections=(), scale=1.0, workdir=None, fill_max_voxels=None):
     """Filter a probability volume into labelled objects, block by block.
 
     Parameters
@@ -219,6 +221,11 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
     open_radius_nm, close_radius_nm : float
         Radii of the opening and the closing (0 = none).
     fill_holes : bool
+        Fill enclosed cavities, object by object within its bounding box. Objects whose box
+        exceeds `fill_max_voxels` are left unfilled (and flagged ``cavities_filled`` False), so
+        that one huge object never loads a huge box.
+    fill_max_voxels : int, optional
+        Default: 8 blocks' worth of voxels.
     min_volume_um3, max_volume_um3 : float
         Size range kept (max None = no limit).
     connectivity : {6, 18, 26}
@@ -279,13 +286,16 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
         pairs = []
         for origin, end in _blocks(shape, block):
             pairs += _face_pairs(provisional, origin, end, shape, structure)
+            if len(pairs) > 64:  # merge as we go so the list stays small
+                pairs = [np.unique(np.concatenate(pairs), axis=0)]
         edges = np.unique(np.concatenate(pairs), axis=0) - 1 if pairs else np.zeros((0, 2), np.int64)
         graph = coo_matrix((np.ones(len(edges), np.int8), (edges[:, 0], edges[:, 1])), shape=(offset, offset))
         n_comp, component = connected_components(graph, directed=False) if offset else (0, np.zeros(0, np.int64))
         objects = stats.merged(component, n_comp) if offset else None
         kept = np.flatnonzero(objects["seeded"]) if offset else np.zeros(0, np.int64)
         # pass 3: holes, per object in its bounding box (one voxel of margin where the volume allows)
-        cavities = {}
+        cavities, unfilled = {}, set()
+        fill_max_voxels = fill_max_voxels or 8 * int(np.prod(block))
         if fill_holes:
             kept_lut = np.zeros(offset + 1, np.int64)
             kept_lut[1:][np.isin(component, kept)] = 1
@@ -295,6 +305,9 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
                     continue  # filling only adds volume: it is out either way
                 lo = np.maximum(objects["lo"][c] - 1, 0)
                 hi = np.minimum(objects["hi"][c] + 1, shape)
+                if np.prod(hi - lo) > fill_max_voxels:
+                    unfilled.add(int(c))
+                    continue
                 box = np.asarray(provisional[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]])
                 mine = comp_lut[box] == c
                 others = (kept_lut[box] > 0) & ~mine
@@ -338,9 +351,10 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
             "centroid_x_nm": float(centroid[2]),
             "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
             "touches_excluded_section": bool(objects["excluded"][c]),
+            "cavities_filled": bool(fill_holes and int(c) not in unfilled),
         })
     columns = ["id", "voxels", "volume_um3", "z0", "y0", "x0", "z1", "y1", "x1", "centroid_z_nm", "centroid_y_nm",
-               "centroid_x_nm", "touches_volume_border", "touches_excluded_section"]
+               "centroid_x_nm", "touches_volume_border", "touches_excluded_section", "cavities_filled"]
     return pd.DataFrame(rows, columns=columns)
 
 

@@ -61,6 +61,7 @@ def reference(p, *, high, low, open_nm=0, close_nm=0, connectivity=26, vmin=0.0,
 
 def run(p, block, **kwargs):
     out = np.zeros(p.shape, np.uint32)
+    kwargs.setdefault("fill_max_voxels", 10**9)  # the in-memory reference fills every object
     table = label_objects(p, out, spacing=SPACING, block=block, **kwargs)
     return out, table
 
@@ -120,6 +121,16 @@ def test_cavities_are_filled():
     assert labels[hollow] > 0  # the shell's inside now belongs to the shell
     unfilled, _ = run(p, (5, 17, 23), high=0.9, fill_holes=False)
     assert unfilled[hollow] == 0
+
+
+def test_objects_with_huge_boxes_are_left_unfilled_and_flagged():
+    p = smooth_field(4)
+    labels, table = run(p, (5, 17, 23), high=0.9, fill_max_voxels=100)
+    shell = labels[8, 20, 26]  # a voxel of the hollow shell around (8, 20, 20)
+    assert shell > 0 and labels[8, 20, 20] == 0
+    assert not table.set_index("id").loc[shell, "cavities_filled"]
+    _, table = run(p, (5, 17, 23), high=0.9)
+    assert table["cavities_filled"].all()
 
 
 def test_size_rule_measures_objects_spanning_blocks_whole():
