@@ -1,18 +1,18 @@
 """Whole-volume prediction and labelling: throughput, memory and time as the volume grows.
 
 A default 2 x 2 cascade (MLP) is trained quickly on a synthetic demo volume. Volumes of 1, 4 and
-8 sections of 1024 x 1024 voxels (the working level) are then predicted through the same path
+16 sections of 1024 x 1024 voxels (the working level; 1x = 2 sections) are then predicted through the same path
 the workflow uses (shard plan -> predict_shard_job -> stitch_job) with blocks of one section,
 each step in a fresh process on one thread, so the figures include reading, features, the
 cascade, writing and verification. Labelling (label_objects, blocks of 8 x 512 x 512) runs on
 probability volumes of 8 x 1024 x 1024 and 8 times that.
 
 Figures:
-  e2e_mvox_per_s_per_core  voxels / (predict + stitch seconds) for the 8-section volume, 1 core
-  rss_ratio_8x             peak RSS of the predict job, 8 sections / 1 section
+  e2e_mvox_per_s_per_core  voxels / (predict + stitch seconds) for the 16-section volume, 1 core
+  rss_ratio_8x             peak RSS of the predict job, 16 sections / 2 sections
   label_rss_ratio_8x       peak RSS of labelling, 8x volume / 1x volume
   time_ratio_4x, _8x       predict seconds of 4x (8x) volume / (4 (8) x seconds of 1x); 1.0 = linear
-  speedup_2_cores          8-section volume: one job for all blocks vs two jobs side by side
+  speedup_2_cores          16-section volume: one job for all blocks vs two jobs side by side
 
 Run from the repository root: .venv/bin/python benchmarks/scaling.py
 """
@@ -148,8 +148,8 @@ def main():
     with tempfile.TemporaryDirectory(prefix="tessera-scaling-") as tmp:
         root = Path(tmp)
         models, raw = train(root)
-        runs = {n: predict_volume(root, models, raw, n, 1) for n in (1, 4, 8)}
-        pair = predict_volume(root, models, raw, 8, 2)
+        runs = {n: predict_volume(root, models, raw, 2 * n, 1) for n in (1, 4, 8)}
+        pair = predict_volume(root, models, raw, 16, 2)
         labels = {n: label_volume(root, n) for n in (2, 16)}
     one, eight = runs[1], runs[8]
     figures = {
@@ -164,7 +164,7 @@ def main():
         "labelling": {"2x2048x2048": labels[2], "16x2048x2048": labels[16]},
     }
     rows = [
-        ("end to end, 8 x 1024^2 sections, 1 core", figures["e2e_mvox_per_s_per_core"], "Mvox/s/core"),
+        ("end to end, 16 x 1024^2 sections, 1 core", figures["e2e_mvox_per_s_per_core"], "Mvox/s/core"),
         ("predict job peak RSS, 8x / 1x volume", figures["rss_ratio_8x"], f"({one['rss_mb']:.0f} MiB at 1x)"),
         ("labelling peak RSS, 8x / 1x volume", figures["label_rss_ratio_8x"],
          f"({labels[2]['rss_mb']:.0f} MiB at 1x)"),
