@@ -123,13 +123,32 @@ def _points_by_target():
 POINTS = _points_by_target()
 
 
+def annotated_ids(wildcards):
+    """The datasets that give a target's tiles (and so its training and scoring images)."""
+    target = wildcards.target
+    if _painted(target):
+        return POINTS[target]
+    annotated = target_settings(wildcards)["annotated_datasets"]
+    unknown = sorted(set(annotated or ()) - set(DATASETS.index))
+    if unknown:
+        raise WorkflowError(
+            f"invalid input: config/config.yaml: key targets.{target}.annotated_datasets: "
+            f"{unknown} are not datasets of the sheet"
+        )
+    return [d for d in DATASETS.index if annotated is None or d in annotated]
+
+
+def annotated_pyramids(wildcards):
+    return [f"results/{d}/pyramid/raw.ome.zarr" for d in annotated_ids(wildcards)]
+
+
 def annotation_sets(wildcards):
     target = wildcards.target
     if _painted(target):
         # a variant of a painted target reuses the base target's painted tiles
         base = VARIANT_BASE[target]
         return [f"results/{d}/tiles_painted/{base}" for d in POINTS[target]]
-    return [f"results/{d}/tiles/{target}" for d in DATASETS.index]
+    return [f"results/{d}/tiles/{target}" for d in annotated_ids(wildcards)]
 
 
 def target_points(wildcards):

@@ -6,7 +6,7 @@ rule evaluate:
     input:
         tiles="results/study/{target}/tiles",
         probabilities="results/study/{target}/tiles_predicted/probabilities.npz",
-        images=expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        images=annotated_pyramids,
     output:
         summary=report(
             "results/study/{target}/evaluation/summary.tsv",
@@ -43,7 +43,7 @@ rule evaluate:
         runtime=scaled_by_attempt(30),
     params:
         downsample=target_downsample,
-        datasets=list(DATASETS.index),
+        datasets=annotated_ids,
         code=stage_code("evaluate"),
     script:
         "../scripts/evaluate.py"

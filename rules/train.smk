@@ -5,7 +5,7 @@
 rule train_node:
     input:
         tiles="results/study/{target}/tiles",
-        images=expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        images=annotated_pyramids,
         upstream=upstream_models,
     output:
         model="results/study/{target}/cascade/stage{stage}_level{level}.npz",
@@ -23,7 +23,7 @@ rule train_node:
         cascade=node_cascade,
         train_datasets=lambda wildcards: target_settings(wildcards)["train_datasets"],
         downsample=target_downsample,
-        datasets=list(DATASETS.index),
+        datasets=annotated_ids,
         code=stage_code("train"),
     script:
         "../scripts/train_node.py"
@@ -32,7 +32,7 @@ rule train_node:
 rule predict_tiles:
     input:
         tiles="results/study/{target}/tiles",
-        images=expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        images=annotated_pyramids,
         models=cascade_models,
     output:
         probabilities="results/study/{target}/tiles_predicted/probabilities.npz",
@@ -54,7 +54,7 @@ rule predict_tiles:
     params:
         downsample=target_downsample,
         output_sigma=target_output_sigma,
-        datasets=list(DATASETS.index),
+        datasets=annotated_ids,
         code=stage_code("train"),
     script:
         "../scripts/predict_tiles.py"

@@ -87,6 +87,7 @@ def tiny_config(stages=2, **pyramid):
                 "tiles": {"size": 32, "per_dataset": 5},
                 "split": {"fractions": [0.6, 0.2, 0.2], "guard_sections": 1},
                 "cascade": cascade,
+                "annotated_datasets": ["w1", "c1"],
             }
         },
     }
@@ -223,6 +224,25 @@ def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=Path(__file__
                    for o in outputs)
     finally:
         config.write_text(original)
+
+
+def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(finished_study,
+                                                                     repo=Path(__file__).resolve().parents[1]):
+    sheet = finished_study / "config" / "datasets.tsv"
+    original = sheet.read_text()
+    try:
+        sheet.write_text(original + "c2\tcold\tc2\tdemo/data/c2/raw.tif\ttiff_stack\t40\t8\t8\t\n")
+        result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        outputs = re.findall(r"^\s+output: (\S+)", result.stdout, flags=re.M)
+        per_dataset = [o for o in outputs if o.startswith("results/") and not o.startswith("results/study/")]
+        assert per_dataset and all(o.startswith("results/c2/") for o in per_dataset), per_dataset
+        assert any(o.startswith("demo/data/c2") for o in outputs)
+        # no training (c2 is not among the annotated datasets), but the study summaries rerun
+        assert "results/study/nuclei/statistics/comparison.tsv" in result.stdout
+        assert not any("/cascade/" in o or "/tiles" in o for o in outputs)
+        assert not any(o.startswith(("results/w1/", "results/c1/")) for o in outputs)
+    finally:
+        sheet.write_text(original)
 
 
 def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
