@@ -27,40 +27,11 @@ include: "rules/morphometry.smk"
 include: "rules/meshes.smk"
 include: "rules/statistics.smk"
 include: "rules/methods.smk"
+include: "rules/audit.smk"
 
 
 rule all:
     default_target: True
     input:
-        expand(
-            "results/{dataset}/qc/sections.tsv",
-            dataset=DATASETS.index,
-        ),
-        expand(
-            "results/{dataset}/pyramid/raw.ome.zarr",
-            dataset=DATASETS.index,
-        ),
-        # every target and variant is scored on its test tiles
-        expand(
-            "results/study/{target}/evaluation/summary.tsv",
-            target=config["targets"],
-        ),
-        expand(
-            "results/study/{target}/downsampling/curve.tsv",
-            target=STUDY_TARGETS,
-        ),
-        # whole volumes, objects and statistics for the targets themselves
-        expand(
-            "results/study/{target}/statistics/comparison.tsv",
-            target=BASE_TARGETS,
-        ),
-        "results/study/methods.md",
-        expand(
-            "results/study/{target}/next_tiles/points.tsv",
-            target=BASE_TARGETS,
-        ),
-        expand(
-            "results/{dataset}/meshes/{target}.png",
-            dataset=DATASETS.index,
-            target=BASE_TARGETS,
-        ),
+        study_results(),
+        "results/study/audit/manifest.tsv",

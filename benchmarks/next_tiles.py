@@ -1,8 +1,8 @@
 """Do uncertainty-ranked tiles help more than random ones? A fixed-seed experiment on demo data.
 
 Two synthetic demo volumes (tessera.demo, mitochondria at 2x downsampling): the pool volume
-offers tiles to annotate, the other supplies fixed test tiles. A 2 x 1 cascade is trained on a few
-random pool tiles (f1_before); the pool volume is predicted whole; then the same number of
+offers tiles to annotate, the other supplies fixed test sections. A 2 x 1 cascade is trained on a
+few random pool tiles that hold both classes (f1_before); the pool volume is predicted whole; then the same number of
 tiles is added either by highest mean binary entropy (tessera.next_tiles.rank_tiles, spread out
 and away from the known tiles) or at random (same exclusions), the model is retrained, and the
 test-tile pixel F1 is compared. Repeated over --repeats seeds; figures are the means.
@@ -53,11 +53,15 @@ def test_f1(models, image, truth, sections):
     return scores_from_counts(*counts)["f1"]
 
 
-def random_boxes(rng, shape, count, taken):
+def random_boxes(rng, shape, count, taken, truth=None):
+    """Random tiles apart from `taken`; with `truth`, only tiles holding both classes (as painted
+    starting tiles would)."""
     out = []
     while len(out) < count:
         z = int(rng.integers(0, shape[0]))
         y, x = (int(v) for v in rng.integers(0, shape[1] - SIZE, 2))
+        if truth is not None and np.unique(truth[z, y : y + SIZE, x : x + SIZE]).size < 2:
+            continue
         if all(not (d == z and abs(y - b) < SIZE and abs(x - c) < SIZE) for d, b, c in taken + out):
             out.append((z, y, x))
     return out
@@ -76,7 +80,7 @@ def main():
     runs = []
     for seed in range(args.repeats):
         rng = np.random.default_rng(seed)
-        start = random_boxes(rng, pool_image.shape, args.start, [])
+        start = random_boxes(rng, pool_image.shape, args.start, [], truth=pool_truth)
         model = train(spec, pool_image, pool_truth, start)
         before = test_f1(model, test_image, test_truth, range(0, 16, 2))
         prob = np.stack([predict_section(model, pool_image, z) for z in range(pool_image.shape[0])])

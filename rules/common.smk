@@ -250,10 +250,14 @@ def dataset_groups(wildcards):
     }
 
 
-def dataset_inputs(wildcards):
+def dataset_inputs_of(dataset):
     """The files a dataset's results rest on: the stack and the optional ROI mask."""
-    row = DATASETS.loc[wildcards.dataset]
+    row = DATASETS.loc[dataset]
     return [p for p in (row["path"], row["roi_mask"]) if p]
+
+
+def dataset_inputs(wildcards):
+    return dataset_inputs_of(wildcards.dataset)
 
 
 def study_factors(wildcards):

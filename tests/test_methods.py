@@ -49,3 +49,30 @@ def test_methods_text_is_written_from_the_run(tmp_path):
                  "26-connected", "1 of 3 sections", "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",
                  "`data/a.tif`: `ab12`", "validated against held-out annotation"):
         assert fact in text, fact
+
+
+def test_audit_manifest_and_ro_crate(tmp_path):
+    import json
+
+    from tessera.audit import audit_job
+
+    results = tmp_path / "results"
+    (results / "a").mkdir(parents=True)
+    (results / "a" / "table.tsv").write_text("x\n1\n")
+    store = results / "a" / "image.ome.zarr"
+    (store / "0").mkdir(parents=True)
+    (store / "zarr.json").write_text("{}")
+    (store / "0" / "c").write_bytes(b"\x00\x01")
+    source = tmp_path / "stack.tif"
+    source.write_bytes(b"raw")
+    audit_job([results / "a" / "table.tsv", store], [source], results / "study" / "manifest.tsv",
+              results / "ro-crate-metadata.json", study_name="s", root=results)
+    table = pd.read_csv(results / "study" / "manifest.tsv", sep="\t")
+    assert table["path"].tolist() == ["a/image.ome.zarr", "a/table.tsv"]
+    assert table.loc[1, "sha256"] == hashlib.sha256(b"x\n1\n").hexdigest()
+    crate = json.loads((results / "ro-crate-metadata.json").read_text())
+    graph = {e["@id"]: e for e in crate["@graph"]}
+    # RO-Crate 1.1: a metadata descriptor about the root dataset, which lists its parts
+    assert graph["ro-crate-metadata.json"]["about"] == {"@id": "./"}
+    assert {p["@id"] for p in graph["./"]["hasPart"]} == {"a/image.ome.zarr/", "a/table.tsv"}
+    assert graph["#run"]["@type"] == "CreateAction" and graph["#run"]["object"] == [{"@id": str(source)}]

@@ -146,6 +146,9 @@ def test_tiny_study_produces_every_output(finished_study):
     evaluation = pd.read_csv(finished_study / "results/study/nuclei/evaluation/summary.tsv", sep="\t")
     assert list(evaluation["dataset"]) == ["all", "c1", "w1"]
     assert evaluation.loc[0, "f1"] == pytest.approx(scores.loc[scores["role"] == "test", "f1"].iloc[0])
+    manifest = pd.read_csv(finished_study / "results/study/audit/manifest.tsv", sep="\t")
+    assert "study/methods.md" in set(manifest["path"])
+    assert (finished_study / "results/ro-crate-metadata.json").exists()
     methods = (finished_study / "results/study/methods.md").read_text()
     test_f1 = scores.loc[scores["role"] == "test", "f1"].iloc[0]
     assert f"F1 {test_f1:.3f}" in methods and "demo/data/w1/raw.tif" in methods
@@ -189,7 +192,7 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
         assert sorted(trained) == [("3", "0"), ("3", "1")]
         downstream = {"predict_tiles:", "evaluate:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
-                      "meshes:", "statistics:", "methods:", "next_tiles:", "all:"}
+                      "meshes:", "statistics:", "methods:", "next_tiles:", "audit:", "all:"}
         assert planned == {"train_node:"} | downstream
     finally:
         config.write_text(original)
@@ -204,7 +207,7 @@ def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path
         config.write_text(yaml.safe_dump(changed))
         result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
-        assert planned >= {"objects", "morphometry", "statistics", "meshes", "methods", "all"}
+        assert planned >= {"objects", "morphometry", "statistics", "meshes", "methods", "audit", "all"}
         assert not planned & {"stitch", "predict_shard", "shard_plan", "train_node", "pyramid"}
     finally:
         config.write_text(original)

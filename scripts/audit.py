@@ -1,0 +1,19 @@
+"""Snakemake adapter: manifest of every result and the run's RO-Crate."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.audit import audit_job
+from tessera.jobs import run_job
+
+run_job(
+    snakemake.log[0],
+    audit_job,
+    outputs=list(snakemake.input.results),
+    inputs=snakemake.params.sources,
+    out_manifest=snakemake.output.manifest,
+    out_crate=snakemake.output.crate,
+    study_name=snakemake.params.study,
+)
