@@ -1,4 +1,5 @@
 # Validation of config and sheet (before any rule runs) and the input functions rules share.
+import functools
 import re
 import sys
 from pathlib import Path
@@ -194,6 +195,7 @@ def node_cascade(wildcards):
     return settings
 
 
+@functools.lru_cache(maxsize=None)
 def _target_spec(target, stages):
     return CascadeSpec.from_dict(
         {**config["targets"][target]["cascade"], "stages": stages}
@@ -284,3 +286,35 @@ def target_without_variants(target):
 
 def target_output_sigma(wildcards):
     return target_settings(wildcards)["output_smoothing_px"]
+
+
+def study_results():
+    """Every final result of the study (what `rule all` asks for, besides the audit itself)."""
+    return [
+        *expand("results/{dataset}/qc/sections.tsv", dataset=DATASETS.index),
+        *expand("results/{dataset}/pyramid/raw.ome.zarr", dataset=DATASETS.index),
+        *expand(
+            "results/study/{target}/evaluation/summary.tsv", target=config["targets"]
+        ),
+        *expand("results/study/{target}/downsampling/curve.tsv", target=STUDY_TARGETS),
+        *expand(
+            "results/study/{target}/statistics/comparison.tsv", target=BASE_TARGETS
+        ),
+        "results/study/methods.md",
+        *expand("results/study/{target}/next_tiles/points.tsv", target=BASE_TARGETS),
+        *expand(
+            "results/{dataset}/meshes/{target}.png",
+            dataset=DATASETS.index,
+            target=BASE_TARGETS,
+        ),
+        *expand(
+            "results/{dataset}/morphometry/{target}_objects.tsv",
+            dataset=DATASETS.index,
+            target=BASE_TARGETS,
+        ),
+        *expand(
+            "results/{dataset}/objects/{target}.ome.zarr",
+            dataset=DATASETS.index,
+            target=BASE_TARGETS,
+        ),
+    ]

@@ -1,6 +1,7 @@
 """Code identity for rerun triggers and audit records."""
 
 import ast
+import functools
 import hashlib
 from pathlib import Path
 
@@ -15,6 +16,7 @@ def _module_file(name):
     return path / "__init__.py" if path.is_dir() else path.with_suffix(".py")
 
 
+@functools.lru_cache(maxsize=None)
 def _package_imports(path, module):
     """Names of the tessera modules that the file `path` (module `module`) imports anywhere."""
     package = module if path.name == "__init__.py" else module.rpartition(".")[0]
@@ -36,7 +38,7 @@ def _package_imports(path, module):
                 candidate = f"{target}.{alias.name}"
                 if _module_file(candidate).exists():
                     found.add(candidate)
-    return {m for m in found if _module_file(m).exists()}
+    return frozenset(m for m in found if _module_file(m).exists())
 
 
 def module_closure(*modules):
