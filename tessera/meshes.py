@@ -47,7 +47,11 @@ def object_mesh(mask, *, spacing, origin=(0, 0, 0), step=1, unit="nm"):
     if not mask.any():
         raise TesseraInputError("cannot make a mesh of an empty object")
     padded = np.pad(mask.astype(np.float32), 1)
-    verts, faces, _, _ = marching_cubes(padded, level=0.5, spacing=spacing, step_size=int(step))
+    try:
+        verts, faces, _, _ = marching_cubes(padded, level=0.5, spacing=spacing, step_size=int(step))
+    except RuntimeError:
+        # an object thinner than the step has no surface on the coarse grid: keep it whole
+        verts, faces, _, _ = marching_cubes(padded, level=0.5, spacing=spacing, step_size=1)
     verts = (verts + (np.asarray(origin) - 1) * np.asarray(spacing)) * UNITS[unit]
     return verts.astype(np.float32), faces.astype(np.int32)
 

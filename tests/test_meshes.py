@@ -58,3 +58,10 @@ def test_bad_mesh_requests_are_refused():
         object_mesh(np.zeros((4, 4, 4), bool), spacing=(1, 1, 1))
     with pytest.raises(TesseraInputError, match="mesh unit must be one of nm, um"):
         object_mesh(ball(2), spacing=(1, 1, 1), unit="mm")
+
+
+def test_objects_thinner_than_the_step_still_get_a_mesh():
+    thin = np.zeros((3, 9, 9), bool)
+    thin[1, 4, 2:7] = True  # one voxel thick: no surface on a grid of step 3
+    verts, faces = object_mesh(thin, spacing=(40, 8, 8), step=3)
+    assert len(faces) > 0
