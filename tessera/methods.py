@@ -169,8 +169,9 @@ def methods_job(config_sections, sheet_rows, scores, object_settings, comparison
     text += [
         ("Morphometry used the voxel size throughout: surface area by marching cubes (Lorensen & Cline 1987), "
          "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
-         "the mitochondrial complexity index (Vincent et al. 2019). Objects cut by the volume border or touching an "
-         "excluded section were left out of size and shape summaries. Each measure was averaged per animal "
+         "the mitochondrial complexity index (Vincent et al. 2019). QC-excluded sections were bridged by "
+         "interpolating the probabilities of their neighbours; objects cut by the volume border were left out of "
+         "size and shape summaries. Each measure was averaged per animal "
          "(geometric mean for sizes) and conditions were compared on the per-animal values (Welch interval, "
          f"{c['statistics']['confidence']:.0%}); objects were never treated as independent samples."),
         "",

@@ -167,6 +167,33 @@ class _Stats:
         return out
 
 
+def _bridging_plan(excluded, depth):
+    """For each excluded section: (z below, z above, weight of above) of its interpolation."""
+    bad = set(int(z) for z in excluded)
+    plan = {}
+    for z in sorted(bad):
+        below = next((k for k in range(z - 1, -1, -1) if k not in bad), None)
+        above = next((k for k in range(z + 1, depth) if k not in bad), None)
+        if below is None and above is None:
+            continue
+        if below is None or above is None:
+            plan[z] = (below if above is None else above, below if above is None else above, 0.0)
+        else:
+            plan[z] = (below, above, (z - below) / (above - below))
+    return plan
+
+
+def _read_bridged(prob, lo, hi, bridge, scale):
+    """prob[lo:hi] as probabilities, with excluded sections interpolated from their neighbours."""
+    region = np.asarray(prob[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+    for z, (below, above, w) in bridge.items():
+        if lo[0] <= z < hi[0]:
+            a = np.asarray(prob[below, lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+            b = np.asarray(prob[above, lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+            region[z - lo[0]] = (1 - w) * a + w * b
+    return region
+
+
 def _face_pairs(provisional, origin, end, shape, structure):
     """Label pairs that touch across the upper faces of one block (other blocks' faces are theirs)."""
     pairs = []
@@ -205,7 +232,8 @@ def _cavity(mask, others, structure):
 
 def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, close_radius_nm=0.0,
                   fill_holes=True, min_volume_um3=0.0, max_volume_um3=None, connectivity=26,
-                  block=(32, 512, 512), excluded_sections=(), scale=1.0, workdir=None, fill_max_voxels=None):
+                  block=(32, 512, 512), excluded_sections=(), scale=1.0, workdir=None, fill_max_voxels=None,
+                  bridge_excluded=True):
     """Filter a probability volume into labelled objects, block by block.
 
     Parameters
@@ -233,6 +261,10 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
         Block size of the out-of-core passes (the result does not depend on it).
     excluded_sections : sequence of int
         Sections (z of this volume) excluded by QC; objects touching one are flagged.
+    bridge_excluded : bool
+        Replace the probabilities of excluded sections by linear interpolation between the
+        nearest usable sections above and below before anything else, so that a blank or blurred
+        section does not cut every organelle crossing it in two (the object keeps its flag).
     scale : float
         Stored value of probability 1 (255 for uint8 maps).
     workdir : path, optional
@@ -265,6 +297,7 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
     halo = 2 * _reach(opening) + 2 * _reach(closing)
     voxel_nm3 = float(np.prod(spacing))
     excluded = np.array(sorted(int(z) for z in excluded_sections), dtype=np.int64)
+    bridge = _bridging_plan(excluded if bridge_excluded else (), shape[0])
 
     with tempfile.TemporaryDirectory(dir=workdir, prefix="tessera-labels-") as tmp:
         provisional = zarr.create_array(store=str(Path(tmp) / "provisional.zarr"), shape=shape, dtype=np.int64,
@@ -274,7 +307,7 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
         for origin, end in _blocks(shape, block):
             lo = [max(o - h, 0) for o, h in zip(origin, halo)]
             hi = [min(e + h, s) for e, h, s in zip(end, halo, shape)]
-            region = np.asarray(prob[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+            region = _read_bridged(prob, lo, hi, bridge, scale)
             mask = clean_mask(region, low=low, opening=opening, closing=closing)
             core = tuple(slice(o - a, e - a) for o, e, a in zip(origin, end, lo))
             mask, seeds = mask[core], (region[core] > high) & mask[core]

@@ -33,8 +33,8 @@ def animal_summaries(objects, *, measures, subjects=None):
     ----------
     objects : pandas.DataFrame
         One row per object with ``subject``, ``condition``, the measures, and the flags
-        ``touches_volume_border`` and ``touches_excluded_section`` (flagged objects are cut or
-        damaged and left out).
+        ``touches_volume_border`` (objects cut by the volume border are left out; objects
+        crossing a QC-excluded section are kept, since the objects step bridges such sections).
     measures : sequence of str
     subjects : dict, optional
         Subject → condition of every animal of the study, so that animals without any whole
@@ -57,7 +57,7 @@ def animal_summaries(objects, *, measures, subjects=None):
     missing = [c for c in ("subject", "condition", *measures) if c not in objects.columns]
     if missing:
         raise TesseraInputError(f"object table lacks column(s) {missing}")
-    whole = objects[~(objects["touches_volume_border"].astype(bool) | objects["touches_excluded_section"].astype(bool))]
+    whole = objects[~objects["touches_volume_border"].astype(bool)]
     conditions = objects.groupby("subject")["condition"].nunique()
     if (conditions > 1).any():
         raise TesseraInputError(f"animal(s) {sorted(conditions[conditions > 1].index)} appear under several conditions")
@@ -220,7 +220,7 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
     measures = measures or [m for m in comparison["measure"].unique() if m in objects.columns][:6]
     conditions = sorted(animals["condition"].unique())
     fig, axes = plt.subplots(1, len(measures), figsize=(3.2 * len(measures), 3.6), squeeze=False)
-    whole = objects[~(objects["touches_volume_border"].astype(bool) | objects["touches_excluded_section"].astype(bool))]
+    whole = objects[~objects["touches_volume_border"].astype(bool)]
     for ax, m in zip(axes[0], measures):
         for i, c in enumerate(conditions):
             values = whole.loc[whole["condition"] == c, m].dropna().to_numpy(dtype=float)

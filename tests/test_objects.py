@@ -153,9 +153,22 @@ def test_border_and_excluded_section_flags():
     p = np.zeros((6, 20, 20), np.float32)
     p[1:3, 0:4, 5:9] = 0.9  # touches y = 0
     p[3:5, 10:14, 10:14] = 0.9  # crosses the excluded section 4
-    _, table = run(p, (3, 10, 10), high=0.5, excluded_sections=[4])
+    _, table = run(p, (3, 10, 10), high=0.5, excluded_sections=[4], bridge_excluded=False)
     assert table["touches_volume_border"].tolist() == [True, False]
     assert table["touches_excluded_section"].tolist() == [False, True]
+
+
+def test_excluded_sections_are_bridged_so_objects_stay_whole():
+    # A rod through z = 1..6 whose section 3 is blank (lost): bridged by interpolating sections 2
+    # and 4 it stays one object, flagged; without bridging it falls apart in two.
+    p = np.zeros((8, 12, 12), np.float32)
+    p[1:7, 4:8, 4:8] = 0.9
+    p[3] = 0.0
+    labels, table = run(p, (3, 5, 5), high=0.5, excluded_sections=[3])
+    assert labels.max() == 1 and table["voxels"].tolist() == [6 * 16]
+    assert table["touches_excluded_section"].tolist() == [True]
+    labels, _ = run(p, (3, 5, 5), high=0.5, excluded_sections=[3], bridge_excluded=False)
+    assert labels.max() == 2
 
 
 @pytest.mark.parametrize(
@@ -195,7 +208,7 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     scores = tmp_path / "scores.tsv"
     pd.DataFrame({"role": ["validation", "test"], "threshold": [0.62, 0.62]}).to_csv(scores, sep="\t", index=False)
     settings = dict(high=None, low=None, open_radius_nm=0, close_radius_nm=0, fill_holes=True, min_volume_um3=0,
-                    max_volume_um3=None, connectivity=26, block=[3, 16, 16])
+                    max_volume_um3=None, connectivity=26, block=[3, 16, 16], bridge_excluded=False)
     out = tmp_path / "objects.ome.zarr"
     objects_job(image, qc, scores, out, tmp_path / "objects.tsv", tmp_path / "objects.json", target="mito",
                 settings=settings)
