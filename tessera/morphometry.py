@@ -35,8 +35,8 @@ def surface_area(mask, *, spacing):
     Examples
     --------
     >>> cube = np.ones((10, 10, 10), bool)
-    >>> round(surface_area(cube, spacing=(100, 100, 100)), 2)  # 6 faces of ~1 um, corners cut
-    5.72
+    >>> round(surface_area(cube, spacing=(100, 100, 100)), 1)  # 6 faces of 1 um², edges rounded
+    4.9
     """
     spacing = normalize_spacing(spacing, 3)
     padded = np.pad(np.asarray(mask, dtype=np.float32), 3)

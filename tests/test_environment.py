@@ -38,7 +38,8 @@ def test_conda_environment_pins_match_the_lock(repo):
 
 
 def test_every_third_party_import_of_the_package_is_locked(repo):
-    import_names = {"yaml": "pyyaml", "skimage": "scikit-image", "sklearn": "scikit-learn", "PIL": "pillow"}
+    import_names = {"yaml": "pyyaml", "skimage": "scikit-image", "sklearn": "scikit-learn", "PIL": "pillow",
+                    "mpl_toolkits": "matplotlib"}  # mplot3d ships inside matplotlib
     lock = _lock(repo)
     stdlib = set(sys.stdlib_module_names)
     for path in (repo / "tessera").rglob("*.py"):
