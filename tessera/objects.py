@@ -275,7 +275,7 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
     pandas.DataFrame
         One row per object: ``id``, ``voxels``, ``volume_um3``, bounding box ``z0 y0 x0 z1 y1
         x1`` (voxels, end exclusive), centroid in nm, ``touches_volume_border``,
-        ``touches_excluded_section``.
+        ``touches_excluded_section`` and ``cavities_filled``.
 
     Examples
     --------
