@@ -16,7 +16,8 @@ import pandas as pd
 
 from . import __version__
 from .atomic import write_table, write_text
-from .methods import file_sha256, software_versions
+from .checksum import file_sha256
+from .methods import software_versions
 
 
 def _size(path):

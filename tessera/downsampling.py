@@ -11,6 +11,7 @@ import pandas as pd
 
 from .atomic import atomic_path, write_table
 from .errors import TesseraInputError
+from .plotting import pyplot
 
 
 def recommend_factor(curve, *, tolerance):
@@ -52,10 +53,7 @@ def downsampling_job(summaries, factors, out_curve, out_plot, *, target, toleran
 
 
 def plot_curve(curve, path, *, target, chosen):
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     fig, ax = plt.subplots(figsize=(4.5, 3.5))
     low = (curve["f1"] - curve["f1_ci_low"]).fillna(0).clip(lower=0)

@@ -25,6 +25,7 @@ import pandas as pd
 from scipy import ndimage
 
 from .errors import TesseraInputError
+from .plotting import pyplot
 
 IGNORE = 255
 EIGHT = np.ones((3, 3), bool)
@@ -267,10 +268,7 @@ def check_no_leakage(registry, *, source=None):
 
 def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
     """The test tiles' precision–recall curve and per-tile F1 (bars, by dataset)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     overall = summary[summary["dataset"] == "all"].iloc[0]
     fig, ax = plt.subplots(figsize=(4.5, 4))
@@ -294,10 +292,7 @@ def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
 
 def plot_overlays(images, labels, probabilities, threshold, path, *, target, tiles=4):
     """Raw, truth, prediction and errors (red: false positive, blue: false negative) of test tiles."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     ids = list(images)[:tiles]
     fig, axes = plt.subplots(max(1, len(ids)), 4, figsize=(9, 2.3 * max(1, len(ids))), squeeze=False)

@@ -10,6 +10,7 @@ import numpy as np
 from skimage.measure import marching_cubes
 
 from .errors import TesseraInputError
+from .plotting import pyplot
 from .spacing import normalize_spacing
 
 UNITS = {"nm": 1.0, "um": 1e-3}
@@ -109,10 +110,7 @@ def read_ply(path):
 
 def render_preview(meshes, path, *, title="", unit="nm"):
     """A PNG rendering of meshes (matplotlib, shaded by face orientation)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
 
     fig = plt.figure(figsize=(5, 5))

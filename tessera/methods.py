@@ -5,7 +5,6 @@ tile scores, the object settings, the statistics tables, installed package versi
 SHA-256 of every input file), so the paragraph cannot drift from the analysis it describes.
 """
 
-import hashlib
 import json
 from importlib import metadata
 from pathlib import Path
@@ -14,7 +13,7 @@ import pandas as pd
 
 from . import __version__
 from .atomic import write_text
-from .errors import TesseraInputError
+from .checksum import file_sha256
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -24,30 +23,6 @@ CLASSIFIER_NAMES = {
     "hist_gradient_boosting": "histogram gradient boosting",
 }
 PACKAGES = ("snakemake", "numpy", "scipy", "scikit-image", "scikit-learn", "zarr", "pandas")
-
-
-def file_sha256(path, *, chunk=1 << 22):
-    """SHA-256 of a file or of every file below a folder (sorted by relative path), streamed.
-
-    Examples
-    --------
-    >>> import tempfile, pathlib
-    >>> p = pathlib.Path(tempfile.mkdtemp()) / "a.txt"; _ = p.write_bytes(b"abc")
-    >>> file_sha256(p)[:16]
-    'ba7816bf8f01cfea'
-    """
-    path = Path(path)
-    files = sorted(p for p in path.rglob("*") if p.is_file()) if path.is_dir() else [path]
-    if not files:
-        raise TesseraInputError("nothing to checksum", source=path)
-    digest = hashlib.sha256()
-    for file in files:
-        if path.is_dir():
-            digest.update(str(file.relative_to(path)).encode() + b"\0")
-        with open(file, "rb") as fh:
-            for block in iter(lambda: fh.read(chunk), b""):
-                digest.update(block)
-    return digest.hexdigest()
 
 
 def checksum_job(paths, out_path):

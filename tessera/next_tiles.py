@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import TesseraInputError
+from .plotting import pyplot
 
 
 def binary_entropy(p):
@@ -147,10 +148,7 @@ class _Scaled:
 
 
 def _plot(picks, volumes, path, *, size, target, shown=6):
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     rows = picks.head(shown)
     fig, axes = plt.subplots(1, max(1, len(rows)), figsize=(2.4 * max(1, len(rows)), 2.8), squeeze=False)

@@ -14,7 +14,6 @@ step checks every block against the plan and the manifest before it copies it in
 OME-Zarr probability map, which it alone writes (one writer per zarr chunk).
 """
 
-import hashlib
 import json
 import logging
 from pathlib import Path
@@ -24,6 +23,7 @@ import zarr
 
 from .atomic import atomic_path, write_text
 from .cascade.model import cascade_spec, load_node, mirrored_stack, predict_frame, receptive_radius
+from .checksum import file_sha256
 from .errors import TesseraInputError
 from .omezarr import AXES, multiscale_attrs, open_image, working_level
 from .pyramid import downsample_level
@@ -144,14 +144,6 @@ def load_cascade(model_paths, *, target):
     return models
 
 
-def _sha256(path):
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
 def read_plan(path):
     """Read a shard plan written by :func:`plan_job`, checking its format."""
     try:
@@ -183,7 +175,7 @@ def plan_job(pyramid, model_paths, out_plan, *, target, downsample, block, shard
     encode_probability(np.zeros(1, np.float32), dtype)  # validates the dtype before any job runs
     plan.update({"target": target, "downsample": downsample, "output_sigma": output_sigma, "spacing": list(spacing),
                  "factors": list(factors), "dtype": dtype,
-                 "models": {Path(p).name: _sha256(p) for p in sorted(model_paths)}})
+                 "models": {Path(p).name: file_sha256(p) for p in sorted(model_paths)}})
     write_text(out_plan, json.dumps(plan, indent=1) + "\n")
     return {"blocks": len(plan["blocks"]), "halo": plan["halo"], "block": plan["block"]}
 
@@ -222,7 +214,7 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
             path = tmp / _block_name(index)
             np.save(path, values, allow_pickle=False)
             entries.append({"block": index, "file": path.name, "shape": list(values.shape),
-                            "dtype": str(values.dtype), "sha256": _sha256(path)})
+                            "dtype": str(values.dtype), "sha256": file_sha256(path)})
             _log.info("block %d %s done", index, box)
         manifest = {"format": PLAN_FORMAT, "job": job, "blocks": entries}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1) + "\n", encoding="utf-8")
@@ -263,7 +255,7 @@ def verified_blocks(plan, shard_dirs):
             expected = [box[1] - box[0], box[3] - box[2], box[5] - box[4]]
             if not path.is_file():
                 raise TesseraInputError(f"block file missing; {hint}", source=path)
-            if _sha256(path) != entry["sha256"]:
+            if file_sha256(path) != entry["sha256"]:
                 raise TesseraInputError(f"block file does not match its recorded checksum (truncated or altered); {hint}",
                                         source=path)
             try:

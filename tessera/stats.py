@@ -18,6 +18,7 @@ import pandas as pd
 from scipy import stats as sps
 
 from .errors import TesseraInputError
+from .plotting import pyplot
 
 # size-like measures are compared on the log scale: the effect is a ratio (cold / reference)
 LOG_MEASURES = ("volume_um3", "surface_um2", "equivalent_diameter_um", "skeleton_length_um", "complexity_index",
@@ -212,10 +213,7 @@ def statistics_job(object_tables, region_tables, datasets, scores, out_animals, 
 
 def plot_conditions(objects, animals, comparison, path, *, target, accuracy, measures=None):
     """Object distributions (grey) and per-animal values (dots) per condition, effect in the title."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     measures = measures or [m for m in comparison["measure"].unique() if m in objects.columns][:6]
     conditions = sorted(animals["condition"].unique())

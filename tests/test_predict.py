@@ -10,6 +10,7 @@ from scipy import ndimage
 
 from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, prepare_tile, receptive_radius, save_node
 from tessera.cascade.model import predict_section
+from tessera.checksum import file_sha256
 from tessera.errors import TesseraInputError
 from tessera.omezarr import AXES, multiscale_attrs, open_image
 from tessera import predict
@@ -144,7 +145,7 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
     manifest = json.loads((shards[1] / "manifest.json").read_text())
     for entry in manifest["blocks"]:
         if entry["file"] == block_file.name:
-            entry["sha256"] = predict._sha256(block_file)
+            entry["sha256"] = file_sha256(block_file)
     (shards[1] / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(TesseraInputError, match=r"the plan expects uint8 \["):
         stitch_job(plan, shards, target)
