@@ -1,4 +1,5 @@
-# Audit trail: a checksummed manifest of every study result and an RO-Crate of the run.
+# Audit trail: a checksummed manifest of every study result, an index of every job's provenance
+# record (results/provenance/, written by each job) and an RO-Crate of the run.
 
 
 rule audit:
@@ -6,8 +7,21 @@ rule audit:
         results=study_results(),
         inputs=expand("results/{dataset}/audit/inputs.sha256", dataset=DATASETS.index),
     output:
-        manifest="results/study/audit/manifest.tsv",
-        crate="results/ro-crate-metadata.json",
+        manifest=report(
+            "results/study/audit/manifest.tsv",
+            caption="../report/manifest.rst",
+            category="Audit trail",
+        ),
+        records=report(
+            "results/study/audit/provenance.tsv",
+            caption="../report/provenance.rst",
+            category="Audit trail",
+        ),
+        crate=report(
+            "results/ro-crate-metadata.json",
+            caption="../report/ro_crate.rst",
+            category="Audit trail",
+        ),
     log:
         "logs/audit/study.log",
     conda:

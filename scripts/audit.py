@@ -9,11 +9,12 @@ from tessera.audit import audit_job
 from tessera.jobs import run_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     audit_job,
     outputs=list(snakemake.input.results),
     inputs=snakemake.params.sources,
     out_manifest=snakemake.output.manifest,
     out_crate=snakemake.output.crate,
+    out_records=snakemake.output.records,
     study_name=snakemake.params.study,
 )

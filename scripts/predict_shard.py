@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.predict import predict_shard_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     predict_shard_job,
     plan_path=snakemake.input.plan,
     pyramid=snakemake.input.image,

@@ -1,19 +1,31 @@
-"""Glue for the thin scripts in scripts/: logging and clean failures.
+"""Glue for the thin scripts in scripts/: logging, clean failures and provenance records.
 
-Scripts call ``run_job(log_path, func, **kwargs)``. The job's messages go to its Snakemake log;
+Scripts call ``run_job(snakemake, func, **kwargs)``. The job's messages go to its Snakemake log;
 a TesseraInputError is written to the log *and* the console as one line (no traceback), so the
-user sees which file and field to fix without opening the log.
+user sees which file and field to fix without opening the log. When the job succeeds, its
+provenance record (inputs and outputs with checksums, params, code version, host, times) is
+written under ``results/provenance/`` (see :func:`tessera.provenance.job_record`).
 """
 
 import json
 import logging
+import os
 import sys
 import time
+from datetime import datetime, timezone
+from pathlib import Path
 
 
-def run_job(log_path, func, /, **kwargs):
-    """Run ``func(**kwargs)`` with logging to `log_path`; exit 1 with a one-line message on bad input."""
+def run_job(job, func, /, **kwargs):
+    """Run ``func(**kwargs)`` for a Snakemake job; exit 1 with a one-line message on bad input.
+
+    `job` is the ``snakemake`` object of a script (its log gets the messages and a provenance
+    record is written on success) or, outside Snakemake, a log path (no record).
+    """
     from .errors import TesseraInputError
+
+    log_path = job if isinstance(job, (str, os.PathLike)) else job.log[0]
+    started = datetime.now(timezone.utc)
 
     handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
@@ -35,4 +47,10 @@ def run_job(log_path, func, /, **kwargs):
     finally:
         handler.flush()
     log.info("done in %.2f s: %s", time.perf_counter() - start, json.dumps(result, default=str))
+    if not isinstance(job, (str, os.PathLike)):
+        from .provenance import write_job_record
+
+        record = write_job_record(job, started=started, finished=datetime.now(timezone.utc),
+                                  workflow_dir=Path(job.scriptdir).parent)
+        log.info("provenance record: %s", record)
     return result

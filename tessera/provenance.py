@@ -82,3 +82,169 @@ def code_version(*modules):
         digest.update(name.encode())
         digest.update(_module_file(name).read_bytes())
     return f"{__version__}+{digest.hexdigest()[:12]}"
+
+
+# --- per-job provenance records ------------------------------------------------------------
+
+#: Where every job's record goes, one JSON file per job: <root>/<rule>/<wildcards>.json
+RECORD_ROOT = "results/provenance"
+
+#: Results (relative to results/) that record when, where and how a job ran, so they differ
+#: between two otherwise identical runs; every other result is byte for byte reproducible.
+RUN_SPECIFIC = ("provenance/", "study/audit/provenance.tsv", "ro-crate-metadata.json")
+
+
+def is_run_specific(relative_path):
+    """True for the results that record host, times or scheduler resources (see RUN_SPECIFIC).
+
+    Examples
+    --------
+    >>> is_run_specific("provenance/objects/dataset=w1,target=nuclei.json"), is_run_specific("w1/qc/sections.tsv")
+    (True, False)
+    """
+    path = Path(relative_path).as_posix()
+    return any(path == p or (p.endswith("/") and path.startswith(p)) for p in RUN_SPECIFIC)
+
+
+def record_path(rule, wildcards, *, root=RECORD_ROOT):
+    """Path of the provenance record of one job: one file per rule and wildcard values.
+
+    Examples
+    --------
+    >>> record_path("objects", {"target": "nuclei", "dataset": "w1"}).as_posix()
+    'results/provenance/objects/dataset=w1,target=nuclei.json'
+    >>> record_path("audit", {}).as_posix()
+    'results/provenance/audit/job.json'
+    """
+    name = ",".join(f"{k}={v}" for k, v in sorted(dict(wildcards).items())) or "job"
+    return Path(root) / rule / f"{name}.json"
+
+
+def _plain(value):
+    """Snakemake's named lists and other containers as plain JSON values."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    if hasattr(value, "item"):  # numpy scalars
+        return value.item()
+    return str(value)
+
+
+def _named(files):
+    """A Snakemake Namedlist as {name: path} plus unnamed paths, in order."""
+    names = dict(files.items()) if hasattr(files, "items") else {}
+    named = {str(p) for v in names.values() for p in ([v] if isinstance(v, str) else v)}
+    out = [{"name": k, "path": str(p)} for k, v in names.items() for p in ([v] if isinstance(v, str) else v)]
+    out += [{"name": None, "path": str(p)} for p in files if str(p) not in named]
+    return out
+
+
+def _file_entry(entry):
+    from .checksum import file_sha256
+
+    path = Path(entry["path"])
+    if not path.exists():
+        return {**entry, "kind": "missing", "bytes": None, "sha256": None}
+    files = [p for p in path.rglob("*") if p.is_file()] if path.is_dir() else [path]
+    return {**entry, "kind": "store" if path.is_dir() else "file",
+            "bytes": sum(p.stat().st_size for p in files),
+            "sha256": file_sha256(path) if files else None}
+
+
+def _seeds(params, prefix=""):
+    """Every parameter whose key names a seed, found at any depth."""
+    found = {}
+    if isinstance(params, dict):
+        for k, v in params.items():
+            key = f"{prefix}{k}"
+            if "seed" in str(k).lower() and not isinstance(v, (dict, list)):
+                found[key] = v
+            found.update(_seeds(v, key + "."))
+    elif isinstance(params, list):
+        for i, v in enumerate(params):
+            found.update(_seeds(v, f"{prefix}{i}."))
+    return found
+
+
+@functools.lru_cache(maxsize=None)
+def source_state(directory):
+    """Git commit of `directory` and whether tracked files differ from it (None outside git).
+
+    A record from a dirty tree says so: the code version hash still identifies the package
+    source, but the workflow files may differ from any commit.
+    """
+    import subprocess
+
+    def git(*args):
+        done = subprocess.run(["git", "-C", str(directory), *args], capture_output=True, text=True, timeout=30)
+        return done.stdout.strip() if done.returncode == 0 else None
+
+    try:
+        commit = git("rev-parse", "HEAD")
+        status = git("status", "--porcelain", "--untracked-files=no")
+    except (OSError, subprocess.SubprocessError):
+        return {"commit": None, "dirty": None}
+    return {"commit": commit, "dirty": None if status is None or commit is None else bool(status)}
+
+
+def job_record(job, *, started, finished, workflow_dir):
+    """Provenance of one finished job as a JSON-ready dict.
+
+    Parameters
+    ----------
+    job : snakemake.script.Snakemake
+        The object Snakemake hands to a script (``rule``, ``input``, ``output``, ``params``,
+        ``wildcards``, ``threads``, ``resources``, ``log``).
+    started, finished : datetime.datetime
+        Wall-clock start and end of the job (UTC).
+    workflow_dir : path
+        Folder of the workflow, for the git commit and dirty flag.
+
+    Returns
+    -------
+    dict
+        rule, wildcards, inputs and outputs (path, kind, bytes, SHA-256), params, seeds,
+        code version (``params.code``) with the git commit and dirty flag, package versions,
+        threads, resources, host, start, end and duration. Only ``host``, ``started``,
+        ``finished`` and ``duration_s`` differ between two identical runs.
+    """
+    import platform
+
+    from .methods import software_versions
+
+    params = _plain(dict(job.params.items())) if hasattr(job.params, "items") else _plain(list(job.params))
+    resources = {k: _plain(v) for k, v in job.resources.items() if not str(k).startswith("_")}
+    return {
+        "rule": job.rule,
+        "wildcards": _plain(dict(job.wildcards.items())),
+        "inputs": [_file_entry(e) for e in _named(job.input)],
+        "outputs": [_file_entry(e) for e in _named(job.output)],
+        "log": [str(p) for p in job.log],
+        "params": params,
+        "seeds": _seeds(params),
+        "code_version": params.get("code") if isinstance(params, dict) else None,
+        "source": source_state(str(Path(workflow_dir).resolve())),
+        "packages": software_versions(),
+        "python": platform.python_version(),
+        "threads": int(job.threads),
+        "resources": resources,
+        "host": platform.node(),
+        "started": started.isoformat(timespec="seconds"),
+        "finished": finished.isoformat(timespec="seconds"),
+        "duration_s": round((finished - started).total_seconds(), 3),
+    }
+
+
+def write_job_record(job, *, started, finished, workflow_dir, root=RECORD_ROOT):
+    """Write :func:`job_record` of `job` to :func:`record_path` atomically; return the path."""
+    import json
+
+    from .atomic import write_text
+
+    path = record_path(job.rule, dict(job.wildcards.items()), root=root)
+    record = job_record(job, started=started, finished=finished, workflow_dir=workflow_dir)
+    write_text(path, json.dumps(record, indent=1, sort_keys=False) + "\n")
+    return path

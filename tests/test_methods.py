@@ -65,14 +65,25 @@ def test_audit_manifest_and_ro_crate(tmp_path):
     (store / "0" / "c").write_bytes(b"\x00\x01")
     source = tmp_path / "stack.tif"
     source.write_bytes(b"raw")
+    record = results / "provenance" / "tabulate" / "dataset=a.json"
+    record.parent.mkdir(parents=True)
+    record.write_text(json.dumps({"rule": "tabulate", "wildcards": {"dataset": "a"}, "host": "h", "started": "s",
+                                  "finished": "f", "duration_s": 1.0, "code_version": "v",
+                                  "source": {"commit": "c", "dirty": False},
+                                  "outputs": [{"path": str(results / "a" / "table.tsv")}]}))
     audit_job([results / "a" / "table.tsv", store], [source], results / "study" / "manifest.tsv",
-              results / "ro-crate-metadata.json", study_name="s", root=results)
-    table = pd.read_csv(results / "study" / "manifest.tsv", sep="\t")
+              results / "ro-crate-metadata.json", results / "study" / "provenance.tsv", study_name="s",
+              root=results, records_root=results / "provenance")
+    table = pd.read_csv(results / "study" / "manifest.tsv", sep="\t", keep_default_na=False)
     assert table["path"].tolist() == ["a/image.ome.zarr", "a/table.tsv"]
+    # each result links the record of the job that wrote it; the store's job left none here
+    assert table["provenance"].tolist() == ["", str(record)]
     assert table.loc[1, "sha256"] == hashlib.sha256(b"x\n1\n").hexdigest()
     crate = json.loads((results / "ro-crate-metadata.json").read_text())
     graph = {e["@id"]: e for e in crate["@graph"]}
     # RO-Crate 1.1: a metadata descriptor about the root dataset, which lists its parts
     assert graph["ro-crate-metadata.json"]["about"] == {"@id": "./"}
-    assert {p["@id"] for p in graph["./"]["hasPart"]} == {"a/image.ome.zarr/", "a/table.tsv"}
+    assert {p["@id"] for p in graph["./"]["hasPart"]} == {"a/image.ome.zarr/", "a/table.tsv",
+                                                          "provenance/tabulate/dataset=a.json"}
+    assert graph["provenance/tabulate/dataset=a.json"]["about"] == [{"@id": "a/table.tsv"}]
     assert graph["#run"]["@type"] == "CreateAction" and graph["#run"]["object"] == [{"@id": str(source)}]
