@@ -229,6 +229,26 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         config.write_text(original)
 
 
+def test_changed_feature_sigma_retrains_every_node_and_what_follows(finished_study,
+                                                                   repo=Path(__file__).resolve().parents[1]):
+    config = finished_study / "config" / "config.yaml"
+    original = config.read_text()
+    try:
+        changed = tiny_config()
+        changed["targets"]["nuclei"]["cascade"]["sigmas"] = [1.0, 2.5]
+        config.write_text(yaml.safe_dump(changed))
+        result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        trained = re.findall(r"stage(\d)_level(\d)\.npz\n\s+log:", result.stdout)
+        planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
+        # every node computes features with the changed sigmas; images, tiles and QC do not
+        assert sorted(trained) == [("1", "0"), ("1", "1"), ("2", "0"), ("2", "1")]
+        assert {"train_node:", "predict_tiles:", "predict_shard:", "stitch:", "objects:", "morphometry:",
+                "statistics:", "audit:"} <= planned
+        assert not planned & {"demo_dataset:", "ingest:", "pyramid:", "section_qc:", "sample_tiles:", "split_tiles:"}
+    finally:
+        config.write_text(original)
+
+
 def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path(__file__).resolve().parents[1]):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
