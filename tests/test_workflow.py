@@ -282,6 +282,28 @@ def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=Path(__file__
         config.write_text(original)
 
 
+def test_edited_package_module_reruns_only_the_jobs_that_use_it(finished_study, tmp_path,
+                                                               repo=Path(__file__).resolve().parents[1]):
+    # A copy of the workflow whose morphometry module differs by one comment line: Snakemake's
+    # own code trigger sees only rule scripts, so the rules' `code` param must carry the change.
+    copy = tmp_path / "workflow"
+    for part in ("Snakefile", "rules", "scripts", "tessera", "config/schemas", "envs", "report"):
+        source = repo / part
+        (copy / part).parent.mkdir(parents=True, exist_ok=True)
+        if source.is_dir():
+            shutil.copytree(source, copy / part, ignore=shutil.ignore_patterns("__pycache__"))
+        else:
+            shutil.copy2(source, copy / part)
+    unchanged = snakemake("-n", "--snakefile", str(copy / "Snakefile"), cwd=finished_study)
+    assert "Nothing to be done" in unchanged.stdout + unchanged.stderr
+    module = copy / "tessera" / "morphometry.py"
+    module.write_text(module.read_text() + "\n# edited\n")
+    result = snakemake("-n", "--quiet", "rules", "--snakefile", str(copy / "Snakefile"), cwd=finished_study)
+    planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
+    assert {"morphometry", "statistics", "audit"} <= planned
+    assert not planned & {"objects", "stitch", "predict_shard", "train_node", "ingest", "pyramid", "meshes"}
+
+
 def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(finished_study,
                                                                      repo=Path(__file__).resolve().parents[1]):
     sheet = finished_study / "config" / "datasets.tsv"
