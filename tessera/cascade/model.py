@@ -39,6 +39,7 @@ import numpy as np
 from scipy import ndimage
 
 from .. import __version__
+from ..atomic import atomic_path
 from ..errors import TesseraInputError
 from ..pyramid import block_mean
 from .classifiers import KINDS, classifier_from_state, make_classifier
@@ -746,7 +747,11 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
 
 
 def save_node(model, path_or_file):
-    """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes)."""
+    """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes).
+
+    A path is written atomically (:func:`tessera.atomic.atomic_path`): a failed write leaves the
+    previous model file as it was.
+    """
     payload, clf_metas = {}, []
     for i, clf in enumerate([model.classifier, *model.fold_classifiers]):
         arrays, clf_meta = clf.to_state()
@@ -760,7 +765,7 @@ def save_node(model, path_or_file):
     if hasattr(path_or_file, "write"):
         path_or_file.write(data)
     else:
-        with open(path_or_file, "wb") as fh:
+        with atomic_path(path_or_file) as tmp, open(tmp, "wb") as fh:
             fh.write(data)
 
 
