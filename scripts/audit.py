@@ -9,7 +9,7 @@ from tessera.audit import audit_job
 from tessera.jobs import run_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     audit_job,
     outputs=list(snakemake.input.results),
     inputs=snakemake.params.sources,

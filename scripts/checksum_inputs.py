@@ -8,4 +8,4 @@ sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 from tessera.jobs import run_job
 from tessera.methods import checksum_job
 
-run_job(snakemake.log[0], checksum_job, paths=list(snakemake.input), out_path=snakemake.output[0])
+run_job(snakemake, checksum_job, paths=list(snakemake.input), out_path=snakemake.output[0])

@@ -18,7 +18,7 @@ volume_scale = subject_volume_scale(
     animal_sd=params.animal_sd,
 )
 run_job(
-    snakemake.log[0],
+    snakemake,
     write_dataset,
     out_dir=Path(snakemake.output.raw).parent,
     dataset=snakemake.wildcards.dataset,

@@ -9,7 +9,7 @@ from tessera.downsampling import downsampling_job
 from tessera.jobs import run_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     downsampling_job,
     summaries=list(snakemake.input.summaries),
     factors=snakemake.params.factors,

@@ -9,7 +9,7 @@ from tessera.evaluate import evaluate_job
 from tessera.jobs import run_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     evaluate_job,
     annotations=snakemake.input.tiles,
     probabilities=snakemake.input.probabilities,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.tiles import export_tiles_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     export_tiles_job,
     image_path=snakemake.input.image,
     points_path=snakemake.input.points,

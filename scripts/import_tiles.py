@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.tiles import import_tiles_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     import_tiles_job,
     exported_dir=snakemake.input.exported,
     masks_dir=snakemake.params.masks,

@@ -9,7 +9,7 @@ from tessera.ingest import ingest_stack
 from tessera.jobs import run_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     ingest_stack,
     source_path=snakemake.input.stack,
     out_path=snakemake.output.image,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.meshes import meshes_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     meshes_job,
     objects_image=snakemake.input.image,
     measured_table=snakemake.input.table,

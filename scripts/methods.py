@@ -11,7 +11,7 @@ from tessera.methods import methods_job
 targets, datasets = snakemake.params.targets, snakemake.params.dataset_ids
 objects = list(snakemake.input.objects)  # ordered target-major by expand()
 run_job(
-    snakemake.log[0],
+    snakemake,
     methods_job,
     config_sections=snakemake.params.sections,
     sheet_rows=snakemake.params.datasets,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.morphometry import morphometry_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     morphometry_job,
     objects_image=snakemake.input.image,
     objects_table=snakemake.input.table,

@@ -10,7 +10,7 @@ from tessera.next_tiles import next_tiles_job
 
 datasets = snakemake.params.datasets
 run_job(
-    snakemake.log[0],
+    snakemake,
     next_tiles_job,
     probabilities=dict(zip(datasets, snakemake.input.probabilities)),
     annotations=snakemake.input.tiles,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.objects import objects_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     objects_job,
     probability=snakemake.input.probability,
     qc_table=snakemake.input.qc,

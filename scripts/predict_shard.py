@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.predict import predict_shard_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     predict_shard_job,
     plan_path=snakemake.input.plan,
     pyramid=snakemake.input.image,
@@ -17,4 +17,5 @@ run_job(
     out_dir=snakemake.output.shard,
     job=int(snakemake.wildcards.job),
     target=snakemake.wildcards.target,
+    mem_mb=snakemake.resources.mem_mb,
 )

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.pyramid import build_pyramid
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     build_pyramid,
     image_path=snakemake.input.image,
     out_path=snakemake.output.image,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.qc import qc_image
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     qc_image,
     image_path=snakemake.input.image,
     table_path=snakemake.output.table,

@@ -10,7 +10,7 @@ from tessera.tiles import sample_tiles_job
 
 tiles = snakemake.params.tiles
 run_job(
-    snakemake.log[0],
+    snakemake,
     sample_tiles_job,
     labels_path=snakemake.input.labels,
     image_path=snakemake.input.image,

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.predict import plan_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     plan_job,
     pyramid=snakemake.input.image,
     model_paths=list(snakemake.input.models),

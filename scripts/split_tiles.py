@@ -10,7 +10,7 @@ from tessera.tiles import split_job
 
 split = snakemake.params.split
 run_job(
-    snakemake.log[0],
+    snakemake,
     split_job,
     annotation_dirs=list(snakemake.input.tiles),
     out_dir=snakemake.output.tiles,

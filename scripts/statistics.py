@@ -10,7 +10,7 @@ from tessera.stats import statistics_job
 
 datasets = snakemake.params.datasets
 run_job(
-    snakemake.log[0],
+    snakemake,
     statistics_job,
     object_tables=dict(zip(datasets, snakemake.input.objects)),
     region_tables=dict(zip(datasets, snakemake.input.regions)),

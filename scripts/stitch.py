@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.predict import stitch_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     stitch_job,
     plan_path=snakemake.input.plan,
     shard_dirs=list(snakemake.input.shards),

@@ -9,7 +9,7 @@ from tessera.jobs import run_job
 from tessera.train import train_node_job
 
 run_job(
-    snakemake.log[0],
+    snakemake,
     train_node_job,
     annotations=snakemake.input.tiles,
     pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),

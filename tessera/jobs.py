@@ -1,8 +1,10 @@
 """Glue for the thin scripts in scripts/: logging and clean failures.
 
-Scripts call ``run_job(log_path, func, **kwargs)``. The job's messages go to its Snakemake log;
-a TesseraInputError is written to the log *and* the console as one line (no traceback), so the
-user sees which file and field to fix without opening the log.
+Scripts call ``run_job(snakemake, func, **kwargs)`` (or with the log path in place of
+``snakemake``). The job's messages go to its Snakemake log; a TesseraInputError is written to the
+log *and* the console as one line (no traceback), so the user sees which file and field to fix
+without opening the log. Running out of memory is one such line too, naming the rule, its
+``mem_mb`` and the profile key that raises it.
 """
 
 import json
@@ -12,10 +14,17 @@ import time
 
 
 def run_job(log_path, func, /, **kwargs):
-    """Run ``func(**kwargs)`` with logging to `log_path`; exit 1 with a one-line message on bad input."""
-    from .errors import TesseraInputError
+    """Run ``func(**kwargs)`` with logging to the job's log; exit 1 with a one-line message on bad
+    input or when memory runs out.
 
-    handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
+    `log_path` is the log file, or the script's ``snakemake`` object (log, rule and ``mem_mb``
+    are read from it, so an out-of-memory message can name them).
+    """
+    from .errors import TesseraInputError
+    from .resources import job_info, out_of_memory_message
+
+    info = job_info(log_path)
+    handler = logging.FileHandler(info.log, mode="w", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     root = logging.getLogger()
     root.addHandler(handler)
@@ -28,6 +37,11 @@ def run_job(log_path, func, /, **kwargs):
     except TesseraInputError as error:
         log.error("%s", error)
         print(f"tessera: {error}", file=sys.stderr)
+        raise SystemExit(1) from None
+    except MemoryError as error:  # numpy: "Unable to allocate ..."
+        message = out_of_memory_message(info, error)
+        log.error("%s", message)
+        print(f"tessera: {message}", file=sys.stderr)
         raise SystemExit(1) from None
     except Exception:
         log.exception("unexpected failure")
