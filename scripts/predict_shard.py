@@ -17,4 +17,5 @@ run_job(
     out_dir=snakemake.output.shard,
     job=int(snakemake.wildcards.job),
     target=snakemake.wildcards.target,
+    mem_mb=snakemake.resources.mem_mb,
 )

@@ -20,3 +20,11 @@ class TesseraInputError(ValueError):
         self.source = None if source is None else str(source)
         text = message if self.source is None else f"{self.source}: {message}"
         super().__init__(text)
+
+
+class TesseraResourceError(TesseraInputError):
+    """A job needs more memory or disk than it has.
+
+    Raised instead of letting the scheduler kill the job (memory) or leaving a half-written
+    output (disk); the message names the file or rule and the setting that gives it more.
+    """

@@ -1,10 +1,12 @@
 """Glue for the thin scripts in scripts/: logging, clean failures and provenance records.
 
-Scripts call ``run_job(snakemake, func, **kwargs)``. The job's messages go to its Snakemake log;
-a TesseraInputError is written to the log *and* the console as one line (no traceback), so the
-user sees which file and field to fix without opening the log. When the job succeeds, its
-provenance record (inputs and outputs with checksums, params, code version, host, times) is
-written under ``results/provenance/`` (see :func:`tessera.provenance.job_record`).
+Scripts call ``run_job(snakemake, func, **kwargs)`` (or with the log path in place of
+``snakemake``). The job's messages go to its Snakemake log; a TesseraInputError is written to the
+log *and* the console as one line (no traceback), so the user sees which file and field to fix
+without opening the log. Running out of memory is one such line too, naming the rule, its
+``mem_mb`` and the profile key that raises it. When the job succeeds, its provenance
+record (inputs and outputs with checksums, params, code version, host, times) is written under
+``results/provenance/`` (see :func:`tessera.provenance.job_record`).
 """
 
 import json
@@ -17,17 +19,19 @@ from pathlib import Path
 
 
 def run_job(job, func, /, **kwargs):
-    """Run ``func(**kwargs)`` for a Snakemake job; exit 1 with a one-line message on bad input.
+    """Run ``func(**kwargs)`` with logging to the job's log; exit 1 with a one-line message on bad
+    input or when memory runs out.
 
-    `job` is the ``snakemake`` object of a script (its log gets the messages and a provenance
-    record is written on success) or, outside Snakemake, a log path (no record).
+    `job` is the script's ``snakemake`` object (log, rule and ``mem_mb`` are read from it, so an
+    out-of-memory message can name them, and a provenance record is written on success) or,
+    outside Snakemake, a log path (no record).
     """
     from .errors import TesseraInputError
+    from .resources import job_info, out_of_memory_message
 
-    log_path = job if isinstance(job, (str, os.PathLike)) else job.log[0]
+    info = job_info(job)
     started = datetime.now(timezone.utc)
-
-    handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
+    handler = logging.FileHandler(info.log, mode="w", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     root = logging.getLogger()
     root.addHandler(handler)
@@ -40,6 +44,11 @@ def run_job(job, func, /, **kwargs):
     except TesseraInputError as error:
         log.error("%s", error)
         print(f"tessera: {error}", file=sys.stderr)
+        raise SystemExit(1) from None
+    except MemoryError as error:  # numpy: "Unable to allocate ..."
+        message = out_of_memory_message(info, error)
+        log.error("%s", message)
+        print(f"tessera: {message}", file=sys.stderr)
         raise SystemExit(1) from None
     except Exception:
         log.exception("unexpected failure")

@@ -16,20 +16,26 @@ OME-Zarr probability map, which it alone writes (one writer per zarr chunk).
 
 import json
 import logging
+import math
+import zipfile
 from pathlib import Path
 
 import numpy as np
 import zarr
 
 from .atomic import atomic_path, write_text
-from .cascade.model import cascade_spec, load_node, mirrored_stack, predict_frame, receptive_radius
+from .cascade.model import cascade_spec, frame_memory_bytes, load_node, mirrored_stack, node_feature_names, nodes
+from .cascade.model import predict_frame, receptive_radius
 from .checksum import file_sha256
-from .errors import TesseraInputError
+from .errors import TesseraInputError, TesseraResourceError
 from .omezarr import AXES, multiscale_attrs, open_image, working_level
 from .pyramid import downsample_level
 
 PLAN_FORMAT = 1
 DTYPES = ("uint8", "float16", "float32")
+# A shard job's interpreter with numpy, scipy, scikit-learn and zarr imported: about 150 MB
+# resident on Linux (tests/test_predict.py measures it), rounded up.
+BASELINE_MB = 200
 _log = logging.getLogger(__name__)
 
 
@@ -184,11 +190,71 @@ def _block_name(index):
     return f"block_{index:07d}.npy"
 
 
-def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
+def _models_bytes(model_paths):
+    """Bytes the node models take once loaded: the uncompressed size of their arrays."""
+    total = 0
+    for path in model_paths:
+        with zipfile.ZipFile(path) as archive:
+            total += sum(info.file_size for info in archive.infolist())
+    return total
+
+
+def shard_memory_mb(plan, job, spec, model_paths):
+    """Memory (MB) shard job `job` needs: interpreter, models, and its largest block in flight.
+
+    A block is predicted section by section; one section's frame (core + halo) is estimated by
+    :func:`tessera.cascade.model.frame_memory_bytes` from the block's shape, the halo and the
+    feature count of each node. The block's float32 probabilities and their encoding, and the
+    raw windows read from the image, come on top.
+
+    Examples
+    --------
+    >>> from tessera.cascade.model import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> plan = plan_shards((4, 500, 500), block=(2, 250, 250), halo=receptive_radius(spec), align=1, jobs=1)
+    >>> plan["dtype"] = "uint8"
+    >>> BASELINE_MB < shard_memory_mb(plan, 0, spec, []) < BASELINE_MB + 100
+    True
+    """
+    output_sigma = plan.get("output_sigma", 0.0)
+    halo = plan["halo"]
+    sections = 2 * spec.neighbours + 1
+    itemsize = np.dtype(plan["dtype"]).itemsize
+    shapes = {(b[1] - b[0], b[3] - b[2], b[5] - b[4]) for b in (plan["blocks"][i] for i in plan["jobs"][job])}
+    worst = 0
+    for z, y, x in shapes:
+        window = 3 * sections * (y + 2 * halo) * (x + 2 * halo)  # uint8 read, mirrored copy, stack
+        block = z * y * x * (4 * 4 + itemsize)  # probabilities, clip/scale/round temporaries, encoded
+        worst = max(worst, frame_memory_bytes(spec, (y, x), output_sigma=output_sigma) + window + block)
+    return BASELINE_MB + math.ceil((_models_bytes(model_paths) + worst) / 1e6)
+
+
+def _check_memory(plan, job, spec, model_paths, mem_mb, *, source):
+    """Refuse to start a shard job whose ``mem_mb`` is below what its largest block needs."""
+    needed = shard_memory_mb(plan, job, spec, model_paths)
+    if mem_mb >= needed:
+        return needed
+    from .resources import more_memory_hint
+
+    blocks = [plan["blocks"][i] for i in plan["jobs"][job]]
+    largest = max(blocks, key=lambda b: (b[3] - b[2]) * (b[5] - b[4]) * (b[1] - b[0]))
+    shape = [largest[1] - largest[0], largest[3] - largest[2], largest[5] - largest[4]]
+    features = max(len(node_feature_names(spec, *n)) for n in nodes(spec))
+    raise TesseraResourceError(
+        f"shard job {job} needs about {needed} MB of memory (blocks of {shape} voxels read with a halo of "
+        f"{plan['halo']} px, up to {features} features per pixel), but rule predict_shard was given "
+        f"mem_mb={mem_mb}; {more_memory_hint('predict_shard', suggest_mb=needed)}, or make predict.block smaller",
+        source=source,
+    )
+
+
+def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, mem_mb=None):
     """Predict the blocks of shard job `job` and write them with a checksummed manifest.
 
     The output folder holds one ``.npy`` per block and ``manifest.json``; it appears only when
-    every block is written (atomic rename), so a killed job leaves no output.
+    every block is written (atomic rename), so a killed job leaves no output. With `mem_mb` (the
+    memory the job was given, MB), a job that would need clearly more stops before it starts
+    (see :func:`shard_memory_mb`) instead of being killed by the scheduler part-way.
     """
     plan = read_plan(plan_path)
     if not 0 <= job < len(plan["jobs"]):
@@ -204,6 +270,9 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target):
     if list(array.shape) != plan["shape"]:
         raise TesseraInputError(f"the plan is for a volume of shape {plan['shape']}, the image has {list(array.shape)}",
                                 source=plan_path)
+    if mem_mb is not None and plan["jobs"][job]:
+        _log.info("memory: about %d MB needed, mem_mb=%d given",
+                  _check_memory(plan, job, spec, model_paths, mem_mb, source=plan_path), mem_mb)
     entries = []
     with atomic_path(out_dir) as tmp:
         tmp.mkdir()

@@ -134,8 +134,7 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
             raise TesseraInputError(f"node {node} needs the model of node {a}; it was not among the inputs")
     tiles = _training_tiles(spec, registry, labels, arrays, final=node, train_datasets=train_datasets)
     model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
-    with atomic_path(out_path) as tmp:
-        save_node(model, tmp)
+    save_node(model, out_path)  # atomic
     return {"node": list(node), "training_tiles": len(tiles), "training_pixels": model.meta["training_pixels"]}
 
 

@@ -1,6 +1,7 @@
 """Sharded prediction: the plan, exact stitching, and refusal of damaged or missing shard outputs."""
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -11,7 +12,7 @@ from scipy import ndimage
 from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, prepare_tile, receptive_radius, save_node
 from tessera.cascade.model import predict_section
 from tessera.checksum import file_sha256
-from tessera.errors import TesseraInputError
+from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.omezarr import AXES, multiscale_attrs, open_image
 from tessera import predict
 from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
@@ -183,3 +184,89 @@ def test_plan_refuses_a_model_for_another_target(study, tmp_path):
         plan_job(study["image"], study["paths"], tmp_path / "plan.json", target="nuclei", downsample=1,
                  block=(1, 512, 512), shard_jobs=1, max_halo=512, dtype="uint8")
     assert not (tmp_path / "plan.json").exists()
+
+
+@pytest.mark.parametrize("side", [48, 160])
+def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
+    # tracemalloc (Python standard library) traces every buffer numpy allocates, so its peak is
+    # what predicting one section of a block really takes; the estimate must cover it without
+    # overstating it by more than half.
+    import tracemalloc
+
+    from tessera.cascade.model import frame_memory_bytes
+
+    rng = np.random.default_rng(side)
+    volume = rng.integers(0, 256, (3, side, side), dtype=np.uint8)
+    tracemalloc.start()
+    try:
+        predict.predict_block(study["models"], volume, (1, 2, 0, side, 0, side))
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    estimate = frame_memory_bytes(study["spec"], (side, side))
+    assert peak <= estimate <= 1.5 * peak, (peak, estimate)
+
+
+_SHARD_RSS = """
+import json, re, sys
+from tessera.predict import predict_shard_job, read_plan, shard_memory_mb, load_cascade, cascade_spec
+
+
+def peak_rss_mb():
+    # proc(5): VmHWM is the process's peak resident set size, in kB (kB = 1024 bytes); unlike
+    # getrusage's ru_maxrss it starts afresh at exec, so the parent's size does not leak in.
+    with open("/proc/self/status") as fh:
+        return int(re.search(r"VmHWM:\\s+(\\d+) kB", fh.read()).group(1)) * 1024 / 1e6
+
+
+plan_path, image, out, *models = sys.argv[1:]
+baseline = peak_rss_mb()
+predict_shard_job(plan_path, image, models, out, job=0, target="blobs")
+peak = peak_rss_mb()
+spec = cascade_spec(load_cascade(models, target="blobs"))
+print(json.dumps({"baseline": baseline, "peak": peak, "estimate": shard_memory_mb(read_plan(plan_path), 0, spec, models)}))
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
+    # The kernel's own account of a real shard job (peak resident set size) in a fresh
+    # interpreter: imports stay below BASELINE_MB and the whole job below the estimate.
+    import subprocess
+    import sys
+
+    import zarr as zarr_module
+
+    volume = np.random.default_rng(7).integers(0, 256, (2, 300, 300), dtype=np.uint8)
+    image = tmp_path / "big.ome.zarr"
+    group = zarr_module.open_group(store=str(image), mode="w", zarr_format=3)
+    group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
+    group.create_array(name="0", data=volume, chunks=(1, 128, 128), dimension_names=AXES)
+    plan = tmp_path / "plan.json"
+    plan_job(image, study["paths"], plan, target="blobs", downsample=1, block=(2, 300, 300), shard_jobs=1,
+             max_halo=512, dtype="uint8")
+    script = tmp_path / "job.py"
+    script.write_text(_SHARD_RSS)
+    result = subprocess.run([sys.executable, str(script), str(plan), str(image), str(tmp_path / "job0"),
+                             *map(str, study["paths"])], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    figures = json.loads(result.stdout)
+    assert figures["baseline"] < predict.BASELINE_MB, figures
+    assert figures["peak"] <= figures["estimate"], figures
+
+
+def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path):
+    out = study["root"] / "memory"
+    plan = out / "plan.json"
+    plan_job(study["image"], study["paths"], plan, target="blobs", downsample=1, block=(5, 64, 64), shard_jobs=1,
+             max_halo=512, dtype="uint8")
+    needed = predict.shard_memory_mb(predict.read_plan(plan), 0, study["spec"], study["paths"])
+    with pytest.raises(TesseraResourceError) as refused:
+        predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed - 1)
+    message = str(refused.value)
+    assert message.startswith(f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of [5, 64, 64] voxels")
+    assert f"rule predict_shard was given mem_mb={needed - 1}" in message
+    assert f"set-resources: {{predict_shard: {{mem_mb: {needed}}}}}" in message
+    assert not (out / "job0").exists() and not list(out.glob("job0*"))
+    predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed)
+    assert (out / "job0" / "manifest.json").exists()

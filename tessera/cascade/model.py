@@ -39,9 +39,10 @@ import numpy as np
 from scipy import ndimage
 
 from .. import __version__
+from ..atomic import atomic_path
 from ..errors import TesseraInputError
 from ..pyramid import block_mean
-from .classifiers import KINDS, classifier_from_state, make_classifier
+from .classifiers import CHUNK_ROWS, KINDS, classifier_from_state, make_classifier
 from .features import (
     DEFAULT_SIGMAS,
     feature_names,
@@ -741,12 +742,71 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
     return predict_frame(models, image, (h, w), output_sigma=output_sigma)
 
 
+# Per-row working memory of a classifier on one chunk of rows beyond the rows themselves: the
+# finite check (1 byte per feature) plus hidden layers or per-tree descent state (float32/int64).
+_CLASSIFIER_ROW_BYTES = 256
+
+
+def _image_channels(spec, level):
+    sigmas = _sigmas(spec, level)
+    return len(feature_names(sigmas)) + 2 * spec.neighbours * (1 + 2 * len(sigmas))
+
+
+def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
+    """Peak bytes :func:`predict_frame` allocates for one core of `core_shape` (y, x).
+
+    Follows the frame's geometry: the image levels (with neighbouring sections), every level's
+    cached image features over the widest margin its nodes read, every node's map, and the
+    larger of the filter bank's temporaries and the biggest node's feature matrix with its
+    context maps and one classifier chunk. Everything is float32.
+
+    Examples
+    --------
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> frame_memory_bytes(spec, (64, 64)) > 4 * (64 + 2 * receptive_radius(spec)) ** 2 * len(feature_names((1.0,)))
+    True
+    """
+    halo = receptive_radius(spec, output_sigma=output_sigma)
+    cy, cx = _core_shape(spec, core_shape)
+    margin = margins(spec, output_sigma=output_sigma)
+    image = (2 * spec.neighbours + 1) * (cy + 2 * halo) * (cx + 2 * halo) * 4 * 4 / 3  # + coarser levels
+    cached = filters = 0
+    for level in range(spec.levels + 1):
+        f = 2**level
+        widest = max([0] + [m for (_, lv), m in margin.items() if lv == level])
+        extra = _feature_halo(spec, level)
+        pixels = ((cy + 2 * widest) // f + 2 * extra) * ((cx + 2 * widest) // f + 2 * extra)
+        channels = _image_channels(spec, level)
+        cached += 4 * pixels * channels
+        # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
+        # are concatenated (one more copy of the channels)
+        temporaries = len(_sigmas(spec, level)) + 8 + (channels if spec.neighbours else 0)
+        filters = max(filters, 4 * pixels * temporaries)
+
+    def rows(node, extra_margin=0):
+        f = 2 ** node[1]
+        return ((cy + 2 * (margin[node] + extra_margin)) // f) * ((cx + 2 * (margin[node] + extra_margin)) // f)
+
+    maps = sum(4 * rows(node) for node in margin)
+    work = 0
+    for node in margin:
+        width = len(node_feature_names(spec, *node))
+        context = sum(4 * rows(node, _read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node))
+        chunk = min(rows(node), CHUNK_ROWS) * (width + _CLASSIFIER_ROW_BYTES)
+        work = max(work, 4 * rows(node) * width + context + chunk)
+    return int(image + cached + maps + max(filters, work))
+
+
 # ----------------------------------------------------------------------------------------------
 # storage: arrays + JSON in one .npz, never pickle
 
 
 def save_node(model, path_or_file):
-    """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes)."""
+    """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes).
+
+    A path is written atomically (:func:`tessera.atomic.atomic_path`): a failed write leaves the
+    previous model file as it was.
+    """
     payload, clf_metas = {}, []
     for i, clf in enumerate([model.classifier, *model.fold_classifiers]):
         arrays, clf_meta = clf.to_state()
@@ -760,7 +820,7 @@ def save_node(model, path_or_file):
     if hasattr(path_or_file, "write"):
         path_or_file.write(data)
     else:
-        with open(path_or_file, "wb") as fh:
+        with atomic_path(path_or_file) as tmp, open(tmp, "wb") as fh:
             fh.write(data)
 
 

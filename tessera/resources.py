@@ -1,0 +1,75 @@
+"""What a job was given (rule, memory) and what to tell the user when that is not enough.
+
+Snakemake passes every script a ``snakemake`` object holding the rule name and the job's
+resources; :func:`job_info` reads the two facts the messages need from it. Rules declare
+``mem_mb`` through ``scaled_by_attempt`` (rules/common.smk), so a job can be given more memory
+in two ways, and every message names both: a per-rule figure in the profile's config.yaml
+(``set-resources``), or ``--retries``, which reruns a failed job with ``mem_mb`` multiplied by
+the attempt number.
+"""
+
+import os
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class JobInfo:
+    """The facts about a running job that error messages name.
+
+    Parameters
+    ----------
+    log : str
+        The job's log file.
+    rule : str, optional
+        The Snakemake rule the job belongs to.
+    mem_mb : int, optional
+        The memory (MB) the job was given.
+    """
+
+    log: str
+    rule: str | None = None
+    mem_mb: int | None = None
+
+
+def job_info(job):
+    """A :class:`JobInfo` from a script's ``snakemake`` object, or from a bare log path.
+
+    Examples
+    --------
+    >>> job_info("logs/ingest/a1.log")
+    JobInfo(log='logs/ingest/a1.log', rule=None, mem_mb=None)
+    """
+    if isinstance(job, (str, os.PathLike)):
+        return JobInfo(log=os.fspath(job))
+    mem_mb = getattr(getattr(job, "resources", None), "mem_mb", None)
+    return JobInfo(log=str(job.log[0]), rule=getattr(job, "rule", None),
+                   mem_mb=None if mem_mb is None else int(mem_mb))
+
+
+def more_memory_hint(rule, *, suggest_mb=None):
+    """Where to give `rule` more memory: the profile key, or retries (which scale ``mem_mb``).
+
+    Examples
+    --------
+    >>> more_memory_hint("stitch", suggest_mb=4000)
+    "give it more in the profile's config.yaml (set-resources: {stitch: {mem_mb: 4000}}) or rerun with --retries 1 (each retry multiplies mem_mb by the attempt number)"
+    """
+    rule = rule or "<rule>"
+    figure = "<MB>" if suggest_mb is None else int(suggest_mb)
+    return (f"give it more in the profile's config.yaml (set-resources: {{{rule}: {{mem_mb: {figure}}}}}) "
+            "or rerun with --retries 1 (each retry multiplies mem_mb by the attempt number)")
+
+
+def out_of_memory_message(info, error):
+    """One line for a job that ran out of memory: rule, its ``mem_mb``, what failed, what to raise.
+
+    Examples
+    --------
+    >>> out_of_memory_message(JobInfo("x.log", "objects", 2000), MemoryError("Unable to allocate 3 GiB"))
+    "rule objects ran out of memory with mem_mb=2000 (Unable to allocate 3 GiB); give it more in the profile's config.yaml (set-resources: {objects: {mem_mb: 4000}}) or rerun with --retries 1 (each retry multiplies mem_mb by the attempt number)"
+    """
+    who = f"rule {info.rule}" if info.rule else "the job"
+    given = f"mem_mb={info.mem_mb}" if info.mem_mb is not None else "its mem_mb"
+    what = " ".join(str(error).split()) or type(error).__name__
+    suggest = None if info.mem_mb is None else 2 * info.mem_mb
+    return f"{who} ran out of memory with {given} ({what}); {more_memory_hint(info.rule, suggest_mb=suggest)}"
