@@ -187,6 +187,40 @@ def measure_objects(labels, objects, *, spacing):
     return objects.merge(measured, on="id", how="left")
 
 
+def edge_corrected_weights(extents, window):
+    """Miles–Lantuéjoul weights of whole objects: how many objects each one stands for.
+
+    An object of bounding-box extent ``h`` (voxels per axis) lies wholly inside a window of
+    ``W`` voxels, without touching its outermost voxels, at ``prod(W - h - 1)`` of the
+    ``prod(W)`` positions per window volume. Weighting each whole object by
+    ``prod(W) / prod(W - h - 1)`` makes the count of whole objects an unbiased estimate of the
+    number of objects per window volume for a stationary pattern (Miles 1974; Lantuéjoul 1980;
+    from memory): large objects are more often cut by the border, and count for more when seen.
+
+    Parameters
+    ----------
+    extents : (n, 3) array of int
+        Bounding-box extents ``z1 - z0, y1 - y0, x1 - x0`` of whole objects.
+    window : tuple of 3 int
+        Shape of the image volume.
+
+    Returns
+    -------
+    (n,) float64 array, every value >= 1
+
+    Examples
+    --------
+    >>> edge_corrected_weights([[1, 1, 1], [8, 8, 8]], (10, 10, 10)).round(3).tolist()
+    [1.953, 1000.0]
+    """
+    extents = np.asarray(extents, dtype=np.float64).reshape(-1, 3)
+    window = np.asarray(window, dtype=np.float64)
+    room = window - extents - 1
+    if (room <= 0).any():
+        raise TesseraInputError("an object as large as the volume cannot be whole; it touches the border")
+    return np.prod(window) / np.prod(room, axis=1)
+
+
 def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512, 512)):
     """Count, volume, surface and numerical densities of objects per region.
 
@@ -198,7 +232,8 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
         Region labels of the same shape (e.g. cells; 0 = no region). None = the whole volume is
         region 1.
     objects : pandas.DataFrame
-        Measured objects (``id``, ``surface_um2``, ``touches_volume_border``).
+        Measured objects (``id``, ``surface_um2``, ``touches_volume_border`` and the bounding
+        box ``z0 y0 x0 z1 y1 x1``, upper bounds exclusive).
     spacing : (float, float, float)
     block : (int, int, int)
         Read in blocks of this size.
@@ -209,16 +244,21 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
         Per region: ``region``, ``region_volume_um3``, ``objects`` (all objects assigned by
         their largest overlap), ``objects_whole`` (those not cut by the volume border),
         ``V_V`` (object volume inside the region / region volume), ``S_V`` (µm² per µm³, surfaces
-        of the assigned objects), ``N_V`` (whole objects per µm³: the exclude-touching rule) and
-        ``N_V_biased`` (all objects per µm³, cut ones included).
+        of the assigned objects), ``N_V`` (objects per µm³: whole objects weighted by
+        :func:`edge_corrected_weights`), ``N_V_exclude_touching`` (whole objects per µm³,
+        unweighted) and ``N_V_biased`` (all objects per µm³, cut ones included).
     home : pandas.Series
         The region of each object id (0 = outside every region).
 
     Notes
     -----
-    Objects cut by the volume border would be counted in two neighbouring volumes and have
-    truncated surfaces; ``N_V`` leaves them out, which is unbiased only when the region is large
-    compared with the objects. Report both.
+    Objects cut by the volume border would be counted in two neighbouring volumes and their
+    size is unknown. Leaving them out (``N_V_exclude_touching``) undercounts, and more so for
+    large objects: a condition with larger organelles would show a spurious drop in N_V.
+    ``N_V`` corrects for this with the Miles–Lantuéjoul weights, computed for the whole image
+    volume as the window; for a region smaller than the volume (a cell) it is the same
+    correction, exact on average over regions rather than for each one. ``N_V_biased`` counts
+    cut objects as whole ones and overcounts. Report ``N_V`` and keep the other two beside it.
     """
     spacing = normalize_spacing(spacing, 3)
     voxel_um3 = float(np.prod(spacing)) / 1e9
@@ -247,17 +287,25 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
         if c > home.get(o, (0, 0))[1]:
             home[o] = (r, c)
     by_id = objects.set_index("id")
+    missing = [c for c in ("z0", "y0", "x0", "z1", "y1", "x1") if c not in by_id.columns]
+    if missing:
+        raise TesseraInputError(f"object table lacks bounding-box column(s) {missing}")
+    extent = pd.DataFrame({a: by_id[f"{a}1"] - by_id[f"{a}0"] for a in "zyx"})
     rows = []
     for region in sorted(r for r in region_voxels if r > 0):
         vol = region_voxels[region] * voxel_um3
         members = [o for o, (r, _) in home.items() if r == region]
         inside = sum(c for (o, r), c in overlap.items() if r == region) * voxel_um3
         surface = float(by_id.loc[members, "surface_um2"].sum()) if members else 0.0
-        whole = int((~by_id.loc[members, "touches_volume_border"].astype(bool)).sum()) if members else 0
-        rows.append({"region": region, "region_volume_um3": vol, "objects": len(members), "objects_whole": whole,
-                     "V_V": inside / vol, "S_V": surface / vol, "N_V": whole / vol, "N_V_biased": len(members) / vol})
+        whole_ids = [o for o in members if not bool(by_id.loc[o, "touches_volume_border"])]
+        weights = (edge_corrected_weights(extent.loc[whole_ids].to_numpy(), shape) if whole_ids
+                   else np.zeros(0))
+        rows.append({"region": region, "region_volume_um3": vol, "objects": len(members),
+                     "objects_whole": len(whole_ids), "V_V": inside / vol, "S_V": surface / vol,
+                     "N_V": float(weights.sum()) / vol, "N_V_exclude_touching": len(whole_ids) / vol,
+                     "N_V_biased": len(members) / vol})
     table = pd.DataFrame(rows, columns=["region", "region_volume_um3", "objects", "objects_whole", "V_V", "S_V", "N_V",
-                                        "N_V_biased"])
+                                        "N_V_exclude_touching", "N_V_biased"])
     region_of = pd.Series({int(o): home.get(int(o), (0, 0))[0] for o in objects["id"]}, name="region", dtype=np.int64)
     return table, region_of
 
