@@ -97,12 +97,14 @@ def train(root):
 
 
 def write_image(path, raw, sections):
+    from tessera.chunksums import record_checksums
     from tessera.omezarr import AXES, multiscale_attrs
 
     group = zarr.open_group(store=str(path), mode="w", zarr_format=3)
     group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 16, 16), factors=[(1, 1, 1)])
     stack = np.concatenate([raw] * (-(-sections // raw.shape[0])))[:sections]
     group.create_array(name="0", data=stack, chunks=(1, 512, 512), dimension_names=AXES)
+    record_checksums(path)
 
 
 def predict_volume(root, models, raw, sections, jobs):

@@ -31,6 +31,7 @@ try:
         config["datasets"],
         f"{workflow.basedir}/config/schemas/datasets.schema.yaml",
         generated_dir=DEMO_DIR if "demo" in config else None,
+        data_roots=config["data_roots"],
     )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None

@@ -124,7 +124,7 @@ def _parse_number(text, *, where):
     return value
 
 
-def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None):
+def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, data_roots=()):
     """Read and validate the datasets sheet.
 
     Parameters
@@ -139,6 +139,9 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None):
     generated_dir : str or Path, optional
         Paths under this folder are made by the workflow itself (the demo study) and need not
         exist yet.
+    data_roots : sequence of str or Path, optional
+        Folders beyond `base_dir` and the sheet's own folder that ``path`` and ``roi_mask`` may
+        point into (relative ones are taken from `base_dir`); see :func:`allowed_roots`.
 
     Returns
     -------
@@ -177,18 +180,45 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None):
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
         )
-    _check_paths(frame, sheet_path, Path(base_dir), generated_dir)
+    roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
+    _check_paths(frame, sheet_path, Path(base_dir), generated_dir, roots)
     return frame.set_index("dataset", drop=False)
 
 
-def _check_paths(frame, sheet_path, base_dir, generated_dir):
+SHEET_PATH_COLUMNS = ("path", "roi_mask")
+
+
+def allowed_roots(sheet_path, *, base_dir=".", data_roots=()):
+    """The folders a sheet's paths must resolve into: the project, the sheet's folder, `data_roots`.
+
+    Every root is resolved (symbolic links followed, ``..`` removed), so a path is inside a root
+    exactly when its own resolved form starts with the root's: ``../`` steps and links that lead
+    elsewhere are caught, wherever they occur.
+
+    Examples
+    --------
+    >>> [str(r) for r in allowed_roots("/study/sheets/d.tsv", base_dir="/study", data_roots=["/mnt/em", "raw"])]
+    ['/study', '/study/sheets', '/mnt/em', '/study/raw']
+    """
+    base = Path(base_dir).resolve()
+    roots = [base, Path(sheet_path).resolve().parent, *((base / r).resolve() for r in data_roots)]
+    return list(dict.fromkeys(roots))  # unique, first mention first
+
+
+def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
     generated = None if generated_dir is None else (base_dir / generated_dir).resolve()
     for i, row in enumerate(frame.to_dict(orient="records")):
-        for column in ("path", "roi_mask"):
+        for column in SHEET_PATH_COLUMNS:
             value = row.get(column)
             if value is None:
                 continue
             full = (base_dir / value).resolve()
+            if not any(full.is_relative_to(root) for root in roots):
+                raise TesseraInputError(
+                    f"{value!r} resolves to '{full}', outside the allowed data roots {[str(r) for r in roots]}; "
+                    "add its folder to data_roots in config/config.yaml",
+                    source=f"{sheet_path}, row {i + 2}, column {column}",
+                )
             if generated is not None and full.is_relative_to(generated):
                 continue
             if not full.exists():

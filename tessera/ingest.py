@@ -23,6 +23,7 @@ import tifffile
 import zarr
 
 from .atomic import atomic_path
+from .chunksums import record_checksums
 from .errors import TesseraInputError
 from .omezarr import AXES, multiscale_attrs
 
@@ -169,7 +170,7 @@ class _Zarr(_Source):
         if isinstance(node, zarr.Group):
             from .omezarr import open_image
 
-            _, info = open_image(path)
+            _, info = open_image(path, checksums="if-present")  # input: checked where it carries records
             node = info["levels"][0]
             self.header_spacing = info["spacing"]
         if node.ndim != 3:
@@ -359,6 +360,7 @@ def ingest_stack(
                 name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES
             )
             _copy_sections(source, array, chunks[0], mapping)
+            record_checksums(tmp)
     finally:
         source.close()
     return {"shape": list(source.shape), "spacing": list(spacing), "intensity_mapping": mapping}

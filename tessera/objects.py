@@ -35,6 +35,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from .atomic import atomic_path, write_table, write_text
+from .chunksums import record_checksums, verified_bytes
 from .errors import TesseraInputError
 from .omezarr import AXES, multiscale_attrs, open_image
 from .pyramid import link_tree
@@ -437,10 +438,11 @@ def objects_job(probability, qc_table, scores, out_image, out_table, out_setting
             f"{settings['connectivity']}-connected voxels in 3D belong to one object", "excluded_sections": excluded,
             "spacing_nm": list(info["spacing"])}
     block = settings.pop("block")
+    level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
     with atomic_path(out_image) as tmp:
-        for name in [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]:
+        for name in level_paths:
             link_tree(Path(probability) / name, tmp / name)
-        (tmp / "zarr.json").write_bytes((Path(probability) / "zarr.json").read_bytes())
+        (tmp / "zarr.json").write_bytes(verified_bytes(probability, "zarr.json"))
         root = zarr.open_group(store=str(tmp), mode="r+", zarr_format=3)
         labels_group = root.create_group("labels")
         labels_group.attrs["ome"] = {"version": "0.5", "labels": [target]}
@@ -462,6 +464,8 @@ def objects_job(probability, qc_table, scores, out_image, out_table, out_setting
                               excluded_sections=excluded, workdir=Path(out_image).parent, **settings)
         for factor, level in zip(info["factors"][1:], levels[1:]):
             _subsample(levels[0], level, factor)
+        # the probability levels keep the records made when they were stitched
+        record_checksums(tmp, linked={name: probability for name in level_paths})
     write_table(out_table, table)
     write_text(out_settings, json.dumps({**used, "objects": len(table)}, indent=1) + "\n")
     return {"objects": len(table), "high": high, "low": low}

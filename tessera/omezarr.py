@@ -10,6 +10,7 @@ from pathlib import Path
 
 import zarr
 
+from .chunksums import checked_store
 from .errors import TesseraInputError
 from .spacing import normalize_spacing
 
@@ -69,8 +70,19 @@ def multiscale_attrs(*, name, spacing, factors):
     }
 
 
-def open_image(path):
-    """Open an OME-Zarr image written by this package, read-only.
+def open_image(path, *, checksums="required"):
+    """Open an OME-Zarr image written by this package, read-only, verifying what is read.
+
+    Every file zarr reads from the image (metadata and chunks) is first compared with the
+    SHA-256 recorded when the store was written (:mod:`tessera.chunksums`), so a damaged chunk
+    is refused the moment a job touches it and chunks a job never reads cost nothing.
+
+    Parameters
+    ----------
+    path : str or Path
+    checksums : {'required', 'if-present'}, optional
+        ``'required'`` (the pipeline's own stores) refuses files without a record;
+        ``'if-present'`` (images given as input) checks only what carries records.
 
     Returns
     -------
@@ -80,8 +92,13 @@ def open_image(path):
         zarr.Array) and ``extra`` (the ``tessera`` attributes).
     """
     path = Path(path)
+    if checksums not in ("required", "if-present"):
+        raise TesseraInputError(f"checksums must be 'required' or 'if-present', got {checksums!r}")
+    if not path.is_dir():
+        raise TesseraInputError("not an OME-Zarr image (zarr v3 group): no such folder", source=path)
     try:
-        group = zarr.open_group(store=str(path), mode="r", zarr_format=3)
+        store = checked_store(path, required=checksums == "required")
+        group = zarr.open_group(store=store, mode="r", zarr_format=3)
     except (FileNotFoundError, zarr.errors.GroupNotFoundError, ValueError) as exc:
         raise TesseraInputError(f"not an OME-Zarr image (zarr v3 group): {exc}", source=path) from None
     attrs = group.attrs.asdict()

@@ -27,6 +27,7 @@ from .atomic import atomic_path, write_text
 from .cascade.model import cascade_spec, frame_memory_bytes, load_node, mirrored_stack, node_feature_names, nodes
 from .cascade.model import predict_frame, receptive_radius
 from .checksum import file_sha256
+from .chunksums import record_checksums
 from .errors import TesseraInputError, TesseraResourceError
 from .omezarr import AXES, multiscale_attrs, open_image, working_level
 from .pyramid import downsample_level
@@ -377,4 +378,5 @@ def stitch_job(plan_path, shard_dirs, out_path, *, viewing_levels=2, chunks=(1, 
                                         dimension_names=AXES)
             downsample_level(previous, current, factors=(1, 2, 2))
             previous = current
+        record_checksums(tmp)
     return {"shape": list(shape), "dtype": plan["dtype"], "blocks": len(plan["blocks"])}

@@ -13,6 +13,7 @@ import numpy as np
 import zarr
 
 from .atomic import atomic_path
+from .chunksums import record_checksums
 from .errors import TesseraInputError
 from .omezarr import AXES, multiscale_attrs, open_image
 
@@ -144,7 +145,8 @@ def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
             {"ome": multiscale_attrs(name=name, spacing=info["spacing"], factors=factors), "tessera": extra}
         )
         link_tree(Path(image_path) / "0", tmp / "0")
-        previous = zarr.open_array(store=str(tmp / "0"), mode="r")
+        # read level 0 through the ingest store (the same files), so every chunk is verified
+        previous = level0
         for level in range(1, levels + 1):
             shape = tuple(-(-s // k) for s, k in zip(previous.shape, step))
             chunks = tuple(min(c, s) for c, s in zip(level0.chunks, shape))
@@ -153,4 +155,5 @@ def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
             )
             downsample_level(previous, current, factors=step)
             previous = current
+        record_checksums(tmp, linked={"0": image_path})  # level 0 keeps the ingest's records
     return factors

@@ -158,8 +158,101 @@ def test_model_made_for_something_else_is_refused(trained, tmp_path):
         load_node(truncated)
     foreign = tmp_path / "foreign.npz"
     np.savez(foreign, weights=np.zeros(3))
-    with pytest.raises(TesseraInputError, match="no metadata"):
+    with pytest.raises(TesseraInputError, match=r"foreign\.npz: not a tessera model file \(no metadata\)"):
         load_node(foreign)
+
+
+def _flip(data, offset):
+    data = bytearray(data)
+    data[offset] ^= 0x01
+    return bytes(data)
+
+
+@pytest.mark.parametrize("damage", ["truncated", "bit-flip", "bit-flip-early"])
+def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, damage):
+    spec, _, models = trained
+    path = tmp_path / "stage1_level0.npz"
+    save_node(models[(1, 0)], path)
+    data = path.read_bytes()
+    if damage == "truncated":
+        data = data[: len(data) * 2 // 3]
+    else:  # one bit inside the compressed members (zip keeps a CRC-32 per member; we a SHA-256)
+        data = _flip(data, len(data) // 2 if damage == "bit-flip" else 200)
+    path.write_bytes(data)
+    with pytest.raises(TesseraInputError, match=r"rerun rule train_node to rebuild it \(delete the file, or snakemake --forcerun train_node\)") as error:
+        load_node(path, target="blobs")
+    assert str(error.value).startswith(f"{path}: ")
+
+
+def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
+    # a well-formed .npz (numpy writes it afresh, so every zip CRC is right) whose weights differ
+    # from the ones trained: only the SHA-256 recorded at write time can tell
+    spec, _, models = trained
+    path = tmp_path / "m.npz"
+    save_node(models[(1, 0)], path)
+    with np.load(path, allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    name = next(k for k in sorted(arrays) if k != "meta_json" and arrays[k].dtype.kind == "f" and arrays[k].size)
+    arrays[name] = arrays[name].copy()
+    arrays[name].flat[0] += 1.0
+    np.savez_compressed(path, **arrays)
+    with pytest.raises(TesseraInputError, match=r"m\.npz: model content does not match the SHA-256 recorded when it "
+                                                r"was written .*rerun rule train_node"):
+        load_node(path, target="blobs")
+
+
+def test_model_of_another_format_version_is_refused(trained, tmp_path):
+    # a file as the previous format wrote it: metadata without the recorded SHA-256
+    import json
+
+    spec, _, models = trained
+    path = tmp_path / "old.npz"
+    save_node(models[(1, 0)], path)
+    with np.load(path, allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    meta = json.loads(arrays["meta_json"].tobytes())
+    meta.pop("payload_sha256")
+    meta["format"] = 1
+    arrays["meta_json"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
+    np.savez_compressed(path, **arrays)
+    with pytest.raises(TesseraInputError, match=r"old\.npz: model format 1 is not 2 \(made by tessera .*\); retrain it"):
+        load_node(path, target="blobs")
+
+
+class _RunsOnLoad:
+    """Unpickling this creates a folder: a stand-in for code hidden in a model file."""
+
+    def __init__(self, folder):
+        self.folder = str(folder)
+
+    def __reduce__(self):
+        import os
+
+        return (os.mkdir, (self.folder,))
+
+
+def test_model_file_carrying_a_pickled_object_is_refused_without_running_it(trained, tmp_path):
+    # numpy.load with allow_pickle=False refuses object arrays before unpickling them (numpy
+    # documentation of numpy.load); with allow_pickle=True the same file runs the hidden code.
+    spec, _, models = trained
+    good = tmp_path / "good.npz"
+    save_node(models[(1, 0)], good)
+    with np.load(good, allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    crafted = tmp_path / "crafted.npz"
+    hidden = np.empty(1, dtype=object)
+    hidden[0] = _RunsOnLoad(tmp_path / "ran")
+    np.savez(crafted, **arrays, clf0__extra=hidden)
+    control = tmp_path / "control.npz"
+    hidden[0] = _RunsOnLoad(tmp_path / "control-ran")
+    np.savez(control, clf0__extra=hidden)
+    with np.load(control, allow_pickle=True) as data:
+        data["clf0__extra"]
+    assert (tmp_path / "control-ran").is_dir()  # the payload is live
+    with pytest.raises(TesseraInputError, match=r"crafted\.npz: array 'clf0__extra' cannot be read as plain numbers"
+                                                r".*never unpickled"):
+        load_node(crafted, target="blobs")
+    assert not (tmp_path / "ran").exists()
 
 
 def test_too_few_tiles_for_the_folds_is_refused():
@@ -176,7 +269,7 @@ def test_single_class_training_is_refused():
         prepare_tile(spec, f"b{i}", np.zeros((32 + 2 * radius,) * 2, np.float32), np.zeros((32, 32), np.uint8), fold=i % 2)
         for i in range(2)
     ]
-    with pytest.raises(TesseraInputError, match="hold only class 0"):
+    with pytest.raises(TesseraInputError, match="training tiles hold only class 0"):
         fit_cascade(spec, tiles)
 
 

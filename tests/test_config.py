@@ -74,6 +74,45 @@ def test_yaml_is_loaded_safely(tmp_path):
         read_yaml(path)
 
 
+@pytest.mark.parametrize("tag", [
+    "!!python/object:argparse.Namespace {x: 1}",
+    "!!python/object/new:argparse.Namespace {state: {x: 1}}",
+    "!!python/object/apply:os.mkdir ['{marker}']",
+    "!!python/name:os.mkdir",
+    "!!python/tuple [1, 2]",
+])
+def test_yaml_python_tags_are_refused_by_our_loader(tmp_path, tag):
+    # yaml.safe_load knows only the standard YAML tags (PyYAML documentation, SafeLoader)
+    path = tmp_path / "c.yaml"
+    path.write_text(f"datasets: {tag.replace('{marker}', str(tmp_path / 'ran'))}\n")
+    with pytest.raises(TesseraInputError, match=r"c\.yaml: not valid YAML.*could not determine a constructor"):
+        read_yaml(path)
+    assert not (tmp_path / "ran").exists()
+
+
+def test_config_file_read_by_snakemake_runs_no_code_and_objects_fail_the_schema(tmp_path, schemas, repo):
+    # Snakemake reads the `configfile:` itself (snakemake.common.configfile, through yte with
+    # PyYAML's FullLoader). FullLoader refuses the tags that construct or call objects; the
+    # `!!python/name` tag it does resolve yields a reference, which the schema then refuses.
+    from snakemake.common.configfile import load_configfile
+    from snakemake_interface_common.exceptions import WorkflowError
+
+    marker = tmp_path / "ran"
+    for tag in (f"!!python/object/apply:os.mkdir ['{marker}']", "!!python/object/new:argparse.Namespace {}",
+                "!!python/object:argparse.Namespace {x: 1}"):
+        path = tmp_path / "c.yaml"
+        path.write_text(f"datasets: {tag}\n")
+        with pytest.raises(WorkflowError, match="not valid JSON or YAML"):
+            load_configfile(str(path))
+    assert not marker.exists()
+    shipped = (repo / "config" / "config.yaml").read_text()
+    path.write_text(shipped.replace("datasets: config/datasets.tsv", "datasets: !!python/name:os.mkdir"))
+    config = load_configfile(str(path))
+    with pytest.raises(TesseraInputError, match=r"key datasets: <built-in function mkdir> is not of type 'string'"):
+        load_config(config, schemas / "config.schema.yaml")
+    assert not marker.exists()
+
+
 def _sheet(tmp_path, *rows, header=HEADER):
     (tmp_path / "stack.tif").write_bytes(b"")
     path = tmp_path / "datasets.tsv"
@@ -148,3 +187,69 @@ def test_schema_files_are_strict(schemas):
         schema = yaml.safe_load((schemas / name).read_text())
         for node in objects(schema):
             assert "additionalProperties" in node, f"{name}: an object schema allows unknown keys"
+
+
+# --------------------------------------------------------------------------------------------
+# allowed data roots
+
+
+@pytest.fixture
+def layout(tmp_path):
+    """A project folder with its sheet and a stack, and a data folder outside the project."""
+    project, outside = tmp_path / "project", tmp_path / "mnt" / "em"
+    (project / "config").mkdir(parents=True)
+    outside.mkdir(parents=True)
+    for folder in (project, outside):
+        (folder / "stack.tif").write_bytes(b"")
+    return project, outside
+
+
+def _row(path, roi=""):
+    return f"a1\tctrl\tm1\t{path}\ttiff_stack\t40\t8\t8\t{roi}"
+
+
+def _outside_message(column, cell, resolved):
+    # the resolved path is what POSIX realpath gives (os.path.realpath: links followed, ".." removed)
+    import os
+    import re
+
+    return rf"datasets\.tsv, row 2, column {column}: {re.escape(repr(cell))} resolves to " \
+           rf"'{re.escape(os.path.realpath(resolved))}', outside the allowed data roots \[.*\]; add its folder to " \
+           r"data_roots in config/config\.yaml"
+
+
+@pytest.mark.parametrize("kind", ["dotdot", "absolute", "symlink", "roi_mask"])
+def test_sheet_paths_outside_the_data_roots_are_refused(layout, schemas, kind):
+    project, outside = layout
+    if kind == "symlink":  # a link inside the project whose target lies elsewhere
+        (project / "data").symlink_to(outside, target_is_directory=True)
+    cell = {"dotdot": "../mnt/em/stack.tif", "absolute": str(outside / "stack.tif"),
+            "symlink": "data/stack.tif", "roi_mask": "stack.tif"}[kind]
+    row = _row("stack.tif", roi="../../etc/passwd") if kind == "roi_mask" else _row(cell)
+    sheet = _sheet(project / "config", row)
+    column, shown = ("roi_mask", "../../etc/passwd") if kind == "roi_mask" else ("path", cell)
+    with pytest.raises(TesseraInputError, match=_outside_message(column, shown, project / shown)):
+        load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project)
+
+
+@pytest.mark.parametrize("root", ["absolute", "relative"])
+def test_data_roots_from_the_config_admit_their_folders(layout, schemas, root):
+    project, outside = layout
+    sheet = _sheet(project / "config", _row(str(outside / "stack.tif")))
+    named = str(outside) if root == "absolute" else "../mnt/em"  # relative to the project folder
+    frame = load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project, data_roots=[named])
+    assert frame.loc["a1", "path"] == str(outside / "stack.tif")
+
+
+def test_the_sheets_own_folder_is_a_data_root(layout, schemas):
+    project, outside = layout
+    sheet = _sheet(outside, _row(str(outside / "stack.tif")))  # a sheet kept beside its data
+    assert list(load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project).index) == ["a1"]
+
+
+def test_data_roots_go_through_the_schema(schemas, shipped_config):
+    config = copy.deepcopy(shipped_config)
+    assert load_config(copy.deepcopy(config), schemas / "config.schema.yaml")["data_roots"] == []
+    config["data_roots"] = "/mnt/em"
+    with pytest.raises(TesseraInputError, match=r"key data_roots: '/mnt/em' is not of type 'array'"):
+        load_config(config, schemas / "config.schema.yaml")

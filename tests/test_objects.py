@@ -14,7 +14,8 @@ from skimage.filters import apply_hysteresis_threshold
 from tessera.config import load_config
 from tessera.errors import TesseraInputError
 from tessera.objects import ball, connectivity_structure, label_objects, objects_job
-from tessera.omezarr import AXES, multiscale_attrs
+from tessera.chunksums import record_checksums
+from tessera.omezarr import AXES, multiscale_attrs, open_image
 
 SPACING = (40.0, 10.0, 10.0)
 
@@ -174,7 +175,7 @@ def test_excluded_sections_are_bridged_so_objects_stay_whole():
 @pytest.mark.parametrize(
     "kwargs, message",
     [
-        (dict(high=1.5), "threshold high must be a probability in \\[0, 1\\], got 1.5"),
+        (dict(high=1.5), "objects threshold high must be a probability in \\[0, 1\\], got 1.5"),
         (dict(high=0.4, low=0.6), "low \\(0.6\\) must not exceed high \\(0.4\\)"),
         (dict(high=0.5, min_volume_um3=2.0, max_volume_um3=1.0), "min_volume_um3 \\(2.0\\) is larger than max_volume_um3"),
         (dict(high=0.5, connectivity=4), "connectivity must be 6, 18 or 26, got 4"),
@@ -203,6 +204,7 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     stored = np.rint(p * 255).astype(np.uint8)
     group.create_array(name="0", data=stored, chunks=(1, 16, 16), dimension_names=AXES)
     group.create_array(name="1", data=stored[:, ::2, ::2], chunks=(1, 16, 16), dimension_names=AXES)
+    record_checksums(image)  # as stitch does: readers refuse stores without records
     qc = tmp_path / "sections.tsv"
     pd.DataFrame({"z": range(6), "excluded": [False, False, True, False, False, False]}).to_csv(qc, sep="\t", index=False)
     scores = tmp_path / "scores.tsv"
@@ -227,3 +229,8 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     used = json.loads((tmp_path / "objects.json").read_text())
     assert used["high"] == 0.62 and used["connectivity"] == 26 and used["excluded_sections"] == [2]
     assert root["labels/mito"].attrs["tessera"]["objects"]["connectivity"] == 26
+    # the store reads back through its checksum records: labels written here, levels linked from
+    # the probability map (whose records they keep)
+    group, info = open_image(out)
+    np.testing.assert_array_equal(group["labels/mito/0"][:], labels)
+    np.testing.assert_array_equal(info["levels"][1][:], stored[:, ::2, ::2])

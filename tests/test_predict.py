@@ -13,6 +13,7 @@ from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, pre
 from tessera.cascade.model import predict_section
 from tessera.checksum import file_sha256
 from tessera.errors import TesseraInputError, TesseraResourceError
+from tessera.chunksums import record_checksums
 from tessera.omezarr import AXES, multiscale_attrs, open_image
 from tessera import predict
 from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
@@ -54,6 +55,7 @@ def study(tmp_path_factory):
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
     group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
     group.create_array(name="0", data=volume, chunks=(1, 32, 32), dimension_names=AXES)
+    record_checksums(image)  # as ingest does: readers refuse stores without records
     return {"root": root, "models": models, "paths": paths, "image": image, "volume": volume, "spec": spec}
 
 
@@ -270,3 +272,27 @@ def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path
     assert not (out / "job0").exists() and not list(out.glob("job0*"))
     predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed)
     assert (out / "job0" / "manifest.json").exists()
+def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
+    # a copy of the image where the workflow keeps it, with one damaged chunk in the last section
+    import shutil
+
+    image = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
+    shutil.copytree(study["image"], image)
+    damaged = image / "0" / "c" / "4" / "0" / "0"  # zarr v3 chunk key: section 4, first chunk row and column
+    data = bytearray(damaged.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    damaged.write_bytes(bytes(data))
+    plan = tmp_path / "plan.json"
+    halo = receptive_radius(study["spec"])
+    plan_job(image, study["paths"], plan, target="blobs", downsample=1, block=(1, 2 * halo, 2 * halo), shard_jobs=5,
+             max_halo=512, dtype="uint8")
+    blocks, jobs = json.loads(plan.read_text())["blocks"], json.loads(plan.read_text())["jobs"]
+    reads = [{z for i in job for z in range(blocks[i][0] - 1, blocks[i][1] + 1)} for job in jobs]  # neighbours=1
+    clean = next(j for j, z in enumerate(reads) if 4 not in z and 3 not in z)  # 3 reads 4 as its neighbour
+    predict_shard_job(plan, image, study["paths"], tmp_path / "clean", job=clean, target="blobs")
+    assert (tmp_path / "clean" / "manifest.json").is_file()
+    with pytest.raises(TesseraInputError, match=r"0/c/4/0/0: file does not match its recorded SHA-256.*rerun rule "
+                                                r"pyramid") as error:
+        predict_shard_job(plan, image, study["paths"], tmp_path / "last", job=len(jobs) - 1, target="blobs")
+    assert str(error.value).startswith(str(damaged))
+    assert not (tmp_path / "last").exists()

@@ -90,9 +90,13 @@ def test_level0_shares_storage_with_ingest_output(tmp_path):
     tifffile.imwrite(tmp_path / "v.tif", volume)
     ingest_stack(tmp_path / "v.tif", tmp_path / "a.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8))
     build_pyramid(tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=1)
-    chunk = next(p for p in (tmp_path / "p.ome.zarr" / "0").rglob("*") if p.is_file() and p.name != "zarr.json")
+    chunk = next(p for p in (tmp_path / "p.ome.zarr" / "0" / "c").rglob("*") if p.is_file())
     twin = tmp_path / "a.ome.zarr" / chunk.relative_to(tmp_path / "p.ome.zarr")
     assert os.path.samefile(chunk, twin)
+    # the pyramid's checksum manifest of level 0 is its own file: the ingest's one is not rewritten
+    manifests = [store / "0" / "tessera-checksums.json" for store in (tmp_path / "p.ome.zarr", tmp_path / "a.ome.zarr")]
+    assert not os.path.samefile(*manifests)
+    assert manifests[0].read_text() != manifests[1].read_text()
     # Removing the pyramid (as Snakemake does before a rerun) leaves the ingest output intact.
     shutil.rmtree(tmp_path / "p.ome.zarr")
     np.testing.assert_array_equal(open_image(tmp_path / "a.ome.zarr")[1]["levels"][0][:], volume)

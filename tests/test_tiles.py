@@ -5,6 +5,7 @@ libraries, the open ssTEM stack of Gerhard et al. 2013 (doi:10.6084/m9.figshare.
 common practice of the field (marked so).
 """
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -149,7 +150,7 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
                                                  ("d1", "mito", 1, 10, 60)])
     points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     before = listing(tmp_path)
-    with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2"):
+    with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2 .*outside the image of shape"):
         tiles.export_tiles(exported["store"], points, level=1, factors=FACTORS, size=16,
                            out_dir=tmp_path / "edge_tiles")
     assert listing(tmp_path) == before
@@ -179,7 +180,7 @@ def test_export_uses_per_row_size(tmp_path):
 
 
 @pytest.mark.parametrize("row, message", [
-    (("d9", "mito", 1, 40, 40), r"row 2.*dataset.*'d9'"),
+    (("d9", "mito", 1, 40, 40), r"row 2, column 'dataset': unknown dataset 'd9'"),
     (("d1", "golgi", 1, 40, 40), r"row 2.*target.*'golgi'"),
     (("d1", "mito", 1, -4, 40), r"row 2.*'y'.*-4"),
     (("d1", "mito", 1.5, 4, 40), r"row 2.*'z'.*1\.5"),
@@ -198,6 +199,38 @@ def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
         tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     sheet = write_points(tmp_path / "q.tsv", [("d1", "mito", 0, 10, 10)] * 2)
     with pytest.raises(TesseraInputError, match=r"q\.tsv.*duplicate"):
+        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+
+
+class _RunsOnLoad:
+    """Unpickling this creates a folder: a stand-in for code hidden in a data file."""
+
+    def __init__(self, folder):
+        self.folder = str(folder)
+
+    def __reduce__(self):
+        return (os.mkdir, (self.folder,))
+
+
+def test_points_cells_are_data_never_code(tmp_path):
+    # pandas reads every cell as text (dtype=str); coordinates must be plain integers
+    marker = tmp_path / "ran"
+    sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", f"__import__('os').mkdir('{marker}')", 10, 10)])
+    with pytest.raises(TesseraInputError, match=r"points\.tsv: row 1, column 'z': expected a whole number >= 0, got"):
+        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    formula = write_points(tmp_path / "f.tsv", [("d1", "mito", "=1+1", 10, 10)])
+    with pytest.raises(TesseraInputError, match=r"f\.tsv: row 1, column 'z'"):
+        tiles.read_points(formula, datasets=["d1"], targets=["mito"])
+    assert not marker.exists()
+
+
+@pytest.mark.parametrize("tile_id", ["../../etc/passwd", "/tmp/x", "a/b", "a\\b", ".."])
+def test_points_tile_ids_cannot_name_other_folders(tmp_path, tile_id):
+    # a tile id becomes a file name (<tile_id>.tif, <tile_id>.png); POSIX path rules make "/" and
+    # ".." reach other folders, so ids are restricted to letters, digits, "_" and "-"
+    sheet = write_points(tmp_path / "p.tsv", [("d1", "mito", 0, 10, 10, tile_id)],
+                         columns=("dataset", "target", "z", "y", "x", "tile_id"))
+    with pytest.raises(TesseraInputError, match=r"p\.tsv: row 1, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"):
         tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
@@ -250,12 +283,12 @@ def test_zero_one_mask_with_ignore_255(tmp_path):
 
 
 @pytest.mark.parametrize("case, message", [
-    ("shape", r"shape \(12, 10\)"),
+    ("shape", r"expected a mask of shape \(12, 10\)"),
     ("float", r"integer pixels.*float32"),
     ("seven", r"unexpected values \[7\]"),
     ("both", r"unexpected values \[1, 255\].*ignore"),
-    ("background", r"no target pixels"),
-    ("foreground", r"no background pixels"),
+    ("background", r"the mask has no target pixels"),
+    ("foreground", r"the mask has no background pixels"),
     ("colour", r"colour pixels"),
 ])
 def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
@@ -282,6 +315,22 @@ def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
         save_png(path, rgb)
     with pytest.raises(TesseraInputError, match=rf"{path.name}.*{message}"):
         tiles.read_painted_mask(path, shape=lab.shape)
+
+
+@pytest.mark.parametrize("suffix", [".png", ".tif"])
+def test_mask_files_are_decoded_as_images_never_unpickled(tmp_path, suffix):
+    # Pillow and tifffile recognise files by their signature (PNG: 89 50 4E 47, TIFF: II*\\0 or
+    # MM\\0*, per the PNG and TIFF 6.0 specifications); a pickle stream matches neither.
+    import pickle
+
+    payload = pickle.dumps(_RunsOnLoad(tmp_path / "ran"))
+    pickle.loads(pickle.dumps(_RunsOnLoad(tmp_path / "control")))  # the payload is live when unpickled
+    assert (tmp_path / "control").is_dir()
+    path = tmp_path / f"t{suffix}"
+    path.write_bytes(payload)
+    with pytest.raises(TesseraInputError, match=rf"t\{suffix}: cannot read the image"):
+        tiles.read_painted_mask(path, shape=(4, 4))
+    assert not (tmp_path / "ran").exists()
 
 
 def test_single_class_allowed_when_asked(tmp_path):

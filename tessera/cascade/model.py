@@ -52,7 +52,7 @@ from .features import (
     neighbour_features,
 )
 
-MODEL_FORMAT = 1
+MODEL_FORMAT = 2  # 2: the payload's SHA-256 is recorded in the metadata
 IGNORE = 255
 
 
@@ -800,12 +800,41 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
 # ----------------------------------------------------------------------------------------------
 # storage: arrays + JSON in one .npz, never pickle
 
+_REBUILD = "rerun rule train_node to rebuild it (delete the file, or snakemake --forcerun train_node)"
+
+
+def payload_sha256(arrays, meta):
+    """SHA-256 of a model's content: every array (name, dtype, shape, bytes, in name order), then
+    the metadata as sorted JSON without the digest itself.
+
+    Recorded in the metadata when the file is written and compared before the model is used, so
+    a model whose numbers changed after training is refused even where the zip container is intact.
+
+    Examples
+    --------
+    >>> a = payload_sha256({"w": np.zeros(2)}, {"stage": 1})
+    >>> a == payload_sha256({"w": np.zeros(2)}, {"stage": 1, "payload_sha256": "x"})
+    True
+    >>> a == payload_sha256({"w": np.array([0.0, 1e-300])}, {"stage": 1})
+    False
+    """
+    digest = hashlib.sha256()
+    for name in sorted(arrays):
+        values = np.ascontiguousarray(arrays[name])
+        digest.update(json.dumps([name, values.dtype.str, list(values.shape)]).encode() + b"\0")
+        digest.update(values.tobytes())
+    plain = {k: v for k, v in meta.items() if k != "payload_sha256"}
+    digest.update(json.dumps(plain, sort_keys=True).encode())
+    return digest.hexdigest()
+
 
 def save_node(model, path_or_file):
     """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes).
 
     A path is written atomically (:func:`tessera.atomic.atomic_path`): a failed write leaves the
     previous model file as it was.
+
+    The metadata records :func:`payload_sha256` of the content; :func:`load_node` checks it.
     """
     payload, clf_metas = {}, []
     for i, clf in enumerate([model.classifier, *model.fold_classifiers]):
@@ -813,6 +842,7 @@ def save_node(model, path_or_file):
         payload.update({f"clf{i}__{k}": v for k, v in arrays.items()})
         clf_metas.append(clf_meta)
     meta = dict(model.meta, classifiers=clf_metas)
+    meta["payload_sha256"] = payload_sha256(payload, meta)
     payload["meta_json"] = np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)
     buffer = io.BytesIO()
     np.savez_compressed(buffer, **payload)
@@ -836,27 +866,29 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
     Raises
     ------
     TesseraInputError
-        Truncated or foreign file, other model format, or a mismatch with what was asked for.
+        Truncated, damaged or foreign file, an array holding Python objects (never unpickled),
+        content that does not match the SHA-256 recorded when the file was written, other model
+        format, or a mismatch with what was asked for.
     """
-    try:
-        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
-            arrays = {k: data[k] for k in data.files}
-    except FileNotFoundError:
-        raise TesseraInputError("model file not found", source=path) from None
-    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as exc:
-        raise TesseraInputError(f"not a readable model file (truncated or damaged?): {exc}", source=path) from None
+    arrays = _read_plain_arrays(path)
     if "meta_json" not in arrays:
         raise TesseraInputError("not a tessera model file (no metadata)", source=path)
     try:
         meta = json.loads(arrays.pop("meta_json").tobytes().decode())
-    except (UnicodeDecodeError, json.JSONDecodeError):
-        raise TesseraInputError("model metadata is damaged", source=path) from None
+        if not isinstance(meta, dict):
+            raise ValueError("not a JSON object")
+    except (UnicodeDecodeError, ValueError):  # json.JSONDecodeError is a ValueError
+        raise TesseraInputError(f"model metadata is damaged; {_REBUILD}", source=path) from None
     if meta.get("format") != MODEL_FORMAT:
         raise TesseraInputError(
             f"model format {meta.get('format')!r} is not {MODEL_FORMAT} (made by tessera "
-            f"{meta.get('tessera_version')}); retrain it with this version",
+            f"{meta.get('tessera_version')}); retrain it with this version ({_REBUILD})",
             source=path,
         )
+    if meta.get("payload_sha256") != payload_sha256(arrays, meta):
+        raise TesseraInputError(
+            f"model content does not match the SHA-256 recorded when it was written (altered or damaged); "
+            f"{_REBUILD}", source=path)
     try:
         model_spec = CascadeSpec.from_dict({**meta["spec"], "stages": meta["stage"]})
     except (KeyError, TypeError):
@@ -882,3 +914,26 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
     if len(classifiers) != model_spec.folds + 1:
         raise TesseraInputError(f"model holds {len(classifiers)} classifiers, expected {model_spec.folds + 1}", source=path)
     return NodeModel(model_spec, meta["stage"], meta["level"], classifiers[0], classifiers[1:], meta)
+
+
+def _read_plain_arrays(path):
+    """Every array of an .npz, refusing object arrays (``allow_pickle=False``: nothing is unpickled)."""
+    try:
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
+            arrays = {}
+            for name in data.files:
+                try:
+                    arrays[name] = data[name]
+                except ValueError as exc:
+                    # numpy refuses object (pickled) arrays here, before unpickling anything
+                    raise TesseraInputError(
+                        f"array {name!r} cannot be read as plain numbers ({exc}); model files hold numeric arrays "
+                        f"only and are never unpickled; {_REBUILD}", source=path) from None
+    except TesseraInputError:
+        raise
+    except FileNotFoundError:
+        raise TesseraInputError(f"model file not found; {_REBUILD}", source=path) from None
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as exc:
+        raise TesseraInputError(f"not a readable model file (truncated or damaged?): {exc}; {_REBUILD}",
+                                source=path) from None
+    return arrays
