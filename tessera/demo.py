@@ -191,7 +191,7 @@ def subject_volume_scale(subject, condition, *, study_seed, condition_scales=Non
     return float(base * math.exp(eps))
 
 
-def render_dataset(*, seed, shape=(32, 512, 512), spacing=(40.0, 8.0, 8.0),
+def render_dataset(*, seed, shape=(64, 512, 512), spacing=(40.0, 8.0, 8.0),
                    mito_volume_scale=1.0, defects=True):
     """Render one synthetic SBEM-like volume with its true labels.
 
@@ -274,7 +274,7 @@ def render_dataset(*, seed, shape=(32, 512, 512), spacing=(40.0, 8.0, 8.0),
     }
 
 
-def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(32, 512, 512),
+def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(64, 512, 512),
                   spacing=(40.0, 8.0, 8.0), mito_volume_scale=1.0, tile_size=128,
                   tiles_per_target=6, heldout_per_target=3, defects=True):
     """Render one dataset and write it, with painted annotation tiles, into `out_dir`.

@@ -244,6 +244,7 @@ def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
     group = zarr_module.open_group(store=str(image), mode="w", zarr_format=3)
     group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
     group.create_array(name="0", data=volume, chunks=(1, 128, 128), dimension_names=AXES)
+    record_checksums(image)
     plan = tmp_path / "plan.json"
     plan_job(image, study["paths"], plan, target="blobs", downsample=1, block=(2, 300, 300), shard_jobs=1,
              max_halo=512, dtype="uint8")
@@ -272,6 +273,8 @@ def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path
     assert not (out / "job0").exists() and not list(out.glob("job0*"))
     predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed)
     assert (out / "job0" / "manifest.json").exists()
+
+
 def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
     # a copy of the image where the workflow keeps it, with one damaged chunk in the last section
     import shutil
