@@ -1,8 +1,12 @@
-"""Shared fixtures: paths of the repository and of the open data beside it."""
+"""Shared fixtures: paths of the repository and of the open data beside it, and the tiny test
+study (config and sheet from tests/test_workflow.py) for tests that run it more than once."""
 
+import hashlib
+import importlib.util
 from pathlib import Path
 
 import pytest
+import yaml
 
 REPO = Path(__file__).resolve().parents[1]
 SHARED_DATA = REPO.parent / "shared" / "data"
@@ -20,3 +24,30 @@ def vnc_sstem():
     if not (path / "raw").is_dir():
         pytest.skip("../shared/data/vnc-sstem is not present on this machine")
     return path
+
+
+@pytest.fixture(scope="session")
+def new_tiny_study():
+    """A function writing the tiny test study's config and sheet into a new folder; returns it."""
+    spec = importlib.util.spec_from_file_location("tessera_test_workflow", REPO / "tests" / "test_workflow.py")
+    tiny = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(tiny)
+
+    def make(root):
+        (root / "config").mkdir(parents=True)
+        (root / "config" / "config.yaml").write_text(yaml.safe_dump(tiny.tiny_config()))
+        (root / "config" / "datasets.tsv").write_text(tiny.TINY_SHEET)
+        return root
+
+    return make
+
+
+@pytest.fixture(scope="session")
+def file_digests():
+    """A function giving the SHA-256 of every file below a folder, by path relative to it."""
+
+    def digests(folder):
+        return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+                for p in sorted(folder.rglob("*")) if p.is_file()}
+
+    return digests

@@ -184,14 +184,17 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
     assert str(error.value).startswith(f"{path}: ")
 
 
+
+def _saved_arrays(trained, path):
+    """Save the first node to `path`; return the path and its arrays as numpy reads them back."""
+    save_node(trained[2][(1, 0)], path)
+    with np.load(path, allow_pickle=False) as data:
+        return path, {k: data[k] for k in data.files}
+
 def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
     # a well-formed .npz (numpy writes it afresh, so every zip CRC is right) whose weights differ
     # from the ones trained: only the SHA-256 recorded at write time can tell
-    spec, _, models = trained
-    path = tmp_path / "m.npz"
-    save_node(models[(1, 0)], path)
-    with np.load(path, allow_pickle=False) as data:
-        arrays = {k: data[k] for k in data.files}
+    path, arrays = _saved_arrays(trained, tmp_path / "m.npz")
     name = next(k for k in sorted(arrays) if k != "meta_json" and arrays[k].dtype.kind == "f" and arrays[k].size)
     arrays[name] = arrays[name].copy()
     arrays[name].flat[0] += 1.0
@@ -205,11 +208,7 @@ def test_model_of_another_format_version_is_refused(trained, tmp_path):
     # a file as the previous format wrote it: metadata without the recorded SHA-256
     import json
 
-    spec, _, models = trained
-    path = tmp_path / "old.npz"
-    save_node(models[(1, 0)], path)
-    with np.load(path, allow_pickle=False) as data:
-        arrays = {k: data[k] for k in data.files}
+    path, arrays = _saved_arrays(trained, tmp_path / "old.npz")
     meta = json.loads(arrays["meta_json"].tobytes())
     meta.pop("payload_sha256")
     meta["format"] = 1
@@ -234,11 +233,7 @@ class _RunsOnLoad:
 def test_model_file_carrying_a_pickled_object_is_refused_without_running_it(trained, tmp_path):
     # numpy.load with allow_pickle=False refuses object arrays before unpickling them (numpy
     # documentation of numpy.load); with allow_pickle=True the same file runs the hidden code.
-    spec, _, models = trained
-    good = tmp_path / "good.npz"
-    save_node(models[(1, 0)], good)
-    with np.load(good, allow_pickle=False) as data:
-        arrays = {k: data[k] for k in data.files}
+    good, arrays = _saved_arrays(trained, tmp_path / "good.npz")
     crafted = tmp_path / "crafted.npz"
     hidden = np.empty(1, dtype=object)
     hidden[0] = _RunsOnLoad(tmp_path / "ran")

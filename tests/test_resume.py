@@ -15,9 +15,6 @@ a job of that rule is still unfinished (its log has no "done in" line); a point 
 before it was seen fails the test rather than counting.
 """
 
-import functools
-import hashlib
-import importlib.util
 import json
 import os
 import signal
@@ -28,7 +25,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
-import yaml
 
 from tessera.provenance import is_run_specific
 
@@ -71,28 +67,6 @@ KILL_POINTS = [
     KillPoint("statistics", "log"),
     KillPoint("audit", "log"),
 ]
-
-
-@functools.cache
-def _tiny_study_module():
-    spec = importlib.util.spec_from_file_location("tessera_test_workflow", Path(__file__).with_name("test_workflow.py"))
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
-def new_study(root):
-    tiny = _tiny_study_module()
-    (root / "config").mkdir(parents=True)
-    (root / "config" / "config.yaml").write_text(yaml.safe_dump(tiny.tiny_config()))
-    (root / "config" / "datasets.tsv").write_text(tiny.TINY_SHEET)
-    return root
-
-
-def digests(folder):
-    """sha256 of every file below `folder`, by path relative to it."""
-    return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
 def log_signatures(study, rule):
@@ -190,8 +164,8 @@ def reader_failures(text):
 
 
 @pytest.fixture(scope="module")
-def reference(tmp_path_factory):
-    study = new_study(tmp_path_factory.mktemp("reference"))
+def reference(tmp_path_factory, new_tiny_study):
+    study = new_tiny_study(tmp_path_factory.mktemp("reference"))
     started = time.monotonic()
     result = subprocess.run(RUN, cwd=study, capture_output=True, text=True, timeout=900)
     assert result.returncode == 0, result.stdout + result.stderr
@@ -199,9 +173,9 @@ def reference(tmp_path_factory):
 
 
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="follows the killed processes through Linux /proc")
-def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_path):
+def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_path, new_tiny_study, file_digests):
     reference, reference_s = reference
-    study = new_study(tmp_path / "killed")
+    study = new_tiny_study(tmp_path / "killed")
     started = time.monotonic()
     kills, outputs = [], []
     for n, point in enumerate(KILL_POINTS):
@@ -229,7 +203,7 @@ def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_pat
     # ours end in .partial-<pid>, zarr's own chunk temporaries in .<uuid>.partial
     leftovers = [p for p in study.rglob("*.partial*") if ".snakemake" not in p.parts]
     assert not leftovers, leftovers
-    expected, got = digests(reference / "results"), digests(study / "results")
+    expected, got = file_digests(reference / "results"), file_digests(study / "results")
     assert got.keys() == expected.keys(), sorted(set(got) ^ set(expected))
     differing = [name for name in expected if got[name] != expected[name] and not is_run_specific(name)]
     assert not differing, f"{len(differing)} of {len(expected)} result files differ, e.g. {differing[:10]}"

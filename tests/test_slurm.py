@@ -5,16 +5,12 @@ Needs a running cluster: `.ci/slurm-cluster start DIR`, then TESSERA_SLURM_DIR=D
 test is skipped; with TESSERA_SLURM_REQUIRED=1 (as in CI) a missing cluster fails it instead.
 """
 
-import functools
-import hashlib
-import importlib.util
 import os
 import subprocess
 import sys
 from pathlib import Path
 
 import pytest
-import yaml
 
 from tessera.provenance import is_run_specific
 
@@ -22,14 +18,6 @@ pytestmark = [pytest.mark.slurm, pytest.mark.workflow]
 
 REPO = Path(__file__).resolve().parents[1]
 BIN = Path(sys.executable).parent
-
-
-@functools.cache
-def _tiny_study_module():
-    spec = importlib.util.spec_from_file_location("tessera_test_workflow", Path(__file__).with_name("test_workflow.py"))
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 @pytest.fixture(scope="module")
@@ -55,28 +43,11 @@ def snakemake(*args, cwd, env=None):
     return result
 
 
-def new_study(root):
-    tiny = _tiny_study_module()
-    (root / "config").mkdir(parents=True)
-    (root / "config" / "config.yaml").write_text(yaml.safe_dump(tiny.tiny_config()))
-    (root / "config" / "datasets.tsv").write_text(tiny.TINY_SHEET)
-    return root
-
-
-def digests(folder):
-    """sha256 of every file below folder, by path relative to it."""
-    return {
-        path.relative_to(folder).as_posix(): hashlib.sha256(path.read_bytes()).hexdigest()
-        for path in sorted(folder.rglob("*"))
-        if path.is_file()
-    }
-
-
-def test_slurm_run_matches_local_run(slurm_env, tmp_path):
-    local = new_study(tmp_path / "local")
+def test_slurm_run_matches_local_run(slurm_env, tmp_path, new_tiny_study, file_digests):
+    local = new_tiny_study(tmp_path / "local")
     snakemake("--cores", "2", "--snakefile", str(REPO / "Snakefile"), cwd=local)
 
-    cluster = new_study(tmp_path / "cluster")
+    cluster = new_tiny_study(tmp_path / "cluster")
     snakemake("--profile", str(REPO / "profiles" / "slurm-test"), "--snakefile", str(REPO / "Snakefile"),
               cwd=cluster, env=slurm_env)
 
@@ -87,7 +58,7 @@ def test_slurm_run_matches_local_run(slurm_env, tmp_path):
     bundles = list((slurm_logs / "group_predict_shards_predict_shard").glob("*.log"))
     assert 1 <= len(bundles) < shard_jobs
 
-    expected, got = digests(local / "results"), digests(cluster / "results")
+    expected, got = file_digests(local / "results"), file_digests(cluster / "results")
     assert len(expected) > 100
     assert got.keys() == expected.keys()
     # Provenance records and the RO-Crate say when, where and with which resources jobs ran: the
