@@ -142,16 +142,38 @@ def _named(files):
     return out
 
 
-def _file_entry(entry):
+#: Inputs and outputs up to this size are hashed whole for their record. Larger ones (a
+#: terabyte stack, its stores) would make every job reread them: stores are then identified by
+#: the checksum manifests their writers recorded, and large files by size only (the stacks' own
+#: SHA-256 is in results/<dataset>/audit/inputs.sha256).
+FULL_HASH_BYTES = 256 * 2**20
+
+# Files in which our writers record the checksums of everything else in a folder.
+_CHECKSUM_MANIFESTS = ("tessera-checksums.json", "manifest.json")
+
+
+def _file_entry(entry, *, full_hash_bytes=FULL_HASH_BYTES):
+    import hashlib
+
     from .checksum import file_sha256
 
     path = Path(entry["path"])
     if not path.exists():
         return {**entry, "kind": "missing", "bytes": None, "sha256": None}
-    files = [p for p in path.rglob("*") if p.is_file()] if path.is_dir() else [path]
-    return {**entry, "kind": "store" if path.is_dir() else "file",
-            "bytes": sum(p.stat().st_size for p in files),
-            "sha256": file_sha256(path) if files else None}
+    files = sorted(p for p in path.rglob("*") if p.is_file()) if path.is_dir() else [path]
+    size = sum(p.stat().st_size for p in files)
+    out = {**entry, "kind": "store" if path.is_dir() else "file", "bytes": size}
+    if not files:
+        return {**out, "sha256": None}
+    if size <= full_hash_bytes:
+        return {**out, "sha256": file_sha256(path)}
+    manifests = [p for p in files if p.name in _CHECKSUM_MANIFESTS]
+    if not manifests:
+        return {**out, "sha256": None, "not_hashed": f"larger than {full_hash_bytes} bytes"}
+    digest = hashlib.sha256()
+    for manifest in manifests:
+        digest.update(str(manifest.relative_to(path)).encode() + b"\0" + manifest.read_bytes())
+    return {**out, "sha256": None, "checksum_manifests_sha256": digest.hexdigest()}
 
 
 def _seeds(params, prefix=""):
@@ -206,7 +228,8 @@ def job_record(job, *, started, finished, workflow_dir):
     Returns
     -------
     dict
-        rule, wildcards, inputs and outputs (path, kind, bytes, SHA-256), params, seeds,
+        rule, wildcards, inputs and outputs (path, kind, bytes, SHA-256; above
+        :data:`FULL_HASH_BYTES` the SHA-256 of a store's checksum manifests instead), params, seeds,
         code version (``params.code``) with the git commit and dirty flag, package versions,
         threads, resources, host, start, end and duration. Only ``host``, ``started``,
         ``finished`` and ``duration_s`` differ between two identical runs.

@@ -87,3 +87,22 @@ def test_audit_manifest_and_ro_crate(tmp_path):
                                                           "provenance/tabulate/dataset=a.json"}
     assert graph["provenance/tabulate/dataset=a.json"]["about"] == [{"@id": "a/table.tsv"}]
     assert graph["#run"]["@type"] == "CreateAction" and graph["#run"]["object"] == [{"@id": str(source)}]
+
+
+def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_manifests(tmp_path):
+    # Reference: hashlib.sha256. Small inputs are hashed whole; a store above the limit is named
+    # by the SHA-256 of its checksum manifests, so a job never rereads a terabyte input for its record.
+    from tessera.provenance import _file_entry
+
+    table = tmp_path / "t.tsv"
+    table.write_bytes(b"a\tb\n1\t2\n")
+    assert _file_entry({"name": "t", "path": str(table)})["sha256"] == hashlib.sha256(b"a\tb\n1\t2\n").hexdigest()
+    store = tmp_path / "s.ome.zarr"
+    (store / "0" / "c").mkdir(parents=True)
+    (store / "0" / "c" / "0").write_bytes(bytes(1000))
+    (store / "0" / "tessera-checksums.json").write_text('{"files": {}}')
+    big = _file_entry({"name": "s", "path": str(store)}, full_hash_bytes=100)
+    expected = hashlib.sha256(b"0/tessera-checksums.json\0" + b'{"files": {}}').hexdigest()
+    assert big["sha256"] is None and big["checksum_manifests_sha256"] == expected and big["bytes"] == 1013
+    (store / "0" / "tessera-checksums.json").unlink()
+    assert "not_hashed" in _file_entry({"name": "s", "path": str(store)}, full_hash_bytes=100)
