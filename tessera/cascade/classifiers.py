@@ -35,7 +35,6 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import scipy
-import sklearn
 from scipy.special import expit
 from threadpoolctl import threadpool_limits
 
@@ -323,6 +322,9 @@ class BinaryClassifier:
         raise NotImplementedError
 
     def _versions(self):
+        # imported here: the workflow imports this module to plan jobs, which needs no scikit-learn
+        import sklearn
+
         return {"numpy": np.__version__, "scikit-learn": sklearn.__version__}
 
     # -- shared ---------------------------------------------------------------------------------
