@@ -29,9 +29,13 @@ def main():
     for target, path in zip(targets, outputs):
         scores = pd.read_csv(REPO / path, sep="\t").set_index("role")
         test = scores.loc["test"]
-        figures["demo"][target] = {"f1": float(test["f1"]), "jaccard": float(test["jaccard"]),
-                                   "precision": float(test["precision"]), "recall": float(test["recall"]),
-                                   "threshold": float(test["threshold"])}
+        figures["demo"][target] = {
+            "f1": float(test["f1"]),
+            "jaccard": float(test["jaccard"]),
+            "precision": float(test["precision"]),
+            "recall": float(test["recall"]),
+            "threshold": float(test["threshold"]),
+        }
         rows.append((f"{target} test F1 (Jaccard {test['jaccard']:.3f})", float(test["f1"]), ""))
     report("accuracy_demo", rows, figures)
 

@@ -28,7 +28,14 @@ from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_sco
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_stack, predict_section, prepare_tile, receptive_radius  # noqa: E402
+from tessera.cascade.model import (
+    CascadeSpec,
+    fit_cascade,
+    mirrored_stack,
+    predict_section,
+    prepare_tile,
+    receptive_radius,
+)  # noqa: E402
 from tessera.pyramid import block_mean  # noqa: E402
 
 DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
@@ -39,9 +46,16 @@ def load(factor=2):
     raw = np.stack([np.asarray(Image.open(DATA / "raw" / f"{z:02d}.tif")) for z in range(20)])
     # Some masks are 1-bit PNGs (True = mitochondrion), others 8-bit with anti-aliased edges;
     # converting to 8-bit greyscale maps both to 0..255.
-    masks = np.stack([np.asarray(Image.open(DATA / "mitochondria" / f"{z:02d}.png").convert("L")) for z in range(20)])
+    masks = np.stack(
+        [
+            np.asarray(Image.open(DATA / "mitochondria" / f"{z:02d}.png").convert("L"))
+            for z in range(20)
+        ]
+    )
     image = block_mean(raw, (1, factor, factor)).astype(np.float32)
-    truth = (block_mean((masks > 127).astype(np.float32), (1, factor, factor)) > 0.5).astype(np.uint8)
+    truth = (block_mean((masks > 127).astype(np.float32), (1, factor, factor)) > 0.5).astype(
+        np.uint8
+    )
     return image, truth
 
 
@@ -107,19 +121,38 @@ def main():
     for name in args.configs.split(","):
         stages, levels = CONFIGS[name]
         spec = CascadeSpec(
-            stages=stages, levels=levels, classifier=args.classifier, samples_per_tile=args.samples,
-            neighbours=args.neighbours, seed=args.seed,
+            stages=stages,
+            levels=levels,
+            classifier=args.classifier,
+            samples_per_tile=args.samples,
+            neighbours=args.neighbours,
+            seed=args.seed,
         )
-        results[name], unsmoothed[name] = evaluate(spec, image, truth, threads=args.threads,
-                                                   output_sigma=args.output_sigma)
+        results[name], unsmoothed[name] = evaluate(
+            spec, image, truth, threads=args.threads, output_sigma=args.output_sigma
+        )
         r, u = results[name], unsmoothed[name]
-        rows.append((f"{name} F1 (P {r['precision']:.3f} R {r['recall']:.3f} J {r['jaccard']:.3f})", r["f1"],
-                     f"unsmoothed {u['f1']:.3f}; thr {r['threshold']:.2f}, train {r['train_s']:.0f} s, "
-                     f"predict {r['predict_s']:.0f} s"))
+        rows.append(
+            (
+                f"{name} F1 (P {r['precision']:.3f} R {r['recall']:.3f} J {r['jaccard']:.3f})",
+                r["f1"],
+                f"unsmoothed {u['f1']:.3f}; thr {r['threshold']:.2f}, train {r['train_s']:.0f} s, "
+                f"predict {r['predict_s']:.0f} s",
+            )
+        )
         print(rows[-1], flush=True)
-    report("accuracy_real", rows, {"classifier": args.classifier, "neighbours": args.neighbours, "seed": args.seed,
-                                   "output_sigma": args.output_sigma, "vnc_mito": results,
-                                   "vnc_mito_unsmoothed": unsmoothed})
+    report(
+        "accuracy_real",
+        rows,
+        {
+            "classifier": args.classifier,
+            "neighbours": args.neighbours,
+            "seed": args.seed,
+            "output_sigma": args.output_sigma,
+            "vnc_mito": results,
+            "vnc_mito_unsmoothed": unsmoothed,
+        },
+    )
 
 
 if __name__ == "__main__":

@@ -34,31 +34,59 @@ def main(datasets=20, shards=200):
         for target in config["targets"].values():
             target["downsampling_study"] = None
         (root / "config" / "config.yaml").write_text(yaml.safe_dump(config))
-        rows = ["dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"]
-        rows += [f"d{i:02d}\t{'a' if i % 2 else 'b'}\td{i:02d}\tdata/stack.tif\ttiff_stack\t40\t8\t8\t"
-                 for i in range(datasets)]
+        rows = [
+            "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
+        ]
+        rows += [
+            f"d{i:02d}\t{'a' if i % 2 else 'b'}\td{i:02d}\tdata/stack.tif\ttiff_stack\t40\t8\t8\t"
+            for i in range(datasets)
+        ]
         (root / "config" / "datasets.tsv").write_text("\n".join(rows) + "\n")
         # the demo config reads label volumes per dataset; point them at the same empty file
         for target in config["targets"].values():
             target["annotations"] = {"labels": "data/stack.tif"}
-        (root / "config" / "config.yaml").write_text(yaml.safe_dump(config).replace("data/stack.tif",
-                                                                                  "data/{dataset}.tif"))
+        (root / "config" / "config.yaml").write_text(
+            yaml.safe_dump(config).replace("data/stack.tif", "data/{dataset}.tif")
+        )
         for i in range(datasets):
             (root / "data" / f"d{i:02d}.tif").write_bytes(b"")
         start = time.perf_counter()
-        proc = subprocess.Popen([str(Path(sys.executable).parent / "snakemake"), "-n", "--quiet", "rules",
-                                 "--snakefile", str(REPO / "Snakefile")], cwd=root, stdout=subprocess.PIPE,
-                                stderr=subprocess.PIPE, text=True)
+        proc = subprocess.Popen(
+            [
+                str(Path(sys.executable).parent / "snakemake"),
+                "-n",
+                "--quiet",
+                "rules",
+                "--snakefile",
+                str(REPO / "Snakefile"),
+            ],
+            cwd=root,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
         _, status, usage = os.wait4(proc.pid, 0)
         seconds = time.perf_counter() - start
         out, err = proc.stdout.read(), proc.stderr.read()
         if status != 0:
             raise SystemExit(f"dry run failed:\n{out}\n{err}")
         jobs = int(next(line.split()[1] for line in out.splitlines() if line.startswith("total")))
-    figures = {"jobs": jobs, "dry_run_s": seconds, "peak_rss_MB": usage.ru_maxrss / 1024.0,
-               "datasets": datasets, "shard_jobs_per_dataset_and_target": shards}
-    report("dag_scale", [("jobs planned", jobs, ""), ("dry run", seconds, "s"),
-                         ("peak RSS of snakemake", figures["peak_rss_MB"], "MB")], figures)
+    figures = {
+        "jobs": jobs,
+        "dry_run_s": seconds,
+        "peak_rss_MB": usage.ru_maxrss / 1024.0,
+        "datasets": datasets,
+        "shard_jobs_per_dataset_and_target": shards,
+    }
+    report(
+        "dag_scale",
+        [
+            ("jobs planned", jobs, ""),
+            ("dry run", seconds, "s"),
+            ("peak RSS of snakemake", figures["peak_rss_MB"], "MB"),
+        ],
+        figures,
+    )
 
 
 if __name__ == "__main__":

@@ -50,10 +50,28 @@ def main():
             ys, xs = np.nonzero(truth[z])
             y0 = int(np.clip(np.median(ys) - 128, 0, 1024 - 256)) if ys.size else 384
             x0 = int(np.clip(np.median(xs) - 128, 0, 1024 - 256)) if xs.size else 384
-            window = mirrored_stack(image, z, spec.neighbours, y0 - radius, y0 + 256 + radius, x0 - radius, x0 + 256 + radius)
-            tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, y0 : y0 + 256, x0 : x0 + 256], fold=z % spec.folds))
+            window = mirrored_stack(
+                image,
+                z,
+                spec.neighbours,
+                y0 - radius,
+                y0 + 256 + radius,
+                x0 - radius,
+                x0 + 256 + radius,
+            )
+            tiles.append(
+                prepare_tile(
+                    spec,
+                    f"z{z}",
+                    window,
+                    truth[z, y0 : y0 + 256, x0 : x0 + 256],
+                    fold=z % spec.folds,
+                )
+            )
         models = fit_cascade(spec, tiles, target="mitochondria", threads=1)
-        block = mirrored_stack(image, 7, spec.neighbours, -radius, CORE + radius, -radius, CORE + radius)
+        block = mirrored_stack(
+            image, 7, spec.neighbours, -radius, CORE + radius, -radius, CORE + radius
+        )
         start = time.perf_counter()
         predict_frame(models, block, (CORE, CORE))
         seconds = time.perf_counter() - start

@@ -60,8 +60,12 @@ print(json.dumps({"seconds": seconds, "rss_mb": resource.getrusage(resource.RUSA
 
 def child(task):
     """Start one measured step in a fresh interpreter (one thread); return its process."""
-    return subprocess.Popen([sys.executable, "-c", CHILD, json.dumps(task)], stdout=subprocess.PIPE, text=True,
-                            env={**os.environ, **ONE_THREAD})
+    return subprocess.Popen(
+        [sys.executable, "-c", CHILD, json.dumps(task)],
+        stdout=subprocess.PIPE,
+        text=True,
+        env={**os.environ, **ONE_THREAD},
+    )
 
 
 def finish(proc):
@@ -72,7 +76,14 @@ def finish(proc):
 
 
 def train(root):
-    from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_stack, prepare_tile, receptive_radius, save_node
+    from tessera.cascade.model import (
+        CascadeSpec,
+        fit_cascade,
+        mirrored_stack,
+        prepare_tile,
+        receptive_radius,
+        save_node,
+    )
     from tessera.demo import render_dataset
 
     volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), defects=False)
@@ -86,8 +97,20 @@ def train(root):
         ys, xs = np.nonzero(truth[z])
         y0 = int(np.clip(np.median(ys) - 128, 0, SIDE - 256)) if ys.size else 384
         x0 = int(np.clip(np.median(xs) - 128, 0, SIDE - 256)) if xs.size else 384
-        window = mirrored_stack(image, z, spec.neighbours, y0 - radius, y0 + 256 + radius, x0 - radius, x0 + 256 + radius)
-        tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, y0 : y0 + 256, x0 : x0 + 256], fold=z % spec.folds))
+        window = mirrored_stack(
+            image,
+            z,
+            spec.neighbours,
+            y0 - radius,
+            y0 + 256 + radius,
+            x0 - radius,
+            x0 + 256 + radius,
+        )
+        tiles.append(
+            prepare_tile(
+                spec, f"z{z}", window, truth[z, y0 : y0 + 256, x0 : x0 + 256], fold=z % spec.folds
+            )
+        )
     models = fit_cascade(spec, tiles, target="mitochondria", threads=2)
     paths = []
     for node, model in models.items():
@@ -115,25 +138,63 @@ def predict_volume(root, models, raw, sections, jobs):
         write_image(image, raw, sections)
     run = root / f"run_{sections}_{jobs}"
     plan = run / "plan.json"
-    plan_job(image, models, plan, target="mitochondria", downsample=1, block=(1, SIDE, SIDE), shard_jobs=jobs,
-             max_halo=1024, dtype="uint8")
+    plan_job(
+        image,
+        models,
+        plan,
+        target="mitochondria",
+        downsample=1,
+        block=(1, SIDE, SIDE),
+        shard_jobs=jobs,
+        max_halo=1024,
+        dtype="uint8",
+    )
     start = time.perf_counter()
-    procs = [child({"kind": "predict", "plan": str(plan), "image": str(image), "models": models,
-                    "out": str(run / f"job{j}"), "job": j}) for j in range(jobs)]
+    procs = [
+        child(
+            {
+                "kind": "predict",
+                "plan": str(plan),
+                "image": str(image),
+                "models": models,
+                "out": str(run / f"job{j}"),
+                "job": j,
+            }
+        )
+        for j in range(jobs)
+    ]
     results = [finish(p) for p in procs]
     wall = time.perf_counter() - start
-    stitched = finish(child({"kind": "stitch", "plan": str(plan), "shards": [str(run / f"job{j}") for j in range(jobs)],
-                             "out": str(run / "probability.ome.zarr")}))
-    return {"wall": wall, "predict_s": max(r["seconds"] for r in results), "rss_mb": max(r["rss_mb"] for r in results),
-            "stitch_s": stitched["seconds"], "voxels": sections * SIDE * SIDE}
+    stitched = finish(
+        child(
+            {
+                "kind": "stitch",
+                "plan": str(plan),
+                "shards": [str(run / f"job{j}") for j in range(jobs)],
+                "out": str(run / "probability.ome.zarr"),
+            }
+        )
+    )
+    return {
+        "wall": wall,
+        "predict_s": max(r["seconds"] for r in results),
+        "rss_mb": max(r["rss_mb"] for r in results),
+        "stitch_s": stitched["seconds"],
+        "voxels": sections * SIDE * SIDE,
+    }
 
 
 def probability_volume(path, sections):
     from scipy import ndimage
 
     rng = np.random.default_rng(0)
-    array = zarr.create_array(store=str(path), shape=(sections, 2048, 2048), dtype=np.uint8, chunks=(1, 512, 512),
-                              zarr_format=3)
+    array = zarr.create_array(
+        store=str(path),
+        shape=(sections, 2048, 2048),
+        dtype=np.uint8,
+        chunks=(1, 512, 512),
+        zarr_format=3,
+    )
     for z in range(sections):
         field = ndimage.gaussian_filter(rng.random((2048, 2048), dtype=np.float32), 4)
         array[z] = np.clip((field - field.mean()) / field.std() * 90 + 100, 0, 255).astype(np.uint8)
@@ -142,8 +203,16 @@ def probability_volume(path, sections):
 def label_volume(root, sections):
     prob = root / f"prob_{sections}.zarr"
     probability_volume(prob, sections)
-    return finish(child({"kind": "label", "prob": str(prob), "out": str(root / f"labels_{sections}.zarr"),
-                         "tmp": str(root)}))
+    return finish(
+        child(
+            {
+                "kind": "label",
+                "prob": str(prob),
+                "out": str(root / f"labels_{sections}.zarr"),
+                "tmp": str(root),
+            }
+        )
+    )
 
 
 def main():
@@ -166,10 +235,21 @@ def main():
         "labelling": {"2x2048x2048": labels[2], "16x2048x2048": labels[16]},
     }
     rows = [
-        ("end to end, 16 x 1024^2 sections, 1 core", figures["e2e_mvox_per_s_per_core"], "Mvox/s/core"),
-        ("predict job peak RSS, 8x / 1x volume", figures["rss_ratio_8x"], f"({one['rss_mb']:.0f} MiB at 1x)"),
-        ("labelling peak RSS, 8x / 1x volume", figures["label_rss_ratio_8x"],
-         f"({labels[2]['rss_mb']:.0f} MiB at 1x)"),
+        (
+            "end to end, 16 x 1024^2 sections, 1 core",
+            figures["e2e_mvox_per_s_per_core"],
+            "Mvox/s/core",
+        ),
+        (
+            "predict job peak RSS, 8x / 1x volume",
+            figures["rss_ratio_8x"],
+            f"({one['rss_mb']:.0f} MiB at 1x)",
+        ),
+        (
+            "labelling peak RSS, 8x / 1x volume",
+            figures["label_rss_ratio_8x"],
+            f"({labels[2]['rss_mb']:.0f} MiB at 1x)",
+        ),
         ("predict time 4x / (4 x 1x)", figures["time_ratio_4x"], "1.0 = linear"),
         ("predict time 8x / (8 x 1x)", figures["time_ratio_8x"], "1.0 = linear"),
         ("speed-up, 2 jobs on 2 cores", figures["speedup_2_cores"], "x"),

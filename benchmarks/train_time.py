@@ -17,7 +17,13 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_stack, prepare_tile, receptive_radius  # noqa: E402
+from tessera.cascade.model import (
+    CascadeSpec,
+    fit_cascade,
+    mirrored_stack,
+    prepare_tile,
+    receptive_radius,
+)  # noqa: E402
 from tessera.demo import render_dataset  # noqa: E402
 
 
@@ -35,14 +41,32 @@ def main():
     tiles = []
     for z in range(20):
         y0, x0 = (int(v) for v in rng.integers(0, 1024 - 500, 2))
-        window = mirrored_stack(image, z, spec.neighbours, y0 - radius, y0 + 500 + radius, x0 - radius, x0 + 500 + radius)
-        tiles.append(prepare_tile(spec, f"z{z}", window, truth[z, y0 : y0 + 500, x0 : x0 + 500], fold=z % spec.folds))
+        window = mirrored_stack(
+            image,
+            z,
+            spec.neighbours,
+            y0 - radius,
+            y0 + 500 + radius,
+            x0 - radius,
+            x0 + 500 + radius,
+        )
+        tiles.append(
+            prepare_tile(
+                spec, f"z{z}", window, truth[z, y0 : y0 + 500, x0 : x0 + 500], fold=z % spec.folds
+            )
+        )
     start = time.perf_counter()
     fit_cascade(spec, tiles, target="mitochondria", threads=args.threads)
     seconds = time.perf_counter() - start
     report(
         "train_time",
-        [(f"train 2x2, 20 tiles of 500^2, {args.threads} threads ({args.classifier})", seconds, "s")],
+        [
+            (
+                f"train 2x2, 20 tiles of 500^2, {args.threads} threads ({args.classifier})",
+                seconds,
+                "s",
+            )
+        ],
         {"train_2x2_20tiles_s": seconds, "classifier": args.classifier, "threads": args.threads},
     )
 

@@ -16,7 +16,9 @@ run_job(
     config_sections=snakemake.params.sections,
     sheet_rows=snakemake.params.datasets,
     scores=dict(zip(targets, snakemake.input.scores)),
-    object_settings={t: objects[i * len(datasets) : (i + 1) * len(datasets)] for i, t in enumerate(targets)},
+    object_settings={
+        t: objects[i * len(datasets) : (i + 1) * len(datasets)] for i, t in enumerate(targets)
+    },
     comparisons=dict(zip(targets, snakemake.input.comparisons)),
     checksums=list(snakemake.input.checksums),
     qc_tables=list(snakemake.input.qc),

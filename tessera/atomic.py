@@ -17,7 +17,10 @@ from pathlib import Path
 from .errors import TesseraResourceError
 
 _TMP_TAG = ".partial-"
-_NO_SPACE = {errno.ENOSPC: "the disk is full (no space left on device)", errno.EDQUOT: "the disk quota is exceeded"}
+_NO_SPACE = {
+    errno.ENOSPC: "the disk is full (no space left on device)",
+    errno.EDQUOT: "the disk quota is exceeded",
+}
 
 
 def _temporary_sibling(path):

@@ -13,7 +13,7 @@ record of the job that made it, and lists them in the crate.
 
 import json
 import platform
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import pandas as pd
@@ -43,14 +43,31 @@ def manifest(paths, *, root, records=None):
     rows = []
     for path in sorted({str(p) for p in paths}):
         p = Path(path)
-        rows.append({"path": str(p.relative_to(root)) if p.is_relative_to(root) else str(p),
-                     "kind": "store" if p.is_dir() else "file", "bytes": _size(p), "sha256": file_sha256(p),
-                     "provenance": made_by.get(str(p), "")})
+        rows.append(
+            {
+                "path": str(p.relative_to(root)) if p.is_relative_to(root) else str(p),
+                "kind": "store" if p.is_dir() else "file",
+                "bytes": _size(p),
+                "sha256": file_sha256(p),
+                "provenance": made_by.get(str(p), ""),
+            }
+        )
     return pd.DataFrame(rows, columns=["path", "kind", "bytes", "sha256", "provenance"])
 
 
-RECORD_COLUMNS = ["record", "rule", "wildcards", "code_version", "git_commit", "dirty", "host", "started",
-                  "finished", "duration_s", "outputs"]
+RECORD_COLUMNS = [
+    "record",
+    "rule",
+    "wildcards",
+    "code_version",
+    "git_commit",
+    "dirty",
+    "host",
+    "started",
+    "finished",
+    "duration_s",
+    "outputs",
+]
 
 
 def provenance_index(root):
@@ -64,55 +81,104 @@ def provenance_index(root):
         try:
             rec = json.loads(path.read_text(encoding="utf-8"))
             source = rec.get("source") or {}
-            rows.append({
-                "record": str(path), "rule": rec["rule"],
-                "wildcards": ",".join(f"{k}={v}" for k, v in sorted(rec["wildcards"].items())),
-                "code_version": rec.get("code_version") or "", "git_commit": source.get("commit") or "",
-                "dirty": source.get("dirty"), "host": rec["host"], "started": rec["started"],
-                "finished": rec["finished"], "duration_s": rec["duration_s"],
-                "outputs": ";".join(o["path"] for o in rec["outputs"]),
-            })
+            rows.append(
+                {
+                    "record": str(path),
+                    "rule": rec["rule"],
+                    "wildcards": ",".join(f"{k}={v}" for k, v in sorted(rec["wildcards"].items())),
+                    "code_version": rec.get("code_version") or "",
+                    "git_commit": source.get("commit") or "",
+                    "dirty": source.get("dirty"),
+                    "host": rec["host"],
+                    "started": rec["started"],
+                    "finished": rec["finished"],
+                    "duration_s": rec["duration_s"],
+                    "outputs": ";".join(o["path"] for o in rec["outputs"]),
+                }
+            )
         except (ValueError, KeyError, TypeError, AttributeError) as error:
-            rows.append({"record": str(path), "rule": "unreadable", "outputs": "", "wildcards": str(error)})
+            rows.append(
+                {"record": str(path), "rule": "unreadable", "outputs": "", "wildcards": str(error)}
+            )
     return pd.DataFrame(rows, columns=RECORD_COLUMNS)
 
 
 def ro_crate(table, inputs, *, name, description, root_dir, records=None):
     """RO-Crate 1.1 metadata (JSON-LD dict) of the run: workflow, inputs, results, and the job
     provenance records (each ``about`` the results its job wrote)."""
-    now = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
-    results = [{"@id": r.path + ("/" if r.kind == "store" else ""),
-                "@type": "Dataset" if r.kind == "store" else "File",
-                "contentSize": int(r.bytes), "sha256": r.sha256} for r in table.itertuples(index=False)]
+    now = datetime.now(UTC).replace(microsecond=0).isoformat()
+    results = [
+        {
+            "@id": r.path + ("/" if r.kind == "store" else ""),
+            "@type": "Dataset" if r.kind == "store" else "File",
+            "contentSize": int(r.bytes),
+            "sha256": r.sha256,
+        }
+        for r in table.itertuples(index=False)
+    ]
     sources = [{"@id": str(Path(p)), "@type": "File", "sha256": file_sha256(p)} for p in inputs]
     root = Path(root_dir)
     listed = {r["@id"] for r in results}
     provenance = []
-    for row in (records.itertuples(index=False) if records is not None else []):
-        about = [str(Path(o).relative_to(root)) for o in row.outputs.split(";") if o and Path(o).is_relative_to(root)]
+    for row in records.itertuples(index=False) if records is not None else []:
+        about = [
+            str(Path(o).relative_to(root))
+            for o in row.outputs.split(";")
+            if o and Path(o).is_relative_to(root)
+        ]
         about = [a for a in about if a in listed or a + "/" in listed]
-        provenance.append({"@id": str(Path(row.record).relative_to(root)), "@type": "File",
-                           "encodingFormat": "application/json",
-                           "name": f"provenance of rule {row.rule} {row.wildcards}".rstrip(),
-                           "about": [{"@id": a + ("/" if a + "/" in listed else "")} for a in about]})
+        provenance.append(
+            {
+                "@id": str(Path(row.record).relative_to(root)),
+                "@type": "File",
+                "encodingFormat": "application/json",
+                "name": f"provenance of rule {row.rule} {row.wildcards}".rstrip(),
+                "about": [{"@id": a + ("/" if a + "/" in listed else "")} for a in about],
+            }
+        )
     software = software_versions()
     graph = [
-        {"@id": "ro-crate-metadata.json", "@type": "CreativeWork", "about": {"@id": "./"},
-         "conformsTo": {"@id": "https://w3id.org/ro/crate/1.1"}},
-        {"@id": "./", "@type": "Dataset", "name": name, "description": description, "datePublished": now,
-         "license": {"@id": "https://spdx.org/licenses/BSD-3-Clause"},
-         "hasPart": [{"@id": r["@id"]} for r in [*results, *provenance]],
-         "mentions": {"@id": "#run"}},
-        {"@id": "#workflow", "@type": ["File", "SoftwareSourceCode", "ComputationalWorkflow"],
-         "name": f"tessera {__version__} (Snakemake workflow)", "programmingLanguage": {"@id": "#snakemake"},
-         "version": __version__},
-        {"@id": "#snakemake", "@type": "ComputerLanguage", "name": "Snakemake",
-         "url": {"@id": "https://snakemake.github.io"}, "version": software.get("snakemake", "")},
-        {"@id": "#run", "@type": "CreateAction", "name": f"run of {name}", "endTime": now,
-         "instrument": {"@id": "#workflow"}, "object": [{"@id": s["@id"]} for s in sources],
-         "result": [{"@id": r["@id"]} for r in results],
-         "description": f"host {platform.node()}, Python {platform.python_version()}; "
-                        + ", ".join(f"{k} {v}" for k, v in software.items())},
+        {
+            "@id": "ro-crate-metadata.json",
+            "@type": "CreativeWork",
+            "about": {"@id": "./"},
+            "conformsTo": {"@id": "https://w3id.org/ro/crate/1.1"},
+        },
+        {
+            "@id": "./",
+            "@type": "Dataset",
+            "name": name,
+            "description": description,
+            "datePublished": now,
+            "license": {"@id": "https://spdx.org/licenses/BSD-3-Clause"},
+            "hasPart": [{"@id": r["@id"]} for r in [*results, *provenance]],
+            "mentions": {"@id": "#run"},
+        },
+        {
+            "@id": "#workflow",
+            "@type": ["File", "SoftwareSourceCode", "ComputationalWorkflow"],
+            "name": f"tessera {__version__} (Snakemake workflow)",
+            "programmingLanguage": {"@id": "#snakemake"},
+            "version": __version__,
+        },
+        {
+            "@id": "#snakemake",
+            "@type": "ComputerLanguage",
+            "name": "Snakemake",
+            "url": {"@id": "https://snakemake.github.io"},
+            "version": software.get("snakemake", ""),
+        },
+        {
+            "@id": "#run",
+            "@type": "CreateAction",
+            "name": f"run of {name}",
+            "endTime": now,
+            "instrument": {"@id": "#workflow"},
+            "object": [{"@id": s["@id"]} for s in sources],
+            "result": [{"@id": r["@id"]} for r in results],
+            "description": f"host {platform.node()}, Python {platform.python_version()}; "
+            + ", ".join(f"{k} {v}" for k, v in software.items()),
+        },
         *results,
         *provenance,
         *sources,
@@ -120,15 +186,30 @@ def ro_crate(table, inputs, *, name, description, root_dir, records=None):
     return {"@context": "https://w3id.org/ro/crate/1.1/context", "@graph": graph}
 
 
-def audit_job(outputs, inputs, out_manifest, out_crate, out_records, *, study_name, root="results",
-              records_root="results/provenance"):
+def audit_job(
+    outputs,
+    inputs,
+    out_manifest,
+    out_crate,
+    out_records,
+    *,
+    study_name,
+    root="results",
+    records_root="results/provenance",
+):
     """Write the manifest of every result, the index of job provenance records and the RO-Crate."""
     records = provenance_index(records_root)
     table = manifest(outputs, root=Path(root), records=records)
     write_table(out_manifest, table)
     write_table(out_records, records)
-    crate = ro_crate(table, inputs, name=study_name, root_dir=root, records=records,
-                     description="Organelle segmentation and morphometry results made by tessera; automatic "
-                                 "segmentation is a research measurement, validated on held-out annotation.")
+    crate = ro_crate(
+        table,
+        inputs,
+        name=study_name,
+        root_dir=root,
+        records=records,
+        description="Organelle segmentation and morphometry results made by tessera; automatic "
+        "segmentation is a research measurement, validated on held-out annotation.",
+    )
     write_text(out_crate, json.dumps(crate, indent=1) + "\n")
     return {"results": len(table), "bytes": int(table["bytes"].sum()), "records": len(records)}

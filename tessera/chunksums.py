@@ -131,18 +131,26 @@ def _inherited_files(folder, rel, source):
     try:
         recorded = _parse_manifest(source_manifest)["files"]
     except FileNotFoundError:
-        raise TesseraInputError(f"no checksum manifest to inherit; {hint}", source=source_manifest) from None
+        raise TesseraInputError(
+            f"no checksum manifest to inherit; {hint}", source=source_manifest
+        ) from None
     except (ValueError, UnicodeDecodeError) as exc:  # json.JSONDecodeError is a ValueError
-        raise TesseraInputError(f"checksum manifest is damaged ({exc}); {hint}", source=source_manifest) from None
+        raise TesseraInputError(
+            f"checksum manifest is damaged ({exc}); {hint}", source=source_manifest
+        ) from None
     present = {p.relative_to(folder).as_posix(): p for p in _array_files(folder)}
     for name, path in present.items():
         if name not in recorded:
-            raise TesseraInputError(f"file was not recorded when the store was written; {hint}",
-                                    source=Path(source) / rel / name)
+            raise TesseraInputError(
+                f"file was not recorded when the store was written; {hint}",
+                source=Path(source) / rel / name,
+            )
     for name, entry in recorded.items():
         if name not in present or present[name].stat().st_size != entry["bytes"]:
-            raise TesseraInputError(f"recorded file is missing or has another size; {hint}",
-                                    source=Path(source) / rel / name)
+            raise TesseraInputError(
+                f"recorded file is missing or has another size; {hint}",
+                source=Path(source) / rel / name,
+            )
     return dict(recorded)
 
 
@@ -217,12 +225,20 @@ def _is_ancestor_meta(meta_key, array):
 def _parse_manifest(path):
     text = Path(path).read_text(encoding="utf-8")  # FileNotFoundError is the caller's to word
     data = json.loads(text)
-    if not (isinstance(data, dict) and data.get("format") == FORMAT and data.get("algorithm") == "sha256"
-            and isinstance(data.get("files"), dict) and isinstance(data.get("groups", {}), dict)):
+    if not (
+        isinstance(data, dict)
+        and data.get("format") == FORMAT
+        and data.get("algorithm") == "sha256"
+        and isinstance(data.get("files"), dict)
+        and isinstance(data.get("groups", {}), dict)
+    ):
         raise ValueError(f"not a checksum manifest of format {FORMAT}")
     for entry in [*data["files"].values(), *data.get("groups", {}).values()]:
-        if not (isinstance(entry, dict) and isinstance(entry.get("bytes"), int)
-                and isinstance(entry.get("sha256"), str)):
+        if not (
+            isinstance(entry, dict)
+            and isinstance(entry.get("bytes"), int)
+            and isinstance(entry.get("sha256"), str)
+        ):
             raise ValueError("an entry lacks its size or digest")
     return data
 
@@ -242,8 +258,9 @@ class _Checker:
             try:
                 self._manifests[rel] = _parse_manifest(path) if path.is_file() else None
             except (ValueError, UnicodeDecodeError) as exc:  # json.JSONDecodeError is a ValueError
-                raise TesseraInputError(f"checksum manifest is damaged ({exc}); {rebuild_hint(self.store)}",
-                                        source=path) from None
+                raise TesseraInputError(
+                    f"checksum manifest is damaged ({exc}); {rebuild_hint(self.store)}", source=path
+                ) from None
         return self._manifests[rel]
 
     def _below(self, group):
@@ -259,7 +276,10 @@ class _Checker:
                         todo.append(child)
             smallest = min(found, key=lambda p: (p / MANIFEST).stat().st_size, default=None)
             self._group_manifest[group] = (
-                None if smallest is None else self._manifest(smallest.relative_to(self.store).as_posix()))
+                None
+                if smallest is None
+                else self._manifest(smallest.relative_to(self.store).as_posix())
+            )
         return self._group_manifest[group]
 
     def record(self, key):
@@ -283,23 +303,32 @@ class _Checker:
             if data is not None and self.required:
                 raise TesseraInputError(
                     f"no checksum manifest ({MANIFEST}) covers this file: the store was written by an older "
-                    f"tessera version or by hand; {rebuild_hint(self.store)}", source=path)
+                    f"tessera version or by hand; {rebuild_hint(self.store)}",
+                    source=path,
+                )
             return
         hint = rebuild_hint(self.store, linked_from=manifest.get("linked_from"))
         if entry is None:
             if data is not None:
-                raise TesseraInputError(f"file was not recorded when the store was written (added later?); {hint}",
-                                        source=path)
+                raise TesseraInputError(
+                    f"file was not recorded when the store was written (added later?); {hint}",
+                    source=path,
+                )
             return
         if data is None:
-            raise TesseraInputError(f"file recorded when the store was written is missing; {hint}", source=path)
+            raise TesseraInputError(
+                f"file recorded when the store was written is missing; {hint}", source=path
+            )
         if len(data) != entry["bytes"]:
             raise TesseraInputError(
                 f"file has {len(data)} bytes, {entry['bytes']} were recorded (truncated or damaged); {hint}",
-                source=path)
+                source=path,
+            )
         if hashlib.sha256(data).hexdigest() != entry["sha256"]:
-            raise TesseraInputError(f"file does not match its recorded SHA-256 (altered or damaged); {hint}",
-                                    source=path)
+            raise TesseraInputError(
+                f"file does not match its recorded SHA-256 (altered or damaged); {hint}",
+                source=path,
+            )
 
 
 def _byte_slice(size, byte_range):
@@ -324,7 +353,9 @@ class _CheckedStore(WrapperStore):
         return type(self)(store, self._checker)
 
     async def get(self, key, prototype=None, byte_range=None):
-        buffer = await self._store.get(key, prototype, None)  # whole file: only that can be verified
+        buffer = await self._store.get(
+            key, prototype, None
+        )  # whole file: only that can be verified
         data = None if buffer is None else buffer.to_bytes()
         await asyncio.to_thread(self._checker.check, key, data)  # hashlib releases the GIL
         if buffer is None or byte_range is None:

@@ -65,7 +65,9 @@ def validate(instance, schema, *, source):
 
     Errors are sorted by their position so the message is stable between runs.
     """
-    errors = sorted(_Validator(schema).iter_errors(instance), key=lambda e: [str(p) for p in e.absolute_path])
+    errors = sorted(
+        _Validator(schema).iter_errors(instance), key=lambda e: [str(p) for p in e.absolute_path]
+    )
     if errors:
         extra = f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""
         raise TesseraInputError(_describe(errors[0]) + extra, source=source)
@@ -102,7 +104,8 @@ def _check_related_keys(config, source):
         high, low = objects.get("high"), objects.get("low")
         if high is not None and low is not None and low > high:
             raise TesseraInputError(
-                f"key targets.{name}.objects: low ({low}) must not exceed high ({high})", source=source
+                f"key targets.{name}.objects: low ({low}) must not exceed high ({high})",
+                source=source,
             )
         smallest, largest = objects.get("min_volume_um3", 0), objects.get("max_volume_um3")
         if largest is not None and smallest > largest:
@@ -155,7 +158,9 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, 
     except FileNotFoundError:
         raise TesseraInputError("datasets sheet not found", source=sheet_path) from None
     except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
-        raise TesseraInputError(f"not a readable tab-separated sheet: {exc}", source=sheet_path) from None
+        raise TesseraInputError(
+            f"not a readable tab-separated sheet: {exc}", source=sheet_path
+        ) from None
     if table.empty:
         raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
     rows = []
@@ -223,7 +228,8 @@ def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
                 continue
             if not full.exists():
                 raise TesseraInputError(
-                    f"column {column}: file or folder {value!r} not found", source=f"{sheet_path}, row {i + 2}"
+                    f"column {column}: file or folder {value!r} not found",
+                    source=f"{sheet_path}, row {i + 2}",
                 )
 
 
@@ -266,7 +272,9 @@ def expand_variants(config, *, source="config/config.yaml"):
         if study:
             for factor in study["factors"]:
                 if factor != target["downsample"]:
-                    size = max(16, int(round(target["tiles"]["size"] * target["downsample"] / factor)))
+                    size = max(
+                        16, int(round(target["tiles"]["size"] * target["downsample"] / factor))
+                    )
                     wanted[f"x{factor}"] = {"downsample": factor, "tiles": {"size": size}}
         for variant, overrides in wanted.items():
             if "labels" not in target["annotations"] and "downsample" in overrides:
@@ -282,8 +290,10 @@ def expand_variants(config, *, source="config/config.yaml"):
                 else:
                     merged[key] = value
             if f"{name}.{variant}" in targets:
-                raise TesseraInputError(f"key targets: {name}.{variant} is both a target and a variant of {name}",
-                                        source=source)
+                raise TesseraInputError(
+                    f"key targets: {name}.{variant} is both a target and a variant of {name}",
+                    source=source,
+                )
             added[f"{name}.{variant}"] = merged
             base_of[f"{name}.{variant}"] = name
     targets.update(added)

@@ -105,8 +105,19 @@ _DEFECT_BLUR_SIGMA_PX = 4.0
 _TORN_FRACTION = (0.35, 0.6)
 _MISSING_VALUE = 0.0
 
-_STREAMS = ("cells", "nuclei", "lipids", "mito_count", "mito_shape", "mito_place", "vesicles",
-            "texture", "noise", "defects", "tiles")
+_STREAMS = (
+    "cells",
+    "nuclei",
+    "lipids",
+    "mito_count",
+    "mito_shape",
+    "mito_place",
+    "vesicles",
+    "texture",
+    "noise",
+    "defects",
+    "tiles",
+)
 
 _MIN_SHAPE = (8, 64, 64)
 
@@ -142,11 +153,12 @@ def dataset_seed(study_seed, dataset):
     study_seed = _check_seed(study_seed, name="study_seed")
     if not isinstance(dataset, str) or not dataset:
         raise TesseraInputError(f"dataset must be a non-empty string, got {dataset!r}")
-    return zlib.crc32(f"{study_seed}:{dataset}".encode("utf-8"))
+    return zlib.crc32(f"{study_seed}:{dataset}".encode())
 
 
-def subject_volume_scale(subject, condition, *, study_seed, condition_scales=None,
-                         animal_sd=ANIMAL_SD):
+def subject_volume_scale(
+    subject, condition, *, study_seed, condition_scales=None, animal_sd=ANIMAL_SD
+):
     """Return the mitochondrial volume factor of one animal: condition effect times animal effect.
 
     Parameters
@@ -175,8 +187,7 @@ def subject_volume_scale(subject, condition, *, study_seed, condition_scales=Non
     """
     scales = CONDITION_SCALES if condition_scales is None else dict(condition_scales)
     if condition not in scales:
-        raise TesseraInputError(
-            f"condition must be one of {sorted(scales)}, got {condition!r}")
+        raise TesseraInputError(f"condition must be one of {sorted(scales)}, got {condition!r}")
     base = _check_scale(scales[condition], name=f"condition_scales[{condition!r}]")
     try:
         sd = float(animal_sd)
@@ -191,8 +202,9 @@ def subject_volume_scale(subject, condition, *, study_seed, condition_scales=Non
     return float(base * math.exp(eps))
 
 
-def render_dataset(*, seed, shape=(64, 512, 512), spacing=(40.0, 8.0, 8.0),
-                   mito_volume_scale=1.0, defects=True):
+def render_dataset(
+    *, seed, shape=(64, 512, 512), spacing=(40.0, 8.0, 8.0), mito_volume_scale=1.0, defects=True
+):
     """Render one synthetic SBEM-like volume with its true labels.
 
     Parameters
@@ -274,9 +286,21 @@ def render_dataset(*, seed, shape=(64, 512, 512), spacing=(40.0, 8.0, 8.0),
     }
 
 
-def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(64, 512, 512),
-                  spacing=(40.0, 8.0, 8.0), mito_volume_scale=1.0, tile_size=128,
-                  tiles_per_target=6, heldout_per_target=3, defects=True):
+def write_dataset(
+    out_dir,
+    *,
+    dataset,
+    condition,
+    subject,
+    seed,
+    shape=(64, 512, 512),
+    spacing=(40.0, 8.0, 8.0),
+    mito_volume_scale=1.0,
+    tile_size=128,
+    tiles_per_target=6,
+    heldout_per_target=3,
+    defects=True,
+):
     """Render one dataset and write it, with painted annotation tiles, into `out_dir`.
 
     Parameters
@@ -318,22 +342,29 @@ def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(64, 512,
     for key, value in (("dataset", dataset), ("condition", condition), ("subject", subject)):
         if not isinstance(value, str) or not value or any(c in value for c in "/\\\t\n"):
             raise TesseraInputError(
-                f"{key} must be a non-empty string without slashes, tabs or newlines, "
-                f"got {value!r}")
+                f"{key} must be a non-empty string without slashes, tabs or newlines, got {value!r}"
+            )
     shape = _check_shape(shape)
     spacing = normalize_spacing(spacing, 3)
     tile_size = _check_int(tile_size, "tile_size", low=8)
     if tile_size > min(shape[1], shape[2]):
         raise TesseraInputError(
-            f"tile_size must not exceed the section size {shape[1:]}, got {tile_size}")
+            f"tile_size must not exceed the section size {shape[1:]}, got {tile_size}"
+        )
     n_painted = _check_int(tiles_per_target, "tiles_per_target", low=1)
     n_heldout = _check_int(heldout_per_target, "heldout_per_target", low=0)
 
-    out = render_dataset(seed=seed, shape=shape, spacing=spacing,
-                         mito_volume_scale=mito_volume_scale, defects=defects)
+    out = render_dataset(
+        seed=seed,
+        shape=shape,
+        spacing=spacing,
+        mito_volume_scale=mito_volume_scale,
+        defects=defects,
+    )
     bad = set(out["defects"]["blank"]) | set(out["defects"]["blurred"])
-    tiles = _choose_tiles(_streams(seed)["tiles"], out, bad, dataset, tile_size, n_painted,
-                          n_heldout)
+    tiles = _choose_tiles(
+        _streams(seed)["tiles"], out, bad, dataset, tile_size, n_painted, n_heldout
+    )
 
     with atomic_path(out_dir) as tmp:
         tmp.mkdir()
@@ -348,11 +379,17 @@ def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(64, 512,
         half = tile_size // 2
         for t in tiles:
             z, y, x = t["z"], t["y"], t["x"]
-            cut = out[t["target"]][z, y - half:y - half + tile_size, x - half:x - half + tile_size]
+            cut = out[t["target"]][
+                z, y - half : y - half + tile_size, x - half : x - half + tile_size
+            ]
             mask = np.where(cut > 0, 255, 0).astype(np.uint8)
             Image.fromarray(mask).save(tmp / "tiles" / t["target"] / f"{t['tile_id']}.png")
-            lines.append("\t".join(str(v) for v in (
-                t["tile_id"], dataset, t["target"], z, y, x, tile_size, t["set"])))
+            lines.append(
+                "\t".join(
+                    str(v)
+                    for v in (t["tile_id"], dataset, t["target"], z, y, x, tile_size, t["set"])
+                )
+            )
         (tmp / "tiles" / "points.tsv").write_text("\n".join(lines) + "\n", encoding="utf-8")
         truth = {
             "generator": "tessera.demo",
@@ -364,13 +401,18 @@ def write_dataset(out_dir, *, dataset, condition, subject, seed, shape=(64, 512,
             "spacing_nm": [float(v) for v in spacing],
             "axes": "zyx",
             "mito_volume_scale": float(mito_volume_scale),
-            "tiles": {"size": tile_size, "painted_per_target": n_painted,
-                      "heldout_per_target": n_heldout, "min_heldout_distance_sections": 3},
+            "tiles": {
+                "size": tile_size,
+                "painted_per_target": n_painted,
+                "heldout_per_target": n_heldout,
+                "min_heldout_distance_sections": 3,
+            },
             "defects": out["defects"],
             "summary": out["summary"],
         }
-        (tmp / "truth.json").write_text(json.dumps(truth, indent=2, sort_keys=True) + "\n",
-                                        encoding="utf-8")
+        (tmp / "truth.json").write_text(
+            json.dumps(truth, indent=2, sort_keys=True) + "\n", encoding="utf-8"
+        )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -428,12 +470,12 @@ class _Grid:
     def __init__(self, shape, spacing):
         self.shape = shape
         self.spacing = np.asarray(spacing, dtype=np.float64)
-        self.axes = [np.arange(n, dtype=np.float32) * np.float32(s)
-                     for n, s in zip(shape, spacing)]
+        self.axes = [np.arange(n, dtype=np.float32) * np.float32(s) for n, s in zip(shape, spacing)]
         self.extent = np.array([(n - 1) * s for n, s in zip(shape, spacing)])
         self.voxel_um3 = float(np.prod(self.spacing)) * 1e-9
-        self.g = float(np.clip(min(self.extent[1], self.extent[2]) / _REFERENCE_FIELD_NM,
-                               0.35, 1.0))
+        self.g = float(
+            np.clip(min(self.extent[1], self.extent[2]) / _REFERENCE_FIELD_NM, 0.35, 1.0)
+        )
 
     def box(self, lo, hi):
         """Index slices of the voxels whose centres may lie in [lo, hi] (nm), or None."""
@@ -456,9 +498,11 @@ def _smooth_noise(rng, grid, corr_nm):
     steps = [max(1.0, corr_nm / 2.0 / s) for s in grid.spacing]
     coarse_shape = [int(math.ceil((n - 1) / st)) + 2 for n, st in zip(grid.shape, steps)]
     coarse = rng.standard_normal(coarse_shape, dtype=np.float32)
-    coarse = ndimage.gaussian_filter(coarse, sigma=[1.0 if st > 1 else corr_nm / 2 / s
-                                                    for st, s in zip(steps, grid.spacing)],
-                                     mode="wrap")
+    coarse = ndimage.gaussian_filter(
+        coarse,
+        sigma=[1.0 if st > 1 else corr_nm / 2 / s for st, s in zip(steps, grid.spacing)],
+        mode="wrap",
+    )
     coarse /= max(float(coarse.std()), 1e-6)
     out = coarse
     for axis, (n, st) in enumerate(zip(grid.shape, steps)):
@@ -525,8 +569,13 @@ def _make_cells(rng, grid):
     labels_of_seed[present] = np.arange(1, len(present) + 1, dtype=np.uint16)
     labels = labels_of_seed[owner]
     labels[boundary < _MEMBRANE_HALF_NM] = 0
-    return {"seeds": seeds, "owner": owner, "boundary": boundary, "labels": labels,
-            "present": present}
+    return {
+        "seeds": seeds,
+        "owner": owner,
+        "boundary": boundary,
+        "labels": labels,
+        "present": present,
+    }
 
 
 def _cell_clearance(cells, p):
@@ -550,13 +599,19 @@ def _make_nuclei(rng, rng_texture, grid, cells):
     seeds = cells["seeds"]
     present = cells["present"]
     centre = grid.extent / 2
-    field = [(s, i) for i, s in enumerate(seeds) if i in set(present.tolist())
-             and 0 <= s[1] <= grid.extent[1] and 0 <= s[2] <= grid.extent[2]]
+    field = [
+        (s, i)
+        for i, s in enumerate(seeds)
+        if i in set(present.tolist())
+        and 0 <= s[1] <= grid.extent[1]
+        and 0 <= s[2] <= grid.extent[2]
+    ]
     if field:
         chosen = {min(field, key=lambda t: np.hypot(*(t[0][1:] - centre[1:])))[1]}
     else:
-        chosen = {int(present[np.argmin([np.hypot(*(seeds[i][1:] - centre[1:]))
-                                         for i in present])])}
+        chosen = {
+            int(present[np.argmin([np.hypot(*(seeds[i][1:] - centre[1:])) for i in present])])
+        }
     for _, i in field:
         if rng.random() < 0.35:
             chosen.add(i)
@@ -600,8 +655,7 @@ def _nucleus_clearance(nuclei, p):
         cos, sin = _rotation_2d(n["theta"])
         dy, dx = p[1] - c[1], p[2] - c[2]
         u, v = dy * cos + dx * sin, -dy * sin + dx * cos
-        rho = math.sqrt(((p[0] - c[0]) / radii[0]) ** 2 + (u / radii[1]) ** 2
-                        + (v / radii[2]) ** 2)
+        rho = math.sqrt(((p[0] - c[0]) / radii[0]) ** 2 + (u / radii[1]) ** 2 + (v / radii[2]) ** 2)
         # rho shrinks by at most (1 - 2 * roughness); scaling the ellipsoid by 1/a_min at most
         # bounds the Euclidean distance from below.
         best = min(best, (rho * (1 - 2 * _NUCLEUS_ROUGHNESS) - 1) * radii.min())
@@ -713,7 +767,8 @@ def _walk(rng, space, start, direction, length, r, n_steps, cell, *, turn_sd=0.2
             q = pts[-1] + step * nd
             # No folding back onto itself: keep away from its own earlier centreline.
             if older < len(pts) and np.any(
-                    ((np.asarray(pts[:len(pts) - older]) - q) ** 2).sum(axis=1) < (2 * r) ** 2):
+                ((np.asarray(pts[: len(pts) - older]) - q) ** 2).sum(axis=1) < (2 * r) ** 2
+            ):
                 continue
             if space.ok(q, r, step / 2, cell, bounds):
                 break
@@ -751,12 +806,12 @@ def _make_mitochondria(rng, grid, cells, nuclei, lipids, scale):
     radius = _latin(shape_rng, n, *_MITO_RADIUS_NM)
     length = _latin(shape_rng, n, *_MITO_LENGTH_NM)
     branched = np.zeros(n, dtype=bool)
-    branched[shape_rng.permutation(n)[:int(round(_MITO_BRANCHED * n))]] = True
+    branched[shape_rng.permutation(n)[: int(round(_MITO_BRANCHED * n))]] = True
     branch_at = shape_rng.uniform(0.3, 0.7, n)
     branch_len = shape_rng.uniform(0.3, 0.6, n)
     branch_angle = shape_rng.uniform(math.radians(50), math.radians(90), n)
     period = shape_rng.uniform(*_MITO_CRISTA_PERIOD_NM, n)
-    nominal = math.pi * radius ** 2 * length + 4.0 / 3.0 * math.pi * radius ** 3
+    nominal = math.pi * radius**2 * length + 4.0 / 3.0 * math.pi * radius**3
     order = np.argsort(-nominal, kind="stable")
 
     lin = scale ** (1.0 / 3.0)
@@ -793,8 +848,9 @@ def _make_mitochondria(rng, grid, cells, nuclei, lipids, scale):
                 bdir = math.cos(branch_angle[i]) * tangent + math.sin(branch_angle[i]) * perp
                 b_steps = max(2, int(math.ceil(branch_len[i] * length[i] / _MITO_STEP_NM)))
                 # The parent is not yet in `space`, so the branch may start inside it.
-                side = _walk(place, space, main[k], bdir, branch_len[i] * L, rb, b_steps, cell,
-                             turn_sd=0.15)
+                side = _walk(
+                    place, space, main[k], bdir, branch_len[i] * L, rb, b_steps, cell, turn_sd=0.15
+                )
                 if side is None:
                     continue
                 parts.append((side, rb, branch_len[i] * L / b_steps / 2))
@@ -807,10 +863,24 @@ def _make_mitochondria(rng, grid, cells, nuclei, lipids, scale):
         for path, rr, half_step in result:
             _render_tube(grid, path, rr, mid, labels, depth, arc)
             space.add(path, rr, half_step)
-        placed.append({"id": mid, "branched": bool(branched[i]), "period": float(period[i]),
-                       "radius": float(r), "length": float(L), "cell": int(cell)})
-    return {"labels": labels, "depth": depth, "arc": arc, "params": placed,
-            "unplaced": unplaced, "linear_scale": lin}
+        placed.append(
+            {
+                "id": mid,
+                "branched": bool(branched[i]),
+                "period": float(period[i]),
+                "radius": float(r),
+                "length": float(L),
+                "cell": int(cell),
+            }
+        )
+    return {
+        "labels": labels,
+        "depth": depth,
+        "arc": arc,
+        "params": placed,
+        "unplaced": unplaced,
+        "linear_scale": lin,
+    }
 
 
 def _render_tube(grid, path, r, mid, labels, depth, arc):
@@ -828,8 +898,11 @@ def _render_tube(grid, path, r, mid, labels, depth, arc):
         u = seg / max(seg_len, 1e-9)
         t = rz * np.float32(u[0]) + ry * np.float32(u[1]) + rx * np.float32(u[2])
         np.clip(t, 0, seg_len, out=t)
-        d2 = ((rz - t * np.float32(u[0])) ** 2 + (ry - t * np.float32(u[1])) ** 2
-              + (rx - t * np.float32(u[2])) ** 2)
+        d2 = (
+            (rz - t * np.float32(u[0])) ** 2
+            + (ry - t * np.float32(u[1])) ** 2
+            + (rx - t * np.float32(u[2])) ** 2
+        )
         dep = np.float32(r) - np.sqrt(d2)
         sub = depth[box]
         upd = (dep >= 0) & (dep > sub) & ((labels[box] == 0) | (labels[box] == mid))
@@ -856,8 +929,9 @@ def _make_vesicles(rng, grid, free, cyto_um3):
     rim = np.zeros(grid.shape, dtype=bool)
     if len(centres):
         reach = np.ceil(_VESICLE_RADIUS_NM[1] / grid.spacing).astype(int)
-        off = np.stack(np.meshgrid(*[np.arange(-k, k + 1) for k in reach], indexing="ij"),
-                       axis=-1).reshape(-1, 3)
+        off = np.stack(
+            np.meshgrid(*[np.arange(-k, k + 1) for k in reach], indexing="ij"), axis=-1
+        ).reshape(-1, 3)
         base = np.rint(centres / grid.spacing).astype(np.intp)
         vox = base[:, None, :] + off[None, :, :]
         inside = np.all((vox >= 0) & (vox < np.array(grid.shape)), axis=-1)
@@ -901,8 +975,9 @@ def _paint(rng, grid, cells, nuclei, lipids, mitos, vesicles):
         lm = lab[mito]
         dep = mitos["depth"][mito]
         wave = np.cos(2 * np.pi * (mitos["arc"][mito] / period[lm] + phase[lm]))
-        val = np.where((wave > 0.55) & (dep > _MITO_RIM_NM + 6), _GREY["crista"],
-                       _GREY["matrix"]).astype(np.float32)
+        val = np.where(
+            (wave > 0.55) & (dep > _MITO_RIM_NM + 6), _GREY["crista"], _GREY["matrix"]
+        ).astype(np.float32)
         val[dep < _MITO_RIM_NM] = _GREY["mito_rim"]
         img[mito] = val
 
@@ -946,7 +1021,7 @@ def _defocus(img, plan):
 def _remove_material(grid, img, plan):
     lost = plan["lost"]
     if plan["torn"]:
-        yy, xx = np.mgrid[0:grid.shape[1], 0:grid.shape[2]]
+        yy, xx = np.mgrid[0 : grid.shape[1], 0 : grid.shape[2]]
         proj = yy * math.cos(plan["theta"]) + xx * math.sin(plan["theta"])
         cut = np.quantile(proj, 1 - plan["fraction"])
         img[lost][proj > cut] = _MISSING_VALUE
@@ -996,21 +1071,30 @@ def _choose_tiles(rng, out, bad, dataset, size, n_painted, n_heldout):
         mask = out[target] > 0
         zs = usable if rng.random() < 0.5 else usable[::-1]
         if n_heldout:
-            held = zs[:max(1, len(zs) // 3)]
+            held = zs[: max(1, len(zs) // 3)]
             painted = [z for z in zs if all(abs(z - h) >= 3 for h in held)]
         else:
             held, painted = [], list(zs)
         if not painted:
             raise TesseraInputError(
                 f"shape {out['raw'].shape} is too thin for painted and held-out tiles 3 "
-                "sections apart")
+                "sections apart"
+            )
         chosen = []
         for kind, pool, count in (("painted", painted, n_painted), ("heldout", held, n_heldout)):
             for k in range(count):
                 z, y, x = _pick_centre(rng, mask, pool, size, chosen)
                 chosen.append((z, y, x))
-                tiles.append({"tile_id": f"{dataset}-{target[:4]}-{kind[0]}{k + 1:02d}",
-                              "target": target, "z": z, "y": y, "x": x, "set": kind})
+                tiles.append(
+                    {
+                        "tile_id": f"{dataset}-{target[:4]}-{kind[0]}{k + 1:02d}",
+                        "target": target,
+                        "z": z,
+                        "y": y,
+                        "x": x,
+                        "set": kind,
+                    }
+                )
     return tiles
 
 
@@ -1024,10 +1108,9 @@ def _pick_centre(rng, mask, pool, size, chosen, n_candidates=64):
     best, best_score = None, -1.0
     for z, y, x in zip(zc, yc, xc):
         z, y, x = int(z), int(y), int(x)
-        frac = float(mask[z, y - half:y - half + size, x - half:x - half + size].mean())
+        frac = float(mask[z, y - half : y - half + size, x - half : x - half + size].mean())
         score = min(frac, 1 - frac)
-        near = any(cz == z and abs(cy - y) < half and abs(cx - x) < half
-                   for cz, cy, cx in chosen)
+        near = any(cz == z and abs(cy - y) < half and abs(cx - x) < half for cz, cy, cx in chosen)
         if near:
             score -= 1.0
         if score >= 0.1:
@@ -1038,5 +1121,10 @@ def _pick_centre(rng, mask, pool, size, chosen, n_candidates=64):
 
 
 def _write_tiff(path, array, spacing):
-    tifffile.imwrite(path, array, photometric="minisblack", compression="zlib",
-                     metadata={"axes": "ZYX", "spacing_nm": [float(s) for s in spacing]})
+    tifffile.imwrite(
+        path,
+        array,
+        photometric="minisblack",
+        compression="zlib",
+        metadata={"axes": "ZYX", "spacing_nm": [float(s) for s in spacing]},
+    )

@@ -36,11 +36,19 @@ def downsampling_job(summaries, factors, out_curve, out_plot, *, target, toleran
     for factor, path in zip(factors, summaries):
         table = pd.read_csv(path, sep="\t")
         overall = table[table["dataset"] == "all"].iloc[0]
-        rows.append({"factor": int(factor), "f1": overall["f1"], "f1_ci_low": overall["f1_ci_low"],
-                     "f1_ci_high": overall["f1_ci_high"], "jaccard": overall["jaccard"],
-                     "object_f1": overall["object_f1"], "test_tiles": int(overall["tiles"]),
-                     # voxels to predict relative to full resolution (in-plane reduction f x f)
-                     "relative_cost": 1.0 / factor**2})
+        rows.append(
+            {
+                "factor": int(factor),
+                "f1": overall["f1"],
+                "f1_ci_low": overall["f1_ci_low"],
+                "f1_ci_high": overall["f1_ci_high"],
+                "jaccard": overall["jaccard"],
+                "object_f1": overall["object_f1"],
+                "test_tiles": int(overall["tiles"]),
+                # voxels to predict relative to full resolution (in-plane reduction f x f)
+                "relative_cost": 1.0 / factor**2,
+            }
+        )
     curve = pd.DataFrame(rows).sort_values("factor").reset_index(drop=True)
     chosen = recommend_factor(curve, tolerance=tolerance)
     curve["recommended"] = curve["factor"] == chosen
@@ -49,7 +57,10 @@ def downsampling_job(summaries, factors, out_curve, out_plot, *, target, toleran
     write_table(out_curve, curve)
     with atomic_path(out_plot) as tmp:
         plot_curve(curve, tmp, target=target, chosen=chosen)
-    return {"recommended": chosen, "f1": dict(zip(curve["factor"].tolist(), curve["f1"].round(4).tolist()))}
+    return {
+        "recommended": chosen,
+        "f1": dict(zip(curve["factor"].tolist(), curve["f1"].round(4).tolist())),
+    }
 
 
 def plot_curve(curve, path, *, target, chosen):
@@ -62,9 +73,20 @@ def plot_curve(curve, path, *, target, chosen):
     ax.axvline(chosen, color="0.6", ls="--", label=f"recommended {chosen}x")
     ax.set_xscale("log", base=2)
     ax.set_xticks(curve["factor"], [f"{f}x" for f in curve["factor"]])
-    ax.set(xlabel="in-plane downsampling (prediction cost 1/f²)", ylabel="test-tile pixel F1",
-           ylim=(max(0, math.floor(curve["f1_ci_low"].min(skipna=True) * 10) / 10 if curve["f1_ci_low"].notna().any()
-                     else 0), 1.0), title=f"{target}: accuracy vs downsampling")
+    ax.set(
+        xlabel="in-plane downsampling (prediction cost 1/f²)",
+        ylabel="test-tile pixel F1",
+        ylim=(
+            max(
+                0,
+                math.floor(curve["f1_ci_low"].min(skipna=True) * 10) / 10
+                if curve["f1_ci_low"].notna().any()
+                else 0,
+            ),
+            1.0,
+        ),
+        title=f"{target}: accuracy vs downsampling",
+    )
     ax.legend(fontsize=8)
     fig.tight_layout()
     fig.savefig(path, dpi=100, format="png")

@@ -73,7 +73,9 @@ def precision_recall_curve(prob, truth):
     keep = truth != IGNORE
     prob, true = prob[keep], truth[keep] == 1
     if not true.any():
-        raise TesseraInputError("the test pixels hold no target: a precision-recall curve is undefined")
+        raise TesseraInputError(
+            "the test pixels hold no target: a precision-recall curve is undefined"
+        )
     order = np.argsort(-prob, kind="mergesort")
     prob, true = prob[order], true[order]
     last = np.r_[np.flatnonzero(np.diff(prob)), prob.size - 1]  # last index of each distinct value
@@ -98,7 +100,9 @@ def match_objects(truth, pred, *, iou=0.5):
         ``true_objects``, ``predicted_objects``, ``matched``.
     """
     if iou < 0.5:
-        raise TesseraInputError(f"the IoU threshold must be >= 0.5 for one-to-one matching, got {iou}")
+        raise TesseraInputError(
+            f"the IoU threshold must be >= 0.5 for one-to-one matching, got {iou}"
+        )
     truth, pred = np.asarray(truth), np.asarray(pred, bool)
     valid = truth != IGNORE
     t_lab, n_t = ndimage.label((truth == 1) & valid, EIGHT)
@@ -138,11 +142,19 @@ def partition_errors(truth_labels, pred_labels):
     # pair counts including each pixel with itself, as the challenges define them
     rand_precision = (sum_joint - n) / (sum_pred - n) if sum_pred > n else 1.0
     rand_recall = (sum_joint - n) / (sum_true - n) if sum_true > n else 1.0
-    f = (2 * rand_precision * rand_recall / (rand_precision + rand_recall)
-         if rand_precision + rand_recall else 0.0)
+    f = (
+        2 * rand_precision * rand_recall / (rand_precision + rand_recall)
+        if rand_precision + rand_recall
+        else 0.0
+    )
     h_joint, h_true, h_pred = _entropy(counts), _entropy(rows), _entropy(cols)
-    return {"adapted_rand_error": 1.0 - f, "rand_precision": rand_precision, "rand_recall": rand_recall,
-            "voi_split": h_joint - h_true, "voi_merge": h_joint - h_pred}
+    return {
+        "adapted_rand_error": 1.0 - f,
+        "rand_precision": rand_precision,
+        "rand_recall": rand_recall,
+        "voi_split": h_joint - h_true,
+        "voi_merge": h_joint - h_pred,
+    }
 
 
 def bootstrap_interval(tile_counts, statistic, *, reps=1000, confidence=0.95, seed=0):
@@ -179,11 +191,17 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
     """
     roles = set(registry["role"])
     if "test" not in roles:
-        raise TesseraInputError("the target has no test tiles; annotate more tiles or change split.fractions")
+        raise TesseraInputError(
+            "the target has no test tiles; annotate more tiles or change split.fractions"
+        )
     if "validation" not in roles:
         raise TesseraInputError("the target has no validation tiles to choose the threshold on")
     test = registry[registry["role"] == "test"]
-    missing = [t for t in registry.loc[registry["role"].isin(["validation", "test"]), "tile_id"] if t not in probabilities]
+    missing = [
+        t
+        for t in registry.loc[registry["role"].isin(["validation", "test"]), "tile_id"]
+        if t not in probabilities
+    ]
     if missing:
         raise TesseraInputError(f"no prediction for tile(s) {missing[:5]}")
     val_ids = registry.loc[registry["role"] == "validation", "tile_id"]
@@ -194,15 +212,28 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
     for row in test.itertuples(index=False):
         prob, truth = probabilities[row.tile_id], labels[row.tile_id]
         if prob.shape != truth.shape:
-            raise TesseraInputError(f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ")
+            raise TesseraInputError(
+                f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ"
+            )
         tp, fp, fn, tn = confusion(prob, truth, threshold)
         pred = prob >= threshold
         objects = match_objects(truth, pred)
         valid = truth != IGNORE
         t_lab = ndimage.label((truth == 1) & valid, EIGHT)[0][valid]
         p_lab = ndimage.label(pred & valid, EIGHT)[0][valid]
-        rows.append({"tile_id": row.tile_id, "dataset": row.dataset, "tp": tp, "fp": fp, "fn": fn, "tn": tn,
-                     **scores_from_counts(tp, fp, fn), **objects, **partition_errors(t_lab, p_lab)})
+        rows.append(
+            {
+                "tile_id": row.tile_id,
+                "dataset": row.dataset,
+                "tp": tp,
+                "fp": fp,
+                "fn": fn,
+                "tn": tn,
+                **scores_from_counts(tp, fp, fn),
+                **objects,
+                **partition_errors(t_lab, p_lab),
+            }
+        )
     per_tile = pd.DataFrame(rows)
     summary = []
     groups = [("all", per_tile)] + [(d, g) for d, g in per_tile.groupby("dataset", sort=True)]
@@ -213,8 +244,13 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
         pixel = scores_from_counts(*totals)
         out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
         for metric in ("f1", "jaccard"):
-            low, high = bootstrap_interval(counts, lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
-                                           reps=reps, confidence=confidence, seed=seed)
+            low, high = bootstrap_interval(
+                counts,
+                lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
+                reps=reps,
+                confidence=confidence,
+                seed=seed,
+            )
             out[f"{metric}_ci_low"], out[f"{metric}_ci_high"] = low, high
         test_p = np.concatenate([probabilities[t].ravel() for t in ids])
         test_t = np.concatenate([labels[t].ravel() for t in ids])
@@ -223,19 +259,31 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
             out["average_precision"] = average_precision(precision, recall)
         else:
             out["average_precision"] = math.nan
-        t_obj, p_obj, matched = (int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched"))
-        out.update({"true_objects": t_obj, "predicted_objects": p_obj, "matched_objects": matched,
-                    "object_precision": matched / p_obj if p_obj else 0.0,
-                    "object_recall": matched / t_obj if t_obj else 0.0,
-                    "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
-                    "adapted_rand_error": float(group["adapted_rand_error"].mean()),
-                    "voi_split": float(group["voi_split"].mean()), "voi_merge": float(group["voi_merge"].mean()),
-                    "confidence": confidence, "object_rule": "8-connected per tile, IoU > 0.5"})
+        t_obj, p_obj, matched = (
+            int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched")
+        )
+        out.update(
+            {
+                "true_objects": t_obj,
+                "predicted_objects": p_obj,
+                "matched_objects": matched,
+                "object_precision": matched / p_obj if p_obj else 0.0,
+                "object_recall": matched / t_obj if t_obj else 0.0,
+                "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
+                "adapted_rand_error": float(group["adapted_rand_error"].mean()),
+                "voi_split": float(group["voi_split"].mean()),
+                "voi_merge": float(group["voi_merge"].mean()),
+                "confidence": confidence,
+                "object_rule": "8-connected per tile, IoU > 0.5",
+            }
+        )
         summary.append(out)
     all_p = np.concatenate([probabilities[t].ravel() for t in test["tile_id"]])
     all_t = np.concatenate([labels[t].ravel() for t in test["tile_id"]])
     precision, recall, thresholds = precision_recall_curve(all_p, all_t)
-    curve = pd.DataFrame({"threshold": np.r_[thresholds, np.nan], "precision": precision, "recall": recall})
+    curve = pd.DataFrame(
+        {"threshold": np.r_[thresholds, np.nan], "precision": precision, "recall": recall}
+    )
     return pd.DataFrame(summary), per_tile, curve
 
 
@@ -253,17 +301,25 @@ def check_no_leakage(registry, *, source=None):
     """
     repeated = registry["tile_id"][registry["tile_id"].duplicated()].unique()
     if len(repeated):
-        raise TesseraInputError(f"tile id(s) {list(repeated)[:5]} appear more than once (in several roles?)",
-                                source=source)
+        raise TesseraInputError(
+            f"tile id(s) {list(repeated)[:5]} appear more than once (in several roles?)",
+            source=source,
+        )
     train = registry[registry["role"] == "train"]
     for row in registry[registry["role"].isin(["validation", "test"])].itertuples(index=False):
         same = train[(train["dataset"] == row.dataset) & (train["z"] == row.z)]
-        overlap = ((same["y0"] < row.y0 + row.height) & (row.y0 < same["y0"] + same["height"])
-                   & (same["x0"] < row.x0 + row.width) & (row.x0 < same["x0"] + same["width"]))
+        overlap = (
+            (same["y0"] < row.y0 + row.height)
+            & (row.y0 < same["y0"] + same["height"])
+            & (same["x0"] < row.x0 + row.width)
+            & (row.x0 < same["x0"] + same["width"])
+        )
         if overlap.any():
             raise TesseraInputError(
                 f"{row.role} tile {row.tile_id} overlaps training tile {same.loc[overlap, 'tile_id'].iloc[0]}: "
-                "scores on it would be inflated (leakage); fix the split", source=source)
+                "scores on it would be inflated (leakage); fix the split",
+                source=source,
+            )
 
 
 def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
@@ -273,9 +329,19 @@ def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
     overall = summary[summary["dataset"] == "all"].iloc[0]
     fig, ax = plt.subplots(figsize=(4.5, 4))
     ax.plot(curve["recall"], curve["precision"], drawstyle="steps-post")
-    ax.plot([overall["recall"]], [overall["precision"]], "o", label=f"threshold {overall['threshold']:.2f}")
-    ax.set(xlabel="recall", ylabel="precision", xlim=(0, 1.01), ylim=(0, 1.01),
-           title=f"{target}: test tiles, AP {overall['average_precision']:.3f}")
+    ax.plot(
+        [overall["recall"]],
+        [overall["precision"]],
+        "o",
+        label=f"threshold {overall['threshold']:.2f}",
+    )
+    ax.set(
+        xlabel="recall",
+        ylabel="precision",
+        xlim=(0, 1.01),
+        ylim=(0, 1.01),
+        title=f"{target}: test tiles, AP {overall['average_precision']:.3f}",
+    )
     ax.legend(loc="lower left", fontsize=8)
     fig.tight_layout()
     fig.savefig(out_curve, dpi=100, format="png")
@@ -295,15 +361,24 @@ def plot_overlays(images, labels, probabilities, threshold, path, *, target, til
     plt = pyplot()
 
     ids = list(images)[:tiles]
-    fig, axes = plt.subplots(max(1, len(ids)), 4, figsize=(9, 2.3 * max(1, len(ids))), squeeze=False)
+    fig, axes = plt.subplots(
+        max(1, len(ids)), 4, figsize=(9, 2.3 * max(1, len(ids))), squeeze=False
+    )
     for row, tile_id in zip(axes, ids):
         raw, truth, pred = images[tile_id], labels[tile_id], probabilities[tile_id] >= threshold
         errors = np.zeros((*truth.shape, 3))
         errors[pred & (truth == 0)] = (1, 0, 0)
         errors[~pred & (truth == 1)] = (0, 0.4, 1)
         errors[pred & (truth == 1)] = (0.8, 0.8, 0.8)
-        for ax, (title, img, cmap) in zip(row, [("raw", raw, "gray"), ("truth", truth == 1, "gray"),
-                                                 ("prediction", pred, "gray"), ("errors", errors, None)]):
+        for ax, (title, img, cmap) in zip(
+            row,
+            [
+                ("raw", raw, "gray"),
+                ("truth", truth == 1, "gray"),
+                ("prediction", pred, "gray"),
+                ("errors", errors, None),
+            ],
+        ):
             ax.imshow(img, cmap=cmap, interpolation="nearest")
             ax.set_title(f"{tile_id} {title}", fontsize=7)
             ax.axis("off")
@@ -313,8 +388,23 @@ def plot_overlays(images, labels, probabilities, threshold, path, *, target, til
     plt.close(fig)
 
 
-def evaluate_job(annotations, probabilities, pyramids, out_summary, out_tiles, out_curve, out_curve_plot,
-                 out_tiles_plot, out_overlays, *, target, downsample, confidence=0.95, reps=1000, seed=0):
+def evaluate_job(
+    annotations,
+    probabilities,
+    pyramids,
+    out_summary,
+    out_tiles,
+    out_curve,
+    out_curve_plot,
+    out_tiles_plot,
+    out_overlays,
+    *,
+    target,
+    downsample,
+    confidence=0.95,
+    reps=1000,
+    seed=0,
+):
     """Score one target's test tiles; write the tables and plots."""
     from .atomic import atomic_path, write_table
     from .tiles import read_annotation_set
@@ -326,8 +416,12 @@ def evaluate_job(annotations, probabilities, pyramids, out_summary, out_tiles, o
         with np.load(probabilities, allow_pickle=False) as data:
             probs = {k: data[k] for k in data.files}
     except (OSError, ValueError) as exc:
-        raise TesseraInputError(f"cannot read the tile predictions: {exc}", source=probabilities) from None
-    summary, per_tile, curve = evaluate_tiles(registry, labels, probs, confidence=confidence, reps=reps, seed=seed)
+        raise TesseraInputError(
+            f"cannot read the tile predictions: {exc}", source=probabilities
+        ) from None
+    summary, per_tile, curve = evaluate_tiles(
+        registry, labels, probs, confidence=confidence, reps=reps, seed=seed
+    )
     summary.insert(0, "target", target)
     per_tile.insert(0, "target", target)
     write_table(out_summary, summary)
@@ -343,7 +437,13 @@ def evaluate_job(annotations, probabilities, pyramids, out_summary, out_tiles, o
         row = test[test["tile_id"] == tile_id].iloc[0]
         images[tile_id] = tile_window(arrays[row["dataset"]], row, 0, 0)[0]
     with atomic_path(out_overlays) as tmp:
-        plot_overlays(images, labels, probs, float(summary["threshold"].iloc[0]), tmp, target=target)
+        plot_overlays(
+            images, labels, probs, float(summary["threshold"].iloc[0]), tmp, target=target
+        )
     overall = summary[summary["dataset"] == "all"].iloc[0]
-    return {"f1": overall["f1"], "f1_ci": [overall["f1_ci_low"], overall["f1_ci_high"]],
-            "average_precision": overall["average_precision"], "object_f1": overall["object_f1"]}
+    return {
+        "f1": overall["f1"],
+        "f1_ci": [overall["f1_ci_low"], overall["f1_ci_high"]],
+        "average_precision": overall["average_precision"],
+        "object_f1": overall["object_f1"],
+    }

@@ -124,7 +124,9 @@ class _SliceFolder(_Source):
         except (OSError, ValueError, tifffile.TiffFileError) as exc:
             raise TesseraInputError(f"cannot read section image: {exc}", source=f) from None
         if plane.ndim != 2:
-            raise TesseraInputError(f"expected a greyscale image, got shape {plane.shape}", source=f)
+            raise TesseraInputError(
+                f"expected a greyscale image, got shape {plane.shape}", source=f
+            )
         if expected is not None and plane.shape != expected:
             raise TesseraInputError(
                 f"section has shape {plane.shape}, expected {expected} like {self._files[0].name}",
@@ -170,11 +172,15 @@ class _Zarr(_Source):
         if isinstance(node, zarr.Group):
             from .omezarr import open_image
 
-            _, info = open_image(path, checksums="if-present")  # input: checked where it carries records
+            _, info = open_image(
+                path, checksums="if-present"
+            )  # input: checked where it carries records
             node = info["levels"][0]
             self.header_spacing = info["spacing"]
         if node.ndim != 3:
-            raise TesseraInputError(f"expected a 3D z, y, x array, got shape {node.shape}", source=path)
+            raise TesseraInputError(
+                f"expected a 3D z, y, x array, got shape {node.shape}", source=path
+            )
         self._arr = node
         self.shape = node.shape
         self.dtype = np.dtype(node.dtype)
@@ -203,7 +209,9 @@ def open_stack(path, fmt):
     """
     path = Path(path)
     if fmt not in _READERS:
-        raise TesseraInputError(f"unknown format {fmt!r}; expected one of {', '.join(FORMATS)}", source=path)
+        raise TesseraInputError(
+            f"unknown format {fmt!r}; expected one of {', '.join(FORMATS)}", source=path
+        )
     if not path.exists():
         raise TesseraInputError("file or folder not found", source=path)
     source = _READERS[fmt](path)
@@ -243,7 +251,9 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
                 source=source,
             )
         if not value > 0:
-            raise TesseraInputError(f"voxel size along {axis} must be > 0 nm, got {value}", source=source)
+            raise TesseraInputError(
+                f"voxel size along {axis} must be > 0 nm, got {value}", source=source
+            )
         out.append(float(value))
     return tuple(out)
 
@@ -265,7 +275,9 @@ def estimate_intensity_range(source, *, percentiles=(0.1, 99.9), max_samples=2_0
     samples, lows, highs = [], [], []
     for z in range(z_count):
         section = np.asarray(source.read(z))
-        finite = section if np.issubdtype(section.dtype, np.integer) else section[np.isfinite(section)]
+        finite = (
+            section if np.issubdtype(section.dtype, np.integer) else section[np.isfinite(section)]
+        )
         if finite.size:
             lows.append(float(finite.min()))
             highs.append(float(finite.max()))
@@ -347,14 +359,19 @@ def ingest_stack(
         spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
         lo_p, hi_p = percentiles
         if not 0 <= lo_p < hi_p <= 100:
-            raise TesseraInputError(f"percentiles must satisfy 0 <= low < high <= 100, got {percentiles}")
+            raise TesseraInputError(
+                f"percentiles must satisfy 0 <= low < high <= 100, got {percentiles}"
+            )
         mapping = choose_mapping(source, percentiles=(lo_p, hi_p))
         chunks = tuple(int(min(c, s)) for c, s in zip(chunks, source.shape))
         extra = {"source": {"path": str(source_path), "format": fmt}, "intensity_mapping": mapping}
         with atomic_path(out_path) as tmp:
             group = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
             group.attrs.update(
-                {"ome": multiscale_attrs(name=name, spacing=spacing, factors=[(1, 1, 1)]), "tessera": extra}
+                {
+                    "ome": multiscale_attrs(name=name, spacing=spacing, factors=[(1, 1, 1)]),
+                    "tessera": extra,
+                }
             )
             array = group.create_array(
                 name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES

@@ -14,7 +14,7 @@ import logging
 import os
 import sys
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 
@@ -30,7 +30,7 @@ def run_job(job, func, /, **kwargs):
     from .resources import job_info, out_of_memory_message
 
     info = job_info(job)
-    started = datetime.now(timezone.utc)
+    started = datetime.now(UTC)
     handler = logging.FileHandler(info.log, mode="w", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     root = logging.getLogger()
@@ -59,7 +59,11 @@ def run_job(job, func, /, **kwargs):
     if not isinstance(job, (str, os.PathLike)):
         from .provenance import write_job_record
 
-        record = write_job_record(job, started=started, finished=datetime.now(timezone.utc),
-                                  workflow_dir=Path(job.scriptdir).parent)
+        record = write_job_record(
+            job,
+            started=started,
+            finished=datetime.now(UTC),
+            workflow_dir=Path(job.scriptdir).parent,
+        )
         log.info("provenance record: %s", record)
     return result

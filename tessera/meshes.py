@@ -66,10 +66,18 @@ def write_ply(path, meshes, *, unit="nm", comment=""):
     n_vertices = sum(len(v) for v in vertices)
     n_faces = sum(len(m[1]) for m in meshes)
     header = [
-        "ply", "format binary_little_endian 1.0", f"comment unit {unit}",
+        "ply",
+        "format binary_little_endian 1.0",
+        f"comment unit {unit}",
         *([f"comment {comment}"] if comment else []),
-        f"element vertex {n_vertices}", "property float x", "property float y", "property float z",
-        "property int object", f"element face {n_faces}", "property list uchar int vertex_indices", "end_header",
+        f"element vertex {n_vertices}",
+        "property float x",
+        "property float y",
+        "property float z",
+        "property int object",
+        f"element face {n_faces}",
+        "property list uchar int vertex_indices",
+        "end_header",
     ]
     vertex_type = np.dtype([("x", "<f4"), ("y", "<f4"), ("z", "<f4"), ("object", "<i4")])
     face_type = np.dtype([("n", "u1"), ("a", "<i4"), ("b", "<i4"), ("c", "<i4")])
@@ -141,7 +149,17 @@ def render_preview(meshes, path, *, title="", unit="nm"):
     plt.close(fig)
 
 
-def meshes_job(objects_image, measured_table, out_ply, out_preview, *, target, step=2, unit="um", preview_objects=12):
+def meshes_job(
+    objects_image,
+    measured_table,
+    out_ply,
+    out_preview,
+    *,
+    target,
+    step=2,
+    unit="um",
+    preview_objects=12,
+):
     """Meshes of every object of one dataset into one PLY; a preview of the largest objects.
 
     Objects are read from their bounding boxes one at a time.
@@ -157,12 +175,20 @@ def meshes_job(objects_image, measured_table, out_ply, out_preview, *, target, s
     meshes = []
     for row in table.itertuples(index=False):
         box = np.asarray(labels[row.z0 : row.z1, row.y0 : row.y1, row.x0 : row.x1]) == row.id
-        verts, faces = object_mesh(box, spacing=info["spacing"], origin=(row.z0, row.y0, row.x0), step=step, unit=unit)
+        verts, faces = object_mesh(
+            box, spacing=info["spacing"], origin=(row.z0, row.y0, row.x0), step=step, unit=unit
+        )
         meshes.append((verts, faces, int(row.id)))
     with atomic_path(out_ply) as tmp:
-        write_ply(tmp, meshes, unit=unit, comment=f"tessera {target} objects, marching cubes step {step}")
+        write_ply(
+            tmp, meshes, unit=unit, comment=f"tessera {target} objects, marching cubes step {step}"
+        )
     largest = set(table.nlargest(preview_objects, "voxels")["id"]) if len(table) else set()
     with atomic_path(out_preview) as tmp:
-        render_preview([m for m in meshes if m[2] in largest], tmp, unit=unit,
-                       title=f"{target}: the {len(largest)} largest of {len(table)} objects ({unit})")
+        render_preview(
+            [m for m in meshes if m[2] in largest],
+            tmp,
+            unit=unit,
+            title=f"{target}: the {len(largest)} largest of {len(table)} objects ({unit})",
+        )
     return {"objects": len(meshes), "faces": int(sum(len(m[1]) for m in meshes))}

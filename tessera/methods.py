@@ -52,8 +52,11 @@ def _target_text(name, settings, scores, objects_settings, comparison, qc):
     test = scores[scores["role"] == "test"].iloc[0]
     val = scores[scores["role"] == "validation"].iloc[0]
     obj = objects_settings
-    hysteresis = (f"a threshold of {obj['high']:.2f}" if obj["high"] == obj["low"]
-                  else f"hysteresis thresholds of {obj['low']:.2f} and {obj['high']:.2f}")
+    hysteresis = (
+        f"a threshold of {obj['high']:.2f}"
+        if obj["high"] == obj["low"]
+        else f"hysteresis thresholds of {obj['low']:.2f} and {obj['high']:.2f}"
+    )
     morph = []
     if obj["open_radius_nm"]:
         morph.append(f"opened with a {obj['open_radius_nm']:g} nm ball")
@@ -90,15 +93,26 @@ def _target_text(name, settings, scores, objects_settings, comparison, qc):
         for row in comparison.itertuples(index=False):
             if row.measure in ("volume_um3", "region_objects", "region_N_V"):
                 kind = "ratio" if row.scale == "ratio" else "difference"
-                parts.append(f"{row.measure} {row.condition} vs {row.reference}: {kind} {row.effect:.3g} "
-                             f"({row.confidence:.0%} CI {row.ci_low:.3g}–{row.ci_high:.3g}; "
-                             f"{row.animals} vs {row.reference_animals} animals)")
+                parts.append(
+                    f"{row.measure} {row.condition} vs {row.reference}: {kind} {row.effect:.3g} "
+                    f"({row.confidence:.0%} CI {row.ci_low:.3g}–{row.ci_high:.3g}; "
+                    f"{row.animals} vs {row.reference_animals} animals)"
+                )
         if parts:
             text += "Results with the animal as the unit: " + "; ".join(parts) + ". "
     return text
 
 
-def methods_job(config_sections, sheet_rows, scores, object_settings, comparisons, checksums, qc_tables, out_path):
+def methods_job(
+    config_sections,
+    sheet_rows,
+    scores,
+    object_settings,
+    comparisons,
+    checksums,
+    qc_tables,
+    out_path,
+):
     """Write the methods paragraph (Markdown) of the study.
 
     Parameters
@@ -116,7 +130,9 @@ def methods_job(config_sections, sheet_rows, scores, object_settings, comparison
     qc_tables : list of path
         Section QC tables (to count excluded sections).
     """
-    qc = pd.concat([pd.read_csv(p, sep="\t", keep_default_na=False) for p in qc_tables], ignore_index=True)
+    qc = pd.concat(
+        [pd.read_csv(p, sep="\t", keep_default_na=False) for p in qc_tables], ignore_index=True
+    )
     excluded = int((qc["excluded"].astype(str) == "True").sum())
     animals = {r["subject"] for r in sheet_rows.values()}
     conditions = sorted({r["condition"] for r in sheet_rows.values()})
@@ -124,31 +140,47 @@ def methods_job(config_sections, sheet_rows, scores, object_settings, comparison
     text = [
         "# Methods (generated from this run)",
         "",
-        (f"{len(sheet_rows)} datasets from {len(animals)} animals in {len(conditions)} conditions "
-         f"({', '.join(conditions)}) were converted to OME-Zarr (NGFF 0.5; Moore et al. 2023) with tessera "
-         f"{__version__}, run by Snakemake (Mölder et al. 2021). Each section was checked for sharpness (variance "
-         f"of the Laplacian of a Gaussian, σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and "
-         f"shift (phase correlation); {excluded} of {len(qc)} sections were flagged and "
-         + ("excluded from training and flagged in the object tables. " if c["qc"]["exclude_flagged"]
-            else "kept (exclusion switched off). ")
-         + f"A pyramid of {c['pyramid']['levels']} block-averaged levels was built."),
+        (
+            f"{len(sheet_rows)} datasets from {len(animals)} animals in {len(conditions)} conditions "
+            f"({', '.join(conditions)}) were converted to OME-Zarr (NGFF 0.5; Moore et al. 2023) with tessera "
+            f"{__version__}, run by Snakemake (Mölder et al. 2021). Each section was checked for sharpness (variance "
+            f"of the Laplacian of a Gaussian, σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and "
+            f"shift (phase correlation); {excluded} of {len(qc)} sections were flagged and "
+            + (
+                "excluded from training and flagged in the object tables. "
+                if c["qc"]["exclude_flagged"]
+                else "kept (exclusion switched off). "
+            )
+            + f"A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
+        ),
         "",
     ]
     for target, settings in c["targets"].items():
         used = [json.loads(Path(p).read_text(encoding="utf-8")) for p in object_settings[target]]
-        comparison = pd.read_csv(comparisons[target], sep="\t", keep_default_na=False) if target in comparisons else None
+        comparison = (
+            pd.read_csv(comparisons[target], sep="\t", keep_default_na=False)
+            if target in comparisons
+            else None
+        )
         if comparison is not None:
             for col in ("effect", "ci_low", "ci_high"):
                 comparison[col] = pd.to_numeric(comparison[col], errors="coerce")
-        text += [_target_text(target, settings, pd.read_csv(scores[target], sep="\t"), used[0], comparison, qc), ""]
+        text += [
+            _target_text(
+                target, settings, pd.read_csv(scores[target], sep="\t"), used[0], comparison, qc
+            ),
+            "",
+        ]
     text += [
-        ("Morphometry used the voxel size throughout: surface area by marching cubes (Lorensen & Cline 1987), "
-         "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
-         "the mitochondrial complexity index (Vincent et al. 2019). QC-excluded sections were bridged by "
-         "interpolating the probabilities of their neighbours; objects cut by the volume border were left out of "
-         "size and shape summaries. Each measure was averaged per animal "
-         "(geometric mean for sizes) and conditions were compared on the per-animal values (Welch interval, "
-         f"{c['statistics']['confidence']:.0%}); objects were never treated as independent samples."),
+        (
+            "Morphometry used the voxel size throughout: surface area by marching cubes (Lorensen & Cline 1987), "
+            "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
+            "the mitochondrial complexity index (Vincent et al. 2019). QC-excluded sections were bridged by "
+            "interpolating the probabilities of their neighbours; objects cut by the volume border were left out of "
+            "size and shape summaries. Each measure was averaged per animal "
+            "(geometric mean for sizes) and conditions were compared on the per-animal values (Welch interval, "
+            f"{c['statistics']['confidence']:.0%}); objects were never treated as independent samples."
+        ),
         "",
         "Automatic segmentation is a research measurement: the accuracies above hold for tiles like the annotated "
         "ones, and each new dataset should be validated against held-out annotation.",

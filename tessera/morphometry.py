@@ -21,9 +21,19 @@ from .errors import TesseraInputError
 from .spacing import normalize_spacing
 
 MEASURES = (
-    "volume_um3", "surface_um2", "sphericity", "equivalent_diameter_um", "major_axis_um",
-    "intermediate_axis_um", "minor_axis_um", "elongation", "flatness", "skeleton_length_um",
-    "branch_points", "end_points", "complexity_index",
+    "volume_um3",
+    "surface_um2",
+    "sphericity",
+    "equivalent_diameter_um",
+    "major_axis_um",
+    "intermediate_axis_um",
+    "minor_axis_um",
+    "elongation",
+    "flatness",
+    "skeleton_length_um",
+    "branch_points",
+    "end_points",
+    "complexity_index",
 )
 
 
@@ -217,7 +227,9 @@ def edge_corrected_weights(extents, window):
     window = np.asarray(window, dtype=np.float64)
     room = window - extents - 1
     if (room <= 0).any():
-        raise TesseraInputError("an object as large as the volume cannot be whole; it touches the border")
+        raise TesseraInputError(
+            "an object as large as the volume cannot be whole; it touches the border"
+        )
     return np.prod(window) / np.prod(room, axis=1)
 
 
@@ -264,7 +276,9 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
     voxel_um3 = float(np.prod(spacing)) / 1e9
     shape = tuple(labels.shape)
     if region_labels is not None and tuple(region_labels.shape) != shape:
-        raise TesseraInputError(f"region mask has shape {tuple(region_labels.shape)}, the labels {shape}")
+        raise TesseraInputError(
+            f"region mask has shape {tuple(region_labels.shape)}, the labels {shape}"
+        )
     region_voxels = {}
     overlap = {}  # (object id, region) -> voxels
     for z0 in range(0, shape[0], block[0]):
@@ -272,14 +286,19 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
             for x0 in range(0, shape[2], block[2]):
                 sl = (slice(z0, z0 + block[0]), slice(y0, y0 + block[1]), slice(x0, x0 + block[2]))
                 obj = np.asarray(labels[sl]).astype(np.int64).ravel()
-                reg = (np.ones_like(obj) if region_labels is None
-                       else np.asarray(region_labels[sl]).astype(np.int64).ravel())
+                reg = (
+                    np.ones_like(obj)
+                    if region_labels is None
+                    else np.asarray(region_labels[sl]).astype(np.int64).ravel()
+                )
                 ids, counts = np.unique(reg, return_counts=True)
                 for r, c in zip(ids, counts):
                     region_voxels[int(r)] = region_voxels.get(int(r), 0) + int(c)
                 both = (obj > 0) & (reg > 0)
                 if both.any():
-                    pairs, counts = np.unique(np.stack([obj[both], reg[both]]), axis=1, return_counts=True)
+                    pairs, counts = np.unique(
+                        np.stack([obj[both], reg[both]]), axis=1, return_counts=True
+                    )
                     for (o, r), c in zip(pairs.T, counts):
                         overlap[(int(o), int(r))] = overlap.get((int(o), int(r)), 0) + int(c)
     home = {}
@@ -298,15 +317,41 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
         inside = sum(c for (o, r), c in overlap.items() if r == region) * voxel_um3
         surface = float(by_id.loc[members, "surface_um2"].sum()) if members else 0.0
         whole_ids = [o for o in members if not bool(by_id.loc[o, "touches_volume_border"])]
-        weights = (edge_corrected_weights(extent.loc[whole_ids].to_numpy(), shape) if whole_ids
-                   else np.zeros(0))
-        rows.append({"region": region, "region_volume_um3": vol, "objects": len(members),
-                     "objects_whole": len(whole_ids), "V_V": inside / vol, "S_V": surface / vol,
-                     "N_V": float(weights.sum()) / vol, "N_V_exclude_touching": len(whole_ids) / vol,
-                     "N_V_biased": len(members) / vol})
-    table = pd.DataFrame(rows, columns=["region", "region_volume_um3", "objects", "objects_whole", "V_V", "S_V", "N_V",
-                                        "N_V_exclude_touching", "N_V_biased"])
-    region_of = pd.Series({int(o): home.get(int(o), (0, 0))[0] for o in objects["id"]}, name="region", dtype=np.int64)
+        weights = (
+            edge_corrected_weights(extent.loc[whole_ids].to_numpy(), shape)
+            if whole_ids
+            else np.zeros(0)
+        )
+        rows.append(
+            {
+                "region": region,
+                "region_volume_um3": vol,
+                "objects": len(members),
+                "objects_whole": len(whole_ids),
+                "V_V": inside / vol,
+                "S_V": surface / vol,
+                "N_V": float(weights.sum()) / vol,
+                "N_V_exclude_touching": len(whole_ids) / vol,
+                "N_V_biased": len(members) / vol,
+            }
+        )
+    table = pd.DataFrame(
+        rows,
+        columns=[
+            "region",
+            "region_volume_um3",
+            "objects",
+            "objects_whole",
+            "V_V",
+            "S_V",
+            "N_V",
+            "N_V_exclude_touching",
+            "N_V_biased",
+        ],
+    )
+    region_of = pd.Series(
+        {int(o): home.get(int(o), (0, 0))[0] for o in objects["id"]}, name="region", dtype=np.int64
+    )
     return table, region_of
 
 
@@ -334,12 +379,22 @@ def read_region_mask(path, *, shape, factors, out):
                 page = pages[oz * factors[0]].asarray()
                 out[oz] = page[:: factors[1], :: factors[2]]
     except (tifffile.TiffFileError, OSError) as exc:
-        raise TesseraInputError(f"cannot read the region mask as TIFF: {exc}", source=path) from None
+        raise TesseraInputError(
+            f"cannot read the region mask as TIFF: {exc}", source=path
+        ) from None
     return out
 
 
-def morphometry_job(objects_image, objects_table, out_objects, out_regions, *, target, roi_mask=None,
-                    block=(16, 512, 512)):
+def morphometry_job(
+    objects_image,
+    objects_table,
+    out_objects,
+    out_regions,
+    *,
+    target,
+    roi_mask=None,
+    block=(16, 512, 512),
+):
     """Measure every object of one dataset and target; densities per region (ROI labels) or volume.
 
     Writes the object table with the measures and its ``region`` column, and the region table.
@@ -353,21 +408,33 @@ def morphometry_job(objects_image, objects_table, out_objects, out_regions, *, t
     try:
         labels = group[f"labels/{target}/0"]
     except KeyError:
-        raise TesseraInputError(f"no labels/{target} in the image (rule objects writes it)", source=objects_image) from None
+        raise TesseraInputError(
+            f"no labels/{target} in the image (rule objects writes it)", source=objects_image
+        ) from None
     spacing = info["spacing"]
     objects = pd.read_csv(objects_table, sep="\t")
     measured = measure_objects(labels, objects, spacing=spacing)
     extra = info["extra"].get("probability", {})
-    factors = (int(extra.get("z_factor", 1)), int(extra.get("working_level_downsample", 1)),
-               int(extra.get("working_level_downsample", 1)))
+    factors = (
+        int(extra.get("z_factor", 1)),
+        int(extra.get("working_level_downsample", 1)),
+        int(extra.get("working_level_downsample", 1)),
+    )
     Path(out_regions).parent.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory(dir=Path(out_regions).parent, prefix=".roi-") as tmp:
         region_labels = None
         if roi_mask:
-            region_labels = zarr.create_array(store=tmp, shape=labels.shape, dtype=np.uint32,
-                                              chunks=(1, *labels.shape[1:]), zarr_format=3)
+            region_labels = zarr.create_array(
+                store=tmp,
+                shape=labels.shape,
+                dtype=np.uint32,
+                chunks=(1, *labels.shape[1:]),
+                zarr_format=3,
+            )
             read_region_mask(roi_mask, shape=labels.shape, factors=factors, out=region_labels)
-        regions, region_of = region_densities(labels, region_labels, measured, spacing=spacing, block=block)
+        regions, region_of = region_densities(
+            labels, region_labels, measured, spacing=spacing, block=block
+        )
     measured["region"] = measured["id"].map(region_of).fillna(0).astype(int)
     write_table(out_objects, measured)
     write_table(out_regions, regions)

@@ -42,9 +42,19 @@ def candidate_scores(section, *, size):
     ys = np.arange(0, h.shape[0] - size + 1, step)
     xs = np.arange(0, h.shape[1] - size + 1, step)
     y0, x0 = np.meshgrid(ys, xs, indexing="ij")
-    sums = integral[y0 + size, x0 + size] - integral[y0, x0 + size] - integral[y0 + size, x0] + integral[y0, x0]
-    return pd.DataFrame({"y": (y0 + size // 2).ravel(), "x": (x0 + size // 2).ravel(),
-                         "score": (sums / size**2).ravel()})
+    sums = (
+        integral[y0 + size, x0 + size]
+        - integral[y0, x0 + size]
+        - integral[y0 + size, x0]
+        + integral[y0, x0]
+    )
+    return pd.DataFrame(
+        {
+            "y": (y0 + size // 2).ravel(),
+            "x": (x0 + size // 2).ravel(),
+            "score": (sums / size**2).ravel(),
+        }
+    )
 
 
 def rank_tiles(volumes, existing, *, size, count, excluded=None, min_sections=2):
@@ -84,13 +94,22 @@ def rank_tiles(volumes, existing, *, size, count, excluded=None, min_sections=2)
             candidates.append(table)
     if not candidates:
         raise TesseraInputError("no sections to suggest tiles on (all excluded?)")
-    ranked = pd.concat(candidates, ignore_index=True).sort_values(["score", "dataset", "z", "y", "x"],
-                                                                   ascending=[False, True, True, True, True])
-    taken = [(r.dataset, r.z, r.y0 + r.height // 2, r.x0 + r.width // 2) for r in existing.itertuples(index=False)]
+    ranked = pd.concat(candidates, ignore_index=True).sort_values(
+        ["score", "dataset", "z", "y", "x"], ascending=[False, True, True, True, True]
+    )
+    taken = [
+        (r.dataset, r.z, r.y0 + r.height // 2, r.x0 + r.width // 2)
+        for r in existing.itertuples(index=False)
+    ]
     chosen = []
     for row in ranked.itertuples(index=False):
-        near = any(d == row.dataset and abs(z - row.z) < min_sections and abs(y - row.y) < size and abs(x - row.x) < size
-                   for d, z, y, x in taken)
+        near = any(
+            d == row.dataset
+            and abs(z - row.z) < min_sections
+            and abs(y - row.y) < size
+            and abs(x - row.x) < size
+            for d, z, y, x in taken
+        )
         if near:
             continue
         chosen.append(row)
@@ -100,8 +119,18 @@ def rank_tiles(volumes, existing, *, size, count, excluded=None, min_sections=2)
     return pd.DataFrame(chosen, columns=["dataset", "z", "y", "x", "score"]).reset_index(drop=True)
 
 
-def next_tiles_job(probabilities, annotations, qc_tables, out_points, out_preview, *, target, size, count,
-                   min_sections=2):
+def next_tiles_job(
+    probabilities,
+    annotations,
+    qc_tables,
+    out_points,
+    out_preview,
+    *,
+    target,
+    size,
+    count,
+    min_sections=2,
+):
     """Suggest the next tiles to annotate for one target; write a points sheet and a preview.
 
     `probabilities` and `qc_tables` map dataset ids to the stitched probability maps and the QC
@@ -119,17 +148,25 @@ def next_tiles_job(probabilities, annotations, qc_tables, out_points, out_previe
         extra = info["extra"].get("probability", {})
         volumes[dataset] = info["levels"][0]
         scales[dataset] = float(extra.get("scale", 1.0))
-        factors[dataset] = (int(extra.get("z_factor", 1)), int(extra.get("working_level_downsample", 1)))
+        factors[dataset] = (
+            int(extra.get("z_factor", 1)),
+            int(extra.get("working_level_downsample", 1)),
+        )
     scaled = {d: _Scaled(v, scales[d]) for d, v in volumes.items()}
     excluded = {d: excluded_sections(qc_tables[d], factors[d][0]) for d in qc_tables}
-    picks = rank_tiles(scaled, registry, size=size, count=count, excluded=excluded, min_sections=min_sections)
-    points = pd.DataFrame({
-        "dataset": picks["dataset"], "target": target,
-        "z": [z * factors[d][0] for d, z in zip(picks["dataset"], picks["z"])],
-        "y": [y * factors[d][1] for d, y in zip(picks["dataset"], picks["y"])],
-        "x": [x * factors[d][1] for d, x in zip(picks["dataset"], picks["x"])],
-        "size": size,
-    })
+    picks = rank_tiles(
+        scaled, registry, size=size, count=count, excluded=excluded, min_sections=min_sections
+    )
+    points = pd.DataFrame(
+        {
+            "dataset": picks["dataset"],
+            "target": target,
+            "z": [z * factors[d][0] for d, z in zip(picks["dataset"], picks["z"])],
+            "y": [y * factors[d][1] for d, y in zip(picks["dataset"], picks["y"])],
+            "x": [x * factors[d][1] for d, x in zip(picks["dataset"], picks["x"])],
+            "size": size,
+        }
+    )
     # the sheet holds only the columns the tile export reads; the scores go to the log and preview
     write_table(out_points, points)
     with atomic_path(out_preview) as tmp:
@@ -151,11 +188,13 @@ def _plot(picks, volumes, path, *, size, target, shown=6):
     plt = pyplot()
 
     rows = picks.head(shown)
-    fig, axes = plt.subplots(1, max(1, len(rows)), figsize=(2.4 * max(1, len(rows)), 2.8), squeeze=False)
+    fig, axes = plt.subplots(
+        1, max(1, len(rows)), figsize=(2.4 * max(1, len(rows)), 2.8), squeeze=False
+    )
     for ax, row in zip(axes[0], rows.itertuples(index=False)):
         section = volumes[row.dataset][row.z]
         half = size // 2
-        crop = section[max(0, row.y - half): row.y + half, max(0, row.x - half): row.x + half]
+        crop = section[max(0, row.y - half) : row.y + half, max(0, row.x - half) : row.x + half]
         ax.imshow(crop, cmap="magma", vmin=0, vmax=1, interpolation="nearest")
         ax.set_title(f"{row.dataset} z{row.z}\nH {row.score:.2f} bits", fontsize=7)
         ax.axis("off")

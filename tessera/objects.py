@@ -101,15 +101,22 @@ def check_settings(*, high, low, min_volume_um3, max_volume_um3, connectivity, s
     """Refuse inconsistent filtering settings with one clear message."""
     for name, value in (("high", high), ("low", low)):
         if not (isinstance(value, (int, float)) and 0.0 <= value <= 1.0):
-            raise TesseraInputError(f"objects threshold {name} must be a probability in [0, 1], got {value!r}",
-                                    source=source)
+            raise TesseraInputError(
+                f"objects threshold {name} must be a probability in [0, 1], got {value!r}",
+                source=source,
+            )
     if low > high:
-        raise TesseraInputError(f"objects threshold low ({low}) must not exceed high ({high})", source=source)
+        raise TesseraInputError(
+            f"objects threshold low ({low}) must not exceed high ({high})", source=source
+        )
     if min_volume_um3 < 0:
-        raise TesseraInputError(f"objects min_volume_um3 must be >= 0, got {min_volume_um3}", source=source)
+        raise TesseraInputError(
+            f"objects min_volume_um3 must be >= 0, got {min_volume_um3}", source=source
+        )
     if max_volume_um3 is not None and max_volume_um3 < min_volume_um3:
         raise TesseraInputError(
-            f"objects min_volume_um3 ({min_volume_um3}) is larger than max_volume_um3 ({max_volume_um3})", source=source
+            f"objects min_volume_um3 ({min_volume_um3}) is larger than max_volume_um3 ({max_volume_um3})",
+            source=source,
         )
     connectivity_structure(connectivity)
 
@@ -118,7 +125,10 @@ def _blocks(shape, block):
     for z0 in range(0, shape[0], block[0]):
         for y0 in range(0, shape[1], block[1]):
             for x0 in range(0, shape[2], block[2]):
-                yield (z0, y0, x0), tuple(min(o + b, s) for o, b, s in zip((z0, y0, x0), block, shape))
+                yield (
+                    (z0, y0, x0),
+                    tuple(min(o + b, s) for o, b, s in zip((z0, y0, x0), block, shape)),
+                )
 
 
 class _Stats:
@@ -133,15 +143,20 @@ class _Stats:
         flat = labels.ravel()
         count = np.bincount(flat, minlength=n + 1)[1:]
         zz, yy, xx = np.indices(labels.shape, sparse=True)
-        sums = [np.bincount(flat, weights=np.broadcast_to(c + o, labels.shape).ravel(), minlength=n + 1)[1:]
-                for c, o in zip((zz, yy, xx), origin)]
+        sums = [
+            np.bincount(
+                flat, weights=np.broadcast_to(c + o, labels.shape).ravel(), minlength=n + 1
+            )[1:]
+            for c, o in zip((zz, yy, xx), origin)
+        ]
         # block raster order is global raster order for the voxels of one block
         ids, first = np.unique(flat, return_index=True)
         keep = ids > 0
         local = np.unravel_index(first[keep], labels.shape)
         first_index = np.zeros(n, np.int64)
         first_index[ids[keep] - 1] = np.ravel_multi_index(
-            tuple(c + o for c, o in zip(local, origin)), shape)
+            tuple(c + o for c, o in zip(local, origin)), shape
+        )
         seeded = np.bincount(flat[seeds.ravel()], minlength=n + 1)[1:] > 0
         boxes = ndimage.find_objects(labels, max_label=n)
         lo = np.array([[s.start + o for s, o in zip(b, origin)] for b in boxes], np.int64)
@@ -152,12 +167,24 @@ class _Stats:
 
     def merged(self, component, n_components):
         count, sums, first, seeded, lo, hi, excl = (np.concatenate(p) for p in zip(*self.parts))
-        out = {"voxels": np.bincount(component, weights=count, minlength=n_components).astype(np.int64),
-               "sums": np.stack([np.bincount(component, weights=sums[:, k], minlength=n_components)
-                                 for k in range(3)], 1)}
+        out = {
+            "voxels": np.bincount(component, weights=count, minlength=n_components).astype(
+                np.int64
+            ),
+            "sums": np.stack(
+                [
+                    np.bincount(component, weights=sums[:, k], minlength=n_components)
+                    for k in range(3)
+                ],
+                1,
+            ),
+        }
         out["first"] = np.full(n_components, np.iinfo(np.int64).max)
         np.minimum.at(out["first"], component, first)
-        for name, values, fn, start in (("lo", lo, np.minimum, np.iinfo(np.int64).max), ("hi", hi, np.maximum, 0)):
+        for name, values, fn, start in (
+            ("lo", lo, np.minimum, np.iinfo(np.int64).max),
+            ("hi", hi, np.maximum, 0),
+        ):
             arr = np.full((n_components, 3), start, np.int64)
             fn.at(arr, component, values)
             out[name] = arr
@@ -186,11 +213,17 @@ def _bridging_plan(excluded, depth):
 
 def _read_bridged(prob, lo, hi, bridge, scale):
     """prob[lo:hi] as probabilities, with excluded sections interpolated from their neighbours."""
-    region = np.asarray(prob[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+    region = np.asarray(
+        prob[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]], dtype=np.float32
+    ) / np.float32(scale)
     for z, (below, above, w) in bridge.items():
         if lo[0] <= z < hi[0]:
-            a = np.asarray(prob[below, lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
-            b = np.asarray(prob[above, lo[1]:hi[1], lo[2]:hi[2]], dtype=np.float32) / np.float32(scale)
+            a = np.asarray(
+                prob[below, lo[1] : hi[1], lo[2] : hi[2]], dtype=np.float32
+            ) / np.float32(scale)
+            b = np.asarray(
+                prob[above, lo[1] : hi[1], lo[2] : hi[2]], dtype=np.float32
+            ) / np.float32(scale)
             region[z - lo[0]] = (1 - w) * a + w * b
     return region
 
@@ -208,8 +241,8 @@ def _face_pairs(provisional, origin, end, shape, structure):
         for shift in np.argwhere(np.moveaxis(structure, axis, 0)[2]) - 1:
             s1, s2 = (int(v) for v in shift)
             h, w = a.shape
-            pa = a[max(0, -s1): h - max(0, s1), max(0, -s2): w - max(0, s2)]
-            pb = b[max(0, s1): h - max(0, -s1), max(0, s2): w - max(0, -s2)]
+            pa = a[max(0, -s1) : h - max(0, s1), max(0, -s2) : w - max(0, s2)]
+            pb = b[max(0, s1) : h - max(0, -s1), max(0, s2) : w - max(0, -s2)]
             touch = (pa > 0) & (pb > 0)
             if touch.any():
                 pairs.append(np.stack([pa[touch], pb[touch]], 1))
@@ -231,10 +264,26 @@ def _cavity(mask, others, structure):
     return holes
 
 
-def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, close_radius_nm=0.0,
-                  fill_holes=True, min_volume_um3=0.0, max_volume_um3=None, connectivity=26,
-                  block=(32, 512, 512), excluded_sections=(), scale=1.0, workdir=None, fill_max_voxels=None,
-                  bridge_excluded=True):
+def label_objects(
+    prob,
+    out,
+    *,
+    spacing,
+    high,
+    low=None,
+    open_radius_nm=0.0,
+    close_radius_nm=0.0,
+    fill_holes=True,
+    min_volume_um3=0.0,
+    max_volume_um3=None,
+    connectivity=26,
+    block=(32, 512, 512),
+    excluded_sections=(),
+    scale=1.0,
+    workdir=None,
+    fill_max_voxels=None,
+    bridge_excluded=True,
+):
     """Filter a probability volume into labelled objects, block by block.
 
     Parameters
@@ -287,11 +336,18 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
     {'id': [1, 2], 'voxels': [4, 8], 'touches_volume_border': [False, True]}
     """
     low = high if low is None else low
-    check_settings(high=high, low=low, min_volume_um3=min_volume_um3, max_volume_um3=max_volume_um3,
-                   connectivity=connectivity)
+    check_settings(
+        high=high,
+        low=low,
+        min_volume_um3=min_volume_um3,
+        max_volume_um3=max_volume_um3,
+        connectivity=connectivity,
+    )
     shape = tuple(int(s) for s in prob.shape)
     if len(shape) != 3 or tuple(out.shape) != shape:
-        raise TesseraInputError(f"probability and label volumes must be 3D of one shape, got {shape}, {out.shape}")
+        raise TesseraInputError(
+            f"probability and label volumes must be 3D of one shape, got {shape}, {out.shape}"
+        )
     block = tuple(int(b) for b in block)
     structure = connectivity_structure(connectivity)
     opening, closing = ball(open_radius_nm, spacing), ball(close_radius_nm, spacing)
@@ -301,8 +357,14 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
     bridge = _bridging_plan(excluded if bridge_excluded else (), shape[0])
 
     with tempfile.TemporaryDirectory(dir=workdir, prefix="tessera-labels-") as tmp:
-        provisional = zarr.create_array(store=str(Path(tmp) / "provisional.zarr"), shape=shape, dtype=np.int64,
-                                        chunks=block, fill_value=0, zarr_format=3)
+        provisional = zarr.create_array(
+            store=str(Path(tmp) / "provisional.zarr"),
+            shape=shape,
+            dtype=np.int64,
+            chunks=block,
+            fill_value=0,
+            zarr_format=3,
+        )
         # pass 1: clean mask and provisional labels per block
         stats, offset = _Stats(), 0
         for origin, end in _blocks(shape, block):
@@ -314,7 +376,9 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
             mask, seeds = mask[core], (region[core] > high) & mask[core]
             labels, n = ndimage.label(mask, structure)
             stats.add(labels, n, origin, shape, seeds, excluded)
-            provisional[origin[0]:end[0], origin[1]:end[1], origin[2]:end[2]] = np.where(labels > 0, labels + offset, 0)
+            provisional[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]] = np.where(
+                labels > 0, labels + offset, 0
+            )
             offset += n
         # pass 2: merge across block faces
         pairs = []
@@ -322,9 +386,15 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
             pairs += _face_pairs(provisional, origin, end, shape, structure)
             if len(pairs) > 64:  # merge as we go so the list stays small
                 pairs = [np.unique(np.concatenate(pairs), axis=0)]
-        edges = np.unique(np.concatenate(pairs), axis=0) - 1 if pairs else np.zeros((0, 2), np.int64)
-        graph = coo_matrix((np.ones(len(edges), np.int8), (edges[:, 0], edges[:, 1])), shape=(offset, offset))
-        n_comp, component = connected_components(graph, directed=False) if offset else (0, np.zeros(0, np.int64))
+        edges = (
+            np.unique(np.concatenate(pairs), axis=0) - 1 if pairs else np.zeros((0, 2), np.int64)
+        )
+        graph = coo_matrix(
+            (np.ones(len(edges), np.int8), (edges[:, 0], edges[:, 1])), shape=(offset, offset)
+        )
+        n_comp, component = (
+            connected_components(graph, directed=False) if offset else (0, np.zeros(0, np.int64))
+        )
         objects = stats.merged(component, n_comp) if offset else None
         kept = np.flatnonzero(objects["seeded"]) if offset else np.zeros(0, np.int64)
         # pass 3: holes, per object in its bounding box (one voxel of margin where the volume allows)
@@ -335,14 +405,17 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
             kept_lut[1:][np.isin(component, kept)] = 1
             comp_lut = np.concatenate([[-1], component])
             for c in kept:
-                if max_volume_um3 is not None and objects["voxels"][c] * voxel_nm3 / 1e9 > max_volume_um3:
+                if (
+                    max_volume_um3 is not None
+                    and objects["voxels"][c] * voxel_nm3 / 1e9 > max_volume_um3
+                ):
                     continue  # filling only adds volume: it is out either way
                 lo = np.maximum(objects["lo"][c] - 1, 0)
                 hi = np.minimum(objects["hi"][c] + 1, shape)
                 if np.prod(hi - lo) > fill_max_voxels:
                     unfilled.add(int(c))
                     continue
-                box = np.asarray(provisional[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]])
+                box = np.asarray(provisional[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]])
                 mine = comp_lut[box] == c
                 others = (kept_lut[box] > 0) & ~mine
                 holes = _cavity(mine, others, structure)
@@ -365,30 +438,59 @@ def label_objects(prob, out, *, spacing, high, low=None, open_radius_nm=0.0, clo
             raise TesseraInputError(f"{len(kept)} objects do not fit label dtype {out.dtype}")
         # pass 4: global labels
         for origin, end in _blocks(shape, block):
-            box = np.asarray(provisional[origin[0]:end[0], origin[1]:end[1], origin[2]:end[2]])
-            out[origin[0]:end[0], origin[1]:end[1], origin[2]:end[2]] = lut[box].astype(out.dtype)
+            box = np.asarray(
+                provisional[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]]
+            )
+            out[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]] = lut[box].astype(
+                out.dtype
+            )
         for c, points in cavities.items():
             if final[c]:
                 lo, hi = points.min(axis=0), points.max(axis=0) + 1
-                region = np.asarray(out[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]])
+                region = np.asarray(out[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]])
                 region[tuple((points - lo).T)] = final[c]
-                out[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]] = region
+                out[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]] = region
 
     rows = []
     for c in kept:
         lo_, hi_ = objects["lo"][c], objects["hi"][c]
         centroid = objects["sums"][c] / objects["voxels"][c] * np.asarray(spacing)
-        rows.append({
-            "id": int(final[c]), "voxels": int(objects["voxels"][c]), "volume_um3": float(volume[c]),
-            "z0": int(lo_[0]), "y0": int(lo_[1]), "x0": int(lo_[2]), "z1": int(hi_[0]), "y1": int(hi_[1]),
-            "x1": int(hi_[2]), "centroid_z_nm": float(centroid[0]), "centroid_y_nm": float(centroid[1]),
-            "centroid_x_nm": float(centroid[2]),
-            "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
-            "touches_excluded_section": bool(objects["excluded"][c]),
-            "cavities_filled": bool(fill_holes and int(c) not in unfilled),
-        })
-    columns = ["id", "voxels", "volume_um3", "z0", "y0", "x0", "z1", "y1", "x1", "centroid_z_nm", "centroid_y_nm",
-               "centroid_x_nm", "touches_volume_border", "touches_excluded_section", "cavities_filled"]
+        rows.append(
+            {
+                "id": int(final[c]),
+                "voxels": int(objects["voxels"][c]),
+                "volume_um3": float(volume[c]),
+                "z0": int(lo_[0]),
+                "y0": int(lo_[1]),
+                "x0": int(lo_[2]),
+                "z1": int(hi_[0]),
+                "y1": int(hi_[1]),
+                "x1": int(hi_[2]),
+                "centroid_z_nm": float(centroid[0]),
+                "centroid_y_nm": float(centroid[1]),
+                "centroid_x_nm": float(centroid[2]),
+                "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
+                "touches_excluded_section": bool(objects["excluded"][c]),
+                "cavities_filled": bool(fill_holes and int(c) not in unfilled),
+            }
+        )
+    columns = [
+        "id",
+        "voxels",
+        "volume_um3",
+        "z0",
+        "y0",
+        "x0",
+        "z1",
+        "y1",
+        "x1",
+        "centroid_z_nm",
+        "centroid_y_nm",
+        "centroid_x_nm",
+        "touches_volume_border",
+        "touches_excluded_section",
+        "cavities_filled",
+    ]
     return pd.DataFrame(rows, columns=columns)
 
 
@@ -407,16 +509,22 @@ def validation_threshold(scores_path):
         table = pd.read_csv(scores_path, sep="\t")
         return float(table.loc[table["role"] == "validation", "threshold"].iloc[0])
     except (FileNotFoundError, KeyError, IndexError, ValueError, pd.errors.ParserError) as exc:
-        raise TesseraInputError(f"no validation threshold in the tile scores ({exc})", source=scores_path) from None
+        raise TesseraInputError(
+            f"no validation threshold in the tile scores ({exc})", source=scores_path
+        ) from None
 
 
 def excluded_sections(qc_table, z_factor=1):
     """Sections of a working level (z reduced by `z_factor`) that QC excluded."""
     table = pd.read_csv(qc_table, sep="\t", keep_default_na=False)
-    return sorted({int(z) // z_factor for z in table.loc[table["excluded"].astype(str) == "True", "z"]})
+    return sorted(
+        {int(z) // z_factor for z in table.loc[table["excluded"].astype(str) == "True", "z"]}
+    )
 
 
-def objects_job(probability, qc_table, scores, out_image, out_table, out_settings, *, target, settings):
+def objects_job(
+    probability, qc_table, scores, out_image, out_table, out_settings, *, target, settings
+):
     """Filter a stitched probability map into objects; write labels, table and settings.
 
     The labels go to ``labels/<target>`` inside a copy of the probability image (NGFF image-label,
@@ -434,9 +542,15 @@ def objects_job(probability, qc_table, scores, out_image, out_table, out_setting
     scale = float(extra.get("scale", 1.0))
     z_factor = int(info["extra"].get("probability", {}).get("z_factor", 1))
     excluded = excluded_sections(qc_table, z_factor)
-    used = {"target": target, "high": high, "low": low, **settings, "connectivity_meaning":
-            f"{settings['connectivity']}-connected voxels in 3D belong to one object", "excluded_sections": excluded,
-            "spacing_nm": list(info["spacing"])}
+    used = {
+        "target": target,
+        "high": high,
+        "low": low,
+        **settings,
+        "connectivity_meaning": f"{settings['connectivity']}-connected voxels in 3D belong to one object",
+        "excluded_sections": excluded,
+        "spacing_nm": list(info["spacing"]),
+    }
     block = settings.pop("block")
     level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
     with atomic_path(out_image) as tmp:
@@ -449,7 +563,9 @@ def objects_job(probability, qc_table, scores, out_image, out_table, out_setting
         image = labels_group.create_group(target)
         # NGFF wants a label level per image level; coarser label levels take every f-th voxel
         # (labels cannot be averaged), so their first voxel sits on level 0's first voxel.
-        ome = multiscale_attrs(name=f"{target} objects", spacing=info["spacing"], factors=info["factors"])
+        ome = multiscale_attrs(
+            name=f"{target} objects", spacing=info["spacing"], factors=info["factors"]
+        )
         for dataset in ome["multiscales"][0]["datasets"]:
             dataset["coordinateTransformations"] = dataset["coordinateTransformations"][:1]
         ome["image-label"] = {"version": "0.5", "source": {"image": "../../"}}
@@ -457,11 +573,28 @@ def objects_job(probability, qc_table, scores, out_image, out_table, out_setting
         levels = []
         for k, factor in enumerate(info["factors"]):
             shape = tuple(-(-s // f) for s, f in zip(prob.shape, factor))
-            levels.append(image.create_array(name=str(k), shape=shape, dtype=np.uint32,
-                                             chunks=tuple(min(c, s) for c, s in zip((1, 512, 512), shape)),
-                                             dimension_names=AXES, fill_value=0))
-        table = label_objects(prob, levels[0], spacing=info["spacing"], high=high, low=low, block=block, scale=scale,
-                              excluded_sections=excluded, workdir=Path(out_image).parent, **settings)
+            levels.append(
+                image.create_array(
+                    name=str(k),
+                    shape=shape,
+                    dtype=np.uint32,
+                    chunks=tuple(min(c, s) for c, s in zip((1, 512, 512), shape)),
+                    dimension_names=AXES,
+                    fill_value=0,
+                )
+            )
+        table = label_objects(
+            prob,
+            levels[0],
+            spacing=info["spacing"],
+            high=high,
+            low=low,
+            block=block,
+            scale=scale,
+            excluded_sections=excluded,
+            workdir=Path(out_image).parent,
+            **settings,
+        )
         for factor, level in zip(info["factors"][1:], levels[1:]):
             _subsample(levels[0], level, factor)
         # the probability levels keep the records made when they were stitched

@@ -55,7 +55,10 @@ def multiscale_attrs(*, name, spacing, factors):
         transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f)]}]
         if level > 0:
             transforms.append(
-                {"type": "translation", "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f)]}
+                {
+                    "type": "translation",
+                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f)],
+                }
             )
         datasets.append({"path": str(level), "coordinateTransformations": transforms})
     return {
@@ -95,12 +98,16 @@ def open_image(path, *, checksums="required"):
     if checksums not in ("required", "if-present"):
         raise TesseraInputError(f"checksums must be 'required' or 'if-present', got {checksums!r}")
     if not path.is_dir():
-        raise TesseraInputError("not an OME-Zarr image (zarr v3 group): no such folder", source=path)
+        raise TesseraInputError(
+            "not an OME-Zarr image (zarr v3 group): no such folder", source=path
+        )
     try:
         store = checked_store(path, required=checksums == "required")
         group = zarr.open_group(store=store, mode="r", zarr_format=3)
     except (FileNotFoundError, zarr.errors.GroupNotFoundError, ValueError) as exc:
-        raise TesseraInputError(f"not an OME-Zarr image (zarr v3 group): {exc}", source=path) from None
+        raise TesseraInputError(
+            f"not an OME-Zarr image (zarr v3 group): {exc}", source=path
+        ) from None
     attrs = group.attrs.asdict()
     try:
         ms = attrs["ome"]["multiscales"][0]

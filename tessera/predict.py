@@ -24,8 +24,16 @@ import numpy as np
 import zarr
 
 from .atomic import atomic_path, write_text
-from .cascade.model import cascade_spec, frame_memory_bytes, load_node, mirrored_stack, node_feature_names, nodes
-from .cascade.model import predict_frame, receptive_radius
+from .cascade.model import (
+    cascade_spec,
+    frame_memory_bytes,
+    load_node,
+    mirrored_stack,
+    node_feature_names,
+    nodes,
+    predict_frame,
+    receptive_radius,
+)
 from .checksum import file_sha256
 from .chunksums import record_checksums
 from .errors import TesseraInputError, TesseraResourceError
@@ -97,12 +105,27 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
     for z0 in range(0, shape[0], block[0]):
         for y0 in range(0, shape[1], block[1]):
             for x0 in range(0, shape[2], block[2]):
-                blocks.append([z0, min(z0 + block[0], shape[0]), y0, min(y0 + block[1], shape[1]),
-                               x0, min(x0 + block[2], shape[2])])
+                blocks.append(
+                    [
+                        z0,
+                        min(z0 + block[0], shape[0]),
+                        y0,
+                        min(y0 + block[1], shape[1]),
+                        x0,
+                        min(x0 + block[2], shape[2]),
+                    ]
+                )
     n = len(blocks)
     shares = [list(range(j * n // jobs, (j + 1) * n // jobs)) for j in range(jobs)]
-    return {"format": PLAN_FORMAT, "shape": list(shape), "block": block, "halo": int(halo), "align": int(align),
-            "blocks": blocks, "jobs": shares}
+    return {
+        "format": PLAN_FORMAT,
+        "shape": list(shape),
+        "block": block,
+        "halo": int(halo),
+        "align": int(align),
+        "blocks": blocks,
+        "jobs": shares,
+    }
 
 
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
@@ -116,7 +139,9 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
     for z in range(z0, z1):
-        window = mirrored_stack(volume, z, spec.neighbours, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
+        window = mirrored_stack(
+            volume, z, spec.neighbours, y0 - halo, y1 + halo, x0 - halo, x1 + halo
+        )
         out[z - z0] = predict_frame(models, window, (y1 - y0, x1 - x0), output_sigma=output_sigma)
     return out
 
@@ -156,7 +181,9 @@ def read_plan(path):
     try:
         plan = json.loads(Path(path).read_text(encoding="utf-8"))
     except FileNotFoundError:
-        raise TesseraInputError("shard plan not found (rule shard_plan writes it)", source=path) from None
+        raise TesseraInputError(
+            "shard plan not found (rule shard_plan writes it)", source=path
+        ) from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise TesseraInputError(f"shard plan is damaged: {exc}", source=path) from None
     if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT:
@@ -171,18 +198,43 @@ def _working_array(pyramid, downsample):
     return info["levels"][level], spacing, info["factors"][level]
 
 
-def plan_job(pyramid, model_paths, out_plan, *, target, downsample, block, shard_jobs, max_halo, dtype,
-             output_sigma=0.0):
+def plan_job(
+    pyramid,
+    model_paths,
+    out_plan,
+    *,
+    target,
+    downsample,
+    block,
+    shard_jobs,
+    max_halo,
+    dtype,
+    output_sigma=0.0,
+):
     """Write the shard plan of one dataset and target (a recorded artifact)."""
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
     array, spacing, factors = _working_array(pyramid, downsample)
-    plan = plan_shards(array.shape, block=block, halo=receptive_radius(spec, output_sigma=output_sigma),
-                       align=spec.align, jobs=shard_jobs, max_halo=max_halo)
+    plan = plan_shards(
+        array.shape,
+        block=block,
+        halo=receptive_radius(spec, output_sigma=output_sigma),
+        align=spec.align,
+        jobs=shard_jobs,
+        max_halo=max_halo,
+    )
     encode_probability(np.zeros(1, np.float32), dtype)  # validates the dtype before any job runs
-    plan.update({"target": target, "downsample": downsample, "output_sigma": output_sigma, "spacing": list(spacing),
-                 "factors": list(factors), "dtype": dtype,
-                 "models": {Path(p).name: file_sha256(p) for p in sorted(model_paths)}})
+    plan.update(
+        {
+            "target": target,
+            "downsample": downsample,
+            "output_sigma": output_sigma,
+            "spacing": list(spacing),
+            "factors": list(factors),
+            "dtype": dtype,
+            "models": {Path(p).name: file_sha256(p) for p in sorted(model_paths)},
+        }
+    )
     write_text(out_plan, json.dumps(plan, indent=1) + "\n")
     return {"blocks": len(plan["blocks"]), "halo": plan["halo"], "block": plan["block"]}
 
@@ -221,12 +273,19 @@ def shard_memory_mb(plan, job, spec, model_paths):
     halo = plan["halo"]
     sections = 2 * spec.neighbours + 1
     itemsize = np.dtype(plan["dtype"]).itemsize
-    shapes = {(b[1] - b[0], b[3] - b[2], b[5] - b[4]) for b in (plan["blocks"][i] for i in plan["jobs"][job])}
+    shapes = {
+        (b[1] - b[0], b[3] - b[2], b[5] - b[4])
+        for b in (plan["blocks"][i] for i in plan["jobs"][job])
+    }
     worst = 0
     for z, y, x in shapes:
         window = 3 * sections * (y + 2 * halo) * (x + 2 * halo)  # uint8 read, mirrored copy, stack
-        block = z * y * x * (4 * 4 + itemsize)  # probabilities, clip/scale/round temporaries, encoded
-        worst = max(worst, frame_memory_bytes(spec, (y, x), output_sigma=output_sigma) + window + block)
+        block = (
+            z * y * x * (4 * 4 + itemsize)
+        )  # probabilities, clip/scale/round temporaries, encoded
+        worst = max(
+            worst, frame_memory_bytes(spec, (y, x), output_sigma=output_sigma) + window + block
+        )
     return BASELINE_MB + math.ceil((_models_bytes(model_paths) + worst) / 1e6)
 
 
@@ -259,21 +318,30 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
     """
     plan = read_plan(plan_path)
     if not 0 <= job < len(plan["jobs"]):
-        raise TesseraInputError(f"job {job} is not in the plan (it has {len(plan['jobs'])} jobs)", source=plan_path)
+        raise TesseraInputError(
+            f"job {job} is not in the plan (it has {len(plan['jobs'])} jobs)", source=plan_path
+        )
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
     output_sigma = plan.get("output_sigma", 0.0)
     halo = receptive_radius(spec, output_sigma=output_sigma)
     if halo != plan["halo"] or spec.align != plan["align"]:
-        raise TesseraInputError("the plan was made for another cascade (halo or alignment differ); rerun shard_plan",
-                                source=plan_path)
+        raise TesseraInputError(
+            "the plan was made for another cascade (halo or alignment differ); rerun shard_plan",
+            source=plan_path,
+        )
     array, _, _ = _working_array(pyramid, plan["downsample"])
     if list(array.shape) != plan["shape"]:
-        raise TesseraInputError(f"the plan is for a volume of shape {plan['shape']}, the image has {list(array.shape)}",
-                                source=plan_path)
+        raise TesseraInputError(
+            f"the plan is for a volume of shape {plan['shape']}, the image has {list(array.shape)}",
+            source=plan_path,
+        )
     if mem_mb is not None and plan["jobs"][job]:
-        _log.info("memory: about %d MB needed, mem_mb=%d given",
-                  _check_memory(plan, job, spec, model_paths, mem_mb, source=plan_path), mem_mb)
+        _log.info(
+            "memory: about %d MB needed, mem_mb=%d given",
+            _check_memory(plan, job, spec, model_paths, mem_mb, source=plan_path),
+            mem_mb,
+        )
     entries = []
     with atomic_path(out_dir) as tmp:
         tmp.mkdir()
@@ -283,8 +351,15 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
             values = encode_probability(prob, plan["dtype"])
             path = tmp / _block_name(index)
             np.save(path, values, allow_pickle=False)
-            entries.append({"block": index, "file": path.name, "shape": list(values.shape),
-                            "dtype": str(values.dtype), "sha256": file_sha256(path)})
+            entries.append(
+                {
+                    "block": index,
+                    "file": path.name,
+                    "shape": list(values.shape),
+                    "dtype": str(values.dtype),
+                    "sha256": file_sha256(path),
+                }
+            )
             _log.info("block %d %s done", index, box)
         manifest = {"format": PLAN_FORMAT, "job": job, "blocks": entries}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1) + "\n", encoding="utf-8")
@@ -302,7 +377,9 @@ def verified_blocks(plan, shard_dirs):
         the rule that rebuilds it.
     """
     if len(shard_dirs) != len(plan["jobs"]):
-        raise TesseraInputError(f"expected {len(plan['jobs'])} shard outputs, got {len(shard_dirs)}")
+        raise TesseraInputError(
+            f"expected {len(plan['jobs'])} shard outputs, got {len(shard_dirs)}"
+        )
     manifests = []
     for job, folder in enumerate(shard_dirs):
         path = Path(folder) / "manifest.json"
@@ -313,9 +390,13 @@ def verified_blocks(plan, shard_dirs):
         except FileNotFoundError:
             raise TesseraInputError(f"shard manifest missing; {hint}", source=path) from None
         except (json.JSONDecodeError, UnicodeDecodeError, KeyError, TypeError) as exc:
-            raise TesseraInputError(f"shard manifest damaged ({exc}); {hint}", source=path) from None
+            raise TesseraInputError(
+                f"shard manifest damaged ({exc}); {hint}", source=path
+            ) from None
         if manifest.get("job") != job or sorted(by_block) != sorted(plan["jobs"][job]):
-            raise TesseraInputError(f"shard output is not job {job} of this plan; {hint}", source=path)
+            raise TesseraInputError(
+                f"shard output is not job {job} of this plan; {hint}", source=path
+            )
         manifests.append((Path(folder), by_block, hint))
     for folder, by_block, hint in manifests:
         for index in sorted(by_block):
@@ -326,12 +407,16 @@ def verified_blocks(plan, shard_dirs):
             if not path.is_file():
                 raise TesseraInputError(f"block file missing; {hint}", source=path)
             if file_sha256(path) != entry["sha256"]:
-                raise TesseraInputError(f"block file does not match its recorded checksum (truncated or altered); {hint}",
-                                        source=path)
+                raise TesseraInputError(
+                    f"block file does not match its recorded checksum (truncated or altered); {hint}",
+                    source=path,
+                )
             try:
                 values = np.load(path, allow_pickle=False)
             except (ValueError, OSError, EOFError) as exc:
-                raise TesseraInputError(f"block file unreadable ({exc}); {hint}", source=path) from None
+                raise TesseraInputError(
+                    f"block file unreadable ({exc}); {hint}", source=path
+                ) from None
             if list(values.shape) != expected or str(values.dtype) != plan["dtype"]:
                 raise TesseraInputError(
                     f"block holds {values.dtype} {list(values.shape)}, the plan expects {plan['dtype']} {expected}; {hint}",
@@ -352,30 +437,52 @@ def stitch_job(plan_path, shard_dirs, out_path, *, viewing_levels=2, chunks=(1, 
     factors = [(1, 1, 1)] + [(1, 2**k, 2**k) for k in range(1, viewing_levels + 1)]
     with atomic_path(out_path) as tmp:
         root = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
-        root.attrs.update({
-            "ome": multiscale_attrs(name=f"{plan['target']} probability", spacing=plan["spacing"], factors=factors),
-            "tessera": {"probability": {
-                "target": plan["target"], "dtype": plan["dtype"], "scale": probability_scale(plan["dtype"]),
-                "meaning": "probability of the target = stored value / scale",
-                "working_level_downsample": plan["downsample"], "z_factor": plan["factors"][0], "halo": plan["halo"],
-                "output_smoothing_px": plan.get("output_sigma", 0.0),
-                "block": plan["block"], "models": plan["models"],
-            }},
-        })
-        level0 = root.create_array(name="0", shape=shape, dtype=plan["dtype"],
-                                   chunks=tuple(min(c, s) for c, s in zip(chunks, shape)), dimension_names=AXES)
+        root.attrs.update(
+            {
+                "ome": multiscale_attrs(
+                    name=f"{plan['target']} probability", spacing=plan["spacing"], factors=factors
+                ),
+                "tessera": {
+                    "probability": {
+                        "target": plan["target"],
+                        "dtype": plan["dtype"],
+                        "scale": probability_scale(plan["dtype"]),
+                        "meaning": "probability of the target = stored value / scale",
+                        "working_level_downsample": plan["downsample"],
+                        "z_factor": plan["factors"][0],
+                        "halo": plan["halo"],
+                        "output_smoothing_px": plan.get("output_sigma", 0.0),
+                        "block": plan["block"],
+                        "models": plan["models"],
+                    }
+                },
+            }
+        )
+        level0 = root.create_array(
+            name="0",
+            shape=shape,
+            dtype=plan["dtype"],
+            chunks=tuple(min(c, s) for c, s in zip(chunks, shape)),
+            dimension_names=AXES,
+        )
         written = 0
         for box, values in verified_blocks(plan, shard_dirs):
-            level0[box[0]:box[1], box[2]:box[3], box[4]:box[5]] = values
+            level0[box[0] : box[1], box[2] : box[3], box[4] : box[5]] = values
             written += values.size
         if written != int(np.prod(shape)):
-            raise TesseraInputError(f"the shards cover {written} of {int(np.prod(shape))} voxels", source=plan_path)
+            raise TesseraInputError(
+                f"the shards cover {written} of {int(np.prod(shape))} voxels", source=plan_path
+            )
         previous = level0
         for k in range(1, viewing_levels + 1):
             level_shape = tuple(-(-s // f) for s, f in zip(shape, factors[k]))
-            current = root.create_array(name=str(k), shape=level_shape, dtype=plan["dtype"],
-                                        chunks=tuple(min(c, s) for c, s in zip(chunks, level_shape)),
-                                        dimension_names=AXES)
+            current = root.create_array(
+                name=str(k),
+                shape=level_shape,
+                dtype=plan["dtype"],
+                chunks=tuple(min(c, s) for c, s in zip(chunks, level_shape)),
+                dimension_names=AXES,
+            )
             downsample_level(previous, current, factors=(1, 2, 2))
             previous = current
         record_checksums(tmp)

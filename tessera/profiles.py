@@ -108,7 +108,9 @@ def check_profile(profile, *, rules_dir=_RULES_DIR):
     path = Path(profile)
     path = path / "config.yaml" if path.is_dir() else path
     if not path.is_file():
-        raise TesseraInputError("profile not found: expected a folder with config.yaml", source=path)
+        raise TesseraInputError(
+            "profile not found: expected a folder with config.yaml", source=path
+        )
     try:
         settings = yaml.safe_load(path.read_text(encoding="utf-8"))
     except (yaml.YAMLError, UnicodeDecodeError) as error:
@@ -120,19 +122,26 @@ def check_profile(profile, *, rules_dir=_RULES_DIR):
             close = sorted(o for o in options if o[:4] == str(key)[:4])[:5]
             raise TesseraInputError(
                 f"key {key}: not an option of Snakemake or of an installed executor plugin"
-                + (f" (similar: {', '.join(close)})" if close else ""), source=path)
+                + (f" (similar: {', '.join(close)})" if close else ""),
+                source=path,
+            )
     executor = settings.get("executor", "local")
     if executor not in executors:
         raise TesseraInputError(
             f"key executor: {executor!r} is not installed (installed: {', '.join(sorted(executors))}); "
             f"install the plugin snakemake-executor-plugin-{executor} from PyPI into this environment",
-            source=path)
+            source=path,
+        )
     needs = rule_resources(rules_dir)
     groups = needs.pop("_groups")
-    for rule, resources in _mapping(settings.get("set-resources", {}) or {}, path, "set-resources").items():
+    for rule, resources in _mapping(
+        settings.get("set-resources", {}) or {}, path, "set-resources"
+    ).items():
         if rule not in needs:
             raise TesseraInputError(
-                f"key set-resources.{rule}: no such rule; rules are {', '.join(sorted(needs))}", source=path)
+                f"key set-resources.{rule}: no such rule; rules are {', '.join(sorted(needs))}",
+                source=path,
+            )
         for name, value in _mapping(resources, path, f"set-resources.{rule}").items():
             # Memory is a need (below it the scheduler kills the job); a rule's runtime is a
             # generous limit that small studies may well lower.
@@ -143,13 +152,15 @@ def check_profile(profile, *, rules_dir=_RULES_DIR):
                 raise TesseraInputError(
                     f"key set-resources.{rule}.mem_mb: {value!r} is below what rule {rule} needs "
                     f"({need} MB, declared in rules/); the scheduler would kill the job: give at least {need}",
-                    source=path)
+                    source=path,
+                )
     for entry in settings.get("group-components", []) or []:
         name = str(entry).split("=")[0]
         if name not in groups:
             raise TesseraInputError(
                 f"key group-components: no rule group {name!r}; groups are {', '.join(sorted(groups))}",
-                source=path)
+                source=path,
+            )
     return settings
 
 

@@ -16,7 +16,7 @@ def _module_file(name):
     return path / "__init__.py" if path.is_dir() else path.with_suffix(".py")
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _package_imports(path, module):
     """Names of the tessera modules that the file `path` (module `module`) imports anywhere."""
     package = module if path.name == "__init__.py" else module.rpartition(".")[0]
@@ -73,10 +73,14 @@ def code_version(*modules):
     >>> code_version("tessera.pyramid").startswith(__version__ + "+")
     True
     """
-    names = module_closure(*modules) if modules else {
-        "tessera." + p.relative_to(_PACKAGE_DIR).with_suffix("").as_posix().replace("/", ".")
-        for p in _PACKAGE_DIR.rglob("*.py")
-    }
+    names = (
+        module_closure(*modules)
+        if modules
+        else {
+            "tessera." + p.relative_to(_PACKAGE_DIR).with_suffix("").as_posix().replace("/", ".")
+            for p in _PACKAGE_DIR.rglob("*.py")
+        }
+    )
     digest = hashlib.sha256()
     for name in sorted(names):
         digest.update(name.encode())
@@ -137,7 +141,11 @@ def _named(files):
     """A Snakemake Namedlist as {name: path} plus unnamed paths, in order."""
     names = dict(files.items()) if hasattr(files, "items") else {}
     named = {str(p) for v in names.values() for p in ([v] if isinstance(v, str) else v)}
-    out = [{"name": k, "path": str(p)} for k, v in names.items() for p in ([v] if isinstance(v, str) else v)]
+    out = [
+        {"name": k, "path": str(p)}
+        for k, v in names.items()
+        for p in ([v] if isinstance(v, str) else v)
+    ]
     out += [{"name": None, "path": str(p)} for p in files if str(p) not in named]
     return out
 
@@ -191,7 +199,7 @@ def _seeds(params, prefix=""):
     return found
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def source_state(directory):
     """Git commit of `directory` and whether tracked files differ from it (None outside git).
 
@@ -201,7 +209,9 @@ def source_state(directory):
     import subprocess
 
     def git(*args):
-        done = subprocess.run(["git", "-C", str(directory), *args], capture_output=True, text=True, timeout=30)
+        done = subprocess.run(
+            ["git", "-C", str(directory), *args], capture_output=True, text=True, timeout=30
+        )
         return done.stdout.strip() if done.returncode == 0 else None
 
     try:
@@ -238,7 +248,11 @@ def job_record(job, *, started, finished, workflow_dir):
 
     from .methods import software_versions
 
-    params = _plain(dict(job.params.items())) if hasattr(job.params, "items") else _plain(list(job.params))
+    params = (
+        _plain(dict(job.params.items()))
+        if hasattr(job.params, "items")
+        else _plain(list(job.params))
+    )
     resources = {k: _plain(v) for k, v in job.resources.items() if not str(k).startswith("_")}
     return {
         "rule": job.rule,

@@ -142,7 +142,10 @@ def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
         extra = dict(info["extra"])
         extra["pyramid"] = {"factors": [list(f) for f in factors], "method": "block mean"}
         out.attrs.update(
-            {"ome": multiscale_attrs(name=name, spacing=info["spacing"], factors=factors), "tessera": extra}
+            {
+                "ome": multiscale_attrs(name=name, spacing=info["spacing"], factors=factors),
+                "tessera": extra,
+            }
         )
         link_tree(Path(image_path) / "0", tmp / "0")
         # read level 0 through the ingest store (the same files), so every chunk is verified
@@ -151,7 +154,11 @@ def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
             shape = tuple(-(-s // k) for s, k in zip(previous.shape, step))
             chunks = tuple(min(c, s) for c, s in zip(level0.chunks, shape))
             current = out.create_array(
-                name=str(level), shape=shape, chunks=chunks, dtype=level0.dtype, dimension_names=AXES
+                name=str(level),
+                shape=shape,
+                chunks=chunks,
+                dtype=level0.dtype,
+                dimension_names=AXES,
             )
             downsample_level(previous, current, factors=step)
             previous = current

@@ -391,7 +391,9 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
             raise TesseraInputError(f"volume[{z}] has shape {section.shape}, expected {shape[1:]}")
         row = {"z": z}
         row.update(
-            section_metrics(section, flat_block=flat_block, flat_std=flat_std, sharpness_sigma=sharpness_sigma)
+            section_metrics(
+                section, flat_block=flat_block, flat_std=flat_std, sharpness_sigma=sharpness_sigma
+            )
         )
         crop = np.asarray(section[y0:y1, x0:x1], dtype=np.float64)
         dy, dx = (0.0, 0.0) if previous is None else phase_shift(previous, crop, window=True)
@@ -577,7 +579,9 @@ def flag_sections(
 
     residual = _trend_residuals(z, cols["mean"], use, intensity_neighbours)
     intensity_score = _robust_z(residual, use)
-    intensity = use & (np.abs(intensity_score) > intensity_z) & (np.abs(residual) >= min_intensity_change)
+    intensity = (
+        use & (np.abs(intensity_score) > intensity_z) & (np.abs(residual) >= min_intensity_change)
+    )
 
     # a flat or blurred image has little shared detail, so its shift estimate is unreliable
     clear = use & ~blurred

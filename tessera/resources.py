@@ -42,8 +42,11 @@ def job_info(job):
     if isinstance(job, (str, os.PathLike)):
         return JobInfo(log=os.fspath(job))
     mem_mb = getattr(getattr(job, "resources", None), "mem_mb", None)
-    return JobInfo(log=str(job.log[0]), rule=getattr(job, "rule", None),
-                   mem_mb=None if mem_mb is None else int(mem_mb))
+    return JobInfo(
+        log=str(job.log[0]),
+        rule=getattr(job, "rule", None),
+        mem_mb=None if mem_mb is None else int(mem_mb),
+    )
 
 
 def more_memory_hint(rule, *, suggest_mb=None):
@@ -56,8 +59,10 @@ def more_memory_hint(rule, *, suggest_mb=None):
     """
     rule = rule or "<rule>"
     figure = "<MB>" if suggest_mb is None else int(suggest_mb)
-    return (f"give it more in the profile's config.yaml (set-resources: {{{rule}: {{mem_mb: {figure}}}}}) "
-            "or rerun with --retries 1 (each retry multiplies mem_mb by the attempt number)")
+    return (
+        f"give it more in the profile's config.yaml (set-resources: {{{rule}: {{mem_mb: {figure}}}}}) "
+        "or rerun with --retries 1 (each retry multiplies mem_mb by the attempt number)"
+    )
 
 
 def out_of_memory_message(info, error):

@@ -21,8 +21,16 @@ from .errors import TesseraInputError
 from .plotting import pyplot
 
 # size-like measures are compared on the log scale: the effect is a ratio (cold / reference)
-LOG_MEASURES = ("volume_um3", "surface_um2", "equivalent_diameter_um", "skeleton_length_um", "complexity_index",
-                "major_axis_um", "intermediate_axis_um", "minor_axis_um")
+LOG_MEASURES = (
+    "volume_um3",
+    "surface_um2",
+    "equivalent_diameter_um",
+    "skeleton_length_um",
+    "complexity_index",
+    "major_axis_um",
+    "intermediate_axis_um",
+    "minor_axis_um",
+)
 MIN_ANIMALS = 3
 _log = logging.getLogger(__name__)
 
@@ -61,11 +69,15 @@ def animal_summaries(objects, *, measures, subjects=None):
     whole = objects[~objects["touches_volume_border"].astype(bool)]
     conditions = objects.groupby("subject")["condition"].nunique()
     if (conditions > 1).any():
-        raise TesseraInputError(f"animal(s) {sorted(conditions[conditions > 1].index)} appear under several conditions")
+        raise TesseraInputError(
+            f"animal(s) {sorted(conditions[conditions > 1].index)} appear under several conditions"
+        )
     subjects = dict(subjects or {})
     for subject, condition in objects.groupby("subject")["condition"].first().items():
         if subjects.setdefault(subject, condition) != condition:
-            raise TesseraInputError(f"animal {subject!r} appears under conditions {subjects[subject]!r} and {condition!r}")
+            raise TesseraInputError(
+                f"animal {subject!r} appears under conditions {subjects[subject]!r} and {condition!r}"
+            )
     rows = []
     for subject in sorted(subjects):
         group = whole[whole["subject"] == subject]
@@ -97,7 +109,8 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95):
     """
     if reference not in set(animals["condition"]):
         raise TesseraInputError(
-            f"reference condition {reference!r} has no animals; conditions are {sorted(set(animals['condition']))}")
+            f"reference condition {reference!r} has no animals; conditions are {sorted(set(animals['condition']))}"
+        )
     rows = []
     for measure in measures:
         log = measure in LOG_MEASURES
@@ -110,20 +123,31 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95):
             est, low, high, p = _welch(a, b, confidence)
             warning = ""
             if min(len(a), len(b)) < MIN_ANIMALS:
-                warning = (f"only {min(len(a), len(b))} animal(s) in a group: "
-                           + ("no interval" if min(len(a), len(b)) < 2 else "interval unreliable")
-                           + f"; use at least {MIN_ANIMALS} animals per condition")
+                warning = (
+                    f"only {min(len(a), len(b))} animal(s) in a group: "
+                    + ("no interval" if min(len(a), len(b)) < 2 else "interval unreliable")
+                    + f"; use at least {MIN_ANIMALS} animals per condition"
+                )
                 _log.warning("%s, %s vs %s: %s", measure, condition, reference, warning)
             transform = math.exp if log else (lambda v: v)
-            rows.append({
-                "measure": measure, "condition": condition, "reference": reference,
-                "animals": len(a), "reference_animals": len(b),
-                "mean": transform(float(np.mean(a))) if len(a) else math.nan,
-                "reference_mean": transform(float(np.mean(b))) if len(b) else math.nan,
-                "scale": "ratio" if log else "difference",
-                "effect": transform(est), "ci_low": transform(low), "ci_high": transform(high),
-                "confidence": confidence, "p_value": p, "warning": warning,
-            })
+            rows.append(
+                {
+                    "measure": measure,
+                    "condition": condition,
+                    "reference": reference,
+                    "animals": len(a),
+                    "reference_animals": len(b),
+                    "mean": transform(float(np.mean(a))) if len(a) else math.nan,
+                    "reference_mean": transform(float(np.mean(b))) if len(b) else math.nan,
+                    "scale": "ratio" if log else "difference",
+                    "effect": transform(est),
+                    "ci_low": transform(low),
+                    "ci_high": transform(high),
+                    "confidence": confidence,
+                    "p_value": p,
+                    "warning": warning,
+                }
+            )
     return pd.DataFrame(rows)
 
 
@@ -154,7 +178,9 @@ def _region_animals(regions):
         row = {"subject": subject, "regions": len(group)}
         row.update({f"region_{m}": float(group[m].mean()) for m in REGION_MEASURES})
         rows.append(row)
-    return pd.DataFrame(rows, columns=["subject", "regions", *[f"region_{m}" for m in REGION_MEASURES]])
+    return pd.DataFrame(
+        rows, columns=["subject", "regions", *[f"region_{m}" for m in REGION_MEASURES]]
+    )
 
 
 def _test_accuracy(scores_path):
@@ -165,8 +191,20 @@ def _test_accuracy(scores_path):
     return {"test_f1": float(test["f1"].iloc[0]), "test_jaccard": float(test["jaccard"].iloc[0])}
 
 
-def statistics_job(object_tables, region_tables, datasets, scores, out_animals, out_comparison, out_plot, *,
-                   target, measures, reference=None, confidence=0.95):
+def statistics_job(
+    object_tables,
+    region_tables,
+    datasets,
+    scores,
+    out_animals,
+    out_comparison,
+    out_plot,
+    *,
+    target,
+    measures,
+    reference=None,
+    confidence=0.95,
+):
     """Per-animal summaries and condition comparisons of one target across the study.
 
     Parameters
@@ -197,9 +235,12 @@ def statistics_job(object_tables, region_tables, datasets, scores, out_animals, 
     reference = reference or next(iter(datasets.values()))["condition"]
     subjects = {d["subject"]: d["condition"] for d in datasets.values()}
     animals = animal_summaries(objects, measures=measures, subjects=subjects).merge(
-        _region_animals(pd.concat(region_frames, ignore_index=True)), on="subject", how="left")
+        _region_animals(pd.concat(region_frames, ignore_index=True)), on="subject", how="left"
+    )
     all_measures = [*measures, *[f"region_{m}" for m in REGION_MEASURES]]
-    comparison = compare_conditions(animals, measures=all_measures, reference=reference, confidence=confidence)
+    comparison = compare_conditions(
+        animals, measures=all_measures, reference=reference, confidence=confidence
+    )
     accuracy = _test_accuracy(scores)
     comparison.insert(0, "target", target)
     for key, value in accuracy.items():
@@ -208,7 +249,9 @@ def statistics_job(object_tables, region_tables, datasets, scores, out_animals, 
     write_table(out_comparison, comparison)
     with atomic_path(out_plot) as tmp:
         plot_conditions(objects, animals, comparison, tmp, target=target, accuracy=accuracy)
-    return comparison[["measure", "condition", "effect", "ci_low", "ci_high"]].to_dict(orient="records")
+    return comparison[["measure", "condition", "effect", "ci_low", "ci_high"]].to_dict(
+        orient="records"
+    )
 
 
 def plot_conditions(objects, animals, comparison, path, *, target, accuracy, measures=None):
@@ -235,11 +278,17 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
         row = comparison[comparison["measure"] == m]
         if not row.empty:
             r = row.iloc[0]
-            ax.set_title(f"{m}\n{r['scale']} {r['effect']:.2f} [{r['ci_low']:.2f}, {r['ci_high']:.2f}]", fontsize=8)
+            ax.set_title(
+                f"{m}\n{r['scale']} {r['effect']:.2f} [{r['ci_low']:.2f}, {r['ci_high']:.2f}]",
+                fontsize=8,
+            )
         else:
             ax.set_title(m, fontsize=8)
-    fig.suptitle(f"{target}: objects (grey) and animals (dots); test-tile F1 {accuracy['test_f1']:.3f} — "
-                 "automatic segmentation, validate on held-out annotation", fontsize=8)
+    fig.suptitle(
+        f"{target}: objects (grey) and animals (dots); test-tile F1 {accuracy['test_f1']:.3f} — "
+        "automatic segmentation, validate on held-out annotation",
+        fontsize=8,
+    )
     fig.tight_layout()
     fig.savefig(path, dpi=100, format="png")
     plt.close(fig)

@@ -73,8 +73,18 @@ __all__ = [
 BACKGROUND, TARGET, IGNORE = 0, 1, 255
 
 #: Registry columns, in file order (``role`` follows when the set has been split).
-REGISTRY_COLUMNS = ("tile_id", "dataset", "target", "level", "z", "y0", "x0", "height", "width",
-                    "source")
+REGISTRY_COLUMNS = (
+    "tile_id",
+    "dataset",
+    "target",
+    "level",
+    "z",
+    "y0",
+    "x0",
+    "height",
+    "width",
+    "source",
+)
 
 #: Roles given by :func:`split_tiles`; ``guard`` tiles are used for nothing.
 ROLES = ("train", "validation", "test", "guard")
@@ -127,8 +137,10 @@ def validate_registry(registry, *, source=None):
     np.int64(9)
     """
     if not isinstance(registry, pd.DataFrame):
-        raise TesseraInputError(f"expected a registry table (pandas DataFrame), got "
-                                f"{type(registry).__name__}", source=source)
+        raise TesseraInputError(
+            f"expected a registry table (pandas DataFrame), got {type(registry).__name__}",
+            source=source,
+        )
     columns = list(registry.columns)
     missing = [c for c in REGISTRY_COLUMNS if c not in columns]
     allowed = set(REGISTRY_COLUMNS) | {"role"}
@@ -136,44 +148,52 @@ def validate_registry(registry, *, source=None):
     if missing or unknown:
         raise TesseraInputError(
             f"registry columns must be {list(REGISTRY_COLUMNS)} (+ optional 'role'); "
-            f"missing {missing}, unknown {unknown}", source=source)
+            f"missing {missing}, unknown {unknown}",
+            source=source,
+        )
     if len(registry) == 0:
         raise TesseraInputError("the registry has no tiles", source=source)
     out = {}
     rows = registry.reset_index(drop=True)
-    for name in ("tile_id", "dataset", "target", "source") + (("role",) if "role" in columns
-                                                               else ()):
+    for name in ("tile_id", "dataset", "target", "source") + (
+        ("role",) if "role" in columns else ()
+    ):
         values = []
         for i, v in enumerate(rows[name]):
             text = "" if _is_blank(v) else str(v).strip()
             if not text:
-                raise TesseraInputError(f"row {i + 1}, column {name!r}: empty; expected text",
-                                        source=source)
+                raise TesseraInputError(
+                    f"row {i + 1}, column {name!r}: empty; expected text", source=source
+                )
             values.append(text)
         out[name] = values
     for i, tid in enumerate(out["tile_id"]):
         if not _TILE_ID.fullmatch(tid):
             raise TesseraInputError(
-                f"row {i + 1}, column 'tile_id': {tid!r} must match [A-Za-z0-9_-]+",
-                source=source)
+                f"row {i + 1}, column 'tile_id': {tid!r} must match [A-Za-z0-9_-]+", source=source
+            )
     dupes = sorted({t for t in out["tile_id"] if out["tile_id"].count(t) > 1})
     if dupes:
-        raise TesseraInputError(f"duplicate tile_id values {dupes}; every tile needs its own id",
-                                source=source)
+        raise TesseraInputError(
+            f"duplicate tile_id values {dupes}; every tile needs its own id", source=source
+        )
     for i, s in enumerate(out["source"]):
         if s not in _SOURCES:
             raise TesseraInputError(
                 f"row {i + 1}, column 'source': {s!r}; expected one of {list(_SOURCES)}",
-                source=source)
+                source=source,
+            )
     for i, r in enumerate(out.get("role", ())):
         if r not in ROLES:
             raise TesseraInputError(
-                f"row {i + 1}, column 'role': {r!r}; expected one of {list(ROLES)}",
-                source=source)
+                f"row {i + 1}, column 'role': {r!r}; expected one of {list(ROLES)}", source=source
+            )
     for name in _INT_COLUMNS:
         low = 1 if name in ("height", "width") else 0
-        out[name] = [_as_int(v, low=low, where=f"row {i + 1}, column {name!r}", source=source)
-                     for i, v in enumerate(rows[name])]
+        out[name] = [
+            _as_int(v, low=low, where=f"row {i + 1}, column {name!r}", source=source)
+            for i, v in enumerate(rows[name])
+        ]
     order = list(REGISTRY_COLUMNS) + (["role"] if "role" in columns else [])
     table = pd.DataFrame({c: out[c] for c in order})
     for name in _INT_COLUMNS:
@@ -248,18 +268,21 @@ def read_annotation_set(path):
     for row in table.itertuples(index=False):
         file = path / _LABELS_DIR / f"{row.tile_id}.png"
         if not file.is_file():
-            raise TesseraInputError(f"label image of tile {row.tile_id!r} is missing",
-                                    source=file)
+            raise TesseraInputError(f"label image of tile {row.tile_id!r} is missing", source=file)
         array = _read_image(file)
         if array.dtype != np.uint8 or array.shape != (row.height, row.width):
             raise TesseraInputError(
                 f"expected a {row.height} x {row.width} 8-bit greyscale image, got "
-                f"{array.dtype} of shape {array.shape}", source=file)
+                f"{array.dtype} of shape {array.shape}",
+                source=file,
+            )
         unexpected = np.setdiff1d(np.unique(array), [BACKGROUND, TARGET, IGNORE])
         if unexpected.size:
             raise TesseraInputError(
                 f"unexpected values {unexpected.tolist()}; a stored label image holds only "
-                "0 (background), 1 (target) and 255 (ignore)", source=file)
+                "0 (background), 1 (target) and 255 (ignore)",
+                source=file,
+            )
         labels[row.tile_id] = array
     return table, labels
 
@@ -306,7 +329,9 @@ def read_points(path, *, datasets, targets):
     if missing or unknown:
         raise TesseraInputError(
             f"points columns must be {list(_POINT_COLUMNS)} (+ optional "
-            f"{list(_POINT_OPTIONAL)}); missing {missing}, unknown {unknown}", source=path)
+            f"{list(_POINT_OPTIONAL)}); missing {missing}, unknown {unknown}",
+            source=path,
+        )
     if len(sheet) == 0:
         raise TesseraInputError("the points sheet has no rows", source=path)
     records = []
@@ -316,32 +341,45 @@ def read_points(path, *, datasets, targets):
         for name, known in (("dataset", datasets), ("target", targets)):
             value = "" if _is_blank(row[name]) else str(row[name]).strip()
             if value not in known:
-                raise TesseraInputError(f"{where}, column {name!r}: unknown {name} {value!r}; "
-                                        f"expected one of {known}", source=path)
+                raise TesseraInputError(
+                    f"{where}, column {name!r}: unknown {name} {value!r}; expected one of {known}",
+                    source=path,
+                )
             rec[name] = value
         for name in ("z", "y", "x"):
             rec[name] = _as_int(row[name], low=0, where=f"{where}, column {name!r}", source=path)
         size = row.get("size")
-        rec["size"] = 0 if _is_blank(size) else _as_int(size, low=1,
-                                                        where=f"{where}, column 'size'",
-                                                        source=path)
+        rec["size"] = (
+            0
+            if _is_blank(size)
+            else _as_int(size, low=1, where=f"{where}, column 'size'", source=path)
+        )
         tid = row.get("tile_id")
         if _is_blank(tid) or not str(tid).strip():
-            tid = re.sub(r"[^A-Za-z0-9_-]", "-",
-                         f"{rec['dataset']}-{rec['target']}-z{rec['z']}-y{rec['y']}-x{rec['x']}")
+            tid = re.sub(
+                r"[^A-Za-z0-9_-]",
+                "-",
+                f"{rec['dataset']}-{rec['target']}-z{rec['z']}-y{rec['y']}-x{rec['x']}",
+            )
         tid = str(tid).strip()
         if not _TILE_ID.fullmatch(tid):
             raise TesseraInputError(
-                f"{where}, column 'tile_id': {tid!r} must match [A-Za-z0-9_-]+", source=path)
+                f"{where}, column 'tile_id': {tid!r} must match [A-Za-z0-9_-]+", source=path
+            )
         rec["tile_id"] = tid
         records.append(rec)
-    table = pd.DataFrame(records, columns=["tile_id", "dataset", "target", "z", "y", "x", "size"],
-                         index=pd.RangeIndex(1, len(records) + 1))
+    table = pd.DataFrame(
+        records,
+        columns=["tile_id", "dataset", "target", "z", "y", "x", "size"],
+        index=pd.RangeIndex(1, len(records) + 1),
+    )
     ids = table["tile_id"].tolist()
     dupes = sorted({t for t in ids if ids.count(t) > 1})
     if dupes:
-        raise TesseraInputError(f"duplicate tile ids {dupes}; give each point its own tile_id "
-                                "or its own position", source=path)
+        raise TesseraInputError(
+            f"duplicate tile ids {dupes}; give each point its own tile_id or its own position",
+            source=path,
+        )
     for name in ("z", "y", "x", "size"):
         table[name] = table[name].astype(np.int64)
     table.attrs["source"] = str(path)
@@ -396,17 +434,21 @@ def export_tiles(level_array, points, *, level, factors, size=500, out_dir):
     fz, fy, fx = _check_factors(factors)
     size = _as_int(size, low=1, where="size", source=None)
     if not isinstance(points, pd.DataFrame):
-        raise TesseraInputError(f"points must be a table from read_points, got "
-                                f"{type(points).__name__}")
+        raise TesseraInputError(
+            f"points must be a table from read_points, got {type(points).__name__}"
+        )
     where_sheet = points.attrs.get("source", "points")
     needed = ["tile_id", "dataset", "target", "z", "y", "x"]
     if any(c not in points.columns for c in needed) or len(points) == 0:
-        raise TesseraInputError(f"points need columns {needed} and at least one row",
-                                source=where_sheet)
+        raise TesseraInputError(
+            f"points need columns {needed} and at least one row", source=where_sheet
+        )
     if points["dataset"].nunique() != 1:
         raise TesseraInputError(
             f"points of several datasets {sorted(points['dataset'].unique())}; export one "
-            "dataset at a time (filter the points first)", source=where_sheet)
+            "dataset at a time (filter the points first)",
+            source=where_sheet,
+        )
     shape = tuple(int(s) for s in level_array.shape)
     if len(shape) != 3:
         raise TesseraInputError(f"expected a 3D (z, y, x) image, got shape {shape}")
@@ -417,23 +459,42 @@ def export_tiles(level_array, points, *, level, factors, size=500, out_dir):
         side = int(p["size"]) if "size" in points.columns and int(p["size"]) > 0 else size
         z, yc, xc = int(p["z"]) // fz, int(p["y"]) // fy, int(p["x"]) // fx
         y0, x0 = yc - side // 2, xc - side // 2
-        if not (0 <= z < shape[0] and y0 >= 0 and x0 >= 0 and y0 + side <= shape[1]
-                and x0 + side <= shape[2]):
+        if not (
+            0 <= z < shape[0]
+            and y0 >= 0
+            and x0 >= 0
+            and y0 + side <= shape[1]
+            and x0 + side <= shape[2]
+        ):
             raise TesseraInputError(
                 f"row {idx} (tile {p['tile_id']!r}): the {side} x {side} tile around level-0 "
                 f"point z={p['z']}, y={p['y']}, x={p['x']} covers level-{level} z={z}, rows "
                 f"{y0}..{y0 + side - 1}, columns {x0}..{x0 + side - 1}, outside the image of "
                 f"shape {shape}; move the point at least {side // 2} pixels (level {level}) "
-                "from the edge or use a smaller size", source=where_sheet)
-        rows.append({"tile_id": p["tile_id"], "dataset": p["dataset"], "target": p["target"],
-                     "level": level, "z": z, "y0": y0, "x0": x0, "height": side, "width": side,
-                     "source": "painted"})
+                "from the edge or use a smaller size",
+                source=where_sheet,
+            )
+        rows.append(
+            {
+                "tile_id": p["tile_id"],
+                "dataset": p["dataset"],
+                "target": p["target"],
+                "level": level,
+                "z": z,
+                "y0": y0,
+                "x0": x0,
+                "height": side,
+                "width": side,
+                "source": "painted",
+            }
+        )
     registry = validate_registry(pd.DataFrame(rows), source=where_sheet)
     with atomic_path(out_dir) as tmp:
         tmp.mkdir(parents=True)
         for r in registry.itertuples(index=False):
-            tile = np.asarray(level_array[r.z, r.y0:r.y0 + r.height, r.x0:r.x0 + r.width],
-                              dtype=np.uint8)
+            tile = np.asarray(
+                level_array[r.z, r.y0 : r.y0 + r.height, r.x0 : r.x0 + r.width], dtype=np.uint8
+            )
             tifffile.imwrite(tmp / f"{r.tile_id}.tif", tile, photometric="minisblack")
             Image.fromarray(_preview(tile)).save(tmp / f"{r.tile_id}.preview.png")
         registry.to_csv(tmp / _REGISTRY_FILE, sep="\t", index=False)
@@ -495,26 +556,33 @@ def read_painted_mask(path, *, shape, ignore_value=None, allow_single_class=Fals
     array = _read_image(path)
     array = _to_grey(array, source=path)
     if array.shape != shape:
-        raise TesseraInputError(f"expected a mask of shape {shape} (rows, columns), got "
-                                f"{array.shape}", source=path)
+        raise TesseraInputError(
+            f"expected a mask of shape {shape} (rows, columns), got {array.shape}", source=path
+        )
     if array.dtype == bool:
         array = array.astype(np.uint8)
     if not np.issubdtype(array.dtype, np.integer):
-        raise TesseraInputError(f"expected integer pixels (8- or 16-bit), got {array.dtype}",
-                                source=path)
+        raise TesseraInputError(
+            f"expected integer pixels (8- or 16-bit), got {array.dtype}", source=path
+        )
     values = [int(v) for v in np.unique(array)]
     full = int(np.iinfo(array.dtype).max)
     candidates = {1, 255} | ({full} if full > 255 else set())
     rest = [v for v in values if v != 0 and v != ignore_value]
-    allowed_text = (f"0 (background) and one target value of {sorted(candidates)}"
-                    + ("" if ignore_value is None else f", plus {ignore_value} (ignore)"))
+    allowed_text = f"0 (background) and one target value of {sorted(candidates)}" + (
+        "" if ignore_value is None else f", plus {ignore_value} (ignore)"
+    )
     unexpected = [v for v in rest if v not in candidates]
     if unexpected or len(rest) > 1:
         bad = unexpected if unexpected else rest
-        hint = ("" if unexpected else "; if one of them marks unsure pixels, give it as "
-                "the ignore value")
-        raise TesseraInputError(f"unexpected values {bad}; expected {allowed_text}{hint}",
-                                source=path)
+        hint = (
+            ""
+            if unexpected
+            else "; if one of them marks unsure pixels, give it as the ignore value"
+        )
+        raise TesseraInputError(
+            f"unexpected values {bad}; expected {allowed_text}{hint}", source=path
+        )
     out = np.zeros(shape, dtype=np.uint8)
     if rest:
         out[array == rest[0]] = TARGET
@@ -524,12 +592,16 @@ def read_painted_mask(path, *, shape, ignore_value=None, allow_single_class=Fals
         has_bg = bool((out == BACKGROUND).any())
         has_fg = bool((out == TARGET).any())
         if not (has_bg and has_fg):
-            what = "no target pixels" if has_bg else ("no background pixels" if has_fg
-                                                       else "neither target nor background")
+            what = (
+                "no target pixels"
+                if has_bg
+                else ("no background pixels" if has_fg else "neither target nor background")
+            )
             raise TesseraInputError(
                 f"the mask has {what}; a painted tile needs both classes (paint every target "
                 "pixel, leave background at 0) unless single-class tiles are allowed",
-                source=path)
+                source=path,
+            )
     return out
 
 
@@ -556,25 +628,36 @@ def import_painted(tiles_dir, masks_dir, *, ignore_value=None, allow_single_clas
     if not masks_dir.is_dir():
         raise TesseraInputError("masks directory not found", source=masks_dir)
     if masks_dir.resolve() == tiles_dir.resolve():
-        raise TesseraInputError("save painted masks in their own directory, not beside the "
-                                "exported raw tiles (whose .tif names they would share)",
-                                source=masks_dir)
+        raise TesseraInputError(
+            "save painted masks in their own directory, not beside the "
+            "exported raw tiles (whose .tif names they would share)",
+            source=masks_dir,
+        )
     registry = read_registry(tiles_dir / _REGISTRY_FILE)
     labels = {}
     for row in registry.itertuples(index=False):
-        found = [masks_dir / f"{row.tile_id}{s}" for s in _MASK_SUFFIXES
-                 if (masks_dir / f"{row.tile_id}{s}").is_file()]
+        found = [
+            masks_dir / f"{row.tile_id}{s}"
+            for s in _MASK_SUFFIXES
+            if (masks_dir / f"{row.tile_id}{s}").is_file()
+        ]
         if not found:
             raise TesseraInputError(
                 f"no mask for tile {row.tile_id!r}; expected {row.tile_id}.png (or "
-                f"{row.tile_id}.tif)", source=masks_dir)
+                f"{row.tile_id}.tif)",
+                source=masks_dir,
+            )
         if len(found) > 1:
             raise TesseraInputError(
                 f"several masks for tile {row.tile_id!r}: {[f.name for f in found]}; keep one",
-                source=masks_dir)
+                source=masks_dir,
+            )
         labels[row.tile_id] = read_painted_mask(
-            found[0], shape=(row.height, row.width), ignore_value=ignore_value,
-            allow_single_class=allow_single_class)
+            found[0],
+            shape=(row.height, row.width),
+            ignore_value=ignore_value,
+            allow_single_class=allow_single_class,
+        )
     return registry, labels
 
 
@@ -624,13 +707,29 @@ def _tile_mask(label_source, z, y0, x0, height, width, factors, threshold):
     """Working-level mask of one tile, reading only its level-0 region."""
     fz, fy, fx = factors
     nz, ny, nx = label_source.shape
-    region = label_source[z * fz:min((z + 1) * fz, nz), y0 * fy:min((y0 + height) * fy, ny),
-                          x0 * fx:min((x0 + width) * fx, nx)]
+    region = label_source[
+        z * fz : min((z + 1) * fz, nz),
+        y0 * fy : min((y0 + height) * fy, ny),
+        x0 * fx : min((x0 + width) * fx, nx),
+    ]
     return labels_to_target_mask(np.asarray(region), factors=factors, threshold=threshold)[0]
 
 
-def sample_tiles_from_labels(label_source, *, dataset, target, level, factors, size, count, seed,
-                             exclude_z=(), min_fraction=0.0, threshold=0, max_tries=200):
+def sample_tiles_from_labels(
+    label_source,
+    *,
+    dataset,
+    target,
+    level,
+    factors,
+    size,
+    count,
+    seed,
+    exclude_z=(),
+    min_fraction=0.0,
+    threshold=0,
+    max_tries=200,
+):
     """Sample annotation tiles from a full label volume.
 
     Parameters
@@ -704,13 +803,18 @@ def sample_tiles_from_labels(label_source, *, dataset, target, level, factors, s
     nz, ny, nx = (-(-s // f) for s, f in zip(shape0, factors))
     if size > ny or size > nx:
         raise TesseraInputError(
-            f"size {size} exceeds the level-{level} section ({ny} x {nx} pixels)")
+            f"size {size} exceeds the level-{level} section ({ny} x {nx} pixels)"
+        )
     fz = factors[0]
-    allowed = [z for z in range(nz)
-               if not any(z0 in excluded for z0 in range(z * fz, min((z + 1) * fz, shape0[0])))]
+    allowed = [
+        z
+        for z in range(nz)
+        if not any(z0 in excluded for z0 in range(z * fz, min((z + 1) * fz, shape0[0])))
+    ]
     if not allowed:
-        raise TesseraInputError(f"every section is excluded ({sorted(excluded)}); nothing to "
-                                "sample from")
+        raise TesseraInputError(
+            f"every section is excluded ({sorted(excluded)}); nothing to sample from"
+        )
     rng = np.random.default_rng(seed)
     order = [int(z) for z in rng.permutation(allowed)]
     prefix = re.sub(r"[^A-Za-z0-9_-]", "-", f"{dataset}-{target}")
@@ -720,26 +824,50 @@ def sample_tiles_from_labels(label_source, *, dataset, target, level, factors, s
         # The section whose turn it is first; if it cannot take the tile, the following ones.
         for k in range(len(order)):
             z = order[(i + k) % len(order)]
-            placed = _place_tile(label_source, rng, rows, z, ny, nx, size, factors, threshold,
-                                 min_fraction, max_tries)
+            placed = _place_tile(
+                label_source,
+                rng,
+                rows,
+                z,
+                ny,
+                nx,
+                size,
+                factors,
+                threshold,
+                min_fraction,
+                max_tries,
+            )
             if placed is not None:
                 break
         if placed is None:
             raise TesseraInputError(
                 f"could not place tile {i + 1} of {count} on any allowed level-{level} section "
                 f"in {max_tries} tries each (non-overlapping, target fraction >= "
-                f"{min_fraction}); lower count, size or min_fraction")
+                f"{min_fraction}); lower count, size or min_fraction"
+            )
         y0, x0, mask = placed
         tid = f"{prefix}-s{i + 1:03d}"
-        rows.append({"tile_id": tid, "dataset": dataset, "target": target, "level": level,
-                     "z": z, "y0": y0, "x0": x0, "height": size, "width": size,
-                     "source": "labels"})
+        rows.append(
+            {
+                "tile_id": tid,
+                "dataset": dataset,
+                "target": target,
+                "level": level,
+                "z": z,
+                "y0": y0,
+                "x0": x0,
+                "height": size,
+                "width": size,
+                "source": "labels",
+            }
+        )
         masks[tid] = mask
     return validate_registry(pd.DataFrame(rows)), masks
 
 
-def _place_tile(label_source, rng, rows, z, ny, nx, size, factors, threshold, min_fraction,
-                max_tries):
+def _place_tile(
+    label_source, rng, rows, z, ny, nx, size, factors, threshold, min_fraction, max_tries
+):
     """A random tile position on section z: (y0, x0, mask), or None after `max_tries`."""
     taken = [(r["y0"], r["x0"]) for r in rows if r["z"] == z]
     for _ in range(max_tries):
@@ -798,8 +926,11 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
     >>> split_tiles(reg, guard_sections=2, seed=0)["role"].value_counts().sort_index().to_dict()
     {'guard': 1, 'test': 1, 'train': 6, 'validation': 2}
     """
-    table = validate_registry(registry.drop(columns=["role"], errors="ignore")
-                              if isinstance(registry, pd.DataFrame) else registry)
+    table = validate_registry(
+        registry.drop(columns=["role"], errors="ignore")
+        if isinstance(registry, pd.DataFrame)
+        else registry
+    )
     try:
         fr = [float(f) for f in fractions]
     except (TypeError, ValueError):
@@ -807,12 +938,13 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
     if len(fr) != 3 or min(fr) < 0 or not np.isfinite(fr).all() or abs(sum(fr) - 1) > 1e-6:
         raise TesseraInputError(
             f"fractions (train, validation, test) must be three numbers >= 0 summing to 1, got "
-            f"{fractions!r}")
+            f"{fractions!r}"
+        )
     guard = _as_int(guard_sections, low=0, where="guard_sections", source=None)
     seed = _as_int(seed, low=0, where="seed", source=None)
     roles = pd.Series("", index=table.index, dtype=object)
     for (dataset, target), group in table.groupby(["dataset", "target"], sort=True):
-        key = zlib.crc32(f"{dataset}\t{target}".encode("utf-8"))
+        key = zlib.crc32(f"{dataset}\t{target}".encode())
         rng = np.random.default_rng([seed, key])
         descending = bool(rng.integers(2))
         test_first = bool(rng.integers(2))
@@ -840,8 +972,12 @@ def _split_group(z, fr, guard, descending, test_first):
             j = int(np.searchsorted(levels, levels[i - 1] + max(guard, 1), side="left"))
         n_held = int(per_level[j:].sum())
         dropped = n - n_train - n_held
-        score = (abs(n_train - want_train) + abs(n_held - (n - want_train)), dropped,
-                 abs(n_train - want_train), i)
+        score = (
+            abs(n_train - want_train) + abs(n_held - (n - want_train)),
+            dropped,
+            abs(n_train - want_train),
+            i,
+        )
         if best is None or score < best[0]:
             best = (score, i, j)
     _, i, j = best
@@ -873,8 +1009,9 @@ def write_split(path, registry):
     """
     table = validate_registry(registry, source="registry")
     if "role" not in table.columns:
-        raise TesseraInputError("the registry has no 'role' column; run split_tiles first",
-                                source="registry")
+        raise TesseraInputError(
+            "the registry has no 'role' column; run split_tiles first", source="registry"
+        )
     with atomic_path(path) as tmp:
         table.to_csv(tmp, sep="\t", index=False)
 
@@ -913,8 +1050,10 @@ def tile_slices(row, *, halo=0, shape=None):
     """
     get = row.get if hasattr(row, "get") else (lambda k: getattr(row, k))
     try:
-        z, y0, x0, h, w = (_as_int(get(k), low=0, where=k, source=None)
-                           for k in ("z", "y0", "x0", "height", "width"))
+        z, y0, x0, h, w = (
+            _as_int(get(k), low=0, where=k, source=None)
+            for k in ("z", "y0", "x0", "height", "width")
+        )
     except (AttributeError, KeyError):
         raise TesseraInputError("a tile row needs z, y0, x0, height and width") from None
     halo = _as_int(halo, low=0, where="halo", source=None)
@@ -923,13 +1062,14 @@ def tile_slices(row, *, halo=0, shape=None):
         shape = tuple(int(s) for s in shape)
         if len(shape) == 3:
             if z >= shape[0]:
-                raise TesseraInputError(f"tile section z={z} is outside the image of shape "
-                                        f"{shape}")
+                raise TesseraInputError(f"tile section z={z} is outside the image of shape {shape}")
             shape = shape[1:]
         ny, nx = shape
         if y0 + h > ny or x0 + w > nx:
-            raise TesseraInputError(f"tile rows {y0}..{y0 + h - 1}, columns {x0}..{x0 + w - 1} "
-                                    f"reach outside the section of shape {shape}")
+            raise TesseraInputError(
+                f"tile rows {y0}..{y0 + h - 1}, columns {x0}..{x0 + w - 1} "
+                f"reach outside the section of shape {shape}"
+            )
     ya, xa = y0 - halo, x0 - halo
     yb, xb = y0 + h + halo, x0 + w + halo
     pad_y = (max(0, -ya), 0 if ny is None else max(0, yb - ny))
@@ -962,11 +1102,13 @@ def _as_int(value, *, low, where, source):
     else:
         ok = False
     if not ok:
-        raise TesseraInputError(f"{where}: expected a whole number >= {low}, got {value!r}",
-                                source=source)
+        raise TesseraInputError(
+            f"{where}: expected a whole number >= {low}, got {value!r}", source=source
+        )
     if number < low:
-        raise TesseraInputError(f"{where}: expected a whole number >= {low}, got {number}",
-                                source=source)
+        raise TesseraInputError(
+            f"{where}: expected a whole number >= {low}, got {number}", source=source
+        )
     return number
 
 
@@ -977,8 +1119,9 @@ def _check_factors(factors):
     except (TypeError, ValueError):
         ok = False
     if not ok:
-        raise TesseraInputError(f"factors must be three whole numbers >= 1 (z, y, x), got "
-                                f"{factors!r}")
+        raise TesseraInputError(
+            f"factors must be three whole numbers >= 1 (z, y, x), got {factors!r}"
+        )
     return out
 
 
@@ -988,8 +1131,7 @@ def _read_tsv(path):
     try:
         return pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise TesseraInputError(f"not a readable tab-separated table: {exc}",
-                                source=path) from None
+        raise TesseraInputError(f"not a readable tab-separated table: {exc}", source=path) from None
 
 
 def _read_image(path):
@@ -1016,22 +1158,27 @@ def _to_grey(array, *, source):
         if not (colour == colour[..., :1]).all():
             raise TesseraInputError(
                 "colour pixels found; save the mask as greyscale (or with equal red, green and "
-                "blue values)", source=source)
+                "blue values)",
+                source=source,
+            )
         if alpha is not None and not (alpha == np.iinfo(alpha.dtype).max).all():
             raise TesseraInputError(
                 "transparent pixels found; flatten the image (no alpha) before saving",
-                source=source)
+                source=source,
+            )
         array = colour[..., 0]
     if array.ndim != 2:
-        raise TesseraInputError(f"expected a single 2D greyscale image, got shape {array.shape}",
-                                source=source)
+        raise TesseraInputError(
+            f"expected a single 2D greyscale image, got shape {array.shape}", source=source
+        )
     return array
 
 
 def _check_label_dict(table, labels):
     if not isinstance(labels, dict):
-        raise TesseraInputError(f"labels must be a dict tile_id -> array, got "
-                                f"{type(labels).__name__}")
+        raise TesseraInputError(
+            f"labels must be a dict tile_id -> array, got {type(labels).__name__}"
+        )
     extra = sorted(set(labels) - set(table["tile_id"]))
     if extra:
         raise TesseraInputError(f"labels for tiles not in the registry: {extra}")
@@ -1043,12 +1190,14 @@ def _check_label_dict(table, labels):
         if array.dtype != np.uint8 or array.shape != (row.height, row.width):
             raise TesseraInputError(
                 f"label image of tile {row.tile_id!r}: expected uint8 of shape "
-                f"({row.height}, {row.width}), got {array.dtype} of shape {array.shape}")
+                f"({row.height}, {row.width}), got {array.dtype} of shape {array.shape}"
+            )
         unexpected = np.setdiff1d(np.unique(array), [BACKGROUND, TARGET, IGNORE])
         if unexpected.size:
             raise TesseraInputError(
                 f"label image of tile {row.tile_id!r}: unexpected values "
-                f"{unexpected.tolist()}; expected 0, 1 and 255")
+                f"{unexpected.tolist()}; expected 0, 1 and 255"
+            )
         checked[row.tile_id] = array
     return checked
 
@@ -1057,8 +1206,20 @@ def _check_label_dict(table, labels):
 # workflow jobs
 
 
-def sample_tiles_job(labels_path, image_path, qc_table, out_dir, *, dataset, target, downsample, size, count, seed,
-                     exclude_flagged=True):
+def sample_tiles_job(
+    labels_path,
+    image_path,
+    qc_table,
+    out_dir,
+    *,
+    dataset,
+    target,
+    downsample,
+    size,
+    count,
+    seed,
+    exclude_flagged=True,
+):
     """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
 
     The label stack is read whole: full label volumes exist for synthetic and open benchmark
@@ -1072,15 +1233,23 @@ def sample_tiles_job(labels_path, image_path, qc_table, out_dir, *, dataset, tar
         raise TesseraInputError(f"cannot read label volume: {exc}", source=labels_path) from None
     if labels.shape != tuple(info["levels"][0].shape):
         raise TesseraInputError(
-            f"label volume has shape {labels.shape}, the image {tuple(info['levels'][0].shape)}", source=labels_path
+            f"label volume has shape {labels.shape}, the image {tuple(info['levels'][0].shape)}",
+            source=labels_path,
         )
     exclude = []
     if exclude_flagged:
         qc = pd.read_csv(qc_table, sep="\t")
         exclude = [int(z) for z in qc.loc[qc["excluded"].astype(bool), "z"]]
     registry, tile_labels = sample_tiles_from_labels(
-        labels, dataset=dataset, target=target, level=level, factors=info["factors"][level], size=size,
-        count=count, seed=seed, exclude_z=exclude,
+        labels,
+        dataset=dataset,
+        target=target,
+        level=level,
+        factors=info["factors"][level],
+        size=size,
+        count=count,
+        seed=seed,
+        exclude_z=exclude,
     )
     write_annotation_set(out_dir, registry, tile_labels)
     return {"tiles": len(registry), "excluded_sections": exclude, "level": level}
@@ -1094,25 +1263,39 @@ def split_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed):
         registries.append(registry)
         labels.update(tile_labels)
     merged = pd.concat(registries, ignore_index=True)
-    split = split_tiles(merged, fractions=tuple(fractions), guard_sections=guard_sections, seed=seed)
+    split = split_tiles(
+        merged, fractions=tuple(fractions), guard_sections=guard_sections, seed=seed
+    )
     write_annotation_set(out_dir, split, labels)
     return split["role"].value_counts().to_dict()
 
 
-def export_tiles_job(image_path, points_path, out_dir, *, dataset, target, downsample, size, datasets, targets):
+def export_tiles_job(
+    image_path, points_path, out_dir, *, dataset, target, downsample, size, datasets, targets
+):
     """Cut this dataset's tiles of one target from the points sheet, for painting."""
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
     points = read_points(points_path, datasets=datasets, targets=targets)
     mine = points[(points["dataset"] == dataset) & (points["target"] == target)]
     if mine.empty:
-        raise TesseraInputError(f"no points for dataset {dataset!r} and target {target!r}", source=points_path)
-    registry = export_tiles(info["levels"][level], mine, level=level, factors=info["factors"][level], size=size,
-                            out_dir=out_dir)
+        raise TesseraInputError(
+            f"no points for dataset {dataset!r} and target {target!r}", source=points_path
+        )
+    registry = export_tiles(
+        info["levels"][level],
+        mine,
+        level=level,
+        factors=info["factors"][level],
+        size=size,
+        out_dir=out_dir,
+    )
     return {"tiles": len(registry), "level": level}
 
 
-def import_tiles_job(exported_dir, masks_dir, out_dir, *, ignore_value=None, allow_single_class=False):
+def import_tiles_job(
+    exported_dir, masks_dir, out_dir, *, ignore_value=None, allow_single_class=False
+):
     """Read the painted masks of exported tiles and register them as an annotation set."""
     if masks_dir is None or not Path(masks_dir).is_dir():
         raise TesseraInputError(
@@ -1121,7 +1304,8 @@ def import_tiles_job(exported_dir, masks_dir, out_dir, *, ignore_value=None, all
             f"folder named by annotations.painted.masks",
             source=masks_dir,
         )
-    registry, labels = import_painted(exported_dir, masks_dir, ignore_value=ignore_value,
-                                      allow_single_class=allow_single_class)
+    registry, labels = import_painted(
+        exported_dir, masks_dir, ignore_value=ignore_value, allow_single_class=allow_single_class
+    )
     write_annotation_set(out_dir, registry, labels)
     return {"tiles": len(registry)}

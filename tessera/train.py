@@ -65,7 +65,9 @@ def tile_window(level_array, row, halo, neighbours):
     """A tile's image (sections z ± neighbours) with `halo` pixels around it, mirrored beyond the volume."""
     z, y0, x0 = int(row["z"]), int(row["y0"]), int(row["x0"])
     h, w = int(row["height"]), int(row["width"])
-    return mirrored_stack(level_array, z, neighbours, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
+    return mirrored_stack(
+        level_array, z, neighbours, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
+    )
 
 
 def level_arrays(pyramids, registry, *, downsample):
@@ -73,7 +75,9 @@ def level_arrays(pyramids, registry, *, downsample):
     arrays = {}
     for dataset in sorted(set(registry["dataset"])):
         if dataset not in pyramids:
-            raise TesseraInputError(f"tiles name dataset {dataset!r}, which has no image in this study")
+            raise TesseraInputError(
+                f"tiles name dataset {dataset!r}, which has no image in this study"
+            )
         _, info = open_image(pyramids[dataset])
         level = working_level(info["factors"], downsample, source=pyramids[dataset])
         arrays[dataset] = info["levels"][level]
@@ -85,21 +89,46 @@ def _training_tiles(spec, registry, labels, arrays, *, final, train_datasets=Non
     if train_datasets is not None:
         unknown = sorted(set(train_datasets) - set(registry["dataset"]))
         if unknown:
-            raise TesseraInputError(f"train_datasets names dataset(s) {unknown} without annotated tiles")
+            raise TesseraInputError(
+                f"train_datasets names dataset(s) {unknown} without annotated tiles"
+            )
         train = train[train["dataset"].isin(list(train_datasets))]
     if train.empty:
-        raise TesseraInputError("the split has no training tiles; annotate more tiles or change split.fractions")
+        raise TesseraInputError(
+            "the split has no training tiles; annotate more tiles or change split.fractions"
+        )
     folds = assign_folds(train, spec.folds, spec.seed)
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():
         image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
-        tiles.append(prepare_tile(spec, row["tile_id"], image, labels[row["tile_id"]], fold=folds[row["tile_id"]], final=final))
+        tiles.append(
+            prepare_tile(
+                spec,
+                row["tile_id"],
+                image,
+                labels[row["tile_id"]],
+                fold=folds[row["tile_id"]],
+                final=final,
+            )
+        )
     return tiles
 
 
-def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsample, cascade, stage, level, threads=1,
-                   train_datasets=None):
+def train_node_job(
+    annotations,
+    pyramids,
+    upstream,
+    out_path,
+    *,
+    target,
+    downsample,
+    cascade,
+    stage,
+    level,
+    threads=1,
+    train_datasets=None,
+):
     """Train node (stage, level) of a target's cascade and save it.
 
     Parameters
@@ -131,15 +160,32 @@ def train_node_job(annotations, pyramids, upstream, out_path, *, target, downsam
         models[model.node] = model
     for a in ancestors(spec, node)[:-1]:
         if a not in models:
-            raise TesseraInputError(f"node {node} needs the model of node {a}; it was not among the inputs")
-    tiles = _training_tiles(spec, registry, labels, arrays, final=node, train_datasets=train_datasets)
+            raise TesseraInputError(
+                f"node {node} needs the model of node {a}; it was not among the inputs"
+            )
+    tiles = _training_tiles(
+        spec, registry, labels, arrays, final=node, train_datasets=train_datasets
+    )
     model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
     save_node(model, out_path)  # atomic
-    return {"node": list(node), "training_tiles": len(tiles), "training_pixels": model.meta["training_pixels"]}
+    return {
+        "node": list(node),
+        "training_tiles": len(tiles),
+        "training_pixels": model.meta["training_pixels"],
+    }
 
 
-def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out_table, *, target, downsample,
-                      output_sigma=0.0):
+def predict_tiles_job(
+    annotations,
+    pyramids,
+    model_paths,
+    out_probabilities,
+    out_table,
+    *,
+    target,
+    downsample,
+    output_sigma=0.0,
+):
     """Predict the validation and test tiles with the finished cascade; score them.
 
     The threshold is the one with the best F1 on the validation tiles; test scores use it.
@@ -159,7 +205,9 @@ def predict_tiles_job(annotations, pyramids, model_paths, out_probabilities, out
     for _, row in held.iterrows():
         image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
         core = (int(row["height"]), int(row["width"]))
-        probabilities[row["tile_id"]] = predict_frame(models, image, core, output_sigma=output_sigma)
+        probabilities[row["tile_id"]] = predict_frame(
+            models, image, core, output_sigma=output_sigma
+        )
     table = score_tiles(held, labels, probabilities)
     with atomic_path(out_probabilities) as tmp:
         with open(tmp, "wb") as fh:
@@ -205,6 +253,12 @@ def score_tiles(registry, labels, probabilities, *, thresholds=np.linspace(0.01,
     for role in ("validation", "test"):
         p, t = pooled(role)
         if p is not None:
-            rows.append({"role": role, "tiles": int((registry["role"] == role).sum()), "threshold": float(best),
-                         **_pixel_scores(p, t, best)})
+            rows.append(
+                {
+                    "role": role,
+                    "tiles": int((registry["role"] == role).sum()),
+                    "threshold": float(best),
+                    **_pixel_scores(p, t, best),
+                }
+            )
     return pd.DataFrame(rows)

@@ -29,7 +29,9 @@ def vnc_sstem():
 @pytest.fixture(scope="session")
 def new_tiny_study():
     """A function writing the tiny test study's config and sheet into a new folder; returns it."""
-    spec = importlib.util.spec_from_file_location("tessera_test_workflow", REPO / "tests" / "test_workflow.py")
+    spec = importlib.util.spec_from_file_location(
+        "tessera_test_workflow", REPO / "tests" / "test_workflow.py"
+    )
     tiny = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(tiny)
 
@@ -47,7 +49,10 @@ def file_digests():
     """A function giving the SHA-256 of every file below a folder, by path relative to it."""
 
     def digests(folder):
-        return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
-                for p in sorted(folder.rglob("*")) if p.is_file()}
+        return {
+            p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*"))
+            if p.is_file()
+        }
 
     return digests

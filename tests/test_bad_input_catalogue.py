@@ -61,8 +61,12 @@ def test_each_row_names_a_test_that_exists_and_quotes_its_message(row):
         path = REPO / file
         assert path.is_file(), f"{what!r}: {file} does not exist"
         source = path.read_text(encoding="utf-8")
-        assert re.search(rf"^def {function}\(", source, flags=re.M), f"{what!r}: {file} defines no {function}"
+        assert re.search(rf"^def {function}\(", source, flags=re.M), (
+            f"{what!r}: {file} defines no {function}"
+        )
         sources.append(source.replace("\\", ""))  # regular-expression escapes aside
     pieces = stretches(message)
     assert pieces, f"{what!r}: the quoted message is all placeholders"
-    assert any(p in source for p in pieces for source in sources), f"{what!r}: none of {pieces} appears in {references}"
+    assert any(p in source for p in pieces for source in sources), (
+        f"{what!r}: none of {pieces} appears in {references}"
+    )

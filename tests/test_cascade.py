@@ -23,8 +23,15 @@ from tessera.cascade.model import (
 )
 from tessera.errors import TesseraInputError
 
-SMALL = dict(sigmas=(1.0, 2.0), coarse_sigmas=(1.0,), stencil_radii=(1, 2, 4), classifier="mlp",
-             samples_per_tile=600, folds=2, seed=3)
+SMALL = dict(
+    sigmas=(1.0, 2.0),
+    coarse_sigmas=(1.0,),
+    stencil_radii=(1, 2, 4),
+    classifier="mlp",
+    samples_per_tile=600,
+    folds=2,
+    seed=3,
+)
 
 
 def blobs(seed, shape=(96, 96)):
@@ -92,7 +99,9 @@ def test_block_prediction_equals_whole_image(trained):
         for y0 in range(0, 80, block):
             for x0 in range(0, 72, block):
                 h, w = min(block, 80 - y0), min(block, 72 - x0)
-                window = mirrored_window(volume, 0, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo)
+                window = mirrored_window(
+                    volume, 0, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
+                )
                 stitched[y0 : y0 + h, x0 : x0 + w] = predict_frame(models, window, (h, w))
         np.testing.assert_allclose(stitched, whole, atol=1e-6)
 
@@ -136,7 +145,9 @@ def test_saved_nodes_load_without_pickle_and_predict_the_same(trained, tmp_path)
     for node in nodes(spec):
         path = tmp_path / f"{node}.npz"
         save_node(models[node], path)
-        with np.load(path, allow_pickle=False) as data:  # would raise if an object array were inside
+        with np.load(
+            path, allow_pickle=False
+        ) as data:  # would raise if an object array were inside
             assert all(data[k].dtype != object for k in data.files)
         loaded[node] = load_node(path, target="blobs", spec=spec, stage=node[0], level=node[1])
     image, _ = blobs(103)
@@ -158,7 +169,9 @@ def test_model_made_for_something_else_is_refused(trained, tmp_path):
         load_node(truncated)
     foreign = tmp_path / "foreign.npz"
     np.savez(foreign, weights=np.zeros(3))
-    with pytest.raises(TesseraInputError, match=r"foreign\.npz: not a tessera model file \(no metadata\)"):
+    with pytest.raises(
+        TesseraInputError, match=r"foreign\.npz: not a tessera model file \(no metadata\)"
+    ):
         load_node(foreign)
 
 
@@ -179,10 +192,12 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
     else:  # one bit inside the compressed members (zip keeps a CRC-32 per member; we a SHA-256)
         data = _flip(data, len(data) // 2 if damage == "bit-flip" else 200)
     path.write_bytes(data)
-    with pytest.raises(TesseraInputError, match=r"rerun rule train_node to rebuild it \(delete the file, or snakemake --forcerun train_node\)") as error:
+    with pytest.raises(
+        TesseraInputError,
+        match=r"rerun rule train_node to rebuild it \(delete the file, or snakemake --forcerun train_node\)",
+    ) as error:
         load_node(path, target="blobs")
     assert str(error.value).startswith(f"{path}: ")
-
 
 
 def _saved_arrays(trained, path):
@@ -191,16 +206,24 @@ def _saved_arrays(trained, path):
     with np.load(path, allow_pickle=False) as data:
         return path, {k: data[k] for k in data.files}
 
+
 def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
     # a well-formed .npz (numpy writes it afresh, so every zip CRC is right) whose weights differ
     # from the ones trained: only the SHA-256 recorded at write time can tell
     path, arrays = _saved_arrays(trained, tmp_path / "m.npz")
-    name = next(k for k in sorted(arrays) if k != "meta_json" and arrays[k].dtype.kind == "f" and arrays[k].size)
+    name = next(
+        k
+        for k in sorted(arrays)
+        if k != "meta_json" and arrays[k].dtype.kind == "f" and arrays[k].size
+    )
     arrays[name] = arrays[name].copy()
     arrays[name].flat[0] += 1.0
     np.savez_compressed(path, **arrays)
-    with pytest.raises(TesseraInputError, match=r"m\.npz: model content does not match the SHA-256 recorded when it "
-                                                r"was written .*rerun rule train_node"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"m\.npz: model content does not match the SHA-256 recorded when it "
+        r"was written .*rerun rule train_node",
+    ):
         load_node(path, target="blobs")
 
 
@@ -214,7 +237,10 @@ def test_model_of_another_format_version_is_refused(trained, tmp_path):
     meta["format"] = 1
     arrays["meta_json"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
     np.savez_compressed(path, **arrays)
-    with pytest.raises(TesseraInputError, match=r"old\.npz: model format 1 is not 2 \(made by tessera .*\); retrain it"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"old\.npz: model format 1 is not 2 \(made by tessera .*\); retrain it",
+    ):
         load_node(path, target="blobs")
 
 
@@ -244,8 +270,11 @@ def test_model_file_carrying_a_pickled_object_is_refused_without_running_it(trai
     with np.load(control, allow_pickle=True) as data:
         data["clf0__extra"]
     assert (tmp_path / "control-ran").is_dir()  # the payload is live
-    with pytest.raises(TesseraInputError, match=r"crafted\.npz: array 'clf0__extra' cannot be read as plain numbers"
-                                                r".*never unpickled"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"crafted\.npz: array 'clf0__extra' cannot be read as plain numbers"
+        r".*never unpickled",
+    ):
         load_node(crafted, target="blobs")
     assert not (tmp_path / "ran").exists()
 
@@ -253,7 +282,10 @@ def test_model_file_carrying_a_pickled_object_is_refused_without_running_it(trai
 def test_too_few_tiles_for_the_folds_is_refused():
     spec = CascadeSpec(stages=1, levels=0, **{**SMALL, "folds": 3})
     tiles = make_tiles(spec, count=2)
-    with pytest.raises(TesseraInputError, match=r"folds \[0, 1\]; out-of-fold context needs tiles in each of the 3 folds"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"folds \[0, 1\]; out-of-fold context needs tiles in each of the 3 folds",
+    ):
         fit_cascade(spec, tiles)
 
 
@@ -261,7 +293,13 @@ def test_single_class_training_is_refused():
     spec = CascadeSpec(stages=1, levels=0, **SMALL)
     radius = receptive_radius(spec)
     tiles = [
-        prepare_tile(spec, f"b{i}", np.zeros((32 + 2 * radius,) * 2, np.float32), np.zeros((32, 32), np.uint8), fold=i % 2)
+        prepare_tile(
+            spec,
+            f"b{i}",
+            np.zeros((32 + 2 * radius,) * 2, np.float32),
+            np.zeros((32, 32), np.uint8),
+            fold=i % 2,
+        )
         for i in range(2)
     ]
     with pytest.raises(TesseraInputError, match="training tiles hold only class 0"):
@@ -285,7 +323,13 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
     from tessera.cascade.model import mirrored_stack
 
     tiles = [
-        prepare_tile(spec, f"z{z}", mirrored_stack(volume, z, 1, -radius, 96 + radius, -radius, 96 + radius), truth[z], fold=z % 2)
+        prepare_tile(
+            spec,
+            f"z{z}",
+            mirrored_stack(volume, z, 1, -radius, 96 + radius, -radius, 96 + radius),
+            truth[z],
+            fold=z % 2,
+        )
         for z in range(3)
     ]
     models = fit_cascade(spec, tiles)
@@ -293,4 +337,6 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
     for z in (0, 1):  # z = 0 reads a mirrored neighbour beyond the stack
         whole = predict_section(models, volume, z)
         window = mirrored_stack(volume, z, 1, 32 - radius, 64 + radius, 16 - radius, 48 + radius)
-        np.testing.assert_allclose(predict_frame(models, window, (32, 32)), whole[32:64, 16:48], atol=1e-6)
+        np.testing.assert_allclose(
+            predict_frame(models, window, (32, 32)), whole[32:64, 16:48], atol=1e-6
+        )

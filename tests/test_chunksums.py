@@ -31,7 +31,9 @@ def ingested(tmp_path, volume):
     """An ingest store at the path the workflow gives it, chunks of 1 x 16 x 16 (4 x 3 x 3 files)."""
     tifffile.imwrite(tmp_path / "stack.tif", volume, photometric="minisblack")
     store = tmp_path / "results" / "d1" / "ingest" / "raw.ome.zarr"
-    ingest_stack(tmp_path / "stack.tif", store, fmt="tiff_stack", spacing=SPACING, chunks=(1, 16, 16))
+    ingest_stack(
+        tmp_path / "stack.tif", store, fmt="tiff_stack", spacing=SPACING, chunks=(1, 16, 16)
+    )
     return store
 
 
@@ -49,15 +51,25 @@ def flip_byte(path, offset=None):
 def test_every_file_is_recorded_with_its_sha256(ingested):
     manifest = json.loads((ingested / "0" / MANIFEST).read_text())
     files = sorted(p for p in (ingested / "0").rglob("*") if p.is_file() and p.name != MANIFEST)
-    assert len(files) == 1 + 4 * 3 * 3  # zarr.json and every chunk (random data: none is all fill value)
-    assert sorted(manifest["files"]) == sorted(p.relative_to(ingested / "0").as_posix() for p in files)
+    assert (
+        len(files) == 1 + 4 * 3 * 3
+    )  # zarr.json and every chunk (random data: none is all fill value)
+    assert sorted(manifest["files"]) == sorted(
+        p.relative_to(ingested / "0").as_posix() for p in files
+    )
     for path in files:
         entry = manifest["files"][path.relative_to(ingested / "0").as_posix()]
         # reference: hashlib's SHA-256 of the whole file and the size os.stat reports
-        assert entry == {"bytes": os.stat(path).st_size, "sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
+        assert entry == {
+            "bytes": os.stat(path).st_size,
+            "sha256": hashlib.sha256(path.read_bytes()).hexdigest(),
+        }
     assert manifest["groups"] == {
-        "zarr.json": {"bytes": os.stat(ingested / "zarr.json").st_size,
-                      "sha256": hashlib.sha256((ingested / "zarr.json").read_bytes()).hexdigest()}}
+        "zarr.json": {
+            "bytes": os.stat(ingested / "zarr.json").st_size,
+            "sha256": hashlib.sha256((ingested / "zarr.json").read_bytes()).hexdigest(),
+        }
+    }
 
 
 def test_intact_store_reads_back_unchanged(ingested, volume):
@@ -72,15 +84,21 @@ def test_manifests_are_invisible_to_zarr(ingested):
         warnings.simplefilter("always")
         members = dict(zarr.open_group(str(ingested), mode="r").members(max_depth=None))
     assert sorted(members) == ["0"]
-    assert [str(w.message) for w in caught if issubclass(w.category, zarr.errors.ZarrUserWarning)
-            and MANIFEST in str(w.message)] == []
+    assert [
+        str(w.message)
+        for w in caught
+        if issubclass(w.category, zarr.errors.ZarrUserWarning) and MANIFEST in str(w.message)
+    ] == []
 
 
 @pytest.mark.parametrize(
     ("damage", "message"),
     [
         (flip_byte, r"does not match its recorded SHA-256 \(altered or damaged\)"),
-        (lambda p: p.write_bytes(p.read_bytes()[:-3]), r"has \d+ bytes, \d+ were recorded \(truncated or damaged\)"),
+        (
+            lambda p: p.write_bytes(p.read_bytes()[:-3]),
+            r"has \d+ bytes, \d+ were recorded \(truncated or damaged\)",
+        ),
         (os.remove, "file recorded when the store was written is missing"),
     ],
     ids=["bit-flip", "truncated", "deleted"],
@@ -120,20 +138,26 @@ def test_a_chunk_added_after_writing_is_refused(tmp_path):
     shutil.copy(chunk(store, 0, 0, 0, 0), chunk(store, 0, 1, 0, 0))
     _, info = open_image(store)
     np.testing.assert_array_equal(info["levels"][0][0], data[0])
-    with pytest.raises(TesseraInputError, match=r"not recorded when the store was written.*rerun rule pyramid"):
+    with pytest.raises(
+        TesseraInputError, match=r"not recorded when the store was written.*rerun rule pyramid"
+    ):
         info["levels"][0][1]
 
 
 def test_altered_metadata_is_refused_when_the_image_opens(ingested):
     meta = ingested / "zarr.json"
     meta.write_text(meta.read_text().replace("40.0", "50.0"))  # another z spacing, still valid JSON
-    with pytest.raises(TesseraInputError, match=r"zarr\.json: file does not match its recorded SHA-256"):
+    with pytest.raises(
+        TesseraInputError, match=r"zarr\.json: file does not match its recorded SHA-256"
+    ):
         open_image(ingested)
 
 
 def test_damaged_manifest_is_refused(ingested):
     (ingested / "0" / MANIFEST).write_text("{not json")
-    with pytest.raises(TesseraInputError, match=r"tessera-checksums\.json: checksum manifest is damaged"):
+    with pytest.raises(
+        TesseraInputError, match=r"tessera-checksums\.json: checksum manifest is damaged"
+    ):
         open_image(ingested)[1]["levels"][0][0]
 
 
@@ -142,11 +166,16 @@ def test_store_without_manifest_is_refused_unless_given_as_input(tmp_path, volum
     group = zarr.open_group(str(store), mode="w", zarr_format=3)
     group.attrs["ome"] = multiscale_attrs(name="p", spacing=SPACING, factors=[(1, 1, 1)])
     group.create_array("0", data=volume, chunks=(1, 16, 16), dimension_names=AXES)
-    with pytest.raises(TesseraInputError, match=r"zarr\.json: no checksum manifest .* older tessera version or by "
-                                                r"hand; rerun rule stitch to rebuild"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"zarr\.json: no checksum manifest .* older tessera version or by "
+        r"hand; rerun rule stitch to rebuild",
+    ):
         open_image(store)
     # an image given as input (the sheet's zarr format) is read; records are checked where present
-    np.testing.assert_array_equal(open_image(store, checksums="if-present")[1]["levels"][0][:], volume)
+    np.testing.assert_array_equal(
+        open_image(store, checksums="if-present")[1]["levels"][0][:], volume
+    )
 
 
 def test_pyramid_keeps_the_ingest_records_of_its_hard_linked_level0(ingested, tmp_path):
@@ -158,8 +187,11 @@ def test_pyramid_keeps_the_ingest_records_of_its_hard_linked_level0(ingested, tm
     # a bit flip on disk damages both stores (one file): the pyramid's reader says where it came from
     flip_byte(chunk(pyramid, 0, 0, 0, 0))
     _, info = open_image(pyramid)
-    with pytest.raises(TesseraInputError, match=r"rerun rule pyramid .*hard-linked from .*ingest/raw\.ome\.zarr.*"
-                                                r"rerun rule ingest first"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"rerun rule pyramid .*hard-linked from .*ingest/raw\.ome\.zarr.*"
+        r"rerun rule ingest first",
+    ):
         info["levels"][0][0]
     assert info["levels"][2][:].shape == (4, 10, 12)  # other levels are unaffected
 
@@ -168,19 +200,30 @@ def test_pyramid_refuses_a_damaged_ingest_store_and_keeps_its_previous_output(in
     pyramid = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
     build_pyramid(ingested, pyramid, levels=1)
     before = sorted(p.relative_to(pyramid) for p in pyramid.rglob("*"))
-    os.replace(chunk(ingested, 0, 3, 2, 2), tmp_path / "moved")  # a new inode: the old pyramid is intact
-    with pytest.raises(TesseraInputError, match=r"ingest/raw\.ome\.zarr/0/c/3/2/2: file recorded when the store was written is missing"):
+    os.replace(
+        chunk(ingested, 0, 3, 2, 2), tmp_path / "moved"
+    )  # a new inode: the old pyramid is intact
+    with pytest.raises(
+        TesseraInputError,
+        match=r"ingest/raw\.ome\.zarr/0/c/3/2/2: file recorded when the store was written is missing",
+    ):
         build_pyramid(ingested, pyramid, levels=1)
     assert sorted(p.relative_to(pyramid) for p in pyramid.rglob("*")) == before
-    assert [p.name for p in pyramid.parent.iterdir()] == ["raw.ome.zarr"]  # no temporary left behind
+    assert [p.name for p in pyramid.parent.iterdir()] == [
+        "raw.ome.zarr"
+    ]  # no temporary left behind
 
 
 def test_record_checksums_refuses_a_linked_array_without_records(tmp_path, volume):
     source = tmp_path / "source.zarr"
-    zarr.open_group(str(source), mode="w", zarr_format=3).create_array("0", data=volume, chunks=(1, 16, 16))
+    zarr.open_group(str(source), mode="w", zarr_format=3).create_array(
+        "0", data=volume, chunks=(1, 16, 16)
+    )
     copy = tmp_path / "copy.zarr"
     shutil.copytree(source, copy)
-    with pytest.raises(TesseraInputError, match=r"source\.zarr/0/tessera-checksums\.json: no checksum manifest"):
+    with pytest.raises(
+        TesseraInputError, match=r"source\.zarr/0/tessera-checksums\.json: no checksum manifest"
+    ):
         record_checksums(copy, linked={"0": source})
 
 
@@ -203,7 +246,9 @@ def test_store_rule_names_the_rule_whose_output_the_store_is(repo):
 
     found = {}
     for smk in sorted((repo / "rules").glob("*.smk")):
-        for name, body in re.findall(r"^rule (\w+):\n((?:[ \t]+.*\n|\n)*)", smk.read_text(), flags=re.M):
+        for name, body in re.findall(
+            r"^rule (\w+):\n((?:[ \t]+.*\n|\n)*)", smk.read_text(), flags=re.M
+        ):
             output = body.split("output:", 1)[1] if "output:" in body else ""
             for path in re.findall(r'directory\("([^"]+\.ome\.zarr)"\)', output):
                 found[path] = name

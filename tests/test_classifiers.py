@@ -165,9 +165,14 @@ def test_mlp_forward_matches_sklearn(fitted):
 def _ldnn_state(weights, bias, mean, scale, n_groups, n_per_group):
     arrays = {"mean": mean, "scale": scale, "weights": weights, "bias": bias}
     arrays = {k: np.asarray(v, dtype=np.float32) for k, v in arrays.items()}
-    meta = {"format": C.STATE_FORMAT, "format_version": C.STATE_VERSION, "kind": "ldnn",
-            "seed": 0, "n_features": weights.shape[0],
-            "options": {"n_groups": n_groups, "n_per_group": n_per_group}}
+    meta = {
+        "format": C.STATE_FORMAT,
+        "format_version": C.STATE_VERSION,
+        "kind": "ldnn",
+        "seed": 0,
+        "n_features": weights.shape[0],
+        "options": {"n_groups": n_groups, "n_per_group": n_per_group},
+    }
     return arrays, meta
 
 
@@ -273,8 +278,17 @@ def _tamper(arrays, meta, how):
     return arrays, meta
 
 
-TAMPERING = ["missing array", "extra array", "wrong shape", "wrong dtype", "object array",
-             "unknown kind", "feature count", "format", "unknown option"]
+TAMPERING = [
+    "missing array",
+    "extra array",
+    "wrong shape",
+    "wrong dtype",
+    "object array",
+    "unknown kind",
+    "feature count",
+    "format",
+    "unknown option",
+]
 
 
 @pytest.mark.parametrize("how", TAMPERING)

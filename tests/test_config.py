@@ -24,7 +24,12 @@ def shipped_config(repo):
 def test_shipped_config_and_sheet_validate(repo, schemas, shipped_config):
     config = load_config(shipped_config, schemas / "config.schema.yaml")
     assert config["pyramid"]["levels"] == 3 and config["qc"]["exclude_flagged"] is True
-    sheet = load_datasets(repo / config["datasets"], schemas / "datasets.schema.yaml", base_dir=repo, generated_dir="demo/data")
+    sheet = load_datasets(
+        repo / config["datasets"],
+        schemas / "datasets.schema.yaml",
+        base_dir=repo,
+        generated_dir="demo/data",
+    )
     assert list(sheet.index) == ["tn1", "tn2", "tn3", "cd1", "cd2", "cd3"]
     assert set(sheet["condition"]) == {"thermoneutral", "cold"}
     assert sheet_spacing(sheet.loc["tn1"]) == (40.0, 8.0, 8.0)
@@ -32,7 +37,9 @@ def test_shipped_config_and_sheet_validate(repo, schemas, shipped_config):
 
 def test_defaults_are_filled_from_the_schema(schemas):
     target = {"downsample": 2, "annotations": {"labels": "truth/{dataset}.tif"}}
-    config = load_config({"datasets": "x.tsv", "targets": {"mitochondria": target}}, schemas / "config.schema.yaml")
+    config = load_config(
+        {"datasets": "x.tsv", "targets": {"mitochondria": target}}, schemas / "config.schema.yaml"
+    )
     assert config["ingest"]["chunks"] == [1, 512, 512]
     assert config["qc"]["max_flat_fraction"] == 0.1
     assert config["targets"]["mitochondria"]["cascade"]["stages"] == 2
@@ -43,19 +50,52 @@ def test_defaults_are_filled_from_the_schema(schemas):
 @pytest.mark.parametrize(
     ("edit", "message"),
     [
-        (lambda c: c.update(colour="red"), r"key \(top level\): Additional properties are not allowed \('colour'"),
+        (
+            lambda c: c.update(colour="red"),
+            r"key \(top level\): Additional properties are not allowed \('colour'",
+        ),
         (lambda c: c["pyramid"].update(levles=3), r"key pyramid: Additional properties.*'levles'"),
-        (lambda c: c["pyramid"].update(levels=-1), r"key pyramid.levels: -1 is less than the minimum of 0"),
-        (lambda c: c["qc"].update(max_flat_fraction=1.5), r"key qc.max_flat_fraction: 1.5 is greater than the maximum of 1"),
-        (lambda c: c["targets"]["mitochondria"].update(downsample=3), r"key targets.mitochondria.downsample: 3 is not one of"),
-        (lambda c: c["ingest"].update(chunks=[1, 256]), r"key ingest.chunks: \[1, 256\] is too short"),
+        (
+            lambda c: c["pyramid"].update(levels=-1),
+            r"key pyramid.levels: -1 is less than the minimum of 0",
+        ),
+        (
+            lambda c: c["qc"].update(max_flat_fraction=1.5),
+            r"key qc.max_flat_fraction: 1.5 is greater than the maximum of 1",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"].update(downsample=3),
+            r"key targets.mitochondria.downsample: 3 is not one of",
+        ),
+        (
+            lambda c: c["ingest"].update(chunks=[1, 256]),
+            r"key ingest.chunks: \[1, 256\] is too short",
+        ),
         (lambda c: c.pop("datasets"), r"'datasets' is a required property"),
-        (lambda c: c["targets"].update({"Bad Name": {"downsample": 2}}), r"key targets: 'Bad Name' does not match"),
-        (lambda c: c["qc"].update(exclude_flagged="yes"), r"key qc.exclude_flagged: 'yes' is not of type 'boolean'"),
-        (lambda c: c["targets"]["mitochondria"]["cascade"].update(stages=0), r"key targets.mitochondria.cascade.stages: 0 is less than the minimum of 1"),
-        (lambda c: c["targets"]["mitochondria"]["cascade"].update(classifier="svm"), r"key targets.mitochondria.cascade.classifier: 'svm' is not one of"),
-        (lambda c: c["targets"]["mitochondria"]["annotations"].update(labels="truth.tif"), r"key targets.mitochondria.annotations.labels: 'truth.tif' does not match"),
-        (lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.5, 0.5]), r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short"),
+        (
+            lambda c: c["targets"].update({"Bad Name": {"downsample": 2}}),
+            r"key targets: 'Bad Name' does not match",
+        ),
+        (
+            lambda c: c["qc"].update(exclude_flagged="yes"),
+            r"key qc.exclude_flagged: 'yes' is not of type 'boolean'",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["cascade"].update(stages=0),
+            r"key targets.mitochondria.cascade.stages: 0 is less than the minimum of 1",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["cascade"].update(classifier="svm"),
+            r"key targets.mitochondria.cascade.classifier: 'svm' is not one of",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["annotations"].update(labels="truth.tif"),
+            r"key targets.mitochondria.annotations.labels: 'truth.tif' does not match",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.5, 0.5]),
+            r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short",
+        ),
     ],
 )
 def test_bad_config_values_name_the_key(schemas, shipped_config, edit, message):
@@ -74,23 +114,30 @@ def test_yaml_is_loaded_safely(tmp_path):
         read_yaml(path)
 
 
-@pytest.mark.parametrize("tag", [
-    "!!python/object:argparse.Namespace {x: 1}",
-    "!!python/object/new:argparse.Namespace {state: {x: 1}}",
-    "!!python/object/apply:os.mkdir ['{marker}']",
-    "!!python/name:os.mkdir",
-    "!!python/tuple [1, 2]",
-])
+@pytest.mark.parametrize(
+    "tag",
+    [
+        "!!python/object:argparse.Namespace {x: 1}",
+        "!!python/object/new:argparse.Namespace {state: {x: 1}}",
+        "!!python/object/apply:os.mkdir ['{marker}']",
+        "!!python/name:os.mkdir",
+        "!!python/tuple [1, 2]",
+    ],
+)
 def test_yaml_python_tags_are_refused_by_our_loader(tmp_path, tag):
     # yaml.safe_load knows only the standard YAML tags (PyYAML documentation, SafeLoader)
     path = tmp_path / "c.yaml"
     path.write_text(f"datasets: {tag.replace('{marker}', str(tmp_path / 'ran'))}\n")
-    with pytest.raises(TesseraInputError, match=r"c\.yaml: not valid YAML.*could not determine a constructor"):
+    with pytest.raises(
+        TesseraInputError, match=r"c\.yaml: not valid YAML.*could not determine a constructor"
+    ):
         read_yaml(path)
     assert not (tmp_path / "ran").exists()
 
 
-def test_config_file_read_by_snakemake_runs_no_code_and_objects_fail_the_schema(tmp_path, schemas, repo):
+def test_config_file_read_by_snakemake_runs_no_code_and_objects_fail_the_schema(
+    tmp_path, schemas, repo
+):
     # Snakemake reads the `configfile:` itself (snakemake.common.configfile, through yte with
     # PyYAML's FullLoader). FullLoader refuses the tags that construct or call objects; the
     # `!!python/name` tag it does resolve yields a reference, which the schema then refuses.
@@ -98,17 +145,24 @@ def test_config_file_read_by_snakemake_runs_no_code_and_objects_fail_the_schema(
     from snakemake_interface_common.exceptions import WorkflowError
 
     marker = tmp_path / "ran"
-    for tag in (f"!!python/object/apply:os.mkdir ['{marker}']", "!!python/object/new:argparse.Namespace {}",
-                "!!python/object:argparse.Namespace {x: 1}"):
+    for tag in (
+        f"!!python/object/apply:os.mkdir ['{marker}']",
+        "!!python/object/new:argparse.Namespace {}",
+        "!!python/object:argparse.Namespace {x: 1}",
+    ):
         path = tmp_path / "c.yaml"
         path.write_text(f"datasets: {tag}\n")
         with pytest.raises(WorkflowError, match="not valid JSON or YAML"):
             load_configfile(str(path))
     assert not marker.exists()
     shipped = (repo / "config" / "config.yaml").read_text()
-    path.write_text(shipped.replace("datasets: config/datasets.tsv", "datasets: !!python/name:os.mkdir"))
+    path.write_text(
+        shipped.replace("datasets: config/datasets.tsv", "datasets: !!python/name:os.mkdir")
+    )
     config = load_configfile(str(path))
-    with pytest.raises(TesseraInputError, match=r"key datasets: <built-in function mkdir> is not of type 'string'"):
+    with pytest.raises(
+        TesseraInputError, match=r"key datasets: <built-in function mkdir> is not of type 'string'"
+    ):
         load_config(config, schemas / "config.schema.yaml")
     assert not marker.exists()
 
@@ -124,7 +178,11 @@ GOOD = "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"
 
 
 def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
-    sheet = load_datasets(_sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.tif\tmrc\t\t\t\t"), schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    sheet = load_datasets(
+        _sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.tif\tmrc\t\t\t\t"),
+        schemas / "datasets.schema.yaml",
+        base_dir=tmp_path,
+    )
     assert sheet_spacing(sheet.loc["a2"]) == (None, None, None)
     assert sheet.loc["a1", "roi_mask"] is None
 
@@ -133,17 +191,41 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
     ("rows", "message"),
     [
         ([GOOD, GOOD], "dataset ids must be unique; repeated: a1"),
-        (["a 1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: key dataset: 'a 1' does not match"),
-        (["a/1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: key dataset: 'a/1' does not match"),
+        (
+            ["a 1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"row 2: key dataset: 'a 1' does not match",
+        ),
+        (
+            ["a/1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"row 2: key dataset: 'a/1' does not match",
+        ),
         (["a1\t\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column condition is empty"),
         (["a1\tctrl\t\tstack.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column subject is empty"),
         (["a1\tctrl\tm1\tstack.tif\tjpeg\t40\t8\t8\t"], r"row 2: key format: 'jpeg' is not one of"),
-        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t8\t8\t"], r"row 2: key voxel_z_nm: 0.0 is less than or equal to the minimum of 0"),
-        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t-8\t8\t"], r"row 2: key voxel_y_nm: -8.0 is less than or equal"),
-        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\teight\t"], r"row 2, column voxel_x_nm: expected a number in nm, got 'eight'"),
-        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\tnan\t"], r"row 2, column voxel_x_nm: expected a finite number"),
-        (["a1\tctrl\tm1\tmissing.tif\ttiff_stack\t40\t8\t8\t"], r"row 2: column path: file or folder 'missing.tif' not found"),
-        (["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tcells.tif"], r"row 2: column roi_mask: file or folder 'cells.tif' not found"),
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t8\t8\t"],
+            r"row 2: key voxel_z_nm: 0.0 is less than or equal to the minimum of 0",
+        ),
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t-8\t8\t"],
+            r"row 2: key voxel_y_nm: -8.0 is less than or equal",
+        ),
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\teight\t"],
+            r"row 2, column voxel_x_nm: expected a number in nm, got 'eight'",
+        ),
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\tnan\t"],
+            r"row 2, column voxel_x_nm: expected a finite number",
+        ),
+        (
+            ["a1\tctrl\tm1\tmissing.tif\ttiff_stack\t40\t8\t8\t"],
+            r"row 2: column path: file or folder 'missing.tif' not found",
+        ),
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tcells.tif"],
+            r"row 2: column roi_mask: file or folder 'cells.tif' not found",
+        ),
         ([], "the sheet has no dataset rows"),
     ],
 )
@@ -156,7 +238,9 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
 
 def test_unknown_sheet_column_is_refused(tmp_path, schemas):
     path = _sheet(tmp_path, GOOD + "\tx", header=HEADER + "\tcolour")
-    with pytest.raises(TesseraInputError, match=r"row 2: key \(top level\): Additional properties.*'colour'"):
+    with pytest.raises(
+        TesseraInputError, match=r"row 2: key \(top level\): Additional properties.*'colour'"
+    ):
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
 
 
@@ -167,7 +251,9 @@ def test_missing_sheet_is_named(tmp_path, schemas):
 
 def test_demo_paths_need_not_exist_yet(tmp_path, schemas):
     path = _sheet(tmp_path, "d1\tctrl\tm1\tdemo/data/d1/raw.tif\ttiff_stack\t40\t8\t8\t")
-    sheet = load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path, generated_dir="demo/data")
+    sheet = load_datasets(
+        path, schemas / "datasets.schema.yaml", base_dir=tmp_path, generated_dir="demo/data"
+    )
     assert list(sheet.index) == ["d1"]
 
 
@@ -213,9 +299,11 @@ def _outside_message(column, cell, resolved):
     import os
     import re
 
-    return rf"datasets\.tsv, row 2, column {column}: {re.escape(repr(cell))} resolves to " \
-           rf"'{re.escape(os.path.realpath(resolved))}', outside the allowed data roots \[.*\]; add its folder to " \
-           r"data_roots in config/config\.yaml"
+    return (
+        rf"datasets\.tsv, row 2, column {column}: {re.escape(repr(cell))} resolves to "
+        rf"'{re.escape(os.path.realpath(resolved))}', outside the allowed data roots \[.*\]; add its folder to "
+        r"data_roots in config/config\.yaml"
+    )
 
 
 @pytest.mark.parametrize("kind", ["dotdot", "absolute", "symlink", "roi_mask"])
@@ -223,8 +311,12 @@ def test_sheet_paths_outside_the_data_roots_are_refused(layout, schemas, kind):
     project, outside = layout
     if kind == "symlink":  # a link inside the project whose target lies elsewhere
         (project / "data").symlink_to(outside, target_is_directory=True)
-    cell = {"dotdot": "../mnt/em/stack.tif", "absolute": str(outside / "stack.tif"),
-            "symlink": "data/stack.tif", "roi_mask": "stack.tif"}[kind]
+    cell = {
+        "dotdot": "../mnt/em/stack.tif",
+        "absolute": str(outside / "stack.tif"),
+        "symlink": "data/stack.tif",
+        "roi_mask": "stack.tif",
+    }[kind]
     row = _row("stack.tif", roi="../../etc/passwd") if kind == "roi_mask" else _row(cell)
     sheet = _sheet(project / "config", row)
     column, shown = ("roi_mask", "../../etc/passwd") if kind == "roi_mask" else ("path", cell)
@@ -237,19 +329,25 @@ def test_data_roots_from_the_config_admit_their_folders(layout, schemas, root):
     project, outside = layout
     sheet = _sheet(project / "config", _row(str(outside / "stack.tif")))
     named = str(outside) if root == "absolute" else "../mnt/em"  # relative to the project folder
-    frame = load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project, data_roots=[named])
+    frame = load_datasets(
+        sheet, schemas / "datasets.schema.yaml", base_dir=project, data_roots=[named]
+    )
     assert frame.loc["a1", "path"] == str(outside / "stack.tif")
 
 
 def test_the_sheets_own_folder_is_a_data_root(layout, schemas):
     project, outside = layout
     sheet = _sheet(outside, _row(str(outside / "stack.tif")))  # a sheet kept beside its data
-    assert list(load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project).index) == ["a1"]
+    assert list(load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project).index) == [
+        "a1"
+    ]
 
 
 def test_data_roots_go_through_the_schema(schemas, shipped_config):
     config = copy.deepcopy(shipped_config)
     assert load_config(copy.deepcopy(config), schemas / "config.schema.yaml")["data_roots"] == []
     config["data_roots"] = "/mnt/em"
-    with pytest.raises(TesseraInputError, match=r"key data_roots: '/mnt/em' is not of type 'array'"):
+    with pytest.raises(
+        TesseraInputError, match=r"key data_roots: '/mnt/em' is not of type 'array'"
+    ):
         load_config(config, schemas / "config.schema.yaml")

@@ -69,8 +69,9 @@ def test_dataset_seed_rejects_bad_input(study_seed, name):
 def test_subject_scale_is_condition_scale_times_lognormal_animal_factor():
     assert subject_volume_scale("cd1", "cold", study_seed=5, animal_sd=0.0) == 1.25
     assert subject_volume_scale("tn1", "thermoneutral", study_seed=5, animal_sd=0.0) == 1.0
-    logs = np.log([subject_volume_scale(f"a{i}", "thermoneutral", study_seed=5)
-                   for i in range(600)])
+    logs = np.log(
+        [subject_volume_scale(f"a{i}", "thermoneutral", study_seed=5) for i in range(600)]
+    )
     # Log-normal by definition: log of the factor ~ Normal(0, sd); sd of 600 draws within 10 %.
     assert abs(logs.mean()) < 0.05 * 4 / math.sqrt(600)
     assert logs.std(ddof=1) == pytest.approx(demo.ANIMAL_SD, rel=0.1)
@@ -104,11 +105,19 @@ def test_dtypes_and_shapes(shape):
     assert all(type(v) in (int, float) for v in out["summary"].values())
 
 
-@pytest.mark.parametrize("kwargs", [
-    {"shape": (4, 64, 64)}, {"shape": (8, 64)}, {"spacing": (40.0, 8.0)},
-    {"spacing": (40.0, -8.0, 8.0)}, {"seed": -3}, {"mito_volume_scale": 0.0},
-    {"mito_volume_scale": float("nan")}, {"defects": "yes"},
-])
+@pytest.mark.parametrize(
+    "kwargs",
+    [
+        {"shape": (4, 64, 64)},
+        {"shape": (8, 64)},
+        {"spacing": (40.0, 8.0)},
+        {"spacing": (40.0, -8.0, 8.0)},
+        {"seed": -3},
+        {"mito_volume_scale": 0.0},
+        {"mito_volume_scale": float("nan")},
+        {"defects": "yes"},
+    ],
+)
 def test_bad_input_is_rejected(kwargs):
     args = {"seed": 1, "shape": (8, 64, 64)} | kwargs
     with pytest.raises(TesseraInputError):
@@ -144,8 +153,7 @@ def test_instance_ids_contiguous_and_each_one_connected_component(renders):
             _, count = ndimage.label(lab == i)
             assert count == 1
         nuc = out["nuclei"]
-        assert np.array_equal(np.unique(nuc[nuc > 0]),
-                              np.arange(1, out["summary"]["n_nuclei"] + 1))
+        assert np.array_equal(np.unique(nuc[nuc > 0]), np.arange(1, out["summary"]["n_nuclei"] + 1))
     assert n_seen >= 10
 
 
@@ -220,8 +228,8 @@ def test_default_shape_volume_matches_capsule_formula_and_drift():
     # Published formula: capsule volume = pi r^2 L + 4/3 pi r^3; with r ~ U(100, 200) nm and
     # L ~ U(400, 2000) nm its mean is pi E[r^2] E[L] + 4/3 pi E[r^3]. Branches add a little,
     # bends and voxelisation take a little: allow 15 %.
-    er2 = (200.0 ** 3 - 100.0 ** 3) / (3 * 100.0)
-    er3 = (200.0 ** 4 - 100.0 ** 4) / (4 * 100.0)
+    er2 = (200.0**3 - 100.0**3) / (3 * 100.0)
+    er3 = (200.0**4 - 100.0**4) / (4 * 100.0)
     capsule_um3 = (math.pi * er2 * 1200.0 + 4.0 / 3.0 * math.pi * er3) * 1e-9
     assert _volumes_um3(out["mitochondria"]).mean() == pytest.approx(capsule_um3, rel=0.15)
     # Drift along z: least-squares slope (numpy.polyfit) of the cytoplasm mean per section.
@@ -236,9 +244,17 @@ def test_default_shape_volume_matches_capsule_formula_and_drift():
 
 # --- write_dataset --------------------------------------------------------------------------
 
-WRITE = {"dataset": "cd2", "condition": "cold", "subject": "cd2", "seed": 77,
-         "shape": (14, 224, 224), "mito_volume_scale": 1.25, "tile_size": 96,
-         "tiles_per_target": 5, "heldout_per_target": 3}
+WRITE = {
+    "dataset": "cd2",
+    "condition": "cold",
+    "subject": "cd2",
+    "seed": 77,
+    "shape": (14, 224, 224),
+    "mito_volume_scale": 1.25,
+    "tile_size": 96,
+    "tiles_per_target": 5,
+    "heldout_per_target": 3,
+}
 
 
 @pytest.fixture(scope="module")
@@ -256,9 +272,12 @@ def _read_points(path):
 
 def test_written_stacks_equal_render(written):
     out = render_dataset(seed=77, shape=(14, 224, 224), mito_volume_scale=1.25)
-    for name, key, dtype in (("raw.tif", "raw", np.uint8), ("cells.tif", "cells", np.uint16),
-                             ("truth/mitochondria.tif", "mitochondria", np.uint16),
-                             ("truth/nuclei.tif", "nuclei", np.uint16)):
+    for name, key, dtype in (
+        ("raw.tif", "raw", np.uint8),
+        ("cells.tif", "cells", np.uint16),
+        ("truth/mitochondria.tif", "mitochondria", np.uint16),
+        ("truth/nuclei.tif", "nuclei", np.uint16),
+    ):
         # Reference reader: tifffile; one page per section.
         with tifffile.TiffFile(written / name) as tif:
             assert len(tif.pages) == 14
@@ -292,8 +311,7 @@ def test_points_table_and_heldout_separation(written):
 
 def test_tile_masks_are_0_255_truth_cutouts(written):
     _, rows = _read_points(written / "tiles" / "points.tsv")
-    truth = {t: tifffile.imread(written / "truth" / f"{t}.tif")
-             for t in ("mitochondria", "nuclei")}
+    truth = {t: tifffile.imread(written / "truth" / f"{t}.tif") for t in ("mitochondria", "nuclei")}
     mixed = {"mitochondria": 0, "nuclei": 0}
     for r in rows:
         z, y, x, size = (int(r[k]) for k in ("z", "y", "x", "size"))
@@ -302,7 +320,7 @@ def test_tile_masks_are_0_255_truth_cutouts(written):
         assert set(np.unique(mask)) <= {0, 255}
         y0, x0 = y - size // 2, x - size // 2
         assert y0 >= 0 and x0 >= 0
-        cut = truth[r["target"]][z, y0:y0 + size, x0:x0 + size]
+        cut = truth[r["target"]][z, y0 : y0 + size, x0 : x0 + size]
         np.testing.assert_array_equal(mask == 255, cut > 0)
         mixed[r["target"]] += bool(0 < (mask == 255).mean() < 1)
     # Tiles show the target and background where the volume allows it.
@@ -318,8 +336,11 @@ def test_write_is_deterministic_and_replaces_atomically(tmp_path, written):
     assert [p.name for p in tmp_path.iterdir()] == ["cd2"]  # no temporary sibling left
 
     def digests(root):
-        return {p.relative_to(root).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
-                for p in sorted(root.rglob("*")) if p.is_file()}
+        return {
+            p.relative_to(root).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(root.rglob("*"))
+            if p.is_file()
+        }
 
     assert digests(out_dir) == digests(written)
 
@@ -339,8 +360,9 @@ def test_failed_write_leaves_previous_dataset_and_no_temp(tmp_path, monkeypatch)
     assert [p.name for p in tmp_path.iterdir()] == ["tn1"]
 
 
-@pytest.mark.parametrize("kwargs", [{"tile_size": 512}, {"tiles_per_target": 0},
-                                    {"dataset": "a/b"}, {"condition": ""}])
+@pytest.mark.parametrize(
+    "kwargs", [{"tile_size": 512}, {"tiles_per_target": 0}, {"dataset": "a/b"}, {"condition": ""}]
+)
 def test_write_rejects_bad_options(tmp_path, kwargs):
     with pytest.raises(TesseraInputError):
         write_dataset(tmp_path / "x", **(WRITE | kwargs))

@@ -27,7 +27,14 @@ import pytest
 import tifffile
 
 from tessera.atomic import write_table
-from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, prepare_tile, receptive_radius, save_node
+from tessera.cascade.model import (
+    CascadeSpec,
+    fit_cascade,
+    mirrored_window,
+    prepare_tile,
+    receptive_radius,
+    save_node,
+)
 from tessera.errors import TesseraResourceError
 from tessera.ingest import ingest_stack
 
@@ -108,7 +115,11 @@ def snapshot(folder):
 
 def size_of(path):
     path = Path(path)
-    return path.stat().st_size if path.is_file() else sum(p.stat().st_size for p in path.rglob("*") if p.is_file())
+    return (
+        path.stat().st_size
+        if path.is_file()
+        else sum(p.stat().st_size for p in path.rglob("*") if p.is_file())
+    )
 
 
 def assert_refused_cleanly(write, out, full_disk, *, new_size):
@@ -120,7 +131,9 @@ def assert_refused_cleanly(write, out, full_disk, *, new_size):
     message = str(caught.value)
     assert message.startswith(f"{out}: the disk is full (no space left on device)"), message
     assert "\n" not in message
-    assert budget.failures >= 1 and budget.written > 0  # the write got part-way before the disk filled
+    assert (
+        budget.failures >= 1 and budget.written > 0
+    )  # the write got part-way before the disk filled
     assert snapshot(out.parent) == before
     assert not [p for p in out.parent.rglob("*") if ".partial" in p.name]
 
@@ -130,7 +143,9 @@ def test_table_write_on_full_disk_keeps_the_previous_table(tmp_path, full_disk):
     write_table(out, pd.DataFrame({"id": [1, 2], "volume_um3": [0.5, 0.25]}))
     new = pd.DataFrame({"id": np.arange(5000), "volume_um3": np.linspace(0, 1, 5000)})
     write_table(tmp_path / "probe.tsv", new)
-    assert_refused_cleanly(lambda: write_table(out, new), out, full_disk, new_size=size_of(tmp_path / "probe.tsv"))
+    assert_refused_cleanly(
+        lambda: write_table(out, new), out, full_disk, new_size=size_of(tmp_path / "probe.tsv")
+    )
 
 
 def test_zarr_store_write_on_full_disk_keeps_the_previous_store(tmp_path, full_disk):
@@ -140,11 +155,15 @@ def test_zarr_store_write_on_full_disk_keeps_the_previous_store(tmp_path, full_d
     out = tmp_path / "results" / "raw.ome.zarr"
 
     def ingest(source, target=out):
-        return ingest_stack(tmp_path / source, target, fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 32, 32))
+        return ingest_stack(
+            tmp_path / source, target, fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 32, 32)
+        )
 
     ingest("old.tif")
     ingest("new.tif", tmp_path / "probe.ome.zarr")
-    assert_refused_cleanly(lambda: ingest("new.tif"), out, full_disk, new_size=size_of(tmp_path / "probe.ome.zarr"))
+    assert_refused_cleanly(
+        lambda: ingest("new.tif"), out, full_disk, new_size=size_of(tmp_path / "probe.ome.zarr")
+    )
 
 
 def _small_model(seed):
@@ -166,7 +185,9 @@ def test_model_write_on_full_disk_keeps_the_previous_model(tmp_path, full_disk):
     save_node(_small_model(1), out)
     new = _small_model(2)
     save_node(new, tmp_path / "probe.npz")
-    assert_refused_cleanly(lambda: save_node(new, out), out, full_disk, new_size=size_of(tmp_path / "probe.npz"))
+    assert_refused_cleanly(
+        lambda: save_node(new, out), out, full_disk, new_size=size_of(tmp_path / "probe.npz")
+    )
 
 
 def test_quota_exceeded_is_reported_like_a_full_disk(tmp_path, monkeypatch):
@@ -183,7 +204,9 @@ def test_quota_exceeded_is_reported_like_a_full_disk(tmp_path, monkeypatch):
     with pytest.raises(TesseraResourceError, match=rf"^{out}: the disk quota is exceeded"):
         write_text(out, "new\n")
     monkeypatch.undo()
-    assert out.read_text() == "old\n" and sorted(p.name for p in tmp_path.iterdir()) == ["methods.md"]
+    assert out.read_text() == "old\n" and sorted(p.name for p in tmp_path.iterdir()) == [
+        "methods.md"
+    ]
 
 
 @pytest.fixture
@@ -193,8 +216,12 @@ def mount_namespace(tmp_path):
         pytest.skip("unshare(1) or mount(8) not installed")
     probe = tmp_path / "probe"
     probe.mkdir()
-    result = subprocess.run(["unshare", "-r", "-m", "mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(probe)],
-                            capture_output=True, text=True, timeout=30)
+    result = subprocess.run(
+        ["unshare", "-r", "-m", "mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(probe)],
+        capture_output=True,
+        text=True,
+        timeout=30,
+    )
     if result.returncode != 0:
         pytest.skip(f"no unprivileged mount namespaces here: {result.stderr.strip()}")
 
@@ -249,13 +276,22 @@ def test_real_full_tmpfs(tmp_path, mount_namespace):
     tifffile.imwrite(sources / "old.tif", rng.integers(0, 256, (2, 32, 32), dtype=np.uint8))
     tifffile.imwrite(sources / "new.tif", rng.integers(0, 256, (6, 64, 64), dtype=np.uint8))
     (tmp_path / "script.py").write_text(_ON_TMPFS)
-    command = (f"mount -t tmpfs -o size=1m tmpfs {disk} && "
-               f"{sys.executable} {tmp_path / 'script.py'} {disk} {Path(__file__).parent} {sources}")
-    result = subprocess.run(["unshare", "-r", "-m", "sh", "-c", command], capture_output=True, text=True, timeout=300,
-                            env={**os.environ, "PYTHONPATH": str(REPO)})
+    command = (
+        f"mount -t tmpfs -o size=1m tmpfs {disk} && "
+        f"{sys.executable} {tmp_path / 'script.py'} {disk} {Path(__file__).parent} {sources}"
+    )
+    result = subprocess.run(
+        ["unshare", "-r", "-m", "sh", "-c", command],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env={**os.environ, "PYTHONPATH": str(REPO)},
+    )
     assert result.returncode == 0, result.stderr
     report = json.loads(result.stdout.splitlines()[-1])
     for key, name in (("table", "objects.tsv"), ("store", "raw.ome.zarr"), ("model", "node.npz")):
         error = report[key]["error"]
-        assert error is not None and f"{name}: the disk is full (no space left on device)" in error, report
+        assert (
+            error is not None and f"{name}: the disk is full (no space left on device)" in error
+        ), report
         assert report[key]["unchanged"] and report[key]["leftovers"] == [], report

@@ -32,14 +32,21 @@ def test_conda_environment_pins_match_the_lock(repo):
     for line in pip_section:
         match = PIN.match(line)
         assert match, f"envs/tessera.yaml: {line!r} is not an exact pin"
-        assert lock.get(_canonical(match[1])) == match[2], f"envs/tessera.yaml: {line} disagrees with requirements.lock"
+        assert lock.get(_canonical(match[1])) == match[2], (
+            f"envs/tessera.yaml: {line} disagrees with requirements.lock"
+        )
     python = next(d for d in env["dependencies"] if isinstance(d, str) and d.startswith("python="))
     assert python == f"python={sys.version_info.major}.{sys.version_info.minor}"
 
 
 def test_every_third_party_import_of_the_package_is_locked(repo):
-    import_names = {"yaml": "pyyaml", "skimage": "scikit-image", "sklearn": "scikit-learn", "PIL": "pillow",
-                    "mpl_toolkits": "matplotlib"}  # mplot3d ships inside matplotlib
+    import_names = {
+        "yaml": "pyyaml",
+        "skimage": "scikit-image",
+        "sklearn": "scikit-learn",
+        "PIL": "pillow",
+        "mpl_toolkits": "matplotlib",
+    }  # mplot3d ships inside matplotlib
     lock = _lock(repo)
     stdlib = set(sys.stdlib_module_names)
     for path in (repo / "tessera").rglob("*.py"):
@@ -54,7 +61,9 @@ def test_every_third_party_import_of_the_package_is_locked(repo):
                 top = name.split(".")[0]
                 if top in stdlib or top == "tessera":
                     continue
-                assert _canonical(import_names.get(top, top)) in lock, f"{path.name} imports {top}, not in requirements.lock"
+                assert _canonical(import_names.get(top, top)) in lock, (
+                    f"{path.name} imports {top}, not in requirements.lock"
+                )
 
 
 def test_package_version_is_stated_once(repo):

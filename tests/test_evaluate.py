@@ -8,9 +8,11 @@ from sklearn.metrics import (
     average_precision_score,
     f1_score,
     jaccard_score,
-    precision_recall_curve as sk_precision_recall_curve,
     precision_score,
     recall_score,
+)
+from sklearn.metrics import (
+    precision_recall_curve as sk_precision_recall_curve,
 )
 
 from tessera.errors import TesseraInputError
@@ -56,7 +58,9 @@ def test_precision_recall_curve_and_average_precision_equal_scikit_learn(seed):
     ref = sk_precision_recall_curve(truth, prob)
     for a, b in zip(ours, ref):
         np.testing.assert_allclose(a, b)
-    assert average_precision(ours[0], ours[1]) == pytest.approx(average_precision_score(truth, prob))
+    assert average_precision(ours[0], ours[1]) == pytest.approx(
+        average_precision_score(truth, prob)
+    )
 
 
 def test_partition_errors_equal_scikit_image():
@@ -71,7 +75,9 @@ def test_partition_errors_equal_scikit_image():
     ours = partition_errors(truth, pred)
     error, second, third = adapted_rand_error(truth, pred, ignore_labels=())
     assert ours["adapted_rand_error"] == pytest.approx(error)
-    assert ours["rand_precision"] == pytest.approx(third) and ours["rand_recall"] == pytest.approx(second)
+    assert ours["rand_precision"] == pytest.approx(third) and ours["rand_recall"] == pytest.approx(
+        second
+    )
     split, merge = variation_of_information(truth, pred, ignore_labels=())
     assert (ours["voi_split"], ours["voi_merge"]) == pytest.approx((split, merge))
 
@@ -92,15 +98,28 @@ def test_object_matching_hand_worked():
 
 def test_bootstrap_interval_brackets_the_pooled_value():
     rng = np.random.default_rng(0)
-    counts = np.stack([rng.integers(50, 100, 20), rng.integers(0, 30, 20), rng.integers(0, 30, 20)], 1)
+    counts = np.stack(
+        [rng.integers(50, 100, 20), rng.integers(0, 30, 20), rng.integers(0, 30, 20)], 1
+    )
     f1 = lambda tp, fp, fn: scores_from_counts(tp, fp, fn)["f1"]  # noqa: E731
     low, high = bootstrap_interval(counts, f1, reps=500)
     assert low < f1(*counts.sum(axis=0)) < high and high - low < 0.2
 
 
 def registry(roles):
-    rows = [{"tile_id": f"t{i}", "dataset": "d1" if i % 2 else "d2", "z": i, "y0": 0, "x0": 0, "height": 8,
-             "width": 8, "role": r} for i, r in enumerate(roles)]
+    rows = [
+        {
+            "tile_id": f"t{i}",
+            "dataset": "d1" if i % 2 else "d2",
+            "z": i,
+            "y0": 0,
+            "x0": 0,
+            "height": 8,
+            "width": 8,
+            "role": r,
+        }
+        for i, r in enumerate(roles)
+    ]
     return pd.DataFrame(rows)
 
 
@@ -108,7 +127,10 @@ def test_evaluate_tiles_pools_test_tiles_only():
     rng = np.random.default_rng(1)
     reg = registry(["train", "validation", "validation", "test", "test", "test"])
     labels = {t: (rng.random((8, 8)) < 0.4).astype(np.uint8) for t in reg["tile_id"]}
-    probs = {t: np.clip(labels[t] * 0.7 + rng.random((8, 8)) * 0.5, 0, 1).astype(np.float32) for t in reg["tile_id"]}
+    probs = {
+        t: np.clip(labels[t] * 0.7 + rng.random((8, 8)) * 0.5, 0, 1).astype(np.float32)
+        for t in reg["tile_id"]
+    }
     probs["t0"] = np.zeros((8, 8), np.float32)  # a training tile: must not matter
     summary, per_tile, curve = evaluate_tiles(reg, labels, probs, reps=200)
     assert list(per_tile["tile_id"]) == ["t3", "t4", "t5"]
@@ -122,7 +144,10 @@ def test_evaluate_tiles_pools_test_tiles_only():
 
 def test_missing_test_tiles_and_leakage_are_refused():
     reg = registry(["train", "validation", "train"])
-    with pytest.raises(TesseraInputError, match=r"the target has no test tiles; annotate more tiles or change split\.fractions"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"the target has no test tiles; annotate more tiles or change split\.fractions",
+    ):
         evaluate_tiles(reg, {}, {})
     leaky = registry(["train", "test"])
     leaky.loc[1, ["dataset", "z"]] = ["d2", 0]  # same dataset and section as t0

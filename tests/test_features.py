@@ -3,7 +3,12 @@
 import numpy as np
 import pytest
 from scipy import ndimage
-from skimage.feature import hessian_matrix, hessian_matrix_eigvals, structure_tensor, structure_tensor_eigenvalues
+from skimage.feature import (
+    hessian_matrix,
+    hessian_matrix_eigvals,
+    structure_tensor,
+    structure_tensor_eigenvalues,
+)
 
 from tessera.cascade.features import feature_names, feature_radius, filter_bank
 from tessera.errors import TesseraInputError
@@ -46,20 +51,28 @@ def test_hessian_and_structure_tensor_agree_with_skimage():
     f = filter_bank(image, sigmas=(sigma,))
     inner = (slice(10, -10), slice(10, -10))
     # Reference: skimage.feature.hessian_matrix (Gaussian smoothing then finite differences).
-    ref = hessian_matrix_eigvals(hessian_matrix(image, sigma=sigma, order="rc", mode="reflect", use_gaussian_derivatives=False))
+    ref = hessian_matrix_eigvals(
+        hessian_matrix(
+            image, sigma=sigma, order="rc", mode="reflect", use_gaussian_derivatives=False
+        )
+    )
     ours = np.stack([_channel(f, f"hessian{k}_s2", (sigma,)) for k in range(2)]) / sigma**2
     np.testing.assert_allclose(ours[(slice(None),) + inner], ref[(slice(None),) + inner], atol=1e-4)
     # Structure tensor: numpy's central-difference gradient of the sigma-smoothed image, products
     # smoothed at sigma by scipy, eigenvalues by skimage.feature.structure_tensor_eigenvalues.
     smoothed = ndimage.gaussian_filter(image, sigma, mode="reflect")
     gy, gx = np.gradient(smoothed)
-    tensor = [ndimage.gaussian_filter(p, sigma, mode="reflect") for p in (gy * gy, gy * gx, gx * gx)]
+    tensor = [
+        ndimage.gaussian_filter(p, sigma, mode="reflect") for p in (gy * gy, gy * gx, gx * gx)
+    ]
     st = structure_tensor_eigenvalues(tensor)
     ours_st = np.stack([_channel(f, f"structure{k}_s2", (sigma,)) for k in range(2)])
     scale = np.abs(st[(slice(None),) + inner]).max()
     assert np.abs(ours_st[(slice(None),) + inner] - st[(slice(None),) + inner]).max() < 1e-3 * scale
     # skimage's own structure_tensor (Sobel-type derivatives) differs by a constant factor only.
-    sk = structure_tensor_eigenvalues(structure_tensor(smoothed, sigma=sigma, order="rc", mode="reflect"))
+    sk = structure_tensor_eigenvalues(
+        structure_tensor(smoothed, sigma=sigma, order="rc", mode="reflect")
+    )
     assert np.corrcoef(sk[0][inner].ravel(), ours_st[0][inner].ravel())[0, 1] > 0.99
 
 
@@ -69,7 +82,9 @@ def test_features_are_mirror_symmetric_at_edges():
     image = np.random.default_rng(2).integers(0, 256, (50, 70)).astype(np.uint8)
     radius = feature_radius()
     padded = np.pad(image, radius, mode="symmetric")
-    np.testing.assert_allclose(filter_bank(padded)[radius:-radius, radius:-radius], filter_bank(image), atol=1e-3)
+    np.testing.assert_allclose(
+        filter_bank(padded)[radius:-radius, radius:-radius], filter_bank(image), atol=1e-3
+    )
 
 
 def test_block_interior_equals_whole_image():
@@ -77,7 +92,9 @@ def test_block_interior_equals_whole_image():
     r = feature_radius()
     whole = filter_bank(image)
     block = filter_bank(image[20:190, 30:200], mirror_edges=False)
-    np.testing.assert_allclose(block[r:-r, r:-r], whole[20 + r : 190 - r, 30 + r : 200 - r], atol=1e-4)
+    np.testing.assert_allclose(
+        block[r:-r, r:-r], whole[20 + r : 190 - r, 30 + r : 200 - r], atol=1e-4
+    )
 
 
 def test_3d_spacing_scales_sigma_per_axis():

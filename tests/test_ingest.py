@@ -34,7 +34,9 @@ def _write_folder(folder, volume, suffix):
             tifffile.imwrite(path, plane)
 
 
-@pytest.mark.parametrize("fmt", ["tiff_stack", "slice_folder_tif", "slice_folder_png", "mrc", "zarr"])
+@pytest.mark.parametrize(
+    "fmt", ["tiff_stack", "slice_folder_tif", "slice_folder_png", "mrc", "zarr"]
+)
 def test_every_format_round_trips(tmp_path, volume, fmt):
     if fmt == "tiff_stack":
         src = tmp_path / "stack.tif"
@@ -49,9 +51,13 @@ def test_every_format_round_trips(tmp_path, volume, fmt):
             mrc.set_data(volume)
     else:
         src = tmp_path / "stack.zarr"
-        arr = zarr.create_array(store=str(src), shape=volume.shape, chunks=(2, 16, 16), dtype="uint8")
+        arr = zarr.create_array(
+            store=str(src), shape=volume.shape, chunks=(2, 16, 16), dtype="uint8"
+        )
         arr[:] = volume
-    summary = ingest_stack(src, tmp_path / "out.ome.zarr", fmt=fmt, spacing=SPACING, chunks=(1, 32, 32))
+    summary = ingest_stack(
+        src, tmp_path / "out.ome.zarr", fmt=fmt, spacing=SPACING, chunks=(1, 32, 32)
+    )
     _, info = open_image(tmp_path / "out.ome.zarr")
     np.testing.assert_array_equal(info["levels"][0][:], volume)
     assert info["spacing"] == SPACING
@@ -99,7 +105,11 @@ def test_sixteen_bit_mapped_by_recorded_percentiles(tmp_path):
     volume = rng.normal(20000, 3000, size=(8, 64, 64)).clip(0, 65535).astype(np.uint16)
     tifffile.imwrite(tmp_path / "w.tif", volume)
     summary = ingest_stack(
-        tmp_path / "w.tif", tmp_path / "o.ome.zarr", fmt="tiff_stack", spacing=SPACING, percentiles=(1, 99)
+        tmp_path / "w.tif",
+        tmp_path / "o.ome.zarr",
+        fmt="tiff_stack",
+        spacing=SPACING,
+        percentiles=(1, 99),
     )
     mapping = summary["intensity_mapping"]
     assert mapping["method"] == "percentile stretch"
@@ -138,7 +148,10 @@ def test_no_partial_store_when_ingest_fails(tmp_path):
     tifffile.imwrite(folder / "0.tif", np.zeros((8, 8), np.uint8))
     tifffile.imwrite(folder / "1.tif", np.zeros((8, 9), np.uint8))
     out = tmp_path / "o.ome.zarr"
-    with pytest.raises(TesseraInputError, match=r"1\.tif: section has shape \(8, 9\), expected \(8, 8\) like 0\.tif"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"1\.tif: section has shape \(8, 9\), expected \(8, 8\) like 0\.tif",
+    ):
         ingest_stack(folder, out, fmt="slice_folder", spacing=SPACING)
     assert os.listdir(tmp_path) == ["bad"]
 
@@ -159,7 +172,12 @@ def test_previous_output_survives_a_failed_rerun(tmp_path, volume):
         ("text", "tiff_stack", SPACING, "cannot read as TIFF"),
         ("tif", "jpeg_stack", SPACING, "unknown format 'jpeg_stack'"),
         ("tif", "tiff_stack", (0, 8, 8), "along z must be > 0"),
-        ("tif", "tiff_stack", (40, None, 8), "along y is blank in the sheet and the file header has none"),
+        (
+            "tif",
+            "tiff_stack",
+            (40, None, 8),
+            "along y is blank in the sheet and the file header has none",
+        ),
         ("empty_folder", "slice_folder", SPACING, "no section images"),
         ("rgb", "tiff_stack", SPACING, "expected greyscale pages"),
     ],
@@ -190,5 +208,7 @@ def test_real_sstem_stack_ingests_with_its_voxel_size(tmp_path, vnc_sstem):
     assert summary["shape"] == [20, 1024, 1024]
     group, info = open_image(out)
     assert info["spacing"] == (50.0, 4.6, 4.6)
-    np.testing.assert_array_equal(info["levels"][0][7], tifffile.imread(vnc_sstem / "raw" / "07.tif"))
+    np.testing.assert_array_equal(
+        info["levels"][0][7], tifffile.imread(vnc_sstem / "raw" / "07.tif")
+    )
     Image.from_zarr(group)

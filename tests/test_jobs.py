@@ -21,7 +21,9 @@ REPO = Path(__file__).resolve().parents[1]
 
 def script_object(tmp_path, *, rule, mem_mb):
     """The parts of Snakemake's ``snakemake`` script object that run_job reads."""
-    return SimpleNamespace(log=[str(tmp_path / "job.log")], rule=rule, resources=SimpleNamespace(mem_mb=mem_mb))
+    return SimpleNamespace(
+        log=[str(tmp_path / "job.log")], rule=rule, resources=SimpleNamespace(mem_mb=mem_mb)
+    )
 
 
 def allocate_an_exbibyte():
@@ -37,7 +39,9 @@ def test_out_of_memory_names_rule_mem_mb_and_profile_key(tmp_path, capsys):
     assert stopped.value.code == 1
     err = capsys.readouterr().err
     assert err.count("\n") == 1, err  # one line, no traceback
-    assert err.startswith("tessera: rule objects ran out of memory with mem_mb=2000 (Unable to allocate 1.00 EiB")
+    assert err.startswith(
+        "tessera: rule objects ran out of memory with mem_mb=2000 (Unable to allocate 1.00 EiB"
+    )
     assert "set-resources: {objects: {mem_mb: 4000}}" in err and "--retries" in err
     assert "rule objects ran out of memory" in (tmp_path / "job.log").read_text()
 
@@ -93,11 +97,23 @@ def test_a_real_allocation_beyond_the_address_space_limit(tmp_path):
     # reports as MemoryError; the job must end with the one-line message, exit status 1.
     script = tmp_path / "job.py"
     script.write_text(_UNDER_LIMIT)
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
-    result = subprocess.run([sys.executable, str(script), str(tmp_path / "job.log")], capture_output=True, text=True,
-                            timeout=120, env=env)
+    env = {
+        **os.environ,
+        "OPENBLAS_NUM_THREADS": "1",
+        "OMP_NUM_THREADS": "1",
+        "PYTHONPATH": str(REPO),
+    }
+    result = subprocess.run(
+        [sys.executable, str(script), str(tmp_path / "job.log")],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        env=env,
+    )
     assert result.returncode == 1, result.stderr
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1, result.stderr
-    assert lines[0].startswith("tessera: rule stitch ran out of memory with mem_mb=300 (Unable to allocate 1.00 GiB")
+    assert lines[0].startswith(
+        "tessera: rule stitch ran out of memory with mem_mb=300 (Unable to allocate 1.00 GiB"
+    )
     assert "set-resources: {stitch: {mem_mb: 600}}" in lines[0]

@@ -11,15 +11,37 @@ from tessera.config import load_config, load_datasets
 from tessera.errors import TesseraInputError
 
 # JSON-like values: what a YAML config can hold
-scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6), st.floats(allow_nan=True),
-                    st.text(max_size=12))
-values = st.recursive(scalars, lambda inner: st.one_of(st.lists(inner, max_size=4),
-                                                       st.dictionaries(st.text(max_size=10), inner, max_size=4)),
-                      max_leaves=12)
-KEYS = ["datasets", "targets", "study", "demo", "ingest", "pyramid", "qc", "predict", "statistics", "meshes"]
+scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**6), 10**6),
+    st.floats(allow_nan=True),
+    st.text(max_size=12),
+)
+values = st.recursive(
+    scalars,
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=4), st.dictionaries(st.text(max_size=10), inner, max_size=4)
+    ),
+    max_leaves=12,
+)
+KEYS = [
+    "datasets",
+    "targets",
+    "study",
+    "demo",
+    "ingest",
+    "pyramid",
+    "qc",
+    "predict",
+    "statistics",
+    "meshes",
+]
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(st.dictionaries(st.sampled_from(KEYS) | st.text(max_size=8), values, max_size=6))
 def test_any_config_loads_or_fails_with_our_error(repo, config):
     try:
@@ -31,12 +53,32 @@ def test_any_config_loads_or_fails_with_our_error(repo, config):
 cells = st.text(alphabet=string.ascii_letters + string.digits + " _-./:\t\"'#,;\\", max_size=12)
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(header=st.lists(st.sampled_from(["dataset", "condition", "subject", "path", "format", "voxel_z_nm",
-                                        "voxel_y_nm", "voxel_x_nm", "roi_mask", "notes"]) | cells,
-                       min_size=0, max_size=10),
-       rows=st.lists(st.lists(cells, max_size=10), max_size=4),
-       raw=st.binary(max_size=40))
+@settings(
+    max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(
+    header=st.lists(
+        st.sampled_from(
+            [
+                "dataset",
+                "condition",
+                "subject",
+                "path",
+                "format",
+                "voxel_z_nm",
+                "voxel_y_nm",
+                "voxel_x_nm",
+                "roi_mask",
+                "notes",
+            ]
+        )
+        | cells,
+        min_size=0,
+        max_size=10,
+    ),
+    rows=st.lists(st.lists(cells, max_size=10), max_size=4),
+    raw=st.binary(max_size=40),
+)
 def test_any_sheet_loads_or_fails_with_our_error(repo, tmp_path_factory, header, rows, raw):
     folder = tmp_path_factory.mktemp("sheet")
     sheet = folder / "datasets.tsv"

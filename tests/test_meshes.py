@@ -21,7 +21,9 @@ def test_mesh_matches_scikit_image_and_sits_in_the_volume():
     # object's place in the volume and scaled to um.
     mask = ball(10)
     verts, faces = object_mesh(mask, spacing=(40, 10, 10), origin=(5, 100, 200), unit="um")
-    ref_v, ref_f, _, _ = marching_cubes(np.pad(mask.astype(np.float32), 1), level=0.5, spacing=(40, 10, 10))
+    ref_v, ref_f, _, _ = marching_cubes(
+        np.pad(mask.astype(np.float32), 1), level=0.5, spacing=(40, 10, 10)
+    )
     assert mesh_surface_area(verts, faces) == pytest.approx(mesh_surface_area(ref_v, ref_f) / 1e6)
     centre = verts.mean(axis=0)
     expected = (np.array([5, 100, 200]) + 12) * np.array([40, 10, 10]) / 1000

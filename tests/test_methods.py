@@ -19,35 +19,105 @@ def test_checksums_match_hashlib(tmp_path):
 
 def test_methods_text_is_written_from_the_run(tmp_path):
     scores = tmp_path / "scores.tsv"
-    pd.DataFrame({"role": ["validation", "test"], "tiles": [4, 5], "threshold": [0.42, 0.42],
-                  "precision": [0.9, 0.871], "recall": [0.9, 0.912], "f1": [0.9, 0.891], "jaccard": [0.8, 0.803]}
-                 ).to_csv(scores, sep="\t", index=False)
+    pd.DataFrame(
+        {
+            "role": ["validation", "test"],
+            "tiles": [4, 5],
+            "threshold": [0.42, 0.42],
+            "precision": [0.9, 0.871],
+            "recall": [0.9, 0.912],
+            "f1": [0.9, 0.891],
+            "jaccard": [0.8, 0.803],
+        }
+    ).to_csv(scores, sep="\t", index=False)
     settings = tmp_path / "objects.json"
-    settings.write_text(json.dumps({"high": 0.42, "low": 0.3, "open_radius_nm": 16, "close_radius_nm": 0,
-                                    "fill_holes": True, "min_volume_um3": 0.002, "max_volume_um3": None,
-                                    "connectivity": 26}))
+    settings.write_text(
+        json.dumps(
+            {
+                "high": 0.42,
+                "low": 0.3,
+                "open_radius_nm": 16,
+                "close_radius_nm": 0,
+                "fill_holes": True,
+                "min_volume_um3": 0.002,
+                "max_volume_um3": None,
+                "connectivity": 26,
+            }
+        )
+    )
     comparison = tmp_path / "comparison.tsv"
-    pd.DataFrame({"measure": ["volume_um3"], "condition": ["cold"], "reference": ["warm"], "scale": ["ratio"],
-                  "effect": [1.24], "ci_low": [1.1], "ci_high": [1.4], "confidence": [0.95], "animals": [3],
-                  "reference_animals": [3]}).to_csv(comparison, sep="\t", index=False)
+    pd.DataFrame(
+        {
+            "measure": ["volume_um3"],
+            "condition": ["cold"],
+            "reference": ["warm"],
+            "scale": ["ratio"],
+            "effect": [1.24],
+            "ci_low": [1.1],
+            "ci_high": [1.4],
+            "confidence": [0.95],
+            "animals": [3],
+            "reference_animals": [3],
+        }
+    ).to_csv(comparison, sep="\t", index=False)
     qc = tmp_path / "qc.tsv"
-    pd.DataFrame({"z": [0, 1, 2], "excluded": [False, True, False]}).to_csv(qc, sep="\t", index=False)
+    pd.DataFrame({"z": [0, 1, 2], "excluded": [False, True, False]}).to_csv(
+        qc, sep="\t", index=False
+    )
     sums = tmp_path / "inputs.sha256"
     sums.write_text("ab12  data/a.tif\n")
-    cascade = {"stages": 2, "levels": 2, "classifier": "mlp", "sigmas": [0.7, 1.6], "coarse_sigmas": [0.7],
-               "stencil_radii": [1, 2], "folds": 3, "samples_per_tile": 100, "seed": 0}
-    sections = {"ingest": {}, "pyramid": {"levels": 3}, "statistics": {"confidence": 0.95},
-                "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
-                "targets": {"mitochondria": {"downsample": 2, "cascade": cascade, "tiles": {"size": 96},
-                                             "split": {"guard_sections": 2}}}}
+    cascade = {
+        "stages": 2,
+        "levels": 2,
+        "classifier": "mlp",
+        "sigmas": [0.7, 1.6],
+        "coarse_sigmas": [0.7],
+        "stencil_radii": [1, 2],
+        "folds": 3,
+        "samples_per_tile": 100,
+        "seed": 0,
+    }
+    sections = {
+        "ingest": {},
+        "pyramid": {"levels": 3},
+        "statistics": {"confidence": 0.95},
+        "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+        "targets": {
+            "mitochondria": {
+                "downsample": 2,
+                "cascade": cascade,
+                "tiles": {"size": 96},
+                "split": {"guard_sections": 2},
+            }
+        },
+    }
     out = tmp_path / "methods.md"
-    methods_job(sections, {"a": {"condition": "warm", "subject": "a"}}, {"mitochondria": scores},
-                {"mitochondria": [settings]}, {"mitochondria": comparison}, [sums], [qc], out)
+    methods_job(
+        sections,
+        {"a": {"condition": "warm", "subject": "a"}},
+        {"mitochondria": scores},
+        {"mitochondria": [settings]},
+        {"mitochondria": comparison},
+        [sums],
+        [qc],
+        out,
+    )
     text = out.read_text()
-    for fact in ("F1 0.891", "Jaccard index 0.803", "(0.42)", "2 stages × 2 levels", "multilayer perceptron",
-                 "hysteresis thresholds of 0.30 and 0.42", "opened with a 16 nm ball", "smaller than 0.002 µm³",
-                 "26-connected", "1 of 3 sections", "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",
-                 "`data/a.tif`: `ab12`", "validated against held-out annotation"):
+    for fact in (
+        "F1 0.891",
+        "Jaccard index 0.803",
+        "(0.42)",
+        "2 stages × 2 levels",
+        "multilayer perceptron",
+        "hysteresis thresholds of 0.30 and 0.42",
+        "opened with a 16 nm ball",
+        "smaller than 0.002 µm³",
+        "26-connected",
+        "1 of 3 sections",
+        "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",
+        "`data/a.tif`: `ab12`",
+        "validated against held-out annotation",
+    ):
         assert fact in text, fact
 
 
@@ -67,13 +137,31 @@ def test_audit_manifest_and_ro_crate(tmp_path):
     source.write_bytes(b"raw")
     record = results / "provenance" / "tabulate" / "dataset=a.json"
     record.parent.mkdir(parents=True)
-    record.write_text(json.dumps({"rule": "tabulate", "wildcards": {"dataset": "a"}, "host": "h", "started": "s",
-                                  "finished": "f", "duration_s": 1.0, "code_version": "v",
-                                  "source": {"commit": "c", "dirty": False},
-                                  "outputs": [{"path": str(results / "a" / "table.tsv")}]}))
-    audit_job([results / "a" / "table.tsv", store], [source], results / "study" / "manifest.tsv",
-              results / "ro-crate-metadata.json", results / "study" / "provenance.tsv", study_name="s",
-              root=results, records_root=results / "provenance")
+    record.write_text(
+        json.dumps(
+            {
+                "rule": "tabulate",
+                "wildcards": {"dataset": "a"},
+                "host": "h",
+                "started": "s",
+                "finished": "f",
+                "duration_s": 1.0,
+                "code_version": "v",
+                "source": {"commit": "c", "dirty": False},
+                "outputs": [{"path": str(results / "a" / "table.tsv")}],
+            }
+        )
+    )
+    audit_job(
+        [results / "a" / "table.tsv", store],
+        [source],
+        results / "study" / "manifest.tsv",
+        results / "ro-crate-metadata.json",
+        results / "study" / "provenance.tsv",
+        study_name="s",
+        root=results,
+        records_root=results / "provenance",
+    )
     table = pd.read_csv(results / "study" / "manifest.tsv", sep="\t", keep_default_na=False)
     assert table["path"].tolist() == ["a/image.ome.zarr", "a/table.tsv"]
     # each result links the record of the job that wrote it; the store's job left none here
@@ -83,10 +171,15 @@ def test_audit_manifest_and_ro_crate(tmp_path):
     graph = {e["@id"]: e for e in crate["@graph"]}
     # RO-Crate 1.1: a metadata descriptor about the root dataset, which lists its parts
     assert graph["ro-crate-metadata.json"]["about"] == {"@id": "./"}
-    assert {p["@id"] for p in graph["./"]["hasPart"]} == {"a/image.ome.zarr/", "a/table.tsv",
-                                                          "provenance/tabulate/dataset=a.json"}
+    assert {p["@id"] for p in graph["./"]["hasPart"]} == {
+        "a/image.ome.zarr/",
+        "a/table.tsv",
+        "provenance/tabulate/dataset=a.json",
+    }
     assert graph["provenance/tabulate/dataset=a.json"]["about"] == [{"@id": "a/table.tsv"}]
-    assert graph["#run"]["@type"] == "CreateAction" and graph["#run"]["object"] == [{"@id": str(source)}]
+    assert graph["#run"]["@type"] == "CreateAction" and graph["#run"]["object"] == [
+        {"@id": str(source)}
+    ]
 
 
 def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_manifests(tmp_path):
@@ -96,13 +189,20 @@ def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_
 
     table = tmp_path / "t.tsv"
     table.write_bytes(b"a\tb\n1\t2\n")
-    assert _file_entry({"name": "t", "path": str(table)})["sha256"] == hashlib.sha256(b"a\tb\n1\t2\n").hexdigest()
+    assert (
+        _file_entry({"name": "t", "path": str(table)})["sha256"]
+        == hashlib.sha256(b"a\tb\n1\t2\n").hexdigest()
+    )
     store = tmp_path / "s.ome.zarr"
     (store / "0" / "c").mkdir(parents=True)
     (store / "0" / "c" / "0").write_bytes(bytes(1000))
     (store / "0" / "tessera-checksums.json").write_text('{"files": {}}')
     big = _file_entry({"name": "s", "path": str(store)}, full_hash_bytes=100)
     expected = hashlib.sha256(b"0/tessera-checksums.json\0" + b'{"files": {}}').hexdigest()
-    assert big["sha256"] is None and big["checksum_manifests_sha256"] == expected and big["bytes"] == 1013
+    assert (
+        big["sha256"] is None
+        and big["checksum_manifests_sha256"] == expected
+        and big["bytes"] == 1013
+    )
     (store / "0" / "tessera-checksums.json").unlink()
     assert "not_hashed" in _file_entry({"name": "s", "path": str(store)}, full_hash_bytes=100)

@@ -33,10 +33,15 @@ def ellipsoid(a, b, c, spacing):
 
 def cylinder(radius, length, spacing):
     """Solid cylinder along x: radius and length in nm."""
-    n = [int(math.ceil(radius / spacing[0])) + 2, int(math.ceil(radius / spacing[1])) + 2,
-         int(math.ceil(length / 2 / spacing[2])) + 2]
+    n = [
+        int(math.ceil(radius / spacing[0])) + 2,
+        int(math.ceil(radius / spacing[1])) + 2,
+        int(math.ceil(length / 2 / spacing[2])) + 2,
+    ]
     zz, yy, xx = np.ogrid[-n[0] : n[0] + 1, -n[1] : n[1] + 1, -n[2] : n[2] + 1]
-    return ((zz * spacing[0]) ** 2 + (yy * spacing[1]) ** 2 <= radius**2) & (np.abs(xx * spacing[2]) <= length / 2)
+    return ((zz * spacing[0]) ** 2 + (yy * spacing[1]) ** 2 <= radius**2) & (
+        np.abs(xx * spacing[2]) <= length / 2
+    )
 
 
 @pytest.mark.parametrize("spacing", SPACINGS)
@@ -62,9 +67,13 @@ def test_surface_bias_shrinks_with_resolution():
 def test_surface_agrees_with_scikit_image_on_the_same_field():
     # Reference library: skimage.measure.marching_cubes + mesh_surface_area with the same spacing.
     mask = ellipsoid(300, 500, 700, (20, 10, 10))
-    padded = ndimage.gaussian_filter(np.pad(mask.astype(np.float32), 3), [0.5, 1, 1], mode="constant", truncate=3.0)
+    padded = ndimage.gaussian_filter(
+        np.pad(mask.astype(np.float32), 3), [0.5, 1, 1], mode="constant", truncate=3.0
+    )
     verts, faces, _, _ = marching_cubes(padded, level=0.5, spacing=(20, 10, 10))
-    assert surface_area(mask, spacing=(20, 10, 10)) == pytest.approx(mesh_surface_area(verts, faces) / 1e6, rel=1e-9)
+    assert surface_area(mask, spacing=(20, 10, 10)) == pytest.approx(
+        mesh_surface_area(verts, faces) / 1e6, rel=1e-9
+    )
 
 
 @pytest.mark.parametrize("spacing", SPACINGS)
@@ -89,7 +98,9 @@ def test_cylinder_volume_surface_and_elongation():
     r, length = 150.0, 1500.0
     m = measure_object(cylinder(r, length, (20, 10, 10)), spacing=(20, 10, 10))
     assert m["volume_um3"] == pytest.approx(math.pi * 0.15**2 * 1.5, rel=0.03)
-    assert m["surface_um2"] == pytest.approx(2 * math.pi * 0.15 * 1.5 + 2 * math.pi * 0.15**2, rel=0.05)
+    assert m["surface_um2"] == pytest.approx(
+        2 * math.pi * 0.15 * 1.5 + 2 * math.pi * 0.15**2, rel=0.05
+    )
     assert m["elongation"] > 4 and m["flatness"] == pytest.approx(1.0, abs=0.1)
     assert m["branch_points"] == 0 and m["end_points"] == 2
 
@@ -114,7 +125,9 @@ def test_complexity_index_of_a_sphere_and_growth_with_shape():
     # MCI = SA^3 / (16 pi^2 V^2), Vincent et al. 2019 (definition from memory): for a sphere
     # 9 / (4 pi), and larger for an elongated or branched object of the same volume.
     r = 0.5
-    assert complexity_index(4 * math.pi * r**2, 4 / 3 * math.pi * r**3) == pytest.approx(9 / (4 * math.pi))
+    assert complexity_index(4 * math.pi * r**2, 4 / 3 * math.pi * r**3) == pytest.approx(
+        9 / (4 * math.pi)
+    )
     sphere = measure_object(ellipsoid(500, 500, 500, (10, 10, 10)), spacing=(10, 10, 10))
     rod = measure_object(cylinder(150, 1500, (10, 10, 10)), spacing=(10, 10, 10))
     assert rod["complexity_index"] > 2 * sphere["complexity_index"]
@@ -122,10 +135,22 @@ def test_complexity_index_of_a_sphere_and_growth_with_shape():
 
 def test_measure_objects_reads_bounding_boxes():
     labels = np.zeros((30, 80, 80), np.uint32)
-    labels[5:15, 10:30, 10:30][ellipsoid(100, 80, 80, (20, 10, 10))[:10, :20, :20][:10, :20, :20]] = 1
+    labels[5:15, 10:30, 10:30][
+        ellipsoid(100, 80, 80, (20, 10, 10))[:10, :20, :20][:10, :20, :20]
+    ] = 1
     labels[10:25, 40:70, 40:75] = 2
-    table = pd.DataFrame({"id": [1, 2], "z0": [5, 10], "y0": [10, 40], "x0": [10, 40], "z1": [15, 25], "y1": [30, 70],
-                          "x1": [30, 75], "volume_um3": [0.0, 0.0]})
+    table = pd.DataFrame(
+        {
+            "id": [1, 2],
+            "z0": [5, 10],
+            "y0": [10, 40],
+            "x0": [10, 40],
+            "z1": [15, 25],
+            "y1": [30, 70],
+            "x1": [30, 75],
+            "volume_um3": [0.0, 0.0],
+        }
+    )
     out = measure_objects(labels, table, spacing=(20, 10, 10))
     box = measure_object(labels == 2, spacing=(20, 10, 10))
     assert out.loc[1, "surface_um2"] == pytest.approx(box["surface_um2"])
@@ -144,10 +169,19 @@ def test_densities_of_a_known_phantom():
     labels[2:6, 5:15, 5:15] = 1
     labels[2:6, 20:30, 20:30] = 2
     labels[0:4, 10:20, 60:70] = 3  # touches z = 0
-    objects = pd.DataFrame({"id": [1, 2, 3], "surface_um2": [0.1, 0.1, 0.1],
-                            "touches_volume_border": [False, False, True],
-                            "z0": [2, 2, 0], "y0": [5, 20, 10], "x0": [5, 20, 60],
-                            "z1": [6, 6, 4], "y1": [15, 30, 20], "x1": [15, 30, 70]})
+    objects = pd.DataFrame(
+        {
+            "id": [1, 2, 3],
+            "surface_um2": [0.1, 0.1, 0.1],
+            "touches_volume_border": [False, False, True],
+            "z0": [2, 2, 0],
+            "y0": [5, 20, 10],
+            "x0": [5, 20, 60],
+            "z1": [6, 6, 4],
+            "y1": [15, 30, 20],
+            "x1": [15, 30, 70],
+        }
+    )
     table, home = region_densities(labels, regions, objects, spacing=spacing, block=(4, 16, 16))
     voxel = 50 * 10 * 10 / 1e9
     region_volume = 10 * 40 * 40 * voxel
@@ -187,7 +221,9 @@ def test_edge_corrected_count_is_unbiased_where_excluding_cut_objects_is_not():
         assert np.mean(corrected) == pytest.approx(density, rel=0.05)
         expected_plain = density * np.prod(window - size - 1) / np.prod(window)
         assert np.mean(plain) == pytest.approx(expected_plain, rel=0.05)
-    assert expected_plain < 0.5 * density  # the large boxes: excluding cut ones loses more than half
+    assert (
+        expected_plain < 0.5 * density
+    )  # the large boxes: excluding cut ones loses more than half
 
 
 def test_region_mask_of_another_shape_is_refused(tmp_path):

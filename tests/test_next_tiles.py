@@ -37,7 +37,9 @@ def test_ranking_finds_uncertain_regions_spreads_and_avoids_known_tiles():
     picks = rank_tiles({"d1": volume}, no_tiles(), size=16, count=2)
     assert [(r.z, r.y, r.x) for r in picks.itertuples()] == [(2, 16, 16), (4, 48, 48)]
     # the first patch already annotated: the next best lies elsewhere
-    known = pd.DataFrame({"dataset": ["d1"], "z": [2], "y0": [8], "x0": [8], "height": [16], "width": [16]})
+    known = pd.DataFrame(
+        {"dataset": ["d1"], "z": [2], "y0": [8], "x0": [8], "height": [16], "width": [16]}
+    )
     picks = rank_tiles({"d1": volume}, known, size=16, count=1)
     assert (picks.loc[0, "z"], picks.loc[0, "y"]) == (4, 48)
     # an excluded section is never suggested
@@ -49,8 +51,16 @@ def test_suggestions_are_a_points_sheet_the_exporter_reads(tmp_path):
     volume = np.full((4, 32, 32), 0.5, np.float32)
     picks = rank_tiles({"d1": volume}, no_tiles(), size=16, count=3)
     sheet = tmp_path / "points.tsv"
-    pd.DataFrame({"dataset": picks["dataset"], "target": "mito", "z": picks["z"], "y": picks["y"], "x": picks["x"],
-                  "size": 16}).to_csv(sheet, sep="\t", index=False)
+    pd.DataFrame(
+        {
+            "dataset": picks["dataset"],
+            "target": "mito",
+            "z": picks["z"],
+            "y": picks["y"],
+            "x": picks["x"],
+            "size": 16,
+        }
+    ).to_csv(sheet, sep="\t", index=False)
     points = read_points(sheet, datasets=["d1"], targets=["mito"])
     assert len(points) == 3 and points["tile_id"].is_unique
 
@@ -59,4 +69,6 @@ def test_bad_requests_are_refused():
     with pytest.raises(TesseraInputError, match=">= 1"):
         rank_tiles({"d1": np.zeros((2, 8, 8))}, no_tiles(), size=4, count=0)
     with pytest.raises(TesseraInputError, match="no sections"):
-        rank_tiles({"d1": np.zeros((2, 8, 8))}, no_tiles(), size=4, count=1, excluded={"d1": [0, 1]})
+        rank_tiles(
+            {"d1": np.zeros((2, 8, 8))}, no_tiles(), size=4, count=1, excluded={"d1": [0, 1]}
+        )

@@ -11,10 +11,10 @@ from ome_zarr_models.v05.image_label import ImageLabel
 from scipy import ndimage
 from skimage.filters import apply_hysteresis_threshold
 
+from tessera.chunksums import record_checksums
 from tessera.config import load_config
 from tessera.errors import TesseraInputError
 from tessera.objects import ball, connectivity_structure, label_objects, objects_job
-from tessera.chunksums import record_checksums
 from tessera.omezarr import AXES, multiscale_attrs, open_image
 
 SPACING = (40.0, 10.0, 10.0)
@@ -51,7 +51,9 @@ def reference(p, *, high, low, open_nm=0, close_nm=0, connectivity=26, vmin=0.0,
         mine = lab == k
         holes = ndimage.binary_fill_holes(mine) & ~mine
         cavities, _ = ndimage.label(holes)
-        touching = np.unique(cavities[ndimage.binary_dilation((lab > 0) & ~mine, st) & (cavities > 0)])
+        touching = np.unique(
+            cavities[ndimage.binary_dilation((lab > 0) & ~mine, st) & (cavities > 0)]
+        )
         out[holes & ~np.isin(cavities, touching)] = k
     volumes = ndimage.sum_labels(np.ones_like(p), out, keep) * np.prod(SPACING) / 1e9
     for k, v in zip(keep, volumes):
@@ -106,9 +108,15 @@ def test_morphology_holes_and_size_equal_the_in_memory_reference(settings):
     p = smooth_field(3)
     expected = reference(p, **settings)
     assert expected.max() >= 5
-    kwargs = dict(high=settings["high"], low=settings["low"], open_radius_nm=settings.get("open_nm", 0),
-                  close_radius_nm=settings.get("close_nm", 0), connectivity=settings.get("connectivity", 26),
-                  min_volume_um3=settings.get("vmin", 0.0), max_volume_um3=settings.get("vmax"))
+    kwargs = dict(
+        high=settings["high"],
+        low=settings["low"],
+        open_radius_nm=settings.get("open_nm", 0),
+        close_radius_nm=settings.get("close_nm", 0),
+        connectivity=settings.get("connectivity", 26),
+        min_volume_um3=settings.get("vmin", 0.0),
+        max_volume_um3=settings.get("vmax"),
+    )
     for block in BLOCKS:
         labels, table = run(p, block, **kwargs)
         np.testing.assert_array_equal(labels, expected)
@@ -145,8 +153,19 @@ def test_size_rule_measures_objects_spanning_blocks_whole():
     assert table["volume_um3"].iloc[0] == pytest.approx(1600 * 40 * 10 * 10 / 1e9)
     assert (labels == 1).sum() == 1600 and labels.max() == 1
     row = table.iloc[0]
-    assert (row["z0"], row["y0"], row["x0"], row["z1"], row["y1"], row["x1"]) == (2, 10, 10, 6, 30, 30)
-    assert (row["centroid_z_nm"], row["centroid_y_nm"], row["centroid_x_nm"]) == (3.5 * 40, 19.5 * 10, 19.5 * 10)
+    assert (row["z0"], row["y0"], row["x0"], row["z1"], row["y1"], row["x1"]) == (
+        2,
+        10,
+        10,
+        6,
+        30,
+        30,
+    )
+    assert (row["centroid_z_nm"], row["centroid_y_nm"], row["centroid_x_nm"]) == (
+        3.5 * 40,
+        19.5 * 10,
+        19.5 * 10,
+    )
     assert not row["touches_volume_border"]
 
 
@@ -177,7 +196,10 @@ def test_excluded_sections_are_bridged_so_objects_stay_whole():
     [
         (dict(high=1.5), "objects threshold high must be a probability in \\[0, 1\\], got 1.5"),
         (dict(high=0.4, low=0.6), "low \\(0.6\\) must not exceed high \\(0.4\\)"),
-        (dict(high=0.5, min_volume_um3=2.0, max_volume_um3=1.0), "min_volume_um3 \\(2.0\\) is larger than max_volume_um3"),
+        (
+            dict(high=0.5, min_volume_um3=2.0, max_volume_um3=1.0),
+            "min_volume_um3 \\(2.0\\) is larger than max_volume_um3",
+        ),
         (dict(high=0.5, connectivity=4), "connectivity must be 6, 18 or 26, got 4"),
         (dict(high=0.5, open_radius_nm=-1), "morphology radius must be >= 0 nm"),
     ],
@@ -188,9 +210,19 @@ def test_bad_settings_are_refused(kwargs, message):
 
 
 def test_config_refuses_low_above_high(repo):
-    config = {"datasets": "x.tsv", "targets": {"mito": {"downsample": 2, "annotations": {"labels": "{dataset}.tif"},
-                                                           "objects": {"high": 0.5, "low": 0.7}}}}
-    with pytest.raises(TesseraInputError, match="key targets.mito.objects: low \\(0.7\\) must not exceed high"):
+    config = {
+        "datasets": "x.tsv",
+        "targets": {
+            "mito": {
+                "downsample": 2,
+                "annotations": {"labels": "{dataset}.tif"},
+                "objects": {"high": 0.5, "low": 0.7},
+            }
+        },
+    }
+    with pytest.raises(
+        TesseraInputError, match="key targets.mito.objects: low \\(0.7\\) must not exceed high"
+    ):
         load_config(config, repo / "config" / "schemas" / "config.schema.yaml")
 
 
@@ -199,21 +231,47 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     image = tmp_path / "probability.ome.zarr"
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
     factors = [(1, 1, 1), (1, 2, 2)]
-    group.attrs.update({"ome": multiscale_attrs(name="p", spacing=SPACING, factors=factors),
-                        "tessera": {"probability": {"scale": 255.0, "z_factor": 1}}})
+    group.attrs.update(
+        {
+            "ome": multiscale_attrs(name="p", spacing=SPACING, factors=factors),
+            "tessera": {"probability": {"scale": 255.0, "z_factor": 1}},
+        }
+    )
     stored = np.rint(p * 255).astype(np.uint8)
     group.create_array(name="0", data=stored, chunks=(1, 16, 16), dimension_names=AXES)
     group.create_array(name="1", data=stored[:, ::2, ::2], chunks=(1, 16, 16), dimension_names=AXES)
     record_checksums(image)  # as stitch does: readers refuse stores without records
     qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(6), "excluded": [False, False, True, False, False, False]}).to_csv(qc, sep="\t", index=False)
+    pd.DataFrame({"z": range(6), "excluded": [False, False, True, False, False, False]}).to_csv(
+        qc, sep="\t", index=False
+    )
     scores = tmp_path / "scores.tsv"
-    pd.DataFrame({"role": ["validation", "test"], "threshold": [0.62, 0.62]}).to_csv(scores, sep="\t", index=False)
-    settings = dict(high=None, low=None, open_radius_nm=0, close_radius_nm=0, fill_holes=True, min_volume_um3=0,
-                    max_volume_um3=None, connectivity=26, block=[3, 16, 16], bridge_excluded=False)
+    pd.DataFrame({"role": ["validation", "test"], "threshold": [0.62, 0.62]}).to_csv(
+        scores, sep="\t", index=False
+    )
+    settings = dict(
+        high=None,
+        low=None,
+        open_radius_nm=0,
+        close_radius_nm=0,
+        fill_holes=True,
+        min_volume_um3=0,
+        max_volume_um3=None,
+        connectivity=26,
+        block=[3, 16, 16],
+        bridge_excluded=False,
+    )
     out = tmp_path / "objects.ome.zarr"
-    objects_job(image, qc, scores, out, tmp_path / "objects.tsv", tmp_path / "objects.json", target="mito",
-                settings=settings)
+    objects_job(
+        image,
+        qc,
+        scores,
+        out,
+        tmp_path / "objects.tsv",
+        tmp_path / "objects.json",
+        target="mito",
+        settings=settings,
+    )
     root = zarr.open_group(store=str(out), mode="r")
     Image.from_zarr(root)  # NGFF 0.5 image with its labels (ome-zarr-models)
     ImageLabel.from_zarr(root["labels/mito"])

@@ -9,17 +9,34 @@ import zarr
 from ome_zarr_models.v05 import Image
 from scipy import ndimage
 
-from tessera.cascade.model import CascadeSpec, fit_cascade, mirrored_window, prepare_tile, receptive_radius, save_node
-from tessera.cascade.model import predict_section
-from tessera.checksum import file_sha256
-from tessera.errors import TesseraInputError, TesseraResourceError
-from tessera.chunksums import record_checksums
-from tessera.omezarr import AXES, multiscale_attrs, open_image
 from tessera import predict
+from tessera.cascade.model import (
+    CascadeSpec,
+    fit_cascade,
+    mirrored_window,
+    predict_section,
+    prepare_tile,
+    receptive_radius,
+    save_node,
+)
+from tessera.checksum import file_sha256
+from tessera.chunksums import record_checksums
+from tessera.errors import TesseraInputError, TesseraResourceError
+from tessera.omezarr import AXES, multiscale_attrs, open_image
 from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
 
-SPEC = dict(stages=2, levels=1, sigmas=(1.0, 2.0), coarse_sigmas=(1.0,), stencil_radii=(1, 2), classifier="mlp",
-            samples_per_tile=400, folds=2, seed=1, neighbours=1)
+SPEC = dict(
+    stages=2,
+    levels=1,
+    sigmas=(1.0, 2.0),
+    coarse_sigmas=(1.0,),
+    stencil_radii=(1, 2),
+    classifier="mlp",
+    samples_per_tile=400,
+    folds=2,
+    seed=1,
+    neighbours=1,
+)
 
 
 def blobs(seed, shape):
@@ -29,7 +46,12 @@ def blobs(seed, shape):
     for _ in range(5):
         cy, cx, r = rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(4, 8)
         truth |= (yy - cy) ** 2 + (xx - cx) ** 2 < r**2
-    image = 150 + ndimage.gaussian_filter(rng.normal(size=shape), 2) * 40 - 70 * truth + rng.normal(0, 12, shape)
+    image = (
+        150
+        + ndimage.gaussian_filter(rng.normal(size=shape), 2) * 40
+        - 70 * truth
+        + rng.normal(0, 12, shape)
+    )
     return np.clip(image, 0, 255).astype(np.uint8), truth.astype(np.uint8)
 
 
@@ -43,7 +65,12 @@ def study(tmp_path_factory):
     for i in range(4):
         image, truth = blobs(i, (64, 64))
         stack = np.stack([image] * 3)
-        window = np.stack([mirrored_window(stack, k, -radius, 64 + radius, -radius, 64 + radius) for k in range(3)])
+        window = np.stack(
+            [
+                mirrored_window(stack, k, -radius, 64 + radius, -radius, 64 + radius)
+                for k in range(3)
+            ]
+        )
         tiles.append(prepare_tile(spec, f"t{i}", window, truth, fold=i % 2))
     models = fit_cascade(spec, tiles, target="blobs")
     paths = []
@@ -56,19 +83,40 @@ def study(tmp_path_factory):
     group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
     group.create_array(name="0", data=volume, chunks=(1, 32, 32), dimension_names=AXES)
     record_checksums(image)  # as ingest does: readers refuse stores without records
-    return {"root": root, "models": models, "paths": paths, "image": image, "volume": volume, "spec": spec}
+    return {
+        "root": root,
+        "models": models,
+        "paths": paths,
+        "image": image,
+        "volume": volume,
+        "spec": spec,
+    }
 
 
 def whole_volume(study, output_sigma=0.0):
-    return np.stack([predict_section(study["models"], study["volume"], z, output_sigma=output_sigma)
-                     for z in range(5)])
+    return np.stack(
+        [
+            predict_section(study["models"], study["volume"], z, output_sigma=output_sigma)
+            for z in range(5)
+        ]
+    )
 
 
 def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0):
     out = study["root"] / name
     plan = out / "plan.json"
-    plan_job(study["image"], study["paths"], plan, target="blobs", downsample=1, block=block, shard_jobs=jobs,
-             max_halo=max_halo, dtype=dtype, output_sigma=output_sigma)
+    plan_job(
+        study["image"],
+        study["paths"],
+        plan,
+        target="blobs",
+        downsample=1,
+        block=block,
+        shard_jobs=jobs,
+        max_halo=max_halo,
+        dtype=dtype,
+        output_sigma=output_sigma,
+    )
     shards = [out / f"job{j}" for j in range(jobs)]
     for j, folder in enumerate(shards):
         predict_shard_job(plan, study["image"], study["paths"], folder, job=j, target="blobs")
@@ -92,7 +140,10 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
     "kwargs, message",
     [
         (dict(block=(1, 32, 32), halo=40), "smaller in y or x than the model's halo of 40 px"),
-        (dict(block=(1, 512, 512), halo=600, max_halo=512), "halo of 600 px, more than predict.max_halo = 512"),
+        (
+            dict(block=(1, 512, 512), halo=600, max_halo=512),
+            "halo of 600 px, more than predict.max_halo = 512",
+        ),
         (dict(block=(1, 64, 64), halo=8, jobs=0), "predict.shard_jobs must be an integer >= 1"),
         (dict(block=(0, 64, 64), halo=8), "predict.block must be 3 positive integers"),
     ],
@@ -112,7 +163,9 @@ def test_stitched_map_equals_the_whole_volume_in_one_piece(study, output_sigma):
     halo = receptive_radius(study["spec"], output_sigma=output_sigma)
     maps = []
     for name, block, jobs in (("a", (2, halo, halo), 3), ("b", (5, 2 * halo, 2 * halo), 2)):
-        out = run(study, f"float_{name}_{output_sigma}", block=block, jobs=jobs, output_sigma=output_sigma)
+        out = run(
+            study, f"float_{name}_{output_sigma}", block=block, jobs=jobs, output_sigma=output_sigma
+        )
         _, info = open_image(out / "probability.ome.zarr")
         maps.append(info["levels"][0][:])
         assert info["spacing"] == (40.0, 8.0, 8.0)
@@ -139,7 +192,9 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
     good = block_file.read_bytes()
 
     block_file.write_bytes(good[:-10])  # truncated
-    with pytest.raises(TesseraInputError, match=f"{block_file.name}.*recorded checksum.*predict_shard for job 1"):
+    with pytest.raises(
+        TesseraInputError, match=f"{block_file.name}.*recorded checksum.*predict_shard for job 1"
+    ):
         stitch_job(plan, shards, target)
     assert not target.exists() and not list(tmp_path.iterdir())
 
@@ -154,7 +209,10 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
         stitch_job(plan, shards, target)
 
     (shards[0] / "manifest.json").unlink()
-    with pytest.raises(TesseraInputError, match="manifest.json: shard manifest missing; rerun rule predict_shard for job 0"):
+    with pytest.raises(
+        TesseraInputError,
+        match="manifest.json: shard manifest missing; rerun rule predict_shard for job 0",
+    ):
         stitch_job(plan, shards, target)
     assert not target.exists()
 
@@ -174,17 +232,30 @@ def test_killed_shard_job_leaves_no_output_and_reruns_identically(study, monkeyp
     folder = out / "again"
     monkeypatch.setattr(predict, "predict_block", dies_after_first_block)
     with pytest.raises(KeyboardInterrupt):
-        predict_shard_job(out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs")
+        predict_shard_job(
+            out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs"
+        )
     assert not folder.exists() and not list(out.glob("again*"))
     monkeypatch.setattr(predict, "predict_block", original)
-    predict_shard_job(out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs")
+    predict_shard_job(
+        out / "plan.json", study["image"], study["paths"], folder, job=0, target="blobs"
+    )
     assert {p.name: p.read_bytes() for p in folder.iterdir()} == reference
 
 
 def test_plan_refuses_a_model_for_another_target(study, tmp_path):
     with pytest.raises(TesseraInputError, match="model is for target 'blobs', expected 'nuclei'"):
-        plan_job(study["image"], study["paths"], tmp_path / "plan.json", target="nuclei", downsample=1,
-                 block=(1, 512, 512), shard_jobs=1, max_halo=512, dtype="uint8")
+        plan_job(
+            study["image"],
+            study["paths"],
+            tmp_path / "plan.json",
+            target="nuclei",
+            downsample=1,
+            block=(1, 512, 512),
+            shard_jobs=1,
+            max_halo=512,
+            dtype="uint8",
+        )
     assert not (tmp_path / "plan.json").exists()
 
 
@@ -246,12 +317,32 @@ def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
     group.create_array(name="0", data=volume, chunks=(1, 128, 128), dimension_names=AXES)
     record_checksums(image)
     plan = tmp_path / "plan.json"
-    plan_job(image, study["paths"], plan, target="blobs", downsample=1, block=(2, 300, 300), shard_jobs=1,
-             max_halo=512, dtype="uint8")
+    plan_job(
+        image,
+        study["paths"],
+        plan,
+        target="blobs",
+        downsample=1,
+        block=(2, 300, 300),
+        shard_jobs=1,
+        max_halo=512,
+        dtype="uint8",
+    )
     script = tmp_path / "job.py"
     script.write_text(_SHARD_RSS)
-    result = subprocess.run([sys.executable, str(script), str(plan), str(image), str(tmp_path / "job0"),
-                             *map(str, study["paths"])], capture_output=True, text=True, timeout=300)
+    result = subprocess.run(
+        [
+            sys.executable,
+            str(script),
+            str(plan),
+            str(image),
+            str(tmp_path / "job0"),
+            *map(str, study["paths"]),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
     assert result.returncode == 0, result.stderr
     figures = json.loads(result.stdout)
     assert figures["baseline"] < predict.BASELINE_MB, figures
@@ -261,17 +352,38 @@ def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
 def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path):
     out = study["root"] / "memory"
     plan = out / "plan.json"
-    plan_job(study["image"], study["paths"], plan, target="blobs", downsample=1, block=(5, 64, 64), shard_jobs=1,
-             max_halo=512, dtype="uint8")
+    plan_job(
+        study["image"],
+        study["paths"],
+        plan,
+        target="blobs",
+        downsample=1,
+        block=(5, 64, 64),
+        shard_jobs=1,
+        max_halo=512,
+        dtype="uint8",
+    )
     needed = predict.shard_memory_mb(predict.read_plan(plan), 0, study["spec"], study["paths"])
     with pytest.raises(TesseraResourceError) as refused:
-        predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed - 1)
+        predict_shard_job(
+            plan,
+            study["image"],
+            study["paths"],
+            out / "job0",
+            job=0,
+            target="blobs",
+            mem_mb=needed - 1,
+        )
     message = str(refused.value)
-    assert message.startswith(f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of [5, 64, 64] voxels")
+    assert message.startswith(
+        f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of [5, 64, 64] voxels"
+    )
     assert f"rule predict_shard was given mem_mb={needed - 1}" in message
     assert f"set-resources: {{predict_shard: {{mem_mb: {needed}}}}}" in message
     assert not (out / "job0").exists() and not list(out.glob("job0*"))
-    predict_shard_job(plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed)
+    predict_shard_job(
+        plan, study["image"], study["paths"], out / "job0", job=0, target="blobs", mem_mb=needed
+    )
     assert (out / "job0" / "manifest.json").exists()
 
 
@@ -281,21 +393,41 @@ def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
 
     image = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
     shutil.copytree(study["image"], image)
-    damaged = image / "0" / "c" / "4" / "0" / "0"  # zarr v3 chunk key: section 4, first chunk row and column
+    damaged = (
+        image / "0" / "c" / "4" / "0" / "0"
+    )  # zarr v3 chunk key: section 4, first chunk row and column
     data = bytearray(damaged.read_bytes())
     data[len(data) // 2] ^= 0x01
     damaged.write_bytes(bytes(data))
     plan = tmp_path / "plan.json"
     halo = receptive_radius(study["spec"])
-    plan_job(image, study["paths"], plan, target="blobs", downsample=1, block=(1, 2 * halo, 2 * halo), shard_jobs=5,
-             max_halo=512, dtype="uint8")
+    plan_job(
+        image,
+        study["paths"],
+        plan,
+        target="blobs",
+        downsample=1,
+        block=(1, 2 * halo, 2 * halo),
+        shard_jobs=5,
+        max_halo=512,
+        dtype="uint8",
+    )
     blocks, jobs = json.loads(plan.read_text())["blocks"], json.loads(plan.read_text())["jobs"]
-    reads = [{z for i in job for z in range(blocks[i][0] - 1, blocks[i][1] + 1)} for job in jobs]  # neighbours=1
-    clean = next(j for j, z in enumerate(reads) if 4 not in z and 3 not in z)  # 3 reads 4 as its neighbour
+    reads = [
+        {z for i in job for z in range(blocks[i][0] - 1, blocks[i][1] + 1)} for job in jobs
+    ]  # neighbours=1
+    clean = next(
+        j for j, z in enumerate(reads) if 4 not in z and 3 not in z
+    )  # 3 reads 4 as its neighbour
     predict_shard_job(plan, image, study["paths"], tmp_path / "clean", job=clean, target="blobs")
     assert (tmp_path / "clean" / "manifest.json").is_file()
-    with pytest.raises(TesseraInputError, match=r"0/c/4/0/0: file does not match its recorded SHA-256.*rerun rule "
-                                                r"pyramid") as error:
-        predict_shard_job(plan, image, study["paths"], tmp_path / "last", job=len(jobs) - 1, target="blobs")
+    with pytest.raises(
+        TesseraInputError,
+        match=r"0/c/4/0/0: file does not match its recorded SHA-256.*rerun rule "
+        r"pyramid",
+    ) as error:
+        predict_shard_job(
+            plan, image, study["paths"], tmp_path / "last", job=len(jobs) - 1, target="blobs"
+        )
     assert str(error.value).startswith(str(damaged))
     assert not (tmp_path / "last").exists()

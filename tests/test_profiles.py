@@ -22,20 +22,33 @@ def test_shipped_profiles_pass(name):
 def write_profile(tmp_path, settings):
     folder = tmp_path / "profile"
     folder.mkdir()
-    (folder / "config.yaml").write_text(yaml.safe_dump(settings) if isinstance(settings, dict) else settings)
+    (folder / "config.yaml").write_text(
+        yaml.safe_dump(settings) if isinstance(settings, dict) else settings
+    )
     return folder
 
 
-@pytest.mark.parametrize("settings, expected", [
-    ({"executor": "slurmx"}, r"key executor: 'slurmx' is not installed .*snakemake-executor-plugin-slurmx"),
-    ({"executro": "slurm"}, r"key executro: not an option of Snakemake"),
-    ({"set-resources": {"predict_shards": {"mem_mb": 8000}}}, r"key set-resources.predict_shards: no such rule"),
-    ({"set-resources": {"predict_shard": {"mem_mb": 500}}},
-     r"key set-resources.predict_shard.mem_mb: 500 is below what rule predict_shard needs \(4000 MB"),
-    ({"group-components": ["shards=8"]}, r"key group-components: no rule group 'shards'"),
-    ("executor: [unclosed", r"not valid YAML"),
-    ("- a list", r"key \(top level\): expected a mapping"),
-])
+@pytest.mark.parametrize(
+    "settings, expected",
+    [
+        (
+            {"executor": "slurmx"},
+            r"key executor: 'slurmx' is not installed .*snakemake-executor-plugin-slurmx",
+        ),
+        ({"executro": "slurm"}, r"key executro: not an option of Snakemake"),
+        (
+            {"set-resources": {"predict_shards": {"mem_mb": 8000}}},
+            r"key set-resources.predict_shards: no such rule",
+        ),
+        (
+            {"set-resources": {"predict_shard": {"mem_mb": 500}}},
+            r"key set-resources.predict_shard.mem_mb: 500 is below what rule predict_shard needs \(4000 MB",
+        ),
+        ({"group-components": ["shards=8"]}, r"key group-components: no rule group 'shards'"),
+        ("executor: [unclosed", r"not valid YAML"),
+        ("- a list", r"key \(top level\): expected a mapping"),
+    ],
+)
 def test_bad_profiles_are_refused_by_file_and_key(tmp_path, settings, expected):
     folder = write_profile(tmp_path, settings)
     with pytest.raises(TesseraInputError, match=expected) as error:
@@ -45,7 +58,9 @@ def test_bad_profiles_are_refused_by_file_and_key(tmp_path, settings, expected):
 
 def test_more_memory_and_less_runtime_are_accepted(tmp_path):
     # runtime in rules/ is a generous limit, memory a need
-    folder = write_profile(tmp_path, {"set-resources": {"predict_shard": {"mem_mb": 16000, "runtime": 5}}})
+    folder = write_profile(
+        tmp_path, {"set-resources": {"predict_shard": {"mem_mb": 16000, "runtime": 5}}}
+    )
     assert check_profile(folder)["set-resources"]["predict_shard"]["mem_mb"] == 16000
 
 
@@ -59,7 +74,14 @@ def test_rule_needs_are_read_from_the_rule_files():
 
 def test_command_line_exit_status(tmp_path):
     bad = write_profile(tmp_path, {"executor": "nowhere"})
-    done = subprocess.run([sys.executable, "-m", "tessera.profiles", str(REPO / "profiles" / "local"), str(bad)],
-                          capture_output=True, text=True, cwd=REPO)
+    done = subprocess.run(
+        [sys.executable, "-m", "tessera.profiles", str(REPO / "profiles" / "local"), str(bad)],
+        capture_output=True,
+        text=True,
+        cwd=REPO,
+    )
     assert done.returncode == 1
-    assert "profiles/local: ok" in done.stdout and "key executor: 'nowhere' is not installed" in done.stderr
+    assert (
+        "profiles/local: ok" in done.stdout
+        and "key executor: 'nowhere' is not installed" in done.stderr
+    )

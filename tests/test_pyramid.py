@@ -51,9 +51,13 @@ def test_block_mean_rejects_bad_factors():
 def test_streamed_level_is_independent_of_band_size(tmp_path, band_rows):
     rng = np.random.default_rng(2)
     data = rng.integers(0, 256, size=(3, 37, 29), dtype=np.uint8)
-    src = zarr.create_array(store=str(tmp_path / "s.zarr"), shape=data.shape, chunks=(1, 8, 8), dtype="uint8")
+    src = zarr.create_array(
+        store=str(tmp_path / "s.zarr"), shape=data.shape, chunks=(1, 8, 8), dtype="uint8"
+    )
     src[:] = data
-    out = zarr.create_array(store=str(tmp_path / "o.zarr"), shape=(3, 19, 15), chunks=(1, 8, 8), dtype="uint8")
+    out = zarr.create_array(
+        store=str(tmp_path / "o.zarr"), shape=(3, 19, 15), chunks=(1, 8, 8), dtype="uint8"
+    )
     downsample_level(src, out, factors=(1, 2, 2), band_rows=band_rows)
     expected = np.rint(block_mean(data, (1, 2, 2))).astype(np.uint8)
     np.testing.assert_array_equal(out[:], expected)
@@ -64,8 +68,16 @@ def test_pyramid_levels_metadata_and_values(tmp_path, downsample_z):
     rng = np.random.default_rng(4)
     volume = rng.integers(0, 256, size=(8, 64, 48), dtype=np.uint8)
     tifffile.imwrite(tmp_path / "v.tif", volume)
-    ingest_stack(tmp_path / "v.tif", tmp_path / "a.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 16, 16))
-    factors = build_pyramid(tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=3, downsample_z=downsample_z)
+    ingest_stack(
+        tmp_path / "v.tif",
+        tmp_path / "a.ome.zarr",
+        fmt="tiff_stack",
+        spacing=(40, 8, 8),
+        chunks=(1, 16, 16),
+    )
+    factors = build_pyramid(
+        tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=3, downsample_z=downsample_z
+    )
     fz = 2 if downsample_z else 1
     assert factors == [(1, 1, 1), (fz, 2, 2), (fz**2, 4, 4), (fz**3, 8, 8)]
     group, info = open_image(tmp_path / "p.ome.zarr")
@@ -94,7 +106,10 @@ def test_level0_shares_storage_with_ingest_output(tmp_path):
     twin = tmp_path / "a.ome.zarr" / chunk.relative_to(tmp_path / "p.ome.zarr")
     assert os.path.samefile(chunk, twin)
     # the pyramid's checksum manifest of level 0 is its own file: the ingest's one is not rewritten
-    manifests = [store / "0" / "tessera-checksums.json" for store in (tmp_path / "p.ome.zarr", tmp_path / "a.ome.zarr")]
+    manifests = [
+        store / "0" / "tessera-checksums.json"
+        for store in (tmp_path / "p.ome.zarr", tmp_path / "a.ome.zarr")
+    ]
     assert not os.path.samefile(*manifests)
     assert manifests[0].read_text() != manifests[1].read_text()
     # Removing the pyramid (as Snakemake does before a rerun) leaves the ingest output intact.
@@ -103,5 +118,8 @@ def test_level0_shares_storage_with_ingest_output(tmp_path):
 
 
 def test_working_level_names_the_available_factors():
-    with pytest.raises(TesseraInputError, match=r"no pyramid level is downsampled 16x in-plane; levels have \[1, 2\]"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"no pyramid level is downsampled 16x in-plane; levels have \[1, 2\]",
+    ):
         working_level([(1, 1, 1), (1, 2, 2)], 16)

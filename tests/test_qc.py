@@ -98,7 +98,9 @@ def test_smoothed_sharpness_matches_gaussian_laplace(sigma, strip_pixels, monkey
     section = textured((70, 53), seed=8, level=120)
     m = qc.section_metrics(section, sharpness_sigma=sigma)
     # reference: scipy.ndimage.gaussian_laplace (Laplacian of Gaussian, mode 'reflect')
-    assert m["sharpness"] == pytest.approx(np.var(ndimage.gaussian_laplace(section, sigma)), rel=1e-10)
+    assert m["sharpness"] == pytest.approx(
+        np.var(ndimage.gaussian_laplace(section, sigma)), rel=1e-10
+    )
 
 
 def test_smoothing_reveals_defocus_under_detector_noise():
@@ -117,9 +119,17 @@ def test_smoothing_reveals_defocus_under_detector_noise():
 def test_small_relative_changes_are_not_flagged_in_a_uniform_stack():
     # Sharpness within 5 % and means within 3 grey levels of the trend: no section is
     # defective, however small the spread makes the robust z-scores.
-    t = pd.DataFrame({"z": range(8), "mean": [100, 100, 100, 100, 100, 100, 100, 103.0],
-                      "sharpness": [50, 50.2, 49.9, 50.1, 47.5, 50, 50.1, 49.9],
-                      "flat_fraction": 0.0, "shift_y": 0.0, "shift_x": 0.0, "shift": 0.0})
+    t = pd.DataFrame(
+        {
+            "z": range(8),
+            "mean": [100, 100, 100, 100, 100, 100, 100, 103.0],
+            "sharpness": [50, 50.2, 49.9, 50.1, 47.5, 50, 50.1, 49.9],
+            "flat_fraction": 0.0,
+            "shift_y": 0.0,
+            "shift_x": 0.0,
+            "shift": 0.0,
+        }
+    )
     assert not qc.flag_sections(t)["excluded"].any()
     strict = qc.flag_sections(t, min_sharpness_drop=0.0, min_intensity_change=0.0)
     assert strict["reason"].tolist()[4] == "blurred" and strict["reason"].tolist()[7] == "intensity"

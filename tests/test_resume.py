@@ -41,10 +41,15 @@ def comparable(record):
     """A provenance record without when and where the job ran, nor the checksums of the outputs
     that record those (the audit job writes the record index and the RO-Crate)."""
     kept = {k: v for k, v in record.items() if k not in WHEN_AND_WHERE}
-    kept["outputs"] = [{**o, "sha256": None, "bytes": None}
-                       if o["path"].startswith("results/") and is_run_specific(o["path"][len("results/"):]) else o
-                       for o in record["outputs"]]
+    kept["outputs"] = [
+        {**o, "sha256": None, "bytes": None}
+        if o["path"].startswith("results/") and is_run_specific(o["path"][len("results/") :])
+        else o
+        for o in record["outputs"]
+    ]
     return kept
+
+
 FINISHED = " done in "  # run_job's last log line
 
 
@@ -121,7 +126,9 @@ def attempt(study, point, output):
     # temporaries a kill left behind earlier are not a write under way
     stale = set(study.glob(point.partial)) if point and point.partial else set()
     with open(output, "w") as out:
-        proc = subprocess.Popen(RUN, cwd=study, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
+        proc = subprocess.Popen(
+            RUN, cwd=study, stdout=out, stderr=subprocess.STDOUT, start_new_session=True
+        )
     start = time.monotonic()
     try:
         while proc.poll() is None:
@@ -136,31 +143,56 @@ def attempt(study, point, output):
             if seen:
                 kill_group(proc)
                 running = unfinished_jobs(study, point.rule, before)
-                mid_write = sorted(p.name for p in set(study.glob(point.partial)) - stale) if point.partial else []
-                return {"rule": point.rule, "trigger": point.trigger, "seen": seen, "landed": bool(running),
-                        "running": running, "mid_write": mid_write, "after_s": round(time.monotonic() - start, 2),
-                        "returncode": None}
+                mid_write = (
+                    sorted(p.name for p in set(study.glob(point.partial)) - stale)
+                    if point.partial
+                    else []
+                )
+                return {
+                    "rule": point.rule,
+                    "trigger": point.trigger,
+                    "seen": seen,
+                    "landed": bool(running),
+                    "running": running,
+                    "mid_write": mid_write,
+                    "after_s": round(time.monotonic() - start, 2),
+                    "returncode": None,
+                }
             time.sleep(0.005)
     finally:
         if proc.poll() is None:
             kill_group(proc)
-    return {"rule": point.rule if point else None, "trigger": point.trigger if point else None, "seen": [],
-            "landed": False, "running": [], "mid_write": [], "after_s": round(time.monotonic() - start, 2),
-            "returncode": proc.returncode}
+    return {
+        "rule": point.rule if point else None,
+        "trigger": point.trigger if point else None,
+        "seen": [],
+        "landed": False,
+        "running": [],
+        "mid_write": [],
+        "after_s": round(time.monotonic() - start, 2),
+        "returncode": proc.returncode,
+    }
 
 
 def summary(kills):
-    lines = [f"{'rule':14} {'trigger':7} {'landed':6} {'after s':>7}  jobs unfinished at the kill / temporaries left"]
+    lines = [
+        f"{'rule':14} {'trigger':7} {'landed':6} {'after s':>7}  jobs unfinished at the kill / temporaries left"
+    ]
     for k in kills:
-        lines.append(f"{k['rule']:14} {k['trigger']:7} {'yes' if k['landed'] else 'NO':6} {k['after_s']:7.2f}  "
-                     f"{', '.join(k['running']) or '-'} / {', '.join(k['mid_write']) or '-'}")
+        lines.append(
+            f"{k['rule']:14} {k['trigger']:7} {'yes' if k['landed'] else 'NO':6} {k['after_s']:7.2f}  "
+            f"{', '.join(k['running']) or '-'} / {', '.join(k['mid_write']) or '-'}"
+        )
     return "\n".join(lines)
 
 
 def reader_failures(text):
     """Signs that a job failed (a reader met a half-written input, or anything else)."""
-    return [line for line in text.splitlines()
-            if line.startswith(("Error in rule", "tessera:", "Traceback")) or "Exception" in line]
+    return [
+        line
+        for line in text.splitlines()
+        if line.startswith(("Error in rule", "tessera:", "Traceback")) or "Exception" in line
+    ]
 
 
 @pytest.fixture(scope="module")
@@ -172,8 +204,12 @@ def reference(tmp_path_factory, new_tiny_study):
     return study, time.monotonic() - started
 
 
-@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="follows the killed processes through Linux /proc")
-def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_path, new_tiny_study, file_digests):
+@pytest.mark.skipif(
+    not Path("/proc/self/stat").exists(), reason="follows the killed processes through Linux /proc"
+)
+def test_ten_kills_and_resumes_give_the_uninterrupted_results(
+    reference, tmp_path, new_tiny_study, file_digests
+):
     reference, reference_s = reference
     study = new_tiny_study(tmp_path / "killed")
     started = time.monotonic()
@@ -184,19 +220,26 @@ def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_pat
         kills.append(kill)
         assert kill["returncode"] is None, (
             f"the run ended (exit {kill['returncode']}) before a job of rule {point.rule} was seen running; "
-            f"kills so far:\n{summary(kills)}\n{outputs[-1].read_text()[-3000:]}")
-        unlock = subprocess.run([*SNAKEMAKE, "--unlock"], cwd=study, capture_output=True, text=True, timeout=300)
+            f"kills so far:\n{summary(kills)}\n{outputs[-1].read_text()[-3000:]}"
+        )
+        unlock = subprocess.run(
+            [*SNAKEMAKE, "--unlock"], cwd=study, capture_output=True, text=True, timeout=300
+        )
         assert unlock.returncode == 0, unlock.stderr
     outputs.append(tmp_path / "final.txt")
     final = attempt(study, None, outputs[-1])
     elapsed = time.monotonic() - started
     report = summary(kills)
-    print(f"\n{report}\n{sum(k['landed'] for k in kills)} of {len(kills)} kills landed inside a running job; "
-          f"the uninterrupted run took {reference_s:.0f} s, the ten kills, unlocks and resumes {elapsed:.0f} s")
+    print(
+        f"\n{report}\n{sum(k['landed'] for k in kills)} of {len(kills)} kills landed inside a running job; "
+        f"the uninterrupted run took {reference_s:.0f} s, the ten kills, unlocks and resumes {elapsed:.0f} s"
+    )
 
     assert final["returncode"] == 0, outputs[-1].read_text()[-5000:]
     landed = [k["rule"] for k in kills if k["landed"]]
-    assert landed == [p.rule for p in KILL_POINTS], f"kills that did not land inside a running job:\n{report}"
+    assert landed == [p.rule for p in KILL_POINTS], (
+        f"kills that did not land inside a running job:\n{report}"
+    )
     failures = [(out.name, line) for out in outputs for line in reader_failures(out.read_text())]
     assert not failures, failures
 
@@ -205,13 +248,20 @@ def test_ten_kills_and_resumes_give_the_uninterrupted_results(reference, tmp_pat
     assert not leftovers, leftovers
     expected, got = file_digests(reference / "results"), file_digests(study / "results")
     assert got.keys() == expected.keys(), sorted(set(got) ^ set(expected))
-    differing = [name for name in expected if got[name] != expected[name] and not is_run_specific(name)]
-    assert not differing, f"{len(differing)} of {len(expected)} result files differ, e.g. {differing[:10]}"
+    differing = [
+        name for name in expected if got[name] != expected[name] and not is_run_specific(name)
+    ]
+    assert not differing, (
+        f"{len(differing)} of {len(expected)} result files differ, e.g. {differing[:10]}"
+    )
     # the provenance records themselves differ only in when and where each job ran
     records = sorted(name for name in expected if name.startswith("provenance/"))
     assert records
     for name in records:
-        a, b = (comparable(json.loads((root / "results" / name).read_text())) for root in (reference, study))
+        a, b = (
+            comparable(json.loads((root / "results" / name).read_text()))
+            for root in (reference, study)
+        )
         assert a == b, name
     dry = subprocess.run([*SNAKEMAKE, "-n"], cwd=study, capture_output=True, text=True, timeout=300)
     assert "Nothing to be done" in dry.stdout + dry.stderr

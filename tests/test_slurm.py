@@ -27,19 +27,33 @@ def slurm_env():
     required = os.environ.get("TESSERA_SLURM_REQUIRED") == "1"
     give_up = pytest.fail if required else pytest.skip
     if not cluster:
-        give_up("TESSERA_SLURM_DIR is not set (start a test cluster with `.ci/slurm-cluster start DIR`)")
-    status = subprocess.run([str(REPO / ".ci" / "slurm-cluster"), "status", cluster], capture_output=True,
-                            text=True, timeout=60)
+        give_up(
+            "TESSERA_SLURM_DIR is not set (start a test cluster with `.ci/slurm-cluster start DIR`)"
+        )
+    status = subprocess.run(
+        [str(REPO / ".ci" / "slurm-cluster"), "status", cluster],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     if status.returncode != 0:
         give_up(f"no SLURM test cluster running in {cluster}: {status.stderr.strip()}")
     return {**os.environ, "SLURM_CONF": str(Path(cluster) / "slurm.conf")}
 
 
 def snakemake(*args, cwd, env=None):
-    result = subprocess.run([str(BIN / "snakemake"), *args], cwd=cwd, env=env, capture_output=True, text=True,
-                            timeout=2400)
+    result = subprocess.run(
+        [str(BIN / "snakemake"), *args],
+        cwd=cwd,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=2400,
+    )
     if result.returncode != 0:
-        raise AssertionError(f"snakemake {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}")
+        raise AssertionError(
+            f"snakemake {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}"
+        )
     return result
 
 
@@ -48,12 +62,20 @@ def test_slurm_run_matches_local_run(slurm_env, tmp_path, new_tiny_study, file_d
     snakemake("--cores", "2", "--snakefile", str(REPO / "Snakefile"), cwd=local)
 
     cluster = new_tiny_study(tmp_path / "cluster")
-    snakemake("--profile", str(REPO / "profiles" / "slurm-test"), "--snakefile", str(REPO / "Snakefile"),
-              cwd=cluster, env=slurm_env)
+    snakemake(
+        "--profile",
+        str(REPO / "profiles" / "slurm-test"),
+        "--snakefile",
+        str(REPO / "Snakefile"),
+        cwd=cluster,
+        env=slurm_env,
+    )
 
     # The jobs really went through SLURM, and the prediction shards were bundled into fewer SLURM jobs.
     slurm_logs = cluster / ".snakemake" / "slurm_logs"
-    assert any((slurm_logs / "rule_pyramid").glob("*/*.log")), sorted(p.name for p in slurm_logs.iterdir())
+    assert any((slurm_logs / "rule_pyramid").glob("*/*.log")), sorted(
+        p.name for p in slurm_logs.iterdir()
+    )
     shard_jobs = len(list((cluster / "results").glob("*/predicted/*/shards/job*")))
     bundles = list((slurm_logs / "group_predict_shards_predict_shard").glob("*.log"))
     assert 1 <= len(bundles) < shard_jobs
@@ -63,5 +85,9 @@ def test_slurm_run_matches_local_run(slurm_env, tmp_path, new_tiny_study, file_d
     assert got.keys() == expected.keys()
     # Provenance records and the RO-Crate say when, where and with which resources jobs ran: the
     # only results meant to differ.
-    differing = [name for name in expected if got[name] != expected[name] and not is_run_specific(name)]
-    assert not differing, f"{len(differing)} of {len(expected)} result files differ, e.g. {differing[:10]}"
+    differing = [
+        name for name in expected if got[name] != expected[name] and not is_run_specific(name)
+    ]
+    assert not differing, (
+        f"{len(differing)} of {len(expected)} result files differ, e.g. {differing[:10]}"
+    )

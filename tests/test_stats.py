@@ -13,7 +13,9 @@ from tessera.errors import TesseraInputError
 from tessera.stats import animal_summaries, compare_conditions
 
 
-def simulated_study(seed, *, effect=math.log(1.25), animals=4, objects=60, animal_sd=0.08, object_sd=0.5):
+def simulated_study(
+    seed, *, effect=math.log(1.25), animals=4, objects=60, animal_sd=0.08, object_sd=0.5
+):
     """Log-normal object volumes nested in animals nested in two conditions (textbook design:
     random intercept per animal, fixed condition effect on the log scale)."""
     rng = np.random.default_rng(seed)
@@ -22,8 +24,15 @@ def simulated_study(seed, *, effect=math.log(1.25), animals=4, objects=60, anima
         for a in range(animals):
             u = rng.normal(0, animal_sd)
             for v in rng.normal(shift + u, object_sd, objects):
-                rows.append({"subject": f"{condition}{a}", "condition": condition, "volume_um3": math.exp(v),
-                             "touches_volume_border": False, "touches_excluded_section": False})
+                rows.append(
+                    {
+                        "subject": f"{condition}{a}",
+                        "condition": condition,
+                        "volume_um3": math.exp(v),
+                        "touches_volume_border": False,
+                        "touches_excluded_section": False,
+                    }
+                )
     return pd.DataFrame(rows)
 
 
@@ -69,8 +78,11 @@ def test_known_effect_is_recovered_with_interval_excluding_no_change():
 def test_objects_are_not_independent_samples():
     # With animal variation, the naive object-level test is overconfident; ours is not.
     objects = simulated_study(4, effect=0.0, animal_sd=0.3, objects=400)
-    naive = sps.ttest_ind(np.log(objects.loc[objects.condition == "treated", "volume_um3"]),
-                          np.log(objects.loc[objects.condition == "control", "volume_um3"]), equal_var=False)
+    naive = sps.ttest_ind(
+        np.log(objects.loc[objects.condition == "treated", "volume_um3"]),
+        np.log(objects.loc[objects.condition == "control", "volume_um3"]),
+        equal_var=False,
+    )
     animals = animal_summaries(objects, measures=["volume_um3"])
     row = compare_conditions(animals, measures=["volume_um3"], reference="control").iloc[0]
     assert row["p_value"] > naive.pvalue
@@ -79,9 +91,16 @@ def test_objects_are_not_independent_samples():
 def test_cut_objects_are_left_out_and_empty_animals_kept():
     objects = simulated_study(5, animals=1, objects=3)
     objects.loc[0, "touches_volume_border"] = True
-    animals = animal_summaries(objects, measures=["volume_um3"], subjects={"control0": "control", "treated0": "treated",
-                                                                            "spare": "control"})
-    assert animals.set_index("subject")["objects"].to_dict() == {"control0": 2, "spare": 0, "treated0": 3}
+    animals = animal_summaries(
+        objects,
+        measures=["volume_um3"],
+        subjects={"control0": "control", "treated0": "treated", "spare": "control"},
+    )
+    assert animals.set_index("subject")["objects"].to_dict() == {
+        "control0": 2,
+        "spare": 0,
+        "treated0": 3,
+    }
     assert math.isnan(animals.set_index("subject").loc["spare", "volume_um3"])
 
 
@@ -90,7 +109,9 @@ def test_one_animal_per_condition_warns_instead_of_failing(caplog):
     animals = animal_summaries(objects, measures=["volume_um3", "touches_volume_border"])
     with caplog.at_level(logging.WARNING):
         row = compare_conditions(animals, measures=["volume_um3"], reference="control").iloc[0]
-    assert math.isnan(row["ci_low"]) and "only 1 animal(s) in a group: no interval" in row["warning"]
+    assert (
+        math.isnan(row["ci_low"]) and "only 1 animal(s) in a group: no interval" in row["warning"]
+    )
     assert "use at least 3 animals per condition" in caplog.text
 
 

@@ -32,8 +32,12 @@ def volume(shape=(6, 96, 96), seed=0, centres=()):
     zz, yy, xx = np.indices(shape)
     truth = np.zeros(shape, dtype=np.uint16)
     blobs = [(c, 10.0) for c in centres] + [
-        ((rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(0, shape[2])),
-         rng.uniform(6, 14)) for _ in range(8)]
+        (
+            (rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), rng.uniform(0, shape[2])),
+            rng.uniform(6, 14),
+        )
+        for _ in range(8)
+    ]
     for k, ((cz, cy, cx), r) in enumerate(blobs, start=1):
         truth[((yy - cy) ** 2 + (xx - cx) ** 2 + (4 * (zz - cz)) ** 2) < r * r] = k
     raw = np.where(truth > 0, 90, 170) + rng.normal(0, 12, shape)
@@ -59,16 +63,24 @@ def listing(directory):
 def exported(tmp_path):
     raw0, truth0 = volume(centres=POINTS)
     level1 = np.rint(downscale_local_mean(raw0, FACTORS)).astype(np.uint8)
-    store = zarr.create_array(store=str(tmp_path / "level1.zarr"), shape=level1.shape,
-                              chunks=(1, 16, 16), dtype="uint8")
+    store = zarr.create_array(
+        store=str(tmp_path / "level1.zarr"), shape=level1.shape, chunks=(1, 16, 16), dtype="uint8"
+    )
     store[:] = level1
-    sheet = write_points(tmp_path / "points.tsv",
-                         [("d1", "mito", *p) for p in POINTS])
+    sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", *p) for p in POINTS])
     points = tiles.read_points(sheet, datasets=["d1", "d2"], targets=["mito", "nuclei"])
     out = tmp_path / "tiles"
     registry = tiles.export_tiles(store, points, level=1, factors=FACTORS, size=16, out_dir=out)
-    return {"raw0": raw0, "truth0": truth0, "level1": level1, "registry": registry, "out": out,
-            "points": points, "store": store, "tmp": tmp_path}
+    return {
+        "raw0": raw0,
+        "truth0": truth0,
+        "level1": level1,
+        "registry": registry,
+        "out": out,
+        "points": points,
+        "store": store,
+        "tmp": tmp_path,
+    }
 
 
 def paint(exported, masks_dir, *, fg=255, ignore=None):
@@ -77,7 +89,7 @@ def paint(exported, masks_dir, *, fg=255, ignore=None):
     truth1 = tiles.labels_to_target_mask(exported["truth0"], factors=FACTORS)
     expected = {}
     for r in exported["registry"].itertuples(index=False):
-        t = truth1[r.z, r.y0:r.y0 + r.height, r.x0:r.x0 + r.width]
+        t = truth1[r.z, r.y0 : r.y0 + r.height, r.x0 : r.x0 + r.width]
         img = np.where(t > 0, fg, 0).astype(np.uint8)
         lab = t.astype(np.uint8)
         if ignore is not None:
@@ -94,13 +106,14 @@ def paint(exported, masks_dir, *, fg=255, ignore=None):
 
 def test_export_writes_tiles_previews_and_registry(exported):
     out, reg, level1 = exported["out"], exported["registry"], exported["level1"]
-    assert listing(out) == sorted(["tiles.tsv"] + [f"{t}{s}" for t in reg["tile_id"]
-                                                    for s in (".tif", ".preview.png")])
+    assert listing(out) == sorted(
+        ["tiles.tsv"] + [f"{t}{s}" for t in reg["tile_id"] for s in (".tif", ".preview.png")]
+    )
     for p, r in zip(exported["points"].itertuples(), reg.itertuples()):
         # centre mapped to the level by integer division; tile of 16 centred as y - size // 2
         assert (r.z, r.y0, r.x0) == (p.z, p.y // 2 - 8, p.x // 2 - 8)
         # reference: numpy slicing of the whole level, read back with tifffile
-        cut = level1[r.z, r.y0:r.y0 + 16, r.x0:r.x0 + 16]
+        cut = level1[r.z, r.y0 : r.y0 + 16, r.x0 : r.x0 + 16]
         np.testing.assert_array_equal(tifffile.imread(out / f"{r.tile_id}.tif"), cut)
         # reference: skimage.exposure.rescale_intensity over the 1st-99th percentile range
         lo, hi = np.percentile(cut, [1, 99])
@@ -130,8 +143,7 @@ def test_round_trip_export_paint_import_store(exported):
 def test_import_maps_ignore_value_to_255(exported):
     # unsure pixels carry their own value and are ignored (common practice, see FIELD.md)
     expected = paint(exported, exported["tmp"] / "masks", fg=255, ignore=128)
-    _, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks",
-                                     ignore_value=128)
+    _, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks", ignore_value=128)
     for tid, lab in expected.items():
         np.testing.assert_array_equal(labels[tid], lab)
         assert (labels[tid][0] == 255).all()
@@ -146,31 +158,45 @@ def test_missing_mask_names_tile_and_expected_file(exported):
 
 
 def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_path):
-    sheet = write_points(tmp_path / "edge.tsv", [("d1", "mito", 0, 40, 40),
-                                                 ("d1", "mito", 1, 10, 60)])
+    sheet = write_points(
+        tmp_path / "edge.tsv", [("d1", "mito", 0, 40, 40), ("d1", "mito", 1, 10, 60)]
+    )
     points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     before = listing(tmp_path)
     with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2 .*outside the image of shape"):
-        tiles.export_tiles(exported["store"], points, level=1, factors=FACTORS, size=16,
-                           out_dir=tmp_path / "edge_tiles")
+        tiles.export_tiles(
+            exported["store"],
+            points,
+            level=1,
+            factors=FACTORS,
+            size=16,
+            out_dir=tmp_path / "edge_tiles",
+        )
     assert listing(tmp_path) == before
     # a section beyond the stack is outside too
     sheet = write_points(tmp_path / "deep.tsv", [("d1", "mito", 6, 40, 40)])
     points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     with pytest.raises(TesseraInputError, match=r"deep\.tsv.*row 1"):
-        tiles.export_tiles(exported["store"], points, level=1, factors=FACTORS, size=16,
-                           out_dir=tmp_path / "deep_tiles")
+        tiles.export_tiles(
+            exported["store"],
+            points,
+            level=1,
+            factors=FACTORS,
+            size=16,
+            out_dir=tmp_path / "deep_tiles",
+        )
     assert not (tmp_path / "deep_tiles").exists()
 
 
 def test_export_uses_per_row_size(tmp_path):
     img = np.arange(3 * 40 * 40, dtype=np.uint32).reshape(3, 40, 40).astype(np.uint8)
-    sheet = write_points(tmp_path / "p.tsv", [("d", "m", 0, 20, 20, "a", ""),
-                                              ("d", "m", 1, 20, 20, "b", "6")],
-                         columns=("dataset", "target", "z", "y", "x", "tile_id", "size"))
+    sheet = write_points(
+        tmp_path / "p.tsv",
+        [("d", "m", 0, 20, 20, "a", ""), ("d", "m", 1, 20, 20, "b", "6")],
+        columns=("dataset", "target", "z", "y", "x", "tile_id", "size"),
+    )
     pts = tiles.read_points(sheet, datasets=["d"], targets=["m"])
-    reg = tiles.export_tiles(img, pts, level=0, factors=(1, 1, 1), size=10,
-                             out_dir=tmp_path / "t")
+    reg = tiles.export_tiles(img, pts, level=0, factors=(1, 1, 1), size=10, out_dir=tmp_path / "t")
     assert reg["height"].tolist() == [10, 6]
     np.testing.assert_array_equal(tifffile.imread(tmp_path / "t" / "b.tif"), img[1, 17:23, 17:23])
 
@@ -179,13 +205,16 @@ def test_export_uses_per_row_size(tmp_path):
 # points sheet
 
 
-@pytest.mark.parametrize("row, message", [
-    (("d9", "mito", 1, 40, 40), r"row 2, column 'dataset': unknown dataset 'd9'"),
-    (("d1", "golgi", 1, 40, 40), r"row 2.*target.*'golgi'"),
-    (("d1", "mito", 1, -4, 40), r"row 2.*'y'.*-4"),
-    (("d1", "mito", 1.5, 4, 40), r"row 2.*'z'.*1\.5"),
-    (("d1", "mito", 1, "", 40), r"row 2.*'y'.*''"),
-])
+@pytest.mark.parametrize(
+    "row, message",
+    [
+        (("d9", "mito", 1, 40, 40), r"row 2, column 'dataset': unknown dataset 'd9'"),
+        (("d1", "golgi", 1, 40, 40), r"row 2.*target.*'golgi'"),
+        (("d1", "mito", 1, -4, 40), r"row 2.*'y'.*-4"),
+        (("d1", "mito", 1.5, 4, 40), r"row 2.*'z'.*1\.5"),
+        (("d1", "mito", 1, "", 40), r"row 2.*'y'.*''"),
+    ],
+)
 def test_points_errors_name_file_and_row(tmp_path, row, message):
     sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", 0, 10, 10), row])
     with pytest.raises(TesseraInputError, match=rf"points\.tsv.*{message}"):
@@ -193,8 +222,11 @@ def test_points_errors_name_file_and_row(tmp_path, row, message):
 
 
 def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
-    sheet = write_points(tmp_path / "p.tsv", [("d1", "mito", 0, 10, 10, 3)],
-                         columns=("dataset", "target", "z", "y", "x", "colour"))
+    sheet = write_points(
+        tmp_path / "p.tsv",
+        [("d1", "mito", 0, 10, 10, 3)],
+        columns=("dataset", "target", "z", "y", "x", "colour"),
+    )
     with pytest.raises(TesseraInputError, match=r"p\.tsv.*unknown \['colour'\]"):
         tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     sheet = write_points(tmp_path / "q.tsv", [("d1", "mito", 0, 10, 10)] * 2)
@@ -215,8 +247,13 @@ class _RunsOnLoad:
 def test_points_cells_are_data_never_code(tmp_path):
     # pandas reads every cell as text (dtype=str); coordinates must be plain integers
     marker = tmp_path / "ran"
-    sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", f"__import__('os').mkdir('{marker}')", 10, 10)])
-    with pytest.raises(TesseraInputError, match=r"points\.tsv: row 1, column 'z': expected a whole number >= 0, got"):
+    sheet = write_points(
+        tmp_path / "points.tsv", [("d1", "mito", f"__import__('os').mkdir('{marker}')", 10, 10)]
+    )
+    with pytest.raises(
+        TesseraInputError,
+        match=r"points\.tsv: row 1, column 'z': expected a whole number >= 0, got",
+    ):
         tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
     formula = write_points(tmp_path / "f.tsv", [("d1", "mito", "=1+1", 10, 10)])
     with pytest.raises(TesseraInputError, match=r"f\.tsv: row 1, column 'z'"):
@@ -228,9 +265,14 @@ def test_points_cells_are_data_never_code(tmp_path):
 def test_points_tile_ids_cannot_name_other_folders(tmp_path, tile_id):
     # a tile id becomes a file name (<tile_id>.tif, <tile_id>.png); POSIX path rules make "/" and
     # ".." reach other folders, so ids are restricted to letters, digits, "_" and "-"
-    sheet = write_points(tmp_path / "p.tsv", [("d1", "mito", 0, 10, 10, tile_id)],
-                         columns=("dataset", "target", "z", "y", "x", "tile_id"))
-    with pytest.raises(TesseraInputError, match=r"p\.tsv: row 1, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"):
+    sheet = write_points(
+        tmp_path / "p.tsv",
+        [("d1", "mito", 0, 10, 10, tile_id)],
+        columns=("dataset", "target", "z", "y", "x", "tile_id"),
+    )
+    with pytest.raises(
+        TesseraInputError, match=r"p\.tsv: row 1, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"
+    ):
         tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
@@ -252,8 +294,9 @@ def test_mask_encodings_read_identically(tmp_path):
         "01.png": save_png(tmp_path / "01.png", lab),
         "0255.png": save_png(tmp_path / "0255.png", lab * 255),
         "rgb.png": save_png(tmp_path / "rgb.png", np.repeat((lab * 255)[..., None], 3, axis=2)),
-        "rgba.png": save_png(tmp_path / "rgba.png", np.dstack(
-            [lab * 255] * 3 + [np.full_like(lab, 255)])),
+        "rgba.png": save_png(
+            tmp_path / "rgba.png", np.dstack([lab * 255] * 3 + [np.full_like(lab, 255)])
+        ),
         "p.png": tmp_path / "p.png",
         "16.png": tmp_path / "16.png",
         "16.tif": tmp_path / "16.tif",
@@ -275,22 +318,26 @@ def test_zero_one_mask_with_ignore_255(tmp_path):
     lab = mask_pair()
     img = lab.copy()
     img[5:7] = 255
-    got = tiles.read_painted_mask(save_png(tmp_path / "m.png", img), shape=lab.shape,
-                                  ignore_value=255)
+    got = tiles.read_painted_mask(
+        save_png(tmp_path / "m.png", img), shape=lab.shape, ignore_value=255
+    )
     expected = lab.copy()
     expected[5:7] = 255
     np.testing.assert_array_equal(got, expected)
 
 
-@pytest.mark.parametrize("case, message", [
-    ("shape", r"expected a mask of shape \(12, 10\)"),
-    ("float", r"integer pixels.*float32"),
-    ("seven", r"unexpected values \[7\]"),
-    ("both", r"unexpected values \[1, 255\].*ignore"),
-    ("background", r"the mask has no target pixels"),
-    ("foreground", r"the mask has no background pixels"),
-    ("colour", r"colour pixels"),
-])
+@pytest.mark.parametrize(
+    "case, message",
+    [
+        ("shape", r"expected a mask of shape \(12, 10\)"),
+        ("float", r"integer pixels.*float32"),
+        ("seven", r"unexpected values \[7\]"),
+        ("both", r"unexpected values \[1, 255\].*ignore"),
+        ("background", r"the mask has no target pixels"),
+        ("foreground", r"the mask has no background pixels"),
+        ("colour", r"colour pixels"),
+    ],
+)
 def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
     lab = mask_pair()
     path = tmp_path / f"bad-{case}.png"
@@ -324,7 +371,9 @@ def test_mask_files_are_decoded_as_images_never_unpickled(tmp_path, suffix):
     import pickle
 
     payload = pickle.dumps(_RunsOnLoad(tmp_path / "ran"))
-    pickle.loads(pickle.dumps(_RunsOnLoad(tmp_path / "control")))  # the payload is live when unpickled
+    pickle.loads(
+        pickle.dumps(_RunsOnLoad(tmp_path / "control"))
+    )  # the payload is live when unpickled
     assert (tmp_path / "control").is_dir()
     path = tmp_path / f"t{suffix}"
     path.write_bytes(payload)
@@ -349,23 +398,49 @@ def test_bad_mask_in_import_writes_nothing(exported):
 
 
 def test_write_annotation_set_rejects_bad_labels_and_writes_nothing(tmp_path):
-    reg = pd.DataFrame({"tile_id": ["a"], "dataset": ["d"], "target": ["m"], "level": [0],
-                        "z": [0], "y0": [0], "x0": [0], "height": [4], "width": [4],
-                        "source": ["labels"]})
-    for bad in (np.full((4, 4), 2, np.uint8), np.zeros((4, 5), np.uint8),
-                np.zeros((4, 4), np.float32)):
+    reg = pd.DataFrame(
+        {
+            "tile_id": ["a"],
+            "dataset": ["d"],
+            "target": ["m"],
+            "level": [0],
+            "z": [0],
+            "y0": [0],
+            "x0": [0],
+            "height": [4],
+            "width": [4],
+            "source": ["labels"],
+        }
+    )
+    for bad in (
+        np.full((4, 4), 2, np.uint8),
+        np.zeros((4, 5), np.uint8),
+        np.zeros((4, 4), np.float32),
+    ):
         with pytest.raises(TesseraInputError, match="'a'"):
             tiles.write_annotation_set(tmp_path / "set", reg, {"a": bad})
     with pytest.raises(TesseraInputError, match=r"row 1.*'z'.*-1"):
-        tiles.write_annotation_set(tmp_path / "set", reg.assign(z=[-1]),
-                                   {"a": np.zeros((4, 4), np.uint8)})
+        tiles.write_annotation_set(
+            tmp_path / "set", reg.assign(z=[-1]), {"a": np.zeros((4, 4), np.uint8)}
+        )
     assert listing(tmp_path) == []
 
 
 def test_read_annotation_set_validates_stored_labels(tmp_path):
-    reg = pd.DataFrame({"tile_id": ["a"], "dataset": ["d"], "target": ["m"], "level": [0],
-                        "z": [0], "y0": [0], "x0": [0], "height": [4], "width": [4],
-                        "source": ["labels"]})
+    reg = pd.DataFrame(
+        {
+            "tile_id": ["a"],
+            "dataset": ["d"],
+            "target": ["m"],
+            "level": [0],
+            "z": [0],
+            "y0": [0],
+            "x0": [0],
+            "height": [4],
+            "width": [4],
+            "source": ["labels"],
+        }
+    )
     tiles.write_annotation_set(tmp_path / "set", reg, {"a": np.eye(4, dtype=np.uint8)})
     save_png(tmp_path / "set" / "labels" / "a.png", np.full((4, 4), 9, np.uint8))
     with pytest.raises(TesseraInputError, match=r"a\.png.*\[9\]"):
@@ -388,16 +463,25 @@ def test_target_mask_is_majority_of_downscale_local_mean(factors):
 
 
 def sampled(label_source, **options):
-    base = dict(dataset="d1", target="mito", level=1, factors=FACTORS, size=16, count=12,
-                seed=4, exclude_z=(2, 5))
+    base = dict(
+        dataset="d1",
+        target="mito",
+        level=1,
+        factors=FACTORS,
+        size=16,
+        count=12,
+        seed=4,
+        exclude_z=(2, 5),
+    )
     base.update(options)
     return tiles.sample_tiles_from_labels(label_source, **base)
 
 
 def test_sampling_deterministic_inside_and_off_excluded_sections(tmp_path):
     _, truth = volume(shape=(8, 96, 96))
-    store = zarr.create_array(store=str(tmp_path / "truth.zarr"), shape=truth.shape,
-                              chunks=(1, 32, 32), dtype="uint16")
+    store = zarr.create_array(
+        store=str(tmp_path / "truth.zarr"), shape=truth.shape, chunks=(1, 32, 32), dtype="uint16"
+    )
     store[:] = truth
     reg, labels = sampled(store)
     reg2, labels2 = sampled(truth)
@@ -413,8 +497,9 @@ def test_sampling_deterministic_inside_and_off_excluded_sections(tmp_path):
     # labels match the reference computed on the whole volume (downscale_local_mean > 0.5)
     ref = downscale_local_mean((truth > 0).astype(np.float64), FACTORS) > 0.5
     for r in reg.itertuples(index=False):
-        np.testing.assert_array_equal(labels[r.tile_id],
-                                      ref[r.z, r.y0:r.y0 + 16, r.x0:r.x0 + 16])
+        np.testing.assert_array_equal(
+            labels[r.tile_id], ref[r.z, r.y0 : r.y0 + 16, r.x0 : r.x0 + 16]
+        )
 
 
 def test_sampling_min_fraction(tmp_path):
@@ -436,9 +521,20 @@ def registry_for_split(seed=0):
         for target in ("mito", "nuclei"):
             zs = rng.integers(0, 40, 30)
             for i, z in enumerate(zs):
-                rows.append({"tile_id": f"{dataset}-{target}-{i}", "dataset": dataset,
-                             "target": target, "level": 1, "z": int(z), "y0": 0, "x0": 0,
-                             "height": 8, "width": 8, "source": "labels"})
+                rows.append(
+                    {
+                        "tile_id": f"{dataset}-{target}-{i}",
+                        "dataset": dataset,
+                        "target": target,
+                        "level": 1,
+                        "z": int(z),
+                        "y0": 0,
+                        "x0": 0,
+                        "height": 8,
+                        "width": 8,
+                        "source": "labels",
+                    }
+                )
     return pd.DataFrame(rows)
 
 
@@ -491,7 +587,7 @@ def test_tile_slices_reflect_pad_matches_numpy_pad_of_section(y0, x0, halo):
     row = {"z": 1, "y0": y0, "x0": x0, "height": 14, "width": 9}
     index, pad = tiles.tile_slices(row, halo=halo, shape=section.shape)
     got = np.pad(section[index], pad, mode="reflect")
-    ref = np.pad(section[1], halo, mode="reflect")[y0:y0 + 14 + 2 * halo, x0:x0 + 9 + 2 * halo]
+    ref = np.pad(section[1], halo, mode="reflect")[y0 : y0 + 14 + 2 * halo, x0 : x0 + 9 + 2 * halo]
     np.testing.assert_array_equal(got, ref)
     with pytest.raises(TesseraInputError, match="outside"):
         tiles.tile_slices({**row, "y0": 40}, halo=halo, shape=section.shape)
@@ -514,12 +610,21 @@ def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):
     assert masks.shape == (20, 1024, 1024)
     keep = list(range(14))
     reg, labels = tiles.sample_tiles_from_labels(
-        masks, dataset="vnc", target="mitochondria", level=1, factors=FACTORS, size=128,
-        count=28, seed=11, exclude_z=range(14, 20), threshold=127)
+        masks,
+        dataset="vnc",
+        target="mitochondria",
+        level=1,
+        factors=FACTORS,
+        size=128,
+        count=28,
+        seed=11,
+        exclude_z=range(14, 20),
+        threshold=127,
+    )
     assert set(reg["z"]) == set(keep)
     fractions = []
     for r in reg.itertuples(index=False):
-        region = masks[r.z, 2 * r.y0:2 * (r.y0 + 128), 2 * r.x0:2 * (r.x0 + 128)] > 127
+        region = masks[r.z, 2 * r.y0 : 2 * (r.y0 + 128), 2 * r.x0 : 2 * (r.x0 + 128)] > 127
         blocks = region.reshape(128, 2, 128, 2).sum(axis=(1, 3))
         mixed = np.mean((blocks > 0) & (blocks < 4))
         # numpy on the same region: 2 x 2 majority voting can only change blocks that hold

@@ -11,8 +11,13 @@ from tessera.train import assign_folds, score_tiles
 
 def test_folds_are_contiguous_in_z_balanced_and_order_free():
     # Neighbouring sections are highly correlated (common practice), so folds are runs of z.
-    tiles = pd.DataFrame({"tile_id": [f"a{i}" for i in range(9)] + [f"b{i}" for i in range(6)],
-                          "dataset": ["a"] * 9 + ["b"] * 6, "z": list(range(0, 18, 2)) + list(range(6))})
+    tiles = pd.DataFrame(
+        {
+            "tile_id": [f"a{i}" for i in range(9)] + [f"b{i}" for i in range(6)],
+            "dataset": ["a"] * 9 + ["b"] * 6,
+            "z": list(range(0, 18, 2)) + list(range(6)),
+        }
+    )
     folds = assign_folds(tiles, 3, seed=1)
     assert folds == assign_folds(tiles.iloc[::-1], 3, seed=1)
     assert sorted(np.bincount(list(folds.values()))) == [5, 5, 5]
@@ -24,7 +29,9 @@ def test_folds_are_contiguous_in_z_balanced_and_order_free():
 
 def test_scores_match_sklearn_with_threshold_chosen_on_validation():
     rng = np.random.default_rng(0)
-    registry = pd.DataFrame({"tile_id": ["v1", "v2", "t1", "t2"], "role": ["validation", "validation", "test", "test"]})
+    registry = pd.DataFrame(
+        {"tile_id": ["v1", "v2", "t1", "t2"], "role": ["validation", "validation", "test", "test"]}
+    )
     labels, probs = {}, {}
     for t in registry["tile_id"]:
         truth = (rng.random((20, 20)) < 0.3).astype(np.uint8)
@@ -50,7 +57,9 @@ def test_scores_match_sklearn_with_threshold_chosen_on_validation():
 def test_scoring_needs_validation_tiles():
     registry = pd.DataFrame({"tile_id": ["t1"], "role": ["test"]})
     with pytest.raises(TesseraInputError, match="no validation tiles"):
-        score_tiles(registry, {"t1": np.zeros((2, 2), np.uint8)}, {"t1": np.zeros((2, 2), np.float32)})
+        score_tiles(
+            registry, {"t1": np.zeros((2, 2), np.uint8)}, {"t1": np.zeros((2, 2), np.float32)}
+        )
 
 
 def test_training_can_be_restricted_to_some_datasets():
@@ -58,8 +67,20 @@ def test_training_can_be_restricted_to_some_datasets():
     from tessera.train import _training_tiles
 
     spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,), folds=2)
-    rows = [{"tile_id": f"{d}{i}", "dataset": d, "z": i, "y0": 0, "x0": 0, "height": 8, "width": 8, "role": "train"}
-            for d in ("a", "b") for i in range(2)]
+    rows = [
+        {
+            "tile_id": f"{d}{i}",
+            "dataset": d,
+            "z": i,
+            "y0": 0,
+            "x0": 0,
+            "height": 8,
+            "width": 8,
+            "role": "train",
+        }
+        for d in ("a", "b")
+        for i in range(2)
+    ]
     registry = pd.DataFrame(rows)
     labels = {r["tile_id"]: np.tile([0, 1], (8, 4)).astype(np.uint8) for r in rows}
     arrays = {d: np.zeros((2, 8, 8), np.float32) for d in ("a", "b")}

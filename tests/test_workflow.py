@@ -25,7 +25,9 @@ def snakemake(*args, cwd, check=True):
         [str(BIN / "snakemake"), *args], cwd=cwd, capture_output=True, text=True, timeout=900
     )
     if check and result.returncode != 0:
-        raise AssertionError(f"snakemake {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}")
+        raise AssertionError(
+            f"snakemake {' '.join(args)} failed:\n{result.stdout}\n{result.stderr}"
+        )
     return result
 
 
@@ -38,7 +40,10 @@ def test_lint_is_clean(repo):
 def test_rule_files_are_formatted(repo):
     # snakefmt is the registry's formatter for Snakemake files (black style).
     result = subprocess.run(
-        [str(BIN / "snakefmt"), "--check", "Snakefile", "rules"], cwd=repo, capture_output=True, text=True
+        [str(BIN / "snakefmt"), "--check", "Snakefile", "rules"],
+        cwd=repo,
+        capture_output=True,
+        text=True,
     )
     assert result.returncode == 0, result.stderr
 
@@ -46,7 +51,9 @@ def test_rule_files_are_formatted(repo):
 def test_demo_dry_run_plans_every_dataset(repo, tmp_path):
     # A fresh working directory with the shipped demo config: nothing exists yet.
     shutil.copytree(repo / "config", tmp_path / "config")
-    result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path)
+    result = snakemake(
+        "-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path
+    )
     counts = {}
     for line in result.stdout.splitlines():
         parts = line.split()
@@ -72,12 +79,25 @@ TINY_SHEET = (
 def tiny_config(stages=2, **pyramid):
     # Nuclei fill about a tenth of this small field; a 2-stage x 1-level cascade with a small
     # network keeps the whole study to well under a minute.
-    cascade = {"stages": stages, "levels": 1, "classifier": "mlp", "folds": 2, "samples_per_tile": 400,
-               "sigmas": [1.0, 2.0], "coarse_sigmas": [1.0], "stencil_radii": [1, 2, 4]}
+    cascade = {
+        "stages": stages,
+        "levels": 1,
+        "classifier": "mlp",
+        "folds": 2,
+        "samples_per_tile": 400,
+        "sigmas": [1.0, 2.0],
+        "coarse_sigmas": [1.0],
+        "stencil_radii": [1, 2, 4],
+    }
     return {
         "study": {"name": "tiny test study"},
         "datasets": "config/datasets.tsv",
-        "demo": {"seed": 5, "shape": [12, 192, 192], "mito_volume_scale": {"cold": 1.25}, "tile_size": 32},
+        "demo": {
+            "seed": 5,
+            "shape": [12, 192, 192],
+            "mito_volume_scale": {"cold": 1.25},
+            "tile_size": 32,
+        },
         "ingest": {"chunks": [1, 64, 64]},
         "pyramid": {"levels": 2, **pyramid},
         "qc": {"shift_crop": 128},
@@ -121,32 +141,52 @@ def test_tiny_study_produces_every_output(finished_study):
         assert (finished_study / f"logs/ingest/{dataset}.log").exists()
     for stage in (1, 2):
         for level in (0, 1):
-            assert (finished_study / f"results/study/nuclei/cascade/stage{stage}_level{level}.npz").exists()
-    scores = pd.read_csv(finished_study / "results/study/nuclei/tiles_predicted/scores.tsv", sep="\t")
+            assert (
+                finished_study / f"results/study/nuclei/cascade/stage{stage}_level{level}.npz"
+            ).exists()
+    scores = pd.read_csv(
+        finished_study / "results/study/nuclei/tiles_predicted/scores.tsv", sep="\t"
+    )
     assert list(scores["role"]) == ["validation", "test"]
     assert scores["f1"].between(0, 1).all()
     for dataset in ("w1", "c1"):
-        group, info = open_image(finished_study / f"results/{dataset}/predicted/nuclei/probability.ome.zarr")
+        group, info = open_image(
+            finished_study / f"results/{dataset}/predicted/nuclei/probability.ome.zarr"
+        )
         assert info["levels"][0].shape == (12, 96, 96) and info["levels"][0].dtype == np.uint8
         objects = pd.read_csv(finished_study / f"results/{dataset}/objects/nuclei.tsv", sep="\t")
-        labels = open_image(finished_study / f"results/{dataset}/objects/nuclei.ome.zarr")[0]["labels/nuclei/0"][:]
+        labels = open_image(finished_study / f"results/{dataset}/objects/nuclei.ome.zarr")[0][
+            "labels/nuclei/0"
+        ][:]
         assert labels.max() == len(objects) and objects["voxels"].sum() == (labels > 0).sum()
-        measured = pd.read_csv(finished_study / f"results/{dataset}/morphometry/nuclei_objects.tsv", sep="\t")
+        measured = pd.read_csv(
+            finished_study / f"results/{dataset}/morphometry/nuclei_objects.tsv", sep="\t"
+        )
         assert list(measured["id"]) == list(objects["id"]) and "sphericity" in measured.columns
-    comparison = pd.read_csv(finished_study / "results/study/nuclei/statistics/comparison.tsv", sep="\t",
-                             keep_default_na=False)
+    comparison = pd.read_csv(
+        finished_study / "results/study/nuclei/statistics/comparison.tsv",
+        sep="\t",
+        keep_default_na=False,
+    )
     # one animal per condition in this tiny study: a warning, not a failure
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert comparison["warning"].str.contains(r"only [01] animal\(s\) in a group").all()
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
     from tessera.tiles import read_points
 
-    suggested = read_points(finished_study / "results/study/nuclei/next_tiles/points.tsv", datasets=["w1", "c1"],
-                            targets=["nuclei"])
+    suggested = read_points(
+        finished_study / "results/study/nuclei/next_tiles/points.tsv",
+        datasets=["w1", "c1"],
+        targets=["nuclei"],
+    )
     assert len(suggested) == 10  # the default count; a sheet the tile export accepts
-    evaluation = pd.read_csv(finished_study / "results/study/nuclei/evaluation/summary.tsv", sep="\t")
+    evaluation = pd.read_csv(
+        finished_study / "results/study/nuclei/evaluation/summary.tsv", sep="\t"
+    )
     assert list(evaluation["dataset"]) == ["all", "c1", "w1"]
-    assert evaluation.loc[0, "f1"] == pytest.approx(scores.loc[scores["role"] == "test", "f1"].iloc[0])
+    assert evaluation.loc[0, "f1"] == pytest.approx(
+        scores.loc[scores["role"] == "test", "f1"].iloc[0]
+    )
     manifest = pd.read_csv(finished_study / "results/study/audit/manifest.tsv", sep="\t")
     assert "study/methods.md" in set(manifest["path"])
     assert (finished_study / "results/ro-crate-metadata.json").exists()
@@ -158,7 +198,10 @@ def test_tiny_study_produces_every_output(finished_study):
 def test_every_job_leaves_a_provenance_record(finished_study):
     from tessera.provenance import is_run_specific
 
-    records = [json.loads(p.read_text()) for p in sorted((finished_study / "results/provenance").rglob("*.json"))]
+    records = [
+        json.loads(p.read_text())
+        for p in sorted((finished_study / "results/provenance").rglob("*.json"))
+    ]
     written = set()
     for record in records:
         assert record["code_version"] == record["params"]["code"]
@@ -168,11 +211,22 @@ def test_every_job_leaves_a_provenance_record(finished_study):
             path = finished_study / entry["path"]
             if path.is_file() and entry in record["outputs"]:
                 # reference: hashlib's SHA-256 of the bytes the job left
-                assert entry["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest(), entry["path"]
+                assert entry["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest(), entry[
+                    "path"
+                ]
             written.update([entry["path"]] if entry in record["outputs"] else [])
     rules = {r["rule"] for r in records}
-    assert {"demo_dataset", "ingest", "train_node", "predict_shard", "stitch", "objects", "morphometry", "statistics",
-            "methods"} <= rules
+    assert {
+        "demo_dataset",
+        "ingest",
+        "train_node",
+        "predict_shard",
+        "stitch",
+        "objects",
+        "morphometry",
+        "statistics",
+        "methods",
+    } <= rules
     train = [r for r in records if r["rule"] == "train_node"]
     assert train and all(r["seeds"] for r in train)
     # every result comes from a job with a record (stores: the record names the store)
@@ -181,7 +235,11 @@ def test_every_job_leaves_a_provenance_record(finished_study):
         relative = path.relative_to(results).as_posix()
         if not path.is_file() or is_run_specific(relative):
             continue
-        owners = [w for w in written if (finished_study / w) == path or (finished_study / w) in path.parents]
+        owners = [
+            w
+            for w in written
+            if (finished_study / w) == path or (finished_study / w) in path.parents
+        ]
         assert owners, f"no provenance record lists {relative}"
 
 
@@ -190,7 +248,9 @@ def test_qc_finds_the_rendered_defects(finished_study):
     for dataset in ("w1", "c1"):
         truth = json.loads((finished_study / f"demo/data/{dataset}/truth.json").read_text())
         defects = {int(z) for zs in truth["defects"].values() for z in zs}
-        table = pd.read_csv(finished_study / f"results/{dataset}/qc/sections.tsv", sep="\t", keep_default_na=False)
+        table = pd.read_csv(
+            finished_study / f"results/{dataset}/qc/sections.tsv", sep="\t", keep_default_na=False
+        )
         assert set(table.loc[table["excluded"], "z"]) == defects
 
 
@@ -199,12 +259,16 @@ def test_second_run_has_nothing_to_do(finished_study, repo=Path(__file__).resolv
     assert "Nothing to be done" in result.stdout + result.stderr
 
 
-def test_changed_pyramid_setting_reruns_only_the_pyramid(finished_study, repo=Path(__file__).resolve().parents[1]):
+def test_changed_pyramid_setting_reruns_only_the_pyramid(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
         config.write_text(yaml.safe_dump(tiny_config(levels=3)))
-        result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        result = snakemake(
+            "-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study
+        )
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
         assert "pyramid" in planned
         assert not planned & {"ingest", "section_qc", "demo_dataset"}
@@ -212,7 +276,9 @@ def test_changed_pyramid_setting_reruns_only_the_pyramid(finished_study, repo=Pa
         config.write_text(original)
 
 
-def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__file__).resolve().parents[1]):
+def test_adding_a_stage_trains_only_the_new_stage(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -220,17 +286,35 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=Path(__fi
         result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         trained = re.findall(r"stage(\d)_level(\d)\.npz\n\s+log:", result.stdout)
         # grouped jobs (shards) are printed indented under their group
-        planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
+        planned = {
+            line.split()[1]
+            for line in result.stdout.splitlines()
+            if line.strip().startswith("rule ")
+        }
         assert sorted(trained) == [("3", "0"), ("3", "1")]
-        downstream = {"predict_tiles:", "evaluate:", "shard_plan:", "predict_shard:", "stitch:", "objects:", "morphometry:",
-                      "meshes:", "statistics:", "methods:", "next_tiles:", "audit:", "all:"}
+        downstream = {
+            "predict_tiles:",
+            "evaluate:",
+            "shard_plan:",
+            "predict_shard:",
+            "stitch:",
+            "objects:",
+            "morphometry:",
+            "meshes:",
+            "statistics:",
+            "methods:",
+            "next_tiles:",
+            "audit:",
+            "all:",
+        }
         assert planned == {"train_node:"} | downstream
     finally:
         config.write_text(original)
 
 
-def test_changed_feature_sigma_retrains_every_node_and_what_follows(finished_study,
-                                                                   repo=Path(__file__).resolve().parents[1]):
+def test_changed_feature_sigma_retrains_every_node_and_what_follows(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -239,32 +323,65 @@ def test_changed_feature_sigma_retrains_every_node_and_what_follows(finished_stu
         config.write_text(yaml.safe_dump(changed))
         result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         trained = re.findall(r"stage(\d)_level(\d)\.npz\n\s+log:", result.stdout)
-        planned = {line.split()[1] for line in result.stdout.splitlines() if line.strip().startswith("rule ")}
+        planned = {
+            line.split()[1]
+            for line in result.stdout.splitlines()
+            if line.strip().startswith("rule ")
+        }
         # every node computes features with the changed sigmas; images, tiles and QC do not
         assert sorted(trained) == [("1", "0"), ("1", "1"), ("2", "0"), ("2", "1")]
-        assert {"train_node:", "predict_tiles:", "predict_shard:", "stitch:", "objects:", "morphometry:",
-                "statistics:", "audit:"} <= planned
-        assert not planned & {"demo_dataset:", "ingest:", "pyramid:", "section_qc:", "sample_tiles:", "split_tiles:"}
+        assert {
+            "train_node:",
+            "predict_tiles:",
+            "predict_shard:",
+            "stitch:",
+            "objects:",
+            "morphometry:",
+            "statistics:",
+            "audit:",
+        } <= planned
+        assert not planned & {
+            "demo_dataset:",
+            "ingest:",
+            "pyramid:",
+            "section_qc:",
+            "sample_tiles:",
+            "split_tiles:",
+        }
     finally:
         config.write_text(original)
 
 
-def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=Path(__file__).resolve().parents[1]):
+def test_changed_object_filter_reruns_only_the_objects(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
         changed = tiny_config()
         changed["targets"]["nuclei"]["objects"] = {"min_volume_um3": 0.01}
         config.write_text(yaml.safe_dump(changed))
-        result = snakemake("-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
+        result = snakemake(
+            "-n", "--quiet", "rules", "--snakefile", str(repo / "Snakefile"), cwd=finished_study
+        )
         planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
-        assert planned >= {"objects", "morphometry", "statistics", "meshes", "methods", "audit", "all"}
+        assert planned >= {
+            "objects",
+            "morphometry",
+            "statistics",
+            "meshes",
+            "methods",
+            "audit",
+            "all",
+        }
         assert not planned & {"stitch", "predict_shard", "shard_plan", "train_node", "pyramid"}
     finally:
         config.write_text(original)
 
 
-def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=Path(__file__).resolve().parents[1]):
+def test_a_new_variant_runs_only_its_own_jobs(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -276,14 +393,17 @@ def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=Path(__file__
         # the variant's own jobs, and the study manifest that lists every result
         others = [o for o in outputs if "nuclei.single" not in o]
         assert outputs and others == ["results/study/audit/manifest.tsv,"], others
-        assert any(o.endswith("results/study/nuclei.single/evaluation/summary.tsv") or "evaluation" in o
-                   for o in outputs)
+        assert any(
+            o.endswith("results/study/nuclei.single/evaluation/summary.tsv") or "evaluation" in o
+            for o in outputs
+        )
     finally:
         config.write_text(original)
 
 
-def test_edited_package_module_reruns_only_the_jobs_that_use_it(finished_study, tmp_path,
-                                                               repo=Path(__file__).resolve().parents[1]):
+def test_edited_package_module_reruns_only_the_jobs_that_use_it(
+    finished_study, tmp_path, repo=Path(__file__).resolve().parents[1]
+):
     # A copy of the workflow whose morphometry module differs by one comment line: Snakemake's
     # own code trigger sees only rule scripts, so the rules' `code` param must carry the change.
     copy = tmp_path / "workflow"
@@ -298,21 +418,34 @@ def test_edited_package_module_reruns_only_the_jobs_that_use_it(finished_study, 
     assert "Nothing to be done" in unchanged.stdout + unchanged.stderr
     module = copy / "tessera" / "morphometry.py"
     module.write_text(module.read_text() + "\n# edited\n")
-    result = snakemake("-n", "--quiet", "rules", "--snakefile", str(copy / "Snakefile"), cwd=finished_study)
+    result = snakemake(
+        "-n", "--quiet", "rules", "--snakefile", str(copy / "Snakefile"), cwd=finished_study
+    )
     planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
     assert {"morphometry", "statistics", "audit"} <= planned
-    assert not planned & {"objects", "stitch", "predict_shard", "train_node", "ingest", "pyramid", "meshes"}
+    assert not planned & {
+        "objects",
+        "stitch",
+        "predict_shard",
+        "train_node",
+        "ingest",
+        "pyramid",
+        "meshes",
+    }
 
 
-def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(finished_study,
-                                                                     repo=Path(__file__).resolve().parents[1]):
+def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(
+    finished_study, repo=Path(__file__).resolve().parents[1]
+):
     sheet = finished_study / "config" / "datasets.tsv"
     original = sheet.read_text()
     try:
         sheet.write_text(original + "c2\tcold\tc2\tdemo/data/c2/raw.tif\ttiff_stack\t40\t8\t8\t\n")
         result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
         outputs = re.findall(r"^\s+output: (\S+)", result.stdout, flags=re.M)
-        per_dataset = [o for o in outputs if o.startswith("results/") and not o.startswith("results/study/")]
+        per_dataset = [
+            o for o in outputs if o.startswith("results/") and not o.startswith("results/study/")
+        ]
         assert per_dataset and all(o.startswith("results/c2/") for o in per_dataset), per_dataset
         assert any(o.startswith("demo/data/c2") for o in outputs)
         # no training (c2 is not among the annotated datasets), but the study summaries rerun
@@ -328,7 +461,9 @@ def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
     (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(tiny_config()))
     lines = TINY_SHEET.splitlines()
     (tmp_path / "config" / "datasets.tsv").write_text("\n".join([*lines, lines[1]]) + "\n")
-    result = snakemake("--cores", "1", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path, check=False)
+    result = snakemake(
+        "--cores", "1", "--snakefile", str(repo / "Snakefile"), cwd=tmp_path, check=False
+    )
     assert result.returncode != 0
     assert "config/datasets.tsv: dataset ids must be unique; repeated: w1" in result.stderr
     assert sorted(p.name for p in tmp_path.iterdir() if p.name != ".snakemake") == ["config"]
@@ -364,7 +499,12 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     run = ["--cores", "2", "--snakefile", str(repo / "Snakefile")]
     snakemake(*run, "results/w1/to_paint/nuclei", "results/c1/to_paint/nuclei", cwd=tmp_path)
     exported = pd.read_csv(tmp_path / "results/w1/to_paint/nuclei/tiles.tsv", sep="\t")
-    assert len(exported) == 4 and (tmp_path / "results/w1/to_paint/nuclei" / f"{exported.tile_id[0]}.preview.png").exists()
+    assert (
+        len(exported) == 4
+        and (
+            tmp_path / "results/w1/to_paint/nuclei" / f"{exported.tile_id[0]}.preview.png"
+        ).exists()
+    )
 
     result = snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path, check=False)
     assert result.returncode != 0
@@ -377,7 +517,9 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
         truth = tifffile.imread(tmp_path / f"demo/data/{dataset}/truth/nuclei.tif")
         table = pd.read_csv(tmp_path / f"results/{dataset}/to_paint/nuclei/tiles.tsv", sep="\t")
         for row in table.itertuples():
-            crop = truth[row.z, 2 * row.y0 : 2 * (row.y0 + row.height), 2 * row.x0 : 2 * (row.x0 + row.width)]
+            crop = truth[
+                row.z, 2 * row.y0 : 2 * (row.y0 + row.height), 2 * row.x0 : 2 * (row.x0 + row.width)
+            ]
             mask = labels_to_target_mask(crop[np.newaxis], factors=(1, 2, 2))[0]
             Image.fromarray((mask * 255).astype(np.uint8)).save(masks / f"{row.tile_id}.png")
     snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path)

@@ -609,17 +609,27 @@ class LDNNClassifier(BinaryClassifier):
     def _predict_chunk(self, X):
         if self._folded is None:
             self._folded = _folded_first_layer(self.weights_, self.bias_, self.mean_, self.scale_)
-        f, *_ = _ldnn_forward(X, *self._folded, self.options["n_groups"], self.options["n_per_group"])
+        f, *_ = _ldnn_forward(
+            X, *self._folded, self.options["n_groups"], self.options["n_per_group"]
+        )
         return f.astype(np.float32)
 
     def _arrays(self):
-        return {"mean": self.mean_, "scale": self.scale_, "weights": self.weights_,
-                "bias": self.bias_}
+        return {
+            "mean": self.mean_,
+            "scale": self.scale_,
+            "weights": self.weights_,
+            "bias": self.bias_,
+        }
 
     def _array_spec(self, meta):
         k = self.options["n_groups"] * self.options["n_per_group"]
-        return {"mean": (np.float32, ("C",)), "scale": (np.float32, ("C",)),
-                "weights": (np.float32, ("C", k)), "bias": (np.float32, (k,))}
+        return {
+            "mean": (np.float32, ("C",)),
+            "scale": (np.float32, ("C",)),
+            "weights": (np.float32, ("C", k)),
+            "bias": (np.float32, (k,)),
+        }
 
     def _load(self, arrays, meta):
         _check_scale(arrays)
@@ -631,8 +641,11 @@ class LDNNClassifier(BinaryClassifier):
 
 
 def _check_scale(arrays):
-    if not (np.isfinite(arrays["mean"]).all() and np.isfinite(arrays["scale"]).all()
-            and (arrays["scale"] > 0).all()):
+    if not (
+        np.isfinite(arrays["mean"]).all()
+        and np.isfinite(arrays["scale"]).all()
+        and (arrays["scale"] > 0).all()
+    ):
         raise TesseraInputError("'mean' and 'scale' must be finite with scale > 0", source=_SOURCE)
 
 
@@ -694,10 +707,16 @@ class MLPBinaryClassifier(BinaryClassifier):
         o = self.options
         self.mean_, self.scale_ = _standardisation(X)
         model = MLPClassifier(
-            hidden_layer_sizes=o["hidden_layer_sizes"], activation="relu", solver="adam",
-            alpha=o["alpha"], batch_size=min(o["batch_size"], X.shape[0]),
-            learning_rate_init=o["learning_rate_init"], max_iter=o["max_iter"],
-            early_stopping=False, shuffle=True, random_state=self.seed,
+            hidden_layer_sizes=o["hidden_layer_sizes"],
+            activation="relu",
+            solver="adam",
+            alpha=o["alpha"],
+            batch_size=min(o["batch_size"], X.shape[0]),
+            learning_rate_init=o["learning_rate_init"],
+            max_iter=o["max_iter"],
+            early_stopping=False,
+            shuffle=True,
+            random_state=self.seed,
         )
         with threadpool_limits(limits=self.threads), warnings.catch_warnings():
             # The epoch budget is a deliberate cap (see the class notes), not a failure.
@@ -709,7 +728,9 @@ class MLPBinaryClassifier(BinaryClassifier):
 
     def _predict_chunk(self, X):
         if self._folded is None:
-            self._folded = _folded_first_layer(self.coefs_[0], self.intercepts_[0], self.mean_, self.scale_)
+            self._folded = _folded_first_layer(
+                self.coefs_[0], self.intercepts_[0], self.mean_, self.scale_
+            )
         layers = [self._folded, *zip(self.coefs_[1:], self.intercepts_[1:])]
         h = X
         last = len(layers) - 1
@@ -826,8 +847,9 @@ def _check_tree_arrays(arrays, n_features, n_trees):
             "leaves have -1 children and feature, features lie in [0, n_features), values finite)",
             source=_SOURCE,
         )
-    if not np.array_equal(np.bincount(feature[inner], minlength=n_features),
-                          arrays["split_counts"]):
+    if not np.array_equal(
+        np.bincount(feature[inner], minlength=n_features), arrays["split_counts"]
+    ):
         raise TesseraInputError(
             "'split_counts' does not match the splits of the trees", source=_SOURCE
         )
@@ -857,8 +879,16 @@ class _TreeEnsemble(BinaryClassifier):
 
     def _predict_numpy(self, X):
         t = self.trees_
-        return _descend_numpy(X, t["tree_offsets"], self._feature64, t["threshold"],
-                              self._gleft, self._gright, self._is_leaf, t["value"])
+        return _descend_numpy(
+            X,
+            t["tree_offsets"],
+            self._feature64,
+            t["threshold"],
+            self._gleft,
+            self._gright,
+            self._is_leaf,
+            t["value"],
+        )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -922,9 +952,13 @@ class ForestClassifier(_TreeEnsemble):
 
         o = self.options
         model = getattr(ensemble, self._estimator)(
-            n_estimators=o["n_estimators"], min_samples_leaf=o["min_samples_leaf"],
-            max_features=o["max_features"], max_depth=o["max_depth"], bootstrap=o["bootstrap"],
-            n_jobs=self.threads, random_state=self.seed,
+            n_estimators=o["n_estimators"],
+            min_samples_leaf=o["min_samples_leaf"],
+            max_features=o["max_features"],
+            max_depth=o["max_depth"],
+            bootstrap=o["bootstrap"],
+            n_jobs=self.threads,
+            random_state=self.seed,
         )
         model.fit(X, y, sample_weight=w)
         self.estimator_ = model
@@ -943,8 +977,9 @@ class ForestClassifier(_TreeEnsemble):
         arrays = {k: np.concatenate(v) for k, v in parts.items()}
         arrays["tree_offsets"] = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
         inner = arrays["left"] != -1
-        arrays["split_counts"] = np.bincount(
-            arrays["feature"][inner], minlength=X.shape[1]).astype(np.int64)
+        arrays["split_counts"] = np.bincount(arrays["feature"][inner], minlength=X.shape[1]).astype(
+            np.int64
+        )
         self._set_trees(arrays, X.shape[1])
 
     def _load(self, arrays, meta):
@@ -970,8 +1005,9 @@ class ForestClassifier(_TreeEnsemble):
                 values = np.ascontiguousarray(np.stack([1 - p1, p1], axis=1)[:, None, :])
                 tree = Tree(self._n_tree_features, np.array([2], dtype=np.intp), 1)
                 depth = _max_depth(t["left"][start:stop], t["right"][start:stop])
-                tree.__setstate__({"max_depth": depth, "node_count": n, "nodes": nodes,
-                                   "values": values})
+                tree.__setstate__(
+                    {"max_depth": depth, "node_count": n, "nodes": nodes, "values": values}
+                )
                 trees.append((int(start), tree))
             return trees
         except (ImportError, AttributeError, TypeError, ValueError, KeyError):
@@ -1015,16 +1051,26 @@ class RandomForestBinaryClassifier(ForestClassifier):
     __doc__ = ForestClassifier.__doc__
     kind = "random_forest"
     _estimator = "RandomForestClassifier"
-    _defaults = {"n_estimators": 48, "min_samples_leaf": 8, "max_features": "sqrt",
-                 "max_depth": None, "bootstrap": True}
+    _defaults = {
+        "n_estimators": 48,
+        "min_samples_leaf": 8,
+        "max_features": "sqrt",
+        "max_depth": None,
+        "bootstrap": True,
+    }
 
 
 class ExtraTreesBinaryClassifier(ForestClassifier):
     __doc__ = ForestClassifier.__doc__
     kind = "extra_trees"
     _estimator = "ExtraTreesClassifier"
-    _defaults = {"n_estimators": 48, "min_samples_leaf": 8, "max_features": "sqrt",
-                 "max_depth": None, "bootstrap": False}
+    _defaults = {
+        "n_estimators": 48,
+        "min_samples_leaf": 8,
+        "max_features": "sqrt",
+        "max_depth": None,
+        "bootstrap": False,
+    }
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1061,8 +1107,14 @@ class HistGradientBoostingBinaryClassifier(_TreeEnsemble):
     """
 
     kind = "hist_gradient_boosting"
-    _defaults = {"max_iter": 100, "learning_rate": 0.1, "max_leaf_nodes": 31,
-                 "min_samples_leaf": 20, "l2_regularization": 0.0, "max_bins": 255}
+    _defaults = {
+        "max_iter": 100,
+        "learning_rate": 0.1,
+        "max_leaf_nodes": 31,
+        "min_samples_leaf": 20,
+        "l2_regularization": 0.0,
+        "max_bins": 255,
+    }
 
     def _check_options(self, o):
         bins = _int_option("max_bins", o["max_bins"], 2)
@@ -1073,8 +1125,9 @@ class HistGradientBoostingBinaryClassifier(_TreeEnsemble):
             "learning_rate": _float_option("learning_rate", o["learning_rate"]),
             "max_leaf_nodes": _int_option("max_leaf_nodes", o["max_leaf_nodes"], 2),
             "min_samples_leaf": _int_option("min_samples_leaf", o["min_samples_leaf"], 1),
-            "l2_regularization": _float_option("l2_regularization", o["l2_regularization"],
-                                               inclusive=True),
+            "l2_regularization": _float_option(
+                "l2_regularization", o["l2_regularization"], inclusive=True
+            ),
             "max_bins": bins,
         }
 
@@ -1086,10 +1139,14 @@ class HistGradientBoostingBinaryClassifier(_TreeEnsemble):
 
         o = self.options
         model = HistGradientBoostingClassifier(
-            max_iter=o["max_iter"], learning_rate=o["learning_rate"],
-            max_leaf_nodes=o["max_leaf_nodes"], min_samples_leaf=o["min_samples_leaf"],
-            l2_regularization=o["l2_regularization"], max_bins=o["max_bins"],
-            early_stopping=False, random_state=self.seed,
+            max_iter=o["max_iter"],
+            learning_rate=o["learning_rate"],
+            max_leaf_nodes=o["max_leaf_nodes"],
+            min_samples_leaf=o["min_samples_leaf"],
+            l2_regularization=o["l2_regularization"],
+            max_bins=o["max_bins"],
+            early_stopping=False,
+            random_state=self.seed,
         )
         with threadpool_limits(limits=self.threads):
             model.fit(X, y, sample_weight=w)
@@ -1114,8 +1171,9 @@ class HistGradientBoostingBinaryClassifier(_TreeEnsemble):
         arrays["tree_offsets"] = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
         arrays["baseline"] = np.asarray(model._baseline_prediction, dtype=np.float64).reshape(1)
         inner = arrays["left"] != -1
-        arrays["split_counts"] = np.bincount(
-            arrays["feature"][inner], minlength=X.shape[1]).astype(np.int64)
+        arrays["split_counts"] = np.bincount(arrays["feature"][inner], minlength=X.shape[1]).astype(
+            np.int64
+        )
         self._set_trees(arrays, X.shape[1])
 
     def _load(self, arrays, meta):

@@ -110,9 +110,17 @@ def _derivatives(smoothed, steps):
     # mirror of the inside, which keeps every derived invariant exactly mirror-symmetric.
     grads = []
     for axis, step in enumerate(steps):
-        padded = np.pad(smoothed, [(1, 1) if a == axis else (0, 0) for a in range(smoothed.ndim)], mode="symmetric")
-        hi = padded[tuple(slice(2, None) if a == axis else slice(None) for a in range(smoothed.ndim))]
-        lo = padded[tuple(slice(None, -2) if a == axis else slice(None) for a in range(smoothed.ndim))]
+        padded = np.pad(
+            smoothed,
+            [(1, 1) if a == axis else (0, 0) for a in range(smoothed.ndim)],
+            mode="symmetric",
+        )
+        hi = padded[
+            tuple(slice(2, None) if a == axis else slice(None) for a in range(smoothed.ndim))
+        ]
+        lo = padded[
+            tuple(slice(None, -2) if a == axis else slice(None) for a in range(smoothed.ndim))
+        ]
         grads.append((hi - lo) * np.float32(0.5 / step))
     return grads
 
@@ -170,11 +178,14 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     data = image.astype(np.float32)
     if mirror_edges:
         radius = feature_radius(sigmas)
-                # np.pad "symmetric" mirrors once; pad in rounds when the image is smaller than the radius.
+        # np.pad "symmetric" mirrors once; pad in rounds when the image is smaller than the radius.
         padded = data
         total = [0] * ndim
         while any(t < radius and n > 1 for t, n in zip(total, data.shape)):
-            step = [min(radius - t, m) if n > 1 else 0 for t, m, n in zip(total, padded.shape, data.shape)]
+            step = [
+                min(radius - t, m) if n > 1 else 0
+                for t, m, n in zip(total, padded.shape, data.shape)
+            ]
             padded = np.pad(padded, [(k, k) for k in step], mode="symmetric")
             total = [t + k for t, k in zip(total, step)]
         core = tuple(slice(t, t + n) for t, n in zip(total, data.shape))
@@ -185,7 +196,8 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     channels = _ChannelWriter(out)
     channels.append(data)
     smoothed_all = [
-        ndimage.gaussian_filter(data, [s * r for r in ratio], mode=_MODE, truncate=_TRUNCATE) for s in sigmas
+        ndimage.gaussian_filter(data, [s * r for r in ratio], mode=_MODE, truncate=_TRUNCATE)
+        for s in sigmas
     ]
     for i, s in enumerate(sigmas):
         g = smoothed_all[i]
@@ -204,15 +216,22 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
             channels.append(g - smoothed_all[i + 1])
         integ = [s * r for r in ratio]
         if ndim == 2:
-            channels.extend(norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1]))
-            j = [ndimage.gaussian_filter(p, integ, mode=_MODE, truncate=_TRUNCATE)
-                 for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])]
+            channels.extend(
+                norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1])
+            )
+            j = [
+                ndimage.gaussian_filter(p, integ, mode=_MODE, truncate=_TRUNCATE)
+                for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
+            ]
             channels.extend(_eigvals_sym2(*j))
         else:
             h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
             channels.extend(norm * e for e in _eigvals_sym3(h))
             pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
-            j = [ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE) for a, b in pairs]
+            j = [
+                ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE)
+                for a, b in pairs
+            ]
             channels.extend(_eigvals_sym3(j))
     return out
 

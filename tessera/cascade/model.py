@@ -180,7 +180,9 @@ def node_inputs(spec, stage, level):
     [(2, 1), (2, 2), (1, 0)]
     """
     if (stage, level) not in nodes(spec):
-        raise TesseraInputError(f"no node (stage {stage}, level {level}) in a {spec.stages} x {spec.levels} cascade")
+        raise TesseraInputError(
+            f"no node (stage {stage}, level {level}) in a {spec.stages} x {spec.levels} cascade"
+        )
     inputs = []
     if level >= 2:
         inputs.append((stage, level - 1))
@@ -233,7 +235,9 @@ def smoothing_reach(output_sigma):
     (0, 8)
     """
     if not (isinstance(output_sigma, (int, float)) and 0 <= output_sigma <= 32):
-        raise TesseraInputError(f"output smoothing sigma must be from 0 to 32 px, got {output_sigma!r}")
+        raise TesseraInputError(
+            f"output smoothing sigma must be from 0 to 32 px, got {output_sigma!r}"
+        )
     return int(4.0 * output_sigma + 0.5) if output_sigma > 0 else 0
 
 
@@ -352,7 +356,10 @@ class _Frame:
         f = 2**level
         start = (self.halo - margin) // f
         h, w = self.core_shape
-        return (slice(start, start + (h + 2 * margin) // f), slice(start, start + (w + 2 * margin) // f))
+        return (
+            slice(start, start + (h + 2 * margin) // f),
+            slice(start, start + (w + 2 * margin) // f),
+        )
 
     def features(self, level, margin):
         """Image features of `level` over the core + `margin`; computed once per level.
@@ -365,11 +372,17 @@ class _Frame:
             extra = _feature_halo(self.spec, level)
             rows, cols = self.region(level, widest)
             # receptive_radius guarantees rows.start - extra >= 0: the window lies inside the frame
-            stack = self.image(level)[:, rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra]
+            stack = self.image(level)[
+                :, rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra
+            ]
             centre = stack.shape[0] // 2
             sigmas = _sigmas(self.spec, level)
             parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False)]
-            parts += [neighbour_features(stack[k], sigmas=sigmas) for k in range(stack.shape[0]) if k != centre]
+            parts += [
+                neighbour_features(stack[k], sigmas=sigmas)
+                for k in range(stack.shape[0])
+                if k != centre
+            ]
             feats = np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
             self._features[level] = (feats[extra:-extra, extra:-extra], widest)
         feats, widest = self._features[level]
@@ -394,10 +407,18 @@ class _Frame:
             trim = (p_margin - (margin + reach)) // (2**p_level)
             src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
             if p_level <= level:
-                out.append((_pool(src, 2 ** (level - p_level), spec.pooling), 1, reach // (2**level)))
+                out.append(
+                    (_pool(src, 2 ** (level - p_level), spec.pooling), 1, reach // (2**level))
+                )
             else:
                 factor = 2 ** (p_level - level)
-                out.append((np.repeat(np.repeat(src, factor, axis=0), factor, axis=1), factor, reach // (2**level)))
+                out.append(
+                    (
+                        np.repeat(np.repeat(src, factor, axis=0), factor, axis=1),
+                        factor,
+                        reach // (2**level),
+                    )
+                )
         return out
 
 
@@ -434,7 +455,9 @@ def node_feature_names(spec, stage, level):
     for offset in [o for o in range(-spec.neighbours, spec.neighbours + 1) if o]:
         image_names += neighbour_feature_names(sigmas, offset=offset)
     names = [f"L{level}:{n}" for n in image_names]
-    offsets = ["c"] + [f"r{k}{d}" for k in spec.stencil_radii for d in ("n", "s", "w", "e", "nw", "ne", "sw", "se")]
+    offsets = ["c"] + [
+        f"r{k}{d}" for k in spec.stencil_radii for d in ("n", "s", "w", "e", "nw", "ne", "sw", "se")
+    ]
     for producer in node_inputs(spec, stage, level):
         names += [f"ctx(s{producer[0]},l{producer[1]}):{o}" for o in offsets]
     return names
@@ -481,7 +504,9 @@ def level_labels(labels, level, core_shape):
     valid = (padded != IGNORE).astype(np.float32)
     positive = (padded == 1).astype(np.float32)
     n_valid = block_mean(valid, (f, f))
-    frac = np.divide(block_mean(positive, (f, f)), n_valid, out=np.zeros_like(n_valid), where=n_valid > 0)
+    frac = np.divide(
+        block_mean(positive, (f, f)), n_valid, out=np.zeros_like(n_valid), where=n_valid > 0
+    )
     out = (frac >= 0.5).astype(np.uint8)
     out[n_valid == 0] = IGNORE
     return out
@@ -546,7 +571,10 @@ def _ensure_maps(frame, node, models, fold):
         if a not in frame.maps:
             x = _node_matrix(frame, a, frame.margins[a])
             clf = models[a].for_tile(fold)
-            frame.maps[a] = (clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2]), frame.margins[a])
+            frame.maps[a] = (
+                clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2]),
+                frame.margins[a],
+            )
 
 
 @dataclass
@@ -564,7 +592,12 @@ def prepare_tile(spec, tile_id, image, labels, *, fold, final=None):
     labels = np.asarray(labels)
     if labels.ndim != 2:
         raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
-    return TrainingTile(tile_id, make_frame(spec, image, labels.shape, final=final), labels.astype(np.uint8), int(fold))
+    return TrainingTile(
+        tile_id,
+        make_frame(spec, image, labels.shape, final=final),
+        labels.astype(np.uint8),
+        int(fold),
+    )
 
 
 def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=1):
@@ -606,7 +639,11 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
         frame = tile.frame
         _ensure_maps(frame, node, upstream, tile.fold)
         labels = level_labels(tile.labels, level, frame.core_shape)
-        pick = _sample_rows(labels, spec.samples_per_tile, np.random.default_rng(_tile_seed(spec, node, tile.tile_id)))
+        pick = _sample_rows(
+            labels,
+            spec.samples_per_tile,
+            np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
+        )
         if pick.size == 0:
             continue
         x = _node_matrix(frame, node, 0)
@@ -623,14 +660,18 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
 
     def fit(mask):
         seed = spec.seed + 7919 * stage + 104729 * level
-        clf = make_classifier(spec.classifier, seed=seed, threads=threads, **spec.classifier_options)
+        clf = make_classifier(
+            spec.classifier, seed=seed, threads=threads, **spec.classifier_options
+        )
         return clf.fit(X[mask], y[mask], sample_weight=_balanced_weights(y[mask]))
 
     folds = []
     for k in range(spec.folds):
         held = g == k
         if np.unique(y[~held]).size < 2:
-            raise TesseraInputError(f"target {target}: without fold {k} the training pixels hold one class only")
+            raise TesseraInputError(
+                f"target {target}: without fold {k} the training pixels hold one class only"
+            )
         folds.append(fit(~held))
     full = fit(np.ones(y.size, dtype=bool))
     meta = {
@@ -681,7 +722,12 @@ def out_of_fold_maps(models, tiles):
     for tile in tiles:
         _ensure_maps(tile.frame, final, models, tile.fold)
         x = _node_matrix(tile.frame, final, 0)
-        prob = models[final].for_tile(tile.fold).predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
+        prob = (
+            models[final]
+            .for_tile(tile.fold)
+            .predict(x.reshape(-1, x.shape[-1]))
+            .reshape(x.shape[:2])
+        )
         out[tile.tile_id] = prob[: tile.labels.shape[0], : tile.labels.shape[1]]
     return out
 
@@ -769,7 +815,9 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     halo = receptive_radius(spec, output_sigma=output_sigma)
     cy, cx = _core_shape(spec, core_shape)
     margin = margins(spec, output_sigma=output_sigma)
-    image = (2 * spec.neighbours + 1) * (cy + 2 * halo) * (cx + 2 * halo) * 4 * 4 / 3  # + coarser levels
+    image = (
+        (2 * spec.neighbours + 1) * (cy + 2 * halo) * (cx + 2 * halo) * 4 * 4 / 3
+    )  # + coarser levels
     cached = filters = 0
     for level in range(spec.levels + 1):
         f = 2**level
@@ -785,13 +833,17 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
 
     def rows(node, extra_margin=0):
         f = 2 ** node[1]
-        return ((cy + 2 * (margin[node] + extra_margin)) // f) * ((cx + 2 * (margin[node] + extra_margin)) // f)
+        return ((cy + 2 * (margin[node] + extra_margin)) // f) * (
+            (cx + 2 * (margin[node] + extra_margin)) // f
+        )
 
     maps = sum(4 * rows(node) for node in margin)
     work = 0
     for node in margin:
         width = len(node_feature_names(spec, *node))
-        context = sum(4 * rows(node, _read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node))
+        context = sum(
+            4 * rows(node, _read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node)
+        )
         chunk = min(rows(node), CHUNK_ROWS) * (width + _CLASSIFIER_ROW_BYTES)
         work = max(work, 4 * rows(node) * width + context + chunk)
     return int(image + cached + maps + max(filters, work))
@@ -800,7 +852,9 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
 # ----------------------------------------------------------------------------------------------
 # storage: arrays + JSON in one .npz, never pickle
 
-_REBUILD = "rerun rule train_node to rebuild it (delete the file, or snakemake --forcerun train_node)"
+_REBUILD = (
+    "rerun rule train_node to rebuild it (delete the file, or snakemake --forcerun train_node)"
+)
 
 
 def payload_sha256(arrays, meta):
@@ -888,32 +942,48 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
     if meta.get("payload_sha256") != payload_sha256(arrays, meta):
         raise TesseraInputError(
             f"model content does not match the SHA-256 recorded when it was written (altered or damaged); "
-            f"{_REBUILD}", source=path)
+            f"{_REBUILD}",
+            source=path,
+        )
     try:
         model_spec = CascadeSpec.from_dict({**meta["spec"], "stages": meta["stage"]})
     except (KeyError, TypeError):
         raise TesseraInputError("model metadata lacks its cascade settings", source=path) from None
-    checks = [("target", target, meta.get("target")), ("stage", stage, meta.get("stage")),
-              ("level", level, meta.get("level"))]
+    checks = [
+        ("target", target, meta.get("target")),
+        ("stage", stage, meta.get("stage")),
+        ("level", level, meta.get("level")),
+    ]
     for name, wanted, found in checks:
         if wanted is not None and wanted != found:
-            raise TesseraInputError(f"model is for {name} {found!r}, expected {wanted!r}", source=path)
+            raise TesseraInputError(
+                f"model is for {name} {found!r}, expected {wanted!r}", source=path
+            )
     if spec is not None and _node_spec_dict(spec) != meta["spec"]:
         diff = sorted(k for k, v in _node_spec_dict(spec).items() if meta["spec"].get(k) != v)
-        raise TesseraInputError(f"model was trained with other cascade settings ({', '.join(diff)})", source=path)
+        raise TesseraInputError(
+            f"model was trained with other cascade settings ({', '.join(diff)})", source=path
+        )
     if meta.get("features") != node_feature_names(model_spec, meta["stage"], meta["level"]):
-        raise TesseraInputError("model's feature list does not match this version's features", source=path)
+        raise TesseraInputError(
+            "model's feature list does not match this version's features", source=path
+        )
     classifiers = []
     for i, clf_meta in enumerate(meta.get("classifiers", [])):
         prefix = f"clf{i}__"
-        clf_arrays = {k[len(prefix):]: v for k, v in arrays.items() if k.startswith(prefix)}
+        clf_arrays = {k[len(prefix) :]: v for k, v in arrays.items() if k.startswith(prefix)}
         try:
             classifiers.append(classifier_from_state(clf_arrays, clf_meta))
         except TesseraInputError as exc:
             raise TesseraInputError(str(exc), source=path) from None
     if len(classifiers) != model_spec.folds + 1:
-        raise TesseraInputError(f"model holds {len(classifiers)} classifiers, expected {model_spec.folds + 1}", source=path)
-    return NodeModel(model_spec, meta["stage"], meta["level"], classifiers[0], classifiers[1:], meta)
+        raise TesseraInputError(
+            f"model holds {len(classifiers)} classifiers, expected {model_spec.folds + 1}",
+            source=path,
+        )
+    return NodeModel(
+        model_spec, meta["stage"], meta["level"], classifiers[0], classifiers[1:], meta
+    )
 
 
 def _read_plain_arrays(path):
@@ -928,12 +998,15 @@ def _read_plain_arrays(path):
                     # numpy refuses object (pickled) arrays here, before unpickling anything
                     raise TesseraInputError(
                         f"array {name!r} cannot be read as plain numbers ({exc}); model files hold numeric arrays "
-                        f"only and are never unpickled; {_REBUILD}", source=path) from None
+                        f"only and are never unpickled; {_REBUILD}",
+                        source=path,
+                    ) from None
     except TesseraInputError:
         raise
     except FileNotFoundError:
         raise TesseraInputError(f"model file not found; {_REBUILD}", source=path) from None
     except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as exc:
-        raise TesseraInputError(f"not a readable model file (truncated or damaged?): {exc}; {_REBUILD}",
-                                source=path) from None
+        raise TesseraInputError(
+            f"not a readable model file (truncated or damaged?): {exc}; {_REBUILD}", source=path
+        ) from None
     return arrays
