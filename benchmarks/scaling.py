@@ -120,8 +120,8 @@ def train(root):
 
 
 def write_image(path, raw, sections):
-    from tessera.chunksums import record_checksums
-    from tessera.omezarr import AXES, multiscale_attrs
+    from tessera.io.omezarr import AXES, multiscale_attrs
+    from tessera.io.store_checksums import record_checksums
 
     group = zarr.open_group(store=str(path), mode="w", zarr_format=3)
     group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 16, 16), factors=[(1, 1, 1)])

@@ -32,6 +32,6 @@ rule audit:
     params:
         study=config["study"]["name"],
         sources=[p for d in DATASETS.index for p in dataset_inputs_of(d)],
-        code=stage_code("audit"),
+        code=script_code("audit"),
     script:
         "../scripts/audit.py"

@@ -10,9 +10,9 @@ sys.path.insert(0, workflow.basedir)
 from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.model import CascadeSpec, ancestors, nodes
-from tessera.config import expand_variants, load_config, load_datasets, sheet_spacing
+from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
-from tessera.provenance import code_version
+from tessera.workflow.provenance import script_code as code_version_of_script
 from tessera.tiles import read_points
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
@@ -37,10 +37,10 @@ except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 
 
-def stage_code(stage):
-    """Version + source hash of tessera.<stage> and what it imports; every rule passes it as a
-    param, so editing a module reruns exactly the jobs that depend on it."""
-    return code_version(f"tessera.{stage}", "tessera.jobs")
+def script_code(rule):
+    """The `code` param of a rule: version + source hash of every tessera module its script
+    (scripts/<rule>.py) imports, so editing a module reruns exactly the jobs that run it."""
+    return code_version_of_script(f"{workflow.basedir}/scripts/{rule}.py")
 
 
 wildcard_constraints:

@@ -25,6 +25,6 @@ if "demo" in config:
             study_seed=config["demo"]["seed"],
             shape=config["demo"]["shape"],
             tile_size=config["demo"]["tile_size"],
-            code=stage_code("demo"),
+            code=script_code("demo_dataset"),
         script:
-            "../scripts/demo.py"
+            "../scripts/demo_dataset.py"

@@ -26,6 +26,6 @@ rule downsampling_study:
         tolerance=lambda wildcards: config["targets"][wildcards.target][
             "downsampling_study"
         ]["tolerance"],
-        code=stage_code("downsampling"),
+        code=script_code("downsampling_study"),
     script:
-        "../scripts/downsampling.py"
+        "../scripts/downsampling_study.py"

@@ -44,6 +44,6 @@ rule evaluate:
     params:
         downsample=target_downsample,
         datasets=annotated_ids,
-        code=stage_code("evaluate"),
+        code=script_code("evaluate"),
     script:
         "../scripts/evaluate.py"

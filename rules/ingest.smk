@@ -20,6 +20,6 @@ rule ingest:
         spacing=dataset_spacing,
         chunks=config["ingest"]["chunks"],
         percentiles=config["ingest"]["percentiles"],
-        code=stage_code("ingest"),
+        code=script_code("ingest"),
     script:
         "../scripts/ingest.py"

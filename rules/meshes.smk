@@ -24,6 +24,6 @@ rule meshes:
         step=config["meshes"]["step"],
         unit=config["meshes"]["unit"],
         preview_objects=config["meshes"]["preview_objects"],
-        code=stage_code("meshes"),
+        code=script_code("meshes"),
     script:
         "../scripts/meshes.py"

@@ -14,7 +14,7 @@ rule checksum_inputs:
         mem_mb=scaled_by_attempt(500),
         runtime=scaled_by_attempt(120),
     params:
-        code=stage_code("methods"),
+        code=script_code("checksum_inputs"),
     script:
         "../scripts/checksum_inputs.py"
 
@@ -56,6 +56,6 @@ rule methods:
         datasets=dataset_groups,
         targets=BASE_TARGETS,
         dataset_ids=list(DATASETS.index),
-        code=stage_code("methods"),
+        code=script_code("methods"),
     script:
         "../scripts/methods.py"

@@ -19,6 +19,6 @@ rule morphometry:
         mem_mb=scaled_by_attempt(2000),
         runtime=scaled_by_attempt(60),
     params:
-        code=stage_code("morphometry"),
+        code=script_code("morphometry"),
     script:
         "../scripts/morphometry.py"

@@ -28,6 +28,6 @@ rule next_tiles:
         datasets=list(DATASETS.index),
         size=lambda wildcards: target_tiles(wildcards)["size"],
         suggest=lambda wildcards: target_settings(wildcards)["next_tiles"],
-        code=stage_code("next_tiles"),
+        code=script_code("next_tiles"),
     script:
         "../scripts/next_tiles.py"

@@ -21,6 +21,6 @@ rule objects:
         runtime=scaled_by_attempt(60),
     params:
         settings=target_objects,
-        code=stage_code("objects"),
+        code=script_code("objects"),
     script:
         "../scripts/objects.py"

@@ -22,7 +22,7 @@ rule shard_plan:
         max_halo=config["predict"]["max_halo"],
         dtype=config["predict"]["dtype"],
         output_sigma=target_output_sigma,
-        code=stage_code("predict"),
+        code=script_code("shard_plan"),
     script:
         "../scripts/shard_plan.py"
 
@@ -46,7 +46,7 @@ rule predict_shard:
         mem_mb=scaled_by_attempt(4000),
         runtime=scaled_by_attempt(120),
     params:
-        code=stage_code("predict"),
+        code=script_code("predict_shard"),
     script:
         "../scripts/predict_shard.py"
 
@@ -68,6 +68,6 @@ rule stitch:
         runtime=scaled_by_attempt(60),
     params:
         viewing_levels=config["predict"]["viewing_levels"],
-        code=stage_code("predict"),
+        code=script_code("stitch"),
     script:
         "../scripts/stitch.py"

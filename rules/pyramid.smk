@@ -18,6 +18,6 @@ rule pyramid:
     params:
         levels=config["pyramid"]["levels"],
         downsample_z=config["pyramid"]["downsample_z"],
-        code=stage_code("pyramid"),
+        code=script_code("pyramid"),
     script:
         "../scripts/pyramid.py"

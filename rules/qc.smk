@@ -23,6 +23,6 @@ rule section_qc:
         runtime=scaled_by_attempt(30),
     params:
         qc=config["qc"],
-        code=stage_code("qc"),
+        code=script_code("section_qc"),
     script:
-        "../scripts/qc.py"
+        "../scripts/section_qc.py"

@@ -36,6 +36,6 @@ rule statistics:
     params:
         datasets=dataset_groups,
         statistics=config["statistics"],
-        code=stage_code("stats"),
+        code=script_code("statistics"),
     script:
         "../scripts/statistics.py"

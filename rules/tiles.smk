@@ -21,7 +21,7 @@ rule sample_tiles:
         downsample=target_downsample,
         tiles=target_tiles,
         exclude_flagged=config["qc"]["exclude_flagged"],
-        code=stage_code("tiles"),
+        code=script_code("sample_tiles"),
     script:
         "../scripts/sample_tiles.py"
 
@@ -44,7 +44,7 @@ rule export_tiles:
         size=target_tile_size,
         datasets=list(DATASETS.index),
         targets=list(config["targets"]),
-        code=stage_code("tiles"),
+        code=script_code("export_tiles"),
     script:
         "../scripts/export_tiles.py"
 
@@ -65,7 +65,7 @@ rule import_tiles:
     params:
         masks=painted_masks_folder,
         painted=painted_options,
-        code=stage_code("tiles"),
+        code=script_code("import_tiles"),
     script:
         "../scripts/import_tiles.py"
 
@@ -84,6 +84,6 @@ rule split_tiles:
         runtime=scaled_by_attempt(10),
     params:
         split=target_split,
-        code=stage_code("tiles"),
+        code=script_code("split_tiles"),
     script:
         "../scripts/split_tiles.py"

@@ -24,7 +24,7 @@ rule train_node:
         train_datasets=lambda wildcards: target_settings(wildcards)["train_datasets"],
         downsample=target_downsample,
         datasets=annotated_ids,
-        code=stage_code("train"),
+        code=script_code("train_node"),
     script:
         "../scripts/train_node.py"
 
@@ -55,6 +55,6 @@ rule predict_tiles:
         downsample=target_downsample,
         output_sigma=target_output_sigma,
         datasets=annotated_ids,
-        code=stage_code("train"),
+        code=script_code("predict_tiles"),
     script:
         "../scripts/predict_tiles.py"

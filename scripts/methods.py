@@ -5,8 +5,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.jobs import run_job
 from tessera.methods import methods_job
+from tessera.workflow.runner import run_job
 
 targets, datasets = snakemake.params.targets, snakemake.params.dataset_ids
 objects = list(snakemake.input.objects)  # ordered target-major by expand()

@@ -5,8 +5,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.jobs import run_job
 from tessera.next_tiles import next_tiles_job
+from tessera.workflow.runner import run_job
 
 datasets = snakemake.params.datasets
 run_job(

@@ -5,8 +5,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.jobs import run_job
 from tessera.tiles import split_job
+from tessera.workflow.runner import run_job
 
 split = snakemake.params.split
 run_job(

@@ -5,8 +5,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.jobs import run_job
 from tessera.train import train_node_job
+from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,

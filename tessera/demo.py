@@ -24,9 +24,9 @@ import tifffile
 from PIL import Image
 from scipy import ndimage
 
-from .atomic import atomic_path
-from .errors import TesseraInputError
-from .spacing import normalize_spacing
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path
+from tessera.spacing import normalize_spacing
 
 __all__ = [
     "CONDITION_SCALES",

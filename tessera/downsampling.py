@@ -9,9 +9,9 @@ import math
 
 import pandas as pd
 
-from .atomic import atomic_path, write_table
-from .errors import TesseraInputError
-from .plotting import pyplot
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path, write_table
+from tessera.plotting import pyplot
 
 
 def recommend_factor(curve, *, tolerance):

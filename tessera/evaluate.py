@@ -24,8 +24,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from .errors import TesseraInputError
-from .plotting import pyplot
+from tessera.errors import TesseraInputError
+from tessera.plotting import pyplot
 
 IGNORE = 255
 EIGHT = np.ones((3, 3), bool)
@@ -406,9 +406,9 @@ def evaluate_job(
     seed=0,
 ):
     """Score one target's test tiles; write the tables and plots."""
-    from .atomic import atomic_path, write_table
-    from .tiles import read_annotation_set
-    from .train import level_arrays, tile_window
+    from tessera.io.atomic import atomic_path, write_table
+    from tessera.tiles import read_annotation_set
+    from tessera.train import level_arrays, tile_window
 
     registry, labels = read_annotation_set(annotations)
     check_no_leakage(registry, source=annotations)

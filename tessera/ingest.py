@@ -22,10 +22,10 @@ import numpy as np
 import tifffile
 import zarr
 
-from .atomic import atomic_path
-from .chunksums import record_checksums
-from .errors import TesseraInputError
-from .omezarr import AXES, multiscale_attrs
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path
+from tessera.io.omezarr import AXES, multiscale_attrs
+from tessera.io.store_checksums import record_checksums
 
 FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr")
 _SLICE_SUFFIXES = (".tif", ".tiff", ".png")
@@ -170,7 +170,7 @@ class _Zarr(_Source):
         except (FileNotFoundError, ValueError, zarr.errors.NodeTypeValidationError) as exc:
             raise TesseraInputError(f"cannot open as zarr: {exc}", source=path) from None
         if isinstance(node, zarr.Group):
-            from .omezarr import open_image
+            from tessera.io.omezarr import open_image
 
             _, info = open_image(
                 path, checksums="if-present"

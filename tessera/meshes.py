@@ -9,9 +9,9 @@ viewer reads, with the unit in a comment line.
 import numpy as np
 from skimage.measure import marching_cubes
 
-from .errors import TesseraInputError
-from .plotting import pyplot
-from .spacing import normalize_spacing
+from tessera.errors import TesseraInputError
+from tessera.plotting import pyplot
+from tessera.spacing import normalize_spacing
 
 UNITS = {"nm": 1.0, "um": 1e-3}
 
@@ -166,8 +166,8 @@ def meshes_job(
     """
     import pandas as pd
 
-    from .atomic import atomic_path
-    from .omezarr import open_image
+    from tessera.io.atomic import atomic_path
+    from tessera.io.omezarr import open_image
 
     group, info = open_image(objects_image)
     labels = group[f"labels/{target}/0"]

@@ -6,14 +6,14 @@ SHA-256 of every input file), so the paragraph cannot drift from the analysis it
 """
 
 import json
-from importlib import metadata
 from pathlib import Path
 
 import pandas as pd
 
-from . import __version__
-from .atomic import write_text
-from .checksum import file_sha256
+from tessera import __version__
+from tessera.io.atomic import write_text
+from tessera.io.digests import file_sha256
+from tessera.workflow.versions import software_versions
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -22,7 +22,6 @@ CLASSIFIER_NAMES = {
     "random_forest": "random forest",
     "hist_gradient_boosting": "histogram gradient boosting",
 }
-PACKAGES = ("snakemake", "numpy", "scipy", "scikit-image", "scikit-learn", "zarr", "pandas")
 
 
 def checksum_job(paths, out_path):
@@ -30,17 +29,6 @@ def checksum_job(paths, out_path):
     lines = [f"{file_sha256(p)}  {p}" for p in paths]
     write_text(out_path, "\n".join(lines) + "\n")
     return {"files": len(paths)}
-
-
-def software_versions():
-    """Versions of tessera and the main libraries (installed distributions)."""
-    out = {"tessera": __version__}
-    for name in PACKAGES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
 
 
 def _fmt(values):

@@ -17,8 +17,8 @@ from scipy import ndimage
 from skimage.measure import marching_cubes, mesh_surface_area
 from skimage.morphology import skeletonize
 
-from .errors import TesseraInputError
-from .spacing import normalize_spacing
+from tessera.errors import TesseraInputError
+from tessera.spacing import normalize_spacing
 
 MEASURES = (
     "volume_um3",
@@ -401,8 +401,8 @@ def morphometry_job(
     """
     import zarr
 
-    from .atomic import write_table
-    from .omezarr import open_image
+    from tessera.io.atomic import write_table
+    from tessera.io.omezarr import open_image
 
     group, info = open_image(objects_image)
     try:

@@ -11,8 +11,8 @@ sheet that the tile export reads (full-resolution voxel coordinates of each cent
 import numpy as np
 import pandas as pd
 
-from .errors import TesseraInputError
-from .plotting import pyplot
+from tessera.errors import TesseraInputError
+from tessera.plotting import pyplot
 
 
 def binary_entropy(p):
@@ -136,10 +136,10 @@ def next_tiles_job(
     `probabilities` and `qc_tables` map dataset ids to the stitched probability maps and the QC
     tables. The sheet's coordinates are full-resolution voxels, as the tile export expects.
     """
-    from .atomic import atomic_path, write_table
-    from .objects import excluded_sections
-    from .omezarr import open_image
-    from .tiles import read_annotation_set
+    from tessera.io.atomic import atomic_path, write_table
+    from tessera.io.omezarr import open_image
+    from tessera.objects import excluded_sections
+    from tessera.tiles import read_annotation_set
 
     registry, _ = read_annotation_set(annotations)
     volumes, factors, scales = {}, {}, {}

@@ -34,11 +34,11 @@ from scipy import ndimage
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
-from .atomic import atomic_path, write_table, write_text
-from .chunksums import record_checksums, verified_bytes
-from .errors import TesseraInputError
-from .omezarr import AXES, multiscale_attrs, open_image
-from .pyramid import link_tree
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path, write_table, write_text
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.store_checksums import record_checksums, verified_bytes
+from tessera.pyramid import link_tree
 
 CONNECTIVITY = {6: 1, 18: 2, 26: 3}  # neighbours in 3D -> rank of scipy's binary structure
 _log = logging.getLogger(__name__)

@@ -23,8 +23,7 @@ from pathlib import Path
 import numpy as np
 import zarr
 
-from .atomic import atomic_path, write_text
-from .cascade.model import (
+from tessera.cascade.model import (
     cascade_spec,
     frame_memory_bytes,
     load_node,
@@ -34,11 +33,12 @@ from .cascade.model import (
     predict_frame,
     receptive_radius,
 )
-from .checksum import file_sha256
-from .chunksums import record_checksums
-from .errors import TesseraInputError, TesseraResourceError
-from .omezarr import AXES, multiscale_attrs, open_image, working_level
-from .pyramid import downsample_level
+from tessera.errors import TesseraInputError, TesseraResourceError
+from tessera.io.atomic import atomic_path, write_text
+from tessera.io.digests import file_sha256
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image, working_level
+from tessera.io.store_checksums import record_checksums
+from tessera.pyramid import downsample_level
 
 PLAN_FORMAT = 1
 DTYPES = ("uint8", "float16", "float32")
@@ -294,7 +294,7 @@ def _check_memory(plan, job, spec, model_paths, mem_mb, *, source):
     needed = shard_memory_mb(plan, job, spec, model_paths)
     if mem_mb >= needed:
         return needed
-    from .resources import more_memory_hint
+    from tessera.workflow.resources import more_memory_hint
 
     blocks = [plan["blocks"][i] for i in plan["jobs"][job]]
     largest = max(blocks, key=lambda b: (b[3] - b[2]) * (b[5] - b[4]) * (b[1] - b[0]))

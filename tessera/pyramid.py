@@ -12,10 +12,10 @@ from pathlib import Path
 import numpy as np
 import zarr
 
-from .atomic import atomic_path
-from .chunksums import record_checksums
-from .errors import TesseraInputError
-from .omezarr import AXES, multiscale_attrs, open_image
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.store_checksums import record_checksums
 
 
 def block_mean(image, factors):

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 __all__ = [
     "section_metrics",
@@ -736,8 +736,8 @@ def qc_image(
     dict
         Number of sections, and the z of flagged and of excluded sections.
     """
-    from .atomic import atomic_path
-    from .omezarr import open_image
+    from tessera.io.atomic import atomic_path
+    from tessera.io.omezarr import open_image
 
     _, info = open_image(image_path)
     table = measure_sections(

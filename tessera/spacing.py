@@ -8,7 +8,7 @@ import math
 
 import numpy as np
 
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 
 def normalize_spacing(spacing, ndim, *, name="spacing"):

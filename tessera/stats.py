@@ -17,8 +17,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats as sps
 
-from .errors import TesseraInputError
-from .plotting import pyplot
+from tessera.errors import TesseraInputError
+from tessera.plotting import pyplot
 
 # size-like measures are compared on the log scale: the effect is a ratio (cold / reference)
 LOG_MEASURES = (
@@ -218,7 +218,7 @@ def statistics_job(
     reference : str, optional
         Condition the others are compared with (default: the first condition in the sheet).
     """
-    from .atomic import atomic_path, write_table
+    from tessera.io.atomic import atomic_path, write_table
 
     frames, region_frames = [], []
     for dataset, path in object_tables.items():

@@ -43,10 +43,10 @@ import pandas as pd
 import tifffile
 from PIL import Image
 
-from .atomic import atomic_path
-from .errors import TesseraInputError
-from .omezarr import open_image, working_level
-from .pyramid import block_mean
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path
+from tessera.io.omezarr import open_image, working_level
+from tessera.pyramid import block_mean
 
 __all__ = [
     "BACKGROUND",

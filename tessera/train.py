@@ -9,8 +9,7 @@ enough for the node's receptive field, mirrored beyond the volume.
 import numpy as np
 import pandas as pd
 
-from .atomic import atomic_path, write_table
-from .cascade.model import (
+from tessera.cascade.model import (
     CascadeSpec,
     ancestors,
     cascade_spec,
@@ -22,9 +21,10 @@ from .cascade.model import (
     save_node,
     train_node,
 )
-from .errors import TesseraInputError
-from .omezarr import open_image, working_level
-from .tiles import read_annotation_set
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path, write_table
+from tessera.io.omezarr import open_image, working_level
+from tessera.tiles import read_annotation_set
 
 
 def assign_folds(tiles, folds, seed):

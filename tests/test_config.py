@@ -5,8 +5,8 @@ import copy
 import pytest
 import yaml
 
-from tessera.config import load_config, load_datasets, read_yaml, sheet_spacing
 from tessera.errors import TesseraInputError
+from tessera.workflow.config import load_config, load_datasets, read_yaml, sheet_spacing
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 

@@ -26,7 +26,6 @@ import pandas as pd
 import pytest
 import tifffile
 
-from tessera.atomic import write_table
 from tessera.cascade.model import (
     CascadeSpec,
     fit_cascade,
@@ -37,6 +36,7 @@ from tessera.cascade.model import (
 )
 from tessera.errors import TesseraResourceError
 from tessera.ingest import ingest_stack
+from tessera.io.atomic import write_table
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -192,7 +192,7 @@ def test_model_write_on_full_disk_keeps_the_previous_model(tmp_path, full_disk):
 
 def test_quota_exceeded_is_reported_like_a_full_disk(tmp_path, monkeypatch):
     # EDQUOT (POSIX write(2): "the user's quota of disk blocks ... has been exhausted")
-    from tessera.atomic import write_text
+    from tessera.io.atomic import write_text
 
     out = tmp_path / "methods.md"
     write_text(out, "old\n")
@@ -232,7 +232,7 @@ _ON_TMPFS = textwrap.dedent("""
     import numpy as np, pandas as pd, tifffile
     sys.path.insert(0, sys.argv[2])
     from test_disk_full import _small_model, snapshot
-    from tessera.atomic import write_table
+    from tessera.io.atomic import write_table
     from tessera.cascade.model import save_node
     from tessera.errors import TesseraResourceError
     from tessera.ingest import ingest_stack

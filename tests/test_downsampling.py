@@ -3,9 +3,9 @@
 import pandas as pd
 import pytest
 
-from tessera.config import expand_variants, load_config
 from tessera.downsampling import downsampling_job, recommend_factor
 from tessera.errors import TesseraInputError
+from tessera.workflow.config import expand_variants, load_config
 
 
 def base_config(**target):

@@ -13,7 +13,7 @@ from PIL import Image as PILImage
 
 from tessera.errors import TesseraInputError
 from tessera.ingest import estimate_intensity_range, ingest_stack, open_stack, to_uint8
-from tessera.omezarr import open_image
+from tessera.io.omezarr import open_image
 
 SPACING = (40.0, 8.0, 8.0)
 

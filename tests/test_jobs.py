@@ -14,7 +14,7 @@ import pytest
 from snakemake.cli import parse_set_resources
 from snakemake.profiles import ProfileConfigFileParser
 
-from tessera.jobs import run_job
+from tessera.workflow.runner import run_job
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -80,7 +80,7 @@ _UNDER_LIMIT = textwrap.dedent("""
     import resource, sys
     from types import SimpleNamespace
     import numpy as np
-    from tessera.jobs import run_job
+    from tessera.workflow.runner import run_job
 
     # address space now plus 256 MB: allocations beyond fail (setrlimit(2), RLIMIT_AS)
     with open("/proc/self/statm") as fh:

@@ -7,8 +7,8 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tessera.config import load_config, load_datasets
 from tessera.errors import TesseraInputError
+from tessera.workflow.config import load_config, load_datasets
 
 # JSON-like values: what a YAML config can hold
 scalars = st.one_of(
@@ -91,7 +91,7 @@ def test_any_sheet_loads_or_fails_with_our_error(repo, tmp_path_factory, header,
 
 
 def test_yaml_with_object_tags_is_refused_without_running_anything(tmp_path, repo):
-    from tessera.config import read_yaml
+    from tessera.workflow.config import read_yaml
 
     path = tmp_path / "config.yaml"
     path.write_text("datasets: !!python/object/apply:os.system ['echo unsafe']\n")

@@ -124,7 +124,7 @@ def test_methods_text_is_written_from_the_run(tmp_path):
 def test_audit_manifest_and_ro_crate(tmp_path):
     import json
 
-    from tessera.audit import audit_job
+    from tessera.workflow.audit import audit_job
 
     results = tmp_path / "results"
     (results / "a").mkdir(parents=True)
@@ -185,7 +185,7 @@ def test_audit_manifest_and_ro_crate(tmp_path):
 def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_manifests(tmp_path):
     # Reference: hashlib.sha256. Small inputs are hashed whole; a store above the limit is named
     # by the SHA-256 of its checksum manifests, so a job never rereads a terabyte input for its record.
-    from tessera.provenance import _file_entry
+    from tessera.workflow.provenance import _file_entry
 
     table = tmp_path / "t.tsv"
     table.write_bytes(b"a\tb\n1\t2\n")

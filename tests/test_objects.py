@@ -11,11 +11,11 @@ from ome_zarr_models.v05.image_label import ImageLabel
 from scipy import ndimage
 from skimage.filters import apply_hysteresis_threshold
 
-from tessera.chunksums import record_checksums
-from tessera.config import load_config
 from tessera.errors import TesseraInputError
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.store_checksums import record_checksums
 from tessera.objects import ball, connectivity_structure, label_objects, objects_job
-from tessera.omezarr import AXES, multiscale_attrs, open_image
+from tessera.workflow.config import load_config
 
 SPACING = (40.0, 10.0, 10.0)
 

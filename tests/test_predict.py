@@ -19,10 +19,10 @@ from tessera.cascade.model import (
     receptive_radius,
     save_node,
 )
-from tessera.checksum import file_sha256
-from tessera.chunksums import record_checksums
 from tessera.errors import TesseraInputError, TesseraResourceError
-from tessera.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.digests import file_sha256
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.store_checksums import record_checksums
 from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
 
 SPEC = dict(

@@ -8,7 +8,7 @@ import pytest
 import yaml
 
 from tessera.errors import TesseraInputError
-from tessera.profiles import check_profile, rule_resources
+from tessera.workflow.profiles import check_profile, rule_resources
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -75,7 +75,13 @@ def test_rule_needs_are_read_from_the_rule_files():
 def test_command_line_exit_status(tmp_path):
     bad = write_profile(tmp_path, {"executor": "nowhere"})
     done = subprocess.run(
-        [sys.executable, "-m", "tessera.profiles", str(REPO / "profiles" / "local"), str(bad)],
+        [
+            sys.executable,
+            "-m",
+            "tessera.workflow.profiles",
+            str(REPO / "profiles" / "local"),
+            str(bad),
+        ],
         capture_output=True,
         text=True,
         cwd=REPO,

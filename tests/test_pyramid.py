@@ -12,7 +12,7 @@ from skimage.transform import downscale_local_mean
 
 from tessera.errors import TesseraInputError
 from tessera.ingest import ingest_stack
-from tessera.omezarr import open_image, working_level
+from tessera.io.omezarr import open_image, working_level
 from tessera.pyramid import block_mean, build_pyramid, downsample_level
 
 

@@ -26,7 +26,7 @@ from pathlib import Path
 
 import pytest
 
-from tessera.provenance import is_run_specific
+from tessera.workflow.provenance import is_run_specific
 
 pytestmark = pytest.mark.workflow
 

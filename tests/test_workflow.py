@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 import yaml
 
-from tessera.omezarr import open_image
+from tessera.io.omezarr import open_image
 
 pytestmark = pytest.mark.workflow
 
@@ -196,7 +196,7 @@ def test_tiny_study_produces_every_output(finished_study):
 
 
 def test_every_job_leaves_a_provenance_record(finished_study):
-    from tessera.provenance import is_run_specific
+    from tessera.workflow.provenance import is_run_specific
 
     records = [
         json.loads(p.read_text())
@@ -470,14 +470,14 @@ def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
 
 
 def test_stage_code_version_follows_the_import_graph():
-    from tessera.provenance import module_closure
+    from tessera.workflow.provenance import module_closure
 
     # pyramid reads images through omezarr and writes through atomic; it must not depend on qc,
     # so editing qc.py does not rerun the pyramid of a large stack.
     closure = module_closure("tessera.pyramid")
-    assert {"tessera.omezarr", "tessera.atomic", "tessera.errors"} <= closure
+    assert {"tessera.io.omezarr", "tessera.io.atomic", "tessera.errors"} <= closure
     assert "tessera.qc" not in closure and "tessera.ingest" not in closure
-    assert "tessera.omezarr" in module_closure("tessera.qc")  # imported inside a function
+    assert "tessera.io.omezarr" in module_closure("tessera.qc")  # imported inside a function
 
 
 def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, repo):

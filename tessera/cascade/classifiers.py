@@ -38,7 +38,7 @@ import scipy
 from scipy.special import expit
 from threadpoolctl import threadpool_limits
 
-from ..errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 KINDS = ("ldnn", "mlp", "extra_trees", "random_forest", "hist_gradient_boosting")
 CHUNK_ROWS = 2**18

@@ -16,8 +16,8 @@ import math
 import numpy as np
 from scipy import ndimage
 
-from ..errors import TesseraInputError
-from ..spacing import normalize_spacing
+from tessera.errors import TesseraInputError
+from tessera.spacing import normalize_spacing
 
 DEFAULT_SIGMAS = (0.7, 1.6, 3.5, 5.0, 10.0)
 _KINDS = ("smooth", "gradient", "log", "dog", "hessian", "structure")

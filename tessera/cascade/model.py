@@ -38,12 +38,9 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from .. import __version__
-from ..atomic import atomic_path
-from ..errors import TesseraInputError
-from ..pyramid import block_mean
-from .classifiers import CHUNK_ROWS, KINDS, classifier_from_state, make_classifier
-from .features import (
+from tessera import __version__
+from tessera.cascade.classifiers import CHUNK_ROWS, KINDS, classifier_from_state, make_classifier
+from tessera.cascade.features import (
     DEFAULT_SIGMAS,
     feature_names,
     feature_radius,
@@ -51,6 +48,9 @@ from .features import (
     neighbour_feature_names,
     neighbour_features,
 )
+from tessera.errors import TesseraInputError
+from tessera.io.atomic import atomic_path
+from tessera.pyramid import block_mean
 
 MODEL_FORMAT = 2  # 2: the payload's SHA-256 is recorded in the metadata
 IGNORE = 255
@@ -885,7 +885,7 @@ def payload_sha256(arrays, meta):
 def save_node(model, path_or_file):
     """Write a node to an .npz holding only numeric arrays (metadata as UTF-8 JSON bytes).
 
-    A path is written atomically (:func:`tessera.atomic.atomic_path`): a failed write leaves the
+    A path is written atomically (:func:`tessera.io.atomic.atomic_path`): a failed write leaves the
     previous model file as it was.
 
     The metadata records :func:`payload_sha256` of the content; :func:`load_node` checks it.

@@ -5,7 +5,7 @@ whose plugin is not installed or a rule given less memory than it needs then sho
 a usage dump, or as a job killed on the cluster hours later. :func:`check_profile` finds these
 first, with one message naming the file, the key and what was expected::
 
-    python -m tessera.profiles profiles/slurm
+    python -m tessera.workflow.profiles profiles/slurm
 """
 
 import re
@@ -14,11 +14,11 @@ from pathlib import Path
 
 import yaml
 
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 __all__ = ["check_profile", "rule_resources", "snakemake_options"]
 
-_RULES_DIR = Path(__file__).resolve().parent.parent / "rules"
+_RULES_DIR = Path(__file__).resolve().parents[2] / "rules"
 # Executors that ship inside Snakemake itself, not as plugins.
 _BUILT_IN_EXECUTORS = {"local", "dryrun", "touch"}
 
@@ -165,10 +165,10 @@ def check_profile(profile, *, rules_dir=_RULES_DIR):
 
 
 def main(argv=None):
-    """``python -m tessera.profiles PROFILE...``: check each profile; exit 1 on the first problem."""
+    """``python -m tessera.workflow.profiles PROFILE...``: check each profile; exit 1 on the first problem."""
     argv = sys.argv[1:] if argv is None else argv
     if not argv:
-        print("usage: python -m tessera.profiles PROFILE [PROFILE ...]", file=sys.stderr)
+        print("usage: python -m tessera.workflow.profiles PROFILE [PROFILE ...]", file=sys.stderr)
         return 2
     for profile in argv:
         try:

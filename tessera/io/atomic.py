@@ -14,7 +14,7 @@ import shutil
 import time
 from pathlib import Path
 
-from .errors import TesseraResourceError
+from tessera.errors import TesseraResourceError
 
 _TMP_TAG = ".partial-"
 _NO_SPACE = {

@@ -3,11 +3,17 @@
 import ast
 import functools
 import hashlib
+import json
+import platform
+import subprocess
 from pathlib import Path
 
-from . import __version__
+from tessera import __version__
+from tessera.io.atomic import write_text
+from tessera.io.digests import file_sha256
+from tessera.workflow.versions import software_versions
 
-_PACKAGE_DIR = Path(__file__).parent
+_PACKAGE_DIR = Path(__file__).resolve().parents[1]  # the tessera package
 
 
 def _module_file(name):
@@ -55,10 +61,46 @@ def module_closure(*modules):
         if name in seen:
             continue
         seen.add(name)
-        if name != "tessera":
-            seen.add("tessera")  # importing a submodule runs the package __init__ too
+        # importing a submodule runs the __init__ of every package above it too
+        parents = [name.rsplit(".", n)[0] for n in range(1, name.count(".") + 1)]
+        todo.extend(p for p in parents if p not in seen)
         todo.extend(_package_imports(_module_file(name), name) - seen)
     return seen
+
+
+def script_modules(script):
+    r"""The tessera modules a script runs: what it imports, transitively.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     script = Path(folder) / "job.py"
+    ...     _ = script.write_text("from tessera.spacing import normalize_spacing\n")
+    ...     sorted(script_modules(script))
+    ['tessera', 'tessera.errors', 'tessera.spacing']
+    """
+    found = set()
+    for node in ast.walk(ast.parse(Path(script).read_text(encoding="utf-8"))):
+        if isinstance(node, ast.Import):
+            found.update(a.name for a in node.names if a.name.split(".")[0] == "tessera")
+        elif isinstance(node, ast.ImportFrom) and (node.module or "").split(".")[0] == "tessera":
+            found.add(node.module)
+            found.update(
+                f"{node.module}.{a.name}"
+                for a in node.names
+                if _module_file(f"{node.module}.{a.name}").exists()
+            )
+    return module_closure(*sorted(m for m in found if _module_file(m).exists()))
+
+
+def script_code(script):
+    """:func:`code_version` of what a rule's script runs: the ``code`` param of every rule.
+
+    Snakemake's own code trigger sees the script file, not the modules it imports; this param
+    covers exactly those, so editing a module reruns the jobs that execute it and no others.
+    """
+    return code_version(*sorted(script_modules(script)))
 
 
 def code_version(*modules):
@@ -161,10 +203,6 @@ _CHECKSUM_MANIFESTS = ("tessera-checksums.json", "manifest.json")
 
 
 def _file_entry(entry, *, full_hash_bytes=FULL_HASH_BYTES):
-    import hashlib
-
-    from .checksum import file_sha256
-
     path = Path(entry["path"])
     if not path.exists():
         return {**entry, "kind": "missing", "bytes": None, "sha256": None}
@@ -206,7 +244,6 @@ def source_state(directory):
     A record from a dirty tree says so: the code version hash still identifies the package
     source, but the workflow files may differ from any commit.
     """
-    import subprocess
 
     def git(*args):
         done = subprocess.run(
@@ -244,10 +281,6 @@ def job_record(job, *, started, finished, workflow_dir):
         threads, resources, host, start, end and duration. Only ``host``, ``started``,
         ``finished`` and ``duration_s`` differ between two identical runs.
     """
-    import platform
-
-    from .methods import software_versions
-
     params = (
         _plain(dict(job.params.items()))
         if hasattr(job.params, "items")
@@ -277,10 +310,6 @@ def job_record(job, *, started, finished, workflow_dir):
 
 def write_job_record(job, *, started, finished, workflow_dir, root=RECORD_ROOT):
     """Write :func:`job_record` of `job` to :func:`record_path` atomically; return the path."""
-    import json
-
-    from .atomic import write_text
-
     path = record_path(job.rule, dict(job.wildcards.items()), root=root)
     record = job_record(job, started=started, finished=finished, workflow_dir=workflow_dir)
     write_text(path, json.dumps(record, indent=1, sort_keys=False) + "\n")

@@ -6,7 +6,7 @@ log *and* the console as one line (no traceback), so the user sees which file an
 without opening the log. Running out of memory is one such line too, naming the rule, its
 ``mem_mb`` and the profile key that raises it. When the job succeeds, its provenance
 record (inputs and outputs with checksums, params, code version, host, times) is written under
-``results/provenance/`` (see :func:`tessera.provenance.job_record`).
+``results/provenance/`` (see :func:`tessera.workflow.provenance.job_record`).
 """
 
 import json
@@ -17,6 +17,10 @@ import time
 from datetime import UTC, datetime
 from pathlib import Path
 
+from tessera.errors import TesseraInputError
+from tessera.workflow.provenance import write_job_record
+from tessera.workflow.resources import job_info, out_of_memory_message
+
 
 def run_job(job, func, /, **kwargs):
     """Run ``func(**kwargs)`` with logging to the job's log; exit 1 with a one-line message on bad
@@ -26,9 +30,6 @@ def run_job(job, func, /, **kwargs):
     out-of-memory message can name them, and a provenance record is written on success) or,
     outside Snakemake, a log path (no record).
     """
-    from .errors import TesseraInputError
-    from .resources import job_info, out_of_memory_message
-
     info = job_info(job)
     started = datetime.now(UTC)
     handler = logging.FileHandler(info.log, mode="w", encoding="utf-8")
@@ -57,8 +58,6 @@ def run_job(job, func, /, **kwargs):
         handler.flush()
     log.info("done in %.2f s: %s", time.perf_counter() - start, json.dumps(result, default=str))
     if not isinstance(job, (str, os.PathLike)):
-        from .provenance import write_job_record
-
         record = write_job_record(
             job,
             started=started,

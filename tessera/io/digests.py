@@ -3,7 +3,7 @@
 import hashlib
 from pathlib import Path
 
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 
 def file_sha256(path, *, chunk=1 << 22):

@@ -12,7 +12,7 @@ import jsonschema
 import pandas as pd
 import yaml
 
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 

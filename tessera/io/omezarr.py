@@ -10,9 +10,9 @@ from pathlib import Path
 
 import zarr
 
-from .chunksums import checked_store
-from .errors import TesseraInputError
-from .spacing import normalize_spacing
+from tessera.errors import TesseraInputError
+from tessera.io.store_checksums import checked_store
+from tessera.spacing import normalize_spacing
 
 NGFF_VERSION = "0.5"
 AXES = ("z", "y", "x")
@@ -77,7 +77,7 @@ def open_image(path, *, checksums="required"):
     """Open an OME-Zarr image written by this package, read-only, verifying what is read.
 
     Every file zarr reads from the image (metadata and chunks) is first compared with the
-    SHA-256 recorded when the store was written (:mod:`tessera.chunksums`), so a damaged chunk
+    SHA-256 recorded when the store was written (:mod:`tessera.io.store_checksums`), so a damaged chunk
     is refused the moment a job touches it and chunks a job never reads cost nothing.
 
     Parameters

@@ -7,7 +7,7 @@ file or store with its size and SHA-256 (a store's digest covers every file in i
 path), so a reader can check that what they downloaded is what the run made.
 
 Every job also leaves a provenance record under ``results/provenance/`` (written by
-:func:`tessera.jobs.run_job`); the audit indexes them, links each result of the manifest to the
+:func:`tessera.workflow.runner.run_job`); the audit indexes them, links each result of the manifest to the
 record of the job that made it, and lists them in the crate.
 """
 
@@ -18,10 +18,10 @@ from pathlib import Path
 
 import pandas as pd
 
-from . import __version__
-from .atomic import write_table, write_text
-from .checksum import file_sha256
-from .methods import software_versions
+from tessera import __version__
+from tessera.io.atomic import write_table, write_text
+from tessera.io.digests import file_sha256
+from tessera.workflow.versions import software_versions
 
 
 def _size(path):

@@ -37,8 +37,8 @@ from pathlib import Path
 from zarr.abc.store import OffsetByteRequest, RangeByteRequest, SuffixByteRequest
 from zarr.storage import LocalStore, WrapperStore
 
-from .checksum import file_sha256
-from .errors import TesseraInputError
+from tessera.errors import TesseraInputError
+from tessera.io.digests import file_sha256
 
 MANIFEST = "tessera-checksums.json"
 FORMAT = 1
