@@ -28,7 +28,7 @@ from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_sco
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_stack,

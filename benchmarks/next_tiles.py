@@ -20,7 +20,7 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_stack,

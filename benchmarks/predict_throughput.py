@@ -21,8 +21,7 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.classifiers import KINDS  # noqa: E402
-from tessera.cascade.model import (  # noqa: E402
+from tessera.cascade.api import (  # noqa: E402
     CascadeSpec,
     fit_cascade,
     mirrored_stack,
@@ -30,6 +29,7 @@ from tessera.cascade.model import (  # noqa: E402
     prepare_tile,
     receptive_radius,
 )
+from tessera.cascade.classifiers import KINDS  # noqa: E402
 from tessera.demo import render_dataset  # noqa: E402
 
 CORE = 1024

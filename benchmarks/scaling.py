@@ -76,7 +76,7 @@ def finish(proc):
 
 
 def train(root):
-    from tessera.cascade.model import (
+    from tessera.cascade.api import (
         CascadeSpec,
         fit_cascade,
         mirrored_stack,

@@ -17,7 +17,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_stack,

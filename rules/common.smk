@@ -9,7 +9,7 @@ sys.path.insert(0, workflow.basedir)
 
 from snakemake.exceptions import WorkflowError
 
-from tessera.cascade.model import CascadeSpec, ancestors, nodes
+from tessera.cascade.api import CascadeSpec, ancestors, nodes
 from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.workflow.provenance import script_code as code_version_of_script

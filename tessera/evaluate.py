@@ -25,9 +25,9 @@ import pandas as pd
 from scipy import ndimage
 
 from tessera.errors import TesseraInputError
+from tessera.label_values import IGNORE
 from tessera.plotting import pyplot
 
-IGNORE = 255
 EIGHT = np.ones((3, 3), bool)
 
 

@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import zarr
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     cascade_spec,
     frame_memory_bytes,
     load_node,
@@ -262,7 +262,7 @@ def shard_memory_mb(plan, job, spec, model_paths):
 
     Examples
     --------
-    >>> from tessera.cascade.model import CascadeSpec
+    >>> from tessera.cascade.api import CascadeSpec
     >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
     >>> plan = plan_shards((4, 500, 500), block=(2, 250, 250), halo=receptive_radius(spec), align=1, jobs=1)
     >>> plan["dtype"] = "uint8"

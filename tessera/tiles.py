@@ -46,6 +46,7 @@ from PIL import Image
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import open_image, working_level
+from tessera.label_values import BACKGROUND, IGNORE, TARGET
 from tessera.pyramid import block_mean
 
 __all__ = [
@@ -68,9 +69,6 @@ __all__ = [
     "write_annotation_set",
     "write_split",
 ]
-
-#: Label values of an annotation tile.
-BACKGROUND, TARGET, IGNORE = 0, 1, 255
 
 #: Registry columns, in file order (``role`` follows when the set has been split).
 REGISTRY_COLUMNS = (

@@ -9,7 +9,7 @@ enough for the node's receptive field, mirrored beyond the volume.
 import numpy as np
 import pandas as pd
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     ancestors,
     cascade_spec,

@@ -26,7 +26,7 @@ import pandas as pd
 import pytest
 import tifffile
 
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_window,
@@ -233,7 +233,7 @@ _ON_TMPFS = textwrap.dedent("""
     sys.path.insert(0, sys.argv[2])
     from test_disk_full import _small_model, snapshot
     from tessera.io.atomic import write_table
-    from tessera.cascade.model import save_node
+    from tessera.cascade.api import save_node
     from tessera.errors import TesseraResourceError
     from tessera.ingest import ingest_stack
 

@@ -10,7 +10,7 @@ from ome_zarr_models.v05 import Image
 from scipy import ndimage
 
 from tessera import predict
-from tessera.cascade.model import (
+from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_window,
@@ -266,7 +266,7 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
     # overstating it by more than half.
     import tracemalloc
 
-    from tessera.cascade.model import frame_memory_bytes
+    from tessera.cascade.api import frame_memory_bytes
 
     rng = np.random.default_rng(side)
     volume = rng.integers(0, 256, (3, side, side), dtype=np.uint8)

@@ -50,10 +50,10 @@ from tessera.cascade.features import (
 )
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
+from tessera.label_values import IGNORE
 from tessera.pyramid import block_mean
 
 MODEL_FORMAT = 2  # 2: the payload's SHA-256 is recorded in the metadata
-IGNORE = 255
 
 
 @dataclass(frozen=True)
