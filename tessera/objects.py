@@ -39,6 +39,7 @@ from tessera.io.atomic import atomic_path, write_table, write_text
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums, verified_bytes
 from tessera.pyramid import link_tree
+from tessera.workflow.files.qc_table import excluded_sections
 
 CONNECTIVITY = {6: 1, 18: 2, 26: 3}  # neighbours in 3D -> rank of scipy's binary structure
 _log = logging.getLogger(__name__)
@@ -512,14 +513,6 @@ def validation_threshold(scores_path):
         raise TesseraInputError(
             f"no validation threshold in the tile scores ({exc})", source=scores_path
         ) from None
-
-
-def excluded_sections(qc_table, z_factor=1):
-    """Sections of a working level (z reduced by `z_factor`) that QC excluded."""
-    table = pd.read_csv(qc_table, sep="\t", keep_default_na=False)
-    return sorted(
-        {int(z) // z_factor for z in table.loc[table["excluded"].astype(str) == "True", "z"]}
-    )
 
 
 def objects_job(
