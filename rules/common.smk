@@ -12,7 +12,7 @@ from snakemake.exceptions import WorkflowError
 from tessera.cascade.api import CascadeSpec, ancestors, nodes
 from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
-from tessera.workflow.provenance import script_code as code_version_of_script
+from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.tiles import read_points
 
 # Where the demo rule writes; sheet paths below it need not exist yet.

@@ -6,6 +6,7 @@ import re
 import shutil
 import subprocess
 import sys
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -18,6 +19,7 @@ from tessera.io.omezarr import open_image
 pytestmark = pytest.mark.workflow
 
 BIN = Path(sys.executable).parent
+REPO_ROOT = Path(__file__).resolve().parents[1]
 
 
 def snakemake(*args, cwd, check=True):
@@ -124,7 +126,7 @@ def tiny_study(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def finished_study(tiny_study, repo=Path(__file__).resolve().parents[1]):
+def finished_study(tiny_study, repo=REPO_ROOT):
     snakemake("--cores", "2", "--snakefile", str(repo / "Snakefile"), cwd=tiny_study)
     return tiny_study
 
@@ -254,14 +256,12 @@ def test_qc_finds_the_rendered_defects(finished_study):
         assert set(table.loc[table["excluded"], "z"]) == defects
 
 
-def test_second_run_has_nothing_to_do(finished_study, repo=Path(__file__).resolve().parents[1]):
+def test_second_run_has_nothing_to_do(finished_study, repo=REPO_ROOT):
     result = snakemake("-n", "--snakefile", str(repo / "Snakefile"), cwd=finished_study)
     assert "Nothing to be done" in result.stdout + result.stderr
 
 
-def test_changed_pyramid_setting_reruns_only_the_pyramid(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def test_changed_pyramid_setting_reruns_only_the_pyramid(finished_study, repo=REPO_ROOT):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -276,9 +276,7 @@ def test_changed_pyramid_setting_reruns_only_the_pyramid(
         config.write_text(original)
 
 
-def test_adding_a_stage_trains_only_the_new_stage(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=REPO_ROOT):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -312,9 +310,7 @@ def test_adding_a_stage_trains_only_the_new_stage(
         config.write_text(original)
 
 
-def test_changed_feature_sigma_retrains_every_node_and_what_follows(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def test_changed_feature_sigma_retrains_every_node_and_what_follows(finished_study, repo=REPO_ROOT):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -352,9 +348,7 @@ def test_changed_feature_sigma_retrains_every_node_and_what_follows(
         config.write_text(original)
 
 
-def test_changed_object_filter_reruns_only_the_objects(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def test_changed_object_filter_reruns_only_the_objects(finished_study, repo=REPO_ROOT):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -379,9 +373,7 @@ def test_changed_object_filter_reruns_only_the_objects(
         config.write_text(original)
 
 
-def test_a_new_variant_runs_only_its_own_jobs(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def test_a_new_variant_runs_only_its_own_jobs(finished_study, repo=REPO_ROOT):
     config = finished_study / "config" / "config.yaml"
     original = config.read_text()
     try:
@@ -401,42 +393,123 @@ def test_a_new_variant_runs_only_its_own_jobs(
         config.write_text(original)
 
 
-def test_edited_package_module_reruns_only_the_jobs_that_use_it(
-    finished_study, tmp_path, repo=Path(__file__).resolve().parents[1]
-):
-    # A copy of the workflow whose morphometry module differs by one comment line: Snakemake's
-    # own code trigger sees only rule scripts, so the rules' `code` param must carry the change.
-    copy = tmp_path / "workflow"
-    for part in ("Snakefile", "rules", "scripts", "tessera", "config/schemas", "envs", "report"):
-        source = repo / part
-        (copy / part).parent.mkdir(parents=True, exist_ok=True)
-        if source.is_dir():
-            shutil.copytree(source, copy / part, ignore=shutil.ignore_patterns("__pycache__"))
-        else:
-            shutil.copy2(source, copy / part)
-    unchanged = snakemake("-n", "--snakefile", str(copy / "Snakefile"), cwd=finished_study)
-    assert "Nothing to be done" in unchanged.stdout + unchanged.stderr
-    module = copy / "tessera" / "morphometry.py"
-    module.write_text(module.read_text() + "\n# edited\n")
-    result = snakemake(
-        "-n", "--quiet", "rules", "--snakefile", str(copy / "Snakefile"), cwd=finished_study
+def _workflow_copy(repo, folder):
+    """A copy of the workflow's code (mtimes kept, so Snakemake sees its scripts unchanged)."""
+    parts = (
+        "Snakefile",
+        "rules",
+        "scripts",
+        "tessera",
+        "tessera_demo",
+        "config/schemas",
+        "envs",
+        "report",
     )
-    planned = {line.split()[0] for line in result.stdout.splitlines() if line[:1].isalpha()}
-    assert {"morphometry", "statistics", "audit"} <= planned
-    assert not planned & {
-        "objects",
-        "stitch",
-        "predict_shard",
-        "train_node",
-        "ingest",
-        "pyramid",
-        "meshes",
-    }
+    for part in parts:
+        source = repo / part
+        if not source.exists():
+            continue
+        (folder / part).parent.mkdir(parents=True, exist_ok=True)
+        if source.is_dir():
+            shutil.copytree(source, folder / part, ignore=shutil.ignore_patterns("__pycache__"))
+        else:
+            shutil.copy2(source, folder / part)
+    return folder
 
 
-def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(
-    finished_study, repo=Path(__file__).resolve().parents[1]
-):
+def _rule_graph(snakefile, study):
+    """Rules of the study's plan and, for each, the rules that consume its outputs."""
+    dot = snakemake("--rulegraph", "-F", "--snakefile", str(snakefile), cwd=study).stdout
+    names = dict(re.findall(r"^\s*(\d+)\[label = \"(\w+)\"", dot, flags=re.M))
+    consumers = {name: set() for name in names.values()}
+    for source, sink in re.findall(r"^\s*(\d+) -> (\d+)", dot, flags=re.M):
+        consumers[names[source]].add(names[sink])
+    return consumers
+
+
+def _planned_rules(snakefile, study):
+    result = snakemake("-n", "--quiet", "rules", "--snakefile", str(snakefile), cwd=study)
+    rows = (line.split() for line in result.stdout.splitlines())
+    return {row[0] for row in rows if len(row) == 2 and row[1].isdigit() and row[0] != "total"}
+
+
+def test_editing_any_module_reruns_exactly_the_rules_that_run_it(finished_study, tmp_path, repo):
+    # Snakemake's code trigger sees only rule scripts, so each rule's `code` param must carry the
+    # modules its script runs. For every module of the package: one comment line added in a copy
+    # of the workflow must plan the rules whose script imports the module (from the source,
+    # tessera.workflow.code_identity) and what consumes their outputs (Snakemake's own rule
+    # graph) - nothing more, nothing less.
+    from tessera.workflow.code_identity import rerun_table
+
+    copies = [_workflow_copy(repo, tmp_path / f"workflow{i}") for i in range(2)]
+    assert not _planned_rules(copies[0] / "Snakefile", finished_study)
+    consumers = _rule_graph(copies[0] / "Snakefile", finished_study)
+    table = rerun_table(repo / "scripts")
+
+    def expected(module):
+        todo, seen = [r for r in table[module] if r in consumers], set()
+        while todo:
+            rule = todo.pop()
+            if rule not in seen:
+                seen.add(rule)
+                todo.extend(consumers[rule])
+        return seen
+
+    def check(copy, modules):
+        wrong = {}
+        for module in modules:
+            path = copy / Path(*module.split("."))
+            path = path / "__init__.py" if path.is_dir() else path.with_suffix(".py")
+            original = path.read_bytes()
+            path.write_bytes(original + b"\n# edited\n")
+            try:
+                planned = _planned_rules(copy / "Snakefile", finished_study)
+            finally:
+                path.write_bytes(original)
+            if planned != expected(module):
+                wrong[module] = (sorted(planned), sorted(expected(module)))
+        return wrong
+
+    modules = sorted(table)
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        results = list(pool.map(check, copies, [modules[0::2], modules[1::2]]))
+    wrong = {k: v for part in results for k, v in part.items()}
+    assert not wrong, f"module: (planned, expected) {wrong}"
+    # the methods text is written by one rule: editing it reruns that rule and the audit only
+    assert expected("tessera.methods") <= {"methods", "audit", "all"}
+
+
+def test_developers_guide_carries_the_generated_rerun_table(repo):
+    from tessera.workflow.code_identity import rerun_markdown
+
+    guide = (repo / "DEVELOPERS.md").read_text()
+    start, end = "<!-- rerun table: start -->\n", "<!-- rerun table: end -->"
+    assert start in guide and end in guide
+    shown = guide[guide.index(start) + len(start) : guide.index(end)]
+    assert shown == rerun_markdown(repo / "scripts"), (
+        "regenerate it: .venv/bin/python -m tessera.workflow.code_identity"
+    )
+
+
+def test_every_rule_runs_the_script_named_after_it(repo):
+    # rules/<stage>.smk <-> scripts/<rule>.py: the rerun table and each code param rely on it
+    rules_text = "\n".join(p.read_text() for p in sorted((repo / "rules").glob("*.smk")))
+    pairs = re.findall(
+        r"^\s*rule (\w+):(?:(?!^\s*rule ).)*?\"\.\./scripts/(\w+)\.py\"",
+        rules_text,
+        flags=re.M | re.S,
+    )
+    assert pairs and all(rule == script for rule, script in pairs), pairs
+    codes = re.findall(
+        r"^\s*rule (\w+):(?:(?!^\s*rule ).)*?code=script_code\(\"(\w+)\"\)",
+        rules_text,
+        flags=re.M | re.S,
+    )
+    assert sorted(codes) == sorted(pairs)
+    assert {p.stem for p in (repo / "scripts").glob("*.py")} == {rule for rule, _ in pairs}
+
+
+def test_a_new_sheet_row_runs_its_own_jobs_and_the_study_aggregates(finished_study, repo=REPO_ROOT):
     sheet = finished_study / "config" / "datasets.tsv"
     original = sheet.read_text()
     try:
@@ -470,7 +543,7 @@ def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
 
 
 def test_stage_code_version_follows_the_import_graph():
-    from tessera.workflow.provenance import module_closure
+    from tessera.workflow.code_identity import module_closure
 
     # pyramid reads images through omezarr and writes through atomic; it must not depend on qc,
     # so editing qc.py does not rerun the pyramid of a large stack.
