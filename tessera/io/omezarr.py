@@ -52,12 +52,12 @@ def multiscale_attrs(*, name, spacing, factors):
         raise TesseraInputError(f"the first level must be unreduced (1, 1, 1), got {factors[0]}")
     datasets = []
     for level, f in enumerate(factors):
-        transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f)]}]
+        transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f, strict=False)]}]
         if level > 0:
             transforms.append(
                 {
                     "type": "translation",
-                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f)],
+                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f, strict=False)],
                 }
             )
         datasets.append({"path": str(level), "coordinateTransformations": transforms})
@@ -118,7 +118,9 @@ def open_image(path, *, checksums="required"):
             "missing OME-Zarr 'ome.multiscales' metadata with a scale per level", source=path
         ) from None
     spacing = tuple(float(s) for s in scales[0])
-    factors = [tuple(int(round(s / s0)) for s, s0 in zip(sc, spacing)) for sc in scales]
+    factors = [
+        tuple(int(round(s / s0)) for s, s0 in zip(sc, spacing, strict=False)) for sc in scales
+    ]
     levels = [group[d["path"]] for d in datasets]
     return group, {
         "spacing": spacing,
