@@ -93,6 +93,19 @@ def open_image(path, *, checksums="required"):
     info : dict
         ``spacing`` (level-0 nm, z y x), ``factors`` (per level), ``levels`` (list of
         zarr.Array) and ``extra`` (the ``tessera`` attributes).
+
+    Examples
+    --------
+    >>> import tempfile, numpy as np
+    >>> from tessera.io.store_checksums import record_checksums
+    >>> d = Path(tempfile.mkdtemp()) / "raw.ome.zarr"
+    >>> g = zarr.open_group(str(d), mode="w", zarr_format=3)
+    >>> g.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
+    >>> _ = g.create_array("0", data=np.ones((2, 4, 4), np.uint8), dimension_names=AXES)
+    >>> _ = record_checksums(d)
+    >>> group, info = open_image(d)
+    >>> info["spacing"], info["factors"], int(info["levels"][0][:].sum())
+    ((40.0, 8.0, 8.0), [(1, 1, 1)], 32)
     """
     path = Path(path)
     if checksums not in ("required", "if-present"):
@@ -134,6 +147,24 @@ def working_level(factors, downsample, *, source=None):
     """Index of the pyramid level reduced in-plane by `downsample`.
 
     A target's downsampling factor (1, 2, 4, ...) selects the level it is trained and predicted at.
+
+    Parameters
+    ----------
+    factors : sequence of sequence of 3 int
+        Reduction factor (z, y, x) of each level, as ``open_image`` reports them.
+    downsample : int
+        The in-plane (y and x) factor wanted.
+    source : str or Path, optional
+        The image, named in the error message.
+
+    Returns
+    -------
+    int
+
+    Raises
+    ------
+    TesseraInputError
+        When no level has that in-plane factor; the message lists the factors there are.
 
     Examples
     --------

@@ -350,7 +350,30 @@ def checked_store(path, *, required=True):
 
 
 def verified_bytes(store, key, *, required=True):
-    """The bytes of one file of a store, checked against its record."""
+    """The bytes of one file of a store, checked against its record.
+
+    Parameters
+    ----------
+    store : str or Path
+        The store folder.
+    key : str
+        The file's path in the store, ``/``-separated (a zarr store key).
+    required : bool, optional
+        Refuse a file no manifest covers (see :func:`checked_store`).
+
+    Returns
+    -------
+    bytes
+
+    Examples
+    --------
+    >>> import tempfile, zarr
+    >>> d = Path(tempfile.mkdtemp()) / "s.zarr"
+    >>> zarr.open_group(str(d), mode="w", zarr_format=3).create_array("0", shape=(2,), dtype="uint8")[:] = 3
+    >>> _ = record_checksums(d)
+    >>> json.loads(verified_bytes(d, "0/zarr.json"))["node_type"]
+    'array'
+    """
     path = Path(store) / key
     try:
         data = path.read_bytes()

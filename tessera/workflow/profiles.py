@@ -243,7 +243,24 @@ def check_profile(profile, *, workflow_dir=_WORKFLOW_DIR):
 
 
 def main(argv=None):
-    """``python -m tessera.workflow.profiles PROFILE...``: check each profile; exit 1 on the first problem."""
+    """``python -m tessera.workflow.profiles PROFILE...``: check each profile; exit 1 on the first problem.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Profile folders (or their ``config.yaml``); the command line by default.
+
+    Returns
+    -------
+    int
+        Exit status: 0 all profiles pass, 1 one does not (its message goes to stderr), 2 usage.
+
+    Examples
+    --------
+    >>> main([str(_WORKFLOW_DIR / "profiles" / "slurm")])  # doctest: +ELLIPSIS
+    /.../profiles/slurm: ok
+    0
+    """
     argv = sys.argv[1:] if argv is None else argv
     if not argv:
         print("usage: python -m tessera.workflow.profiles PROFILE [PROFILE ...]", file=sys.stderr)
