@@ -3,6 +3,7 @@
 import hashlib
 import json
 import os
+import re
 import shutil
 import warnings
 
@@ -10,12 +11,17 @@ import numpy as np
 import pytest
 import tifffile
 import zarr
+from zarr.abc.store import RangeByteRequest, SuffixByteRequest
+from zarr.core.buffer import default_buffer_prototype
+from zarr.core.sync import sync
 
 from tessera.errors import TesseraInputError
 from tessera.ingest import ingest_stack
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
-from tessera.io.store_checksums import MANIFEST, checked_store, record_checksums, store_rule
+from tessera.io.rebuild_hints import generic_rebuild_hint, set_rebuild_hints
+from tessera.io.store_checksums import MANIFEST, checked_store, record_checksums
 from tessera.pyramid import build_pyramid
+from tessera.workflow.paths import STORES, store_rule  # importing it registers the rebuild hints
 
 SPACING = (40.0, 8.0, 8.0)
 
@@ -229,10 +235,6 @@ def test_record_checksums_refuses_a_linked_array_without_records(tmp_path, volum
 
 def test_checked_store_serves_byte_ranges_of_verified_files(ingested):
     # zarr asks for byte ranges when it reads shards; the whole file is verified, the range returned
-    from zarr.abc.store import RangeByteRequest, SuffixByteRequest
-    from zarr.core.buffer import default_buffer_prototype
-    from zarr.core.sync import sync
-
     store = checked_store(ingested)
     whole = (ingested / "0" / "zarr.json").read_bytes()
     part = sync(store.get("0/zarr.json", default_buffer_prototype(), RangeByteRequest(2, 9)))
@@ -240,10 +242,8 @@ def test_checked_store_serves_byte_ranges_of_verified_files(ingested):
     assert (part.to_bytes(), tail.to_bytes()) == (whole[2:9], whole[-4:])
 
 
-def test_store_rule_names_the_rule_whose_output_the_store_is(repo):
-    # reference: the rules themselves; every OME-Zarr store a rule outputs maps back to that rule
-    import re
-
+def rule_store_outputs(repo):
+    """Output pattern -> rule of every OME-Zarr store a rule in rules/*.smk declares."""
     found = {}
     for smk in sorted((repo / "rules").glob("*.smk")):
         for name, body in re.findall(
@@ -252,7 +252,30 @@ def test_store_rule_names_the_rule_whose_output_the_store_is(repo):
             output = body.split("output:", 1)[1] if "output:" in body else ""
             for path in re.findall(r'directory\("([^"]+\.ome\.zarr)"\)', output):
                 found[path] = name
+    return found
+
+
+def test_store_rule_names_the_rule_whose_output_the_store_is(repo):
+    # reference: the rules themselves; every OME-Zarr store a rule outputs maps back to that rule
+    found = rule_store_outputs(repo)
     assert sorted(found.values()) == ["ingest", "objects", "pyramid", "stitch"]
     for pattern, rule in found.items():
         assert store_rule(pattern.format(dataset="d1", target="mito.s3")) == rule
     assert store_rule("somewhere/raw.ome.zarr") is None
+
+
+def test_the_path_grammar_holds_the_store_patterns_the_rules_declare(repo):
+    # reference: the rules' own output declarations, which Snakemake writes to
+    assert {pattern: rule for rule, pattern in STORES.items()} == rule_store_outputs(repo)
+
+
+def test_without_the_workflow_a_damaged_store_names_no_rule(ingested):
+    # the io layer alone does not know the results grammar: its message names the store only
+    previous = set_rebuild_hints(writer=lambda store: None, hint=generic_rebuild_hint)
+    try:
+        flip_byte(chunk(ingested, 0, 0, 0, 0))
+        with pytest.raises(TesseraInputError) as error:
+            open_image(ingested)[1]["levels"][0][0]
+    finally:
+        set_rebuild_hints(**previous)
+    assert str(error.value).endswith(f"rebuild {ingested} with the step that wrote it")

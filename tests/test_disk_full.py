@@ -36,7 +36,7 @@ from tessera.cascade.api import (
 )
 from tessera.errors import TesseraResourceError
 from tessera.ingest import ingest_stack
-from tessera.io.atomic import write_table
+from tessera.io.atomic import write_table, write_text
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -192,8 +192,6 @@ def test_model_write_on_full_disk_keeps_the_previous_model(tmp_path, full_disk):
 
 def test_quota_exceeded_is_reported_like_a_full_disk(tmp_path, monkeypatch):
     # EDQUOT (POSIX write(2): "the user's quota of disk blocks ... has been exhausted")
-    from tessera.io.atomic import write_text
-
     out = tmp_path / "methods.md"
     write_text(out, "old\n")
 

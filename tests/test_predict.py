@@ -24,6 +24,7 @@ from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
 from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
+from tessera.workflow import paths  # noqa: F401 - its rebuild hints name the rule in messages
 
 SPEC = dict(
     stages=2,

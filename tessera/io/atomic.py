@@ -100,6 +100,16 @@ def atomic_path(path):
     :class:`~tessera.errors.TesseraResourceError` naming `path`. Leftovers of killed runs (same
     name, other pid) are removed first.
 
+    Parameters
+    ----------
+    path : str or Path
+        The output (file or folder); its parent folder is created if needed.
+
+    Yields
+    ------
+    Path
+        The temporary sibling to write; it does not exist yet.
+
     Examples
     --------
     >>> import tempfile, pathlib
@@ -126,12 +136,42 @@ def atomic_path(path):
 
 
 def write_text(path, text):
-    """Write `text` to `path` atomically (UTF-8)."""
+    """Write `text` to `path` atomically (UTF-8).
+
+    Parameters
+    ----------
+    path : str or Path
+        The file to write; its folder is created if needed.
+    text : str
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "notes" / "a.txt"
+    >>> write_text(p, "tessera\\n")
+    >>> p.read_text(encoding="utf-8")
+    'tessera\\n'
+    """
     with atomic_path(path) as tmp:
         tmp.write_text(text, encoding="utf-8")
 
 
 def write_table(path, table):
-    """Write a pandas DataFrame as TSV atomically, without the index."""
+    """Write a pandas DataFrame as TSV atomically, without the index.
+
+    Parameters
+    ----------
+    path : str or Path
+        The file to write; its folder is created if needed.
+    table : pandas.DataFrame
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, pandas as pd
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "t.tsv"
+    >>> write_table(p, pd.DataFrame({"z": [0, 1], "excluded": [False, True]}))
+    >>> p.read_text().splitlines()
+    ['z\\texcluded', '0\\tFalse', '1\\tTrue']
+    """
     with atomic_path(path) as tmp:
         table.to_csv(tmp, sep="\t", index=False)

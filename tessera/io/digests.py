@@ -9,6 +9,18 @@ from tessera.errors import TesseraInputError
 def file_sha256(path, *, chunk=1 << 22):
     """SHA-256 of a file or of every file below a folder (sorted by relative path), streamed.
 
+    Parameters
+    ----------
+    path : str or Path
+        A file, or a folder: then each file's relative path (and a NUL byte) precedes its bytes.
+    chunk : int, optional
+        Bytes read at a time.
+
+    Returns
+    -------
+    str
+        The hexadecimal digest.
+
     Examples
     --------
     >>> import tempfile, pathlib

@@ -52,12 +52,12 @@ def multiscale_attrs(*, name, spacing, factors):
         raise TesseraInputError(f"the first level must be unreduced (1, 1, 1), got {factors[0]}")
     datasets = []
     for level, f in enumerate(factors):
-        transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f)]}]
+        transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f, strict=False)]}]
         if level > 0:
             transforms.append(
                 {
                     "type": "translation",
-                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f)],
+                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f, strict=False)],
                 }
             )
         datasets.append({"path": str(level), "coordinateTransformations": transforms})
@@ -93,6 +93,19 @@ def open_image(path, *, checksums="required"):
     info : dict
         ``spacing`` (level-0 nm, z y x), ``factors`` (per level), ``levels`` (list of
         zarr.Array) and ``extra`` (the ``tessera`` attributes).
+
+    Examples
+    --------
+    >>> import tempfile, numpy as np
+    >>> from tessera.io.store_checksums import record_checksums
+    >>> d = Path(tempfile.mkdtemp()) / "raw.ome.zarr"
+    >>> g = zarr.open_group(str(d), mode="w", zarr_format=3)
+    >>> g.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
+    >>> _ = g.create_array("0", data=np.ones((2, 4, 4), np.uint8), dimension_names=AXES)
+    >>> _ = record_checksums(d)
+    >>> group, info = open_image(d)
+    >>> info["spacing"], info["factors"], int(info["levels"][0][:].sum())
+    ((40.0, 8.0, 8.0), [(1, 1, 1)], 32)
     """
     path = Path(path)
     if checksums not in ("required", "if-present"):
@@ -118,7 +131,9 @@ def open_image(path, *, checksums="required"):
             "missing OME-Zarr 'ome.multiscales' metadata with a scale per level", source=path
         ) from None
     spacing = tuple(float(s) for s in scales[0])
-    factors = [tuple(int(round(s / s0)) for s, s0 in zip(sc, spacing)) for sc in scales]
+    factors = [
+        tuple(int(round(s / s0)) for s, s0 in zip(sc, spacing, strict=False)) for sc in scales
+    ]
     levels = [group[d["path"]] for d in datasets]
     return group, {
         "spacing": spacing,
@@ -132,6 +147,24 @@ def working_level(factors, downsample, *, source=None):
     """Index of the pyramid level reduced in-plane by `downsample`.
 
     A target's downsampling factor (1, 2, 4, ...) selects the level it is trained and predicted at.
+
+    Parameters
+    ----------
+    factors : sequence of sequence of 3 int
+        Reduction factor (z, y, x) of each level, as ``open_image`` reports them.
+    downsample : int
+        The in-plane (y and x) factor wanted.
+    source : str or Path, optional
+        The image, named in the error message.
+
+    Returns
+    -------
+    int
+
+    Raises
+    ------
+    TesseraInputError
+        When no level has that in-plane factor; the message lists the factors there are.
 
     Examples
     --------

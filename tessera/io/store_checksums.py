@@ -14,13 +14,16 @@ zarr and to NGFF tools; a file at the root of a group would show up as an unknow
 ``files`` are relative to the array, ``groups`` to the store. A chunk that zarr never wrote (all
 fill value) is simply not listed. An array hard-linked from another store (pyramid level 0 from
 the ingest store, probability levels in the objects store) keeps the digests recorded when its
-files were first written, so linking never re-hashes and never blesses a damaged file.
+files were first written, so linking never re-hashes and never blesses a damaged file;
+``linked_from`` names the source store and the step that writes it, as the application names it
+(:func:`tessera.io.rebuild_hints.store_writer`).
 
 Reading goes through :func:`checked_store`: a zarr store that hashes each file it hands to zarr
 and compares it with the record, so a job verifies exactly the chunks it decodes (a prediction
 shard the chunks under its window, a whole-volume job every chunk) with no second read. A
 recorded file that is missing, shorter, longer or altered, and a chunk file that was not
-recorded, are refused with a message naming the file and the rule that rebuilds the store.
+recorded, are refused with a message naming the file and how to rebuild the store, in the words
+the application registered (:mod:`tessera.io.rebuild_hints`; the workflow names the rule).
 
 A store without records (written by an older tessera or by hand) is refused by the pipeline's
 readers: every stage's code version changes with this module, so Snakemake rebuilds such stores
@@ -39,54 +42,11 @@ from zarr.storage import LocalStore, WrapperStore
 
 from tessera.errors import TesseraInputError
 from tessera.io.digests import file_sha256
+from tessera.io.rebuild_hints import rebuild_hint, store_writer
 
 MANIFEST = "tessera-checksums.json"
 FORMAT = 1
 _META = "zarr.json"
-
-
-# ----------------------------------------------------------------------------------------------
-# which rule rebuilds a store
-
-
-def store_rule(store):
-    """The workflow rule that writes the store at `store`, from the results path grammar; or None.
-
-    Examples
-    --------
-    >>> store_rule("results/d1/pyramid/raw.ome.zarr"), store_rule("results/d1/objects/mito.ome.zarr")
-    ('pyramid', 'objects')
-    >>> store_rule("results/d1/predicted/mito/probability.ome.zarr"), store_rule("elsewhere/x.zarr")
-    ('stitch', None)
-    """
-    path = Path(store)
-    if path.name == "raw.ome.zarr" and path.parent.name in ("ingest", "pyramid"):
-        return path.parent.name
-    if path.name == "probability.ome.zarr" and path.parent.parent.name == "predicted":
-        return "stitch"
-    if path.name.endswith(".ome.zarr") and path.parent.name == "objects":
-        return "objects"
-    return None
-
-
-def rebuild_hint(store, *, linked_from=None):
-    """What to do about a damaged store: the rule to rerun (and the store its files come from).
-
-    Examples
-    --------
-    >>> rebuild_hint("results/d1/ingest/raw.ome.zarr")
-    'rerun rule ingest to rebuild results/d1/ingest/raw.ome.zarr (delete it, or snakemake --forcerun ingest)'
-    """
-    rule = store_rule(store)
-    if rule is None:
-        hint = f"rebuild {store} with the step that wrote it"
-    else:
-        hint = f"rerun rule {rule} to rebuild {store} (delete it, or snakemake --forcerun {rule})"
-    if linked_from:
-        source, source_rule = linked_from.get("store"), linked_from.get("rule")
-        first = f"rerun rule {source_rule} first" if source_rule else "rebuild it first"
-        hint += f"; its files are hard-linked from {source}: if that store is damaged too, {first}"
-    return hint
 
 
 # ----------------------------------------------------------------------------------------------
@@ -139,7 +99,7 @@ def _inherited_files(folder, rel, source):
             f"checksum manifest is damaged ({exc}); {hint}", source=source_manifest
         ) from None
     present = {p.relative_to(folder).as_posix(): p for p in _array_files(folder)}
-    for name, path in present.items():
+    for name in present:
         if name not in recorded:
             raise TesseraInputError(
                 f"file was not recorded when the store was written; {hint}",
@@ -200,7 +160,7 @@ def record_checksums(store, *, linked=None):
         folder = store / rel
         if rel in linked:
             files = _inherited_files(folder, rel, linked[rel])
-            origin = {"store": str(linked[rel]), "rule": store_rule(linked[rel])}
+            origin = {"store": str(linked[rel]), "rule": store_writer(linked[rel])}
         else:
             files = {p.relative_to(folder).as_posix(): _entry(p) for p in _array_files(folder)}
             origin = None
@@ -390,7 +350,30 @@ def checked_store(path, *, required=True):
 
 
 def verified_bytes(store, key, *, required=True):
-    """The bytes of one file of a store, checked against its record."""
+    """The bytes of one file of a store, checked against its record.
+
+    Parameters
+    ----------
+    store : str or Path
+        The store folder.
+    key : str
+        The file's path in the store, ``/``-separated (a zarr store key).
+    required : bool, optional
+        Refuse a file no manifest covers (see :func:`checked_store`).
+
+    Returns
+    -------
+    bytes
+
+    Examples
+    --------
+    >>> import tempfile, zarr
+    >>> d = Path(tempfile.mkdtemp()) / "s.zarr"
+    >>> zarr.open_group(str(d), mode="w", zarr_format=3).create_array("0", shape=(2,), dtype="uint8")[:] = 3
+    >>> _ = record_checksums(d)
+    >>> json.loads(verified_bytes(d, "0/zarr.json"))["node_type"]
+    'array'
+    """
     path = Path(store) / key
     try:
         data = path.read_bytes()

@@ -24,6 +24,11 @@ class JobInfo:
         The Snakemake rule the job belongs to.
     mem_mb : int, optional
         The memory (MB) the job was given.
+
+    Examples
+    --------
+    >>> JobInfo("logs/stitch/d1_mito.log", "stitch", 2000).mem_mb
+    2000
     """
 
     log: str
@@ -33,6 +38,16 @@ class JobInfo:
 
 def job_info(job):
     """A :class:`JobInfo` from a script's ``snakemake`` object, or from a bare log path.
+
+    Parameters
+    ----------
+    job : object or str or PathLike
+        The ``snakemake`` object Snakemake gives a script (``log``, ``rule`` and
+        ``resources.mem_mb`` are read), or the job's log path.
+
+    Returns
+    -------
+    JobInfo
 
     Examples
     --------
@@ -52,6 +67,17 @@ def job_info(job):
 def more_memory_hint(rule, *, suggest_mb=None):
     """Where to give `rule` more memory: the profile key, or retries (which scale ``mem_mb``).
 
+    Parameters
+    ----------
+    rule : str or None
+        The rule; ``<rule>`` in the text when unknown.
+    suggest_mb : int, optional
+        The figure to suggest; ``<MB>`` in the text when not given.
+
+    Returns
+    -------
+    str
+
     Examples
     --------
     >>> more_memory_hint("stitch", suggest_mb=4000)
@@ -67,6 +93,17 @@ def more_memory_hint(rule, *, suggest_mb=None):
 
 def out_of_memory_message(info, error):
     """One line for a job that ran out of memory: rule, its ``mem_mb``, what failed, what to raise.
+
+    Parameters
+    ----------
+    info : JobInfo
+        The job; twice its ``mem_mb`` is suggested.
+    error : MemoryError
+        What failed (numpy: "Unable to allocate ...").
+
+    Returns
+    -------
+    str
 
     Examples
     --------
