@@ -1,15 +1,19 @@
 """Cascade classifiers: learning, storage without pickle, agreement with references."""
 
 import json
+import subprocess
+import sys
 
 import numpy as np
 import pytest
+import yaml
 from scipy.special import expit
 from sklearn.linear_model import LogisticRegression
 
-from tessera.cascade import classifiers as C
 from tessera.cascade.classifiers import KINDS, classifier_from_state, make_classifier
+from tessera.cascade.classifiers import base as C
 from tessera.errors import TesseraInputError
+from tessera.methods import CLASSIFIER_NAMES
 
 # Small settings keep the whole file fast; defaults are exercised by the benchmark.
 FAST = {
@@ -364,3 +368,32 @@ def test_bad_options(kind, options, match):
     options = {"seed": 0, **options}
     with pytest.raises(TesseraInputError, match=match):
         make_classifier(kind, **options)
+
+
+# --- one list of kinds -------------------------------------------------------------------------
+
+
+def test_config_schema_offers_exactly_the_kinds(repo):
+    # The code owns the list of kinds (KINDS); the config schema, which users read and which
+    # validates their config, must offer the same kinds in the same order and default to one.
+    schema = yaml.safe_load((repo / "config" / "schemas" / "config.schema.yaml").read_text())
+    cascade = schema["properties"]["targets"]["additionalProperties"]["properties"]["cascade"]
+    classifier = cascade["properties"]["classifier"]
+    assert classifier["enum"] == list(KINDS)
+    assert classifier["default"] in KINDS
+
+
+def test_methods_text_names_every_kind():
+    # The methods paragraph spells out the kind it used; every kind needs its name there.
+    assert sorted(CLASSIFIER_NAMES) == sorted(KINDS)
+
+
+def test_importing_the_cascade_does_not_import_scikit_learn():
+    # Planning the workflow imports the cascade (rules/common.smk) at every Snakemake start, and
+    # importing scikit-learn takes about a second; it must wait until a classifier is fitted.
+    code = (
+        "import sys, tessera.cascade.api, tessera.cascade.classifiers; "
+        "print(sorted(m for m in sys.modules if m.split('.')[0] == 'sklearn'))"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "[]"

@@ -1,0 +1,134 @@
+"""A small multilayer perceptron: fitted by scikit-learn's ``MLPClassifier``, predicted by a numpy
+forward pass over the stored weights (no scikit-learn object is needed to predict)."""
+
+import warnings
+
+import numpy as np
+from scipy.special import expit
+from threadpoolctl import threadpool_limits
+
+from tessera.cascade.classifiers.base import (
+    STATE_SOURCE,
+    BinaryClassifier,
+    float_option,
+    int_option,
+)
+from tessera.cascade.classifiers.scaling import (
+    check_scale,
+    folded_first_layer,
+    standardisation,
+    standardise,
+)
+from tessera.errors import TesseraInputError
+
+
+class MLPBinaryClassifier(BinaryClassifier):
+    """Small multilayer perceptron: scikit-learn ``MLPClassifier`` to fit, numpy to predict.
+
+    Options
+    -------
+    hidden_layer_sizes : tuple of int, default (32, 16)
+    alpha : float, default 1e-4
+        L2 penalty.
+    batch_size : int, default 256
+    learning_rate_init : float, default 1e-3
+        Step size of Adam.
+    max_iter : int, default 30
+        Epochs. Fitting stops here even when the loss still falls, so scikit-learn's
+        ``ConvergenceWarning`` is silenced on purpose: a capped budget is the intended behaviour.
+
+    Notes
+    -----
+    Features are standardised (mean and scale stored). scikit-learn 1.9 accepts ``sample_weight``
+    in ``MLPClassifier.fit``; it is passed through. Hidden units are ReLU and the output is
+    logistic, as in scikit-learn's binary ``MLPClassifier``; the state is its ``coefs_`` and
+    ``intercepts_`` as float32.
+    """
+
+    kind = "mlp"
+    _defaults = {
+        "hidden_layer_sizes": (32, 16),
+        "alpha": 1e-4,
+        "batch_size": 256,
+        "learning_rate_init": 1e-3,
+        "max_iter": 30,
+    }
+
+    def _check_options(self, o):
+        sizes = o["hidden_layer_sizes"]
+        if not isinstance(sizes, (list, tuple)) or len(sizes) < 1:
+            raise TesseraInputError(
+                f"option 'hidden_layer_sizes' must be a non-empty list of integers, got {sizes!r}"
+            )
+        return {
+            "hidden_layer_sizes": tuple(int_option("hidden_layer_sizes", s, 1) for s in sizes),
+            "alpha": float_option("alpha", o["alpha"], inclusive=True),
+            "batch_size": int_option("batch_size", o["batch_size"], 1),
+            "learning_rate_init": float_option("learning_rate_init", o["learning_rate_init"]),
+            "max_iter": int_option("max_iter", o["max_iter"], 1),
+        }
+
+    def _fit(self, X, y, w):
+        from sklearn.exceptions import ConvergenceWarning  # noqa: PLC0415 - scikit-learn (~1 s) stays out of workflow planning
+        from sklearn.neural_network import MLPClassifier  # noqa: PLC0415 - scikit-learn (~1 s) stays out of workflow planning
+
+        o = self.options
+        self.mean_, self.scale_ = standardisation(X)
+        model = MLPClassifier(
+            hidden_layer_sizes=o["hidden_layer_sizes"],
+            activation="relu",
+            solver="adam",
+            alpha=o["alpha"],
+            batch_size=min(o["batch_size"], X.shape[0]),
+            learning_rate_init=o["learning_rate_init"],
+            max_iter=o["max_iter"],
+            early_stopping=False,
+            shuffle=True,
+            random_state=self.seed,
+        )
+        with threadpool_limits(limits=self.threads), warnings.catch_warnings():
+            # The epoch budget is a deliberate cap (see the class notes), not a failure.
+            warnings.filterwarnings("ignore", category=ConvergenceWarning)
+            model.fit(standardise(X, self.mean_, self.scale_), y, sample_weight=w)
+        self.estimator_ = model
+        self.coefs_ = [c.astype(np.float32) for c in model.coefs_]
+        self.intercepts_ = [c.astype(np.float32) for c in model.intercepts_]
+
+    def _predict_chunk(self, X):
+        if self._folded is None:
+            self._folded = folded_first_layer(
+                self.coefs_[0], self.intercepts_[0], self.mean_, self.scale_
+            )
+        layers = [self._folded, *zip(self.coefs_[1:], self.intercepts_[1:], strict=True)]
+        h = X
+        last = len(layers) - 1
+        for layer, (W, b) in enumerate(layers):
+            h = h @ W + b
+            if layer < last:
+                np.maximum(h, 0, out=h)
+        return expit(h[:, 0]).astype(np.float32)
+
+    def _arrays(self):
+        arrays = {"mean": self.mean_, "scale": self.scale_}
+        for i, (W, b) in enumerate(zip(self.coefs_, self.intercepts_, strict=True)):
+            arrays[f"coef_{i}"] = W
+            arrays[f"intercept_{i}"] = b
+        return arrays
+
+    def _array_spec(self, meta):
+        sizes = ["C", *self.options["hidden_layer_sizes"], 1]
+        spec = {"mean": (np.float32, ("C",)), "scale": (np.float32, ("C",))}
+        for i in range(len(sizes) - 1):
+            spec[f"coef_{i}"] = (np.float32, (sizes[i], sizes[i + 1]))
+            spec[f"intercept_{i}"] = (np.float32, (sizes[i + 1],))
+        return spec
+
+    def _load(self, arrays, meta):
+        check_scale(arrays)
+        n = len(self.options["hidden_layer_sizes"]) + 1
+        self.mean_, self.scale_ = arrays["mean"], arrays["scale"]
+        self.coefs_ = [arrays[f"coef_{i}"] for i in range(n)]
+        self.intercepts_ = [arrays[f"intercept_{i}"] for i in range(n)]
+        if not all(np.isfinite(a).all() for a in self.coefs_ + self.intercepts_):
+            raise TesseraInputError("MLP weights have non-finite values", source=STATE_SOURCE)
+        self.estimator_ = None
