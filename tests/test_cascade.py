@@ -1,26 +1,19 @@
 """The cascaded hierarchical model: structure, out-of-fold context, exact blocks, safe storage."""
 
+import json
+import os
+
 import numpy as np
 import pytest
 from scipy import ndimage
 from sklearn.metrics import f1_score
 
-from tessera.cascade.model import (
-    CascadeSpec,
-    ancestors,
-    fit_cascade,
-    load_node,
-    margins,
-    mirrored_window,
-    node_inputs,
-    nodes,
-    out_of_fold_maps,
-    predict_frame,
-    predict_section,
-    prepare_tile,
-    receptive_radius,
-    save_node,
-)
+from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile
+from tessera.cascade.frame import mirrored_stack, mirrored_window
+from tessera.cascade.geometry import margins, receptive_radius
+from tessera.cascade.predict import predict_frame, predict_section
+from tessera.cascade.spec import CascadeSpec, ancestors, node_inputs, nodes
+from tessera.cascade.store import load_node, save_node
 from tessera.errors import TesseraInputError
 
 SMALL = dict(
@@ -229,8 +222,6 @@ def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
 
 def test_model_of_another_format_version_is_refused(trained, tmp_path):
     # a file as the previous format wrote it: metadata without the recorded SHA-256
-    import json
-
     path, arrays = _saved_arrays(trained, tmp_path / "old.npz")
     meta = json.loads(arrays["meta_json"].tobytes())
     meta.pop("payload_sha256")
@@ -251,8 +242,6 @@ class _RunsOnLoad:
         self.folder = str(folder)
 
     def __reduce__(self):
-        import os
-
         return (os.mkdir, (self.folder,))
 
 
@@ -320,8 +309,6 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
     radius = receptive_radius(spec)
     volume = np.stack([blobs(7)[0], blobs(8)[0], blobs(9)[0]])
     truth = np.stack([blobs(7)[1], blobs(8)[1], blobs(9)[1]])
-    from tessera.cascade.model import mirrored_stack
-
     tiles = [
         prepare_tile(
             spec,

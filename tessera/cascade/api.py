@@ -5,26 +5,17 @@ Stages and workflow jobs import from here, not from the cascade's inner modules,
 can be rearranged without touching them.
 """
 
-from tessera.cascade.model import (
-    CascadeSpec,
-    ancestors,
+from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
+from tessera.cascade.frame import mirrored_stack, mirrored_window, node_feature_names
+from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.predict import (
     cascade_spec,
-    fit_cascade,
     frame_memory_bytes,
-    load_node,
-    mirrored_stack,
-    mirrored_window,
-    node_feature_names,
-    node_inputs,
-    nodes,
-    out_of_fold_maps,
     predict_frame,
     predict_section,
-    prepare_tile,
-    receptive_radius,
-    save_node,
-    train_node,
 )
+from tessera.cascade.spec import CascadeSpec, ancestors, node_inputs, nodes
+from tessera.cascade.store import load_node, save_node
 
 __all__ = [
     "CascadeSpec",
