@@ -11,13 +11,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from tessera import __version__
+from tessera.block_reduce import block_mean
 from tessera.cascade.classifiers import make_classifier
 from tessera.cascade.frame import ensure_maps, make_frame, node_feature_names, node_matrix
 from tessera.cascade.spec import ancestors, node_settings, nodes
 from tessera.cascade.store import MODEL_FORMAT, NodeModel
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
-from tessera.pyramid import block_mean
 
 
 def level_labels(labels, level, core_shape):

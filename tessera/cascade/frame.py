@@ -5,6 +5,7 @@ stencil samples of its context maps).
 
 import numpy as np
 
+from tessera.block_reduce import block_mean
 from tessera.cascade.features import (
     feature_names,
     filter_bank,
@@ -21,7 +22,6 @@ from tessera.cascade.geometry import (
 )
 from tessera.cascade.spec import ancestors, node_inputs
 from tessera.errors import TesseraInputError
-from tessera.pyramid import block_mean
 
 
 def mirrored_window(array, z, y0, y1, x0, x1):
