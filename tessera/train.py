@@ -10,7 +10,6 @@ import numpy as np
 import pandas as pd
 
 from tessera.cascade.api import (
-    CascadeSpec,
     ancestors,
     cascade_spec,
     load_node,
@@ -19,6 +18,7 @@ from tessera.cascade.api import (
     prepare_tile,
     receptive_radius,
     save_node,
+    spec_from_settings,
     train_node,
 )
 from tessera.errors import TesseraInputError
@@ -150,7 +150,7 @@ def train_node_job(
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
     """
-    spec = CascadeSpec.from_dict({**cascade, "stages": stage})
+    spec = spec_from_settings(cascade, stages=stage)
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
     arrays = level_arrays(pyramids, registry, downsample=downsample)

@@ -2,17 +2,29 @@
 
 import json
 import os
+from pathlib import Path
 
 import numpy as np
 import pytest
+import yaml
 from scipy import ndimage
 from sklearn.metrics import f1_score
 
+from tessera.cascade.classifiers import KINDS
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile
 from tessera.cascade.frame import mirrored_stack, mirrored_window
-from tessera.cascade.geometry import margins, receptive_radius
+from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius
 from tessera.cascade.predict import predict_frame, predict_section
-from tessera.cascade.spec import CascadeSpec, ancestors, node_inputs, nodes
+from tessera.cascade.spec import (
+    LIMITS,
+    MAX_SIGMA,
+    POOLINGS,
+    STENCIL_RADIUS_LIMITS,
+    CascadeSpec,
+    ancestors,
+    node_inputs,
+    nodes,
+)
 from tessera.cascade.store import load_node, save_node
 from tessera.errors import TesseraInputError
 
@@ -327,3 +339,52 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
         np.testing.assert_allclose(
             predict_frame(models, window, (32, 32)), whole[32:64, 16:48], atol=1e-6
         )
+
+
+SCHEMA = Path(__file__).resolve().parents[1] / "config" / "schemas" / "config.schema.yaml"
+
+
+def _target_schema():
+    schema = yaml.safe_load(SCHEMA.read_text(encoding="utf-8"))
+    return schema["properties"]["targets"]["additionalProperties"]["properties"]
+
+
+def test_config_schema_states_the_limits_the_code_enforces():
+    # The configuration is checked against the JSON Schema before any job runs; the library checks
+    # the same settings when a spec is made. Both must accept exactly the same values, or a
+    # config passes validation and fails in the middle of a run (or the reverse).
+    target = _target_schema()
+    cascade = target["cascade"]["properties"]
+    for name, (low, high) in LIMITS.items():
+        assert cascade[name]["type"] == "integer", name
+        assert cascade[name]["minimum"] == low, name
+        assert cascade[name].get("maximum") == high, name
+    radius = cascade["stencil_radii"]["items"]
+    assert (radius["minimum"], radius["maximum"]) == STENCIL_RADIUS_LIMITS
+    for name in ("sigmas", "coarse_sigmas"):
+        items = cascade[name]["items"]
+        assert items["exclusiveMinimum"] == 0 and items["maximum"] == MAX_SIGMA, name
+    assert cascade["classifier"]["enum"] == list(KINDS)
+    assert cascade["pooling"]["enum"] == list(POOLINGS)
+    smoothing = target["output_smoothing_px"]
+    assert (smoothing["minimum"], smoothing["maximum"]) == (0, MAX_OUTPUT_SIGMA)
+    # the schema's defaults are the spec's defaults
+    defaults = CascadeSpec().to_dict()
+    for name, prop in cascade.items():
+        assert prop["default"] == defaults[name], name
+
+
+@pytest.mark.parametrize(
+    ("setting", "message"),
+    [
+        ({"levels": 6}, "levels must be an integer >= 0 and <= 5, got 6"),
+        ({"stages": 9}, "stages must be an integer >= 1 and <= 8, got 9"),
+        ({"folds": 21}, "folds must be an integer >= 2 and <= 20, got 21"),
+        ({"seed": -1}, "seed must be an integer >= 0, got -1"),
+        ({"stencil_radii": (1, 257)}, r"stencil_radii must be integers >= 1 and <= 256"),
+        ({"sigmas": (1.0, 65.0)}, r"sigmas must be at most 64 px"),
+    ],
+)
+def test_settings_beyond_the_limits_are_named(setting, message):
+    with pytest.raises(TesseraInputError, match=message):
+        CascadeSpec(**setting)

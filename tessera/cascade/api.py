@@ -1,4 +1,5 @@
-"""The cascade as the rest of tessera uses it: specify, train a node, save and load models, the
+"""The cascade as the rest of tessera uses it: specify (and convert settings to and from a
+spec), train a node, save and load models, the
 receptive radius (halo), and predict a window, a section or a frame.
 
 Stages and workflow jobs import from here, not from the cascade's inner modules, so the inside
@@ -14,7 +15,14 @@ from tessera.cascade.predict import (
     predict_frame,
     predict_section,
 )
-from tessera.cascade.spec import CascadeSpec, ancestors, node_inputs, nodes
+from tessera.cascade.spec import (
+    CascadeSpec,
+    ancestors,
+    node_inputs,
+    node_settings,
+    nodes,
+    spec_from_settings,
+)
 from tessera.cascade.store import load_node, save_node
 
 __all__ = [
@@ -28,6 +36,7 @@ __all__ = [
     "mirrored_window",
     "node_feature_names",
     "node_inputs",
+    "node_settings",
     "nodes",
     "out_of_fold_maps",
     "predict_frame",
@@ -35,5 +44,6 @@ __all__ = [
     "prepare_tile",
     "receptive_radius",
     "save_node",
+    "spec_from_settings",
     "train_node",
 ]

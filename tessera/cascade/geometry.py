@@ -13,6 +13,10 @@ from tessera.cascade.features import feature_radius
 from tessera.cascade.spec import ancestors, node_inputs
 from tessera.errors import TesseraInputError
 
+# Largest Gaussian sigma (px) of the final map's smoothing; the config schema's
+# targets.*.output_smoothing_px states the same bound.
+MAX_OUTPUT_SIGMA = 32
+
 
 def level_sigmas(spec, level):
     return spec.sigmas if level == 0 else spec.coarse_sigmas
@@ -38,9 +42,9 @@ def smoothing_reach(output_sigma):
     >>> smoothing_reach(0), smoothing_reach(2.0)
     (0, 8)
     """
-    if not (isinstance(output_sigma, (int, float)) and 0 <= output_sigma <= 32):
+    if not (isinstance(output_sigma, (int, float)) and 0 <= output_sigma <= MAX_OUTPUT_SIGMA):
         raise TesseraInputError(
-            f"output smoothing sigma must be from 0 to 32 px, got {output_sigma!r}"
+            f"output smoothing sigma must be from 0 to {MAX_OUTPUT_SIGMA:g} px, got {output_sigma!r}"
         )
     return int(4.0 * output_sigma + 0.5) if output_sigma > 0 else 0
 

@@ -21,7 +21,7 @@ from tessera.cascade.geometry import (
     read_reach,
     receptive_radius,
 )
-from tessera.cascade.spec import CascadeSpec, node_inputs, node_settings, nodes
+from tessera.cascade.spec import node_inputs, node_settings, nodes, spec_from_settings
 from tessera.errors import TesseraInputError
 
 
@@ -29,7 +29,7 @@ def cascade_spec(models):
     """The spec of a complete set of node models (stages = the last stage present)."""
     stages = max(s for s, _ in models)
     spec = next(iter(models.values())).spec
-    spec = CascadeSpec.from_dict({**node_settings(spec), "stages": stages})
+    spec = spec_from_settings(node_settings(spec), stages=stages)
     missing = [n for n in nodes(spec) if n not in models]
     if missing:
         raise TesseraInputError(f"the cascade lacks the models of nodes {missing}")
@@ -101,6 +101,7 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
 
     Examples
     --------
+    >>> from tessera.cascade.spec import CascadeSpec
     >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
     >>> frame_memory_bytes(spec, (64, 64)) > 4 * (64 + 2 * receptive_radius(spec)) ** 2 * len(feature_names((1.0,)))
     True

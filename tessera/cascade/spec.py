@@ -28,6 +28,21 @@ from tessera.cascade.classifiers import KINDS
 from tessera.cascade.features import DEFAULT_SIGMAS, feature_radius
 from tessera.errors import TesseraInputError
 
+# Limits of the integer settings, inclusive (None: no upper limit). The config schema
+# (config/schemas/config.schema.yaml, targets.*.cascade) states the same bounds; a test keeps
+# the two equal.
+LIMITS = {
+    "stages": (1, 8),
+    "levels": (0, 5),
+    "folds": (2, 20),
+    "samples_per_tile": (10, 1_000_000),
+    "neighbours": (0, 4),
+    "seed": (0, None),
+}
+STENCIL_RADIUS_LIMITS = (1, 256)  # each radius, pixels of the map's level
+MAX_SIGMA = 64.0  # largest filter-bank scale (px of the level); scales are > 0
+POOLINGS = ("mean", "max")
+
 
 @dataclass(frozen=True)
 class CascadeSpec:
@@ -36,7 +51,7 @@ class CascadeSpec:
     Parameters
     ----------
     stages, levels : int
-        S ≥ 1 and L ≥ 0.
+        S ≥ 1 and L ≥ 0 (limits in ``LIMITS``).
     sigmas : tuple of float
         Filter-bank scales at full resolution (pixels of the working level).
     coarse_sigmas : tuple of float
@@ -77,29 +92,38 @@ class CascadeSpec:
         def fail(msg):
             raise TesseraInputError(f"cascade settings: {msg}")
 
-        if not isinstance(self.stages, int) or self.stages < 1:
-            fail(f"stages must be an integer >= 1, got {self.stages!r}")
-        if not isinstance(self.levels, int) or not 0 <= self.levels <= 6:
-            fail(f"levels must be an integer from 0 to 6, got {self.levels!r}")
-        if self.pooling not in ("mean", "max"):
+        def check_int(name):
+            value = getattr(self, name)
+            low, high = LIMITS[name]
+            if not isinstance(value, int) or value < low or (high is not None and value > high):
+                upper = f" and <= {high}" if high is not None else ""
+                fail(f"{name} must be an integer >= {low}{upper}, got {value!r}")
+
+        check_int("stages")
+        check_int("levels")
+        if self.pooling not in POOLINGS:
             fail(f"pooling must be 'mean' or 'max', got {self.pooling!r}")
         if self.classifier not in KINDS:
             fail(f"classifier must be one of {', '.join(KINDS)}, got {self.classifier!r}")
-        if not isinstance(self.folds, int) or self.folds < 2:
-            fail(f"folds must be an integer >= 2, got {self.folds!r}")
-        if not isinstance(self.samples_per_tile, int) or self.samples_per_tile < 10:
-            fail(f"samples_per_tile must be an integer >= 10, got {self.samples_per_tile!r}")
-        if not isinstance(self.neighbours, int) or not 0 <= self.neighbours <= 4:
-            fail(f"neighbours must be an integer from 0 to 4, got {self.neighbours!r}")
+        check_int("folds")
+        check_int("samples_per_tile")
+        check_int("neighbours")
+        check_int("seed")
         radii = tuple(self.stencil_radii)
-        if not radii or any(not isinstance(r, int) or r < 1 for r in radii):
-            fail(f"stencil_radii must be positive integers, got {self.stencil_radii!r}")
+        low, high = STENCIL_RADIUS_LIMITS
+        if not radii or any(not isinstance(r, int) or not low <= r <= high for r in radii):
+            fail(
+                f"stencil_radii must be integers >= {low} and <= {high}, got {self.stencil_radii!r}"
+            )
         object.__setattr__(self, "stencil_radii", radii)
         object.__setattr__(self, "sigmas", tuple(float(s) for s in self.sigmas))
         object.__setattr__(self, "coarse_sigmas", tuple(float(s) for s in self.coarse_sigmas))
         object.__setattr__(self, "classifier_options", dict(self.classifier_options))
         feature_radius(self.sigmas)  # validates the scales
         feature_radius(self.coarse_sigmas)
+        for name in ("sigmas", "coarse_sigmas"):
+            if max(getattr(self, name)) > MAX_SIGMA:
+                fail(f"{name} must be at most {MAX_SIGMA:g} px, got {getattr(self, name)!r}")
 
     def to_dict(self):
         out = asdict(self)
@@ -179,9 +203,46 @@ def ancestors(spec, node):
     return [n for n in nodes(spec) if n in needed]
 
 
-def node_settings(spec):
-    # A node does not depend on how many stages follow it: leave `stages` out, so raising the
-    # number of stages keeps the earlier nodes valid.
-    out = spec.to_dict()
-    out.pop("stages")
+def node_settings(settings):
+    """The cascade settings a node depends on: every setting but the number of stages.
+
+    A node does not depend on how many stages follow it, so raising the number of stages keeps
+    the earlier nodes valid. This is what a node's model records (``meta["spec"]``) and what a
+    workflow passes to the job training a node. `settings` is a :class:`CascadeSpec`, or a
+    mapping of settings such as a configuration's ``cascade`` section (returned as given,
+    without ``stages``). :func:`spec_from_settings` is the way back.
+
+    Examples
+    --------
+    >>> settings = node_settings(CascadeSpec(stages=3, levels=1))
+    >>> "stages" in settings, settings["levels"]
+    (False, 1)
+    >>> node_settings({"stages": 2, "levels": 1, "folds": 3})
+    {'levels': 1, 'folds': 3}
+    """
+    out = settings.to_dict() if isinstance(settings, CascadeSpec) else dict(settings)
+    out.pop("stages", None)
     return out
+
+
+def spec_from_settings(settings, *, stages):
+    """The :class:`CascadeSpec` of a cascade of `stages` stages with these settings.
+
+    `settings` is a mapping such as a configuration's ``cascade`` section or the output of
+    :func:`node_settings` (a model's ``meta["spec"]``); its own ``stages``, if any, is replaced
+    by `stages`: a spec made to train or read node (s, l) ends at stage s.
+
+    Raises
+    ------
+    TesseraInputError
+        Unknown or invalid settings.
+
+    Examples
+    --------
+    >>> spec = spec_from_settings({"stages": 3, "levels": 1}, stages=2)
+    >>> spec.stages, spec.levels
+    (2, 1)
+    >>> spec_from_settings(node_settings(spec), stages=2) == spec
+    True
+    """
+    return CascadeSpec.from_dict({**settings, "stages": stages})

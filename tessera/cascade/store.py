@@ -11,7 +11,7 @@ import numpy as np
 
 from tessera.cascade.classifiers import classifier_from_state
 from tessera.cascade.frame import node_feature_names
-from tessera.cascade.spec import CascadeSpec, node_settings
+from tessera.cascade.spec import CascadeSpec, node_settings, spec_from_settings
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 
@@ -136,7 +136,7 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
             source=path,
         )
     try:
-        model_spec = CascadeSpec.from_dict({**meta["spec"], "stages": meta["stage"]})
+        model_spec = spec_from_settings(meta["spec"], stages=meta["stage"])
     except (KeyError, TypeError):
         raise TesseraInputError("model metadata lacks its cascade settings", source=path) from None
     checks = [
