@@ -27,6 +27,7 @@ from tessera.cascade.spec import (
 )
 from tessera.cascade.store import load_node, save_node
 from tessera.errors import TesseraInputError
+from tessera.workflow.files.node_model import read_node
 
 SMALL = dict(
     sigmas=(1.0, 2.0),
@@ -201,8 +202,24 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
         TesseraInputError,
         match=r"rerun rule train_node to rebuild it \(delete the file, or snakemake --forcerun train_node\)",
     ) as error:
-        load_node(path, target="blobs")
+        read_node(path, target="blobs")
     assert str(error.value).startswith(f"{path}: ")
+
+
+def test_the_library_names_no_rule_and_ends_with_the_callers_hint(trained, tmp_path):
+    # The cascade knows nothing of the workflow: without a hint its message says what to do in
+    # its own terms; a caller that knows how the file is made says so instead.
+    path = tmp_path / "m.npz"
+    save_node(trained[2][(1, 0)], path)
+    path.write_bytes(path.read_bytes()[:300])
+    with pytest.raises(TesseraInputError) as plain:
+        load_node(path, target="blobs")
+    message = str(plain.value).removeprefix(f"{path}: ")
+    assert "rule" not in message and "snakemake" not in message
+    assert message.endswith("; train the node again to rebuild it")
+    with pytest.raises(TesseraInputError) as hinted:
+        load_node(path, target="blobs", hint="ask the person who trained it")
+    assert str(hinted.value).endswith("; ask the person who trained it")
 
 
 def _saved_arrays(trained, path):
@@ -229,7 +246,7 @@ def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
         match=r"m\.npz: model content does not match the SHA-256 recorded when it "
         r"was written .*rerun rule train_node",
     ):
-        load_node(path, target="blobs")
+        read_node(path, target="blobs")
 
 
 def test_model_of_another_format_version_is_refused(trained, tmp_path):

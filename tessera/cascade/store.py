@@ -42,9 +42,9 @@ class NodeModel:
         return self.fold_classifiers[fold] if fold >= 0 else self.classifier
 
 
-_REBUILD = (
-    "rerun rule train_node to rebuild it (delete the file, or snakemake --forcerun train_node)"
-)
+# What a message about an unusable model file tells the user to do, unless the caller (who knows
+# how the file is made) says better.
+REBUILD_HINT = "train the node again to rebuild it"
 
 
 def payload_sha256(arrays, meta):
@@ -98,7 +98,7 @@ def save_node(model, path_or_file):
             fh.write(data)
 
 
-def load_node(path, *, target=None, spec=None, stage=None, level=None):
+def load_node(path, *, target=None, spec=None, stage=None, level=None, hint=REBUILD_HINT):
     """Read a node saved by :func:`save_node`, refusing one made for something else.
 
     Parameters
@@ -106,6 +106,9 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
     path : str or Path
     target, spec, stage, level : optional
         When given, must match the model's metadata exactly.
+    hint : str
+        How to rebuild a file that cannot be used, ending the messages about it (a workflow
+        names the step that writes the file).
 
     Raises
     ------
@@ -114,7 +117,7 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
         content that does not match the SHA-256 recorded when the file was written, other model
         format, or a mismatch with what was asked for.
     """
-    arrays = _read_plain_arrays(path)
+    arrays = _read_plain_arrays(path, hint)
     if "meta_json" not in arrays:
         raise TesseraInputError("not a tessera model file (no metadata)", source=path)
     try:
@@ -122,17 +125,17 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
         if not isinstance(meta, dict):
             raise ValueError("not a JSON object")
     except (UnicodeDecodeError, ValueError):  # json.JSONDecodeError is a ValueError
-        raise TesseraInputError(f"model metadata is damaged; {_REBUILD}", source=path) from None
+        raise TesseraInputError(f"model metadata is damaged; {hint}", source=path) from None
     if meta.get("format") != MODEL_FORMAT:
         raise TesseraInputError(
             f"model format {meta.get('format')!r} is not {MODEL_FORMAT} (made by tessera "
-            f"{meta.get('tessera_version')}); retrain it with this version ({_REBUILD})",
+            f"{meta.get('tessera_version')}); retrain it with this version ({hint})",
             source=path,
         )
     if meta.get("payload_sha256") != payload_sha256(arrays, meta):
         raise TesseraInputError(
             f"model content does not match the SHA-256 recorded when it was written (altered or damaged); "
-            f"{_REBUILD}",
+            f"{hint}",
             source=path,
         )
     try:
@@ -176,7 +179,7 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None):
     )
 
 
-def _read_plain_arrays(path):
+def _read_plain_arrays(path, hint):
     """Every array of an .npz, refusing object arrays (``allow_pickle=False``: nothing is unpickled)."""
     try:
         with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
@@ -188,15 +191,15 @@ def _read_plain_arrays(path):
                     # numpy refuses object (pickled) arrays here, before unpickling anything
                     raise TesseraInputError(
                         f"array {name!r} cannot be read as plain numbers ({exc}); model files hold numeric arrays "
-                        f"only and are never unpickled; {_REBUILD}",
+                        f"only and are never unpickled; {hint}",
                         source=path,
                     ) from None
     except TesseraInputError:
         raise
     except FileNotFoundError:
-        raise TesseraInputError(f"model file not found; {_REBUILD}", source=path) from None
+        raise TesseraInputError(f"model file not found; {hint}", source=path) from None
     except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as exc:
         raise TesseraInputError(
-            f"not a readable model file (truncated or damaged?): {exc}; {_REBUILD}", source=path
+            f"not a readable model file (truncated or damaged?): {exc}; {hint}", source=path
         ) from None
     return arrays
