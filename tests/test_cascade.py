@@ -11,7 +11,7 @@ from scipy import ndimage
 from sklearn.metrics import f1_score
 
 from tessera.cascade.classifiers import KINDS
-from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile
+from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import mirrored_stack, mirrored_window
 from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius
 from tessera.cascade.predict import predict_frame, predict_section
@@ -23,7 +23,9 @@ from tessera.cascade.spec import (
     CascadeSpec,
     ancestors,
     node_inputs,
+    node_settings,
     nodes,
+    spec_from_settings,
 )
 from tessera.cascade.store import load_node, save_node
 from tessera.errors import TesseraInputError
@@ -143,6 +145,23 @@ def test_nodes_do_not_depend_on_later_stages(trained):
     for node in nodes(one):
         a, b = alone[node].classifier.to_state()[0], models[node].classifier.to_state()[0]
         assert a.keys() == b.keys() and all(np.array_equal(a[k], b[k]) for k in a)
+
+
+def test_whole_cascade_equals_one_job_per_node(trained, tmp_path):
+    # A workflow trains each node in a job of its own: the spec ends at the node's stage, tiles
+    # carry the node's own receptive radius and upstream models come from their files. The
+    # models fit_cascade makes are the same, byte for byte.
+    spec, _, models = trained
+    for node in nodes(spec):
+        alone = spec_from_settings(node_settings(spec), stages=node[0])
+        upstream = {
+            a: load_node(tmp_path / f"{a}.npz", spec=alone) for a in ancestors(alone, node)[:-1]
+        }
+        tiles = make_tiles(alone, final=node)
+        model = train_node(alone, *node, tiles, upstream, target="blobs")
+        save_node(model, tmp_path / f"{node}.npz")
+        save_node(models[node], tmp_path / "whole.npz")
+        assert (tmp_path / f"{node}.npz").read_bytes() == (tmp_path / "whole.npz").read_bytes()
 
 
 def test_saved_nodes_load_without_pickle_and_predict_the_same(trained, tmp_path):

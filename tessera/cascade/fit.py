@@ -14,6 +14,7 @@ from tessera import __version__
 from tessera.block_reduce import block_mean
 from tessera.cascade.classifiers import make_classifier
 from tessera.cascade.frame import ensure_maps, make_frame, node_feature_names, node_matrix
+from tessera.cascade.geometry import receptive_radius
 from tessera.cascade.spec import ancestors, node_settings, nodes
 from tessera.cascade.store import MODEL_FORMAT, NodeModel
 from tessera.errors import TesseraInputError
@@ -180,13 +181,39 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
 def fit_cascade(spec, tiles, *, target="target", threads=1):
     """Train every node in order; return ``{node: NodeModel}``.
 
-    `tiles` are TrainingTiles made with the full receptive radius (``final=None``); maps of
-    earlier nodes are cached in their frames and reused by later ones.
+    `tiles` are TrainingTiles made with the full receptive radius (``final=None``). Each node is
+    trained on the tiles cut to its own receptive radius (:func:`node_tile`), as a job that
+    trains that node alone sees them, so every model equals the one such a job makes and does
+    not depend on the stages after it.
     """
     models = {}
     for node in nodes(spec):
-        models[node] = train_node(spec, *node, tiles, models, target=target, threads=threads)
+        node_tiles = [node_tile(spec, tile, node) for tile in tiles]
+        models[node] = train_node(spec, *node, node_tiles, models, target=target, threads=threads)
     return models
+
+
+def node_tile(spec, tile, node):
+    """`tile` with its image cut to the receptive radius of `node` (a new frame, maps not cached).
+
+    The maps of earlier nodes are computed over the margins `node` reads, not over the wider
+    ones later nodes of the cascade read. That matters beyond geometry: a classifier's output for
+    a pixel can differ in the last bit with the number of rows predicted at once (BLAS matrix
+    products round rows at the edge of their blocking differently), so a map computed over a
+    wider region is not always bit for bit the crop of a narrower one.
+    """
+    frame = tile.frame
+    halo = receptive_radius(spec, node)
+    cut = frame.halo - halo
+    if cut < 0:
+        raise TesseraInputError(
+            f"tile {tile.tile_id}: its image has a halo of {frame.halo} px; node {node} needs {halo}"
+        )
+    h, w = tile.labels.shape
+    # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
+    # was appended after it, so the window is its first rows and columns
+    image = frame.image(0)[:, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
+    return prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
 
 
 def out_of_fold_maps(models, tiles):
