@@ -88,6 +88,31 @@ def prepare_tile(spec, tile_id, image, labels, *, fold, final=None):
     )
 
 
+def _training_rows(spec, node, tiles, upstream):
+    """Sampled feature rows of `node` over the tiles: (X, labels y, fold of each row g)."""
+    level = node[1]
+    rows, ys, groups = [], [], []
+    for tile in tiles:
+        frame = tile.frame
+        ensure_maps(frame, node, upstream, tile.fold)
+        labels = level_labels(tile.labels, level, frame.core_shape)
+        pick = _sample_rows(
+            labels,
+            spec.samples_per_tile,
+            np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
+        )
+        if pick.size == 0:
+            continue
+        x = node_matrix(frame, node, 0)
+        rows.append(x.reshape(-1, x.shape[-1])[pick])
+        ys.append(labels.ravel()[pick])
+        groups.append(np.full(pick.size, tile.fold))
+    X = np.concatenate(rows)
+    y = np.concatenate(ys).astype(np.uint8)
+    g = np.concatenate(groups)
+    return X, y, g
+
+
 def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=1):
     """Fit one (stage, level) node on training tiles.
 
@@ -122,25 +147,7 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
     missing = [a for a in ancestors(spec, node)[:-1] if a not in upstream]
     if missing:
         raise TesseraInputError(f"target {target}: node {node} needs the models of {missing} first")
-    rows, ys, groups = [], [], []
-    for tile in tiles:
-        frame = tile.frame
-        ensure_maps(frame, node, upstream, tile.fold)
-        labels = level_labels(tile.labels, level, frame.core_shape)
-        pick = _sample_rows(
-            labels,
-            spec.samples_per_tile,
-            np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
-        )
-        if pick.size == 0:
-            continue
-        x = node_matrix(frame, node, 0)
-        rows.append(x.reshape(-1, x.shape[-1])[pick])
-        ys.append(labels.ravel()[pick])
-        groups.append(np.full(pick.size, tile.fold))
-    X = np.concatenate(rows)
-    y = np.concatenate(ys).astype(np.uint8)
-    g = np.concatenate(groups)
+    X, y, g = _training_rows(spec, node, tiles, upstream)
     if np.unique(y).size < 2:
         raise TesseraInputError(
             f"target {target}: training tiles hold only class {int(y[0])} at level {level}; annotate both target and background"

@@ -117,27 +117,7 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None, hint=REBU
         content that does not match the SHA-256 recorded when the file was written, other model
         format, or a mismatch with what was asked for.
     """
-    arrays = _read_plain_arrays(path, hint)
-    if "meta_json" not in arrays:
-        raise TesseraInputError("not a tessera model file (no metadata)", source=path)
-    try:
-        meta = json.loads(arrays.pop("meta_json").tobytes().decode())
-        if not isinstance(meta, dict):
-            raise ValueError("not a JSON object")
-    except (UnicodeDecodeError, ValueError):  # json.JSONDecodeError is a ValueError
-        raise TesseraInputError(f"model metadata is damaged; {hint}", source=path) from None
-    if meta.get("format") != MODEL_FORMAT:
-        raise TesseraInputError(
-            f"model format {meta.get('format')!r} is not {MODEL_FORMAT} (made by tessera "
-            f"{meta.get('tessera_version')}); retrain it with this version ({hint})",
-            source=path,
-        )
-    if meta.get("payload_sha256") != payload_sha256(arrays, meta):
-        raise TesseraInputError(
-            f"model content does not match the SHA-256 recorded when it was written (altered or damaged); "
-            f"{hint}",
-            source=path,
-        )
+    arrays, meta = _read_checked(path, hint)
     try:
         model_spec = spec_from_settings(meta["spec"], stages=meta["stage"])
     except (KeyError, TypeError):
@@ -177,6 +157,32 @@ def load_node(path, *, target=None, spec=None, stage=None, level=None, hint=REBU
     return NodeModel(
         model_spec, meta["stage"], meta["level"], classifiers[0], classifiers[1:], meta
     )
+
+
+def _read_checked(path, hint):
+    """The arrays and metadata of a model file whose format and recorded SHA-256 are right."""
+    arrays = _read_plain_arrays(path, hint)
+    if "meta_json" not in arrays:
+        raise TesseraInputError("not a tessera model file (no metadata)", source=path)
+    try:
+        meta = json.loads(arrays.pop("meta_json").tobytes().decode())
+        if not isinstance(meta, dict):
+            raise ValueError("not a JSON object")
+    except (UnicodeDecodeError, ValueError):  # json.JSONDecodeError is a ValueError
+        raise TesseraInputError(f"model metadata is damaged; {hint}", source=path) from None
+    if meta.get("format") != MODEL_FORMAT:
+        raise TesseraInputError(
+            f"model format {meta.get('format')!r} is not {MODEL_FORMAT} (made by tessera "
+            f"{meta.get('tessera_version')}); retrain it with this version ({hint})",
+            source=path,
+        )
+    if meta.get("payload_sha256") != payload_sha256(arrays, meta):
+        raise TesseraInputError(
+            f"model content does not match the SHA-256 recorded when it was written (altered or damaged); "
+            f"{hint}",
+            source=path,
+        )
+    return arrays, meta
 
 
 def _read_plain_arrays(path, hint):
