@@ -28,6 +28,7 @@ from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_sco
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
+from tessera.block_reduce import block_mean  # noqa: E402
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
@@ -36,7 +37,6 @@ from tessera.cascade.api import (
     prepare_tile,
     receptive_radius,
 )  # noqa: E402
-from tessera.pyramid import block_mean  # noqa: E402
 
 DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
 CONFIGS = {"1x0": (1, 0), "1x2": (1, 2), "2x2": (2, 2), "3x2": (3, 2), "2x1": (2, 1), "3x1": (3, 1)}

@@ -20,6 +20,7 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import report  # noqa: E402
 
+from tessera.block_reduce import block_mean  # noqa: E402
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
@@ -31,7 +32,6 @@ from tessera.cascade.api import (
 from tessera.demo import render_dataset  # noqa: E402
 from tessera.evaluate import confusion, scores_from_counts  # noqa: E402
 from tessera.next_tiles import rank_tiles  # noqa: E402
-from tessera.pyramid import block_mean  # noqa: E402
 
 SIZE = 32  # tile side at the working level
 

@@ -9,7 +9,7 @@ sys.path.insert(0, workflow.basedir)
 
 from snakemake.exceptions import WorkflowError
 
-from tessera.cascade.api import CascadeSpec, ancestors, nodes
+from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.workflow.code_identity import script_code as code_version_of_script
@@ -191,16 +191,12 @@ def target_split(wildcards):
 def node_cascade(wildcards):
     """Cascade settings a node depends on: all but the number of stages, so that adding a
     stage leaves the earlier nodes' jobs untouched."""
-    settings = dict(target_settings(wildcards)["cascade"])
-    settings.pop("stages")
-    return settings
+    return node_settings(target_settings(wildcards)["cascade"])
 
 
 @functools.lru_cache(maxsize=None)
 def _target_spec(target, stages):
-    return CascadeSpec.from_dict(
-        {**config["targets"][target]["cascade"], "stages": stages}
-    )
+    return spec_from_settings(config["targets"][target]["cascade"], stages=stages)
 
 
 def _model_path(target, node):

@@ -26,7 +26,6 @@ import zarr
 from tessera.cascade.api import (
     cascade_spec,
     frame_memory_bytes,
-    load_node,
     mirrored_stack,
     node_feature_names,
     nodes,
@@ -39,6 +38,7 @@ from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image, working_level
 from tessera.io.store_checksums import record_checksums
 from tessera.pyramid import downsample_level
+from tessera.workflow.files.node_model import read_node
 
 PLAN_FORMAT = 1
 DTYPES = ("uint8", "float16", "float32")
@@ -171,7 +171,7 @@ def load_cascade(model_paths, *, target):
     """Load every node model of a cascade (each checked against `target`)."""
     models = {}
     for path in model_paths:
-        model = load_node(path, target=target)
+        model = read_node(path, target=target)
         models[model.node] = model
     return models
 

@@ -43,11 +43,11 @@ import pandas as pd
 import tifffile
 from PIL import Image
 
+from tessera.block_reduce import block_mean
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import open_image, working_level
 from tessera.label_values import BACKGROUND, IGNORE, TARGET
-from tessera.pyramid import block_mean
 
 __all__ = [
     "BACKGROUND",

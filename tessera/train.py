@@ -10,21 +10,20 @@ import numpy as np
 import pandas as pd
 
 from tessera.cascade.api import (
-    CascadeSpec,
     ancestors,
     cascade_spec,
-    load_node,
     mirrored_stack,
     predict_frame,
     prepare_tile,
     receptive_radius,
-    save_node,
+    spec_from_settings,
     train_node,
 )
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path, write_table
 from tessera.io.omezarr import open_image, working_level
 from tessera.tiles import read_annotation_set
+from tessera.workflow.files.node_model import read_node, write_node
 
 
 def assign_folds(tiles, folds, seed):
@@ -150,13 +149,13 @@ def train_node_job(
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
     """
-    spec = CascadeSpec.from_dict({**cascade, "stages": stage})
+    spec = spec_from_settings(cascade, stages=stage)
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
     models = {}
     for path in upstream:
-        model = load_node(path, target=target, spec=spec)  # refuses models of other settings
+        model = read_node(path, target=target, spec=spec)  # refuses models of other settings
         models[model.node] = model
     for a in ancestors(spec, node)[:-1]:
         if a not in models:
@@ -167,7 +166,7 @@ def train_node_job(
         spec, registry, labels, arrays, final=node, train_datasets=train_datasets
     )
     model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
-    save_node(model, out_path)  # atomic
+    write_node(model, out_path)  # atomic
     return {
         "node": list(node),
         "training_tiles": len(tiles),
@@ -195,7 +194,7 @@ def predict_tiles_job(
     registry, labels = read_annotation_set(annotations)
     models = {}
     for path in model_paths:
-        model = load_node(path, target=target)
+        model = read_node(path, target=target)
         models[model.node] = model
     spec = cascade_spec(models)
     arrays = level_arrays(pyramids, registry, downsample=downsample)

@@ -1,27 +1,35 @@
 """The cascaded hierarchical model: structure, out-of-fold context, exact blocks, safe storage."""
 
+import json
+import os
+from pathlib import Path
+
 import numpy as np
 import pytest
+import yaml
 from scipy import ndimage
 from sklearn.metrics import f1_score
 
-from tessera.cascade.model import (
+from tessera.cascade.classifiers import KINDS
+from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
+from tessera.cascade.frame import mirrored_stack, mirrored_window
+from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius
+from tessera.cascade.predict import predict_frame, predict_section
+from tessera.cascade.spec import (
+    LIMITS,
+    MAX_SIGMA,
+    POOLINGS,
+    STENCIL_RADIUS_LIMITS,
     CascadeSpec,
     ancestors,
-    fit_cascade,
-    load_node,
-    margins,
-    mirrored_window,
     node_inputs,
+    node_settings,
     nodes,
-    out_of_fold_maps,
-    predict_frame,
-    predict_section,
-    prepare_tile,
-    receptive_radius,
-    save_node,
+    spec_from_settings,
 )
+from tessera.cascade.store import load_node, save_node
 from tessera.errors import TesseraInputError
+from tessera.workflow.files.node_model import read_node
 
 SMALL = dict(
     sigmas=(1.0, 2.0),
@@ -139,6 +147,23 @@ def test_nodes_do_not_depend_on_later_stages(trained):
         assert a.keys() == b.keys() and all(np.array_equal(a[k], b[k]) for k in a)
 
 
+def test_whole_cascade_equals_one_job_per_node(trained, tmp_path):
+    # A workflow trains each node in a job of its own: the spec ends at the node's stage, tiles
+    # carry the node's own receptive radius and upstream models come from their files. The
+    # models fit_cascade makes are the same, byte for byte.
+    spec, _, models = trained
+    for node in nodes(spec):
+        alone = spec_from_settings(node_settings(spec), stages=node[0])
+        upstream = {
+            a: load_node(tmp_path / f"{a}.npz", spec=alone) for a in ancestors(alone, node)[:-1]
+        }
+        tiles = make_tiles(alone, final=node)
+        model = train_node(alone, *node, tiles, upstream, target="blobs")
+        save_node(model, tmp_path / f"{node}.npz")
+        save_node(models[node], tmp_path / "whole.npz")
+        assert (tmp_path / f"{node}.npz").read_bytes() == (tmp_path / "whole.npz").read_bytes()
+
+
 def test_saved_nodes_load_without_pickle_and_predict_the_same(trained, tmp_path):
     spec, _, models = trained
     loaded = {}
@@ -196,8 +221,24 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
         TesseraInputError,
         match=r"rerun rule train_node to rebuild it \(delete the file, or snakemake --forcerun train_node\)",
     ) as error:
-        load_node(path, target="blobs")
+        read_node(path, target="blobs")
     assert str(error.value).startswith(f"{path}: ")
+
+
+def test_the_library_names_no_rule_and_ends_with_the_callers_hint(trained, tmp_path):
+    # The cascade knows nothing of the workflow: without a hint its message says what to do in
+    # its own terms; a caller that knows how the file is made says so instead.
+    path = tmp_path / "m.npz"
+    save_node(trained[2][(1, 0)], path)
+    path.write_bytes(path.read_bytes()[:300])
+    with pytest.raises(TesseraInputError) as plain:
+        load_node(path, target="blobs")
+    message = str(plain.value).removeprefix(f"{path}: ")
+    assert "rule" not in message and "snakemake" not in message
+    assert message.endswith("; train the node again to rebuild it")
+    with pytest.raises(TesseraInputError) as hinted:
+        load_node(path, target="blobs", hint="ask the person who trained it")
+    assert str(hinted.value).endswith("; ask the person who trained it")
 
 
 def _saved_arrays(trained, path):
@@ -224,13 +265,11 @@ def test_model_numbers_changed_after_training_are_refused(trained, tmp_path):
         match=r"m\.npz: model content does not match the SHA-256 recorded when it "
         r"was written .*rerun rule train_node",
     ):
-        load_node(path, target="blobs")
+        read_node(path, target="blobs")
 
 
 def test_model_of_another_format_version_is_refused(trained, tmp_path):
     # a file as the previous format wrote it: metadata without the recorded SHA-256
-    import json
-
     path, arrays = _saved_arrays(trained, tmp_path / "old.npz")
     meta = json.loads(arrays["meta_json"].tobytes())
     meta.pop("payload_sha256")
@@ -251,8 +290,6 @@ class _RunsOnLoad:
         self.folder = str(folder)
 
     def __reduce__(self):
-        import os
-
         return (os.mkdir, (self.folder,))
 
 
@@ -320,8 +357,6 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
     radius = receptive_radius(spec)
     volume = np.stack([blobs(7)[0], blobs(8)[0], blobs(9)[0]])
     truth = np.stack([blobs(7)[1], blobs(8)[1], blobs(9)[1]])
-    from tessera.cascade.model import mirrored_stack
-
     tiles = [
         prepare_tile(
             spec,
@@ -340,3 +375,52 @@ def test_neighbouring_sections_join_the_features_and_blocks_stay_exact():
         np.testing.assert_allclose(
             predict_frame(models, window, (32, 32)), whole[32:64, 16:48], atol=1e-6
         )
+
+
+SCHEMA = Path(__file__).resolve().parents[1] / "config" / "schemas" / "config.schema.yaml"
+
+
+def _target_schema():
+    schema = yaml.safe_load(SCHEMA.read_text(encoding="utf-8"))
+    return schema["properties"]["targets"]["additionalProperties"]["properties"]
+
+
+def test_config_schema_states_the_limits_the_code_enforces():
+    # The configuration is checked against the JSON Schema before any job runs; the library checks
+    # the same settings when a spec is made. Both must accept exactly the same values, or a
+    # config passes validation and fails in the middle of a run (or the reverse).
+    target = _target_schema()
+    cascade = target["cascade"]["properties"]
+    for name, (low, high) in LIMITS.items():
+        assert cascade[name]["type"] == "integer", name
+        assert cascade[name]["minimum"] == low, name
+        assert cascade[name].get("maximum") == high, name
+    radius = cascade["stencil_radii"]["items"]
+    assert (radius["minimum"], radius["maximum"]) == STENCIL_RADIUS_LIMITS
+    for name in ("sigmas", "coarse_sigmas"):
+        items = cascade[name]["items"]
+        assert items["exclusiveMinimum"] == 0 and items["maximum"] == MAX_SIGMA, name
+    assert cascade["classifier"]["enum"] == list(KINDS)
+    assert cascade["pooling"]["enum"] == list(POOLINGS)
+    smoothing = target["output_smoothing_px"]
+    assert (smoothing["minimum"], smoothing["maximum"]) == (0, MAX_OUTPUT_SIGMA)
+    # the schema's defaults are the spec's defaults
+    defaults = CascadeSpec().to_dict()
+    for name, prop in cascade.items():
+        assert prop["default"] == defaults[name], name
+
+
+@pytest.mark.parametrize(
+    ("setting", "message"),
+    [
+        ({"levels": 6}, "levels must be an integer >= 0 and <= 5, got 6"),
+        ({"stages": 9}, "stages must be an integer >= 1 and <= 8, got 9"),
+        ({"folds": 21}, "folds must be an integer >= 2 and <= 20, got 21"),
+        ({"seed": -1}, "seed must be an integer >= 0, got -1"),
+        ({"stencil_radii": (1, 257)}, r"stencil_radii must be integers >= 1 and <= 256"),
+        ({"sigmas": (1.0, 65.0)}, r"sigmas must be at most 64 px"),
+    ],
+)
+def test_settings_beyond_the_limits_are_named(setting, message):
+    with pytest.raises(TesseraInputError, match=message):
+        CascadeSpec(**setting)

@@ -1,30 +1,29 @@
-"""The cascade as the rest of tessera uses it: specify, train a node, save and load models, the
+"""The cascade as the rest of tessera uses it: specify (and convert settings to and from a
+spec), train a node, save and load models, the
 receptive radius (halo), and predict a window, a section or a frame.
 
 Stages and workflow jobs import from here, not from the cascade's inner modules, so the inside
 can be rearranged without touching them.
 """
 
-from tessera.cascade.model import (
-    CascadeSpec,
-    ancestors,
+from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
+from tessera.cascade.frame import mirrored_stack, mirrored_window, node_feature_names
+from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.predict import (
     cascade_spec,
-    fit_cascade,
     frame_memory_bytes,
-    load_node,
-    mirrored_stack,
-    mirrored_window,
-    node_feature_names,
-    node_inputs,
-    nodes,
-    out_of_fold_maps,
     predict_frame,
     predict_section,
-    prepare_tile,
-    receptive_radius,
-    save_node,
-    train_node,
 )
+from tessera.cascade.spec import (
+    CascadeSpec,
+    ancestors,
+    node_inputs,
+    node_settings,
+    nodes,
+    spec_from_settings,
+)
+from tessera.cascade.store import load_node, save_node
 
 __all__ = [
     "CascadeSpec",
@@ -37,6 +36,7 @@ __all__ = [
     "mirrored_window",
     "node_feature_names",
     "node_inputs",
+    "node_settings",
     "nodes",
     "out_of_fold_maps",
     "predict_frame",
@@ -44,5 +44,6 @@ __all__ = [
     "prepare_tile",
     "receptive_radius",
     "save_node",
+    "spec_from_settings",
     "train_node",
 ]

@@ -20,7 +20,6 @@ from tessera.errors import TesseraInputError
 from tessera.spacing import normalize_spacing
 
 DEFAULT_SIGMAS = (0.7, 1.6, 3.5, 5.0, 10.0)
-_KINDS = ("smooth", "gradient", "log", "dog", "hessian", "structure")
 _MODE = "reflect"  # scipy's half-sample mirror, the same as numpy's pad mode "symmetric"
 _TRUNCATE = 4.0
 

@@ -1,0 +1,241 @@
+"""Training: one node at a time, or a whole cascade, on labelled tiles.
+
+Training context is out-of-fold: the maps a node passes downstream for a training tile come
+from a model fitted without that tile (stacked generalisation), so later nodes do not learn
+from over-confident context.
+"""
+
+import hashlib
+from dataclasses import dataclass
+
+import numpy as np
+
+from tessera import __version__
+from tessera.block_reduce import block_mean
+from tessera.cascade.classifiers import make_classifier
+from tessera.cascade.frame import ensure_maps, make_frame, node_feature_names, node_matrix
+from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.spec import ancestors, node_settings, nodes
+from tessera.cascade.store import MODEL_FORMAT, NodeModel
+from tessera.errors import TesseraInputError
+from tessera.label_values import IGNORE
+
+
+def level_labels(labels, level, core_shape):
+    """Majority labels of a core at `level` (ignore where no labelled pixel falls in a block)."""
+    h, w = core_shape
+    padded = np.full((h, w), IGNORE, dtype=np.uint8)
+    padded[: labels.shape[0], : labels.shape[1]] = labels
+    if level == 0:
+        return padded
+    f = 2**level
+    valid = (padded != IGNORE).astype(np.float32)
+    positive = (padded == 1).astype(np.float32)
+    n_valid = block_mean(valid, (f, f))
+    frac = np.divide(
+        block_mean(positive, (f, f)), n_valid, out=np.zeros_like(n_valid), where=n_valid > 0
+    )
+    out = (frac >= 0.5).astype(np.uint8)
+    out[n_valid == 0] = IGNORE
+    return out
+
+
+def _sample_rows(labels, count, rng):
+    """Indices of up to `count` labelled pixels, half per class where possible."""
+    flat = labels.ravel()
+    chosen = []
+    per_class = count // 2
+    for cls in (0, 1):
+        idx = np.flatnonzero(flat == cls)
+        if idx.size > per_class:
+            idx = rng.choice(idx, per_class, replace=False)
+        chosen.append(idx)
+    return np.sort(np.concatenate(chosen))
+
+
+def _balanced_weights(y):
+    n = y.size
+    counts = np.bincount(y, minlength=2).astype(np.float64)
+    w = n / (2.0 * np.maximum(counts, 1))
+    return w[y].astype(np.float32)
+
+
+def _tile_seed(spec, node, tile_id):
+    digest = hashlib.sha256(f"{spec.seed}:{node}:{tile_id}".encode()).digest()
+    return int.from_bytes(digest[:8], "little")
+
+
+@dataclass
+class TrainingTile:
+    """A labelled tile ready for training: its frame, its labels (core) and its fold."""
+
+    tile_id: str
+    frame: object
+    labels: np.ndarray
+    fold: int
+
+
+def prepare_tile(spec, tile_id, image, labels, *, fold, final=None):
+    """A TrainingTile from a working-level image window (core + halo) and core labels 0/1/255."""
+    labels = np.asarray(labels)
+    if labels.ndim != 2:
+        raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
+    return TrainingTile(
+        tile_id,
+        make_frame(spec, image, labels.shape, final=final),
+        labels.astype(np.uint8),
+        int(fold),
+    )
+
+
+def _training_rows(spec, node, tiles, upstream):
+    """Sampled feature rows of `node` over the tiles: (X, labels y, fold of each row g)."""
+    level = node[1]
+    rows, ys, groups = [], [], []
+    for tile in tiles:
+        frame = tile.frame
+        ensure_maps(frame, node, upstream, tile.fold)
+        labels = level_labels(tile.labels, level, frame.core_shape)
+        pick = _sample_rows(
+            labels,
+            spec.samples_per_tile,
+            np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
+        )
+        if pick.size == 0:
+            continue
+        x = node_matrix(frame, node, 0)
+        rows.append(x.reshape(-1, x.shape[-1])[pick])
+        ys.append(labels.ravel()[pick])
+        groups.append(np.full(pick.size, tile.fold))
+    X = np.concatenate(rows)
+    y = np.concatenate(ys).astype(np.uint8)
+    g = np.concatenate(groups)
+    return X, y, g
+
+
+def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=1):
+    """Fit one (stage, level) node on training tiles.
+
+    Parameters
+    ----------
+    spec : CascadeSpec
+    stage, level : int
+    tiles : list of TrainingTile
+        Every tile has a fold in ``0 .. spec.folds - 1``; frames must have been made with a halo
+        of at least ``receptive_radius(spec, (stage, level))``.
+    upstream : dict
+        ``{node: NodeModel}`` for every ancestor of the node (maps already cached in the frames
+        are reused).
+    target : str
+        Recorded in the metadata and checked when the model is loaded.
+    threads : int
+        Passed to the classifiers.
+
+    Returns
+    -------
+    NodeModel
+    """
+    node = (stage, level)
+    if not tiles:
+        raise TesseraInputError(f"target {target}: no training tiles")
+    folds_present = sorted({t.fold for t in tiles})
+    if folds_present != list(range(spec.folds)):
+        raise TesseraInputError(
+            f"target {target}: {len(tiles)} training tile(s) fall into folds {folds_present}; out-of-fold "
+            f"context needs tiles in each of the {spec.folds} folds (add tiles or lower folds)"
+        )
+    missing = [a for a in ancestors(spec, node)[:-1] if a not in upstream]
+    if missing:
+        raise TesseraInputError(f"target {target}: node {node} needs the models of {missing} first")
+    X, y, g = _training_rows(spec, node, tiles, upstream)
+    if np.unique(y).size < 2:
+        raise TesseraInputError(
+            f"target {target}: training tiles hold only class {int(y[0])} at level {level}; annotate both target and background"
+        )
+
+    def fit(mask):
+        seed = spec.seed + 7919 * stage + 104729 * level
+        clf = make_classifier(
+            spec.classifier, seed=seed, threads=threads, **spec.classifier_options
+        )
+        return clf.fit(X[mask], y[mask], sample_weight=_balanced_weights(y[mask]))
+
+    folds = []
+    for k in range(spec.folds):
+        held = g == k
+        if np.unique(y[~held]).size < 2:
+            raise TesseraInputError(
+                f"target {target}: without fold {k} the training pixels hold one class only"
+            )
+        folds.append(fit(~held))
+    full = fit(np.ones(y.size, dtype=bool))
+    meta = {
+        "format": MODEL_FORMAT,
+        "tessera_version": __version__,
+        "target": target,
+        "spec": node_settings(spec),
+        "stage": stage,
+        "level": level,
+        "features": node_feature_names(spec, stage, level),
+        "classes": [0, 1],
+        "training_tiles": sorted(t.tile_id for t in tiles),
+        "training_pixels": int(y.size),
+        "positive_fraction": float(y.mean()),
+    }
+    return NodeModel(spec, stage, level, full, folds, meta)
+
+
+def fit_cascade(spec, tiles, *, target="target", threads=1):
+    """Train every node in order; return ``{node: NodeModel}``.
+
+    `tiles` are TrainingTiles made with the full receptive radius (``final=None``). Each node is
+    trained on the tiles cut to its own receptive radius (:func:`node_tile`), as a job that
+    trains that node alone sees them, so every model equals the one such a job makes and does
+    not depend on the stages after it.
+    """
+    models = {}
+    for node in nodes(spec):
+        node_tiles = [node_tile(spec, tile, node) for tile in tiles]
+        models[node] = train_node(spec, *node, node_tiles, models, target=target, threads=threads)
+    return models
+
+
+def node_tile(spec, tile, node):
+    """`tile` with its image cut to the receptive radius of `node` (a new frame, maps not cached).
+
+    The maps of earlier nodes are computed over the margins `node` reads, not over the wider
+    ones later nodes of the cascade read. That matters beyond geometry: a classifier's output for
+    a pixel can differ in the last bit with the number of rows predicted at once (BLAS matrix
+    products round rows at the edge of their blocking differently), so a map computed over a
+    wider region is not always bit for bit the crop of a narrower one.
+    """
+    frame = tile.frame
+    halo = receptive_radius(spec, node)
+    cut = frame.halo - halo
+    if cut < 0:
+        raise TesseraInputError(
+            f"tile {tile.tile_id}: its image has a halo of {frame.halo} px; node {node} needs {halo}"
+        )
+    h, w = tile.labels.shape
+    # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
+    # was appended after it, so the window is its first rows and columns
+    image = frame.image(0)[:, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
+    return prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+
+
+def out_of_fold_maps(models, tiles):
+    """Final maps of training tiles, each from the fold models that did not see the tile."""
+    spec = next(iter(models.values())).spec
+    final = (spec.stages, 0)
+    out = {}
+    for tile in tiles:
+        ensure_maps(tile.frame, final, models, tile.fold)
+        x = node_matrix(tile.frame, final, 0)
+        prob = (
+            models[final]
+            .for_tile(tile.fold)
+            .predict(x.reshape(-1, x.shape[-1]))
+            .reshape(x.shape[:2])
+        )
+        out[tile.tile_id] = prob[: tile.labels.shape[0], : tile.labels.shape[1]]
+    return out

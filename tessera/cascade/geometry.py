@@ -1,0 +1,92 @@
+"""Geometry of a cascade: how far each node reads, and the halo (receptive radius) it needs.
+
+Work happens on *frames*: a core region (a training tile, or a block to predict) plus a halo of
+:func:`receptive_radius` pixels, mirrored beyond the volume. Each node computes its map only over
+the core plus the margin its consumers read. Because the result at a core pixel depends on
+nothing outside the halo, prediction block by block equals prediction of the whole image,
+provided block origins are multiples of ``2**L``.
+"""
+
+import math
+
+from tessera.cascade.features import feature_radius
+from tessera.cascade.spec import ancestors, node_inputs
+from tessera.errors import TesseraInputError
+
+# Largest Gaussian sigma (px) of the final map's smoothing; the config schema's
+# targets.*.output_smoothing_px states the same bound.
+MAX_OUTPUT_SIGMA = 32
+
+
+def level_sigmas(spec, level):
+    return spec.sigmas if level == 0 else spec.coarse_sigmas
+
+
+def read_reach(spec, consumer_level, producer_level):
+    """Level-0 pixels beyond a consumer pixel at which it reads a producer's map."""
+    r = max(spec.stencil_radii)
+    top = max(consumer_level, producer_level)
+    # stencil at the coarser of the two levels, plus one block for pooling / upsampling phase
+    return (2**top) * (r + 1)
+
+
+def round_up(value, step):
+    return int(math.ceil(value / step) * step)
+
+
+def smoothing_reach(output_sigma):
+    """Pixels the Gaussian smoothing of the final map reaches (scipy's kernel, truncate 4).
+
+    Examples
+    --------
+    >>> smoothing_reach(0), smoothing_reach(2.0)
+    (0, 8)
+    """
+    if not (isinstance(output_sigma, (int, float)) and 0 <= output_sigma <= MAX_OUTPUT_SIGMA):
+        raise TesseraInputError(
+            f"output smoothing sigma must be from 0 to {MAX_OUTPUT_SIGMA:g} px, got {output_sigma!r}"
+        )
+    return int(4.0 * output_sigma + 0.5) if output_sigma > 0 else 0
+
+
+def margins(spec, final=None, *, output_sigma=0.0):
+    """Level-0 margin around the core over which each node's map must be computed.
+
+    Only the ancestors of `final` (default: the last node) are included; `final` itself needs
+    a margin only for the smoothing of the output (`output_sigma`, px).
+    """
+    final = final or (spec.stages, 0)
+    order = ancestors(spec, final)
+    out = {n: 0 for n in order}
+    out[final] = round_up(smoothing_reach(output_sigma), spec.align)
+    for consumer in reversed(order):
+        for producer in node_inputs(spec, *consumer):
+            need = out[consumer] + read_reach(spec, consumer[1], producer[1])
+            out[producer] = max(out[producer], round_up(need, spec.align))
+    return out
+
+
+def feature_halo(spec, level):
+    """Level-l pixels of image around a region that its features depend on."""
+    return feature_radius(level_sigmas(spec, level)) + 1
+
+
+def receptive_radius(spec, final=None, *, output_sigma=0.0):
+    """Halo (level-0 pixels, a multiple of 2^L) that makes the core independent of anything beyond.
+
+    `output_sigma` > 0 adds the reach of the Gaussian smoothing of the final map.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> r = receptive_radius(CascadeSpec(stages=1, levels=0, sigmas=(1.0,)))
+    >>> r == feature_radius((1.0,)) + 2  # one pixel spare for the level grid
+    True
+    """
+    m = margins(spec, final, output_sigma=output_sigma)
+    radius = max(m[n] + (2 ** n[1]) * (feature_halo(spec, n[1]) + 1) for n in m)
+    return round_up(radius, spec.align)
+
+
+def padded_core_shape(spec, shape):
+    return tuple(round_up(n, spec.align) for n in shape)

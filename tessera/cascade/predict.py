@@ -1,0 +1,143 @@
+"""Prediction with a trained cascade: a frame (core + halo), a whole section, and the peak
+memory one frame takes."""
+
+import numpy as np
+from scipy import ndimage
+
+from tessera.cascade.classifiers import CHUNK_ROWS
+from tessera.cascade.features import feature_names
+from tessera.cascade.frame import (
+    ensure_maps,
+    make_frame,
+    mirrored_stack,
+    node_feature_names,
+    node_matrix,
+)
+from tessera.cascade.geometry import (
+    feature_halo,
+    level_sigmas,
+    margins,
+    padded_core_shape,
+    read_reach,
+    receptive_radius,
+)
+from tessera.cascade.spec import node_inputs, node_settings, nodes, spec_from_settings
+from tessera.errors import TesseraInputError
+
+
+def cascade_spec(models):
+    """The spec of a complete set of node models (stages = the last stage present)."""
+    stages = max(s for s, _ in models)
+    spec = next(iter(models.values())).spec
+    spec = spec_from_settings(node_settings(spec), stages=stages)
+    missing = [n for n in nodes(spec) if n not in models]
+    if missing:
+        raise TesseraInputError(f"the cascade lacks the models of nodes {missing}")
+    return spec
+
+
+def predict_frame(models, image, core_shape, *, output_sigma=0.0):
+    """Final probability (float32) of the core of one block (core + ``receptive_radius`` halo).
+
+    This is the block-prediction function: read a block of the working level with a halo of
+    ``receptive_radius(spec, output_sigma=output_sigma)`` pixels (mirrored beyond the volume),
+    and keep the returned core. Block origins must be multiples of ``2**levels`` for results to
+    equal whole-image prediction.
+
+    Parameters
+    ----------
+    output_sigma : float
+        Gaussian σ (px) applied to the final map. Isolated specks and pinholes of pixel-wise
+        classification are mostly noise, and neighbouring pixels of an organelle agree; a light
+        smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
+        depend on it.
+    """
+    spec = cascade_spec(models)
+    frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
+    final = (spec.stages, 0)
+    ensure_maps(frame, final, models, -1)
+    margin = frame.margins[final]
+    x = node_matrix(frame, final, margin)
+    prob = models[final].classifier.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
+    if output_sigma > 0:
+        # the map covers core + margin >= the kernel's reach: every core pixel sees real values
+        prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
+    return prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
+
+
+def predict_section(models, volume, z=None, *, output_sigma=0.0):
+    """Probability map of one whole section (mirrored edges), in one piece.
+
+    `volume` is a 2D section, or a (Z, Y, X) array with `z` the section (needed when the
+    cascade reads neighbouring sections).
+    """
+    spec = cascade_spec(models)
+    halo = receptive_radius(spec, output_sigma=output_sigma)
+    volume = np.asarray(volume)
+    if volume.ndim == 2:
+        volume, z = volume[np.newaxis], 0
+    h, w = volume.shape[1:]
+    image = mirrored_stack(volume, z, spec.neighbours, -halo, h + halo, -halo, w + halo)
+    return predict_frame(models, image, (h, w), output_sigma=output_sigma)
+
+
+# Per-row working memory of a classifier on one chunk of rows beyond the rows themselves: the
+# finite check (1 byte per feature) plus hidden layers or per-tree descent state (float32/int64).
+_CLASSIFIER_ROW_BYTES = 256
+
+
+def _image_channels(spec, level):
+    sigmas = level_sigmas(spec, level)
+    return len(feature_names(sigmas)) + 2 * spec.neighbours * (1 + 2 * len(sigmas))
+
+
+def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
+    """Peak bytes :func:`predict_frame` allocates for one core of `core_shape` (y, x).
+
+    Follows the frame's geometry: the image levels (with neighbouring sections), every level's
+    cached image features over the widest margin its nodes read, every node's map, and the
+    larger of the filter bank's temporaries and the biggest node's feature matrix with its
+    context maps and one classifier chunk. Everything is float32.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> frame_memory_bytes(spec, (64, 64)) > 4 * (64 + 2 * receptive_radius(spec)) ** 2 * len(feature_names((1.0,)))
+    True
+    """
+    halo = receptive_radius(spec, output_sigma=output_sigma)
+    cy, cx = padded_core_shape(spec, core_shape)
+    margin = margins(spec, output_sigma=output_sigma)
+    image = (
+        (2 * spec.neighbours + 1) * (cy + 2 * halo) * (cx + 2 * halo) * 4 * 4 / 3
+    )  # + coarser levels
+    cached = filters = 0
+    for level in range(spec.levels + 1):
+        f = 2**level
+        widest = max([0] + [m for (_, lv), m in margin.items() if lv == level])
+        extra = feature_halo(spec, level)
+        pixels = ((cy + 2 * widest) // f + 2 * extra) * ((cx + 2 * widest) // f + 2 * extra)
+        channels = _image_channels(spec, level)
+        cached += 4 * pixels * channels
+        # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
+        # are concatenated (one more copy of the channels)
+        temporaries = len(level_sigmas(spec, level)) + 8 + (channels if spec.neighbours else 0)
+        filters = max(filters, 4 * pixels * temporaries)
+
+    def rows(node, extra_margin=0):
+        f = 2 ** node[1]
+        return ((cy + 2 * (margin[node] + extra_margin)) // f) * (
+            (cx + 2 * (margin[node] + extra_margin)) // f
+        )
+
+    maps = sum(4 * rows(node) for node in margin)
+    work = 0
+    for node in margin:
+        width = len(node_feature_names(spec, *node))
+        context = sum(
+            4 * rows(node, read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node)
+        )
+        chunk = min(rows(node), CHUNK_ROWS) * (width + _CLASSIFIER_ROW_BYTES)
+        work = max(work, 4 * rows(node) * width + context + chunk)
+    return int(image + cached + maps + max(filters, work))

@@ -1,0 +1,248 @@
+"""The cascade's structure: its settings (:class:`CascadeSpec`) and its graph of nodes.
+
+The cascaded hierarchical model: S stages × L levels of pixel classifiers (Seyedhosseini,
+Sajjadi & Tasdizen, "Image segmentation with cascaded hierarchical models and logistic
+disjunctive normal networks", ICCV 2013; Seyedhosseini & Tasdizen, TPAMI 2016; built on
+auto-context, Tu & Bai, TPAMI 2010). In this implementation, for every stage s = 1..S:
+
+* levels l = 1..L (bottom-up): the working image is block-averaged by 2^l; the level's classifier
+  sees that level's image features plus, as context, the output of level l − 1 pooled down
+  (from l = 2 on) and the previous stage's final output pooled down (from s = 2 on);
+* level 0 (top-down, full resolution): the classifier sees the image features plus the output
+  of every level of this stage brought back to full resolution, and the previous stage's final
+  output;
+* context maps are read at a sparse stencil: the centre plus 8 directions at each radius, in
+  the pixels of the map's own level, so coarse maps give cheap evidence from far away.
+
+With L = 0 a stage is a single full-resolution classifier (plain pixel classification for
+S = 1, auto-context for S > 1). Every (stage, level) pair is one *node*, trained on its own, so
+a workflow can make each node one job and adding a stage trains only the new nodes.
+
+Planning a workflow needs only this module: it imports neither the classifiers' libraries nor
+the filter bank's computation.
+"""
+
+from dataclasses import asdict, dataclass, field
+
+from tessera.cascade.classifiers import KINDS
+from tessera.cascade.features import DEFAULT_SIGMAS, feature_radius
+from tessera.errors import TesseraInputError
+
+# Limits of the integer settings, inclusive (None: no upper limit). The config schema
+# (config/schemas/config.schema.yaml, targets.*.cascade) states the same bounds; a test keeps
+# the two equal.
+LIMITS = {
+    "stages": (1, 8),
+    "levels": (0, 5),
+    "folds": (2, 20),
+    "samples_per_tile": (10, 1_000_000),
+    "neighbours": (0, 4),
+    "seed": (0, None),
+}
+STENCIL_RADIUS_LIMITS = (1, 256)  # each radius, pixels of the map's level
+MAX_SIGMA = 64.0  # largest filter-bank scale (px of the level); scales are > 0
+POOLINGS = ("mean", "max")
+
+
+@dataclass(frozen=True)
+class CascadeSpec:
+    """Everything that defines a cascade's structure and training.
+
+    Parameters
+    ----------
+    stages, levels : int
+        S ≥ 1 and L ≥ 0 (limits in ``LIMITS``).
+    sigmas : tuple of float
+        Filter-bank scales at full resolution (pixels of the working level).
+    coarse_sigmas : tuple of float
+        Scales at levels ≥ 1 (pixels of that level; the level itself supplies the larger scale).
+    stencil_radii : tuple of int
+        Radii of the context stencil, in pixels of each map's level.
+    pooling : {'mean', 'max'}
+        How probability maps are reduced to coarser levels.
+    classifier : str
+        One of ``KINDS``.
+    classifier_options : dict
+        Passed to the classifier.
+    folds : int
+        Folds for out-of-fold context (≥ 2).
+    samples_per_tile : int
+        Training pixels drawn per tile and node, half per class where possible.
+    neighbours : int
+        Sections on each side whose intensity (smoothed, LoG) joins the image features; useful
+        for anisotropic stacks where organelles continue from section to section.
+    seed : int
+        Makes sampling, folds and classifiers deterministic.
+    """
+
+    stages: int = 2
+    levels: int = 2
+    sigmas: tuple = DEFAULT_SIGMAS
+    coarse_sigmas: tuple = (0.7, 1.6, 3.5)
+    stencil_radii: tuple = (1, 2, 4, 8)
+    pooling: str = "mean"
+    classifier: str = "mlp"
+    classifier_options: dict = field(default_factory=dict)
+    folds: int = 3
+    samples_per_tile: int = 4000
+    neighbours: int = 0
+    seed: int = 0
+
+    def __post_init__(self):
+        def fail(msg):
+            raise TesseraInputError(f"cascade settings: {msg}")
+
+        def check_int(name):
+            value = getattr(self, name)
+            low, high = LIMITS[name]
+            if not isinstance(value, int) or value < low or (high is not None and value > high):
+                upper = f" and <= {high}" if high is not None else ""
+                fail(f"{name} must be an integer >= {low}{upper}, got {value!r}")
+
+        check_int("stages")
+        check_int("levels")
+        if self.pooling not in POOLINGS:
+            fail(f"pooling must be 'mean' or 'max', got {self.pooling!r}")
+        if self.classifier not in KINDS:
+            fail(f"classifier must be one of {', '.join(KINDS)}, got {self.classifier!r}")
+        check_int("folds")
+        check_int("samples_per_tile")
+        check_int("neighbours")
+        check_int("seed")
+        radii = tuple(self.stencil_radii)
+        low, high = STENCIL_RADIUS_LIMITS
+        if not radii or any(not isinstance(r, int) or not low <= r <= high for r in radii):
+            fail(
+                f"stencil_radii must be integers >= {low} and <= {high}, got {self.stencil_radii!r}"
+            )
+        object.__setattr__(self, "stencil_radii", radii)
+        object.__setattr__(self, "sigmas", tuple(float(s) for s in self.sigmas))
+        object.__setattr__(self, "coarse_sigmas", tuple(float(s) for s in self.coarse_sigmas))
+        object.__setattr__(self, "classifier_options", dict(self.classifier_options))
+        feature_radius(self.sigmas)  # validates the scales
+        feature_radius(self.coarse_sigmas)
+        for name in ("sigmas", "coarse_sigmas"):
+            if max(getattr(self, name)) > MAX_SIGMA:
+                fail(f"{name} must be at most {MAX_SIGMA:g} px, got {getattr(self, name)!r}")
+
+    def to_dict(self):
+        out = asdict(self)
+        out["sigmas"] = list(self.sigmas)
+        out["coarse_sigmas"] = list(self.coarse_sigmas)
+        out["stencil_radii"] = list(self.stencil_radii)
+        return out
+
+    @classmethod
+    def from_dict(cls, data):
+        data = dict(data)
+        for key in ("sigmas", "coarse_sigmas", "stencil_radii"):
+            if key in data:
+                data[key] = tuple(data[key])
+        try:
+            return cls(**data)
+        except TypeError as exc:
+            raise TesseraInputError(f"cascade settings: {exc}") from None
+
+    @property
+    def align(self):
+        """Block origins and halos are multiples of this (2^L)."""
+        return 2**self.levels
+
+
+def nodes(spec):
+    """All (stage, level) nodes in an order where every node comes after its inputs.
+
+    Examples
+    --------
+    >>> nodes(CascadeSpec(stages=2, levels=2))
+    [(1, 1), (1, 2), (1, 0), (2, 1), (2, 2), (2, 0)]
+    """
+    order = []
+    for s in range(1, spec.stages + 1):
+        order += [(s, level) for level in range(1, spec.levels + 1)]
+        order.append((s, 0))
+    return order
+
+
+def node_inputs(spec, stage, level):
+    """The nodes whose output the node (stage, level) reads as context.
+
+    Examples
+    --------
+    >>> node_inputs(CascadeSpec(stages=2, levels=2), 2, 0)
+    [(2, 1), (2, 2), (1, 0)]
+    """
+    if (stage, level) not in nodes(spec):
+        raise TesseraInputError(
+            f"no node (stage {stage}, level {level}) in a {spec.stages} x {spec.levels} cascade"
+        )
+    inputs = []
+    if level >= 2:
+        inputs.append((stage, level - 1))
+    if level == 0:
+        inputs += [(stage, k) for k in range(1, spec.levels + 1)]
+    if stage >= 2:
+        inputs.append((stage - 1, 0))
+    return inputs
+
+
+def ancestors(spec, node):
+    """`node` and every node it depends on, in training order.
+
+    Examples
+    --------
+    >>> ancestors(CascadeSpec(stages=3, levels=1), (2, 0))
+    [(1, 1), (1, 0), (2, 1), (2, 0)]
+    """
+    needed, todo = set(), [node]
+    while todo:
+        n = todo.pop()
+        if n not in needed:
+            needed.add(n)
+            todo.extend(node_inputs(spec, *n))
+    return [n for n in nodes(spec) if n in needed]
+
+
+def node_settings(settings):
+    """The cascade settings a node depends on: every setting but the number of stages.
+
+    A node does not depend on how many stages follow it, so raising the number of stages keeps
+    the earlier nodes valid. This is what a node's model records (``meta["spec"]``) and what a
+    workflow passes to the job training a node. `settings` is a :class:`CascadeSpec`, or a
+    mapping of settings such as a configuration's ``cascade`` section (returned as given,
+    without ``stages``). :func:`spec_from_settings` is the way back.
+
+    Examples
+    --------
+    >>> settings = node_settings(CascadeSpec(stages=3, levels=1))
+    >>> "stages" in settings, settings["levels"]
+    (False, 1)
+    >>> node_settings({"stages": 2, "levels": 1, "folds": 3})
+    {'levels': 1, 'folds': 3}
+    """
+    out = settings.to_dict() if isinstance(settings, CascadeSpec) else dict(settings)
+    out.pop("stages", None)
+    return out
+
+
+def spec_from_settings(settings, *, stages):
+    """The :class:`CascadeSpec` of a cascade of `stages` stages with these settings.
+
+    `settings` is a mapping such as a configuration's ``cascade`` section or the output of
+    :func:`node_settings` (a model's ``meta["spec"]``); its own ``stages``, if any, is replaced
+    by `stages`: a spec made to train or read node (s, l) ends at stage s.
+
+    Raises
+    ------
+    TesseraInputError
+        Unknown or invalid settings.
+
+    Examples
+    --------
+    >>> spec = spec_from_settings({"stages": 3, "levels": 1}, stages=2)
+    >>> spec.stages, spec.levels
+    (2, 1)
+    >>> spec_from_settings(node_settings(spec), stages=2) == spec
+    True
+    """
+    return CascadeSpec.from_dict({**settings, "stages": stages})

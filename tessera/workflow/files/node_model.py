@@ -1,0 +1,24 @@
+"""A node's model file, ``results/study/<target>/cascade/stage<s>_level<l>.npz``: its one writer
+(rule train_node) and its one reader (train_node for the upstream nodes, predict_tiles and the
+prediction of whole volumes)."""
+
+from tessera.cascade.api import load_node, save_node
+
+# The rule that writes model files, named in every message about one that cannot be used.
+REBUILD_HINT = (
+    "rerun rule train_node to rebuild it (delete the file, or snakemake --forcerun train_node)"
+)
+
+
+def write_node(model, path):
+    """Write a trained node (atomically; see :func:`tessera.cascade.api.save_node`)."""
+    save_node(model, path)
+
+
+def read_node(path, *, target=None, spec=None, stage=None, level=None):
+    """Read a node written by :func:`write_node`, refusing one made for something else.
+
+    Messages about a damaged, altered or outdated file say which rule rebuilds it (see
+    :func:`tessera.cascade.api.load_node` for the checks).
+    """
+    return load_node(path, target=target, spec=spec, stage=stage, level=level, hint=REBUILD_HINT)
