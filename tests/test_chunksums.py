@@ -12,10 +12,10 @@ import tifffile
 import zarr
 
 from tessera.errors import TesseraInputError
-from tessera.ingest import ingest_stack
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import MANIFEST, checked_store, record_checksums, store_rule
-from tessera.pyramid import build_pyramid
+from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.pyramid import build_pyramid
 
 SPACING = (40.0, 8.0, 8.0)
 
