@@ -28,7 +28,7 @@ __all__ = ["METRIC_COLUMNS", "section_metrics", "measure_sections"]
 # memory of `section_metrics` (about 4 arrays of this size) whatever the section size.
 _STRIP_PIXELS = 1 << 22
 
-
+#: The columns of the table :func:`measure_sections` returns, in order.
 METRIC_COLUMNS = ("z", "mean", "std", "sharpness", "flat_fraction", "shift_y", "shift_x", "shift")
 
 
