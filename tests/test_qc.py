@@ -104,9 +104,8 @@ def test_section_metrics_match_reference(dtype, strip_pixels, monkeypatch):
 @pytest.mark.parametrize("sigma", [1.0, 2.5])
 def test_smoothed_sharpness_matches_gaussian_laplace(sigma, strip_pixels, monkeypatch):
     if strip_pixels is not None:
-        monkeypatch.setattr(
-            qc_metrics, "_STRIP_PIXELS", strip_pixels
-        )  # halo rows make strips exact
+        # halo rows make strips exact
+        monkeypatch.setattr(qc_metrics, "_STRIP_PIXELS", strip_pixels)
     section = textured((70, 53), seed=8, level=120)
     m = section_metrics(section, sharpness_sigma=sigma)
     # reference: scipy.ndimage.gaussian_laplace (Laplacian of Gaussian, mode 'reflect')
