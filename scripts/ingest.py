@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.ingest import ingest_stack
+from tessera.workflow.jobs.ingest import ingest_stack
 from tessera.workflow.runner import run_job
 
 run_job(

@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.pyramid import build_pyramid
+from tessera.workflow.jobs.pyramid import build_pyramid
 from tessera.workflow.runner import run_job
 
 run_job(

@@ -10,13 +10,9 @@ import shutil
 from pathlib import Path
 
 import numpy as np
-import zarr
 
 from tessera.block_reduce import block_mean
 from tessera.errors import TesseraInputError
-from tessera.io.atomic import atomic_path
-from tessera.io.omezarr import AXES, multiscale_attrs, open_image
-from tessera.io.store_checksums import record_checksums
 
 
 def _round_to(values, dtype):
@@ -48,12 +44,22 @@ def downsample_level(source, target, *, factors, band_rows=None):
     Parameters
     ----------
     source, target : zarr.Array
-        3D z, y, x arrays; ``target.shape == ceil(source.shape / factors)``.
+        3D z, y, x arrays; ``target.shape == ceil(source.shape / factors)``. Block means are
+        rounded to the nearest value of an integer `target` dtype.
     factors : (int, int, int)
         Reduction per axis.
     band_rows : int, optional
         Output rows per band; defaults to the target's chunk height so every chunk is written
         once.
+
+    Examples
+    --------
+    >>> source = np.arange(16, dtype=np.uint8).reshape(1, 4, 4) * 2
+    >>> target = np.zeros((1, 2, 2), dtype=np.uint8)  # numpy arrays work too, given band_rows
+    >>> downsample_level(source, target, factors=(1, 2, 2), band_rows=1)
+    >>> target[0]
+    array([[ 5,  9],
+           [21, 25]], dtype=uint8)
     """
     fz, fy, fx = factors
     band_rows = band_rows or target.chunks[1]
@@ -63,60 +69,3 @@ def downsample_level(source, target, *, factors, band_rows=None):
             y0, y1 = oy * fy, min((oy + band_rows) * fy, source.shape[1])
             block = block_mean(source[z0:z1, y0:y1, :], (z1 - z0, fy, fx))
             target[oz : oz + 1, oy : oy + block.shape[1], :] = _round_to(block, target.dtype)
-
-
-def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
-    """Make a multiscale OME-Zarr image from a single-level one.
-
-    Parameters
-    ----------
-    image_path : str or Path
-        Single-level OME-Zarr image (from ``ingest_stack``); not modified.
-    out_path : str or Path
-        Multiscale OME-Zarr image to create (atomically).
-    levels : int, optional
-        Number of reduced levels beyond level 0 (each halves y and x).
-    downsample_z : bool, optional
-        Halve z too at each level (only for near-isotropic data).
-
-    Returns
-    -------
-    list of tuple
-        The reduction factors (z, y, x) of every level, level 0 first.
-    """
-    if not isinstance(levels, int) or levels < 0:
-        raise TesseraInputError(f"levels must be an integer >= 0, got {levels!r}")
-    group, info = open_image(image_path)
-    level0 = info["levels"][0]
-    step = (2 if downsample_z else 1, 2, 2)
-    factors = [(1, 1, 1)]
-    for _ in range(levels):
-        factors.append(tuple(f * s for f, s in zip(factors[-1], step)))
-    name = group.attrs["ome"]["multiscales"][0].get("name", "image")
-    with atomic_path(out_path) as tmp:
-        out = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
-        extra = dict(info["extra"])
-        extra["pyramid"] = {"factors": [list(f) for f in factors], "method": "block mean"}
-        out.attrs.update(
-            {
-                "ome": multiscale_attrs(name=name, spacing=info["spacing"], factors=factors),
-                "tessera": extra,
-            }
-        )
-        link_tree(Path(image_path) / "0", tmp / "0")
-        # read level 0 through the ingest store (the same files), so every chunk is verified
-        previous = level0
-        for level in range(1, levels + 1):
-            shape = tuple(-(-s // k) for s, k in zip(previous.shape, step))
-            chunks = tuple(min(c, s) for c, s in zip(level0.chunks, shape))
-            current = out.create_array(
-                name=str(level),
-                shape=shape,
-                chunks=chunks,
-                dtype=level0.dtype,
-                dimension_names=AXES,
-            )
-            downsample_level(previous, current, factors=step)
-            previous = current
-        record_checksums(tmp, linked={"0": image_path})  # level 0 keeps the ingest's records
-    return factors

@@ -16,11 +16,11 @@ from zarr.core.buffer import default_buffer_prototype
 from zarr.core.sync import sync
 
 from tessera.errors import TesseraInputError
-from tessera.ingest import ingest_stack
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.rebuild_hints import generic_rebuild_hint, set_rebuild_hints
 from tessera.io.store_checksums import MANIFEST, checked_store, record_checksums
-from tessera.pyramid import build_pyramid
+from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.pyramid import build_pyramid
 from tessera.workflow.paths import STORES, store_rule  # importing it registers the rebuild hints
 
 SPACING = (40.0, 8.0, 8.0)

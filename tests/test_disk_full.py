@@ -35,8 +35,8 @@ from tessera.cascade.api import (
     save_node,
 )
 from tessera.errors import TesseraResourceError
-from tessera.ingest import ingest_stack
 from tessera.io.atomic import write_table, write_text
+from tessera.workflow.jobs.ingest import ingest_stack
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -233,7 +233,7 @@ _ON_TMPFS = textwrap.dedent("""
     from tessera.io.atomic import write_table
     from tessera.cascade.api import save_node
     from tessera.errors import TesseraResourceError
-    from tessera.ingest import ingest_stack
+    from tessera.workflow.jobs.ingest import ingest_stack
 
     disk, sources = Path(sys.argv[1]), Path(sys.argv[3])
     outs = {"table": disk / "t" / "objects.tsv", "store": disk / "s" / "raw.ome.zarr", "model": disk / "m" / "node.npz"}

@@ -12,8 +12,10 @@ from ome_zarr_models.v05 import Image
 from PIL import Image as PILImage
 
 from tessera.errors import TesseraInputError
-from tessera.ingest import estimate_intensity_range, ingest_stack, open_stack, to_uint8
+from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
+from tessera.io.stacks import open_stack
+from tessera.workflow.jobs.ingest import ingest_stack
 
 SPACING = (40.0, 8.0, 8.0)
 

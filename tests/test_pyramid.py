@@ -11,9 +11,10 @@ from ome_zarr_models.v05 import Image
 from skimage.transform import downscale_local_mean
 
 from tessera.errors import TesseraInputError
-from tessera.ingest import ingest_stack
 from tessera.io.omezarr import open_image, working_level
-from tessera.pyramid import block_mean, build_pyramid, downsample_level
+from tessera.pyramid import block_mean, downsample_level
+from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.pyramid import build_pyramid
 
 
 @pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
@@ -21,7 +22,7 @@ from tessera.pyramid import block_mean, build_pyramid, downsample_level
 def test_block_mean_equals_skimage_downscale_local_mean(dtype, factors):
     # Reference library: skimage.transform.downscale_local_mean (exact where shapes divide).
     rng = np.random.default_rng(1)
-    shape = tuple(f * n for f, n in zip(factors, (3, 5, 4)))
+    shape = tuple(f * n for f, n in zip(factors, (3, 5, 4), strict=False))
     image = (rng.random(shape) * 250).astype(dtype)
     expected = downscale_local_mean(image, factors)
     result = block_mean(image, factors)

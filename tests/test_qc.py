@@ -1,4 +1,4 @@
-"""Tests for per-section quality control (tessera.qc)."""
+"""Tests for per-section quality control (tessera.section_qc) and its table file."""
 
 import numpy as np
 import pandas as pd
@@ -8,8 +8,18 @@ from scipy import ndimage
 from skimage.registration import phase_cross_correlation
 from skimage.util import view_as_blocks
 
-from tessera import qc
 from tessera.errors import TesseraInputError
+from tessera.section_qc import metrics as qc_metrics
+from tessera.section_qc.flags import flag_sections
+from tessera.section_qc.metrics import METRIC_COLUMNS, measure_sections, section_metrics
+from tessera.section_qc.plot import plot_sections
+from tessera.section_qc.shift import phase_shift
+from tessera.workflow.files.qc_table import (
+    count_sections,
+    excluded_sections,
+    read_qc_table,
+    write_qc_table,
+)
 
 
 def textured(shape, seed, *, sigma=1.0, level=100.0, contrast=25.0):
@@ -27,7 +37,7 @@ def textured(shape, seed, *, sigma=1.0, level=100.0, contrast=25.0):
 def test_phase_shift_recovers_circular_shift(shift):
     ref = textured((64, 80), seed=1)
     moving = np.roll(ref, shift, axis=(0, 1))
-    got = qc.phase_shift(ref, moving)
+    got = phase_shift(ref, moving)
     # np.roll moves content by +shift, so registering it back needs -shift
     assert got == (-shift[0], -shift[1])
     # reference library: skimage.registration.phase_cross_correlation, same sign convention
@@ -44,7 +54,7 @@ def test_phase_shift_recovers_cropped_shift(shift, window):
     dy, dx = shift
     moving = big[y0 + dy : y0 + dy + 80, x0 + dx : x0 + dx + 80]
     # moving[y, x] == ref[y + dy, x + dx]: moving is ref moved by (-dy, -dx)
-    got = qc.phase_shift(ref, moving, window=window)
+    got = phase_shift(ref, moving, window=window)
     assert got == (dy, dx)
     # reference library on the same pair (skimage does not taper, compare the plain form)
     if not window:
@@ -57,7 +67,7 @@ def test_phase_shift_subpixel():
     true = (1.3, -2.6)
     # scipy.ndimage.fourier_shift moves content by +true (periodic), so expect -true
     moving = np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(ref), true)).real
-    got = qc.phase_shift(ref, moving, upsample=10)
+    got = phase_shift(ref, moving, upsample=10)
     np.testing.assert_allclose(got, (-true[0], -true[1]), atol=0.1)
     # reference library with the same resolution
     expected, _, _ = phase_cross_correlation(ref, moving, upsample_factor=10)
@@ -67,7 +77,7 @@ def test_phase_shift_subpixel():
 def test_phase_shift_constant_image_gives_no_shift():
     # a section with no signal carries no evidence of displacement (definition in docstring)
     ref = textured((32, 32), seed=4)
-    assert qc.phase_shift(ref, np.zeros((32, 32)), window=True) == (0.0, 0.0)
+    assert phase_shift(ref, np.zeros((32, 32)), window=True) == (0.0, 0.0)
 
 
 # --------------------------------------------------------------------------------------------
@@ -79,9 +89,9 @@ def test_phase_shift_constant_image_gives_no_shift():
 def test_section_metrics_match_reference(dtype, strip_pixels, monkeypatch):
     if strip_pixels is not None:
         # force many strips: the result must not depend on the strip size
-        monkeypatch.setattr(qc, "_STRIP_PIXELS", strip_pixels)
+        monkeypatch.setattr(qc_metrics, "_STRIP_PIXELS", strip_pixels)
     section = np.clip(np.rint(textured((70, 53), seed=5, level=120)), 0, 255).astype(dtype)
-    m = qc.section_metrics(section)
+    m = section_metrics(section)
     ref = section.astype(float)
     # reference: numpy mean / population std
     assert m["mean"] == pytest.approx(np.mean(ref), rel=1e-12)
@@ -94,9 +104,10 @@ def test_section_metrics_match_reference(dtype, strip_pixels, monkeypatch):
 @pytest.mark.parametrize("sigma", [1.0, 2.5])
 def test_smoothed_sharpness_matches_gaussian_laplace(sigma, strip_pixels, monkeypatch):
     if strip_pixels is not None:
-        monkeypatch.setattr(qc, "_STRIP_PIXELS", strip_pixels)  # halo rows make strips exact
+        # halo rows make strips exact
+        monkeypatch.setattr(qc_metrics, "_STRIP_PIXELS", strip_pixels)
     section = textured((70, 53), seed=8, level=120)
-    m = qc.section_metrics(section, sharpness_sigma=sigma)
+    m = section_metrics(section, sharpness_sigma=sigma)
     # reference: scipy.ndimage.gaussian_laplace (Laplacian of Gaussian, mode 'reflect')
     assert m["sharpness"] == pytest.approx(
         np.var(ndimage.gaussian_laplace(section, sigma)), rel=1e-10
@@ -110,8 +121,8 @@ def test_smoothing_reveals_defocus_under_detector_noise():
     clean = textured((128, 128), seed=9, sigma=2.0, level=120, contrast=30)
     sharp = clean + rng.normal(0, 12, clean.shape)
     defocused = ndimage.gaussian_filter(clean, 4.0) + rng.normal(0, 12, clean.shape)
-    plain = [qc.section_metrics(x)["sharpness"] for x in (sharp, defocused)]
-    smoothed = [qc.section_metrics(x, sharpness_sigma=1.5)["sharpness"] for x in (sharp, defocused)]
+    plain = [section_metrics(x)["sharpness"] for x in (sharp, defocused)]
+    smoothed = [section_metrics(x, sharpness_sigma=1.5)["sharpness"] for x in (sharp, defocused)]
     assert plain[1] > 0.5 * plain[0]
     assert smoothed[1] < 0.25 * smoothed[0]
 
@@ -130,29 +141,29 @@ def test_small_relative_changes_are_not_flagged_in_a_uniform_stack():
             "shift": 0.0,
         }
     )
-    assert not qc.flag_sections(t)["excluded"].any()
-    strict = qc.flag_sections(t, min_sharpness_drop=0.0, min_intensity_change=0.0)
+    assert not flag_sections(t)["excluded"].any()
+    strict = flag_sections(t, min_sharpness_drop=0.0, min_intensity_change=0.0)
     assert strict["reason"].tolist()[4] == "blurred" and strict["reason"].tolist()[7] == "intensity"
 
 
 def test_sharpness_drops_for_blurred_section():
     # variance of the Laplacian, a common focus measure (common practice): blur lowers it
     section = textured((96, 96), seed=6)
-    sharp = qc.section_metrics(section)["sharpness"]
-    blurred = qc.section_metrics(ndimage.gaussian_filter(section, 2.0))["sharpness"]
+    sharp = section_metrics(section)["sharpness"]
+    blurred = section_metrics(ndimage.gaussian_filter(section, 2.0))["sharpness"]
     assert blurred < 0.05 * sharp
 
 
 def test_flat_fraction_constant_and_half_blank():
     # a constant section is flat everywhere (std 0 in every tile)
-    assert qc.section_metrics(np.full((64, 64), 200, np.uint8))["flat_fraction"] == 1.0
+    assert section_metrics(np.full((64, 64), 200, np.uint8))["flat_fraction"] == 1.0
     section = np.rint(textured((64, 64), seed=7))
     section[:, 32:] = 0
-    assert qc.section_metrics(section, flat_block=16)["flat_fraction"] == pytest.approx(0.5)
+    assert section_metrics(section, flat_block=16)["flat_fraction"] == pytest.approx(0.5)
     # torn area not aligned with the tiles: within one tile column of the true fraction
     section = np.rint(textured((100, 100), seed=8))
     section[:, 60:] = 255
-    frac = qc.section_metrics(section, flat_block=16)["flat_fraction"]
+    frac = section_metrics(section, flat_block=16)["flat_fraction"]
     assert abs(frac - 0.4) <= 16 / 100
 
 
@@ -162,7 +173,7 @@ def test_flat_fraction_matches_block_reference():
     section[20:70, 10:90] = 50.0
     blocks = view_as_blocks(section, (16, 16))
     expected = np.mean(blocks.std(axis=(2, 3)) < 2.0)
-    got = qc.section_metrics(section, flat_block=16, flat_std=2.0)["flat_fraction"]
+    got = section_metrics(section, flat_block=16, flat_std=2.0)["flat_fraction"]
     assert got == pytest.approx(expected)
     assert 0 < expected < 1  # the check covers both flat and textured tiles
 
@@ -207,9 +218,9 @@ def make_stack(*, drift=1.5, defects=True, displaced_only=False, seed=11):
 @pytest.mark.parametrize("displaced_only", [False, True])
 def test_flags_exactly_the_defective_sections(displaced_only):
     vol = make_stack(displaced_only=displaced_only)
-    table = qc.flag_sections(qc.measure_sections(vol, shift_crop=64))
+    table = flag_sections(measure_sections(vol, shift_crop=64))
     expected = {BLANK: "flat", TORN: "flat", BLUR: "blurred", SHIFT: "shift", BRIGHT: "intensity"}
-    reasons = dict(zip(table["z"], table["reason"]))
+    reasons = dict(zip(table["z"], table["reason"], strict=True))
     assert {z: r for z, r in reasons.items() if r} == expected
     assert table["excluded"].tolist() == [z in expected for z in range(N)]
     for name in ("flat", "blurred", "intensity", "shift"):
@@ -223,7 +234,7 @@ def test_flags_exactly_the_defective_sections(displaced_only):
 
 def test_drift_alone_is_not_flagged():
     # a steady drift of 3 grey levels per section, 87 over the stack, and no defects
-    table = qc.flag_sections(qc.measure_sections(make_stack(drift=3.0, defects=False)))
+    table = flag_sections(measure_sections(make_stack(drift=3.0, defects=False)))
     assert not table[["flag_flat", "flag_blurred", "flag_intensity", "flag_shift"]].any().any()
     assert (table["reason"] == "").all()
     assert not table["excluded"].any()
@@ -232,8 +243,8 @@ def test_drift_alone_is_not_flagged():
 
 
 def test_flags_kept_but_not_excluded_on_request():
-    table = qc.measure_sections(make_stack(), shift_crop=64)
-    kept = qc.flag_sections(table, exclude_flagged=False)
+    table = measure_sections(make_stack(), shift_crop=64)
+    kept = flag_sections(table, exclude_flagged=False)
     assert (kept["reason"] != "").sum() == 5
     assert not kept["excluded"].any()
 
@@ -244,8 +255,8 @@ def test_measure_sections_zarr_equals_numpy(tmp_path):
         store=tmp_path / "a.zarr", shape=vol.shape, chunks=(1, 32, 32), dtype="uint8"
     )
     arr[:] = vol
-    from_zarr = qc.measure_sections(arr, shift_crop=64)
-    from_numpy = qc.measure_sections(vol, shift_crop=64)
+    from_zarr = measure_sections(arr, shift_crop=64)
+    from_numpy = measure_sections(vol, shift_crop=64)
     pd.testing.assert_frame_equal(from_zarr, from_numpy)
     assert list(from_numpy.columns) == [
         "z",
@@ -276,9 +287,9 @@ class _OneSectionOnly:
 def test_measure_sections_reads_one_section_at_a_time():
     vol = make_stack(defects=False)[:6]
     proxy = _OneSectionOnly(vol)
-    table = qc.measure_sections(proxy, shift_crop=32)
+    table = measure_sections(proxy, shift_crop=32)
     assert proxy.reads == list(range(6))
-    pd.testing.assert_frame_equal(table, qc.measure_sections(vol, shift_crop=32))
+    pd.testing.assert_frame_equal(table, measure_sections(vol, shift_crop=32))
 
 
 # --------------------------------------------------------------------------------------------
@@ -286,38 +297,38 @@ def test_measure_sections_reads_one_section_at_a_time():
 
 
 def _table():
-    return qc.measure_sections(make_stack(defects=False)[:5], shift_crop=32)
+    return measure_sections(make_stack(defects=False)[:5], shift_crop=32)
 
 
 @pytest.mark.parametrize(
     "call, name",
     [
-        (lambda: qc.section_metrics(np.zeros((4, 4, 4))), "section"),
-        (lambda: qc.section_metrics(np.zeros((0, 5))), "section"),
-        (lambda: qc.section_metrics(np.zeros((5, 5), bool)), "section"),
-        (lambda: qc.section_metrics(np.array([["a", "b"]])), "section"),
-        (lambda: qc.section_metrics(np.full((5, 5), np.nan)), "section"),
-        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_block=1), "flat_block"),
-        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_block=4.5), "flat_block"),
-        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_std=0), "flat_std"),
-        (lambda: qc.section_metrics(np.zeros((8, 8)), flat_std=float("inf")), "flat_std"),
-        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
-        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), upsample=0), "upsample"),
-        (lambda: qc.phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), window=1), "window"),
-        (lambda: qc.measure_sections(np.zeros((8, 8))), "volume"),
-        (lambda: qc.measure_sections(np.zeros((0, 8, 8))), "volume"),
-        (lambda: qc.measure_sections([[[1]]]), "volume"),
-        (lambda: qc.measure_sections(np.zeros((2, 8, 8)), shift_crop=4), "shift_crop"),
-        (lambda: qc.flag_sections({"z": [0]}), "table"),
-        (lambda: qc.flag_sections(_table().drop(columns="sharpness")), "sharpness"),
-        (lambda: qc.flag_sections(_table(), max_flat_fraction=1.5), "max_flat_fraction"),
-        (lambda: qc.flag_sections(_table(), sharpness_z=-1), "sharpness_z"),
-        (lambda: qc.flag_sections(_table(), intensity_z=0), "intensity_z"),
-        (lambda: qc.flag_sections(_table(), max_shift_px=-2), "max_shift_px"),
-        (lambda: qc.flag_sections(_table(), intensity_neighbours=1), "intensity_neighbours"),
-        (lambda: qc.flag_sections(_table(), exclude_flagged="yes"), "exclude_flagged"),
-        (lambda: qc.flag_sections(_table().iloc[::-1]), "increasing"),
-        (lambda: qc.plot_sections(_table().drop(columns="shift"), "x.png"), "shift"),
+        (lambda: section_metrics(np.zeros((4, 4, 4))), "section"),
+        (lambda: section_metrics(np.zeros((0, 5))), "section"),
+        (lambda: section_metrics(np.zeros((5, 5), bool)), "section"),
+        (lambda: section_metrics(np.array([["a", "b"]])), "section"),
+        (lambda: section_metrics(np.full((5, 5), np.nan)), "section"),
+        (lambda: section_metrics(np.zeros((8, 8)), flat_block=1), "flat_block"),
+        (lambda: section_metrics(np.zeros((8, 8)), flat_block=4.5), "flat_block"),
+        (lambda: section_metrics(np.zeros((8, 8)), flat_std=0), "flat_std"),
+        (lambda: section_metrics(np.zeros((8, 8)), flat_std=float("inf")), "flat_std"),
+        (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
+        (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), upsample=0), "upsample"),
+        (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), window=1), "window"),
+        (lambda: measure_sections(np.zeros((8, 8))), "volume"),
+        (lambda: measure_sections(np.zeros((0, 8, 8))), "volume"),
+        (lambda: measure_sections([[[1]]]), "volume"),
+        (lambda: measure_sections(np.zeros((2, 8, 8)), shift_crop=4), "shift_crop"),
+        (lambda: flag_sections({"z": [0]}), "table"),
+        (lambda: flag_sections(_table().drop(columns="sharpness")), "sharpness"),
+        (lambda: flag_sections(_table(), max_flat_fraction=1.5), "max_flat_fraction"),
+        (lambda: flag_sections(_table(), sharpness_z=-1), "sharpness_z"),
+        (lambda: flag_sections(_table(), intensity_z=0), "intensity_z"),
+        (lambda: flag_sections(_table(), max_shift_px=-2), "max_shift_px"),
+        (lambda: flag_sections(_table(), intensity_neighbours=1), "intensity_neighbours"),
+        (lambda: flag_sections(_table(), exclude_flagged="yes"), "exclude_flagged"),
+        (lambda: flag_sections(_table().iloc[::-1]), "increasing"),
+        (lambda: plot_sections(_table().drop(columns="shift"), "x.png"), "shift"),
     ],
 )
 def test_bad_input_raises(call, name):
@@ -330,24 +341,50 @@ def test_bad_input_raises(call, name):
 
 
 def test_plot_sections_writes_png(tmp_path):
-    table = qc.flag_sections(qc.measure_sections(make_stack(), shift_crop=64))
+    table = flag_sections(measure_sections(make_stack(), shift_crop=64))
     path = tmp_path / "sections.png"
-    qc.plot_sections(table, path, title="synthetic stack")
+    plot_sections(table, path, title="synthetic stack")
     data = path.read_bytes()
     # PNG file signature (PNG specification, ISO/IEC 15948, section 5.2)
     assert data[:8] == b"\x89PNG\r\n\x1a\n"
     assert len(data) > 1000
     # unflagged tables plot too
-    qc.plot_sections(table[list(qc.METRIC_COLUMNS)], tmp_path / "plain.png")
+    plot_sections(table[list(METRIC_COLUMNS)], tmp_path / "plain.png")
     assert (tmp_path / "plain.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
 def test_write_sections_round_trip(tmp_path):
-    table = qc.flag_sections(qc.measure_sections(make_stack(), shift_crop=64))
+    table = flag_sections(measure_sections(make_stack(), shift_crop=64))
     path = tmp_path / "sections.tsv"
-    qc.write_sections(table, path)
+    write_qc_table(table, path)
     back = pd.read_csv(path, sep="\t", keep_default_na=False)  # pandas reader as reference
     assert list(back.columns) == list(table.columns)
     np.testing.assert_allclose(back["sharpness"], table["sharpness"], rtol=1e-5)
     assert back["reason"].tolist() == table["reason"].tolist()
     assert back["excluded"].tolist() == table["excluded"].tolist()
+
+
+def test_qc_table_readers_agree_with_the_written_table(tmp_path):
+    table = flag_sections(measure_sections(make_stack(), shift_crop=64))
+    path = tmp_path / "sections.tsv"
+    write_qc_table(table, path)
+    back = read_qc_table(path)
+    # reference: the in-memory table the file was written from
+    assert list(back.columns) == list(table.columns)
+    assert back["excluded"].tolist() == table["excluded"].tolist()
+    assert back["reason"].tolist() == table["reason"].tolist()
+    excluded_z = [int(z) for z in table["z"][table["excluded"]]]
+    assert excluded_sections(path) == excluded_z
+    assert excluded_sections(path, z_factor=2) == sorted({z // 2 for z in excluded_z})
+    assert count_sections([path, path]) == {"sections": 2 * N, "excluded": 2 * len(excluded_z)}
+
+
+def test_qc_table_without_excluded_column_names_file_and_column(tmp_path):
+    path = tmp_path / "sections.tsv"
+    path.write_text("z\tmean\n0\t1.5\n")
+    with pytest.raises(TesseraInputError) as error:
+        read_qc_table(path)
+    assert str(error.value) == (
+        f"{path}: missing column(s) ['excluded']; expected a section QC table with columns z and "
+        "excluded"
+    )

@@ -1,0 +1,132 @@
+"""The ingest job: one dataset's stack -> a single-level OME-Zarr 0.5 image of uint8 sections.
+
+The stack is read one section at a time (:mod:`tessera.io.stacks`); nothing here holds more than
+about 32 MiB of sections in memory. Data other than 8-bit are mapped to uint8
+(:mod:`tessera.intensity`), and the mapping and the source are recorded in the image's metadata.
+The voxel size comes from the datasets sheet where given, else from the file header.
+"""
+
+import numpy as np
+import zarr
+
+from tessera.errors import TesseraInputError
+from tessera.intensity import choose_mapping, to_uint8
+from tessera.io.atomic import atomic_path
+from tessera.io.omezarr import AXES, multiscale_attrs
+from tessera.io.stacks import open_stack
+from tessera.io.store_checksums import record_checksums
+
+
+def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
+    """Voxel size per axis: the sheet's value where given, else the file header's.
+
+    Parameters
+    ----------
+    sheet_spacing : sequence of 3 (float or None)
+        From the datasets sheet, z, y, x in nm; None where left blank.
+    header_spacing : sequence of 3 float or None
+        From the file header, if the format carries one.
+
+    Examples
+    --------
+    >>> resolve_spacing((50.0, None, None), (45.0, 4.6, 4.6))
+    (50.0, 4.6, 4.6)
+    """
+    out = []
+    for axis, given, fallback in zip(
+        "zyx", sheet_spacing, header_spacing or (None,) * 3, strict=False
+    ):
+        value = given if given is not None else fallback
+        if value is None:
+            raise TesseraInputError(
+                f"voxel size along {axis} is blank in the sheet and the file header has none; "
+                f"fill voxel_{axis}_nm (nm, > 0)",
+                source=source,
+            )
+        if not value > 0:
+            raise TesseraInputError(
+                f"voxel size along {axis} must be > 0 nm, got {value}", source=source
+            )
+        out.append(float(value))
+    return tuple(out)
+
+
+def ingest_stack(
+    source_path,
+    out_path,
+    *,
+    fmt,
+    spacing=(None, None, None),
+    name="raw",
+    chunks=(1, 512, 512),
+    percentiles=(0.1, 99.9),
+):
+    """Convert an EM stack into a single-level OME-Zarr 0.5 image of uint8 sections.
+
+    Parameters
+    ----------
+    source_path : str or Path
+        The stack (see :mod:`tessera.io.stacks` for formats).
+    out_path : str or Path
+        The OME-Zarr store to create; written under a temporary name and renamed.
+    fmt : str
+        One of :data:`tessera.io.stacks.FORMATS`.
+    spacing : sequence of 3 (float or None), optional
+        Voxel size z, y, x in nm; None takes the value from the file header.
+    name : str, optional
+        Image name stored in the metadata.
+    chunks : sequence of 3 int, optional
+        Zarr chunk shape z, y, x (clipped to the image).
+    percentiles : pair of float, optional
+        Percentiles (in percent) mapped to 0 and 255 for data that are not uint8.
+
+    Returns
+    -------
+    dict
+        Summary: shape, spacing, source dtype and the intensity mapping used (None for uint8).
+    """
+    source = open_stack(source_path, fmt)
+    try:
+        spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
+        lo_p, hi_p = percentiles
+        if not 0 <= lo_p < hi_p <= 100:
+            raise TesseraInputError(
+                f"percentiles must satisfy 0 <= low < high <= 100, got {percentiles}"
+            )
+        mapping = choose_mapping(source, percentiles=(lo_p, hi_p))
+        chunks = tuple(int(min(c, s)) for c, s in zip(chunks, source.shape, strict=False))
+        extra = {"source": {"path": str(source_path), "format": fmt}, "intensity_mapping": mapping}
+        with atomic_path(out_path) as tmp:
+            group = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
+            group.attrs.update(
+                {
+                    "ome": multiscale_attrs(name=name, spacing=spacing, factors=[(1, 1, 1)]),
+                    "tessera": extra,
+                }
+            )
+            array = group.create_array(
+                name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES
+            )
+            _copy_sections(source, array, chunks[0], mapping)
+            record_checksums(tmp)
+    finally:
+        source.close()
+    return {"shape": list(source.shape), "spacing": list(spacing), "intensity_mapping": mapping}
+
+
+def _copy_sections(source, array, chunk_z, mapping, *, buffer_bytes=32 * 2**20):
+    # Write whole chunk-rows of sections, several at once when they are small (zarr writes the
+    # chunks of one call concurrently), but never buffer more than about `buffer_bytes`.
+    z_count = source.shape[0]
+    section_bytes = source.shape[1] * source.shape[2]
+    slab_z = chunk_z * max(1, buffer_bytes // (chunk_z * section_bytes))
+    for z0 in range(0, z_count, slab_z):
+        z1 = min(z0 + slab_z, z_count)
+        slab = np.empty((z1 - z0, *source.shape[1:]), dtype=np.uint8)
+        for i, z in enumerate(range(z0, z1)):
+            section = source.read(z)
+            if mapping is None or mapping["method"] == "exact":
+                slab[i] = section
+            else:
+                slab[i] = to_uint8(section, mapping["low"], mapping["high"])
+        array[z0:z1] = slab
