@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from tessera.errors import TesseraInputError
-from tessera.io.plain_files import read_text_table
+from tessera.io.text_tables import read_text_table
 from tessera.tiles.checks import TILE_ID, as_int, is_blank, safe_tile_id
 
 __all__ = ["read_points"]

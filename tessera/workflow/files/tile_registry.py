@@ -17,7 +17,8 @@ from PIL import Image
 
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
-from tessera.io.plain_files import read_image, read_text_table
+from tessera.io.image_files import read_image
+from tessera.io.text_tables import read_text_table
 from tessera.label_values import BACKGROUND, IGNORE, TARGET
 from tessera.tiles.registry import (
     check_label_images,

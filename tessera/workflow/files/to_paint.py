@@ -18,7 +18,7 @@ from PIL import Image
 
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
-from tessera.io.plain_files import read_image
+from tessera.io.image_files import read_image
 from tessera.tiles.checks import as_int
 from tessera.tiles.painting import contrast_preview, painted_to_labels, tiles_around_points
 from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry

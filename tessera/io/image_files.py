@@ -1,43 +1,13 @@
-"""Plain files people edit by hand: tab-separated sheets read as text, PNG and TIFF images read
-as stored. Cells and pixels are data only; nothing in them is ever evaluated or unpickled."""
+"""PNG and TIFF images read as stored (painted masks, label tiles): pixels are data only; a file
+is decoded by its image signature, never unpickled."""
 
 import numpy as np
-import pandas as pd
 import tifffile
 from PIL import Image
 
 from tessera.errors import TesseraInputError
 
-__all__ = ["read_image", "read_text_table"]
-
-
-def read_text_table(path):
-    """A tab-separated file with a header line, every cell as text (blank cells as ``""``).
-
-    Parameters
-    ----------
-    path : Path
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns as in the header, every value a str.
-
-    Examples
-    --------
-    >>> import tempfile
-    >>> from pathlib import Path
-    >>> f = Path(tempfile.mkdtemp()) / "sheet.tsv"
-    >>> _ = f.write_text("z\\tnote\\n007\\t\\n")
-    >>> read_text_table(f).to_dict("records")
-    [{'z': '007', 'note': ''}]
-    """
-    if not path.is_file():
-        raise TesseraInputError("file not found", source=path)
-    try:
-        return pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise TesseraInputError(f"not a readable tab-separated table: {exc}", source=path) from None
+__all__ = ["read_image"]
 
 
 def read_image(path):
