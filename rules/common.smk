@@ -13,7 +13,7 @@ from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_setti
 from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
 from tessera.errors import TesseraInputError
 from tessera.workflow.code_identity import script_code as code_version_of_script
-from tessera.tiles import read_points
+from tessera.workflow.files.points import read_points
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
 DEMO_DIR = "demo/data"

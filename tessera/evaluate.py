@@ -407,8 +407,8 @@ def evaluate_job(
 ):
     """Score one target's test tiles; write the tables and plots."""
     from tessera.io.atomic import atomic_path, write_table
-    from tessera.tiles import read_annotation_set
     from tessera.train import level_arrays, tile_window
+    from tessera.workflow.files.tile_registry import read_annotation_set
 
     registry, labels = read_annotation_set(annotations)
     check_no_leakage(registry, source=annotations)

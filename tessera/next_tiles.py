@@ -138,8 +138,8 @@ def next_tiles_job(
     """
     from tessera.io.atomic import atomic_path, write_table
     from tessera.io.omezarr import open_image
-    from tessera.tiles import read_annotation_set
     from tessera.workflow.files.qc_table import excluded_sections
+    from tessera.workflow.files.tile_registry import read_annotation_set
 
     registry, _ = read_annotation_set(annotations)
     volumes, factors, scales = {}, {}, {}

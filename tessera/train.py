@@ -22,8 +22,8 @@ from tessera.cascade.api import (
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path, write_table
 from tessera.io.omezarr import open_image, working_level
-from tessera.tiles import read_annotation_set
 from tessera.workflow.files.node_model import read_node, write_node
+from tessera.workflow.files.tile_registry import read_annotation_set
 
 
 def assign_folds(tiles, folds, seed):

@@ -7,7 +7,7 @@ from scipy.stats import entropy
 
 from tessera.errors import TesseraInputError
 from tessera.next_tiles import binary_entropy, candidate_scores, rank_tiles
-from tessera.tiles import read_points
+from tessera.workflow.files.points import read_points
 
 
 def test_binary_entropy_equals_scipy():

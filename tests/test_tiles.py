@@ -6,6 +6,7 @@ common practice of the field (marked so).
 """
 
 import os
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -17,8 +18,18 @@ from PIL import Image
 from skimage.exposure import rescale_intensity
 from skimage.transform import downscale_local_mean
 
-from tessera import tiles
 from tessera.errors import TesseraInputError
+from tessera.tiles.registry import ROLES, tile_slices
+from tessera.tiles.sampling import labels_to_target_mask, sample_tiles_from_labels
+from tessera.tiles.split import split_tiles
+from tessera.workflow.files.points import read_points
+from tessera.workflow.files.tile_registry import (
+    read_annotation_set,
+    read_registry,
+    write_annotation_set,
+    write_split,
+)
+from tessera.workflow.files.to_paint import export_tiles, import_painted, read_painted_mask
 
 FACTORS = (1, 2, 2)
 
@@ -68,9 +79,9 @@ def exported(tmp_path):
     )
     store[:] = level1
     sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", *p) for p in POINTS])
-    points = tiles.read_points(sheet, datasets=["d1", "d2"], targets=["mito", "nuclei"])
+    points = read_points(sheet, datasets=["d1", "d2"], targets=["mito", "nuclei"])
     out = tmp_path / "tiles"
-    registry = tiles.export_tiles(store, points, level=1, factors=FACTORS, size=16, out_dir=out)
+    registry = export_tiles(store, points, level=1, factors=FACTORS, size=16, out_dir=out)
     return {
         "raw0": raw0,
         "truth0": truth0,
@@ -86,7 +97,7 @@ def exported(tmp_path):
 def paint(exported, masks_dir, *, fg=255, ignore=None):
     """Paint every exported tile from the truth, as a person would, as 0/fg PNGs."""
     masks_dir.mkdir(exist_ok=True)
-    truth1 = tiles.labels_to_target_mask(exported["truth0"], factors=FACTORS)
+    truth1 = labels_to_target_mask(exported["truth0"], factors=FACTORS)
     expected = {}
     for r in exported["registry"].itertuples(index=False):
         t = truth1[r.z, r.y0 : r.y0 + r.height, r.x0 : r.x0 + r.width]
@@ -109,7 +120,7 @@ def test_export_writes_tiles_previews_and_registry(exported):
     assert listing(out) == sorted(
         ["tiles.tsv"] + [f"{t}{s}" for t in reg["tile_id"] for s in (".tif", ".preview.png")]
     )
-    for p, r in zip(exported["points"].itertuples(), reg.itertuples()):
+    for p, r in zip(exported["points"].itertuples(), reg.itertuples(), strict=True):
         # centre mapped to the level by integer division; tile of 16 centred as y - size // 2
         assert (r.z, r.y0, r.x0) == (p.z, p.y // 2 - 8, p.x // 2 - 8)
         # reference: numpy slicing of the whole level, read back with tifffile
@@ -121,20 +132,20 @@ def test_export_writes_tiles_previews_and_registry(exported):
         got = np.asarray(Image.open(out / f"{r.tile_id}.preview.png"))
         assert np.abs(got.astype(int) - np.rint(ref)).max() <= 1
     assert set(reg["source"]) == {"painted"} and set(reg["level"]) == {1}
-    pd.testing.assert_frame_equal(tiles.read_registry(out / "tiles.tsv"), reg)
+    pd.testing.assert_frame_equal(read_registry(out / "tiles.tsv"), reg)
 
 
 def test_round_trip_export_paint_import_store(exported):
     expected = paint(exported, exported["tmp"] / "masks")
-    reg, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+    reg, labels = import_painted(exported["out"], exported["tmp"] / "masks")
     assert sorted(labels) == sorted(exported["registry"]["tile_id"])
     for tid, lab in expected.items():
         np.testing.assert_array_equal(labels[tid], lab)
         assert labels[tid].dtype == np.uint8
     target = exported["tmp"] / "set"
-    tiles.write_annotation_set(target, reg, labels)
+    write_annotation_set(target, reg, labels)
     assert listing(target) == ["labels", "tiles.tsv"]
-    reg2, labels2 = tiles.read_annotation_set(target)
+    reg2, labels2 = read_annotation_set(target)
     pd.testing.assert_frame_equal(reg2, reg)
     for tid in labels:
         np.testing.assert_array_equal(labels2[tid], labels[tid])
@@ -143,7 +154,7 @@ def test_round_trip_export_paint_import_store(exported):
 def test_import_maps_ignore_value_to_255(exported):
     # unsure pixels carry their own value and are ignored (common practice, see FIELD.md)
     expected = paint(exported, exported["tmp"] / "masks", fg=255, ignore=128)
-    _, labels = tiles.import_painted(exported["out"], exported["tmp"] / "masks", ignore_value=128)
+    _, labels = import_painted(exported["out"], exported["tmp"] / "masks", ignore_value=128)
     for tid, lab in expected.items():
         np.testing.assert_array_equal(labels[tid], lab)
         assert (labels[tid][0] == 255).all()
@@ -154,17 +165,17 @@ def test_missing_mask_names_tile_and_expected_file(exported):
     gone = exported["registry"].loc[1, "tile_id"]
     (exported["tmp"] / "masks" / f"{gone}.png").unlink()
     with pytest.raises(TesseraInputError, match=rf"{gone}.*{gone}\.png"):
-        tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+        import_painted(exported["out"], exported["tmp"] / "masks")
 
 
 def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_path):
     sheet = write_points(
         tmp_path / "edge.tsv", [("d1", "mito", 0, 40, 40), ("d1", "mito", 1, 10, 60)]
     )
-    points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    points = read_points(sheet, datasets=["d1"], targets=["mito"])
     before = listing(tmp_path)
     with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2 .*outside the image of shape"):
-        tiles.export_tiles(
+        export_tiles(
             exported["store"],
             points,
             level=1,
@@ -175,9 +186,9 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
     assert listing(tmp_path) == before
     # a section beyond the stack is outside too
     sheet = write_points(tmp_path / "deep.tsv", [("d1", "mito", 6, 40, 40)])
-    points = tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+    points = read_points(sheet, datasets=["d1"], targets=["mito"])
     with pytest.raises(TesseraInputError, match=r"deep\.tsv.*row 1"):
-        tiles.export_tiles(
+        export_tiles(
             exported["store"],
             points,
             level=1,
@@ -195,8 +206,8 @@ def test_export_uses_per_row_size(tmp_path):
         [("d", "m", 0, 20, 20, "a", ""), ("d", "m", 1, 20, 20, "b", "6")],
         columns=("dataset", "target", "z", "y", "x", "tile_id", "size"),
     )
-    pts = tiles.read_points(sheet, datasets=["d"], targets=["m"])
-    reg = tiles.export_tiles(img, pts, level=0, factors=(1, 1, 1), size=10, out_dir=tmp_path / "t")
+    pts = read_points(sheet, datasets=["d"], targets=["m"])
+    reg = export_tiles(img, pts, level=0, factors=(1, 1, 1), size=10, out_dir=tmp_path / "t")
     assert reg["height"].tolist() == [10, 6]
     np.testing.assert_array_equal(tifffile.imread(tmp_path / "t" / "b.tif"), img[1, 17:23, 17:23])
 
@@ -218,7 +229,7 @@ def test_export_uses_per_row_size(tmp_path):
 def test_points_errors_name_file_and_row(tmp_path, row, message):
     sheet = write_points(tmp_path / "points.tsv", [("d1", "mito", 0, 10, 10), row])
     with pytest.raises(TesseraInputError, match=rf"points\.tsv.*{message}"):
-        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+        read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
 def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
@@ -228,10 +239,10 @@ def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
         columns=("dataset", "target", "z", "y", "x", "colour"),
     )
     with pytest.raises(TesseraInputError, match=r"p\.tsv.*unknown \['colour'\]"):
-        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+        read_points(sheet, datasets=["d1"], targets=["mito"])
     sheet = write_points(tmp_path / "q.tsv", [("d1", "mito", 0, 10, 10)] * 2)
     with pytest.raises(TesseraInputError, match=r"q\.tsv.*duplicate"):
-        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+        read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
 class _RunsOnLoad:
@@ -254,10 +265,10 @@ def test_points_cells_are_data_never_code(tmp_path):
         TesseraInputError,
         match=r"points\.tsv: row 1, column 'z': expected a whole number >= 0, got",
     ):
-        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+        read_points(sheet, datasets=["d1"], targets=["mito"])
     formula = write_points(tmp_path / "f.tsv", [("d1", "mito", "=1+1", 10, 10)])
     with pytest.raises(TesseraInputError, match=r"f\.tsv: row 1, column 'z'"):
-        tiles.read_points(formula, datasets=["d1"], targets=["mito"])
+        read_points(formula, datasets=["d1"], targets=["mito"])
     assert not marker.exists()
 
 
@@ -273,7 +284,7 @@ def test_points_tile_ids_cannot_name_other_folders(tmp_path, tile_id):
     with pytest.raises(
         TesseraInputError, match=r"p\.tsv: row 1, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"
     ):
-        tiles.read_points(sheet, datasets=["d1"], targets=["mito"])
+        read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
 # --------------------------------------------------------------------------------------------
@@ -309,7 +320,7 @@ def test_mask_encodings_read_identically(tmp_path):
     Image.fromarray(lab.astype(bool)).save(files["1bit.png"])
     tifffile.imwrite(files["8.tif"], lab)
     for name, f in files.items():
-        got = tiles.read_painted_mask(f, shape=lab.shape)
+        got = read_painted_mask(f, shape=lab.shape)
         assert got.dtype == np.uint8, name
         np.testing.assert_array_equal(got, lab, err_msg=name)
 
@@ -318,9 +329,7 @@ def test_zero_one_mask_with_ignore_255(tmp_path):
     lab = mask_pair()
     img = lab.copy()
     img[5:7] = 255
-    got = tiles.read_painted_mask(
-        save_png(tmp_path / "m.png", img), shape=lab.shape, ignore_value=255
-    )
+    got = read_painted_mask(save_png(tmp_path / "m.png", img), shape=lab.shape, ignore_value=255)
     expected = lab.copy()
     expected[5:7] = 255
     np.testing.assert_array_equal(got, expected)
@@ -361,15 +370,13 @@ def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
         rgb[0, 0] = (255, 0, 0)
         save_png(path, rgb)
     with pytest.raises(TesseraInputError, match=rf"{path.name}.*{message}"):
-        tiles.read_painted_mask(path, shape=lab.shape)
+        read_painted_mask(path, shape=lab.shape)
 
 
 @pytest.mark.parametrize("suffix", [".png", ".tif"])
 def test_mask_files_are_decoded_as_images_never_unpickled(tmp_path, suffix):
     # Pillow and tifffile recognise files by their signature (PNG: 89 50 4E 47, TIFF: II*\\0 or
     # MM\\0*, per the PNG and TIFF 6.0 specifications); a pickle stream matches neither.
-    import pickle
-
     payload = pickle.dumps(_RunsOnLoad(tmp_path / "ran"))
     pickle.loads(
         pickle.dumps(_RunsOnLoad(tmp_path / "control"))
@@ -378,13 +385,13 @@ def test_mask_files_are_decoded_as_images_never_unpickled(tmp_path, suffix):
     path = tmp_path / f"t{suffix}"
     path.write_bytes(payload)
     with pytest.raises(TesseraInputError, match=rf"t\{suffix}: cannot read the image"):
-        tiles.read_painted_mask(path, shape=(4, 4))
+        read_painted_mask(path, shape=(4, 4))
     assert not (tmp_path / "ran").exists()
 
 
 def test_single_class_allowed_when_asked(tmp_path):
     path = save_png(tmp_path / "empty.png", np.zeros((4, 4), np.uint8))
-    assert not tiles.read_painted_mask(path, shape=(4, 4), allow_single_class=True).any()
+    assert not read_painted_mask(path, shape=(4, 4), allow_single_class=True).any()
 
 
 def test_bad_mask_in_import_writes_nothing(exported):
@@ -393,7 +400,7 @@ def test_bad_mask_in_import_writes_nothing(exported):
     save_png(exported["tmp"] / "masks" / f"{tid}.png", np.full((16, 16), 7, np.uint8))
     before = listing(exported["tmp"])
     with pytest.raises(TesseraInputError, match=rf"{tid}\.png.*\[7\]"):
-        tiles.import_painted(exported["out"], exported["tmp"] / "masks")
+        import_painted(exported["out"], exported["tmp"] / "masks")
     assert listing(exported["tmp"]) == before
 
 
@@ -418,9 +425,9 @@ def test_write_annotation_set_rejects_bad_labels_and_writes_nothing(tmp_path):
         np.zeros((4, 4), np.float32),
     ):
         with pytest.raises(TesseraInputError, match="'a'"):
-            tiles.write_annotation_set(tmp_path / "set", reg, {"a": bad})
+            write_annotation_set(tmp_path / "set", reg, {"a": bad})
     with pytest.raises(TesseraInputError, match=r"row 1.*'z'.*-1"):
-        tiles.write_annotation_set(
+        write_annotation_set(
             tmp_path / "set", reg.assign(z=[-1]), {"a": np.zeros((4, 4), np.uint8)}
         )
     assert listing(tmp_path) == []
@@ -441,10 +448,10 @@ def test_read_annotation_set_validates_stored_labels(tmp_path):
             "source": ["labels"],
         }
     )
-    tiles.write_annotation_set(tmp_path / "set", reg, {"a": np.eye(4, dtype=np.uint8)})
+    write_annotation_set(tmp_path / "set", reg, {"a": np.eye(4, dtype=np.uint8)})
     save_png(tmp_path / "set" / "labels" / "a.png", np.full((4, 4), 9, np.uint8))
     with pytest.raises(TesseraInputError, match=r"a\.png.*\[9\]"):
-        tiles.read_annotation_set(tmp_path / "set")
+        read_annotation_set(tmp_path / "set")
 
 
 # --------------------------------------------------------------------------------------------
@@ -455,7 +462,7 @@ def test_read_annotation_set_validates_stored_labels(tmp_path):
 def test_target_mask_is_majority_of_downscale_local_mean(factors):
     # Reference library: skimage.transform.downscale_local_mean of the binary mask, > 0.5.
     _, truth = volume(shape=(4, 64, 64), seed=5)
-    got = tiles.labels_to_target_mask(truth, factors=factors)
+    got = labels_to_target_mask(truth, factors=factors)
     expected = downscale_local_mean((truth > 0).astype(np.float64), factors) > 0.5
     assert got.dtype == np.uint8
     np.testing.assert_array_equal(got, expected)
@@ -474,7 +481,7 @@ def sampled(label_source, **options):
         exclude_z=(2, 5),
     )
     base.update(options)
-    return tiles.sample_tiles_from_labels(label_source, **base)
+    return sample_tiles_from_labels(label_source, **base)
 
 
 def test_sampling_deterministic_inside_and_off_excluded_sections(tmp_path):
@@ -542,9 +549,9 @@ def registry_for_split(seed=0):
 def test_split_guard_distance_holds_for_all_pairs(guard):
     # Held-out tiles must be spatially separate from training tiles (common practice).
     reg = registry_for_split()
-    out = tiles.split_tiles(reg, guard_sections=guard, seed=3)
+    out = split_tiles(reg, guard_sections=guard, seed=3)
     assert out["tile_id"].tolist() == reg["tile_id"].tolist()
-    assert set(out["role"]) <= set(tiles.ROLES) and out["role"].notna().all()
+    assert set(out["role"]) <= set(ROLES) and out["role"].notna().all()
     for (_, _), g in out.groupby(["dataset", "target"]):
         train = g.loc[g["role"] == "train", "z"].to_numpy()
         held = g.loc[g["role"].isin(["validation", "test"]), "z"].to_numpy()
@@ -559,20 +566,20 @@ def test_split_guard_distance_holds_for_all_pairs(guard):
 
 def test_split_is_deterministic_and_written_atomically(tmp_path):
     reg = registry_for_split()
-    a = tiles.split_tiles(reg, seed=7)
-    pd.testing.assert_frame_equal(a, tiles.split_tiles(reg, seed=7))
-    tiles.write_split(tmp_path / "split.tsv", a)
+    a = split_tiles(reg, seed=7)
+    pd.testing.assert_frame_equal(a, split_tiles(reg, seed=7))
+    write_split(tmp_path / "split.tsv", a)
     assert listing(tmp_path) == ["split.tsv"]
-    pd.testing.assert_frame_equal(tiles.read_registry(tmp_path / "split.tsv"), a)
+    pd.testing.assert_frame_equal(read_registry(tmp_path / "split.tsv"), a)
     with pytest.raises(TesseraInputError, match="role"):
-        tiles.write_split(tmp_path / "nosplit.tsv", reg)
+        write_split(tmp_path / "nosplit.tsv", reg)
     with pytest.raises(TesseraInputError, match="fractions"):
-        tiles.split_tiles(reg, fractions=(0.5, 0.2, 0.2))
+        split_tiles(reg, fractions=(0.5, 0.2, 0.2))
     assert listing(tmp_path) == ["split.tsv"]
 
 
 def test_split_without_guard_drops_nothing():
-    out = tiles.split_tiles(registry_for_split(), guard_sections=0)
+    out = split_tiles(registry_for_split(), guard_sections=0)
     assert "guard" not in set(out["role"])
 
 
@@ -585,12 +592,12 @@ def test_tile_slices_reflect_pad_matches_numpy_pad_of_section(y0, x0, halo):
     # Reference: numpy.pad(mode="reflect") of the whole section, then the tile plus halo.
     section = np.random.default_rng(1).integers(0, 255, (3, 48, 40)).astype(np.uint8)
     row = {"z": 1, "y0": y0, "x0": x0, "height": 14, "width": 9}
-    index, pad = tiles.tile_slices(row, halo=halo, shape=section.shape)
+    index, pad = tile_slices(row, halo=halo, shape=section.shape)
     got = np.pad(section[index], pad, mode="reflect")
     ref = np.pad(section[1], halo, mode="reflect")[y0 : y0 + 14 + 2 * halo, x0 : x0 + 9 + 2 * halo]
     np.testing.assert_array_equal(got, ref)
     with pytest.raises(TesseraInputError, match="outside"):
-        tiles.tile_slices({**row, "y0": 40}, halo=halo, shape=section.shape)
+        tile_slices({**row, "y0": 40}, halo=halo, shape=section.shape)
 
 
 # --------------------------------------------------------------------------------------------
@@ -609,7 +616,7 @@ def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):
     masks = load_vnc_mitochondria(vnc_sstem)
     assert masks.shape == (20, 1024, 1024)
     keep = list(range(14))
-    reg, labels = tiles.sample_tiles_from_labels(
+    reg, labels = sample_tiles_from_labels(
         masks,
         dataset="vnc",
         target="mitochondria",

@@ -174,7 +174,7 @@ def test_tiny_study_produces_every_output(finished_study):
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert comparison["warning"].str.contains(r"only [01] animal\(s\) in a group").all()
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
-    from tessera.tiles import read_points
+    from tessera.workflow.files.points import read_points
 
     suggested = read_points(
         finished_study / "results/study/nuclei/next_tiles/points.tsv",
@@ -559,7 +559,8 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     import tifffile
     from PIL import Image
 
-    from tessera.tiles import labels_to_target_mask, read_annotation_set
+    from tessera.tiles.sampling import labels_to_target_mask
+    from tessera.workflow.files.tile_registry import read_annotation_set
 
     config = tiny_config()
     # Tiles with no nucleus are useful background examples: declare them allowed.
