@@ -9,7 +9,6 @@ import zarr
 from ome_zarr_models.v05 import Image
 from scipy import ndimage
 
-from tessera import predict
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
@@ -23,7 +22,10 @@ from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
+from tessera.predict import plan_shards
+from tessera.probability_encoding import encode_probability
+from tessera.workflow.jobs import predict
+from tessera.workflow.jobs.predict import plan_job, predict_shard_job, stitch_job
 
 SPEC = dict(
     stages=2,
@@ -282,7 +284,7 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
 
 _SHARD_RSS = """
 import json, re, sys
-from tessera.predict import predict_shard_job, read_plan, shard_memory_mb, load_cascade, cascade_spec
+from tessera.workflow.jobs.predict import predict_shard_job, read_plan, shard_memory_mb, load_cascade, cascade_spec
 
 
 def peak_rss_mb():

@@ -64,7 +64,7 @@ def test_scoring_needs_validation_tiles():
 
 def test_training_can_be_restricted_to_some_datasets():
     from tessera.cascade.api import CascadeSpec
-    from tessera.train import _training_tiles
+    from tessera.train import training_tiles as _training_tiles
 
     spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,), folds=2)
     rows = [
