@@ -2,13 +2,13 @@
 
 The steps, in order (every one defined on the whole volume, computed out of core):
 
-1. *Mask*: voxels with probability > `low`.
+1. *Mask*: voxels with probability >= `low`.
 2. *Morphology*: binary opening then closing with an ellipsoid of the given radius in nm (round
    in physical space, so anisotropic voxels get fewer voxels along z). Outside the volume counts
    as background for the opening and as foreground for the closing, so objects cut by the
    volume edge are neither eroded nor grown there.
 3. *Hysteresis*: keep the connected components of the mask that hold at least one voxel with
-   probability > `high` (``low == high`` is a plain global threshold).
+   probability >= `high` (``low == high`` is a plain global threshold).
 4. *Holes*: background cavities enclosed by one object (6-connected background) are filled,
    unless filling would touch another object.
 5. *Size*: objects with a volume outside [`min_volume_um3`, `max_volume_um3`] are removed, by
@@ -90,7 +90,7 @@ def _reach(element):
 
 def clean_mask(prob, *, low, opening=None, closing=None):
     """Steps 1-2 on an in-memory array: threshold, then opening and closing."""
-    mask = apply_threshold(prob, low, strict=True)
+    mask = apply_threshold(prob, low)
     if opening is not None:
         mask = ndimage.binary_erosion(mask, opening, border_value=0)
         mask = ndimage.binary_dilation(mask, opening, border_value=0)
@@ -376,7 +376,7 @@ def label_objects(
             region = _read_bridged(prob, lo, hi, bridge, scale)
             mask = clean_mask(region, low=low, opening=opening, closing=closing)
             core = tuple(slice(o - a, e - a) for o, e, a in zip(origin, end, lo))
-            mask, seeds = mask[core], apply_threshold(region[core], high, strict=True) & mask[core]
+            mask, seeds = mask[core], apply_threshold(region[core], high) & mask[core]
             labels, n = ndimage.label(mask, structure)
             stats.add(labels, n, origin, shape, seeds, excluded)
             provisional[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]] = np.where(

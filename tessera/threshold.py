@@ -5,12 +5,9 @@ One rule for the whole project: a threshold is chosen from a fixed grid (0.01, 0
 as the one with the best pixel F1 on the validation tiles (ties: the lowest); test tiles never
 choose anything. Pixels labelled 255 (ignore) are left out of every count.
 
-Two comparisons are in use and both go through :func:`apply_threshold`: pixel scores count
-``probability >= threshold`` as foreground (as ``sklearn.metrics.precision_recall_curve`` does),
-while the objects' hysteresis keeps ``probability > threshold`` (as
-``skimage.filters.apply_hysteresis_threshold`` does). They give different masks only where a
-probability equals the threshold exactly: on a uint8 map (value / 255) that happens for the grid
-thresholds 0.2, 0.4, 0.6 and 0.8, so making them one operator would change objects.
+Foreground is ``probability >= threshold`` everywhere (:func:`apply_threshold`): in the pixel
+scores, in the choice itself and in the objects' hysteresis, the way
+``sklearn.metrics.precision_recall_curve`` counts a threshold.
 """
 
 import numpy as np
@@ -20,20 +17,18 @@ from tessera.label_values import IGNORE
 GRID = np.linspace(0.01, 0.99, 99)
 
 
-def apply_threshold(prob, threshold, *, strict=False):
-    """Foreground mask: ``prob >= threshold``, or ``prob > threshold`` with `strict`.
+def apply_threshold(prob, threshold):
+    """Foreground mask: ``prob >= threshold``.
 
     The comparison follows numpy's promotion rules: a Python float threshold is compared in the
     array's own float type, a numpy float64 threshold in float64.
 
     Examples
     --------
-    >>> p = np.array([0.2, 0.5, 0.7])
-    >>> apply_threshold(p, 0.5), apply_threshold(p, 0.5, strict=True)
-    (array([False,  True,  True]), array([False, False,  True]))
+    >>> apply_threshold(np.array([0.2, 0.5, 0.7]), 0.5)
+    array([False,  True,  True])
     """
-    prob = np.asarray(prob)
-    return prob > threshold if strict else prob >= threshold
+    return np.asarray(prob) >= threshold
 
 
 def confusion(prob, truth, threshold):
