@@ -142,6 +142,75 @@ def bootstrap_interval(tile_counts, statistic, *, reps=1000, confidence=0.95, se
     return float(np.percentile(values, tail)), float(np.percentile(values, 100 - tail))
 
 
+def _tile_scores(row, prob, truth, threshold):
+    """Pixel counts and scores, object matches and partition errors of one test tile."""
+    if prob.shape != truth.shape:
+        raise TesseraInputError(
+            f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ"
+        )
+    tp, fp, fn, tn = confusion(prob, truth, threshold)
+    pred = apply_threshold(prob, threshold)
+    objects = match_objects(truth, pred)
+    valid = truth != IGNORE
+    t_lab = ndimage.label((truth == 1) & valid, EIGHT)[0][valid]
+    p_lab = ndimage.label(pred & valid, EIGHT)[0][valid]
+    return {
+        "tile_id": row.tile_id,
+        "dataset": row.dataset,
+        "tp": tp,
+        "fp": fp,
+        "fn": fn,
+        "tn": tn,
+        **scores_from_counts(tp, fp, fn),
+        **objects,
+        **partition_errors(t_lab, p_lab),
+    }
+
+
+def _group_summary(name, group, labels, probabilities, threshold, *, confidence, reps, seed):
+    """One summary row: the pooled scores of the test tiles in `group` (per-tile rows)."""
+    ids = list(group["tile_id"])
+    counts = group[["tp", "fp", "fn"]].to_numpy()
+    totals = counts.sum(axis=0)
+    pixel = scores_from_counts(*totals)
+    out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
+    for metric in ("f1", "jaccard"):
+        low, high = bootstrap_interval(
+            counts,
+            lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
+            reps=reps,
+            confidence=confidence,
+            seed=seed,
+        )
+        out[f"{metric}_ci_low"], out[f"{metric}_ci_high"] = low, high
+    test_p = np.concatenate([probabilities[t].ravel() for t in ids])
+    test_t = np.concatenate([labels[t].ravel() for t in ids])
+    if (test_t == 1).any():
+        precision, recall, _ = precision_recall_curve(test_p, test_t)
+        out["average_precision"] = average_precision(precision, recall)
+    else:
+        out["average_precision"] = math.nan
+    t_obj, p_obj, matched = (
+        int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched")
+    )
+    out.update(
+        {
+            "true_objects": t_obj,
+            "predicted_objects": p_obj,
+            "matched_objects": matched,
+            "object_precision": matched / p_obj if p_obj else 0.0,
+            "object_recall": matched / t_obj if t_obj else 0.0,
+            "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
+            "adapted_rand_error": float(group["adapted_rand_error"].mean()),
+            "voi_split": float(group["voi_split"].mean()),
+            "voi_merge": float(group["voi_merge"].mean()),
+            "confidence": confidence,
+            "object_rule": "8-connected per tile, IoU > 0.5",
+        }
+    )
+    return out
+
+
 def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=1000, seed=0):
     """All scores of the test tiles of one target (threshold from the validation tiles).
 
@@ -183,74 +252,23 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
     threshold = float(choose_threshold(val_p, val_t))
     rows = []
     for row in test.itertuples(index=False):
-        prob, truth = probabilities[row.tile_id], labels[row.tile_id]
-        if prob.shape != truth.shape:
-            raise TesseraInputError(
-                f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ"
-            )
-        tp, fp, fn, tn = confusion(prob, truth, threshold)
-        pred = apply_threshold(prob, threshold)
-        objects = match_objects(truth, pred)
-        valid = truth != IGNORE
-        t_lab = ndimage.label((truth == 1) & valid, EIGHT)[0][valid]
-        p_lab = ndimage.label(pred & valid, EIGHT)[0][valid]
-        rows.append(
-            {
-                "tile_id": row.tile_id,
-                "dataset": row.dataset,
-                "tp": tp,
-                "fp": fp,
-                "fn": fn,
-                "tn": tn,
-                **scores_from_counts(tp, fp, fn),
-                **objects,
-                **partition_errors(t_lab, p_lab),
-            }
-        )
+        rows.append(_tile_scores(row, probabilities[row.tile_id], labels[row.tile_id], threshold))
     per_tile = pd.DataFrame(rows)
     summary = []
     groups = [("all", per_tile)] + [(d, g) for d, g in per_tile.groupby("dataset", sort=True)]
     for name, group in groups:
-        ids = list(group["tile_id"])
-        counts = group[["tp", "fp", "fn"]].to_numpy()
-        totals = counts.sum(axis=0)
-        pixel = scores_from_counts(*totals)
-        out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
-        for metric in ("f1", "jaccard"):
-            low, high = bootstrap_interval(
-                counts,
-                lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
-                reps=reps,
+        summary.append(
+            _group_summary(
+                name,
+                group,
+                labels,
+                probabilities,
+                threshold,
                 confidence=confidence,
+                reps=reps,
                 seed=seed,
             )
-            out[f"{metric}_ci_low"], out[f"{metric}_ci_high"] = low, high
-        test_p = np.concatenate([probabilities[t].ravel() for t in ids])
-        test_t = np.concatenate([labels[t].ravel() for t in ids])
-        if (test_t == 1).any():
-            precision, recall, _ = precision_recall_curve(test_p, test_t)
-            out["average_precision"] = average_precision(precision, recall)
-        else:
-            out["average_precision"] = math.nan
-        t_obj, p_obj, matched = (
-            int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched")
         )
-        out.update(
-            {
-                "true_objects": t_obj,
-                "predicted_objects": p_obj,
-                "matched_objects": matched,
-                "object_precision": matched / p_obj if p_obj else 0.0,
-                "object_recall": matched / t_obj if t_obj else 0.0,
-                "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
-                "adapted_rand_error": float(group["adapted_rand_error"].mean()),
-                "voi_split": float(group["voi_split"].mean()),
-                "voi_merge": float(group["voi_merge"].mean()),
-                "confidence": confidence,
-                "object_rule": "8-connected per tile, IoU > 0.5",
-            }
-        )
-        summary.append(out)
     all_p = np.concatenate([probabilities[t].ravel() for t in test["tile_id"]])
     all_t = np.concatenate([labels[t].ravel() for t in test["tile_id"]])
     precision, recall, thresholds = precision_recall_curve(all_p, all_t)
