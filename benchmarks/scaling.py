@@ -41,10 +41,10 @@ import json, resource, sys, time
 task = json.loads(sys.argv[1])
 start = time.perf_counter()
 if task["kind"] == "predict":
-    from tessera.predict import predict_shard_job
+    from tessera.workflow.jobs.predict import predict_shard_job
     predict_shard_job(task["plan"], task["image"], task["models"], task["out"], job=task["job"], target="mitochondria")
 elif task["kind"] == "stitch":
-    from tessera.predict import stitch_job
+    from tessera.workflow.jobs.predict import stitch_job
     stitch_job(task["plan"], task["shards"], task["out"], viewing_levels=1)
 else:
     import numpy as np, zarr
@@ -131,7 +131,7 @@ def write_image(path, raw, sections):
 
 
 def predict_volume(root, models, raw, sections, jobs):
-    from tessera.predict import plan_job
+    from tessera.workflow.jobs.predict import plan_job
 
     image = root / f"raw_{sections}.ome.zarr"
     if not image.exists():

@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.evaluate import evaluate_job
+from tessera.workflow.jobs.evaluate import evaluate_job
 from tessera.workflow.runner import run_job
 
 run_job(
@@ -13,7 +13,7 @@ run_job(
     evaluate_job,
     annotations=snakemake.input.tiles,
     probabilities=snakemake.input.probabilities,
-    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),
+    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
     out_summary=snakemake.output.summary,
     out_tiles=snakemake.output.tiles,
     out_curve=snakemake.output.curve,

@@ -5,16 +5,16 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.next_tiles import next_tiles_job
+from tessera.workflow.jobs.next_tiles import next_tiles_job
 from tessera.workflow.runner import run_job
 
 datasets = snakemake.params.datasets
 run_job(
     snakemake,
     next_tiles_job,
-    probabilities=dict(zip(datasets, snakemake.input.probabilities)),
+    probabilities=dict(zip(datasets, snakemake.input.probabilities, strict=False)),
     annotations=snakemake.input.tiles,
-    qc_tables=dict(zip(datasets, snakemake.input.qc)),
+    qc_tables=dict(zip(datasets, snakemake.input.qc, strict=False)),
     out_points=snakemake.output.points,
     out_preview=snakemake.output.preview,
     target=snakemake.wildcards.target,

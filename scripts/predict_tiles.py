@@ -5,14 +5,14 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.train import predict_tiles_job
+from tessera.workflow.jobs.train import predict_tiles_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
     predict_tiles_job,
     annotations=snakemake.input.tiles,
-    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),
+    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
     model_paths=list(snakemake.input.models),
     out_probabilities=snakemake.output.probabilities,
     out_table=snakemake.output.scores,

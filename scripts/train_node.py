@@ -5,14 +5,14 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.train import train_node_job
+from tessera.workflow.jobs.train import train_node_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
     train_node_job,
     annotations=snakemake.input.tiles,
-    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images)),
+    pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
     upstream=list(snakemake.input.upstream),
     out_path=snakemake.output.model,
     target=snakemake.wildcards.target,

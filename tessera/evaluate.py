@@ -3,7 +3,7 @@
 Conventions (stated in every output):
 
 * The threshold is the one with the best pixel F1 on the **validation** tiles; test tiles never
-  choose anything. Pixels labelled 255 (ignore) are left out everywhere.
+  choose anything (:mod:`tessera.threshold`). Pixels labelled 255 (ignore) are left out everywhere.
 * Pixel scores pool all test pixels. F1 equals the Dice coefficient, and Jaccard = F1 / (2 − F1).
 * Objects are 8-connected regions of each 2D tile (truth and prediction alike); a predicted object
   matches a true one when their intersection over union exceeds 0.5, which makes matches
@@ -27,36 +27,9 @@ from scipy import ndimage
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
 from tessera.plotting import pyplot
+from tessera.threshold import apply_threshold, choose_threshold, confusion, scores_from_counts
 
 EIGHT = np.ones((3, 3), bool)
-
-
-def confusion(prob, truth, threshold):
-    """Counts (tp, fp, fn, tn) of `prob` >= `threshold` against truth 0/1 (255 ignored)."""
-    prob, truth = np.asarray(prob).ravel(), np.asarray(truth).ravel()
-    keep = truth != IGNORE
-    pred, true = prob[keep] >= threshold, truth[keep] == 1
-    tp = int(np.sum(pred & true))
-    fp = int(np.sum(pred & ~true))
-    fn = int(np.sum(~pred & true))
-    return tp, fp, fn, int(true.size - tp - fp - fn)
-
-
-def scores_from_counts(tp, fp, fn):
-    """Precision, recall, F1 (= Dice) and Jaccard from counts; 0 where undefined.
-
-    Examples
-    --------
-    >>> s = scores_from_counts(8, 2, 2)
-    >>> round(s["f1"], 3), round(s["jaccard"], 4), round(s["f1"] / (2 - s["f1"]), 4)
-    (0.8, 0.6667, 0.6667)
-    """
-    return {
-        "precision": tp / (tp + fp) if tp + fp else 0.0,
-        "recall": tp / (tp + fn) if tp + fn else 0.0,
-        "f1": 2 * tp / (2 * tp + fp + fn) if tp + fp + fn else 0.0,
-        "jaccard": tp / (tp + fp + fn) if tp + fp + fn else 0.0,
-    }
 
 
 def precision_recall_curve(prob, truth):
@@ -169,6 +142,75 @@ def bootstrap_interval(tile_counts, statistic, *, reps=1000, confidence=0.95, se
     return float(np.percentile(values, tail)), float(np.percentile(values, 100 - tail))
 
 
+def _tile_scores(row, prob, truth, threshold):
+    """Pixel counts and scores, object matches and partition errors of one test tile."""
+    if prob.shape != truth.shape:
+        raise TesseraInputError(
+            f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ"
+        )
+    tp, fp, fn, tn = confusion(prob, truth, threshold)
+    pred = apply_threshold(prob, threshold)
+    objects = match_objects(truth, pred)
+    valid = truth != IGNORE
+    t_lab = ndimage.label((truth == 1) & valid, EIGHT)[0][valid]
+    p_lab = ndimage.label(pred & valid, EIGHT)[0][valid]
+    return {
+        "tile_id": row.tile_id,
+        "dataset": row.dataset,
+        "tp": tp,
+        "fp": fp,
+        "fn": fn,
+        "tn": tn,
+        **scores_from_counts(tp, fp, fn),
+        **objects,
+        **partition_errors(t_lab, p_lab),
+    }
+
+
+def _group_summary(name, group, labels, probabilities, threshold, *, confidence, reps, seed):
+    """One summary row: the pooled scores of the test tiles in `group` (per-tile rows)."""
+    ids = list(group["tile_id"])
+    counts = group[["tp", "fp", "fn"]].to_numpy()
+    totals = counts.sum(axis=0)
+    pixel = scores_from_counts(*totals)
+    out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
+    for metric in ("f1", "jaccard"):
+        low, high = bootstrap_interval(
+            counts,
+            lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
+            reps=reps,
+            confidence=confidence,
+            seed=seed,
+        )
+        out[f"{metric}_ci_low"], out[f"{metric}_ci_high"] = low, high
+    test_p = np.concatenate([probabilities[t].ravel() for t in ids])
+    test_t = np.concatenate([labels[t].ravel() for t in ids])
+    if (test_t == 1).any():
+        precision, recall, _ = precision_recall_curve(test_p, test_t)
+        out["average_precision"] = average_precision(precision, recall)
+    else:
+        out["average_precision"] = math.nan
+    t_obj, p_obj, matched = (
+        int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched")
+    )
+    out.update(
+        {
+            "true_objects": t_obj,
+            "predicted_objects": p_obj,
+            "matched_objects": matched,
+            "object_precision": matched / p_obj if p_obj else 0.0,
+            "object_recall": matched / t_obj if t_obj else 0.0,
+            "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
+            "adapted_rand_error": float(group["adapted_rand_error"].mean()),
+            "voi_split": float(group["voi_split"].mean()),
+            "voi_merge": float(group["voi_merge"].mean()),
+            "confidence": confidence,
+            "object_rule": "8-connected per tile, IoU > 0.5",
+        }
+    )
+    return out
+
+
 def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=1000, seed=0):
     """All scores of the test tiles of one target (threshold from the validation tiles).
 
@@ -207,77 +249,26 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
     val_ids = registry.loc[registry["role"] == "validation", "tile_id"]
     val_p = np.concatenate([probabilities[t].ravel() for t in val_ids])
     val_t = np.concatenate([labels[t].ravel() for t in val_ids])
-    threshold = best_threshold(val_p, val_t)
+    threshold = float(choose_threshold(val_p, val_t))
     rows = []
     for row in test.itertuples(index=False):
-        prob, truth = probabilities[row.tile_id], labels[row.tile_id]
-        if prob.shape != truth.shape:
-            raise TesseraInputError(
-                f"tile {row.tile_id}: prediction {prob.shape} and labels {truth.shape} differ"
-            )
-        tp, fp, fn, tn = confusion(prob, truth, threshold)
-        pred = prob >= threshold
-        objects = match_objects(truth, pred)
-        valid = truth != IGNORE
-        t_lab = ndimage.label((truth == 1) & valid, EIGHT)[0][valid]
-        p_lab = ndimage.label(pred & valid, EIGHT)[0][valid]
-        rows.append(
-            {
-                "tile_id": row.tile_id,
-                "dataset": row.dataset,
-                "tp": tp,
-                "fp": fp,
-                "fn": fn,
-                "tn": tn,
-                **scores_from_counts(tp, fp, fn),
-                **objects,
-                **partition_errors(t_lab, p_lab),
-            }
-        )
+        rows.append(_tile_scores(row, probabilities[row.tile_id], labels[row.tile_id], threshold))
     per_tile = pd.DataFrame(rows)
     summary = []
     groups = [("all", per_tile)] + [(d, g) for d, g in per_tile.groupby("dataset", sort=True)]
     for name, group in groups:
-        ids = list(group["tile_id"])
-        counts = group[["tp", "fp", "fn"]].to_numpy()
-        totals = counts.sum(axis=0)
-        pixel = scores_from_counts(*totals)
-        out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
-        for metric in ("f1", "jaccard"):
-            low, high = bootstrap_interval(
-                counts,
-                lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
-                reps=reps,
+        summary.append(
+            _group_summary(
+                name,
+                group,
+                labels,
+                probabilities,
+                threshold,
                 confidence=confidence,
+                reps=reps,
                 seed=seed,
             )
-            out[f"{metric}_ci_low"], out[f"{metric}_ci_high"] = low, high
-        test_p = np.concatenate([probabilities[t].ravel() for t in ids])
-        test_t = np.concatenate([labels[t].ravel() for t in ids])
-        if (test_t == 1).any():
-            precision, recall, _ = precision_recall_curve(test_p, test_t)
-            out["average_precision"] = average_precision(precision, recall)
-        else:
-            out["average_precision"] = math.nan
-        t_obj, p_obj, matched = (
-            int(group[c].sum()) for c in ("true_objects", "predicted_objects", "matched")
         )
-        out.update(
-            {
-                "true_objects": t_obj,
-                "predicted_objects": p_obj,
-                "matched_objects": matched,
-                "object_precision": matched / p_obj if p_obj else 0.0,
-                "object_recall": matched / t_obj if t_obj else 0.0,
-                "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
-                "adapted_rand_error": float(group["adapted_rand_error"].mean()),
-                "voi_split": float(group["voi_split"].mean()),
-                "voi_merge": float(group["voi_merge"].mean()),
-                "confidence": confidence,
-                "object_rule": "8-connected per tile, IoU > 0.5",
-            }
-        )
-        summary.append(out)
     all_p = np.concatenate([probabilities[t].ravel() for t in test["tile_id"]])
     all_t = np.concatenate([labels[t].ravel() for t in test["tile_id"]])
     precision, recall, thresholds = precision_recall_curve(all_p, all_t)
@@ -285,12 +276,6 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
         {"threshold": np.r_[thresholds, np.nan], "precision": precision, "recall": recall}
     )
     return pd.DataFrame(summary), per_tile, curve
-
-
-def best_threshold(prob, truth, *, grid=np.linspace(0.01, 0.99, 99)):
-    """The grid threshold with the best pixel F1 (ties: the lowest)."""
-    scores = [scores_from_counts(*confusion(prob, truth, t)[:3])["f1"] for t in grid]
-    return float(grid[int(np.argmax(scores))])
 
 
 def check_no_leakage(registry, *, source=None):
@@ -364,8 +349,9 @@ def plot_overlays(images, labels, probabilities, threshold, path, *, target, til
     fig, axes = plt.subplots(
         max(1, len(ids)), 4, figsize=(9, 2.3 * max(1, len(ids))), squeeze=False
     )
-    for row, tile_id in zip(axes, ids):
-        raw, truth, pred = images[tile_id], labels[tile_id], probabilities[tile_id] >= threshold
+    for row, tile_id in zip(axes, ids, strict=False):
+        raw, truth = images[tile_id], labels[tile_id]
+        pred = apply_threshold(probabilities[tile_id], threshold)
         errors = np.zeros((*truth.shape, 3))
         errors[pred & (truth == 0)] = (1, 0, 0)
         errors[~pred & (truth == 1)] = (0, 0.4, 1)
@@ -378,6 +364,7 @@ def plot_overlays(images, labels, probabilities, threshold, path, *, target, til
                 ("prediction", pred, "gray"),
                 ("errors", errors, None),
             ],
+            strict=False,
         ):
             ax.imshow(img, cmap=cmap, interpolation="nearest")
             ax.set_title(f"{tile_id} {title}", fontsize=7)
@@ -386,64 +373,3 @@ def plot_overlays(images, labels, probabilities, threshold, path, *, target, til
     fig.tight_layout()
     fig.savefig(path, dpi=100, format="png")
     plt.close(fig)
-
-
-def evaluate_job(
-    annotations,
-    probabilities,
-    pyramids,
-    out_summary,
-    out_tiles,
-    out_curve,
-    out_curve_plot,
-    out_tiles_plot,
-    out_overlays,
-    *,
-    target,
-    downsample,
-    confidence=0.95,
-    reps=1000,
-    seed=0,
-):
-    """Score one target's test tiles; write the tables and plots."""
-    from tessera.io.atomic import atomic_path, write_table
-    from tessera.train import level_arrays, tile_window
-    from tessera.workflow.files.tile_registry import read_annotation_set
-
-    registry, labels = read_annotation_set(annotations)
-    check_no_leakage(registry, source=annotations)
-    try:
-        with np.load(probabilities, allow_pickle=False) as data:
-            probs = {k: data[k] for k in data.files}
-    except (OSError, ValueError) as exc:
-        raise TesseraInputError(
-            f"cannot read the tile predictions: {exc}", source=probabilities
-        ) from None
-    summary, per_tile, curve = evaluate_tiles(
-        registry, labels, probs, confidence=confidence, reps=reps, seed=seed
-    )
-    summary.insert(0, "target", target)
-    per_tile.insert(0, "target", target)
-    write_table(out_summary, summary)
-    write_table(out_tiles, per_tile)
-    write_table(out_curve, curve)
-    with atomic_path(out_curve_plot) as a, atomic_path(out_tiles_plot) as b:
-        plot_evaluation(summary, per_tile, curve, a, b, target=target)
-    test = registry[registry["role"] == "test"]
-    arrays = level_arrays(pyramids, test, downsample=downsample)
-    worst = per_tile.sort_values("f1")["tile_id"].tolist()
-    images = {}
-    for tile_id in worst[:4]:
-        row = test[test["tile_id"] == tile_id].iloc[0]
-        images[tile_id] = tile_window(arrays[row["dataset"]], row, 0, 0)[0]
-    with atomic_path(out_overlays) as tmp:
-        plot_overlays(
-            images, labels, probs, float(summary["threshold"].iloc[0]), tmp, target=target
-        )
-    overall = summary[summary["dataset"] == "all"].iloc[0]
-    return {
-        "f1": overall["f1"],
-        "f1_ci": [overall["f1_ci_low"], overall["f1_ci_high"]],
-        "average_precision": overall["average_precision"],
-        "object_f1": overall["object_f1"],
-    }

@@ -119,79 +119,19 @@ def rank_tiles(volumes, existing, *, size, count, excluded=None, min_sections=2)
     return pd.DataFrame(chosen, columns=["dataset", "z", "y", "x", "score"]).reset_index(drop=True)
 
 
-def next_tiles_job(
-    probabilities,
-    annotations,
-    qc_tables,
-    out_points,
-    out_preview,
-    *,
-    target,
-    size,
-    count,
-    min_sections=2,
-):
-    """Suggest the next tiles to annotate for one target; write a points sheet and a preview.
+def plot_suggestions(picks, volumes, path, *, size, target, shown=6):
+    """The probability around the first `shown` suggested tiles (a preview, PNG to `path`).
 
-    `probabilities` and `qc_tables` map dataset ids to the stitched probability maps and the QC
-    tables. The sheet's coordinates are full-resolution voxels, as the tile export expects.
+    `volumes` maps dataset ids to probability volumes read section by section, as for
+    :func:`rank_tiles`.
     """
-    from tessera.io.atomic import atomic_path, write_table
-    from tessera.io.omezarr import open_image
-    from tessera.workflow.files.qc_table import excluded_sections
-    from tessera.workflow.files.tile_registry import read_annotation_set
-
-    registry, _ = read_annotation_set(annotations)
-    volumes, factors, scales = {}, {}, {}
-    for dataset, path in probabilities.items():
-        _, info = open_image(path)
-        extra = info["extra"].get("probability", {})
-        volumes[dataset] = info["levels"][0]
-        scales[dataset] = float(extra.get("scale", 1.0))
-        factors[dataset] = (
-            int(extra.get("z_factor", 1)),
-            int(extra.get("working_level_downsample", 1)),
-        )
-    scaled = {d: _Scaled(v, scales[d]) for d, v in volumes.items()}
-    excluded = {d: excluded_sections(qc_tables[d], factors[d][0]) for d in qc_tables}
-    picks = rank_tiles(
-        scaled, registry, size=size, count=count, excluded=excluded, min_sections=min_sections
-    )
-    points = pd.DataFrame(
-        {
-            "dataset": picks["dataset"],
-            "target": target,
-            "z": [z * factors[d][0] for d, z in zip(picks["dataset"], picks["z"])],
-            "y": [y * factors[d][1] for d, y in zip(picks["dataset"], picks["y"])],
-            "x": [x * factors[d][1] for d, x in zip(picks["dataset"], picks["x"])],
-            "size": size,
-        }
-    )
-    # the sheet holds only the columns the tile export reads; the scores go to the log and preview
-    write_table(out_points, points)
-    with atomic_path(out_preview) as tmp:
-        _plot(picks, scaled, tmp, size=size, target=target)
-    return {"suggested": len(points), "mean_entropy_bits": picks["score"].round(4).tolist()}
-
-
-class _Scaled:
-    """A stored probability volume read section by section as probabilities."""
-
-    def __init__(self, array, scale):
-        self.array, self.scale, self.shape = array, scale, array.shape
-
-    def __getitem__(self, z):
-        return np.asarray(self.array[z], dtype=np.float32) / np.float32(self.scale)
-
-
-def _plot(picks, volumes, path, *, size, target, shown=6):
     plt = pyplot()
 
     rows = picks.head(shown)
     fig, axes = plt.subplots(
         1, max(1, len(rows)), figsize=(2.4 * max(1, len(rows)), 2.8), squeeze=False
     )
-    for ax, row in zip(axes[0], rows.itertuples(index=False)):
+    for ax, row in zip(axes[0], rows.itertuples(index=False), strict=False):
         section = volumes[row.dataset][row.z]
         half = size // 2
         crop = section[max(0, row.y - half) : row.y + half, max(0, row.x - half) : row.x + half]

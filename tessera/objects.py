@@ -2,13 +2,13 @@
 
 The steps, in order (every one defined on the whole volume, computed out of core):
 
-1. *Mask*: voxels with probability > `low`.
+1. *Mask*: voxels with probability >= `low`.
 2. *Morphology*: binary opening then closing with an ellipsoid of the given radius in nm (round
    in physical space, so anisotropic voxels get fewer voxels along z). Outside the volume counts
    as background for the opening and as foreground for the closing, so objects cut by the
    volume edge are neither eroded nor grown there.
 3. *Hysteresis*: keep the connected components of the mask that hold at least one voxel with
-   probability > `high` (``low == high`` is a plain global threshold).
+   probability >= `high` (``low == high`` is a plain global threshold).
 4. *Holes*: background cavities enclosed by one object (6-connected background) are filled,
    unless filling would touch another object.
 5. *Size*: objects with a volume outside [`min_volume_um3`, `max_volume_um3`] are removed, by
@@ -39,7 +39,9 @@ from tessera.io.atomic import atomic_path, write_table, write_text
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums, verified_bytes
 from tessera.pyramid import link_tree
+from tessera.threshold import apply_threshold
 from tessera.workflow.files.qc_table import excluded_sections
+from tessera.workflow.files.scores import validation_threshold
 
 CONNECTIVITY = {6: 1, 18: 2, 26: 3}  # neighbours in 3D -> rank of scipy's binary structure
 _log = logging.getLogger(__name__)
@@ -88,7 +90,7 @@ def _reach(element):
 
 def clean_mask(prob, *, low, opening=None, closing=None):
     """Steps 1-2 on an in-memory array: threshold, then opening and closing."""
-    mask = np.asarray(prob) > low
+    mask = apply_threshold(prob, low)
     if opening is not None:
         mask = ndimage.binary_erosion(mask, opening, border_value=0)
         mask = ndimage.binary_dilation(mask, opening, border_value=0)
@@ -374,7 +376,7 @@ def label_objects(
             region = _read_bridged(prob, lo, hi, bridge, scale)
             mask = clean_mask(region, low=low, opening=opening, closing=closing)
             core = tuple(slice(o - a, e - a) for o, e, a in zip(origin, end, lo))
-            mask, seeds = mask[core], (region[core] > high) & mask[core]
+            mask, seeds = mask[core], apply_threshold(region[core], high) & mask[core]
             labels, n = ndimage.label(mask, structure)
             stats.add(labels, n, origin, shape, seeds, excluded)
             provisional[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]] = np.where(
@@ -502,17 +504,6 @@ def _subsample(source, target, factor, band=512):
         for oy in range(0, target.shape[1], band):
             rows = np.asarray(source[oz * fz, oy * fy : min((oy + band) * fy, source.shape[1]), :])
             target[oz, oy : oy + band, :] = rows[::fy, ::fx][: target.shape[1] - oy]
-
-
-def validation_threshold(scores_path):
-    """The threshold chosen on the validation tiles (from the tile scores table)."""
-    try:
-        table = pd.read_csv(scores_path, sep="\t")
-        return float(table.loc[table["role"] == "validation", "threshold"].iloc[0])
-    except (FileNotFoundError, KeyError, IndexError, ValueError, pd.errors.ParserError) as exc:
-        raise TesseraInputError(
-            f"no validation threshold in the tile scores ({exc})", source=scores_path
-        ) from None
 
 
 def objects_job(

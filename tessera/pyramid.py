@@ -12,7 +12,6 @@ from pathlib import Path
 import numpy as np
 
 from tessera.block_reduce import block_mean
-from tessera.errors import TesseraInputError
 
 
 def _round_to(values, dtype):

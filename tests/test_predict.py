@@ -1,18 +1,23 @@
 """Sharded prediction: the plan, exact stitching, and refusal of damaged or missing shard outputs."""
 
 import json
+import shutil
+import subprocess
+import sys
+import tracemalloc
 from pathlib import Path
 
 import numpy as np
 import pytest
 import zarr
+import zarr as zarr_module
 from ome_zarr_models.v05 import Image
 from scipy import ndimage
 
-from tessera import predict
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
+    frame_memory_bytes,
     mirrored_window,
     predict_section,
     prepare_tile,
@@ -23,8 +28,10 @@ from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.predict import encode_probability, plan_job, plan_shards, predict_shard_job, stitch_job
-from tessera.workflow import paths  # noqa: F401 - its rebuild hints name the rule in messages
+from tessera.predict import plan_shards
+from tessera.probability_encoding import encode_probability
+from tessera.workflow.jobs import predict
+from tessera.workflow.jobs.predict import plan_job, predict_shard_job, stitch_job
 
 SPEC = dict(
     stages=2,
@@ -265,10 +272,6 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
     # tracemalloc (Python standard library) traces every buffer numpy allocates, so its peak is
     # what predicting one section of a block really takes; the estimate must cover it without
     # overstating it by more than half.
-    import tracemalloc
-
-    from tessera.cascade.api import frame_memory_bytes
-
     rng = np.random.default_rng(side)
     volume = rng.integers(0, 256, (3, side, side), dtype=np.uint8)
     tracemalloc.start()
@@ -283,7 +286,7 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
 
 _SHARD_RSS = """
 import json, re, sys
-from tessera.predict import predict_shard_job, read_plan, shard_memory_mb, load_cascade, cascade_spec
+from tessera.workflow.jobs.predict import predict_shard_job, read_plan, shard_memory_mb, load_cascade, cascade_spec
 
 
 def peak_rss_mb():
@@ -306,11 +309,6 @@ print(json.dumps({"baseline": baseline, "peak": peak, "estimate": shard_memory_m
 def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
     # The kernel's own account of a real shard job (peak resident set size) in a fresh
     # interpreter: imports stay below BASELINE_MB and the whole job below the estimate.
-    import subprocess
-    import sys
-
-    import zarr as zarr_module
-
     volume = np.random.default_rng(7).integers(0, 256, (2, 300, 300), dtype=np.uint8)
     image = tmp_path / "big.ome.zarr"
     group = zarr_module.open_group(store=str(image), mode="w", zarr_format=3)
@@ -390,8 +388,6 @@ def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path
 
 def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
     # a copy of the image where the workflow keeps it, with one damaged chunk in the last section
-    import shutil
-
     image = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
     shutil.copytree(study["image"], image)
     damaged = (

@@ -5,8 +5,10 @@ import pandas as pd
 import pytest
 from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
 
+from tessera.cascade.api import CascadeSpec
 from tessera.errors import TesseraInputError
 from tessera.train import assign_folds, score_tiles
+from tessera.train import training_tiles as _training_tiles
 
 
 def test_folds_are_contiguous_in_z_balanced_and_order_free():
@@ -21,9 +23,9 @@ def test_folds_are_contiguous_in_z_balanced_and_order_free():
     folds = assign_folds(tiles, 3, seed=1)
     assert folds == assign_folds(tiles.iloc[::-1], 3, seed=1)
     assert sorted(np.bincount(list(folds.values()))) == [5, 5, 5]
-    for dataset, group in tiles.groupby("dataset"):
+    for _dataset, group in tiles.groupby("dataset"):
         sequence = [folds[t] for t in group.sort_values("z")["tile_id"]]
-        changes = sum(a != b for a, b in zip(sequence, sequence[1:]))
+        changes = sum(a != b for a, b in zip(sequence, sequence[1:], strict=False))
         assert changes == 2  # three contiguous runs
 
 
@@ -63,9 +65,6 @@ def test_scoring_needs_validation_tiles():
 
 
 def test_training_can_be_restricted_to_some_datasets():
-    from tessera.cascade.api import CascadeSpec
-    from tessera.train import _training_tiles
-
     spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,), folds=2)
     rows = [
         {

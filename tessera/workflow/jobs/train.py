@@ -1,0 +1,113 @@
+"""Jobs of rules train_node and predict_tiles: train one cascade node; predict and score the
+held-out tiles."""
+
+from tessera.cascade.api import (
+    ancestors,
+    cascade_spec,
+    predict_frame,
+    receptive_radius,
+    spec_from_settings,
+    train_node,
+)
+from tessera.errors import TesseraInputError
+from tessera.tile_windows import tile_window
+from tessera.train import score_tiles, training_tiles
+from tessera.workflow.files.node_model import load_cascade, write_node
+from tessera.workflow.files.pyramid import level_arrays
+from tessera.workflow.files.scores import write_scores
+from tessera.workflow.files.tile_probabilities import write_tile_probabilities
+from tessera.workflow.files.tile_registry import read_annotation_set
+
+
+def train_node_job(
+    annotations,
+    pyramids,
+    upstream,
+    out_path,
+    *,
+    target,
+    downsample,
+    cascade,
+    stage,
+    level,
+    threads=1,
+    train_datasets=None,
+):
+    """Train node (stage, level) of a target's cascade and save it.
+
+    Parameters
+    ----------
+    annotations : path
+        Split annotation set of the target (``role`` column).
+    pyramids : dict
+        Dataset id → multiscale OME-Zarr image.
+    upstream : list of path
+        Saved models of every ancestor node.
+    out_path : path
+        The model file to write (.npz, arrays and JSON only).
+    target : str
+    downsample : int
+        The target's working level factor.
+    cascade : dict
+        Cascade settings (see :class:`tessera.cascade.api.CascadeSpec`); ``stages`` is replaced by `stage`.
+    train_datasets : list of str, optional
+        Train on the tiles of these datasets only (the others' test tiles then measure how the
+        model transfers to other animals).
+    """
+    spec = spec_from_settings(cascade, stages=stage)
+    node = (stage, level)
+    registry, labels = read_annotation_set(annotations)
+    arrays = level_arrays(pyramids, registry, downsample=downsample)
+    # refuses models of other settings
+    models = load_cascade(upstream, target=target, spec=spec)
+    for a in ancestors(spec, node)[:-1]:
+        if a not in models:
+            raise TesseraInputError(
+                f"node {node} needs the model of node {a}; it was not among the inputs"
+            )
+    tiles = training_tiles(
+        spec, registry, labels, arrays, final=node, train_datasets=train_datasets
+    )
+    model = train_node(spec, stage, level, tiles, models, target=target, threads=threads)
+    write_node(model, out_path)  # atomic
+    return {
+        "node": list(node),
+        "training_tiles": len(tiles),
+        "training_pixels": model.meta["training_pixels"],
+    }
+
+
+def predict_tiles_job(
+    annotations,
+    pyramids,
+    model_paths,
+    out_probabilities,
+    out_table,
+    *,
+    target,
+    downsample,
+    output_sigma=0.0,
+):
+    """Predict the validation and test tiles with the finished cascade; score them.
+
+    The threshold is the one with the best F1 on the validation tiles; test scores use it.
+    Writes every tile's probability map (``<tile_id>`` arrays in an .npz) and a TSV of pixel
+    precision, recall, F1 and Jaccard per role.
+    """
+    registry, labels = read_annotation_set(annotations)
+    models = load_cascade(model_paths, target=target)
+    spec = cascade_spec(models)
+    arrays = level_arrays(pyramids, registry, downsample=downsample)
+    halo = receptive_radius(spec, output_sigma=output_sigma)
+    held = registry[registry["role"].isin(["validation", "test"])]
+    probabilities = {}
+    for _, row in held.iterrows():
+        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        core = (int(row["height"]), int(row["width"]))
+        probabilities[row["tile_id"]] = predict_frame(
+            models, image, core, output_sigma=output_sigma
+        )
+    table = score_tiles(held, labels, probabilities)
+    write_tile_probabilities(out_probabilities, probabilities)
+    write_scores(out_table, table)
+    return table.to_dict(orient="records")
