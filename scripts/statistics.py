@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.stats import statistics_job
+from tessera.statistics import statistics_job
 from tessera.workflow.runner import run_job
 
 datasets = snakemake.params.datasets

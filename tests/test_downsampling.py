@@ -3,7 +3,7 @@
 import pandas as pd
 import pytest
 
-from tessera.downsampling import downsampling_job, recommend_factor
+from tessera.downsampling_study import downsampling_job, recommend_factor
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import expand_variants, load_config
 

@@ -10,7 +10,7 @@ import pytest
 from scipy import stats as sps
 
 from tessera.errors import TesseraInputError
-from tessera.stats import animal_summaries, compare_conditions
+from tessera.statistics import animal_summaries, compare_conditions
 
 
 def simulated_study(

@@ -17,3 +17,16 @@ def excluded_sections(qc_table, z_factor=1):
     return sorted(
         {int(z) // z_factor for z in table.loc[table["excluded"].astype(str) == "True", "z"]}
     )
+
+
+def read_qc_table(path):
+    """The section QC table as written, one row per section (cells kept as text where not numbers).
+
+    Examples
+    --------
+    >>> import io
+    >>> table = read_qc_table(io.StringIO("z\\texcluded\\tnote\\n0\\tFalse\\t\\n1\\tTrue\\tNA\\n"))
+    >>> table["excluded"].tolist(), table["note"].tolist()
+    ([False, True], ['', 'NA'])
+    """
+    return pd.read_csv(path, sep="\t", keep_default_na=False)
