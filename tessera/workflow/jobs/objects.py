@@ -48,13 +48,13 @@ def _label_levels(root, *, target, info, shape, used):
     image.attrs.update({"ome": ome, "tessera": {"objects": used}})
     levels = []
     for k, factor in enumerate(info["factors"]):
-        level_shape = tuple(-(-s // f) for s, f in zip(shape, factor, strict=True))
+        level_shape = tuple(-(-s // f) for s, f in zip(shape, factor, strict=False))
         levels.append(
             image.create_array(
                 name=str(k),
                 shape=level_shape,
                 dtype=np.uint32,
-                chunks=tuple(min(c, s) for c, s in zip((1, 512, 512), level_shape, strict=True)),
+                chunks=tuple(min(c, s) for c, s in zip((1, 512, 512), level_shape, strict=False)),
                 dimension_names=AXES,
                 fill_value=0,
             )
