@@ -20,13 +20,33 @@ def excluded_sections(qc_table, z_factor=1):
 
 
 def read_qc_table(path):
-    """The section QC table as written, one row per section (cells kept as text where not numbers).
+    """The QC table as written, with ``excluded`` as booleans and empty cells as ``""``.
 
     Examples
     --------
     >>> import io
-    >>> table = read_qc_table(io.StringIO("z\\texcluded\\tnote\\n0\\tFalse\\t\\n1\\tTrue\\tNA\\n"))
-    >>> table["excluded"].tolist(), table["note"].tolist()
-    ([False, True], ['', 'NA'])
+    >>> table = read_qc_table(io.StringIO("z\\treason\\texcluded\\n0\\t\\tFalse\\n1\\tflat\\tTrue\\n"))
+    >>> table["reason"].tolist(), table["excluded"].tolist()
+    (['', 'flat'], [False, True])
     """
-    return pd.read_csv(path, sep="\t", keep_default_na=False)
+    table = pd.read_csv(path, sep="\t", keep_default_na=False)
+    table["excluded"] = table["excluded"].astype(str) == "True"
+    return table
+
+
+def count_sections(qc_tables):
+    """Number of sections, and of excluded sections, over several QC tables.
+
+    Examples
+    --------
+    >>> import io
+    >>> tables = [io.StringIO("z\\texcluded\\n0\\tFalse\\n1\\tTrue\\n"),
+    ...           io.StringIO("z\\texcluded\\n0\\tTrue\\n1\\tTrue\\n2\\tFalse\\n")]
+    >>> count_sections(tables)
+    {'sections': 5, 'excluded': 3}
+    """
+    tables = [read_qc_table(path) for path in qc_tables]
+    return {
+        "sections": sum(len(t) for t in tables),
+        "excluded": sum(int(t["excluded"].sum()) for t in tables),
+    }
