@@ -134,8 +134,9 @@ def label_objects(
     >>> table[["id", "voxels", "touches_volume_border"]].to_dict("list")
     {'id': [1, 2], 'voxels': [4, 8], 'touches_volume_border': [False, True]}
     """
-    # The four passes over the volume are the helpers below; this function checks the settings
-    # and carries their results from one pass to the next.
+    # Longer than 60 lines only through keyword arguments: the four passes over the volume are
+    # in tessera.objects._passes; this function checks the settings and carries each pass's
+    # results to the next.
     low = high if low is None else low
     check_settings(
         high=high,
