@@ -1,7 +1,8 @@
 """The objects rule: a stitched probability map into labelled objects, their table and settings.
 
-The labels go to ``labels/<target>`` inside a copy of the probability image (NGFF image-label,
-levels hard-linked, not copied), so a viewer shows both together.
+The threshold defaults to the one chosen on the validation tiles (from the tile scores), the
+sections QC excluded come from the QC table, and the filtering itself is
+:func:`tessera.objects.label.label_objects`.
 """
 
 from pathlib import Path
