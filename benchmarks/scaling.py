@@ -48,7 +48,7 @@ elif task["kind"] == "stitch":
     stitch_job(task["plan"], task["shards"], task["out"], viewing_levels=1)
 else:
     import numpy as np, zarr
-    from tessera.objects import label_objects
+    from tessera.objects.label import label_objects
     prob = zarr.open_array(task["prob"], mode="r")
     out = zarr.create_array(store=task["out"], shape=prob.shape, dtype=np.uint32, chunks=(1, 512, 512), zarr_format=3)
     label_objects(prob, out, spacing=(40, 16, 16), high=0.5, open_radius_nm=16, min_volume_um3=0.002,

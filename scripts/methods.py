@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.methods import methods_job
+from tessera.workflow.jobs.methods import methods_job
 from tessera.workflow.runner import run_job
 
 targets, datasets = snakemake.params.targets, snakemake.params.dataset_ids
@@ -15,11 +15,11 @@ run_job(
     methods_job,
     config_sections=snakemake.params.sections,
     sheet_rows=snakemake.params.datasets,
-    scores=dict(zip(targets, snakemake.input.scores)),
+    scores=dict(zip(targets, snakemake.input.scores, strict=True)),
     object_settings={
         t: objects[i * len(datasets) : (i + 1) * len(datasets)] for i, t in enumerate(targets)
     },
-    comparisons=dict(zip(targets, snakemake.input.comparisons)),
+    comparisons=dict(zip(targets, snakemake.input.comparisons, strict=True)),
     checksums=list(snakemake.input.checksums),
     qc_tables=list(snakemake.input.qc),
     out_path=snakemake.output[0],

@@ -5,15 +5,15 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.stats import statistics_job
+from tessera.workflow.jobs.statistics import statistics_job
 from tessera.workflow.runner import run_job
 
 datasets = snakemake.params.datasets
 run_job(
     snakemake,
     statistics_job,
-    object_tables=dict(zip(datasets, snakemake.input.objects)),
-    region_tables=dict(zip(datasets, snakemake.input.regions)),
+    object_tables=dict(zip(datasets, snakemake.input.objects, strict=True)),
+    region_tables=dict(zip(datasets, snakemake.input.regions, strict=True)),
     datasets=datasets,
     scores=snakemake.input.scores,
     out_animals=snakemake.output.animals,

@@ -2,8 +2,7 @@
 
 Meshes come from marching cubes with the voxel spacing (so they are in physical units, nm or
 µm as asked) on each object's bounding box; ``step`` > 1 samples every step-th voxel, which
-decimates the mesh for viewing. Written as binary little-endian PLY, a plain format every mesh
-viewer reads, with the unit in a comment line.
+decimates the mesh for viewing. :mod:`tessera.io.ply` writes them as binary PLY.
 """
 
 import numpy as np
@@ -57,69 +56,29 @@ def object_mesh(mask, *, spacing, origin=(0, 0, 0), step=1, unit="nm"):
     return verts.astype(np.float32), faces.astype(np.int32)
 
 
-def write_ply(path, meshes, *, unit="nm", comment=""):
-    """Write meshes [(vertices, faces, object id), ...] to one binary PLY, x y z order.
-
-    Each vertex carries its object id, so a viewer can colour objects apart.
-    """
-    vertices = [m[0] for m in meshes]
-    n_vertices = sum(len(v) for v in vertices)
-    n_faces = sum(len(m[1]) for m in meshes)
-    header = [
-        "ply",
-        "format binary_little_endian 1.0",
-        f"comment unit {unit}",
-        *([f"comment {comment}"] if comment else []),
-        f"element vertex {n_vertices}",
-        "property float x",
-        "property float y",
-        "property float z",
-        "property int object",
-        f"element face {n_faces}",
-        "property list uchar int vertex_indices",
-        "end_header",
-    ]
-    vertex_type = np.dtype([("x", "<f4"), ("y", "<f4"), ("z", "<f4"), ("object", "<i4")])
-    face_type = np.dtype([("n", "u1"), ("a", "<i4"), ("b", "<i4"), ("c", "<i4")])
-    with open(path, "wb") as fh:
-        fh.write(("\n".join(header) + "\n").encode("ascii"))
-        offset = 0
-        face_blocks = []
-        for verts, faces, object_id in meshes:
-            block = np.empty(len(verts), vertex_type)
-            block["x"], block["y"], block["z"] = verts[:, 2], verts[:, 1], verts[:, 0]
-            block["object"] = object_id
-            fh.write(block.tobytes())
-            f = np.empty(len(faces), face_type)
-            f["n"] = 3
-            f["a"], f["b"], f["c"] = (faces + offset).T
-            face_blocks.append(f)
-            offset += len(verts)
-        for f in face_blocks:
-            fh.write(f.tobytes())
-
-
-def read_ply(path):
-    """Read a PLY written by :func:`write_ply`: (vertices z y x, faces, object ids, unit)."""
-    with open(path, "rb") as fh:
-        data = fh.read()
-    end = data.index(b"end_header\n") + len(b"end_header\n")
-    header = data[:end].decode("ascii").splitlines()
-    n_v = int(next(h.split()[-1] for h in header if h.startswith("element vertex")))
-    n_f = int(next(h.split()[-1] for h in header if h.startswith("element face")))
-    unit = next(h.split()[-1] for h in header if h.startswith("comment unit"))
-    vertex_type = np.dtype([("x", "<f4"), ("y", "<f4"), ("z", "<f4"), ("object", "<i4")])
-    face_type = np.dtype([("n", "u1"), ("a", "<i4"), ("b", "<i4"), ("c", "<i4")])
-    v = np.frombuffer(data, vertex_type, n_v, end)
-    f = np.frombuffer(data, face_type, n_f, end + n_v * vertex_type.itemsize)
-    verts = np.stack([v["z"], v["y"], v["x"]], 1)
-    return verts, np.stack([f["a"], f["b"], f["c"]], 1), v["object"].copy(), unit
-
-
 def render_preview(meshes, path, *, title="", unit="nm"):
-    """A PNG rendering of meshes (matplotlib, shaded by face orientation)."""
+    """A PNG rendering of meshes (matplotlib, shaded by face orientation).
+
+    Parameters
+    ----------
+    meshes : list of (vertices, faces, object id)
+        As made by :func:`object_mesh` (vertices z y x); each object gets a colour of its own.
+    path : path or file-like
+        Where the PNG goes.
+    title : str
+    unit : str
+        Unit of the vertices, for the axis labels.
+
+    Examples
+    --------
+    >>> import io
+    >>> png = io.BytesIO()
+    >>> render_preview([(*object_mesh(np.ones((2, 2, 2), bool), spacing=(1, 1, 1)), 1)], png)
+    >>> png.getvalue()[:4]
+    b'\x89PNG'
+    """
     plt = pyplot()
-    from mpl_toolkits.mplot3d.art3d import Poly3DCollection
+    from mpl_toolkits.mplot3d.art3d import Poly3DCollection  # noqa: PLC0415 - after pyplot() chose Agg
 
     fig = plt.figure(figsize=(5, 5))
     ax = fig.add_subplot(projection="3d")
@@ -139,7 +98,7 @@ def render_preview(meshes, path, *, title="", unit="nm"):
     if lows:
         low, high = np.min(lows, axis=0), np.max(highs, axis=0)
         centre, half = (low + high) / 2, (high - low).max() / 2 or 1.0
-        for setter, c in zip((ax.set_xlim, ax.set_ylim, ax.set_zlim), centre):
+        for setter, c in zip((ax.set_xlim, ax.set_ylim, ax.set_zlim), centre, strict=True):
             setter(c - half, c + half)
     ax.set_xlabel(f"x ({unit})")
     ax.set_ylabel(f"y ({unit})")
@@ -149,46 +108,40 @@ def render_preview(meshes, path, *, title="", unit="nm"):
     plt.close(fig)
 
 
-def meshes_job(
-    objects_image,
-    measured_table,
-    out_ply,
-    out_preview,
-    *,
-    target,
-    step=2,
-    unit="um",
-    preview_objects=12,
-):
-    """Meshes of every object of one dataset into one PLY; a preview of the largest objects.
+def object_meshes(labels, objects, *, spacing, step=1, unit="nm"):
+    """Meshes of every object of an object table, reading each bounding box of `labels`.
 
-    Objects are read from their bounding boxes one at a time.
+    Parameters
+    ----------
+    labels : (Z, Y, X) array-like
+        Label volume (zarr or numpy); only bounding boxes are read, one object at a time.
+    objects : pandas.DataFrame
+        The object table (``id`` and bounding box ``z0 y0 x0 z1 y1 x1``, ends exclusive).
+    spacing : (float, float, float)
+        Voxel size z y x in nm.
+    step : int
+        Marching-cubes step size (see :func:`object_mesh`).
+    unit : {'nm', 'um'}
+
+    Returns
+    -------
+    list of (vertices, faces, object id)
+        In the order of the table; vertices are placed in the volume.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> labels = np.zeros((4, 6, 6), np.uint32); labels[1:3, 1:3, 1:3] = 5
+    >>> table = pd.DataFrame({"id": [5], "z0": [1], "y0": [1], "x0": [1], "z1": [3], "y1": [3], "x1": [3]})
+    >>> [(object_id, float(v[:, 2].min()), float(v[:, 2].max())) for v, f, object_id in
+    ...  object_meshes(labels, table, spacing=(1, 1, 1))]
+    [(5, 0.5, 2.5)]
     """
-    import pandas as pd
-
-    from tessera.io.atomic import atomic_path
-    from tessera.io.omezarr import open_image
-
-    group, info = open_image(objects_image)
-    labels = group[f"labels/{target}/0"]
-    table = pd.read_csv(measured_table, sep="\t")
     meshes = []
-    for row in table.itertuples(index=False):
+    for row in objects.itertuples(index=False):
         box = np.asarray(labels[row.z0 : row.z1, row.y0 : row.y1, row.x0 : row.x1]) == row.id
         verts, faces = object_mesh(
-            box, spacing=info["spacing"], origin=(row.z0, row.y0, row.x0), step=step, unit=unit
+            box, spacing=spacing, origin=(row.z0, row.y0, row.x0), step=step, unit=unit
         )
         meshes.append((verts, faces, int(row.id)))
-    with atomic_path(out_ply) as tmp:
-        write_ply(
-            tmp, meshes, unit=unit, comment=f"tessera {target} objects, marching cubes step {step}"
-        )
-    largest = set(table.nlargest(preview_objects, "voxels")["id"]) if len(table) else set()
-    with atomic_path(out_preview) as tmp:
-        render_preview(
-            [m for m in meshes if m[2] in largest],
-            tmp,
-            unit=unit,
-            title=f"{target}: the {len(largest)} largest of {len(table)} objects ({unit})",
-        )
-    return {"objects": len(meshes), "faces": int(sum(len(m[1]) for m in meshes))}
+    return meshes

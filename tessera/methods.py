@@ -1,19 +1,12 @@
 """A methods paragraph written from the run's own settings, results, software and data checksums.
 
-Everything in the text is read from what the run used or produced (the config subsections, the
-tile scores, the object settings, the statistics tables, installed package versions and the
-SHA-256 of every input file), so the paragraph cannot drift from the analysis it describes.
+Everything in the text comes from what the run used or produced, given as plain values: the
+config subsections, the tile scores, the object settings, the statistics tables, the section
+counts of QC, the installed package versions and the SHA-256 of every input file. So the
+paragraph cannot drift from the analysis it describes.
 """
 
-import json
-from pathlib import Path
-
-import pandas as pd
-
 from tessera import __version__
-from tessera.io.atomic import write_text
-from tessera.io.digests import file_sha256
-from tessera.workflow.versions import software_versions
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -24,18 +17,11 @@ CLASSIFIER_NAMES = {
 }
 
 
-def checksum_job(paths, out_path):
-    """Write ``<sha256>  <path>`` lines for the input files of one dataset (an audit record)."""
-    lines = [f"{file_sha256(p)}  {p}" for p in paths]
-    write_text(out_path, "\n".join(lines) + "\n")
-    return {"files": len(paths)}
-
-
 def _fmt(values):
     return ", ".join(f"{v:g}" for v in values)
 
 
-def _target_text(name, settings, scores, objects_settings, comparison, qc):
+def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
     val = scores[scores["role"] == "validation"].iloc[0]
@@ -91,75 +77,29 @@ def _target_text(name, settings, scores, objects_settings, comparison, qc):
     return text
 
 
-def methods_job(
-    config_sections,
-    sheet_rows,
-    scores,
-    object_settings,
-    comparisons,
-    checksums,
-    qc_tables,
-    out_path,
-):
-    """Write the methods paragraph (Markdown) of the study.
-
-    Parameters
-    ----------
-    config_sections : dict
-        ``ingest``, ``pyramid``, ``qc``, ``statistics`` and ``targets`` of the validated config.
-    sheet_rows : dict
-        Dataset id → ``{"condition", "subject"}``.
-    scores, comparisons : dict
-        Target → tile scores table / statistics comparison table.
-    object_settings : dict
-        Target → list of the settings files written by the objects step (one per dataset).
-    checksums : list of path
-        The per-dataset checksum records.
-    qc_tables : list of path
-        Section QC tables (to count excluded sections).
-    """
-    qc = pd.concat(
-        [pd.read_csv(p, sep="\t", keep_default_na=False) for p in qc_tables], ignore_index=True
-    )
-    excluded = int((qc["excluded"].astype(str) == "True").sum())
+def _study_text(c, sheet_rows, section_counts):
+    """The paragraph on the data: datasets, animals, conditions, section QC and the pyramid."""
     animals = {r["subject"] for r in sheet_rows.values()}
     conditions = sorted({r["condition"] for r in sheet_rows.values()})
-    c = config_sections
-    text = [
-        "# Methods (generated from this run)",
-        "",
-        (
-            f"{len(sheet_rows)} datasets from {len(animals)} animals in {len(conditions)} conditions "
-            f"({', '.join(conditions)}) were converted to OME-Zarr (NGFF 0.5; Moore et al. 2023) with tessera "
-            f"{__version__}, run by Snakemake (Mölder et al. 2021). Each section was checked for sharpness (variance "
-            f"of the Laplacian of a Gaussian, σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and "
-            f"shift (phase correlation); {excluded} of {len(qc)} sections were flagged and "
-            + (
-                "excluded from training and flagged in the object tables. "
-                if c["qc"]["exclude_flagged"]
-                else "kept (exclusion switched off). "
-            )
-            + f"A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
-        ),
-        "",
-    ]
-    for target, settings in c["targets"].items():
-        used = [json.loads(Path(p).read_text(encoding="utf-8")) for p in object_settings[target]]
-        comparison = (
-            pd.read_csv(comparisons[target], sep="\t", keep_default_na=False)
-            if target in comparisons
-            else None
+    excluded, sections = section_counts["excluded"], section_counts["sections"]
+    return (
+        f"{len(sheet_rows)} datasets from {len(animals)} animals in {len(conditions)} conditions "
+        f"({', '.join(conditions)}) were converted to OME-Zarr (NGFF 0.5; Moore et al. 2023) with tessera "
+        f"{__version__}, run by Snakemake (Mölder et al. 2021). Each section was checked for sharpness (variance "
+        f"of the Laplacian of a Gaussian, σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and "
+        f"shift (phase correlation); {excluded} of {sections} sections were flagged and "
+        + (
+            "excluded from training and flagged in the object tables. "
+            if c["qc"]["exclude_flagged"]
+            else "kept (exclusion switched off). "
         )
-        if comparison is not None:
-            for col in ("effect", "ci_low", "ci_high"):
-                comparison[col] = pd.to_numeric(comparison[col], errors="coerce")
-        text += [
-            _target_text(
-                target, settings, pd.read_csv(scores[target], sep="\t"), used[0], comparison, qc
-            ),
-            "",
-        ]
-    text += [
+        + f"A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
+    )
+
+
+def _closing_lines(c, software, checksums):
+    """Morphometry and statistics, the caveat, the software and the input checksums."""
+    lines = [
         (
             "Morphometry used the voxel size throughout: surface area by marching cubes (Lorensen & Cline 1987), "
             "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
@@ -173,14 +113,79 @@ def methods_job(
         "Automatic segmentation is a research measurement: the accuracies above hold for tiles like the annotated "
         "ones, and each new dataset should be validated against held-out annotation.",
         "",
-        "Software: " + ", ".join(f"{k} {v}" for k, v in software_versions().items()) + ".",
+        "Software: " + ", ".join(f"{k} {v}" for k, v in software.items()) + ".",
         "",
         "Input data (SHA-256):",
         "",
     ]
-    for path in checksums:
-        for line in Path(path).read_text(encoding="utf-8").splitlines():
-            digest, _, name = line.partition("  ")
-            text.append(f"- `{name}`: `{digest}`")
-    write_text(out_path, "\n".join(text) + "\n")
-    return {"words": sum(len(t.split()) for t in text)}
+    return lines + [f"- `{name}`: `{digest}`" for digest, name in checksums]
+
+
+def methods_text(
+    config_sections,
+    sheet_rows,
+    *,
+    scores,
+    object_settings,
+    comparisons,
+    section_counts,
+    checksums,
+    software,
+):
+    """The methods paragraph (Markdown) of the study.
+
+    Parameters
+    ----------
+    config_sections : dict
+        ``qc``, ``pyramid``, ``statistics`` and ``targets`` of the validated config (targets in
+        the order they are described).
+    sheet_rows : dict
+        Dataset id → ``{"condition", "subject"}``.
+    scores : dict
+        Target → tile scores table (a ``validation`` and a ``test`` row).
+    object_settings : dict
+        Target → the settings the objects step used (as it records them).
+    comparisons : dict
+        Target → statistics comparison table; a target without one gets no results sentence.
+    section_counts : dict
+        ``sections`` and ``excluded``: sections checked by QC, and those it flagged.
+    checksums : sequence of (str, str)
+        ``(sha256, file)`` of every input file.
+    software : dict
+        Package → version, listed as given.
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> sections = {"qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+    ...             "pyramid": {"levels": 3}, "statistics": {"confidence": 0.95}, "targets": {}}
+    >>> text = methods_text(sections, {"a": {"condition": "warm", "subject": "m1"}}, scores={},
+    ...                     object_settings={}, comparisons={},
+    ...                     section_counts={"sections": 40, "excluded": 2},
+    ...                     checksums=[("ab12", "data/a.tif")], software={"numpy": "2.1.0"})
+    >>> print(text.splitlines()[2][:58])
+    1 datasets from 1 animals in 1 conditions (warm) were conv
+    >>> "2 of 40 sections were flagged and excluded from training" in text
+    True
+    >>> text.splitlines()[-5:]
+    ['Software: numpy 2.1.0.', '', 'Input data (SHA-256):', '', '- `data/a.tif`: `ab12`']
+    """
+    c = config_sections
+    text = [
+        "# Methods (generated from this run)",
+        "",
+        _study_text(c, sheet_rows, section_counts),
+        "",
+    ]
+    for target, settings in c["targets"].items():
+        text += [
+            _target_text(
+                target, settings, scores[target], object_settings[target], comparisons.get(target)
+            ),
+            "",
+        ]
+    text += _closing_lines(c, software, checksums)
+    return "\n".join(text) + "\n"

@@ -8,8 +8,6 @@ one from their bounding boxes, so no whole volume is ever loaded.
 """
 
 import math
-import tempfile
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -34,6 +32,18 @@ MEASURES = (
     "branch_points",
     "end_points",
     "complexity_index",
+)
+#: Columns of the region table, in order.
+REGION_COLUMNS = (
+    "region",
+    "region_volume_um3",
+    "objects",
+    "objects_whole",
+    "V_V",
+    "S_V",
+    "N_V",
+    "N_V_exclude_touching",
+    "N_V_biased",
 )
 
 
@@ -67,6 +77,12 @@ def principal_axes(mask, *, spacing):
     A solid ellipsoid with semi-axes a has variance a²/5 along each axis, so the length along a
     principal direction is 2 √(5 λ) for eigenvalue λ of the covariance of voxel centres. Each voxel
     is a box, not a point: its own variance s²/12 per axis is added.
+
+    Examples
+    --------
+    >>> box = np.ones((2, 4, 8), bool)  # a solid box of side L has axis 2 √(5/12) L ≈ 1.29 L
+    >>> [round(length, 3) for length in principal_axes(box, spacing=(100, 100, 100))]
+    [1.033, 0.516, 0.258]
     """
     spacing = np.asarray(normalize_spacing(spacing, 3))
     coords = np.argwhere(mask) * spacing
@@ -105,7 +121,7 @@ def skeleton_measures(mask, *, spacing):
     for axis, f in enumerate(factors):
         if f > 1:
             fine = np.repeat(fine, f, axis=axis)
-    step = np.array([s / f for s, f in zip(spacing, factors)])
+    step = np.array([s / f for s, f in zip(spacing, factors, strict=True)])
     skeleton = skeletonize(np.pad(fine, 1)) > 0
     points = np.argwhere(skeleton)
     if len(points) == 0:
@@ -132,6 +148,11 @@ def complexity_index(surface_um2, volume_um3):
 
     Dimensionless; it grows as an object departs from a compact, sphere-like shape (for a
     sphere it is 9 / (4π) ≈ 0.716), through elongation and branching alike.
+
+    Examples
+    --------
+    >>> round(complexity_index(4 * math.pi, 4 / 3 * math.pi), 3)  # the unit sphere
+    0.716
     """
     return surface_um2**3 / (16 * math.pi**2 * volume_um3**2)
 
@@ -145,6 +166,12 @@ def measure_object(mask, *, spacing):
         Keys of :data:`MEASURES`. Sphericity ψ = π^(1/3) (6V)^(2/3) / A (Wadell 1935);
         equivalent diameter = (6V/π)^(1/3); elongation = major / intermediate axis, flatness =
         intermediate / minor axis (both ≥ 1).
+
+    Examples
+    --------
+    >>> m = measure_object(np.ones((4, 4, 4), bool), spacing=(50, 50, 50))
+    >>> m["volume_um3"], round(m["sphericity"], 2), m["elongation"], m["end_points"]
+    (0.008, 1.64, 1.0, 0)
     """
     spacing = normalize_spacing(spacing, 3)
     mask = np.asarray(mask, bool)
@@ -187,6 +214,15 @@ def measure_objects(labels, objects, *, spacing):
     -------
     pandas.DataFrame
         The object table with the columns of :data:`MEASURES` added (volume from the voxels).
+
+    Examples
+    --------
+    >>> labels = np.zeros((6, 12, 12), np.uint32)
+    >>> labels[1:5, 1:5, 1:5] = 1; labels[0:4, 6:12, 6:12] = 2
+    >>> table = pd.DataFrame({"id": [1, 2], "z0": [1, 0], "y0": [1, 6], "x0": [1, 6],
+    ...                       "z1": [5, 4], "y1": [5, 12], "x1": [5, 12]})
+    >>> measure_objects(labels, table, spacing=(100, 100, 100))["surface_um2"].round(2).tolist()
+    [0.47, 1.06]
     """
     rows = []
     for row in objects.itertuples(index=False):
@@ -233,6 +269,33 @@ def edge_corrected_weights(extents, window):
     return np.prod(window) / np.prod(room, axis=1)
 
 
+def _overlaps(labels, region_labels, *, shape, block):
+    """Voxels per region, and per (object id, region) pair, counted block by block."""
+    region_voxels = {}
+    overlap = {}  # (object id, region) -> voxels
+    for z0 in range(0, shape[0], block[0]):
+        for y0 in range(0, shape[1], block[1]):
+            for x0 in range(0, shape[2], block[2]):
+                sl = (slice(z0, z0 + block[0]), slice(y0, y0 + block[1]), slice(x0, x0 + block[2]))
+                obj = np.asarray(labels[sl]).astype(np.int64).ravel()
+                reg = (
+                    np.ones_like(obj)
+                    if region_labels is None
+                    else np.asarray(region_labels[sl]).astype(np.int64).ravel()
+                )
+                ids, counts = np.unique(reg, return_counts=True)
+                for r, c in zip(ids, counts, strict=True):
+                    region_voxels[int(r)] = region_voxels.get(int(r), 0) + int(c)
+                both = (obj > 0) & (reg > 0)
+                if both.any():
+                    pairs, counts = np.unique(
+                        np.stack([obj[both], reg[both]]), axis=1, return_counts=True
+                    )
+                    for (o, r), c in zip(pairs.T, counts, strict=True):
+                        overlap[(int(o), int(r))] = overlap.get((int(o), int(r)), 0) + int(c)
+    return region_voxels, overlap
+
+
 def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512, 512)):
     """Count, volume, surface and numerical densities of objects per region.
 
@@ -271,6 +334,19 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
     volume as the window; for a region smaller than the volume (a cell) it is the same
     correction, exact on average over regions rather than for each one. ``N_V_biased`` counts
     cut objects as whole ones and overcounts. Report ``N_V`` and keep the other two beside it.
+
+    Examples
+    --------
+    >>> labels = np.zeros((6, 12, 12), np.uint32)
+    >>> labels[1:5, 1:5, 1:5] = 1; labels[0:4, 6:12, 6:12] = 2  # object 2 is cut by the border
+    >>> table = pd.DataFrame({"id": [1, 2], "surface_um2": [0.5, 1.0], "z0": [1, 0],
+    ...                       "y0": [1, 6], "x0": [1, 6], "z1": [5, 4], "y1": [5, 12],
+    ...                       "x1": [5, 12], "touches_volume_border": [False, True]})
+    >>> regions, home = region_densities(labels, None, table, spacing=(100, 100, 100))
+    >>> regions[["objects", "objects_whole", "V_V", "N_V"]].round(3).to_dict("records")
+    [{'objects': 2, 'objects_whole': 1, 'V_V': 0.241, 'N_V': 20.408}]
+    >>> home.tolist()
+    [1, 1]
     """
     spacing = normalize_spacing(spacing, 3)
     voxel_um3 = float(np.prod(spacing)) / 1e9
@@ -279,28 +355,7 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
         raise TesseraInputError(
             f"region mask has shape {tuple(region_labels.shape)}, the labels {shape}"
         )
-    region_voxels = {}
-    overlap = {}  # (object id, region) -> voxels
-    for z0 in range(0, shape[0], block[0]):
-        for y0 in range(0, shape[1], block[1]):
-            for x0 in range(0, shape[2], block[2]):
-                sl = (slice(z0, z0 + block[0]), slice(y0, y0 + block[1]), slice(x0, x0 + block[2]))
-                obj = np.asarray(labels[sl]).astype(np.int64).ravel()
-                reg = (
-                    np.ones_like(obj)
-                    if region_labels is None
-                    else np.asarray(region_labels[sl]).astype(np.int64).ravel()
-                )
-                ids, counts = np.unique(reg, return_counts=True)
-                for r, c in zip(ids, counts):
-                    region_voxels[int(r)] = region_voxels.get(int(r), 0) + int(c)
-                both = (obj > 0) & (reg > 0)
-                if both.any():
-                    pairs, counts = np.unique(
-                        np.stack([obj[both], reg[both]]), axis=1, return_counts=True
-                    )
-                    for (o, r), c in zip(pairs.T, counts):
-                        overlap[(int(o), int(r))] = overlap.get((int(o), int(r)), 0) + int(c)
+    region_voxels, overlap = _overlaps(labels, region_labels, shape=shape, block=block)
     home = {}
     for (o, r), c in overlap.items():
         if c > home.get(o, (0, 0))[1]:
@@ -335,107 +390,8 @@ def region_densities(labels, region_labels, objects, *, spacing, block=(16, 512,
                 "N_V_biased": len(members) / vol,
             }
         )
-    table = pd.DataFrame(
-        rows,
-        columns=[
-            "region",
-            "region_volume_um3",
-            "objects",
-            "objects_whole",
-            "V_V",
-            "S_V",
-            "N_V",
-            "N_V_exclude_touching",
-            "N_V_biased",
-        ],
-    )
+    table = pd.DataFrame(rows, columns=list(REGION_COLUMNS))
     region_of = pd.Series(
         {int(o): home.get(int(o), (0, 0))[0] for o in objects["id"]}, name="region", dtype=np.int64
     )
     return table, region_of
-
-
-def read_region_mask(path, *, shape, factors, out):
-    """Copy a region label TIFF (full resolution) into `out` at a working level, page by page.
-
-    Coarser levels take every f-th voxel (labels are not averaged). The TIFF's shape reduced by
-    `factors` must equal `shape`.
-    """
-    import tifffile
-
-    try:
-        with tifffile.TiffFile(path) as tif:
-            pages = tif.pages
-            first = pages[0].shape
-            full = (len(pages), *first)
-            reduced = tuple(-(-n // f) for n, f in zip(full, factors))
-            if reduced != tuple(shape):
-                raise TesseraInputError(
-                    f"region mask has shape {full}, which at the working level ({'x'.join(map(str, factors))} smaller) "
-                    f"is {reduced}; the image there is {tuple(shape)} (same stack and voxel size expected)",
-                    source=path,
-                )
-            for oz in range(shape[0]):
-                page = pages[oz * factors[0]].asarray()
-                out[oz] = page[:: factors[1], :: factors[2]]
-    except (tifffile.TiffFileError, OSError) as exc:
-        raise TesseraInputError(
-            f"cannot read the region mask as TIFF: {exc}", source=path
-        ) from None
-    return out
-
-
-def morphometry_job(
-    objects_image,
-    objects_table,
-    out_objects,
-    out_regions,
-    *,
-    target,
-    roi_mask=None,
-    block=(16, 512, 512),
-):
-    """Measure every object of one dataset and target; densities per region (ROI labels) or volume.
-
-    Writes the object table with the measures and its ``region`` column, and the region table.
-    """
-    import zarr
-
-    from tessera.io.atomic import write_table
-    from tessera.io.omezarr import open_image
-
-    group, info = open_image(objects_image)
-    try:
-        labels = group[f"labels/{target}/0"]
-    except KeyError:
-        raise TesseraInputError(
-            f"no labels/{target} in the image (rule objects writes it)", source=objects_image
-        ) from None
-    spacing = info["spacing"]
-    objects = pd.read_csv(objects_table, sep="\t")
-    measured = measure_objects(labels, objects, spacing=spacing)
-    extra = info["extra"].get("probability", {})
-    factors = (
-        int(extra.get("z_factor", 1)),
-        int(extra.get("working_level_downsample", 1)),
-        int(extra.get("working_level_downsample", 1)),
-    )
-    Path(out_regions).parent.mkdir(parents=True, exist_ok=True)
-    with tempfile.TemporaryDirectory(dir=Path(out_regions).parent, prefix=".roi-") as tmp:
-        region_labels = None
-        if roi_mask:
-            region_labels = zarr.create_array(
-                store=tmp,
-                shape=labels.shape,
-                dtype=np.uint32,
-                chunks=(1, *labels.shape[1:]),
-                zarr_format=3,
-            )
-            read_region_mask(roi_mask, shape=labels.shape, factors=factors, out=region_labels)
-        regions, region_of = region_densities(
-            labels, region_labels, measured, spacing=spacing, block=block
-        )
-    measured["region"] = measured["id"].map(region_of).fillna(0).astype(int)
-    write_table(out_objects, measured)
-    write_table(out_regions, regions)
-    return {"objects": len(measured), "regions": len(regions)}

@@ -5,10 +5,6 @@ Level ``k`` is level ``k - 1`` averaged over 2 × 2 blocks in-plane (and over 2 
 an odd-sized image are averaged over the voxels that exist, so no zero padding darkens borders.
 """
 
-import os
-import shutil
-from pathlib import Path
-
 import numpy as np
 
 from tessera.block_reduce import block_mean
@@ -19,22 +15,6 @@ def _round_to(values, dtype):
         return values.astype(dtype)
     info = np.iinfo(dtype)
     return np.clip(np.rint(values), info.min, info.max).astype(dtype)
-
-
-def link_tree(src, dst):
-    """Hard-link every file of `src` into `dst` (copy where links are impossible).
-
-    Level 0 of the pyramid is the ingested array itself; hard links make it part of the new
-    multiscale store without duplicating terabytes and without touching the ingest output.
-    """
-    for root, _, files in os.walk(src):
-        target = Path(dst) / Path(root).relative_to(src)
-        target.mkdir(parents=True, exist_ok=True)
-        for f in files:
-            try:
-                os.link(Path(root) / f, target / f)
-            except OSError:
-                shutil.copy2(Path(root) / f, target / f)
 
 
 def downsample_level(source, target, *, factors, band_rows=None):

@@ -3,9 +3,10 @@
 import pandas as pd
 import pytest
 
-from tessera.downsampling import downsampling_job, recommend_factor
+from tessera.downsampling_study import recommend_factor
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import expand_variants, load_config
+from tessera.workflow.jobs.downsampling_study import downsampling_job
 
 
 def base_config(**target):
@@ -75,7 +76,7 @@ def test_recommendation_is_the_cheapest_factor_within_tolerance(tmp_path):
     assert recommend_factor(curve, tolerance=0.02) == 4
     assert recommend_factor(curve, tolerance=0.0) == 2
     summaries = []
-    for f, f1 in zip([2, 4, 8], [0.95, 0.96, 0.95]):
+    for f, f1 in zip([2, 4, 8], [0.95, 0.96, 0.95], strict=True):
         path = tmp_path / f"s{f}.tsv"
         pd.DataFrame(
             {

@@ -7,7 +7,8 @@ import pytest
 from skimage.measure import marching_cubes, mesh_surface_area
 
 from tessera.errors import TesseraInputError
-from tessera.meshes import object_mesh, read_ply, render_preview, write_ply
+from tessera.io.ply import read_ply, write_ply
+from tessera.meshes import object_mesh, render_preview
 
 
 def ball(radius_vox):

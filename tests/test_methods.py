@@ -5,7 +5,11 @@ import json
 
 import pandas as pd
 
-from tessera.methods import checksum_job, file_sha256, methods_job
+from tessera.io.digests import file_sha256
+from tessera.workflow.jobs.audit import audit_job
+from tessera.workflow.jobs.checksum_inputs import checksum_job
+from tessera.workflow.jobs.methods import methods_job
+from tessera.workflow.provenance import _file_entry
 
 
 def test_checksums_match_hashlib(tmp_path):
@@ -122,10 +126,6 @@ def test_methods_text_is_written_from_the_run(tmp_path):
 
 
 def test_audit_manifest_and_ro_crate(tmp_path):
-    import json
-
-    from tessera.workflow.audit import audit_job
-
     results = tmp_path / "results"
     (results / "a").mkdir(parents=True)
     (results / "a" / "table.tsv").write_text("x\n1\n")
@@ -185,8 +185,6 @@ def test_audit_manifest_and_ro_crate(tmp_path):
 def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_manifests(tmp_path):
     # Reference: hashlib.sha256. Small inputs are hashed whole; a store above the limit is named
     # by the SHA-256 of its checksum manifests, so a job never rereads a terabyte input for its record.
-    from tessera.workflow.provenance import _file_entry
-
     table = tmp_path / "t.tsv"
     table.write_bytes(b"a\tb\n1\t2\n")
     assert (

@@ -5,6 +5,7 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+import tifffile
 from scipy import ndimage
 from skimage.draw import line_nd
 from skimage.measure import marching_cubes, mesh_surface_area, regionprops
@@ -12,21 +13,22 @@ from skimage.measure import marching_cubes, mesh_surface_area, regionprops
 from tessera.errors import TesseraInputError
 from tessera.morphometry import (
     complexity_index,
+    edge_corrected_weights,
     measure_object,
     measure_objects,
     principal_axes,
-    read_region_mask,
     region_densities,
     skeleton_measures,
     surface_area,
 )
+from tessera.workflow.jobs.morphometry import read_region_mask
 
 SPACINGS = [(10, 10, 10), (20, 10, 10), (40, 10, 10), (40, 20, 20)]
 
 
 def ellipsoid(a, b, c, spacing):
     """Voxelised solid ellipsoid with semi-axes a, b, c nm along z, y, x."""
-    n = [int(math.ceil(r / s)) + 2 for r, s in zip((a, b, c), spacing)]
+    n = [int(math.ceil(r / s)) + 2 for r, s in zip((a, b, c), spacing, strict=True)]
     zz, yy, xx = np.ogrid[-n[0] : n[0] + 1, -n[1] : n[1] + 1, -n[2] : n[2] + 1]
     return (zz * spacing[0] / a) ** 2 + (yy * spacing[1] / b) ** 2 + (xx * spacing[2] / c) ** 2 <= 1
 
@@ -202,8 +204,6 @@ def test_edge_corrected_count_is_unbiased_where_excluding_cut_objects_is_not():
     # position where they meet a 20 x 60 x 60 window. Averaged over many windows, the weighted
     # count of whole boxes per voxel recovers the true density of each size; the plain count of
     # whole boxes falls short, the more so for the large ones.
-    from tessera.morphometry import edge_corrected_weights
-
     rng = np.random.default_rng(7)
     window = np.array([20, 60, 60])
     density = 2e-4  # boxes per voxel, for each size
@@ -227,8 +227,6 @@ def test_edge_corrected_count_is_unbiased_where_excluding_cut_objects_is_not():
 
 
 def test_region_mask_of_another_shape_is_refused(tmp_path):
-    import tifffile
-
     path = tmp_path / "cells.tif"
     tifffile.imwrite(path, np.zeros((6, 40, 40), np.uint16))
     with pytest.raises(TesseraInputError, match="cells.tif: region mask has shape \\(6, 40, 40\\)"):

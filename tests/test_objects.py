@@ -14,8 +14,10 @@ from skimage.filters import apply_hysteresis_threshold
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.objects import ball, connectivity_structure, label_objects, objects_job
+from tessera.objects.label import label_objects
+from tessera.objects.morphology import ball, connectivity_structure
 from tessera.workflow.config import load_config
+from tessera.workflow.jobs.objects import objects_job
 
 SPACING = (40.0, 10.0, 10.0)
 
@@ -56,7 +58,7 @@ def reference(p, *, high, low, open_nm=0, close_nm=0, connectivity=26, vmin=0.0,
         )
         out[holes & ~np.isin(cavities, touching)] = k
     volumes = ndimage.sum_labels(np.ones_like(p), out, keep) * np.prod(SPACING) / 1e9
-    for k, v in zip(keep, volumes):
+    for k, v in zip(keep, volumes, strict=True):
         if v < vmin or (vmax is not None and v > vmax):
             out[out == k] = 0
     return ndimage.label(out > 0, st)[0]

@@ -10,14 +10,15 @@ import pytest
 from scipy import stats as sps
 
 from tessera.errors import TesseraInputError
-from tessera.stats import animal_summaries, compare_conditions
+from tessera.statistics import animal_summaries, compare_conditions
+
+TREATED_RATIO = 1.25  # the simulated condition effect on object volume
 
 
-def simulated_study(
-    seed, *, effect=math.log(1.25), animals=4, objects=60, animal_sd=0.08, object_sd=0.5
-):
+def simulated_study(seed, *, effect=None, animals=4, objects=60, animal_sd=0.08, object_sd=0.5):
     """Log-normal object volumes nested in animals nested in two conditions (textbook design:
     random intercept per animal, fixed condition effect on the log scale)."""
+    effect = math.log(TREATED_RATIO) if effect is None else effect
     rng = np.random.default_rng(seed)
     rows = []
     for condition, shift in (("control", 0.0), ("treated", effect)):
@@ -55,7 +56,7 @@ def test_effect_matches_a_mixed_model_from_statsmodels():
     # In a balanced design its fixed effect equals the difference of per-animal means.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # statsmodels' own import-time deprecation notices
-        import statsmodels.formula.api as smf
+        import statsmodels.formula.api as smf  # noqa: PLC0415 - under catch_warnings, see above
 
         objects = simulated_study(2, animal_sd=0.2)
         objects["log_volume"] = np.log(objects["volume_um3"])

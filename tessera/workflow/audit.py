@@ -19,7 +19,6 @@ from pathlib import Path
 import pandas as pd
 
 from tessera import __version__
-from tessera.io.atomic import write_table, write_text
 from tessera.io.digests import file_sha256
 from tessera.workflow.versions import software_versions
 
@@ -103,22 +102,8 @@ def provenance_index(root):
     return pd.DataFrame(rows, columns=RECORD_COLUMNS)
 
 
-def ro_crate(table, inputs, *, name, description, root_dir, records=None):
-    """RO-Crate 1.1 metadata (JSON-LD dict) of the run: workflow, inputs, results, and the job
-    provenance records (each ``about`` the results its job wrote)."""
-    now = datetime.now(UTC).replace(microsecond=0).isoformat()
-    results = [
-        {
-            "@id": r.path + ("/" if r.kind == "store" else ""),
-            "@type": "Dataset" if r.kind == "store" else "File",
-            "contentSize": int(r.bytes),
-            "sha256": r.sha256,
-        }
-        for r in table.itertuples(index=False)
-    ]
-    sources = [{"@id": str(Path(p)), "@type": "File", "sha256": file_sha256(p)} for p in inputs]
-    root = Path(root_dir)
-    listed = {r["@id"] for r in results}
+def _provenance_entries(records, root, listed):
+    """Crate entries of the job records, each ``about`` those of its outputs the crate lists."""
     provenance = []
     for row in records.itertuples(index=False) if records is not None else []:
         about = [
@@ -136,6 +121,27 @@ def ro_crate(table, inputs, *, name, description, root_dir, records=None):
                 "about": [{"@id": a + ("/" if a + "/" in listed else "")} for a in about],
             }
         )
+    return provenance
+
+
+def ro_crate(table, inputs, *, name, description, root_dir, records=None):
+    """RO-Crate 1.1 metadata (JSON-LD dict) of the run: workflow, inputs, results, and the job
+    provenance records (each ``about`` the results its job wrote).
+
+    Most of this function is the crate's JSON-LD graph written out as one literal.
+    """
+    now = datetime.now(UTC).replace(microsecond=0).isoformat()
+    results = [
+        {
+            "@id": r.path + ("/" if r.kind == "store" else ""),
+            "@type": "Dataset" if r.kind == "store" else "File",
+            "contentSize": int(r.bytes),
+            "sha256": r.sha256,
+        }
+        for r in table.itertuples(index=False)
+    ]
+    sources = [{"@id": str(Path(p)), "@type": "File", "sha256": file_sha256(p)} for p in inputs]
+    provenance = _provenance_entries(records, Path(root_dir), {r["@id"] for r in results})
     software = software_versions()
     graph = [
         {
@@ -184,32 +190,3 @@ def ro_crate(table, inputs, *, name, description, root_dir, records=None):
         *sources,
     ]
     return {"@context": "https://w3id.org/ro/crate/1.1/context", "@graph": graph}
-
-
-def audit_job(
-    outputs,
-    inputs,
-    out_manifest,
-    out_crate,
-    out_records,
-    *,
-    study_name,
-    root="results",
-    records_root="results/provenance",
-):
-    """Write the manifest of every result, the index of job provenance records and the RO-Crate."""
-    records = provenance_index(records_root)
-    table = manifest(outputs, root=Path(root), records=records)
-    write_table(out_manifest, table)
-    write_table(out_records, records)
-    crate = ro_crate(
-        table,
-        inputs,
-        name=study_name,
-        root_dir=root,
-        records=records,
-        description="Organelle segmentation and morphometry results made by tessera; automatic "
-        "segmentation is a research measurement, validated on held-out annotation.",
-    )
-    write_text(out_crate, json.dumps(crate, indent=1) + "\n")
-    return {"results": len(table), "bytes": int(table["bytes"].sum()), "records": len(records)}

@@ -3,6 +3,7 @@
 from tessera.evaluate import check_no_leakage, evaluate_tiles, plot_evaluation, plot_overlays
 from tessera.io.atomic import atomic_path, write_table
 from tessera.tile_windows import tile_window
+from tessera.workflow.files.evaluation_summary import write_evaluation_summary
 from tessera.workflow.files.pyramid import level_arrays
 from tessera.workflow.files.tile_probabilities import read_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
@@ -34,7 +35,7 @@ def evaluate_job(
     )
     summary.insert(0, "target", target)
     per_tile.insert(0, "target", target)
-    write_table(out_summary, summary)
+    write_evaluation_summary(out_summary, summary)
     write_table(out_tiles, per_tile)
     write_table(out_curve, curve)
     with atomic_path(out_curve_plot) as a, atomic_path(out_tiles_plot) as b:

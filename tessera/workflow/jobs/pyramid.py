@@ -11,9 +11,10 @@ import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
+from tessera.io.links import link_tree
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.pyramid import downsample_level, link_tree
+from tessera.pyramid import downsample_level
 
 
 def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):

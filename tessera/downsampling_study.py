@@ -10,7 +10,6 @@ import math
 import pandas as pd
 
 from tessera.errors import TesseraInputError
-from tessera.io.atomic import atomic_path, write_table
 from tessera.plotting import pyplot
 
 
@@ -30,12 +29,39 @@ def recommend_factor(curve, *, tolerance):
     return int(ok["factor"].max())
 
 
-def downsampling_job(summaries, factors, out_curve, out_plot, *, target, tolerance):
-    """Collect the test F1 of every factor, add the relative prediction cost, recommend one."""
+def factor_curve(factors, scores, *, target, tolerance):
+    """Test accuracy per downsampling factor with its relative prediction cost; the recommendation.
+
+    Parameters
+    ----------
+    factors : sequence of int
+        The in-plane downsampling factors studied.
+    scores : sequence of mapping
+        For each factor, its overall test scores: ``f1``, ``f1_ci_low``, ``f1_ci_high``,
+        ``jaccard``, ``object_f1`` and ``tiles``.
+    target : str
+    tolerance : float
+        F1 a factor may lose against the best one and still be recommended.
+
+    Returns
+    -------
+    curve : pandas.DataFrame
+        One row per factor, sorted: ``target``, ``factor``, the scores, ``test_tiles``,
+        ``relative_cost`` (voxels to predict relative to full resolution), ``recommended`` and
+        ``tolerance``.
+    chosen : int
+        The recommended factor (:func:`recommend_factor`).
+
+    Examples
+    --------
+    >>> scores = [{"f1": f1, "f1_ci_low": f1 - 0.02, "f1_ci_high": f1 + 0.01, "jaccard": 0.8,
+    ...            "object_f1": 0.9, "tiles": 6} for f1 in (0.95, 0.93, 0.80)]
+    >>> curve, chosen = factor_curve([1, 2, 4], scores, target="mito", tolerance=0.02)
+    >>> chosen, curve["relative_cost"].tolist(), curve["recommended"].tolist()
+    (2, [1.0, 0.25, 0.0625], [False, True, False])
+    """
     rows = []
-    for factor, path in zip(factors, summaries):
-        table = pd.read_csv(path, sep="\t")
-        overall = table[table["dataset"] == "all"].iloc[0]
+    for factor, overall in zip(factors, scores, strict=True):
         rows.append(
             {
                 "factor": int(factor),
@@ -54,16 +80,33 @@ def downsampling_job(summaries, factors, out_curve, out_plot, *, target, toleran
     curve["recommended"] = curve["factor"] == chosen
     curve.insert(0, "target", target)
     curve["tolerance"] = tolerance
-    write_table(out_curve, curve)
-    with atomic_path(out_plot) as tmp:
-        plot_curve(curve, tmp, target=target, chosen=chosen)
-    return {
-        "recommended": chosen,
-        "f1": dict(zip(curve["factor"].tolist(), curve["f1"].round(4).tolist())),
-    }
+    return curve, chosen
 
 
 def plot_curve(curve, path, *, target, chosen):
+    """Test F1 with its interval against the factor (log 2 axis), the recommendation marked.
+
+    Parameters
+    ----------
+    curve : pandas.DataFrame
+        As returned by :func:`factor_curve`.
+    path : path or file-like
+        Where the PNG goes.
+    target : str
+    chosen : int
+        The recommended factor.
+
+    Examples
+    --------
+    >>> import io
+    >>> scores = [{"f1": f1, "f1_ci_low": f1 - 0.02, "f1_ci_high": f1 + 0.01, "jaccard": 0.8,
+    ...            "object_f1": 0.9, "tiles": 6} for f1 in (0.95, 0.93, 0.80)]
+    >>> curve, chosen = factor_curve([1, 2, 4], scores, target="mito", tolerance=0.02)
+    >>> png = io.BytesIO()
+    >>> plot_curve(curve, png, target="mito", chosen=chosen)
+    >>> png.getvalue()[:4]
+    b'\\x89PNG'
+    """
     plt = pyplot()
 
     fig, ax = plt.subplots(figsize=(4.5, 3.5))

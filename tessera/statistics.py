@@ -106,6 +106,14 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95):
         One row per (measure, condition): animals per group, the group means, ``effect`` with
         ``ci_low`` and ``ci_high`` (Welch), ``p_value``, ``scale`` ('ratio' or 'difference') and
         ``warning`` (fewer than 3 animals in a group: the interval is wide or undefined).
+
+    Examples
+    --------
+    >>> animals = pd.DataFrame({"subject": list("abcdef"), "condition": ["warm"] * 3 + ["cold"] * 3,
+    ...                         "N_V": [1.0, 2.0, 3.0, 3.0, 4.0, 5.0]})
+    >>> row = compare_conditions(animals, measures=["N_V"], reference="warm").iloc[0]
+    >>> row["scale"], float(row["effect"]), round(float(row["ci_low"]), 3), round(float(row["p_value"]), 3)
+    ('difference', 2.0, -0.267, 0.07)
     """
     if reference not in set(animals["condition"]):
         raise TesseraInputError(
@@ -171,8 +179,26 @@ def _welch(a, b, confidence):
 REGION_MEASURES = ("objects", "V_V", "S_V", "N_V")
 
 
-def _region_animals(regions):
-    """Per-animal mean over its regions of the region densities (objects per region, V_V, S_V, N_V)."""
+def region_animal_summaries(regions):
+    """Per-animal mean over its regions of the region densities (objects per region, V_V, S_V, N_V).
+
+    Parameters
+    ----------
+    regions : pandas.DataFrame
+        One row per region with ``subject`` and the columns of :data:`REGION_MEASURES`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per animal, sorted: ``subject``, ``regions`` and ``region_<measure>``.
+
+    Examples
+    --------
+    >>> r = pd.DataFrame({"subject": ["b", "a", "a"], "objects": [4, 2, 6], "V_V": [0.1, 0.2, 0.4],
+    ...                   "S_V": [1.0, 2.0, 3.0], "N_V": [5.0, 1.0, 3.0]})
+    >>> region_animal_summaries(r).values.tolist()
+    [['a', 2, 4.0, 0.30000000000000004, 2.5, 2.0], ['b', 1, 4.0, 0.1, 1.0, 5.0]]
+    """
     rows = []
     for subject, group in regions.groupby("subject", sort=True):
         row = {"subject": subject, "regions": len(group)}
@@ -183,25 +209,26 @@ def _region_animals(regions):
     )
 
 
-def _test_accuracy(scores_path):
-    table = pd.read_csv(scores_path, sep="\t")
-    test = table[table["role"] == "test"]
-    if test.empty:
-        return {"test_f1": math.nan, "test_jaccard": math.nan}
-    return {"test_f1": float(test["f1"].iloc[0]), "test_jaccard": float(test["jaccard"].iloc[0])}
+def _pooled(tables, datasets, columns):
+    """The datasets' tables stacked, each led by ``dataset`` and the sheet's `columns`."""
+    frames = []
+    for dataset, table in tables.items():
+        table = table.copy()
+        table.insert(0, "dataset", dataset)
+        for k, column in enumerate(columns, start=1):
+            table.insert(k, column, datasets[dataset][column])
+        frames.append(table)
+    return pd.concat(frames, ignore_index=True)
 
 
-def statistics_job(
+def summarise_study(
     object_tables,
     region_tables,
     datasets,
-    scores,
-    out_animals,
-    out_comparison,
-    out_plot,
     *,
     target,
     measures,
+    accuracy,
     reference=None,
     confidence=0.95,
 ):
@@ -213,56 +240,103 @@ def statistics_job(
         Dataset id → measured object table / region table (from the morphometry step).
     datasets : dict
         Dataset id → ``{"condition": ..., "subject": ...}`` (from the sheet).
-    scores : path
-        Tile scores of the target; the test-tile F1 and Jaccard are printed beside every result.
+    target : str
+        Named in the first column of the comparison.
+    measures : sequence of str
+        Object measures to summarise; the region densities of :data:`REGION_MEASURES` follow.
+    accuracy : dict
+        ``test_f1`` and ``test_jaccard`` of the target, added to every comparison row so no
+        result is read without the segmentation accuracy beside it.
     reference : str, optional
         Condition the others are compared with (default: the first condition in the sheet).
-    """
-    from tessera.io.atomic import atomic_path, write_table
+    confidence : float
 
-    frames, region_frames = [], []
-    for dataset, path in object_tables.items():
-        table = pd.read_csv(path, sep="\t")
-        table.insert(0, "dataset", dataset)
-        table.insert(1, "subject", datasets[dataset]["subject"])
-        table.insert(2, "condition", datasets[dataset]["condition"])
-        frames.append(table)
-        regions = pd.read_csv(region_tables[dataset], sep="\t")
-        regions.insert(0, "dataset", dataset)
-        regions.insert(1, "subject", datasets[dataset]["subject"])
-        region_frames.append(regions)
-    objects = pd.concat(frames, ignore_index=True)
+    Returns
+    -------
+    objects : pandas.DataFrame
+        Every object, led by ``dataset``, ``subject`` and ``condition``.
+    animals : pandas.DataFrame
+        :func:`animal_summaries` joined with :func:`region_animal_summaries`.
+    comparison : pandas.DataFrame
+        :func:`compare_conditions` of the measures and ``region_<measure>``, led by ``target``,
+        followed by the accuracy columns.
+
+    Examples
+    --------
+    >>> sheet = {f"d{k}": {"condition": "warm" if k < 3 else "cold", "subject": f"m{k}"}
+    ...          for k in range(6)}
+    >>> objects = {d: pd.DataFrame({"volume_um3": [1.0 + k, 2.0 + k],
+    ...                             "touches_volume_border": False})
+    ...            for k, d in enumerate(sheet)}
+    >>> regions = {d: pd.DataFrame({"objects": [2], "V_V": [0.1], "S_V": [1.0], "N_V": [2.0]})
+    ...            for d in sheet}
+    >>> _, animals, comparison = summarise_study(
+    ...     objects, regions, sheet, target="mito", measures=["volume_um3"],
+    ...     accuracy={"test_f1": 0.9, "test_jaccard": 0.8})
+    >>> animals["volume_um3"].round(3).tolist()
+    [1.414, 2.449, 3.464, 4.472, 5.477, 6.481]
+    >>> comparison.loc[0, ["target", "measure", "condition", "reference", "scale"]].tolist()
+    ['mito', 'volume_um3', 'cold', 'warm', 'ratio']
+    >>> comparison.columns[-2:].tolist(), float(comparison.loc[0, "test_f1"])
+    (['test_f1', 'test_jaccard'], 0.9)
+    """
+    objects = _pooled(object_tables, datasets, ("subject", "condition"))
+    regions = _pooled({d: region_tables[d] for d in object_tables}, datasets, ("subject",))
     reference = reference or next(iter(datasets.values()))["condition"]
     subjects = {d["subject"]: d["condition"] for d in datasets.values()}
     animals = animal_summaries(objects, measures=measures, subjects=subjects).merge(
-        _region_animals(pd.concat(region_frames, ignore_index=True)), on="subject", how="left"
+        region_animal_summaries(regions), on="subject", how="left"
     )
     all_measures = [*measures, *[f"region_{m}" for m in REGION_MEASURES]]
     comparison = compare_conditions(
         animals, measures=all_measures, reference=reference, confidence=confidence
     )
-    accuracy = _test_accuracy(scores)
     comparison.insert(0, "target", target)
     for key, value in accuracy.items():
         comparison[key] = value
-    write_table(out_animals, animals)
-    write_table(out_comparison, comparison)
-    with atomic_path(out_plot) as tmp:
-        plot_conditions(objects, animals, comparison, tmp, target=target, accuracy=accuracy)
-    return comparison[["measure", "condition", "effect", "ci_low", "ci_high"]].to_dict(
-        orient="records"
-    )
+    return objects, animals, comparison
 
 
 def plot_conditions(objects, animals, comparison, path, *, target, accuracy, measures=None):
-    """Object distributions (grey) and per-animal values (dots) per condition, effect in the title."""
+    """Object distributions (grey) and per-animal values (dots) per condition, effect in the title.
+
+    Parameters
+    ----------
+    objects, animals, comparison : pandas.DataFrame
+        As returned by :func:`summarise_study`.
+    path : path or file-like
+        Where the PNG goes.
+    target : str
+    accuracy : dict
+        ``test_f1`` of the target, printed in the title.
+    measures : sequence of str, optional
+        Default: the first six compared measures that objects have.
+
+    Examples
+    --------
+    >>> import io
+    >>> sheet = {f"d{k}": {"condition": "warm" if k < 3 else "cold", "subject": f"m{k}"}
+    ...          for k in range(6)}
+    >>> objects = {d: pd.DataFrame({"volume_um3": [1.0 + k, 2.0 + k],
+    ...                             "touches_volume_border": False})
+    ...            for k, d in enumerate(sheet)}
+    >>> regions = {d: pd.DataFrame({"objects": [2], "V_V": [0.1], "S_V": [1.0], "N_V": [2.0]})
+    ...            for d in sheet}
+    >>> accuracy = {"test_f1": 0.9, "test_jaccard": 0.8}
+    >>> tables = summarise_study(objects, regions, sheet, target="mito", measures=["volume_um3"],
+    ...                          accuracy=accuracy)
+    >>> png = io.BytesIO()
+    >>> plot_conditions(*tables, png, target="mito", accuracy=accuracy)
+    >>> png.getvalue()[:4]
+    b'\x89PNG'
+    """
     plt = pyplot()
 
     measures = measures or [m for m in comparison["measure"].unique() if m in objects.columns][:6]
     conditions = sorted(animals["condition"].unique())
     fig, axes = plt.subplots(1, len(measures), figsize=(3.2 * len(measures), 3.6), squeeze=False)
     whole = objects[~objects["touches_volume_border"].astype(bool)]
-    for ax, m in zip(axes[0], measures):
+    for ax, m in zip(axes[0], measures, strict=True):
         for i, c in enumerate(conditions):
             values = whole.loc[whole["condition"] == c, m].dropna().to_numpy(dtype=float)
             if values.size > 1 and np.ptp(values) > 0:

@@ -1,0 +1,283 @@
+"""Filtering a probability volume into labelled objects: the steps of :mod:`tessera.objects`."""
+
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import zarr
+
+from tessera.errors import TesseraInputError
+from tessera.objects import _passes
+from tessera.objects.morphology import ball, connectivity_structure, reach
+
+#: Columns of the object table, in order.
+OBJECT_COLUMNS = (
+    "id",
+    "voxels",
+    "volume_um3",
+    "z0",
+    "y0",
+    "x0",
+    "z1",
+    "y1",
+    "x1",
+    "centroid_z_nm",
+    "centroid_y_nm",
+    "centroid_x_nm",
+    "touches_volume_border",
+    "touches_excluded_section",
+    "cavities_filled",
+)
+
+
+def check_settings(*, high, low, min_volume_um3, max_volume_um3, connectivity, source=None):
+    """Refuse inconsistent filtering settings with one clear message (`source` names the file).
+
+    Examples
+    --------
+    >>> check_settings(high=0.5, low=0.3, min_volume_um3=0, max_volume_um3=None, connectivity=26)
+    >>> check_settings(high=0.5, low=0.7, min_volume_um3=0, max_volume_um3=None, connectivity=26)
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: objects threshold low (0.7) must not exceed high (0.5)
+    """
+    for name, value in (("high", high), ("low", low)):
+        if not (isinstance(value, (int, float)) and 0.0 <= value <= 1.0):
+            raise TesseraInputError(
+                f"objects threshold {name} must be a probability in [0, 1], got {value!r}",
+                source=source,
+            )
+    if low > high:
+        raise TesseraInputError(
+            f"objects threshold low ({low}) must not exceed high ({high})", source=source
+        )
+    if min_volume_um3 < 0:
+        raise TesseraInputError(
+            f"objects min_volume_um3 must be >= 0, got {min_volume_um3}", source=source
+        )
+    if max_volume_um3 is not None and max_volume_um3 < min_volume_um3:
+        raise TesseraInputError(
+            f"objects min_volume_um3 ({min_volume_um3}) is larger than max_volume_um3 ({max_volume_um3})",
+            source=source,
+        )
+    connectivity_structure(connectivity)
+
+
+def label_objects(
+    prob,
+    out,
+    *,
+    spacing,
+    high,
+    low=None,
+    open_radius_nm=0.0,
+    close_radius_nm=0.0,
+    fill_holes=True,
+    min_volume_um3=0.0,
+    max_volume_um3=None,
+    connectivity=26,
+    block=(32, 512, 512),
+    excluded_sections=(),
+    scale=1.0,
+    workdir=None,
+    fill_max_voxels=None,
+    bridge_excluded=True,
+):
+    """Filter a probability volume into labelled objects, block by block.
+
+    Parameters
+    ----------
+    prob : (Z, Y, X) array-like
+        Probabilities times `scale` (a zarr array is read block by block).
+    out : (Z, Y, X) writable array
+        Receives the labels (uint32 or wider); a zarr array or numpy array.
+    spacing : (float, float, float)
+        Voxel size z, y, x in nm.
+    high, low : float
+        Hysteresis thresholds on the probability (low defaults to high).
+    open_radius_nm, close_radius_nm : float
+        Radii of the opening and the closing (0 = none).
+    fill_holes : bool
+        Fill enclosed cavities, object by object within its bounding box. Objects whose box
+        exceeds `fill_max_voxels` are left unfilled (and flagged ``cavities_filled`` False), so
+        that one huge object never loads a huge box.
+    fill_max_voxels : int, optional
+        Default: 8 blocks' worth of voxels.
+    min_volume_um3, max_volume_um3 : float
+        Size range kept (max None = no limit).
+    connectivity : {6, 18, 26}
+    block : (int, int, int)
+        Block size of the out-of-core passes (the result does not depend on it).
+    excluded_sections : sequence of int
+        Sections (z of this volume) excluded by QC; objects touching one are flagged.
+    bridge_excluded : bool
+        Replace the probabilities of excluded sections by linear interpolation between the
+        nearest usable sections above and below before anything else, so that a blank or blurred
+        section does not cut every organelle crossing it in two (the object keeps its flag).
+    scale : float
+        Stored value of probability 1 (255 for uint8 maps).
+    workdir : path, optional
+        Where the temporary provisional labels go (default: the system's temporary folder).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per object: ``id``, ``voxels``, ``volume_um3``, bounding box ``z0 y0 x0 z1 y1
+        x1`` (voxels, end exclusive), centroid in nm, ``touches_volume_border``,
+        ``touches_excluded_section`` and ``cavities_filled``.
+
+    Examples
+    --------
+    >>> p = np.zeros((3, 8, 8), np.float32); p[1, 1:3, 1:3] = 0.9; p[1, 5:7, 4:8] = 0.8
+    >>> labels = np.zeros(p.shape, np.uint32)
+    >>> table = label_objects(p, labels, spacing=(50, 10, 10), high=0.5, block=(2, 4, 4))
+    >>> table[["id", "voxels", "touches_volume_border"]].to_dict("list")
+    {'id': [1, 2], 'voxels': [4, 8], 'touches_volume_border': [False, True]}
+    """
+    # Longer than 60 lines only through keyword arguments: the four passes over the volume are
+    # in tessera.objects._passes; this function checks the settings and carries each pass's
+    # results to the next.
+    low = high if low is None else low
+    check_settings(
+        high=high,
+        low=low,
+        min_volume_um3=min_volume_um3,
+        max_volume_um3=max_volume_um3,
+        connectivity=connectivity,
+    )
+    shape = tuple(int(s) for s in prob.shape)
+    if len(shape) != 3 or tuple(out.shape) != shape:
+        raise TesseraInputError(
+            f"probability and label volumes must be 3D of one shape, got {shape}, {out.shape}"
+        )
+    block = tuple(int(b) for b in block)
+    structure = connectivity_structure(connectivity)
+    opening, closing = ball(open_radius_nm, spacing), ball(close_radius_nm, spacing)
+    voxel_nm3 = float(np.prod(spacing))
+    excluded = np.array(sorted(int(z) for z in excluded_sections), dtype=np.int64)
+
+    with tempfile.TemporaryDirectory(dir=workdir, prefix="tessera-labels-") as tmp:
+        provisional = zarr.create_array(
+            store=str(Path(tmp) / "provisional.zarr"),
+            shape=shape,
+            dtype=np.int64,
+            chunks=block,
+            fill_value=0,
+            zarr_format=3,
+        )
+        stats, offset = _passes.provisional_labels(
+            prob,
+            provisional,
+            shape=shape,
+            block=block,
+            halo=2 * reach(opening) + 2 * reach(closing),
+            bridge=_passes.bridging_plan(excluded if bridge_excluded else (), shape[0]),
+            scale=scale,
+            thresholds=(low, high),
+            morphology=(opening, closing),
+            structure=structure,
+            excluded=excluded,
+        )
+        n_comp, component = _passes.merge_across_faces(
+            provisional, shape=shape, block=block, structure=structure, offset=offset
+        )
+        objects = stats.merged(component, n_comp) if offset else None
+        kept = np.flatnonzero(objects["seeded"]) if offset else np.zeros(0, np.int64)
+        cavities, unfilled = {}, set()
+        fill_max_voxels = fill_max_voxels or 8 * int(np.prod(block))
+        if fill_holes:
+            cavities, unfilled = _passes.fill_cavities(
+                provisional,
+                objects,
+                component,
+                kept,
+                offset=offset,
+                shape=shape,
+                structure=structure,
+                excluded=excluded,
+                voxel_nm3=voxel_nm3,
+                max_volume_um3=max_volume_um3,
+                fill_max_voxels=fill_max_voxels,
+            )
+        volume, kept, final = _passes.number_objects(
+            objects,
+            kept,
+            offset=offset,
+            n_comp=n_comp,
+            voxel_nm3=voxel_nm3,
+            size_range=(min_volume_um3, max_volume_um3),
+        )
+        lut = np.concatenate([[0], final[component]]) if offset else np.zeros(1, np.int64)
+        if len(kept) > np.iinfo(out.dtype).max:
+            raise TesseraInputError(f"{len(kept)} objects do not fit label dtype {out.dtype}")
+        _passes.write_labels(out, provisional, lut, final, cavities, shape=shape, block=block)
+    return _object_table(
+        objects,
+        kept,
+        final,
+        volume,
+        spacing=spacing,
+        shape=shape,
+        fill_holes=fill_holes,
+        unfilled=unfilled,
+    )
+
+
+def _object_table(objects, kept, final, volume, *, spacing, shape, fill_holes, unfilled):
+    """One row per kept object, in label order, with the columns of :data:`OBJECT_COLUMNS`."""
+    rows = []
+    for c in kept:
+        lo_, hi_ = objects["lo"][c], objects["hi"][c]
+        centroid = objects["sums"][c] / objects["voxels"][c] * np.asarray(spacing)
+        rows.append(
+            {
+                "id": int(final[c]),
+                "voxels": int(objects["voxels"][c]),
+                "volume_um3": float(volume[c]),
+                "z0": int(lo_[0]),
+                "y0": int(lo_[1]),
+                "x0": int(lo_[2]),
+                "z1": int(hi_[0]),
+                "y1": int(hi_[1]),
+                "x1": int(hi_[2]),
+                "centroid_z_nm": float(centroid[0]),
+                "centroid_y_nm": float(centroid[1]),
+                "centroid_x_nm": float(centroid[2]),
+                "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
+                "touches_excluded_section": bool(objects["excluded"][c]),
+                "cavities_filled": bool(fill_holes and int(c) not in unfilled),
+            }
+        )
+    return pd.DataFrame(rows, columns=list(OBJECT_COLUMNS))
+
+
+def subsample_labels(source, target, *, factor, band=512):
+    """``target = source[::fz, ::fy, ::fx]``, read one band of rows of one section at a time.
+
+    Labels cannot be averaged, so a coarser label level takes every f-th voxel and its first
+    voxel sits on the first voxel of `source`.
+
+    Parameters
+    ----------
+    source : (Z, Y, X) array-like
+        Labels (a zarr array is read band by band).
+    target : (Z', Y', X') writable array
+        ``ceil(source.shape / factor)`` voxels.
+    factor : (int, int, int)
+        Reduction along z, y, x.
+    band : int
+        Rows of `target` read and written at once.
+
+    Examples
+    --------
+    >>> source = np.arange(3 * 5 * 5).reshape(3, 5, 5)
+    >>> target = np.zeros((2, 3, 3), source.dtype)
+    >>> subsample_labels(source, target, factor=(2, 2, 2), band=2)
+    >>> np.array_equal(target, source[::2, ::2, ::2])
+    True
+    """
+    fz, fy, fx = factor
+    for oz in range(target.shape[0]):
+        for oy in range(0, target.shape[1], band):
+            rows = np.asarray(source[oz * fz, oy * fy : min((oy + band) * fy, source.shape[1]), :])
+            target[oz, oy : oy + band, :] = rows[::fy, ::fx][: target.shape[1] - oy]

@@ -1,0 +1,56 @@
+"""The methods rule: the study's methods paragraph, from the files the run wrote."""
+
+from tessera.io.atomic import write_text
+from tessera.methods import methods_text
+from tessera.workflow.files.comparison_table import read_comparison_table
+from tessera.workflow.files.input_checksums import read_input_checksums
+from tessera.workflow.files.object_table import read_object_settings
+from tessera.workflow.files.qc_table import count_sections
+from tessera.workflow.files.scores import read_scores
+from tessera.workflow.versions import software_versions
+
+
+def methods_job(
+    config_sections,
+    sheet_rows,
+    scores,
+    object_settings,
+    comparisons,
+    checksums,
+    qc_tables,
+    out_path,
+):
+    """Write the methods paragraph (Markdown) of the study.
+
+    Parameters
+    ----------
+    config_sections : dict
+        ``ingest``, ``pyramid``, ``qc``, ``statistics`` and ``targets`` of the validated config.
+    sheet_rows : dict
+        Dataset id → ``{"condition", "subject"}``.
+    scores, comparisons : dict
+        Target → tile scores table / statistics comparison table.
+    object_settings : dict
+        Target → list of the settings files written by the objects step (one per dataset).
+    checksums : list of path
+        The per-dataset checksum records.
+    qc_tables : list of path
+        Section QC tables (to count excluded sections).
+    """
+    section_counts = count_sections(qc_tables)
+    targets = config_sections["targets"]
+    # every dataset's settings file is read (a damaged one fails here); the text quotes the first
+    used = {t: [read_object_settings(p) for p in object_settings[t]][0] for t in targets}
+    tables = {t: read_comparison_table(comparisons[t]) for t in targets if t in comparisons}
+    text = methods_text(
+        config_sections,
+        sheet_rows,
+        scores={t: read_scores(scores[t]) for t in targets},
+        object_settings=used,
+        comparisons=tables,
+        section_counts=section_counts,
+        checksums=[pair for path in checksums for pair in read_input_checksums(path)],
+        software=software_versions(),
+    )
+    write_text(out_path, text)
+    return {"words": len(text.split())}

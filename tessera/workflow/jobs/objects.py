@@ -1,0 +1,109 @@
+"""The objects rule: a stitched probability map into labelled objects, their table and settings.
+
+The threshold defaults to the one chosen on the validation tiles (from the tile scores), the
+sections QC excluded come from the QC table, and the filtering itself is
+:func:`tessera.objects.label.label_objects`.
+"""
+
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from tessera.io.atomic import atomic_path
+from tessera.io.links import link_tree
+from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.store_checksums import record_checksums, verified_bytes
+from tessera.objects.label import label_objects, subsample_labels
+from tessera.workflow.files.object_table import write_object_settings, write_object_table
+from tessera.workflow.files.qc_table import excluded_sections
+from tessera.workflow.files.scores import validation_threshold
+
+
+def _label_levels(root, *, target, info, shape, used):
+    """Create ``labels/<target>`` in the objects store: NGFF image-label metadata, the settings
+    used, and one empty uint32 array per level of the image."""
+    labels_group = root.create_group("labels")
+    labels_group.attrs["ome"] = {"version": "0.5", "labels": [target]}
+    image = labels_group.create_group(target)
+    # NGFF wants a label level per image level; coarser label levels take every f-th voxel
+    # (labels cannot be averaged), so their first voxel sits on level 0's first voxel.
+    ome = multiscale_attrs(
+        name=f"{target} objects", spacing=info["spacing"], factors=info["factors"]
+    )
+    for dataset in ome["multiscales"][0]["datasets"]:
+        dataset["coordinateTransformations"] = dataset["coordinateTransformations"][:1]
+    ome["image-label"] = {"version": "0.5", "source": {"image": "../../"}}
+    image.attrs.update({"ome": ome, "tessera": {"objects": used}})
+    levels = []
+    for k, factor in enumerate(info["factors"]):
+        level_shape = tuple(-(-s // f) for s, f in zip(shape, factor, strict=False))
+        levels.append(
+            image.create_array(
+                name=str(k),
+                shape=level_shape,
+                dtype=np.uint32,
+                chunks=tuple(min(c, s) for c, s in zip((1, 512, 512), level_shape, strict=False)),
+                dimension_names=AXES,
+                fill_value=0,
+            )
+        )
+    return levels
+
+
+def objects_job(
+    probability, qc_table, scores, out_image, out_table, out_settings, *, target, settings
+):
+    """Filter a stitched probability map into objects; write labels, table and settings.
+
+    The labels go to ``labels/<target>`` inside a copy of the probability image (NGFF image-label,
+    levels hard-linked, not copied), so a viewer shows both together.
+    """
+    settings = dict(settings)
+    high = settings.pop("high")
+    if high is None:
+        high = validation_threshold(scores)
+    low = settings.pop("low")
+    low = high if low is None else low
+    group, info = open_image(probability)
+    prob = info["levels"][0]
+    extra = info["extra"].get("probability", {})
+    scale = float(extra.get("scale", 1.0))
+    z_factor = int(info["extra"].get("probability", {}).get("z_factor", 1))
+    excluded = excluded_sections(qc_table, z_factor)
+    used = {
+        "target": target,
+        "high": high,
+        "low": low,
+        **settings,
+        "connectivity_meaning": f"{settings['connectivity']}-connected voxels in 3D belong to one object",
+        "excluded_sections": excluded,
+        "spacing_nm": list(info["spacing"]),
+    }
+    block = settings.pop("block")
+    level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
+    with atomic_path(out_image) as tmp:
+        for name in level_paths:
+            link_tree(Path(probability) / name, tmp / name)
+        (tmp / "zarr.json").write_bytes(verified_bytes(probability, "zarr.json"))
+        root = zarr.open_group(store=str(tmp), mode="r+", zarr_format=3)
+        levels = _label_levels(root, target=target, info=info, shape=prob.shape, used=used)
+        table = label_objects(
+            prob,
+            levels[0],
+            spacing=info["spacing"],
+            high=high,
+            low=low,
+            block=block,
+            scale=scale,
+            excluded_sections=excluded,
+            workdir=Path(out_image).parent,
+            **settings,
+        )
+        for factor, level in zip(info["factors"][1:], levels[1:], strict=True):
+            subsample_labels(levels[0], level, factor=factor)
+        # the probability levels keep the records made when they were stitched
+        record_checksums(tmp, linked={name: probability for name in level_paths})
+    write_object_table(out_table, table)
+    write_object_settings(out_settings, {**used, "objects": len(table)})
+    return {"objects": len(table), "high": high, "low": low}

@@ -1,0 +1,67 @@
+"""The statistics rule: per-animal summaries and condition comparisons of one target."""
+
+import math
+
+from tessera.io.atomic import atomic_path, write_table
+from tessera.statistics import plot_conditions, summarise_study
+from tessera.workflow.files.comparison_table import write_comparison_table
+from tessera.workflow.files.morphometry_tables import read_object_measures, read_region_densities
+from tessera.workflow.files.scores import read_scores
+
+
+def _test_accuracy(scores_path):
+    """Test-tile F1 and Jaccard of the target (from the tile scores table); NaN without test tiles."""
+    table = read_scores(scores_path)
+    test = table[table["role"] == "test"]
+    if test.empty:
+        return {"test_f1": math.nan, "test_jaccard": math.nan}
+    return {"test_f1": float(test["f1"].iloc[0]), "test_jaccard": float(test["jaccard"].iloc[0])}
+
+
+def statistics_job(
+    object_tables,
+    region_tables,
+    datasets,
+    scores,
+    out_animals,
+    out_comparison,
+    out_plot,
+    *,
+    target,
+    measures,
+    reference=None,
+    confidence=0.95,
+):
+    """Per-animal summaries and condition comparisons of one target across the study.
+
+    Parameters
+    ----------
+    object_tables, region_tables : dict
+        Dataset id → measured object table / region table (from the morphometry step).
+    datasets : dict
+        Dataset id → ``{"condition": ..., "subject": ...}`` (from the sheet).
+    scores : path
+        Tile scores of the target; the test-tile F1 and Jaccard are printed beside every result.
+    reference : str, optional
+        Condition the others are compared with (default: the first condition in the sheet).
+    """
+    objects = {d: read_object_measures(path) for d, path in object_tables.items()}
+    regions = {d: read_region_densities(region_tables[d]) for d in object_tables}
+    accuracy = _test_accuracy(scores)
+    objects, animals, comparison = summarise_study(
+        objects,
+        regions,
+        datasets,
+        target=target,
+        measures=measures,
+        accuracy=accuracy,
+        reference=reference,
+        confidence=confidence,
+    )
+    write_table(out_animals, animals)
+    write_comparison_table(out_comparison, comparison)
+    with atomic_path(out_plot) as tmp:
+        plot_conditions(objects, animals, comparison, tmp, target=target, accuracy=accuracy)
+    return comparison[["measure", "condition", "effect", "ci_low", "ci_high"]].to_dict(
+        orient="records"
+    )
