@@ -14,11 +14,17 @@ from tessera.io.digests import file_sha256
 from tessera.workflow.versions import software_versions
 
 _PACKAGE_DIR = Path(__file__).resolve().parents[1]  # the tessera package
+# The packages whose source a rule's code param hashes: the library and the demo generator,
+# which sits beside it (it imports the library; the library never imports it).
+_HASHED = ("tessera", "tessera_demo")
+
+
+def _ours(name):
+    return name.split(".")[0] in _HASHED
 
 
 def _module_file(name):
-    parts = name.split(".")[1:]  # drop "tessera"
-    path = _PACKAGE_DIR.joinpath(*parts)
+    path = _PACKAGE_DIR.parent.joinpath(*name.split("."))
     return path / "__init__.py" if path.is_dir() else path.with_suffix(".py")
 
 
@@ -29,12 +35,12 @@ def _package_imports(path, module):
     found = set()
     for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
         if isinstance(node, ast.Import):
-            found.update(a.name for a in node.names if a.name.split(".")[0] == "tessera")
+            found.update(a.name for a in node.names if _ours(a.name))
         elif isinstance(node, ast.ImportFrom):
             if node.level:
                 base = package.rsplit(".", node.level - 1)[0] if node.level > 1 else package
                 target = f"{base}.{node.module}" if node.module else base
-            elif (node.module or "").split(".")[0] == "tessera":
+            elif _ours(node.module or ""):
                 target = node.module
             else:
                 continue
@@ -54,6 +60,8 @@ def module_closure(*modules):
     --------
     >>> sorted(module_closure("tessera.spacing"))
     ['tessera', 'tessera.errors', 'tessera.spacing']
+    >>> sorted(module_closure("tessera_demo.study"))
+    ['tessera', 'tessera.errors', 'tessera_demo', 'tessera_demo.checks', 'tessera_demo.study']
     """
     seen, todo = set(), list(modules)
     while todo:
@@ -69,7 +77,7 @@ def module_closure(*modules):
 
 
 def script_modules(script):
-    r"""The tessera modules a script runs: what it imports, transitively.
+    r"""The tessera (and tessera_demo) modules a script runs: what it imports, transitively.
 
     Examples
     --------
@@ -83,8 +91,8 @@ def script_modules(script):
     found = set()
     for node in ast.walk(ast.parse(Path(script).read_text(encoding="utf-8"))):
         if isinstance(node, ast.Import):
-            found.update(a.name for a in node.names if a.name.split(".")[0] == "tessera")
-        elif isinstance(node, ast.ImportFrom) and (node.module or "").split(".")[0] == "tessera":
+            found.update(a.name for a in node.names if _ours(a.name))
+        elif isinstance(node, ast.ImportFrom) and _ours(node.module or ""):
             found.add(node.module)
             found.update(
                 f"{node.module}.{a.name}"
