@@ -54,6 +54,13 @@ def plan_defects(rng, grid):
 def defocus(img, plan):
     """Blur the planned out-of-focus section of the float image `img`, in place.
 
+    Parameters
+    ----------
+    img : ndarray of float32, shape (P, M, N)
+        The image before noise.
+    plan : dict
+        As returned by :func:`plan_defects` (only ``blurred`` is used).
+
     Examples
     --------
     >>> img = np.zeros((3, 9, 9), dtype=np.float32)
@@ -69,6 +76,16 @@ def defocus(img, plan):
 
 def remove_material(grid, img, plan):
     """Blank the planned lost section of `img` (wholly, or the torn part), in place.
+
+    Parameters
+    ----------
+    grid : tessera_demo.geometry.Grid
+        The volume.
+    img : ndarray of float32, shape (P, M, N)
+        The image after noise and drift.
+    plan : dict
+        As returned by :func:`plan_defects`; a torn section loses the part beyond a straight
+        cut at angle ``theta`` that leaves out ``fraction`` of it.
 
     Returns
     -------

@@ -92,6 +92,7 @@ class Grid:
         return tuple(sl)
 
     def coords(self, box):
+        """Voxel-centre coordinates (nm) of `box`, as z, y, x arrays broadcasting to its shape."""
         z, y, x = (self.axes[a][box[a]] for a in range(3))
         return z[:, None, None], y[None, :, None], x[None, None, :]
 

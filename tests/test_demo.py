@@ -1,5 +1,6 @@
 """Tests of the synthetic demo study generator (tessera_demo)."""
 
+import ast
 import hashlib
 import json
 import math
@@ -20,10 +21,9 @@ from tessera_demo.files import write_dataset
 from tessera_demo.render import render_dataset
 from tessera_demo.study import dataset_seed, subject_volume_scale
 
+REPO = Path(__file__).resolve().parents[1]
 # The study's settings have one owner, the shipped config; the generator has no copy of them.
-DEMO = yaml.safe_load(
-    (Path(__file__).resolve().parents[1] / "config" / "config.yaml").read_text(encoding="utf-8")
-)["demo"]
+DEMO = yaml.safe_load((REPO / "config" / "config.yaml").read_text(encoding="utf-8"))["demo"]
 
 SMALL = (20, 320, 320)
 SPACING = (40.0, 8.0, 8.0)
@@ -59,6 +59,25 @@ def _laplacian_variance(section):
     # detector noise after the defocus, as a microscope does, and the plain Laplacian of
     # that noise would hide the blur.
     return float(ndimage.gaussian_laplace(section.astype(np.float32), 1.5).var())
+
+
+# --- package boundary -----------------------------------------------------------------------
+
+
+def test_library_never_imports_the_demo_generator():
+    # The generator is data generation built on the library; an import the other way would
+    # make every analysis module depend on (and rerun with) the synthetic study.
+    offenders = []
+    for path in sorted((REPO / "tessera").rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Import):
+                names = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.level == 0:
+                names = [node.module]
+            else:
+                continue
+            offenders += [path.name for n in names if n.split(".")[0] == "tessera_demo"]
+    assert offenders == []
 
 
 # --- seeds ----------------------------------------------------------------------------------
