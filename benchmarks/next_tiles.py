@@ -1,6 +1,6 @@
 """Do uncertainty-ranked tiles help more than random ones? A fixed-seed experiment on demo data.
 
-Two synthetic demo volumes (tessera.demo, mitochondria at 2x downsampling): the pool volume
+Two synthetic demo volumes (tessera_demo, mitochondria at 2x downsampling): the pool volume
 offers tiles to annotate, the other supplies fixed test sections. A 2 x 1 cascade is trained on a
 few random pool tiles that hold both classes (f1_before); the pool volume is predicted whole; then the same number of
 tiles is added either by highest mean binary entropy (tessera.next_tiles.rank_tiles, spread out
@@ -29,9 +29,9 @@ from tessera.cascade.api import (
     prepare_tile,
     receptive_radius,  # noqa: E402
 )  # noqa: E402
-from tessera.demo import render_dataset  # noqa: E402
-from tessera.evaluate import confusion, scores_from_counts  # noqa: E402
 from tessera.next_tiles import rank_tiles  # noqa: E402
+from tessera.threshold import confusion, scores_from_counts  # noqa: E402
+from tessera_demo.render import render_dataset  # noqa: E402
 
 SIZE = 32  # tile side at the working level
 

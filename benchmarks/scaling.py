@@ -84,9 +84,9 @@ def train(root):
         receptive_radius,
         save_node,
     )
-    from tessera.demo import render_dataset
+    from tessera_demo.render import render_dataset
 
-    volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), defects=False)
+    volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
     spec = CascadeSpec(stages=2, levels=2, samples_per_tile=1500)

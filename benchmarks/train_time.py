@@ -1,6 +1,6 @@
 """Training time of a 2 stages x 2 levels cascade on 20 tiles of 500 x 500 px, 2 threads.
 
-Tiles come from a synthetic demo volume (tessera.demo, 20 sections of 1024 x 1024 at full
+Tiles come from a synthetic demo volume (tessera_demo, 20 sections of 1024 x 1024 at full
 resolution), one tile per section, mitochondria as the target, folds 3; the default classifier
 and settings of CascadeSpec unless --classifier is given.
 
@@ -24,7 +24,7 @@ from tessera.cascade.api import (
     prepare_tile,
     receptive_radius,
 )  # noqa: E402
-from tessera.demo import render_dataset  # noqa: E402
+from tessera_demo.render import render_dataset  # noqa: E402
 
 
 def main():
@@ -32,7 +32,7 @@ def main():
     parser.add_argument("--classifier", default=CascadeSpec().classifier)
     parser.add_argument("--threads", type=int, default=2)
     args = parser.parse_args()
-    volume = render_dataset(seed=4, shape=(20, 1024, 1024), defects=False)
+    volume = render_dataset(seed=4, shape=(20, 1024, 1024), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
     spec = CascadeSpec(stages=2, levels=2, classifier=args.classifier)

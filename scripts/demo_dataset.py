@@ -5,8 +5,9 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.demo import dataset_seed, subject_volume_scale, write_dataset
 from tessera.workflow.runner import run_job
+from tessera_demo.files import write_dataset
+from tessera_demo.study import dataset_seed, subject_volume_scale
 
 params = snakemake.params
 # The built-in effect: the condition's factor times this animal's own (log-normal) factor.

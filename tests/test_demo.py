@@ -1,20 +1,29 @@
-"""Tests of the synthetic demo study generator (tessera.demo)."""
+"""Tests of the synthetic demo study generator (tessera_demo)."""
 
+import ast
 import hashlib
 import json
 import math
 import zlib
+from pathlib import Path
 
 import numpy as np
 import pytest
 import tifffile
+import yaml
 from PIL import Image
 from scipy import ndimage
 from skimage.measure import regionprops
 
-from tessera import demo
-from tessera.demo import dataset_seed, render_dataset, subject_volume_scale, write_dataset
 from tessera.errors import TesseraInputError
+from tessera_demo import files
+from tessera_demo.files import write_dataset
+from tessera_demo.render import render_dataset
+from tessera_demo.study import dataset_seed, subject_volume_scale
+
+REPO = Path(__file__).resolve().parents[1]
+# The study's settings have one owner, the shipped config; the generator has no copy of them.
+DEMO = yaml.safe_load((REPO / "config" / "config.yaml").read_text(encoding="utf-8"))["demo"]
 
 SMALL = (20, 320, 320)
 SPACING = (40.0, 8.0, 8.0)
@@ -26,7 +35,9 @@ SEEDS = (0, 1, 2, 3, 4, 5)
 def renders():
     """Small renders, scale 1.0 and 1.25, for a few seeds (rendered once per module)."""
     return {
-        (seed, scale): render_dataset(seed=seed, shape=SMALL, mito_volume_scale=scale)
+        (seed, scale): render_dataset(
+            seed=seed, shape=SMALL, spacing=SPACING, mito_volume_scale=scale
+        )
         for seed in SEEDS
         for scale in (1.0, 1.25)
     }
@@ -50,6 +61,25 @@ def _laplacian_variance(section):
     return float(ndimage.gaussian_laplace(section.astype(np.float32), 1.5).var())
 
 
+# --- package boundary -----------------------------------------------------------------------
+
+
+def test_library_never_imports_the_demo_generator():
+    # The generator is data generation built on the library; an import the other way would
+    # make every analysis module depend on (and rerun with) the synthetic study.
+    offenders = []
+    for path in sorted((REPO / "tessera").rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Import):
+                names = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.level == 0:
+                names = [node.module]
+            else:
+                continue
+            offenders += [path.name for n in names if n.split(".")[0] == "tessera_demo"]
+    assert offenders == []
+
+
 # --- seeds ----------------------------------------------------------------------------------
 
 
@@ -67,25 +97,40 @@ def test_dataset_seed_rejects_bad_input(study_seed, name):
 
 
 def test_subject_scale_is_condition_scale_times_lognormal_animal_factor():
-    assert subject_volume_scale("cd1", "cold", study_seed=5, animal_sd=0.0) == 1.25
-    assert subject_volume_scale("tn1", "thermoneutral", study_seed=5, animal_sd=0.0) == 1.0
+    scales = DEMO["mito_volume_scale"]
+    assert (
+        subject_volume_scale("cd1", "cold", study_seed=5, condition_scales=scales, animal_sd=0.0)
+        == 1.25
+    )
+    assert (
+        subject_volume_scale(
+            "tn1", "thermoneutral", study_seed=5, condition_scales=scales, animal_sd=0.0
+        )
+        == 1.0
+    )
+    sd = DEMO["animal_sd"]
     logs = np.log(
-        [subject_volume_scale(f"a{i}", "thermoneutral", study_seed=5) for i in range(600)]
+        [
+            subject_volume_scale(
+                f"a{i}", "thermoneutral", study_seed=5, condition_scales=scales, animal_sd=sd
+            )
+            for i in range(600)
+        ]
     )
     # Log-normal by definition: log of the factor ~ Normal(0, sd); sd of 600 draws within 10 %.
     assert abs(logs.mean()) < 0.05 * 4 / math.sqrt(600)
-    assert logs.std(ddof=1) == pytest.approx(demo.ANIMAL_SD, rel=0.1)
+    assert logs.std(ddof=1) == pytest.approx(sd, rel=0.1)
     with pytest.raises(TesseraInputError):
-        subject_volume_scale("x1", "warm", study_seed=5)
+        subject_volume_scale("x1", "warm", study_seed=5, condition_scales=scales, animal_sd=sd)
 
 
 # --- render_dataset -------------------------------------------------------------------------
 
 
 def test_same_seed_same_bytes_different_seed_different():
-    a = render_dataset(seed=11, shape=(12, 160, 200))
-    b = render_dataset(seed=11, shape=(12, 160, 200))
-    c = render_dataset(seed=12, shape=(12, 160, 200))
+    a = render_dataset(seed=11, shape=(12, 160, 200), spacing=SPACING)
+    b = render_dataset(seed=11, shape=(12, 160, 200), spacing=SPACING)
+    c = render_dataset(seed=12, shape=(12, 160, 200), spacing=SPACING)
     for key in ("raw", "mitochondria", "nuclei", "cells"):
         assert a[key].tobytes() == b[key].tobytes()
     assert a["defects"] == b["defects"] and a["summary"] == b["summary"]
@@ -95,7 +140,7 @@ def test_same_seed_same_bytes_different_seed_different():
 
 @pytest.mark.parametrize("shape", [(8, 64, 64), (12, 160, 200), (9, 96, 72)])
 def test_dtypes_and_shapes(shape):
-    out = render_dataset(seed=3, shape=shape)
+    out = render_dataset(seed=3, shape=shape, spacing=SPACING)
     assert out["raw"].dtype == np.uint8 and out["raw"].shape == shape
     for key in ("mitochondria", "nuclei", "cells"):
         assert out[key].dtype == np.uint16 and out[key].shape == shape
@@ -119,14 +164,14 @@ def test_dtypes_and_shapes(shape):
     ],
 )
 def test_bad_input_is_rejected(kwargs):
-    args = {"seed": 1, "shape": (8, 64, 64)} | kwargs
+    args = {"seed": 1, "shape": (8, 64, 64), "spacing": SPACING} | kwargs
     with pytest.raises(TesseraInputError):
         render_dataset(**args)
 
 
 def test_mitochondria_confined_to_cytoplasm(renders):
     total = 0
-    for (seed, scale), out in renders.items():
+    for out in renders.values():
         mito = out["mitochondria"] > 0
         total += int(mito.sum())
         assert not np.any(mito & (out["cells"] == 0))
@@ -192,8 +237,8 @@ def test_defect_sections_are_defective(renders):
 
 
 def test_labels_are_true_geometry_and_defects_touch_only_their_sections():
-    with_d = render_dataset(seed=21, shape=(12, 160, 160), defects=True)
-    without = render_dataset(seed=21, shape=(12, 160, 160), defects=False)
+    with_d = render_dataset(seed=21, shape=(12, 160, 160), spacing=SPACING, defects=True)
+    without = render_dataset(seed=21, shape=(12, 160, 160), spacing=SPACING, defects=False)
     assert without["defects"] == {"blank": [], "torn": [], "blurred": []}
     for key in ("mitochondria", "nuclei", "cells"):
         np.testing.assert_array_equal(with_d[key], without[key])
@@ -222,7 +267,8 @@ def test_volume_scale_multiplies_mean_mitochondrial_volume(renders):
 
 
 def test_default_shape_volume_matches_capsule_formula_and_drift():
-    out = render_dataset(seed=2026)
+    # The demo study's own shape (config) and voxel size (its sheet).
+    out = render_dataset(seed=2026, shape=tuple(DEMO["shape"]), spacing=SPACING)
     s = out["summary"]
     assert s["n_mitochondria"] >= 10 and s["n_nuclei"] >= 1
     # Published formula: capsule volume = pi r^2 L + 4/3 pi r^3; with r ~ U(100, 200) nm and
@@ -250,6 +296,7 @@ WRITE = {
     "subject": "cd2",
     "seed": 77,
     "shape": (14, 224, 224),
+    "spacing": SPACING,
     "mito_volume_scale": 1.25,
     "tile_size": 96,
     "tiles_per_target": 5,
@@ -267,11 +314,11 @@ def written(tmp_path_factory):
 def _read_points(path):
     lines = path.read_text(encoding="utf-8").splitlines()
     header = lines[0].split("\t")
-    return header, [dict(zip(header, line.split("\t"))) for line in lines[1:]]
+    return header, [dict(zip(header, line.split("\t"), strict=True)) for line in lines[1:]]
 
 
 def test_written_stacks_equal_render(written):
-    out = render_dataset(seed=77, shape=(14, 224, 224), mito_volume_scale=1.25)
+    out = render_dataset(seed=77, shape=(14, 224, 224), spacing=SPACING, mito_volume_scale=1.25)
     for name, key, dtype in (
         ("raw.tif", "raw", np.uint8),
         ("cells.tif", "cells", np.uint16),
@@ -353,7 +400,7 @@ def test_failed_write_leaves_previous_dataset_and_no_temp(tmp_path, monkeypatch)
     def broken(*args, **kwargs):
         raise OSError("disk full")
 
-    monkeypatch.setattr(demo, "_write_tiff", broken)
+    monkeypatch.setattr(files, "_write_tiff", broken)
     with pytest.raises(OSError):
         write_dataset(out_dir, **(WRITE | {"dataset": "tn1", "subject": "tn1"}))
     assert (out_dir / "previous.txt").read_text(encoding="utf-8") == "keep"
