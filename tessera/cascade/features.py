@@ -124,6 +124,67 @@ def _derivatives(smoothed, steps):
     return grads
 
 
+def _check_image(image):
+    image = np.asarray(image)
+    if image.ndim not in (2, 3):
+        raise TesseraInputError(f"image must be 2D or 3D, got shape {image.shape}")
+    if image.size == 0:
+        raise TesseraInputError("image is empty")
+    if not (np.issubdtype(image.dtype, np.integer) or np.issubdtype(image.dtype, np.floating)):
+        raise TesseraInputError(f"image must hold numbers, got dtype {image.dtype}")
+    return image
+
+
+def _mirror_padded(data, radius):
+    """`data` mirrored by `radius` on every axis longer than 1, and the slices of its core."""
+    # np.pad "symmetric" mirrors once; pad in rounds when the image is smaller than the radius.
+    padded = data
+    total = [0] * data.ndim
+    while any(t < radius and n > 1 for t, n in zip(total, data.shape)):
+        step = [
+            min(radius - t, m) if n > 1 else 0 for t, m, n in zip(total, padded.shape, data.shape)
+        ]
+        padded = np.pad(padded, [(k, k) for k in step], mode="symmetric")
+        total = [t + k for t, k in zip(total, step)]
+    return padded, tuple(slice(t, t + n) for t, n in zip(total, data.shape))
+
+
+def _scale_channels(channels, g, following, s, ratio, steps):
+    """Append the channels of one scale: `g` is the image smoothed at σ = `s`, `following` at
+    the next σ (None for the last scale)."""
+    ndim = g.ndim
+    grads = _derivatives(g, steps)
+    channels.append(g)
+    channels.append(np.sqrt(sum(d * d for d in grads)))
+    second = [[None] * ndim for _ in range(ndim)]
+    for a in range(ndim):
+        da = _derivatives(grads[a], steps)
+        for b in range(a, ndim):
+            second[a][b] = da[b]
+    # Scale-normalised (σ²) so responses are comparable across scales.
+    norm = np.float32(s * s)
+    channels.append(norm * sum(second[a][a] for a in range(ndim)))
+    if following is not None:
+        channels.append(g - following)
+    integ = [s * r for r in ratio]
+    if ndim == 2:
+        channels.extend(norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1]))
+        j = [
+            ndimage.gaussian_filter(p, integ, mode=_MODE, truncate=_TRUNCATE)
+            for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
+        ]
+        channels.extend(_eigvals_sym2(*j))
+    else:
+        h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
+        channels.extend(norm * e for e in _eigvals_sym3(h))
+        pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
+        j = [
+            ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE)
+            for a, b in pairs
+        ]
+        channels.extend(_eigvals_sym3(j))
+
+
 def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True):
     """Stack of Gaussian-derivative features of a 2D section or a 3D volume.
 
@@ -159,13 +220,7 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     >>> f.shape, f.dtype
     ((16, 16, 16), dtype('float32'))
     """
-    image = np.asarray(image)
-    if image.ndim not in (2, 3):
-        raise TesseraInputError(f"image must be 2D or 3D, got shape {image.shape}")
-    if image.size == 0:
-        raise TesseraInputError("image is empty")
-    if not (np.issubdtype(image.dtype, np.integer) or np.issubdtype(image.dtype, np.floating)):
-        raise TesseraInputError(f"image must hold numbers, got dtype {image.dtype}")
+    image = _check_image(image)
     sigmas = _check_sigmas(sigmas)
     ndim = image.ndim
     if ndim == 3 and spacing is not None:
@@ -176,18 +231,7 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     steps = [1.0] * ndim
     data = image.astype(np.float32)
     if mirror_edges:
-        radius = feature_radius(sigmas)
-        # np.pad "symmetric" mirrors once; pad in rounds when the image is smaller than the radius.
-        padded = data
-        total = [0] * ndim
-        while any(t < radius and n > 1 for t, n in zip(total, data.shape)):
-            step = [
-                min(radius - t, m) if n > 1 else 0
-                for t, m, n in zip(total, padded.shape, data.shape)
-            ]
-            padded = np.pad(padded, [(k, k) for k in step], mode="symmetric")
-            total = [t + k for t, k in zip(total, step)]
-        core = tuple(slice(t, t + n) for t, n in zip(total, data.shape))
+        padded, core = _mirror_padded(data, feature_radius(sigmas))
         features = filter_bank(padded, sigmas=sigmas, spacing=spacing, mirror_edges=False)
         return np.ascontiguousarray(features[core])
     # each channel goes straight into the output as it is made (no list of arrays, no stacking copy)
@@ -199,39 +243,8 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         for s in sigmas
     ]
     for i, s in enumerate(sigmas):
-        g = smoothed_all[i]
-        grads = _derivatives(g, steps)
-        channels.append(g)
-        channels.append(np.sqrt(sum(d * d for d in grads)))
-        second = [[None] * ndim for _ in range(ndim)]
-        for a in range(ndim):
-            da = _derivatives(grads[a], steps)
-            for b in range(a, ndim):
-                second[a][b] = da[b]
-        # Scale-normalised (σ²) so responses are comparable across scales.
-        norm = np.float32(s * s)
-        channels.append(norm * sum(second[a][a] for a in range(ndim)))
-        if i + 1 < len(sigmas):
-            channels.append(g - smoothed_all[i + 1])
-        integ = [s * r for r in ratio]
-        if ndim == 2:
-            channels.extend(
-                norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1])
-            )
-            j = [
-                ndimage.gaussian_filter(p, integ, mode=_MODE, truncate=_TRUNCATE)
-                for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
-            ]
-            channels.extend(_eigvals_sym2(*j))
-        else:
-            h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
-            channels.extend(norm * e for e in _eigvals_sym3(h))
-            pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
-            j = [
-                ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE)
-                for a, b in pairs
-            ]
-            channels.extend(_eigvals_sym3(j))
+        following = smoothed_all[i + 1] if i + 1 < len(sigmas) else None
+        _scale_channels(channels, smoothed_all[i], following, s, ratio, steps)
     return out
 
 
