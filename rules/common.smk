@@ -10,7 +10,12 @@ sys.path.insert(0, workflow.basedir)
 from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
-from tessera.workflow.config import expand_variants, load_config, load_datasets, sheet_spacing
+from tessera.workflow.config import (
+    expand_variants,
+    load_config,
+    load_datasets,
+    sheet_spacing,
+)
 from tessera.errors import TesseraInputError
 from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.points import read_points
@@ -39,7 +44,8 @@ except TesseraInputError as error:
 
 def script_code(rule):
     """The `code` param of a rule: version + source hash of every tessera module its script
-    (scripts/<rule>.py) imports, so editing a module reruns exactly the jobs that run it."""
+    (scripts/<rule>.py) imports, so editing a module reruns exactly the jobs that run it.
+    """
     return code_version_of_script(f"{workflow.basedir}/scripts/{rule}.py")
 
 
