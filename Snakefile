@@ -1,7 +1,7 @@
 # tessera: EM stacks -> OME-Zarr -> section QC -> pyramid -> tiles -> cascade -> sharded
 # prediction -> stitched probability map -> labelled objects -> morphometry -> statistics.
-# Read the pipeline off the include list; each stage has rules/<stage>.smk,
-# scripts/<stage>.py and tessera/<stage>.py.
+# Read the pipeline off the include list: each stage has rules/<stage>.smk, each rule a thin
+# scripts/<rule>.py that calls one job function in tessera/workflow/jobs/.
 
 from snakemake.utils import min_version
 

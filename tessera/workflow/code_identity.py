@@ -152,9 +152,14 @@ def rerun_table(scripts_dir):
 
 def rerun_markdown(scripts_dir):
     """:func:`rerun_table` as a Markdown table (the one in DEVELOPERS.md is this output)."""
+    table = rerun_table(scripts_dir)
+    every = sorted(Path(p).stem for p in Path(scripts_dir).glob("*.py"))
     lines = ["| module | rules an edit reruns directly |", "|---|---|"]
-    for module, rules in rerun_table(scripts_dir).items():
-        shown = ", ".join(rules) if rules else "none (not run by any rule's script)"
+    for module, rules in table.items():
+        if rules == every:
+            shown = "every rule"
+        else:
+            shown = ", ".join(rules) if rules else "none (no rule's script runs it)"
         lines.append(f"| `{module}` | {shown} |")
     return "\n".join(lines) + "\n"
 
