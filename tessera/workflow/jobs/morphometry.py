@@ -15,6 +15,7 @@ from tessera.workflow.files.morphometry_tables import (
     write_region_densities,
 )
 from tessera.workflow.files.object_table import read_object_table
+from tessera.workflow.files.probability_map import probability_fields
 
 
 def read_region_mask(path, *, shape, factors, out):
@@ -69,12 +70,9 @@ def morphometry_job(
     spacing = info["spacing"]
     objects = read_object_table(objects_table)
     measured = measure_objects(labels, objects, spacing=spacing)
-    extra = info["extra"].get("probability", {})
-    factors = (
-        int(extra.get("z_factor", 1)),
-        int(extra.get("working_level_downsample", 1)),
-        int(extra.get("working_level_downsample", 1)),
-    )
+    # the objects image keeps the probability map's own facts (its working-level factors)
+    fields = probability_fields(info)
+    factors = (fields["z_factor"], fields["downsample"], fields["downsample"])
     Path(out_regions).parent.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory(dir=Path(out_regions).parent, prefix=".roi-") as tmp:
         region_labels = None

@@ -12,10 +12,11 @@ import zarr
 
 from tessera.io.atomic import atomic_path
 from tessera.io.links import link_tree
-from tessera.io.omezarr import AXES, multiscale_attrs, open_image
+from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.store_checksums import record_checksums, verified_bytes
 from tessera.objects.label import label_objects, subsample_labels
 from tessera.workflow.files.object_table import write_object_settings, write_object_table
+from tessera.workflow.files.probability_map import open_probability_map
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.scores import validation_threshold
 
@@ -65,11 +66,9 @@ def objects_job(
         high = validation_threshold(scores)
     low = settings.pop("low")
     low = high if low is None else low
-    group, info = open_image(probability)
+    group, info, fields = open_probability_map(probability)
     prob = info["levels"][0]
-    extra = info["extra"].get("probability", {})
-    scale = float(extra.get("scale", 1.0))
-    z_factor = int(info["extra"].get("probability", {}).get("z_factor", 1))
+    scale, z_factor = fields["scale"], fields["z_factor"]
     excluded = excluded_sections(qc_table, z_factor)
     used = {
         "target": target,
