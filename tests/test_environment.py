@@ -49,7 +49,8 @@ def test_every_third_party_import_of_the_package_is_locked(repo):
     }  # mplot3d ships inside matplotlib
     lock = _lock(repo)
     stdlib = set(sys.stdlib_module_names)
-    for path in (repo / "tessera").rglob("*.py"):
+    paths = [*(repo / "tessera").rglob("*.py"), *(repo / "tessera_demo").rglob("*.py")]
+    for path in paths:
         for node in ast.walk(ast.parse(path.read_text())):
             if isinstance(node, ast.Import):
                 names = [a.name for a in node.names]
@@ -59,7 +60,7 @@ def test_every_third_party_import_of_the_package_is_locked(repo):
                 continue
             for name in names:
                 top = name.split(".")[0]
-                if top in stdlib or top == "tessera":
+                if top in stdlib or top in ("tessera", "tessera_demo"):
                     continue
                 assert _canonical(import_names.get(top, top)) in lock, (
                     f"{path.name} imports {top}, not in requirements.lock"
