@@ -22,8 +22,8 @@ SECTION = (1024, 1024)
 SECTIONS_1X = 64
 CHILD = """
 import sys
-from tessera.workflow.jobs.ingest import ingest_stack
-ingest_stack(sys.argv[1], sys.argv[2], fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 512, 512))
+from tessera.workflow.jobs.ingest import ingest_job
+ingest_job(sys.argv[1], sys.argv[2], fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 512, 512))
 """
 
 

@@ -131,14 +131,14 @@ def write_image(path, raw, sections):
 
 
 def predict_volume(root, models, raw, sections, jobs):
-    from tessera.workflow.jobs.predict import plan_job
+    from tessera.workflow.jobs.predict import shard_plan_job
 
     image = root / f"raw_{sections}.ome.zarr"
     if not image.exists():
         write_image(image, raw, sections)
     run = root / f"run_{sections}_{jobs}"
     plan = run / "plan.json"
-    plan_job(
+    shard_plan_job(
         image,
         models,
         plan,

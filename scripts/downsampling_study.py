@@ -5,12 +5,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.downsampling_study import downsampling_job
+from tessera.workflow.jobs.downsampling_study import downsampling_study_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
-    downsampling_job,
+    downsampling_study_job,
     summaries=list(snakemake.input.summaries),
     factors=snakemake.params.factors,
     out_curve=snakemake.output.curve,

@@ -5,12 +5,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
-    ingest_stack,
+    ingest_job,
     source_path=snakemake.input.stack,
     out_path=snakemake.output.image,
     fmt=snakemake.params.format,

@@ -5,12 +5,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.pyramid import build_pyramid
+from tessera.workflow.jobs.pyramid import pyramid_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
-    build_pyramid,
+    pyramid_job,
     image_path=snakemake.input.image,
     out_path=snakemake.output.image,
     levels=snakemake.params.levels,

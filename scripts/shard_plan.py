@@ -5,12 +5,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.predict import plan_job
+from tessera.workflow.jobs.predict import shard_plan_job
 from tessera.workflow.runner import run_job
 
 run_job(
     snakemake,
-    plan_job,
+    shard_plan_job,
     pyramid=snakemake.input.image,
     model_paths=list(snakemake.input.models),
     out_plan=snakemake.output.plan,

@@ -5,13 +5,13 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.tiles import split_job
+from tessera.workflow.jobs.tiles import split_tiles_job
 from tessera.workflow.runner import run_job
 
 split = snakemake.params.split
 run_job(
     snakemake,
-    split_job,
+    split_tiles_job,
     annotation_dirs=list(snakemake.input.tiles),
     out_dir=snakemake.output.tiles,
     fractions=split["fractions"],

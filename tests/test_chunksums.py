@@ -19,8 +19,8 @@ from tessera.errors import TesseraInputError
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.rebuild_hints import generic_rebuild_hint, set_rebuild_hints
 from tessera.io.store_checksums import MANIFEST, checked_store, record_checksums
-from tessera.workflow.jobs.ingest import ingest_stack
-from tessera.workflow.jobs.pyramid import build_pyramid
+from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.pyramid import pyramid_job
 from tessera.workflow.paths import STORES, store_rule  # importing it registers the rebuild hints
 
 SPACING = (40.0, 8.0, 8.0)
@@ -37,9 +37,7 @@ def ingested(tmp_path, volume):
     """An ingest store at the path the workflow gives it, chunks of 1 x 16 x 16 (4 x 3 x 3 files)."""
     tifffile.imwrite(tmp_path / "stack.tif", volume, photometric="minisblack")
     store = tmp_path / "results" / "d1" / "ingest" / "raw.ome.zarr"
-    ingest_stack(
-        tmp_path / "stack.tif", store, fmt="tiff_stack", spacing=SPACING, chunks=(1, 16, 16)
-    )
+    ingest_job(tmp_path / "stack.tif", store, fmt="tiff_stack", spacing=SPACING, chunks=(1, 16, 16))
     return store
 
 
@@ -186,7 +184,7 @@ def test_store_without_manifest_is_refused_unless_given_as_input(tmp_path, volum
 
 def test_pyramid_keeps_the_ingest_records_of_its_hard_linked_level0(ingested, tmp_path):
     pyramid = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
-    build_pyramid(ingested, pyramid, levels=2)
+    pyramid_job(ingested, pyramid, levels=2)
     level0 = json.loads((pyramid / "0" / MANIFEST).read_text())
     assert level0["files"] == json.loads((ingested / "0" / MANIFEST).read_text())["files"]
     assert level0["linked_from"] == {"store": str(ingested), "rule": "ingest"}
@@ -204,7 +202,7 @@ def test_pyramid_keeps_the_ingest_records_of_its_hard_linked_level0(ingested, tm
 
 def test_pyramid_refuses_a_damaged_ingest_store_and_keeps_its_previous_output(ingested, tmp_path):
     pyramid = tmp_path / "results" / "d1" / "pyramid" / "raw.ome.zarr"
-    build_pyramid(ingested, pyramid, levels=1)
+    pyramid_job(ingested, pyramid, levels=1)
     before = sorted(p.relative_to(pyramid) for p in pyramid.rglob("*"))
     os.replace(
         chunk(ingested, 0, 3, 2, 2), tmp_path / "moved"
@@ -213,7 +211,7 @@ def test_pyramid_refuses_a_damaged_ingest_store_and_keeps_its_previous_output(in
         TesseraInputError,
         match=r"ingest/raw\.ome\.zarr/0/c/3/2/2: file recorded when the store was written is missing",
     ):
-        build_pyramid(ingested, pyramid, levels=1)
+        pyramid_job(ingested, pyramid, levels=1)
     assert sorted(p.relative_to(pyramid) for p in pyramid.rglob("*")) == before
     assert [p.name for p in pyramid.parent.iterdir()] == [
         "raw.ome.zarr"

@@ -36,7 +36,7 @@ from tessera.cascade.api import (
 )
 from tessera.errors import TesseraResourceError
 from tessera.io.atomic import write_table, write_text
-from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.ingest import ingest_job
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -155,7 +155,7 @@ def test_zarr_store_write_on_full_disk_keeps_the_previous_store(tmp_path, full_d
     out = tmp_path / "results" / "raw.ome.zarr"
 
     def ingest(source, target=out):
-        return ingest_stack(
+        return ingest_job(
             tmp_path / source, target, fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 32, 32)
         )
 
@@ -233,12 +233,12 @@ _ON_TMPFS = textwrap.dedent("""
     from tessera.io.atomic import write_table
     from tessera.cascade.api import save_node
     from tessera.errors import TesseraResourceError
-    from tessera.workflow.jobs.ingest import ingest_stack
+    from tessera.workflow.jobs.ingest import ingest_job
 
     disk, sources = Path(sys.argv[1]), Path(sys.argv[3])
     outs = {"table": disk / "t" / "objects.tsv", "store": disk / "s" / "raw.ome.zarr", "model": disk / "m" / "node.npz"}
     write_table(outs["table"], pd.DataFrame({"id": [1, 2]}))
-    ingest_stack(sources / "old.tif", outs["store"], fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 32, 32))
+    ingest_job(sources / "old.tif", outs["store"], fmt="tiff_stack", spacing=(40, 8, 8), chunks=(1, 32, 32))
     save_node(_small_model(1), outs["model"])
     before = {k: snapshot(p.parent) for k, p in outs.items()}
     # fill the disk, leaving 8 KiB
@@ -247,7 +247,7 @@ _ON_TMPFS = textwrap.dedent("""
         fh.write(b"\\0" * (free - 8192))
     writes = {
         "table": lambda: write_table(outs["table"], pd.DataFrame({"id": np.arange(20000)})),
-        "store": lambda: ingest_stack(sources / "new.tif", outs["store"], fmt="tiff_stack", spacing=(40, 8, 8),
+        "store": lambda: ingest_job(sources / "new.tif", outs["store"], fmt="tiff_stack", spacing=(40, 8, 8),
                                       chunks=(1, 32, 32)),
         "model": lambda: save_node(_small_model(2), outs["model"]),
     }

@@ -6,7 +6,7 @@ import pytest
 from tessera.downsampling_study import recommend_factor
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import expand_variants, load_config
-from tessera.workflow.jobs.downsampling_study import downsampling_job
+from tessera.workflow.jobs.downsampling_study import downsampling_study_job
 
 
 def base_config(**target):
@@ -90,7 +90,7 @@ def test_recommendation_is_the_cheapest_factor_within_tolerance(tmp_path):
             }
         ).to_csv(path, sep="\t", index=False)
         summaries.append(path)
-    out = downsampling_job(
+    out = downsampling_study_job(
         summaries,
         [2, 4, 8],
         tmp_path / "curve.tsv",

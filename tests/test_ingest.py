@@ -15,7 +15,7 @@ from tessera.errors import TesseraInputError
 from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
 from tessera.io.stacks import open_stack
-from tessera.workflow.jobs.ingest import ingest_stack
+from tessera.workflow.jobs.ingest import ingest_job
 
 SPACING = (40.0, 8.0, 8.0)
 
@@ -57,7 +57,7 @@ def test_every_format_round_trips(tmp_path, volume, fmt):
             store=str(src), shape=volume.shape, chunks=(2, 16, 16), dtype="uint8"
         )
         arr[:] = volume
-    summary = ingest_stack(
+    summary = ingest_job(
         src, tmp_path / "out.ome.zarr", fmt=fmt, spacing=SPACING, chunks=(1, 32, 32)
     )
     _, info = open_image(tmp_path / "out.ome.zarr")
@@ -78,7 +78,7 @@ def test_slice_folder_orders_numbers_naturally(tmp_path):
 def test_metadata_validates_against_ngff_reference(tmp_path, volume):
     # Reference implementation of the OME-Zarr (NGFF) 0.5 spec: the ome-zarr-models package.
     tifffile.imwrite(tmp_path / "s.tif", volume)
-    ingest_stack(tmp_path / "s.tif", tmp_path / "o.ome.zarr", fmt="tiff_stack", spacing=SPACING)
+    ingest_job(tmp_path / "s.tif", tmp_path / "o.ome.zarr", fmt="tiff_stack", spacing=SPACING)
     image = Image.from_zarr(zarr.open_group(str(tmp_path / "o.ome.zarr"), mode="r"))
     ms = image.ome_attributes.multiscales[0]
     assert [a.name for a in ms.axes] == ["z", "y", "x"]
@@ -94,11 +94,11 @@ def test_mrc_voxel_size_round_trips_through_header(tmp_path, volume):
     with mrcfile.new(src) as mrc:
         mrc.set_data(volume)
         mrc.voxel_size = (46.0, 46.0, 500.0)  # x, y, z in Å = 4.6, 4.6, 50 nm
-    ingest_stack(src, tmp_path / "o.ome.zarr", fmt="mrc")
+    ingest_job(src, tmp_path / "o.ome.zarr", fmt="mrc")
     _, info = open_image(tmp_path / "o.ome.zarr")
     assert info["spacing"] == pytest.approx((50.0, 4.6, 4.6))
     # A sheet value wins over the header, axis by axis.
-    ingest_stack(src, tmp_path / "p.ome.zarr", fmt="mrc", spacing=(45.0, None, None))
+    ingest_job(src, tmp_path / "p.ome.zarr", fmt="mrc", spacing=(45.0, None, None))
     assert open_image(tmp_path / "p.ome.zarr")[1]["spacing"] == pytest.approx((45.0, 4.6, 4.6))
 
 
@@ -106,7 +106,7 @@ def test_sixteen_bit_mapped_by_recorded_percentiles(tmp_path):
     rng = np.random.default_rng(3)
     volume = rng.normal(20000, 3000, size=(8, 64, 64)).clip(0, 65535).astype(np.uint16)
     tifffile.imwrite(tmp_path / "w.tif", volume)
-    summary = ingest_stack(
+    summary = ingest_job(
         tmp_path / "w.tif",
         tmp_path / "o.ome.zarr",
         fmt="tiff_stack",
@@ -154,16 +154,16 @@ def test_no_partial_store_when_ingest_fails(tmp_path):
         TesseraInputError,
         match=r"1\.tif: section has shape \(8, 9\), expected \(8, 8\) like 0\.tif",
     ):
-        ingest_stack(folder, out, fmt="slice_folder", spacing=SPACING)
+        ingest_job(folder, out, fmt="slice_folder", spacing=SPACING)
     assert os.listdir(tmp_path) == ["bad"]
 
 
 def test_previous_output_survives_a_failed_rerun(tmp_path, volume):
     tifffile.imwrite(tmp_path / "s.tif", volume)
     out = tmp_path / "o.ome.zarr"
-    ingest_stack(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=SPACING)
+    ingest_job(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=SPACING)
     with pytest.raises(TesseraInputError):
-        ingest_stack(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=(40, -8, 8))
+        ingest_job(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=(40, -8, 8))
     np.testing.assert_array_equal(open_image(out)[1]["levels"][0][:], volume)
 
 
@@ -197,7 +197,7 @@ def test_bad_input_is_one_clear_error_and_writes_nothing(tmp_path, make, fmt, sp
         tifffile.imwrite(src, np.zeros((8, 8, 3), np.uint8), photometric="rgb")
     before = sorted(os.listdir(tmp_path))
     with pytest.raises(TesseraInputError, match=message) as info:
-        ingest_stack(src, tmp_path / "o.ome.zarr", fmt=fmt, spacing=spacing)
+        ingest_job(src, tmp_path / "o.ome.zarr", fmt=fmt, spacing=spacing)
     assert str(src) in str(info.value)  # the message names the file
     assert sorted(os.listdir(tmp_path)) == before
 
@@ -206,7 +206,7 @@ def test_real_sstem_stack_ingests_with_its_voxel_size(tmp_path, vnc_sstem):
     # ../shared/data/vnc-sstem: 20 sections of 1024 x 1024, 4.6 x 4.6 nm pixels, ~50 nm sections
     # (its SOURCE-README; Gerhard et al. 2013).
     out = tmp_path / "vnc.ome.zarr"
-    summary = ingest_stack(vnc_sstem / "raw", out, fmt="slice_folder", spacing=(50.0, 4.6, 4.6))
+    summary = ingest_job(vnc_sstem / "raw", out, fmt="slice_folder", spacing=(50.0, 4.6, 4.6))
     assert summary["shape"] == [20, 1024, 1024]
     group, info = open_image(out)
     assert info["spacing"] == (50.0, 4.6, 4.6)

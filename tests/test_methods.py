@@ -7,7 +7,7 @@ import pandas as pd
 
 from tessera.io.digests import file_sha256
 from tessera.workflow.jobs.audit import audit_job
-from tessera.workflow.jobs.checksum_inputs import checksum_job
+from tessera.workflow.jobs.checksum_inputs import checksum_inputs_job
 from tessera.workflow.jobs.methods import methods_job
 from tessera.workflow.provenance import _file_entry
 
@@ -17,7 +17,7 @@ def test_checksums_match_hashlib(tmp_path):
     data = bytes(range(256)) * 5000
     (tmp_path / "stack.tif").write_bytes(data)
     assert file_sha256(tmp_path / "stack.tif", chunk=1000) == hashlib.sha256(data).hexdigest()
-    checksum_job([tmp_path / "stack.tif"], tmp_path / "inputs.sha256")
+    checksum_inputs_job([tmp_path / "stack.tif"], tmp_path / "inputs.sha256")
     assert (tmp_path / "inputs.sha256").read_text().startswith(hashlib.sha256(data).hexdigest())
 
 

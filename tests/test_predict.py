@@ -31,7 +31,7 @@ from tessera.io.store_checksums import record_checksums
 from tessera.predict import plan_shards
 from tessera.probability_encoding import encode_probability
 from tessera.workflow.jobs import predict
-from tessera.workflow.jobs.predict import plan_job, predict_shard_job, stitch_job
+from tessera.workflow.jobs.predict import predict_shard_job, shard_plan_job, stitch_job
 
 SPEC = dict(
     stages=2,
@@ -113,7 +113,7 @@ def whole_volume(study, output_sigma=0.0):
 def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0):
     out = study["root"] / name
     plan = out / "plan.json"
-    plan_job(
+    shard_plan_job(
         study["image"],
         study["paths"],
         plan,
@@ -253,7 +253,7 @@ def test_killed_shard_job_leaves_no_output_and_reruns_identically(study, monkeyp
 
 def test_plan_refuses_a_model_for_another_target(study, tmp_path):
     with pytest.raises(TesseraInputError, match="model is for target 'blobs', expected 'nuclei'"):
-        plan_job(
+        shard_plan_job(
             study["image"],
             study["paths"],
             tmp_path / "plan.json",
@@ -316,7 +316,7 @@ def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
     group.create_array(name="0", data=volume, chunks=(1, 128, 128), dimension_names=AXES)
     record_checksums(image)
     plan = tmp_path / "plan.json"
-    plan_job(
+    shard_plan_job(
         image,
         study["paths"],
         plan,
@@ -351,7 +351,7 @@ def test_a_shard_job_stays_within_its_memory_estimate(study, tmp_path):
 def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path):
     out = study["root"] / "memory"
     plan = out / "plan.json"
-    plan_job(
+    shard_plan_job(
         study["image"],
         study["paths"],
         plan,
@@ -398,7 +398,7 @@ def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
     damaged.write_bytes(bytes(data))
     plan = tmp_path / "plan.json"
     halo = receptive_radius(study["spec"])
-    plan_job(
+    shard_plan_job(
         image,
         study["paths"],
         plan,

@@ -13,8 +13,8 @@ from skimage.transform import downscale_local_mean
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
 from tessera.pyramid import block_mean, downsample_level
-from tessera.workflow.jobs.ingest import ingest_stack
-from tessera.workflow.jobs.pyramid import build_pyramid
+from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.pyramid import pyramid_job
 
 
 @pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
@@ -69,14 +69,14 @@ def test_pyramid_levels_metadata_and_values(tmp_path, downsample_z):
     rng = np.random.default_rng(4)
     volume = rng.integers(0, 256, size=(8, 64, 48), dtype=np.uint8)
     tifffile.imwrite(tmp_path / "v.tif", volume)
-    ingest_stack(
+    ingest_job(
         tmp_path / "v.tif",
         tmp_path / "a.ome.zarr",
         fmt="tiff_stack",
         spacing=(40, 8, 8),
         chunks=(1, 16, 16),
     )
-    factors = build_pyramid(
+    factors = pyramid_job(
         tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=3, downsample_z=downsample_z
     )
     fz = 2 if downsample_z else 1
@@ -101,8 +101,8 @@ def test_pyramid_levels_metadata_and_values(tmp_path, downsample_z):
 def test_level0_shares_storage_with_ingest_output(tmp_path):
     volume = np.full((2, 32, 32), 7, np.uint8)  # zarr skips writing all-fill chunks
     tifffile.imwrite(tmp_path / "v.tif", volume)
-    ingest_stack(tmp_path / "v.tif", tmp_path / "a.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8))
-    build_pyramid(tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=1)
+    ingest_job(tmp_path / "v.tif", tmp_path / "a.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8))
+    pyramid_job(tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=1)
     chunk = next(p for p in (tmp_path / "p.ome.zarr" / "0" / "c").rglob("*") if p.is_file())
     twin = tmp_path / "a.ome.zarr" / chunk.relative_to(tmp_path / "p.ome.zarr")
     assert os.path.samefile(chunk, twin)

@@ -8,7 +8,7 @@ from tessera.io.digests import file_sha256
 from tessera.workflow.files.input_checksums import write_input_checksums
 
 
-def checksum_job(paths, out_path):
+def checksum_inputs_job(paths, out_path):
     """Write ``<sha256>  <path>`` lines for the input files of one dataset (an audit record)."""
     write_input_checksums(out_path, [(file_sha256(p), p) for p in paths])
     return {"files": len(paths)}

@@ -5,7 +5,7 @@ from tessera.io.atomic import atomic_path, write_table
 from tessera.workflow.files.evaluation_summary import overall_scores
 
 
-def downsampling_job(summaries, factors, out_curve, out_plot, *, target, tolerance):
+def downsampling_study_job(summaries, factors, out_curve, out_plot, *, target, tolerance):
     """Collect the test F1 of every factor, add the relative prediction cost, recommend one."""
     scores = [overall_scores(path) for path in summaries]
     curve, chosen = factor_curve(factors, scores, target=target, tolerance=tolerance)

@@ -51,7 +51,7 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
     return tuple(out)
 
 
-def ingest_stack(
+def ingest_job(
     source_path,
     out_path,
     *,

@@ -1,7 +1,7 @@
 """Jobs of rules shard_plan, predict_shard and stitch: plan the blocks of a whole volume, predict
 a shard job's blocks, and stitch them into one OME-Zarr probability map.
 
-The halo is derived once, in :func:`plan_job` (:func:`tessera.predict.shard_halo`); the shard
+The halo is derived once, in :func:`shard_plan_job` (:func:`tessera.predict.shard_halo`); the shard
 jobs, their memory estimate and the stitched map's metadata read it from the plan.
 """
 
@@ -34,7 +34,7 @@ BASELINE_MB = 200
 _log = logging.getLogger(__name__)
 
 
-def plan_job(
+def shard_plan_job(
     pyramid,
     model_paths,
     out_plan,

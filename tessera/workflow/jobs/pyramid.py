@@ -17,13 +17,13 @@ from tessera.io.store_checksums import record_checksums
 from tessera.pyramid import downsample_level
 
 
-def build_pyramid(image_path, out_path, *, levels=3, downsample_z=False):
+def pyramid_job(image_path, out_path, *, levels=3, downsample_z=False):
     """Make a multiscale OME-Zarr image from a single-level one.
 
     Parameters
     ----------
     image_path : str or Path
-        Single-level OME-Zarr image (from :func:`~tessera.workflow.jobs.ingest.ingest_stack`);
+        Single-level OME-Zarr image (from :func:`~tessera.workflow.jobs.ingest.ingest_job`);
         not modified.
     out_path : str or Path
         Multiscale OME-Zarr image to create (atomically).

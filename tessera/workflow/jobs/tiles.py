@@ -15,7 +15,7 @@ from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import read_annotation_set, write_annotation_set
 from tessera.workflow.files.to_paint import export_tiles, import_painted
 
-__all__ = ["export_tiles_job", "import_tiles_job", "sample_tiles_job", "split_job"]
+__all__ = ["export_tiles_job", "import_tiles_job", "sample_tiles_job", "split_tiles_job"]
 
 
 def sample_tiles_job(
@@ -65,7 +65,7 @@ def sample_tiles_job(
     return {"tiles": len(registry), "excluded_sections": exclude, "level": level}
 
 
-def split_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed):
+def split_tiles_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed):
     """Merge the annotation sets of one target and split them into train / validation / test."""
     registries, labels = [], {}
     for path in annotation_dirs:
