@@ -1,6 +1,6 @@
 """Whole-volume prediction and labelling: throughput, memory and time as the volume grows.
 
-A default 2 x 2 cascade (MLP) is trained quickly on a synthetic demo volume. Volumes of 1, 4 and
+A default 2 x 2 cascade (MLP) is trained quickly on a synthetic demo volume. Volumes of 2, 8 and
 16 sections of 1024 x 1024 voxels (the working level; 1x = 2 sections) are then predicted through the same path
 the workflow uses (shard plan -> predict_shard_job -> stitch_job) with blocks of one section,
 each step in a fresh process on one thread, so the figures include reading, features, the

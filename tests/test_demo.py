@@ -4,6 +4,7 @@ import ast
 import hashlib
 import json
 import math
+import re
 import zlib
 from pathlib import Path
 
@@ -90,9 +91,17 @@ def test_dataset_seed_is_crc32_of_study_and_name():
     assert dataset_seed(1, "tn1") != dataset_seed(2, "tn1")
 
 
-@pytest.mark.parametrize("study_seed, name", [(-1, "tn1"), (1.5, "tn1"), (1, ""), (1, None)])
-def test_dataset_seed_rejects_bad_input(study_seed, name):
-    with pytest.raises(TesseraInputError):
+@pytest.mark.parametrize(
+    "study_seed, name, message",
+    [
+        (-1, "tn1", "study_seed must be an integer >= 0, got -1"),
+        (1.5, "tn1", "study_seed must be an integer >= 0, got 1.5"),
+        (1, "", "dataset must be a non-empty string, got ''"),
+        (1, None, "dataset must be a non-empty string, got None"),
+    ],
+)
+def test_dataset_seed_rejects_bad_input(study_seed, name, message):
+    with pytest.raises(TesseraInputError, match=re.escape(message)):
         dataset_seed(study_seed, name)
 
 
@@ -120,7 +129,9 @@ def test_subject_scale_is_condition_scale_times_lognormal_animal_factor():
     # Log-normal by definition: log of the factor ~ Normal(0, sd); sd of 600 draws within 10 %.
     assert abs(logs.mean()) < 0.05 * 4 / math.sqrt(600)
     assert logs.std(ddof=1) == pytest.approx(sd, rel=0.1)
-    with pytest.raises(TesseraInputError):
+    with pytest.raises(
+        TesseraInputError, match=re.escape("condition must be one of ['cold', 'thermoneutral']")
+    ):
         subject_volume_scale("x1", "warm", study_seed=5, condition_scales=scales, animal_sd=sd)
 
 
@@ -151,21 +162,21 @@ def test_dtypes_and_shapes(shape):
 
 
 @pytest.mark.parametrize(
-    "kwargs",
+    "kwargs, message",
     [
-        {"shape": (4, 64, 64)},
-        {"shape": (8, 64)},
-        {"spacing": (40.0, 8.0)},
-        {"spacing": (40.0, -8.0, 8.0)},
-        {"seed": -3},
-        {"mito_volume_scale": 0.0},
-        {"mito_volume_scale": float("nan")},
-        {"defects": "yes"},
+        ({"shape": (4, 64, 64)}, "shape must be at least (8, 64, 64), got (4, 64, 64)"),
+        ({"shape": (8, 64)}, "shape must be 3 integers (z, y, x), got (8, 64)"),
+        ({"spacing": (40.0, 8.0)}, "spacing must have one value per axis (3), got 2"),
+        ({"spacing": (40.0, -8.0, 8.0)}, "spacing values must be positive and finite, got -8.0"),
+        ({"seed": -3}, "seed must be an integer >= 0, got -3"),
+        ({"mito_volume_scale": 0.0}, "mito_volume_scale must be between 0.1 and 10, got 0.0"),
+        ({"mito_volume_scale": float("nan")}, "mito_volume_scale must be between 0.1 and 10"),
+        ({"defects": "yes"}, "defects must be true or false, got 'yes'"),
     ],
 )
-def test_bad_input_is_rejected(kwargs):
+def test_bad_input_is_rejected(kwargs, message):
     args = {"seed": 1, "shape": (8, 64, 64), "spacing": SPACING} | kwargs
-    with pytest.raises(TesseraInputError):
+    with pytest.raises(TesseraInputError, match=re.escape(message)):
         render_dataset(**args)
 
 
@@ -408,9 +419,15 @@ def test_failed_write_leaves_previous_dataset_and_no_temp(tmp_path, monkeypatch)
 
 
 @pytest.mark.parametrize(
-    "kwargs", [{"tile_size": 512}, {"tiles_per_target": 0}, {"dataset": "a/b"}, {"condition": ""}]
+    "kwargs, message",
+    [
+        ({"tile_size": 512}, "tile_size must not exceed the section size"),
+        ({"tiles_per_target": 0}, "tiles_per_target must be an integer >= 1, got 0"),
+        ({"dataset": "a/b"}, "dataset must be a non-empty string without slashes"),
+        ({"condition": ""}, "condition must be a non-empty string without slashes"),
+    ],
 )
-def test_write_rejects_bad_options(tmp_path, kwargs):
-    with pytest.raises(TesseraInputError):
+def test_write_rejects_bad_options(tmp_path, kwargs, message):
+    with pytest.raises(TesseraInputError, match=re.escape(message)):
         write_dataset(tmp_path / "x", **(WRITE | kwargs))
     assert not (tmp_path / "x").exists()

@@ -162,7 +162,7 @@ def test_previous_output_survives_a_failed_rerun(tmp_path, volume):
     tifffile.imwrite(tmp_path / "s.tif", volume)
     out = tmp_path / "o.ome.zarr"
     ingest_job(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=SPACING)
-    with pytest.raises(TesseraInputError):
+    with pytest.raises(TesseraInputError, match="along y must be > 0"):
         ingest_job(tmp_path / "s.tif", out, fmt="tiff_stack", spacing=(40, -8, 8))
     np.testing.assert_array_equal(open_image(out)[1]["levels"][0][:], volume)
 
