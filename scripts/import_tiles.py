@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.tiles import import_tiles_job
+from tessera.workflow.jobs.import_tiles import import_tiles_job
 from tessera.workflow.runner import run_job
 
 run_job(

@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.tiles import sample_tiles_job
+from tessera.workflow.jobs.sample_tiles import sample_tiles_job
 from tessera.workflow.runner import run_job
 
 tiles = snakemake.params.tiles

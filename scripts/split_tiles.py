@@ -5,7 +5,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
 
-from tessera.workflow.jobs.tiles import split_tiles_job
+from tessera.workflow.jobs.split_tiles import split_tiles_job
 from tessera.workflow.runner import run_job
 
 split = snakemake.params.split
