@@ -142,6 +142,64 @@ def test_evaluate_tiles_pools_test_tiles_only():
     assert list(summary["dataset"]) == ["all", "d1", "d2"]
 
 
+def _best_hundredth(truth, prob):
+    """Lowest of the hundredths 0.01 .. 0.99 with the best F1 of ``prob >= t``, brute force from
+    the definition F1 = 2 TP / (2 TP + FP + FN) (common practice), independent of tessera."""
+    best, best_f1 = None, -1.0
+    for k in range(1, 100):
+        pred, true = prob >= k / 100, truth == 1
+        tp, fp, fn = np.sum(pred & true), np.sum(pred & ~true), np.sum(~pred & true)
+        f1 = 2 * tp / (2 * tp + fp + fn)
+        if f1 > best_f1:  # strictly better only: ties keep the lower threshold
+            best, best_f1 = k / 100, f1
+    return best
+
+
+def test_evaluation_uses_the_threshold_chosen_on_validation_tiles():
+    # Probabilities on half-hundredths (never on a grid value). Validation pixels separate
+    # perfectly for thresholds in (0.305, 0.375), hundredths 0.31 .. 0.37, the lowest 0.31; test
+    # pixels separate at 0.10 instead. Tuning on the test tiles would report 0.10 and F1 = 1.
+    rng = np.random.default_rng(2)
+    half = (np.arange(100) + 0.5) / 100
+    reg = registry(["validation", "validation", "test", "test", "test"])
+    gaps = [(0.31, 0.37), (0.31, 0.37), (0.1, 0.1), (0.1, 0.1), (0.1, 0.1)]
+    labels, probs = {}, {}
+    for t, (low, high) in zip(reg["tile_id"], gaps, strict=True):
+        truth = (rng.random((8, 8)) < 0.4).astype(np.uint8)
+        prob = np.where(
+            truth == 1, rng.choice(half[half > high], (8, 8)), rng.choice(half[half < low], (8, 8))
+        )
+        truth[0, :2] = 255  # ignored pixels, with a probability that would count as foreground
+        prob[0, :2] = 0.995
+        labels[t], probs[t] = truth, prob.astype(np.float32)
+
+    def pooled(ids):
+        keep = [labels[t] != 255 for t in ids]
+        return (
+            np.concatenate([labels[t][k] for t, k in zip(ids, keep, strict=True)]),
+            np.concatenate([probs[t][k] for t, k in zip(ids, keep, strict=True)]),
+        )
+
+    val_t, val_p = pooled(["t0", "t1"])
+    test_t, test_p = pooled(["t2", "t3", "t4"])
+    assert _best_hundredth(val_t, val_p) == 0.31  # as worked out above
+    assert _best_hundredth(test_t, test_p) == 0.10  # the two sets disagree
+    summary, per_tile, _ = evaluate_tiles(reg, labels, probs, reps=50)
+    overall = summary.iloc[0]
+    assert list(summary["threshold"]) == pytest.approx([0.31] * len(summary))
+    # Reference: sklearn.metrics on the test pixels cut at the validation choice.
+    pred = test_p >= 0.31
+    assert f1_score(test_t, pred) < 0.95  # the choice is visible in the test scores
+    assert overall["precision"] == pytest.approx(precision_score(test_t, pred))
+    assert overall["recall"] == pytest.approx(recall_score(test_t, pred))
+    assert overall["f1"] == pytest.approx(f1_score(test_t, pred))
+    assert overall["jaccard"] == pytest.approx(jaccard_score(test_t, pred))
+    for row in per_tile.itertuples(index=False):
+        keep = labels[row.tile_id] != 255
+        tile_truth, tile_pred = labels[row.tile_id][keep], probs[row.tile_id][keep] >= 0.31
+        assert row.f1 == pytest.approx(f1_score(tile_truth, tile_pred))
+
+
 def test_missing_test_tiles_and_leakage_are_refused():
     reg = registry(["train", "validation", "train"])
     with pytest.raises(

@@ -3,7 +3,13 @@
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
+from sklearn.metrics import (
+    f1_score,
+    jaccard_score,
+    precision_recall_curve,
+    precision_score,
+    recall_score,
+)
 
 from tessera.cascade.api import CascadeSpec
 from tessera.errors import TesseraInputError
@@ -29,6 +35,22 @@ def test_folds_are_contiguous_in_z_balanced_and_order_free():
         assert changes == 2  # three contiguous runs
 
 
+def reference_threshold(truth, prob):
+    """The hundredth 0.01 .. 0.99 with the best F1 of ``prob >= t`` (ties: the lowest).
+
+    The rule as documented (a fixed grid of hundredths, best validation F1, lowest on ties),
+    computed from scikit-learn's precision_recall_curve rather than from tessera's grid: the
+    curve has one point per distinct probability p (decisions ``prob >= p``); a hundredth t
+    makes the same decisions as the smallest distinct probability >= t, and the curve's
+    appended last point (precision 1, recall 0, F1 0) stands for "nothing above t".
+    """
+    precision, recall, thresholds = precision_recall_curve(truth, prob)
+    f1 = 2 * precision * recall / np.maximum(precision + recall, 1e-300)
+    hundredths = np.arange(1, 100) / 100
+    scores = f1[np.searchsorted(thresholds, hundredths)]
+    return hundredths[np.flatnonzero(scores == scores.max())[0]]
+
+
 def test_scores_match_sklearn_with_threshold_chosen_on_validation():
     rng = np.random.default_rng(0)
     registry = pd.DataFrame(
@@ -44,8 +66,7 @@ def test_scores_match_sklearn_with_threshold_chosen_on_validation():
     keep = {t: labels[t] != 255 for t in labels}
     val_t = np.concatenate([labels[t][keep[t]] for t in ("v1", "v2")])
     val_p = np.concatenate([probs[t][keep[t]] for t in ("v1", "v2")])
-    grid = np.linspace(0.01, 0.99, 99)
-    best = grid[np.argmax([f1_score(val_t, val_p >= g) for g in grid])]
+    best = reference_threshold(val_t, val_p)
     assert table.loc["test", "threshold"] == pytest.approx(best)
     test_t = np.concatenate([labels[t][keep[t]] for t in ("t1", "t2")])
     test_pred = np.concatenate([probs[t][keep[t]] for t in ("t1", "t2")]) >= best
@@ -54,6 +75,60 @@ def test_scores_match_sklearn_with_threshold_chosen_on_validation():
     assert table.loc["test", "recall"] == pytest.approx(recall_score(test_t, test_pred))
     assert table.loc["test", "f1"] == pytest.approx(f1_score(test_t, test_pred))
     assert table.loc["test", "jaccard"] == pytest.approx(jaccard_score(test_t, test_pred))
+
+
+# Probabilities on half-hundredths (0.005, 0.015, ..., 0.995): never equal to a grid value, so
+# the decisions at each hundredth do not depend on how the grid's floats are rounded.
+HALF_HUNDREDTHS = (np.arange(100) + 0.5) / 100
+
+
+def separated_tile(rng, shape, low, high):
+    """Labels 0/1/255 and probabilities: every negative below `low`, every positive above `high`."""
+    truth = (rng.random(shape) < 0.4).astype(np.uint8)
+    positive = rng.choice(HALF_HUNDREDTHS[HALF_HUNDREDTHS > high], shape)
+    negative = rng.choice(HALF_HUNDREDTHS[HALF_HUNDREDTHS < low], shape)
+    prob = np.where(truth == 1, positive, negative).astype(np.float32)
+    truth[0, :3] = 255  # unsure pixels: left out of scoring
+    prob[0, :3] = 0.995
+    return truth, prob
+
+
+def test_threshold_comes_from_validation_tiles_not_test_tiles():
+    # Validation pixels separate perfectly for any threshold in (0.305, 0.375): F1 = 1 on a
+    # plateau of hundredths 0.31 .. 0.37, whose lowest is 0.31 (the documented tie rule). Test
+    # pixels separate at 0.10 instead, so a threshold tuned on test tiles would be 0.10.
+    rng = np.random.default_rng(5)
+    registry = pd.DataFrame(
+        {"tile_id": ["v1", "v2", "t1", "t2"], "role": ["validation", "validation", "test", "test"]}
+    )
+    gaps = {"v1": (0.31, 0.37), "v2": (0.31, 0.37), "t1": (0.1, 0.1), "t2": (0.1, 0.1)}
+    labels, probs = {}, {}
+    for t, (low, high) in gaps.items():
+        labels[t], probs[t] = separated_tile(rng, (12, 12), low, high)
+
+    def pooled(ids):
+        keep = [labels[t] != 255 for t in ids]
+        return (
+            np.concatenate([labels[t][k] for t, k in zip(ids, keep, strict=True)]),
+            np.concatenate([probs[t][k] for t, k in zip(ids, keep, strict=True)]),
+        )
+
+    val_t, val_p = pooled(["v1", "v2"])
+    test_t, test_p = pooled(["t1", "t2"])
+    expected = reference_threshold(val_t, val_p)
+    assert expected == 0.31  # worked out by hand above
+    assert reference_threshold(test_t, test_p) == 0.10  # the two sets disagree
+    table = score_tiles(registry, labels, probs).set_index("role")
+    assert table.loc["validation", "threshold"] == pytest.approx(0.31)
+    assert table.loc["test", "threshold"] == pytest.approx(0.31)
+    # Reference: sklearn.metrics on the test pixels cut at the validation choice.
+    pred = test_p >= expected
+    assert f1_score(test_t, pred) < 0.95  # the validation choice costs the test tiles something
+    assert table.loc["test", "precision"] == pytest.approx(precision_score(test_t, pred))
+    assert table.loc["test", "recall"] == pytest.approx(recall_score(test_t, pred))
+    assert table.loc["test", "f1"] == pytest.approx(f1_score(test_t, pred))
+    assert table.loc["test", "jaccard"] == pytest.approx(jaccard_score(test_t, pred))
+    assert table.loc["validation", "f1"] == pytest.approx(f1_score(val_t, val_p >= expected))
 
 
 def test_scoring_needs_validation_tiles():
