@@ -9,6 +9,7 @@ import zarr
 from ome_zarr_models.v05 import Image
 from ome_zarr_models.v05.image_label import ImageLabel
 from scipy import ndimage
+from skimage.draw import ellipsoid as sk_ellipsoid
 from skimage.filters import apply_hysteresis_threshold
 
 from tessera.errors import TesseraInputError
@@ -35,11 +36,23 @@ def smooth_field(seed, shape=(16, 64, 64)):
     return p.astype(np.float32)
 
 
+def physical_ball(radius_nm, spacing):
+    """Reference structuring element: the voxels whose centres lie within radius_nm (nm) of the
+    centre voxel's in physical space, taken from skimage.draw.ellipsoid (semi-axes in nm, grid
+    step = spacing z y x) and cropped to its extent; None for radius 0."""
+    if radius_nm == 0:
+        return None
+    element = sk_ellipsoid(radius_nm, radius_nm, radius_nm, spacing=spacing)
+    where = np.argwhere(element)
+    return element[tuple(slice(lo, hi + 1) for lo, hi in zip(where.min(0), where.max(0)))]
+
+
 def reference(p, *, high, low, open_nm=0, close_nm=0, connectivity=26, vmin=0.0, vmax=None):
-    """The same steps on the whole volume in memory, with scipy.ndimage doing the work."""
+    """The same steps on the whole volume in memory, with scipy.ndimage doing the work and the
+    structuring elements from scikit-image (:func:`physical_ball`)."""
     st = connectivity_structure(connectivity)
     m = p > low
-    o, c = ball(open_nm, SPACING), ball(close_nm, SPACING)
+    o, c = physical_ball(open_nm, SPACING), physical_ball(close_nm, SPACING)
     if o is not None:
         m = ndimage.binary_dilation(ndimage.binary_erosion(m, o, border_value=0), o, border_value=0)
     if c is not None:
@@ -106,6 +119,8 @@ def test_hysteresis_equals_scikit_image():
         dict(high=0.75, low=0.65, open_nm=12, close_nm=12, vmin=0.0002, vmax=0.003),
         dict(high=0.8, low=0.7, connectivity=18, vmin=0.0001),
         dict(high=0.8, low=0.6, open_nm=25, connectivity=6),
+        # a radius that reaches one voxel along z at 40 nm (and 4 voxels in-plane at 10 nm)
+        dict(high=0.75, low=0.65, close_nm=45),
     ],
 )
 def test_morphology_holes_and_size_equal_the_in_memory_reference(settings):
@@ -125,6 +140,21 @@ def test_morphology_holes_and_size_equal_the_in_memory_reference(settings):
         labels, table = run(p, block, **kwargs)
         np.testing.assert_array_equal(labels, expected)
         assert table["id"].tolist() == list(range(1, expected.max() + 1))
+
+
+@pytest.mark.parametrize(
+    "radius_nm, spacing",
+    [(12, SPACING), (25, SPACING), (45, SPACING), (85, SPACING), (60, (30.0, 12.0, 9.0))],
+)
+def test_ball_is_the_physical_ellipsoid_of_scikit_image(radius_nm, spacing):
+    # Reference: skimage.draw.ellipsoid with semi-axes radius_nm and the voxel spacing, i.e. the
+    # voxels within radius_nm in nm. With anisotropic voxels it is flat along z (one plane below
+    # 40 nm), unlike an element that treats the voxels as cubes.
+    expected = physical_ball(radius_nm, spacing)
+    element = ball(radius_nm, spacing)
+    assert element.shape == expected.shape
+    np.testing.assert_array_equal(element, expected)
+    assert element.shape[0] < element.shape[1]
 
 
 def test_cavities_are_filled():
