@@ -98,10 +98,10 @@ def test_manifests_are_invisible_to_zarr(ingested):
 @pytest.mark.parametrize(
     ("damage", "message"),
     [
-        (flip_byte, r"does not match its recorded SHA-256 \(altered or damaged\)"),
+        (flip_byte, r"file does not match its recorded SHA-256 \(altered or damaged\)"),
         (
             lambda p: p.write_bytes(p.read_bytes()[:-3]),
-            r"has \d+ bytes, \d+ were recorded \(truncated or damaged\)",
+            r"file has \d+ bytes, \d+ were recorded \(truncated or damaged\)",
         ),
         (os.remove, "file recorded when the store was written is missing"),
     ],
@@ -115,7 +115,9 @@ def test_damaged_chunk_is_refused_naming_file_and_rule(ingested, damage, message
         info["levels"][0][:]
     text = str(error.value)
     assert text.startswith(f"{damaged}: ")
-    assert "rerun rule ingest to rebuild" in text
+    assert text.endswith(
+        f"rerun rule ingest to rebuild {ingested} (delete it, or snakemake --forcerun ingest)"
+    )
 
 
 def test_a_region_read_verifies_only_the_chunks_it_touches(ingested, volume):
@@ -143,7 +145,8 @@ def test_a_chunk_added_after_writing_is_refused(tmp_path):
     _, info = open_image(store)
     np.testing.assert_array_equal(info["levels"][0][0], data[0])
     with pytest.raises(
-        TesseraInputError, match=r"not recorded when the store was written.*rerun rule pyramid"
+        TesseraInputError,
+        match=r"file was not recorded when the store was written \(added later\?\); rerun rule pyramid",
     ):
         info["levels"][0][1]
 
@@ -172,8 +175,8 @@ def test_store_without_manifest_is_refused_unless_given_as_input(tmp_path, volum
     group.create_array("0", data=volume, chunks=(1, 16, 16), dimension_names=AXES)
     with pytest.raises(
         TesseraInputError,
-        match=r"zarr\.json: no checksum manifest .* older tessera version or by "
-        r"hand; rerun rule stitch to rebuild",
+        match=r"zarr\.json: no checksum manifest \(tessera-checksums\.json\) covers this file: the "
+        r"store was written by an older tessera version or by hand; rerun rule stitch to rebuild",
     ):
         open_image(store)
     # an image given as input (the sheet's zarr format) is read; records are checked where present
@@ -193,8 +196,8 @@ def test_pyramid_keeps_the_ingest_records_of_its_hard_linked_level0(ingested, tm
     _, info = open_image(pyramid)
     with pytest.raises(
         TesseraInputError,
-        match=r"rerun rule pyramid .*hard-linked from .*ingest/raw\.ome\.zarr.*"
-        r"rerun rule ingest first",
+        match=r"rerun rule pyramid .*; its files are hard-linked from .*ingest/raw\.ome\.zarr: "
+        r"if that store is damaged too, rerun rule ingest first",
     ):
         info["levels"][0][0]
     assert info["levels"][2][:].shape == (4, 10, 12)  # other levels are unaffected

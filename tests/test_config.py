@@ -54,7 +54,10 @@ def test_defaults_are_filled_from_the_schema(schemas):
             lambda c: c.update(colour="red"),
             r"key \(top level\): Additional properties are not allowed \('colour'",
         ),
-        (lambda c: c["pyramid"].update(levles=3), r"key pyramid: Additional properties.*'levles'"),
+        (
+            lambda c: c["pyramid"].update(levles=3),
+            r"key pyramid: Additional properties are not allowed \('levles' was unexpected\)",
+        ),
         (
             lambda c: c["pyramid"].update(levels=-1),
             r"key pyramid.levels: -1 is less than the minimum of 0",

@@ -136,6 +136,7 @@ def assert_refused_cleanly(write, out, full_disk, *, new_size):
     )  # the write got part-way before the disk filled
     assert snapshot(out.parent) == before
     assert not [p for p in out.parent.rglob("*") if ".partial" in p.name]
+    return message
 
 
 def test_table_write_on_full_disk_keeps_the_previous_table(tmp_path, full_disk):
@@ -143,9 +144,10 @@ def test_table_write_on_full_disk_keeps_the_previous_table(tmp_path, full_disk):
     write_table(out, pd.DataFrame({"id": [1, 2], "volume_um3": [0.5, 0.25]}))
     new = pd.DataFrame({"id": np.arange(5000), "volume_um3": np.linspace(0, 1, 5000)})
     write_table(tmp_path / "probe.tsv", new)
-    assert_refused_cleanly(
+    message = assert_refused_cleanly(
         lambda: write_table(out, new), out, full_disk, new_size=size_of(tmp_path / "probe.tsv")
     )
+    assert message.startswith(f"{out}: the disk is full (no space left on device)")
 
 
 def test_zarr_store_write_on_full_disk_keeps_the_previous_store(tmp_path, full_disk):

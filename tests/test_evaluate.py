@@ -209,10 +209,16 @@ def test_missing_test_tiles_and_leakage_are_refused():
         evaluate_tiles(reg, {}, {})
     leaky = registry(["train", "test"])
     leaky.loc[1, ["dataset", "z"]] = ["d2", 0]  # same dataset and section as t0
-    with pytest.raises(TesseraInputError, match="test tile t1 overlaps training tile t0"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"test tile t1 overlaps training tile t0: scores on it would be inflated \(leakage\); fix the split",
+    ):
         check_no_leakage(leaky)
     twice = pd.concat([registry(["train"]), registry(["test"])], ignore_index=True)
-    with pytest.raises(TesseraInputError, match=r"appear more than once \(in several roles\?\)"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"tile id\(s\) \['t0'\] appear more than once \(in several roles\?\)",
+    ):
         check_no_leakage(twice)
 
 

@@ -180,7 +180,7 @@ def test_previous_output_survives_a_failed_rerun(tmp_path, volume):
             (40, None, 8),
             "along y is blank in the sheet and the file header has none",
         ),
-        ("empty_folder", "slice_folder", SPACING, "no section images"),
+        ("empty_folder", "slice_folder", SPACING, r"no section images \(.*\) in the folder"),
         ("rgb", "tiff_stack", SPACING, "expected greyscale pages"),
     ],
 )

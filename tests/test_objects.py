@@ -232,7 +232,7 @@ def test_excluded_sections_are_bridged_so_objects_stay_whole():
         (dict(high=0.4, low=0.6), "low \\(0.6\\) must not exceed high \\(0.4\\)"),
         (
             dict(high=0.5, min_volume_um3=2.0, max_volume_um3=1.0),
-            "min_volume_um3 \\(2.0\\) is larger than max_volume_um3",
+            "objects min_volume_um3 \\(2.0\\) is larger than max_volume_um3 \\(1.0\\)",
         ),
         (dict(high=0.5, connectivity=4), "connectivity must be 6, 18 or 26, got 4"),
         (dict(high=0.5, open_radius_nm=-1), "morphology radius must be >= 0 nm"),

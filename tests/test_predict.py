@@ -1,6 +1,7 @@
 """Sharded prediction: the plan, exact stitching, and refusal of damaged or missing shard outputs."""
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -147,10 +148,13 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
 @pytest.mark.parametrize(
     "kwargs, message",
     [
-        (dict(block=(1, 32, 32), halo=40), "smaller in y or x than the model's halo of 40 px"),
+        (
+            dict(block=(1, 32, 32), halo=40),
+            "predict.block [1, 32, 32] is smaller in y or x than the model's halo of 40 px",
+        ),
         (
             dict(block=(1, 512, 512), halo=600, max_halo=512),
-            "halo of 600 px, more than predict.max_halo = 512",
+            "the model's receptive field needs a halo of 600 px, more than predict.max_halo = 512",
         ),
         (dict(block=(1, 64, 64), halo=8, jobs=0), "predict.shard_jobs must be an integer >= 1"),
         (dict(block=(0, 64, 64), halo=8), "predict.block must be 3 positive integers"),
@@ -158,7 +162,7 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
 )
 def test_bad_plans_are_refused(kwargs, message):
     kwargs = {"align": 4, "jobs": 2, **kwargs}
-    with pytest.raises(TesseraInputError, match=message.replace(".", r"\.")):
+    with pytest.raises(TesseraInputError, match=re.escape(message)):
         plan_shards((4, 128, 128), **kwargs)
 
 
@@ -201,7 +205,9 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
 
     block_file.write_bytes(good[:-10])  # truncated
     with pytest.raises(
-        TesseraInputError, match=f"{block_file.name}.*recorded checksum.*predict_shard for job 1"
+        TesseraInputError,
+        match=rf"{block_file.name}: block file does not match its recorded checksum "
+        r"\(truncated or altered\); rerun rule predict_shard for job 1",
     ):
         stitch_job(plan, shards, target)
     assert not target.exists() and not list(tmp_path.iterdir())
@@ -377,7 +383,8 @@ def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path
     assert message.startswith(
         f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of [5, 64, 64] voxels"
     )
-    assert f"rule predict_shard was given mem_mb={needed - 1}" in message
+    assert f"), but rule predict_shard was given mem_mb={needed - 1}; " in message
+    assert message.endswith(", or make predict.block smaller")
     assert f"set-resources: {{predict_shard: {{mem_mb: {needed}}}}}" in message
     assert not (out / "job0").exists() and not list(out.glob("job0*"))
     predict_shard_job(

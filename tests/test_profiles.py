@@ -33,18 +33,25 @@ def write_profile(tmp_path, settings):
     [
         (
             {"executor": "slurmx"},
-            r"key executor: 'slurmx' is not installed .*snakemake-executor-plugin-slurmx",
+            r"key executor: 'slurmx' is not installed \(installed: .*\); install the plugin "
+            r"snakemake-executor-plugin-slurmx from PyPI",
         ),
-        ({"executro": "slurm"}, r"key executro: not an option of Snakemake"),
+        (
+            {"executro": "slurm"},
+            r"key executro: not an option of Snakemake or of an installed executor plugin",
+        ),
         (
             {"set-resources": {"predict_shards": {"mem_mb": 8000}}},
-            r"key set-resources.predict_shards: no such rule",
+            r"key set-resources.predict_shards: no such rule; rules are ",
         ),
         (
             {"set-resources": {"predict_shard": {"mem_mb": 500}}},
-            r"key set-resources.predict_shard.mem_mb: 500 is below what rule predict_shard needs \(4000 MB",
+            r"key set-resources.predict_shard.mem_mb: 500 is below what rule predict_shard needs \(4000 MB, declared in rules/\)",
         ),
-        ({"group-components": ["shards=8"]}, r"key group-components: no rule group 'shards'"),
+        (
+            {"group-components": ["shards=8"]},
+            r"key group-components: no rule group 'shards'; groups are predict_shards",
+        ),
         ("executor: [unclosed", r"not valid YAML"),
         ("- a list", r"key \(top level\): expected a mapping"),
     ],

@@ -174,7 +174,9 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
     )
     points = read_points(sheet, datasets=["d1"], targets=["mito"])
     before = listing(tmp_path)
-    with pytest.raises(TesseraInputError, match=r"edge\.tsv.*row 2 .*outside the image of shape"):
+    with pytest.raises(
+        TesseraInputError, match=r"edge\.tsv.*row 2 .*tile around .*outside the image of shape"
+    ):
         export_tiles(
             exported["store"],
             points,
