@@ -20,7 +20,5 @@ def level_arrays(pyramids, registry, *, downsample):
             raise TesseraInputError(
                 f"tiles name dataset {dataset!r}, which has no image in this study"
             )
-        _, info = open_image(pyramids[dataset])
-        level = working_level(info["factors"], downsample, source=pyramids[dataset])
-        arrays[dataset] = info["levels"][level]
+        arrays[dataset] = working_array(pyramids[dataset], downsample)[0]
     return arrays
