@@ -10,6 +10,7 @@ sys.path.insert(0, workflow.basedir)
 from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
+from tessera.ladder import ladder_rungs, split_cascade_settings
 from tessera.workflow.config import (
     expand_variants,
     load_config,
@@ -18,6 +19,7 @@ from tessera.workflow.config import (
 )
 from tessera.errors import TesseraInputError
 from tessera.workflow.code_identity import script_code as code_version_of_script
+from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.points import read_points
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
@@ -194,34 +196,105 @@ def target_split(wildcards):
     return target_settings(wildcards)["split"]
 
 
+def _cascade_and_ladder(target):
+    """(node settings incl. stages, ladder settings) of a target's cascade section."""
+    return split_cascade_settings(config["targets"][target]["cascade"])
+
+
+def _rungs(target):
+    """The (stages, levels) rungs a target trains: the configured one, or its ladder."""
+    cascade, ladder = _cascade_and_ladder(target)
+    if ladder["mode"] == "fixed":
+        return [(cascade["stages"], cascade["levels"])]
+    return ladder_rungs(
+        cascade["stages"],
+        cascade["levels"],
+        extra_stages=ladder["ladder_extra_stages"],
+        extra_levels=ladder["ladder_extra_levels"],
+    )
+
+
+try:  # the ladder's budget against the cascade's limits, before anything runs
+    for _target in config["targets"]:
+        _rungs(_target)
+except TesseraInputError as error:
+    raise WorkflowError(
+        f"invalid input: config/config.yaml: key targets.{_target}.cascade: {error}"
+    ) from None
+
+
+wildcard_constraints:
+    nodeset=r"cascade(/levels\d+)?",
+    stages=r"\d+",
+    levels=r"\d+",
+
+
+def _nodeset_levels(target, nodeset):
+    """Levels of the cascade whose nodes lie in folder `nodeset` (see _model_path)."""
+    if nodeset == "cascade":
+        return _cascade_and_ladder(target)[0]["levels"]
+    return int(nodeset.removeprefix("cascade/levels"))
+
+
 def node_cascade(wildcards):
-    """Cascade settings a node depends on: all but the number of stages, so that adding a
-    stage leaves the earlier nodes' jobs untouched."""
-    return node_settings(target_settings(wildcards)["cascade"])
+    """Cascade settings a node depends on: all but the number of stages (and the ladder's
+    keys), so that adding a stage leaves the earlier nodes' jobs untouched."""
+    cascade = _cascade_and_ladder(wildcards.target)[0]
+    levels = _nodeset_levels(wildcards.target, wildcards.nodeset)
+    return node_settings({**cascade, "levels": levels})
 
 
 @functools.lru_cache(maxsize=None)
-def _target_spec(target, stages):
-    return spec_from_settings(config["targets"][target]["cascade"], stages=stages)
+def _target_spec(target, stages, levels):
+    cascade = _cascade_and_ladder(target)[0]
+    return spec_from_settings({**cascade, "levels": levels}, stages=stages)
 
 
-def _model_path(target, node):
-    return f"results/study/{target}/cascade/stage{node[0]}_level{node[1]}.npz"
+def _model_path(target, node, levels):
+    """A node's model file. Nodes of the configured number of levels lie in cascade/; those of
+    a ladder rung with more levels in cascade/levels<L>/ (they are other models: tessera.ladder).
+    """
+    folder = "cascade"
+    if levels != _cascade_and_ladder(target)[0]["levels"]:
+        folder = f"cascade/levels{levels}"
+    return f"results/study/{target}/{folder}/stage{node[0]}_level{node[1]}.npz"
 
 
 def upstream_models(wildcards):
     stage, level = int(wildcards.stage), int(wildcards.level)
-    spec = _target_spec(wildcards.target, stage)
+    levels = _nodeset_levels(wildcards.target, wildcards.nodeset)
+    spec = _target_spec(wildcards.target, stage, levels)
     return [
-        _model_path(wildcards.target, n) for n in ancestors(spec, (stage, level))[:-1]
+        _model_path(wildcards.target, n, levels)
+        for n in ancestors(spec, (stage, level))[:-1]
+    ]
+
+
+def rung_models(wildcards):
+    """The node files of one rung of the ladder (wildcards stages, levels)."""
+    stages, levels = int(wildcards.stages), int(wildcards.levels)
+    spec = _target_spec(wildcards.target, stages, levels)
+    return [_model_path(wildcards.target, n, levels) for n in nodes(spec)]
+
+
+def rung_scores(wildcards):
+    return [
+        f"results/study/{wildcards.target}/ladder/rung_{s}x{lv}.tsv"
+        for s, lv in _rungs(wildcards.target)
     ]
 
 
 def cascade_models(wildcards):
-    spec = _target_spec(
-        wildcards.target, target_settings(wildcards)["cascade"]["stages"]
-    )
-    return [_model_path(wildcards.target, n) for n in nodes(spec)]
+    """The node files the predictions use: the configured cascade's, or in ladder mode the
+    chosen rung's (read from the choice table once checkpoint choose_rung has written it).
+    """
+    target = wildcards.target
+    stages, levels = _rungs(target)[0]
+    if _cascade_and_ladder(target)[1]["mode"] == "ladder":
+        choice = checkpoints.choose_rung.get(target=target).output.choice
+        stages, levels = chosen_rung(choice)
+    spec = _target_spec(target, stages, levels)
+    return [_model_path(target, n, levels) for n in nodes(spec)]
 
 
 wildcard_constraints:

@@ -1,5 +1,6 @@
 # The cascade: one job per (target, stage, level) node, each reading the models of the nodes it
-# depends on; then the held-out tiles are predicted and scored.
+# depends on; then the held-out tiles are predicted and scored. Nodes of the configured number of
+# levels lie in cascade/, those of a ladder rung with more levels in cascade/levels<L>/.
 
 
 rule train_node:
@@ -8,11 +9,11 @@ rule train_node:
         images=annotated_pyramids,
         upstream=upstream_models,
     output:
-        model="results/study/{target}/cascade/stage{stage}_level{level}.npz",
+        model="results/study/{target}/{nodeset}/stage{stage}_level{level}.npz",
     log:
-        "logs/train_node/{target}_stage{stage}_level{level}.log",
+        "logs/train_node/{target}_{nodeset}_stage{stage}_level{level}.log",
     benchmark:
-        "benchmarks/runs/train_node/{target}_stage{stage}_level{level}.tsv"
+        "benchmarks/runs/train_node/{target}_{nodeset}_stage{stage}_level{level}.tsv"
     conda:
         "../envs/tessera.yaml"
     threads: 2

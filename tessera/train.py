@@ -12,6 +12,7 @@ import pandas as pd
 
 from tessera.cascade.api import prepare_tile, receptive_radius
 from tessera.errors import TesseraInputError
+from tessera.label_values import IGNORE
 from tessera.threshold import GRID, choose_threshold, confusion, scores_from_counts
 from tessera.tile_windows import tile_window
 
@@ -98,6 +99,27 @@ def training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None
     return tiles
 
 
+def pooled_pixels(tile_ids, labels, probabilities):
+    """(probabilities, labels) of every labelled pixel of the tiles, flat (255, ignore, left out).
+
+    Examples
+    --------
+    >>> labels = {"a": np.array([[1, 255]], np.uint8), "b": np.array([[0]], np.uint8)}
+    >>> probs = {"a": np.array([[0.9, 0.5]]), "b": np.array([[0.2]])}
+    >>> p, t = pooled_pixels(["a", "b"], labels, probs)
+    >>> p.tolist(), t.tolist()
+    ([0.9, 0.2], [1, 0])
+    """
+    probs, truth = [], []
+    for t in tile_ids:
+        keep = labels[t] != IGNORE
+        probs.append(np.asarray(probabilities[t])[keep])
+        truth.append(labels[t][keep])
+    if not probs:
+        return np.zeros(0, np.float32), np.zeros(0, np.uint8)
+    return np.concatenate(probs), np.concatenate(truth)
+
+
 def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
     """Pixel scores per role; the threshold is chosen by the best F1 on validation tiles.
 
@@ -107,14 +129,7 @@ def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
 
     def pooled(role):
         ids = registry.loc[registry["role"] == role, "tile_id"]
-        probs, truth = [], []
-        for t in ids:
-            keep = labels[t] != 255
-            probs.append(probabilities[t][keep])
-            truth.append(labels[t][keep])
-        if not probs:
-            return None, None
-        return np.concatenate(probs), np.concatenate(truth)
+        return pooled_pixels(ids, labels, probabilities) if len(ids) else (None, None)
 
     val_p, val_t = pooled("validation")
     if val_p is None:

@@ -92,8 +92,11 @@ def write_annotation_set(path, registry, labels):
             Image.fromarray(array).save(tmp / _LABELS_DIR / f"{tid}.png")
 
 
-def read_annotation_set(path):
+def read_annotation_set(path, *, roles=None):
     """Read and validate an annotation set written by :func:`write_annotation_set`.
+
+    With `roles` (split sets only), only the tiles of those roles are read and returned: a job
+    that must not see the test tiles never opens their label images.
 
     Returns
     -------
@@ -103,6 +106,12 @@ def read_annotation_set(path):
     """
     path = Path(path)
     table = read_registry(path / REGISTRY_FILE)
+    if roles is not None:
+        if "role" not in table.columns:
+            raise TesseraInputError(
+                "the registry has no 'role' column; run split_tiles first", source=path
+            )
+        table = table[table["role"].isin(list(roles))].reset_index(drop=True)
     labels = {}
     for row in table.itertuples(index=False):
         file = path / _LABELS_DIR / f"{row.tile_id}.png"

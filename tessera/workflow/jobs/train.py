@@ -96,18 +96,25 @@ def predict_tiles_job(
     """
     registry, labels = read_annotation_set(annotations)
     models = load_cascade(model_paths, target=target)
-    spec = cascade_spec(models)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
-    halo = receptive_radius(spec, output_sigma=output_sigma)
     held = registry[registry["role"].isin(["validation", "test"])]
-    probabilities = {}
-    for _, row in held.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
-        core = (int(row["height"]), int(row["width"]))
-        probabilities[row["tile_id"]] = predict_frame(
-            models, image, core, output_sigma=output_sigma
-        )
+    probabilities = tile_probabilities(models, arrays, held, output_sigma=output_sigma)
     table = score_tiles(held, labels, probabilities)
     write_tile_probabilities(out_probabilities, probabilities)
     write_scores(out_table, table)
     return table.to_dict(orient="records")
+
+
+def tile_probabilities(models, arrays, rows, *, output_sigma=0.0):
+    """Tile id → the cascade's probability over the tile's core, for each registry row.
+
+    `arrays` maps dataset id → working-level array; each tile is read with the cascade's halo.
+    """
+    spec = cascade_spec(models)
+    halo = receptive_radius(spec, output_sigma=output_sigma)
+    out = {}
+    for _, row in rows.iterrows():
+        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        core = (int(row["height"]), int(row["width"]))
+        out[row["tile_id"]] = predict_frame(models, image, core, output_sigma=output_sigma)
+    return out
