@@ -306,6 +306,10 @@ def test_rung_scores_are_validation_f1_and_the_best_is_chosen(ladder_study, tmp_
             registry["tile_id"], labels, tile_probabilities(models, arrays, registry)
         )
         assert row.f1 == pytest.approx(f1_score(truth, prob >= row.threshold), abs=1e-12)
+        # ... and the threshold is the best of the hundredths 0.01 .. 0.99 on these pixels
+        # (the project's one threshold rule, recomputed with scikit-learn's F1)
+        best = max(f1_score(truth, prob >= t) for t in np.arange(1, 100) / 100)
+        assert row.f1 == pytest.approx(best, abs=1e-12)
         assert row.tiles == 8 and row.pixels == truth.size
 
 
