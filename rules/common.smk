@@ -223,6 +223,12 @@ except TesseraInputError as error:
     ) from None
 
 
+# Targets of the study proper whose cascade size a ladder chooses.
+LADDER_BASE_TARGETS = [
+    t for t in BASE_TARGETS if _cascade_and_ladder(t)[1]["mode"] == "ladder"
+]
+
+
 wildcard_constraints:
     nodeset=r"cascade(/levels\d+)?",
     stages=r"\d+",

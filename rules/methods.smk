@@ -38,6 +38,9 @@ rule methods:
             "results/{dataset}/audit/inputs.sha256", dataset=DATASETS.index
         ),
         qc=expand("results/{dataset}/qc/sections.tsv", dataset=DATASETS.index),
+        ladder=expand(
+            "results/study/{target}/ladder/choice.tsv", target=LADDER_BASE_TARGETS
+        ),
     output:
         report(
             "results/study/methods.md",
@@ -56,6 +59,7 @@ rule methods:
         datasets=dataset_groups,
         targets=BASE_TARGETS,
         dataset_ids=list(DATASETS.index),
+        ladder_targets=LADDER_BASE_TARGETS,
         code=script_code("methods"),
     script:
         "../scripts/methods.py"

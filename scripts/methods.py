@@ -23,4 +23,5 @@ run_job(
     checksums=list(snakemake.input.checksums),
     qc_tables=list(snakemake.input.qc),
     out_path=snakemake.output[0],
+    ladder=dict(zip(snakemake.params.ladder_targets, snakemake.input.ladder, strict=True)),
 )

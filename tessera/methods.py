@@ -21,6 +21,16 @@ def _fmt(values):
     return ", ".join(f"{v:g}" for v in values)
 
 
+def _ladder_clause(cascade):
+    """How the cascade's size was chosen, when a ladder chose it (tessera.ladder)."""
+    if cascade.get("mode") != "ladder":
+        return ""
+    return (
+        " (chosen among the configured size and larger ones as the best pixel F1 on the "
+        "validation tiles, ties going to the model with fewer nodes)"
+    )
+
+
 def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
@@ -47,7 +57,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
     text = (
         f"**{name.capitalize()}** were segmented at {settings['downsample']}× in-plane downsampling with a cascaded "
         f"hierarchical model (Seyedhosseini, Sajjadi & Tasdizen, ICCV 2013; Seyedhosseini & Tasdizen, TPAMI 2016) of "
-        f"{cascade['stages']} stages × {cascade['levels']} levels, each node a "
+        f"{cascade['stages']} stages × {cascade['levels']} levels{_ladder_clause(cascade)}, each node a "
         f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on a "
         f"Gaussian-derivative filter bank (σ = {_fmt(cascade['sigmas'])} px; {_fmt(cascade['coarse_sigmas'])} px at "
         f"coarser levels) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "

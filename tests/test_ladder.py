@@ -36,6 +36,7 @@ from tessera.workflow.files.pyramid import level_arrays
 from tessera.workflow.files.tile_registry import read_annotation_set, write_annotation_set
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.ladder import choose_rung_job, score_rung_job
+from tessera.workflow.jobs.methods import methods_job
 from tessera.workflow.jobs.pyramid import pyramid_job
 from tessera.workflow.jobs.train import predict_tiles_job, tile_probabilities, train_node_job
 
@@ -407,3 +408,50 @@ def test_demo_dry_run_still_plans_the_fixed_cascade(tmp_path):
         per_target[t] * factors[t] for t in per_target
     )
     assert not planned_jobs(stdout, "score_rung") and not planned_jobs(stdout, "choose_rung")
+
+
+def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path):
+    # a ladder target's methods paragraph names the cascade the predictions used, not the
+    # configured one
+    pd.DataFrame(
+        {"role": ["validation", "test"], "tiles": [4, 5], "threshold": [0.4, 0.4]}
+        | {k: [0.9, 0.8] for k in ("precision", "recall", "f1", "jaccard")}
+    ).to_csv(tmp_path / "scores.tsv", sep="\t", index=False)
+    (tmp_path / "objects.json").write_text(
+        '{"high": 0.4, "low": 0.4, "open_radius_nm": 0, "close_radius_nm": 0, "fill_holes": false,'
+        ' "min_volume_um3": 0, "max_volume_um3": null, "connectivity": 26}'
+    )
+    pd.DataFrame({"z": [0], "excluded": [False]}).to_csv(tmp_path / "qc.tsv", sep="\t", index=False)
+    (tmp_path / "inputs.sha256").write_text("ab12  data/a.tif\n")
+    choose_rung(
+        pd.DataFrame({"stages": [2, 3, 2], "levels": [2, 2, 3], "f1": [0.80, 0.85, 0.82]})
+    ).to_csv(tmp_path / "choice.tsv", sep="\t", index=False)
+    cascade = {**CascadeSpec().to_dict(), "stages": 2, "levels": 2, "mode": "ladder"}
+    target = {
+        "downsample": 2,
+        "cascade": cascade,
+        "tiles": {"size": 96},
+        "split": {"guard_sections": 2},
+    }
+    sections = {
+        "ingest": {},
+        "pyramid": {"levels": 3},
+        "statistics": {"confidence": 0.95},
+        "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+        "targets": {"mito": target},
+    }
+    out = tmp_path / "methods.md"
+    methods_job(
+        sections,
+        {"a": {"condition": "warm", "subject": "a"}},
+        {"mito": tmp_path / "scores.tsv"},
+        {"mito": [tmp_path / "objects.json"]},
+        {},
+        [tmp_path / "inputs.sha256"],
+        [tmp_path / "qc.tsv"],
+        out,
+        ladder={"mito": tmp_path / "choice.tsv"},
+    )
+    text = out.read_text()
+    assert "3 stages × 2 levels (chosen among the configured size and larger ones" in text
+    assert sections["targets"]["mito"]["cascade"]["stages"] == 2  # the caller's settings untouched

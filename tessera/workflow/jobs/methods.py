@@ -4,6 +4,7 @@ from tessera.io.atomic import write_text
 from tessera.methods import methods_text
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
+from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.object_table import read_object_settings
 from tessera.workflow.files.qc_table import count_sections
 from tessera.workflow.files.scores import read_scores
@@ -19,6 +20,7 @@ def methods_job(
     checksums,
     qc_tables,
     out_path,
+    ladder=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
 
@@ -36,9 +38,19 @@ def methods_job(
         The per-dataset checksum records.
     qc_tables : list of path
         Section QC tables (to count excluded sections).
+    ladder : dict, optional
+        Target → the ladder's choice table, for targets whose cascade size a ladder chose: the
+        text states the chosen stages and levels, not the configured ones.
     """
     section_counts = count_sections(qc_tables)
-    targets = config_sections["targets"]
+    targets = dict(config_sections["targets"])
+    for t, path in (ladder or {}).items():
+        stages, levels = chosen_rung(path)
+        targets[t] = {
+            **targets[t],
+            "cascade": {**targets[t]["cascade"], "stages": stages, "levels": levels},
+        }
+    config_sections = {**config_sections, "targets": targets}
     # every dataset's settings file is read (a damaged one fails here); the text quotes the first
     used = {t: [read_object_settings(p) for p in object_settings[t]][0] for t in targets}
     tables = {t: read_comparison_table(comparisons[t]) for t in targets if t in comparisons}
