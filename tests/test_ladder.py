@@ -410,7 +410,11 @@ def test_demo_dry_run_still_plans_the_fixed_cascade(tmp_path):
     assert not planned_jobs(stdout, "score_rung") and not planned_jobs(stdout, "choose_rung")
 
 
-def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path):
+@pytest.mark.parametrize(
+    ("f1", "expected"),
+    [([0.80, 0.85, 0.82], "3 stages × 2 levels"), ([0.80, 0.82, 0.85], "2 stages × 3 levels")],
+)
+def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path, f1, expected):
     # a ladder target's methods paragraph names the cascade the predictions used, not the
     # configured one
     pd.DataFrame(
@@ -423,9 +427,9 @@ def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path):
     )
     pd.DataFrame({"z": [0], "excluded": [False]}).to_csv(tmp_path / "qc.tsv", sep="\t", index=False)
     (tmp_path / "inputs.sha256").write_text("ab12  data/a.tif\n")
-    choose_rung(
-        pd.DataFrame({"stages": [2, 3, 2], "levels": [2, 2, 3], "f1": [0.80, 0.85, 0.82]})
-    ).to_csv(tmp_path / "choice.tsv", sep="\t", index=False)
+    choose_rung(pd.DataFrame({"stages": [2, 3, 2], "levels": [2, 2, 3], "f1": f1})).to_csv(
+        tmp_path / "choice.tsv", sep="\t", index=False
+    )
     cascade = {**CascadeSpec().to_dict(), "stages": 2, "levels": 2, "mode": "ladder"}
     target = {
         "downsample": 2,
@@ -453,5 +457,5 @@ def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path):
         ladder={"mito": tmp_path / "choice.tsv"},
     )
     text = out.read_text()
-    assert "3 stages × 2 levels (chosen among the configured size and larger ones" in text
+    assert f"{expected} (chosen among the configured size and larger ones" in text
     assert sections["targets"]["mito"]["cascade"]["stages"] == 2  # the caller's settings untouched
