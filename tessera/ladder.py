@@ -9,11 +9,13 @@ number of stages):
 * **one more stage** (S+1 × L): the first S stages are the S × L cascade's nodes, file for file;
   only the L + 1 nodes of the new stage are trained.
 * **one more level** (S × L+1): the top-down node (1, 0) reads every level of its stage, and every
-  node of stage 2 on reads (1, 0), so those differ. The bottom-up nodes (1, 1..L) read the same
-  maps as before, but the number of levels is one of their settings too: it sets the alignment
-  of the training frames (cores padded to multiples of 2^L, halos rounded to them), so which
-  pixels are sampled and the margins upstream maps are computed over change with it, and the
-  model records it. They are trained again; an S × L+1 rung shares no node with S × L.
+  node of stage 2 on reads (1, 0), so those differ. Only the bottom-up nodes (1, 1..L) read the
+  same maps, all the way up, as before; but the number of levels is one of their settings too:
+  it sets the alignment of the training frames (cores padded to multiples of 2^L, margins
+  rounded to them), so the pixels sampled (tiles whose sides are not multiples of 2^(L+1)) and
+  the margins over which (1, l-1)'s map is computed for (1, l) can change with it, and the model
+  records it (a model is refused under other settings). They are trained again: an S × L+1 rung
+  shares no node file with S × L.
 
 A node is therefore known by ``(levels, stage, level)`` (:func:`rung_nodes`); the ladder trains
 each distinct one once (:func:`ladder_nodes`).
