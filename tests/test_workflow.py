@@ -538,13 +538,13 @@ def test_every_rule_runs_the_script_named_after_it(repo):
     # rules/<stage>.smk <-> scripts/<rule>.py: the rerun table and each code param rely on it
     rules_text = "\n".join(p.read_text() for p in sorted((repo / "rules").glob("*.smk")))
     pairs = re.findall(
-        r"^\s*rule (\w+):(?:(?!^\s*rule ).)*?\"\.\./scripts/(\w+)\.py\"",
+        r"^\s*(?:rule|checkpoint) (\w+):(?:(?!^\s*(?:rule|checkpoint) ).)*?\"\.\./scripts/(\w+)\.py\"",
         rules_text,
         flags=re.M | re.S,
     )
     assert pairs and all(rule == script for rule, script in pairs), pairs
     codes = re.findall(
-        r"^\s*rule (\w+):(?:(?!^\s*rule ).)*?code=script_code\(\"(\w+)\"\)",
+        r"^\s*(?:rule|checkpoint) (\w+):(?:(?!^\s*(?:rule|checkpoint) ).)*?code=script_code\(\"(\w+)\"\)",
         rules_text,
         flags=re.M | re.S,
     )
