@@ -347,7 +347,7 @@ def test_test_tiles_play_no_part_in_the_choice(ladder_study, tmp_path):
 # --- the workflow ----------------------------------------------------------------------------
 
 
-def dry_run(workdir):
+def dry_run(workdir, *, ok=True):
     result = subprocess.run(
         [str(SNAKEMAKE), "-n", "--snakefile", str(REPO / "Snakefile")],
         cwd=workdir,
@@ -355,6 +355,9 @@ def dry_run(workdir):
         text=True,
         check=False,
     )
+    if not ok:
+        assert result.returncode != 0
+        return result.stdout + result.stderr
     assert result.returncode == 0, result.stderr[-2000:]
     return result.stdout
 
@@ -371,15 +374,30 @@ def planned_jobs(stdout, rule):
     return outputs
 
 
-def test_workflow_plans_each_shared_node_once_in_ladder_mode(tmp_path):
-    shutil.copytree(REPO / "config", tmp_path / "config")
-    path = tmp_path / "config" / "config.yaml"
+def ladder_config(workdir, **cascade):
+    """The demo config with one target, mitochondria, in ladder mode (and `cascade` settings)."""
+    shutil.copytree(REPO / "config", workdir / "config")
+    path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(path.read_text())
     mito = config["targets"]["mitochondria"]
-    mito["cascade"]["mode"] = "ladder"
+    mito["cascade"].update(mode="ladder", **cascade)
     mito.pop("downsampling_study")
     config["targets"] = {"mitochondria": mito}
     path.write_text(yaml.safe_dump(config))
+
+
+def test_ladder_beyond_the_cascade_limits_is_refused_before_anything_runs(tmp_path):
+    ladder_config(tmp_path, levels=5)
+    output = dry_run(tmp_path, ok=False)
+    assert (
+        "invalid input: config/config.yaml: key targets.mitochondria.cascade: ladder_extra_levels = 1 "
+        "goes beyond 5 levels (the cascade has 5); lower ladder_extra_levels to at most 0"
+    ) in output
+    assert "Traceback" not in output
+
+
+def test_workflow_plans_each_shared_node_once_in_ladder_mode(tmp_path):
+    ladder_config(tmp_path)
     stdout = dry_run(tmp_path)
     models = planned_jobs(stdout, "train_node")
     # 2x2 (6 nodes), 3x2 (its 6 + 3 new), 2x3 (8 of its own): 17 node jobs, each file once
