@@ -61,6 +61,10 @@ def dataset_format(wildcards):
     return DATASETS.loc[wildcards.dataset, "format"]
 
 
+def dataset_internal_path(wildcards):
+    return DATASETS.loc[wildcards.dataset].get("internal_path")
+
+
 def dataset_condition(wildcards):
     return DATASETS.loc[wildcards.dataset, "condition"]
 

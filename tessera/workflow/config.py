@@ -52,6 +52,8 @@ _Validator = _with_defaults(jsonschema.Draft202012Validator)
 
 
 def _describe(error):
+    if isinstance(error.schema, dict) and "x-message" in error.schema:
+        return error.schema["x-message"]  # a schema's own wording for a rule between keys
     where = ".".join(str(p) for p in error.absolute_path) or "(top level)"
     if error.validator == "additionalProperties":
         return f"key {where}: {error.message} (check the spelling; allowed keys are in the schema)"
@@ -170,8 +172,9 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, 
         for column in SHEET_NUMBER_COLUMNS:
             if column in record:
                 record[column] = _parse_number(record[column], where=f"{row_name}, column {column}")
-        if record.get("roi_mask") == "":
-            record["roi_mask"] = None
+        for column in ("roi_mask", "internal_path"):
+            if record.get(column) == "":
+                record[column] = None
         for column in ("condition", "subject"):
             if record.get(column) == "":
                 raise TesseraInputError(

@@ -11,6 +11,7 @@ import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.intensity import choose_mapping, to_uint8
+from tessera.io.array_stacks import merge_spacing
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.stacks import open_stack
@@ -56,6 +57,7 @@ def ingest_job(
     out_path,
     *,
     fmt,
+    internal_path=None,
     spacing=(None, None, None),
     name="raw",
     chunks=(1, 512, 512),
@@ -71,8 +73,12 @@ def ingest_job(
         The OME-Zarr store to create; written under a temporary name and renamed.
     fmt : str
         One of :data:`tessera.io.stacks.FORMATS`.
+    internal_path : str, optional
+        The array inside an hdf5, n5 or zarr container.
     spacing : sequence of 3 (float or None), optional
-        Voxel size z, y, x in nm; None takes the value from the file header.
+        Voxel size z, y, x in nm; None takes the value from the file header. A voxel size in
+        the attributes of an hdf5, n5 or zarr array is used instead, and a given value must
+        agree with it.
     name : str, optional
         Image name stored in the metadata.
     chunks : sequence of 3 int, optional
@@ -85,8 +91,9 @@ def ingest_job(
     dict
         Summary: shape, spacing, source dtype and the intensity mapping used (None for uint8).
     """
-    source = open_stack(source_path, fmt)
+    source = open_stack(source_path, fmt, internal_path=internal_path)
     try:
+        spacing = merge_spacing(spacing, source)
         spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
         lo_p, hi_p = percentiles
         if not 0 <= lo_p < hi_p <= 100:
@@ -95,7 +102,10 @@ def ingest_job(
             )
         mapping = choose_mapping(source, percentiles=(lo_p, hi_p))
         chunks = tuple(int(min(c, s)) for c, s in zip(chunks, source.shape, strict=False))
-        extra = {"source": {"path": str(source_path), "format": fmt}, "intensity_mapping": mapping}
+        origin = {"path": str(source_path), "format": fmt}
+        if internal_path is not None:
+            origin["internal_path"] = internal_path
+        extra = {"source": origin, "intensity_mapping": mapping}
         with atomic_path(out_path) as tmp:
             group = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
             group.attrs.update(
