@@ -15,7 +15,7 @@ import numpy as np
 
 from tessera.errors import TesseraInputError
 
-__all__ = ["ArrayStack", "spacing_from_attrs", "merge_spacing", "inner_parts"]
+__all__ = ["ArrayStack", "spacing_from_attrs", "merge_spacing", "inner_parts", "missing_chunk"]
 
 _TO_NM = {"nm": 1.0, "nanometer": 1.0, "nanometers": 1.0, "um": 1e3, "µm": 1e3, "micrometer": 1e3}
 _TO_NM |= {"micrometers": 1e3, "micron": 1e3, "microns": 1e3, "\u03bcm": 1e3}
@@ -160,6 +160,11 @@ def merge_spacing(given, stack):
     return tuple(stack.header_spacing)
 
 
+def missing_chunk(name):
+    """The problem text of a chunk absent from the store."""
+    return f"chunk {name} is missing from the store (it would read as fill value, not data)"
+
+
 class ArrayStack:
     """A 3D array (z, y, x) inside a container, read one checked section at a time.
 
@@ -173,9 +178,9 @@ class ArrayStack:
         What the container's library raises for damaged data; turned into one clear error.
     header_spacing, spacing_attribute : optional
         Voxel size (nm; z, y, x) from the attributes and the attribute's name.
-    chunks_present : callable, optional
-        ``chunks_present(z)`` returns None when every chunk holding section z is stored, else
-        the name of a missing one (a missing chunk reads as fill value, not as data).
+    chunk_problem : callable, optional
+        ``chunk_problem(z)`` returns None when every chunk holding section z is stored whole,
+        else what is wrong with one (a missing chunk reads as fill value, not as data).
     on_close : callable, optional
         Called by :meth:`close` (closes the file).
 
@@ -198,12 +203,12 @@ class ArrayStack:
         errors=(),
         header_spacing=None,
         spacing_attribute=None,
-        chunks_present=None,
+        chunk_problem=None,
         on_close=None,
     ):
         self.label = label
         self._errors = (OSError, ValueError, RuntimeError, *errors)
-        self._chunks_present = chunks_present
+        self._chunk_problem = chunk_problem
         self._on_close = on_close
         self.header_spacing = header_spacing
         self.spacing_attribute = spacing_attribute
@@ -218,11 +223,10 @@ class ArrayStack:
 
     def read(self, z):
         """Section `z` as a native-endian 2D array, after the chunk, decode and finite checks."""
-        missing = self._chunks_present(z) if self._chunks_present is not None else None
-        if missing is not None:
+        problem = self._chunk_problem(z) if self._chunk_problem is not None else None
+        if problem is not None:
             raise TesseraInputError(
-                f"section {z}: chunk {missing} is missing from the store (it would read as "
-                "fill value, not data); copy the array again or restore the chunk",
+                f"section {z}: {problem}; copy the array again or restore the chunk",
                 source=self.label,
             )
         try:

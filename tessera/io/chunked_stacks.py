@@ -27,7 +27,7 @@ import numpy as np
 import zarr
 
 from tessera.errors import TesseraInputError
-from tessera.io.array_stacks import ArrayStack, inner_parts, spacing_from_attrs
+from tessera.io.array_stacks import ArrayStack, inner_parts, missing_chunk, spacing_from_attrs
 
 __all__ = ["open_zarr_array", "open_n5"]
 
@@ -77,7 +77,7 @@ def open_zarr_array(path, internal_path=None):
         errors=(zarr.errors.BaseZarrError,),
         header_spacing=spacing,
         spacing_attribute=attribute,
-        chunks_present=_zarr_chunk_check(array, path / inner),
+        chunk_problem=_zarr_chunk_check(array, path / inner) if array.ndim == 3 else None,
     )
 
 
@@ -90,6 +90,7 @@ def _grid_rows(shape, chunks):
 def _zarr_chunk_check(array, folder):
     stored = array.shards or array.chunks  # the unit that is one key (file) in the store
     cells, checked = _grid_rows(array.shape, stored), set()
+    blosc = not array.shards and _blosc_compressed(array)
 
     def missing(z):
         row = z // stored[0]
@@ -97,12 +98,35 @@ def _zarr_chunk_check(array, folder):
             return None
         for j, i in cells:
             key = array.metadata.encode_chunk_key((row, j, i))
-            if not (folder / key).is_file():
-                return repr(key)
+            problem = _stored_chunk_problem(folder / key, blosc)
+            if problem:
+                return f"chunk {key!r} {problem}"
         checked.add(row)
         return None
 
     return missing
+
+
+def _blosc_compressed(array):
+    meta = array.metadata
+    if getattr(meta, "zarr_format", 3) == 2:
+        return isinstance(meta.compressor, numcodecs.Blosc)
+    return any(isinstance(codec, zarr.codecs.BloscCodec) for codec in meta.codecs)
+
+
+def _stored_chunk_problem(file, blosc):
+    """None when the chunk file is there (and whole, for blosc), else what is wrong."""
+    if not file.is_file():
+        return "is missing from the store (it would read as fill value, not data)"
+    if blosc:
+        # A blosc frame states its own length (bytes 12-15, little-endian; the blosc format
+        # description). The decoder trusts it and reads past a short buffer without an error.
+        with open(file, "rb") as fh:
+            header = fh.read(16)
+        stated, actual = int.from_bytes(header[12:16], "little"), file.stat().st_size
+        if len(header) < 16 or stated != actual:
+            return f"is truncated: its blosc header states {stated} bytes, the file has {actual}"
+    return None
 
 
 # -- N5 ------------------------------------------------------------------------------------------
@@ -158,7 +182,7 @@ def open_n5(path, internal_path):
         label=label,
         header_spacing=spacing,
         spacing_attribute=attribute,
-        chunks_present=array.missing_block,
+        chunk_problem=array.missing_block,
     )
 
 
@@ -210,7 +234,7 @@ class _N5Array:
         row = z // self.blocks[0]
         for j, i in self._cells:
             if not self._block_file(row, j, i).is_file():
-                return f"{i}/{j}/{row} (N5 block x/y/z)"
+                return missing_chunk(f"{i}/{j}/{row} (N5 block x/y/z)")
         return None
 
     def __getitem__(self, z):

@@ -13,7 +13,7 @@ from pathlib import Path
 import h5py
 
 from tessera.errors import TesseraInputError
-from tessera.io.array_stacks import ArrayStack, inner_parts, spacing_from_attrs
+from tessera.io.array_stacks import ArrayStack, inner_parts, missing_chunk, spacing_from_attrs
 
 __all__ = ["open_hdf5"]
 
@@ -67,7 +67,7 @@ def open_hdf5(path, internal_path):
         errors=(KeyError,),
         header_spacing=spacing,
         spacing_attribute=attribute,
-        chunks_present=_chunk_check(dataset),
+        chunk_problem=_chunk_check(dataset),
         on_close=handle.close,
     )
 
@@ -112,7 +112,7 @@ def _chunk_check(dataset):
     """Per section: the offset of a chunk never written, or None (see ArrayStack)."""
     if dataset.chunks is None:
         if dataset.id.get_storage_size() == 0 and dataset.size:
-            return lambda z: "(the whole dataset: nothing was ever written)"
+            return lambda z: "nothing was ever written to the dataset (it would read as fill value)"
         return None
     chunks, shape = dataset.chunks, dataset.shape
     checked = set()
@@ -125,7 +125,7 @@ def _chunk_check(dataset):
             for x in range(0, shape[2], chunks[2]):
                 offset = (row * chunks[0], y, x)
                 if dataset.id.get_chunk_info_by_coord(offset).byte_offset is None:
-                    return f"at offset {offset}"
+                    return missing_chunk(f"at offset {offset}")
         checked.add(row)
         return None
 
