@@ -11,6 +11,7 @@ from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.workflow.config import (
+    check_config_paths,
     expand_variants,
     load_config,
     load_datasets,
@@ -38,6 +39,8 @@ try:
         generated_dir=DEMO_DIR if "demo" in config else None,
         data_roots=config["data_roots"],
     )
+    # label volumes, points sheets and painted masks are held to the same roots
+    check_config_paths(config, DATASETS.index)
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 
