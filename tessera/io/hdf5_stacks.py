@@ -78,7 +78,8 @@ def _dataset(handle, parts, path, label):
         walked.append(name)
         if not isinstance(node, h5py.Group) or name not in node:
             raise TesseraInputError(
-                f"internal_path: no {'/'.join(walked)!r} in the file (it holds {_names(node)})",
+                f"internal_path: no {'/'.join(walked)!r} in the file "
+                f"({'/'.join(walked[:-1]) or 'its top level'} holds {_names(node)})",
                 source=path,
             )
         link = node.get(name, getlink=True)
