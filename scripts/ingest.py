@@ -19,4 +19,5 @@ run_job(
     name=snakemake.wildcards.dataset,
     chunks=snakemake.params.chunks,
     percentiles=snakemake.params.percentiles,
+    missing_chunks=snakemake.params.missing_chunks,
 )

@@ -299,6 +299,47 @@ def test_a_missing_chunk_is_refused_not_read_as_fill_value(tmp_path, volume, kin
     text = _refused(tmp_path, path, fmt, inner, "section 4: chunk")
     assert "is missing from the store (it would read as fill value, not data)" in text
     assert "copy the array again or restore the chunk" in text
+    assert "set ingest.missing_chunks: fill_value in config/config.yaml" in text
+
+
+@pytest.mark.parametrize("kind", ["zarr_v2", "zarr_v3", "zarr_plain", "n5"])
+def test_missing_chunks_read_as_fill_value_when_allowed(tmp_path, volume, kind):
+    path, fmt, inner = _write(kind, tmp_path, volume)
+    _delete_one_chunk(kind, path)  # z 4, y 0..7, x 8..15
+    out = tmp_path / "out.ome.zarr"
+    ingest_job(
+        path,
+        out,
+        fmt=fmt,
+        internal_path=inner,
+        spacing=(30.0, 4.0, 4.0),
+        missing_chunks="fill_value",
+    )
+    expected = volume.copy()
+    expected[4:6, 0:8, 8:16] = 0  # zarr's default fill value for integers; N5: empty blocks
+    meta, info = open_image(out)
+    np.testing.assert_array_equal(info["levels"][0][:], expected)
+    assert zarr.open_group(str(out), mode="r").attrs["tessera"]["source"][
+        "sections_with_missing_chunks"
+    ] == [4]
+
+
+def test_a_damaged_chunk_is_refused_even_when_missing_ones_are_allowed(tmp_path, volume):
+    path, fmt, inner = _write("zarr_v2", tmp_path, volume)  # blosc chunks: truncation is seen
+    (path / "volumes" / "raw" / "1.0.0").unlink()
+    chunk = path / "volumes" / "raw" / "1.0.1"
+    chunk.write_bytes(chunk.read_bytes()[:20])
+    out = tmp_path / "out.ome.zarr"
+    with pytest.raises(TesseraInputError, match="section 2: chunk '1.0.1' is truncated"):
+        ingest_job(
+            path,
+            out,
+            fmt=fmt,
+            internal_path=inner,
+            spacing=(30.0, 4.0, 4.0),
+            missing_chunks="fill_value",
+        )
+    assert not out.exists()
 
 
 def test_an_unwritten_hdf5_chunk_is_refused(tmp_path, volume):

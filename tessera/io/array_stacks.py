@@ -15,7 +15,14 @@ import numpy as np
 
 from tessera.errors import TesseraInputError
 
-__all__ = ["ArrayStack", "spacing_from_attrs", "merge_spacing", "inner_parts", "missing_chunk"]
+__all__ = [
+    "ArrayStack",
+    "MissingChunkError",
+    "spacing_from_attrs",
+    "merge_spacing",
+    "inner_parts",
+    "missing_chunk",
+]
 
 _TO_NM = {"nm": 1.0, "nanometer": 1.0, "nanometers": 1.0, "um": 1e3, "µm": 1e3, "micrometer": 1e3}
 _TO_NM |= {"micrometers": 1e3, "micron": 1e3, "microns": 1e3, "\u03bcm": 1e3}
@@ -160,9 +167,40 @@ def merge_spacing(given, stack):
     return tuple(stack.header_spacing)
 
 
+class MissingChunkError(TesseraInputError):
+    """A chunk of the array is not stored: it would read as fill value, not as data."""
+
+
+class MissingChunk(str):
+    """The problem text of a chunk absent from the store (a str that says it is one)."""
+
+
 def missing_chunk(name):
-    """The problem text of a chunk absent from the store."""
-    return f"chunk {name} is missing from the store (it would read as fill value, not data)"
+    """The problem of a chunk absent from the store, told apart from a damaged one."""
+    return MissingChunk(
+        f"chunk {name} is missing from the store (it would read as fill value, not data)"
+    )
+
+
+def first_problem(problems, row, checked):
+    """What a chunk check reports for one chunk row: damage first, then a missing chunk.
+
+    `row` is added to the set `checked` when nothing is wrong, so it is not looked at again.
+
+    Examples
+    --------
+    >>> checked = set()
+    >>> first_problem([None, missing_chunk("'0.1'"), "chunk '0.2' is damaged"], 0, checked)
+    "chunk '0.2' is damaged"
+    >>> first_problem([None, None], 1, checked), checked
+    (None, {1})
+    """
+    found = [p for p in problems if p is not None]
+    if not found:
+        checked.add(row)
+        return None
+    damaged = [p for p in found if not isinstance(p, MissingChunk)]
+    return (damaged or found)[0]
 
 
 class ArrayStack:
@@ -180,7 +218,17 @@ class ArrayStack:
         Voxel size (nm; z, y, x) from the attributes and the attribute's name.
     chunk_problem : callable, optional
         ``chunk_problem(z)`` returns None when every chunk holding section z is stored whole,
-        else what is wrong with one (a missing chunk reads as fill value, not as data).
+        else what is wrong (a damaged chunk before a missing one; a missing chunk reads as fill
+        value, not as data, and is told by a :class:`MissingChunk` text).
+
+    Attributes
+    ----------
+    missing_chunks : {'refuse', 'fill_value'}
+        What a section with a missing chunk does: raise :class:`MissingChunkError` (the
+        default), or read as the array's fill value there (for writers that leave out chunks
+        holding only the fill value, as zarr-python does by default).
+    sections_with_missing_chunks : list of int
+        The sections read with fill value in place of a missing chunk.
     on_close : callable, optional
         Called by :meth:`close` (closes the file).
 
@@ -212,6 +260,8 @@ class ArrayStack:
         self._on_close = on_close
         self.header_spacing = header_spacing
         self.spacing_attribute = spacing_attribute
+        self.missing_chunks = "refuse"
+        self.sections_with_missing_chunks = []
         try:
             _check_array(array, label)
         except TesseraInputError:
@@ -224,8 +274,12 @@ class ArrayStack:
     def read(self, z):
         """Section `z` as a native-endian 2D array, after the chunk, decode and finite checks."""
         problem = self._chunk_problem(z) if self._chunk_problem is not None else None
-        if problem is not None:
-            raise TesseraInputError(
+        if isinstance(problem, MissingChunk) and self.missing_chunks == "fill_value":
+            if z not in self.sections_with_missing_chunks:
+                self.sections_with_missing_chunks.append(z)
+        elif problem is not None:
+            error = MissingChunkError if isinstance(problem, MissingChunk) else TesseraInputError
+            raise error(
                 f"section {z}: {problem}; copy the array again or restore the chunk",
                 source=self.label,
             )

@@ -27,7 +27,13 @@ import numpy as np
 import zarr
 
 from tessera.errors import TesseraInputError
-from tessera.io.array_stacks import ArrayStack, inner_parts, missing_chunk, spacing_from_attrs
+from tessera.io.array_stacks import (
+    ArrayStack,
+    first_problem,
+    inner_parts,
+    missing_chunk,
+    spacing_from_attrs,
+)
 
 __all__ = ["open_zarr_array", "open_n5"]
 
@@ -96,13 +102,11 @@ def _zarr_chunk_check(array, folder):
         row = z // stored[0]
         if row in checked:
             return None
-        for j, i in cells:
-            key = array.metadata.encode_chunk_key((row, j, i))
-            problem = _stored_chunk_problem(folder / key, blosc)
-            if problem:
-                return f"chunk {key!r} {problem}"
-        checked.add(row)
-        return None
+        problems = [
+            _stored_chunk_problem(folder, array.metadata.encode_chunk_key((row, j, i)), blosc)
+            for j, i in cells
+        ]
+        return first_problem(problems, row, checked)
 
     return missing
 
@@ -114,10 +118,11 @@ def _blosc_compressed(array):
     return any(isinstance(codec, zarr.codecs.BloscCodec) for codec in meta.codecs)
 
 
-def _stored_chunk_problem(file, blosc):
+def _stored_chunk_problem(folder, key, blosc):
     """None when the chunk file is there (and whole, for blosc), else what is wrong."""
+    file = folder / key
     if not file.is_file():
-        return "is missing from the store (it would read as fill value, not data)"
+        return missing_chunk(repr(key))
     if blosc:
         # A blosc frame states its own length (bytes 12-15, little-endian; the blosc format
         # description). The decoder trusts it and reads past a short buffer without an error.
@@ -125,7 +130,10 @@ def _stored_chunk_problem(file, blosc):
             header = fh.read(16)
         stated, actual = int.from_bytes(header[12:16], "little"), file.stat().st_size
         if len(header) < 16 or stated != actual:
-            return f"is truncated: its blosc header states {stated} bytes, the file has {actual}"
+            return (
+                f"chunk {key!r} is truncated: its blosc header states {stated} bytes, "
+                f"the file has {actual}"
+            )
     return None
 
 
@@ -235,13 +243,16 @@ class _N5Array:
         for j, i in self._cells:
             if not self._block_file(row, j, i).is_file():
                 return missing_chunk(f"{i}/{j}/{row} (N5 block x/y/z)")
-        return None
+        return None  # cheap enough uncached: one stat per block, and blocks are read anyway
 
     def __getitem__(self, z):
         row, depth = divmod(z, self.blocks[0])
-        section = np.empty(self.shape[1:], dtype=self.dtype)
+        section = np.zeros(self.shape[1:], dtype=self.dtype)  # an absent block reads as 0
         for j, i in self._cells:
-            block = self._read_block(self._block_file(row, j, i), (row, j, i))
+            file = self._block_file(row, j, i)
+            if not file.is_file():  # refused earlier unless missing chunks are allowed
+                continue
+            block = self._read_block(file, (row, j, i))
             y0, x0 = j * self.blocks[1], i * self.blocks[2]
             section[y0 : y0 + block.shape[1], x0 : x0 + block.shape[2]] = block[depth]
         return section

@@ -13,7 +13,13 @@ from pathlib import Path
 import h5py
 
 from tessera.errors import TesseraInputError
-from tessera.io.array_stacks import ArrayStack, inner_parts, missing_chunk, spacing_from_attrs
+from tessera.io.array_stacks import (
+    ArrayStack,
+    MissingChunk,
+    inner_parts,
+    missing_chunk,
+    spacing_from_attrs,
+)
 
 __all__ = ["open_hdf5"]
 
@@ -113,7 +119,8 @@ def _chunk_check(dataset):
     """Per section: the offset of a chunk never written, or None (see ArrayStack)."""
     if dataset.chunks is None:
         if dataset.id.get_storage_size() == 0 and dataset.size:
-            return lambda z: "nothing was ever written to the dataset (it would read as fill value)"
+            nothing = "nothing was ever written to the dataset (it would read as fill value)"
+            return lambda z: MissingChunk(nothing)
         return None
     chunks, shape = dataset.chunks, dataset.shape
     checked = set()

@@ -11,7 +11,7 @@ import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.intensity import choose_mapping, to_uint8
-from tessera.io.array_stacks import merge_spacing
+from tessera.io.array_stacks import MissingChunkError, merge_spacing
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.stacks import open_stack
@@ -62,6 +62,7 @@ def ingest_job(
     name="raw",
     chunks=(1, 512, 512),
     percentiles=(0.1, 99.9),
+    missing_chunks="refuse",
 ):
     """Convert an EM stack into a single-level OME-Zarr 0.5 image of uint8 sections.
 
@@ -85,13 +86,23 @@ def ingest_job(
         Zarr chunk shape z, y, x (clipped to the image).
     percentiles : pair of float, optional
         Percentiles (in percent) mapped to 0 and 255 for data that are not uint8.
+    missing_chunks : {'refuse', 'fill_value'}, optional
+        A chunk missing from an hdf5, n5 or zarr array is refused, or read as the array's fill
+        value (for writers that leave out chunks holding only the fill value); the sections
+        read so are recorded in the image's metadata.
 
     Returns
     -------
     dict
         Summary: shape, spacing, source dtype and the intensity mapping used (None for uint8).
     """
+    if missing_chunks not in ("refuse", "fill_value"):
+        raise TesseraInputError(
+            f"missing_chunks must be 'refuse' or 'fill_value', got {missing_chunks!r}"
+        )
     source = open_stack(source_path, fmt, internal_path=internal_path)
+    if hasattr(source, "missing_chunks"):  # arrays in containers (hdf5, n5, zarr)
+        source.missing_chunks = missing_chunks
     try:
         spacing = merge_spacing(spacing, source)
         spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
@@ -118,7 +129,17 @@ def ingest_job(
                 name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES
             )
             _copy_sections(source, array, chunks[0], mapping)
+            filled = getattr(source, "sections_with_missing_chunks", None)
+            if filled:
+                origin["sections_with_missing_chunks"] = sorted(filled)
+                group.attrs.update({"tessera": extra})
             record_checksums(tmp)
+    except MissingChunkError as exc:
+        raise TesseraInputError(
+            f"{exc}; or, if its writer leaves out chunks that hold only the fill value "
+            "(zarr-python does by default), set ingest.missing_chunks: fill_value in "
+            "config/config.yaml"
+        ) from None
     finally:
         source.close()
     return {"shape": list(source.shape), "spacing": list(spacing), "intensity_mapping": mapping}
