@@ -488,6 +488,16 @@ def test_every_path_key_of_the_config_schema_is_held_to_the_data_roots(schemas):
     assert paths == checked, sorted(paths ^ checked)
 
 
+def test_data_roots_go_through_the_schema(schemas, shipped_config):
+    config = copy.deepcopy(shipped_config)
+    assert load_config(copy.deepcopy(config), schemas / "config.schema.yaml")["data_roots"] == []
+    config["data_roots"] = "/mnt/em"
+    with pytest.raises(
+        TesseraInputError, match=r"key data_roots: '/mnt/em' is not of type 'array'"
+    ):
+        load_config(config, schemas / "config.schema.yaml")
+
+
 INNER = HEADER + "\tinternal_path"
 
 

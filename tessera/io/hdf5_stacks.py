@@ -62,7 +62,7 @@ def open_hdf5(path, internal_path):
     try:
         dataset = _dataset(handle, parts, path, label)
         spacing, attribute = spacing_from_attrs(dict(dataset.attrs), source=label)
-    except (TesseraInputError, OSError, KeyError, ValueError) as exc:
+    except (TesseraInputError, OSError, KeyError, TypeError, ValueError) as exc:
         handle.close()
         if isinstance(exc, TesseraInputError):
             raise
