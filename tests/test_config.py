@@ -506,7 +506,8 @@ INNER = HEADER + "\tinternal_path"
     [
         (
             "a1\tctrl\tm1\tstack.tif\thdf5\t40\t8\t8\t\t",
-            r"row 2: column internal_path is blank; format hdf5 and n5 rows need the array's path",
+            r"row 2: column internal_path is blank; format hdf5 and n5 rows need the array's path "
+            r"inside the file \(e\.g\. volumes/raw\)",
         ),
         (
             "a1\tctrl\tm1\tstack.tif\tn5\t40\t8\t8\t\t",
@@ -514,7 +515,8 @@ INNER = HEADER + "\tinternal_path"
         ),
         (
             "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t\tvolumes/raw",
-            r"row 2: column internal_path must be blank for this format: only hdf5, n5 and zarr",
+            r"row 2: column internal_path must be blank for this format: only hdf5, n5 and zarr "
+            r"files hold arrays at a path inside them",
         ),
         (
             "a1\tctrl\tm1\tstack.tif\thdf5\t40\t8\t8\t\tvolumes/../../raw",

@@ -249,6 +249,8 @@ def test_nan_or_infinite_float_values_are_refused(tmp_path, kind, bad):
     path, fmt, inner = _write(kind, tmp_path, array, chunks=(2, 3, 3))
     text = _refused(tmp_path, path, fmt, inner, "section 3")
     assert "section 3 holds 1 NaN or infinite values; expected finite grey values" in text
+    if inner:
+        assert f"internal_path {inner}: section 3" in text
 
 
 @pytest.mark.parametrize("kind", ["hdf5", "zarr_v2", "zarr_v3", "n5"])
@@ -300,6 +302,8 @@ def test_a_missing_chunk_is_refused_not_read_as_fill_value(tmp_path, volume, kin
     assert "is missing from the store (it would read as fill value, not data)" in text
     assert "copy the array again or restore the chunk" in text
     assert "set ingest.missing_chunks: fill_value in config/config.yaml" in text
+    if inner:
+        assert f"internal_path {inner}: section 4" in text
 
 
 @pytest.mark.parametrize("kind", ["zarr_v2", "zarr_v3", "zarr_plain", "n5"])
