@@ -3,7 +3,9 @@
 The stack is read one section at a time (:mod:`tessera.io.stacks`); nothing here holds more than
 about 32 MiB of sections in memory. Data other than 8-bit are mapped to uint8
 (:mod:`tessera.intensity`), and the mapping and the source are recorded in the image's metadata.
-The voxel size comes from the datasets sheet where given, else from the file header.
+The voxel size comes from the datasets sheet where given, else from the file header; for
+arrays in HDF5, N5 and zarr files a voxel size in their attributes comes first, and the sheet
+must agree with it (:func:`tessera.io.array_stacks.merge_spacing`).
 """
 
 import numpy as np
