@@ -11,6 +11,7 @@ from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.workflow.config import (
+    check_reference_condition,
     expand_variants,
     load_config,
     load_datasets,
@@ -37,6 +38,9 @@ try:
         f"{workflow.basedir}/config/schemas/datasets.schema.yaml",
         generated_dir=DEMO_DIR if "demo" in config else None,
         data_roots=config["data_roots"],
+    )
+    check_reference_condition(
+        config["statistics"]["reference_condition"], list(DATASETS["condition"])
     )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None

@@ -172,7 +172,11 @@ def test_tiny_study_produces_every_output(finished_study):
     )
     # one animal per condition in this tiny study: a warning, not a failure
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
-    assert comparison["warning"].str.contains(r"only [01] animal\(s\) in a group").all()
+    assert (
+        comparison["warning"]
+        .str.contains(r"no comparison: no animal in|no interval: only 1 animal in")
+        .all()
+    )
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
     from tessera.workflow.files.points import read_points
 
