@@ -176,11 +176,17 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95, conditi
     return pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
 
 
-def _group_values(animals, measure, condition, log):
+def _measured(animals, measure, condition, log):
+    """The animals' finite values of `measure` in `condition` (positive ones for a log measure)."""
     values = animals.loc[animals["condition"] == condition, measure].to_numpy(dtype=float)
-    if log:
-        values = np.log(values[values > 0])
-    return values[np.isfinite(values)]
+    keep = np.isfinite(values) & (values > 0) if log else np.isfinite(values)
+    return values[keep]
+
+
+def _group_values(animals, measure, condition, log):
+    """:func:`_measured`, on the log scale for a log measure (where the comparison is made)."""
+    values = _measured(animals, measure, condition, log)
+    return np.log(values) if log else values
 
 
 def _compare_one(animals, measure, condition, reference, *, confidence):
@@ -189,7 +195,7 @@ def _compare_one(animals, measure, condition, reference, *, confidence):
     a = _group_values(animals, measure, condition, log)
     b = _group_values(animals, measure, reference, log)
     est, low, high, p = _welch(a, b, confidence)
-    warning = _comparison_warning({condition: len(a), reference: len(b)}, low)
+    warning = _comparison_warning({condition: len(a), reference: len(b)}, low, high)
     if warning:
         _log.warning("%s, %s vs %s: %s", measure, condition, reference, warning)
     transform = math.exp if log else float
@@ -211,17 +217,17 @@ def _compare_one(animals, measure, condition, reference, *, confidence):
     }
 
 
-def _comparison_warning(counts, ci_low):
+def _comparison_warning(counts, ci_low, ci_high):
     """Why a comparison has no interval, or an unreliable one, in words ("" if neither).
 
     Examples
     --------
-    >>> _comparison_warning({"cold": 0, "warm": 3}, math.nan)
+    >>> _comparison_warning({"cold": 0, "warm": 3}, math.nan, math.nan)
     "no comparison: no animal in 'cold' has a value (no whole object measured)"
-    >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan)
+    >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan, math.nan)
     "no interval: only 1 animal in 'cold' (an interval needs 2 per condition); use at least 3 animals per condition"
-    >>> _comparison_warning({"cold": 3, "warm": 3}, math.nan)
-    'no interval: the per-animal values do not vary within either condition'
+    >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)
+    'interval of zero width: the per-animal values do not vary within either condition'
     """
     empty = [c for c, n in counts.items() if n == 0]
     if empty:
@@ -234,8 +240,8 @@ def _comparison_warning(counts, ci_low):
         return (
             f"no interval: only 1 animal in {groups} (an interval needs 2 per condition); {advice}"
         )
-    if not math.isfinite(ci_low):
-        return "no interval: the per-animal values do not vary within either condition"
+    if ci_low == ci_high:
+        return "interval of zero width: the per-animal values do not vary within either condition"
     if fewest < MIN_ANIMALS:
         return f"interval unreliable: only {fewest} animals in {groups}; {advice}"
     return ""
@@ -244,8 +250,7 @@ def _comparison_warning(counts, ci_low):
 def _welch(a, b, confidence):
     """Difference of means a - b with Welch's t interval and two-sided p-value.
 
-    NaN interval and p-value when a group has fewer than 2 values or neither group varies
-    (the standard error is 0 and Welch's t is undefined, as in scipy's ``ttest_ind``).
+    NaN interval and p-value when a group has fewer than 2 values.
     """
     if len(a) == 0 or len(b) == 0:
         return math.nan, math.nan, math.nan, math.nan
@@ -254,8 +259,8 @@ def _welch(a, b, confidence):
         return diff, math.nan, math.nan, math.nan
     va, vb = np.var(a, ddof=1) / len(a), np.var(b, ddof=1) / len(b)
     se = math.sqrt(va + vb)
-    if se == 0:
-        return diff, math.nan, math.nan, math.nan
+    if se == 0:  # as scipy's ttest_ind: an interval of zero width, p 0 (or 1 for no difference)
+        return diff, diff, diff, (0.0 if diff else 1.0)
     df = (va + vb) ** 2 / (va**2 / (len(a) - 1) + vb**2 / (len(b) - 1))
     q = sps.t.ppf(0.5 + confidence / 2, df)
     p = 2 * sps.t.sf(abs(diff) / se, df)
@@ -343,13 +348,15 @@ def describe_conditions(animals, *, measures, conditions=None):
     for measure in measures:
         log = measure in LOG_MEASURES
         for condition in _ordered_conditions(animals, conditions):
-            values = _group_values(animals, measure, condition, log)
-            back = np.exp if log else np.asarray
+            values = _measured(animals, measure, condition, log)
             note = ""
             if values.size == 0:
                 note = "no animal in this condition has a value (no whole object measured)"
             elif values.size == 1:
                 note = "one animal: no spread between animals"
+            mean = math.nan
+            if values.size:
+                mean = math.exp(np.log(values).mean()) if log else float(values.mean())
             rows.append(
                 {
                     "measure": measure,
@@ -357,9 +364,9 @@ def describe_conditions(animals, *, measures, conditions=None):
                     "animals": int((animals["condition"] == condition).sum()),
                     "measured_animals": int(values.size),
                     "scale": "geometric mean" if log else "mean",
-                    "mean": float(back(values.mean())) if values.size else math.nan,
-                    "lowest": float(back(values.min())) if values.size else math.nan,
-                    "highest": float(back(values.max())) if values.size else math.nan,
+                    "mean": mean,
+                    "lowest": float(values.min()) if values.size else math.nan,
+                    "highest": float(values.max()) if values.size else math.nan,
                     "note": note,
                 }
             )
