@@ -19,6 +19,12 @@ from tessera.statistics import (
     describe_conditions,
     summarise_study,
 )
+from tessera.workflow.files.comparison_table import read_comparison_table
+from tessera.workflow.files.morphometry_tables import (
+    write_object_measures,
+    write_region_densities,
+)
+from tessera.workflow.jobs.statistics import statistics_job
 
 TREATED_RATIO = 1.25  # the simulated condition effect on object volume
 
@@ -289,3 +295,96 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     }
     # the region counts include cut objects, so they are still compared
     assert comparison.set_index("measure").loc["region_objects", "effect"] == 0
+
+
+# --- the statistics job on written tables, as the rule runs it ---
+
+
+def write_study(folder, made, sheet_conditions):
+    """Morphometry tables and a scores table on disk; returns the job's input arguments."""
+    objects, regions, sheet = {}, {}, {}
+    for k, (dataset, (measured, densities)) in enumerate(made.items()):
+        objects[dataset] = folder / f"{dataset}_objects.tsv"
+        regions[dataset] = folder / f"{dataset}_regions.tsv"
+        write_object_measures(objects[dataset], measured)
+        write_region_densities(regions[dataset], densities)
+        sheet[dataset] = {"condition": sheet_conditions[k], "subject": f"m{k}"}
+    scores = folder / "scores.tsv"
+    pd.DataFrame(
+        {"role": ["validation", "test"], "f1": [0.9, 0.88], "jaccard": [0.8, 0.79]}
+    ).to_csv(scores, sep="\t", index=False)
+    return {"object_tables": objects, "region_tables": regions, "datasets": sheet, "scores": scores}
+
+
+def run_statistics(folder, made, conditions, **options):
+    inputs = write_study(folder, made, conditions)
+    outputs = {
+        name: folder / f"{name}.{ext}"
+        for name, ext in (("animals", "tsv"), ("comparison", "tsv"), ("conditions", "tsv"))
+    }
+    statistics_job(
+        **inputs,
+        out_animals=outputs["animals"],
+        out_comparison=outputs["comparison"],
+        out_conditions=outputs["conditions"],
+        out_plot=folder / "conditions.png",
+        target="mito",
+        measures=["volume_um3", "sphericity"],
+        **options,
+    )
+    assert (folder / "conditions.png").read_bytes()[:4] == b"\x89PNG"
+    for path in outputs.values():  # no cell a person reads says nan
+        assert "nan" not in path.read_text().lower(), path.name
+    tables = {name: pd.read_csv(path, sep="\t") for name, path in outputs.items()}
+    tables["comparison"] = read_comparison_table(outputs["comparison"])
+    return tables, inputs
+
+
+def test_job_with_one_condition_writes_a_description_and_an_empty_comparison(tmp_path):
+    made = {"d0": small_dataset(INSIDE), "d1": small_dataset(INSIDE[:1])}
+    tables, _ = run_statistics(tmp_path, made, ["warm", "warm"])
+    assert tables["comparison"].empty and "effect" in tables["comparison"].columns
+    described = tables["conditions"].set_index("measure")
+    assert set(described["condition"]) == {"warm"} and described["measured_animals"].min() == 2
+    # Reference: scipy.stats.gmean of the two animals' own geometric means.
+    per_animal = tables["animals"]["volume_um3"]
+    assert described.loc["volume_um3", "mean"] == pytest.approx(sps.gmean(per_animal))
+
+
+def test_job_compares_three_conditions_with_the_configured_reference(tmp_path):
+    made = {f"d{k}": small_dataset(INSIDE[: 1 + k % 2]) for k in range(6)}
+    conditions = ["cold", "warm", "cold", "warm", "hot", "hot"]
+    tables, _ = run_statistics(tmp_path, made, conditions, reference="warm")
+    comparison = tables["comparison"]
+    assert set(comparison["reference"]) == {"warm"}
+    assert comparison.loc[comparison["measure"] == "volume_um3", "condition"].tolist() == [
+        "cold",
+        "hot",
+    ]
+
+
+def test_job_default_reference_is_the_first_condition_of_the_sheet(tmp_path):
+    made = {f"d{k}": small_dataset(INSIDE) for k in range(4)}
+    tables, _ = run_statistics(tmp_path, made, ["warm", "cold", "warm", "cold"])
+    assert set(tables["comparison"]["reference"]) == {"warm"}
+
+
+def test_job_refuses_a_reference_the_sheet_lacks_before_writing(tmp_path):
+    made = {f"d{k}": small_dataset(INSIDE) for k in range(2)}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key statistics.reference_condition: 'sham' is not a condition of the datasets "
+        r"sheet; its conditions are \['warm', 'cold'\]",
+    ):
+        run_statistics(tmp_path, made, ["warm", "cold"], reference="sham")
+    assert not (tmp_path / "comparison.tsv").exists()
+
+
+def test_job_on_a_target_without_whole_objects_and_one_animal_per_condition(tmp_path):
+    # The demo's nuclei: every object touches the volume border, one animal per condition.
+    made = {"d0": small_dataset(AT_BORDER), "d1": small_dataset(AT_BORDER)}
+    tables, _ = run_statistics(tmp_path, made, ["warm", "cold"])
+    volume = tables["comparison"].set_index("measure").loc["volume_um3"]
+    assert volume["warning"].startswith("no comparison: no animal in 'cold' or 'warm'")
+    notes = tables["conditions"].set_index("measure").loc["volume_um3", "note"]
+    assert set(notes) == {"no animal in this condition has a value (no whole object measured)"}
