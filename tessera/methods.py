@@ -183,13 +183,13 @@ def _qc_sentence(c, section_counts):
     text = f"{checks}; QC flagged {flagged} of {_plural(sections, 'section')}" + (
         f" ({why})" if why else ""
     )
+    which = "which was" if flagged == 1 else "which were"
     if excluded == flagged:
-        return text + ", which were excluded from training and flagged in the object tables."
+        return f"{text}, {which} excluded from training and flagged in the object tables."
     if excluded == 0:
-        return text + ", which were kept (exclusion switched off)."
+        return f"{text}, {which} kept (exclusion switched off)."
     return (
-        text
-        + f", of which {excluded} were excluded from training and flagged in the object tables."
+        f"{text}, of which {excluded} were excluded from training and flagged in the object tables."
     )
 
 

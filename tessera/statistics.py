@@ -223,23 +223,21 @@ def _comparison_warning(counts, ci_low, ci_high):
     Examples
     --------
     >>> _comparison_warning({"cold": 0, "warm": 3}, math.nan, math.nan)
-    "no comparison: no animal in 'cold' has a value (no whole object measured)"
+    "no comparison: no animal in 'cold' has a whole object to measure"
     >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan, math.nan)
-    "no interval: only 1 animal in 'cold' (an interval needs 2 per condition); use at least 3 animals per condition"
+    "no interval: only 1 animal in 'cold', and an interval needs 2 per condition; use at least 3 animals per condition"
     >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)
     'interval of zero width: the per-animal values do not vary within either condition'
     """
     empty = [c for c, n in counts.items() if n == 0]
     if empty:
         names = " or ".join(repr(c) for c in empty)
-        return f"no comparison: no animal in {names} has a value (no whole object measured)"
+        return f"no comparison: no animal in {names} has a whole object to measure"
     fewest = min(counts.values())
     groups = " and ".join(repr(c) for c, n in counts.items() if n == fewest)
     advice = f"use at least {MIN_ANIMALS} animals per condition"
     if fewest < 2:
-        return (
-            f"no interval: only 1 animal in {groups} (an interval needs 2 per condition); {advice}"
-        )
+        return f"no interval: only 1 animal in {groups}, and an interval needs 2 per condition; {advice}"
     if ci_low == ci_high:
         return "interval of zero width: the per-animal values do not vary within either condition"
     if fewest < MIN_ANIMALS:
@@ -342,7 +340,7 @@ def describe_conditions(animals, *, measures, conditions=None):
     >>> table[["condition", "measured_animals", "mean", "lowest", "highest"]].values.tolist()
     [['warm', 2, 2.0, 1.0, 4.0], ['cold', 0, nan, nan, nan]]
     >>> table["note"].tolist()
-    ['', 'no animal in this condition has a value (no whole object measured)']
+    ['', 'no animal in this condition has a whole object to measure']
     """
     rows = []
     for measure in measures:
@@ -351,7 +349,7 @@ def describe_conditions(animals, *, measures, conditions=None):
             values = _measured(animals, measure, condition, log)
             note = ""
             if values.size == 0:
-                note = "no animal in this condition has a value (no whole object measured)"
+                note = "no animal in this condition has a whole object to measure"
             elif values.size == 1:
                 note = "one animal: no spread between animals"
             mean = math.nan

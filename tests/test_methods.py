@@ -328,12 +328,12 @@ def test_methods_without_whole_objects_and_one_animal_per_condition_say_why_in_w
     )
     text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm", "cold"]))
     assert (
-        "volume_um3 cold vs warm: not compared (no animal in 'cold' or 'warm' has a value "
-        "(no whole object measured))" in text
+        "volume_um3 cold vs warm: not compared (no animal in 'cold' or 'warm' has a whole object "
+        "to measure)" in text
     )
     assert (
         "region_objects cold vs warm: difference 1 (1 vs 1 animals; no interval: only 1 animal "
-        "in 'cold' and 'warm' (an interval needs 2 per condition))" in text
+        "in 'cold' and 'warm', and an interval needs 2 per condition)" in text
     )
 
 

@@ -125,7 +125,7 @@ def test_one_animal_per_condition_warns_instead_of_failing(caplog):
     with caplog.at_level(logging.WARNING):
         row = compare_conditions(animals, measures=["volume_um3"], reference="control").iloc[0]
     assert math.isnan(row["ci_low"]) and row["warning"].startswith(
-        "no interval: only 1 animal in 'treated' and 'control' (an interval needs 2 per condition)"
+        "no interval: only 1 animal in 'treated' and 'control', and an interval needs 2 per condition"
     )
     assert "use at least 3 animals per condition" in caplog.text
 
@@ -180,7 +180,7 @@ def test_one_animal_per_condition_gives_the_effect_and_says_why_there_is_no_inte
     assert row["effect"] == pytest.approx(1.5)  # ratio of the two animals' values
     assert math.isnan(row["ci_low"]) and math.isnan(row["p_value"])
     assert row["warning"] == (
-        "no interval: only 1 animal in 'cold' and 'warm' (an interval needs 2 per condition); "
+        "no interval: only 1 animal in 'cold' and 'warm', and an interval needs 2 per condition; "
         "use at least 3 animals per condition"
     )
     note = describe_conditions(animals, measures=["volume_um3"])["note"]
@@ -291,7 +291,7 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     objects_rows = comparison[comparison["measure"].isin(["volume_um3", "sphericity"])]
     assert objects_rows["effect"].isna().all()
     assert set(objects_rows["warning"]) == {
-        "no comparison: no animal in 'cold' or 'warm' has a value (no whole object measured)"
+        "no comparison: no animal in 'cold' or 'warm' has a whole object to measure"
     }
     # the region counts include cut objects, so they are still compared
     assert comparison.set_index("measure").loc["region_objects", "effect"] == 0
@@ -387,4 +387,4 @@ def test_job_on_a_target_without_whole_objects_and_one_animal_per_condition(tmp_
     volume = tables["comparison"].set_index("measure").loc["volume_um3"]
     assert volume["warning"].startswith("no comparison: no animal in 'cold' or 'warm'")
     notes = tables["conditions"].set_index("measure").loc["volume_um3", "note"]
-    assert set(notes) == {"no animal in this condition has a value (no whole object measured)"}
+    assert set(notes) == {"no animal in this condition has a whole object to measure"}
