@@ -189,23 +189,23 @@ def test_one_animal_per_condition_gives_the_effect_and_says_why_there_is_no_inte
 
 def test_three_conditions_each_against_the_stated_reference_in_sheet_order():
     # Reference: scipy.stats.ttest_ind(equal_var=False) of each condition against the reference.
-    values = {"thermoneutral": [1.0, 1.2, 1.1], "cold": [1.5, 1.7, 1.4, 1.6], "warm": [1.3, 1.2]}
+    values = {"warm": [1.3, 1.2], "thermoneutral": [1.0, 1.2, 1.1], "cold": [1.5, 1.7, 1.4, 1.6]}
     animals = animals_table(values, measure="N_V")
     table = compare_conditions(
         animals,
         measures=["N_V"],
         reference="thermoneutral",
-        conditions=["thermoneutral", "cold", "warm"],
+        conditions=["warm", "thermoneutral", "cold"],
     )
-    assert table["condition"].tolist() == ["cold", "warm"]
+    assert table["condition"].tolist() == ["warm", "cold"]  # the sheet's order, not sorted
     assert set(table["reference"]) == {"thermoneutral"}
     for row in table.to_dict("records"):
         ref = sps.ttest_ind(values[row["condition"]], values["thermoneutral"], equal_var=False)
         assert row["p_value"] == pytest.approx(ref.pvalue)
         assert (row["ci_low"], row["ci_high"]) == pytest.approx(tuple(ref.confidence_interval()))
     assert table["warning"].tolist() == [
-        "",
         "interval unreliable: only 2 animals in 'warm'; use at least 3 animals per condition",
+        "",
     ]
 
 
@@ -353,13 +353,14 @@ def test_job_with_one_condition_writes_a_description_and_an_empty_comparison(tmp
 
 def test_job_compares_three_conditions_with_the_configured_reference(tmp_path):
     made = {f"d{k}": small_dataset(INSIDE[: 1 + k % 2]) for k in range(6)}
-    conditions = ["cold", "warm", "cold", "warm", "hot", "hot"]
+    conditions = ["hot", "warm", "cold", "warm", "hot", "cold"]
     tables, _ = run_statistics(tmp_path, made, conditions, reference="warm")
     comparison = tables["comparison"]
     assert set(comparison["reference"]) == {"warm"}
+    # every other condition once per measure, in the sheet's order
     assert comparison.loc[comparison["measure"] == "volume_um3", "condition"].tolist() == [
-        "cold",
         "hot",
+        "cold",
     ]
 
 
