@@ -359,10 +359,11 @@ def test_methods_name_the_reference_for_three_conditions(tmp_path):
 
 
 def test_methods_count_qc_flags_per_reason(tmp_path):
-    # Reasons are quoted as the QC table holds them, including kinds the text does not know.
+    # Reasons are quoted as the QC table holds them, including kinds the text does not know,
+    # most frequent first.
     rows = {
         "z": list(range(6)),
-        "reason": ["", "blurred", "flat", "blurred;shift", "missing", ""],
+        "reason": ["", "flat", "flat", "blurred;shift", "missing", ""],
         "excluded": [False, True, True, True, True, False],
     }
     animals = pd.DataFrame(
@@ -370,7 +371,7 @@ def test_methods_count_qc_flags_per_reason(tmp_path):
     )
     text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm"]), qc_rows=rows)
     assert (
-        "QC flagged 4 of 6 sections (2 blurred, 1 flat, 1 missing, 1 shift; a section can have "
+        "QC flagged 4 of 6 sections (2 flat, 1 blurred, 1 missing, 1 shift; a section can have "
         "several reasons), which were excluded from training" in text
     )
     assert "1 dataset from 1 animal in 1 condition (warm) was converted" in text

@@ -1,5 +1,6 @@
 """Study statistics with the animal as the unit, against scipy and statsmodels."""
 
+import io
 import logging
 import math
 import warnings
@@ -19,6 +20,7 @@ from tessera.statistics import (
     describe_conditions,
     summarise_study,
 )
+from tessera.statistics_plot import plot_conditions
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.morphometry_tables import (
     write_object_measures,
@@ -280,7 +282,7 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     sheet = {f"d{k}": {"condition": c, "subject": f"m{k}"} for k, c in enumerate(["warm", "cold"])}
     made = {d: small_dataset(AT_BORDER) for d in sheet}
     assert all(m[0]["touches_volume_border"].all() for m in made.values())
-    _, animals, comparison = summarise_study(
+    objects, animals, comparison = summarise_study(
         {d: m[0] for d, m in made.items()},
         {d: m[1] for d, m in made.items()},
         sheet,
@@ -295,6 +297,11 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     }
     # the region counts include cut objects, so they are still compared
     assert comparison.set_index("measure").loc["region_objects", "effect"] == 0
+    titles = plot_conditions(
+        objects, animals, comparison, io.BytesIO(), target="nuclei", accuracy={"test_f1": 0.9}
+    )
+    assert titles[0] == "volume_um3\ncold/warm: not compared"
+    assert not any("nan" in title.lower() for title in titles)
 
 
 # --- the statistics job on written tables, as the rule runs it ---
