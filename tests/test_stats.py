@@ -298,9 +298,10 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     # the region counts include cut objects, so they are still compared
     assert comparison.set_index("measure").loc["region_objects", "effect"] == 0
     titles = plot_conditions(
-        objects, animals, comparison, io.BytesIO(), target="nuclei", accuracy={"test_f1": 0.9}
-    )
+        objects, animals, comparison, io.BytesIO(), target="nuclei", accuracy={"test_f1": math.nan}
+    )  # a target scored without test tiles has no test-tile F1
     assert titles[0] == "volume_um3\ncold/warm: not compared"
+    assert "no test-tile F1 (no test tiles)" in titles[-1]
     assert not any("nan" in title.lower() for title in titles)
 
 
