@@ -382,8 +382,8 @@ def test_job_refuses_a_reference_the_sheet_lacks_before_writing(tmp_path):
     made = {f"d{k}": small_dataset(INSIDE) for k in range(2)}
     with pytest.raises(
         TesseraInputError,
-        match=r"key statistics.reference_condition: 'sham' is not a condition of the datasets "
-        r"sheet; its conditions are \['warm', 'cold'\]",
+        match=r"config/config.yaml: key statistics.reference_condition: 'sham' is not a condition "
+        r"of the datasets sheet; its conditions are \['warm', 'cold'\]",
     ):
         run_statistics(tmp_path, made, ["warm", "cold"], reference="sham")
     assert not (tmp_path / "comparison.tsv").exists()
