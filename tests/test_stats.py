@@ -21,6 +21,7 @@ from tessera.statistics import (
     summarise_study,
 )
 from tessera.statistics_plot import plot_conditions
+from tessera.workflow.config import check_reference_condition
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.morphometry_tables import (
     write_object_measures,
@@ -378,15 +379,20 @@ def test_job_default_reference_is_the_first_condition_of_the_sheet(tmp_path):
     assert set(tables["comparison"]["reference"]) == {"warm"}
 
 
-def test_job_refuses_a_reference_the_sheet_lacks_before_writing(tmp_path):
-    made = {f"d{k}": small_dataset(INSIDE) for k in range(2)}
+def test_a_reference_the_sheet_lacks_is_refused_at_load_and_by_the_job(tmp_path):
+    # at load (rules/common.smk), naming the config key and the sheet's conditions
     with pytest.raises(
         TesseraInputError,
         match=r"config/config.yaml: key statistics.reference_condition: 'sham' is not a condition "
         r"of the datasets sheet; its conditions are \['warm', 'cold'\]",
     ):
+        check_reference_condition("sham", ["warm", "cold", "warm"])
+    check_reference_condition(None, ["warm"])  # null: the first condition of the sheet
+    # the job, called without the workflow, refuses it before writing anything
+    made = {f"d{k}": small_dataset(INSIDE) for k in range(2)}
+    with pytest.raises(TesseraInputError, match="reference condition 'sham' has no animals"):
         run_statistics(tmp_path, made, ["warm", "cold"], reference="sham")
-    assert not (tmp_path / "comparison.tsv").exists()
+    assert not (tmp_path / "comparison.tsv").exists() and not (tmp_path / "animals.tsv").exists()
 
 
 def test_job_on_a_target_without_whole_objects_and_one_animal_per_condition(tmp_path):

@@ -10,7 +10,6 @@ from tessera.statistics import (
     summarise_study,
 )
 from tessera.statistics_plot import plot_conditions
-from tessera.workflow.config import check_reference_condition
 from tessera.workflow.files.comparison_table import write_comparison_table
 from tessera.workflow.files.morphometry_tables import read_object_measures, read_region_densities
 from tessera.workflow.files.scores import read_scores
@@ -55,10 +54,11 @@ def statistics_job(
         result of a study with one condition, where the comparison table has no rows.
     reference : str, optional
         ``statistics.reference_condition``: the condition the others are compared with
-        (default: the first condition in the sheet). One the sheet lacks is refused.
+        (default: the first condition in the sheet). One the sheet lacks is refused when the
+        workflow loads (:func:`tessera.workflow.config.check_reference_condition`), and by
+        :func:`~tessera.statistics.compare_conditions` before anything is written.
     """
     conditions = sheet_conditions(datasets)
-    check_reference_condition(reference, conditions)
     objects = {d: read_object_measures(path) for d, path in object_tables.items()}
     regions = {d: read_region_densities(region_tables[d]) for d in object_tables}
     accuracy = _test_accuracy(scores)
