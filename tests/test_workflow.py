@@ -199,6 +199,9 @@ def test_tiny_study_produces_every_output(finished_study):
     methods = (finished_study / "results/study/methods.md").read_text()
     test_f1 = scores.loc[scores["role"] == "test", "f1"].iloc[0]
     assert f"F1 {test_f1:.3f}" in methods and "demo/data/w1/raw.tif" in methods
+    # one animal per condition in the tiny study: the missing interval is said in words, no nan
+    assert "not compared" in methods or "no interval" in methods
+    assert not re.search(r"\bnan\b", methods, re.IGNORECASE)
 
 
 def test_tiny_study_segments_the_nuclei_far_better_than_trivial_models(finished_study):
