@@ -404,3 +404,24 @@ def test_job_on_a_target_without_whole_objects_and_one_animal_per_condition(tmp_
     assert volume["warning"].startswith("no comparison: no animal in 'cold' or 'warm'")
     notes = tables["conditions"].set_index("measure").loc["volume_um3", "note"]
     assert set(notes) == {"no animal in this condition has a whole object to measure"}
+
+
+def test_job_with_a_dataset_without_objects_and_unbalanced_animals(tmp_path):
+    # 3 warm animals (one without any object) against 2 cold: read back from the written tables.
+    made = {
+        "d0": small_dataset(INSIDE),
+        "d1": small_dataset([]),
+        "d2": small_dataset(INSIDE[:1]),
+        "d3": small_dataset(INSIDE),
+        "d4": small_dataset(INSIDE[1:]),
+    }
+    tables, _ = run_statistics(tmp_path, made, ["warm", "warm", "warm", "cold", "cold"])
+    animals = tables["animals"].set_index("subject")
+    assert animals.loc["m1", "objects"] == 0 and math.isnan(animals.loc["m1", "volume_um3"])
+    rows = tables["comparison"].set_index("measure")
+    assert rows.loc["volume_um3", ["animals", "reference_animals"]].tolist() == [2, 2]
+    assert rows.loc["region_objects", ["animals", "reference_animals"]].tolist() == [2, 3]
+    # Reference: scipy.stats.ttest_ind(equal_var=False) on the per-animal object counts.
+    counts = animals.groupby("condition")["region_objects"]
+    ref = sps.ttest_ind(counts.get_group("cold"), counts.get_group("warm"), equal_var=False)
+    assert rows.loc["region_objects", "p_value"] == pytest.approx(ref.pvalue)
