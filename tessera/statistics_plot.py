@@ -72,12 +72,22 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
                     body.set_facecolor("0.8")
             per_animal = animals.loc[animals["condition"] == c, m].to_numpy(dtype=float)
             ax.plot(np.full(per_animal.size, i), per_animal, "o", color="C0", ms=6)
+            if not np.isfinite(per_animal).any():  # say why the column is empty
+                ax.text(
+                    i,
+                    0.5,
+                    "no whole\nobject",
+                    ha="center",
+                    va="center",
+                    fontsize=7,
+                    color="0.4",
+                    transform=ax.get_xaxis_transform(),
+                )
         ax.set_xticks(range(len(conditions)), conditions)
+        ax.set_xlim(-0.6, len(conditions) - 0.4)
         shown = np.concatenate([whole[m].to_numpy(dtype=float), animals[m].to_numpy(dtype=float)])
         if m in LOG_MEASURES and (np.isfinite(shown) & (shown > 0)).any():
             ax.set_yscale("log")
-        if not np.isfinite(shown).any():
-            ax.text(0.5, 0.5, "no whole object measured", ha="center", transform=ax.transAxes)
         rows = comparison[comparison["measure"] == m]
         lines = [_title_line(r) for r in rows.to_dict("records")] or ["no comparison"]
         titles.append("\n".join([m, *lines]))
@@ -85,8 +95,8 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
     f1 = accuracy.get("test_f1", math.nan)
     f1 = f"test-tile F1 {f1:.3f}" if math.isfinite(f1) else "no test-tile F1 (no test tiles)"
     titles.append(
-        f"{target}: objects (grey) and animals (dots); {f1} — "
-        "automatic segmentation, validate on held-out annotation"
+        f"{target}: objects (grey) and animals (dots); {f1}\n"
+        "automatic segmentation: validate on held-out annotation"
     )
     fig.suptitle(titles[-1], fontsize=8)
     fig.tight_layout()
