@@ -402,6 +402,8 @@ def test_job_on_a_target_without_whole_objects_and_one_animal_per_condition(tmp_
     tables, _ = run_statistics(tmp_path, made, ["warm", "cold"])
     volume = tables["comparison"].set_index("measure").loc["volume_um3"]
     assert volume["warning"].startswith("no comparison: no animal in 'cold' or 'warm'")
+    # empty cells come back as numbers (NaN), never as text
+    assert math.isnan(volume["p_value"]) and math.isnan(volume["mean"])
     notes = tables["conditions"].set_index("measure").loc["volume_um3", "note"]
     assert set(notes) == {"no animal in this condition has a whole object to measure"}
 
