@@ -376,3 +376,20 @@ def test_methods_count_qc_flags_per_reason(tmp_path):
         "several reasons), which were excluded from training" in text
     )
     assert "1 dataset from 1 animal in 1 condition (warm) was converted" in text
+
+
+def test_methods_say_flagged_sections_were_kept_when_exclusion_is_off(tmp_path):
+    # qc.exclude_flagged false: the QC table still names reasons, but excludes nothing
+    rows = {
+        "z": list(range(4)),
+        "reason": ["", "blurred", "", "intensity"],
+        "excluded": [False, False, False, False],
+    }
+    animals = pd.DataFrame(
+        {"subject": ["m0"], "condition": ["warm"], "volume_um3": [1.0], "region_objects": [1.0]}
+    )
+    text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm"]), qc_rows=rows)
+    assert (
+        "QC flagged 2 of 4 sections (1 blurred, 1 intensity), which were kept (exclusion "
+        "switched off)." in text
+    )
