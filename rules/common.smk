@@ -12,6 +12,7 @@ from snakemake.exceptions import WorkflowError
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.workflow.config import (
     check_config_paths,
+    check_reference_condition,
     expand_variants,
     load_config,
     load_datasets,
@@ -41,6 +42,9 @@ try:
     )
     # label volumes, points sheets and painted masks are held to the same roots
     check_config_paths(config, DATASETS.index)
+    check_reference_condition(
+        config["statistics"]["reference_condition"], list(DATASETS["condition"])
+    )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 

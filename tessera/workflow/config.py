@@ -117,6 +117,33 @@ def _check_related_keys(config, source):
             )
 
 
+def check_reference_condition(reference, conditions, *, source="config/config.yaml"):
+    """Refuse a ``statistics.reference_condition`` that is not a condition of the sheet.
+
+    Parameters
+    ----------
+    reference : str or None
+        The configured reference; None means the first condition of the sheet (always valid).
+    conditions : sequence of str
+        The sheet's ``condition`` column (any order, repeats allowed).
+
+    Examples
+    --------
+    >>> check_reference_condition(None, ["warm", "cold"])
+    >>> check_reference_condition("sham", ["warm", "cold", "warm"])
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: key statistics.reference_condition: 'sham' is not a condition of the datasets sheet; its conditions are ['warm', 'cold']
+    """
+    known = list(dict.fromkeys(conditions))
+    if reference is not None and reference not in known:
+        raise TesseraInputError(
+            f"key statistics.reference_condition: {reference!r} is not a condition of the "
+            f"datasets sheet; its conditions are {known}",
+            source=source,
+        )
+
+
 def _parse_number(text, *, where):
     if text.strip() == "":
         return None
