@@ -34,6 +34,7 @@ __all__ = [
     "overlap_counts",
     "partition_scores",
     "repeat_labels",
+    "scores_from_overlaps",
     "size_classes",
 ]
 
@@ -269,7 +270,11 @@ def object_scores(truth, pred, *, mask=None, iou=0.5):
     >>> s["matched_objects"], s["object_precision"], s["object_recall"], s["count_error"]
     (1, 0.3333333333333333, 0.5, 0.5)
     """
-    overlaps = overlap_counts(truth, pred, mask=mask)
+    return scores_from_overlaps(overlap_counts(truth, pred, mask=mask), iou=iou)
+
+
+def scores_from_overlaps(overlaps, *, iou=0.5):
+    """:func:`object_scores` from the overlap counts of :func:`overlap_counts`."""
     matches = match_table(overlaps, iou=iou)
     n_true = len(matches)
     n_pred = int(overlaps.loc[overlaps["pred"] > 0, "pred"].nunique())
