@@ -14,6 +14,7 @@ from PIL import Image
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.store_checksums import record_checksums
+from tessera.methods import methods_text
 from tessera.workflow.config import load_config
 from tessera.workflow.files.objects_3d import overall_objects_3d, read_objects_3d
 from tessera.workflow.jobs.evaluate_objects import evaluate_objects_job
@@ -250,3 +251,29 @@ def test_config_takes_instances_only_beside_labels(repo):
         match=r"key targets.mitochondria.annotations.instances: 'truth/instances.tif' does not match",
     ):
         load_config(fixed, schema)
+
+
+def test_methods_paragraph_quotes_the_3d_scores_it_is_given(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    out = _run(tmp_path, tiles, inputs)
+    sections = {
+        "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+        "pyramid": {"levels": 3},
+        "statistics": {"confidence": 0.95},
+        "targets": {},
+    }
+    text = methods_text(
+        sections,
+        {"d1": {"condition": "warm", "subject": "m1"}},
+        scores={},
+        object_settings={},
+        comparisons={},
+        section_counts={"sections": 10, "excluded": 1},
+        checksums=[],
+        software={},
+        objects_3d={"mito": overall_objects_3d(out / "objects_3d.tsv")},
+    )
+    # the hand-worked scene: F1 2 * 2 / (3 + 4), precision 2/4, recall 2/3, on section 8 only
+    assert f"F1 {4 / 7:.3f} (precision 0.500, recall {2 / 3:.3f}" in text
+    assert "the mito objects on 1 held-out test sections" in text
+    assert "(26-connected components of the labels)" in text

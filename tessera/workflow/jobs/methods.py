@@ -5,6 +5,7 @@ from tessera.methods import methods_text
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
 from tessera.workflow.files.object_table import read_object_settings
+from tessera.workflow.files.objects_3d import overall_objects_3d
 from tessera.workflow.files.qc_table import count_sections
 from tessera.workflow.files.scores import read_scores
 from tessera.workflow.versions import software_versions
@@ -19,6 +20,7 @@ def methods_job(
     checksums,
     qc_tables,
     out_path,
+    objects_3d=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
 
@@ -36,6 +38,8 @@ def methods_job(
         The per-dataset checksum records.
     qc_tables : list of path
         Section QC tables (to count excluded sections).
+    objects_3d : dict, optional
+        Target → its 3D object scores table (targets annotated with label volumes).
     """
     section_counts = count_sections(qc_tables)
     targets = config_sections["targets"]
@@ -51,6 +55,7 @@ def methods_job(
         section_counts=section_counts,
         checksums=[pair for path in checksums for pair in read_input_checksums(path)],
         software=software_versions(),
+        objects_3d={t: overall_objects_3d(p) for t, p in (objects_3d or {}).items()},
     )
     write_text(out_path, text)
     return {"words": len(text.split())}
