@@ -15,6 +15,7 @@ from tessera.errors import TesseraInputError
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.store_checksums import record_checksums
 from tessera.methods import methods_text
+from tessera.tiles.split import held_out_sections, split_tiles
 from tessera.workflow.config import load_config
 from tessera.workflow.files.objects_3d import overall_objects_3d, read_objects_3d
 from tessera.workflow.jobs.evaluate_objects import evaluate_objects_job
@@ -277,3 +278,48 @@ def test_methods_paragraph_quotes_the_3d_scores_it_is_given(tmp_path):
     assert f"F1 {4 / 7:.3f} (precision 0.500, recall {2 / 3:.3f}" in text
     assert "the mito objects on 1 held-out test sections" in text
     assert "(26-connected components of the labels)" in text
+
+
+def test_held_out_sections_keep_the_guard_distance_and_skip_other_roles():
+    registry = pd.DataFrame(
+        {
+            "dataset": ["d1"] * 5 + ["d2"],
+            "z": [3, 9, 6, 4, 12, 0],
+            "role": ["test", "test", "train", "validation", "test", "test"],
+        }
+    )
+    registry.loc[4, "dataset"] = "d2"
+    # by hand: d1's test range is 3..9; sections 5, 6, 7 lie nearer than 2 to the training
+    # section 6, and 4 holds a validation tile
+    assert held_out_sections(registry, "d1", guard_sections=2) == [3, 8, 9]
+    # guard 0 still leaves the training section itself out: whole sections are scored
+    assert held_out_sections(registry, "d1", guard_sections=0) == [3, 5, 7, 8, 9]
+    assert held_out_sections(registry, "d3", guard_sections=2) == []
+
+
+@pytest.mark.parametrize("guard", [1, 2, 3])
+def test_held_out_sections_of_a_real_split_are_test_sections_apart_from_training(guard):
+    rng = np.random.default_rng(guard)
+    z = rng.integers(0, 40, 60)
+    registry = pd.DataFrame(
+        {
+            "tile_id": [f"t{k}" for k in range(60)],
+            "dataset": "d",
+            "target": "m",
+            "level": 0,
+            "z": z,
+            "y0": 0,
+            "x0": 0,
+            "height": 4,
+            "width": 4,
+            "source": "labels",
+        }
+    )
+    split = split_tiles(registry, guard_sections=guard, seed=guard)
+    sections = np.array(held_out_sections(split, "d", guard_sections=guard))
+    train = split.loc[split["role"] == "train", "z"].to_numpy()
+    test = split.loc[split["role"] == "test", "z"].to_numpy()
+    # the split's promise (README: held-out tiles are guard_sections apart in z from training)
+    # holds for every scored section, and every test tile's section is scored
+    assert np.abs(sections[:, None] - train[None, :]).min() >= guard
+    assert set(test.tolist()) <= set(sections.tolist())
