@@ -71,7 +71,7 @@ def _store(path, levels, extra=None):
     record_checksums(path)
 
 
-def _scene(tmp_path, *, qc_excludes_9=True):
+def _scene(tmp_path, *, qc_excludes_9=True, qc_excludes_8_9=False):
     """Write every input of the job for dataset d1; return the job's input mapping."""
     rng = np.random.default_rng(0)
     raw = rng.integers(0, 255, SHAPE, dtype=np.uint8)
@@ -89,7 +89,9 @@ def _scene(tmp_path, *, qc_excludes_9=True):
     group.attrs["ome"] = multiscale_attrs(name="p", spacing=(40.0, 16.0, 16.0), factors=[(1, 1, 1)])
     record_checksums(prob)
     qc = tmp_path / "sections.tsv"
-    excluded = [z == 9 and qc_excludes_9 for z in range(SHAPE[0])]
+    excluded = [
+        (z == 9 and qc_excludes_9) or (z in (8, 9) and qc_excludes_8_9) for z in range(SHAPE[0])
+    ]
     pd.DataFrame({"z": range(SHAPE[0]), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
     scores = tmp_path / "scores.tsv"
     pd.DataFrame({"role": ["validation"], "threshold": [0.5]}).to_csv(scores, sep="\t", index=False)
@@ -216,10 +218,20 @@ def test_bad_truth_volumes_and_missing_test_tiles_are_refused(tmp_path):
         _run(tmp_path, tiles, inputs)
     tifffile.imwrite(wrong, np.zeros(SHAPE, np.float32))
     with pytest.raises(
-        TesseraInputError, match="instance volume must hold integers .0 background., got float32"
+        TesseraInputError, match=r"instance volume must hold integers \(0 background\), got float32"
     ):
         _run(tmp_path, tiles, inputs)
     del inputs["d1"]["instances"]
+    inputs["d1"]["labels"] = wrong
+    with pytest.raises(TesseraInputError, match="label volume must hold integers"):
+        _run(tmp_path, tiles, inputs)
+    (tmp_path / "qc").mkdir()
+    _, inputs = _scene(tmp_path / "qc", qc_excludes_8_9=True)
+    with pytest.raises(
+        TesseraInputError,
+        match="dataset d1: every held-out section was excluded by QC; nothing to score",
+    ):
+        _run(tmp_path, tiles, inputs)
     registry = pd.read_csv(tiles / "tiles.tsv", sep="\t")
     registry.loc[registry["role"] == "test", "role"] = "guard"
     registry.to_csv(tiles / "tiles.tsv", sep="\t", index=False)
@@ -245,6 +257,14 @@ def test_config_takes_instances_only_beside_labels(repo):
         match="key targets.mitochondria.annotations: 'labels' is a dependency of 'instances'",
     ):
         load_config(alone, schema)
+    both = copy.deepcopy(config)
+    both["targets"]["mitochondria"]["annotations"]["painted"] = {"points": "p.tsv", "masks": "m"}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key targets.mitochondria.annotations: .* should not be valid under "
+        r"\{'required': \['labels', 'painted'\]\}",
+    ):
+        load_config(both, schema)
     fixed = copy.deepcopy(good)
     fixed["targets"]["mitochondria"]["annotations"]["instances"] = "truth/instances.tif"
     with pytest.raises(

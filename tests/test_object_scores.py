@@ -134,9 +134,16 @@ def test_size_classes_equal_pandas_qcut_of_ranks():
 def test_bad_inputs_name_what_is_wrong():
     with pytest.raises(TesseraInputError, match="truth must hold integer labels, got float64"):
         object_scores(np.zeros((1, 2, 2)), np.zeros((1, 2, 2), int))
-    with pytest.raises(TesseraInputError, match=r"truth \(1, 2, 2\) and prediction \(1, 2, 3\)"):
+    with pytest.raises(
+        TesseraInputError, match=r"truth \(1, 2, 2\) and prediction \(1, 2, 3\) differ in shape"
+    ):
         object_scores(np.zeros((1, 2, 2), int), np.zeros((1, 2, 3), int))
-    with pytest.raises(TesseraInputError, match="must be in \\[0.5, 1\\) for one-to-one"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"the IoU threshold must be in \[0.5, 1\) for one-to-one matching, got 0.3",
+    ):
         object_scores(np.zeros((1, 2, 2), int), np.zeros((1, 2, 2), int), iou=0.3)
-    with pytest.raises(TesseraInputError, match="prediction holds negative labels"):
+    with pytest.raises(
+        TesseraInputError, match="prediction holds negative labels; object ids are >= 0"
+    ):
         object_scores(np.zeros((1, 2, 2), int), -np.ones((1, 2, 2), int))
