@@ -229,7 +229,8 @@ def test_bad_truth_volumes_and_missing_test_tiles_are_refused(tmp_path):
     _, inputs = _scene(tmp_path / "qc", qc_excludes_8_9=True)
     with pytest.raises(
         TesseraInputError,
-        match="dataset d1: every held-out section was excluded by QC; nothing to score",
+        match="no dataset has held-out sections to score the mito objects on "
+        r"\(d1: every held-out section was excluded by QC: not scored\)",
     ):
         _run(tmp_path, tiles, inputs)
     registry = pd.read_csv(tiles / "tiles.tsv", sep="\t")
@@ -237,8 +238,8 @@ def test_bad_truth_volumes_and_missing_test_tiles_are_refused(tmp_path):
     registry.to_csv(tiles / "tiles.tsv", sep="\t", index=False)
     with pytest.raises(
         TesseraInputError,
-        match="dataset d1 has no test tiles, so no held-out sections to score its objects on; "
-        "annotate more tiles or change split.fractions",
+        match=r"tiles: no dataset has held-out sections to score the mito objects on \(d1: no "
+        r"test tiles in this dataset: not scored\); annotate more tiles or change split.fractions",
     ):
         _run(tmp_path, tiles, inputs)
     assert not (tmp_path / "out" / "objects_3d.tsv").exists()
@@ -343,3 +344,15 @@ def test_held_out_sections_of_a_real_split_are_test_sections_apart_from_training
     # holds for every scored section, and every test tile's section is scored
     assert np.abs(sections[:, None] - train[None, :]).min() >= guard
     assert set(test.tolist()) <= set(sections.tolist())
+
+
+def test_a_dataset_without_test_tiles_gets_a_row_saying_so(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    inputs["d2"] = dict(inputs["d1"])  # no tile of the registry names d2
+    out = _run(tmp_path, tiles, inputs)
+    table = read_objects_3d(out / "objects_3d.tsv").set_index("dataset")
+    assert table.loc["d2", "note"] == "no test tiles in this dataset: not scored"
+    assert table.loc["d2", "sections"] == 0 and np.isnan(table.loc["d2", "object_f1"])
+    # the pooled row holds d1's objects only (by hand, as in the first test) and names d2
+    assert table.loc["all", "note"] == "not scored: d2"
+    assert (table.loc["all", "truth_objects"], table.loc["all", "matched_objects"]) == (3, 2)

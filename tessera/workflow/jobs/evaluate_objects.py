@@ -37,6 +37,33 @@ FROM_INSTANCES = "instance volume"
 FROM_COMPONENTS = "26-connected components of the labels"
 OBJECT_RULE = "3D objects on the held-out test sections, one-to-one at IoU > 0.5"
 CROPS_PER_CLASS = 4
+#: Columns of objects_3d.tsv, in order.
+COLUMNS = (
+    "target",
+    "dataset",
+    "truth_source",
+    "sections",
+    "first_section",
+    "last_section",
+    "excluded_sections",
+    "prediction_factors",
+    "truth_objects",
+    "predicted_objects",
+    "matched_objects",
+    "object_precision",
+    "object_recall",
+    "object_f1",
+    "count_error",
+    "matched_volume_error",
+    "matched_volume_bias",
+    "arand",
+    "rand_precision",
+    "rand_recall",
+    "voi_split",
+    "voi_merge",
+    "object_rule",
+    "note",
+)
 
 
 def _read_volume(path, shape, what):
@@ -63,13 +90,10 @@ def _truth(labels, instances, shape):
 
 
 def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excluded):
-    """Full-resolution sections scored for `dataset`, ascending."""
+    """(full-resolution sections scored for `dataset`, ascending; why none, or '')."""
     working = held_out_sections(registry, dataset, guard_sections=guard_sections)
     if not working:
-        raise TesseraInputError(
-            f"dataset {dataset} has no test tiles, so no held-out sections to score its objects "
-            "on; annotate more tiles or change split.fractions"
-        )
+        return [], "no test tiles in this dataset: not scored"
     skip = set(excluded)
     full = [
         z
@@ -77,11 +101,7 @@ def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excl
         for z in range(w * z_factor, min((w + 1) * z_factor, depth))
         if z not in skip
     ]
-    if not full:
-        raise TesseraInputError(
-            f"dataset {dataset}: every held-out section was excluded by QC; nothing to score"
-        )
-    return full
+    return full, "" if full else "every held-out section was excluded by QC: not scored"
 
 
 def _predicted_slab(objects_image, target, z0, z1, shape):
@@ -108,7 +128,7 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
     _, objects_info = open_image(files["objects"])
     z_factor = probability_fields(objects_info)["z_factor"]
     excluded = excluded_sections(files["qc"])
-    sections = _scored_sections(
+    sections, note = _scored_sections(
         registry,
         dataset,
         guard_sections=guard_sections,
@@ -116,6 +136,10 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
         depth=shape[0],
         excluded=excluded,
     )
+    if not sections:
+        row = {"dataset": dataset, "truth_source": source, "sections": 0, "excluded_sections": 0}
+        row["note"] = note
+        return {**row, "truth_objects": 0, "predicted_objects": 0, "matched_objects": 0}, None, None
     z0, z1 = sections[0], sections[-1] + 1
     truth = np.ascontiguousarray(truth[z0:z1])
     pred, factors = _predicted_slab(files["objects"], target, z0, z1, shape)
@@ -130,6 +154,7 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
         "excluded_sections": sum(1 for z in excluded if z0 <= z < z1),
         "prediction_factors": "x".join(str(f) for f in factors),
         **scores_from_overlaps(overlaps),
+        "note": "",
     }
     matches = match_table(overlaps)
     matches.insert(0, "dataset", dataset)
@@ -139,7 +164,8 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
 
 def _pooled_row(rows, matches):
     """The ``all`` row: objects and matched volumes pooled, partition errors averaged."""
-    table = pd.DataFrame(rows)
+    skipped = [r["dataset"] for r in rows if not r["sections"]]
+    table = pd.DataFrame([r for r in rows if r["sections"]])
     t, p = int(table["truth_objects"].sum()), int(table["predicted_objects"].sum())
     matched = matches[matches["matched"]]
     k = len(matched)
@@ -163,6 +189,7 @@ def _pooled_row(rows, matches):
             c: float(table[c].mean())
             for c in ("arand", "rand_precision", "rand_recall", "voi_split", "voi_merge")
         },
+        "note": f"not scored: {', '.join(skipped)}" if skipped else "",
     }
 
 
@@ -228,14 +255,23 @@ def evaluate_objects_job(
             dataset, inputs[dataset], registry, target=target, guard_sections=guard_sections
         )
         rows.append(row)
-        matches.append(match)
-        slabs[dataset] = slab
+        if match is not None:
+            matches.append(match)
+            slabs[dataset] = slab
+    if not matches:
+        raise TesseraInputError(
+            f"no dataset has held-out sections to score the {target} objects on ("
+            + "; ".join(f"{r['dataset']}: {r['note']}" for r in rows)
+            + "); annotate more tiles or change split.fractions",
+            source=annotations,
+        )
     matches = pd.concat(matches, ignore_index=True)
     table = pd.DataFrame([*rows, _pooled_row(rows, matches)])
     table.insert(0, "target", target)
     for column in ("first_section", "last_section"):  # none in the pooled row
         table[column] = table[column].astype("Int64")
     table["object_rule"] = OBJECT_RULE
+    table = table.reindex(columns=list(COLUMNS))
     write_objects_3d(out_table, table)
     with atomic_path(out_plot) as tmp:
         plot_object_scores(
