@@ -142,12 +142,19 @@ def overlap_counts(truth, pred, *, mask=None):
         if mask.shape != truth.shape:
             raise TesseraInputError(f"mask {mask.shape} and truth {truth.shape} differ in shape")
         truth, pred = truth[mask], pred[mask]
-    t = truth.ravel().astype(np.int64)
-    p = pred.ravel().astype(np.int64)
-    width = int(p.max()) + 1 if p.size else 1
-    codes, voxels = np.unique(t * width + p, return_counts=True)
+    t, p = truth.ravel(), pred.ravel()
+    if t.size == 0:
+        return pd.DataFrame({"truth": [], "pred": [], "voxels": []}, dtype=np.int64)
+    t_ids, t = np.unique(t, return_inverse=True)  # dense ids: pair codes cannot overflow
+    p_ids, p = np.unique(p, return_inverse=True)
+    width = len(p_ids)
+    codes, voxels = np.unique(t.astype(np.int64) * width + p, return_counts=True)
     return pd.DataFrame(
-        {"truth": codes // width, "pred": codes % width, "voxels": voxels.astype(np.int64)}
+        {
+            "truth": t_ids[codes // width].astype(np.int64),
+            "pred": p_ids[codes % width].astype(np.int64),
+            "voxels": voxels.astype(np.int64),
+        }
     )
 
 

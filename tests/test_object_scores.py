@@ -147,3 +147,14 @@ def test_bad_inputs_name_what_is_wrong():
         TesseraInputError, match="prediction holds negative labels; object ids are >= 0"
     ):
         object_scores(np.zeros((1, 2, 2), int), -np.ones((1, 2, 2), int))
+
+
+def test_huge_object_ids_give_the_hand_worked_scores():
+    # ids near the top of uint32 on both sides: pair codes of truth x prediction ids would pass
+    # 2**63 if formed from the raw ids; the scores must not depend on the ids' values
+    big = np.uint32(4_000_000_000)
+    truth = np.where(_volume(TRUTH_ROW) > 0, big + _volume(TRUTH_ROW), 0).astype(np.uint32)
+    pred = np.where(_volume(PRED_ROW) > 0, big + _volume(PRED_ROW), 0).astype(np.uint32)
+    s = object_scores(truth, pred)
+    assert (s["truth_objects"], s["predicted_objects"], s["matched_objects"]) == (4, 5, 3)
+    assert s["matched_volume_bias"] == pytest.approx((0 - 1 / 3 + 1 / 2) / 3)
