@@ -241,9 +241,9 @@ def partition_scores(overlaps):
     f = 2 * precision * recall / (precision + recall) if precision + recall else 0.0
     h_joint = _entropy_bits(n_ij)
     return {
-        "arand": 1.0 - f,
-        "rand_precision": precision,
-        "rand_recall": recall,
+        "arand": float(1.0 - f),
+        "rand_precision": float(precision),
+        "rand_recall": float(recall),
         "voi_split": h_joint - _entropy_bits(a),
         "voi_merge": h_joint - _entropy_bits(b),
     }
