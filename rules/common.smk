@@ -161,6 +161,40 @@ def annotated_pyramids(wildcards):
     return [f"results/{d}/pyramid/raw.ome.zarr" for d in annotated_ids(wildcards)]
 
 
+# Targets annotated with label volumes: their stitched objects are scored in 3D.
+LABELLED_TARGETS = [
+    t for t in BASE_TARGETS if "labels" in config["targets"][t]["annotations"]
+]
+LABELLED_TARGETS_PATTERN = "|".join(re.escape(t) for t in LABELLED_TARGETS) or "(?!)"
+
+
+def annotated_objects(wildcards):
+    return [
+        f"results/{d}/objects/{wildcards.target}.ome.zarr"
+        for d in annotated_ids(wildcards)
+    ]
+
+
+def annotated_label_volumes(wildcards):
+    pattern = target_settings(wildcards)["annotations"]["labels"]
+    return [pattern.format(dataset=d) for d in annotated_ids(wildcards)]
+
+
+def annotated_instances(wildcards):
+    pattern = target_settings(wildcards)["annotations"].get("instances")
+    if pattern is None:
+        return []
+    return [pattern.format(dataset=d) for d in annotated_ids(wildcards)]
+
+
+def annotated_qc_tables(wildcards):
+    return [f"results/{d}/qc/sections.tsv" for d in annotated_ids(wildcards)]
+
+
+def target_guard_sections(wildcards):
+    return target_settings(wildcards)["split"]["guard_sections"]
+
+
 def annotation_sets(wildcards):
     target = wildcards.target
     if _painted(target):
@@ -311,6 +345,9 @@ def study_results():
             "results/study/{target}/evaluation/summary.tsv", target=config["targets"]
         ),
         *expand("results/study/{target}/downsampling/curve.tsv", target=STUDY_TARGETS),
+        *expand(
+            "results/study/{target}/evaluation/objects_3d.tsv", target=LABELLED_TARGETS
+        ),
         *expand(
             "results/study/{target}/statistics/comparison.tsv", target=BASE_TARGETS
         ),
