@@ -41,6 +41,9 @@ rule methods:
         ladder=expand(
             "results/study/{target}/ladder/choice.tsv", target=LADDER_BASE_TARGETS
         ),
+        objects_3d=expand(
+            "results/study/{target}/evaluation/objects_3d.tsv", target=LABELLED_TARGETS
+        ),
     output:
         report(
             "results/study/methods.md",
@@ -60,6 +63,7 @@ rule methods:
         targets=BASE_TARGETS,
         dataset_ids=list(DATASETS.index),
         ladder_targets=LADDER_BASE_TARGETS,
+        objects_3d_targets=LABELLED_TARGETS,
         code=script_code("methods"),
     script:
         "../scripts/methods.py"

@@ -6,6 +6,7 @@ from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
 from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.object_table import read_object_settings
+from tessera.workflow.files.objects_3d import overall_objects_3d
 from tessera.workflow.files.qc_table import count_sections
 from tessera.workflow.files.scores import read_scores
 from tessera.workflow.versions import software_versions
@@ -20,6 +21,7 @@ def methods_job(
     checksums,
     qc_tables,
     out_path,
+    objects_3d=None,
     ladder=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
@@ -37,12 +39,13 @@ def methods_job(
     checksums : list of path
         The per-dataset checksum records.
     qc_tables : list of path
-        Section QC tables (to count excluded sections).
+        Section QC tables (to count the flagged and excluded sections, per reason).
+    objects_3d : dict, optional
+        Target → its 3D object scores table (targets annotated with label volumes).
     ladder : dict, optional
         Target → the ladder's choice table, for targets whose cascade size a ladder chose: the
         text states the chosen stages and levels, not the configured ones.
     """
-    section_counts = count_sections(qc_tables)
     targets = dict(config_sections["targets"])
     for t, path in (ladder or {}).items():
         stages, levels = chosen_rung(path)
@@ -60,9 +63,10 @@ def methods_job(
         scores={t: read_scores(scores[t]) for t in targets},
         object_settings=used,
         comparisons=tables,
-        section_counts=section_counts,
+        section_counts=count_sections(qc_tables),
         checksums=[pair for path in checksums for pair in read_input_checksums(path)],
         software=software_versions(),
+        objects_3d={t: overall_objects_3d(p) for t, p in (objects_3d or {}).items()},
     )
     write_text(out_path, text)
     return {"words": len(text.split())}
