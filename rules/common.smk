@@ -343,7 +343,10 @@ def cascade_models(wildcards):
     stages, levels = _rungs(target)[0]
     if _cascade_and_ladder(target)[1]["mode"] == "ladder":
         choice = checkpoints.choose_rung.get(target=target).output.choice
-        stages, levels = chosen_rung(choice)
+        try:
+            stages, levels = chosen_rung(choice)
+        except TesseraInputError as error:
+            raise WorkflowError(f"invalid input: {error}") from None
     spec = _target_spec(target, stages, levels)
     return [_model_path(target, n, levels) for n in nodes(spec)]
 
