@@ -20,6 +20,7 @@ rule ingest:
         spacing=dataset_spacing,
         chunks=config["ingest"]["chunks"],
         percentiles=config["ingest"]["percentiles"],
+        missing_sections=config["ingest"]["missing_sections"],
         code=script_code("ingest"),
     script:
         "../scripts/ingest.py"

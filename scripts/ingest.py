@@ -18,4 +18,5 @@ run_job(
     name=snakemake.wildcards.dataset,
     chunks=snakemake.params.chunks,
     percentiles=snakemake.params.percentiles,
+    missing_sections=snakemake.params.missing_sections,
 )

@@ -107,7 +107,7 @@ class _SliceFolder(_Source):
     def __init__(self, path, missing_sections):
         if not path.is_dir():
             raise TesseraInputError("expected a folder of per-section TIFF/PNG files", source=path)
-        names = [p.name for p in path.iterdir() if p.suffix.lower() in _SLICE_SUFFIXES]
+        names = sorted(p.name for p in path.iterdir() if p.suffix.lower() in _SLICE_SUFFIXES)
         if not names:
             raise TesseraInputError(
                 f"no section images ({', '.join(_SLICE_SUFFIXES)}) in the folder", source=path

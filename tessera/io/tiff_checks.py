@@ -129,7 +129,7 @@ def open_checked_tiff(path):
     >>> _ = f.write_bytes(f.read_bytes()[: f.stat().st_size // 2])  # cut short in copying
     >>> open_checked_tiff(f)  # doctest: +ELLIPSIS
     Traceback (most recent call last):
-    tessera.errors.TesseraInputError: ...s.tif: the page directories break off after ... readable page(s) (...); the shape description states 12 pages (truncated or damaged?)
+    tessera.errors.TesseraInputError: ...s.tif: page directories damaged or cut short after ... readable page(s) (...); the shape description states 12 pages (truncated or damaged?)
     """
     tif = None
     try:
@@ -161,24 +161,16 @@ def _check_whole(tif, path):
         raise TesseraInputError(
             f"expected greyscale pages (2D), first page has shape {first.shape}", source=path
         )
-    try:
-        with complaints_as_errors(path, what="reading the file's description"):
-            stated = expected_page_count(tif, first.shape[0] * first.shape[1])
-    except TesseraInputError as exc:
-        if exc.source is not None:
-            raise
-        raise TesseraInputError(str(exc), source=path) from None
-    except _READ_ERRORS as exc:
-        raise TesseraInputError(
-            f"cannot read the file's description: {type(exc).__name__}: {exc}", source=path
-        ) from None
+    stated, unclear = _stated_counts(tif, first.shape[0] * first.shape[1])
     said = "".join(f"; the {where} states {count} pages" for where, count in stated.items())
     if problem:
         raise TesseraInputError(
-            f"the page directories break off after {len(pages)} readable page(s) "
+            f"page directories damaged or cut short after {len(pages)} readable page(s) "
             f"({problem}){said} (truncated or damaged?)",
             source=path,
         )
+    if unclear:
+        raise TesseraInputError(f"cannot read the file's description: {unclear}", source=path)
     for where, count in stated.items():
         if count != len(pages):
             raise TesseraInputError(
@@ -192,9 +184,20 @@ def _check_whole(tif, path):
     _check_extents(tif, pages, path)
 
 
+def _stated_counts(tif, plane_size):
+    """:func:`expected_page_count` and the first complaint or error on the way (or None)."""
+    try:
+        with reader_complaints() as complaints:
+            stated = expected_page_count(tif, plane_size)
+    except (TesseraInputError, *_READ_ERRORS) as exc:
+        return {}, str(exc)
+    return stated, (complaints[0] if complaints else None)
+
+
 def _list_pages(tif):
     """The pages tifffile can reach, and the first complaint or error on the way (or None)."""
     pages, problem = [], None
+    tif.pages.cache = True  # parse each directory once: the pages checked are the pages read
     try:
         with reader_complaints() as complaints:
             for page in tif.pages:
@@ -243,13 +246,16 @@ def _check_extents(tif, pages, path):
                 source=path,
             )
     used.sort()
-    for (_, end_a, what_a), (start_b, _, what_b) in zip(used, used[1:], strict=False):
-        if start_b < end_a and "pixels" in what_a + what_b:
+    reach = None  # (end, what) of the range reaching furthest so far
+    for start, end, what in used:
+        if reach is not None and start < reach[0] and "pixels" in what + reach[1]:
             raise TesseraInputError(
-                f"{what_a} and {what_b} overlap in the file; expected separate bytes "
+                f"{reach[1]} and {what} overlap in the file; expected separate bytes "
                 "(damaged offsets?)",
                 source=path,
             )
+        if reach is None or end > reach[0]:
+            reach = (end, what)
 
 
 def read_checked_page(tif, z, path):

@@ -48,8 +48,7 @@ def read_missing_sections(extra, *, source=None):
         isinstance(z, int) and not isinstance(z, bool) and z >= 0 for z in value
     ):
         raise TesseraInputError(
-            f"metadata entry tessera.{_KEY} must be a list of section indices >= 0, "
-            f"got {value!r}",
+            f"metadata entry tessera.{_KEY} must be a list of section indices >= 0, got {value!r}",
             source=source,
         )
     return sorted(value)
