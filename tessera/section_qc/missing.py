@@ -30,6 +30,7 @@ def mark_missing(table, missing):
 
     Examples
     --------
+    >>> import pandas as pd
     >>> t = pd.DataFrame({"z": [0, 1, 2], "flag_flat": [False, True, False],
     ...                   "reason": ["", "flat", ""], "excluded": [False, True, False]})
     >>> out = mark_missing(t, [1])
