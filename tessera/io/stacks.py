@@ -227,13 +227,31 @@ def _check_mrc_header(path):
     )
 
 
+# What zarr raises for metadata or chunks it cannot parse (it validates with plain exceptions).
+_ZARR_ERRORS = (
+    OSError,
+    ValueError,
+    TypeError,
+    KeyError,
+    IndexError,
+    AttributeError,
+    RuntimeError,
+    zarr.errors.BaseZarrError,
+)
+
+
 class _Zarr(_Source):
     def __init__(self, path):
         self._path = path
         try:
-            node = zarr.open(store=str(path), mode="r")
-        except (FileNotFoundError, ValueError, zarr.errors.NodeTypeValidationError) as exc:
-            raise TesseraInputError(f"cannot open as zarr: {exc}", source=path) from None
+            with complaints_as_errors(path, what="cannot open as zarr", loggers=()):
+                node = zarr.open(store=str(path), mode="r")
+        except TesseraInputError:
+            raise
+        except _ZARR_ERRORS as exc:
+            raise TesseraInputError(
+                f"cannot open as zarr: {type(exc).__name__}: {exc}", source=path
+            ) from None
         if isinstance(node, zarr.Group):
             # input: checked where it carries records
             _, info = open_image(path, checksums="if-present")
@@ -243,6 +261,7 @@ class _Zarr(_Source):
             raise TesseraInputError(
                 f"expected a 3D z, y, x array, got shape {node.shape}", source=path
             )
+        _check_chunk_grid(node, path)
         self._arr = node
         self.shape = node.shape
         self.dtype = np.dtype(node.dtype)
@@ -250,10 +269,48 @@ class _Zarr(_Source):
     def _read(self, z):
         try:
             return self._arr[z]
-        except (OSError, ValueError, RuntimeError, TypeError, KeyError) as exc:
+        except _ZARR_ERRORS as exc:
             raise TesseraInputError(
                 f"cannot read section {z}: {type(exc).__name__}: {exc}", source=self._path
             ) from None
+
+
+def _check_chunk_grid(array, path):
+    """Refuse stored chunk files outside the grid of the declared shape (metadata too small).
+
+    A chunk that was never stored reads as the fill value (zarr spec), so a declared shape
+    larger than the data cannot be told from a sparse array; a smaller one shows as chunk files
+    beyond the grid, which zarr would silently ignore.
+    """
+    folder = Path(path) / array.path if array.path else Path(path)
+    if not folder.is_dir():
+        return
+    meta = array.metadata
+    if array.metadata.zarr_format == 3:
+        encoding = meta.chunk_key_encoding
+        separator, prefix = encoding.separator, ("c",) if encoding.name == "default" else ()
+    else:
+        separator, prefix = meta.dimension_separator or ".", ()
+    grid = (
+        array.cdata_shape
+        if array.shards is None
+        else tuple(-(-n // c) for n, c in zip(array.shape, array.shards, strict=True))
+    )
+    for file in folder.rglob("*"):
+        if not file.is_file():
+            continue
+        parts = file.relative_to(folder).as_posix().replace("/", separator).split(separator)
+        parts = parts[len(prefix) :] if tuple(parts[: len(prefix)]) == prefix else None
+        if not parts or len(parts) != len(grid) or not all(p.isdigit() for p in parts):
+            continue  # metadata or other files: not a chunk key
+        index = tuple(int(p) for p in parts)
+        if any(i >= n for i, n in zip(index, grid, strict=True)):
+            raise TesseraInputError(
+                f"chunk file {file.relative_to(folder).as_posix()} lies outside the declared "
+                f"shape {tuple(array.shape)} (chunk grid {tuple(grid)}): the metadata state "
+                "less than was written (damaged or edited?)",
+                source=path,
+            )
 
 
 _READERS = {"tiff_stack": _TiffStack, "slice_folder": _SliceFolder, "mrc": _Mrc, "zarr": _Zarr}

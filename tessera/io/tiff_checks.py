@@ -81,9 +81,17 @@ def expected_page_count(tif, plane_size):
         found["OME-XML"] = _ome_planes(tif.ome_metadata)
     if tif.is_shaped and tif.shaped_metadata:
         pixels = sum(math.prod(int(n) for n in m.get("shape", ())) for m in tif.shaped_metadata)
-        # not a whole number of planes: state it as a fraction so it cannot match
+        # not a whole number of planes: -1, so that it cannot match
         found["shape description"] = pixels // plane_size if pixels % plane_size == 0 else -1
     return found
+
+
+def _shaped_plane(tif):
+    """The (y, x) of the last two axes in tifffile's shape description, or None."""
+    if not (tif.is_shaped and tif.shaped_metadata):
+        return None
+    shape = tif.shaped_metadata[0].get("shape", ())
+    return tuple(int(n) for n in shape[-2:]) if len(shape) >= 2 else None
 
 
 def _ome_planes(xml):
@@ -162,6 +170,15 @@ def _check_whole(tif, path):
             f"expected greyscale pages (2D), first page has shape {first.shape}", source=path
         )
     stated, unclear = _stated_counts(tif, first.shape[0] * first.shape[1])
+    plane = None if unclear else _shaped_plane(tif)
+    if plane is not None and plane != tuple(first.shape):
+        # tifffile drops axes of length 1 when it writes, so a (z, y, 1) array is stored as
+        # z x y pages: read page by page it would come back transposed
+        raise TesseraInputError(
+            f"the shape description states sections of shape {plane}, the pages have shape "
+            f"{tuple(first.shape)}; expected one section per page",
+            source=path,
+        )
     said = "".join(f"; the {where} states {count} pages" for where, count in stated.items())
     if problem:
         raise TesseraInputError(
