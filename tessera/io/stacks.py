@@ -14,11 +14,12 @@ Formats (the names :func:`open_stack` takes):
 A reader holds one section at a time (memory maps and zarr arrays read only what is asked for).
 """
 
+import contextlib
+import struct
 from pathlib import Path
 
 import mrcfile
 import numpy as np
-import tifffile
 import zarr
 from PIL import Image
 
@@ -90,9 +91,14 @@ def _imagej_spacing(tif):
 
 
 def _read_plane(path):
-    with complaints_as_errors(path, what="cannot read section image", loggers=("tifffile", "PIL")):
-        if path.suffix.lower() != ".png":
-            return tifffile.imread(path)
+    if path.suffix.lower() != ".png":
+        with contextlib.closing(open_checked_tiff(path)) as tif:
+            if len(tif.pages) != 1:
+                raise TesseraInputError(
+                    f"expected one page per section file, found {len(tif.pages)}", source=path
+                )
+            return read_checked_page(tif, 0, path)
+    with complaints_as_errors(path, what="cannot read section image", loggers=("PIL",)):
         with Image.open(path) as im:
             if im.mode not in _GREY_MODES:
                 raise TesseraInputError(
@@ -135,7 +141,7 @@ class _SliceFolder(_Source):
             plane = _read_plane(f)
         except TesseraInputError:
             raise
-        except (OSError, ValueError, SyntaxError, tifffile.TiffFileError) as exc:
+        except (OSError, ValueError, SyntaxError, EOFError, struct.error) as exc:
             raise TesseraInputError(f"cannot read section image: {exc}", source=f) from None
         if plane.ndim != 2:
             raise TesseraInputError(
@@ -344,6 +350,7 @@ def open_stack(path, fmt, *, missing_sections="refuse"):
     Examples
     --------
     >>> import tempfile
+    >>> import tifffile
     >>> with tempfile.TemporaryDirectory() as folder:
     ...     tifffile.imwrite(Path(folder) / "s.tif", np.arange(30, dtype=np.uint16).reshape(2, 3, 5))
     ...     stack = open_stack(Path(folder) / "s.tif", "tiff_stack")

@@ -14,6 +14,7 @@ the file. :func:`open_checked_tiff` therefore checks, with every reader complain
 """
 
 import math
+import struct
 import xml.etree.ElementTree as ET
 
 import numpy as np
@@ -24,7 +25,18 @@ from tessera.io.damage import complaints_as_errors, reader_complaints
 
 __all__ = ["expected_page_count", "open_checked_tiff", "read_checked_page"]
 
-_READ_ERRORS = (OSError, ValueError, IndexError, KeyError, TypeError, tifffile.TiffFileError)
+# What tifffile raises on malformed structures besides its own error (found by fuzzing)
+_READ_ERRORS = (
+    OSError,
+    ValueError,
+    IndexError,
+    KeyError,
+    TypeError,
+    AttributeError,
+    ArithmeticError,
+    struct.error,
+    tifffile.TiffFileError,
+)
 # page fields that must agree with page 0 so that every page decodes the same way
 _LAYOUT = (
     "shape",
@@ -169,6 +181,12 @@ def _check_whole(tif, path):
         raise TesseraInputError(
             f"expected greyscale pages (2D), first page has shape {first.shape}", source=path
         )
+    if first.dtype is None:
+        raise TesseraInputError(
+            f"pixel type not readable: {first.bitspersample} bits per sample, sample format "
+            f"{first.sampleformat}",
+            source=path,
+        )
     stated, unclear = _stated_counts(tif, first.shape[0] * first.shape[1])
     plane = None if unclear else _shaped_plane(tif)
     if plane is not None and plane != tuple(first.shape):
@@ -238,10 +256,15 @@ def _check_layout(page, z, layout0, path):
 def _check_extents(tif, pages, path):
     size = path.stat().st_size
     fmt = tif.tiff
-    used = []  # (start, end, what)
+    used = [(0, 16 if fmt.is_bigtiff else 8, "the file header")]  # (start, end, what)
     for z, page in enumerate(pages):
         ifd_end = page.offset + fmt.tagnosize + len(page.tags) * fmt.tagsize + fmt.offsetsize
         used.append((page.offset, ifd_end, f"the directory of page {z}"))
+        used.extend(
+            (tag.valueoffset, tag.valueoffset + tag.valuebytecount, f"tag {tag.name} of page {z}")
+            for tag in page.tags.values()
+            if tag.valuebytecount > fmt.tagoffsetthreshold  # stored outside the directory
+        )
         need = page.size * page.dtype.itemsize if page.compression == 1 else 0
         total = 0
         for offset, count in zip(page.dataoffsets, page.databytecounts, strict=True):
