@@ -298,6 +298,7 @@ def test_tiff_losing_its_last_bytes_is_refused(tmp_path):
     [
         ("StripOffsets", "page0", "the pixels of page 0 and the pixels of page 2 overlap"),
         ("StripByteCounts", 100, "page 2 stores 100 bytes of pixels, expected at least 256"),
+        ("StripOffsets", "text", "tag ImageDescription of page 0 and the pixels of page 2 overlap"),
     ],
 )
 def test_tiff_with_damaged_offsets_is_refused(tmp_path, tag, value, message):
@@ -310,6 +311,8 @@ def test_tiff_with_damaged_offsets_is_refused(tmp_path, tag, value, message):
     with tifffile.TiffFile(src, mode="r+") as tif:
         if value == "page0":
             value = tif.pages[0].dataoffsets[0]
+        elif value == "text":  # pixels read from the description's text
+            value = tif.pages[0].tags["ImageDescription"].valueoffset
         tif.pages[2].tags[tag].overwrite(value)
     _refused(src, tmp_path, message)
 
