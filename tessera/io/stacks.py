@@ -24,14 +24,16 @@ import zarr
 from PIL import Image
 
 from tessera.errors import TesseraInputError
+from tessera.io.containers import open_container
 from tessera.io.damage import check_file_size, check_section, complaints_as_errors
 from tessera.io.omezarr import open_image
 from tessera.io.section_numbers import number_sections
 from tessera.io.tiff_checks import open_checked_tiff, read_checked_page
+from tessera.io.zarr_checks import check_chunk_grid
 
 __all__ = ["FORMATS", "MISSING_SECTIONS", "open_stack"]
 
-FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr")
+FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr", "hdf5", "n5")
 #: What to do with a section missing from a numbered slice folder.
 MISSING_SECTIONS = ("placeholder", "refuse")
 _SLICE_SUFFIXES = (".tif", ".tiff", ".png")
@@ -267,7 +269,7 @@ class _Zarr(_Source):
             raise TesseraInputError(
                 f"expected a 3D z, y, x array, got shape {node.shape}", source=path
             )
-        _check_chunk_grid(node, path)
+        check_chunk_grid(node, path)
         self._arr = node
         self.shape = node.shape
         self.dtype = np.dtype(node.dtype)
@@ -281,48 +283,10 @@ class _Zarr(_Source):
             ) from None
 
 
-def _check_chunk_grid(array, path):
-    """Refuse stored chunk files outside the grid of the declared shape (metadata too small).
-
-    A chunk that was never stored reads as the fill value (zarr spec), so a declared shape
-    larger than the data cannot be told from a sparse array; a smaller one shows as chunk files
-    beyond the grid, which zarr would silently ignore.
-    """
-    folder = Path(path) / array.path if array.path else Path(path)
-    if not folder.is_dir():
-        return
-    meta = array.metadata
-    if array.metadata.zarr_format == 3:
-        encoding = meta.chunk_key_encoding
-        separator, prefix = encoding.separator, ("c",) if encoding.name == "default" else ()
-    else:
-        separator, prefix = meta.dimension_separator or ".", ()
-    grid = (
-        array.cdata_shape
-        if array.shards is None
-        else tuple(-(-n // c) for n, c in zip(array.shape, array.shards, strict=True))
-    )
-    for file in folder.rglob("*"):
-        if not file.is_file():
-            continue
-        parts = file.relative_to(folder).as_posix().replace("/", separator).split(separator)
-        parts = parts[len(prefix) :] if tuple(parts[: len(prefix)]) == prefix else None
-        if not parts or len(parts) != len(grid) or not all(p.isdigit() for p in parts):
-            continue  # metadata or other files: not a chunk key
-        index = tuple(int(p) for p in parts)
-        if any(i >= n for i, n in zip(index, grid, strict=True)):
-            raise TesseraInputError(
-                f"chunk file {file.relative_to(folder).as_posix()} lies outside the declared "
-                f"shape {tuple(array.shape)} (chunk grid {tuple(grid)}): the metadata state "
-                "less than was written (damaged or edited?)",
-                source=path,
-            )
-
-
 _READERS = {"tiff_stack": _TiffStack, "slice_folder": _SliceFolder, "mrc": _Mrc, "zarr": _Zarr}
 
 
-def open_stack(path, fmt, *, missing_sections="refuse"):
+def open_stack(path, fmt, *, internal_path=None, missing_sections="refuse"):
     """Open an EM stack for reading one section at a time.
 
     Every reader checks the file whole before the first section is used (page counts against
@@ -334,8 +298,11 @@ def open_stack(path, fmt, *, missing_sections="refuse"):
     ----------
     path : str or Path
         File or folder of the stack.
-    fmt : {'tiff_stack', 'slice_folder', 'mrc', 'zarr'}
-        Its format (see the module docs).
+    fmt : {'tiff_stack', 'slice_folder', 'mrc', 'zarr', 'hdf5', 'n5'}
+        Its format (see the module docs; hdf5, n5 and plain zarr arrays are read by
+        :mod:`tessera.io.hdf5_stacks` and :mod:`tessera.io.chunked_stacks`).
+    internal_path : str, optional
+        The array inside an hdf5, n5 or zarr container (required for hdf5 and n5).
     missing_sections : {'refuse', 'placeholder'}, optional
         A slice folder whose numbering has gaps is refused, or opened with the missing
         sections listed in ``missing``.
@@ -359,7 +326,7 @@ def open_stack(path, fmt, *, missing_sections="refuse"):
     (2, 3, 5) uint16 [15, 16, 17, 18, 19]
     """
     path = Path(path)
-    if fmt not in _READERS:
+    if fmt not in FORMATS:
         raise TesseraInputError(
             f"unknown format {fmt!r}; expected one of {', '.join(FORMATS)}", source=path
         )
@@ -370,10 +337,12 @@ def open_stack(path, fmt, *, missing_sections="refuse"):
         )
     if not path.exists():
         raise TesseraInputError("file or folder not found", source=path)
-    if fmt == "slice_folder":
-        source = _SliceFolder(path, missing_sections)
-    else:
-        source = _READERS[fmt](path)
+    source = open_container(path, fmt, internal_path=internal_path)
+    if source is None:
+        if fmt == "slice_folder":
+            source = _SliceFolder(path, missing_sections)
+        else:
+            source = _READERS[fmt](path)
     problem = None
     if not np.issubdtype(source.dtype, np.integer) and not np.issubdtype(source.dtype, np.floating):
         problem = f"expected integer or float pixels, got {source.dtype}"
