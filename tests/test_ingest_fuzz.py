@@ -17,7 +17,9 @@ import json
 import tempfile
 import warnings
 from pathlib import Path
+from typing import NamedTuple
 
+import h5py
 import mrcfile
 import numpy as np
 import pytest
@@ -41,6 +43,17 @@ FUZZ = settings(
 )
 
 
+class Written(NamedTuple):
+    src: Path  # what the sheet names
+    fmt: str
+    damaged: Path  # the file the damage goes into
+    pixels: tuple | None  # byte range of uncompressed pixels in `damaged`, or None
+
+
+# the array inside a container format's file
+INTERNAL_PATH = {"hdf5": "volumes/raw"}
+
+
 def _volume(z=5, y=12, x=10, seed=0):
     return np.random.default_rng(seed).integers(0, 256, (z, y, x), dtype=np.uint8)
 
@@ -58,7 +71,7 @@ def write_tiff(folder, volume, **kwargs):
     with tifffile.TiffFile(path) as tif:
         starts = [p.dataoffsets[0] for p in tif.pages]
         pixels = (min(starts), max(starts) + volume[0].nbytes)
-    return path, "tiff_stack", path, pixels
+    return Written(path, "tiff_stack", path, pixels)
 
 
 def write_imagej_tiff(folder, volume):
@@ -70,7 +83,7 @@ def write_ome_tiff(folder, volume):
     tifffile.imwrite(path, volume, ome=True, photometric="minisblack")
     with tifffile.TiffFile(path) as tif:
         starts = [p.dataoffsets[0] for p in tif.pages]
-    return path, "tiff_stack", path, (min(starts), max(starts) + volume[0].nbytes)
+    return Written(path, "tiff_stack", path, (min(starts), max(starts) + volume[0].nbytes))
 
 
 def write_png_folder(folder, volume):
@@ -78,7 +91,7 @@ def write_png_folder(folder, volume):
     src.mkdir()
     for z, plane in enumerate(volume):
         Image.fromarray(plane).save(src / f"sec_{z:03d}.png")
-    return src, "slice_folder", src / f"sec_{len(volume) // 2:03d}.png", None
+    return Written(src, "slice_folder", src / f"sec_{len(volume) // 2:03d}.png", None)
 
 
 def write_tif_folder(folder, volume):
@@ -89,7 +102,7 @@ def write_tif_folder(folder, volume):
     damaged = src / f"sec_{len(volume) // 2:03d}.tif"
     with tifffile.TiffFile(damaged) as tif:
         start = tif.pages[0].dataoffsets[0]
-    return src, "slice_folder", damaged, (start, start + volume[0].nbytes)
+    return Written(src, "slice_folder", damaged, (start, start + volume[0].nbytes))
 
 
 def write_mrc(folder, volume):
@@ -99,7 +112,7 @@ def write_mrc(folder, volume):
     with mrcfile.new(path) as mrc, warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # mrcfile warns when writing NaN
         mrc.set_data(volume)
-    return path, "mrc", path, (1024, 1024 + volume.nbytes)
+    return Written(path, "mrc", path, (1024, 1024 + volume.nbytes))
 
 
 def write_zarr(folder, volume):
@@ -108,10 +121,19 @@ def write_zarr(folder, volume):
         store=str(path), shape=volume.shape, chunks=(2, 8, 8), dtype=volume.dtype
     )
     arr[:] = volume
-    return path, "zarr", path / "zarr.json", None
+    return Written(path, "zarr", path / "zarr.json", None)
+
+
+def write_hdf5(folder, volume):
+    # contiguous, uncompressed: h5py's default layout, pixels at the dataset's offset
+    path = folder / "stack.h5"
+    with h5py.File(path, "w") as f:
+        start = f.create_dataset(INTERNAL_PATH["hdf5"], data=volume).id.get_offset()
+    return Written(path, "hdf5", path, (start, start + volume.nbytes))
 
 
 WRITERS = {
+    "hdf5": write_hdf5,
     "tiff": write_tiff,
     "imagej_tiff": write_imagej_tiff,
     "ome_tiff": write_ome_tiff,
@@ -129,7 +151,14 @@ def refused_or_exact(path, fmt, expected):
     """
     out = Path(tempfile.mkdtemp()) / "out.ome.zarr"
     try:
-        ingest_job(path, out, fmt=fmt, spacing=SPACING, chunks=(1, 16, 16))
+        ingest_job(
+            path,
+            out,
+            fmt=fmt,
+            internal_path=INTERNAL_PATH.get(fmt),
+            spacing=SPACING,
+            chunks=(1, 16, 16),
+        )
     except TesseraInputError as exc:
         text = str(exc)
         assert "\n" not in text, text
@@ -202,13 +231,19 @@ def test_small_and_single_section_stacks_ingest_exactly(kind, z, y, x):
 
 
 @pytest.mark.parametrize("value", [np.nan, np.inf, -np.inf])
-@pytest.mark.parametrize("kind", ["tiff", "tif_folder", "mrc", "zarr"])
+@pytest.mark.parametrize("kind", ["tiff", "tif_folder", "mrc", "zarr", "hdf5"])
 def test_float_with_nan_or_infinity_is_refused(kind, value):
     volume = np.random.default_rng(1).normal(100.0, 20.0, (4, 8, 8)).astype(np.float32)
     volume[2, 3, 3] = value
     with _written(kind, volume) as (src, fmt, _, _):
         with pytest.raises(TesseraInputError, match=r"section 2 holds 1 NaN or infinite value"):
-            ingest_job(src, Path(tempfile.mkdtemp()) / "o.ome.zarr", fmt=fmt, spacing=SPACING)
+            ingest_job(
+                src,
+                Path(tempfile.mkdtemp()) / "o.ome.zarr",
+                fmt=fmt,
+                internal_path=INTERNAL_PATH.get(fmt),
+                spacing=SPACING,
+            )
 
 
 def _rgb_tiff(folder):
