@@ -221,22 +221,34 @@ def test_real_sstem_stack_ingests_with_its_voxel_size(tmp_path, vnc_sstem):
 # Damaged inputs. Every refusal is checked to leave the folder as it was: nothing is written.
 
 
-def _refused(src, tmp_path, match, **kwargs):
-    before = sorted(os.listdir(tmp_path))
+def _listing(folder):
+    return sorted(os.listdir(folder))
+
+
+def _ingest(src, tmp_path, **kwargs):
     kwargs = {"fmt": "tiff_stack", "spacing": SPACING, **kwargs}
-    with pytest.raises(TesseraInputError, match=match) as info:
-        ingest_job(src, tmp_path / "o.ome.zarr", **kwargs)
-    assert str(info.value).startswith(str(src))  # the message names the file first
-    assert "\n" not in str(info.value)  # one line
-    assert sorted(os.listdir(tmp_path)) == before
-    return str(info.value)
+    return ingest_job(src, tmp_path / "o.ome.zarr", **kwargs)
+
+
+def _one_line_and_nothing_written(info, src, tmp_path, before):
+    message = str(info.value)
+    assert message.startswith(str(src))  # the message names the file first
+    assert "\n" not in message  # one line
+    assert _listing(tmp_path) == before
+    return message
 
 
 @pytest.mark.parametrize(
     ("writer", "states"),
     [
-        ({"photometric": "minisblack"}, "the shape description states 12 pages"),
-        ({"imagej": True, "metadata": {"axes": "ZYX"}}, "the ImageJ description states 12 pages"),
+        (
+            {"photometric": "minisblack"},
+            "the shape description states 12 pages (truncated or damaged?)",
+        ),
+        (
+            {"imagej": True, "metadata": {"axes": "ZYX"}},
+            "the ImageJ description states 12 pages (truncated or damaged?)",
+        ),
     ],
 )
 def test_tiff_cut_short_in_copying_is_refused_not_shortened(tmp_path, writer, states):
@@ -246,12 +258,14 @@ def test_tiff_cut_short_in_copying_is_refused_not_shortened(tmp_path, writer, st
     volume = np.random.default_rng(1).integers(0, 256, (12, 32, 32), dtype=np.uint8)
     tifffile.imwrite(src, volume, **writer)
     src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
-    message = _refused(
-        src, tmp_path, r"page directories damaged or cut short after \d+ readable page"
-    )
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"page directories damaged or cut short after \d+ readable page"
+    ) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
     assert "invalid page offset" in message
     assert states in message
-    assert "(truncated or damaged?)" in message
 
 
 def test_ome_tiff_cut_short_is_refused(tmp_path):
@@ -259,7 +273,10 @@ def test_ome_tiff_cut_short_is_refused(tmp_path):
     src = tmp_path / "stack.ome.tif"
     tifffile.imwrite(src, np.zeros((12, 32, 32), np.uint8), ome=True, photometric="minisblack")
     src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
-    message = _refused(src, tmp_path, "cannot read as TIFF: ")
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match="cannot read as TIFF: ") as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
     assert "invalid value offset" in message
 
 
@@ -271,12 +288,14 @@ def test_tiff_losing_its_last_bytes_is_refused(tmp_path):
             tif.write(np.ones((16, 16), np.uint8), photometric="minisblack", contiguous=False)
     size = src.stat().st_size
     src.write_bytes(src.read_bytes()[:-10])
-    _refused(
-        src,
-        tmp_path,
-        rf"the pixels of page 3 end at byte {size}, the file has {size - 10} "
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=rf"the pixels of page 3 end at byte {size}, the file has {size - 10} "
         r"\(truncated or damaged\?\)",
-    )
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
     # The same cut into the tag values of the last directory.
     with tifffile.TiffWriter(src) as tif:
         for _ in range(4):
@@ -289,7 +308,12 @@ def test_tiff_losing_its_last_bytes_is_refused(tmp_path):
             metadata=None,
         )  # an out-of-line value written last
     src.write_bytes(src.read_bytes()[: src.stat().st_size - 16 * 16 - 20])
-    message = _refused(src, tmp_path, r"damaged or cut short after 5 readable page\(s\) \(")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"damaged or cut short after 5 readable page\(s\) \("
+    ) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
     assert "invalid value offset" in message
 
 
@@ -314,14 +338,20 @@ def test_tiff_with_damaged_offsets_is_refused(tmp_path, tag, value, message):
         elif value == "text":  # pixels read from the description's text
             value = tif.pages[0].tags["ImageDescription"].valueoffset
         tif.pages[2].tags[tag].overwrite(value)
-    _refused(src, tmp_path, message)
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def test_tiff_with_header_and_garbage_is_one_line(tmp_path):
     src = tmp_path / "stack.tif"
     garbage = np.random.default_rng(5).integers(0, 256, 4096, dtype=np.uint8).tobytes()
     src.write_bytes(b"II*\x00" + garbage)  # little-endian TIFF signature (TIFF 6.0, section 2)
-    _refused(src, tmp_path, "cannot read as TIFF: ")
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match="cannot read as TIFF: ") as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def test_tiff_page_count_must_match_its_imagej_description(tmp_path):
@@ -330,7 +360,12 @@ def test_tiff_page_count_must_match_its_imagej_description(tmp_path):
     src = tmp_path / "stack.tif"
     description = "ImageJ=1.54f\nimages=12\nslices=12\nunit=nm\nspacing=40.0\n"
     tifffile.imwrite(src, np.zeros((11, 16, 16), np.uint8), description=description, metadata=None)
-    _refused(src, tmp_path, "the ImageJ description states 12 pages, the file has 11")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="the ImageJ description states 12 pages, the file has 11"
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def test_tiff_pages_laid_out_differently_are_refused(tmp_path):
@@ -338,7 +373,12 @@ def test_tiff_pages_laid_out_differently_are_refused(tmp_path):
     with tifffile.TiffWriter(src) as tif:
         tif.write(np.zeros((16, 16), np.uint8), photometric="minisblack")
         tif.write(np.zeros((16, 16), np.uint16), photometric="minisblack")
-    _refused(src, tmp_path, "page 1 has dtype uint16, expected uint8 like page 0")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="page 1 has dtype uint16, expected uint8 like page 0"
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def _mrc(path, volume):
@@ -353,31 +393,36 @@ def test_mrc_cut_short_is_refused_against_its_header(tmp_path):
     _mrc(src, np.zeros((12, 8, 10), np.int16))
     assert src.stat().st_size == 1024 + 12 * 8 * 10 * 2
     src.write_bytes(src.read_bytes()[:2000])
-    _refused(
-        src,
-        tmp_path,
-        r"header says nx=10, ny=8, nz=12, mode 1 \(int16\) after 1024 \+ 0 header bytes: "
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"header says nx=10, ny=8, nz=12, mode 1 \(int16\) after 1024 \+ 0 header bytes: "
         r"expected 2944 bytes, the file has 2000 \(truncated or damaged\?\)",
-        fmt="mrc",
-    )
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def test_mrc_with_surplus_bytes_or_permuted_axes_is_refused(tmp_path):
     src = tmp_path / "stack.mrc"
     _mrc(src, np.zeros((3, 8, 10), np.int16))
     src.write_bytes(src.read_bytes() + bytes(7))
-    _refused(
-        src,
-        tmp_path,
-        r"expected 1504 bytes, the file has 1511 \(extra bytes: damaged\?\)",
-        fmt="mrc",
-    )
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"expected 1504 bytes, the file has 1511 \(extra bytes: damaged\?\)",
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
     _mrc(src, np.zeros((3, 8, 10), np.int16))
     with mrcfile.open(src, mode="r+") as mrc:
         mrc.header.mapc, mrc.header.mapr = 2, 1  # rows and columns swapped on disk
-    _refused(
-        src, tmp_path, r"axis order mapc, mapr, maps = \(2, 1, 3\), expected \(1, 2, 3\)", fmt="mrc"
-    )
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"axis order mapc, mapr, maps = \(2, 1, 3\), expected \(1, 2, 3\)"
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def test_float_stack_with_nan_is_refused(tmp_path):
@@ -385,9 +430,13 @@ def test_float_stack_with_nan_is_refused(tmp_path):
     volume = np.ones((3, 8, 8), np.float32)
     volume[2, 4, 4] = np.nan
     tifffile.imwrite(src, volume, photometric="minisblack")
-    _refused(
-        src, tmp_path, r"section 2 holds 1 NaN or infinite value\(s\); expected finite numbers"
-    )
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"section 2 holds 1 NaN or infinite value\(s\); expected finite numbers",
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
 def _numbered_folder(folder, volume, numbers, name="sec_{:04d}.tif"):
@@ -429,14 +478,14 @@ def test_lost_section_becomes_an_excluded_placeholder(tmp_path):
 def test_lost_section_is_refused_when_asked(tmp_path):
     volume = np.zeros((10, 8, 8), np.uint8)
     _numbered_folder(tmp_path / "slices", volume, [n for n in range(12) if n not in (3, 7)])
-    _refused(
-        tmp_path / "slices",
-        tmp_path,
-        r"section number\(s\) 3, 7 missing from the sequence 0\.\.11: expected 12 sections, "
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"section number\(s\) 3, 7 missing from the sequence 0\.\.11: expected 12 sections, "
         r"found 10 files; set ingest.missing_sections: placeholder",
-        fmt="slice_folder",
-        missing_sections="refuse",
-    )
+    ) as info:
+        _ingest(tmp_path / "slices", tmp_path, fmt="slice_folder", missing_sections="refuse")
+    _one_line_and_nothing_written(info, tmp_path / "slices", tmp_path, before)
 
 
 def test_numbering_by_a_constant_step_has_no_gap(tmp_path):
@@ -470,7 +519,10 @@ def test_ambiguous_section_numbers_are_refused(tmp_path, names, message):
             PILImage.fromarray(np.zeros((8, 8), np.uint8)).save(folder / name)
         else:
             tifffile.imwrite(folder / name, np.zeros((8, 8), np.uint8))
-    _refused(folder, tmp_path, message, fmt="slice_folder")
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _ingest(folder, tmp_path, fmt="slice_folder")
+    _one_line_and_nothing_written(info, folder, tmp_path, before)
 
 
 def test_palette_png_is_refused_not_read_as_indices(tmp_path):
@@ -480,4 +532,27 @@ def test_palette_png_is_refused_not_read_as_indices(tmp_path):
     folder.mkdir()
     for z in range(2):
         PILImage.fromarray(np.full((8, 8), 3 * z, np.uint8)).convert("P").save(folder / f"{z}.png")
-    _refused(folder, tmp_path, "expected a greyscale image .*, got mode P", fmt="slice_folder")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="expected a greyscale image .*, got mode P"
+    ) as info:
+        _ingest(folder, tmp_path, fmt="slice_folder")
+    _one_line_and_nothing_written(info, folder, tmp_path, before)
+
+
+def test_zarr_declaring_fewer_sections_than_written_is_refused(tmp_path):
+    # zarr would read the first 4 sections and ignore the chunk files of the fifth
+    src = tmp_path / "stack.zarr"
+    arr = zarr.create_array(store=str(src), shape=(5, 8, 8), chunks=(1, 8, 8), dtype="uint8")
+    arr[:] = 1
+    meta = json.loads((src / "zarr.json").read_text())
+    meta["shape"] = [4, 8, 8]
+    (src / "zarr.json").write_text(json.dumps(meta))
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"chunk file c/4/0/0 lies outside the declared shape \(4, 8, 8\) \(chunk grid "
+        r"\(4, 1, 1\)\): the metadata state less than was written",
+    ) as info:
+        _ingest(src, tmp_path, fmt="zarr")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
