@@ -325,7 +325,7 @@ def _table():
         (lambda: flag_sections(_table(), sharpness_z=-1), "sharpness_z"),
         (lambda: flag_sections(_table(), intensity_z=0), "intensity_z"),
         (lambda: flag_sections(_table(), max_shift_px=-2), "max_shift_px"),
-        (lambda: flag_sections(_table(), intensity_neighbours=1), "intensity_neighbours"),
+        (lambda: flag_sections(_table(), neighbours=1), "neighbours"),
         (lambda: flag_sections(_table(), exclude_flagged="yes"), "exclude_flagged"),
         (lambda: flag_sections(_table().iloc[::-1]), "increasing"),
         (lambda: plot_sections(_table().drop(columns="shift"), "x.png"), "shift"),
