@@ -323,6 +323,28 @@ def test_field_shift_matches_reference_for_a_whole_field_shift():
     assert field_shift(vol[0], vol[1]) == tuple(expected) == (-DRIFT[0], -DRIFT[1])
 
 
+def test_field_shift_ignores_one_structure_moving_alone():
+    # Neighbouring sections share a coarse texture but not their fine detail; a dark straight
+    # band (a membrane cut at a shallow angle) lies near one corner and moves 22 px across
+    # its length between them, while the rest of the field stays put.
+    size = 256
+    yy, xx = np.mgrid[0:size, 0:size]
+    common = textured((size, size), 1, sigma=3.0, contrast=20)
+
+    def section(band_offset, seed):
+        across = yy * 0.6 + xx * 0.8 - 60 - band_offset
+        band = np.where(np.abs(across) < 5, -60.0, 0.0)
+        return common + band + textured((size, size), seed, contrast=10)
+
+    ref, moving = section(0.0, 2), section(22.0, 3)
+    # reference library: whole-image phase correlation (skimage) locks onto the band
+    whole, _, _ = phase_cross_correlation(ref, moving)
+    assert np.hypot(*whole) > 20
+    assert np.hypot(*phase_shift(ref, moving, window=True)) > 20
+    # the median over tiles reports the field, which did not move
+    assert np.hypot(*field_shift(ref, moving)) <= 2
+
+
 def test_steady_drift_is_not_flagged():
     table = flag_sections(measure_sections(vol := drifting_stack()))
     assert (table["reason"] == "").all()
