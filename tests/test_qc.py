@@ -436,6 +436,13 @@ def _table():
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), upsample=0), "upsample"),
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), window=1), "window"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tiles=0), "tiles"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tile_fraction=0), "tile_fraction"),
+        (
+            lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tile_fraction=1.5),
+            "tile_fraction",
+        ),
         (lambda: measure_sections(np.zeros((8, 8))), "volume"),
         (lambda: measure_sections(np.zeros((0, 8, 8))), "volume"),
         (lambda: measure_sections([[[1]]]), "volume"),
