@@ -122,9 +122,10 @@ def flag_sections(
         A copy of `table` with boolean columns ``flag_flat``, ``flag_blurred``,
         ``flag_intensity``, ``flag_shift``, float columns ``sharpness_score`` and
         ``intensity_score`` (robust z-scores of the departures from the local trends), float
-        column ``shift_jump`` (pixels the shift departs from its local trend), text column ``reason`` (names of the raised
-        flags among ``flat``, ``blurred``, ``intensity``, ``shift``, joined by ``;``, empty if
-        none) and boolean column ``excluded``.
+        column ``shift_jump`` (pixels by which the shift departs from its local trend), text
+        column ``reason`` (names of the raised flags among ``flat``, ``blurred``,
+        ``intensity``, ``shift``, joined by ``;``, empty if none) and boolean column
+        ``excluded``.
 
     Notes
     -----
@@ -141,7 +142,10 @@ def flag_sections(
     region of resin, a ramp in contrast as a run starts), and with it the sharpness: judged
     against the median of the whole stack, the first and last sections of a sound stack would
     read as blurred. An edge section is judged against the neighbours it has, on one side,
-    with the slope they show. Defocus, by contrast, is a drop in one section.
+    with the slope they show. Defocus, by contrast, is a drop in one section. The trend is
+    robust to a few defective neighbours, not to many: a run of defocused sections longer
+    than about half of `neighbours` becomes the trend itself, and only its ends may be
+    flagged; look at the plot of a stack whose focus failed for a while.
 
     Sharpness is judged on a log scale because it is a variance and scales with the square
     of the contrast; a section is blurred when it falls far below its trend in robust units
