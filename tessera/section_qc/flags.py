@@ -143,9 +143,9 @@ def flag_sections(
     against the median of the whole stack, the first and last sections of a sound stack would
     read as blurred. An edge section is judged against the neighbours it has, on one side,
     with the slope they show. Defocus, by contrast, is a drop in one section. The trend is
-    robust to a few defective neighbours, not to many: a run of defocused sections longer
-    than about half of `neighbours` becomes the trend itself, and only its ends may be
-    flagged; look at the plot of a stack whose focus failed for a while.
+    robust to a few defective neighbours, not to many: a run of defocused sections nearly as
+    long as `neighbours` becomes the trend itself, and only its ends are flagged; look at the
+    plot of a stack whose focus failed for a while.
 
     Sharpness is judged on a log scale because it is a variance and scales with the square
     of the contrast; a section is blurred when it falls far below its trend in robust units
