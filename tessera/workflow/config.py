@@ -292,7 +292,7 @@ def _check_inside(value, base_dir, roots, *, source):
 def config_paths(config, dataset_ids):
     """Every file or folder path the config names besides the sheet, with its key.
 
-    ``annotations.labels`` templates are filled in for every dataset id, so a per-dataset link
+    ``annotations.labels`` and ``instances`` templates are filled in for every dataset id, so a per-dataset link
     that leads elsewhere is seen.
 
     Examples
@@ -306,8 +306,10 @@ def config_paths(config, dataset_ids):
     for name, target in (config.get("targets") or {}).items():
         annotations = target.get("annotations") or {}
         key = f"targets.{name}.annotations"
-        if "labels" in annotations:
-            out += [(f"{key}.labels", annotations["labels"].format(dataset=d)) for d in dataset_ids]
+        for field in ("labels", "instances"):
+            if field in annotations:
+                template = annotations[field]
+                out += [(f"{key}.{field}", template.format(dataset=d)) for d in dataset_ids]
         for field in ("points", "masks"):
             if field in (annotations.get("painted") or {}):
                 out.append((f"{key}.painted.{field}", annotations["painted"][field]))
