@@ -358,7 +358,7 @@ def split_components(
         mine = comp_lut[np.asarray(provisional[box])] == c
         if int(c) in cavities:
             mine[tuple((cavities[int(c)] - lo).T)] = True
-        pieces = split_touching(mine, **split)
+        pieces = split_touching(mine, origin=tuple(int(v) for v in lo), **split)
         if pieces.max() < 2:
             continue
         parts[int(c)] = (_piece_stats(pieces, lo, shape, excluded), next_piece)

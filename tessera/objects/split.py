@@ -12,8 +12,6 @@ component whose distance never exceeds `min_depth_nm` stays whole.
 
 import numpy as np
 from scipy import ndimage
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
 
@@ -55,15 +53,41 @@ def split_seeds(distance, *, min_depth_nm, structure):
     >>> split_seeds(d, min_depth_nm=2, structure=np.ones((3, 3, 3), bool))[0, 0].tolist()
     [0, 1, 0, 0, 0]
 
-    Maxima of equal height (a symmetric dumbbell) are kept by the h-maxima transform alone;
-    :func:`split_touching` joins them again when their saddle is too shallow.
+    Maxima of equal height are both kept whatever their saddle (neither is the higher one):
+    :func:`split_touching` adds :func:`tie_breaker` to the distance first.
     """
     peaks = h_maxima(distance, distance.dtype.type(min_depth_nm), footprint=structure)
     seeds, _ = ndimage.label(peaks, structure)
     return seeds.astype(np.int32)
 
 
-def split_touching(mask, *, spacing, min_depth_nm, structure):
+def tie_breaker(shape, origin=(0, 0, 0)):
+    """A tiny height (< 0.001 nm) added to the distance so that no two maxima are equal.
+
+    Distances on a voxel grid take few values, so plateaus and equal maxima are common (a
+    symmetric dumbbell has two); of two equal maxima neither would be the higher one, and both
+    would count whatever the saddle between them. The added height is a fixed function of the
+    voxel's position in the volume (the fractional part of a low-discrepancy sequence,
+    ``z / g + y / g**2 + x / g**3`` with g**4 = g + 1), the same whatever
+    box or block the voxel is read in.
+
+    Examples
+    --------
+    >>> t = tie_breaker((2, 3, 4), origin=(5, 0, 7))
+    >>> bool((t >= 0).all() and (t < 1e-3).all()), len(np.unique(t)) == t.size
+    (True, True)
+    >>> bool(tie_breaker((1, 1, 1), origin=(5, 2, 9))[0, 0, 0] == t[0, 2, 2])
+    True
+    """
+    # the root of x**4 = x + 1 (low-discrepancy sequences in 3D): 1, 1/g, 1/g**2 and 1/g**3
+    # are linearly independent over the rationals, so no two voxels get the same phase
+    g = 1.2207440846057596
+    z, y, x = (np.arange(n, dtype=np.float64) + o for n, o in zip(shape, origin, strict=True))
+    phase = z[:, None, None] / g + y[None, :, None] / g**2 + x[None, None, :] / g**3
+    return (phase % 1.0) * 1e-3
+
+
+def split_touching(mask, *, spacing, min_depth_nm, structure, origin=(0, 0, 0)):
     """Split one object (a connected mask) into the organelles it holds.
 
     Parameters
@@ -77,6 +101,8 @@ def split_touching(mask, *, spacing, min_depth_nm, structure):
         See :func:`split_seeds`.
     structure : ndarray of bool
         Neighbourhood of the objects' connectivity; each piece is connected under it.
+    origin : (int, int, int)
+        Position of the box's first voxel in the volume (for :func:`tie_breaker`).
 
     Returns
     -------
@@ -92,54 +118,15 @@ def split_touching(mask, *, spacing, min_depth_nm, structure):
     >>> int(pieces.max()), int(pieces[0, 4, 3]), int(pieces[0, 4, 12])
     (2, 1, 2)
     """
-    distance = ndimage.distance_transform_edt(mask, sampling=spacing).astype(np.float32)
+    distance = ndimage.distance_transform_edt(mask, sampling=spacing)
+    distance += tie_breaker(mask.shape, origin)
     seeds = split_seeds(distance, min_depth_nm=min_depth_nm, structure=structure)
     if seeds.max() <= 1:
         return mask.astype(np.int32)
     pieces = watershed(-distance, seeds, mask=mask, connectivity=structure)
-    pieces = _join_shallow(pieces, distance, min_depth_nm=min_depth_nm, structure=structure)
     # number the pieces in raster order of their first voxel, as the objects are numbered
     ids, first = np.unique(pieces.ravel(), return_index=True)
     ids, first = ids[ids > 0], first[ids > 0]
     lut = np.zeros(int(pieces.max()) + 1, np.int32)
     lut[ids[np.argsort(first, kind="stable")]] = np.arange(1, len(ids) + 1, dtype=np.int32)
     return lut[pieces]
-
-
-def _neighbour_offsets(structure):
-    """One offset of each pair of opposite neighbours of the structure (z, y, x)."""
-    centre = np.array(structure.shape) // 2
-    offsets = np.argwhere(structure) - centre
-    return [o for o in offsets if tuple(o) > (0, 0, 0)]
-
-
-def _join_shallow(pieces, distance, *, min_depth_nm, structure):
-    """Join neighbouring pieces whose saddle lies less than `min_depth_nm` below the lower peak.
-
-    The h-maxima transform already drops every maximum with a higher one less than
-    `min_depth_nm` above their saddle; what it keeps and this joins are maxima of equal height
-    (neither is the higher one). The saddle of two pieces is the highest distance at which
-    they touch (the larger of the two sides' minimum over each touching pair of voxels)."""
-    n = int(pieces.max())
-    peaks = ndimage.maximum(distance, pieces, np.arange(1, n + 1))
-    pairs, levels = [], []
-    for offset in _neighbour_offsets(structure):
-        here = tuple(
-            slice(max(0, -k), s - max(0, k)) for k, s in zip(offset, pieces.shape, strict=True)
-        )
-        there = tuple(
-            slice(max(0, k), s - max(0, -k)) for k, s in zip(offset, pieces.shape, strict=True)
-        )
-        a, b = pieces[here], pieces[there]
-        touch = (a > 0) & (b > 0) & (a != b)
-        pairs.append(np.stack([a[touch], b[touch]], 1))
-        levels.append(np.minimum(distance[here][touch], distance[there][touch]))
-    pairs, levels = np.concatenate(pairs), np.concatenate(levels)
-    lower = np.minimum(peaks[pairs[:, 0] - 1], peaks[pairs[:, 1] - 1])
-    # a pair is joined if at its highest touching point it is shallow: lower - max(level) < h
-    shallow = pairs[lower - levels < min_depth_nm] - 1
-    if not len(shallow):
-        return pieces
-    graph = coo_matrix((np.ones(len(shallow), np.int8), tuple(shallow.T)), shape=(n, n))
-    _, joined = connected_components(graph, directed=False)
-    return np.concatenate([[0], joined + 1])[pieces].astype(np.int32)
