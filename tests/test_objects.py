@@ -263,8 +263,8 @@ def test_config_refuses_low_above_high(repo):
         load_config(config, repo / "config" / "schemas" / "config.schema.yaml")
 
 
-def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
-    p = smooth_field(5, shape=(6, 40, 48))
+def probability_inputs(tmp_path, p):
+    """A stitched probability map (uint8, two levels, checksummed), QC table and scores."""
     image = tmp_path / "probability.ome.zarr"
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
     factors = [(1, 1, 1), (1, 2, 2)]
@@ -279,13 +279,18 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     group.create_array(name="1", data=stored[:, ::2, ::2], chunks=(1, 16, 16), dimension_names=AXES)
     record_checksums(image)  # as stitch does: readers refuse stores without records
     qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(6), "excluded": [False, False, True, False, False, False]}).to_csv(
-        qc, sep="\t", index=False
-    )
+    excluded = np.arange(p.shape[0]) == 2
+    pd.DataFrame({"z": range(p.shape[0]), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
     scores = tmp_path / "scores.tsv"
     pd.DataFrame({"role": ["validation", "test"], "threshold": [0.62, 0.62]}).to_csv(
         scores, sep="\t", index=False
     )
+    return image, qc, scores, stored
+
+
+def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
+    p = smooth_field(5, shape=(6, 40, 48))
+    image, qc, scores, stored = probability_inputs(tmp_path, p)
     settings = dict(
         high=None,
         low=None,
@@ -495,3 +500,37 @@ def test_config_refuses_bad_split_settings_naming_the_key(repo):
     )
     loaded = load_config(config({}), schema)["targets"]["mito"]["objects"]
     assert loaded["split"] is True and loaded["split_min_depth_nm"] == 40
+
+
+@pytest.mark.parametrize("split", [False, True])
+def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split):
+    # The config's off switch reaches the library: off = today's labels (scipy reference), on =
+    # the scikit-image watershed reference; the settings file records both keys.
+    p = smooth_field(3)
+    image, qc, scores, stored = probability_inputs(tmp_path, p)
+    settings = dict(
+        high=0.71,  # no stored value k / 255 equals a threshold (>= and > then agree)
+        low=0.61,
+        open_radius_nm=0,
+        close_radius_nm=0,
+        fill_holes=True,
+        min_volume_um3=0,
+        max_volume_um3=None,
+        connectivity=26,
+        # 8 blocks hold the volume: every object's cavities are filled, as in the reference
+        block=[8, 32, 64],
+        bridge_excluded=False,
+        split=split,
+        split_min_depth_nm=20,
+    )
+    out = tmp_path / "objects.ome.zarr"
+    args = (image, qc, scores, out, tmp_path / "o.tsv", tmp_path / "o.json")
+    objects_job(*args, target="mito", settings=settings)
+    labels = zarr.open_group(store=str(out), mode="r")["labels/mito/0"][:]
+    values = stored.astype(np.float32) / 255
+    expected = (split_reference if split else reference)(
+        values, high=0.71, low=0.61, **({"depth": 20} if split else {})
+    )
+    np.testing.assert_array_equal(labels, expected)
+    used = json.loads((tmp_path / "o.json").read_text())
+    assert used["split"] is split and used["split_min_depth_nm"] == 20
