@@ -453,16 +453,21 @@ def test_split_switched_off_gives_todays_bytes():
 
 
 def test_objects_too_large_to_split_stay_whole_and_flagged():
+    # The limit counts the voxels of the object's bounding box with one voxel of margin (where
+    # the volume allows): at the box's size it is split, one voxel below it stays whole, flagged.
+    spacing = (40.0, 10.0, 10.0)
     p = balls_volume(
-        [((400.0, 300.0, 250.0), 200.0), ((400.0, 300.0, 600.0), 200.0)],
-        (21, 61, 91),
-        (40.0, 10.0, 10.0),
+        [((400.0, 300.0, 250.0), 200.0), ((400.0, 300.0, 600.0), 200.0)], (21, 61, 91), spacing
     )
-    kwargs = dict(spacing=(40.0, 10.0, 10.0), high=0.5, block=(8, 32, 32), split_min_depth_nm=40)
-    table = label_objects(p, np.zeros(p.shape, np.uint32), **kwargs)
+    kwargs = dict(spacing=spacing, high=0.5, block=(8, 32, 32), split_min_depth_nm=40)
+    whole = label_objects(p, np.zeros(p.shape, np.uint32), **kwargs | {"split_min_depth_nm": None})
+    lo = whole[["z0", "y0", "x0"]].to_numpy()[0] - 1
+    hi = whole[["z1", "y1", "x1"]].to_numpy()[0] + 1
+    box = int(np.prod(np.minimum(hi, p.shape) - np.maximum(lo, 0)))
+    table = label_objects(p, np.zeros(p.shape, np.uint32), split_max_voxels=box, **kwargs)
     assert len(table) == 2 and table["split_checked"].all()
     out = np.zeros(p.shape, np.uint32)
-    table = label_objects(p, out, split_max_voxels=1000, **kwargs)
+    table = label_objects(p, out, split_max_voxels=box - 1, **kwargs)
     assert len(table) == 1 and not table["split_checked"].any()
     np.testing.assert_array_equal(out > 0, p > 0.5)
 

@@ -142,7 +142,8 @@ def label_objects(
         at least this far (nm) above their saddle with a higher one. None = no splitting (the
         table then has no ``split_checked`` column).
     split_max_voxels : int, optional
-        Objects whose bounding box holds more voxels are left whole and flagged
+        Objects whose bounding box (with one voxel of margin where the volume allows) holds
+        more voxels are left whole and flagged
         (``split_checked`` False). Default :data:`SPLIT_MAX_VOXELS`, a fixed number, so that
         which objects are split never depends on the block size.
     scale : float
