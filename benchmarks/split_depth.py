@@ -16,8 +16,8 @@ Usage: python benchmarks/split_depth.py [--quick]
 import sys
 
 import numpy as np
-
 from _common import report
+
 from tessera.objects.label import label_objects
 from tessera_demo.render import render_dataset
 
