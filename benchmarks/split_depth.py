@@ -6,9 +6,11 @@ in-plane, 40 nm sections). The true mitochondria (clusters of touching ones incl
 turned into a mask, filtered like the demo config does (opening 16 nm, min 0.02 um^3) and split
 with each candidate depth; the objects are matched one to one with the true instances at
 IoU >= 0.5 (a common criterion in instance segmentation; above 0.5 a match is unique) and
-scored by F1. The default is the depth with the best mean F1 (the larger on a tie: fewer
-spurious splits). A true mask is cleaner than a predicted one, so the pipeline's own evaluation
-against held-out annotation remains the check on real data.
+scored by F1. The default is the largest depth whose mean F1 is within 0.02 of the best (the
+tolerance the downsampling study uses): a predicted mask has a rougher surface than a true one,
+and rough surfaces raise spurious maxima of small depth, so of near-equal depths the deeper is
+the safer. The pipeline's own evaluation against held-out annotation remains the check on real
+data.
 
 Usage: python benchmarks/split_depth.py [--quick]
 """
@@ -73,12 +75,13 @@ def main(quick=False):
         name = "no split" if depth is None else f"depth {depth} nm"
         rows += [(f"{name}: F1 at IoU 0.5", f1, ""), (f"{name}: objects / true", ratio, "")]
         figures["depths"][str(depth)] = {"f1": f1, "objects_per_true": ratio}
-    best = max(
-        (d for d in DEPTHS if d is not None),
-        key=lambda d: (round(figures["depths"][str(d)]["f1"], 3), d),
-    )
+    depths = [d for d in DEPTHS if d is not None]
+    top = max(figures["depths"][str(d)]["f1"] for d in depths)
+    figures["best_f1_nm"] = max(depths, key=lambda d: figures["depths"][str(d)]["f1"])
+    best = max(d for d in depths if figures["depths"][str(d)]["f1"] >= top - 0.02)
     figures["chosen_nm"] = best
-    rows.append(("chosen split_min_depth_nm", best, "nm"))
+    rows.append(("best F1 at", figures["best_f1_nm"], "nm"))
+    rows.append(("chosen split_min_depth_nm (within 0.02 of the best F1)", best, "nm"))
     report("split_depth", rows, figures)
 
 
