@@ -13,9 +13,11 @@ from tessera.objects.depth_limit import split_depth_problem
 from tessera.objects.morphology import ball, connectivity_structure, reach
 from tessera.objects.split import check_split_depth
 
-#: Largest bounding box (voxels) an object is split in: 2**25 voxels need about 1.3 GB for
-#: the distance, seeds and watershed of one box (about 40 bytes a voxel).
-SPLIT_MAX_VOXELS = 2**25
+#: Largest bounding box (voxels) an object is split in. Splitting one box peaks at about 125
+#: bytes a voxel (distance, tie-breaker, h-maxima reconstruction and watershed, measured with
+#: scikit-image 0.26), so 2**23 voxels (e.g. 64 x 362 x 362) need about 1 GB on top of the
+#: rest of the objects job.
+SPLIT_MAX_VOXELS = 2**23
 
 #: Columns of the object table, in order.
 OBJECT_COLUMNS = (
