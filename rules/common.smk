@@ -11,6 +11,8 @@ from snakemake.exceptions import WorkflowError
 
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.workflow.config import (
+    check_config_paths,
+    check_reference_condition,
     expand_variants,
     load_config,
     load_datasets,
@@ -38,6 +40,11 @@ try:
         generated_dir=DEMO_DIR if "demo" in config else None,
         data_roots=config["data_roots"],
     )
+    # label volumes, points sheets and painted masks are held to the same roots
+    check_config_paths(config, DATASETS.index)
+    check_reference_condition(
+        config["statistics"]["reference_condition"], list(DATASETS["condition"])
+    )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 
@@ -59,6 +66,10 @@ def dataset_path(wildcards):
 
 def dataset_format(wildcards):
     return DATASETS.loc[wildcards.dataset, "format"]
+
+
+def dataset_internal_path(wildcards):
+    return DATASETS.loc[wildcards.dataset].get("internal_path")
 
 
 def dataset_condition(wildcards):
@@ -148,6 +159,40 @@ def annotated_ids(wildcards):
 
 def annotated_pyramids(wildcards):
     return [f"results/{d}/pyramid/raw.ome.zarr" for d in annotated_ids(wildcards)]
+
+
+# Targets annotated with label volumes: their stitched objects are scored in 3D.
+LABELLED_TARGETS = [
+    t for t in BASE_TARGETS if "labels" in config["targets"][t]["annotations"]
+]
+LABELLED_TARGETS_PATTERN = "|".join(re.escape(t) for t in LABELLED_TARGETS) or "(?!)"
+
+
+def annotated_objects(wildcards):
+    return [
+        f"results/{d}/objects/{wildcards.target}.ome.zarr"
+        for d in annotated_ids(wildcards)
+    ]
+
+
+def annotated_label_volumes(wildcards):
+    pattern = target_settings(wildcards)["annotations"]["labels"]
+    return [pattern.format(dataset=d) for d in annotated_ids(wildcards)]
+
+
+def annotated_instances(wildcards):
+    pattern = target_settings(wildcards)["annotations"].get("instances")
+    if pattern is None:
+        return []
+    return [pattern.format(dataset=d) for d in annotated_ids(wildcards)]
+
+
+def annotated_qc_tables(wildcards):
+    return [f"results/{d}/qc/sections.tsv" for d in annotated_ids(wildcards)]
+
+
+def target_guard_sections(wildcards):
+    return target_settings(wildcards)["split"]["guard_sections"]
 
 
 def annotation_sets(wildcards):
@@ -300,6 +345,9 @@ def study_results():
             "results/study/{target}/evaluation/summary.tsv", target=config["targets"]
         ),
         *expand("results/study/{target}/downsampling/curve.tsv", target=STUDY_TARGETS),
+        *expand(
+            "results/study/{target}/evaluation/objects_3d.tsv", target=LABELLED_TARGETS
+        ),
         *expand(
             "results/study/{target}/statistics/comparison.tsv", target=BASE_TARGETS
         ),

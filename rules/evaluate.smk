@@ -47,3 +47,51 @@ rule evaluate:
         code=script_code("evaluate"),
     script:
         "../scripts/evaluate.py"
+
+
+# The stitched objects scored in 3D on each dataset's held-out test sections, against the
+# instance volume or the connected components of the label volume (targets with labels only).
+
+
+rule evaluate_objects:
+    input:
+        tiles="results/study/{target}/tiles",
+        objects=annotated_objects,
+        images=annotated_pyramids,
+        labels=annotated_label_volumes,
+        instances=annotated_instances,
+        qc=annotated_qc_tables,
+    output:
+        table=report(
+            "results/study/{target}/evaluation/objects_3d.tsv",
+            caption="../report/objects_3d_table.rst",
+            category="Accuracy",
+            labels={"target": "{target}", "item": "objects in 3D"},
+        ),
+        plot=report(
+            "results/study/{target}/evaluation/objects_3d.png",
+            caption="../report/objects_3d.rst",
+            category="Accuracy",
+            labels={"target": "{target}", "item": "objects in 3D, chart"},
+        ),
+        crops=report(
+            "results/study/{target}/evaluation/objects_3d_crops.png",
+            caption="../report/objects_3d_crops.rst",
+            category="Accuracy",
+            labels={"target": "{target}", "item": "objects in 3D, crops"},
+        ),
+    log:
+        "logs/evaluate_objects/{target}.log",
+    wildcard_constraints:
+        target=LABELLED_TARGETS_PATTERN,
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(4000),
+        runtime=scaled_by_attempt(30),
+    params:
+        datasets=annotated_ids,
+        guard_sections=target_guard_sections,
+        code=script_code("evaluate_objects"),
+    script:
+        "../scripts/evaluate_objects.py"

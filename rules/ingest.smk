@@ -1,4 +1,4 @@
-# Raw stack (TIFF, PNG slices, MRC, zarr) -> single-level OME-Zarr of uint8 sections.
+# Raw stack (TIFF, PNG slices, MRC, zarr, HDF5, N5) -> single-level OME-Zarr of uint8 sections.
 
 
 rule ingest:
@@ -17,9 +17,11 @@ rule ingest:
         runtime=scaled_by_attempt(60),
     params:
         format=dataset_format,
+        internal_path=dataset_internal_path,
         spacing=dataset_spacing,
         chunks=config["ingest"]["chunks"],
         percentiles=config["ingest"]["percentiles"],
+        missing_chunks=config["ingest"]["missing_chunks"],
         code=script_code("ingest"),
     script:
         "../scripts/ingest.py"

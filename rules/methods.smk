@@ -38,6 +38,9 @@ rule methods:
             "results/{dataset}/audit/inputs.sha256", dataset=DATASETS.index
         ),
         qc=expand("results/{dataset}/qc/sections.tsv", dataset=DATASETS.index),
+        objects_3d=expand(
+            "results/study/{target}/evaluation/objects_3d.tsv", target=LABELLED_TARGETS
+        ),
     output:
         report(
             "results/study/methods.md",
@@ -56,6 +59,7 @@ rule methods:
         datasets=dataset_groups,
         targets=BASE_TARGETS,
         dataset_ids=list(DATASETS.index),
+        objects_3d_targets=LABELLED_TARGETS,
         code=script_code("methods"),
     script:
         "../scripts/methods.py"

@@ -14,6 +14,12 @@ rule statistics:
         scores="results/study/{target}/tiles_predicted/scores.tsv",
     output:
         animals="results/study/{target}/statistics/animals.tsv",
+        conditions=report(
+            "results/study/{target}/statistics/conditions.tsv",
+            caption="../report/condition_summary.rst",
+            category="Statistics",
+            labels={"target": "{target}", "item": "conditions"},
+        ),
         comparison=report(
             "results/study/{target}/statistics/comparison.tsv",
             caption="../report/comparison.rst",

@@ -14,8 +14,10 @@ run_job(
     source_path=snakemake.input.stack,
     out_path=snakemake.output.image,
     fmt=snakemake.params.format,
+    internal_path=snakemake.params.internal_path,
     spacing=snakemake.params.spacing,
     name=snakemake.wildcards.dataset,
     chunks=snakemake.params.chunks,
     percentiles=snakemake.params.percentiles,
+    missing_chunks=snakemake.params.missing_chunks,
 )

@@ -23,4 +23,7 @@ run_job(
     checksums=list(snakemake.input.checksums),
     qc_tables=list(snakemake.input.qc),
     out_path=snakemake.output[0],
+    objects_3d=dict(
+        zip(snakemake.params.objects_3d_targets, snakemake.input.objects_3d, strict=True)
+    ),
 )

@@ -19,6 +19,7 @@ run_job(
     out_animals=snakemake.output.animals,
     out_comparison=snakemake.output.comparison,
     out_plot=snakemake.output.plot,
+    out_conditions=snakemake.output.conditions,
     target=snakemake.wildcards.target,
     measures=snakemake.params.statistics["measures"],
     reference=snakemake.params.statistics["reference_condition"],

@@ -6,6 +6,8 @@ counts of QC, the installed package versions and the SHA-256 of every input file
 paragraph cannot drift from the analysis it describes.
 """
 
+import math
+
 from tessera import __version__
 
 CLASSIFIER_NAMES = {
@@ -62,42 +64,169 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         + (f", {', '.join(morph)}" if morph else "")
         + f"; {size}, and {obj['connectivity']}-connected voxels formed one object. "
     )
-    if comparison is not None and not comparison.empty:
-        parts = []
-        for row in comparison.itertuples(index=False):
-            if row.measure in ("volume_um3", "region_objects", "region_N_V"):
-                kind = "ratio" if row.scale == "ratio" else "difference"
-                parts.append(
-                    f"{row.measure} {row.condition} vs {row.reference}: {kind} {row.effect:.3g} "
-                    f"({row.confidence:.0%} CI {row.ci_low:.3g}–{row.ci_high:.3g}; "
-                    f"{row.animals} vs {row.reference_animals} animals)"
-                )
-        if parts:
-            text += "Results with the animal as the unit: " + "; ".join(parts) + ". "
+    text += _results_text(name, comparison)
     return text
+
+
+#: The measures the results sentence quotes (the others are in the comparison table).
+QUOTED_MEASURES = ("volume_um3", "region_objects", "region_N_V")
+
+
+def _results_text(name, comparison):
+    """The results sentence of one target: quoted comparisons, or why there are none."""
+    if comparison is None:
+        return ""
+    if comparison.empty:
+        return (
+            f"The study has one condition, so nothing was compared: {name} measures were "
+            "described per animal and per condition. "
+        )
+    parts = [
+        _result_phrase(row)
+        for row in comparison.to_dict("records")
+        if row["measure"] in QUOTED_MEASURES
+    ]
+    return "Results with the animal as the unit: " + "; ".join(parts) + ". " if parts else ""
+
+
+def _finite(*values):
+    return all(math.isfinite(float(v)) for v in values)
+
+
+def _result_phrase(row):
+    """One comparison in words: the effect with its interval, without one, or why it is missing.
+
+    Examples
+    --------
+    >>> row = {"measure": "volume_um3", "condition": "cold", "reference": "warm",
+    ...        "scale": "ratio", "effect": 1.24, "ci_low": 1.1, "ci_high": 1.4,
+    ...        "confidence": 0.95, "animals": 3, "reference_animals": 3, "warning": ""}
+    >>> _result_phrase(row)
+    'volume_um3 cold vs warm: ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)'
+    >>> _result_phrase({**row, "ci_low": float("nan"), "ci_high": float("nan"), "animals": 1,
+    ...     "warning": "no interval: only 1 animal in 'cold'; use at least 3 animals per condition"})
+    "volume_um3 cold vs warm: ratio 1.24 (1 vs 3 animals; no interval: only 1 animal in 'cold')"
+    >>> _result_phrase({**row, "effect": float("nan"), "animals": 0, "warning": ""})
+    'volume_um3 cold vs warm: not compared (0 vs 3 animals with a value)'
+    """
+    pair = f"{row['measure']} {row['condition']} vs {row['reference']}"
+    counts = f"{row['animals']} vs {row['reference_animals']} animals"
+    # the table's warning in words, without its closing advice (after the first ";")
+    why = str(row.get("warning") or "").split(";")[0].strip()
+    if not _finite(row["effect"]):
+        why = why.removeprefix("no comparison: ")
+        return f"{pair}: not compared ({why or counts + ' with a value'})"
+    kind = "ratio" if row["scale"] == "ratio" else "difference"
+    if not _finite(row["ci_low"], row["ci_high"]):
+        return f"{pair}: {kind} {row['effect']:.3g} ({counts}; {why or 'no interval'})"
+    interval = f"{row['confidence']:.0%} CI {row['ci_low']:.3g}–{row['ci_high']:.3g}"
+    return f"{pair}: {kind} {row['effect']:.3g} ({interval}; {counts}{'; ' + why if why else ''})"
+
+
+def _plural(count, word, plural=None):
+    """``1 animal``, ``3 animals``.
+
+    Examples
+    --------
+    >>> _plural(1, "animal"), _plural(0, "condition"), _plural(2, "analysis", "analyses")
+    ('1 animal', '0 conditions', '2 analyses')
+    """
+    return f"{count} {word if count == 1 else plural or word + 's'}"
 
 
 def _study_text(c, sheet_rows, section_counts):
     """The paragraph on the data: datasets, animals, conditions, section QC and the pyramid."""
     animals = {r["subject"] for r in sheet_rows.values()}
-    conditions = sorted({r["condition"] for r in sheet_rows.values()})
-    excluded, sections = section_counts["excluded"], section_counts["sections"]
+    conditions = list(dict.fromkeys(r["condition"] for r in sheet_rows.values()))
     return (
-        f"{len(sheet_rows)} datasets from {len(animals)} animals in {len(conditions)} conditions "
-        f"({', '.join(conditions)}) were converted to OME-Zarr (NGFF 0.5; Moore et al. 2023) with tessera "
-        f"{__version__}, run by Snakemake (Mölder et al. 2021). Each section was checked for sharpness (variance "
-        f"of the Laplacian of a Gaussian, σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and "
-        f"shift (phase correlation); {excluded} of {sections} sections were flagged and "
-        + (
-            "excluded from training and flagged in the object tables. "
-            if c["qc"]["exclude_flagged"]
-            else "kept (exclusion switched off). "
-        )
-        + f"A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
+        f"{_plural(len(sheet_rows), 'dataset')} from {_plural(len(animals), 'animal')} in "
+        f"{_plural(len(conditions), 'condition')} ({', '.join(conditions)}) "
+        f"{'was' if len(sheet_rows) == 1 else 'were'} converted to OME-Zarr (NGFF 0.5; Moore et al. "
+        f"2023) with tessera {__version__}, run by Snakemake (Mölder et al. 2021). "
+        + _qc_sentence(c, section_counts)
+        + f" A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
     )
 
 
-def _closing_lines(c, software, checksums):
+def _qc_sentence(c, section_counts):
+    """What section QC checked, how many sections it flagged for which reason, and what followed.
+
+    `section_counts` holds ``sections`` and ``excluded``, and optionally ``flagged`` (default:
+    the excluded ones) and ``reasons`` (reason → sections flagged for it; a section flagged for
+    two reasons counts under both). Reasons are quoted as given, so a new kind needs no change
+    here.
+
+    Examples
+    --------
+    >>> c = {"qc": {"sharpness_sigma": 1.5}}
+    >>> counts = {"sections": 40, "flagged": 3, "excluded": 3,
+    ...           "reasons": {"flat": 1, "blurred": 2, "shift": 1}}
+    >>> print(_qc_sentence(c, counts).split("; ")[1])
+    QC flagged 3 of 40 sections (2 blurred, 1 flat, 1 shift
+    >>> print(_qc_sentence(c, {"sections": 40, "excluded": 0}).split("; ")[1])
+    QC flagged none of the 40 sections.
+    """
+    sections, excluded = section_counts["sections"], section_counts["excluded"]
+    flagged = section_counts.get("flagged", excluded)
+    reasons = section_counts.get("reasons") or {}
+    checks = (
+        "Each section was checked for sharpness (variance of the Laplacian of a Gaussian, "
+        f"σ = {c['qc']['sharpness_sigma']:g} px), blank or torn area, intensity and shift "
+        "(phase correlation)"
+    )
+    if not flagged:
+        return f"{checks}; QC flagged none of the {sections} sections."
+    ranked = sorted(reasons.items(), key=lambda item: (-item[1], item[0]))
+    why = ", ".join(f"{n} {reason}" for reason, n in ranked)
+    if sum(reasons.values()) > flagged:
+        why += "; a section can have several reasons"
+    text = f"{checks}; QC flagged {flagged} of {_plural(sections, 'section')}" + (
+        f" ({why})" if why else ""
+    )
+    which = "which was" if flagged == 1 else "which were"
+    if excluded == flagged:
+        return f"{text}, {which} excluded from training and flagged in the object tables."
+    if excluded == 0:
+        return f"{text}, {which} kept (exclusion switched off)."
+    return (
+        f"{text}, of which {excluded} were excluded from training and flagged in the object tables."
+    )
+
+
+def _statistics_sentence(c, sheet_rows):
+    """How conditions were summarised and compared: against which reference, or not at all.
+
+    Examples
+    --------
+    >>> c = {"statistics": {"confidence": 0.95, "reference_condition": None}}
+    >>> rows = {"a": {"condition": "warm"}, "b": {"condition": "cold"}, "c": {"condition": "hot"}}
+    >>> print(_statistics_sentence(c, rows).split(". ")[1])
+    Each other condition (cold, hot) was compared with the reference condition warm (the first condition of the datasets sheet) on the per-animal values (Welch interval, 95%, which allows unequal numbers of animals per condition); objects were never treated as independent samples.
+    >>> print(_statistics_sentence(c, {"a": {"condition": "warm"}}).split(". ")[1])
+    With one condition (warm) nothing was compared: each measure was described per animal and per condition; objects were never treated as independent samples.
+    """
+    stats = c["statistics"]
+    conditions = list(dict.fromkeys(r["condition"] for r in sheet_rows.values()))
+    text = "Each measure was averaged per animal (geometric mean for sizes). "
+    if len(conditions) < 2:
+        text += (
+            f"With one condition ({', '.join(conditions)}) nothing was compared: each measure was "
+            "described per animal and per condition"
+        )
+    else:
+        reference = stats.get("reference_condition")
+        why = "set in the config" if reference else "the first condition of the datasets sheet"
+        reference = reference or conditions[0]
+        others = ", ".join(x for x in conditions if x != reference)
+        text += (
+            f"Each other condition ({others}) was compared with the reference condition "
+            f"{reference} ({why}) on the per-animal values (Welch interval, "
+            f"{stats['confidence']:.0%}, which allows unequal numbers of animals per condition)"
+        )
+    return text + "; objects were never treated as independent samples."
+
+
+def _closing_lines(c, sheet_rows, software, checksums):
     """Morphometry and statistics, the caveat, the software and the input checksums."""
     lines = [
         (
@@ -105,9 +234,7 @@ def _closing_lines(c, software, checksums):
             "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
             "the mitochondrial complexity index (Vincent et al. 2019). QC-excluded sections were bridged by "
             "interpolating the probabilities of their neighbours; objects cut by the volume border were left out of "
-            "size and shape summaries. Each measure was averaged per animal "
-            "(geometric mean for sizes) and conditions were compared on the per-animal values (Welch interval, "
-            f"{c['statistics']['confidence']:.0%}); objects were never treated as independent samples."
+            "size and shape summaries. " + _statistics_sentence(c, sheet_rows)
         ),
         "",
         "Automatic segmentation is a research measurement: the accuracies above hold for tiles like the annotated "
@@ -121,6 +248,33 @@ def _closing_lines(c, software, checksums):
     return lines + [f"- `{name}`: `{digest}`" for digest, name in checksums]
 
 
+def _objects_3d_text(objects_3d):
+    """One sentence on the 3D object scores of every target that has them ('' if none).
+
+    Examples
+    --------
+    >>> row = {"truth_source": "instance volume", "sections": 12, "object_f1": 0.8,
+    ...        "object_precision": 0.75, "object_recall": 0.857, "arand": 0.1,
+    ...        "voi_split": 0.2, "voi_merge": 0.3}
+    >>> _objects_3d_text({"mitochondria": row})[:56]
+    'In 3D, the mitochondria objects on 12 held-out test sect'
+    """
+    parts = [
+        f"the {name} objects on {int(row['sections'])} held-out test sections matched the true "
+        f"objects ({row['truth_source']}) with F1 {row['object_f1']:.3f} (precision "
+        f"{row['object_precision']:.3f}, recall {row['object_recall']:.3f}; adapted Rand error "
+        f"{row['arand']:.3f}, VOI split {row['voi_split']:.3f} and merge {row['voi_merge']:.3f} "
+        "bits)"
+        for name, row in (objects_3d or {}).items()
+    ]
+    if not parts:
+        return ""
+    return (
+        "In 3D, " + "; ".join(parts) + "; objects were matched one-to-one at an intersection "
+        "over union above 0.5."
+    )
+
+
 def methods_text(
     config_sections,
     sheet_rows,
@@ -131,6 +285,7 @@ def methods_text(
     section_counts,
     checksums,
     software,
+    objects_3d=None,
 ):
     """The methods paragraph (Markdown) of the study.
 
@@ -153,6 +308,10 @@ def methods_text(
         ``(sha256, file)`` of every input file.
     software : dict
         Package → version, listed as given.
+    objects_3d : dict, optional
+        Target → the pooled 3D object scores on the held-out sections (``truth_source``,
+        ``sections``, ``object_f1``, ``object_precision``, ``object_recall``, ``arand``,
+        ``voi_split``, ``voi_merge``); targets without them get no sentence.
 
     Returns
     -------
@@ -167,8 +326,8 @@ def methods_text(
     ...                     section_counts={"sections": 40, "excluded": 2},
     ...                     checksums=[("ab12", "data/a.tif")], software={"numpy": "2.1.0"})
     >>> print(text.splitlines()[2][:58])
-    1 datasets from 1 animals in 1 conditions (warm) were conv
-    >>> "2 of 40 sections were flagged and excluded from training" in text
+    1 dataset from 1 animal in 1 condition (warm) was converte
+    >>> "QC flagged 2 of 40 sections, which were excluded from training" in text
     True
     >>> text.splitlines()[-5:]
     ['Software: numpy 2.1.0.', '', 'Input data (SHA-256):', '', '- `data/a.tif`: `ab12`']
@@ -187,5 +346,6 @@ def methods_text(
             ),
             "",
         ]
-    text += _closing_lines(c, software, checksums)
+    text += [_objects_3d_text(objects_3d), ""] if objects_3d else []
+    text += _closing_lines(c, sheet_rows, software, checksums)
     return "\n".join(text) + "\n"

@@ -20,37 +20,55 @@ from tessera.cascade.api import cascade_spec, mirrored_stack, predict_frame, rec
 from tessera.errors import TesseraInputError
 
 
+def _axis_step(n, most, align):
+    """Block size along an axis of `n` px: the fewest blocks of at most `most` px, of nearly
+    equal size, on the `align` grid (never more than the axis needs)."""
+    count = -(-n // most)
+    share = -(-n // count)
+    return min(-(-share // align) * align, n)
+
+
 def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
     """Cut a (Z, Y, X) volume into blocks and share them among `jobs` jobs.
+
+    Blocks are sized to the volume: along each axis the volume is cut into the fewest blocks
+    no larger than `block`, of nearly equal size (y and x on the `align` grid), so no thin
+    strip of blocks reads a whole halo for a few pixels and no block is larger than the volume.
+    A volume with fewer blocks than jobs is cut thinner in z (sections do not depend on each
+    other's halo), so every job gets work. None of this changes a voxel of the result.
 
     Parameters
     ----------
     shape : (int, int, int)
         Volume shape at the working level.
     block : (int, int, int)
-        Core size per block, z y x. y and x are rounded up to multiples of `align`; blocks at
-        the far edges are cut by the volume.
+        Largest core per block, z y x (y and x rounded up to multiples of `align`); memory
+        grows with it. Each block's sections are read with the halo in y and x, once per block:
+        fewer, larger blocks in-plane read less halo.
     halo : int
         In-plane halo (pixels of the working level) each block is read with: the model's
         receptive radius (:func:`shard_halo`).
     align : int
         Block origins in y and x are multiples of this (2^L for an L-level cascade).
     jobs : int
-        Number of shard jobs; each gets a contiguous run of blocks (possibly none).
+        Number of shard jobs; each gets a contiguous run of blocks (possibly none, when the
+        volume has fewer sections than jobs).
     max_halo : int, optional
         Refuse a model whose halo is larger (it would make every block mostly halo).
 
     Returns
     -------
     dict
-        ``shape``, ``block`` (as used), ``halo``, ``align``, ``blocks`` (list of
-        ``[z0, z1, y0, y1, x0, x1]``) and ``jobs`` (list of lists of block indices).
+        ``shape``, ``block`` (the largest block as used), ``halo``, ``align``, ``blocks`` (list
+        of ``[z0, z1, y0, y1, x0, x1]``) and ``jobs`` (list of lists of block indices).
 
     Examples
     --------
     >>> plan = plan_shards((3, 100, 60), block=(2, 64, 64), halo=16, align=4, jobs=2)
+    >>> plan["block"]
+    [2, 52, 60]
     >>> plan["blocks"]
-    [[0, 2, 0, 64, 0, 60], [0, 2, 64, 100, 0, 60], [2, 3, 0, 64, 0, 60], [2, 3, 64, 100, 0, 60]]
+    [[0, 2, 0, 52, 0, 60], [0, 2, 52, 100, 0, 60], [2, 3, 0, 52, 0, 60], [2, 3, 52, 100, 0, 60]]
     >>> plan["jobs"]
     [[0, 1], [2, 3]]
     """
@@ -72,31 +90,52 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
             f"predict.block {block} is smaller in y or x than the model's halo of {halo} px: every block would "
             f"read more halo than core; use blocks of at least {halo} px (a few times more is efficient)"
         )
-    block[1:] = [-(-b // align) * align for b in block[1:]]
+    ny, nx = (_axis_step(n, -(-b // align) * align, align) for n, b in zip(shape[1:], block[1:]))
+    in_plane = -(-shape[1] // ny) * -(-shape[2] // nx)
+    z_count = max(-(-shape[0] // block[0]), min(shape[0], -(-jobs // in_plane)))
+    steps = [-(-shape[0] // z_count), ny, nx]
     blocks = []
-    for z0 in range(0, shape[0], block[0]):
-        for y0 in range(0, shape[1], block[1]):
-            for x0 in range(0, shape[2], block[2]):
+    for z0 in range(0, shape[0], steps[0]):
+        for y0 in range(0, shape[1], ny):
+            for x0 in range(0, shape[2], nx):
                 blocks.append(
                     [
                         z0,
-                        min(z0 + block[0], shape[0]),
+                        min(z0 + steps[0], shape[0]),
                         y0,
-                        min(y0 + block[1], shape[1]),
+                        min(y0 + ny, shape[1]),
                         x0,
-                        min(x0 + block[2], shape[2]),
+                        min(x0 + nx, shape[2]),
                     ]
                 )
     n = len(blocks)
     shares = [list(range(j * n // jobs, (j + 1) * n // jobs)) for j in range(jobs)]
     return {
         "shape": list(shape),
-        "block": block,
+        "block": steps,
         "halo": int(halo),
         "align": int(align),
         "blocks": blocks,
         "jobs": shares,
     }
+
+
+def halo_overhead(plan):
+    """Pixels of the windows the plan's blocks are read with, per pixel of the volume.
+
+    Every section of a block is read with the halo on each side in y and x; this is the cost
+    of exact block-wise prediction (the receptive field), paid once per block and section.
+
+    Examples
+    --------
+    >>> halo_overhead({"shape": [1, 100, 100], "halo": 50, "blocks": [[0, 1, 0, 100, 0, 100]]})
+    4.0
+    """
+    window = sum(
+        (z1 - z0) * (y1 - y0 + 2 * plan["halo"]) * (x1 - x0 + 2 * plan["halo"])
+        for z0, z1, y0, y1, x0, x1 in plan["blocks"]
+    )
+    return window / float(np.prod(plan["shape"]))
 
 
 def shard_halo(spec, *, output_sigma=0.0):

@@ -18,7 +18,6 @@ import pandas as pd
 from scipy import stats as sps
 
 from tessera.errors import TesseraInputError
-from tessera.plotting import pyplot
 
 # size-like measures are compared on the log scale: the effect is a ratio (cold / reference)
 LOG_MEASURES = (
@@ -94,18 +93,66 @@ def animal_summaries(objects, *, measures, subjects=None):
     return pd.DataFrame(rows, columns=["subject", "condition", "objects", *measures])
 
 
-def compare_conditions(animals, *, measures, reference, confidence=0.95):
+#: Columns of the comparison table, also when there is nothing to compare (one condition).
+COMPARISON_COLUMNS = (
+    "measure",
+    "condition",
+    "reference",
+    "animals",
+    "reference_animals",
+    "mean",
+    "reference_mean",
+    "scale",
+    "effect",
+    "ci_low",
+    "ci_high",
+    "confidence",
+    "p_value",
+    "warning",
+)
+
+
+def _ordered_conditions(animals, conditions):
+    """The conditions of `animals` in the order of `conditions` (default: sorted)."""
+    present = set(animals["condition"])
+    if conditions is None:
+        return sorted(present)
+    unknown = sorted(present - set(conditions))
+    if unknown:
+        raise TesseraInputError(
+            f"condition(s) {unknown} of the animals are not in {list(conditions)}"
+        )
+    return [c for c in dict.fromkeys(conditions) if c in present]
+
+
+def compare_conditions(animals, *, measures, reference, confidence=0.95, conditions=None):
     """Each condition against `reference`, on per-animal values.
 
     For measures in :data:`LOG_MEASURES` the comparison is on log values and reported as a
-    ratio (condition / reference) with its interval; otherwise as a difference.
+    ratio (condition / reference) with its interval; otherwise as a difference. The interval and
+    p-value are Welch's (unequal variances), so unbalanced designs (3 animals against 5) are
+    handled; an effect without an interval, or no effect at all, carries a ``warning`` in words.
+
+    Parameters
+    ----------
+    animals : pandas.DataFrame
+        One row per animal: ``condition`` and one column per measure (NaN = not measured, e.g.
+        an animal without whole objects).
+    measures : sequence of str
+    reference : str
+        The condition every other one is compared with.
+    confidence : float
+    conditions : sequence of str, optional
+        Order of the rows (e.g. the sheet's order); default sorted.
 
     Returns
     -------
     pandas.DataFrame
-        One row per (measure, condition): animals per group, the group means, ``effect`` with
-        ``ci_low`` and ``ci_high`` (Welch), ``p_value``, ``scale`` ('ratio' or 'difference') and
-        ``warning`` (fewer than 3 animals in a group: the interval is wide or undefined).
+        Columns :data:`COMPARISON_COLUMNS`; one row per (measure, condition other than the
+        reference), none when the study has one condition. ``animals`` and
+        ``reference_animals`` count the animals with a value; ``warning`` says in words why an
+        interval is missing or unreliable (fewer than 3 animals in a group, no animal measured,
+        no spread between animals), empty otherwise.
 
     Examples
     --------
@@ -114,53 +161,95 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95):
     >>> row = compare_conditions(animals, measures=["N_V"], reference="warm").iloc[0]
     >>> row["scale"], float(row["effect"]), round(float(row["ci_low"]), 3), round(float(row["p_value"]), 3)
     ('difference', 2.0, -0.267, 0.07)
+    >>> len(compare_conditions(animals[:3], measures=["N_V"], reference="warm"))
+    0
     """
-    if reference not in set(animals["condition"]):
+    order = _ordered_conditions(animals, conditions)
+    if reference not in order:
         raise TesseraInputError(
-            f"reference condition {reference!r} has no animals; conditions are {sorted(set(animals['condition']))}"
+            f"reference condition {reference!r} has no animals; conditions are {sorted(order)}"
         )
     rows = []
     for measure in measures:
-        log = measure in LOG_MEASURES
-        for condition in sorted(set(animals["condition"]) - {reference}):
-            a = animals.loc[animals["condition"] == condition, measure].to_numpy(dtype=float)
-            b = animals.loc[animals["condition"] == reference, measure].to_numpy(dtype=float)
-            if log:
-                a, b = np.log(a[a > 0]), np.log(b[b > 0])
-            a, b = a[np.isfinite(a)], b[np.isfinite(b)]
-            est, low, high, p = _welch(a, b, confidence)
-            warning = ""
-            if min(len(a), len(b)) < MIN_ANIMALS:
-                warning = (
-                    f"only {min(len(a), len(b))} animal(s) in a group: "
-                    + ("no interval" if min(len(a), len(b)) < 2 else "interval unreliable")
-                    + f"; use at least {MIN_ANIMALS} animals per condition"
-                )
-                _log.warning("%s, %s vs %s: %s", measure, condition, reference, warning)
-            transform = math.exp if log else (lambda v: v)
-            rows.append(
-                {
-                    "measure": measure,
-                    "condition": condition,
-                    "reference": reference,
-                    "animals": len(a),
-                    "reference_animals": len(b),
-                    "mean": transform(float(np.mean(a))) if len(a) else math.nan,
-                    "reference_mean": transform(float(np.mean(b))) if len(b) else math.nan,
-                    "scale": "ratio" if log else "difference",
-                    "effect": transform(est),
-                    "ci_low": transform(low),
-                    "ci_high": transform(high),
-                    "confidence": confidence,
-                    "p_value": p,
-                    "warning": warning,
-                }
-            )
-    return pd.DataFrame(rows)
+        for condition in (c for c in order if c != reference):
+            rows.append(_compare_one(animals, measure, condition, reference, confidence=confidence))
+    return pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
+
+
+def _measured(animals, measure, condition, log):
+    """The animals' finite values of `measure` in `condition` (positive ones for a log measure)."""
+    values = animals.loc[animals["condition"] == condition, measure].to_numpy(dtype=float)
+    keep = np.isfinite(values) & (values > 0) if log else np.isfinite(values)
+    return values[keep]
+
+
+def _group_values(animals, measure, condition, log):
+    """:func:`_measured`, on the log scale for a log measure (where the comparison is made)."""
+    values = _measured(animals, measure, condition, log)
+    return np.log(values) if log else values
+
+
+def _compare_one(animals, measure, condition, reference, *, confidence):
+    """One row of :func:`compare_conditions`."""
+    log = measure in LOG_MEASURES
+    a = _group_values(animals, measure, condition, log)
+    b = _group_values(animals, measure, reference, log)
+    est, low, high, p = _welch(a, b, confidence)
+    warning = _comparison_warning({condition: len(a), reference: len(b)}, low, high)
+    if warning:
+        _log.warning("%s, %s vs %s: %s", measure, condition, reference, warning)
+    transform = math.exp if log else float
+    return {
+        "measure": measure,
+        "condition": condition,
+        "reference": reference,
+        "animals": len(a),
+        "reference_animals": len(b),
+        "mean": transform(float(np.mean(a))) if len(a) else math.nan,
+        "reference_mean": transform(float(np.mean(b))) if len(b) else math.nan,
+        "scale": "ratio" if log else "difference",
+        "effect": transform(est),
+        "ci_low": transform(low),
+        "ci_high": transform(high),
+        "confidence": confidence,
+        "p_value": p,
+        "warning": warning,
+    }
+
+
+def _comparison_warning(counts, ci_low, ci_high):
+    """Why a comparison has no interval, or an unreliable one, in words ("" if neither).
+
+    Examples
+    --------
+    >>> _comparison_warning({"cold": 0, "warm": 3}, math.nan, math.nan)
+    "no comparison: no animal in 'cold' has a whole object to measure"
+    >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan, math.nan)
+    "no interval: only 1 animal in 'cold', and an interval needs 2 per condition; use at least 3 animals per condition"
+    >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)
+    'interval of zero width: the per-animal values do not vary within either condition'
+    """
+    empty = [c for c, n in counts.items() if n == 0]
+    if empty:
+        names = " or ".join(repr(c) for c in empty)
+        return f"no comparison: no animal in {names} has a whole object to measure"
+    fewest = min(counts.values())
+    groups = " and ".join(repr(c) for c, n in counts.items() if n == fewest)
+    advice = f"use at least {MIN_ANIMALS} animals per condition"
+    if fewest < 2:
+        return f"no interval: only 1 animal in {groups}, and an interval needs 2 per condition; {advice}"
+    if ci_low == ci_high:
+        return "interval of zero width: the per-animal values do not vary within either condition"
+    if fewest < MIN_ANIMALS:
+        return f"interval unreliable: only {fewest} animals in {groups}; {advice}"
+    return ""
 
 
 def _welch(a, b, confidence):
-    """Difference of means a - b with Welch's t interval and two-sided p-value."""
+    """Difference of means a - b with Welch's t interval and two-sided p-value.
+
+    NaN interval and p-value when a group has fewer than 2 values.
+    """
     if len(a) == 0 or len(b) == 0:
         return math.nan, math.nan, math.nan, math.nan
     diff = float(np.mean(a) - np.mean(b))
@@ -168,7 +257,7 @@ def _welch(a, b, confidence):
         return diff, math.nan, math.nan, math.nan
     va, vb = np.var(a, ddof=1) / len(a), np.var(b, ddof=1) / len(b)
     se = math.sqrt(va + vb)
-    if se == 0:
+    if se == 0:  # as scipy's ttest_ind: an interval of zero width, p 0 (or 1 for no difference)
         return diff, diff, diff, (0.0 if diff else 1.0)
     df = (va + vb) ** 2 / (va**2 / (len(a) - 1) + vb**2 / (len(b) - 1))
     q = sps.t.ppf(0.5 + confidence / 2, df)
@@ -207,6 +296,80 @@ def region_animal_summaries(regions):
     return pd.DataFrame(
         rows, columns=["subject", "regions", *[f"region_{m}" for m in REGION_MEASURES]]
     )
+
+
+def sheet_conditions(datasets):
+    """The conditions of the sheet, each once, in the order they first appear.
+
+    The first is the default reference condition of :func:`summarise_study`.
+
+    Examples
+    --------
+    >>> sheet_conditions({"d1": {"condition": "warm"}, "d2": {"condition": "cold"},
+    ...                   "d3": {"condition": "warm"}})
+    ['warm', 'cold']
+    """
+    return list(dict.fromkeys(row["condition"] for row in datasets.values()))
+
+
+def describe_conditions(animals, *, measures, conditions=None):
+    """Each measure per condition, over the per-animal values: the description a study with one
+    condition gets instead of a comparison, and the group summaries beside any comparison.
+
+    Parameters
+    ----------
+    animals : pandas.DataFrame
+        As from :func:`animal_summaries`: ``condition``, ``objects`` and the measures.
+    measures : sequence of str
+    conditions : sequence of str, optional
+        Order of the rows (e.g. the sheet's order); default sorted.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (measure, condition): ``animals`` (animals of the condition),
+        ``measured_animals`` (those with a value), ``mean`` over the measured animals (geometric
+        for :data:`LOG_MEASURES`, as in the comparison), ``lowest`` and ``highest`` animal value,
+        and ``note`` saying in words why a value is missing or has no spread.
+
+    Examples
+    --------
+    >>> animals = pd.DataFrame({"subject": list("abc"), "condition": ["warm", "warm", "cold"],
+    ...                         "objects": [4, 2, 0], "volume_um3": [1.0, 4.0, float("nan")]})
+    >>> table = describe_conditions(animals, measures=["volume_um3"], conditions=["warm", "cold"])
+    >>> table[["condition", "measured_animals", "mean", "lowest", "highest"]].values.tolist()
+    [['warm', 2, 2.0, 1.0, 4.0], ['cold', 0, nan, nan, nan]]
+    >>> table["note"].tolist()
+    ['', 'no animal in this condition has a whole object to measure']
+    """
+    rows = []
+    for measure in measures:
+        log = measure in LOG_MEASURES
+        for condition in _ordered_conditions(animals, conditions):
+            values = _measured(animals, measure, condition, log)
+            note = ""
+            if values.size == 0:
+                note = "no animal in this condition has a whole object to measure"
+            elif values.size == 1:
+                note = "one animal: no spread between animals"
+            mean = math.nan
+            if values.size:
+                mean = math.exp(np.log(values).mean()) if log else float(values.mean())
+            rows.append(
+                {
+                    "measure": measure,
+                    "condition": condition,
+                    "animals": int((animals["condition"] == condition).sum()),
+                    "measured_animals": int(values.size),
+                    "scale": "geometric mean" if log else "mean",
+                    "mean": mean,
+                    "lowest": float(values.min()) if values.size else math.nan,
+                    "highest": float(values.max()) if values.size else math.nan,
+                    "note": note,
+                }
+            )
+    columns = ["measure", "condition", "animals", "measured_animals", "scale", "mean", "lowest"]
+    return pd.DataFrame(rows, columns=[*columns, "highest", "note"])
 
 
 def _pooled(tables, datasets, columns):
@@ -282,87 +445,21 @@ def summarise_study(
     """
     objects = _pooled(object_tables, datasets, ("subject", "condition"))
     regions = _pooled({d: region_tables[d] for d in object_tables}, datasets, ("subject",))
-    reference = reference or next(iter(datasets.values()))["condition"]
+    conditions = sheet_conditions(datasets)
+    reference = reference or conditions[0]
     subjects = {d["subject"]: d["condition"] for d in datasets.values()}
     animals = animal_summaries(objects, measures=measures, subjects=subjects).merge(
         region_animal_summaries(regions), on="subject", how="left"
     )
     all_measures = [*measures, *[f"region_{m}" for m in REGION_MEASURES]]
     comparison = compare_conditions(
-        animals, measures=all_measures, reference=reference, confidence=confidence
+        animals,
+        measures=all_measures,
+        reference=reference,
+        confidence=confidence,
+        conditions=conditions,
     )
     comparison.insert(0, "target", target)
     for key, value in accuracy.items():
         comparison[key] = value
     return objects, animals, comparison
-
-
-def plot_conditions(objects, animals, comparison, path, *, target, accuracy, measures=None):
-    """Object distributions (grey) and per-animal values (dots) per condition, effect in the title.
-
-    Parameters
-    ----------
-    objects, animals, comparison : pandas.DataFrame
-        As returned by :func:`summarise_study`.
-    path : path or file-like
-        Where the PNG goes.
-    target : str
-    accuracy : dict
-        ``test_f1`` of the target, printed in the title.
-    measures : sequence of str, optional
-        Default: the first six compared measures that objects have.
-
-    Examples
-    --------
-    >>> import io
-    >>> sheet = {f"d{k}": {"condition": "warm" if k < 3 else "cold", "subject": f"m{k}"}
-    ...          for k in range(6)}
-    >>> objects = {d: pd.DataFrame({"volume_um3": [1.0 + k, 2.0 + k],
-    ...                             "touches_volume_border": False})
-    ...            for k, d in enumerate(sheet)}
-    >>> regions = {d: pd.DataFrame({"objects": [2], "V_V": [0.1], "S_V": [1.0], "N_V": [2.0]})
-    ...            for d in sheet}
-    >>> accuracy = {"test_f1": 0.9, "test_jaccard": 0.8}
-    >>> tables = summarise_study(objects, regions, sheet, target="mito", measures=["volume_um3"],
-    ...                          accuracy=accuracy)
-    >>> png = io.BytesIO()
-    >>> plot_conditions(*tables, png, target="mito", accuracy=accuracy)
-    >>> png.getvalue()[:4]
-    b'\x89PNG'
-    """
-    plt = pyplot()
-
-    measures = measures or [m for m in comparison["measure"].unique() if m in objects.columns][:6]
-    conditions = sorted(animals["condition"].unique())
-    fig, axes = plt.subplots(1, len(measures), figsize=(3.2 * len(measures), 3.6), squeeze=False)
-    whole = objects[~objects["touches_volume_border"].astype(bool)]
-    for ax, m in zip(axes[0], measures, strict=True):
-        for i, c in enumerate(conditions):
-            values = whole.loc[whole["condition"] == c, m].dropna().to_numpy(dtype=float)
-            if values.size > 1 and np.ptp(values) > 0:
-                parts = ax.violinplot(values, positions=[i], showextrema=False, widths=0.8)
-                for body in parts["bodies"]:
-                    body.set_facecolor("0.8")
-            per_animal = animals.loc[animals["condition"] == c, m].to_numpy(dtype=float)
-            ax.plot(np.full(per_animal.size, i), per_animal, "o", color="C0", ms=6)
-        ax.set_xticks(range(len(conditions)), conditions)
-        shown = np.concatenate([whole[m].to_numpy(dtype=float), animals[m].to_numpy(dtype=float)])
-        if m in LOG_MEASURES and (np.isfinite(shown) & (shown > 0)).any():
-            ax.set_yscale("log")
-        row = comparison[comparison["measure"] == m]
-        if not row.empty:
-            r = row.iloc[0]
-            ax.set_title(
-                f"{m}\n{r['scale']} {r['effect']:.2f} [{r['ci_low']:.2f}, {r['ci_high']:.2f}]",
-                fontsize=8,
-            )
-        else:
-            ax.set_title(m, fontsize=8)
-    fig.suptitle(
-        f"{target}: objects (grey) and animals (dots); test-tile F1 {accuracy['test_f1']:.3f} — "
-        "automatic segmentation, validate on held-out annotation",
-        fontsize=8,
-    )
-    fig.tight_layout()
-    fig.savefig(path, dpi=100, format="png")
-    plt.close(fig)

@@ -10,9 +10,18 @@ import yaml
 from scipy import ndimage
 from sklearn.metrics import f1_score, precision_recall_curve
 
-from tessera.cascade.classifiers import KINDS
+from tessera.cascade.classifiers import CHUNK_ROWS, KINDS
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
-from tessera.cascade.frame import mirrored_stack, mirrored_window
+from tessera.cascade.frame import (
+    BAND_ROWS,
+    _bands,
+    ensure_maps,
+    make_frame,
+    mirrored_stack,
+    mirrored_window,
+    node_map,
+    node_matrix,
+)
 from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius
 from tessera.cascade.predict import predict_frame, predict_section
 from tessera.cascade.spec import (
@@ -169,6 +178,45 @@ def test_block_prediction_equals_whole_image(trained):
                 )
                 stitched[y0 : y0 + h, x0 : x0 + w] = predict_frame(models, window, (h, w))
         np.testing.assert_allclose(stitched, whole, atol=1e-6)
+
+
+def test_banded_node_maps_are_bit_identical_to_the_whole_feature_matrix(trained):
+    # Reference: the classifier's own prediction of every node's whole feature matrix at once
+    # (numpy/BLAS matrix products over all rows, in the classifier's chunks). A frame of more
+    # than CHUNK_ROWS pixels makes the bands cross into a second chunk; every node's map must
+    # be the same to the last bit, as must the fold models' maps training uses.
+    spec, _, models = trained
+    image, _ = blobs(102, shape=(532, 548))
+    radius = receptive_radius(spec)
+    window = mirrored_window(image[np.newaxis], 0, -radius, 532 + radius, -radius, 548 + radius)
+    for fold in (-1, 1):
+        frame = make_frame(spec, window, (532, 548))
+        ensure_maps(frame, (spec.stages, 0), models, fold)
+        for node in nodes(spec):
+            margin = frame.margins[node]
+            clf = models[node].for_tile(fold)
+            x = node_matrix(frame, node, margin)
+            whole = clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
+            if node[1] == 0:
+                assert whole.size > CHUNK_ROWS
+            np.testing.assert_array_equal(node_map(frame, node, margin, clf), whole)
+            if node in frame.maps:  # the maps ensure_maps cached for the next nodes
+                np.testing.assert_array_equal(frame.maps[node][0], whole)
+
+
+def test_bands_stay_inside_the_classifier_chunks():
+    # Each band lies inside one CHUNK_ROWS chunk, starts a whole number of bands after the
+    # chunk's start (so its rows keep their place in the BLAS kernel's row blocking) and
+    # together they cover every row once.
+    n = 2 * CHUNK_ROWS + 1000
+    bands = list(_bands(n))
+    assert bands[0][0] == 0 and bands[-1][1] == n
+    assert all(a[1] == b[0] for a, b in zip(bands, bands[1:]))
+    for start, stop in bands:
+        chunk = start // CHUNK_ROWS
+        assert (stop - 1) // CHUNK_ROWS == chunk
+        assert (start - chunk * CHUNK_ROWS) % BAND_ROWS == 0
+        assert BAND_ROWS // 2 <= stop - start < BAND_ROWS + BAND_ROWS // 2 or stop == n
 
 
 def test_training_context_is_out_of_fold(trained):

@@ -1,12 +1,21 @@
 """Config and datasets sheet: the shipped files validate; every bad input is one clear error."""
 
 import copy
+import os
+import re
 
 import pytest
 import yaml
 
 from tessera.errors import TesseraInputError
-from tessera.workflow.config import load_config, load_datasets, read_yaml, sheet_spacing
+from tessera.workflow.config import (
+    check_config_paths,
+    config_paths,
+    load_config,
+    load_datasets,
+    read_yaml,
+    sheet_spacing,
+)
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 
@@ -249,7 +258,7 @@ def test_unknown_sheet_column_is_refused(tmp_path, schemas):
 
 def test_missing_sheet_is_named(tmp_path, schemas):
     with pytest.raises(TesseraInputError, match="nope.tsv: datasets sheet not found"):
-        load_datasets(tmp_path / "nope.tsv", schemas / "datasets.schema.yaml")
+        load_datasets(tmp_path / "nope.tsv", schemas / "datasets.schema.yaml", base_dir=tmp_path)
 
 
 def test_demo_paths_need_not_exist_yet(tmp_path, schemas):
@@ -338,12 +347,145 @@ def test_data_roots_from_the_config_admit_their_folders(layout, schemas, root):
     assert frame.loc["a1", "path"] == str(outside / "stack.tif")
 
 
-def test_the_sheets_own_folder_is_a_data_root(layout, schemas):
+def test_a_sheet_outside_the_data_roots_is_refused_until_its_folder_is_named(layout, schemas):
     project, outside = layout
     sheet = _sheet(outside, _row(str(outside / "stack.tif")))  # a sheet kept beside its data
-    assert list(load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project).index) == [
-        "a1"
-    ]
+    expected = (
+        rf"config/config\.yaml, key datasets: {re.escape(repr(str(sheet)))} resolves to "
+        rf"'{re.escape(os.path.realpath(sheet))}', outside the allowed data roots \[.*\]; add its "
+        r"folder to data_roots in config/config\.yaml"
+    )
+    with pytest.raises(TesseraInputError, match=expected):
+        load_datasets(sheet, schemas / "datasets.schema.yaml", base_dir=project)
+    frame = load_datasets(
+        sheet, schemas / "datasets.schema.yaml", base_dir=project, data_roots=[str(outside)]
+    )
+    assert list(frame.index) == ["a1"]
+
+
+@pytest.mark.parametrize("kind", ["dotdot", "absolute", "symlink"])
+def test_a_sheet_path_leading_outside_is_refused_before_it_is_read(layout, schemas, kind):
+    project, outside = layout
+    sheet = _sheet(outside, _row("stack.tif"))
+    if kind == "symlink":  # a link inside the project whose target lies elsewhere
+        (project / "data").symlink_to(outside, target_is_directory=True)
+    named = {
+        "dotdot": "../mnt/em/datasets.tsv",
+        "absolute": str(sheet),
+        "symlink": "data/datasets.tsv",
+    }[kind]
+    sheet.write_bytes(b"\xff\xfe not a sheet")  # refused by place, so never parsed
+    with pytest.raises(TesseraInputError, match=r"key datasets: .* outside the allowed data roots"):
+        load_datasets(project / named, schemas / "datasets.schema.yaml", base_dir=project)
+
+
+def _painted_config(points, masks):
+    return {
+        "datasets": "config/datasets.tsv",
+        "data_roots": [],
+        "targets": {"er": {"annotations": {"painted": {"points": points, "masks": masks}}}},
+    }
+
+
+@pytest.mark.parametrize(
+    ("config", "key", "shown"),
+    [
+        (
+            {
+                "datasets": "config/datasets.tsv",
+                "data_roots": [],
+                "targets": {"mito": {"annotations": {"labels": "../mnt/em/{dataset}.tif"}}},
+            },
+            "targets.mito.annotations.labels",
+            "../mnt/em/a1.tif",
+        ),
+        (
+            {
+                "datasets": "config/datasets.tsv",
+                "data_roots": [],
+                "targets": {"mito": {"annotations": {"labels": "truth/{dataset}/../../../x.tif"}}},
+            },
+            "targets.mito.annotations.labels",
+            "truth/a1/../../../x.tif",
+        ),
+        (
+            _painted_config("../mnt/em/points.tsv", "masks"),
+            "targets.er.annotations.painted.points",
+            "../mnt/em/points.tsv",
+        ),
+        (_painted_config("points.tsv", "/etc"), "targets.er.annotations.painted.masks", "/etc"),
+    ],
+)
+def test_config_paths_outside_the_data_roots_are_refused(layout, config, key, shown):
+    project, _ = layout
+    expected = (
+        rf"config/config\.yaml, key {re.escape(key)}: {re.escape(repr(shown))} resolves to "
+        rf"'{re.escape(os.path.realpath(project / shown))}', outside the allowed data roots"
+    )
+    with pytest.raises(TesseraInputError, match=expected):
+        check_config_paths(config, ["a1"], base_dir=project)
+
+
+def test_a_labels_template_is_checked_for_every_dataset(layout):
+    project, outside = layout
+    (project / "truth").mkdir()
+    (project / "truth" / "a2").symlink_to(outside, target_is_directory=True)  # one link out
+    config = {
+        "datasets": "config/datasets.tsv",
+        "data_roots": [],
+        "targets": {"mito": {"annotations": {"labels": "truth/{dataset}/labels.tif"}}},
+    }
+    check_config_paths(config, ["a1"], base_dir=project)
+    with pytest.raises(
+        TesseraInputError, match=r"'truth/a2/labels\.tif' resolves to .*mnt/em/labels\.tif'"
+    ):
+        check_config_paths(config, ["a1", "a2"], base_dir=project)
+    config["data_roots"] = ["../mnt/em"]  # relative to the project folder
+    check_config_paths(config, ["a1", "a2"], base_dir=project)
+
+
+def test_shipped_config_paths_lie_inside_the_project(repo, schemas, shipped_config):
+    config = load_config(shipped_config, schemas / "config.schema.yaml")
+    ids = ["tn1", "cd1"]
+    assert len(config_paths(config, ids)) == 2 * len(config["targets"])
+    check_config_paths(config, ids, base_dir=repo)
+
+
+def test_every_path_key_of_the_config_schema_is_held_to_the_data_roots(schemas):
+    # Every string setting of the schema is either a path that is checked against the roots or
+    # named here as something else, so a new path key cannot slip past the check unnoticed.
+    not_paths = {
+        "study.name",
+        "statistics.reference_condition",
+        "data_roots[]",  # the roots themselves
+        "targets.*.annotated_datasets[]",  # dataset ids
+        "targets.*.train_datasets[]",
+    }
+
+    def strings(node, where):
+        if isinstance(node, dict):
+            if node.get("type") in ("string", ["string", "null"]):
+                yield where
+            for key, sub in (node.get("properties") or {}).items():
+                yield from strings(sub, f"{where}.{key}" if where else key)
+            extra = node.get("additionalProperties")
+            if isinstance(extra, dict) and extra.get("type") == "object":
+                yield from strings(extra, f"{where}.*")
+            if isinstance(node.get("items"), dict):
+                yield from strings(node["items"], f"{where}[]")
+
+    schema = yaml.safe_load((schemas / "config.schema.yaml").read_text())
+    paths = set(strings(schema, "")) - not_paths
+    config = {
+        "targets": {
+            "a": {"annotations": {"labels": "{dataset}.tif"}},
+            "b": {"annotations": {"painted": {"points": "p.tsv", "masks": "m"}}},
+        }
+    }
+    checked = {"datasets"} | {
+        re.sub(r"^targets\.[ab]\.", "targets.*.", key) for key, _ in config_paths(config, ["d"])
+    }
+    assert paths == checked, sorted(paths ^ checked)
 
 
 def test_data_roots_go_through_the_schema(schemas, shipped_config):
@@ -354,3 +496,52 @@ def test_data_roots_go_through_the_schema(schemas, shipped_config):
         TesseraInputError, match=r"key data_roots: '/mnt/em' is not of type 'array'"
     ):
         load_config(config, schemas / "config.schema.yaml")
+
+
+INNER = HEADER + "\tinternal_path"
+
+
+@pytest.mark.parametrize(
+    ("row", "message"),
+    [
+        (
+            "a1\tctrl\tm1\tstack.tif\thdf5\t40\t8\t8\t\t",
+            r"row 2: column internal_path is blank; format hdf5 and n5 rows need the array's path "
+            r"inside the file \(e\.g\. volumes/raw\)",
+        ),
+        (
+            "a1\tctrl\tm1\tstack.tif\tn5\t40\t8\t8\t\t",
+            r"row 2: column internal_path is blank; format hdf5 and n5 rows need",
+        ),
+        (
+            "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t\tvolumes/raw",
+            r"row 2: column internal_path must be blank for this format: only hdf5, n5 and zarr "
+            r"files hold arrays at a path inside them",
+        ),
+        (
+            "a1\tctrl\tm1\tstack.tif\thdf5\t40\t8\t8\t\tvolumes/../../raw",
+            r"row 2: column internal_path must not contain '\.\.' steps",
+        ),
+    ],
+)
+def test_internal_path_column_is_checked_per_format(tmp_path, schemas, row, message):
+    (tmp_path / "stack.tif").write_bytes(b"")
+    path = _sheet(tmp_path, row, header=INNER)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(path) in str(info.value)
+
+
+def test_internal_path_column_is_optional_for_zarr_and_absent_for_old_sheets(tmp_path, schemas):
+    (tmp_path / "stack.tif").write_bytes(b"")
+    rows = [
+        "a1\tctrl\tm1\tstack.tif\tzarr\t40\t8\t8\t\t",
+        "a2\tctrl\tm2\tstack.tif\tzarr\t40\t8\t8\t\t/volumes/raw",
+        "a3\tctrl\tm3\tstack.tif\thdf5\t40\t8\t8\t\tvolumes/raw",
+    ]
+    sheet = load_datasets(
+        _sheet(tmp_path, *rows, header=INNER), schemas / "datasets.schema.yaml", base_dir=tmp_path
+    )
+    assert sheet["internal_path"].tolist() == [None, "/volumes/raw", "volumes/raw"]
+    old = load_datasets(_sheet(tmp_path, GOOD), schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert old.loc["a1", "internal_path"] is None  # the schema's default

@@ -2,10 +2,14 @@
 
 import hashlib
 import json
+import re
 
 import pandas as pd
 
 from tessera.io.digests import file_sha256
+from tessera.statistics import compare_conditions
+from tessera.workflow.files.comparison_table import write_comparison_table
+from tessera.workflow.files.qc_table import write_qc_table
 from tessera.workflow.jobs.audit import audit_job
 from tessera.workflow.jobs.checksum_inputs import checksum_inputs_job
 from tessera.workflow.jobs.methods import methods_job
@@ -204,3 +208,188 @@ def test_provenance_entries_hash_small_files_and_identify_large_stores_by_their_
     )
     (store / "0" / "tessera-checksums.json").unlink()
     assert "not_hashed" in _file_entry({"name": "s", "path": str(store)}, full_hash_bytes=100)
+
+
+# --- the paragraph for every study shape: words where numbers are missing, never nan ---
+
+
+def methods_inputs(tmp_path, comparison_table, sheet, *, reference=None, qc_rows=None):
+    """Everything methods_job reads, written to tmp_path; the comparison as given."""
+    scores = tmp_path / "scores.tsv"
+    pd.DataFrame(
+        {
+            "role": ["validation", "test"],
+            "tiles": [4, 5],
+            "threshold": [0.5, 0.5],
+            "precision": [0.9, 0.9],
+            "recall": [0.9, 0.9],
+            "f1": [0.9, 0.9],
+            "jaccard": [0.8, 0.8],
+        }
+    ).to_csv(scores, sep="\t", index=False)
+    settings = tmp_path / "objects.json"
+    settings.write_text(
+        json.dumps(
+            {
+                "high": 0.5,
+                "low": 0.5,
+                "open_radius_nm": 0,
+                "close_radius_nm": 0,
+                "fill_holes": False,
+                "min_volume_um3": 0,
+                "max_volume_um3": None,
+                "connectivity": 26,
+            }
+        )
+    )
+    comparison = tmp_path / "comparison.tsv"
+    write_comparison_table(comparison, comparison_table)
+    qc = tmp_path / "qc.tsv"
+    write_qc_table(
+        pd.DataFrame(qc_rows or {"z": [0, 1], "reason": ["", ""], "excluded": [False, False]}),
+        qc,
+    )
+    sums = tmp_path / "inputs.sha256"
+    sums.write_text("ab12  data/a.tif\n")
+    cascade = {
+        "stages": 1,
+        "levels": 1,
+        "classifier": "mlp",
+        "sigmas": [1.0],
+        "coarse_sigmas": [1.0],
+        "stencil_radii": [1],
+        "folds": 2,
+        "samples_per_tile": 10,
+        "seed": 0,
+    }
+    sections = {
+        "ingest": {},
+        "pyramid": {"levels": 2},
+        "statistics": {"confidence": 0.95, "reference_condition": reference},
+        "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+        "targets": {
+            "nuclei": {
+                "downsample": 8,
+                "cascade": cascade,
+                "tiles": {"size": 64},
+                "split": {"guard_sections": 1},
+            }
+        },
+    }
+    out = tmp_path / "methods.md"
+    methods_job(
+        sections,
+        sheet,
+        {"nuclei": scores},
+        {"nuclei": [settings]},
+        {"nuclei": comparison},
+        [sums],
+        [qc],
+        out,
+    )
+    text = out.read_text()
+    assert not re.search(r"\bnan\b", text, re.IGNORECASE)  # no number a reader cannot use
+    return " ".join(text.split())  # sentences may wrap
+
+
+def comparison_of(animals, reference="warm", conditions=None):
+    table = compare_conditions(
+        animals,
+        measures=["volume_um3", "region_objects"],
+        reference=reference,
+        conditions=conditions,
+    )
+    table.insert(0, "target", "nuclei")
+    return table
+
+
+def sheet_of(conditions):
+    return {f"d{k}": {"condition": c, "subject": f"m{k}"} for k, c in enumerate(conditions)}
+
+
+def test_methods_for_one_condition_says_nothing_was_compared(tmp_path):
+    animals = pd.DataFrame(
+        {"subject": ["m0", "m1"], "condition": "warm", "volume_um3": [1.0, 2.0]}
+    ).assign(region_objects=[3.0, 4.0])
+    text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm", "warm"]))
+    assert "2 datasets from 2 animals in 1 condition (warm) were converted" in text
+    assert "The study has one condition, so nothing was compared" in text
+    assert "With one condition (warm) nothing was compared" in text
+
+
+def test_methods_without_whole_objects_and_one_animal_per_condition_say_why_in_words(tmp_path):
+    # The demo's nuclei: every object touches the volume border, one animal per condition.
+    animals = pd.DataFrame(
+        {
+            "subject": ["m0", "m1"],
+            "condition": ["warm", "cold"],
+            "volume_um3": [float("nan")] * 2,
+            "region_objects": [2.0, 3.0],
+        }
+    )
+    text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm", "cold"]))
+    assert (
+        "volume_um3 cold vs warm: not compared (no animal in 'cold' or 'warm' has a whole object "
+        "to measure)" in text
+    )
+    assert (
+        "region_objects cold vs warm: difference 1 (1 vs 1 animals; no interval: only 1 animal "
+        "in 'cold' and 'warm', and an interval needs 2 per condition)" in text
+    )
+
+
+def test_methods_name_the_reference_for_three_conditions(tmp_path):
+    animals = pd.DataFrame(
+        {
+            "subject": [f"m{k}" for k in range(7)],
+            "condition": ["warm", "warm", "warm", "cold", "cold", "hot", "hot"],
+            "volume_um3": [1.0, 1.1, 0.9, 1.3, 1.4, 1.2, 1.1],
+            "region_objects": [3.0, 4.0, 5.0, 6.0, 7.0, 4.0, 4.5],
+        }
+    )
+    # the sheet lists cold first: warm is the reference only because the config says so
+    sheet = sheet_of(["cold", "warm", "warm", "warm", "cold", "hot", "hot"])
+    table = comparison_of(animals, reference="warm", conditions=["warm", "cold", "hot"])
+    text = methods_inputs(tmp_path, table, sheet, reference="warm")
+    assert (
+        "Each other condition (cold, hot) was compared with the reference condition warm "
+        "(set in the config)" in text
+    )
+    assert "volume_um3 cold vs warm: ratio" in text and "volume_um3 hot vs warm: ratio" in text
+    assert "interval unreliable: only 2 animals in 'cold'" in text
+
+
+def test_methods_count_qc_flags_per_reason(tmp_path):
+    # Reasons are quoted as the QC table holds them, including kinds the text does not know,
+    # most frequent first.
+    rows = {
+        "z": list(range(6)),
+        "reason": ["", "flat", "flat", "blurred;shift", "missing", ""],
+        "excluded": [False, True, True, True, True, False],
+    }
+    animals = pd.DataFrame(
+        {"subject": ["m0"], "condition": ["warm"], "volume_um3": [1.0], "region_objects": [1.0]}
+    )
+    text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm"]), qc_rows=rows)
+    assert (
+        "QC flagged 4 of 6 sections (2 flat, 1 blurred, 1 missing, 1 shift; a section can have "
+        "several reasons), which were excluded from training" in text
+    )
+    assert "1 dataset from 1 animal in 1 condition (warm) was converted" in text
+
+
+def test_methods_say_flagged_sections_were_kept_when_exclusion_is_off(tmp_path):
+    # qc.exclude_flagged false: the QC table still names reasons, but excludes nothing
+    rows = {
+        "z": list(range(4)),
+        "reason": ["", "blurred", "", "intensity"],
+        "excluded": [False, False, False, False],
+    }
+    animals = pd.DataFrame(
+        {"subject": ["m0"], "condition": ["warm"], "volume_um3": [1.0], "region_objects": [1.0]}
+    )
+    text = methods_inputs(tmp_path, comparison_of(animals), sheet_of(["warm"]), qc_rows=rows)
+    assert (
+        "QC flagged 2 of 4 sections (1 blurred, 1 intensity), which were kept (exclusion "
+        "switched off)." in text
+    )

@@ -29,7 +29,7 @@ from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.predict import plan_shards
+from tessera.predict import halo_overhead, plan_shards
 from tessera.probability_encoding import encode_probability
 from tessera.workflow.jobs import predict
 from tessera.workflow.jobs.predict import predict_shard_job, shard_plan_job, stitch_job
@@ -135,7 +135,9 @@ def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sig
 
 def test_plan_tiles_the_volume_once_on_the_level_grid():
     plan = plan_shards((7, 300, 250), block=(3, 100, 90), halo=40, align=8, jobs=4)
-    assert plan["block"] == [3, 104, 96]  # rounded up to the 2^L grid
+    # at most the block rounded up to the 2^L grid (104, 96); 250 px in x need 3 such blocks,
+    # made near-equal (88, 88, 74) rather than two full ones and a strip
+    assert plan["block"] == [3, 104, 88]
     cover = np.zeros((7, 300, 250), int)
     for z0, z1, y0, y1, x0, x1 in plan["blocks"]:
         assert y0 % 8 == 0 and x0 % 8 == 0
@@ -143,6 +145,42 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
     assert (cover == 1).all()
     shared = sorted(i for job in plan["jobs"] for i in job)
     assert shared == list(range(len(plan["blocks"]))) and len(plan["jobs"]) == 4
+
+
+@pytest.mark.parametrize(
+    "shape, block, jobs",
+    [
+        ((64, 64, 64), (8, 1024, 1024), 2),  # a volume smaller than a block
+        ((2, 1100, 300), (2, 1024, 1024), 1),  # just over one block in y
+        ((3, 70, 90), (8, 512, 512), 3),  # fewer sections than jobs x blocks
+        ((5, 1000, 1000), (2, 300, 300), 4),
+    ],
+)
+def test_blocks_are_sized_to_the_volume(shape, block, jobs):
+    # Geometry facts: a block of at most b px cannot cover n px in fewer than ceil(n / b)
+    # blocks; each block is read with the halo on both sides, so the windows cover
+    # (y + 2 halo)(x + 2 halo) px per section, counted here block by block.
+    halo, align = 40, 8
+    plan = plan_shards(shape, block=block, halo=halo, align=align, jobs=jobs)
+    most = [block[0]] + [-(-b // align) * align for b in block[1:]]
+    cover = np.zeros(shape, int)
+    window = 0
+    ys, xs = set(), set()
+    for z0, z1, y0, y1, x0, x1 in plan["blocks"]:
+        cover[z0:z1, y0:y1, x0:x1] += 1
+        assert z1 - z0 <= most[0] and y1 - y0 <= most[1] and x1 - x0 <= most[2]
+        ys.add((y0, y1))
+        xs.add((x0, x1))
+        window += (z1 - z0) * (y1 - y0 + 2 * halo) * (x1 - x0 + 2 * halo)
+    assert (cover == 1).all()
+    assert plan["block"][1] <= shape[1] and plan["block"][2] <= shape[2]  # never above the volume
+    assert len(ys) == -(-shape[1] // most[1]) and len(xs) == -(-shape[2] // most[2])
+    for edges in (ys, xs):  # near-equal: no strip much thinner than the others
+        sizes = [b - a for a, b in edges]
+        assert max(sizes) - min(sizes) <= align * len(sizes)
+    assert halo_overhead(plan) == pytest.approx(window / np.prod(shape))
+    # every job has work while there are at least as many sections as jobs
+    assert all(plan["jobs"][j] for j in range(min(jobs, shape[0] * len(ys) * len(xs))))
 
 
 @pytest.mark.parametrize(
@@ -380,8 +418,14 @@ def test_shard_job_with_too_little_memory_stops_before_it_starts(study, tmp_path
             mem_mb=needed - 1,
         )
     message = str(refused.value)
+    # the 70 x 90 sections are cut into near-equal blocks of at most 64 px: the largest is named
+    largest = max(
+        ([b[1] - b[0], b[3] - b[2], b[5] - b[4]] for b in predict.read_plan(plan)["blocks"]),
+        key=np.prod,
+    )
+    assert largest == [5, 36, 46]
     assert message.startswith(
-        f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of [5, 64, 64] voxels"
+        f"{plan}: shard job 0 needs about {needed} MB of memory (blocks of {largest} voxels"
     )
     assert f"), but rule predict_shard was given mem_mb={needed - 1}; " in message
     assert message.endswith(", or make predict.block smaller")

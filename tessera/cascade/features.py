@@ -234,8 +234,11 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         padded, core = _mirror_padded(data, feature_radius(sigmas))
         features = filter_bank(padded, sigmas=sigmas, spacing=spacing, mirror_edges=False)
         return np.ascontiguousarray(features[core])
-    # each channel goes straight into the output as it is made (no list of arrays, no stacking copy)
-    out = np.empty(data.shape + (len(feature_names(sigmas, ndim=ndim)),), dtype=np.float32)
+    # each channel goes straight into the output as it is made (no list of arrays, no stacking
+    # copy), into a plane of its own: the channels-last result is a view of channel planes, so
+    # writing a channel is one contiguous copy
+    planes = np.empty((len(feature_names(sigmas, ndim=ndim)),) + data.shape, dtype=np.float32)
+    out = np.moveaxis(planes, 0, -1)
     channels = _ChannelWriter(out)
     channels.append(data)
     smoothed_all = [

@@ -6,6 +6,7 @@ stencil samples of its context maps).
 import numpy as np
 
 from tessera.block_reduce import block_mean
+from tessera.cascade.classifiers import CHUNK_ROWS
 from tessera.cascade.features import (
     feature_names,
     filter_bank,
@@ -170,23 +171,107 @@ def _stencil_offsets(radii):
     return offsets
 
 
-def node_matrix(frame, node, margin):
-    """(H, W, C) float32 features of `node` over the core + margin: image features, then the
-    stencil samples of every context map, written straight into one array."""
+def _row_sources(frame, node, margin):
+    """The (H, W, k) arrays whose channels, side by side, are the columns of `node`'s features
+    over the core + margin: the image features, then one view per stencil sample of every
+    context map (no copies)."""
     feats = frame.features(node[1], margin)
-    maps = frame.context_maps(node, margin)
+    h, w, _ = feats.shape
+    sources = [feats]
     offsets = _stencil_offsets(frame.spec.stencil_radii)
-    h, w, c = feats.shape
-    out = np.empty((h, w, c + len(maps) * len(offsets)), dtype=np.float32)
-    out[..., :c] = feats
-    channel = c
-    for prob, scale, cut in maps:
+    for prob, scale, cut in frame.context_maps(node, margin):
         # `cut` >= the widest offset, so every sample lies inside the map: no padding needed
         for dy, dx in offsets:
             y0, x0 = cut + dy * scale, cut + dx * scale
-            out[..., channel] = prob[y0 : y0 + h, x0 : x0 + w]
-            channel += 1
+            sources.append(prob[y0 : y0 + h, x0 : x0 + w, np.newaxis])
+    return sources
+
+
+def node_matrix(frame, node, margin):
+    """(H, W, C) float32 features of `node` over the core + margin: image features, then the
+    stencil samples of every context map, written straight into one array."""
+    sources = _row_sources(frame, node, margin)
+    h, w, _ = sources[0].shape
+    out = np.empty((h, w, sum(s.shape[2] for s in sources)), dtype=np.float32)
+    channel = 0
+    for source in sources:
+        out[..., channel : channel + source.shape[2]] = source
+        channel += source.shape[2]
     return out
+
+
+# Pixels classified at once by :func:`node_map`. A multiple of 192 (a multiple of the row
+# blocking of the BLAS matrix-product kernels, 16 to 64 rows): see :func:`_bands`.
+BAND_ROWS = 192 * 48
+
+
+def _bands(n, band=BAND_ROWS):
+    """Row ranges [s, t) covering 0..n, each inside one classifier chunk of ``CHUNK_ROWS``.
+
+    A classifier's BLAS product can round a row differently with the row's place in the call
+    (its place in the kernel's row blocking, and whether it falls in the short last block). The
+    classifier predicts a whole matrix in chunks of ``CHUNK_ROWS`` rows; cutting each chunk from
+    its start into bands of a multiple of the blocking, the last band ending where the chunk
+    ends, gives every row the same place as there, so the map is bit for bit the one of the
+    whole matrix. A short remainder joins the band before it (a call of a few rows may take
+    another kernel).
+
+    Examples
+    --------
+    >>> list(_bands(9, band=4))
+    [(0, 4), (4, 9)]
+    """
+    for chunk in range(0, n, CHUNK_ROWS):
+        end, start = min(chunk + CHUNK_ROWS, n), chunk
+        while start < end:
+            stop = start + band
+            if end - stop < band // 2:
+                stop = end
+            yield start, stop
+            start = stop
+
+
+def _fill_rows(x, sources, start, stop):
+    """Pixels start..stop of the flattened (H, W) grid as rows of `x`: every source's channels
+    into its columns, in order (a head of one image row, whole rows, a tail)."""
+    w = sources[0].shape[1]
+    r0, a = divmod(start, w)
+    r1, b = divmod(stop, w)
+    width = x.shape[1]
+    column = 0
+    for source in sources:
+        cols = slice(column, column + source.shape[2])
+        if r0 == r1:
+            x[:, cols] = source[r0, a:b]
+        else:
+            head = w - a
+            x[:head, cols] = source[r0, a:]
+            body = (r1 - r0 - 1) * w
+            # a run of rows of the C-contiguous band: the reshape is a view
+            x[head : head + body].reshape(r1 - r0 - 1, w, width)[..., cols] = source[r0 + 1 : r1]
+            if b:
+                x[head + body :, cols] = source[r1, :b]
+        column += source.shape[2]
+
+
+def node_map(frame, node, margin, classifier):
+    """(H, W) float32 output of `classifier` on `node`'s features over the core + margin.
+
+    The same numbers as ``classifier.predict`` on the whole :func:`node_matrix`, computed band
+    by band (:func:`_bands`) in one reused buffer: the full matrix (tens of bytes per feature
+    and pixel) is never made.
+    """
+    sources = _row_sources(frame, node, margin)
+    h, w, _ = sources[0].shape
+    n = h * w
+    width = sum(s.shape[2] for s in sources)
+    out = np.empty(n, dtype=np.float32)
+    buffer = np.empty((min(n, BAND_ROWS + BAND_ROWS // 2), width), dtype=np.float32)
+    for start, stop in _bands(n):
+        x = buffer[: stop - start]
+        _fill_rows(x, sources, start, stop)
+        out[start:stop] = classifier.predict(x)
+    return out.reshape(h, w)
 
 
 def node_feature_names(spec, stage, level):
@@ -230,9 +315,5 @@ def ensure_maps(frame, node, models, fold):
     """Compute (and cache in the frame) the maps of every ancestor of `node`, not `node` itself."""
     for a in ancestors(frame.spec, node)[:-1]:
         if a not in frame.maps:
-            x = node_matrix(frame, a, frame.margins[a])
-            clf = models[a].for_tile(fold)
-            frame.maps[a] = (
-                clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2]),
-                frame.margins[a],
-            )
+            margin = frame.margins[a]
+            frame.maps[a] = (node_map(frame, a, margin, models[a].for_tile(fold)), margin)

@@ -4,14 +4,14 @@ memory one frame takes."""
 import numpy as np
 from scipy import ndimage
 
-from tessera.cascade.classifiers import CHUNK_ROWS
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
+    BAND_ROWS,
     ensure_maps,
     make_frame,
     mirrored_stack,
     node_feature_names,
-    node_matrix,
+    node_map,
 )
 from tessera.cascade.geometry import (
     feature_halo,
@@ -57,8 +57,7 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
     final = (spec.stages, 0)
     ensure_maps(frame, final, models, -1)
     margin = frame.margins[final]
-    x = node_matrix(frame, final, margin)
-    prob = models[final].classifier.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
+    prob = node_map(frame, final, margin, models[final].classifier)
     if output_sigma > 0:
         # the map covers core + margin >= the kernel's reach: every core pixel sees real values
         prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
@@ -81,8 +80,8 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
     return predict_frame(models, image, (h, w), output_sigma=output_sigma)
 
 
-# Per-row working memory of a classifier on one chunk of rows beyond the rows themselves: the
-# finite check (1 byte per feature) plus hidden layers or per-tree descent state (float32/int64).
+# Per-row working memory of a classifier on one band of rows beyond the rows themselves and
+# their finite check: hidden layers or per-tree descent state (float32/int64).
 _CLASSIFIER_ROW_BYTES = 256
 
 
@@ -96,8 +95,8 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
 
     Follows the frame's geometry: the image levels (with neighbouring sections), every level's
     cached image features over the widest margin its nodes read, every node's map, and the
-    larger of the filter bank's temporaries and the biggest node's feature matrix with its
-    context maps and one classifier chunk. Everything is float32.
+    larger of the filter bank's temporaries and the biggest node's context maps with one band
+    of its feature rows and the classifier's work on it. Everything is float32.
 
     Examples
     --------
@@ -138,6 +137,7 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
         context = sum(
             4 * rows(node, read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node)
         )
-        chunk = min(rows(node), CHUNK_ROWS) * (width + _CLASSIFIER_ROW_BYTES)
-        work = max(work, 4 * rows(node) * width + context + chunk)
+        # one band of feature rows (float32), the classifier's finite check and working rows
+        band = min(rows(node), BAND_ROWS + BAND_ROWS // 2)
+        work = max(work, context + band * (5 * width + _CLASSIFIER_ROW_BYTES))
     return int(image + cached + maps + max(filters, work))

@@ -24,11 +24,12 @@ import zarr
 from PIL import Image
 
 from tessera.errors import TesseraInputError
+from tessera.io.containers import open_container
 from tessera.io.omezarr import open_image
 
 __all__ = ["FORMATS", "open_stack"]
 
-FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr")
+FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr", "hdf5", "n5")
 _SLICE_SUFFIXES = (".tif", ".tiff", ".png")
 
 
@@ -186,15 +187,18 @@ class _Zarr(_Source):
 _READERS = {"tiff_stack": _TiffStack, "slice_folder": _SliceFolder, "mrc": _Mrc, "zarr": _Zarr}
 
 
-def open_stack(path, fmt):
+def open_stack(path, fmt, *, internal_path=None):
     """Open an EM stack for reading one section at a time.
 
     Parameters
     ----------
     path : str or Path
         File or folder of the stack.
-    fmt : {'tiff_stack', 'slice_folder', 'mrc', 'zarr'}
-        Its format (see the module docs).
+    fmt : {'tiff_stack', 'slice_folder', 'mrc', 'zarr', 'hdf5', 'n5'}
+        Its format (see the module docs; hdf5, n5 and plain zarr arrays are read by
+        :mod:`tessera.io.hdf5_stacks` and :mod:`tessera.io.chunked_stacks`).
+    internal_path : str, optional
+        The array inside an hdf5, n5 or zarr container (required for hdf5 and n5).
 
     Returns
     -------
@@ -213,13 +217,15 @@ def open_stack(path, fmt):
     (2, 3, 5) uint16 [15, 16, 17, 18, 19]
     """
     path = Path(path)
-    if fmt not in _READERS:
+    if fmt not in FORMATS:
         raise TesseraInputError(
             f"unknown format {fmt!r}; expected one of {', '.join(FORMATS)}", source=path
         )
     if not path.exists():
         raise TesseraInputError("file or folder not found", source=path)
-    source = _READERS[fmt](path)
+    source = open_container(path, fmt, internal_path=internal_path)
+    if source is None:
+        source = _READERS[fmt](path)
     problem = None
     if not np.issubdtype(source.dtype, np.integer) and not np.issubdtype(source.dtype, np.floating):
         problem = f"expected integer or float pixels, got {source.dtype}"

@@ -9,7 +9,7 @@ from tessera.errors import TesseraInputError
 from tessera.tiles.checks import as_int
 from tessera.tiles.registry import validate_registry
 
-__all__ = ["split_tiles"]
+__all__ = ["held_out_sections", "split_tiles"]
 
 
 def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0):
@@ -121,3 +121,50 @@ def _split_group(z, fr, guard, descending, test_first):
         roles[np.isin(pos, held_levels[:k])] = near
         roles[np.isin(pos, held_levels[k:])] = far
     return roles.tolist()
+
+
+def held_out_sections(registry, dataset, *, guard_sections, role="test"):
+    """Whole sections of a dataset that may be scored as held out: the z range of its `role`
+    tiles, without any section nearer than `guard_sections` to a training tile or holding a
+    tile of another role.
+
+    Scoring whole sections (3D objects) uses more than the tiles themselves, so every section of
+    the range must keep the split's distance from training; with ``guard_sections`` 0 a
+    training tile's own section is still left out.
+
+    Parameters
+    ----------
+    registry : pandas.DataFrame
+        A split registry (``dataset``, ``z``, ``role``), as :func:`split_tiles` returns it.
+    dataset : str
+    guard_sections : int
+        The split's guard distance, in the registry's z grid.
+    role : str, optional
+        ``"test"`` or ``"validation"``.
+
+    Returns
+    -------
+    list of int
+        Sections in the registry's z grid, ascending; empty when the dataset has no such tile.
+
+    Examples
+    --------
+    >>> reg = pd.DataFrame({"dataset": "d", "z": [0, 1, 2, 4, 6, 7, 9],
+    ...     "role": ["train", "train", "guard", "validation", "test", "test", "test"]})
+    >>> held_out_sections(reg, "d", guard_sections=2)
+    [6, 7, 8, 9]
+    """
+    guard = as_int(guard_sections, low=0, where="guard_sections", source=None)
+    rows = registry[registry["dataset"] == dataset]
+    z = rows["z"].to_numpy(dtype=np.int64)
+    roles = rows["role"].to_numpy(dtype=object)
+    held = z[roles == role]
+    if held.size == 0:
+        return []
+    candidates = np.arange(held.min(), held.max() + 1)
+    train = z[roles == "train"]
+    others = z[(roles != role) & (roles != "train")]
+    if train.size:
+        distance = np.abs(candidates[:, None] - train[None, :]).min(axis=1)
+        candidates = candidates[distance >= max(guard, 1)]
+    return [int(v) for v in candidates if v not in set(others.tolist())]

@@ -53,6 +53,8 @@ _Validator = _with_defaults(jsonschema.Draft202012Validator)
 
 
 def _describe(error):
+    if isinstance(error.schema, dict) and "x-message" in error.schema:
+        return error.schema["x-message"]  # a schema's own wording for a rule between keys
     where = ".".join(str(p) for p in error.absolute_path) or "(top level)"
     if error.validator == "additionalProperties":
         return f"key {where}: {error.message} (check the spelling; allowed keys are in the schema)"
@@ -120,6 +122,33 @@ def _check_related_keys(config, source):
             raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
 
 
+def check_reference_condition(reference, conditions, *, source="config/config.yaml"):
+    """Refuse a ``statistics.reference_condition`` that is not a condition of the sheet.
+
+    Parameters
+    ----------
+    reference : str or None
+        The configured reference; None means the first condition of the sheet (always valid).
+    conditions : sequence of str
+        The sheet's ``condition`` column (any order, repeats allowed).
+
+    Examples
+    --------
+    >>> check_reference_condition(None, ["warm", "cold"])
+    >>> check_reference_condition("sham", ["warm", "cold", "warm"])
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: key statistics.reference_condition: 'sham' is not a condition of the datasets sheet; its conditions are ['warm', 'cold']
+    """
+    known = list(dict.fromkeys(conditions))
+    if reference is not None and reference not in known:
+        raise TesseraInputError(
+            f"key statistics.reference_condition: {reference!r} is not a condition of the "
+            f"datasets sheet; its conditions are {known}",
+            source=source,
+        )
+
+
 def _parse_number(text, *, where):
     if text.strip() == "":
         return None
@@ -132,7 +161,15 @@ def _parse_number(text, *, where):
     return value
 
 
-def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, data_roots=()):
+def load_datasets(
+    sheet_path,
+    schema_path,
+    *,
+    base_dir=".",
+    generated_dir=None,
+    data_roots=(),
+    config_source="config/config.yaml",
+):
     """Read and validate the datasets sheet.
 
     Parameters
@@ -149,7 +186,10 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, 
         exist yet.
     data_roots : sequence of str or Path, optional
         Folders beyond `base_dir` and the sheet's own folder that ``path`` and ``roi_mask`` may
-        point into (relative ones are taken from `base_dir`); see :func:`allowed_roots`.
+        point into (relative ones are taken from `base_dir`); see :func:`allowed_roots`. The sheet
+        itself must lie under `base_dir` or one of these.
+    config_source : str, optional
+        The config file that named the sheet (key ``datasets``), named when the sheet is refused.
 
     Returns
     -------
@@ -157,6 +197,13 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, 
         One row per dataset, indexed by ``dataset``; voxel sizes as float or None.
     """
     sheet_path = Path(sheet_path)
+    base = Path(base_dir).resolve()
+    _check_inside(
+        sheet_path,
+        base_dir,
+        [base, *((base / r).resolve() for r in data_roots)],
+        source=f"{config_source}, key datasets",
+    )
     schema = read_yaml(schema_path)
     try:
         table = pd.read_csv(sheet_path, sep="\t", dtype=str, keep_default_na=False, comment=None)
@@ -175,8 +222,9 @@ def load_datasets(sheet_path, schema_path, *, base_dir=".", generated_dir=None, 
         for column in SHEET_NUMBER_COLUMNS:
             if column in record:
                 record[column] = _parse_number(record[column], where=f"{row_name}, column {column}")
-        if record.get("roi_mask") == "":
-            record["roi_mask"] = None
+        for column in ("roi_mask", "internal_path"):
+            if record.get(column) == "":
+                record[column] = None
         for column in ("condition", "subject"):
             if record.get(column) == "":
                 raise TesseraInputError(
@@ -222,13 +270,9 @@ def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
             value = row.get(column)
             if value is None:
                 continue
-            full = (base_dir / value).resolve()
-            if not any(full.is_relative_to(root) for root in roots):
-                raise TesseraInputError(
-                    f"{value!r} resolves to '{full}', outside the allowed data roots {[str(r) for r in roots]}; "
-                    "add its folder to data_roots in config/config.yaml",
-                    source=f"{sheet_path}, row {i + 2}, column {column}",
-                )
+            full = _check_inside(
+                value, base_dir, roots, source=f"{sheet_path}, row {i + 2}, column {column}"
+            )
             if generated is not None and full.is_relative_to(generated):
                 continue
             if not full.exists():
@@ -236,6 +280,70 @@ def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
                     f"column {column}: file or folder {value!r} not found",
                     source=f"{sheet_path}, row {i + 2}",
                 )
+
+
+def _check_inside(value, base_dir, roots, *, source):
+    """`value` resolved against `base_dir`; refused unless it lies in one of `roots`."""
+    full = (Path(base_dir) / value).resolve()
+    if not any(full.is_relative_to(root) for root in roots):
+        raise TesseraInputError(
+            f"{str(value)!r} resolves to '{full}', outside the allowed data roots "
+            f"{[str(r) for r in roots]}; add its folder to data_roots in config/config.yaml",
+            source=source,
+        )
+    return full
+
+
+def config_paths(config, dataset_ids):
+    """Every file or folder path the config names besides the sheet, with its key.
+
+    ``annotations.labels`` templates are filled in for every dataset id, so a per-dataset link
+    that leads elsewhere is seen.
+
+    Examples
+    --------
+    >>> cfg = {"targets": {"mito": {"annotations": {"labels": "truth/{dataset}.tif"}},
+    ...                    "er": {"annotations": {"painted": {"points": "p.tsv", "masks": "m"}}}}}
+    >>> config_paths(cfg, ["a1"])
+    [('targets.mito.annotations.labels', 'truth/a1.tif'), ('targets.er.annotations.painted.points', 'p.tsv'), ('targets.er.annotations.painted.masks', 'm')]
+    """
+    out = []
+    for name, target in (config.get("targets") or {}).items():
+        annotations = target.get("annotations") or {}
+        key = f"targets.{name}.annotations"
+        if "labels" in annotations:
+            out += [(f"{key}.labels", annotations["labels"].format(dataset=d)) for d in dataset_ids]
+        for field in ("points", "masks"):
+            if field in (annotations.get("painted") or {}):
+                out.append((f"{key}.painted.{field}", annotations["painted"][field]))
+    return out
+
+
+def check_config_paths(config, dataset_ids, *, base_dir=".", source="config/config.yaml"):
+    """Refuse a path key of the config that leads outside the allowed data roots.
+
+    The roots are those of the sheet's cells (:func:`allowed_roots`); the sheet itself is held
+    to them by :func:`load_datasets`. Paths need not exist yet (label volumes of the demo are
+    rendered by the workflow).
+
+    Parameters
+    ----------
+    config : dict
+        The validated config (``datasets``, ``data_roots``, ``targets``).
+    dataset_ids : sequence of str
+        The sheet's datasets, filled into ``{dataset}`` templates.
+    base_dir : str or Path, optional
+        The project folder relative paths start from.
+    source : str, optional
+        The config file, named in the error.
+    """
+    roots = allowed_roots(
+        Path(base_dir) / config["datasets"],
+        base_dir=base_dir,
+        data_roots=config.get("data_roots", ()),
+    )
+    for key, value in config_paths(config, dataset_ids):
+        _check_inside(value, base_dir, roots, source=f"{source}, key {key}")
 
 
 def sheet_spacing(row):

@@ -6,8 +6,10 @@ of :data:`CHUNK_ROWS` rows, and exports a fitted model as numeric arrays plus JS
 the fitting, the prediction of one chunk and the layout of its arrays.
 """
 
+import functools
+
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from tessera.errors import TesseraInputError
 
@@ -17,6 +19,14 @@ STATE_VERSION = 1
 
 # The `source` of errors about a stored model (its arrays and metadata).
 STATE_SOURCE = "classifier state"
+
+
+@functools.cache
+def _threadpools():
+    # Finding the loaded thread pools reads the process's memory map (milliseconds); prediction
+    # in bands sets the limit thousands of times, so the pools are found once. The BLAS a
+    # prediction uses is numpy's, loaded with numpy, before this first runs.
+    return ThreadpoolController()
 
 
 # ---------------------------------------------------------------------------------------------
@@ -278,7 +288,7 @@ class BinaryClassifier:
             raise TesseraInputError(f"this {self.kind} classifier is not fitted yet")
         X = _check_features_shape(X, n_features=self.n_features_, allow_empty=True)
         out = np.empty(X.shape[0], dtype=np.float32)
-        with threadpool_limits(limits=self.threads):
+        with _threadpools().limit(limits=self.threads):
             for start in range(0, X.shape[0], CHUNK_ROWS):
                 chunk = _as_float32_finite(X[start : start + CHUNK_ROWS])
                 out[start : start + chunk.shape[0]] = self._predict_chunk(chunk)

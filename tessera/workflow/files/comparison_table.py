@@ -5,8 +5,9 @@ import pandas as pd
 
 from tessera.io.atomic import write_table
 
-#: Columns that hold numbers but may be empty (no interval with fewer than 2 animals).
-NUMERIC = ("effect", "ci_low", "ci_high")
+#: Columns that hold numbers but may be empty (no interval with fewer than 2 animals, no mean
+#: for a condition without a whole object); the ``warning`` column says why in words.
+NUMERIC = ("mean", "reference_mean", "effect", "ci_low", "ci_high", "p_value")
 
 
 def write_comparison_table(path, table):
@@ -29,9 +30,10 @@ def read_comparison_table(path):
     """The comparison table written by :func:`write_comparison_table`.
 
     Text cells are kept as written (a condition named ``NA`` stays a name, an empty warning an
-    empty string); the effect and its interval are numbers, NaN where empty.
+    empty string); the columns of :data:`NUMERIC` that the table has are numbers, NaN where
+    empty. A study with one condition gives a table with its columns and no rows.
     """
     table = pd.read_csv(path, sep="\t", keep_default_na=False)
-    for col in NUMERIC:
+    for col in (c for c in NUMERIC if c in table.columns):
         table[col] = pd.to_numeric(table[col], errors="coerce")
     return table

@@ -93,18 +93,29 @@ def excluded_sections(qc_table, z_factor=1):
 
 
 def count_sections(qc_tables):
-    """Number of sections, and of excluded sections, over several QC tables.
+    """Sections checked, flagged and excluded over the QC tables, and how many per reason.
+
+    A section's ``reason`` lists its flags joined by ``;``; each is counted as written, so a
+    kind of flag added later is counted without a change here. A table without ``reason``
+    counts its excluded sections as flagged (reasons unknown).
 
     Examples
     --------
     >>> import io
-    >>> tables = [io.StringIO("z\\texcluded\\n0\\tFalse\\n1\\tTrue\\n"),
-    ...           io.StringIO("z\\texcluded\\n0\\tTrue\\n1\\tTrue\\n2\\tFalse\\n")]
+    >>> tables = [io.StringIO("z\\treason\\texcluded\\n0\\t\\tFalse\\n1\\tflat\\tTrue\\n"),
+    ...           io.StringIO("z\\treason\\texcluded\\n0\\tblurred;shift\\tTrue\\n1\\tflat\\tTrue\\n")]
     >>> count_sections(tables)
-    {'sections': 5, 'excluded': 3}
+    {'sections': 4, 'flagged': 3, 'excluded': 3, 'reasons': {'flat': 2, 'blurred': 1, 'shift': 1}}
     """
-    tables = [read_qc_table(path) for path in qc_tables]
-    return {
-        "sections": sum(len(t) for t in tables),
-        "excluded": sum(int(t["excluded"].sum()) for t in tables),
-    }
+    counts = {"sections": 0, "flagged": 0, "excluded": 0, "reasons": {}}
+    for path in qc_tables:
+        table = read_qc_table(path)
+        reasons = table["reason"].astype(str) if "reason" in table.columns else None
+        flagged = table["excluded"] if reasons is None else reasons.str.strip() != ""
+        counts["sections"] += len(table)
+        counts["flagged"] += int(flagged.sum())
+        counts["excluded"] += int(table["excluded"].sum())
+        for text in [] if reasons is None else reasons:
+            for reason in filter(None, (r.strip() for r in text.split(";"))):
+                counts["reasons"][reason] = counts["reasons"].get(reason, 0) + 1
+    return counts

@@ -3,7 +3,9 @@
 The stack is read one section at a time (:mod:`tessera.io.stacks`); nothing here holds more than
 about 32 MiB of sections in memory. Data other than 8-bit are mapped to uint8
 (:mod:`tessera.intensity`), and the mapping and the source are recorded in the image's metadata.
-The voxel size comes from the datasets sheet where given, else from the file header.
+The voxel size comes from the datasets sheet where given, else from the file header; for
+arrays in HDF5, N5 and zarr files a voxel size in their attributes comes first, and the sheet
+must agree with it (:func:`tessera.io.array_stacks.merge_spacing`).
 """
 
 import numpy as np
@@ -11,6 +13,7 @@ import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.intensity import choose_mapping, to_uint8
+from tessera.io.array_stacks import MissingChunkError, merge_spacing
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.stacks import open_stack
@@ -56,10 +59,12 @@ def ingest_job(
     out_path,
     *,
     fmt,
+    internal_path=None,
     spacing=(None, None, None),
     name="raw",
     chunks=(1, 512, 512),
     percentiles=(0.1, 99.9),
+    missing_chunks="refuse",
 ):
     """Convert an EM stack into a single-level OME-Zarr 0.5 image of uint8 sections.
 
@@ -71,22 +76,37 @@ def ingest_job(
         The OME-Zarr store to create; written under a temporary name and renamed.
     fmt : str
         One of :data:`tessera.io.stacks.FORMATS`.
+    internal_path : str, optional
+        The array inside an hdf5, n5 or zarr container.
     spacing : sequence of 3 (float or None), optional
-        Voxel size z, y, x in nm; None takes the value from the file header.
+        Voxel size z, y, x in nm; None takes the value from the file header. A voxel size in
+        the attributes of an hdf5, n5 or zarr array is used instead, and a given value must
+        agree with it.
     name : str, optional
         Image name stored in the metadata.
     chunks : sequence of 3 int, optional
         Zarr chunk shape z, y, x (clipped to the image).
     percentiles : pair of float, optional
         Percentiles (in percent) mapped to 0 and 255 for data that are not uint8.
+    missing_chunks : {'refuse', 'fill_value'}, optional
+        A chunk missing from an hdf5, n5 or zarr array is refused, or read as the array's fill
+        value (for writers that leave out chunks holding only the fill value); the sections
+        read so are recorded in the image's metadata.
 
     Returns
     -------
     dict
         Summary: shape, spacing, source dtype and the intensity mapping used (None for uint8).
     """
-    source = open_stack(source_path, fmt)
+    if missing_chunks not in ("refuse", "fill_value"):
+        raise TesseraInputError(
+            f"missing_chunks must be 'refuse' or 'fill_value', got {missing_chunks!r}"
+        )
+    source = open_stack(source_path, fmt, internal_path=internal_path)
+    if hasattr(source, "missing_chunks"):  # arrays in containers (hdf5, n5, zarr)
+        source.missing_chunks = missing_chunks
     try:
+        spacing = merge_spacing(spacing, source)
         spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
         lo_p, hi_p = percentiles
         if not 0 <= lo_p < hi_p <= 100:
@@ -95,7 +115,10 @@ def ingest_job(
             )
         mapping = choose_mapping(source, percentiles=(lo_p, hi_p))
         chunks = tuple(int(min(c, s)) for c, s in zip(chunks, source.shape, strict=False))
-        extra = {"source": {"path": str(source_path), "format": fmt}, "intensity_mapping": mapping}
+        origin = {"path": str(source_path), "format": fmt}
+        if internal_path is not None:
+            origin["internal_path"] = internal_path
+        extra = {"source": origin, "intensity_mapping": mapping}
         with atomic_path(out_path) as tmp:
             group = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
             group.attrs.update(
@@ -108,7 +131,17 @@ def ingest_job(
                 name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES
             )
             _copy_sections(source, array, chunks[0], mapping)
+            filled = getattr(source, "sections_with_missing_chunks", None)
+            if filled:
+                origin["sections_with_missing_chunks"] = sorted(filled)
+                group.attrs.update({"tessera": extra})
             record_checksums(tmp)
+    except MissingChunkError as exc:
+        raise TesseraInputError(
+            f"{exc}; or, if its writer leaves out chunks that hold only the fill value "
+            "(zarr-python does by default), set ingest.missing_chunks: fill_value in "
+            "config/config.yaml"
+        ) from None
     finally:
         source.close()
     return {"shape": list(source.shape), "spacing": list(spacing), "intensity_mapping": mapping}

@@ -5,6 +5,7 @@ from tessera.methods import methods_text
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
 from tessera.workflow.files.object_table import read_object_settings
+from tessera.workflow.files.objects_3d import overall_objects_3d
 from tessera.workflow.files.qc_table import count_sections
 from tessera.workflow.files.scores import read_scores
 from tessera.workflow.versions import software_versions
@@ -19,6 +20,7 @@ def methods_job(
     checksums,
     qc_tables,
     out_path,
+    objects_3d=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
 
@@ -35,9 +37,10 @@ def methods_job(
     checksums : list of path
         The per-dataset checksum records.
     qc_tables : list of path
-        Section QC tables (to count excluded sections).
+        Section QC tables (to count the flagged and excluded sections, per reason).
+    objects_3d : dict, optional
+        Target → its 3D object scores table (targets annotated with label volumes).
     """
-    section_counts = count_sections(qc_tables)
     targets = config_sections["targets"]
     # every dataset's settings file is read (a damaged one fails here); the text quotes the first
     used = {t: [read_object_settings(p) for p in object_settings[t]][0] for t in targets}
@@ -48,9 +51,10 @@ def methods_job(
         scores={t: read_scores(scores[t]) for t in targets},
         object_settings=used,
         comparisons=tables,
-        section_counts=section_counts,
+        section_counts=count_sections(qc_tables),
         checksums=[pair for path in checksums for pair in read_input_checksums(path)],
         software=software_versions(),
+        objects_3d={t: overall_objects_3d(p) for t, p in (objects_3d or {}).items()},
     )
     write_text(out_path, text)
     return {"words": len(text.split())}

@@ -18,7 +18,13 @@ from tessera.io.atomic import atomic_path
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.store_checksums import record_checksums
-from tessera.predict import plan_fits_cascade, plan_shards, predict_block, shard_halo
+from tessera.predict import (
+    halo_overhead,
+    plan_fits_cascade,
+    plan_shards,
+    predict_block,
+    shard_halo,
+)
 from tessera.probability_encoding import encode_probability
 from tessera.pyramid import downsample_level
 from tessera.workflow.files.node_model import load_cascade, models_bytes
@@ -72,7 +78,12 @@ def shard_plan_job(
         }
     )
     write_plan(out_plan, plan)
-    return {"blocks": len(plan["blocks"]), "halo": plan["halo"], "block": plan["block"]}
+    return {
+        "blocks": len(plan["blocks"]),
+        "halo": plan["halo"],
+        "block": plan["block"],
+        "window_px_per_voxel": round(halo_overhead(plan), 3),
+    }
 
 
 def shard_memory_mb(plan, job, spec, model_paths):

@@ -3,7 +3,13 @@
 import math
 
 from tessera.io.atomic import atomic_path, write_table
-from tessera.statistics import plot_conditions, summarise_study
+from tessera.statistics import (
+    REGION_MEASURES,
+    describe_conditions,
+    sheet_conditions,
+    summarise_study,
+)
+from tessera.statistics_plot import plot_conditions
 from tessera.workflow.files.comparison_table import write_comparison_table
 from tessera.workflow.files.morphometry_tables import read_object_measures, read_region_densities
 from tessera.workflow.files.scores import read_scores
@@ -29,10 +35,11 @@ def statistics_job(
     *,
     target,
     measures,
+    out_conditions,
     reference=None,
     confidence=0.95,
 ):
-    """Per-animal summaries and condition comparisons of one target across the study.
+    """Per-animal summaries, per-condition descriptions and condition comparisons of one target.
 
     Parameters
     ----------
@@ -42,9 +49,16 @@ def statistics_job(
         Dataset id → ``{"condition": ..., "subject": ...}`` (from the sheet).
     scores : path
         Tile scores of the target; the test-tile F1 and Jaccard are printed beside every result.
+    out_conditions : path
+        Each measure per condition (:func:`~tessera.statistics.describe_conditions`): the
+        result of a study with one condition, where the comparison table has no rows.
     reference : str, optional
-        Condition the others are compared with (default: the first condition in the sheet).
+        ``statistics.reference_condition``: the condition the others are compared with
+        (default: the first condition in the sheet). One the sheet lacks is refused when the
+        workflow loads (:func:`tessera.workflow.config.check_reference_condition`), and by
+        :func:`~tessera.statistics.compare_conditions` before anything is written.
     """
+    conditions = sheet_conditions(datasets)
     objects = {d: read_object_measures(path) for d, path in object_tables.items()}
     regions = {d: read_region_densities(region_tables[d]) for d in object_tables}
     accuracy = _test_accuracy(scores)
@@ -59,9 +73,18 @@ def statistics_job(
         confidence=confidence,
     )
     write_table(out_animals, animals)
+    described = describe_conditions(
+        animals,
+        measures=[*measures, *(f"region_{m}" for m in REGION_MEASURES)],
+        conditions=conditions,
+    )
+    described.insert(0, "target", target)
+    write_table(out_conditions, described)
     write_comparison_table(out_comparison, comparison)
     with atomic_path(out_plot) as tmp:
         plot_conditions(objects, animals, comparison, tmp, target=target, accuracy=accuracy)
-    return comparison[["measure", "condition", "effect", "ci_low", "ci_high"]].to_dict(
-        orient="records"
-    )
+    return {
+        "conditions": len(conditions),
+        "compared": len(comparison),
+        "warnings": int((comparison["warning"] != "").sum()),
+    }

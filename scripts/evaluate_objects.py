@@ -1,0 +1,42 @@
+"""Snakemake adapter: score one target's stitched objects in 3D on the held-out sections."""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(snakemake.scriptdir).parent))
+
+from tessera.workflow.jobs.evaluate_objects import evaluate_objects_job
+from tessera.workflow.runner import run_job
+
+datasets = list(snakemake.params.datasets)
+instances = list(snakemake.input.instances)  # one per dataset, or none
+inputs = {
+    dataset: {
+        "objects": objects,
+        "pyramid": pyramid,
+        "labels": labels,
+        "qc": qc,
+        **({"instances": instances[k]} if instances else {}),
+    }
+    for k, (dataset, objects, pyramid, labels, qc) in enumerate(
+        zip(
+            datasets,
+            snakemake.input.objects,
+            snakemake.input.images,
+            snakemake.input.labels,
+            snakemake.input.qc,
+            strict=True,
+        )
+    )
+}
+run_job(
+    snakemake,
+    evaluate_objects_job,
+    annotations=snakemake.input.tiles,
+    inputs=inputs,
+    out_table=snakemake.output.table,
+    out_plot=snakemake.output.plot,
+    out_crops=snakemake.output.crops,
+    target=snakemake.wildcards.target,
+    guard_sections=snakemake.params.guard_sections,
+)

@@ -1,0 +1,140 @@
+"""EM stacks stored as an HDF5 dataset, read one section at a time.
+
+The sheet gives the file and the dataset's path inside it (``internal_path``). The dataset must be
+3D (z, y, x) of integer or float type; its voxel size is read from its attributes where stated
+(see :func:`tessera.io.array_stacks.spacing_from_attrs`: ``resolution`` in nm z, y, x,
+``pixelResolution``, ``element_size_um`` in µm z, y, x). Chunks that were never written (they
+would read as fill value) and data that live in another file (external links, virtual datasets)
+are refused.
+"""
+
+from pathlib import Path
+
+import h5py
+
+from tessera.errors import TesseraInputError
+from tessera.io.array_stacks import (
+    ArrayStack,
+    MissingChunk,
+    inner_parts,
+    missing_chunk,
+    spacing_from_attrs,
+)
+
+__all__ = ["open_hdf5"]
+
+
+def open_hdf5(path, internal_path):
+    """Open the dataset `internal_path` of the HDF5 file `path` for reading by sections.
+
+    Parameters
+    ----------
+    path : str or Path
+        The HDF5 file.
+    internal_path : str
+        The dataset inside it, e.g. ``volumes/raw``.
+
+    Returns
+    -------
+    ArrayStack
+        With ``shape``, ``dtype``, ``header_spacing``, ``read(z)`` and ``close()``.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> import numpy as np
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     with h5py.File(Path(folder) / "v.h5", "w") as f:
+    ...         f["volumes/raw"] = np.arange(24, dtype=np.uint8).reshape(2, 3, 4)
+    ...         f["volumes/raw"].attrs["resolution"] = [40, 4, 4]
+    ...     stack = open_hdf5(Path(folder) / "v.h5", "volumes/raw")
+    ...     print(stack.shape, stack.header_spacing, stack.read(1)[0].tolist())
+    ...     stack.close()
+    (2, 3, 4) (40.0, 4.0, 4.0) [12, 13, 14, 15]
+    """
+    path = Path(path)
+    parts = inner_parts(internal_path, source=path)
+    label = f"{path}, internal_path {'/'.join(parts)}"
+    try:
+        handle = h5py.File(path, "r")
+    except OSError as exc:
+        raise TesseraInputError(f"cannot read as HDF5: {exc}", source=path) from None
+    try:
+        dataset = _dataset(handle, parts, path, label)
+        spacing, attribute = spacing_from_attrs(dict(dataset.attrs), source=label)
+    except (TesseraInputError, OSError, KeyError, TypeError, ValueError) as exc:
+        handle.close()
+        if isinstance(exc, TesseraInputError):
+            raise
+        raise TesseraInputError(f"cannot read the dataset: {exc}", source=label) from None
+    return ArrayStack(
+        dataset,
+        label=label,
+        errors=(KeyError,),
+        header_spacing=spacing,
+        spacing_attribute=attribute,
+        chunk_problem=_chunk_check(dataset),
+        on_close=handle.close,
+    )
+
+
+def _dataset(handle, parts, path, label):
+    node, walked = handle, []
+    for name in parts:
+        walked.append(name)
+        if not isinstance(node, h5py.Group) or name not in node:
+            raise TesseraInputError(
+                f"internal_path: no {'/'.join(walked)!r} in the file "
+                f"({'/'.join(walked[:-1]) or 'its top level'} holds {_names(node)})",
+                source=path,
+            )
+        link = node.get(name, getlink=True)
+        if isinstance(link, h5py.ExternalLink):
+            raise TesseraInputError(
+                f"{'/'.join(walked)!r} is an external link to {link.filename}; "
+                "name that file in the sheet instead",
+                source=label,
+            )
+        node = node[name]
+    if not isinstance(node, h5py.Dataset):
+        raise TesseraInputError(
+            f"expected a dataset, found a group holding {_names(node)}", source=label
+        )
+    if node.is_virtual:
+        raise TesseraInputError(
+            "a virtual dataset (its data live in other files); name those files in the sheet",
+            source=label,
+        )
+    return node
+
+
+def _names(node):
+    if not isinstance(node, h5py.Group):
+        return "no group members"
+    names = sorted(node)[:8]
+    return ", ".join(names) + (" ..." if len(node) > 8 else "") if names else "nothing"
+
+
+def _chunk_check(dataset):
+    """Per section: the offset of a chunk never written, or None (see ArrayStack)."""
+    if dataset.chunks is None:
+        if dataset.id.get_storage_size() == 0 and dataset.size:
+            nothing = "nothing was ever written to the dataset (it would read as fill value)"
+            return lambda z: MissingChunk(nothing)
+        return None
+    chunks, shape = dataset.chunks, dataset.shape
+    checked = set()
+
+    def missing(z):
+        row = z // chunks[0]
+        if row in checked:
+            return None
+        for y in range(0, shape[1], chunks[1]):
+            for x in range(0, shape[2], chunks[2]):
+                offset = (row * chunks[0], y, x)
+                if dataset.id.get_chunk_info_by_coord(offset).byte_offset is None:
+                    return missing_chunk(f"at offset {offset}")
+        checked.add(row)
+        return None
+
+    return missing

@@ -1,0 +1,407 @@
+"""Stacks inside container files (HDF5, zarr v2/v3, N5): round trips, voxel sizes, bad input.
+
+Files are written here with the formats' own libraries (h5py, zarr) and, for N5, byte by byte
+from the N5 format description (github.com/saalfeldlab/n5, README "file-system specification":
+attributes.json with dimensions/blockSize/dataType/compression listed x first; one file per
+block at <dataset>/<x>/<y>/<z> with a big-endian header of uint16 mode, uint16 number of
+dimensions, uint32 block size per dimension, then the elements big-endian, x fastest; from
+memory). The ingested volume is compared with the array written.
+"""
+
+import gzip
+import json
+import struct
+
+import h5py
+import numcodecs
+import numpy as np
+import pytest
+import zarr
+
+from tessera.errors import TesseraInputError
+from tessera.io.omezarr import open_image
+from tessera.io.stacks import open_stack
+from tessera.workflow.jobs.ingest import ingest_job
+
+KINDS = ["hdf5", "zarr_v2", "zarr_v3", "zarr_plain", "n5"]
+
+
+def _write_n5(container, name, array, *, block, attrs=None, compression="gzip"):
+    """An N5 dataset as its format description lays it out (see the module docs)."""
+    folder = container.joinpath(*name.split("/"))
+    folder.mkdir(parents=True)
+    (container / "attributes.json").write_text(json.dumps({"n5": "2.5.0"}))
+    n5_type = {"u": "uint", "i": "int", "f": "float"}[array.dtype.kind] + str(8 * array.itemsize)
+    meta = {
+        "dimensions": list(array.shape[::-1]),
+        "blockSize": list(block[::-1]),
+        "dataType": n5_type,
+        "compression": {"type": compression},
+    }
+    (folder / "attributes.json").write_text(json.dumps(meta | (attrs or {})))
+    if array.ndim != 3:
+        return folder  # refused from its attributes; no blocks needed
+    grid = [range(0, s, b) for s, b in zip(array.shape, block, strict=True)]
+    for z0 in grid[0]:
+        for y0 in grid[1]:
+            for x0 in grid[2]:
+                part = array[z0 : z0 + block[0], y0 : y0 + block[1], x0 : x0 + block[2]]
+                header = struct.pack(">HH", 0, 3) + struct.pack(">3I", *part.shape[::-1])
+                body = part.astype(array.dtype.newbyteorder(">")).tobytes()  # C order = x fastest
+                body = gzip.compress(body) if compression == "gzip" else body
+                where = folder / str(x0 // block[2]) / str(y0 // block[1])
+                where.mkdir(parents=True, exist_ok=True)
+                (where / str(z0 // block[0])).write_bytes(header + body)
+    return folder
+
+
+def _write(kind, tmp_path, array, *, attrs=None, chunks=(2, 8, 8)):
+    """Write `array` as `kind`; return (path, format, internal_path)."""
+    attrs = attrs or {}
+    if kind == "hdf5":
+        path = tmp_path / "stack.h5"
+        packed = {"chunks": chunks, "compression": "gzip"} if array.size else {}  # h5py: no
+        with h5py.File(path, "w") as f:  # chunks larger than an empty dataset
+            ds = f.create_dataset("volumes/raw", data=array, **packed)
+            ds.attrs.update(attrs)
+        return path, "hdf5", "volumes/raw"
+    if kind == "n5":
+        path = tmp_path / "stack.n5"
+        _write_n5(path, "volumes/raw", array, block=chunks, attrs=attrs)
+        return path, "n5", "volumes/raw"
+    version = 3 if kind == "zarr_v3" else 2
+    path = tmp_path / "stack.zarr"
+    if kind == "zarr_plain":
+        arr = zarr.create_array(
+            store=str(path), shape=array.shape, chunks=chunks, dtype=array.dtype, zarr_format=2
+        )
+        inner = None
+    else:
+        group = zarr.open_group(str(path), mode="w", zarr_format=version)
+        arr = group.create_array("volumes/raw", shape=array.shape, chunks=chunks, dtype=array.dtype)
+        inner = "volumes/raw"
+    arr[:] = array
+    arr.attrs.update(attrs)
+    return path, "zarr", inner
+
+
+@pytest.fixture
+def volume():
+    return np.random.default_rng(11).integers(0, 256, size=(5, 20, 18), dtype=np.uint8)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_containers_ingest_to_the_array_written(tmp_path, volume, kind):
+    path, fmt, inner = _write(kind, tmp_path, volume)
+    summary = ingest_job(
+        path,
+        tmp_path / "out.ome.zarr",
+        fmt=fmt,
+        internal_path=inner,
+        spacing=(30.0, 4.0, 4.0),
+        chunks=(1, 16, 16),
+    )
+    _, info = open_image(tmp_path / "out.ome.zarr")
+    np.testing.assert_array_equal(info["levels"][0][:], volume)  # uint8 data are copied as is
+    assert summary["intensity_mapping"] is None and info["spacing"] == (30.0, 4.0, 4.0)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("dtype", [">u2", "<i2", "float32", "float64"])
+def test_sections_read_back_equal_to_the_array_written(tmp_path, kind, dtype):
+    rng = np.random.default_rng(3)
+    array = (rng.normal(size=(3, 11, 13)) * 1000).astype(dtype)
+    path, fmt, inner = _write(kind, tmp_path, array, chunks=(2, 4, 8))
+    stack = open_stack(path, fmt, internal_path=inner)
+    try:
+        assert stack.shape == array.shape and stack.dtype == np.dtype(dtype).newbyteorder("=")
+        np.testing.assert_array_equal(np.stack([stack.read(z) for z in range(3)]), array)
+    finally:
+        stack.close()
+
+
+# Attribute conventions (common practice, from memory): `resolution` in nm, z, y, x in HDF5 and
+# zarr volumes (the CREMI challenge files) but x, y, z in N5 (the N5 viewer's habit);
+# `pixelResolution` = {"dimensions": [x, y, z], "unit": ...} in N5; `element_size_um` in µm,
+# z, y, x (ilastik and Fiji's HDF5 files).
+@pytest.mark.parametrize(
+    ("kind", "attrs"),
+    [
+        ("hdf5", {"resolution": [30, 4, 5]}),
+        ("hdf5", {"element_size_um": [0.03, 0.004, 0.005]}),
+        ("zarr_v2", {"resolution": [30, 4, 5]}),
+        ("zarr_plain", {"element_size_um": [0.03, 0.004, 0.005]}),
+        ("n5", {"resolution": [5, 4, 30]}),
+        ("n5", {"pixelResolution": {"dimensions": [0.005, 0.004, 0.03], "unit": "um"}}),
+        (
+            "n5",
+            {"pixelResolution": {"dimensions": [5, 4, 30], "unit": "nm"}, "resolution": [5, 4, 30]},
+        ),
+    ],
+)
+def test_voxel_size_comes_from_the_attributes(tmp_path, volume, kind, attrs):
+    path, fmt, inner = _write(kind, tmp_path, volume, attrs=attrs)
+    out = tmp_path / "out.ome.zarr"
+    ingest_job(path, out, fmt=fmt, internal_path=inner, spacing=(None, 4.0, None))
+    np.testing.assert_allclose(open_image(out)[1]["spacing"], (30.0, 4.0, 5.0), rtol=1e-9)
+
+
+def test_sheet_fills_the_voxel_size_when_the_attributes_have_none(tmp_path, volume):
+    path, fmt, inner = _write("hdf5", tmp_path, volume)
+    out = tmp_path / "out.ome.zarr"
+    ingest_job(path, out, fmt=fmt, internal_path=inner, spacing=(50.0, 6.0, 6.0))
+    assert open_image(out)[1]["spacing"] == (50.0, 6.0, 6.0)
+    with pytest.raises(TesseraInputError, match="voxel size along z is blank in the sheet"):
+        ingest_job(path, tmp_path / "o2.ome.zarr", fmt=fmt, internal_path=inner)
+
+
+@pytest.mark.parametrize(
+    ("attrs", "spacing", "message"),
+    [
+        (
+            {"resolution": [40, 4, 4]},
+            (30.0, None, None),
+            r"internal_path volumes/raw: attribute resolution gives voxel size 40 nm along z, "
+            r"the sheet's voxel_z_nm says 30",
+        ),
+        (
+            {"resolution": [40, 4]},
+            (None, None, None),
+            r"internal_path volumes/raw: attribute resolution = \[40, 4\] is unusable: expected 3 "
+            r"finite numbers > 0",
+        ),
+        (
+            {"resolution": [40, 0, 4]},
+            (40.0, 4.0, 4.0),
+            r"attribute resolution = \[40, 0, 4\] is unusable",
+        ),
+        (
+            {"pixelResolution": {"dimensions": [4, 4, 40], "unit": "furlong"}},
+            (None, None, None),
+            r"attribute pixelResolution = .* is unusable: expected \{'dimensions'",
+        ),
+        (
+            {"resolution": [40, 4, 4], "element_size_um": [0.05, 0.004, 0.004]},
+            (None, None, None),
+            r"attributes resolution and element_size_um disagree on the voxel size: "
+            r"\(40, 4, 4\) vs \(50, 4, 4\) nm",
+        ),
+    ],
+)
+def test_bad_or_disagreeing_voxel_attributes_are_one_line(
+    tmp_path, volume, attrs, spacing, message
+):
+    kind = "n5" if "pixelResolution" in attrs else "hdf5"  # HDF5 attributes hold no mappings
+    path, fmt, inner = _write(kind, tmp_path, volume, attrs=attrs)
+    out = tmp_path / "out.ome.zarr"
+    with pytest.raises(TesseraInputError, match=message) as info:
+        ingest_job(path, out, fmt=fmt, internal_path=inner, spacing=spacing)
+    assert str(path) in str(info.value) and "\n" not in str(info.value)
+    assert not out.exists()
+
+
+# --------------------------------------------------------------------------------------------
+# damaged or unsuitable arrays: one line naming the file and the array, nothing written
+
+
+def _refused(tmp_path, path, fmt, inner, message):
+    out = tmp_path / "out.ome.zarr"
+    with pytest.raises(TesseraInputError, match=message) as info:
+        ingest_job(path, out, fmt=fmt, internal_path=inner, spacing=(30.0, 4.0, 4.0))
+    text = str(info.value)
+    assert str(path) in text and "\n" not in text
+    assert not out.exists() and not list(tmp_path.glob("out.ome.zarr*"))
+    return text
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize(
+    ("array", "message"),
+    [
+        (np.zeros((4, 5), np.uint8), r"expected a 3D z, y, x array, got shape \(4, 5\)"),
+        (
+            np.zeros((2, 2, 4, 5), np.uint8),
+            r"expected a 3D z, y, x array, got shape \(2, 2, 4, 5\)",
+        ),
+        (np.zeros((0, 4, 5), np.uint8), r"the array is empty \(shape \(0, 4, 5\)\)"),
+        (
+            np.zeros((2, 4, 5), np.complex64),
+            "expected integer or float grey values, got dtype complex64",
+        ),
+        (np.zeros((2, 4, 5), bool), "expected integer or float grey values, got dtype bool"),
+    ],
+)
+def test_unsuitable_arrays_are_refused(tmp_path, kind, array, message):
+    if kind == "n5" and array.dtype.kind not in "uif":
+        pytest.skip("N5 has no complex or boolean dataType")  # N5 format description
+    chunks = tuple(max(1, min(2, n)) for n in array.shape)
+    path, fmt, inner = _write(kind, tmp_path, array, chunks=chunks)
+    text = _refused(tmp_path, path, fmt, inner, message)
+    if inner:
+        assert "internal_path volumes/raw" in text
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+def test_nan_or_infinite_float_values_are_refused(tmp_path, kind, bad):
+    array = np.ones((4, 6, 6), np.float32)
+    array[3, 5, 1] = bad
+    path, fmt, inner = _write(kind, tmp_path, array, chunks=(2, 3, 3))
+    text = _refused(tmp_path, path, fmt, inner, "section 3")
+    assert "section 3 holds 1 NaN or infinite values; expected finite grey values" in text
+    if inner:
+        assert f"internal_path {inner}: section 3" in text
+
+
+@pytest.mark.parametrize("kind", ["hdf5", "zarr_v2", "zarr_v3", "n5"])
+def test_missing_internal_path_is_refused(tmp_path, volume, kind):
+    path, fmt, _ = _write(kind, tmp_path, volume)
+    text = _refused(tmp_path, path, fmt, "volumes/rw", "volumes/rw")
+    wanted = {
+        "hdf5": "internal_path: no 'volumes/rw' in the file (volumes holds raw)",
+        "n5": "internal_path: no N5 dataset 'volumes/rw' in the container",
+    }.get(kind, "no zarr array at internal_path 'volumes/rw'")
+    assert wanted in text
+
+
+def test_hdf5_internal_path_to_a_group_is_refused(tmp_path, volume):
+    path, fmt, _ = _write("hdf5", tmp_path, volume)
+    text = _refused(tmp_path, path, fmt, "volumes", "internal_path volumes")
+    assert "expected a dataset, found a group holding raw" in text
+
+
+@pytest.mark.parametrize("fmt", ["hdf5", "n5"])
+def test_internal_path_is_required_for_hdf5_and_n5(tmp_path, volume, fmt):
+    path, _, _ = _write(fmt, tmp_path, volume)
+    text = _refused(tmp_path, path, fmt, None, fmt)
+    assert f"format {fmt} needs internal_path, the array's path inside the file" in text
+
+
+def test_internal_path_with_dotdot_is_refused(tmp_path, volume):
+    path, fmt, _ = _write("n5", tmp_path, volume)
+    text = _refused(tmp_path, path, fmt, "../stack.n5/volumes/raw", "internal_path")
+    assert "expected the array's path inside the file, e.g. volumes/raw (no '..' steps)" in text
+
+
+def _delete_one_chunk(kind, path):
+    if kind == "n5":
+        (path / "volumes" / "raw" / "1" / "0" / "2").unlink()  # x=1, y=0, z=2: sections 4..
+    elif kind == "zarr_v3":
+        (path / "volumes" / "raw" / "c" / "2" / "0" / "1").unlink()
+    elif kind == "zarr_v2":
+        (path / "volumes" / "raw" / "2.0.1").unlink()
+    else:
+        (path / "2.0.1").unlink()
+
+
+@pytest.mark.parametrize("kind", ["zarr_v2", "zarr_v3", "zarr_plain", "n5"])
+def test_a_missing_chunk_is_refused_not_read_as_fill_value(tmp_path, volume, kind):
+    path, fmt, inner = _write(kind, tmp_path, volume)  # chunks (2, 8, 8): z row 2 = section 4
+    _delete_one_chunk(kind, path)
+    text = _refused(tmp_path, path, fmt, inner, "section 4: chunk")
+    assert "is missing from the store (it would read as fill value, not data)" in text
+    assert "copy the array again or restore the chunk" in text
+    assert "set ingest.missing_chunks: fill_value in config/config.yaml" in text
+    if inner:
+        assert f"internal_path {inner}: section 4" in text
+
+
+@pytest.mark.parametrize("kind", ["zarr_v2", "zarr_v3", "zarr_plain", "n5"])
+def test_missing_chunks_read_as_fill_value_when_allowed(tmp_path, volume, kind):
+    path, fmt, inner = _write(kind, tmp_path, volume)
+    _delete_one_chunk(kind, path)  # z 4, y 0..7, x 8..15
+    out = tmp_path / "out.ome.zarr"
+    ingest_job(
+        path,
+        out,
+        fmt=fmt,
+        internal_path=inner,
+        spacing=(30.0, 4.0, 4.0),
+        missing_chunks="fill_value",
+    )
+    expected = volume.copy()
+    expected[4:6, 0:8, 8:16] = 0  # zarr's default fill value for integers; N5: empty blocks
+    meta, info = open_image(out)
+    np.testing.assert_array_equal(info["levels"][0][:], expected)
+    assert zarr.open_group(str(out), mode="r").attrs["tessera"]["source"][
+        "sections_with_missing_chunks"
+    ] == [4]
+
+
+def test_a_damaged_chunk_is_refused_even_when_missing_ones_are_allowed(tmp_path, volume):
+    path, fmt, inner = _write("zarr_v2", tmp_path, volume)  # blosc chunks: truncation is seen
+    (path / "volumes" / "raw" / "1.0.0").unlink()
+    chunk = path / "volumes" / "raw" / "1.0.1"
+    chunk.write_bytes(chunk.read_bytes()[:20])
+    out = tmp_path / "out.ome.zarr"
+    with pytest.raises(TesseraInputError, match="section 2: chunk '1.0.1' is truncated"):
+        ingest_job(
+            path,
+            out,
+            fmt=fmt,
+            internal_path=inner,
+            spacing=(30.0, 4.0, 4.0),
+            missing_chunks="fill_value",
+        )
+    assert not out.exists()
+
+
+def test_an_unwritten_hdf5_chunk_is_refused(tmp_path, volume):
+    path = tmp_path / "stack.h5"
+    with h5py.File(path, "w") as f:
+        ds = f.create_dataset("raw", shape=volume.shape, chunks=(2, 8, 8), dtype=np.uint8)
+        ds[:4] = volume[:4]  # sections 4.. never written: they would read as fill value 0
+    text = _refused(tmp_path, path, "hdf5", "raw", "internal_path raw")
+    assert "section 4: chunk at offset (4, 0, 0) is missing from the store" in text
+
+
+@pytest.mark.parametrize("kind", ["hdf5", "zarr_v2", "zarr_v3", "zarr_plain", "n5"])
+def test_a_truncated_chunk_is_refused(tmp_path, volume, kind):
+    path, fmt, inner = _write(kind, tmp_path, volume)
+    if kind == "hdf5":  # overwrite the middle of the compressed chunk holding section 2
+        with h5py.File(path, "r") as f:
+            info = f["volumes/raw"].id.get_chunk_info_by_coord((2, 8, 0))
+        with open(path, "r+b") as fh:
+            fh.seek(info.byte_offset + 4)
+            fh.write(b"\xff" * (info.size - 8))
+    else:
+        chunk = {
+            "n5": path / "volumes" / "raw" / "0" / "1" / "1",
+            "zarr_v3": path / "volumes" / "raw" / "c" / "1" / "1" / "0",
+            "zarr_v2": path / "volumes" / "raw" / "1.1.0",
+            "zarr_plain": path / "1.1.0",
+        }[kind]
+        chunk.write_bytes(chunk.read_bytes()[:20])
+    text = _refused(tmp_path, path, fmt, inner, "section 2")
+    if kind == "zarr_v2":  # a v2 array made through a group is blosc-compressed here
+        meta = zarr.open_array(str(path), path=inner, mode="r").metadata
+        assert isinstance(meta.compressor, numcodecs.Blosc)
+        assert "section 2: chunk '1.1.0' is truncated: its blosc header states" in text
+        assert "bytes, the file has 20; copy the array again or restore the chunk" in text
+    else:  # the decompressor (zlib, zstd, HDF5's deflate filter) notices the damage
+        assert "section 2 cannot be read (truncated or damaged chunk?)" in text
+
+
+def test_unreadable_hdf5_file_is_refused(tmp_path):
+    path = tmp_path / "stack.h5"
+    path.write_bytes(b"not an HDF5 file at all")
+    text = _refused(tmp_path, path, "hdf5", "raw", "stack.h5")
+    assert "cannot read as HDF5" in text
+
+
+def test_hdf5_external_link_is_refused(tmp_path, volume):
+    other = tmp_path / "elsewhere.h5"
+    with h5py.File(other, "w") as f:
+        f["raw"] = volume
+    path = tmp_path / "stack.h5"
+    with h5py.File(path, "w") as f:
+        f["raw"] = h5py.ExternalLink(str(other), "/raw")
+    text = _refused(tmp_path, path, "hdf5", "raw", "raw")
+    assert "'raw' is an external link to" in text and "name that file in the sheet instead" in text
+
+
+def test_internal_path_is_refused_for_single_stack_formats(tmp_path, volume):
+    path = tmp_path / "s.mrc"
+    path.write_bytes(b"")
+    text = _refused(tmp_path, path, "mrc", "raw", "s.mrc")
+    assert "internal_path 'raw' is given, but format mrc holds one stack per file" in text

@@ -1,0 +1,358 @@
+"""Rule evaluate_objects' job on a small scene worked by hand: held-out sections only, QC
+exclusions, predicted labels repeated onto the truth's grid, instances or connected components."""
+
+import copy
+
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+import yaml
+import zarr
+from PIL import Image
+
+from tessera.errors import TesseraInputError
+from tessera.io.omezarr import AXES, multiscale_attrs
+from tessera.io.store_checksums import record_checksums
+from tessera.methods import methods_text
+from tessera.tiles.split import held_out_sections, split_tiles
+from tessera.workflow.config import load_config
+from tessera.workflow.files.objects_3d import overall_objects_3d, read_objects_3d
+from tessera.workflow.jobs.evaluate_objects import evaluate_objects_job
+from tessera.workflow.jobs.objects import objects_job
+
+SHAPE = (10, 32, 32)  # full resolution; objects are made at (1, 2, 2)
+SPACING = (40.0, 8.0, 8.0)
+
+# The scene (z ranges inclusive, y and x half-open, full resolution), every box on the 2 x 2 grid:
+#   A  z 8-9  y 2:10  x 2:10    predicted exactly
+#   B  z 8-9  y 14:22 x 14:24   predicted as two boxes x 14:18 and x 20:24 (IoU 0.4 each)
+#   C  z 0-3  y 2:10  x 20:28   truth only, in the training sections
+#   D  z 5-6  y 24:30 x 24:30   prediction only, in the validation sections
+#   E  z 6-9  y 24:30 x 2:8     predicted exactly
+#   F  z 9    y 24:30 x 14:20   truth only, on section 9, which QC excludes
+# Tiles: train z 0-3, guard z 4, validation z 5-6, test z 8 and 9 (guard_sections 2), so the
+# held-out sections are 8 and 9, and 8 alone once QC excludes 9.
+TRUTH = {
+    "A": (8, 10, 2, 10, 2, 10),
+    "B": (8, 10, 14, 22, 14, 24),
+    "C": (0, 4, 2, 10, 20, 28),
+    "E": (6, 10, 24, 30, 2, 8),
+    "F": (9, 10, 24, 30, 14, 20),
+}
+PREDICTED = [
+    (8, 10, 2, 10, 2, 10),
+    (8, 10, 14, 22, 14, 18),
+    (8, 10, 14, 22, 20, 24),
+    (5, 7, 24, 30, 24, 30),
+    (6, 10, 24, 30, 2, 8),
+]
+
+
+def _boxes(boxes, shape=SHAPE):
+    volume = np.zeros(shape, np.uint16)
+    for k, (z0, z1, y0, y1, x0, x1) in enumerate(boxes, start=1):
+        volume[z0:z1, y0:y1, x0:x1] = k
+    return volume
+
+
+def _store(path, levels, extra=None):
+    group = zarr.open_group(store=str(path), mode="w", zarr_format=3)
+    group.attrs.update(
+        {
+            "ome": multiscale_attrs(
+                name=path.stem, spacing=SPACING, factors=[f for f, _ in levels]
+            ),
+            **({"tessera": extra} if extra else {}),
+        }
+    )
+    for k, (_, data) in enumerate(levels):
+        group.create_array(name=str(k), data=data, chunks=(1, 16, 16), dimension_names=AXES)
+    record_checksums(path)
+
+
+def _scene(tmp_path, *, qc_excludes_9=True, qc_excludes_8_9=False):
+    """Write every input of the job for dataset d1; return the job's input mapping."""
+    rng = np.random.default_rng(0)
+    raw = rng.integers(0, 255, SHAPE, dtype=np.uint8)
+    _store(tmp_path / "raw.ome.zarr", [((1, 1, 1), raw), ((1, 2, 2), raw[:, ::2, ::2])])
+    working = _boxes(PREDICTED)[:, ::2, ::2] > 0
+    prob = tmp_path / "probability.ome.zarr"
+    prob_levels = [((1, 1, 1), working.astype(np.uint8) * 255)]
+    _store(
+        prob,
+        prob_levels,
+        {"probability": {"scale": 255.0, "z_factor": 1, "working_level_downsample": 2}},
+    )
+    # the probability image's spacing is the working level's
+    group = zarr.open_group(store=str(prob), mode="r+")
+    group.attrs["ome"] = multiscale_attrs(name="p", spacing=(40.0, 16.0, 16.0), factors=[(1, 1, 1)])
+    record_checksums(prob)
+    qc = tmp_path / "sections.tsv"
+    excluded = [
+        (z == 9 and qc_excludes_9) or (z in (8, 9) and qc_excludes_8_9) for z in range(SHAPE[0])
+    ]
+    pd.DataFrame({"z": range(SHAPE[0]), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
+    scores = tmp_path / "scores.tsv"
+    pd.DataFrame({"role": ["validation"], "threshold": [0.5]}).to_csv(scores, sep="\t", index=False)
+    objects = tmp_path / "objects.ome.zarr"
+    settings = dict(
+        high=0.5,
+        low=0.5,
+        open_radius_nm=0,
+        close_radius_nm=0,
+        fill_holes=False,
+        min_volume_um3=0,
+        max_volume_um3=None,
+        connectivity=26,
+        block=[4, 16, 16],
+        bridge_excluded=False,
+    )
+    objects_job(
+        prob,
+        qc,
+        scores,
+        objects,
+        tmp_path / "o.tsv",
+        tmp_path / "o.json",
+        target="mito",
+        settings=settings,
+    )
+    labels = tmp_path / "labels.tif"
+    tifffile.imwrite(labels, (_boxes(TRUTH.values()) > 0).astype(np.uint8))
+    tiles = tmp_path / "tiles"
+    (tiles / "labels").mkdir(parents=True)
+    roles = {0: "train", 1: "train", 2: "train", 3: "train", 4: "guard", 5: "validation"}
+    roles.update({6: "validation", 8: "test", 9: "test"})
+    registry = pd.DataFrame(
+        {
+            "tile_id": [f"t{z}" for z in roles],
+            "dataset": "d1",
+            "target": "mito",
+            "level": 1,
+            "z": list(roles),
+            "y0": 0,
+            "x0": 0,
+            "height": 4,
+            "width": 4,
+            "source": "labels",
+            "role": list(roles.values()),
+        }
+    )
+    registry.to_csv(tiles / "tiles.tsv", sep="\t", index=False)
+    for tile in registry["tile_id"]:
+        Image.fromarray(np.zeros((4, 4), np.uint8)).save(tiles / "labels" / f"{tile}.png")
+    files = {"objects": objects, "pyramid": tmp_path / "raw.ome.zarr", "labels": labels, "qc": qc}
+    return tiles, {"d1": files}
+
+
+def _run(tmp_path, tiles, inputs):
+    out = tmp_path / "out"
+    evaluate_objects_job(
+        tiles,
+        inputs,
+        out / "objects_3d.tsv",
+        out / "objects_3d.png",
+        out / "crops.png",
+        target="mito",
+        guard_sections=2,
+    )
+    return out
+
+
+def test_objects_are_scored_on_held_out_sections_against_connected_components(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    out = _run(tmp_path, tiles, inputs)
+    row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
+    # Worked by hand from the scene: on section 8 the true objects are A, B, E (C lies in
+    # training sections, F on the excluded section 9), the predicted ones A', B1, B2, E' (D lies
+    # in validation sections); A and E match (IoU 1), B does not (IoU 0.4 with each half, below
+    # the common-practice 0.5).
+    assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (3, 4, 2)
+    assert row["object_precision"] == pytest.approx(2 / 4)
+    assert row["object_recall"] == pytest.approx(2 / 3)
+    assert row["count_error"] == pytest.approx((4 - 3) / 3)
+    assert row["matched_volume_error"] == pytest.approx(0.0)
+    assert (row["sections"], row["first_section"], row["last_section"]) == (1, 8, 8)
+    assert row["excluded_sections"] == 0  # section 9 lies outside 8..8
+    assert row["truth_source"] == "26-connected components of the labels"
+    overall = overall_objects_3d(out / "objects_3d.tsv")
+    assert overall["object_f1"] == pytest.approx(2 * 2 / (3 + 4))
+    assert (out / "objects_3d.png").stat().st_size > 0 and (out / "crops.png").stat().st_size > 0
+
+
+def test_sections_qc_keeps_are_scored(tmp_path):
+    tiles, inputs = _scene(tmp_path, qc_excludes_9=False)
+    out = _run(tmp_path, tiles, inputs)
+    row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
+    # by hand: sections 8 and 9 now; F (section 9, truth only) joins the true objects
+    assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 2)
+    assert row["sections"] == 2
+
+
+def test_instance_volume_is_used_when_given(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    # the instance volume cuts B into x 14:19 and x 19:24: each half now matches its predicted
+    # box with IoU 4/5 (by hand), so every object on section 8 matches
+    boxes = dict(TRUTH)
+    boxes["B"] = (8, 10, 14, 22, 14, 19)
+    boxes["B2"] = (8, 10, 14, 22, 19, 24)
+    instances = tmp_path / "instances.tif"
+    tifffile.imwrite(instances, _boxes(boxes.values()))
+    inputs["d1"]["instances"] = instances
+    out = _run(tmp_path, tiles, inputs)
+    row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
+    assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 4)
+    assert row["truth_source"] == "instance volume"
+
+
+def test_bad_truth_volumes_and_missing_test_tiles_are_refused(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    wrong = tmp_path / "wrong.tif"
+    tifffile.imwrite(wrong, np.zeros((10, 32, 30), np.uint8))
+    inputs["d1"]["instances"] = wrong
+    with pytest.raises(
+        TesseraInputError,
+        match=r"wrong.tif: instance volume has shape \(10, 32, 30\), the image \(10, 32, 32\)",
+    ):
+        _run(tmp_path, tiles, inputs)
+    tifffile.imwrite(wrong, np.zeros(SHAPE, np.float32))
+    with pytest.raises(
+        TesseraInputError, match=r"instance volume must hold integers \(0 background\), got float32"
+    ):
+        _run(tmp_path, tiles, inputs)
+    del inputs["d1"]["instances"]
+    inputs["d1"]["labels"] = wrong
+    with pytest.raises(TesseraInputError, match="label volume must hold integers"):
+        _run(tmp_path, tiles, inputs)
+    (tmp_path / "qc").mkdir()
+    _, inputs = _scene(tmp_path / "qc", qc_excludes_8_9=True)
+    with pytest.raises(
+        TesseraInputError,
+        match="no dataset has held-out sections to score the mito objects on "
+        r"\(d1: every held-out section was excluded by QC: not scored\)",
+    ):
+        _run(tmp_path, tiles, inputs)
+    registry = pd.read_csv(tiles / "tiles.tsv", sep="\t")
+    registry.loc[registry["role"] == "test", "role"] = "guard"
+    registry.to_csv(tiles / "tiles.tsv", sep="\t", index=False)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"tiles: no dataset has held-out sections to score the mito objects on \(d1: no "
+        r"test tiles in this dataset: not scored\); annotate more tiles or change split.fractions",
+    ):
+        _run(tmp_path, tiles, inputs)
+    assert not (tmp_path / "out" / "objects_3d.tsv").exists()
+
+
+def test_config_takes_instances_only_beside_labels(repo):
+    config = yaml.safe_load((repo / "config" / "config.yaml").read_text())
+    schema = repo / "config" / "schemas" / "config.schema.yaml"
+    good = copy.deepcopy(config)
+    good["targets"]["mitochondria"]["annotations"]["instances"] = "truth/{dataset}_instances.tif"
+    load_config(good, schema)
+    alone = copy.deepcopy(config)
+    alone["targets"]["mitochondria"]["annotations"] = {"instances": "truth/{dataset}_i.tif"}
+    with pytest.raises(
+        TesseraInputError,
+        match="key targets.mitochondria.annotations: 'labels' is a dependency of 'instances'",
+    ):
+        load_config(alone, schema)
+    both = copy.deepcopy(config)
+    both["targets"]["mitochondria"]["annotations"]["painted"] = {"points": "p.tsv", "masks": "m"}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key targets.mitochondria.annotations: .* should not be valid under "
+        r"\{'required': \['labels', 'painted'\]\}",
+    ):
+        load_config(both, schema)
+    fixed = copy.deepcopy(good)
+    fixed["targets"]["mitochondria"]["annotations"]["instances"] = "truth/instances.tif"
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key targets.mitochondria.annotations.instances: 'truth/instances.tif' does not match",
+    ):
+        load_config(fixed, schema)
+
+
+def test_methods_paragraph_quotes_the_3d_scores_it_is_given(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    out = _run(tmp_path, tiles, inputs)
+    sections = {
+        "qc": {"sharpness_sigma": 1.5, "exclude_flagged": True},
+        "pyramid": {"levels": 3},
+        "statistics": {"confidence": 0.95},
+        "targets": {},
+    }
+    text = methods_text(
+        sections,
+        {"d1": {"condition": "warm", "subject": "m1"}},
+        scores={},
+        object_settings={},
+        comparisons={},
+        section_counts={"sections": 10, "excluded": 1},
+        checksums=[],
+        software={},
+        objects_3d={"mito": overall_objects_3d(out / "objects_3d.tsv")},
+    )
+    # the hand-worked scene: F1 2 * 2 / (3 + 4), precision 2/4, recall 2/3, on section 8 only
+    assert f"F1 {4 / 7:.3f} (precision 0.500, recall {2 / 3:.3f}" in text
+    assert "the mito objects on 1 held-out test sections" in text
+    assert "(26-connected components of the labels)" in text
+
+
+def test_held_out_sections_keep_the_guard_distance_and_skip_other_roles():
+    registry = pd.DataFrame(
+        {
+            "dataset": ["d1"] * 5 + ["d2"],
+            "z": [3, 9, 6, 4, 12, 0],
+            "role": ["test", "test", "train", "validation", "test", "test"],
+        }
+    )
+    registry.loc[4, "dataset"] = "d2"
+    # by hand: d1's test range is 3..9; sections 5, 6, 7 lie nearer than 2 to the training
+    # section 6, and 4 holds a validation tile
+    assert held_out_sections(registry, "d1", guard_sections=2) == [3, 8, 9]
+    # guard 0 still leaves the training section itself out: whole sections are scored
+    assert held_out_sections(registry, "d1", guard_sections=0) == [3, 5, 7, 8, 9]
+    assert held_out_sections(registry, "d3", guard_sections=2) == []
+
+
+@pytest.mark.parametrize("guard", [1, 2, 3])
+def test_held_out_sections_of_a_real_split_are_test_sections_apart_from_training(guard):
+    rng = np.random.default_rng(guard)
+    z = rng.integers(0, 40, 60)
+    registry = pd.DataFrame(
+        {
+            "tile_id": [f"t{k}" for k in range(60)],
+            "dataset": "d",
+            "target": "m",
+            "level": 0,
+            "z": z,
+            "y0": 0,
+            "x0": 0,
+            "height": 4,
+            "width": 4,
+            "source": "labels",
+        }
+    )
+    split = split_tiles(registry, guard_sections=guard, seed=guard)
+    sections = np.array(held_out_sections(split, "d", guard_sections=guard))
+    train = split.loc[split["role"] == "train", "z"].to_numpy()
+    test = split.loc[split["role"] == "test", "z"].to_numpy()
+    # the split's promise (README: held-out tiles are guard_sections apart in z from training)
+    # holds for every scored section, and every test tile's section is scored
+    assert np.abs(sections[:, None] - train[None, :]).min() >= guard
+    assert set(test.tolist()) <= set(sections.tolist())
+
+
+def test_a_dataset_without_test_tiles_gets_a_row_saying_so(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    inputs["d2"] = dict(inputs["d1"])  # no tile of the registry names d2
+    out = _run(tmp_path, tiles, inputs)
+    table = read_objects_3d(out / "objects_3d.tsv").set_index("dataset")
+    assert table.loc["d2", "note"] == "no test tiles in this dataset: not scored"
+    assert table.loc["d2", "sections"] == 0 and np.isnan(table.loc["d2", "object_f1"])
+    # the pooled row holds d1's objects only (by hand, as in the first test) and names d2
+    assert table.loc["all", "note"] == "not scored: d2"
+    assert (table.loc["all", "truth_objects"], table.loc["all", "matched_objects"]) == (3, 2)
