@@ -13,6 +13,7 @@ import pandas as pd
 import yaml
 
 from tessera.errors import TesseraInputError
+from tessera.objects.depth_limit import split_depth_problem
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -115,6 +116,10 @@ def _check_related_keys(config, source):
                 f"key targets.{name}.objects: min_volume_um3 ({smallest}) is larger than max_volume_um3 ({largest})",
                 source=source,
             )
+        depth = objects.get("split_min_depth_nm")
+        problem = depth is not None and largest is not None and split_depth_problem(depth, largest)
+        if problem:
+            raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
 
 
 def check_reference_condition(reference, conditions, *, source="config/config.yaml"):
