@@ -10,6 +10,7 @@ if "demo" in config:
             cells="demo/data/{dataset}/cells.tif",
             truth="demo/data/{dataset}/truth.json",
             mitochondria="demo/data/{dataset}/truth/mitochondria.tif",
+            mitochondria_instances="demo/data/{dataset}/truth/mitochondria_instances.tif",
             nuclei="demo/data/{dataset}/truth/nuclei.tif",
             points="demo/data/{dataset}/tiles/points.tsv",
         log:

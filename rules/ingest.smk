@@ -21,6 +21,7 @@ rule ingest:
         spacing=dataset_spacing,
         chunks=config["ingest"]["chunks"],
         percentiles=config["ingest"]["percentiles"],
+        missing_sections=config["ingest"]["missing_sections"],
         missing_chunks=config["ingest"]["missing_chunks"],
         code=script_code("ingest"),
     script:

@@ -20,7 +20,6 @@ rule sample_tiles:
     params:
         downsample=target_downsample,
         tiles=target_tiles,
-        exclude_flagged=config["qc"]["exclude_flagged"],
         code=script_code("sample_tiles"),
     script:
         "../scripts/sample_tiles.py"

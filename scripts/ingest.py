@@ -19,5 +19,6 @@ run_job(
     name=snakemake.wildcards.dataset,
     chunks=snakemake.params.chunks,
     percentiles=snakemake.params.percentiles,
+    missing_sections=snakemake.params.missing_sections,
     missing_chunks=snakemake.params.missing_chunks,
 )

@@ -22,5 +22,4 @@ run_job(
     size=tiles["size"],
     count=tiles["per_dataset"],
     seed=tiles["seed"],
-    exclude_flagged=snakemake.params.exclude_flagged,
 )

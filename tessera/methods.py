@@ -33,6 +33,18 @@ def _ladder_clause(cascade):
     )
 
 
+def _split_text(obj):
+    """How touching organelles were separated, or nothing when splitting was off."""
+    if not obj.get("split"):
+        return ""
+    return (
+        "Touching organelles were then separated by a seeded watershed on the Euclidean distance "
+        "to the background in nm, seeds being maxima of that distance at least "
+        f"{obj['split_min_depth_nm']:g} nm above their saddle; size limits applied before "
+        "splitting. "
+    )
+
+
 def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
@@ -73,6 +85,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"predicting each volume in one piece. Probability maps were thresholded with {hysteresis}"
         + (f", {', '.join(morph)}" if morph else "")
         + f"; {size}, and {obj['connectivity']}-connected voxels formed one object. "
+        + _split_text(obj)
     )
     text += _results_text(name, comparison)
     return text

@@ -69,7 +69,8 @@ def write_dataset(
 
         raw.tif                      uint8, one page per section, zlib
         cells.tif                    uint16 cell labels (0 = membrane)
-        truth/mitochondria.tif       uint16 instance labels
+        truth/mitochondria.tif       uint16 instance labels (read as > 0 = target)
+        truth/mitochondria_instances.tif  uint32 instance labels, 0 background, ids >= 1
         truth/nuclei.tif             uint16 instance labels
         truth.json                   parameters, defects, summary
         tiles/points.tsv             tile_id, dataset, target, z, y, x, size, set
@@ -119,6 +120,12 @@ def write_dataset(
         (tmp / "truth").mkdir()
         for target in TARGETS:
             _write_tiff(tmp / "truth" / f"{target}.tif", out[target], spacing)
+        # one id per mitochondrion, touching ones apart, in the dtype object labels have
+        _write_tiff(
+            tmp / "truth" / "mitochondria_instances.tif",
+            out["mitochondria"].astype(np.uint32),
+            spacing,
+        )
         _write_tiles(tmp / "tiles", out, tiles, dataset, tile_size)
         truth = {
             "generator": _GENERATOR,

@@ -1,7 +1,10 @@
-"""Mitochondria of a demo volume: tubes along smooth random paths, some branched.
+"""Mitochondria of a demo volume: tubes along smooth random paths, some branched, some in
+clusters of touching mitochondria (as packed in brown adipocytes).
 
 Each mitochondrion stays in the cytoplasm of one cell, clear of membranes, nuclei, lipid
-droplets and the mitochondria placed before it. Geometry is in nm (axes z, y, x).
+droplets and the mitochondria placed before it, except that a clustered one starts pressed
+against one placed before it (their centrelines closer than the sum of their radii, so the two
+touch over a contact patch and each keeps its own id). Geometry is in nm (axes z, y, x).
 """
 
 import math
@@ -21,6 +24,11 @@ _MITO_REFERENCE_RADIUS_NM = 150.0
 _MITO_GAP_NM = 20.0
 _MITO_CRISTA_PERIOD_NM = (60.0, 90.0)
 _MITO_TRIES = 300
+_MITO_CLUSTERED = 0.35  # placed against an earlier mitochondrion
+#: Centreline distance of a clustered pair over the sum of their radii: below 1 they overlap a
+#: little and touch over a patch whose radius is a fraction of theirs.
+_MITO_CONTACT = (0.82, 0.95)
+_MITO_PARTNER_TRIES = 40
 
 
 def _latin(rng, n, low, high):
@@ -37,6 +45,7 @@ class _Space:
         self.lipids = lipids["params"]
         self.points = np.zeros((0, 3))
         self.reach = np.zeros(0)
+        self.owner = np.zeros(0, np.int64)
 
     def bounds(self, r):
         half = self.grid.spacing / 2
@@ -49,7 +58,9 @@ class _Space:
         hi = np.where(thin, 0.6 * self.grid.extent, hi)
         return lo, hi
 
-    def ok(self, p, r, half_step, cell, bounds):
+    def ok(self, p, r, half_step, cell, bounds, contact=None):
+        """Whether a centreline point fits; `contact` = (id, distance): the centreline of
+        mitochondrion `id` may come as close as `distance` (a clustered one touches it)."""
         lo, hi = bounds
         if np.any(p < lo - 1e-6) or np.any(p > hi + 1e-6):
             return False
@@ -64,16 +75,20 @@ class _Space:
                 return False
         if len(self.points):
             d = np.sqrt(((self.points - p) ** 2).sum(axis=1))
-            if np.any(d < self.reach + pad):
+            need = self.reach + pad
+            if contact is not None:
+                need = np.where(self.owner == contact[0], contact[1], need)
+            if np.any(d < need):
                 return False
         return True
 
-    def add(self, points, r, half_step):
+    def add(self, points, r, half_step, owner=0):
         self.points = np.vstack([self.points, points])
         self.reach = np.concatenate([self.reach, np.full(len(points), r + half_step)])
+        self.owner = np.concatenate([self.owner, np.full(len(points), owner, np.int64)])
 
 
-def _walk(rng, space, start, direction, length, r, n_steps, cell, *, turn_sd=0.22):
+def _walk(rng, space, start, direction, length, r, n_steps, cell, *, turn_sd=0.22, contact=None):
     """Smooth random path of `n_steps` equal steps; None if it runs out of room."""
     step = length / n_steps
     bounds = space.bounds(r)
@@ -91,7 +106,7 @@ def _walk(rng, space, start, direction, length, r, n_steps, cell, *, turn_sd=0.2
                 ((np.asarray(pts[: len(pts) - older]) - q) ** 2).sum(axis=1) < (2 * r) ** 2
             ):
                 continue
-            if space.ok(q, r, step / 2, cell, bounds):
+            if space.ok(q, r, step / 2, cell, bounds, contact):
                 break
         else:
             return None
@@ -139,7 +154,7 @@ def make_mitochondria(rng, grid, cells, nuclei, lipids, scale):
     dict
         ``labels`` uint16 instance labels 1..n, ``depth`` float32 distance (nm) inside the tube
         (-1 outside), ``arc`` float32 position (nm) along the centreline, ``params`` one dict
-        per placed mitochondrion, ``unplaced`` count of those that found no room,
+        per placed mitochondrion (``touches``: the id it was placed against, 0 for none), ``unplaced`` count of those that found no room,
         ``linear_scale`` ``scale ** (1/3)``.
 
     Examples
@@ -168,28 +183,36 @@ def make_mitochondria(rng, grid, cells, nuclei, lipids, scale):
     labels = np.zeros(grid.shape, dtype=np.uint16)
     depth = np.full(grid.shape, -1.0, dtype=np.float32)
     arc = np.zeros(grid.shape, dtype=np.float32)
-    placed = []
+    placed, mains = [], []  # mains: (main centreline, radius, cell) of each placed one
     unplaced = 0
     for i in order:
         r = radius[i] * lin
         L = length[i] * lin
         n_steps = max(2, int(math.ceil(length[i] / _MITO_STEP_NM)))
-        result, cell = _place(place_rngs[i], space, cells, sizes, i, r, L, n_steps)
+        result, cell, against = None, None, 0
+        if sizes["clustered"][i] and placed:
+            result, cell, against = _place_against(
+                place_rngs[i], space, cells, mains, float(sizes["contact"][i]), r, L, n_steps
+            )
+        if result is None:
+            result, cell = _place(place_rngs[i], space, cells, sizes, i, r, L, n_steps)
         if result is None:
             unplaced += 1
             continue
         mid = len(placed) + 1
         for path, rr, half_step in result:
             _render_tube(grid, path, rr, mid, labels, depth, arc)
-            space.add(path, rr, half_step)
+            space.add(path, rr, half_step, owner=mid)
+        mains.append((result[0][0], r, cell))
         placed.append(
             {
                 "id": mid,
-                "branched": bool(sizes["branched"][i]),
+                "branched": bool(sizes["branched"][i]) and not against,
                 "period": float(sizes["period"][i]),
                 "radius": float(r),
                 "length": float(L),
                 "cell": int(cell),
+                "touches": int(against),
             }
         )
     return {
@@ -212,7 +235,12 @@ def _draw_sizes(shape_rng, n):
     branch_len = shape_rng.uniform(0.3, 0.6, n)
     branch_angle = shape_rng.uniform(math.radians(50), math.radians(90), n)
     period = shape_rng.uniform(*_MITO_CRISTA_PERIOD_NM, n)
+    # drawn last, so the draws above are those of a volume without clusters
+    clustered = shape_rng.random(n) < _MITO_CLUSTERED
+    contact = shape_rng.uniform(*_MITO_CONTACT, n)
     return {
+        "clustered": clustered,
+        "contact": contact,
         "radius": radius,
         "length": length,
         "branched": branched,
@@ -257,6 +285,35 @@ def _place(place, space, cells, sizes, i, r, L, n_steps):
             parts.append((side, rb, branch_len[i] * L / b_steps / 2))
         return parts, cell
     return None, None
+
+
+def _place_against(place, space, cells, mains, contact, r, L, n_steps):
+    """An unbranched centreline starting pressed against a placed mitochondrion.
+
+    It starts beside a random point of a random placed one's main centreline, `contact` times
+    the sum of their radii away (so the two overlap a little and touch over a patch), runs
+    along it, and may come that close to it all along but no closer to anything else than an
+    ordinary mitochondrion. Returns ([(path, radius, half step)], cell, id touched), or
+    (None, None, 0) when ``_MITO_PARTNER_TRIES`` attempts find no room."""
+    half_step = L / n_steps / 2
+    for _try in range(_MITO_PARTNER_TRIES):
+        against = int(place.integers(len(mains)))
+        path, r_other, cell = mains[against]
+        k = int(place.integers(len(path)))
+        tangent = path[min(k + 1, len(path) - 1)] - path[max(k - 1, 0)]
+        tangent /= max(np.linalg.norm(tangent), 1e-9)
+        side = np.cross(tangent, _random_direction(place))
+        side /= max(np.linalg.norm(side), 1e-9)
+        touch = (against + 1, contact * (r_other + r))
+        start = path[k] + touch[1] * side
+        bounds = space.bounds(r)
+        if not space.ok(start, r, half_step, cell, bounds, touch):
+            continue
+        direction = tangent if place.random() < 0.5 else -tangent
+        main = _walk(place, space, start, direction, L, r, n_steps, cell, contact=touch)
+        if main is not None:
+            return [(main, r, half_step)], cell, against + 1
+    return None, None, 0
 
 
 def _render_tube(grid, path, r, mid, labels, depth, arc):

@@ -185,6 +185,18 @@ def _image(rng, grid, img):
     return float(slope)
 
 
+def _touching_another(lab):
+    """Ids of the instances that share a face with another instance (clustered ones)."""
+    ids = set()
+    for axis in range(3):
+        a = np.moveaxis(lab, axis, 0)
+        here, there = a[:-1], a[1:]
+        touch = (here > 0) & (there > 0) & (here != there)
+        ids.update(int(v) for v in np.unique(here[touch]))
+        ids.update(int(v) for v in np.unique(there[touch]))
+    return ids
+
+
 def _summary(grid, cells, nuclei, lipids, mitos, vesicles, cyto_um3, scale, drift):
     """Plain Python numbers recorded in ``truth.json``: counts, volumes, drift."""
     lab = mitos["labels"]
@@ -202,6 +214,7 @@ def _summary(grid, cells, nuclei, lipids, mitos, vesicles, cyto_um3, scale, drif
         "n_mitochondria_branched": int(sum(p["branched"] for p in mitos["params"])),
         "n_mitochondria_unplaced": int(mitos["unplaced"]),
         "n_mitochondria_touching_volume_boundary": len(touching),
+        "n_mitochondria_touching_another": len(_touching_another(lab)),
         "n_vesicles": int(vesicles["count"]),
         "mito_volume_scale": float(scale),
         "mito_linear_scale": float(mitos["linear_scale"]),

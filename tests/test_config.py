@@ -478,7 +478,7 @@ def test_every_path_key_of_the_config_schema_is_held_to_the_data_roots(schemas):
     paths = set(strings(schema, "")) - not_paths
     config = {
         "targets": {
-            "a": {"annotations": {"labels": "{dataset}.tif"}},
+            "a": {"annotations": {"labels": "{dataset}.tif", "instances": "{dataset}_ids.tif"}},
             "b": {"annotations": {"painted": {"points": "p.tsv", "masks": "m"}}},
         }
     }

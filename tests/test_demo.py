@@ -213,6 +213,28 @@ def test_instance_ids_contiguous_and_each_one_connected_component(renders):
     assert n_seen >= 10
 
 
+def test_clusters_of_touching_mitochondria_keep_one_id_each(renders):
+    # Reference: scipy.ndimage.label of the binary mask (6-connected). Touching mitochondria
+    # merge into one component of the mask, so a volume with clusters has fewer components than
+    # instances; each instance is still one piece (test above) with its own id.
+    n_instances, n_components, n_touching = 0, 0, 0
+    for out in renders.values():
+        lab = out["mitochondria"]
+        n_instances += int(lab.max())
+        n_components += ndimage.label(lab > 0)[1]
+        n_touching += out["summary"]["n_mitochondria_touching_another"]
+        # the summary's count, against instances sharing a face found by scipy's dilation
+        touching = sum(
+            bool(((lab > 0) & (lab != i) & ndimage.binary_dilation(lab == i)).any())
+            for i in range(1, int(lab.max()) + 1)
+        )
+        assert touching == out["summary"]["n_mitochondria_touching_another"]
+    assert n_components < n_instances
+    # about a third of them are placed against another (_MITO_CLUSTERED = 0.35), some of
+    # which find no room there
+    assert 0.1 * n_instances <= n_touching <= 0.6 * n_instances
+
+
 def test_summary_volumes_match_voxel_counts(renders):
     out = renders[(1, 1.0)]
     vols = _volumes_um3(out["mitochondria"])
@@ -342,6 +364,14 @@ def test_written_stacks_equal_render(written):
             pages = np.stack([p.asarray() for p in tif.pages])
         assert pages.dtype == dtype
         np.testing.assert_array_equal(pages, out[key])
+    # the instance truth: uint32, the stack's shape, 0 background, ids 1..n, the same
+    # mitochondria as the training label file (read as > 0)
+    with tifffile.TiffFile(written / "truth" / "mitochondria_instances.tif") as tif:
+        instances = np.stack([p.asarray() for p in tif.pages])
+    assert instances.dtype == np.uint32 and instances.shape == (14, 224, 224)
+    np.testing.assert_array_equal(instances, out["mitochondria"])
+    ids = np.unique(instances)
+    np.testing.assert_array_equal(ids[1:], np.arange(1, out["summary"]["n_mitochondria"] + 1))
     truth = json.loads((written / "truth.json").read_text(encoding="utf-8"))
     assert truth["defects"] == out["defects"]
     assert truth["summary"] == pytest.approx(out["summary"])

@@ -15,7 +15,9 @@ from tessera.errors import TesseraInputError
 from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
 from tessera.io.stacks import open_stack
+from tessera.workflow.files.qc_table import excluded_sections, read_qc_table
 from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.section_qc import section_qc_job
 
 SPACING = (40.0, 8.0, 8.0)
 
@@ -214,3 +216,343 @@ def test_real_sstem_stack_ingests_with_its_voxel_size(tmp_path, vnc_sstem):
         info["levels"][0][7], tifffile.imread(vnc_sstem / "raw" / "07.tif")
     )
     Image.from_zarr(group)
+
+
+# Damaged inputs. Every refusal is checked to leave the folder as it was: nothing is written.
+
+
+def _listing(folder):
+    return sorted(os.listdir(folder))
+
+
+def _ingest(src, tmp_path, **kwargs):
+    kwargs = {"fmt": "tiff_stack", "spacing": SPACING, **kwargs}
+    return ingest_job(src, tmp_path / "o.ome.zarr", **kwargs)
+
+
+def _one_line_and_nothing_written(info, src, tmp_path, before):
+    message = str(info.value)
+    assert message.startswith(str(src))  # the message names the file first
+    assert "\n" not in message  # one line
+    assert _listing(tmp_path) == before
+    return message
+
+
+@pytest.mark.parametrize(
+    ("writer", "states"),
+    [
+        (
+            {"photometric": "minisblack"},
+            "the shape description states 12 pages (truncated or damaged?)",
+        ),
+        (
+            {"imagej": True, "metadata": {"axes": "ZYX"}},
+            "the ImageJ description states 12 pages (truncated or damaged?)",
+        ),
+    ],
+)
+def test_tiff_cut_short_in_copying_is_refused_not_shortened(tmp_path, writer, states):
+    # A 12-section stack with half its bytes: the page chain ends early. tifffile only logs
+    # "invalid page offset" and offers the pages it reached; that must not become a short stack.
+    src = tmp_path / "stack.tif"
+    volume = np.random.default_rng(1).integers(0, 256, (12, 32, 32), dtype=np.uint8)
+    tifffile.imwrite(src, volume, **writer)
+    src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"page directories damaged or cut short after \d+ readable page"
+    ) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert "invalid page offset" in message
+    assert states in message
+
+
+def test_ome_tiff_cut_short_is_refused(tmp_path):
+    # tifffile writes the OME-XML description after the pixels: a cut file loses it too.
+    src = tmp_path / "stack.ome.tif"
+    tifffile.imwrite(src, np.zeros((12, 32, 32), np.uint8), ome=True, photometric="minisblack")
+    src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match="cannot read as TIFF: ") as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert "invalid value offset" in message
+
+
+def test_tiff_losing_its_last_bytes_is_refused(tmp_path):
+    # Page by page, each page's pixels follow its directory: the cut lands in the last pixels.
+    src = tmp_path / "stack.tif"
+    with tifffile.TiffWriter(src) as tif:
+        for _ in range(4):
+            tif.write(np.ones((16, 16), np.uint8), photometric="minisblack", contiguous=False)
+    size = src.stat().st_size
+    src.write_bytes(src.read_bytes()[:-10])
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=rf"the pixels of page 3 end at byte {size}, the file has {size - 10} "
+        r"\(truncated or damaged\?\)",
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+    # The same cut into the tag values of the last directory.
+    with tifffile.TiffWriter(src) as tif:
+        for _ in range(4):
+            tif.write(np.ones((16, 16), np.uint8), photometric="minisblack", contiguous=False)
+        tif.write(
+            np.ones((16, 16), np.uint8),
+            photometric="minisblack",
+            contiguous=False,
+            description="x" * 40,
+            metadata=None,
+        )  # an out-of-line value written last
+    src.write_bytes(src.read_bytes()[: src.stat().st_size - 16 * 16 - 20])
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"damaged or cut short after 5 readable page\(s\) \("
+    ) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert "invalid value offset" in message
+
+
+@pytest.mark.parametrize(
+    ("tag", "value", "message"),
+    [
+        ("StripOffsets", "page0", "the pixels of page 0 and the pixels of page 2 overlap"),
+        ("StripByteCounts", 100, "page 2 stores 100 bytes of pixels, expected at least 256"),
+        ("StripOffsets", "text", "tag ImageDescription of page 0 and the pixels of page 2 overlap"),
+    ],
+)
+def test_tiff_with_damaged_offsets_is_refused(tmp_path, tag, value, message):
+    # Offsets and byte counts of a page's strips (TIFF 6.0, tags 273 and 279) rewritten in
+    # place, as a bit error in the directory would: page 2 pointing at page 0's pixels would
+    # silently duplicate a section; a short byte count would leave pixels undefined.
+    src = tmp_path / "stack.tif"
+    volume = (np.arange(3 * 256) % 251).astype(np.uint8).reshape(3, 16, 16)
+    tifffile.imwrite(src, volume, photometric="minisblack")
+    with tifffile.TiffFile(src, mode="r+") as tif:
+        if value == "page0":
+            value = tif.pages[0].dataoffsets[0]
+        elif value == "text":  # pixels read from the description's text
+            value = tif.pages[0].tags["ImageDescription"].valueoffset
+        tif.pages[2].tags[tag].overwrite(value)
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_tiff_with_header_and_garbage_is_one_line(tmp_path):
+    src = tmp_path / "stack.tif"
+    garbage = np.random.default_rng(5).integers(0, 256, 4096, dtype=np.uint8).tobytes()
+    src.write_bytes(b"II*\x00" + garbage)  # little-endian TIFF signature (TIFF 6.0, section 2)
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match="cannot read as TIFF: ") as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_tiff_page_count_must_match_its_imagej_description(tmp_path):
+    # ImageJ's description line images=N is the number of planes in the file (ImageJ's TIFF
+    # writer; from memory). Eleven pages that claim twelve lost one.
+    src = tmp_path / "stack.tif"
+    description = "ImageJ=1.54f\nimages=12\nslices=12\nunit=nm\nspacing=40.0\n"
+    tifffile.imwrite(src, np.zeros((11, 16, 16), np.uint8), description=description, metadata=None)
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="the ImageJ description states 12 pages, the file has 11"
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_tiff_pages_laid_out_differently_are_refused(tmp_path):
+    src = tmp_path / "stack.tif"
+    with tifffile.TiffWriter(src) as tif:
+        tif.write(np.zeros((16, 16), np.uint8), photometric="minisblack")
+        tif.write(np.zeros((16, 16), np.uint16), photometric="minisblack")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="page 1 has dtype uint16, expected uint8 like page 0"
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def _mrc(path, volume):
+    with mrcfile.new(path, overwrite=True) as mrc:
+        mrc.set_data(volume)
+
+
+def test_mrc_cut_short_is_refused_against_its_header(tmp_path):
+    # MRC2014: a 1024-byte header, then nsymbt extended-header bytes, then nx*ny*nz voxels of the
+    # mode's type (mode 1 = int16); the file size follows from the header.
+    src = tmp_path / "stack.mrc"
+    _mrc(src, np.zeros((12, 8, 10), np.int16))
+    assert src.stat().st_size == 1024 + 12 * 8 * 10 * 2
+    src.write_bytes(src.read_bytes()[:2000])
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"header says nx=10, ny=8, nz=12, mode 1 \(int16\) after 1024 \+ 0 header bytes: "
+        r"expected 2944 bytes, the file has 2000 \(truncated or damaged\?\)",
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_mrc_with_surplus_bytes_or_permuted_axes_is_refused(tmp_path):
+    src = tmp_path / "stack.mrc"
+    _mrc(src, np.zeros((3, 8, 10), np.int16))
+    src.write_bytes(src.read_bytes() + bytes(7))
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"expected 1504 bytes, the file has 1511 \(extra bytes: damaged\?\)",
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+    _mrc(src, np.zeros((3, 8, 10), np.int16))
+    with mrcfile.open(src, mode="r+") as mrc:
+        mrc.header.mapc, mrc.header.mapr = 2, 1  # rows and columns swapped on disk
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match=r"axis order mapc, mapr, maps = \(2, 1, 3\), expected \(1, 2, 3\)"
+    ) as info:
+        _ingest(src, tmp_path, fmt="mrc")
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_float_stack_with_nan_is_refused(tmp_path):
+    src = tmp_path / "stack.tif"
+    volume = np.ones((3, 8, 8), np.float32)
+    volume[2, 4, 4] = np.nan
+    tifffile.imwrite(src, volume, photometric="minisblack")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"section 2 holds 1 NaN or infinite value\(s\); expected finite numbers",
+    ) as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def _numbered_folder(folder, volume, numbers, name="sec_{:04d}.tif"):
+    folder.mkdir()
+    for n, plane in zip(numbers, volume, strict=True):
+        tifffile.imwrite(folder / name.format(n), plane)
+
+
+def test_lost_section_becomes_an_excluded_placeholder(tmp_path):
+    # Serial sections numbered 1..12 with number 5 lost (common practice: one file per section,
+    # numbered in cutting order). Closing the gap would join sections 4 and 6 as neighbours.
+    volume = np.random.default_rng(2).integers(1, 256, (11, 32, 32), dtype=np.uint8)
+    numbers = [n for n in range(1, 13) if n != 5]
+    _numbered_folder(tmp_path / "slices", volume, numbers)
+    out = tmp_path / "o.ome.zarr"
+    summary = ingest_job(tmp_path / "slices", out, fmt="slice_folder", spacing=SPACING)
+    assert summary["shape"] == [12, 32, 32] and summary["missing_sections"] == [4]
+    _, info = open_image(out)
+    expected = np.insert(volume, 4, 0, axis=0)  # the written sections, a blank at z = 4
+    np.testing.assert_array_equal(info["levels"][0][:], expected)
+    assert info["extra"]["missing_sections"] == [4]
+    result = section_qc_job(
+        out, table_path=tmp_path / "sections.tsv", plot_path=tmp_path / "qc.png"
+    )
+    table = read_qc_table(tmp_path / "sections.tsv")
+    assert table.loc[table["z"] == 4, "reason"].tolist() == ["missing"]
+    assert excluded_sections(tmp_path / "sections.tsv") == [4]
+    assert result["flagged"] == {4: "missing"}
+    # exclude_flagged=False keeps imaged sections but never a section that was not imaged
+    section_qc_job(
+        out,
+        table_path=tmp_path / "info.tsv",
+        plot_path=tmp_path / "info.png",
+        exclude_flagged=False,
+    )
+    assert excluded_sections(tmp_path / "info.tsv") == [4]
+
+
+def test_lost_section_is_refused_when_asked(tmp_path):
+    volume = np.zeros((10, 8, 8), np.uint8)
+    _numbered_folder(tmp_path / "slices", volume, [n for n in range(12) if n not in (3, 7)])
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"section number\(s\) 3, 7 missing from the sequence 0\.\.11: expected 12 sections, "
+        r"found 10 files; set ingest.missing_sections: placeholder",
+    ) as info:
+        _ingest(tmp_path / "slices", tmp_path, fmt="slice_folder", missing_sections="refuse")
+    _one_line_and_nothing_written(info, tmp_path / "slices", tmp_path, before)
+
+
+def test_numbering_by_a_constant_step_has_no_gap(tmp_path):
+    # Files named by cutting depth in nm (z0000, z0050, ...): a step of 50, nothing lost.
+    volume = np.random.default_rng(4).integers(0, 256, (4, 8, 8), dtype=np.uint8)
+    folder = tmp_path / "slices"
+    folder.mkdir()
+    for depth, plane in zip([0, 50, 100, 150], volume, strict=True):
+        PILImage.fromarray(plane).save(folder / f"z{depth:04d}.png")
+    summary = ingest_job(folder, tmp_path / "o.ome.zarr", fmt="slice_folder", spacing=SPACING)
+    assert summary["missing_sections"] == []
+    np.testing.assert_array_equal(open_image(tmp_path / "o.ome.zarr")[1]["levels"][0][:], volume)
+
+
+@pytest.mark.parametrize(
+    ("names", "message"),
+    [
+        (
+            ["s1.tif", "s01.tif", "s2.tif"],
+            r"section number 1 appears twice \('s01\.tif' and 's1\.tif'\)",
+        ),
+        (["s1.tif", "s1.png", "s2.tif"], "section number 1 appears twice"),
+        (["s1.tif", "overview.tif"], "section file 'overview.tif' has no section number"),
+    ],
+)
+def test_ambiguous_section_numbers_are_refused(tmp_path, names, message):
+    folder = tmp_path / "slices"
+    folder.mkdir()
+    for name in names:
+        if name.endswith(".png"):
+            PILImage.fromarray(np.zeros((8, 8), np.uint8)).save(folder / name)
+        else:
+            tifffile.imwrite(folder / name, np.zeros((8, 8), np.uint8))
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _ingest(folder, tmp_path, fmt="slice_folder")
+    _one_line_and_nothing_written(info, folder, tmp_path, before)
+
+
+def test_palette_png_is_refused_not_read_as_indices(tmp_path):
+    # A palette ("P" mode) PNG stores colour-table indices, not grey values (PNG spec, colour
+    # type 3); reading the indices would silently alter the section.
+    folder = tmp_path / "slices"
+    folder.mkdir()
+    for z in range(2):
+        PILImage.fromarray(np.full((8, 8), 3 * z, np.uint8)).convert("P").save(folder / f"{z}.png")
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="expected a greyscale image .*, got mode P"
+    ) as info:
+        _ingest(folder, tmp_path, fmt="slice_folder")
+    _one_line_and_nothing_written(info, folder, tmp_path, before)
+
+
+def test_zarr_declaring_fewer_sections_than_written_is_refused(tmp_path):
+    # zarr would read the first 4 sections and ignore the chunk files of the fifth
+    src = tmp_path / "stack.zarr"
+    arr = zarr.create_array(store=str(src), shape=(5, 8, 8), chunks=(1, 8, 8), dtype="uint8")
+    arr[:] = 1
+    meta = json.loads((src / "zarr.json").read_text())
+    meta["shape"] = [4, 8, 8]
+    (src / "zarr.json").write_text(json.dumps(meta))
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"chunk file c/4/0/0 lies outside the declared shape \(4, 8, 8\) \(chunk grid "
+        r"\(4, 1, 1\)\): the metadata state less than was written",
+    ) as info:
+        _ingest(src, tmp_path, fmt="zarr")
+    _one_line_and_nothing_written(info, src, tmp_path, before)

@@ -50,6 +50,8 @@ def test_methods_text_is_written_from_the_run(tmp_path):
                 "min_volume_um3": 0.002,
                 "max_volume_um3": None,
                 "connectivity": 26,
+                "split": True,
+                "split_min_depth_nm": 40,
             }
         )
     )
@@ -121,6 +123,8 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "opened with a 16 nm ball",
         "smaller than 0.002 µm³",
         "26-connected",
+        "seeded watershed on the Euclidean distance",
+        "at least 40 nm above their saddle",
         "1 of 3 sections",
         "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",
         "`data/a.tif`: `ab12`",

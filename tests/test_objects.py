@@ -11,12 +11,15 @@ from ome_zarr_models.v05.image_label import ImageLabel
 from scipy import ndimage
 from skimage.draw import ellipsoid as sk_ellipsoid
 from skimage.filters import apply_hysteresis_threshold
+from skimage.morphology import h_maxima
+from skimage.segmentation import watershed
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
 from tessera.objects.label import label_objects
 from tessera.objects.morphology import ball, connectivity_structure
+from tessera.objects.split import tie_breaker
 from tessera.workflow.config import load_config
 from tessera.workflow.jobs.objects import objects_job
 
@@ -260,8 +263,8 @@ def test_config_refuses_low_above_high(repo):
         load_config(config, repo / "config" / "schemas" / "config.schema.yaml")
 
 
-def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
-    p = smooth_field(5, shape=(6, 40, 48))
+def probability_inputs(tmp_path, p):
+    """A stitched probability map (uint8, two levels, checksummed), QC table and scores."""
     image = tmp_path / "probability.ome.zarr"
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
     factors = [(1, 1, 1), (1, 2, 2)]
@@ -276,13 +279,18 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     group.create_array(name="1", data=stored[:, ::2, ::2], chunks=(1, 16, 16), dimension_names=AXES)
     record_checksums(image)  # as stitch does: readers refuse stores without records
     qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(6), "excluded": [False, False, True, False, False, False]}).to_csv(
-        qc, sep="\t", index=False
-    )
+    excluded = np.arange(p.shape[0]) == 2
+    pd.DataFrame({"z": range(p.shape[0]), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
     scores = tmp_path / "scores.tsv"
     pd.DataFrame({"role": ["validation", "test"], "threshold": [0.62, 0.62]}).to_csv(
         scores, sep="\t", index=False
     )
+    return image, qc, scores, stored
+
+
+def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
+    p = smooth_field(5, shape=(6, 40, 48))
+    image, qc, scores, stored = probability_inputs(tmp_path, p)
     settings = dict(
         high=None,
         low=None,
@@ -326,3 +334,208 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     group, info = open_image(out)
     np.testing.assert_array_equal(group["labels/mito/0"][:], labels)
     np.testing.assert_array_equal(info["levels"][1][:], stored[:, ::2, ::2])
+
+
+# --- separating touching organelles --------------------------------------------------------
+
+
+def physical_grid(shape, spacing):
+    """Voxel-centre coordinates in nm (z, y, x)."""
+    return [g * s for g, s in zip(np.indices(shape, dtype=np.float64), spacing, strict=True)]
+
+
+def balls_volume(centres_radii, shape, spacing):
+    """Probability 0.9 inside the union of balls (centre nm, radius nm), 0 outside."""
+    zz, yy, xx = physical_grid(shape, spacing)
+    p = np.zeros(shape, np.float32)
+    for (cz, cy, cx), r in centres_radii:
+        p[(zz - cz) ** 2 + (yy - cy) ** 2 + (xx - cx) ** 2 <= r**2] = 0.9
+    return p
+
+
+def split_reference(p, *, high, low, depth, spacing=SPACING, connectivity=26):
+    """In-memory reference of splitting: today's objects (:func:`reference`), the Euclidean
+    distance transform of the whole mask with scipy (sampling = spacing, nm) plus tessera's
+    documented tie-breaker, markers from scikit-image's h-maxima within each object (its
+    highest point when none stands out), and scikit-image's watershed of the whole volume;
+    pieces numbered in raster order of their first voxel."""
+    st = connectivity_structure(connectivity)
+    objects = reference(p, high=high, low=low, connectivity=connectivity)
+    distance = ndimage.distance_transform_edt(objects > 0, sampling=spacing)
+    distance += tie_breaker(objects.shape)
+    markers = np.zeros(objects.shape, np.int64)
+    for k in range(1, objects.max() + 1):
+        mine = np.where(objects == k, distance, 0.0)
+        peaks = h_maxima(mine, float(depth), footprint=st) > 0
+        if not peaks.any():
+            peaks[np.unravel_index(np.argmax(mine), mine.shape)] = True
+        lab, _ = ndimage.label(peaks, st)
+        markers[lab > 0] = lab[lab > 0] + markers.max()
+    pieces = watershed(-distance, markers, mask=objects > 0, connectivity=st)
+    ids, first = np.unique(pieces.ravel(), return_index=True)
+    order = ids[ids > 0][np.argsort(first[ids > 0], kind="stable")]
+    lut = np.zeros(pieces.max() + 1, np.int64)
+    lut[order] = np.arange(1, len(order) + 1)
+    return lut[pieces]
+
+
+def test_split_blockwise_equals_scikit_image_watershed():
+    # Reference library: scikit-image (h_maxima, watershed) and scipy (distance_transform_edt)
+    # on the whole volume in memory, with the same markers; the block size must not matter.
+    p = smooth_field(3)
+    expected = split_reference(p, high=0.7, low=0.6, depth=20)
+    assert expected.max() > reference(p, high=0.7, low=0.6).max() + 5  # really split some
+    for block in BLOCKS:
+        labels, table = run(p, block, high=0.7, low=0.6, split_min_depth_nm=20)
+        np.testing.assert_array_equal(labels, expected)
+        assert table["id"].tolist() == list(range(1, expected.max() + 1))
+        assert table["voxels"].tolist() == np.bincount(expected.ravel())[1:].tolist()
+        assert table["split_checked"].all()
+
+
+@pytest.mark.parametrize("spacing", [(40.0, 10.0, 10.0), (30.0, 12.0, 9.0)])
+def test_two_touching_balls_split_into_their_analytic_volumes(spacing):
+    # Two balls of radius 220 and 160 nm whose centres are 0.9 x (220 + 160) nm apart touch over
+    # a patch (neck radius ~100 nm, depth of the smaller maximum ~60 nm > 40). Published
+    # formula: a ball holds 4/3 pi r^3; each piece must come within 5 % of it (the overlap lens
+    # is ~1 % of the smaller ball).
+    r1, r2 = 220.0, 160.0
+    c1 = (400.0, 400.0, 300.0)
+    c2 = (400.0 + 60.0, 400.0, 300.0 + np.sqrt((0.9 * (r1 + r2)) ** 2 - 60.0**2))
+    shape = tuple(int(800 / s) + 1 for s in spacing[:2]) + (int(1000 / spacing[2]) + 1,)
+    p = balls_volume([(c1, r1), (c2, r2)], shape, spacing)
+    out = np.zeros(shape, np.uint32)
+    kwargs = dict(spacing=spacing, high=0.5, block=(7, 31, 29), fill_max_voxels=10**9)
+    whole = label_objects(p, out.copy(), **kwargs)
+    assert len(whole) == 1  # one connected component before splitting
+    table = label_objects(p, out, split_min_depth_nm=40, **kwargs)
+    assert len(table) == 2 and out.max() == 2
+    volumes = table["volume_um3"].to_numpy()
+    analytic = 4 / 3 * np.pi * np.array([r1, r2]) ** 3 / 1e9
+    np.testing.assert_allclose(volumes, analytic, rtol=0.05)
+    assert out[tuple(int(round(c / s)) for c, s in zip(c1, spacing, strict=True))] == 1
+
+
+def test_dumbbell_with_a_neck_wider_than_the_setting_stays_whole():
+    # Two balls of radius 200 nm joined by a rod of radius a along the axis through their
+    # centres. The distance's maxima sit at the centres (200 nm), the saddle on the rod near its
+    # radius a, so the depth is about 200 - a: a wide neck (a = 180) is one object at 40 nm,
+    # a thin one (a = 60) two.
+    spacing = (40.0, 10.0, 10.0)
+    shape = (21, 61, 121)
+    zz, yy, xx = physical_grid(shape, spacing)
+    centres = [(400.0, 300.0, 250.0), (400.0, 300.0, 950.0)]
+    for neck, expected in ((180.0, 1), (60.0, 2)):
+        p = balls_volume([(c, 200.0) for c in centres], shape, spacing)
+        rod = ((zz - 400.0) ** 2 + (yy - 300.0) ** 2 <= neck**2) & (xx >= 250) & (xx <= 950)
+        p[rod] = 0.9
+        out = np.zeros(shape, np.uint32)
+        table = label_objects(
+            p, out, spacing=spacing, high=0.5, block=(8, 32, 32), split_min_depth_nm=40
+        )
+        assert len(table) == expected, neck
+
+
+def test_split_switched_off_gives_todays_bytes():
+    # Off (no depth) is the filtering of the tests above, byte for byte, and so is a depth no
+    # object reaches (no seed stands out, every object stays whole); reference: scipy, via
+    # the in-memory `reference`.
+    p = smooth_field(3)
+    expected = reference(p, high=0.75, low=0.65, open_nm=12)
+    kwargs = dict(high=0.75, low=0.65, open_radius_nm=12)
+    off, table_off = run(p, (5, 17, 23), **kwargs)
+    np.testing.assert_array_equal(off, expected)
+    assert off.tobytes() == run(p, (5, 17, 23), split_min_depth_nm=None, **kwargs)[0].tobytes()
+    assert "split_checked" not in table_off
+    deep, table_deep = run(p, (4, 32, 16), split_min_depth_nm=10**4, **kwargs)
+    assert deep.tobytes() == off.tobytes()
+    pd.testing.assert_frame_equal(table_deep.drop(columns="split_checked"), table_off)
+
+
+def test_objects_too_large_to_split_stay_whole_and_flagged():
+    # The limit counts the voxels of the object's bounding box with one voxel of margin (where
+    # the volume allows): at the box's size it is split, one voxel below it stays whole, flagged.
+    spacing = (40.0, 10.0, 10.0)
+    p = balls_volume(
+        [((400.0, 300.0, 250.0), 200.0), ((400.0, 300.0, 600.0), 200.0)], (21, 61, 91), spacing
+    )
+    kwargs = dict(spacing=spacing, high=0.5, block=(8, 32, 32), split_min_depth_nm=40)
+    whole = label_objects(p, np.zeros(p.shape, np.uint32), **kwargs | {"split_min_depth_nm": None})
+    lo = whole[["z0", "y0", "x0"]].to_numpy()[0] - 1
+    hi = whole[["z1", "y1", "x1"]].to_numpy()[0] + 1
+    box = int(np.prod(np.minimum(hi, p.shape) - np.maximum(lo, 0)))
+    table = label_objects(p, np.zeros(p.shape, np.uint32), split_max_voxels=box, **kwargs)
+    assert len(table) == 2 and table["split_checked"].all()
+    out = np.zeros(p.shape, np.uint32)
+    table = label_objects(p, out, split_max_voxels=box - 1, **kwargs)
+    assert len(table) == 1 and not table["split_checked"].any()
+    np.testing.assert_array_equal(out > 0, p > 0.5)
+
+
+@pytest.mark.parametrize(
+    "kwargs, message",
+    [
+        (dict(split_min_depth_nm=-5), "objects split_min_depth_nm must be > 0 nm, got -5"),
+        (
+            dict(split_min_depth_nm=300, max_volume_um3=0.05),
+            "split_min_depth_nm \\(300 nm\\) exceeds 229 nm, the radius of a ball of "
+            "max_volume_um3 \\(0.05 um\\^3\\): no object could be split",
+        ),
+    ],
+)
+def test_bad_split_settings_are_refused(kwargs, message):
+    # 229 nm = (3 x 0.05 um^3 / 4 pi)^(1/3), the radius of a ball of that volume (Euclid).
+    with pytest.raises(TesseraInputError, match=message):
+        run(np.zeros((2, 8, 8), np.float32), (2, 8, 8), high=0.5, **kwargs)
+
+
+def test_config_refuses_bad_split_settings_naming_the_key(repo):
+    def config(objects):
+        target = {"downsample": 2, "annotations": {"labels": "{dataset}.tif"}, "objects": objects}
+        return {"datasets": "x.tsv", "targets": {"mito": target}}
+
+    schema = repo / "config" / "schemas" / "config.schema.yaml"
+    with pytest.raises(TesseraInputError) as negative:
+        load_config(config({"split_min_depth_nm": -5}), schema)
+    assert "key targets.mito.objects.split_min_depth_nm: -5 is less than" in str(negative.value)
+    with pytest.raises(TesseraInputError) as too_deep:
+        load_config(config({"split_min_depth_nm": 300, "max_volume_um3": 0.05}), schema)
+    assert "key targets.mito.objects: split_min_depth_nm (300 nm) exceeds 229 nm" in str(
+        too_deep.value
+    )
+    loaded = load_config(config({}), schema)["targets"]["mito"]["objects"]
+    assert loaded["split"] is True and loaded["split_min_depth_nm"] == 40
+
+
+@pytest.mark.parametrize("split", [False, True])
+def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split):
+    # The config's off switch reaches the library: off = today's labels (scipy reference), on =
+    # the scikit-image watershed reference; the settings file records both keys.
+    p = smooth_field(3)
+    image, qc, scores, stored = probability_inputs(tmp_path, p)
+    settings = dict(
+        high=0.71,  # no stored value k / 255 equals a threshold (>= and > then agree)
+        low=0.61,
+        open_radius_nm=0,
+        close_radius_nm=0,
+        fill_holes=True,
+        min_volume_um3=0,
+        max_volume_um3=None,
+        connectivity=26,
+        # 8 blocks hold the volume: every object's cavities are filled, as in the reference
+        block=[8, 32, 64],
+        bridge_excluded=False,
+        split=split,
+        split_min_depth_nm=20,
+    )
+    out = tmp_path / "objects.ome.zarr"
+    args = (image, qc, scores, out, tmp_path / "o.tsv", tmp_path / "o.json")
+    objects_job(*args, target="mito", settings=settings)
+    labels = zarr.open_group(store=str(out), mode="r")["labels/mito/0"][:]
+    values = stored.astype(np.float32) / 255
+    expected = (split_reference if split else reference)(
+        values, high=0.71, low=0.61, **({"depth": 20} if split else {})
+    )
+    np.testing.assert_array_equal(labels, expected)
+    used = json.loads((tmp_path / "o.json").read_text())
+    assert used["split"] is split and used["split_min_depth_nm"] == 20

@@ -13,7 +13,7 @@ from tessera.section_qc import metrics as qc_metrics
 from tessera.section_qc.flags import flag_sections
 from tessera.section_qc.metrics import METRIC_COLUMNS, measure_sections, section_metrics
 from tessera.section_qc.plot import plot_sections
-from tessera.section_qc.shift import phase_shift
+from tessera.section_qc.shift import field_shift, phase_shift
 from tessera.workflow.files.qc_table import (
     count_sections,
     excluded_sections,
@@ -293,6 +293,127 @@ def test_measure_sections_reads_one_section_at_a_time():
 
 
 # --------------------------------------------------------------------------------------------
+# jumps, not drift; stack edges judged against the neighbours they have
+
+DRIFT = (15, -20)  # content moves by this per section: 25 px, more than max_shift_px (20)
+EXTRA = (-20, -15)  # a jump of 25 px on top of the drift
+JUMP_AT, NZ, SIDE = 6, 12, 320
+
+
+def drifting_stack(*, extra_at=(), seed=5):
+    """One textured field, each section moved by DRIFT from the last (plus EXTRA at `extra_at`).
+
+    Sections are whole-pixel periodic shifts (scipy.ndimage.shift, grid-wrap) of one field
+    with independent noise, so the true shift between neighbours is known exactly.
+    """
+    rng = np.random.default_rng(seed)
+    field = textured((SIDE, SIDE), 31, sigma=1.5)
+    vol = np.empty((NZ, SIDE, SIDE), np.uint8)
+    for z in range(NZ):
+        offset = np.multiply(DRIFT, z) + (EXTRA if z in extra_at else (0, 0))
+        moved = ndimage.shift(field, offset, order=0, mode="grid-wrap")
+        vol[z] = np.clip(np.rint(moved + rng.normal(0, 4, field.shape)), 0, 255)
+    return vol
+
+
+def test_field_shift_matches_reference_for_a_whole_field_shift():
+    vol = drifting_stack()
+    # the tiled median agrees with skimage.registration.phase_cross_correlation on the pair
+    expected, _, _ = phase_cross_correlation(vol[0], vol[1])
+    assert field_shift(vol[0], vol[1]) == tuple(expected) == (-DRIFT[0], -DRIFT[1])
+
+
+def test_field_shift_ignores_one_structure_moving_alone():
+    # Neighbouring sections share a coarse texture but not their fine detail; a dark straight
+    # band (a membrane cut at a shallow angle) lies near one corner and moves 22 px across
+    # its length between them, while the rest of the field stays put.
+    size = 256
+    yy, xx = np.mgrid[0:size, 0:size]
+    common = textured((size, size), 1, sigma=3.0, contrast=20)
+
+    def section(band_offset, seed):
+        across = yy * 0.6 + xx * 0.8 - 60 - band_offset
+        band = np.where(np.abs(across) < 5, -60.0, 0.0)
+        return common + band + textured((size, size), seed, contrast=10)
+
+    ref, moving = section(0.0, 2), section(22.0, 3)
+    # reference library: whole-image phase correlation (skimage) locks onto the band
+    whole, _, _ = phase_cross_correlation(ref, moving)
+    assert np.hypot(*whole) > 20
+    assert np.hypot(*phase_shift(ref, moving, window=True)) > 20
+    # the median over tiles reports the field, which did not move
+    assert np.hypot(*field_shift(ref, moving)) <= 2
+
+
+def test_steady_drift_is_not_flagged():
+    table = flag_sections(measure_sections(vol := drifting_stack()))
+    assert (table["reason"] == "").all()
+    assert not table["excluded"].any()
+    # the drift is really measured, every section past the first, larger than max_shift_px;
+    # reference: skimage.registration.phase_cross_correlation on each neighbouring pair
+    for z in range(1, NZ):
+        expected, _, _ = phase_cross_correlation(vol[z - 1], vol[z])
+        assert (table.loc[z, "shift_y"], table.loc[z, "shift_x"]) == tuple(expected)
+    np.testing.assert_allclose(table["shift"][1:], np.hypot(*DRIFT))
+    assert np.hypot(*DRIFT) > 20
+
+
+@pytest.mark.parametrize("extra_at", [(JUMP_AT,), tuple(range(JUMP_AT, NZ))])
+def test_a_jump_in_a_drifting_stack_is_flagged(extra_at):
+    # one displaced section, or a step (every section from JUMP_AT on moved by EXTRA)
+    vol = drifting_stack(extra_at=extra_at)
+    table = flag_sections(measure_sections(vol))
+    assert table.loc[table["reason"] != "", "z"].tolist() == [JUMP_AT]
+    assert table.loc[JUMP_AT, "reason"] == "shift"
+    # the jump is the displacement beyond the drift (phase_cross_correlation as reference)
+    expected, _, _ = phase_cross_correlation(vol[JUMP_AT - 1], vol[JUMP_AT])
+    assert tuple(expected) == (-DRIFT[0] - EXTRA[0], -DRIFT[1] - EXTRA[1])
+    assert table.loc[JUMP_AT, "shift_jump"] == pytest.approx(np.hypot(*EXTRA))
+
+
+EDGE_NZ, EDGE_RAMP = 24, 5
+
+
+def tapering_stack(*, blur_at=None, seed=12):
+    """Correlated sections whose contrast falls steadily over the last EDGE_RAMP at each end.
+
+    Like a block whose organelles thin out towards its faces: the sharpness (a variance,
+    proportional to contrast squared) of the first and last sections is well under half the
+    stack's median, yet every section is in focus. `blur_at` defocuses one section.
+    """
+    rng = np.random.default_rng(seed)
+    field = ndimage.gaussian_filter(rng.normal(size=(EDGE_NZ + 12, 96, 96)), (1.2, 1.0, 1.0))
+    field = field[6:-6] / field.std()
+    from_end = np.minimum(np.arange(EDGE_NZ), EDGE_NZ - 1 - np.arange(EDGE_NZ))
+    contrast = 30.0 * 0.8 ** np.clip(EDGE_RAMP - from_end, 0, None)  # log-linear taper
+    vol = np.empty(field.shape, np.uint8)
+    for z in range(EDGE_NZ):
+        section = 120 + contrast[z] * field[z]
+        if z == blur_at:
+            section = ndimage.gaussian_filter(section, 2.5)
+        vol[z] = np.clip(np.rint(section), 0, 255)
+    return vol
+
+
+def test_sharp_stack_edges_are_not_flagged_as_blurred():
+    vol = tapering_stack()
+    table = flag_sections(measure_sections(vol))
+    assert not table["flag_blurred"].any()
+    assert (table["reason"] == "").all()
+    # the input really is a hard case: the end sections have lost more than min_sharpness_drop
+    # (0.5) of the median sharpness; reference: variance of scipy.ndimage.laplace
+    sharp = [ndimage.laplace(s.astype(np.float64), mode="reflect").var() for s in vol]
+    assert max(sharp[0], sharp[-1]) < 0.5 * np.median(sharp)
+
+
+@pytest.mark.parametrize("blur_at", [0, EDGE_NZ - 1])
+def test_blurred_edge_section_is_flagged(blur_at):
+    table = flag_sections(measure_sections(tapering_stack(blur_at=blur_at)))
+    assert table.loc[table["reason"] != "", "z"].tolist() == [blur_at]
+    assert table.loc[blur_at, "reason"] == "blurred"
+
+
+# --------------------------------------------------------------------------------------------
 # bad input
 
 
@@ -315,6 +436,13 @@ def _table():
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), upsample=0), "upsample"),
         (lambda: phase_shift(np.zeros((8, 8)), np.zeros((8, 8)), window=1), "window"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 9))), "same shape"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tiles=0), "tiles"),
+        (lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tile_fraction=0), "tile_fraction"),
+        (
+            lambda: field_shift(np.zeros((8, 8)), np.zeros((8, 8)), tile_fraction=1.5),
+            "tile_fraction",
+        ),
         (lambda: measure_sections(np.zeros((8, 8))), "volume"),
         (lambda: measure_sections(np.zeros((0, 8, 8))), "volume"),
         (lambda: measure_sections([[[1]]]), "volume"),
@@ -325,7 +453,7 @@ def _table():
         (lambda: flag_sections(_table(), sharpness_z=-1), "sharpness_z"),
         (lambda: flag_sections(_table(), intensity_z=0), "intensity_z"),
         (lambda: flag_sections(_table(), max_shift_px=-2), "max_shift_px"),
-        (lambda: flag_sections(_table(), intensity_neighbours=1), "intensity_neighbours"),
+        (lambda: flag_sections(_table(), neighbours=1), "neighbours"),
         (lambda: flag_sections(_table(), exclude_flagged="yes"), "exclude_flagged"),
         (lambda: flag_sections(_table().iloc[::-1]), "increasing"),
         (lambda: plot_sections(_table().drop(columns="shift"), "x.png"), "shift"),

@@ -34,10 +34,20 @@ from tessera.io.array_stacks import (
     missing_chunk,
     spacing_from_attrs,
 )
+from tessera.io.zarr_checks import check_chunk_grid
 
 __all__ = ["open_zarr_array", "open_n5"]
 
-_ZARR_ERRORS = (FileNotFoundError, ValueError, KeyError, zarr.errors.BaseZarrError)
+# zarr validates metadata with plain exceptions: a damaged zarr.json raises TypeError too
+_ZARR_ERRORS = (
+    OSError,
+    ValueError,
+    KeyError,
+    TypeError,
+    AttributeError,
+    IndexError,
+    zarr.errors.BaseZarrError,
+)
 
 
 def open_zarr_array(path, internal_path=None):
@@ -76,6 +86,7 @@ def open_zarr_array(path, internal_path=None):
     except _ZARR_ERRORS as exc:
         what = f"no zarr array at internal_path {inner!r}" if inner else "cannot open as zarr"
         raise TesseraInputError(f"{what}: {exc}", source=path) from None
+    check_chunk_grid(array, path)
     spacing, attribute = spacing_from_attrs(array.attrs.asdict(), source=label)
     return ArrayStack(
         array,

@@ -62,7 +62,8 @@ def open_hdf5(path, internal_path):
     try:
         dataset = _dataset(handle, parts, path, label)
         spacing, attribute = spacing_from_attrs(dict(dataset.attrs), source=label)
-    except (TesseraInputError, OSError, KeyError, TypeError, ValueError) as exc:
+    # RuntimeError: h5py's report of a damaged heap or B-tree (found by fuzzing)
+    except (TesseraInputError, OSError, KeyError, TypeError, ValueError, RuntimeError) as exc:
         handle.close()
         if isinstance(exc, TesseraInputError):
             raise

@@ -14,33 +14,46 @@ Formats (the names :func:`open_stack` takes):
 A reader holds one section at a time (memory maps and zarr arrays read only what is asked for).
 """
 
-import re
+import contextlib
+import struct
 from pathlib import Path
 
 import mrcfile
 import numpy as np
-import tifffile
 import zarr
 from PIL import Image
 
 from tessera.errors import TesseraInputError
 from tessera.io.containers import open_container
+from tessera.io.damage import check_file_size, check_section, complaints_as_errors
 from tessera.io.omezarr import open_image
+from tessera.io.section_numbers import number_sections
+from tessera.io.tiff_checks import open_checked_tiff, read_checked_page
+from tessera.io.zarr_checks import check_chunk_grid
 
-__all__ = ["FORMATS", "open_stack"]
+__all__ = ["FORMATS", "MISSING_SECTIONS", "open_stack"]
 
 FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr", "hdf5", "n5")
+#: What to do with a section missing from a numbered slice folder.
+MISSING_SECTIONS = ("placeholder", "refuse")
 _SLICE_SUFFIXES = (".tif", ".tiff", ".png")
-
-
-def _natural_key(path):
-    return [int(t) if t.isdigit() else t.lower() for t in re.split(r"(\d+)", path.name)]
+# Pillow modes that hold one grey value per pixel, stored as is
+_GREY_MODES = ("L", "I", "I;16", "I;16L", "I;16B", "F")
 
 
 class _Source:
-    """A stack readable section by section: ``shape``, ``dtype``, ``header_spacing``, ``read(z)``."""
+    """A stack readable section by section: ``shape``, ``dtype``, ``header_spacing``, ``read(z)``.
+
+    ``shape[0]`` counts the sections present in the source; ``missing`` lists the z (in the
+    complete stack of ``shape[0] + len(missing)`` sections) that have no data.
+    """
 
     header_spacing = None
+    missing = ()
+
+    def read(self, z):
+        plane = self._read(z)
+        return check_section(plane, z=z, shape=self.shape[1:], dtype=self.dtype, source=self._path)
 
     def close(self):
         pass
@@ -48,30 +61,15 @@ class _Source:
 
 class _TiffStack(_Source):
     def __init__(self, path):
-        try:
-            self._tif = tifffile.TiffFile(path)
-        except (OSError, tifffile.TiffFileError, ValueError) as exc:
-            raise TesseraInputError(f"cannot read as TIFF: {exc}", source=path) from None
-        pages = self._tif.pages
-        first = pages[0]
-        if len(first.shape) != 2:
-            self._tif.close()
-            raise TesseraInputError(
-                f"expected greyscale pages (2D), first page has shape {first.shape}", source=path
-            )
-        self.shape = (len(pages), *first.shape)
+        self._tif = open_checked_tiff(path)
+        first = self._tif.pages[0]
+        self.shape = (len(self._tif.pages), *first.shape)
         self.dtype = np.dtype(first.dtype)
         self._path = path
         self.header_spacing = _imagej_spacing(self._tif)
 
-    def read(self, z):
-        page = self._tif.pages[z]
-        if page.shape != self.shape[1:]:
-            raise TesseraInputError(
-                f"page {z} has shape {page.shape}, expected {self.shape[1:]} like page 0",
-                source=self._path,
-            )
-        return page.asarray()
+    def _read(self, z):
+        return read_checked_page(self._tif, z, self._path)
 
     def close(self):
         self._tif.close()
@@ -95,57 +93,96 @@ def _imagej_spacing(tif):
 
 
 def _read_plane(path):
-    if path.suffix.lower() == ".png":
+    if path.suffix.lower() != ".png":
+        with contextlib.closing(open_checked_tiff(path)) as tif:
+            if len(tif.pages) != 1:
+                raise TesseraInputError(
+                    f"expected one page per section file, found {len(tif.pages)}", source=path
+                )
+            return read_checked_page(tif, 0, path)
+    with complaints_as_errors(path, what="cannot read section image", loggers=("PIL",)):
         with Image.open(path) as im:
+            if im.mode not in _GREY_MODES:
+                raise TesseraInputError(
+                    f"expected a greyscale image (mode {', '.join(_GREY_MODES)}), got mode "
+                    f"{im.mode}",
+                    source=path,
+                )
             return np.asarray(im)
-    return tifffile.imread(path)
 
 
 class _SliceFolder(_Source):
-    def __init__(self, path):
+    def __init__(self, path, missing_sections):
         if not path.is_dir():
             raise TesseraInputError("expected a folder of per-section TIFF/PNG files", source=path)
-        files = sorted(
-            (p for p in path.iterdir() if p.suffix.lower() in _SLICE_SUFFIXES), key=_natural_key
-        )
-        if not files:
+        names = sorted(p.name for p in path.iterdir() if p.suffix.lower() in _SLICE_SUFFIXES)
+        if not names:
             raise TesseraInputError(
                 f"no section images ({', '.join(_SLICE_SUFFIXES)}) in the folder", source=path
             )
-        self._files = files
-        first = self._read_checked(0, None)
-        self.shape = (len(files), *first.shape)
+        order = number_sections(names, source=path)
+        if order["missing"] and missing_sections == "refuse":
+            lost = [order["numbers"][z] for z in order["missing"]]
+            raise TesseraInputError(
+                f"section number(s) {_short_list(lost)} missing from the sequence "
+                f"{order['numbers'][0]}..{order['numbers'][-1]}: expected "
+                f"{len(order['numbers'])} sections, found {len(names)} files; set "
+                "ingest.missing_sections: placeholder to ingest them as excluded blank sections",
+                source=path,
+            )
+        self._path = path
+        self._files = [path / name for name in order["names"]]
+        self.missing = tuple(order["missing"])
+        first = self._read_checked(0)
+        self.shape = (len(self._files), *first.shape)
         self.dtype = first.dtype
 
-    def _read_checked(self, z, expected):
+    def _read_checked(self, z):
         f = self._files[z]
         try:
             plane = _read_plane(f)
-        except (OSError, ValueError, tifffile.TiffFileError) as exc:
+        except TesseraInputError:
+            raise
+        except (OSError, ValueError, SyntaxError, EOFError, struct.error) as exc:
             raise TesseraInputError(f"cannot read section image: {exc}", source=f) from None
         if plane.ndim != 2:
             raise TesseraInputError(
                 f"expected a greyscale image, got shape {plane.shape}", source=f
             )
-        if expected is not None and plane.shape != expected:
-            raise TesseraInputError(
-                f"section has shape {plane.shape}, expected {expected} like {self._files[0].name}",
-                source=f,
-            )
         return plane
 
     def read(self, z):
-        return self._read_checked(z, self.shape[1:])
+        plane = self._read_checked(z)
+        if plane.shape != self.shape[1:]:
+            raise TesseraInputError(
+                f"section has shape {plane.shape}, expected {self.shape[1:]} like "
+                f"{self._files[0].name}",
+                source=self._files[z],
+            )
+        return check_section(
+            plane, z=z, shape=self.shape[1:], dtype=self.dtype, source=self._files[z]
+        )
+
+
+def _short_list(values, limit=10):
+    shown = ", ".join(str(v) for v in values[:limit])
+    return shown + (f", ... ({len(values)} in all)" if len(values) > limit else "")
 
 
 class _Mrc(_Source):
     def __init__(self, path):
+        self._path = path
+        _check_mrc_header(path)
         try:
-            self._mrc = mrcfile.mmap(path, mode="r", permissive=False)
+            with complaints_as_errors(path, what="cannot read as MRC2014", loggers=()):
+                self._mrc = mrcfile.mmap(path, mode="r", permissive=False)
+        except TesseraInputError:
+            raise
         except (OSError, ValueError) as exc:
             raise TesseraInputError(f"cannot read as MRC2014: {exc}", source=path) from None
         data = self._mrc.data
         if data is None or data.ndim not in (2, 3):
+            self._mrc.close()
             raise TesseraInputError("expected a 2D or 3D MRC image", source=path)
         self._data = data if data.ndim == 3 else data[np.newaxis]
         self.shape = self._data.shape
@@ -154,19 +191,75 @@ class _Mrc(_Source):
         zyx = (float(vs.z), float(vs.y), float(vs.x))
         self.header_spacing = tuple(v / 10.0 for v in zyx) if all(v > 0 for v in zyx) else None
 
-    def read(self, z):
+    def _read(self, z):
         return np.asarray(self._data[z])
 
     def close(self):
         self._mrc.close()
 
 
+def _check_mrc_header(path):
+    """Refuse an MRC file whose size or axis order disagrees with its header (nx, ny, nz, mode)."""
+    try:
+        with complaints_as_errors(path, what="cannot read the MRC2014 header", loggers=()):
+            with mrcfile.open(path, mode="r", permissive=True, header_only=True) as mrc:
+                header = mrc.header
+        if header is None:
+            raise ValueError("no header")
+        nx, ny, nz, mode = (int(header[k]) for k in ("nx", "ny", "nz", "mode"))
+        axes = tuple(int(header[k]) for k in ("mapc", "mapr", "maps"))
+        extended = int(header["nsymbt"])
+        dtype = mrcfile.utils.dtype_from_mode(mode)
+    except TesseraInputError:
+        raise
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise TesseraInputError(f"cannot read the MRC2014 header: {exc}", source=path) from None
+    if min(nx, ny, nz) < 1 or extended < 0:
+        raise TesseraInputError(
+            f"header says nx={nx}, ny={ny}, nz={nz}, nsymbt={extended}: expected sizes >= 1 "
+            "and an extended header >= 0 bytes (damaged header?)",
+            source=path,
+        )
+    if axes != (1, 2, 3):
+        raise TesseraInputError(
+            f"header says axis order mapc, mapr, maps = {axes}, expected (1, 2, 3) "
+            "(columns x, rows y, sections z); reorder the file first",
+            source=path,
+        )
+    data_bytes = nx * ny * nz * dtype.itemsize
+    check_file_size(
+        path,
+        1024 + extended + data_bytes,
+        layout=f"nx={nx}, ny={ny}, nz={nz}, mode {mode} ({dtype.name}) after 1024 + {extended} "
+        "header bytes",
+    )
+
+
+# What zarr raises for metadata or chunks it cannot parse (it validates with plain exceptions).
+_ZARR_ERRORS = (
+    OSError,
+    ValueError,
+    TypeError,
+    KeyError,
+    IndexError,
+    AttributeError,
+    RuntimeError,
+    zarr.errors.BaseZarrError,
+)
+
+
 class _Zarr(_Source):
     def __init__(self, path):
+        self._path = path
         try:
-            node = zarr.open(store=str(path), mode="r")
-        except (FileNotFoundError, ValueError, zarr.errors.NodeTypeValidationError) as exc:
-            raise TesseraInputError(f"cannot open as zarr: {exc}", source=path) from None
+            with complaints_as_errors(path, what="cannot open as zarr", loggers=()):
+                node = zarr.open(store=str(path), mode="r")
+        except TesseraInputError:
+            raise
+        except _ZARR_ERRORS as exc:
+            raise TesseraInputError(
+                f"cannot open as zarr: {type(exc).__name__}: {exc}", source=path
+            ) from None
         if isinstance(node, zarr.Group):
             # input: checked where it carries records
             _, info = open_image(path, checksums="if-present")
@@ -176,19 +269,30 @@ class _Zarr(_Source):
             raise TesseraInputError(
                 f"expected a 3D z, y, x array, got shape {node.shape}", source=path
             )
+        check_chunk_grid(node, path)
         self._arr = node
         self.shape = node.shape
         self.dtype = np.dtype(node.dtype)
 
-    def read(self, z):
-        return self._arr[z]
+    def _read(self, z):
+        try:
+            return self._arr[z]
+        except _ZARR_ERRORS as exc:
+            raise TesseraInputError(
+                f"cannot read section {z}: {type(exc).__name__}: {exc}", source=self._path
+            ) from None
 
 
 _READERS = {"tiff_stack": _TiffStack, "slice_folder": _SliceFolder, "mrc": _Mrc, "zarr": _Zarr}
 
 
-def open_stack(path, fmt, *, internal_path=None):
+def open_stack(path, fmt, *, internal_path=None, missing_sections="refuse"):
     """Open an EM stack for reading one section at a time.
+
+    Every reader checks the file whole before the first section is used (page counts against
+    the file's own metadata, header sizes against the file size, numbering gaps in a slice
+    folder) and turns every reader warning into an error, so a damaged file is refused rather
+    than read as a shorter or altered stack.
 
     Parameters
     ----------
@@ -199,16 +303,21 @@ def open_stack(path, fmt, *, internal_path=None):
         :mod:`tessera.io.hdf5_stacks` and :mod:`tessera.io.chunked_stacks`).
     internal_path : str, optional
         The array inside an hdf5, n5 or zarr container (required for hdf5 and n5).
+    missing_sections : {'refuse', 'placeholder'}, optional
+        A slice folder whose numbering has gaps is refused, or opened with the missing
+        sections listed in ``missing``.
 
     Returns
     -------
     source
-        Object with ``shape`` (Z, Y, X), ``dtype``, ``header_spacing`` (nm z, y, x or None),
-        ``read(z)`` returning one 2D section, and ``close()``.
+        Object with ``shape`` (Z, Y, X) of the sections present, ``missing`` (z of the sections
+        lacking, in the complete stack of Z + len(missing)), ``dtype``, ``header_spacing``
+        (nm z, y, x or None), ``read(z)`` returning the z-th present section, and ``close()``.
 
     Examples
     --------
     >>> import tempfile
+    >>> import tifffile
     >>> with tempfile.TemporaryDirectory() as folder:
     ...     tifffile.imwrite(Path(folder) / "s.tif", np.arange(30, dtype=np.uint16).reshape(2, 3, 5))
     ...     stack = open_stack(Path(folder) / "s.tif", "tiff_stack")
@@ -221,11 +330,19 @@ def open_stack(path, fmt, *, internal_path=None):
         raise TesseraInputError(
             f"unknown format {fmt!r}; expected one of {', '.join(FORMATS)}", source=path
         )
+    if missing_sections not in MISSING_SECTIONS:
+        raise TesseraInputError(
+            f"missing_sections must be one of {', '.join(MISSING_SECTIONS)}, "
+            f"got {missing_sections!r}"
+        )
     if not path.exists():
         raise TesseraInputError("file or folder not found", source=path)
     source = open_container(path, fmt, internal_path=internal_path)
     if source is None:
-        source = _READERS[fmt](path)
+        if fmt == "slice_folder":
+            source = _SliceFolder(path, missing_sections)
+        else:
+            source = _READERS[fmt](path)
     problem = None
     if not np.issubdtype(source.dtype, np.integer) and not np.issubdtype(source.dtype, np.floating):
         problem = f"expected integer or float pixels, got {source.dtype}"

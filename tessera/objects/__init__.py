@@ -13,8 +13,13 @@ The steps, in order (every one defined on the whole volume, computed out of core
    unless filling would touch another object.
 5. *Size*: objects with a volume outside [`min_volume_um3`, `max_volume_um3`] are removed, by
    their whole volume (an object spanning many blocks is measured once).
-6. *Labels*: objects are numbered 1..N in raster order of their first voxel, which is what
-   ``scipy.ndimage.label`` does on a volume held in memory.
+6. *Split* (optional, ``split_min_depth_nm``): each kept object, whole in its bounding box with
+   its filled cavities, is split into the organelles it holds by a seeded watershed on its
+   distance transform in nm (:mod:`~tessera.objects.split`). Objects whose box exceeds
+   ``split_max_voxels`` stay whole and are flagged (``split_checked`` False). The size range
+   applies to the objects before they are split.
+7. *Labels*: objects are numbered 1..N in raster order of their first voxel, which is what
+   ``scipy.ndimage.label`` does on a volume held in memory (without splitting).
 
 Out of core: each block is read with a halo of the morphology's reach, labelled on its own, and
 labels that touch across block faces (with the stated connectivity) are merged with a graph's
@@ -23,6 +28,7 @@ block size and the number of objects, never with the volume.
 
 :mod:`~tessera.objects.label` runs the steps (:func:`~tessera.objects.label.label_objects`),
 :mod:`~tessera.objects.morphology` holds the structuring elements and the in-memory mask, and
-``_passes`` the four passes over the volume. This file imports nothing, so a job hashes only
+:mod:`~tessera.objects.split` the separation of one object, and ``_passes`` the passes over the
+volume. This file imports nothing, so a job hashes only
 the parts it runs.
 """

@@ -2,8 +2,9 @@
 
 Pass 1 labels every block on its own (read with a halo of the morphology's reach) and collects
 per-label statistics; pass 2 merges labels touching across block faces as a graph's connected
-components; pass 3 fills cavities object by object in its bounding box; the size rule and the
-raster-order numbering follow; pass 4 writes the global labels. Nothing here holds more than a
+components; pass 3 fills cavities object by object in its bounding box; the size rule follows;
+pass 4 (optional) splits each kept component, whole in its bounding box, into the organelles it
+holds; the raster-order numbering follows; pass 5 writes the global labels. Nothing here holds more than a
 block, an object's box, or a few numbers per object.
 """
 
@@ -13,6 +14,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from tessera.objects.morphology import clean_mask
+from tessera.objects.split import split_touching
 from tessera.threshold import apply_threshold
 
 
@@ -283,14 +285,115 @@ def number_objects(objects, kept, *, offset, n_comp, voxel_nm3, size_range):
     return volume, kept, final
 
 
-def write_labels(out, provisional, lut, final, cavities, *, shape, block):
-    """Pass 4: global labels, block by block, then the filled cavities of the kept objects."""
+def write_labels(out, provisional, lut, final, cavities, *, shape, block, pieces=None):
+    """Pass 5: global labels, block by block, then the filled cavities of the kept objects.
+
+    `pieces` is ``(pieces_store, piece_final)`` when components were split: there a piece's
+    label replaces its component's (whose final label is 0), cavities included."""
     for origin, end in blocks(shape, block):
-        box = np.asarray(provisional[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]])
-        out[origin[0] : end[0], origin[1] : end[1], origin[2] : end[2]] = lut[box].astype(out.dtype)
+        where = tuple(slice(o, e) for o, e in zip(origin, end, strict=True))
+        labels = lut[np.asarray(provisional[where])]
+        if pieces is not None:
+            piece = np.asarray(pieces[0][where])
+            labels = np.where(piece > 0, pieces[1][piece], labels)
+        out[where] = labels.astype(out.dtype)
     for c, points in cavities.items():
         if final[c]:
             lo, hi = points.min(axis=0), points.max(axis=0) + 1
             region = np.asarray(out[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]])
             region[tuple((points - lo).T)] = final[c]
             out[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]] = region
+
+
+def _piece_stats(pieces, lo, shape, excluded):
+    """Voxels, coordinate sums, first raster index, box and excluded flag of pieces 1..k."""
+    k = int(pieces.max())
+    flat = pieces.ravel()
+    where = np.argwhere(pieces) + lo
+    inside = flat[flat > 0]
+    ids, first = np.unique(flat, return_index=True)
+    first_box = np.array(np.unravel_index(first[ids > 0], pieces.shape)).T + lo
+    boxes = ndimage.find_objects(pieces)
+    return {
+        "voxels": np.bincount(inside, minlength=k + 1)[1:].astype(np.int64),
+        "sums": np.stack(
+            [np.bincount(inside, weights=where[:, a], minlength=k + 1)[1:] for a in range(3)], 1
+        ),
+        "first": np.ravel_multi_index(tuple(first_box.T), shape).astype(np.int64),
+        "lo": np.array([[s.start for s in b] for b in boxes], np.int64) + lo,
+        "hi": np.array([[s.stop for s in b] for b in boxes], np.int64) + lo,
+        "excluded": np.bincount(inside[np.isin(where[:, 0], excluded)], minlength=k + 1)[1:] > 0,
+    }
+
+
+def split_components(
+    provisional,
+    pieces_store,
+    component,
+    kept,
+    objects,
+    cavities,
+    *,
+    shape,
+    split,
+    excluded,
+    max_voxels,
+):
+    """Pass 4: each kept component, whole in its bounding box (with its filled cavities), split
+    into the organelles it holds; the pieces of split components go to `pieces_store` as
+    1-based piece numbers unique over the volume.
+
+    `split` holds ``split_touching``'s keyword arguments. Returns the pieces' statistics per
+    split component (a dict of arrays, and the number of its first piece) and the components
+    whose box exceeds `max_voxels` (left whole and flagged)."""
+    comp_lut = np.concatenate([[-1], component])
+    parts, unchecked, next_piece = {}, set(), 1
+    for c in kept:
+        lo = np.maximum(objects["lo"][c] - 1, 0)
+        hi = np.minimum(objects["hi"][c] + 1, shape)
+        if np.prod(hi - lo) > max_voxels:
+            unchecked.add(int(c))
+            continue
+        box = tuple(slice(a, b) for a, b in zip(lo, hi, strict=True))
+        mine = comp_lut[np.asarray(provisional[box])] == c
+        if int(c) in cavities:
+            mine[tuple((cavities[int(c)] - lo).T)] = True
+        pieces = split_touching(mine, origin=tuple(int(v) for v in lo), **split)
+        if pieces.max() < 2:
+            continue
+        parts[int(c)] = (_piece_stats(pieces, lo, shape, excluded), next_piece)
+        region = np.asarray(pieces_store[box])
+        region[mine] = pieces[mine] + (next_piece - 1)
+        pieces_store[box] = region
+        next_piece += int(pieces.max())
+    return parts, unchecked
+
+
+def number_with_pieces(objects, kept, parts, *, voxel_nm3):
+    """Step 7 with split components: every object, whole component or piece, numbered 1..N in
+    raster order of its first voxel.
+
+    Returns the objects' measures in label order (a dict of arrays, ``component`` the
+    component each comes from), the final label of every whole component (0 = split or
+    removed) and the final label of every piece number of `pieces_store`."""
+    whole = np.array([c for c in kept if int(c) not in parts], np.int64)
+    names = ("voxels", "sums", "first", "lo", "hi", "excluded")
+    units = {name: [objects[name][whole]] for name in names}
+    units["component"], units["piece"] = [whole], [np.zeros(len(whole), np.int64)]
+    for c, (stats, first_piece) in parts.items():
+        for name in names:
+            units[name].append(stats[name])
+        k = len(stats["voxels"])
+        units["component"].append(np.full(k, c, np.int64))
+        units["piece"].append(np.arange(first_piece, first_piece + k, dtype=np.int64))
+    units = {name: np.concatenate(values) for name, values in units.items()}
+    order = np.argsort(units["first"], kind="stable")
+    units = {name: values[order] for name, values in units.items()}
+    labels = np.arange(1, len(order) + 1, dtype=np.int64)
+    final = np.zeros(len(objects["voxels"]), np.int64)
+    final[units["component"][units["piece"] == 0]] = labels[units["piece"] == 0]
+    piece_final = np.zeros(int(units["piece"].max(initial=0)) + 1, np.int64)
+    piece_final[units["piece"]] = labels
+    piece_final[0] = 0
+    units["volume_um3"] = units["voxels"] * voxel_nm3 / 1e9
+    return units, final, piece_final

@@ -9,7 +9,15 @@ import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.objects import _passes
+from tessera.objects.depth_limit import split_depth_problem
 from tessera.objects.morphology import ball, connectivity_structure, reach
+from tessera.objects.split import check_split_depth
+
+#: Largest bounding box (voxels) an object is split in. Splitting one box peaks at about 125
+#: bytes a voxel (distance, tie-breaker, h-maxima reconstruction and watershed, measured with
+#: scikit-image 0.26), so 2**23 voxels (e.g. 64 x 362 x 362) need about 1 GB on top of the
+#: rest of the objects job.
+SPLIT_MAX_VOXELS = 2**23
 
 #: Columns of the object table, in order.
 OBJECT_COLUMNS = (
@@ -31,7 +39,16 @@ OBJECT_COLUMNS = (
 )
 
 
-def check_settings(*, high, low, min_volume_um3, max_volume_um3, connectivity, source=None):
+def check_settings(
+    *,
+    high,
+    low,
+    min_volume_um3,
+    max_volume_um3,
+    connectivity,
+    split_min_depth_nm=None,
+    source=None,
+):
     """Refuse inconsistent filtering settings with one clear message (`source` names the file).
 
     Examples
@@ -61,6 +78,11 @@ def check_settings(*, high, low, min_volume_um3, max_volume_um3, connectivity, s
             source=source,
         )
     connectivity_structure(connectivity)
+    if split_min_depth_nm is not None:
+        check_split_depth(split_min_depth_nm)
+        problem = split_depth_problem(split_min_depth_nm, max_volume_um3)
+        if problem:
+            raise TesseraInputError(f"objects {problem}", source=source)
 
 
 def label_objects(
@@ -82,6 +104,8 @@ def label_objects(
     workdir=None,
     fill_max_voxels=None,
     bridge_excluded=True,
+    split_min_depth_nm=None,
+    split_max_voxels=None,
 ):
     """Filter a probability volume into labelled objects, block by block.
 
@@ -114,6 +138,16 @@ def label_objects(
         Replace the probabilities of excluded sections by linear interpolation between the
         nearest usable sections above and below before anything else, so that a blank or blurred
         section does not cut every organelle crossing it in two (the object keeps its flag).
+    split_min_depth_nm : float, optional
+        Separate touching organelles (:mod:`tessera.objects.split`): each kept object is split
+        by a seeded watershed on its distance transform in nm, seeded by the maxima that rise
+        at least this far (nm) above their saddle with a higher one. None = no splitting (the
+        table then has no ``split_checked`` column).
+    split_max_voxels : int, optional
+        Objects whose bounding box (with one voxel of margin where the volume allows) holds
+        more voxels are left whole and flagged
+        (``split_checked`` False). Default :data:`SPLIT_MAX_VOXELS`, a fixed number, so that
+        which objects are split never depends on the block size.
     scale : float
         Stored value of probability 1 (255 for uint8 maps).
     workdir : path, optional
@@ -124,7 +158,8 @@ def label_objects(
     pandas.DataFrame
         One row per object: ``id``, ``voxels``, ``volume_um3``, bounding box ``z0 y0 x0 z1 y1
         x1`` (voxels, end exclusive), centroid in nm, ``touches_volume_border``,
-        ``touches_excluded_section`` and ``cavities_filled``.
+        ``touches_excluded_section``, ``cavities_filled`` (of the object it was split from) and,
+        with splitting, ``split_checked``.
 
     Examples
     --------
@@ -144,6 +179,7 @@ def label_objects(
         min_volume_um3=min_volume_um3,
         max_volume_um3=max_volume_um3,
         connectivity=connectivity,
+        split_min_depth_nm=split_min_depth_nm,
     )
     shape = tuple(int(s) for s in prob.shape)
     if len(shape) != 3 or tuple(out.shape) != shape:
@@ -207,48 +243,114 @@ def label_objects(
             voxel_nm3=voxel_nm3,
             size_range=(min_volume_um3, max_volume_um3),
         )
-        lut = np.concatenate([[0], final[component]]) if offset else np.zeros(1, np.int64)
-        if len(kept) > np.iinfo(out.dtype).max:
-            raise TesseraInputError(f"{len(kept)} objects do not fit label dtype {out.dtype}")
-        _passes.write_labels(out, provisional, lut, final, cavities, shape=shape, block=block)
-    return _object_table(
-        objects,
-        kept,
-        final,
-        volume,
-        spacing=spacing,
-        shape=shape,
-        fill_holes=fill_holes,
-        unfilled=unfilled,
-    )
-
-
-def _object_table(objects, kept, final, volume, *, spacing, shape, fill_holes, unfilled):
-    """One row per kept object, in label order, with the columns of :data:`OBJECT_COLUMNS`."""
-    rows = []
-    for c in kept:
-        lo_, hi_ = objects["lo"][c], objects["hi"][c]
-        centroid = objects["sums"][c] / objects["voxels"][c] * np.asarray(spacing)
-        rows.append(
-            {
-                "id": int(final[c]),
-                "voxels": int(objects["voxels"][c]),
-                "volume_um3": float(volume[c]),
-                "z0": int(lo_[0]),
-                "y0": int(lo_[1]),
-                "x0": int(lo_[2]),
-                "z1": int(hi_[0]),
-                "y1": int(hi_[1]),
-                "x1": int(hi_[2]),
-                "centroid_z_nm": float(centroid[0]),
-                "centroid_y_nm": float(centroid[1]),
-                "centroid_x_nm": float(centroid[2]),
-                "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
-                "touches_excluded_section": bool(objects["excluded"][c]),
-                "cavities_filled": bool(fill_holes and int(c) not in unfilled),
-            }
+        units = _whole_objects(
+            objects, kept, final, volume, fill_holes=fill_holes, unfilled=unfilled
         )
-    return pd.DataFrame(rows, columns=list(OBJECT_COLUMNS))
+        pieces = None
+        if split_min_depth_nm is not None and not len(kept):
+            units["split_checked"] = np.zeros(0, bool)
+        elif split_min_depth_nm is not None:
+            units, final, pieces = _split_objects(
+                Path(tmp),
+                provisional,
+                component,
+                kept,
+                objects,
+                cavities,
+                shape=shape,
+                block=block,
+                split=dict(spacing=spacing, min_depth_nm=split_min_depth_nm, structure=structure),
+                excluded=excluded,
+                max_voxels=split_max_voxels or SPLIT_MAX_VOXELS,
+                voxel_nm3=voxel_nm3,
+                flags=(fill_holes, unfilled),
+            )
+        lut = np.concatenate([[0], final[component]]) if offset else np.zeros(1, np.int64)
+        if len(units["id"]) > np.iinfo(out.dtype).max:
+            raise TesseraInputError(
+                f"{len(units['id'])} objects do not fit label dtype {out.dtype}"
+            )
+        _passes.write_labels(
+            out, provisional, lut, final, cavities, shape=shape, block=block, pieces=pieces
+        )
+    return _object_table(units, spacing=spacing, shape=shape)
+
+
+def _whole_objects(objects, kept, final, volume, *, fill_holes, unfilled):
+    """The measures of the kept components, in label order (no splitting)."""
+    if not len(kept):
+        return {"id": np.zeros(0, np.int64)}
+    units = {name: objects[name][kept] for name in ("voxels", "sums", "lo", "hi", "excluded")}
+    units["id"], units["volume_um3"] = final[kept], volume[kept]
+    units["cavities_filled"] = np.array([fill_holes and int(c) not in unfilled for c in kept])
+    return units
+
+
+def _split_objects(tmp, provisional, component, kept, objects, cavities, **options):
+    """Pass 4 and the numbering with pieces: the objects' measures in label order, the final
+    label of every whole component, and ``(pieces_store, piece_final)`` for the last pass."""
+    shape, block = options["shape"], options["block"]
+    fill_holes, unfilled = options["flags"]
+    pieces_store = zarr.create_array(
+        store=str(tmp / "pieces.zarr"),
+        shape=shape,
+        dtype=np.int64,
+        chunks=block,
+        fill_value=0,
+        zarr_format=3,
+    )
+    parts, unchecked = _passes.split_components(
+        provisional,
+        pieces_store,
+        component,
+        kept,
+        objects,
+        cavities,
+        shape=shape,
+        split=options["split"],
+        excluded=options["excluded"],
+        max_voxels=options["max_voxels"],
+    )
+    units, final, piece_final = _passes.number_with_pieces(
+        objects, kept, parts, voxel_nm3=options["voxel_nm3"]
+    )
+    units["id"] = np.arange(1, len(units["voxels"]) + 1, dtype=np.int64)
+    units["cavities_filled"] = np.array(
+        [fill_holes and int(c) not in unfilled for c in units["component"]], dtype=bool
+    )
+    units["split_checked"] = np.array([int(c) not in unchecked for c in units["component"]])
+    return units, final, (pieces_store, piece_final)
+
+
+def _object_table(units, *, spacing, shape):
+    """One row per object, in label order, with the columns of :data:`OBJECT_COLUMNS` (and
+    ``split_checked`` when objects were split)."""
+    columns = list(OBJECT_COLUMNS) + (["split_checked"] if "split_checked" in units else [])
+    rows = []
+    for k in range(len(units["id"])):
+        lo_, hi_ = units["lo"][k], units["hi"][k]
+        centroid = units["sums"][k] / units["voxels"][k] * np.asarray(spacing)
+        row = {
+            "id": int(units["id"][k]),
+            "voxels": int(units["voxels"][k]),
+            "volume_um3": float(units["volume_um3"][k]),
+            "z0": int(lo_[0]),
+            "y0": int(lo_[1]),
+            "x0": int(lo_[2]),
+            "z1": int(hi_[0]),
+            "y1": int(hi_[1]),
+            "x1": int(hi_[2]),
+            "centroid_z_nm": float(centroid[0]),
+            "centroid_y_nm": float(centroid[1]),
+            "centroid_x_nm": float(centroid[2]),
+            "touches_volume_border": bool((lo_ == 0).any() or (hi_ == np.asarray(shape)).any()),
+            "touches_excluded_section": bool(units["excluded"][k]),
+            "cavities_filled": bool(units["cavities_filled"][k]),
+        }
+        if "split_checked" in units:
+            row["split_checked"] = bool(units["split_checked"][k])
+        rows.append(row)
+    return pd.DataFrame(rows, columns=columns)
 
 
 def subsample_labels(source, target, *, factor, band=512):

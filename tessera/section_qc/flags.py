@@ -76,7 +76,7 @@ def flag_sections(
     sharpness_z=3.5,
     intensity_z=3.5,
     max_shift_px=20.0,
-    intensity_neighbours=8,
+    neighbours=8,
     min_sharpness_drop=0.5,
     min_intensity_change=10.0,
     exclude_flagged=True,
@@ -86,25 +86,29 @@ def flag_sections(
     Parameters
     ----------
     table : pandas.DataFrame
-        Output of :func:`~tessera.section_qc.metrics.measure_sections` (columns ``z``, ``mean``, ``sharpness``,
-        ``flat_fraction``, ``shift_y``, ``shift_x``, ``shift`` are used).
+        Output of :func:`~tessera.section_qc.metrics.measure_sections` (columns ``z``,
+        ``mean``, ``sharpness``, ``flat_fraction``, ``shift_y``, ``shift_x``, ``shift`` are
+        used).
     max_flat_fraction : float, optional
         A section with a larger flat fraction is flagged ``flat`` (in [0, 1]).
     sharpness_z : float, optional
-        A section whose robust z-score of log sharpness is below ``-sharpness_z`` is flagged
-        ``blurred`` (> 0). Only the lower tail counts.
+        A section whose log sharpness falls below the local trend of its neighbours by more
+        than ``sharpness_z`` robust standard deviations is flagged ``blurred`` (> 0). Only the
+        lower tail counts.
     intensity_z : float, optional
         A section whose mean departs from the local trend of its neighbours by more than
         ``intensity_z`` robust standard deviations (either way) is flagged ``intensity`` (> 0).
     max_shift_px : float, optional
-        A section displaced from the previous one by more than this many pixels is flagged
+        A section whose shift from the previous one departs by more than this many pixels
+        from the local trend of its neighbours' shifts (a jump, not a steady drift) is flagged
         ``shift`` (>= 0).
-    intensity_neighbours : int, optional
-        Number of nearest other sections that define the local intensity trend (>= 2).
+    neighbours : int, optional
+        Number of nearest other sections that define the local trend of each metric (>= 2).
     min_sharpness_drop : float, optional
-        A blurred section must also have lost at least this fraction of the median sharpness
-        (in [0, 1)). Guards short or very uniform stacks, where a tiny spread makes a few per
-        cent look like many robust standard deviations.
+        A blurred section must also have lost at least this fraction of the sharpness that
+        the local trend of its neighbours predicts (in [0, 1)). Guards short or very uniform
+        stacks, where a tiny spread makes a few per cent look like many robust standard
+        deviations.
     min_intensity_change : float, optional
         An intensity outlier must also depart from the local trend by at least this many grey
         levels (>= 0), for the same reason.
@@ -117,9 +121,11 @@ def flag_sections(
     pandas.DataFrame
         A copy of `table` with boolean columns ``flag_flat``, ``flag_blurred``,
         ``flag_intensity``, ``flag_shift``, float columns ``sharpness_score`` and
-        ``intensity_score`` (the robust z-scores), text column ``reason`` (names of the raised
-        flags among ``flat``, ``blurred``, ``intensity``, ``shift``, joined by ``;``, empty if
-        none) and boolean column ``excluded``.
+        ``intensity_score`` (robust z-scores of the departures from the local trends), float
+        column ``shift_jump`` (pixels by which the shift departs from its local trend), text
+        column ``reason`` (names of the raised flags among ``flat``, ``blurred``,
+        ``intensity``, ``shift``, joined by ``;``, empty if none) and boolean column
+        ``excluded``.
 
     Notes
     -----
@@ -129,15 +135,30 @@ def flag_sections(
     statistic, so blank or torn sections do not distort the judgement of the others, and they
     get only the ``flat`` flag: their other metrics are dominated by the blank area.
 
-    Sharpness is judged on a log scale because it is a variance and scales with the square
-    of the contrast. Intensity is judged on the residual from the local trend of the
-    neighbouring sections (a running median corrected for local slope), so a slow drift
-    through the stack is not flagged, only jumps.
+    Every metric is judged on its residual from the local trend of the neighbouring sections
+    (a running median corrected for local slope, see :func:`_trend_residuals`), so that what
+    changes slowly through the stack is not flagged, only what one section does on its own.
+    The content of a stack changes with depth (fewer organelles near the ends of a block, a
+    region of resin, a ramp in contrast as a run starts), and with it the sharpness: judged
+    against the median of the whole stack, the first and last sections of a sound stack would
+    read as blurred. An edge section is judged against the neighbours it has, on one side,
+    with the slope they show. Defocus, by contrast, is a drop in one section. The trend is
+    robust to a few defective neighbours, not to many: a run of defocused sections nearly as
+    long as `neighbours` becomes the trend itself, and only its ends are flagged; look at the
+    plot of a stack whose focus failed for a while.
 
-    The shift is measured between consecutive sections. Shifts to or from a flat or blurred
+    Sharpness is judged on a log scale because it is a variance and scales with the square
+    of the contrast; a section is blurred when it falls far below its trend in robust units
+    and has also lost `min_sharpness_drop` of the sharpness the trend predicts.
+
+    The shift is measured between consecutive sections. A steady drift of the stage moves
+    every section by about the same vector from the last; alignment removes it and the
+    sections are sound. A displaced section, or a jump, departs from the shifts around it:
+    the shift is judged by how far its vector lies from the local trend of its neighbours'
+    shift vectors (each component detrended alone). Shifts to or from a flat or blurred
     section are not judged: with little shared detail the estimate is unreliable. When a
     single section is displaced and the next one returns to the previous position (the two
-    shifts cancel to within `max_shift_px`), only the displaced section is flagged.
+    departures cancel to within `max_shift_px`), only the displaced section is flagged.
 
     Examples
     --------
@@ -153,7 +174,7 @@ def flag_sections(
     sharpness_z = check_float(sharpness_z, "sharpness_z", low=0.0, low_open=True)
     intensity_z = check_float(intensity_z, "intensity_z", low=0.0, low_open=True)
     max_shift_px = check_float(max_shift_px, "max_shift_px", low=0.0)
-    intensity_neighbours = check_int(intensity_neighbours, "intensity_neighbours", minimum=2)
+    neighbours = check_int(neighbours, "neighbours", minimum=2)
     min_sharpness_drop = check_float(min_sharpness_drop, "min_sharpness_drop", low=0.0, high=0.999)
     min_intensity_change = check_float(min_intensity_change, "min_intensity_change", low=0.0)
     if not isinstance(exclude_flagged, (bool, np.bool_)):
@@ -165,20 +186,20 @@ def flag_sections(
     use = ~flat
 
     log_sharp = np.log(np.maximum(cols["sharpness"], np.finfo(np.float64).tiny))
-    sharp_score = _robust_z(log_sharp, use)
-    blurred = use & (sharp_score < -sharpness_z)
-    if use.any():
-        typical = np.median(log_sharp[use])
-        blurred &= log_sharp < typical + math.log1p(-min_sharpness_drop)
+    sharp_residual = _trend_residuals(z, log_sharp, use, neighbours)
+    sharp_score = _robust_z(sharp_residual, use)
+    blurred = (
+        use & (sharp_score < -sharpness_z) & (sharp_residual < math.log1p(-min_sharpness_drop))
+    )
 
-    residual = _trend_residuals(z, cols["mean"], use, intensity_neighbours)
+    residual = _trend_residuals(z, cols["mean"], use, neighbours)
     intensity_score = _robust_z(residual, use)
     intensity = (
         use & (np.abs(intensity_score) > intensity_z) & (np.abs(residual) >= min_intensity_change)
     )
 
     # a flat or blurred image has little shared detail, so its shift estimate is unreliable
-    shifted = _shift_flags(cols, use & ~blurred, max_shift_px)
+    shifted, jump = _shift_flags(cols, use & ~blurred, max_shift_px, neighbours)
 
     out = table.copy()
     out["flag_flat"] = flat
@@ -187,6 +208,7 @@ def flag_sections(
     out["flag_shift"] = shifted
     out["sharpness_score"] = sharp_score
     out["intensity_score"] = intensity_score
+    out["shift_jump"] = jump
     names = ("flat", "blurred", "intensity", "shift")
     flags = np.column_stack([flat, blurred, intensity, shifted])
     out["reason"] = [";".join(n for n, f in zip(names, row, strict=True) if f) for row in flags]
@@ -222,20 +244,28 @@ def _numeric_columns(table):
     return cols
 
 
-def _shift_flags(cols, clear, max_shift_px):
-    """Sections shifted by more than `max_shift_px` from a previous section that is also clear.
+def _shift_flags(cols, clear, max_shift_px, neighbours):
+    """Sections whose shift from a clear previous section departs from the local trend.
 
-    A displaced section whose successor moves back (the two shifts cancel to within
+    Returns the flags and the length of each departure (0 where the shift is not judged).
+    A displaced section whose successor moves back (the two departures cancel to within
     `max_shift_px`) flags only the displaced one.
     """
     judged = clear & np.concatenate([[False], clear[:-1]])
-    shifted = judged & (cols["shift"] > max_shift_px)
-    sy, sx = cols["shift_y"], cols["shift_x"]
+    z = cols["z"]
+    if np.count_nonzero(judged) >= 3:
+        ry = _trend_residuals(z, cols["shift_y"], judged, neighbours)
+        rx = _trend_residuals(z, cols["shift_x"], judged, neighbours)
+    else:  # too few shifts to show a trend: judge each against no motion at all
+        ry, rx = cols["shift_y"].copy(), cols["shift_x"].copy()
+    ry, rx = np.where(judged, ry, 0.0), np.where(judged, rx, 0.0)
+    jump = np.hypot(ry, rx)
+    shifted = judged & (jump > max_shift_px)
     for i in np.flatnonzero(shifted):
         if (
             i > 0
             and shifted[i - 1]
-            and math.hypot(sy[i] + sy[i - 1], sx[i] + sx[i - 1]) <= max_shift_px
+            and math.hypot(ry[i] + ry[i - 1], rx[i] + rx[i - 1]) <= max_shift_px
         ):
             shifted[i] = False  # returns to where the section before the displaced one was
-    return shifted
+    return shifted, jump

@@ -20,7 +20,7 @@ from tessera.section_qc._checks import (
     check_int,
     check_numeric_dtype,
 )
-from tessera.section_qc.shift import phase_shift
+from tessera.section_qc.shift import field_shift
 
 __all__ = ["METRIC_COLUMNS", "section_metrics", "measure_sections"]
 
@@ -200,9 +200,9 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
     pandas.DataFrame
         One row per section with columns ``z`` (int), ``mean``, ``std``, ``sharpness``,
         ``flat_fraction`` (see :func:`section_metrics`), ``shift_y``, ``shift_x`` (pixels, as
-        returned by :func:`~tessera.section_qc.shift.phase_shift` with the previous section's crop as reference and a
-        Hann window) and ``shift``
-        (their Euclidean length). The first section has shift 0.
+        returned by :func:`~tessera.section_qc.shift.field_shift` with the previous section's
+        crop as reference: the displacement of the whole field, not of its strongest
+        structure) and ``shift`` (their Euclidean length). The first section has shift 0.
 
     Examples
     --------
@@ -236,7 +236,7 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
             )
         )
         crop = np.asarray(section[y0:y1, x0:x1], dtype=np.float64)
-        dy, dx = (0.0, 0.0) if previous is None else phase_shift(previous, crop, window=True)
+        dy, dx = (0.0, 0.0) if previous is None else field_shift(previous, crop)
         row.update(shift_y=dy, shift_x=dx, shift=math.hypot(dy, dx))
         rows.append(row)
         previous = crop

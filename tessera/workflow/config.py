@@ -13,6 +13,7 @@ import pandas as pd
 import yaml
 
 from tessera.errors import TesseraInputError
+from tessera.objects.depth_limit import split_depth_problem
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -115,6 +116,10 @@ def _check_related_keys(config, source):
                 f"key targets.{name}.objects: min_volume_um3 ({smallest}) is larger than max_volume_um3 ({largest})",
                 source=source,
             )
+        depth = objects.get("split_min_depth_nm")
+        problem = depth is not None and largest is not None and split_depth_problem(depth, largest)
+        if problem:
+            raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
 
 
 def check_reference_condition(reference, conditions, *, source="config/config.yaml"):
@@ -292,7 +297,7 @@ def _check_inside(value, base_dir, roots, *, source):
 def config_paths(config, dataset_ids):
     """Every file or folder path the config names besides the sheet, with its key.
 
-    ``annotations.labels`` templates are filled in for every dataset id, so a per-dataset link
+    ``annotations.labels`` and ``instances`` templates are filled in for every dataset id, so a per-dataset link
     that leads elsewhere is seen.
 
     Examples
@@ -306,8 +311,10 @@ def config_paths(config, dataset_ids):
     for name, target in (config.get("targets") or {}).items():
         annotations = target.get("annotations") or {}
         key = f"targets.{name}.annotations"
-        if "labels" in annotations:
-            out += [(f"{key}.labels", annotations["labels"].format(dataset=d)) for d in dataset_ids]
+        for field in ("labels", "instances"):
+            if field in annotations:
+                template = annotations[field]
+                out += [(f"{key}.{field}", template.format(dataset=d)) for d in dataset_ids]
         for field in ("points", "masks"):
             if field in (annotations.get("painted") or {}):
                 out.append((f"{key}.painted.{field}", annotations["painted"][field]))

@@ -6,6 +6,10 @@ about 32 MiB of sections in memory. Data other than 8-bit are mapped to uint8
 The voxel size comes from the datasets sheet where given, else from the file header; for
 arrays in HDF5, N5 and zarr files a voxel size in their attributes comes first, and the sheet
 must agree with it (:func:`tessera.io.array_stacks.merge_spacing`).
+
+A section missing from a numbered slice folder becomes a blank (0) placeholder section, recorded
+in the store's metadata (:mod:`tessera.workflow.files.missing_sections`) for section QC to
+exclude, or stops the job, as ``missing_sections`` says.
 """
 
 import numpy as np
@@ -18,6 +22,7 @@ from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.stacks import open_stack
 from tessera.io.store_checksums import record_checksums
+from tessera.workflow.files.missing_sections import missing_sections_entry
 
 
 def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
@@ -65,6 +70,7 @@ def ingest_job(
     chunks=(1, 512, 512),
     percentiles=(0.1, 99.9),
     missing_chunks="refuse",
+    missing_sections="placeholder",
 ):
     """Convert an EM stack into a single-level OME-Zarr 0.5 image of uint8 sections.
 
@@ -92,17 +98,23 @@ def ingest_job(
         A chunk missing from an hdf5, n5 or zarr array is refused, or read as the array's fill
         value (for writers that leave out chunks holding only the fill value); the sections
         read so are recorded in the image's metadata.
+    missing_sections : {'placeholder', 'refuse'}, optional
+        A section missing from a slice folder's numbering becomes a blank placeholder section
+        (recorded for section QC to exclude), or stops the job with an error.
 
     Returns
     -------
     dict
-        Summary: shape, spacing, source dtype and the intensity mapping used (None for uint8).
+        Summary: shape, spacing, the intensity mapping used (None for uint8) and the z of the
+        placeholder sections.
     """
     if missing_chunks not in ("refuse", "fill_value"):
         raise TesseraInputError(
             f"missing_chunks must be 'refuse' or 'fill_value', got {missing_chunks!r}"
         )
-    source = open_stack(source_path, fmt, internal_path=internal_path)
+    source = open_stack(
+        source_path, fmt, internal_path=internal_path, missing_sections=missing_sections
+    )
     if hasattr(source, "missing_chunks"):  # arrays in containers (hdf5, n5, zarr)
         source.missing_chunks = missing_chunks
     try:
@@ -114,11 +126,17 @@ def ingest_job(
                 f"percentiles must satisfy 0 <= low < high <= 100, got {percentiles}"
             )
         mapping = choose_mapping(source, percentiles=(lo_p, hi_p))
-        chunks = tuple(int(min(c, s)) for c, s in zip(chunks, source.shape, strict=False))
+        missing = tuple(getattr(source, "missing", ()))  # placeholders for lost sections
+        shape = (source.shape[0] + len(missing), *source.shape[1:])
+        chunks = tuple(int(min(c, s)) for c, s in zip(chunks, shape, strict=False))
         origin = {"path": str(source_path), "format": fmt}
         if internal_path is not None:
             origin["internal_path"] = internal_path
-        extra = {"source": origin, "intensity_mapping": mapping}
+        extra = {
+            "source": origin,
+            "intensity_mapping": mapping,
+            **missing_sections_entry(missing),
+        }
         with atomic_path(out_path) as tmp:
             group = zarr.open_group(store=str(tmp), mode="w", zarr_format=3)
             group.attrs.update(
@@ -128,7 +146,7 @@ def ingest_job(
                 }
             )
             array = group.create_array(
-                name="0", shape=source.shape, chunks=chunks, dtype="uint8", dimension_names=AXES
+                name="0", shape=shape, chunks=chunks, dtype="uint8", dimension_names=AXES
             )
             _copy_sections(source, array, chunks[0], mapping)
             filled = getattr(source, "sections_with_missing_chunks", None)
@@ -144,20 +162,31 @@ def ingest_job(
         ) from None
     finally:
         source.close()
-    return {"shape": list(source.shape), "spacing": list(spacing), "intensity_mapping": mapping}
+    return {
+        "shape": list(shape),
+        "spacing": list(spacing),
+        "intensity_mapping": mapping,
+        "missing_sections": list(missing),
+    }
 
 
 def _copy_sections(source, array, chunk_z, mapping, *, buffer_bytes=32 * 2**20):
     # Write whole chunk-rows of sections, several at once when they are small (zarr writes the
     # chunks of one call concurrently), but never buffer more than about `buffer_bytes`.
-    z_count = source.shape[0]
+    # Output z of a missing section gets a blank placeholder; the others read the next section
+    # present in the source.
+    z_count = array.shape[0]
+    missing = set(getattr(source, "missing", ()))
+    present = iter(range(source.shape[0]))
     section_bytes = source.shape[1] * source.shape[2]
     slab_z = chunk_z * max(1, buffer_bytes // (chunk_z * section_bytes))
     for z0 in range(0, z_count, slab_z):
         z1 = min(z0 + slab_z, z_count)
-        slab = np.empty((z1 - z0, *source.shape[1:]), dtype=np.uint8)
+        slab = np.zeros((z1 - z0, *source.shape[1:]), dtype=np.uint8)
         for i, z in enumerate(range(z0, z1)):
-            section = source.read(z)
+            if z in missing:
+                continue
+            section = source.read(next(present))
             if mapping is None or mapping["method"] == "exact":
                 slab[i] = section
             else:

@@ -80,6 +80,10 @@ def objects_job(
         "spacing_nm": list(info["spacing"]),
     }
     block = settings.pop("block")
+    # the off switch and the depth reach the library as one argument: no depth, no splitting
+    depth = settings.pop("split_min_depth_nm", None)
+    split = settings.pop("split", False)
+    settings["split_min_depth_nm"] = depth if split else None
     level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
     with atomic_path(out_image) as tmp:
         for name in level_paths:

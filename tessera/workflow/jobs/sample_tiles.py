@@ -21,7 +21,6 @@ def sample_tiles_job(
     size,
     count,
     seed,
-    exclude_flagged=True,
 ):
     """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
 
@@ -39,8 +38,10 @@ def sample_tiles_job(
             f"label volume has shape {labels.shape}, the image {tuple(info['levels'][0].shape)}",
             source=labels_path,
         )
-    # level-0 sections: sample_tiles_from_labels maps them to the working level itself
-    exclude = excluded_sections(qc_table) if exclude_flagged else []
+    # the QC table's `excluded` column is the one record of exclusion: it already honours
+    # qc.exclude_flagged, and always holds lost (placeholder) sections; level-0 sections,
+    # which sample_tiles_from_labels maps to the working level itself
+    exclude = excluded_sections(qc_table)
     registry, tile_labels = sample_tiles_from_labels(
         labels,
         dataset=dataset,

@@ -4,7 +4,9 @@ from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import open_image
 from tessera.section_qc.flags import flag_sections
 from tessera.section_qc.metrics import measure_sections
+from tessera.section_qc.missing import mark_missing
 from tessera.section_qc.plot import plot_sections
+from tessera.workflow.files.missing_sections import read_missing_sections
 from tessera.workflow.files.qc_table import write_qc_table
 
 
@@ -29,7 +31,8 @@ def section_qc_job(
     """Measure and flag every section of an OME-Zarr image (level 0); write the table and plot.
 
     Both outputs are written under temporary names and renamed, so a killed job leaves no
-    half-written file behind.
+    half-written file behind. Placeholders that ingest wrote for lost sections are marked
+    ``missing`` and excluded.
 
     Returns
     -------
@@ -54,6 +57,7 @@ def section_qc_job(
         max_shift_px=max_shift_px,
         exclude_flagged=exclude_flagged,
     )
+    table = mark_missing(table, read_missing_sections(info["extra"], source=image_path))
     write_qc_table(table, table_path)
     with atomic_path(plot_path) as tmp:
         plot_sections(table, tmp, title=title)

@@ -1,0 +1,89 @@
+"""Choosing the default split depth (objects.split_min_depth_nm) on synthetic validation volumes.
+
+Validation data: demo volumes rendered with seeds of their own (not the demo study's datasets,
+not the tests' seeds), both condition scales, at the mitochondria's working level (16 nm
+in-plane, 40 nm sections). The true mitochondria (clusters of touching ones included) are
+turned into a mask, filtered like the demo config does (opening 16 nm, min 0.02 um^3) and split
+with each candidate depth; the objects are matched one to one with the true instances at
+IoU >= 0.5 (a common criterion in instance segmentation; above 0.5 a match is unique) and
+scored by F1. The default is the largest depth whose mean F1 is within 0.02 of the best (the
+tolerance the downsampling study uses): a predicted mask has a rougher surface than a true one,
+and rough surfaces raise spurious maxima of small depth, so of near-equal depths the deeper is
+the safer. The pipeline's own evaluation against held-out annotation remains the check on real
+data.
+
+Usage: python benchmarks/split_depth.py [--quick]
+"""
+
+import sys
+
+import numpy as np
+from _common import report
+
+from tessera.objects.label import label_objects
+from tessera_demo.render import render_dataset
+
+SEEDS = (70001, 70002, 70003)  # validation seeds: used nowhere else
+SCALES = (1.0, 1.25)
+DEPTHS = (None, 10, 20, 30, 40, 60, 80, 120)
+SPACING = (40.0, 16.0, 16.0)
+
+
+def match_f1(labels, truth):
+    """F1 of one-to-one matches at IoU >= 0.5 between two instance volumes."""
+    both = (labels > 0) & (truth > 0)
+    pairs, overlap = np.unique(
+        np.stack([labels[both], truth[both]]).astype(np.int64), axis=1, return_counts=True
+    )
+    size_l = np.bincount(labels.ravel())
+    size_t = np.bincount(truth.ravel())
+    iou = overlap / (size_l[pairs[0]] + size_t[pairs[1]] - overlap)
+    matched = int((iou >= 0.5).sum())
+    n_l, n_t = int(labels.max()), int(np.count_nonzero(size_t[1:]))
+    return 2 * matched / max(n_l + n_t, 1), n_l, n_t
+
+
+def main(quick=False):
+    seeds = SEEDS[:1] if quick else SEEDS
+    shape = (32, 384, 384) if quick else (64, 512, 512)
+    scores = {str(d): [] for d in DEPTHS}
+    counts = {str(d): [] for d in DEPTHS}
+    for seed in seeds:
+        for scale in SCALES:
+            truth = render_dataset(
+                seed=seed, shape=shape, spacing=(40.0, 8.0, 8.0), mito_volume_scale=scale
+            )["mitochondria"][:, ::2, ::2]
+            prob = (truth > 0).astype(np.float32)
+            for depth in DEPTHS:
+                out = np.zeros(truth.shape, np.uint32)
+                label_objects(
+                    prob,
+                    out,
+                    spacing=SPACING,
+                    high=0.5,
+                    open_radius_nm=16,
+                    min_volume_um3=0.02,
+                    block=(32, 256, 256),
+                    split_min_depth_nm=depth,
+                )
+                f1, n_objects, n_true = match_f1(out, truth)
+                scores[str(depth)].append(f1)
+                counts[str(depth)].append(n_objects / n_true)
+    rows, figures = [], {"seeds": list(seeds), "shape": list(shape), "depths": {}}
+    for depth in DEPTHS:
+        f1, ratio = float(np.mean(scores[str(depth)])), float(np.mean(counts[str(depth)]))
+        name = "no split" if depth is None else f"depth {depth} nm"
+        rows += [(f"{name}: F1 at IoU 0.5", f1, ""), (f"{name}: objects / true", ratio, "")]
+        figures["depths"][str(depth)] = {"f1": f1, "objects_per_true": ratio}
+    depths = [d for d in DEPTHS if d is not None]
+    top = max(figures["depths"][str(d)]["f1"] for d in depths)
+    figures["best_f1_nm"] = max(depths, key=lambda d: figures["depths"][str(d)]["f1"])
+    best = max(d for d in depths if figures["depths"][str(d)]["f1"] >= top - 0.02)
+    figures["chosen_nm"] = best
+    rows.append(("best F1 at", figures["best_f1_nm"], "nm"))
+    rows.append(("chosen split_min_depth_nm (within 0.02 of the best F1)", best, "nm"))
+    report("split_depth", rows, figures)
+
+
+if __name__ == "__main__":
+    main(quick="--quick" in sys.argv)

@@ -1,0 +1,132 @@
+"""Separating touching organelles: step 6 of :mod:`tessera.objects`, one component at a time.
+
+A component that holds several organelles pressed together is split by a seeded watershed on
+its Euclidean distance transform in nm (so anisotropic voxels are measured as they are). The
+seeds are the distance's regional maxima that stand out: a maximum counts only if it rises at
+least `min_depth_nm` above the lowest point of the best path (the saddle) to a higher maximum
+(an h-maximum, with h = `min_depth_nm`). Two balls of radius r joined by a neck of radius a
+have maxima of depth about r - a, so a neck wider than ``r - min_depth_nm`` keeps them one
+object, and a thin contact splits them. The component's highest maximum always counts; a
+component whose distance never exceeds `min_depth_nm` stays whole.
+"""
+
+import numpy as np
+from scipy import ndimage
+from skimage.morphology import h_maxima
+from skimage.segmentation import watershed
+
+from tessera.errors import TesseraInputError
+
+
+def check_split_depth(min_depth_nm):
+    """Refuse a depth that is not a positive number of nm.
+
+    Examples
+    --------
+    >>> check_split_depth(40.0)
+    >>> check_split_depth(-5)
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: objects split_min_depth_nm must be > 0 nm, got -5
+    """
+    ok = isinstance(min_depth_nm, (int, float)) and not isinstance(min_depth_nm, bool)
+    if not ok or not np.isfinite(min_depth_nm) or min_depth_nm <= 0:
+        raise TesseraInputError(f"objects split_min_depth_nm must be > 0 nm, got {min_depth_nm!r}")
+
+
+def split_seeds(distance, *, min_depth_nm, structure):
+    """Seeds of the watershed: the h-maxima of `distance`, labelled (int32, 0 = none).
+
+    Parameters
+    ----------
+    distance : ndarray of float
+        Distance to the background in nm (0 outside the object).
+    min_depth_nm : float
+        How far a maximum must rise above its saddle with a higher maximum to count.
+    structure : ndarray of bool
+        Neighbourhood of the objects' connectivity (3 x 3 x 3).
+
+    Examples
+    --------
+    >>> d = np.array([[[0, 4, 2, 3, 0]]], np.float32)  # the lower maximum is 1 above the saddle
+    >>> split_seeds(d, min_depth_nm=1, structure=np.ones((3, 3, 3), bool))[0, 0].tolist()
+    [0, 1, 0, 2, 0]
+    >>> split_seeds(d, min_depth_nm=2, structure=np.ones((3, 3, 3), bool))[0, 0].tolist()
+    [0, 1, 0, 0, 0]
+
+    Maxima of equal height are both kept whatever their saddle (neither is the higher one):
+    :func:`split_touching` adds :func:`tie_breaker` to the distance first.
+    """
+    peaks = h_maxima(distance, distance.dtype.type(min_depth_nm), footprint=structure)
+    seeds, _ = ndimage.label(peaks, structure)
+    return seeds.astype(np.int32)
+
+
+def tie_breaker(shape, origin=(0, 0, 0)):
+    """A tiny height (< 0.001 nm) added to the distance so that no two maxima are equal.
+
+    Distances on a voxel grid take few values, so plateaus and equal maxima are common (a
+    symmetric dumbbell has two); of two equal maxima neither would be the higher one, and both
+    would count whatever the saddle between them. The added height is a fixed function of the
+    voxel's position in the volume (the fractional part of a low-discrepancy sequence,
+    ``z / g + y / g**2 + x / g**3`` with g**4 = g + 1), the same whatever
+    box or block the voxel is read in.
+
+    Examples
+    --------
+    >>> t = tie_breaker((2, 3, 4), origin=(5, 0, 7))
+    >>> bool((t >= 0).all() and (t < 1e-3).all()), len(np.unique(t)) == t.size
+    (True, True)
+    >>> bool(tie_breaker((1, 1, 1), origin=(5, 2, 9))[0, 0, 0] == t[0, 2, 2])
+    True
+    """
+    # the root of x**4 = x + 1 (low-discrepancy sequences in 3D): 1, 1/g, 1/g**2 and 1/g**3
+    # are linearly independent over the rationals, so no two voxels get the same phase
+    g = 1.2207440846057596
+    z, y, x = (np.arange(n, dtype=np.float64) + o for n, o in zip(shape, origin, strict=True))
+    phase = z[:, None, None] / g + y[None, :, None] / g**2 + x[None, None, :] / g**3
+    return (phase % 1.0) * 1e-3
+
+
+def split_touching(mask, *, spacing, min_depth_nm, structure, origin=(0, 0, 0)):
+    """Split one object (a connected mask) into the organelles it holds.
+
+    Parameters
+    ----------
+    mask : (Z, Y, X) ndarray of bool
+        One connected object in a box with a margin of background on every side the volume
+        allows (voxels outside the array are not counted as background).
+    spacing : (float, float, float)
+        Voxel size z, y, x in nm.
+    min_depth_nm : float
+        See :func:`split_seeds`.
+    structure : ndarray of bool
+        Neighbourhood of the objects' connectivity; each piece is connected under it.
+    origin : (int, int, int)
+        Position of the box's first voxel in the volume (for :func:`tie_breaker`).
+
+    Returns
+    -------
+    ndarray of int32
+        Pieces 1..k in raster order of their first voxel, 0 outside `mask` (k = 1: not split).
+
+    Examples
+    --------
+    >>> z, y, x = np.ogrid[:1, :9, :17]
+    >>> two = ((y - 4) ** 2 + (x - 4) ** 2 <= 12) | ((y - 4) ** 2 + (x - 11) ** 2 <= 12)
+    >>> pieces = split_touching(two, spacing=(10, 10, 10), min_depth_nm=5,
+    ...                         structure=np.ones((3, 3, 3), bool))
+    >>> int(pieces.max()), int(pieces[0, 4, 3]), int(pieces[0, 4, 12])
+    (2, 1, 2)
+    """
+    distance = ndimage.distance_transform_edt(mask, sampling=spacing)
+    distance += tie_breaker(mask.shape, origin)
+    seeds = split_seeds(distance, min_depth_nm=min_depth_nm, structure=structure)
+    if seeds.max() <= 1:
+        return mask.astype(np.int32)
+    pieces = watershed(-distance, seeds, mask=mask, connectivity=structure)
+    # number the pieces in raster order of their first voxel, as the objects are numbered
+    ids, first = np.unique(pieces.ravel(), return_index=True)
+    ids, first = ids[ids > 0], first[ids > 0]
+    lut = np.zeros(int(pieces.max()) + 1, np.int32)
+    lut[ids[np.argsort(first, kind="stable")]] = np.arange(1, len(ids) + 1, dtype=np.int32)
+    return lut[pieces]
