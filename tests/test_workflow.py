@@ -343,6 +343,7 @@ def test_adding_a_stage_trains_only_the_new_stage(finished_study, repo=REPO_ROOT
         downstream = {
             "predict_tiles:",
             "evaluate:",
+            "evaluate_objects:",
             "shard_plan:",
             "predict_shard:",
             "stitch:",
