@@ -8,7 +8,7 @@ can be rearranged without touching them.
 
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import mirrored_stack, mirrored_window, node_feature_names
-from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.geometry import receptive_radius, z_halo
 from tessera.cascade.predict import (
     cascade_spec,
     frame_memory_bytes,
@@ -46,4 +46,5 @@ __all__ = [
     "save_node",
     "spec_from_settings",
     "train_node",
+    "z_halo",
 ]

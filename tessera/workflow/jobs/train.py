@@ -8,6 +8,7 @@ from tessera.cascade.api import (
     receptive_radius,
     spec_from_settings,
     train_node,
+    z_halo,
 )
 from tessera.errors import TesseraInputError
 from tessera.tile_windows import tile_window
@@ -102,7 +103,7 @@ def predict_tiles_job(
     held = registry[registry["role"].isin(["validation", "test"])]
     probabilities = {}
     for _, row in held.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        image = tile_window(arrays[row["dataset"]], row, halo, z_halo(spec))
         core = (int(row["height"]), int(row["width"]))
         probabilities[row["tile_id"]] = predict_frame(
             models, image, core, output_sigma=output_sigma
