@@ -236,8 +236,9 @@ def test_stitched_map_equals_the_whole_volume_in_one_piece(study, output_sigma):
 
 
 def test_stitched_map_with_cross_section_context_equals_the_whole_volume(xsec_study):
-    # With context from the sections around, blocks of one section (each reading its own z
-    # halo from the stored image, mirrored beyond the first and last section) stitch to the
+    # With context from the sections around, blocks of one section or of all five (each
+    # section read with its own z halo from the stored image, mirrored beyond the first and
+    # last section) stitch to the
     # same numbers as predicting each section in one piece: bit for bit when a block spans the
     # section in-plane, and within 1e-6 for small blocks (frames of another size put rows at
     # other places in the BLAS kernels' blocking), as without context.
@@ -245,6 +246,11 @@ def test_stitched_map_with_cross_section_context_equals_the_whole_volume(xsec_st
     whole = whole_volume(xsec_study)
     halo = receptive_radius(xsec_study["spec"])
     out = run(xsec_study, "xsec_plane", block=(1, 256, 256), jobs=3)
+    np.testing.assert_array_equal(
+        open_image(out / "probability.ome.zarr")[1]["levels"][0][:], whole
+    )
+    # one block of every section: consecutive sections share the maps of the ones around
+    out = run(xsec_study, "xsec_block", block=(5, 256, 256), jobs=1)
     np.testing.assert_array_equal(
         open_image(out / "probability.ome.zarr")[1]["levels"][0][:], whole
     )

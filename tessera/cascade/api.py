@@ -13,6 +13,7 @@ from tessera.cascade.predict import (
     cascade_spec,
     frame_memory_bytes,
     predict_frame,
+    predict_frames,
     predict_section,
 )
 from tessera.cascade.spec import (
@@ -40,6 +41,7 @@ __all__ = [
     "nodes",
     "out_of_fold_maps",
     "predict_frame",
+    "predict_frames",
     "predict_section",
     "prepare_tile",
     "receptive_radius",

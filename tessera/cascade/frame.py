@@ -364,6 +364,27 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
     )
 
 
+def adopt_sections(frame, previous):
+    """Give `frame` the sections it shares with `previous`, the frame of the section before.
+
+    Consecutive sections of a block read the same core region; a section's image features and
+    maps do not depend on which frame it belongs to (the same image values, core and margins),
+    so with ``context_sections`` the maps of the sections around are computed once, not once
+    per frame that reads them. Both frames must be for the same core, halo and final node.
+    """
+    same = (frame.core_shape, frame.halo, frame.final) == (
+        previous.core_shape,
+        previous.halo,
+        previous.final,
+    )
+    if not same:
+        raise TesseraInputError("frames of different cores or cascades share no sections")
+    reach = frame.z_halo - frame.spec.neighbours
+    for offset, section in previous._sections.items():
+        if -reach <= offset - 1 <= reach:
+            frame._sections[offset - 1] = section
+
+
 def ensure_maps(frame, node, models, fold):
     """Compute (and cache in the frame) the maps of every ancestor of `node`, not `node` itself,
     on every section `node` reads them on (its own, and with ``context_sections`` the sections

@@ -7,6 +7,7 @@ from scipy import ndimage
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
     BAND_ROWS,
+    adopt_sections,
     ensure_maps,
     make_frame,
     mirrored_stack,
@@ -48,9 +49,9 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
     """Final probability (float32) of the core of one block (core + ``receptive_radius`` halo).
 
     This is the block-prediction function: read a block of the working level with a halo of
-    ``receptive_radius(spec, output_sigma=output_sigma)`` pixels (mirrored beyond the volume),
-    and keep the returned core. Block origins must be multiples of ``2**levels`` for results to
-    equal whole-image prediction.
+    ``receptive_radius(spec, output_sigma=output_sigma)`` pixels (mirrored beyond the volume)
+    and ``z_halo(spec)`` sections on each side, and keep the returned core. Block origins must
+    be multiples of ``2**levels`` for results to equal whole-image prediction.
 
     Parameters
     ----------
@@ -60,16 +61,31 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
         smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
         depend on it.
     """
+    return next(predict_frames(models, [image], core_shape, output_sigma=output_sigma))
+
+
+def predict_frames(models, images, core_shape, *, output_sigma=0.0):
+    """:func:`predict_frame` of consecutive sections of one core; yields each section's map.
+
+    `images` yields the window of each section in turn (sections z, z + 1, ...). With
+    ``context_sections`` the maps of earlier stages a frame shares with the one before are
+    reused, not recomputed (the numbers are the same, bit for bit).
+    """
     spec = cascade_spec(models)
-    frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
-    final = (spec.stages, 0)
-    ensure_maps(frame, final, models, -1)
-    margin = frame.margins[final]
-    prob = node_map(frame, final, margin, models[final].classifier)
-    if output_sigma > 0:
-        # the map covers core + margin >= the kernel's reach: every core pixel sees real values
-        prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
-    return prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
+    final, previous = (spec.stages, 0), None
+    for image in images:
+        frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
+        if previous is not None:
+            adopt_sections(frame, previous)
+            previous = None  # what it does not share is freed before the maps are made
+        ensure_maps(frame, final, models, -1)
+        margin = frame.margins[final]
+        prob = node_map(frame, final, margin, models[final].classifier)
+        if output_sigma > 0:
+            # the map covers core + margin >= the kernel's reach: every core pixel sees real values
+            prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
+        previous = frame if spec.context_sections else None
+        yield prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
 
 
 def predict_section(models, volume, z=None, *, output_sigma=0.0):
