@@ -529,6 +529,7 @@ def test_config_schema_states_the_limits_the_code_enforces():
         ({"seed": -1}, "seed must be an integer >= 0, got -1"),
         ({"stencil_radii": (1, 257)}, r"stencil_radii must be integers >= 1 and <= 256"),
         ({"sigmas": (1.0, 65.0)}, r"sigmas must be at most 64 px"),
+        ({"context_sections": 5}, "context_sections must be an integer >= 0 and <= 4, got 5"),
     ],
 )
 def test_settings_beyond_the_limits_are_named(setting, message):
@@ -632,3 +633,16 @@ def test_first_stage_ignores_cross_section_context(xsec_cascades):
     assert a.keys() == b.keys() and all(np.array_equal(a[k], b[k]) for k in a)
     assert "context_sections" not in off[(2, 0)].meta["spec"]  # models of before stay the same
     assert on[(2, 0)].meta["spec"]["context_sections"] == 1
+
+
+def test_a_window_without_the_sections_context_needs_is_refused(xsec_cascades):
+    # Stage 2 with context_sections=1 needs the section and one on each side; a window of the
+    # section alone (what the cascade without context reads) is refused, naming what it needs.
+    spec, models = xsec_cascades[1]
+    volume, _ = tubes_and_specks(3)
+    radius = receptive_radius(spec)
+    window = mirrored_stack(volume, 2, 0, -radius, 96 + radius, -radius, 96 + radius)
+    with pytest.raises(TesseraInputError, match=r"image must have shape \(3, ") as error:
+        predict_frame(models, window, (96, 96))
+    assert "(sections z-1..z+1, core (96, 96)" in str(error.value)
+    assert f"got (1, {96 + 2 * radius}, {96 + 2 * radius})" in str(error.value)
