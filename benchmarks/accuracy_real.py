@@ -10,8 +10,10 @@ report pixel precision, recall, F1 and Jaccard on sections 16-19. The images are
 2x in-plane first (9.2 nm pixels; mitochondria stay tens of pixels across), masks by majority.
 
 Configurations: 1x0 (one stage, no levels: plain pixel classification), 1x2, 2x2, 3x2, and
-2x1, 3x1 (one coarser level only). Key ``chosen``: the cascade ladder from 2x2 (2x2, 3x2, 2x3;
-see tessera.ladder) picks its rung on the validation sections only, and its test scores are
+2x1, 3x1 (one coarser level only); 2x2_xsec and 3x2_xsec add cross-section context (from stage 2
+on every node also reads the previous stage's map of the sections above and below,
+``context_sections=1``). Key ``chosen``: the cascade ladder from 2x2 (2x2, 3x2, 2x3; see
+tessera.ladder) picks its rung on the validation sections only, and its test scores are
 reported. Every configuration is scored with the final map smoothed
 (Gaussian, --output-sigma px, the workflow's default) and, for comparison, unsmoothed.
 
@@ -44,13 +46,26 @@ from tessera.cascade.api import (
     predict_section,
     prepare_tile,
     receptive_radius,
+    z_halo,
 )  # noqa: E402
 from tessera.ladder import choose_rung, ladder_rungs, rung_name  # noqa: E402
 from tessera.object_scores import connected_truth, object_scores  # noqa: E402
 from tessera.objects.label import label_objects  # noqa: E402
 
 DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
-CONFIGS = {"1x0": (1, 0), "1x2": (1, 2), "2x2": (2, 2), "3x2": (3, 2), "2x1": (2, 1), "3x1": (3, 1)}
+# name: (stages, levels, context_sections)
+CONFIGS = {
+    "1x0": (1, 0, 0),
+    "1x2": (1, 2, 0),
+    "2x2": (2, 2, 0),
+    "3x2": (3, 2, 0),
+    "2x1": (2, 1, 0),
+    "3x1": (3, 1, 0),
+    "2x2_xsec": (2, 2, 1),
+    "3x2_xsec": (3, 2, 1),
+}
+#: Configurations run when --configs is not given (the cross-section ones are asked for by name).
+DEFAULT_CONFIGS = ("1x0", "1x2", "2x2", "3x2", "2x1", "3x1")
 
 
 def load(factor=2):
@@ -117,7 +132,7 @@ def evaluate(spec, image, truth, *, threads, output_sigma):
         prepare_tile(
             spec,
             f"z{z:02d}",
-            mirrored_stack(image, z, spec.neighbours, -radius, h + radius, -radius, w + radius),
+            mirrored_stack(image, z, z_halo(spec), -radius, h + radius, -radius, w + radius),
             truth[z],
             # contiguous blocks of sections per fold: a neighbouring section is not independent
             fold=z * spec.folds // 14,
@@ -171,7 +186,7 @@ def ladder_pick(results, image, truth, *, make_spec, threads, output_sigma, base
 def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--classifier", default=CascadeSpec().classifier)
-    parser.add_argument("--configs", default=",".join(CONFIGS))
+    parser.add_argument("--configs", default=",".join(DEFAULT_CONFIGS))
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--samples", type=int, default=6000)
     parser.add_argument("--neighbours", type=int, default=1)
@@ -183,10 +198,11 @@ def main():
     image, truth = load()
     results, unsmoothed, rows = {}, {}, []
     for name in args.configs.split(","):
-        stages, levels = CONFIGS[name]
+        stages, levels, context_sections = CONFIGS[name]
         spec = CascadeSpec(
             stages=stages,
             levels=levels,
+            context_sections=context_sections,
             classifier=args.classifier,
             samples_per_tile=args.samples,
             neighbours=args.neighbours,

@@ -16,7 +16,13 @@ probability map, which it alone writes (one writer per zarr chunk).
 
 import numpy as np
 
-from tessera.cascade.api import cascade_spec, mirrored_stack, predict_frame, receptive_radius
+from tessera.cascade.api import (
+    cascade_spec,
+    mirrored_stack,
+    predict_frames,
+    receptive_radius,
+    z_halo,
+)
 from tessera.errors import TesseraInputError
 
 
@@ -163,16 +169,21 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
     Each section is read with a halo of the receptive radius (mirrored beyond the volume; a
-    shard plan's ``halo``, or :func:`shard_halo` when not given) and predicted with
-    :func:`tessera.cascade.api.predict_frame`; `volume` may be a zarr array.
+    shard plan's ``halo``, or :func:`shard_halo` when not given) and the cascade's ``z_halo``
+    sections on each side (mirrored beyond the first and last section), and predicted with
+    :func:`tessera.cascade.api.predict_frames` (consecutive sections share the maps of the
+    sections around them); `volume` may be a zarr array.
     """
     spec = cascade_spec(models)
     halo = shard_halo(spec, output_sigma=output_sigma) if halo is None else halo
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
+    sections = z_halo(spec)
+    windows = (
+        mirrored_stack(volume, z, sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
+        for z in range(z0, z1)
+    )
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
-    for z in range(z0, z1):
-        window = mirrored_stack(
-            volume, z, spec.neighbours, y0 - halo, y1 + halo, x0 - halo, x1 + halo
-        )
-        out[z - z0] = predict_frame(models, window, (y1 - y0, x1 - x0), output_sigma=output_sigma)
+    maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma)
+    for k, prob in enumerate(maps):
+        out[k] = prob
     return out

@@ -3,8 +3,8 @@
 from tessera.cascade.api import mirrored_stack
 
 
-def tile_window(level_array, row, halo, neighbours):
-    """A tile's image (sections z ± `neighbours`) with `halo` pixels around it.
+def tile_window(level_array, row, halo, sections):
+    """A tile's image (sections z ± `sections`) with `halo` pixels around it.
 
     Parameters
     ----------
@@ -14,13 +14,14 @@ def tile_window(level_array, row, halo, neighbours):
         The tile's registry row: ``z``, ``y0``, ``x0``, ``height``, ``width``.
     halo : int
         Pixels added on every in-plane side, mirrored beyond the volume.
-    neighbours : int
-        Sections taken above and below the tile's own.
+    sections : int
+        Sections taken above and below the tile's own (the cascade's
+        :func:`tessera.cascade.api.z_halo`), mirrored beyond the first and last section.
 
     Returns
     -------
     ndarray
-        (2 * neighbours + 1, height + 2 * halo, width + 2 * halo).
+        (2 * sections + 1, height + 2 * halo, width + 2 * halo).
 
     Examples
     --------
@@ -35,5 +36,5 @@ def tile_window(level_array, row, halo, neighbours):
     z, y0, x0 = int(row["z"]), int(row["y0"]), int(row["x0"])
     h, w = int(row["height"]), int(row["width"])
     return mirrored_stack(
-        level_array, z, neighbours, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
+        level_array, z, sections, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
     )

@@ -10,7 +10,7 @@ large enough for the node's receptive field, mirrored beyond the volume
 import numpy as np
 import pandas as pd
 
-from tessera.cascade.api import prepare_tile, receptive_radius
+from tessera.cascade.api import prepare_tile, receptive_radius, z_halo
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
 from tessera.threshold import GRID, choose_threshold, confusion, scores_from_counts
@@ -85,7 +85,7 @@ def training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        image = tile_window(arrays[row["dataset"]], row, halo, z_halo(spec, final))
         tiles.append(
             prepare_tile(
                 spec,

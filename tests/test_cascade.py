@@ -22,7 +22,7 @@ from tessera.cascade.frame import (
     node_map,
     node_matrix,
 )
-from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius
+from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius, z_halo
 from tessera.cascade.predict import predict_frame, predict_section
 from tessera.cascade.spec import (
     LIMITS,
@@ -532,8 +532,120 @@ def test_config_schema_states_the_limits_the_code_enforces():
         ({"seed": -1}, "seed must be an integer >= 0, got -1"),
         ({"stencil_radii": (1, 257)}, r"stencil_radii must be integers >= 1 and <= 256"),
         ({"sigmas": (1.0, 65.0)}, r"sigmas must be at most 64 px"),
+        ({"context_sections": 5}, "context_sections must be an integer >= 0 and <= 4, got 5"),
     ],
 )
 def test_settings_beyond_the_limits_are_named(setting, message):
     with pytest.raises(TesseraInputError, match=message):
         CascadeSpec(**setting)
+
+
+def tubes_and_specks(seed, sections=6, shape=(96, 96)):
+    """Dark discs of two kinds that look alike within a section: 'tubes' run through every
+    section (drifting a little), 'specks' lie in one section only. Labels: the tubes."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[: shape[0], : shape[1]]
+
+    def disc(cy, cx, r):
+        return (yy - cy) ** 2 + (xx - cx) ** 2 < r**2
+
+    starts = [(rng.uniform(8, shape[0] - 8), rng.uniform(8, shape[1] - 8)) for _ in range(5)]
+    images, truth = [], []
+    for z in range(sections):
+        tube = np.zeros(shape, bool)
+        for cy, cx in starts:
+            tube |= disc(cy + 0.7 * z, cx - 0.5 * z, 6)
+        speck = np.zeros(shape, bool)
+        for _ in range(5):
+            speck |= disc(rng.uniform(0, shape[0]), rng.uniform(0, shape[1]), 6)
+        speck &= ~tube
+        image = 150 - 70 * (tube | speck) + rng.normal(0, 12, shape)
+        images.append(np.clip(image, 0, 255).astype(np.float32))
+        truth.append(tube.astype(np.uint8))
+    return np.stack(images), np.stack(truth)
+
+
+XSEC = dict(SMALL, stages=2, levels=0, samples_per_tile=800)
+
+
+def _stack_tiles(spec, volume, truth, final=None):
+    radius, sections = receptive_radius(spec, final), z_halo(spec, final)
+    h, w = volume.shape[1:]
+    return [
+        prepare_tile(
+            spec,
+            f"z{z}",
+            mirrored_stack(volume, z, sections, -radius, h + radius, -radius, w + radius),
+            truth[z],
+            fold=z % spec.folds,
+            final=final,
+        )
+        for z in range(volume.shape[0])
+    ]
+
+
+@pytest.fixture(scope="module")
+def xsec_cascades():
+    volume, truth = tubes_and_specks(1)
+    out = {}
+    for k in (0, 1):
+        spec = CascadeSpec(context_sections=k, **XSEC)
+        out[k] = (spec, fit_cascade(spec, _stack_tiles(spec, volume, truth), target="tubes"))
+    return out
+
+
+def test_cross_section_context_tells_what_continues_from_what_does_not(xsec_cascades):
+    # Within a section a tube and a speck look alike, so no in-section classifier can tell
+    # them apart; the previous stage's maps of the sections above and below can (a tube is
+    # there too, a speck is not). Scored by pixel F1 (scikit-learn) on a volume not trained on.
+    volume, truth = tubes_and_specks(2)
+    f1 = {}
+    for k, (_, models) in xsec_cascades.items():
+        prob = np.stack([predict_section(models, volume, z) for z in range(volume.shape[0])])
+        f1[k] = _best_f1(truth.ravel(), prob.ravel())
+    names = xsec_cascades[1][1][(2, 0)].meta["features"]
+    assert any(n.startswith("ctx(s1,l0,z-1):") for n in names)
+    assert any(n.startswith("ctx(s1,l0,z+1):") for n in names)
+    assert f1[1] > f1[0] + 0.15, f1
+
+
+def test_a_node_reads_the_maps_of_the_sections_around_its_own(xsec_cascades):
+    # The stage-1 map a stage-2 node reads at offset d is the stage-1 prediction of section
+    # z + d; beyond the first section the stack is mirrored (half-sample symmetric, as
+    # numpy's 'symmetric' pad: section -1 is section 0), as the neighbours' intensity is.
+    spec, models = xsec_cascades[1]
+    stage1 = {n: m for n, m in models.items() if n[0] == 1}
+    volume, _ = tubes_and_specks(3)
+    radius = receptive_radius(spec)
+    for z, expected in ((2, {-1: 1, 1: 3}), (0, {-1: 0, 1: 1})):
+        window = mirrored_stack(volume, z, z_halo(spec), -radius, 96 + radius, -radius, 96 + radius)
+        frame = make_frame(spec, window, (96, 96))
+        ensure_maps(frame, (2, 0), models, -1)
+        for d, section in expected.items():
+            got = frame.section(d).maps[(1, 0)]
+            prob, margin = got
+            core = prob[margin : margin + 96, margin : margin + 96]
+            np.testing.assert_allclose(core, predict_section(stage1, volume, section), atol=1e-6)
+
+
+def test_first_stage_ignores_cross_section_context(xsec_cascades):
+    # Stage 1 reads no earlier map, so its nodes are the same with context_sections on or off
+    # (turning it on retrains only stages >= 2), though its tiles carry more sections.
+    (_, off), (_, on) = xsec_cascades[0], xsec_cascades[1]
+    a, b = off[(1, 0)].classifier.to_state()[0], on[(1, 0)].classifier.to_state()[0]
+    assert a.keys() == b.keys() and all(np.array_equal(a[k], b[k]) for k in a)
+    assert "context_sections" not in off[(2, 0)].meta["spec"]  # models of before stay the same
+    assert on[(2, 0)].meta["spec"]["context_sections"] == 1
+
+
+def test_a_window_without_the_sections_context_needs_is_refused(xsec_cascades):
+    # Stage 2 with context_sections=1 needs the section and one on each side; a window of the
+    # section alone (what the cascade without context reads) is refused, naming what it needs.
+    spec, models = xsec_cascades[1]
+    volume, _ = tubes_and_specks(3)
+    radius = receptive_radius(spec)
+    window = mirrored_stack(volume, 2, 0, -radius, 96 + radius, -radius, 96 + radius)
+    with pytest.raises(TesseraInputError, match=r"image must have shape \(3, ") as error:
+        predict_frame(models, window, (96, 96))
+    assert "(sections z-1..z+1, core (96, 96)" in str(error.value)
+    assert f"got (1, {96 + 2 * radius}, {96 + 2 * radius})" in str(error.value)

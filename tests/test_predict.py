@@ -24,6 +24,7 @@ from tessera.cascade.api import (
     prepare_tile,
     receptive_radius,
     save_node,
+    z_halo,
 )
 from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.digests import file_sha256
@@ -64,20 +65,18 @@ def blobs(seed, shape):
     return np.clip(image, 0, 255).astype(np.uint8), truth.astype(np.uint8)
 
 
-@pytest.fixture(scope="module")
-def study(tmp_path_factory):
-    """A trained 2 x 1 cascade saved as node files, and a 5-section image stored as OME-Zarr."""
-    root = tmp_path_factory.mktemp("predict")
-    spec = CascadeSpec(**SPEC)
+def make_study(root, spec):
+    """A trained cascade of `spec` saved as node files, and a 5-section image as OME-Zarr."""
     radius = receptive_radius(spec)
+    sections = 2 * z_halo(spec) + 1
     tiles = []
     for i in range(4):
         image, truth = blobs(i, (64, 64))
-        stack = np.stack([image] * 3)
+        stack = np.stack([image] * sections)
         window = np.stack(
             [
                 mirrored_window(stack, k, -radius, 64 + radius, -radius, 64 + radius)
-                for k in range(3)
+                for k in range(sections)
             ]
         )
         tiles.append(prepare_tile(spec, f"t{i}", window, truth, fold=i % 2))
@@ -100,6 +99,19 @@ def study(tmp_path_factory):
         "volume": volume,
         "spec": spec,
     }
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    """A trained 2 x 1 cascade saved as node files, and a 5-section image stored as OME-Zarr."""
+    return make_study(tmp_path_factory.mktemp("predict"), CascadeSpec(**SPEC))
+
+
+@pytest.fixture(scope="module")
+def xsec_study(tmp_path_factory):
+    """As `study`, with cross-section context: stage 2 reads stage 1's maps of z - 1 and z + 1,
+    so a section's prediction reads z_halo = 2 sections of image on each side."""
+    return make_study(tmp_path_factory.mktemp("xsec"), CascadeSpec(**SPEC, context_sections=1))
 
 
 def whole_volume(study, output_sigma=0.0):
@@ -223,6 +235,30 @@ def test_stitched_map_equals_the_whole_volume_in_one_piece(study, output_sigma):
     assert np.abs(maps[1] - whole).max() <= 1e-6
 
 
+def test_stitched_map_with_cross_section_context_equals_the_whole_volume(xsec_study):
+    # With context from the sections around, blocks of one section or of all five (each
+    # section read with its own z halo from the stored image, mirrored beyond the first and
+    # last section) stitch to the
+    # same numbers as predicting each section in one piece: bit for bit when a block spans the
+    # section in-plane, and within 1e-6 for small blocks (frames of another size put rows at
+    # other places in the BLAS kernels' blocking), as without context.
+    assert z_halo(xsec_study["spec"]) == 2
+    whole = whole_volume(xsec_study)
+    halo = receptive_radius(xsec_study["spec"])
+    out = run(xsec_study, "xsec_plane", block=(1, 256, 256), jobs=3)
+    np.testing.assert_array_equal(
+        open_image(out / "probability.ome.zarr")[1]["levels"][0][:], whole
+    )
+    # one block of every section: consecutive sections share the maps of the ones around
+    out = run(xsec_study, "xsec_block", block=(5, 256, 256), jobs=1)
+    np.testing.assert_array_equal(
+        open_image(out / "probability.ome.zarr")[1]["levels"][0][:], whole
+    )
+    out = run(xsec_study, "xsec_small", block=(2, halo, halo), jobs=2)
+    small = open_image(out / "probability.ome.zarr")[1]["levels"][0][:]
+    assert np.abs(small - whole).max() <= 1e-6
+
+
 def test_uint8_map_is_byte_identical_and_valid_ngff(study):
     whole = encode_probability(whole_volume(study), "uint8")
     out = run(study, "uint8", block=(3, 64, 64), jobs=2, dtype="uint8")
@@ -312,10 +348,13 @@ def test_plan_refuses_a_model_for_another_target(study, tmp_path):
 
 
 @pytest.mark.parametrize("side", [48, 160])
-def test_memory_estimate_covers_the_measured_peak_of_a_frame(study, side):
+@pytest.mark.parametrize("fixture", ["study", "xsec_study"])
+def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, side):
     # tracemalloc (Python standard library) traces every buffer numpy allocates, so its peak is
     # what predicting one section of a block really takes; the estimate must cover it without
-    # overstating it by more than half.
+    # overstating it by more than half. With cross-section context a frame holds the maps and
+    # features of three sections.
+    study = request.getfixturevalue(fixture)
     rng = np.random.default_rng(side)
     volume = rng.integers(0, 256, (3, side, side), dtype=np.uint8)
     tracemalloc.start()

@@ -8,11 +8,12 @@ can be rearranged without touching them.
 
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import mirrored_stack, mirrored_window, node_feature_names
-from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.geometry import receptive_radius, z_halo
 from tessera.cascade.predict import (
     cascade_spec,
     frame_memory_bytes,
     predict_frame,
+    predict_frames,
     predict_section,
 )
 from tessera.cascade.spec import (
@@ -40,10 +41,12 @@ __all__ = [
     "nodes",
     "out_of_fold_maps",
     "predict_frame",
+    "predict_frames",
     "predict_section",
     "prepare_tile",
     "receptive_radius",
     "save_node",
     "spec_from_settings",
     "train_node",
+    "z_halo",
 ]

@@ -14,7 +14,7 @@ from tessera import __version__
 from tessera.block_reduce import block_mean
 from tessera.cascade.classifiers import make_classifier
 from tessera.cascade.frame import ensure_maps, make_frame, node_feature_names, node_matrix
-from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.geometry import receptive_radius, z_halo
 from tessera.cascade.spec import ancestors, node_settings, nodes
 from tessera.cascade.store import MODEL_FORMAT, NodeModel
 from tessera.errors import TesseraInputError
@@ -76,7 +76,11 @@ class TrainingTile:
 
 
 def prepare_tile(spec, tile_id, image, labels, *, fold, final=None):
-    """A TrainingTile from a working-level image window (core + halo) and core labels 0/1/255."""
+    """A TrainingTile from a working-level image window (core + halo) and core labels 0/1/255.
+
+    `image` holds the tile's section and ``z_halo(spec, final)`` sections on each side (see
+    :func:`tessera.cascade.frame.make_frame`); the labels are those of the middle section.
+    """
     labels = np.asarray(labels)
     if labels.ndim != 2:
         raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
@@ -201,7 +205,8 @@ def fit_cascade(spec, tiles, *, target="target", threads=1):
 
 
 def node_tile(spec, tile, node):
-    """`tile` with its image cut to the receptive radius of `node` (a new frame, maps not cached).
+    """`tile` with its image cut to the receptive radius and z halo of `node` (a new frame, maps
+    not cached).
 
     The maps of earlier nodes are computed over the margins `node` reads, not over the wider
     ones later nodes of the cascade read. That matters beyond geometry: a classifier's output for
@@ -212,14 +217,17 @@ def node_tile(spec, tile, node):
     frame = tile.frame
     halo = receptive_radius(spec, node)
     cut = frame.halo - halo
-    if cut < 0:
+    z_cut = frame.z_halo - z_halo(spec, node)
+    if cut < 0 or z_cut < 0:
         raise TesseraInputError(
-            f"tile {tile.tile_id}: its image has a halo of {frame.halo} px; node {node} needs {halo}"
+            f"tile {tile.tile_id}: its image has a halo of {frame.halo} px and {frame.z_halo} "
+            f"section(s); node {node} needs {halo} px and {z_halo(spec, node)}"
         )
     h, w = tile.labels.shape
+    sections = slice(z_cut, frame.stack.shape[0] - z_cut)
     # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
     # was appended after it, so the window is its first rows and columns
-    image = frame.image(0)[:, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
+    image = frame.stack[sections, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
     return prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
 
 

@@ -1,6 +1,10 @@
 """Frames: a core with its mirrored halo, the image levels and features over it, and the maps of
 the nodes computed so far; the feature matrix a node's classifier sees (image features plus the
 stencil samples of its context maps).
+
+A frame holds the sections its final node needs (``z_halo`` on each side of its own, section
+offset 0); each section keeps its own image features and node maps, so a node from stage 2 on can
+read the previous stage's map of the sections around its own (``context_sections``).
 """
 
 import numpy as np
@@ -20,8 +24,10 @@ from tessera.cascade.geometry import (
     padded_core_shape,
     read_reach,
     receptive_radius,
+    section_reach,
+    z_halo,
 )
-from tessera.cascade.spec import ancestors, node_inputs
+from tessera.cascade.spec import ancestors, context_offsets, node_inputs
 from tessera.errors import TesseraInputError
 
 
@@ -71,8 +77,9 @@ def _pool(prob, factor, how):
     return padded.reshape(ph // factor, factor, pw // factor, factor).max(axis=(1, 3))
 
 
-class _Frame:
-    """One core region with its mirrored halo; caches image levels and per-node maps.
+class _Section:
+    """One section of a frame: its core region with the mirrored halo; caches its image levels,
+    image features and per-node maps.
 
     Coordinates: a map of node n at level l covers level-0 offsets [-margin(n), core + margin(n))
     around the core, at level-l resolution (all offsets are multiples of 2^L).
@@ -131,10 +138,48 @@ class _Frame:
         trim = (widest - margin) // (2**level)
         return feats[trim : feats.shape[0] - trim, trim : feats.shape[1] - trim] if trim else feats
 
-    def context_maps(self, consumer, margin):
+
+class _Frame:
+    """One core region with its mirrored halo over the sections its final node needs.
+
+    `image` is (2 z_halo + 1, H, W); section offset d (|d| <= z_halo - neighbours) is made on
+    first use from the sections d - neighbours .. d + neighbours around it.
+    """
+
+    def __init__(self, spec, image, core_shape, halo, margin_table, final):
+        self.spec, self.halo = spec, halo
+        self.core_shape = core_shape
+        self.margins = margin_table
+        self.final = final or (spec.stages, 0)
+        self.z_halo = z_halo(spec, self.final)
+        self.stack = image  # float32, every section the frame needs
+        self._sections = {}
+
+    def section(self, offset):
+        if offset not in self._sections:
+            n, centre = self.spec.neighbours, self.z_halo + offset
+            if not 0 <= centre - n and centre + n < self.stack.shape[0]:
+                raise TesseraInputError(f"section offset {offset} lies beyond the frame's sections")
+            # a view (slices along z of a C-contiguous stack are contiguous)
+            stack = np.ascontiguousarray(self.stack[centre - n : centre + n + 1])
+            self._sections[offset] = _Section(
+                self.spec, stack, self.core_shape, self.halo, self.margins
+            )
+        return self._sections[offset]
+
+    @property
+    def maps(self):
+        """Maps computed so far on the frame's own section: {node: (map, margin)}."""
+        return self.section(0).maps
+
+    def features(self, level, margin, offset=0):
+        return self.section(offset).features(level, margin)
+
+    def context_maps(self, consumer, margin, offset=0):
         """Every input map of `consumer` at the consumer's level, with its stencil's offset scale.
 
-        Each map covers the consumer's core + margin plus the stencil's reach (level-l pixels
+        The maps of the consumer's own section (offset `offset`), then, from stage 2 on, the
+        previous stage's final map of each section in ``context_offsets`` around it. Each map covers the consumer's core + margin plus the stencil's reach (level-l pixels
         `cut` on each side). A finer map is pooled down; a coarser one is repeated up (nearest)
         and its stencil offsets are scaled by the factor, which equals reading the stencil at the
         coarse level and upsampling the samples.
@@ -142,8 +187,10 @@ class _Frame:
         spec = self.spec
         level = consumer[1]
         out = []
-        for producer in node_inputs(spec, *consumer):
-            prob, p_margin = self.maps[producer]
+        reads = [(producer, offset) for producer in node_inputs(spec, *consumer)]
+        reads += [((consumer[0] - 1, 0), offset + d) for d in context_offsets(spec, consumer[0])]
+        for producer, at in reads:
+            prob, p_margin = self.section(at).maps[producer]
             p_level = producer[1]
             reach = read_reach(spec, level, p_level)
             trim = (p_margin - (margin + reach)) // (2**p_level)
@@ -171,15 +218,15 @@ def _stencil_offsets(radii):
     return offsets
 
 
-def _row_sources(frame, node, margin):
+def _row_sources(frame, node, margin, offset=0):
     """The (H, W, k) arrays whose channels, side by side, are the columns of `node`'s features
-    over the core + margin: the image features, then one view per stencil sample of every
-    context map (no copies)."""
-    feats = frame.features(node[1], margin)
+    over the core + margin of section `offset`: the image features, then one view per stencil
+    sample of every context map (no copies)."""
+    feats = frame.features(node[1], margin, offset)
     h, w, _ = feats.shape
     sources = [feats]
     offsets = _stencil_offsets(frame.spec.stencil_radii)
-    for prob, scale, cut in frame.context_maps(node, margin):
+    for prob, scale, cut in frame.context_maps(node, margin, offset):
         # `cut` >= the widest offset, so every sample lies inside the map: no padding needed
         for dy, dx in offsets:
             y0, x0 = cut + dy * scale, cut + dx * scale
@@ -187,10 +234,10 @@ def _row_sources(frame, node, margin):
     return sources
 
 
-def node_matrix(frame, node, margin):
-    """(H, W, C) float32 features of `node` over the core + margin: image features, then the
-    stencil samples of every context map, written straight into one array."""
-    sources = _row_sources(frame, node, margin)
+def node_matrix(frame, node, margin, offset=0):
+    """(H, W, C) float32 features of `node` over the core + margin (of section `offset`): image
+    features, then the stencil samples of every context map, written straight into one array."""
+    sources = _row_sources(frame, node, margin, offset)
     h, w, _ = sources[0].shape
     out = np.empty((h, w, sum(s.shape[2] for s in sources)), dtype=np.float32)
     channel = 0
@@ -254,14 +301,15 @@ def _fill_rows(x, sources, start, stop):
         column += source.shape[2]
 
 
-def node_map(frame, node, margin, classifier):
-    """(H, W) float32 output of `classifier` on `node`'s features over the core + margin.
+def node_map(frame, node, margin, classifier, offset=0):
+    """(H, W) float32 output of `classifier` on `node`'s features over the core + margin (of
+    section `offset`).
 
     The same numbers as ``classifier.predict`` on the whole :func:`node_matrix`, computed band
     by band (:func:`_bands`) in one reused buffer: the full matrix (tens of bytes per feature
     and pixel) is never made.
     """
-    sources = _row_sources(frame, node, margin)
+    sources = _row_sources(frame, node, margin, offset)
     h, w, _ = sources[0].shape
     n = h * w
     width = sum(s.shape[2] for s in sources)
@@ -286,6 +334,8 @@ def node_feature_names(spec, stage, level):
     ]
     for producer in node_inputs(spec, stage, level):
         names += [f"ctx(s{producer[0]},l{producer[1]}):{o}" for o in offsets]
+    for d in context_offsets(spec, stage):
+        names += [f"ctx(s{stage - 1},l0,z{d:+d}):{o}" for o in offsets]
     return names
 
 
@@ -295,25 +345,56 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
     The core is extended by mirroring to multiples of 2^L (labels there are ignored).
     """
     halo = receptive_radius(spec, final, output_sigma=output_sigma)
+    zh = z_halo(spec, final)
     image = np.asarray(image, dtype=np.float32)
     if image.ndim == 2:
         image = image[np.newaxis]
-    expected = (2 * spec.neighbours + 1, *(c + 2 * halo for c in core_shape))
+    expected = (2 * zh + 1, *(c + 2 * halo for c in core_shape))
     if image.shape != expected:
         raise TesseraInputError(
-            f"image must have shape {expected} (sections z-{spec.neighbours}..z+{spec.neighbours}, "
+            f"image must have shape {expected} (sections z-{zh}..z+{zh}, "
             f"core {core_shape} + halo {halo}), got {image.shape}"
         )
     padded_core = padded_core_shape(spec, core_shape)
     extra = [p - c for p, c in zip(padded_core, core_shape, strict=True)]
     if any(extra):
         image = np.pad(image, [(0, 0)] + [(0, e) for e in extra], mode="symmetric")
-    return _Frame(spec, image, padded_core, halo, margins(spec, final, output_sigma=output_sigma))
+    return _Frame(
+        spec, image, padded_core, halo, margins(spec, final, output_sigma=output_sigma), final
+    )
+
+
+def adopt_sections(frame, previous):
+    """Give `frame` the sections it shares with `previous`, the frame of the section before.
+
+    Consecutive sections of a block read the same core region; a section's image features and
+    maps do not depend on which frame it belongs to (the same image values, core and margins),
+    so with ``context_sections`` the maps of the sections around are computed once, not once
+    per frame that reads them. Both frames must be for the same core, halo and final node.
+    """
+    same = (frame.core_shape, frame.halo, frame.final) == (
+        previous.core_shape,
+        previous.halo,
+        previous.final,
+    )
+    if not same:
+        raise TesseraInputError("frames of different cores or cascades share no sections")
+    reach = frame.z_halo - frame.spec.neighbours
+    for offset, section in previous._sections.items():
+        if -reach <= offset - 1 <= reach:
+            frame._sections[offset - 1] = section
 
 
 def ensure_maps(frame, node, models, fold):
-    """Compute (and cache in the frame) the maps of every ancestor of `node`, not `node` itself."""
-    for a in ancestors(frame.spec, node)[:-1]:
-        if a not in frame.maps:
-            margin = frame.margins[a]
-            frame.maps[a] = (node_map(frame, a, margin, models[a].for_tile(fold)), margin)
+    """Compute (and cache in the frame) the maps of every ancestor of `node`, not `node` itself,
+    on every section `node` reads them on (its own, and with ``context_sections`` the sections
+    around it), earlier stages first."""
+    spec = frame.spec
+    for a in ancestors(spec, node)[:-1]:
+        reach = section_reach(spec, a, node)
+        for offset in range(-reach, reach + 1):
+            maps = frame.section(offset).maps
+            if a not in maps:
+                margin = frame.margins[a]
+                clf = models[a].for_tile(fold)
+                maps[a] = (node_map(frame, a, margin, clf, offset), margin)

@@ -66,6 +66,42 @@ def margins(spec, final=None, *, output_sigma=0.0):
     return out
 
 
+def z_halo(spec, final=None):
+    """Sections of image needed on each side of a frame's own section.
+
+    The one place the z extent of a frame is derived. A node's image features read
+    ``neighbours`` sections on each side; from stage 2 on, a node also reads the previous
+    stage's map on ``context_sections`` sections on each side, so the map of stage s is needed
+    on :func:`section_reach` sections around the frame's own, each of them with its own
+    neighbours. Prediction and training windows are read with this many sections on each side
+    (mirrored beyond the volume's first and last section).
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> z_halo(CascadeSpec(stages=3, neighbours=1, context_sections=2))
+    5
+    >>> z_halo(CascadeSpec(stages=3, neighbours=1, context_sections=2), (1, 0))
+    1
+    """
+    stage = (final or (spec.stages, 0))[0]
+    return spec.neighbours + section_reach(spec, (1, 0), (stage, 0))
+
+
+def section_reach(spec, node, final=None):
+    """Sections on each side of the frame's own on which `node`'s map is needed for `final`.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> spec = CascadeSpec(stages=3, context_sections=1)
+    >>> [section_reach(spec, (s, 0)) for s in (1, 2, 3)]
+    [2, 1, 0]
+    """
+    stage = (final or (spec.stages, 0))[0]
+    return (stage - node[0]) * spec.context_sections
+
+
 def feature_halo(spec, level):
     """Level-l pixels of image around a region that its features depend on."""
     return feature_radius(level_sigmas(spec, level)) + 1

@@ -7,6 +7,7 @@ from scipy import ndimage
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
     BAND_ROWS,
+    adopt_sections,
     ensure_maps,
     make_frame,
     mirrored_stack,
@@ -20,8 +21,16 @@ from tessera.cascade.geometry import (
     padded_core_shape,
     read_reach,
     receptive_radius,
+    section_reach,
+    z_halo,
 )
-from tessera.cascade.spec import node_inputs, node_settings, nodes, spec_from_settings
+from tessera.cascade.spec import (
+    context_offsets,
+    node_inputs,
+    node_settings,
+    nodes,
+    spec_from_settings,
+)
 from tessera.errors import TesseraInputError
 
 
@@ -40,9 +49,9 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
     """Final probability (float32) of the core of one block (core + ``receptive_radius`` halo).
 
     This is the block-prediction function: read a block of the working level with a halo of
-    ``receptive_radius(spec, output_sigma=output_sigma)`` pixels (mirrored beyond the volume),
-    and keep the returned core. Block origins must be multiples of ``2**levels`` for results to
-    equal whole-image prediction.
+    ``receptive_radius(spec, output_sigma=output_sigma)`` pixels (mirrored beyond the volume)
+    and ``z_halo(spec)`` sections on each side, and keep the returned core. Block origins must
+    be multiples of ``2**levels`` for results to equal whole-image prediction.
 
     Parameters
     ----------
@@ -52,23 +61,39 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
         smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
         depend on it.
     """
+    return next(predict_frames(models, [image], core_shape, output_sigma=output_sigma))
+
+
+def predict_frames(models, images, core_shape, *, output_sigma=0.0):
+    """:func:`predict_frame` of consecutive sections of one core; yields each section's map.
+
+    `images` yields the window of each section in turn (sections z, z + 1, ...). With
+    ``context_sections`` the maps of earlier stages a frame shares with the one before are
+    reused, not recomputed (the numbers are the same, bit for bit).
+    """
     spec = cascade_spec(models)
-    frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
-    final = (spec.stages, 0)
-    ensure_maps(frame, final, models, -1)
-    margin = frame.margins[final]
-    prob = node_map(frame, final, margin, models[final].classifier)
-    if output_sigma > 0:
-        # the map covers core + margin >= the kernel's reach: every core pixel sees real values
-        prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
-    return prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
+    final, previous = (spec.stages, 0), None
+    for image in images:
+        frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
+        if previous is not None:
+            adopt_sections(frame, previous)
+            previous = None  # what it does not share is freed before the maps are made
+        ensure_maps(frame, final, models, -1)
+        margin = frame.margins[final]
+        prob = node_map(frame, final, margin, models[final].classifier)
+        if output_sigma > 0:
+            # the map covers core + margin >= the kernel's reach: every core pixel sees real values
+            prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
+        previous = frame if spec.context_sections else None
+        yield prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
 
 
 def predict_section(models, volume, z=None, *, output_sigma=0.0):
     """Probability map of one whole section (mirrored edges), in one piece.
 
     `volume` is a 2D section, or a (Z, Y, X) array with `z` the section (needed when the
-    cascade reads neighbouring sections).
+    cascade reads neighbouring sections: ``z_halo`` of them on each side, mirrored beyond the
+    volume's first and last section).
     """
     spec = cascade_spec(models)
     halo = receptive_radius(spec, output_sigma=output_sigma)
@@ -76,7 +101,7 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
     if volume.ndim == 2:
         volume, z = volume[np.newaxis], 0
     h, w = volume.shape[1:]
-    image = mirrored_stack(volume, z, spec.neighbours, -halo, h + halo, -halo, w + halo)
+    image = mirrored_stack(volume, z, z_halo(spec), -halo, h + halo, -halo, w + halo)
     return predict_frame(models, image, (h, w), output_sigma=output_sigma)
 
 
@@ -93,7 +118,8 @@ def _image_channels(spec, level):
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     """Peak bytes :func:`predict_frame` allocates for one core of `core_shape` (y, x).
 
-    Follows the frame's geometry: the image levels (with neighbouring sections), every level's
+    Follows the frame's geometry: the image levels (with neighbouring sections and the sections
+    ``context_sections`` adds, each of which has its own features and maps), every level's
     cached image features over the widest margin its nodes read, every node's map, and the
     larger of the filter bank's temporaries and the biggest node's context maps with one band
     of its feature rows and the classifier's work on it. Everything is float32.
@@ -108,9 +134,11 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     halo = receptive_radius(spec, output_sigma=output_sigma)
     cy, cx = padded_core_shape(spec, core_shape)
     margin = margins(spec, output_sigma=output_sigma)
-    image = (
-        (2 * spec.neighbours + 1) * (cy + 2 * halo) * (cx + 2 * halo) * 4 * 4 / 3
-    )  # + coarser levels
+    # sections the frame computes maps on; each reads 2 neighbours + 1 sections of the image
+    used = 2 * section_reach(spec, (1, 0)) + 1
+    per_section = 2 * spec.neighbours + 1
+    pixels0 = (cy + 2 * halo) * (cx + 2 * halo)
+    image = 4 * pixels0 * (2 * z_halo(spec) + 1 + used * per_section / 3)  # + coarser levels
     cached = filters = 0
     for level in range(spec.levels + 1):
         f = 2**level
@@ -118,7 +146,7 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
         extra = feature_halo(spec, level)
         pixels = ((cy + 2 * widest) // f + 2 * extra) * ((cx + 2 * widest) // f + 2 * extra)
         channels = _image_channels(spec, level)
-        cached += 4 * pixels * channels
+        cached += 4 * pixels * channels * used
         # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
         # are concatenated (one more copy of the channels)
         temporaries = len(level_sigmas(spec, level)) + 8 + (channels if spec.neighbours else 0)
@@ -130,13 +158,13 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
             (cx + 2 * (margin[node] + extra_margin)) // f
         )
 
-    maps = sum(4 * rows(node) for node in margin)
+    maps = sum(4 * rows(node) * (2 * section_reach(spec, node) + 1) for node in margin)
     work = 0
     for node in margin:
         width = len(node_feature_names(spec, *node))
-        context = sum(
-            4 * rows(node, read_reach(spec, node[1], p[1])) for p in node_inputs(spec, *node)
-        )
+        inputs = node_inputs(spec, *node)
+        inputs += [(node[0] - 1, 0)] * len(context_offsets(spec, node[0]))
+        context = sum(4 * rows(node, read_reach(spec, node[1], p[1])) for p in inputs)
         # one band of feature rows (float32), the classifier's finite check and working rows
         band = min(rows(node), BAND_ROWS + BAND_ROWS // 2)
         work = max(work, context + band * (5 * width + _CLASSIFIER_ROW_BYTES))

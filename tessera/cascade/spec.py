@@ -37,6 +37,7 @@ LIMITS = {
     "folds": (2, 20),
     "samples_per_tile": (10, 1_000_000),
     "neighbours": (0, 4),
+    "context_sections": (0, 4),
     "seed": (0, None),
 }
 STENCIL_RADIUS_LIMITS = (1, 256)  # each radius, pixels of the map's level
@@ -71,6 +72,12 @@ class CascadeSpec:
     neighbours : int
         Sections on each side whose intensity (smoothed, LoG) joins the image features; useful
         for anisotropic stacks where organelles continue from section to section.
+    context_sections : int
+        Sections on each side whose previous-stage map every node from stage 2 on reads (at the
+        same stencil as its own section's), besides its own section's. An organelle seen in the
+        sections above and below is likely in this one too; each stage then reaches that many
+        sections further, so the image a frame needs grows by this many sections per stage
+        (:func:`tessera.cascade.geometry.z_halo`). 0 (the default) reads the own section only.
     seed : int
         Makes sampling, folds and classifiers deterministic.
     """
@@ -86,6 +93,7 @@ class CascadeSpec:
     folds: int = 3
     samples_per_tile: int = 4000
     neighbours: int = 0
+    context_sections: int = 0
     seed: int = 0
 
     def __post_init__(self):
@@ -108,6 +116,7 @@ class CascadeSpec:
         check_int("folds")
         check_int("samples_per_tile")
         check_int("neighbours")
+        check_int("context_sections")
         check_int("seed")
         radii = tuple(self.stencil_radii)
         low, high = STENCIL_RADIUS_LIMITS
@@ -207,7 +216,8 @@ def node_settings(settings):
     """The cascade settings a node depends on: every setting but the number of stages.
 
     A node does not depend on how many stages follow it, so raising the number of stages keeps
-    the earlier nodes valid. This is what a node's model records (``meta["spec"]``) and what a
+    the earlier nodes valid. ``context_sections`` at 0 is left out as well: models made before
+    the setting existed record no such key, and stay the same files. This is what a node's model records (``meta["spec"]``) and what a
     workflow passes to the job training a node. `settings` is a :class:`CascadeSpec`, or a
     mapping of settings such as a configuration's ``cascade`` section (returned as given,
     without ``stages``). :func:`spec_from_settings` is the way back.
@@ -222,7 +232,24 @@ def node_settings(settings):
     """
     out = settings.to_dict() if isinstance(settings, CascadeSpec) else dict(settings)
     out.pop("stages", None)
+    if out.get("context_sections") == 0:
+        out.pop("context_sections")
     return out
+
+
+def context_offsets(spec, stage):
+    """Section offsets (other than 0) at which nodes of `stage` read the previous stage's map.
+
+    Examples
+    --------
+    >>> spec = CascadeSpec(stages=2, levels=0, context_sections=1)
+    >>> context_offsets(spec, 1), context_offsets(spec, 2)
+    ([], [-1, 1])
+    """
+    if stage < 2:
+        return []
+    k = spec.context_sections
+    return [d for d in range(-k, k + 1) if d]
 
 
 def spec_from_settings(settings, *, stages):

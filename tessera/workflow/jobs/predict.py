@@ -12,7 +12,13 @@ from pathlib import Path
 import numpy as np
 import zarr
 
-from tessera.cascade.api import cascade_spec, frame_memory_bytes, node_feature_names, nodes
+from tessera.cascade.api import (
+    cascade_spec,
+    frame_memory_bytes,
+    node_feature_names,
+    nodes,
+    z_halo,
+)
 from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.atomic import atomic_path
 from tessera.io.digests import file_sha256
@@ -105,7 +111,7 @@ def shard_memory_mb(plan, job, spec, model_paths):
     """
     output_sigma = plan.get("output_sigma", 0.0)
     halo = plan["halo"]
-    sections = 2 * spec.neighbours + 1
+    sections = 2 * z_halo(spec) + 1
     itemsize = np.dtype(plan["dtype"]).itemsize
     shapes = {
         (b[1] - b[0], b[3] - b[2], b[5] - b[4])

@@ -8,6 +8,7 @@ from tessera.cascade.api import (
     receptive_radius,
     spec_from_settings,
     train_node,
+    z_halo,
 )
 from tessera.errors import TesseraInputError
 from tessera.tile_windows import tile_window
@@ -114,7 +115,7 @@ def tile_probabilities(models, arrays, rows, *, output_sigma=0.0):
     halo = receptive_radius(spec, output_sigma=output_sigma)
     out = {}
     for _, row in rows.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, spec.neighbours)
+        image = tile_window(arrays[row["dataset"]], row, halo, z_halo(spec))
         core = (int(row["height"]), int(row["width"]))
         out[row["tile_id"]] = predict_frame(models, image, core, output_sigma=output_sigma)
     return out
