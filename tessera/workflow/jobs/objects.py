@@ -5,6 +5,7 @@ sections QC excluded come from the QC table, and the filtering itself is
 :func:`tessera.objects.label.label_objects`.
 """
 
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -85,28 +86,37 @@ def objects_job(
     split = settings.pop("split", False)
     settings["split_min_depth_nm"] = depth if split else None
     level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
-    with atomic_path(out_image) as tmp:
-        for name in level_paths:
-            link_tree(Path(probability) / name, tmp / name)
-        (tmp / "zarr.json").write_bytes(verified_bytes(probability, "zarr.json"))
-        root = zarr.open_group(store=str(tmp), mode="r+", zarr_format=3)
-        levels = _label_levels(root, target=target, info=info, shape=prob.shape, used=used)
-        table = label_objects(
-            prob,
-            levels[0],
-            spacing=info["spacing"],
-            high=high,
-            low=low,
-            block=block,
-            scale=scale,
-            excluded_sections=excluded,
-            workdir=Path(out_image).parent,
-            **settings,
-        )
-        for factor, level in zip(info["factors"][1:], levels[1:], strict=True):
-            subsample_labels(levels[0], level, factor=factor)
-        # the probability levels keep the records made when they were stitched
-        record_checksums(tmp, linked={name: probability for name in level_paths})
+    # Labelling keeps large scratch arrays beside the results (not in a small /tmp). A job killed
+    # outright (SIGKILL, a node lost) cannot clean up, so each run clears its own target's scratch
+    # folder first; only one job per dataset and target runs at a time, so nothing else uses it.
+    scratch = Path(out_image).parent / f".{target}.scratch"
+    shutil.rmtree(scratch, ignore_errors=True)
+    scratch.mkdir(parents=True)
+    try:
+        with atomic_path(out_image) as tmp:
+            for name in level_paths:
+                link_tree(Path(probability) / name, tmp / name)
+            (tmp / "zarr.json").write_bytes(verified_bytes(probability, "zarr.json"))
+            root = zarr.open_group(store=str(tmp), mode="r+", zarr_format=3)
+            levels = _label_levels(root, target=target, info=info, shape=prob.shape, used=used)
+            table = label_objects(
+                prob,
+                levels[0],
+                spacing=info["spacing"],
+                high=high,
+                low=low,
+                block=block,
+                scale=scale,
+                excluded_sections=excluded,
+                workdir=scratch,
+                **settings,
+            )
+            for factor, level in zip(info["factors"][1:], levels[1:], strict=True):
+                subsample_labels(levels[0], level, factor=factor)
+            # the probability levels keep the records made when they were stitched
+            record_checksums(tmp, linked={name: probability for name in level_paths})
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
     write_object_table(out_table, table)
     write_object_settings(out_settings, {**used, "objects": len(table)})
     return {"objects": len(table), "high": high, "low": low}
