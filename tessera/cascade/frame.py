@@ -200,6 +200,36 @@ def node_matrix(frame, node, margin):
     return out
 
 
+def node_rows(frame, node, margin, pick):
+    """Rows `pick` (indices into the flattened (H, W) grid) of :func:`node_matrix`, and only them.
+
+    Training samples a few thousand pixels of each tile; gathering just those rows from the
+    feature and context arrays gives the same numbers (plain copies) without building the whole
+    (H, W, C) matrix.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> halo = receptive_radius(spec)
+    >>> image = np.random.default_rng(0).random((16 + 2 * halo,) * 2)
+    >>> frame = make_frame(spec, image, (16, 16))
+    >>> full = node_matrix(frame, (1, 0), 0)
+    >>> rows = node_rows(frame, (1, 0), 0, [0, 17, 255])
+    >>> np.array_equal(rows, full.reshape(256, -1)[[0, 17, 255]])
+    True
+    """
+    sources = _row_sources(frame, node, margin)
+    w = sources[0].shape[1]
+    iy, ix = np.divmod(np.asarray(pick, dtype=np.intp), w)
+    out = np.empty((iy.size, sum(s.shape[2] for s in sources)), dtype=np.float32)
+    channel = 0
+    for source in sources:
+        out[:, channel : channel + source.shape[2]] = source[iy, ix]
+        channel += source.shape[2]
+    return out
+
+
 # Pixels classified at once by :func:`node_map`. A multiple of 192 (a multiple of the row
 # blocking of the BLAS matrix-product kernels, 16 to 64 rows): see :func:`_bands`.
 BAND_ROWS = 192 * 48
