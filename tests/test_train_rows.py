@@ -20,7 +20,7 @@ from tessera.cascade.fit import (
     prepare_tile,
     train_node,
 )
-from tessera.cascade.frame import ensure_maps, make_frame, node_matrix, node_rows
+from tessera.cascade.frame import ensure_maps, make_frame, node_matrix, node_rows, share_features
 from tessera.cascade.geometry import receptive_radius
 from tessera.cascade.spec import CascadeSpec, nodes
 
@@ -132,3 +132,28 @@ def test_out_of_fold_maps_equal_the_fold_models_on_the_whole_matrix(cascade):
         h, w = tile.labels.shape
         assert oof[tile.tile_id].shape == (h, w)
         np.testing.assert_array_equal(oof[tile.tile_id], whole[:h, :w])
+
+
+@pytest.mark.parametrize("size", [(52, 60), (51, 60)])
+def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(size):
+    # Reference: the filter bank (scipy.ndimage Gaussian filters and numpy arithmetic) run on
+    # each node's own frame, as a job training that node alone runs it. node_tile hands the
+    # node the crop of the tile's features instead; they must be equal to the last bit. A core
+    # of odd size (extended by mirroring to the level grid) is not shared and still equal.
+    spec = CascadeSpec(**{**SPEC.to_dict(), "levels": 2, "stencil_radii": [1, 2]})
+    tile = _tiles(spec, count=1, size=size)[0]
+    for node in nodes(spec):
+        cut = node_tile(spec, tile, node)
+        halo = receptive_radius(spec, node)
+        c = tile.frame.halo - halo
+        window = tile.frame.image(0)[:, c : c + size[0] + 2 * halo, c : c + size[1] + 2 * halo]
+        fresh = make_frame(spec, window, size, final=node)
+        assert fresh.halo == cut.frame.halo <= tile.frame.halo
+        for level in sorted({lv for _, lv in fresh.margins}):
+            widest = fresh.widest(level)
+            shared = level in cut.frame._features
+            assert shared == (size[0] % 4 == 0)
+            np.testing.assert_array_equal(
+                cut.frame.features(level, widest), fresh.features(level, widest)
+            )
+    assert share_features(tile.frame, cut.frame) == []  # nothing left to share

@@ -19,6 +19,7 @@ from tessera.cascade.frame import (
     node_feature_names,
     node_map,
     node_rows,
+    share_features,
 )
 from tessera.cascade.geometry import receptive_radius
 from tessera.cascade.spec import ancestors, node_settings, nodes
@@ -225,7 +226,11 @@ def node_tile(spec, tile, node):
     # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
     # was appended after it, so the window is its first rows and columns
     image = frame.image(0)[:, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
-    return prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+    out = prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+    # image features do not depend on the region they are computed over: crop the tile's own
+    # (computed once for all the nodes of a cascade) instead of filtering again per node
+    share_features(frame, out.frame)
+    return out
 
 
 def out_of_fold_maps(models, tiles):

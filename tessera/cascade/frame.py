@@ -78,8 +78,9 @@ class _Frame:
     around the core, at level-l resolution (all offsets are multiples of 2^L).
     """
 
-    def __init__(self, spec, image, core_shape, halo, margin_table):
+    def __init__(self, spec, image, core_shape, halo, margin_table, *, extended=False):
         self.spec, self.halo = spec, halo
+        self.extended = extended  # the core was extended (mirrored) to multiples of 2^L
         self.core_shape = core_shape  # multiples of 2^L
         self.margins = margin_table
         image = np.asarray(image, dtype=np.float32)
@@ -103,6 +104,10 @@ class _Frame:
             slice(start, start + (w + 2 * margin) // f),
         )
 
+    def widest(self, level):
+        """The widest margin (level-0 px) any node of this frame reads at `level`."""
+        return max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
+
     def features(self, level, margin):
         """Image features of `level` over the core + `margin`; computed once per level.
 
@@ -110,7 +115,7 @@ class _Frame:
         that level, later calls crop; stages reuse the image features of the first.
         """
         if level not in self._features:
-            widest = max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
+            widest = self.widest(level)
             extra = feature_halo(self.spec, level)
             rows, cols = self.region(level, widest)
             # receptive_radius guarantees rows.start - extra >= 0: the window lies inside the frame
@@ -338,7 +343,36 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
     extra = [p - c for p, c in zip(padded_core, core_shape, strict=True)]
     if any(extra):
         image = np.pad(image, [(0, 0)] + [(0, e) for e in extra], mode="symmetric")
-    return _Frame(spec, image, padded_core, halo, margins(spec, final, output_sigma=output_sigma))
+    return _Frame(
+        spec,
+        image,
+        padded_core,
+        halo,
+        margins(spec, final, output_sigma=output_sigma),
+        extended=any(extra),
+    )
+
+
+def share_features(source, target):
+    """Give `target` the image features of `source` (a frame of the same core and image with a
+    wider halo) at every level both use, cropped: nothing is filtered again.
+
+    The features of a pixel are the same numbers over any region that holds their halo (fixed
+    order filters, then per-pixel arithmetic), so the crop equals computing them afresh. That
+    holds when `target`'s image is the crop of `source`'s; a core extended to multiples of
+    2^L mirrors each frame's own halo end, so frames whose core was extended are left alone.
+    Returns the levels shared.
+    """
+    shared = []
+    if source.core_shape != target.core_shape or source.extended or target.extended:
+        return shared
+    for level in sorted({lv for _, lv in target.margins}):
+        widest = max(m for (_, lv), m in target.margins.items() if lv == level)
+        if level in target._features or widest > source.widest(level):
+            continue
+        target._features[level] = (source.features(level, widest), widest)
+        shared.append(level)
+    return shared
 
 
 def ensure_maps(frame, node, models, fold):
