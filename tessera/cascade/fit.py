@@ -13,7 +13,14 @@ import numpy as np
 from tessera import __version__
 from tessera.block_reduce import block_mean
 from tessera.cascade.classifiers import make_classifier
-from tessera.cascade.frame import ensure_maps, make_frame, node_feature_names, node_matrix
+from tessera.cascade.frame import (
+    ensure_maps,
+    make_frame,
+    node_feature_names,
+    node_map,
+    node_rows,
+    share_features,
+)
 from tessera.cascade.geometry import receptive_radius, z_halo
 from tessera.cascade.spec import ancestors, node_settings, nodes
 from tessera.cascade.store import MODEL_FORMAT, NodeModel
@@ -107,8 +114,7 @@ def _training_rows(spec, node, tiles, upstream):
         )
         if pick.size == 0:
             continue
-        x = node_matrix(frame, node, 0)
-        rows.append(x.reshape(-1, x.shape[-1])[pick])
+        rows.append(node_rows(frame, node, 0, pick))
         ys.append(labels.ravel()[pick])
         groups.append(np.full(pick.size, tile.fold))
     X = np.concatenate(rows)
@@ -228,7 +234,11 @@ def node_tile(spec, tile, node):
     # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
     # was appended after it, so the window is its first rows and columns
     image = frame.stack[sections, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
-    return prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+    out = prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+    # image features do not depend on the region they are computed over: crop the tile's own
+    # (computed once for all the nodes of a cascade) instead of filtering again per node
+    share_features(frame, out.frame)
+    return out
 
 
 def out_of_fold_maps(models, tiles):
@@ -238,12 +248,7 @@ def out_of_fold_maps(models, tiles):
     out = {}
     for tile in tiles:
         ensure_maps(tile.frame, final, models, tile.fold)
-        x = node_matrix(tile.frame, final, 0)
-        prob = (
-            models[final]
-            .for_tile(tile.fold)
-            .predict(x.reshape(-1, x.shape[-1]))
-            .reshape(x.shape[:2])
-        )
+        # banded (:func:`node_map`): the same numbers as predicting the whole feature matrix
+        prob = node_map(tile.frame, final, 0, models[final].for_tile(tile.fold))
         out[tile.tile_id] = prob[: tile.labels.shape[0], : tile.labels.shape[1]]
     return out

@@ -110,6 +110,10 @@ class _Section:
             slice(start, start + (w + 2 * margin) // f),
         )
 
+    def widest(self, level):
+        """The widest margin (level-0 px) any node of this frame reads at `level`."""
+        return max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
+
     def features(self, level, margin):
         """Image features of `level` over the core + `margin`; computed once per level.
 
@@ -117,7 +121,7 @@ class _Section:
         that level, later calls crop; stages reuse the image features of the first.
         """
         if level not in self._features:
-            widest = max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
+            widest = self.widest(level)
             extra = feature_halo(self.spec, level)
             rows, cols = self.region(level, widest)
             # receptive_radius guarantees rows.start - extra >= 0: the window lies inside the frame
@@ -146,8 +150,9 @@ class _Frame:
     first use from the sections d - neighbours .. d + neighbours around it.
     """
 
-    def __init__(self, spec, image, core_shape, halo, margin_table, final):
+    def __init__(self, spec, image, core_shape, halo, margin_table, final, *, extended=False):
         self.spec, self.halo = spec, halo
+        self.extended = extended  # the core was extended (mirrored) to multiples of 2^L
         self.core_shape = core_shape
         self.margins = margin_table
         self.final = final or (spec.stages, 0)
@@ -243,6 +248,36 @@ def node_matrix(frame, node, margin, offset=0):
     channel = 0
     for source in sources:
         out[..., channel : channel + source.shape[2]] = source
+        channel += source.shape[2]
+    return out
+
+
+def node_rows(frame, node, margin, pick, offset=0):
+    """Rows `pick` (indices into the flattened (H, W) grid) of :func:`node_matrix`, and only them.
+
+    Training samples a few thousand pixels of each tile; gathering just those rows from the
+    feature and context arrays gives the same numbers (plain copies) without building the whole
+    (H, W, C) matrix.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> halo = receptive_radius(spec)
+    >>> image = np.random.default_rng(0).random((16 + 2 * halo,) * 2)
+    >>> frame = make_frame(spec, image, (16, 16))
+    >>> full = node_matrix(frame, (1, 0), 0)
+    >>> rows = node_rows(frame, (1, 0), 0, [0, 17, 255])
+    >>> np.array_equal(rows, full.reshape(256, -1)[[0, 17, 255]])
+    True
+    """
+    sources = _row_sources(frame, node, margin, offset)
+    w = sources[0].shape[1]
+    iy, ix = np.divmod(np.asarray(pick, dtype=np.intp), w)
+    out = np.empty((iy.size, sum(s.shape[2] for s in sources)), dtype=np.float32)
+    channel = 0
+    for source in sources:
+        out[:, channel : channel + source.shape[2]] = source[iy, ix]
         channel += source.shape[2]
     return out
 
@@ -360,8 +395,42 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
     if any(extra):
         image = np.pad(image, [(0, 0)] + [(0, e) for e in extra], mode="symmetric")
     return _Frame(
-        spec, image, padded_core, halo, margins(spec, final, output_sigma=output_sigma), final
+        spec,
+        image,
+        padded_core,
+        halo,
+        margins(spec, final, output_sigma=output_sigma),
+        final,
+        extended=any(extra),
     )
+
+
+def share_features(source, target):
+    """Give every section of `target` (a frame of the same core and image with a narrower halo,
+    in plane and in z) the image features of the same section of `source`, cropped, at every
+    level both use: nothing is filtered again.
+
+    The features of a pixel are the same numbers over any region that holds their halo (fixed
+    order filters, then per-pixel arithmetic), so the crop equals computing them afresh. That
+    holds when `target`'s image is the crop of `source`'s; a core extended to multiples of
+    2^L mirrors each frame's own halo end, so frames whose core was extended are left alone.
+    Returns the (section offset, level) pairs shared.
+    """
+    shared = []
+    if source.core_shape != target.core_shape or source.extended or target.extended:
+        return shared
+    reach = target.z_halo - target.spec.neighbours
+    if reach > source.z_halo - source.spec.neighbours:
+        return shared
+    for offset in range(-reach, reach + 1):
+        into, out_of = target.section(offset), source.section(offset)
+        for level in sorted({lv for _, lv in target.margins}):
+            widest = into.widest(level)
+            if level in into._features or widest > out_of.widest(level):
+                continue
+            into._features[level] = (out_of.features(level, widest), widest)
+            shared.append((offset, level))
+    return shared
 
 
 def adopt_sections(frame, previous):
