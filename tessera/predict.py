@@ -21,6 +21,7 @@ from tessera.cascade.api import (
     mirrored_stack,
     predict_frames,
     receptive_radius,
+    volume_room,
     z_halo,
 )
 from tessera.errors import TesseraInputError
@@ -127,20 +128,28 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
 
 
 def halo_overhead(plan):
-    """Pixels of the windows the plan's blocks are read with, per pixel of the volume.
+    """Pixels each section of the plan's blocks is classified over, per pixel of the volume.
 
-    Every section of a block is read with the halo on each side in y and x; this is the cost
-    of exact block-wise prediction (the receptive field), paid once per block and section.
+    A block classifies its core and the part of its halo inside the volume (beyond the volume
+    the maps are mirrored, not computed): the cost of exact block-wise prediction, paid once
+    per block and section. A volume in one block pays none.
 
     Examples
     --------
-    >>> halo_overhead({"shape": [1, 100, 100], "halo": 50, "blocks": [[0, 1, 0, 100, 0, 100]]})
-    4.0
+    >>> plan = {"shape": [1, 100, 100], "halo": 50, "align": 4}
+    >>> halo_overhead({**plan, "blocks": [[0, 1, 0, 100, 0, 100]]})
+    1.0
+    >>> halo_overhead({**plan, "blocks": [[0, 1, 0, 52, 0, 100], [0, 1, 52, 100, 0, 100]]})
+    1.98
     """
-    window = sum(
-        (z1 - z0) * (y1 - y0 + 2 * plan["halo"]) * (x1 - x0 + 2 * plan["halo"])
-        for z0, z1, y0, y1, x0, x1 in plan["blocks"]
-    )
+    align, halo = plan["align"], plan["halo"]
+    ny, nx = (-(-n // align) * align for n in plan["shape"][1:])
+    window = 0
+    for z0, z1, y0, y1, x0, x1 in plan["blocks"]:
+        cy, cx = (-(-(b - a) // align) * align for a, b in ((y0, y1), (x0, x1)))
+        rows = min(halo, y0) + cy + min(halo, ny - y0 - cy)
+        cols = min(halo, x0) + cx + min(halo, nx - x0 - cx)
+        window += (z1 - z0) * rows * cols
     return window / float(np.prod(plan["shape"]))
 
 
@@ -183,7 +192,8 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
         for z in range(z0, z1)
     )
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
-    maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma)
+    room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
+    maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)
     for k, prob in enumerate(maps):
         out[k] = prob
     return out

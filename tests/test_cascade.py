@@ -21,6 +21,7 @@ from tessera.cascade.frame import (
     mirrored_window,
     node_map,
     node_matrix,
+    volume_room,
 )
 from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius, z_halo
 from tessera.cascade.predict import predict_frame, predict_section
@@ -163,22 +164,30 @@ def test_cascade_learns_and_beats_the_first_stage_alone(trained, ring_cascade):
 
 def test_block_prediction_equals_whole_image(trained):
     # The core of a block read with the receptive-radius halo equals the whole-image prediction
-    # (block origins on multiples of 2^L), whatever the block size.
+    # (block origins on multiples of 2^L), whatever the block size: with the room each block
+    # has in the image (maps mirrored beyond the image's edges), and without (every halo
+    # classified on the mirrored image, the whole image then read with a halo too).
     spec, _, models = trained
     image, _ = blobs(101, shape=(80, 72))
     whole = predict_section(models, image)
     halo = receptive_radius(spec)
     volume = image[np.newaxis]
+    window = mirrored_window(volume, 0, -halo, 80 + halo, -halo, 72 + halo)
+    whole_mirrored = predict_frame(models, window, (80, 72))
     for block in (16, 40):
-        stitched = np.zeros_like(whole)
+        stitched, stitched_mirrored = np.zeros_like(whole), np.zeros_like(whole)
         for y0 in range(0, 80, block):
             for x0 in range(0, 72, block):
                 h, w = min(block, 80 - y0), min(block, 72 - x0)
                 window = mirrored_window(
                     volume, 0, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
                 )
-                stitched[y0 : y0 + h, x0 : x0 + w] = predict_frame(models, window, (h, w))
+                room = volume_room(spec, (80, 72), (y0, y0 + h, x0, x0 + w))
+                core = (slice(y0, y0 + h), slice(x0, x0 + w))
+                stitched[core] = predict_frame(models, window, (h, w), room=room)
+                stitched_mirrored[core] = predict_frame(models, window, (h, w))
         np.testing.assert_allclose(stitched, whole, atol=1e-6)
+        np.testing.assert_allclose(stitched_mirrored, whole_mirrored, atol=1e-6)
 
 
 def test_banded_node_maps_are_bit_identical_to_the_whole_feature_matrix(trained):

@@ -263,14 +263,15 @@ def test_config_refuses_low_above_high(repo):
         load_config(config, repo / "config" / "schemas" / "config.schema.yaml")
 
 
-def probability_inputs(tmp_path, p):
-    """A stitched probability map (uint8, two levels, checksummed), QC table and scores."""
+def probability_inputs(tmp_path, p, origin=None):
+    """A stitched probability map (uint8, two levels, checksummed, level 0 at `origin` nm),
+    QC table and scores."""
     image = tmp_path / "probability.ome.zarr"
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
     factors = [(1, 1, 1), (1, 2, 2)]
     group.attrs.update(
         {
-            "ome": multiscale_attrs(name="p", spacing=SPACING, factors=factors),
+            "ome": multiscale_attrs(name="p", spacing=SPACING, factors=factors, origin=origin),
             "tessera": {"probability": {"scale": 255.0, "z_factor": 1}},
         }
     )
@@ -290,7 +291,8 @@ def probability_inputs(tmp_path, p):
 
 def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     p = smooth_field(5, shape=(6, 40, 48))
-    image, qc, scores, stored = probability_inputs(tmp_path, p)
+    origin = [0.0, 5.0, 5.0]  # a map of a 2x working level of 10 nm pixels
+    image, qc, scores, stored = probability_inputs(tmp_path, p, origin=origin)
     settings = dict(
         high=None,
         low=None,
@@ -324,6 +326,10 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     np.testing.assert_array_equal(labels, filled)
     assert n == labels.max()
     np.testing.assert_array_equal(root["labels/mito/1"][:], labels[:, ::2, ::2])
+    # NGFF places voxel i at scale * i + translation: label level k holds level-0 voxel f * i,
+    # so every label level sits at the image's level-0 origin, over the voxels it labels
+    for dataset in root["labels/mito"].attrs["ome"]["multiscales"][0]["datasets"]:
+        assert dataset["coordinateTransformations"][1]["translation"] == origin
     table = pd.read_csv(tmp_path / "objects.tsv", sep="\t")
     assert len(table) == n
     used = json.loads((tmp_path / "objects.json").read_text())

@@ -88,8 +88,11 @@ def make_study(root, spec):
     volume = np.stack([blobs(10 + z, (70, 90))[0] for z in range(5)])
     image = root / "raw.ome.zarr"
     group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
-    group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=[(1, 1, 1)])
+    factors = [(1, 1, 1), (1, 2, 2)]
+    group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(40, 8, 8), factors=factors)
     group.create_array(name="0", data=volume, chunks=(1, 32, 32), dimension_names=AXES)
+    half = volume.reshape(5, 35, 2, 45, 2).mean(axis=(2, 4)).astype(np.uint8)
+    group.create_array(name="1", data=half, chunks=(1, 32, 32), dimension_names=AXES)
     record_checksums(image)  # as ingest does: readers refuse stores without records
     return {
         "root": root,
@@ -123,7 +126,9 @@ def whole_volume(study, output_sigma=0.0):
     )
 
 
-def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0):
+def run(
+    study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0, downsample=1
+):
     out = study["root"] / name
     plan = out / "plan.json"
     shard_plan_job(
@@ -131,7 +136,7 @@ def run(study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sig
         study["paths"],
         plan,
         target="blobs",
-        downsample=1,
+        downsample=downsample,
         block=block,
         shard_jobs=jobs,
         max_halo=max_halo,
@@ -170,8 +175,9 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
 )
 def test_blocks_are_sized_to_the_volume(shape, block, jobs):
     # Geometry facts: a block of at most b px cannot cover n px in fewer than ceil(n / b)
-    # blocks; each block is read with the halo on both sides, so the windows cover
-    # (y + 2 halo)(x + 2 halo) px per section, counted here block by block.
+    # blocks; each block classifies its core (extended to the align grid) and the halo on
+    # both sides as far as it lies inside the volume (extended likewise), counted here block by
+    # block by clipping the window's corners to the volume.
     halo, align = 40, 8
     plan = plan_shards(shape, block=block, halo=halo, align=align, jobs=jobs)
     most = [block[0]] + [-(-b // align) * align for b in block[1:]]
@@ -183,7 +189,11 @@ def test_blocks_are_sized_to_the_volume(shape, block, jobs):
         assert z1 - z0 <= most[0] and y1 - y0 <= most[1] and x1 - x0 <= most[2]
         ys.add((y0, y1))
         xs.add((x0, x1))
-        window += (z1 - z0) * (y1 - y0 + 2 * halo) * (x1 - x0 + 2 * halo)
+        ends = [-(-n // align) * align for n in shape[1:]]
+        y_end, x_end = y0 + -(-(y1 - y0) // align) * align, x0 + -(-(x1 - x0) // align) * align
+        rows = np.clip([y0 - halo, y_end + halo], 0, ends[0])
+        cols = np.clip([x0 - halo, x_end + halo], 0, ends[1])
+        window += (z1 - z0) * np.diff(rows)[0] * np.diff(cols)[0]
     assert (cover == 1).all()
     assert plan["block"][1] <= shape[1] and plan["block"][2] <= shape[2]  # never above the volume
     assert len(ys) == -(-shape[1] // most[1]) and len(xs) == -(-shape[2] // most[2])
@@ -267,6 +277,32 @@ def test_uint8_map_is_byte_identical_and_valid_ngff(study):
     assert info["extra"]["probability"]["scale"] == 255.0
     assert [a.shape for a in info["levels"]] == [(5, 70, 90), (5, 35, 45)]
     Image.from_zarr(group)  # NGFF 0.5 reference implementation (ome-zarr-models)
+
+
+def test_a_map_of_a_reduced_level_overlays_the_raw_image(study):
+    # NGFF places voxel i of a level at scale * i + translation (its centre). A voxel of the
+    # 2x level averages raw voxels 2i and 2i + 1 in y and x, centred at (2i + 0.5) * 8 nm: the
+    # map of that level must say so (translation 4 nm in y and x, none in z), as the raw
+    # pyramid's own 2x level does, and its coarser viewing level shifts by half of its voxels
+    # more. Reference: the NGFF 0.5 specification's coordinate transformations (from memory)
+    # and its reference models (ome-zarr-models).
+    out = run(study, "half", block=(5, 64, 64), jobs=1, downsample=2)
+    group = zarr.open_group(store=str(out / "probability.ome.zarr"), mode="r")
+    Image.from_zarr(group)
+    datasets = group.attrs["ome"]["multiscales"][0]["datasets"]
+    raw = zarr.open_group(store=str(study["image"]), mode="r").attrs["ome"]
+    assert (
+        datasets[0]["coordinateTransformations"]
+        == (raw["multiscales"][0]["datasets"][1]["coordinateTransformations"])
+    )
+    level0, level1 = (d["coordinateTransformations"] for d in datasets)
+    assert level0 == [
+        {"type": "scale", "scale": [40.0, 16.0, 16.0]},
+        {"type": "translation", "translation": [0.0, 4.0, 4.0]},
+    ]
+    # level 1 averages level-0 voxels 2i and 2i + 1 (16 nm apart): its first centre is 8 nm on
+    assert level1[1]["translation"] == [0.0, 12.0, 12.0]
+    assert open_image(out / "probability.ome.zarr")[1]["levels"][0].shape == (5, 35, 45)
 
 
 def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study, tmp_path):
@@ -353,13 +389,15 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, s
     # tracemalloc (Python standard library) traces every buffer numpy allocates, so its peak is
     # what predicting one section of a block really takes; the estimate must cover it without
     # overstating it by more than half. With cross-section context a frame holds the maps and
-    # features of three sections.
+    # features of three sections. The block lies a whole halo inside the volume: the worst
+    # case the estimate is for (a block at an edge classifies less of its halo).
     study = request.getfixturevalue(fixture)
     rng = np.random.default_rng(side)
-    volume = rng.integers(0, 256, (3, side, side), dtype=np.uint8)
+    halo = receptive_radius(study["spec"])
+    volume = rng.integers(0, 256, (3, side + 2 * halo, side + 2 * halo), dtype=np.uint8)
     tracemalloc.start()
     try:
-        predict.predict_block(study["models"], volume, (1, 2, 0, side, 0, side))
+        predict.predict_block(study["models"], volume, (1, 2, halo, halo + side, halo, halo + side))
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()

@@ -22,6 +22,7 @@ from tessera.cascade.fit import (
 )
 from tessera.cascade.frame import ensure_maps, make_frame, node_matrix, node_rows, share_features
 from tessera.cascade.geometry import receptive_radius
+from tessera.cascade.geometry import z_halo as tile_z_halo
 from tessera.cascade.spec import CascadeSpec, nodes
 
 SPEC = CascadeSpec(
@@ -64,7 +65,7 @@ def test_sampled_rows_equal_rows_of_the_whole_feature_matrix(cascade):
     # with its context maps (stage 2 reads stage 1) and picks at the grid's corners and edges.
     tiles, models = cascade
     tile = tiles[1]
-    frame = make_frame(SPEC, tile.frame.image(0), tile.labels.shape)
+    frame = make_frame(SPEC, tile.frame.stack, tile.labels.shape)
     ensure_maps(frame, (SPEC.stages, 0), models, tile.fold)
     rng = np.random.default_rng(0)
     for node in nodes(SPEC):
@@ -124,7 +125,7 @@ def test_out_of_fold_maps_equal_the_fold_models_on_the_whole_matrix(cascade):
     final = (SPEC.stages, 0)
     oof = out_of_fold_maps(models, tiles)
     for tile in tiles:
-        frame = make_frame(SPEC, tile.frame.image(0), tile.labels.shape)
+        frame = make_frame(SPEC, tile.frame.stack, tile.labels.shape)
         ensure_maps(frame, final, models, tile.fold)
         x = node_matrix(frame, final, 0)
         clf = models[final].for_tile(tile.fold)
@@ -134,26 +135,49 @@ def test_out_of_fold_maps_equal_the_fold_models_on_the_whole_matrix(cascade):
         np.testing.assert_array_equal(oof[tile.tile_id], whole[:h, :w])
 
 
-@pytest.mark.parametrize("size", [(52, 60), (51, 60)])
-def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(size):
+def _stack_tiles(spec, size, sections):
+    """One tile of a disc drifting through `sections` sections (the frame's z halo)."""
+    radius = receptive_radius(spec)
+    rng = np.random.default_rng(3)
+    yy, xx = np.mgrid[: size[0] + 2 * radius, : size[1] + 2 * radius] - radius
+    truth = np.stack([(yy - 20 - k) ** 2 + (xx - 25) ** 2 < 12**2 for k in range(sections)])
+    image = 150 - 60 * truth + rng.normal(0, 12, truth.shape)
+    centre = sections // 2
+    labels = truth[centre, radius:-radius, radius:-radius].astype(np.uint8)
+    return prepare_tile(spec, "t0", image, labels, fold=0)
+
+
+@pytest.mark.parametrize(("size", "context"), [((52, 60), 0), ((51, 60), 0), ((52, 60), 1)])
+def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(size, context):
     # Reference: the filter bank (scipy.ndimage Gaussian filters and numpy arithmetic) run on
     # each node's own frame, as a job training that node alone runs it. node_tile hands the
-    # node the crop of the tile's features instead; they must be equal to the last bit. A core
+    # node the crop of the tile's features instead; they must be equal to the last bit, on
+    # every section the node reads (cross-section context reads the sections around). A core
     # of odd size (extended by mirroring to the level grid) is not shared and still equal.
-    spec = CascadeSpec(**{**SPEC.to_dict(), "levels": 2, "stencil_radii": [1, 2]})
-    tile = _tiles(spec, count=1, size=size)[0]
+    spec = CascadeSpec(
+        **{**SPEC.to_dict(), "levels": 2, "stencil_radii": [1, 2], "context_sections": context}
+    )
+    tile = _stack_tiles(spec, size, 2 * tile_z_halo(spec) + 1)
     for node in nodes(spec):
         cut = node_tile(spec, tile, node)
         halo = receptive_radius(spec, node)
         c = tile.frame.halo - halo
-        window = tile.frame.image(0)[:, c : c + size[0] + 2 * halo, c : c + size[1] + 2 * halo]
+        zc = tile.frame.z_halo - cut.frame.z_halo
+        window = tile.frame.stack[
+            zc : tile.frame.stack.shape[0] - zc,
+            c : c + size[0] + 2 * halo,
+            c : c + size[1] + 2 * halo,
+        ]
         fresh = make_frame(spec, window, size, final=node)
         assert fresh.halo == cut.frame.halo <= tile.frame.halo
-        for level in sorted({lv for _, lv in fresh.margins}):
-            widest = fresh.widest(level)
-            shared = level in cut.frame._features
-            assert shared == (size[0] % 4 == 0)
-            np.testing.assert_array_equal(
-                cut.frame.features(level, widest), fresh.features(level, widest)
-            )
+        reach = fresh.z_halo - spec.neighbours
+        for offset in range(-reach, reach + 1):
+            mine, theirs = cut.frame.section(offset), fresh.section(offset)
+            for level in sorted({lv for _, lv in fresh.margins}):
+                widest = theirs.widest(level)
+                shared = level in mine._features
+                assert shared == (size[0] % 4 == 0)
+                np.testing.assert_array_equal(
+                    mine.features(level, widest), theirs.features(level, widest)
+                )
     assert share_features(tile.frame, cut.frame) == []  # nothing left to share

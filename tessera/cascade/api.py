@@ -7,7 +7,12 @@ can be rearranged without touching them.
 """
 
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
-from tessera.cascade.frame import mirrored_stack, mirrored_window, node_feature_names
+from tessera.cascade.frame import (
+    mirrored_stack,
+    mirrored_window,
+    node_feature_names,
+    volume_room,
+)
 from tessera.cascade.geometry import receptive_radius, z_halo
 from tessera.cascade.predict import (
     cascade_spec,
@@ -48,5 +53,6 @@ __all__ = [
     "save_node",
     "spec_from_settings",
     "train_node",
+    "volume_room",
     "z_halo",
 ]

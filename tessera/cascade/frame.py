@@ -85,10 +85,11 @@ class _Section:
     around the core, at level-l resolution (all offsets are multiples of 2^L).
     """
 
-    def __init__(self, spec, image, core_shape, halo, margin_table):
+    def __init__(self, spec, image, core_shape, halo, margin_table, room):
         self.spec, self.halo = spec, halo
         self.core_shape = core_shape  # multiples of 2^L
         self.margins = margin_table
+        self.room = room  # level-0 px of the volume beyond the core: top, bottom, left, right
         image = np.asarray(image, dtype=np.float32)
         # (2k + 1, H, W): the section and k neighbours on each side; the centre is index k
         self._levels = {0: image if image.ndim == 3 else image[np.newaxis]}
@@ -100,14 +101,20 @@ class _Section:
             self._levels[level] = block_mean(self._levels[0], (1, 2**level, 2**level))
         return self._levels[level]
 
+    def clip(self, margin):
+        """The part of `margin` (level-0 px) on each side (top, bottom, left, right) that lies
+        inside the volume: only there are features and maps computed."""
+        return tuple(min(margin, r) for r in self.room)
+
     def region(self, level, margin):
-        """Slice of a level-l array covering the core plus `margin` (level-0 px) of a frame-sized map."""
+        """Slices of a level-l frame-sized array covering the core plus `margin` (level-0 px),
+        clipped to the volume (:meth:`clip`)."""
         f = 2**level
-        start = (self.halo - margin) // f
+        top, bottom, left, right = self.clip(margin)
         h, w = self.core_shape
         return (
-            slice(start, start + (h + 2 * margin) // f),
-            slice(start, start + (w + 2 * margin) // f),
+            slice((self.halo - top) // f, (self.halo + h + bottom) // f),
+            slice((self.halo - left) // f, (self.halo + w + right) // f),
         )
 
     def widest(self, level):
@@ -115,7 +122,8 @@ class _Section:
         return max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
 
     def features(self, level, margin):
-        """Image features of `level` over the core + `margin`; computed once per level.
+        """Image features of `level` over the core + `margin` (clipped to the volume); computed
+        once per level.
 
         The first call computes them over the widest region any node of this frame reads at
         that level, later calls crop; stages reuse the image features of the first.
@@ -139,8 +147,13 @@ class _Section:
             feats = np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
             self._features[level] = (feats[extra:-extra, extra:-extra], widest)
         feats, widest = self._features[level]
-        trim = (widest - margin) // (2**level)
-        return feats[trim : feats.shape[0] - trim, trim : feats.shape[1] - trim] if trim else feats
+        if widest == margin:
+            return feats
+        f = 2**level
+        top, bottom, left, right = (
+            (w - m) // f for w, m in zip(self.clip(widest), self.clip(margin), strict=True)
+        )
+        return feats[top : feats.shape[0] - bottom, left : feats.shape[1] - right]
 
 
 class _Frame:
@@ -150,9 +163,12 @@ class _Frame:
     first use from the sections d - neighbours .. d + neighbours around it.
     """
 
-    def __init__(self, spec, image, core_shape, halo, margin_table, final, *, extended=False):
+    def __init__(
+        self, spec, image, core_shape, halo, margin_table, final, *, extended=False, room=None
+    ):
         self.spec, self.halo = spec, halo
         self.extended = extended  # the core was extended (mirrored) to multiples of 2^L
+        self.room = room or (halo,) * 4
         self.core_shape = core_shape
         self.margins = margin_table
         self.final = final or (spec.stages, 0)
@@ -168,7 +184,7 @@ class _Frame:
             # a view (slices along z of a C-contiguous stack are contiguous)
             stack = np.ascontiguousarray(self.stack[centre - n : centre + n + 1])
             self._sections[offset] = _Section(
-                self.spec, stack, self.core_shape, self.halo, self.margins
+                self.spec, stack, self.core_shape, self.halo, self.margins, self.room
             )
         return self._sections[offset]
 
@@ -184,8 +200,9 @@ class _Frame:
         """Every input map of `consumer` at the consumer's level, with its stencil's offset scale.
 
         The maps of the consumer's own section (offset `offset`), then, from stage 2 on, the
-        previous stage's final map of each section in ``context_offsets`` around it. Each map covers the consumer's core + margin plus the stencil's reach (level-l pixels
-        `cut` on each side). A finer map is pooled down; a coarser one is repeated up (nearest)
+        previous stage's final map of each section in ``context_offsets`` around it. Each map
+        covers the consumer's core + margin (clipped to the volume, :meth:`_Section.clip`) plus
+        the stencil's reach (level-l pixels `cut` on each side). A finer map is pooled down; a coarser one is repeated up (nearest)
         and its stencil offsets are scaled by the factor, which equals reading the stencil at the
         coarse level and upsampling the samples.
         """
@@ -194,12 +211,13 @@ class _Frame:
         out = []
         reads = [(producer, offset) for producer in node_inputs(spec, *consumer)]
         reads += [((consumer[0] - 1, 0), offset + d) for d in context_offsets(spec, consumer[0])]
+        clipped = self.section(offset).clip(margin)
         for producer, at in reads:
             prob, p_margin = self.section(at).maps[producer]
             p_level = producer[1]
             reach = read_reach(spec, level, p_level)
-            trim = (p_margin - (margin + reach)) // (2**p_level)
-            src = prob[trim : prob.shape[0] - trim, trim : prob.shape[1] - trim] if trim else prob
+            top, bottom, left, right = ((p_margin - (c + reach)) // (2**p_level) for c in clipped)
+            src = prob[top : prob.shape[0] - bottom, left : prob.shape[1] - right]
             if p_level <= level:
                 out.append(
                     (_pool(src, 2 ** (level - p_level), spec.pooling), 1, reach // (2**level))
@@ -336,13 +354,42 @@ def _fill_rows(x, sources, start, stop):
         column += source.shape[2]
 
 
+def _reflect_index(start, stop, n):
+    """Indices start..stop-1 reflected into 0..n-1 (half-sample symmetric, repeated)."""
+    idx = np.arange(start, stop) % (2 * n)
+    return np.where(idx < n, idx, 2 * n - 1 - idx)
+
+
+def mirror_beyond_volume(prob, pads):
+    """`prob` padded by `pads` = (top, bottom, left, right) pixels, mirrored (half-sample
+    symmetric, repeated as often as needed).
+
+    A frame computes maps only inside the volume; where its margin reaches beyond a volume
+    edge, the map there is the mirror of the map inside, the edge lying at the computed
+    region's own edge (on a side without a volume edge, the pad is 0).
+
+    Examples
+    --------
+    >>> mirror_beyond_volume(np.array([[1.0, 2.0]]), (0, 0, 3, 1)).tolist()
+    [[2.0, 2.0, 1.0, 1.0, 2.0, 2.0]]
+    """
+    top, bottom, left, right = pads
+    if not any(pads):
+        return prob
+    h, w = prob.shape
+    rows = _reflect_index(-top, h + bottom, h)
+    cols = _reflect_index(-left, w + right, w)
+    return prob[np.ix_(rows, cols)]
+
+
 def node_map(frame, node, margin, classifier, offset=0):
     """(H, W) float32 output of `classifier` on `node`'s features over the core + margin (of
     section `offset`).
 
     The same numbers as ``classifier.predict`` on the whole :func:`node_matrix`, computed band
     by band (:func:`_bands`) in one reused buffer: the full matrix (tens of bytes per feature
-    and pixel) is never made.
+    and pixel) is never made. Only the part inside the volume is classified; the map beyond
+    a volume edge is its mirror (:func:`mirror_beyond_volume`).
     """
     sources = _row_sources(frame, node, margin, offset)
     h, w, _ = sources[0].shape
@@ -354,7 +401,9 @@ def node_map(frame, node, margin, classifier, offset=0):
         x = buffer[: stop - start]
         _fill_rows(x, sources, start, stop)
         out[start:stop] = classifier.predict(x)
-    return out.reshape(h, w)
+    f = 2 ** node[1]
+    pads = tuple((margin - c) // f for c in frame.section(offset).clip(margin))
+    return mirror_beyond_volume(out.reshape(h, w), pads)
 
 
 def node_feature_names(spec, stage, level):
@@ -374,10 +423,39 @@ def node_feature_names(spec, stage, level):
     return names
 
 
-def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
+def volume_room(spec, shape, box):
+    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right).
+
+    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core, its origin on
+    the 2^L grid. The volume counts as extended to multiples of 2^L, as a core at its far end
+    is, so every value is a multiple of 2^L.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> volume_room(CascadeSpec(levels=2), (10, 16), (0, 10, 4, 8))
+    (0, 0, 4, 8)
+    """
+    y0, y1, x0, x1 = (int(v) for v in box)
+    ny, nx = padded_core_shape(spec, shape)
+    if y0 % spec.align or x0 % spec.align:
+        raise TesseraInputError(f"a core's origin must lie on the {spec.align} px grid, got {box}")
+    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
+    room = (y0, ny - y0 - cy, x0, nx - x0 - cx)
+    if min(room) < 0:
+        raise TesseraInputError(f"core {box} lies beyond a volume of {tuple(shape)}")
+    return room
+
+
+def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0, room=None):
     """A frame for a core of `core_shape` whose `image` carries the halo of ``receptive_radius``.
 
     The core is extended by mirroring to multiples of 2^L (labels there are ignored).
+
+    `room` (:func:`volume_room`) says where the volume ends: maps are then computed only
+    inside it and mirrored beyond it, so a core at the volume's edge does not classify its
+    halo. Without it (training tiles) every map covers the whole margin, computed on the
+    mirrored image.
     """
     halo = receptive_radius(spec, final, output_sigma=output_sigma)
     zh = z_halo(spec, final)
@@ -402,6 +480,7 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0):
         margins(spec, final, output_sigma=output_sigma),
         final,
         extended=any(extra),
+        room=None if room is None else tuple(min(int(r), halo) for r in room),
     )
 
 
@@ -419,6 +498,8 @@ def share_features(source, target):
     shared = []
     if source.core_shape != target.core_shape or source.extended or target.extended:
         return shared
+    if source.room != (source.halo,) * 4 or target.room != (target.halo,) * 4:
+        return shared  # clipped to a volume: regions differ per frame
     reach = target.z_halo - target.spec.neighbours
     if reach > source.z_halo - source.spec.neighbours:
         return shared

@@ -45,7 +45,7 @@ def cascade_spec(models):
     return spec
 
 
-def predict_frame(models, image, core_shape, *, output_sigma=0.0):
+def predict_frame(models, image, core_shape, *, output_sigma=0.0, room=None):
     """Final probability (float32) of the core of one block (core + ``receptive_radius`` halo).
 
     This is the block-prediction function: read a block of the working level with a halo of
@@ -60,11 +60,16 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0):
         classification are mostly noise, and neighbouring pixels of an organelle agree; a light
         smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
         depend on it.
+    room : (int, int, int, int), optional
+        Where the volume ends around the core (:func:`tessera.cascade.frame.volume_room`): maps
+        are computed inside the volume only and mirrored beyond it, so a block at an edge (a
+        small volume in one block) does not classify its halo. Without it, the halo is
+        classified on the mirrored image.
     """
-    return next(predict_frames(models, [image], core_shape, output_sigma=output_sigma))
+    return next(predict_frames(models, [image], core_shape, output_sigma=output_sigma, room=room))
 
 
-def predict_frames(models, images, core_shape, *, output_sigma=0.0):
+def predict_frames(models, images, core_shape, *, output_sigma=0.0, room=None):
     """:func:`predict_frame` of consecutive sections of one core; yields each section's map.
 
     `images` yields the window of each section in turn (sections z, z + 1, ...). With
@@ -74,7 +79,7 @@ def predict_frames(models, images, core_shape, *, output_sigma=0.0):
     spec = cascade_spec(models)
     final, previous = (spec.stages, 0), None
     for image in images:
-        frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma)
+        frame = make_frame(spec, image, tuple(core_shape), output_sigma=output_sigma, room=room)
         if previous is not None:
             adopt_sections(frame, previous)
             previous = None  # what it does not share is freed before the maps are made
@@ -89,7 +94,7 @@ def predict_frames(models, images, core_shape, *, output_sigma=0.0):
 
 
 def predict_section(models, volume, z=None, *, output_sigma=0.0):
-    """Probability map of one whole section (mirrored edges), in one piece.
+    """Probability map of one whole section, in one piece (maps mirrored beyond its edges).
 
     `volume` is a 2D section, or a (Z, Y, X) array with `z` the section (needed when the
     cascade reads neighbouring sections: ``z_halo`` of them on each side, mirrored beyond the
@@ -102,7 +107,7 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
         volume, z = volume[np.newaxis], 0
     h, w = volume.shape[1:]
     image = mirrored_stack(volume, z, z_halo(spec), -halo, h + halo, -halo, w + halo)
-    return predict_frame(models, image, (h, w), output_sigma=output_sigma)
+    return predict_frame(models, image, (h, w), output_sigma=output_sigma, room=(0, 0, 0, 0))
 
 
 # Per-row working memory of a classifier on one band of rows beyond the rows themselves and

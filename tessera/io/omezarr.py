@@ -18,7 +18,24 @@ NGFF_VERSION = "0.5"
 AXES = ("z", "y", "x")
 
 
-def multiscale_attrs(*, name, spacing, factors):
+def level_origin(spacing, factors):
+    """Where the first voxel centre of a level made by averaging `factors` voxels lies, in nm
+    from the first voxel centre of the unreduced image (z, y, x).
+
+    `spacing` is the level's own voxel size. A working level of a pyramid is such a level: an
+    image computed on it (a probability map, objects) records this as its level 0's
+    translation, so that it overlays the raw pyramid in a viewer.
+
+    Examples
+    --------
+    >>> level_origin((40.0, 16.0, 16.0), (1, 2, 2))
+    [0.0, 4.0, 4.0]
+    """
+    spacing = normalize_spacing(spacing, 3)
+    return [s / k * (k - 1) / 2 for s, k in zip(spacing, factors, strict=True)]
+
+
+def multiscale_attrs(*, name, spacing, factors, origin=None):
     """Return the ``ome`` attribute dict of a z, y, x multiscale image.
 
     Parameters
@@ -29,6 +46,9 @@ def multiscale_attrs(*, name, spacing, factors):
         Level-0 voxel size in nm, ordered z, y, x.
     factors : sequence of sequence of 3 int
         Reduction factor of each level relative to level 0; the first must be (1, 1, 1).
+    origin : sequence of 3 float, optional
+        Translation (nm) of level 0, for an image on a reduced level of another
+        (:func:`level_origin`); every level is shifted by it.
 
     Returns
     -------
@@ -50,16 +70,13 @@ def multiscale_attrs(*, name, spacing, factors):
     spacing = normalize_spacing(spacing, 3)
     if tuple(factors[0]) != (1, 1, 1):
         raise TesseraInputError(f"the first level must be unreduced (1, 1, 1), got {factors[0]}")
+    origin = [0.0] * 3 if origin is None else [float(o) for o in origin]
     datasets = []
     for level, f in enumerate(factors):
         transforms = [{"type": "scale", "scale": [s * k for s, k in zip(spacing, f, strict=False)]}]
-        if level > 0:
-            transforms.append(
-                {
-                    "type": "translation",
-                    "translation": [s * (k - 1) / 2 for s, k in zip(spacing, f, strict=False)],
-                }
-            )
+        if level > 0 or any(origin):
+            shift = [o + s * (k - 1) / 2 for o, s, k in zip(origin, spacing, f, strict=False)]
+            transforms.append({"type": "translation", "translation": shift})
         datasets.append({"path": str(level), "coordinateTransformations": transforms})
     return {
         "version": NGFF_VERSION,
@@ -71,6 +88,23 @@ def multiscale_attrs(*, name, spacing, factors):
             }
         ],
     }
+
+
+def level_zero_origin(ome):
+    """The translation (nm, z y x) of level 0 in an image's ``ome`` attributes; zeros if none.
+
+    Examples
+    --------
+    >>> level_zero_origin(multiscale_attrs(name="a", spacing=(1, 2, 2), factors=[(1, 1, 1)]))
+    [0.0, 0.0, 0.0]
+    >>> attrs = multiscale_attrs(name="a", spacing=(1, 2, 2), factors=[(1, 1, 1)], origin=(0, 1, 1))
+    >>> level_zero_origin(attrs)
+    [0.0, 1.0, 1.0]
+    """
+    for transform in ome["multiscales"][0]["datasets"][0]["coordinateTransformations"]:
+        if transform["type"] == "translation":
+            return [float(t) for t in transform["translation"]]
+    return [0.0, 0.0, 0.0]
 
 
 def open_image(path, *, checksums="required"):

@@ -13,7 +13,7 @@ import zarr
 
 from tessera.io.atomic import atomic_path
 from tessera.io.links import link_tree
-from tessera.io.omezarr import AXES, multiscale_attrs
+from tessera.io.omezarr import AXES, level_zero_origin, multiscale_attrs
 from tessera.io.store_checksums import record_checksums, verified_bytes
 from tessera.objects.label import label_objects, subsample_labels
 from tessera.workflow.files.object_table import write_object_settings, write_object_table
@@ -22,9 +22,10 @@ from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.scores import validation_threshold
 
 
-def _label_levels(root, *, target, info, shape, used):
+def _label_levels(root, *, target, info, shape, used, origin):
     """Create ``labels/<target>`` in the objects store: NGFF image-label metadata, the settings
-    used, and one empty uint32 array per level of the image."""
+    used, and one empty uint32 array per level of the image (each at `origin`, the image's
+    level-0 translation)."""
     labels_group = root.create_group("labels")
     labels_group.attrs["ome"] = {"version": "0.5", "labels": [target]}
     image = labels_group.create_group(target)
@@ -35,6 +36,10 @@ def _label_levels(root, *, target, info, shape, used):
     )
     for dataset in ome["multiscales"][0]["datasets"]:
         dataset["coordinateTransformations"] = dataset["coordinateTransformations"][:1]
+        if any(origin):
+            dataset["coordinateTransformations"].append(
+                {"type": "translation", "translation": list(origin)}
+            )
     ome["image-label"] = {"version": "0.5", "source": {"image": "../../"}}
     image.attrs.update({"ome": ome, "tessera": {"objects": used}})
     levels = []
@@ -98,7 +103,14 @@ def objects_job(
                 link_tree(Path(probability) / name, tmp / name)
             (tmp / "zarr.json").write_bytes(verified_bytes(probability, "zarr.json"))
             root = zarr.open_group(store=str(tmp), mode="r+", zarr_format=3)
-            levels = _label_levels(root, target=target, info=info, shape=prob.shape, used=used)
+            levels = _label_levels(
+                root,
+                target=target,
+                info=info,
+                shape=prob.shape,
+                used=used,
+                origin=level_zero_origin(group.attrs["ome"]),
+            )
             table = label_objects(
                 prob,
                 levels[0],

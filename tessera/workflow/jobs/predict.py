@@ -22,7 +22,7 @@ from tessera.cascade.api import (
 from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.atomic import atomic_path
 from tessera.io.digests import file_sha256
-from tessera.io.omezarr import AXES, multiscale_attrs
+from tessera.io.omezarr import AXES, level_origin, multiscale_attrs
 from tessera.io.store_checksums import record_checksums
 from tessera.predict import (
     halo_overhead,
@@ -204,7 +204,10 @@ def stitch_job(plan_path, shard_dirs, out_path, *, viewing_levels=2, chunks=(1, 
         root.attrs.update(
             {
                 "ome": multiscale_attrs(
-                    name=f"{plan['target']} probability", spacing=plan["spacing"], factors=factors
+                    name=f"{plan['target']} probability",
+                    spacing=plan["spacing"],
+                    factors=factors,
+                    origin=level_origin(plan["spacing"], plan["factors"]),
                 ),
                 "tessera": probability_metadata(plan),
             }
