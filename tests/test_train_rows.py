@@ -181,3 +181,23 @@ def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(siz
                     mine.features(level, widest), theirs.features(level, widest)
                 )
     assert share_features(tile.frame, cut.frame) == []  # nothing left to share
+
+
+def test_a_node_trained_by_two_processes_equals_one_trained_by_one(cascade):
+    # Reference: the node's fold and full classifiers fitted one after another in this process;
+    # fitting them side by side in two worker processes must give the same weights to the last
+    # bit (every fit runs single-threaded either way), so a model does not depend on the cores
+    # that trained it.
+    tiles, models = cascade
+    node = (2, 0)
+    one = train_node(SPEC, *node, [node_tile(SPEC, t, node) for t in tiles], models, threads=1)
+    two = train_node(SPEC, *node, [node_tile(SPEC, t, node) for t in tiles], models, threads=2)
+    for a, b in zip(
+        [one.classifier, *one.fold_classifiers],
+        [two.classifier, *two.fold_classifiers],
+        strict=True,
+    ):
+        left, right = a.to_state()[0], b.to_state()[0]
+        assert left.keys() == right.keys()
+        for key in left:
+            np.testing.assert_array_equal(left[key], right[key], err_msg=key)

@@ -6,6 +6,8 @@ from over-confident context.
 """
 
 import hashlib
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -139,7 +141,8 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
     target : str
         Recorded in the metadata and checked when the model is loaded.
     threads : int
-        Passed to the classifiers.
+        Processes that fit the node's fold and full models side by side
+        (:func:`fit_classifiers`); the models do not depend on it.
 
     Returns
     -------
@@ -163,22 +166,16 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
             f"target {target}: training tiles hold only class {int(y[0])} at level {level}; annotate both target and background"
         )
 
-    def fit(mask):
-        seed = spec.seed + 7919 * stage + 104729 * level
-        clf = make_classifier(
-            spec.classifier, seed=seed, threads=threads, **spec.classifier_options
-        )
-        return clf.fit(X[mask], y[mask], sample_weight=_balanced_weights(y[mask]))
-
-    folds = []
     for k in range(spec.folds):
-        held = g == k
-        if np.unique(y[~held]).size < 2:
+        if np.unique(y[g != k]).size < 2:
             raise TesseraInputError(
                 f"target {target}: without fold {k} the training pixels hold one class only"
             )
-        folds.append(fit(~held))
-    full = fit(np.ones(y.size, dtype=bool))
+    seed = spec.seed + 7919 * stage + 104729 * level
+    # the fold models (each without one fold's tiles) and the full model, in that order
+    *folds, full = fit_classifiers(
+        spec, X, y, [g != k for k in range(spec.folds)] + [None], seed=seed, workers=threads
+    )
     meta = {
         "format": MODEL_FORMAT,
         "tessera_version": __version__,
@@ -193,6 +190,32 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
         "positive_fraction": float(y.mean()),
     }
     return NodeModel(spec, stage, level, full, folds, meta)
+
+
+def _fit_one(spec, X, y, rows, seed):
+    if rows is not None:
+        X, y = X[rows], y[rows]
+    clf = make_classifier(spec.classifier, seed=seed, threads=1, **spec.classifier_options)
+    return clf.fit(X, y, sample_weight=_balanced_weights(y))
+
+
+def fit_classifiers(spec, X, y, subsets, *, seed, workers=1):
+    """One classifier of `spec` per subset of the rows (a boolean mask, or None for all), all
+    with `seed`; fitted side by side in `workers` processes.
+
+    Each fit runs on one thread whatever `workers` is, so a model does not depend on how many
+    cores trained it (multithreaded matrix products may round differently). Small networks
+    spend most of their fitting time in the interpreter, not in matrix products, so separate
+    processes, not threads, are what makes fits run side by side.
+    """
+    workers = max(1, min(int(workers), len(subsets)))
+    if workers == 1:
+        return [_fit_one(spec, X, y, rows, seed) for rows in subsets]
+    # fork shares X with the workers without copying it; elsewhere they receive a copy
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context(method)) as pool:
+        futures = [pool.submit(_fit_one, spec, X, y, rows, seed) for rows in subsets]
+        return [f.result() for f in futures]
 
 
 def fit_cascade(spec, tiles, *, target="target", threads=1):
