@@ -28,6 +28,7 @@ from tessera.cascade.api import (
     predict_section,
     prepare_tile,
     receptive_radius,  # noqa: E402
+    volume_room,
 )  # noqa: E402
 from tessera.next_tiles import rank_tiles  # noqa: E402
 from tessera.threshold import confusion, scores_from_counts  # noqa: E402
@@ -54,7 +55,12 @@ def train(spec, image, truth, boxes):
         )
         tiles.append(
             prepare_tile(
-                spec, f"t{i}", window, truth[z, y : y + SIZE, x : x + SIZE], fold=i % spec.folds
+                spec,
+                f"t{i}",
+                window,
+                truth[z, y : y + SIZE, x : x + SIZE],
+                fold=i % spec.folds,
+                room=volume_room(spec, image.shape[1:], (y, y + SIZE, x, x + SIZE)),
             )
         )
     return fit_cascade(spec, tiles, target="mitochondria", threads=2)

@@ -67,6 +67,7 @@ def run_tessera(image, truth):
             mirrored_stack(image, z, spec.neighbours, -radius, h + radius, -radius, w + radius),
             truth[z],
             fold=z * spec.folds // len(TRAIN),  # contiguous sections per fold
+            room=(0, 0, 0, 0),  # the whole section: maps mirrored beyond it, as predicted
         )
         for z in TRAIN
     ]

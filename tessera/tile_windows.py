@@ -1,6 +1,6 @@
 """A tile's image window: the tile's sections with a halo around it, mirrored beyond the volume."""
 
-from tessera.cascade.api import mirrored_stack
+from tessera.cascade.api import mirrored_stack, volume_room
 
 
 def tile_window(level_array, row, halo, sections):
@@ -38,3 +38,20 @@ def tile_window(level_array, row, halo, sections):
     return mirrored_stack(
         level_array, z, sections, y0 - halo, y0 + h + halo, x0 - halo, x0 + w + halo
     )
+
+
+def tile_room(spec, level_array, row):
+    """Where the volume ends around a tile (:func:`tessera.cascade.api.volume_room`), so that
+    its maps are mirrored beyond the volume's edges as a prediction block's are.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from tessera.cascade.api import CascadeSpec
+    >>> row = {"z": 0, "y0": 4, "x0": 0, "height": 8, "width": 8}
+    >>> tile_room(CascadeSpec(levels=2), np.zeros((1, 20, 8)), row)
+    (4, 8, 0, 0)
+    """
+    y0, x0 = int(row["y0"]), int(row["x0"])
+    h, w = int(row["height"]), int(row["width"])
+    return volume_room(spec, level_array.shape[1:], (y0, y0 + h, x0, x0 + w))

@@ -14,7 +14,7 @@ from tessera.cascade.api import prepare_tile, receptive_radius, z_halo
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
 from tessera.threshold import GRID, choose_threshold, confusion, scores_from_counts
-from tessera.tile_windows import tile_window
+from tessera.tile_windows import tile_room, tile_window
 
 
 def assign_folds(tiles, folds, seed):
@@ -85,7 +85,8 @@ def training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None
     halo = receptive_radius(spec, final)
     tiles = []
     for _, row in train.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, z_halo(spec, final))
+        array = arrays[row["dataset"]]
+        image = tile_window(array, row, halo, z_halo(spec, final))
         tiles.append(
             prepare_tile(
                 spec,
@@ -94,6 +95,7 @@ def training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None
                 labels[row["tile_id"]],
                 fold=folds[row["tile_id"]],
                 final=final,
+                room=tile_room(spec, array, row),
             )
         )
     return tiles

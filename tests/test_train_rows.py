@@ -135,7 +135,7 @@ def test_out_of_fold_maps_equal_the_fold_models_on_the_whole_matrix(cascade):
         np.testing.assert_array_equal(oof[tile.tile_id], whole[:h, :w])
 
 
-def _stack_tiles(spec, size, sections):
+def _stack_tiles(spec, size, sections, room=None):
     """One tile of a disc drifting through `sections` sections (the frame's z halo)."""
     radius = receptive_radius(spec)
     rng = np.random.default_rng(3)
@@ -144,20 +144,29 @@ def _stack_tiles(spec, size, sections):
     image = 150 - 60 * truth + rng.normal(0, 12, truth.shape)
     centre = sections // 2
     labels = truth[centre, radius:-radius, radius:-radius].astype(np.uint8)
-    return prepare_tile(spec, "t0", image, labels, fold=0)
+    return prepare_tile(spec, "t0", image, labels, fold=0, room=room)
 
 
-@pytest.mark.parametrize(("size", "context"), [((52, 60), 0), ((51, 60), 0), ((52, 60), 1)])
-def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(size, context):
+@pytest.mark.parametrize(
+    ("size", "context", "room"),
+    [
+        ((52, 60), 0, None),
+        ((51, 60), 0, None),
+        ((52, 60), 1, None),
+        ((52, 60), 0, (0, 8, 4, 400)),  # a tile near the volume's top and left edges
+    ],
+)
+def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(size, context, room):
     # Reference: the filter bank (scipy.ndimage Gaussian filters and numpy arithmetic) run on
     # each node's own frame, as a job training that node alone runs it. node_tile hands the
     # node the crop of the tile's features instead; they must be equal to the last bit, on
     # every section the node reads (cross-section context reads the sections around). A core
-    # of odd size (extended by mirroring to the level grid) is not shared and still equal.
+    # of odd size (extended by mirroring to the level grid) is not shared and still equal. A
+    # tile near the volume's edges computes features inside the volume only, node by node.
     spec = CascadeSpec(
         **{**SPEC.to_dict(), "levels": 2, "stencil_radii": [1, 2], "context_sections": context}
     )
-    tile = _stack_tiles(spec, size, 2 * tile_z_halo(spec) + 1)
+    tile = _stack_tiles(spec, size, 2 * tile_z_halo(spec) + 1, room)
     for node in nodes(spec):
         cut = node_tile(spec, tile, node)
         halo = receptive_radius(spec, node)
@@ -168,8 +177,9 @@ def test_features_cropped_from_the_wider_tile_equal_features_computed_afresh(siz
             c : c + size[0] + 2 * halo,
             c : c + size[1] + 2 * halo,
         ]
-        fresh = make_frame(spec, window, size, final=node)
+        fresh = make_frame(spec, window, size, final=node, room=room)
         assert fresh.halo == cut.frame.halo <= tile.frame.halo
+        assert cut.frame.room == fresh.room
         reach = fresh.z_halo - spec.neighbours
         for offset in range(-reach, reach + 1):
             mine, theirs = cut.frame.section(offset), fresh.section(offset)

@@ -133,10 +133,15 @@ def test_a_single_stage_pixel_classifier_does_not_depend_on_the_room():
     )
 
 
-@pytest.mark.parametrize(
-    ("box", "message"),
-    [((2, 10, 0, 8), "must lie on the 4 px grid"), ((0, 20, 0, 8), "lies beyond a volume")],
-)
-def test_a_core_off_the_grid_or_outside_the_volume_is_refused(box, message):
-    with pytest.raises(TesseraInputError, match=message):
-        volume_room(CascadeSpec(levels=2), (16, 16), box)
+def test_a_core_beyond_the_volume_is_refused():
+    with pytest.raises(TesseraInputError, match="lies beyond a volume"):
+        volume_room(CascadeSpec(levels=2), (16, 16), (0, 20, 0, 8))
+
+
+def test_the_room_of_a_tile_off_the_grid_is_rounded_down_to_it():
+    # Arithmetic: a core at y 7..15 of a 30-row volume (extended to 32 on the 4 px grid) has 7
+    # rows above it, 4 on the grid; 32 - 15 = 17 below, 16 on the grid. A block on the grid
+    # keeps its exact room.
+    spec = CascadeSpec(levels=2)
+    assert volume_room(spec, (30, 30), (7, 15, 0, 30)) == (4, 16, 0, 0)
+    assert volume_room(spec, (30, 30), (8, 16, 4, 12)) == (8, 16, 4, 20)

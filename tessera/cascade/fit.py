@@ -82,22 +82,26 @@ class TrainingTile:
     frame: object
     labels: np.ndarray
     fold: int
+    room: tuple = None
 
 
-def prepare_tile(spec, tile_id, image, labels, *, fold, final=None):
+def prepare_tile(spec, tile_id, image, labels, *, fold, final=None, room=None):
     """A TrainingTile from a working-level image window (core + halo) and core labels 0/1/255.
 
     `image` holds the tile's section and ``z_halo(spec, final)`` sections on each side (see
     :func:`tessera.cascade.frame.make_frame`); the labels are those of the middle section.
+    `room` (:func:`tessera.cascade.frame.volume_room`) says where the volume ends around the
+    tile: the maps are then mirrored beyond it, as prediction does.
     """
     labels = np.asarray(labels)
     if labels.ndim != 2:
         raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
     return TrainingTile(
         tile_id,
-        make_frame(spec, image, labels.shape, final=final),
+        make_frame(spec, image, labels.shape, final=final, room=room),
         labels.astype(np.uint8),
         int(fold),
+        None if room is None else tuple(int(r) for r in room),
     )
 
 
@@ -257,7 +261,9 @@ def node_tile(spec, tile, node):
     # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
     # was appended after it, so the window is its first rows and columns
     image = frame.stack[sections, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
-    out = prepare_tile(spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node)
+    out = prepare_tile(
+        spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node, room=tile.room
+    )
     # image features do not depend on the region they are computed over: crop the tile's own
     # (computed once for all the nodes of a cascade) instead of filtering again per node
     share_features(frame, out.frame)

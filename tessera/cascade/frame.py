@@ -424,27 +424,30 @@ def node_feature_names(spec, stage, level):
 
 
 def volume_room(spec, shape, box):
-    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right).
+    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right), on the
+    2^L grid of the core.
 
-    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core, its origin on
-    the 2^L grid. The volume counts as extended to multiples of 2^L, as a core at its far end
-    is, so every value is a multiple of 2^L.
+    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core. The volume
+    counts as extended to multiples of 2^L, as a core at its far end is. For a core whose
+    origin lies on the 2^L grid (prediction blocks) the values are exact; for another (a
+    training tile) they are rounded down to the grid, so at most 2^L - 1 px of image at an
+    edge is taken as lying beyond it.
 
     Examples
     --------
     >>> from tessera.cascade.spec import CascadeSpec
     >>> volume_room(CascadeSpec(levels=2), (10, 16), (0, 10, 4, 8))
     (0, 0, 4, 8)
+    >>> volume_room(CascadeSpec(levels=2), (30, 30), (7, 15, 0, 30))
+    (4, 16, 0, 0)
     """
     y0, y1, x0, x1 = (int(v) for v in box)
-    ny, nx = padded_core_shape(spec, shape)
-    if y0 % spec.align or x0 % spec.align:
-        raise TesseraInputError(f"a core's origin must lie on the {spec.align} px grid, got {box}")
-    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
-    room = (y0, ny - y0 - cy, x0, nx - x0 - cx)
-    if min(room) < 0:
+    if not (0 <= y0 < y1 <= shape[0] and 0 <= x0 < x1 <= shape[1]):
         raise TesseraInputError(f"core {box} lies beyond a volume of {tuple(shape)}")
-    return room
+    ny, nx = padded_core_shape(spec, shape)
+    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
+    grid = spec.align
+    return tuple(max(0, v) // grid * grid for v in (y0, ny - y0 - cy, x0, nx - x0 - cx))
 
 
 def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0, room=None):
@@ -498,8 +501,8 @@ def share_features(source, target):
     shared = []
     if source.core_shape != target.core_shape or source.extended or target.extended:
         return shared
-    if source.room != (source.halo,) * 4 or target.room != (target.halo,) * 4:
-        return shared  # clipped to a volume: regions differ per frame
+    if any(min(s, target.halo) != t for s, t in zip(source.room, target.room, strict=True)):
+        return shared  # frames of other volumes: their features cover other regions
     reach = target.z_halo - target.spec.neighbours
     if reach > source.z_halo - source.spec.neighbours:
         return shared

@@ -11,7 +11,7 @@ from tessera.cascade.api import (
     z_halo,
 )
 from tessera.errors import TesseraInputError
-from tessera.tile_windows import tile_window
+from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
 from tessera.workflow.files.pyramid import level_arrays
@@ -115,7 +115,10 @@ def tile_probabilities(models, arrays, rows, *, output_sigma=0.0):
     halo = receptive_radius(spec, output_sigma=output_sigma)
     out = {}
     for _, row in rows.iterrows():
-        image = tile_window(arrays[row["dataset"]], row, halo, z_halo(spec))
+        array = arrays[row["dataset"]]
+        image = tile_window(array, row, halo, z_halo(spec))
         core = (int(row["height"]), int(row["width"]))
-        out[row["tile_id"]] = predict_frame(models, image, core, output_sigma=output_sigma)
+        out[row["tile_id"]] = predict_frame(
+            models, image, core, output_sigma=output_sigma, room=tile_room(spec, array, row)
+        )
     return out
