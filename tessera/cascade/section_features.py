@@ -140,11 +140,13 @@ def _gaussian_weights(sigma):
     return w / w.sum()
 
 
-def _z_weights(sigma_z, reach):
-    """Weights over sections -reach..reach giving the centre's z-smoothed plane, its central z
-    difference and the central difference of that (the second z difference), as rows."""
+def _z_weights(sigma_z):
+    """(3, 2 k + 1) weights over sections -k..k (k = this σ's own z reach) giving the centre's
+    z-smoothed plane, its central z difference and the central difference of that (the second
+    z difference)."""
     w = _gaussian_weights(sigma_z)
     radius = (w.size - 1) // 2
+    reach = radius + _Z_DIFFERENCE_REACH
 
     def centred_at(offset):
         row = np.zeros(2 * reach + 1)
@@ -159,15 +161,20 @@ def _z_weights(sigma_z, reach):
 
 
 def _weighted_sections(window, weights):
-    """(K, H, W) float32: the K rows of `weights` applied along the sections of `window`,
-    summed in float64 (as scipy's 1D filters do) and rounded once."""
+    """(len(weights), 3, H, W) float32: each (3, 2 k + 1) array of `weights` applied along the
+    2 k + 1 sections around the centre of `window`, summed in float64 (as scipy's 1D filters
+    do) and rounded once."""
     n, h, w = window.shape
-    out = np.empty((weights.shape[0], h, w), dtype=np.float32)
+    centre = n // 2
+    out = np.empty((len(weights), 3, h, w), dtype=np.float32)
     rows = max(1, _CHUNK_VALUES // (n * w))
     for start in range(0, h, rows):
         # float32 first: the value filter_bank filters is the image cast to float32
-        block = np.asarray(window[:, start : start + rows], dtype=np.float32)
-        out[:, start : start + rows] = np.tensordot(weights, block.astype(np.float64), axes=1)
+        block = np.asarray(window[:, start : start + rows], dtype=np.float32).astype(np.float64)
+        for i, rows_of_sigma in enumerate(weights):
+            k = rows_of_sigma.shape[1] // 2  # each σ reads only its own reach
+            near = block[centre - k : centre + k + 1]
+            out[i, :, start : start + rows] = np.tensordot(rows_of_sigma, near, axes=1)
     return out
 
 
@@ -280,8 +287,7 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
             f"{sigmas} at spacing {normalize_spacing(spacing, 3)}, got {r}"
         )
     window = stack[r - reach : r + reach + 1]
-    weights = np.concatenate([_z_weights(s * ratios[0], reach) for s in sigmas])
-    planes = _weighted_sections(window, weights).reshape(len(sigmas), 3, *window.shape[1:])
+    planes = _weighted_sections(window, [_z_weights(s * ratios[0]) for s in sigmas])
     inplane = [(s * ratios[1], s * ratios[2]) for s in sigmas]
     smoothed = [
         ndimage.gaussian_filter(planes[i, 0], inplane[i], mode=_MODE, truncate=_TRUNCATE)
