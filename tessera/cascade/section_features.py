@@ -258,8 +258,10 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
     The structure tensor differs: its products of the 3D gradient (z, y, x) of the centre
     section are integrated with a 2D Gaussian in plane only (σ per in-plane axis as above), not
     over z as well as in the full 3D bank, which would need the gradient on every section within
-    the integration reach. Its eigenvalues therefore describe gradient directions gathered in
-    the section's own plane; they still see the z component of every gradient.
+    the integration reach. Its eigenvalues therefore describe the gradient directions gathered
+    over a disc in the section's own plane, not over a ball; each gradient keeps its z component,
+    so a surface crossing the section obliquely still shows as such. These channels are not
+    comparable with those of the full 3D bank.
 
     Eigenvalues are sorted in descending order (:func:`symmetric_eigenvalues_3x3`).
 
