@@ -194,16 +194,29 @@ def test_bad_input_is_one_line():
     reach = section_bank_z_reach((1.0,), spacing=spacing)
     good = np.zeros((2 * reach + 1, 8, 8), np.uint8)
     assert section_filter_bank_3d(good, sigmas=(1.0,), spacing=spacing).dtype == np.float32
-    with pytest.raises(TesseraInputError, match=r"stack must be 3D \(sections, rows, columns\)"):
-        section_filter_bank_3d(good[0], sigmas=(1.0,), spacing=spacing)
-    with pytest.raises(TesseraInputError, match="stack must hold an odd number of sections"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"^stack must be 3D \(sections, rows, columns\), got shape \(13, 8\)$",
+    ) as error:
+        section_filter_bank_3d(good[:, 0], sigmas=(1.0,), spacing=spacing)
+    assert "\n" not in str(error.value)
+    with pytest.raises(TesseraInputError, match=r"^stack is empty, got shape \(0, 8, 8\)$"):
+        section_filter_bank_3d(good[:0], sigmas=(1.0,), spacing=spacing)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"^stack must hold an odd number of sections \(the centre and r on each side\), "
+        f"got {2 * reach}$",
+    ):
         section_filter_bank_3d(good[1:], sigmas=(1.0,), spacing=spacing)
     with pytest.raises(
-        TesseraInputError, match=f"stack needs at least {reach} sections on each side of its centre"
+        TesseraInputError,
+        match=f"^stack needs at least {reach} sections on each side of its centre for sigmas "
+        rf"\(1.0,\) at spacing \(10.0, 10.0, 10.0\), got {reach - 1}$",
     ):
         section_filter_bank_3d(good[1:-1], sigmas=(1.0,), spacing=spacing)
-    with pytest.raises(TesseraInputError, match="stack must hold numbers"):
+    with pytest.raises(TesseraInputError, match="^stack must hold numbers, got dtype bool$"):
         section_filter_bank_3d(good.astype(bool), sigmas=(1.0,), spacing=spacing)
+    # spacing and sigmas are checked by their owners (tessera.spacing, the filter bank)
     with pytest.raises(TesseraInputError, match="spacing values must be positive and finite"):
         section_filter_bank_3d(good, sigmas=(1.0,), spacing=(10, 0, 10))
     with pytest.raises(TesseraInputError, match="spacing must have one value per axis"):
