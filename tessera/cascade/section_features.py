@@ -1,0 +1,310 @@
+"""3D image features of one section, computed from the stack of sections around it.
+
+For near-isotropic volumes (FIB-SEM) the features of a section should come from the volume, not
+from the section alone. Filtering the whole stack in 3D only to keep its centre section wastes
+almost all of the work, so :func:`section_filter_bank_3d` computes the centre section's 3D bank
+directly. Gaussian smoothing is separable: for each σ, a few weighted sums of sections along z
+(the z-smoothed centre plane, its central z difference and its second z difference, each one
+combined weight vector) are filtered in plane, and every derivative the bank needs comes from
+those three planes. Smoothed intensity, gradient magnitude, Laplacian, difference of Gaussians
+and Hessian eigenvalues equal :func:`tessera.cascade.features.filter_bank` on the same stack at
+its centre section, up to float32 rounding. The structure tensor is the one difference: its
+gradient products are integrated in plane only (see :func:`section_filter_bank_3d`).
+
+:func:`section_bank_z_reach` is the one place the z extent these features read is derived.
+"""
+
+import math
+
+import numpy as np
+from scipy import ndimage
+
+from tessera.cascade.features import (
+    _MODE,
+    _TRUNCATE,
+    DEFAULT_SIGMAS,
+    _ChannelWriter,
+    _check_sigmas,
+    _derivatives,
+    feature_names,
+)
+from tessera.errors import TesseraInputError
+from tessera.spacing import normalize_spacing
+
+# The second z difference is a central difference of central differences: two sections beyond
+# the Gaussian kernel's own radius.
+_Z_DIFFERENCE_REACH = 2
+# Sections × rows × columns converted to float64 at a time for the weighted sums along z.
+_CHUNK_VALUES = 4_000_000
+_UNIT_STEPS = (1.0, 1.0)
+
+
+def _axis_ratios(spacing):
+    """σ per axis is ``σ * ratio[axis]`` (round filters in physical space, σ in finest-axis px)."""
+    spacing = normalize_spacing(spacing, 3)
+    finest = min(spacing)
+    return tuple(finest / s for s in spacing)
+
+
+def _kernel_radius(sigma):
+    # scipy.ndimage.gaussian_filter's kernel radius for truncate = _TRUNCATE
+    return int(_TRUNCATE * sigma + 0.5)
+
+
+def _reach(sigmas, ratios):
+    return _kernel_radius(max(sigmas) * ratios[0]) + _Z_DIFFERENCE_REACH
+
+
+def section_bank_z_reach(sigmas=DEFAULT_SIGMAS, *, spacing):
+    """Sections on each side of the centre that :func:`section_filter_bank_3d` reads.
+
+    The Gaussian kernel of the largest σ reaches ``int(4 σ_z + 0.5)`` sections along z, with
+    ``σ_z = σ * min(spacing) / spacing[0]``; the second z difference reads two sections more.
+    Sections beyond this reach do not change the features; every section within it does.
+
+    Parameters
+    ----------
+    sigmas : sequence of float, optional
+        Increasing scales in pixels of the finest axis.
+    spacing : sequence of float
+        Voxel size (z, y, x).
+
+    Returns
+    -------
+    int
+
+    Examples
+    --------
+    >>> section_bank_z_reach((1.0, 2.0), spacing=(10, 10, 10))
+    10
+    >>> section_bank_z_reach((1.0, 2.0), spacing=(20, 10, 10))
+    6
+    """
+    return _reach(_check_sigmas(sigmas), _axis_ratios(spacing))
+
+
+def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22):
+    """Eigenvalues, largest first, of symmetric 3 × 3 matrices given by their six entries.
+
+    Closed form: the trigonometric solution of the characteristic cubic of the traceless,
+    normalised matrix ``B = (A - q I) / p`` (``q`` the mean eigenvalue, ``p`` the root mean
+    square deviation of the eigenvalues from ``q`` over 2): its eigenvalues are
+    ``2 cos(φ + 2πk/3)`` with ``φ = arccos(det(B) / 2) / 3``. Computed in float64 (the arccos
+    is sensitive near repeated eigenvalues), returned in float32; a matrix with three equal
+    eigenvalues (``p = 0``) gives ``q`` three times.
+
+    Parameters
+    ----------
+    a00, a01, a02, a11, a12, a22 : array_like
+        The upper triangle, all of one shape (broadcast).
+
+    Returns
+    -------
+    list of 3 ndarray of float32
+        Eigenvalues in descending order, each of the broadcast shape.
+
+    Examples
+    --------
+    >>> [float(e) for e in symmetric_eigenvalues_3x3(2.0, 1.0, 0.0, 2.0, 0.0, 3.0)]
+    [3.0, 3.0, 1.0]
+    """
+    a00, a01, a02, a11, a12, a22 = np.broadcast_arrays(
+        *(np.asarray(v, dtype=np.float64) for v in (a00, a01, a02, a11, a12, a22))
+    )
+    q = (a00 + a11 + a22) / 3.0
+    b00, b11, b22 = a00 - q, a11 - q, a22 - q
+    p = np.sqrt(
+        (b00 * b00 + b11 * b11 + b22 * b22 + 2.0 * (a01 * a01 + a02 * a02 + a12 * a12)) / 6.0
+    )
+    det = (
+        b00 * (b11 * b22 - a12 * a12)
+        - a01 * (a01 * b22 - a12 * a02)
+        + a02 * (a01 * a12 - b11 * a02)
+    )
+    # det(B) / 2 = det(A - qI) / (2 p³) lies in [-1, 1]; rounding can step just outside it
+    with np.errstate(divide="ignore", invalid="ignore"):
+        half_det = np.where(p > 0, det / (2.0 * p * p * p), 0.0)
+    phi = np.arccos(np.clip(half_det, -1.0, 1.0)) / 3.0
+    largest = q + 2.0 * p * np.cos(phi)
+    smallest = q + 2.0 * p * np.cos(phi + 2.0 * math.pi / 3.0)
+    # the trace fixes the middle one; clipped so that rounding never breaks the order
+    middle = np.clip(3.0 * q - largest - smallest, smallest, largest)
+    return [e.astype(np.float32) for e in (largest, middle, smallest)]
+
+
+def _gaussian_weights(sigma):
+    """The 1D kernel scipy.ndimage.gaussian_filter builds: radius int(4 σ + 0.5), sum 1."""
+    radius = _kernel_radius(sigma)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    w = np.exp(-0.5 * (x / sigma) ** 2)
+    return w / w.sum()
+
+
+def _z_weights(sigma_z):
+    """(3, 2 k + 1) weights over sections -k..k (k = this σ's own z reach) giving the centre's
+    z-smoothed plane, its central z difference and the central difference of that (the second
+    z difference)."""
+    w = _gaussian_weights(sigma_z)
+    radius = (w.size - 1) // 2
+    reach = radius + _Z_DIFFERENCE_REACH
+
+    def centred_at(offset):
+        row = np.zeros(2 * reach + 1)
+        start = reach + offset - radius
+        row[start : start + w.size] = w
+        return row
+
+    smooth = centred_at(0)
+    first = 0.5 * (centred_at(1) - centred_at(-1))
+    second = 0.25 * (centred_at(2) - 2.0 * smooth + centred_at(-2))
+    return np.stack([smooth, first, second])
+
+
+def _weighted_sections(window, weights):
+    """(len(weights), 3, H, W) float32: each (3, 2 k + 1) array of `weights` applied along the
+    2 k + 1 sections around the centre of `window`, summed in float64 (as scipy's 1D filters
+    do) and rounded once."""
+    n, h, w = window.shape
+    centre = n // 2
+    out = np.empty((len(weights), 3, h, w), dtype=np.float32)
+    rows = max(1, _CHUNK_VALUES // (n * w))
+    for start in range(0, h, rows):
+        # float32 first: the value filter_bank filters is the image cast to float32
+        block = np.asarray(window[:, start : start + rows], dtype=np.float32).astype(np.float64)
+        for i, rows_of_sigma in enumerate(weights):
+            k = rows_of_sigma.shape[1] // 2  # each σ reads only its own reach
+            near = block[centre - k : centre + k + 1]
+            out[i, :, start : start + rows] = np.tensordot(rows_of_sigma, near, axes=1)
+    return out
+
+
+def _check_stack(stack):
+    stack = np.asarray(stack)
+    if stack.ndim != 3:
+        raise TesseraInputError(
+            f"stack must be 3D (sections, rows, columns), got shape {stack.shape}"
+        )
+    if stack.size == 0:
+        raise TesseraInputError(f"stack is empty, got shape {stack.shape}")
+    if not (np.issubdtype(stack.dtype, np.integer) or np.issubdtype(stack.dtype, np.floating)):
+        raise TesseraInputError(f"stack must hold numbers, got dtype {stack.dtype}")
+    if stack.shape[0] % 2 == 0:
+        raise TesseraInputError(
+            f"stack must hold an odd number of sections (the centre and r on each side), "
+            f"got {stack.shape[0]}"
+        )
+    return stack
+
+
+def _scale_channels_3d(channels, planes, following, s, inplane):
+    """Append the channels of scale `s`. `planes` holds the centre plane smoothed in 3D (g) and
+    the z-smoothed first and second z differences, not yet smoothed in plane; `following` is
+    the centre plane smoothed at the next σ (None for the last scale)."""
+    g, dz, dzz = planes
+    gz, zz = (
+        ndimage.gaussian_filter(p, inplane, mode=_MODE, truncate=_TRUNCATE) for p in (dz, dzz)
+    )
+    gy, gx = _derivatives(g, _UNIT_STEPS)
+    zy, zx = _derivatives(gz, _UNIT_STEPS)
+    yy, yx = _derivatives(gy, _UNIT_STEPS)
+    xx = _derivatives(gx, _UNIT_STEPS)[1]
+    channels.append(g)
+    channels.append(np.sqrt(gz * gz + gy * gy + gx * gx))
+    # Scale-normalised (σ²) as in filter_bank
+    norm = np.float32(s * s)
+    channels.append(norm * (zz + yy + xx))
+    if following is not None:
+        channels.append(g - following)
+    channels.extend(norm * e for e in symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx))
+    grads = (gz, gy, gx)
+    products = [grads[a] * grads[b] for a, b in ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))]
+    channels.extend(
+        symmetric_eigenvalues_3x3(
+            *(ndimage.gaussian_filter(p, inplane, mode=_MODE, truncate=_TRUNCATE) for p in products)
+        )
+    )
+
+
+def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
+    """3D Gaussian-derivative features of the centre section of a stack.
+
+    Parameters
+    ----------
+    stack : (2 r + 1, M, N) ndarray
+        Grey values (any real dtype; computed in float32) of the section at index ``r`` and
+        ``r`` sections on each side, with ``r >= section_bank_z_reach(sigmas, spacing=spacing)``
+        (sections beyond that reach are ignored). Nothing is mirrored here: beyond the first or
+        last section of a volume, the caller passes mirrored sections.
+    sigmas : sequence of float, optional
+        Increasing scales in pixels of the finest axis.
+    spacing : sequence of float
+        Voxel size (z, y, x): σ along each axis is ``σ * min(spacing) / spacing[axis]``.
+
+    Returns
+    -------
+    (M, N, C) ndarray of float32
+        Channels as named by ``feature_names(sigmas, ndim=3)``.
+
+    Notes
+    -----
+    Smoothed intensity, gradient magnitude, Laplacian, difference of Gaussians and the three
+    Hessian eigenvalues equal those of ``filter_bank(stack, sigmas=sigmas, spacing=spacing,
+    mirror_edges=False)`` at section ``r``, up to float32 rounding, everywhere in the plane
+    (the in-plane filters and differences are the same, with the same mirrored edges). As there,
+    derivatives are central differences per voxel step (per section along z), and values within
+    ``feature_radius(sigmas)`` pixels of the in-plane border depend on the border: pass that much
+    halo and crop it.
+
+    The structure tensor differs: its products of the 3D gradient (z, y, x) of the centre
+    section are integrated with a 2D Gaussian in plane only (σ per in-plane axis as above), not
+    over z as well as in the full 3D bank, which would need the gradient on every section within
+    the integration reach. Its eigenvalues therefore describe the gradient directions gathered
+    over a disc in the section's own plane, not over a ball; each gradient keeps its z component,
+    so a surface crossing the section obliquely still shows as such. These channels are not
+    comparable with those of the full 3D bank.
+
+    Eigenvalues are sorted in descending order (:func:`symmetric_eigenvalues_3x3`).
+
+    Examples
+    --------
+    >>> from tessera.cascade.features import filter_bank
+    >>> stack = np.random.default_rng(0).random((13, 24, 24)).astype(np.float32)
+    >>> f = section_filter_bank_3d(stack, sigmas=(1.0, 2.0), spacing=(20, 10, 10))
+    >>> f.shape, f.dtype
+    ((24, 24, 20), dtype('float32'))
+    >>> full = filter_bank(stack, sigmas=(1.0, 2.0), spacing=(20, 10, 10), mirror_edges=False)
+    >>> names = feature_names((1.0, 2.0), ndim=3)
+    >>> same = [k for k, name in enumerate(names) if not name.startswith("structure")]
+    >>> bool(np.allclose(f[..., same], full[6][..., same], atol=1e-5))
+    True
+    """
+    stack = _check_stack(stack)
+    sigmas = _check_sigmas(sigmas)
+    ratios = _axis_ratios(spacing)
+    reach = _reach(sigmas, ratios)
+    r = stack.shape[0] // 2
+    if r < reach:
+        raise TesseraInputError(
+            f"stack needs at least {reach} sections on each side of its centre for sigmas "
+            f"{sigmas} at spacing {normalize_spacing(spacing, 3)}, got {r}"
+        )
+    window = stack[r - reach : r + reach + 1]
+    planes = _weighted_sections(window, [_z_weights(s * ratios[0]) for s in sigmas])
+    inplane = [(s * ratios[1], s * ratios[2]) for s in sigmas]
+    smoothed = [
+        ndimage.gaussian_filter(planes[i, 0], inplane[i], mode=_MODE, truncate=_TRUNCATE)
+        for i in range(len(sigmas))
+    ]
+    # channel planes written in place, the result a channels-last view (as in filter_bank)
+    out_planes = np.empty(
+        (len(feature_names(sigmas, ndim=3)),) + window.shape[1:], dtype=np.float32
+    )
+    out = np.moveaxis(out_planes, 0, -1)
+    channels = _ChannelWriter(out)
+    channels.append(window[reach].astype(np.float32))
+    for i, s in enumerate(sigmas):
+        following = smoothed[i + 1] if i + 1 < len(sigmas) else None
+        _scale_channels_3d(
+            channels, (smoothed[i], planes[i, 1], planes[i, 2]), following, s, inplane[i]
+        )
+    return out
