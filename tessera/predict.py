@@ -18,7 +18,7 @@ import numpy as np
 
 from tessera.cascade.api import (
     cascade_spec,
-    mirrored_stack,
+    mirrored_block,
     predict_frames,
     receptive_radius,
     volume_room,
@@ -177,20 +177,23 @@ def plan_fits_cascade(plan, spec):
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
-    Each section is read with a halo of the receptive radius (mirrored beyond the volume; a
-    shard plan's ``halo``, or :func:`shard_halo` when not given) and the cascade's ``z_halo``
-    sections on each side (mirrored beyond the first and last section), and predicted with
+    The block's sections and the cascade's ``z_halo`` sections on each side (mirrored beyond the
+    first and last section) are read once, with a halo of the receptive radius in plane
+    (mirrored beyond the volume; a shard plan's ``halo``, or :func:`shard_halo` when not given),
+    and converted to float32 once; each section is predicted from a view of that stack with
     :func:`tessera.cascade.api.predict_frames` (consecutive sections share the maps of the
-    sections around them); `volume` may be a zarr array.
+    sections around them). `volume` may be a zarr array.
     """
     spec = cascade_spec(models)
     halo = shard_halo(spec, output_sigma=output_sigma) if halo is None else halo
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
     sections = z_halo(spec)
-    windows = (
-        mirrored_stack(volume, z, sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
-        for z in range(z0, z1)
-    )
+    # one read for the whole block: a 3D cascade reads tens of sections around each section,
+    # and consecutive sections' windows overlap in all but one of them
+    stack = mirrored_block(
+        volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
+    ).astype(np.float32)
+    windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
     maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)

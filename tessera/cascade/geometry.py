@@ -10,6 +10,7 @@ provided block origins are multiples of ``2**L``.
 import math
 
 from tessera.cascade.features import feature_radius
+from tessera.cascade.section_features import section_bank_z_reach
 from tessera.cascade.spec import ancestors, node_inputs
 from tessera.errors import TesseraInputError
 
@@ -66,14 +67,37 @@ def margins(spec, final=None, *, output_sigma=0.0):
     return out
 
 
+def image_z_reach(spec):
+    """Sections of image on each side of a section that the section's image features read.
+
+    ``neighbours`` in 2D; in 3D (``dims`` = 3) the z reach of the 3D filter bank at the
+    spec's ``sigmas`` and ``voxel_aspect``
+    (:func:`tessera.cascade.section_features.section_bank_z_reach`). The coarser levels read
+    no more than this (the centre section, and its ``neighbours`` in 2D).
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> image_z_reach(CascadeSpec(neighbours=2))
+    2
+    >>> image_z_reach(CascadeSpec(dims=3, sigmas=(1.0, 2.0)))
+    10
+    >>> image_z_reach(CascadeSpec(dims=3, sigmas=(1.0, 2.0), voxel_aspect=2.0))
+    6
+    """
+    if spec.dims == 3:
+        return section_bank_z_reach(spec.sigmas, spacing=(spec.voxel_aspect, 1.0, 1.0))
+    return spec.neighbours
+
+
 def z_halo(spec, final=None):
     """Sections of image needed on each side of a frame's own section.
 
     The one place the z extent of a frame is derived. A node's image features read
-    ``neighbours`` sections on each side; from stage 2 on, a node also reads the previous
+    :func:`image_z_reach` sections on each side; from stage 2 on, a node also reads the previous
     stage's map on ``context_sections`` sections on each side, so the map of stage s is needed
     on :func:`section_reach` sections around the frame's own, each of them with its own
-    neighbours. Prediction and training windows are read with this many sections on each side
+    image reach. Prediction and training windows are read with this many sections on each side
     (mirrored beyond the volume's first and last section).
 
     Examples
@@ -83,9 +107,11 @@ def z_halo(spec, final=None):
     5
     >>> z_halo(CascadeSpec(stages=3, neighbours=1, context_sections=2), (1, 0))
     1
+    >>> z_halo(CascadeSpec(stages=2, dims=3, sigmas=(1.0, 2.0), context_sections=1))
+    11
     """
     stage = (final or (spec.stages, 0))[0]
-    return spec.neighbours + section_reach(spec, (1, 0), (stage, 0))
+    return image_z_reach(spec) + section_reach(spec, (1, 0), (stage, 0))
 
 
 def section_reach(spec, node, final=None):
