@@ -174,6 +174,30 @@ def plan_fits_cascade(plan, spec):
     return halo == plan["halo"] and spec.align == plan["align"]
 
 
+def block_read_bytes(spec, shape, *, halo, itemsize=1):
+    """Bytes :func:`predict_block` holds for its image beyond what one frame counts itself.
+
+    A block of `shape` (z, y, x) is read once with `halo` pixels in plane and the cascade's
+    ``z_halo`` sections on each side: the raw values (`itemsize` bytes each) and their mirrored
+    copy while it is read, then the float32 stack every frame takes a view of. One frame's
+    window of ``2 z_halo + 1`` float32 sections is part of
+    :func:`tessera.cascade.api.frame_memory_bytes`; this is the rest.
+
+    Examples
+    --------
+    >>> from tessera.cascade.api import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 more float32 sections, 2 x 3 uint8
+    1400
+    """
+    z, y, x = (int(v) for v in shape)
+    sections = z + 2 * z_halo(spec)
+    pixels = (y + 2 * int(halo)) * (x + 2 * int(halo))
+    # the raw read and its mirrored copy are freed before any frame is made: counting them on
+    # top keeps the figure an upper bound without following the order of events
+    return pixels * (4 * (z - 1) + 2 * itemsize * sections)
+
+
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 

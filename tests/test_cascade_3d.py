@@ -243,18 +243,19 @@ def test_3d_settings_round_trip_and_a_2d_model_is_refused_for_a_3d_cascade(tmp_p
         ({"dims": 1}, "dims must be an integer >= 2 and <= 3, got 1"),
         ({"dims": "3"}, "dims must be an integer >= 2 and <= 3, got '3'"),
         ({"dims": 3, "voxel_aspect": 0}, "voxel_aspect must be a number > 0, got 0"),
-        ({"dims": 3, "voxel_aspect": -2.0}, r"voxel_aspect must be a number > 0, got -2\.0"),
+        ({"dims": 3, "voxel_aspect": -2.0}, "voxel_aspect must be a number > 0, got -2.0"),
         ({"voxel_aspect": float("nan")}, "voxel_aspect must be a number > 0, got nan"),
         ({"voxel_aspect": "2"}, "voxel_aspect must be a number > 0, got '2'"),
         ({"voxel_aspect": True}, "voxel_aspect must be a number > 0, got True"),
         (
             {"dims": 3, "neighbours": 1},
-            "neighbours must be 0 when dims is 3 .* got neighbours 1",
+            "neighbours must be 0 when dims is 3 (the 3D features read the sections around), "
+            "got neighbours 1",
         ),
     ],
 )
 def test_bad_3d_settings_are_refused_naming_the_key(setting, message):
-    with pytest.raises(TesseraInputError, match=f"cascade settings: {message}"):
+    with pytest.raises(TesseraInputError, match=re.escape(f"cascade settings: {message}")):
         CascadeSpec(**setting)
 
 
@@ -324,5 +325,7 @@ def test_3d_features_tell_oblique_tubes_from_plates_a_section_cannot():
     train, test = _tubes_and_plates(0), _tubes_and_plates(1)
     flat = _f1(CascadeSpec(**common), train, test)
     volumetric = _f1(CascadeSpec(**common, dims=3), train, test)
-    print(f"pixel F1 on held-out sections: 2D {flat:.3f}, 3D {volumetric:.3f}")
+    # measured here: 2D 0.71, 3D 0.97 (other seeds of the volumes: 0.72 / 0.98, 0.73 / 0.98);
+    # the margin asked is 0.15 of F1, and 3D must find the tubes well in absolute terms
     assert volumetric >= flat + 0.15, (flat, volumetric)
+    assert volumetric >= 0.9, volumetric

@@ -4,7 +4,9 @@ stencil samples of its context maps).
 
 A frame holds the sections its final node needs (``z_halo`` on each side of its own, section
 offset 0); each section keeps its own image features and node maps, so a node from stage 2 on can
-read the previous stage's map of the sections around its own (``context_sections``).
+read the previous stage's map of the sections around its own (``context_sections``). A section's
+image is a view of the frame's stack (``image_z_reach`` sections on each side: ``neighbours`` in
+2D, the 3D filter bank's z reach with ``dims`` = 3), never a copy.
 """
 
 import numpy as np
@@ -382,39 +384,12 @@ def node_feature_names(spec, stage, level):
     return names
 
 
-def volume_room(spec, shape, box):
-    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right), on the
-    2^L grid of the core.
-
-    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core. The volume
-    counts as extended to multiples of 2^L, as a core at its far end is. For a core whose
-    origin lies on the 2^L grid (prediction blocks) the values are exact; for another (a
-    training tile) they are rounded down to the grid, so at most 2^L - 1 px of image at an
-    edge is taken as lying beyond it.
-
-    Examples
-    --------
-    >>> from tessera.cascade.spec import CascadeSpec
-    >>> volume_room(CascadeSpec(levels=2), (10, 16), (0, 10, 4, 8))
-    (0, 0, 4, 8)
-    >>> volume_room(CascadeSpec(levels=2), (30, 30), (7, 15, 0, 30))
-    (4, 16, 0, 0)
-    """
-    y0, y1, x0, x1 = (int(v) for v in box)
-    if not (0 <= y0 < y1 <= shape[0] and 0 <= x0 < x1 <= shape[1]):
-        raise TesseraInputError(f"core {box} lies beyond a volume of {tuple(shape)}")
-    ny, nx = padded_core_shape(spec, shape)
-    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
-    grid = spec.align
-    return tuple(max(0, v) // grid * grid for v in (y0, ny - y0 - cy, x0, nx - x0 - cx))
-
-
 def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0, room=None):
     """A frame for a core of `core_shape` whose `image` carries the halo of ``receptive_radius``.
 
     The core is extended by mirroring to multiples of 2^L (labels there are ignored).
 
-    `room` (:func:`volume_room`) says where the volume ends: maps are then computed only
+    `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends: maps are then computed only
     inside it and mirrored beyond it, so a core at the volume's edge does not classify its
     halo. Without it (training tiles) every map covers the whole margin, computed on the
     mirrored image.

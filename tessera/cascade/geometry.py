@@ -129,7 +129,12 @@ def section_reach(spec, node, final=None):
 
 
 def feature_halo(spec, level):
-    """Level-l pixels of image around a region that its features depend on."""
+    """Level-l pixels of image around a region that its features depend on.
+
+    The same in 2D and 3D (``dims`` = 3): the 3D bank's in-plane σ are the finest-axis σ times
+    at most 1, so it reaches no further in plane than the 2D bank of the same σ
+    (:func:`tessera.cascade.features.feature_radius`).
+    """
     return feature_radius(level_sigmas(spec, level)) + 1
 
 
@@ -152,3 +157,30 @@ def receptive_radius(spec, final=None, *, output_sigma=0.0):
 
 def padded_core_shape(spec, shape):
     return tuple(round_up(n, spec.align) for n in shape)
+
+
+def volume_room(spec, shape, box):
+    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right), on the
+    2^L grid of the core.
+
+    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core. The volume
+    counts as extended to multiples of 2^L, as a core at its far end is. For a core whose
+    origin lies on the 2^L grid (prediction blocks) the values are exact; for another (a
+    training tile) they are rounded down to the grid, so at most 2^L - 1 px of image at an
+    edge is taken as lying beyond it.
+
+    Examples
+    --------
+    >>> from tessera.cascade.spec import CascadeSpec
+    >>> volume_room(CascadeSpec(levels=2), (10, 16), (0, 10, 4, 8))
+    (0, 0, 4, 8)
+    >>> volume_room(CascadeSpec(levels=2), (30, 30), (7, 15, 0, 30))
+    (4, 16, 0, 0)
+    """
+    y0, y1, x0, x1 = (int(v) for v in box)
+    if not (0 <= y0 < y1 <= shape[0] and 0 <= x0 < x1 <= shape[1]):
+        raise TesseraInputError(f"core {box} lies beyond a volume of {tuple(shape)}")
+    ny, nx = padded_core_shape(spec, shape)
+    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
+    grid = spec.align
+    return tuple(max(0, v) // grid * grid for v in (y0, ny - y0 - cy, x0, nx - x0 - cx))

@@ -63,7 +63,7 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0, room=None):
         smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
         depend on it.
     room : (int, int, int, int), optional
-        Where the volume ends around the core (:func:`tessera.cascade.frame.volume_room`): maps
+        Where the volume ends around the core (:func:`tessera.cascade.geometry.volume_room`): maps
         are computed inside the volume only and mirrored beyond it, so a block at an edge (a
         small volume in one block) does not classify its halo. Without it, the halo is
         classified on the mirrored image.
@@ -137,11 +137,12 @@ def _filter_temporaries(spec, level, pixels, channels):
         return 4 * pixels * (scales + 8 + (channels if spec.neighbours else 0))
     # the 3D bank: three weighted sums along z and one smoothed plane per scale, then one
     # scale's derivatives, gradient products and the float64 work of the 3 x 3 eigenvalues
-    # (measured with tracemalloc: 4 S + 58 planes); while the sums are made, the sections
-    # within reach in float64 (in chunks of at most _CHUNK_VALUES)
+    # (measured with tracemalloc: 4 S + 58 planes; 64 leaves room for other numpy versions);
+    # while the sums are made, the sections within reach in float64 (in chunks of at most
+    # _CHUNK_VALUES)
     sections = 2 * image_z_reach(spec) + 1
     sums = 4 * pixels * 3 * scales + 8 * min(_CHUNK_VALUES, sections * pixels)
-    return max(4 * pixels * (4 * scales + 60), sums)
+    return max(4 * pixels * (4 * scales + 64), sums)
 
 
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
