@@ -232,8 +232,9 @@ def test_3d_settings_round_trip_and_a_2d_model_is_refused_for_a_3d_cascade(tmp_p
     flat = CascadeSpec(**BASE_2D)
     save_node(fit_cascade(flat, _disc_tiles(flat), target="t")[(1, 0)], tmp_path / "m.npz")
     wanted = CascadeSpec(**BASE_2D, dims=3)
-    with pytest.raises(TesseraInputError, match=r"other cascade settings \(dims\)"):
+    with pytest.raises(TesseraInputError) as refused:
         load_node(tmp_path / "m.npz", spec=wanted)
+    assert "model was trained with other cascade settings (dims)" in str(refused.value)
 
 
 @pytest.mark.parametrize(

@@ -28,6 +28,7 @@ from tessera.cascade.geometry import (
     read_reach,
     receptive_radius,
     section_reach,
+    volume_room,  # noqa: F401 - frames' callers import it from here too
     z_halo,
 )
 from tessera.cascade.mirror import (  # noqa: F401 - readers of frames import them from here too
