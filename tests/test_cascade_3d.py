@@ -212,6 +212,9 @@ def test_2d_specs_record_what_they_recorded_before_and_save_the_same_bytes(tmp_p
     aspect = CascadeSpec(**BASE_2D, dims=2, voxel_aspect=3.5)  # not used in 2D
     assert set(node_settings(plain)) == OLD_KEYS
     assert node_settings(named) == node_settings(plain) == node_settings(aspect)
+    # the aspect is no setting of a 2D node: the spec records it as 1.0 and reads back the same
+    assert aspect.voxel_aspect == 1.0 and aspect == plain
+    assert spec_from_settings(node_settings(aspect), stages=1) == aspect
     # a configuration's cascade block with the schema's defaults filled in
     config = {**BASE_2D, "dims": 2, "voxel_aspect": 1.0, "context_sections": 0}
     assert node_settings(config) == node_settings(BASE_2D)
