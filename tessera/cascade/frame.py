@@ -390,10 +390,10 @@ def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0, room=No
 
     The core is extended by mirroring to multiples of 2^L (labels there are ignored).
 
-    `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends: maps are then computed only
-    inside it and mirrored beyond it, so a core at the volume's edge does not classify its
-    halo. Without it (training tiles) every map covers the whole margin, computed on the
-    mirrored image.
+    `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends: maps are
+    then computed only inside it and mirrored beyond it, so a core at the volume's edge does not
+    classify its halo. Without it (training tiles) every map covers the whole margin, computed
+    on the mirrored image.
     """
     halo = receptive_radius(spec, final, output_sigma=output_sigma)
     zh = z_halo(spec, final)

@@ -249,10 +249,11 @@ def node_settings(settings):
     A node does not depend on how many stages follow it, so raising the number of stages keeps
     the earlier nodes valid. ``context_sections`` at 0, ``dims`` at 2 and ``voxel_aspect`` at 1.0
     (or with ``dims`` 2, where it is not used) are left out as well: models made before these
-    settings existed record no such keys, and stay the same files. This is what a node's model records (``meta["spec"]``) and what a
-    workflow passes to the job training a node. `settings` is a :class:`CascadeSpec`, or a
-    mapping of settings such as a configuration's ``cascade`` section (returned as given,
-    without ``stages``). :func:`spec_from_settings` is the way back.
+    settings existed record no such keys, and stay the same files. This is what a node's model
+    records (``meta["spec"]``) and what a workflow passes to the job training a node.
+    `settings` is a :class:`CascadeSpec`, or a mapping of settings such as a configuration's
+    ``cascade`` section (returned as given, without ``stages`` and the keys above).
+    :func:`spec_from_settings` is the way back.
 
     Examples
     --------
