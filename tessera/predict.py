@@ -18,7 +18,7 @@ import numpy as np
 
 from tessera.cascade.api import (
     cascade_spec,
-    mirrored_stack,
+    mirrored_block,
     predict_frames,
     receptive_radius,
     volume_room,
@@ -174,23 +174,50 @@ def plan_fits_cascade(plan, spec):
     return halo == plan["halo"] and spec.align == plan["align"]
 
 
+def block_read_bytes(spec, shape, *, halo, itemsize=1):
+    """Bytes :func:`predict_block` holds for its image beyond what one frame counts itself.
+
+    A block of `shape` (z, y, x) is read once with `halo` pixels in plane and the cascade's
+    ``z_halo`` sections on each side: the raw values (`itemsize` bytes each) and their mirrored
+    copy while it is read, then the float32 stack every frame takes a view of. One frame's
+    window of ``2 z_halo + 1`` float32 sections is part of
+    :func:`tessera.cascade.api.frame_memory_bytes`; this is the rest.
+
+    Examples
+    --------
+    >>> from tessera.cascade.api import CascadeSpec
+    >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
+    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 more float32 sections, 2 x 3 uint8
+    1400
+    """
+    z, y, x = (int(v) for v in shape)
+    sections = z + 2 * z_halo(spec)
+    pixels = (y + 2 * int(halo)) * (x + 2 * int(halo))
+    # the raw read and its mirrored copy are freed before any frame is made: counting them on
+    # top keeps the figure an upper bound without following the order of events
+    return pixels * (4 * (z - 1) + 2 * itemsize * sections)
+
+
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
-    Each section is read with a halo of the receptive radius (mirrored beyond the volume; a
-    shard plan's ``halo``, or :func:`shard_halo` when not given) and the cascade's ``z_halo``
-    sections on each side (mirrored beyond the first and last section), and predicted with
+    The block's sections and the cascade's ``z_halo`` sections on each side (mirrored beyond the
+    first and last section) are read once, with a halo of the receptive radius in plane
+    (mirrored beyond the volume; a shard plan's ``halo``, or :func:`shard_halo` when not given),
+    and converted to float32 once; each section is predicted from a view of that stack with
     :func:`tessera.cascade.api.predict_frames` (consecutive sections share the maps of the
-    sections around them); `volume` may be a zarr array.
+    sections around them). `volume` may be a zarr array.
     """
     spec = cascade_spec(models)
     halo = shard_halo(spec, output_sigma=output_sigma) if halo is None else halo
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
     sections = z_halo(spec)
-    windows = (
-        mirrored_stack(volume, z, sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo)
-        for z in range(z0, z1)
-    )
+    # one read for the whole block: a 3D cascade reads tens of sections around each section,
+    # and consecutive sections' windows overlap in all but one of them
+    stack = mirrored_block(
+        volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
+    ).astype(np.float32)
+    windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
     maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)

@@ -30,7 +30,7 @@ from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
-from tessera.predict import halo_overhead, plan_shards
+from tessera.predict import block_read_bytes, halo_overhead, plan_shards
 from tessera.probability_encoding import encode_probability
 from tessera.workflow.jobs import predict
 from tessera.workflow.jobs.predict import predict_shard_job, shard_plan_job, stitch_job
@@ -115,6 +115,14 @@ def xsec_study(tmp_path_factory):
     """As `study`, with cross-section context: stage 2 reads stage 1's maps of z - 1 and z + 1,
     so a section's prediction reads z_halo = 2 sections of image on each side."""
     return make_study(tmp_path_factory.mktemp("xsec"), CascadeSpec(**SPEC, context_sections=1))
+
+
+@pytest.fixture(scope="module")
+def study_3d(tmp_path_factory):
+    """As `xsec_study`, in 3D mode: each section's full-resolution features are the 3D filter
+    bank of the sections around it, so a frame holds z_halo = 11 sections on each side."""
+    spec = CascadeSpec(**{**SPEC, "neighbours": 0}, context_sections=1, dims=3)
+    return make_study(tmp_path_factory.mktemp("dims3"), spec)
 
 
 def whole_volume(study, output_sigma=0.0):
@@ -384,12 +392,13 @@ def test_plan_refuses_a_model_for_another_target(study, tmp_path):
 
 
 @pytest.mark.parametrize("side", [48, 160])
-@pytest.mark.parametrize("fixture", ["study", "xsec_study"])
+@pytest.mark.parametrize("fixture", ["study", "xsec_study", "study_3d"])
 def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, side):
     # tracemalloc (Python standard library) traces every buffer numpy allocates, so its peak is
     # what predicting one section of a block really takes; the estimate must cover it without
     # overstating it by more than half. With cross-section context a frame holds the maps and
-    # features of three sections. The block lies a whole halo inside the volume: the worst
+    # features of three sections; in 3D mode it also holds 2 x 11 + 1 sections of image, and
+    # the 3D filter bank's work (float64 eigenvalues of 3 x 3 matrices) is larger. The block lies a whole halo inside the volume: the worst
     # case the estimate is for (a block at an edge classifies less of its halo).
     study = request.getfixturevalue(fixture)
     rng = np.random.default_rng(side)
@@ -403,6 +412,38 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, s
         tracemalloc.stop()
     estimate = frame_memory_bytes(study["spec"], (side, side))
     assert peak <= estimate <= 1.5 * peak, (peak, estimate)
+
+
+@pytest.mark.parametrize("fixture", ["xsec_study", "study_3d"])
+def test_a_block_of_several_sections_takes_one_frame_and_its_read(request, fixture):
+    # A block is read once (its sections and the z halo, float32) and every section's frame
+    # takes a view of it: the peak (tracemalloc, as above) is one frame's estimate plus the
+    # rest of the read (block_read_bytes) and the block's output, not one frame per section.
+    study = request.getfixturevalue(fixture)
+    spec, side = study["spec"], 48
+    halo = receptive_radius(spec)
+    rng = np.random.default_rng(3)
+    volume = rng.integers(0, 256, (6, side + 2 * halo, side + 2 * halo), dtype=np.uint8)
+    peaks, estimates = {}, {}
+    for count in (1, 4):
+        box = (1, 1 + count, halo, halo + side, halo, halo + side)
+        tracemalloc.start()
+        try:
+            predict.predict_block(study["models"], volume, box)
+            peaks[count] = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        estimates[count] = (
+            frame_memory_bytes(spec, (side, side))
+            + block_read_bytes(spec, (count, side, side), halo=halo)
+            + 4 * count * side * side
+        )
+        assert peaks[count] <= estimates[count] <= 1.5 * peaks[count], (count, peaks, estimates)
+    # three more sections held as float32 (4 bytes each, numpy) and their output; the
+    # estimate grows at least as much
+    grown = peaks[4] - peaks[1]
+    assert 4 * 3 * ((side + 2 * halo) ** 2 + side * side) <= grown, grown
+    assert grown <= estimates[4] - estimates[1], (grown, estimates)
 
 
 _SHARD_RSS = """

@@ -7,13 +7,9 @@ can be rearranged without touching them.
 """
 
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
-from tessera.cascade.frame import (
-    mirrored_stack,
-    mirrored_window,
-    node_feature_names,
-    volume_room,
-)
-from tessera.cascade.geometry import receptive_radius, z_halo
+from tessera.cascade.frame import node_feature_names
+from tessera.cascade.geometry import receptive_radius, volume_room, z_halo
+from tessera.cascade.mirror import mirrored_block, mirrored_stack, mirrored_window
 from tessera.cascade.predict import (
     cascade_spec,
     frame_memory_bytes,
@@ -38,6 +34,7 @@ __all__ = [
     "fit_cascade",
     "frame_memory_bytes",
     "load_node",
+    "mirrored_block",
     "mirrored_stack",
     "mirrored_window",
     "node_feature_names",

@@ -90,7 +90,7 @@ def prepare_tile(spec, tile_id, image, labels, *, fold, final=None, room=None):
 
     `image` holds the tile's section and ``z_halo(spec, final)`` sections on each side (see
     :func:`tessera.cascade.frame.make_frame`); the labels are those of the middle section.
-    `room` (:func:`tessera.cascade.frame.volume_room`) says where the volume ends around the
+    `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends around the
     tile: the maps are then mirrored beyond it, as prediction does.
     """
     labels = np.asarray(labels)

@@ -4,7 +4,9 @@ stencil samples of its context maps).
 
 A frame holds the sections its final node needs (``z_halo`` on each side of its own, section
 offset 0); each section keeps its own image features and node maps, so a node from stage 2 on can
-read the previous stage's map of the sections around its own (``context_sections``).
+read the previous stage's map of the sections around its own (``context_sections``). A section's
+image is a view of the frame's stack (``image_z_reach`` sections on each side: ``neighbours`` in
+2D, the 3D filter bank's z reach with ``dims`` = 3), never a copy.
 """
 
 import numpy as np
@@ -19,51 +21,24 @@ from tessera.cascade.features import (
 )
 from tessera.cascade.geometry import (
     feature_halo,
+    image_z_reach,
     level_sigmas,
     margins,
     padded_core_shape,
     read_reach,
     receptive_radius,
     section_reach,
+    volume_room,  # noqa: F401 - frames' callers import it from here too
     z_halo,
 )
+from tessera.cascade.mirror import (  # noqa: F401 - readers of frames import them from here too
+    mirror_beyond_volume,
+    mirrored_stack,
+    mirrored_window,
+)
+from tessera.cascade.section_features import section_filter_bank_3d
 from tessera.cascade.spec import ancestors, context_offsets, node_inputs
 from tessera.errors import TesseraInputError
-
-
-def mirrored_window(array, z, y0, y1, x0, x1):
-    """Section `z` of a (Z, Y, X) array over rows y0:y1 and columns x0:x1, mirrored beyond edges.
-
-    Indices outside the volume are reflected (half-sample symmetric, repeated as often as
-    needed), so a window far larger than the volume is still defined. Reads only the needed
-    bounding box of the array (zarr or numpy).
-
-    Examples
-    --------
-    >>> a = np.arange(4).reshape(1, 1, 4)
-    >>> mirrored_window(a, 0, 0, 1, -3, 7)
-    array([[2, 1, 0, 0, 1, 2, 3, 3, 2, 1]])
-    """
-
-    def reflect(start, stop, n):
-        idx = np.arange(start, stop) % (2 * n)
-        return np.where(idx < n, idx, 2 * n - 1 - idx)
-
-    ny, nx = array.shape[1], array.shape[2]
-    iy, ix = reflect(y0, y1, ny), reflect(x0, x1, nx)
-    block = np.asarray(array[z, iy.min() : iy.max() + 1, ix.min() : ix.max() + 1])
-    return block[np.ix_(iy - iy.min(), ix - ix.min())]
-
-
-def mirrored_stack(array, z, neighbours, y0, y1, x0, x1):
-    """Sections z - neighbours .. z + neighbours of a (Z, Y, X) array, mirrored beyond every edge.
-
-    Returns a (2 neighbours + 1, y1 - y0, x1 - x0) array (see :func:`mirrored_window`).
-    """
-    nz = array.shape[0]
-    zs = np.arange(z - neighbours, z + neighbours + 1) % (2 * nz)
-    zs = np.where(zs < nz, zs, 2 * nz - 1 - zs)
-    return np.stack([mirrored_window(array, int(k), y0, y1, x0, x1) for k in zs])
 
 
 def _pool(prob, factor, how):
@@ -91,14 +66,22 @@ class _Section:
         self.margins = margin_table
         self.room = room  # level-0 px of the volume beyond the core: top, bottom, left, right
         image = np.asarray(image, dtype=np.float32)
-        # (2k + 1, H, W): the section and k neighbours on each side; the centre is index k
+        # (2k + 1, H, W), k = image_z_reach: the section and k sections on each side, the centre
+        # at index k; kept as given (a view of the frame's stack, never copied)
         self._levels = {0: image if image.ndim == 3 else image[np.newaxis]}
         self._features = {}
         self.maps = {}
 
     def image(self, level):
+        """The section's image at `level`: at level 0 every section it holds; at a coarser
+        level (pooled in plane only) the centre and its ``neighbours`` on each side (in 3D,
+        the centre alone: the 3D bank is used at level 0 only)."""
         if level not in self._levels:
-            self._levels[level] = block_mean(self._levels[0], (1, 2**level, 2**level))
+            stack = self._levels[0]
+            k, centre = self.spec.neighbours, stack.shape[0] // 2
+            self._levels[level] = block_mean(
+                stack[centre - k : centre + k + 1], (1, 2**level, 2**level)
+            )
         return self._levels[level]
 
     def clip(self, margin):
@@ -121,6 +104,21 @@ class _Section:
         """The widest margin (level-0 px) any node of this frame reads at `level`."""
         return max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
 
+    def _bank(self, level, stack):
+        """Image features of the centre of `stack` (this section's image at `level`)."""
+        sigmas = level_sigmas(self.spec, level)
+        if level == 0 and self.spec.dims == 3:
+            spacing = (self.spec.voxel_aspect, 1.0, 1.0)
+            return section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing)
+        centre = stack.shape[0] // 2
+        parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False)]
+        parts += [
+            neighbour_features(stack[k], sigmas=sigmas)
+            for k in range(stack.shape[0])
+            if k != centre
+        ]
+        return np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
+
     def features(self, level, margin):
         """Image features of `level` over the core + `margin` (clipped to the volume); computed
         once per level.
@@ -136,15 +134,7 @@ class _Section:
             stack = self.image(level)[
                 :, rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra
             ]
-            centre = stack.shape[0] // 2
-            sigmas = level_sigmas(self.spec, level)
-            parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False)]
-            parts += [
-                neighbour_features(stack[k], sigmas=sigmas)
-                for k in range(stack.shape[0])
-                if k != centre
-            ]
-            feats = np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
+            feats = self._bank(level, stack)
             self._features[level] = (feats[extra:-extra, extra:-extra], widest)
         feats, widest = self._features[level]
         if widest == margin:
@@ -159,8 +149,9 @@ class _Section:
 class _Frame:
     """One core region with its mirrored halo over the sections its final node needs.
 
-    `image` is (2 z_halo + 1, H, W); section offset d (|d| <= z_halo - neighbours) is made on
-    first use from the sections d - neighbours .. d + neighbours around it.
+    `image` is (2 z_halo + 1, H, W); section offset d (|d| <= z_halo - k, k = image_z_reach) is
+    made on first use from the sections d - k .. d + k around it (a view: slices along z of the
+    stack share its memory).
     """
 
     def __init__(
@@ -178,11 +169,10 @@ class _Frame:
 
     def section(self, offset):
         if offset not in self._sections:
-            n, centre = self.spec.neighbours, self.z_halo + offset
+            n, centre = image_z_reach(self.spec), self.z_halo + offset
             if not 0 <= centre - n and centre + n < self.stack.shape[0]:
                 raise TesseraInputError(f"section offset {offset} lies beyond the frame's sections")
-            # a view (slices along z of a C-contiguous stack are contiguous)
-            stack = np.ascontiguousarray(self.stack[centre - n : centre + n + 1])
+            stack = self.stack[centre - n : centre + n + 1]  # a view, not a copy
             self._sections[offset] = _Section(
                 self.spec, stack, self.core_shape, self.halo, self.margins, self.room
             )
@@ -354,34 +344,6 @@ def _fill_rows(x, sources, start, stop):
         column += source.shape[2]
 
 
-def _reflect_index(start, stop, n):
-    """Indices start..stop-1 reflected into 0..n-1 (half-sample symmetric, repeated)."""
-    idx = np.arange(start, stop) % (2 * n)
-    return np.where(idx < n, idx, 2 * n - 1 - idx)
-
-
-def mirror_beyond_volume(prob, pads):
-    """`prob` padded by `pads` = (top, bottom, left, right) pixels, mirrored (half-sample
-    symmetric, repeated as often as needed).
-
-    A frame computes maps only inside the volume; where its margin reaches beyond a volume
-    edge, the map there is the mirror of the map inside, the edge lying at the computed
-    region's own edge (on a side without a volume edge, the pad is 0).
-
-    Examples
-    --------
-    >>> mirror_beyond_volume(np.array([[1.0, 2.0]]), (0, 0, 3, 1)).tolist()
-    [[2.0, 2.0, 1.0, 1.0, 2.0, 2.0]]
-    """
-    top, bottom, left, right = pads
-    if not any(pads):
-        return prob
-    h, w = prob.shape
-    rows = _reflect_index(-top, h + bottom, h)
-    cols = _reflect_index(-left, w + right, w)
-    return prob[np.ix_(rows, cols)]
-
-
 def node_map(frame, node, margin, classifier, offset=0):
     """(H, W) float32 output of `classifier` on `node`'s features over the core + margin (of
     section `offset`).
@@ -409,7 +371,7 @@ def node_map(frame, node, margin, classifier, offset=0):
 def node_feature_names(spec, stage, level):
     """Names of the columns a node's classifier sees, in order."""
     sigmas = level_sigmas(spec, level)
-    image_names = feature_names(sigmas)
+    image_names = feature_names(sigmas, ndim=3 if spec.dims == 3 and level == 0 else 2)
     for offset in [o for o in range(-spec.neighbours, spec.neighbours + 1) if o]:
         image_names += neighbour_feature_names(sigmas, offset=offset)
     names = [f"L{level}:{n}" for n in image_names]
@@ -423,42 +385,15 @@ def node_feature_names(spec, stage, level):
     return names
 
 
-def volume_room(spec, shape, box):
-    """Level-0 px of the volume beyond a core on each side (top, bottom, left, right), on the
-    2^L grid of the core.
-
-    `shape` is the (Y, X) size of the volume, `box` = (y0, y1, x0, x1) the core. The volume
-    counts as extended to multiples of 2^L, as a core at its far end is. For a core whose
-    origin lies on the 2^L grid (prediction blocks) the values are exact; for another (a
-    training tile) they are rounded down to the grid, so at most 2^L - 1 px of image at an
-    edge is taken as lying beyond it.
-
-    Examples
-    --------
-    >>> from tessera.cascade.spec import CascadeSpec
-    >>> volume_room(CascadeSpec(levels=2), (10, 16), (0, 10, 4, 8))
-    (0, 0, 4, 8)
-    >>> volume_room(CascadeSpec(levels=2), (30, 30), (7, 15, 0, 30))
-    (4, 16, 0, 0)
-    """
-    y0, y1, x0, x1 = (int(v) for v in box)
-    if not (0 <= y0 < y1 <= shape[0] and 0 <= x0 < x1 <= shape[1]):
-        raise TesseraInputError(f"core {box} lies beyond a volume of {tuple(shape)}")
-    ny, nx = padded_core_shape(spec, shape)
-    cy, cx = padded_core_shape(spec, (y1 - y0, x1 - x0))
-    grid = spec.align
-    return tuple(max(0, v) // grid * grid for v in (y0, ny - y0 - cy, x0, nx - x0 - cx))
-
-
 def make_frame(spec, image, core_shape, *, final=None, output_sigma=0.0, room=None):
     """A frame for a core of `core_shape` whose `image` carries the halo of ``receptive_radius``.
 
     The core is extended by mirroring to multiples of 2^L (labels there are ignored).
 
-    `room` (:func:`volume_room`) says where the volume ends: maps are then computed only
-    inside it and mirrored beyond it, so a core at the volume's edge does not classify its
-    halo. Without it (training tiles) every map covers the whole margin, computed on the
-    mirrored image.
+    `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends: maps are
+    then computed only inside it and mirrored beyond it, so a core at the volume's edge does not
+    classify its halo. Without it (training tiles) every map covers the whole margin, computed
+    on the mirrored image.
     """
     halo = receptive_radius(spec, final, output_sigma=output_sigma)
     zh = z_halo(spec, final)
@@ -503,8 +438,8 @@ def share_features(source, target):
         return shared
     if any(min(s, target.halo) != t for s, t in zip(source.room, target.room, strict=True)):
         return shared  # frames of other volumes: their features cover other regions
-    reach = target.z_halo - target.spec.neighbours
-    if reach > source.z_halo - source.spec.neighbours:
+    reach = target.z_halo - image_z_reach(target.spec)
+    if reach > source.z_halo - image_z_reach(source.spec):
         return shared
     for offset in range(-reach, reach + 1):
         into, out_of = target.section(offset), source.section(offset)
@@ -532,7 +467,7 @@ def adopt_sections(frame, previous):
     )
     if not same:
         raise TesseraInputError("frames of different cores or cascades share no sections")
-    reach = frame.z_halo - frame.spec.neighbours
+    reach = frame.z_halo - image_z_reach(frame.spec)
     for offset, section in previous._sections.items():
         if -reach <= offset - 1 <= reach:
             frame._sections[offset - 1] = section

@@ -10,12 +10,12 @@ from tessera.cascade.frame import (
     adopt_sections,
     ensure_maps,
     make_frame,
-    mirrored_stack,
     node_feature_names,
     node_map,
 )
 from tessera.cascade.geometry import (
     feature_halo,
+    image_z_reach,
     level_sigmas,
     margins,
     padded_core_shape,
@@ -24,6 +24,8 @@ from tessera.cascade.geometry import (
     section_reach,
     z_halo,
 )
+from tessera.cascade.mirror import mirrored_stack
+from tessera.cascade.section_features import _CHUNK_VALUES
 from tessera.cascade.spec import (
     context_offsets,
     node_inputs,
@@ -61,7 +63,7 @@ def predict_frame(models, image, core_shape, *, output_sigma=0.0, room=None):
         smoothing of the output raised test F1 on real ssTEM (see the README). The models do not
         depend on it.
     room : (int, int, int, int), optional
-        Where the volume ends around the core (:func:`tessera.cascade.frame.volume_room`): maps
+        Where the volume ends around the core (:func:`tessera.cascade.geometry.volume_room`): maps
         are computed inside the volume only and mirrored beyond it, so a block at an edge (a
         small volume in one block) does not classify its halo. Without it, the halo is
         classified on the mirrored image.
@@ -115,19 +117,43 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
 _CLASSIFIER_ROW_BYTES = 256
 
 
+def _bank_3d(spec, level):
+    return spec.dims == 3 and level == 0
+
+
 def _image_channels(spec, level):
     sigmas = level_sigmas(spec, level)
+    if _bank_3d(spec, level):
+        return len(feature_names(sigmas, ndim=3))
     return len(feature_names(sigmas)) + 2 * spec.neighbours * (1 + 2 * len(sigmas))
+
+
+def _filter_temporaries(spec, level, pixels, channels):
+    """Bytes the filter bank of `level` holds in flight over `pixels`, beyond its output."""
+    scales = len(level_sigmas(spec, level))
+    if not _bank_3d(spec, level):
+        # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
+        # are concatenated (one more copy of the channels)
+        return 4 * pixels * (scales + 8 + (channels if spec.neighbours else 0))
+    # the 3D bank: three weighted sums along z and one smoothed plane per scale, then one
+    # scale's derivatives, gradient products and the float64 work of the 3 x 3 eigenvalues
+    # (measured with tracemalloc: 4 S + 58 planes; 64 leaves room for other numpy versions);
+    # while the sums are made, the sections within reach in float64 (in chunks of at most
+    # _CHUNK_VALUES)
+    sections = 2 * image_z_reach(spec) + 1
+    sums = 4 * pixels * 3 * scales + 8 * min(_CHUNK_VALUES, sections * pixels)
+    return max(4 * pixels * (4 * scales + 64), sums)
 
 
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     """Peak bytes :func:`predict_frame` allocates for one core of `core_shape` (y, x).
 
-    Follows the frame's geometry: the image levels (with neighbouring sections and the sections
-    ``context_sections`` adds, each of which has its own features and maps), every level's
-    cached image features over the widest margin its nodes read, every node's map, and the
-    larger of the filter bank's temporaries and the biggest node's context maps with one band
-    of its feature rows and the classifier's work on it. Everything is float32.
+    Follows the frame's geometry: the image levels (with the sections the image features read
+    and the sections ``context_sections`` adds, each of which has its own features and maps),
+    every level's cached image features over the widest margin its nodes read, every node's
+    map, and the larger of the filter bank's temporaries (2D, or 3D at level 0 with ``dims`` =
+    3) and the biggest node's context maps with one band of its feature rows and the
+    classifier's work on it. Everything is float32.
 
     Examples
     --------
@@ -139,7 +165,8 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     halo = receptive_radius(spec, output_sigma=output_sigma)
     cy, cx = padded_core_shape(spec, core_shape)
     margin = margins(spec, output_sigma=output_sigma)
-    # sections the frame computes maps on; each reads 2 neighbours + 1 sections of the image
+    # sections the frame computes maps on; coarser levels pool the centre and its neighbours
+    # of each (the stack of image_z_reach sections around it is a view of the frame's image)
     used = 2 * section_reach(spec, (1, 0)) + 1
     per_section = 2 * spec.neighbours + 1
     pixels0 = (cy + 2 * halo) * (cx + 2 * halo)
@@ -152,10 +179,7 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
         pixels = ((cy + 2 * widest) // f + 2 * extra) * ((cx + 2 * widest) // f + 2 * extra)
         channels = _image_channels(spec, level)
         cached += 4 * pixels * channels * used
-        # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
-        # are concatenated (one more copy of the channels)
-        temporaries = len(level_sigmas(spec, level)) + 8 + (channels if spec.neighbours else 0)
-        filters = max(filters, 4 * pixels * temporaries)
+        filters = max(filters, _filter_temporaries(spec, level, pixels, channels))
 
     def rows(node, extra_margin=0):
         f = 2 ** node[1]

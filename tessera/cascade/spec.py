@@ -22,6 +22,7 @@ Planning a workflow needs only this module: it imports neither the classifiers' 
 the filter bank's computation.
 """
 
+import math
 from dataclasses import asdict, dataclass, field
 
 from tessera.cascade.classifiers import KINDS
@@ -39,6 +40,7 @@ LIMITS = {
     "neighbours": (0, 4),
     "context_sections": (0, 4),
     "seed": (0, None),
+    "dims": (2, 3),
 }
 STENCIL_RADIUS_LIMITS = (1, 256)  # each radius, pixels of the map's level
 MAX_SIGMA = 64.0  # largest filter-bank scale (px of the level); scales are > 0
@@ -80,6 +82,17 @@ class CascadeSpec:
         (:func:`tessera.cascade.geometry.z_halo`). 0 (the default) reads the own section only.
     seed : int
         Makes sampling, folds and classifiers deterministic.
+    dims : {2, 3}
+        2 (the default): the image features of a section are its 2D filter bank (plus
+        ``neighbours``). 3, for near-isotropic stacks (FIB-SEM): the full-resolution features of
+        a section are the 3D filter bank of the sections around it
+        (:func:`tessera.cascade.section_features.section_filter_bank_3d`); coarser levels pool
+        in plane only and keep the 2D bank of the section. ``neighbours`` must then be 0 (the
+        3D bank already reads the sections around).
+    voxel_aspect : float
+        The working level's z spacing over its in-plane spacing (> 0), with ``dims`` = 3: the
+        3D bank's σ along z is scaled by it (σ counts in pixels of the finest axis). Not used in
+        2D, where it is recorded as 1.0, so a 2D model does not depend on it.
     """
 
     stages: int = 2
@@ -95,6 +108,8 @@ class CascadeSpec:
     neighbours: int = 0
     context_sections: int = 0
     seed: int = 0
+    dims: int = 2
+    voxel_aspect: float = 1.0
 
     def __post_init__(self):
         def fail(msg):
@@ -118,6 +133,7 @@ class CascadeSpec:
         check_int("neighbours")
         check_int("context_sections")
         check_int("seed")
+        self._check_dims(fail, check_int)
         radii = tuple(self.stencil_radii)
         low, high = STENCIL_RADIUS_LIMITS
         if not radii or any(not isinstance(r, int) or not low <= r <= high for r in radii):
@@ -133,6 +149,21 @@ class CascadeSpec:
         for name in ("sigmas", "coarse_sigmas"):
             if max(getattr(self, name)) > MAX_SIGMA:
                 fail(f"{name} must be at most {MAX_SIGMA:g} px, got {getattr(self, name)!r}")
+
+    def _check_dims(self, fail, check_int):
+        check_int("dims")
+        aspect = self.voxel_aspect
+        if isinstance(aspect, bool) or not isinstance(aspect, (int, float)):
+            fail(f"voxel_aspect must be a number > 0, got {aspect!r}")
+        if not (math.isfinite(aspect) and aspect > 0):
+            fail(f"voxel_aspect must be a number > 0, got {aspect!r}")
+        if self.dims == 3 and self.neighbours != 0:
+            fail(
+                f"neighbours must be 0 when dims is 3 (the 3D features read the sections "
+                f"around), got neighbours {self.neighbours!r}"
+            )
+        # the aspect is a setting of the 3D features only: a 2D node does not depend on it
+        object.__setattr__(self, "voxel_aspect", float(aspect) if self.dims == 3 else 1.0)
 
     def to_dict(self):
         out = asdict(self)
@@ -216,11 +247,13 @@ def node_settings(settings):
     """The cascade settings a node depends on: every setting but the number of stages.
 
     A node does not depend on how many stages follow it, so raising the number of stages keeps
-    the earlier nodes valid. ``context_sections`` at 0 is left out as well: models made before
-    the setting existed record no such key, and stay the same files. This is what a node's model records (``meta["spec"]``) and what a
-    workflow passes to the job training a node. `settings` is a :class:`CascadeSpec`, or a
-    mapping of settings such as a configuration's ``cascade`` section (returned as given,
-    without ``stages``). :func:`spec_from_settings` is the way back.
+    the earlier nodes valid. ``context_sections`` at 0, ``dims`` at 2 and ``voxel_aspect`` at 1.0
+    (or with ``dims`` 2, where it is not used) are left out as well: models made before these
+    settings existed record no such keys, and stay the same files. This is what a node's model
+    records (``meta["spec"]``) and what a workflow passes to the job training a node.
+    `settings` is a :class:`CascadeSpec`, or a mapping of settings such as a configuration's
+    ``cascade`` section (returned as given, without ``stages`` and the keys above).
+    :func:`spec_from_settings` is the way back.
 
     Examples
     --------
@@ -229,11 +262,20 @@ def node_settings(settings):
     (False, 1)
     >>> node_settings({"stages": 2, "levels": 1, "folds": 3})
     {'levels': 1, 'folds': 3}
+    >>> node_settings({"levels": 1, "dims": 2, "voxel_aspect": 1.5})
+    {'levels': 1}
+    >>> node_settings({"levels": 1, "dims": 3, "voxel_aspect": 1.5})
+    {'levels': 1, 'dims': 3, 'voxel_aspect': 1.5}
     """
     out = settings.to_dict() if isinstance(settings, CascadeSpec) else dict(settings)
     out.pop("stages", None)
     if out.get("context_sections") == 0:
         out.pop("context_sections")
+    if out.get("dims", 2) == 2:
+        out.pop("dims", None)
+        out.pop("voxel_aspect", None)
+    elif out.get("voxel_aspect") == 1.0:
+        out.pop("voxel_aspect")
     return out
 
 
