@@ -297,7 +297,9 @@ def node_cascade(wildcards):
 
 @functools.lru_cache(maxsize=None)
 def _target_spec(target, stages, levels):
-    cascade = _cascade_and_ladder(target)[0]
+    """The cascade's structure, for planning (a 3D cascade's voxel_aspect, when read from the
+    data by the job training a node, does not change which nodes exist)."""
+    cascade = {k: v for k, v in _cascade_and_ladder(target)[0].items() if v is not None}
     return spec_from_settings({**cascade, "levels": levels}, stages=stages)
 
 

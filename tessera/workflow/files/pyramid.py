@@ -22,3 +22,24 @@ def level_arrays(pyramids, registry, *, downsample):
             )
         arrays[dataset] = working_array(pyramids[dataset], downsample)[0]
     return arrays
+
+
+def working_aspect(pyramids, datasets, *, downsample):
+    """The working level's z spacing over its in-plane spacing, common to `datasets`.
+
+    A 3D cascade scales its filters along z by it (``cascade.voxel_aspect``); left unset in the
+    config, it is read from the data here. Datasets whose aspects differ by more than 5 % cannot
+    share one 3D model: refused, naming them.
+    """
+    aspects = {}
+    for dataset in sorted(datasets):
+        _, spacing, _ = working_array(pyramids[dataset], downsample)
+        aspects[dataset] = spacing[0] / spacing[1]
+    low, high = min(aspects, key=aspects.get), max(aspects, key=aspects.get)
+    if aspects[high] > 1.05 * aspects[low]:
+        raise TesseraInputError(
+            f"datasets {low} and {high} have working-level voxel aspects (z / in-plane) "
+            f"{aspects[low]:.3g} and {aspects[high]:.3g}; a 3D cascade needs one: set "
+            "cascade.voxel_aspect, or use dims 2"
+        )
+    return round(sum(aspects.values()) / len(aspects), 4)

@@ -17,7 +17,6 @@ from tessera.cascade.api import (
     frame_memory_bytes,
     node_feature_names,
     nodes,
-    z_halo,
 )
 from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.atomic import atomic_path
@@ -25,6 +24,7 @@ from tessera.io.digests import file_sha256
 from tessera.io.omezarr import AXES, level_origin, multiscale_attrs
 from tessera.io.store_checksums import record_checksums
 from tessera.predict import (
+    block_read_bytes,
     halo_overhead,
     plan_fits_cascade,
     plan_shards,
@@ -63,6 +63,13 @@ def shard_plan_job(
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
     array, spacing, factors = working_array(pyramid, downsample)
+    aspect = spacing[0] / spacing[1]
+    if spec.dims == 3 and not 1 / 1.05 <= aspect / spec.voxel_aspect <= 1.05:
+        raise TesseraInputError(
+            f"{pyramid}: working-level voxel aspect (z / in-plane) {aspect:.3g}, but the 3D "
+            f"model was trained at {spec.voxel_aspect:.3g}: its filters would have another "
+            "shape along z; train on data of this voxel size"
+        )
     plan = plan_shards(
         array.shape,
         block=block,
@@ -97,8 +104,9 @@ def shard_memory_mb(plan, job, spec, model_paths):
 
     A block is predicted section by section; one section's frame (core + halo) is estimated by
     :func:`tessera.cascade.api.frame_memory_bytes` from the block's shape, the halo and the
-    feature count of each node. The block's float32 probabilities and their encoding, and the
-    raw windows read from the image, come on top.
+    feature count of each node. The block's image, read once with its halo and z halo
+    (:func:`tessera.predict.block_read_bytes`), its float32 probabilities and their encoding
+    come on top.
 
     Examples
     --------
@@ -111,7 +119,6 @@ def shard_memory_mb(plan, job, spec, model_paths):
     """
     output_sigma = plan.get("output_sigma", 0.0)
     halo = plan["halo"]
-    sections = 2 * z_halo(spec) + 1
     itemsize = np.dtype(plan["dtype"]).itemsize
     shapes = {
         (b[1] - b[0], b[3] - b[2], b[5] - b[4])
@@ -119,7 +126,8 @@ def shard_memory_mb(plan, job, spec, model_paths):
     }
     worst = 0
     for z, y, x in shapes:
-        window = 3 * sections * (y + 2 * halo) * (x + 2 * halo)  # uint8 read, mirrored copy, stack
+        # the image is read as stored (uint8 after ingest)
+        window = block_read_bytes(spec, (z, y, x), halo=halo, itemsize=1)
         block = (
             z * y * x * (4 * 4 + itemsize)
         )  # probabilities, clip/scale/round temporaries, encoded

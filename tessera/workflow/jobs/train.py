@@ -14,7 +14,7 @@ from tessera.errors import TesseraInputError
 from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
-from tessera.workflow.files.pyramid import level_arrays
+from tessera.workflow.files.pyramid import level_arrays, working_aspect
 from tessera.workflow.files.scores import write_scores
 from tessera.workflow.files.tile_probabilities import write_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
@@ -55,10 +55,18 @@ def train_node_job(
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
     """
-    spec = spec_from_settings(cascade, stages=stage)
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
+    cascade = dict(cascade)
+    if cascade.get("voxel_aspect") is None:
+        # unset: a 3D cascade takes it from the data; a 2D one does not use it
+        cascade.pop("voxel_aspect", None)
+        if cascade.get("dims") == 3:
+            cascade["voxel_aspect"] = working_aspect(
+                pyramids, set(registry["dataset"]), downsample=downsample
+            )
+    spec = spec_from_settings(cascade, stages=stage)
     # refuses models of other settings
     models = load_cascade(upstream, target=target, spec=spec)
     for a in ancestors(spec, node)[:-1]:
