@@ -93,10 +93,21 @@ def test_benchmark_pixel_scores_follow_their_definitions():
     assert s["jaccard"] == pytest.approx(2 / 5)
 
 
+def test_boundary_band_is_dilation_minus_erosion():
+    bench = _benchmark()
+    truth = np.zeros((1, 11, 11), np.uint8)
+    truth[0, 3:8, 3:8] = 1
+    band = bench.boundary_band(truth, width=1)
+    # worked by hand: a 5 x 5 square dilated by the 4-connected cross covers 7 x 7 less its 4
+    # corners (45 px), eroded leaves 3 x 3 (9 px): the band is 36 px, the square's centre out
+    assert band.sum() == 36
+    assert not band[0, 5, 5] and band[0, 2, 5] and band[0, 3, 3] and not band[0, 2, 2]
+
+
 def test_benchmark_data_path_at_a_tiny_size():
     bench = _benchmark()
     seeds = {"train": 2, "validation": 20, "test": 21}  # small fields holding mitochondria
-    volumes = bench.fibsem_volumes(shape=(32, 128, 128), spacing_nm=8.0, factor=2, seeds=seeds)
+    volumes = bench.fibsem_volumes(seeds=seeds, shape=(32, 128, 128), spacing_nm=8.0, factor=2)
     assert {v["image"].shape for v in volumes.values()} == {(16, 64, 64)}
     assert all(v["truth"].any() for v in volumes.values())
     small = dict(
@@ -112,6 +123,7 @@ def test_benchmark_data_path_at_a_tiny_size():
     assert set(out) == {"2d", "3d"}
     for r in out.values():
         assert 0.0 <= r["precision"] <= 1.0 and 0.0 <= r["jaccard"] <= r["f1"] <= 1.0
+        assert 0.0 < r["boundary_f1"] < 1.0
         # Jaccard = F1 / (2 - F1) (both from TP, FP, FN; common practice)
         assert r["jaccard"] == pytest.approx(r["f1"] / (2 - r["f1"]))
         # dark mitochondria on a lighter cytoplasm: even this tiny model finds them
