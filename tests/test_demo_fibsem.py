@@ -74,6 +74,8 @@ def test_render_isotropic_is_the_block_mean_of_the_render():
         TesseraInputError, match=r"shape must be a multiple of factor 2, got \(15, 64, 96\)"
     ):
         render_isotropic(seed=4, shape=(15, 64, 96), factor=2)
+    with pytest.raises(TesseraInputError, match=r"factor must be an integer >= 1, got 0"):
+        render_isotropic(seed=4, shape=(16, 64, 96), factor=0)
 
 
 def test_benchmark_pixel_scores_follow_their_definitions():
