@@ -121,9 +121,9 @@ def test_sections_read_back_equal_to_the_array_written(tmp_path, kind, dtype):
 
 
 # Attribute conventions (common practice, from memory): `resolution` in nm, z, y, x in HDF5 and
-# zarr volumes (the CREMI challenge files) but x, y, z in N5 (the N5 viewer's habit);
-# `pixelResolution` = {"dimensions": [x, y, z], "unit": ...} in N5; `element_size_um` in µm,
-# z, y, x (ilastik and Fiji's HDF5 files).
+# zarr volumes (as open segmentation-benchmark volumes store it) but x, y, z in N5 (as N5 tools
+# write it); `pixelResolution` = {"dimensions": [x, y, z], "unit": ...} in N5; `element_size_um`
+# in µm, z, y, x (as common image-analysis tools write HDF5).
 @pytest.mark.parametrize(
     ("kind", "attrs"),
     [

@@ -24,6 +24,21 @@ def level_arrays(pyramids, registry, *, downsample):
     return arrays
 
 
+# Voxel aspects (z / in-plane) closer than this factor count as one for a 3D cascade.
+ASPECT_TOLERANCE = 1.05
+
+
+def aspects_agree(a, b):
+    """Whether two working-level voxel aspects are close enough to share one 3D model.
+
+    Examples
+    --------
+    >>> aspects_agree(1.0, 1.04), aspects_agree(1.0, 1.1)
+    (True, False)
+    """
+    return 1 / ASPECT_TOLERANCE <= a / b <= ASPECT_TOLERANCE
+
+
 def working_aspect(pyramids, datasets, *, downsample):
     """The working level's z spacing over its in-plane spacing, common to `datasets`.
 
@@ -36,7 +51,7 @@ def working_aspect(pyramids, datasets, *, downsample):
         _, spacing, _ = working_array(pyramids[dataset], downsample)
         aspects[dataset] = spacing[0] / spacing[1]
     low, high = min(aspects, key=aspects.get), max(aspects, key=aspects.get)
-    if aspects[high] > 1.05 * aspects[low]:
+    if not aspects_agree(aspects[high], aspects[low]):
         raise TesseraInputError(
             f"datasets {low} and {high} have working-level voxel aspects (z / in-plane) "
             f"{aspects[low]:.3g} and {aspects[high]:.3g}; a 3D cascade needs one: set "

@@ -35,7 +35,7 @@ from tessera.probability_encoding import encode_probability
 from tessera.pyramid import downsample_level
 from tessera.workflow.files.node_model import load_cascade, models_bytes
 from tessera.workflow.files.probability_map import probability_metadata
-from tessera.workflow.files.pyramid import working_array
+from tessera.workflow.files.pyramid import aspects_agree, working_array
 from tessera.workflow.files.shard_plan import read_plan, write_plan
 from tessera.workflow.files.shards import verified_blocks, write_shard
 from tessera.workflow.resources import more_memory_hint
@@ -64,7 +64,7 @@ def shard_plan_job(
     spec = cascade_spec(models)
     array, spacing, factors = working_array(pyramid, downsample)
     aspect = spacing[0] / spacing[1]
-    if spec.dims == 3 and not 1 / 1.05 <= aspect / spec.voxel_aspect <= 1.05:
+    if spec.dims == 3 and not aspects_agree(aspect, spec.voxel_aspect):
         raise TesseraInputError(
             f"{pyramid}: working-level voxel aspect (z / in-plane) {aspect:.3g}, but the 3D "
             f"model was trained at {spec.voxel_aspect:.3g}: its filters would have another "
