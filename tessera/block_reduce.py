@@ -40,14 +40,24 @@ def block_mean(image, factors):
         raise TesseraInputError(f"factors must be {image.ndim} integers >= 1, got {factors}")
     if image.size == 0:
         raise TesseraInputError("cannot downsample an empty image")
-    out_shape = tuple(-(-s // f) for s, f in zip(image.shape, factors, strict=True))
-    padded_shape = tuple(o * f for o, f in zip(out_shape, factors, strict=True))
-    pad = [(0, p - s) for p, s in zip(padded_shape, image.shape, strict=True)]
-    data = np.pad(image.astype(np.float32), pad)
-    counts = np.pad(np.ones(image.shape, dtype=np.float32), pad)
-    split = [d for o, f in zip(out_shape, factors, strict=True) for d in (o, f)]
-    axes = tuple(range(1, 2 * image.ndim, 2))
-    # float64 sums keep the average exact for 8/16-bit input before the final float32 cast.
-    sums = data.reshape(split).sum(axis=axes, dtype=np.float64)
-    n = counts.reshape(split).sum(axis=axes, dtype=np.float64)
-    return (sums / n).astype(np.float32)
+    # Sum each axis in turn over strided slices (k::f), in float64 so that the average is
+    # exact for 8/16-bit input before the final float32 cast; a block cut by the edge gets
+    # fewer terms, and the count of each block is the product of its per-axis counts.
+    sums = image
+    for axis, f in enumerate(factors):
+        if f == 1:
+            continue
+        n = image.shape[axis]
+        lead = (slice(None),) * axis
+        acc = sums[lead + (slice(0, None, f),)].astype(np.float64)
+        for k in range(1, min(f, n)):
+            part = sums[lead + (slice(k, None, f),)]
+            acc[lead + (slice(0, part.shape[axis]),)] += part
+        sums = acc
+    sums = np.asarray(sums, dtype=np.float64)
+    count = np.ones((), np.float64)
+    for axis, f in enumerate(factors):
+        n, out = image.shape[axis], sums.shape[axis]
+        per = np.minimum(f, n - f * np.arange(out)).astype(np.float64)
+        count = count * per.reshape((-1,) + (1,) * (image.ndim - axis - 1))
+    return (sums / count).astype(np.float32)

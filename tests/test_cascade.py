@@ -344,6 +344,23 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
         assert "not a readable model file (truncated or damaged?)" in str(error.value)
 
 
+def test_a_flipped_bit_anywhere_in_a_model_file_is_refused_in_one_line(trained, tmp_path):
+    # Wherever one bit flips (zip headers, a deflate stream, the stored checksum), loading gives
+    # TesseraInputError, never zlib's or zipfile's own exception (zip format: per-member CRC-32
+    # and deflate streams, PKWARE APPNOTE; a flip in a deflate stream can fail before the CRC).
+    spec, _, models = trained
+    path = tmp_path / "stage1_level0.npz"
+    save_node(models[(1, 0)], path)
+    data = path.read_bytes()
+    for offset in range(0, len(data), max(1, len(data) // 97)):
+        path.write_bytes(_flip(data, offset))
+        try:
+            read_node(path, target="blobs")
+        except TesseraInputError as error:
+            assert str(error).startswith(f"{path}: "), offset
+        # a flip in bytes nothing reads (zip comment, padding) may leave the model intact
+
+
 def test_the_library_names_no_rule_and_ends_with_the_callers_hint(trained, tmp_path):
     # The cascade knows nothing of the workflow: without a hint its message says what to do in
     # its own terms; a caller that knows how the file is made says so instead.

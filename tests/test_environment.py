@@ -45,6 +45,7 @@ def test_every_third_party_import_of_the_package_is_locked(repo):
         "skimage": "scikit-image",
         "sklearn": "scikit-learn",
         "PIL": "pillow",
+        "cv2": "opencv-python-headless",
         "mpl_toolkits": "matplotlib",
     }  # mplot3d ships inside matplotlib
     lock = _lock(repo)

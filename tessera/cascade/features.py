@@ -14,14 +14,12 @@ finest axis). Output is float32, channels last; edges are mirrored, never zero-p
 import math
 
 import numpy as np
-from scipy import ndimage
 
+from tessera.cascade.smoothing import gaussian_smooth, kernel_radius
 from tessera.errors import TesseraInputError
 from tessera.spacing import normalize_spacing
 
 DEFAULT_SIGMAS = (0.7, 1.6, 3.5, 5.0, 10.0)
-_MODE = "reflect"  # scipy's half-sample mirror, the same as numpy's pad mode "symmetric"
-_TRUNCATE = 4.0
 
 
 def _check_sigmas(sigmas):
@@ -68,7 +66,7 @@ def feature_radius(sigmas=DEFAULT_SIGMAS):
     20
     """
     s = max(_check_sigmas(sigmas))
-    reach = int(_TRUNCATE * s + 0.5)
+    reach = kernel_radius(s)
     return 2 * reach + 4
 
 
@@ -170,7 +168,7 @@ def _scale_channels(channels, g, following, s, ratio, steps):
     if ndim == 2:
         channels.extend(norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1]))
         j = [
-            ndimage.gaussian_filter(p, integ, mode=_MODE, truncate=_TRUNCATE)
+            gaussian_smooth(p, integ)
             for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
         ]
         channels.extend(_eigvals_sym2(*j))
@@ -178,10 +176,7 @@ def _scale_channels(channels, g, following, s, ratio, steps):
         h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
         channels.extend(norm * e for e in _eigvals_sym3(h))
         pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
-        j = [
-            ndimage.gaussian_filter(grads[a] * grads[b], integ, mode=_MODE, truncate=_TRUNCATE)
-            for a, b in pairs
-        ]
+        j = [gaussian_smooth(grads[a] * grads[b], integ) for a, b in pairs]
         channels.extend(_eigvals_sym3(j))
 
 
@@ -241,10 +236,7 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     out = np.moveaxis(planes, 0, -1)
     channels = _ChannelWriter(out)
     channels.append(data)
-    smoothed_all = [
-        ndimage.gaussian_filter(data, [s * r for r in ratio], mode=_MODE, truncate=_TRUNCATE)
-        for s in sigmas
-    ]
+    smoothed_all = [gaussian_smooth(data, [s * r for r in ratio]) for s in sigmas]
     for i, s in enumerate(sigmas):
         following = smoothed_all[i + 1] if i + 1 < len(sigmas) else None
         _scale_channels(channels, smoothed_all[i], following, s, ratio, steps)
@@ -278,7 +270,7 @@ def neighbour_features(section, *, sigmas=DEFAULT_SIGMAS):
     sigmas = _check_sigmas(sigmas)
     channels = [section]
     for s in sigmas:
-        g = ndimage.gaussian_filter(section, s, mode=_MODE, truncate=_TRUNCATE)
+        g = gaussian_smooth(section, s)
         gy, gx = _derivatives(g, (1.0, 1.0))
         lap = _derivatives(gy, (1.0, 1.0))[0] + _derivatives(gx, (1.0, 1.0))[1]
         channels += [g, np.float32(s * s) * lap]

@@ -2,7 +2,6 @@
 memory one frame takes."""
 
 import numpy as np
-from scipy import ndimage
 
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
@@ -26,6 +25,7 @@ from tessera.cascade.geometry import (
 )
 from tessera.cascade.mirror import mirrored_stack
 from tessera.cascade.section_features import _CHUNK_VALUES
+from tessera.cascade.smoothing import gaussian_smooth
 from tessera.cascade.spec import (
     context_offsets,
     node_inputs,
@@ -90,7 +90,7 @@ def predict_frames(models, images, core_shape, *, output_sigma=0.0, room=None):
         prob = node_map(frame, final, margin, models[final].classifier)
         if output_sigma > 0:
             # the map covers core + margin >= the kernel's reach: every core pixel sees real values
-            prob = ndimage.gaussian_filter(prob, output_sigma, mode="reflect", truncate=4.0)
+            prob = gaussian_smooth(prob, output_sigma)
         previous = frame if spec.context_sections else None
         yield prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
 

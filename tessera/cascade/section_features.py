@@ -17,17 +17,15 @@ gradient products are integrated in plane only (see :func:`section_filter_bank_3
 import math
 
 import numpy as np
-from scipy import ndimage
 
 from tessera.cascade.features import (
-    _MODE,
-    _TRUNCATE,
     DEFAULT_SIGMAS,
     _ChannelWriter,
     _check_sigmas,
     _derivatives,
     feature_names,
 )
+from tessera.cascade.smoothing import gaussian_smooth, gaussian_weights, kernel_radius
 from tessera.errors import TesseraInputError
 from tessera.spacing import normalize_spacing
 
@@ -46,13 +44,8 @@ def _axis_ratios(spacing):
     return tuple(finest / s for s in spacing)
 
 
-def _kernel_radius(sigma):
-    # scipy.ndimage.gaussian_filter's kernel radius for truncate = _TRUNCATE
-    return int(_TRUNCATE * sigma + 0.5)
-
-
 def _reach(sigmas, ratios):
-    return _kernel_radius(max(sigmas) * ratios[0]) + _Z_DIFFERENCE_REACH
+    return kernel_radius(max(sigmas) * ratios[0]) + _Z_DIFFERENCE_REACH
 
 
 def section_bank_z_reach(sigmas=DEFAULT_SIGMAS, *, spacing):
@@ -132,19 +125,11 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22):
     return [e.astype(np.float32) for e in (largest, middle, smallest)]
 
 
-def _gaussian_weights(sigma):
-    """The 1D kernel scipy.ndimage.gaussian_filter builds: radius int(4 σ + 0.5), sum 1."""
-    radius = _kernel_radius(sigma)
-    x = np.arange(-radius, radius + 1, dtype=np.float64)
-    w = np.exp(-0.5 * (x / sigma) ** 2)
-    return w / w.sum()
-
-
 def _z_weights(sigma_z):
     """(3, 2 k + 1) weights over sections -k..k (k = this σ's own z reach) giving the centre's
     z-smoothed plane, its central z difference and the central difference of that (the second
     z difference)."""
-    w = _gaussian_weights(sigma_z)
+    w = gaussian_weights(sigma_z)
     radius = (w.size - 1) // 2
     reach = radius + _Z_DIFFERENCE_REACH
 
@@ -201,9 +186,7 @@ def _scale_channels_3d(channels, planes, following, s, inplane):
     the z-smoothed first and second z differences, not yet smoothed in plane; `following` is
     the centre plane smoothed at the next σ (None for the last scale)."""
     g, dz, dzz = planes
-    gz, zz = (
-        ndimage.gaussian_filter(p, inplane, mode=_MODE, truncate=_TRUNCATE) for p in (dz, dzz)
-    )
+    gz, zz = (gaussian_smooth(p, inplane) for p in (dz, dzz))
     gy, gx = _derivatives(g, _UNIT_STEPS)
     zy, zx = _derivatives(gz, _UNIT_STEPS)
     yy, yx = _derivatives(gy, _UNIT_STEPS)
@@ -218,11 +201,7 @@ def _scale_channels_3d(channels, planes, following, s, inplane):
     channels.extend(norm * e for e in symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx))
     grads = (gz, gy, gx)
     products = [grads[a] * grads[b] for a, b in ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))]
-    channels.extend(
-        symmetric_eigenvalues_3x3(
-            *(ndimage.gaussian_filter(p, inplane, mode=_MODE, truncate=_TRUNCATE) for p in products)
-        )
-    )
+    channels.extend(symmetric_eigenvalues_3x3(*(gaussian_smooth(p, inplane) for p in products)))
 
 
 def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
@@ -291,10 +270,7 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
     window = stack[r - reach : r + reach + 1]
     planes = _weighted_sections(window, [_z_weights(s * ratios[0]) for s in sigmas])
     inplane = [(s * ratios[1], s * ratios[2]) for s in sigmas]
-    smoothed = [
-        ndimage.gaussian_filter(planes[i, 0], inplane[i], mode=_MODE, truncate=_TRUNCATE)
-        for i in range(len(sigmas))
-    ]
+    smoothed = [gaussian_smooth(planes[i, 0], inplane[i]) for i in range(len(sigmas))]
     # channel planes written in place, the result a channels-last view (as in filter_bank)
     out_planes = np.empty(
         (len(feature_names(sigmas, ndim=3)),) + window.shape[1:], dtype=np.float32

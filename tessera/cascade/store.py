@@ -5,6 +5,7 @@ import hashlib
 import io
 import json
 import zipfile
+import zlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -204,7 +205,8 @@ def _read_plain_arrays(path, hint):
         raise
     except FileNotFoundError:
         raise TesseraInputError(f"model file not found; {hint}", source=path) from None
-    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as exc:
+    # zlib.error: a damaged deflate stream can fail before the member's CRC-32 is checked
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as exc:
         raise TesseraInputError(
             f"not a readable model file (truncated or damaged?): {exc}; {hint}", source=path
         ) from None

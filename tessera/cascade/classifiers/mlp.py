@@ -1,6 +1,7 @@
 """A small multilayer perceptron: fitted by scikit-learn's ``MLPClassifier``, predicted by a numpy
 forward pass over the stored weights (no scikit-learn object is needed to predict)."""
 
+import threading
 import warnings
 
 import numpy as np
@@ -103,9 +104,15 @@ class MLPBinaryClassifier(BinaryClassifier):
         h = X
         last = len(layers) - 1
         for layer, (W, b) in enumerate(layers):
-            h = h @ W + b
+            # each layer's output goes into a buffer kept between calls: prediction calls this
+            # for band after band of rows, and fresh arrays of a megabyte or more cost page
+            # faults on every call (the numbers are those of ``h @ W + b``, bit for bit)
+            out = _scratch(layer, X.shape[0], W.shape[1])
+            np.matmul(h, W, out=out)
+            np.add(out, b, out=out)
             if layer < last:
-                np.maximum(h, 0, out=h)
+                np.maximum(out, np.float32(0), out=out)
+            h = out
         return expit(h[:, 0]).astype(np.float32)
 
     def _arrays(self):
@@ -132,3 +139,21 @@ class MLPBinaryClassifier(BinaryClassifier):
         if not all(np.isfinite(a).all() for a in self.coefs_ + self.intercepts_):
             raise TesseraInputError("MLP weights have non-finite values", source=STATE_SOURCE)
         self.estimator_ = None
+
+
+# Buffers of the layers' outputs, one set per thread, shared by every network of the process:
+# kept only for bands of rows up to this size (prediction's bands), so a large one-off matrix
+# does not stay allocated.
+_KEPT_ROWS = 2**14
+_SCRATCH = threading.local()
+
+
+def _scratch(layer, rows, width):
+    """A (rows, width) float32 buffer for `layer`'s output, reused between calls."""
+    if rows > _KEPT_ROWS:
+        return np.empty((rows, width), np.float32)
+    buffers = _SCRATCH.__dict__.setdefault("buffers", {})
+    buffer = buffers.get((layer, width))
+    if buffer is None or buffer.shape[0] < rows:
+        buffer = buffers[(layer, width)] = np.empty((rows, width), np.float32)
+    return buffer[:rows]
