@@ -1,8 +1,7 @@
-"""A small multilayer perceptron: fitted by scikit-learn's ``MLPClassifier``, predicted by a numpy
-forward pass over the stored weights (no scikit-learn object is needed to predict)."""
+"""A small multilayer perceptron: fitted and predicted in numpy (:mod:`.network_fit`), stored as
+plain weight arrays."""
 
 import threading
-import warnings
 
 import numpy as np
 from scipy.special import expit
@@ -14,6 +13,7 @@ from tessera.cascade.classifiers.base import (
     float_option,
     int_option,
 )
+from tessera.cascade.classifiers.network_fit import fit_network
 from tessera.cascade.classifiers.scaling import (
     check_scale,
     folded_first_layer,
@@ -24,7 +24,7 @@ from tessera.errors import TesseraInputError
 
 
 class MLPBinaryClassifier(BinaryClassifier):
-    """Small multilayer perceptron: scikit-learn ``MLPClassifier`` to fit, numpy to predict.
+    """Small multilayer perceptron (ReLU hidden layers, logistic output), trained by Adam.
 
     Options
     -------
@@ -35,15 +35,18 @@ class MLPBinaryClassifier(BinaryClassifier):
     learning_rate_init : float, default 1e-3
         Step size of Adam.
     max_iter : int, default 30
-        Epochs. Fitting stops here even when the loss still falls, so scikit-learn's
-        ``ConvergenceWarning`` is silenced on purpose: a capped budget is the intended behaviour.
+        Epochs: a fixed budget, every epoch is run.
 
     Notes
     -----
-    Features are standardised (mean and scale stored). scikit-learn 1.9 accepts ``sample_weight``
-    in ``MLPClassifier.fit``; it is passed through. Hidden units are ReLU and the output is
-    logistic, as in scikit-learn's binary ``MLPClassifier``; the state is its ``coefs_`` and
-    ``intercepts_`` as float32.
+    Features are standardised (mean and scale stored). Training
+    (:func:`tessera.cascade.classifiers.network_fit.fit_network`) minimises the sample-weighted
+    cross-entropy with an L2 penalty by minibatch Adam, in float32; the network is the one of
+    scikit-learn's binary ``MLPClassifier`` with ReLU units, and its forward pass agrees with
+    that class's ``predict_proba`` given the same weights (tested). A node's four fits take
+    about a second each instead of ten to twenty with the general-purpose trainer, which spent
+    most of its time in per-batch bookkeeping. The state is ``coefs_`` and ``intercepts_`` as
+    float32.
     """
 
     kind = "mlp"
@@ -69,31 +72,26 @@ class MLPBinaryClassifier(BinaryClassifier):
             "max_iter": int_option("max_iter", o["max_iter"], 1),
         }
 
-    def _fit(self, X, y, w):
-        from sklearn.exceptions import ConvergenceWarning  # noqa: PLC0415 - scikit-learn (~1 s) stays out of workflow planning
-        from sklearn.neural_network import MLPClassifier  # noqa: PLC0415 - scikit-learn (~1 s) stays out of workflow planning
+    def _versions(self):
+        return {"numpy": np.__version__}
 
+    def _fit(self, X, y, w):
         o = self.options
         self.mean_, self.scale_ = standardisation(X)
-        model = MLPClassifier(
-            hidden_layer_sizes=o["hidden_layer_sizes"],
-            activation="relu",
-            solver="adam",
-            alpha=o["alpha"],
-            batch_size=min(o["batch_size"], X.shape[0]),
-            learning_rate_init=o["learning_rate_init"],
-            max_iter=o["max_iter"],
-            early_stopping=False,
-            shuffle=True,
-            random_state=self.seed,
-        )
-        with threadpool_limits(limits=self.threads), warnings.catch_warnings():
-            # The epoch budget is a deliberate cap (see the class notes), not a failure.
-            warnings.filterwarnings("ignore", category=ConvergenceWarning)
-            model.fit(standardise(X, self.mean_, self.scale_), y, sample_weight=w)
-        self.estimator_ = model
-        self.coefs_ = [c.astype(np.float32) for c in model.coefs_]
-        self.intercepts_ = [c.astype(np.float32) for c in model.intercepts_]
+        with threadpool_limits(limits=self.threads):
+            layers = fit_network(
+                standardise(X, self.mean_, self.scale_),
+                y,
+                sample_weight=w,
+                hidden=o["hidden_layer_sizes"],
+                alpha=o["alpha"],
+                batch_size=o["batch_size"],
+                learning_rate=o["learning_rate_init"],
+                epochs=o["max_iter"],
+                seed=self.seed,
+            )
+        self.coefs_ = [W for W, _ in layers]
+        self.intercepts_ = [b for _, b in layers]
 
     def _predict_chunk(self, X):
         if self._folded is None:
@@ -138,7 +136,6 @@ class MLPBinaryClassifier(BinaryClassifier):
         self.intercepts_ = [arrays[f"intercept_{i}"] for i in range(n)]
         if not all(np.isfinite(a).all() for a in self.coefs_ + self.intercepts_):
             raise TesseraInputError("MLP weights have non-finite values", source=STATE_SOURCE)
-        self.estimator_ = None
 
 
 # Buffers of the layers' outputs, one set per thread, shared by every network of the process:
