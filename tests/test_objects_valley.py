@@ -188,3 +188,52 @@ def test_config_refuses_a_valley_probability_out_of_range_naming_the_key(repo):
     )
     loaded = load_config(config({"split_valley_probability": None}), schema)
     assert loaded["targets"]["mito"]["objects"]["split_valley_probability"] is None
+
+
+def test_a_filled_cavity_counts_as_sure():
+    # A cavity enclosed in the sure waist of the dumbbell above is filled (step 4) and belongs
+    # to the organelle: its low probability must not open a valley there. Were it counted at
+    # its probability (0), the waist would be a ring ~30 nm thick (Euclid: (180 - 120) / 2) and
+    # the dumbbell would split.
+    p = dumbbell(SPACING, waist_p=0.95)
+    zz, yy, xx = (g * s for g, s in zip(np.indices(p.shape), SPACING, strict=True))
+    p[(zz - 400.0) ** 2 + (yy - 300.0) ** 2 + (xx - 600.0) ** 2 <= 120.0**2] = 0.0
+    out = np.zeros(p.shape, np.uint32)
+    table = label_objects(
+        p,
+        out,
+        spacing=SPACING,
+        high=0.5,
+        block=(8, 32, 32),
+        fill_max_voxels=10**9,
+        split_min_depth_nm=40,
+        split_valley_probability=0.9,
+    )
+    assert len(table) == 1 and table["cavities_filled"].all()
+    np.testing.assert_array_equal(out > 0, ndimage.binary_fill_holes(p >= 0.5))
+
+
+def test_an_excluded_section_is_bridged_before_the_split_reads_it():
+    # A sure rod (0.95) crosses a section QC excluded whose probabilities are lost (0). The mask
+    # bridges it from the sections above and below (linear interpolation), and so must the
+    # split: read as it is stored, the lost section would be a valley and cut the rod in two.
+    spacing = (40.0, 10.0, 10.0)
+    shape = (24, 40, 40)
+    zz, yy, xx = (g * s for g, s in zip(np.indices(shape), spacing, strict=True))
+    p = np.where((yy - 200.0) ** 2 + (xx - 200.0) ** 2 <= 150.0**2, 0.95, 0.0)
+    p[(zz < 40.0) | (zz > 880.0)] = 0.0
+    p = p.astype(np.float32)
+    p[12] = 0.0
+    out = np.zeros(shape, np.uint32)
+    table = label_objects(
+        p,
+        out,
+        spacing=spacing,
+        high=0.5,
+        block=(8, 16, 16),
+        excluded_sections=[12],
+        split_min_depth_nm=40,
+        split_valley_probability=0.9,
+    )
+    assert len(table) == 1 and table["touches_excluded_section"].all()
+    assert out[12].any() and len(np.unique(out[out > 0])) == 1
