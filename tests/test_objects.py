@@ -364,22 +364,35 @@ def split_reference(p, *, high, low, depth, spacing=SPACING, connectivity=26, va
     distance transform of the whole mask with scipy (sampling = spacing, nm) plus tessera's
     documented tie-breaker, markers from scikit-image's h-maxima within each object (its
     highest point when none stands out), and scikit-image's watershed of the whole volume;
-    pieces numbered in raster order of their first voxel. With `valley`, the distance is first
-    scaled by min(p / valley, 1), filled cavities counting as p = 1 (as documented)."""
+    pieces numbered in raster order of their first voxel. With `valley`, the watershed runs on
+    the distance scaled by min(p / valley, 1) (filled cavities counting as p = 1), from its
+    h-maxima plus each h-maximum of the plain distance whose basin holds none of them (the
+    documented rule)."""
     st = connectivity_structure(connectivity)
     objects = reference(p, high=high, low=low, connectivity=connectivity)
-    distance = ndimage.distance_transform_edt(objects > 0, sampling=spacing)
+    plain = ndimage.distance_transform_edt(objects > 0, sampling=spacing)
+    distance = plain.copy()
     if valley is not None:
         sure = np.where((objects > 0) & ~(p > low), 1.0, p.astype(np.float64))
         distance *= np.minimum(sure / valley, 1.0)
     distance += tie_breaker(objects.shape)
+    plain += tie_breaker(objects.shape)
     markers = np.zeros(objects.shape, np.int64)
     for k in range(1, objects.max() + 1):
         mine = np.where(objects == k, distance, 0.0)
         peaks = h_maxima(mine, float(depth), footprint=st) > 0
-        if not peaks.any():
-            peaks[np.unravel_index(np.argmax(mine), mine.shape)] = True
-        lab, _ = ndimage.label(peaks, st)
+        lab, n = ndimage.label(peaks, st)
+        shape_peaks, m = ndimage.label(
+            h_maxima(np.where(objects == k, plain, 0.0), float(depth), footprint=st) > 0, st
+        )
+        if valley is not None and m > 1:
+            basins = watershed(-plain, shape_peaks, mask=objects == k, connectivity=st)
+            for j in range(1, m + 1):
+                if not peaks[basins == j].any():
+                    n += 1
+                    lab[shape_peaks == j] = n
+        if n == 0:
+            lab[np.unravel_index(np.argmax(mine), mine.shape)] = 1
         markers[lab > 0] = lab[lab > 0] + markers.max()
     pieces = watershed(-distance, markers, mask=objects > 0, connectivity=st)
     ids, first = np.unique(pieces.ravel(), return_index=True)

@@ -15,7 +15,9 @@ With a `probability` and a `valley_probability` v, the distance of each voxel is
 ``min(p / v, 1)`` before seeds and watershed are computed (:func:`valley_height`): a voxel as
 sure as v or surer keeps its distance, a less sure one is lowered in proportion. A dip of
 probability across the contact becomes a saddle between two maxima (and the watershed's cut
-follows it), while an organelle whose waist is as sure as v is split by its shape alone.
+follows it), while an organelle whose waist is as sure as v is split by its shape alone. The
+probability only adds seeds: a seed of the shape whose basin the scaled distance leaves without
+one is kept (:func:`valley_seeds`).
 """
 
 import numpy as np
@@ -77,6 +79,49 @@ def valley_height(distance, probability, *, valley_probability):
     """
     scale = np.minimum(np.asarray(probability, np.float64) / float(valley_probability), 1.0)
     return distance * scale
+
+
+def valley_seeds(valley, height, seeds, *, mask, min_depth_nm, structure):
+    """Seeds of the split with the probability: those of `valley`, plus every seed of the shape
+    whose basin holds none of them.
+
+    Scaling can only lower the distance, so a maximum of the shape in an unsure region may sink
+    below `min_depth_nm` in `valley`; its organelle would then be merged with a neighbour the
+    shape alone separates. Keeping the shape's seed of every basin (the watershed of `height`
+    from `seeds`) that `valley` leaves without a seed makes the probability add cuts only; where
+    no voxel is below the valley probability, the seeds are those of the shape.
+
+    Parameters
+    ----------
+    valley, height : ndarray of float
+        The scaled and the plain distance (each with the tie-breaker).
+    seeds : ndarray of int32
+        Seeds of `height` (:func:`split_seeds`).
+    mask : ndarray of bool
+        The object.
+    min_depth_nm, structure
+        As :func:`split_seeds`.
+
+    Examples
+    --------
+    >>> h = np.array([[[0, 5, 2, 5.1, 0]]]); v = np.array([[[0, 5, 2, 2.5, 0]]])
+    >>> st = np.ones((3, 3, 3), bool)
+    >>> s = split_seeds(h, min_depth_nm=1, structure=st)
+    >>> split_seeds(v, min_depth_nm=1, structure=st)[0, 0].tolist()  # the unsure one sank
+    [0, 1, 0, 0, 0]
+    >>> valley_seeds(v, h, s, mask=h > 0, min_depth_nm=1, structure=st)[0, 0].tolist()
+    [0, 1, 0, 2, 0]
+    """
+    found = split_seeds(valley, min_depth_nm=min_depth_nm, structure=structure)
+    if seeds.max() <= 1:
+        return found
+    basins = watershed(-height, seeds, mask=mask, connectivity=structure)
+    lost = np.setdiff1d(np.arange(1, int(seeds.max()) + 1), basins[found > 0])
+    if not lost.size:
+        return found
+    extra = np.isin(seeds, lost)
+    numbers = int(found.max()) + 1 + np.searchsorted(lost, seeds)
+    return np.where(extra, numbers, found).astype(np.int32)
 
 
 def split_seeds(distance, *, min_depth_nm, structure):
@@ -189,13 +234,18 @@ def split_touching(
     2
     """
     distance = ndimage.distance_transform_edt(mask, sampling=spacing)
+    tie = tie_breaker(mask.shape, origin)
+    height = distance + tie
+    seeds = split_seeds(height, min_depth_nm=min_depth_nm, structure=structure)
     if probability is not None and valley_probability is not None:
-        distance = valley_height(distance, probability, valley_probability=valley_probability)
-    distance += tie_breaker(mask.shape, origin)
-    seeds = split_seeds(distance, min_depth_nm=min_depth_nm, structure=structure)
+        valley = valley_height(distance, probability, valley_probability=valley_probability) + tie
+        seeds = valley_seeds(
+            valley, height, seeds, mask=mask, min_depth_nm=min_depth_nm, structure=structure
+        )
+        height = valley
     if seeds.max() <= 1:
         return mask.astype(np.int32)
-    pieces = watershed(-distance, seeds, mask=mask, connectivity=structure)
+    pieces = watershed(-height, seeds, mask=mask, connectivity=structure)
     # number the pieces in raster order of their first voxel, as the objects are numbered
     ids, first = np.unique(pieces.ravel(), return_index=True)
     ids, first = ids[ids > 0], first[ids > 0]
