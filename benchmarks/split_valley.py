@@ -22,10 +22,9 @@ split with the default depth and each candidate valley probability (None = by sh
 and scored by F1 of one-to-one matches at IoU >= 0.5 against the true instances (a dumbbell
 counts as one). The default is the smallest candidate whose mean F1 is within 0.01 of the best:
 the lower the valley probability, the fewer voxels the probability map can lower, so of
-near-equal candidates the lower is the safer against a noisy interior (where no valley
-separates organelles, the scaling can only lower maxima, and a lowered maximum may stop
-counting: the maps without a valley show that cost). The pipeline's own evaluation against
-held-out annotation remains the check on real data.
+near-equal candidates the lower is the safer against a noisy interior (the maps without a
+valley check that the probability adds no false cuts there). The pipeline's own evaluation
+against held-out annotation remains the check on real data.
 
 Usage: python benchmarks/split_valley.py [--quick]
 """
