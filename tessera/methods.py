@@ -40,8 +40,19 @@ def _split_text(obj):
     return (
         "Touching organelles were then separated by a seeded watershed on the Euclidean distance "
         "to the background in nm, seeds being maxima of that distance at least "
-        f"{obj['split_min_depth_nm']:g} nm above their saddle; size limits applied before "
-        "splitting. "
+        f"{obj['split_min_depth_nm']:g} nm above their saddle"
+        + _valley_text(obj.get("split_valley_probability"))
+        + "; size limits applied before splitting. "
+    )
+
+
+def _valley_text(valley):
+    """How the probability took part in the split, or nothing when it did not."""
+    if valley is None:
+        return ""
+    return (
+        f", the distance being first scaled by min(p / {valley:g}, 1) with p the probability, "
+        "so that a probability valley between touching organelles counts as a saddle"
     )
 
 

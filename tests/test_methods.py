@@ -52,6 +52,7 @@ def test_methods_text_is_written_from_the_run(tmp_path):
                 "connectivity": 26,
                 "split": True,
                 "split_min_depth_nm": 40,
+                "split_valley_probability": 0.9,
             }
         )
     )
@@ -125,6 +126,7 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "26-connected",
         "seeded watershed on the Euclidean distance",
         "at least 40 nm above their saddle",
+        "scaled by min(p / 0.9, 1) with p the probability",
         "1 of 3 sections",
         "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",
         "`data/a.tif`: `ab12`",

@@ -359,23 +359,40 @@ def balls_volume(centres_radii, shape, spacing):
     return p
 
 
-def split_reference(p, *, high, low, depth, spacing=SPACING, connectivity=26):
+def split_reference(p, *, high, low, depth, spacing=SPACING, connectivity=26, valley=None):
     """In-memory reference of splitting: today's objects (:func:`reference`), the Euclidean
     distance transform of the whole mask with scipy (sampling = spacing, nm) plus tessera's
     documented tie-breaker, markers from scikit-image's h-maxima within each object (its
     highest point when none stands out), and scikit-image's watershed of the whole volume;
-    pieces numbered in raster order of their first voxel."""
+    pieces numbered in raster order of their first voxel. With `valley`, the watershed runs on
+    the distance scaled by min(p / valley, 1) (filled cavities counting as p = 1), from its
+    h-maxima plus each h-maximum of the plain distance whose basin holds none of them (the
+    documented rule)."""
     st = connectivity_structure(connectivity)
     objects = reference(p, high=high, low=low, connectivity=connectivity)
-    distance = ndimage.distance_transform_edt(objects > 0, sampling=spacing)
+    plain = ndimage.distance_transform_edt(objects > 0, sampling=spacing)
+    distance = plain.copy()
+    if valley is not None:
+        sure = np.where((objects > 0) & ~(p > low), 1.0, p.astype(np.float64))
+        distance *= np.minimum(sure / valley, 1.0)
     distance += tie_breaker(objects.shape)
+    plain += tie_breaker(objects.shape)
     markers = np.zeros(objects.shape, np.int64)
     for k in range(1, objects.max() + 1):
         mine = np.where(objects == k, distance, 0.0)
         peaks = h_maxima(mine, float(depth), footprint=st) > 0
-        if not peaks.any():
-            peaks[np.unravel_index(np.argmax(mine), mine.shape)] = True
-        lab, _ = ndimage.label(peaks, st)
+        lab, n = ndimage.label(peaks, st)
+        shape_peaks, m = ndimage.label(
+            h_maxima(np.where(objects == k, plain, 0.0), float(depth), footprint=st) > 0, st
+        )
+        if valley is not None and m > 1:
+            basins = watershed(-plain, shape_peaks, mask=objects == k, connectivity=st)
+            for j in range(1, m + 1):
+                if not peaks[basins == j].any():
+                    n += 1
+                    lab[shape_peaks == j] = n
+        if n == 0:
+            lab[np.unravel_index(np.argmax(mine), mine.shape)] = 1
         markers[lab > 0] = lab[lab > 0] + markers.max()
     pieces = watershed(-distance, markers, mask=objects > 0, connectivity=st)
     ids, first = np.unique(pieces.ravel(), return_index=True)
@@ -513,10 +530,12 @@ def test_config_refuses_bad_split_settings_naming_the_key(repo):
     assert loaded["split"] is True and loaded["split_min_depth_nm"] == 30
 
 
-@pytest.mark.parametrize("split", [False, True])
-def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split):
-    # The config's off switch reaches the library: off = today's labels (scipy reference), on =
-    # the scikit-image watershed reference; the settings file records both keys.
+@pytest.mark.parametrize("split, valley", [(False, 0.8), (True, None), (True, 0.8)])
+def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley):
+    # The config's off switch reaches the library: off = today's labels (scipy reference)
+    # whatever the valley probability, on = the scikit-image watershed reference (on the
+    # distance scaled by the probability when a valley probability is set); the settings file
+    # records the keys.
     p = smooth_field(3)
     image, qc, scores, stored = probability_inputs(tmp_path, p)
     settings = dict(
@@ -533,6 +552,7 @@ def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split):
         bridge_excluded=False,
         split=split,
         split_min_depth_nm=20,
+        split_valley_probability=valley,
     )
     out = tmp_path / "objects.ome.zarr"
     args = (image, qc, scores, out, tmp_path / "o.tsv", tmp_path / "o.json")
@@ -540,8 +560,11 @@ def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split):
     labels = zarr.open_group(store=str(out), mode="r")["labels/mito/0"][:]
     values = stored.astype(np.float32) / 255
     expected = (split_reference if split else reference)(
-        values, high=0.71, low=0.61, **({"depth": 20} if split else {})
+        values, high=0.71, low=0.61, **({"depth": 20, "valley": valley} if split else {})
     )
     np.testing.assert_array_equal(labels, expected)
+    if split and valley:  # the probability really changes the split here
+        assert not np.array_equal(labels, split_reference(values, high=0.71, low=0.61, depth=20))
     used = json.loads((tmp_path / "o.json").read_text())
     assert used["split"] is split and used["split_min_depth_nm"] == 20
+    assert used["split_valley_probability"] == valley

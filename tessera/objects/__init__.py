@@ -15,7 +15,9 @@ The steps, in order (every one defined on the whole volume, computed out of core
    their whole volume (an object spanning many blocks is measured once).
 6. *Split* (optional, ``split_min_depth_nm``): each kept object, whole in its bounding box with
    its filled cavities, is split into the organelles it holds by a seeded watershed on its
-   distance transform in nm (:mod:`~tessera.objects.split`). Objects whose box exceeds
+   distance transform in nm (:mod:`~tessera.objects.split`); with ``split_valley_probability``
+   the distance is first scaled by the probability, so a probability valley between organelles
+   pressed together adds a cut where the mask has no neck. Objects whose box exceeds
    ``split_max_voxels`` stay whole and are flagged (``split_checked`` False). The size range
    applies to the objects before they are split.
 7. *Labels*: objects are numbered 1..N in raster order of their first voxel, which is what

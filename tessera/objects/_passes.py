@@ -116,7 +116,7 @@ def bridging_plan(excluded, depth):
     return plan
 
 
-def _read_bridged(prob, lo, hi, bridge, scale):
+def read_bridged(prob, lo, hi, bridge, scale):
     """prob[lo:hi] as probabilities, with excluded sections interpolated from their neighbours."""
     region = np.asarray(
         prob[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]], dtype=np.float32
@@ -194,7 +194,7 @@ def provisional_labels(
     for origin, end in blocks(shape, block):
         lo = [max(o - h, 0) for o, h in zip(origin, halo, strict=True)]
         hi = [min(e + h, s) for e, h, s in zip(end, halo, shape, strict=True)]
-        region = _read_bridged(prob, lo, hi, bridge, scale)
+        region = read_bridged(prob, lo, hi, bridge, scale)
         mask = clean_mask(region, low=low, opening=opening, closing=closing)
         core = tuple(slice(o - a, e - a) for o, e, a in zip(origin, end, lo, strict=True))
         mask, seeds = mask[core], apply_threshold(region[core], high) & mask[core]
@@ -338,12 +338,15 @@ def split_components(
     split,
     excluded,
     max_voxels,
+    probability=None,
 ):
     """Pass 4: each kept component, whole in its bounding box (with its filled cavities), split
     into the organelles it holds; the pieces of split components go to `pieces_store` as
     1-based piece numbers unique over the volume.
 
-    `split` holds ``split_touching``'s keyword arguments. Returns the pieces' statistics per
+    `split` holds ``split_touching``'s keyword arguments; `probability`, when given, reads the
+    probabilities of a box ``(lo, hi)`` (as pass 1 read them), passed on with filled cavities
+    counted as sure (they are inside by the fill rule, whatever their probability). Returns the pieces' statistics per
     split component (a dict of arrays, and the number of its first piece) and the components
     whose box exceeds `max_voxels` (left whole and flagged)."""
     comp_lut = np.concatenate([[-1], component])
@@ -358,7 +361,12 @@ def split_components(
         mine = comp_lut[np.asarray(provisional[box])] == c
         if int(c) in cavities:
             mine[tuple((cavities[int(c)] - lo).T)] = True
-        pieces = split_touching(mine, origin=tuple(int(v) for v in lo), **split)
+        sure = None
+        if probability is not None:
+            sure = probability(lo, hi)
+            if int(c) in cavities:
+                sure[tuple((cavities[int(c)] - lo).T)] = 1.0
+        pieces = split_touching(mine, origin=tuple(int(v) for v in lo), probability=sure, **split)
         if pieces.max() < 2:
             continue
         parts[int(c)] = (_piece_stats(pieces, lo, shape, excluded), next_piece)

@@ -11,7 +11,7 @@ from tessera.errors import TesseraInputError
 from tessera.objects import _passes
 from tessera.objects.depth_limit import split_depth_problem
 from tessera.objects.morphology import ball, connectivity_structure, reach
-from tessera.objects.split import check_split_depth
+from tessera.objects.split import check_split_depth, check_valley_probability
 
 #: Largest bounding box (voxels) an object is split in. Splitting one box peaks at about 125
 #: bytes a voxel (distance, tie-breaker, h-maxima reconstruction and watershed, measured with
@@ -47,6 +47,7 @@ def check_settings(
     max_volume_um3,
     connectivity,
     split_min_depth_nm=None,
+    split_valley_probability=None,
     source=None,
 ):
     """Refuse inconsistent filtering settings with one clear message (`source` names the file).
@@ -83,6 +84,8 @@ def check_settings(
         problem = split_depth_problem(split_min_depth_nm, max_volume_um3)
         if problem:
             raise TesseraInputError(f"objects {problem}", source=source)
+    if split_valley_probability is not None:
+        check_valley_probability(split_valley_probability)
 
 
 def label_objects(
@@ -105,6 +108,7 @@ def label_objects(
     fill_max_voxels=None,
     bridge_excluded=True,
     split_min_depth_nm=None,
+    split_valley_probability=None,
     split_max_voxels=None,
 ):
     """Filter a probability volume into labelled objects, block by block.
@@ -143,6 +147,11 @@ def label_objects(
         by a seeded watershed on its distance transform in nm, seeded by the maxima that rise
         at least this far (nm) above their saddle with a higher one. None = no splitting (the
         table then has no ``split_checked`` column).
+    split_valley_probability : float, optional
+        With splitting: the distance is scaled by ``min(p / split_valley_probability, 1)``
+        first, so a dip of probability between organelles pressed together (no neck in the
+        mask) becomes a saddle that splits them (:func:`tessera.objects.split.valley_height`).
+        None = the shape alone decides.
     split_max_voxels : int, optional
         Objects whose bounding box (with one voxel of margin where the volume allows) holds
         more voxels are left whole and flagged
@@ -180,6 +189,7 @@ def label_objects(
         max_volume_um3=max_volume_um3,
         connectivity=connectivity,
         split_min_depth_nm=split_min_depth_nm,
+        split_valley_probability=split_valley_probability,
     )
     shape = tuple(int(s) for s in prob.shape)
     if len(shape) != 3 or tuple(out.shape) != shape:
@@ -192,6 +202,7 @@ def label_objects(
     voxel_nm3 = float(np.prod(spacing))
     excluded = np.array(sorted(int(z) for z in excluded_sections), dtype=np.int64)
 
+    bridge = _passes.bridging_plan(excluded if bridge_excluded else (), shape[0])
     with tempfile.TemporaryDirectory(dir=workdir, prefix="tessera-labels-") as tmp:
         provisional = zarr.create_array(
             store=str(Path(tmp) / "provisional.zarr"),
@@ -207,7 +218,7 @@ def label_objects(
             shape=shape,
             block=block,
             halo=2 * reach(opening) + 2 * reach(closing),
-            bridge=_passes.bridging_plan(excluded if bridge_excluded else (), shape[0]),
+            bridge=bridge,
             scale=scale,
             thresholds=(low, high),
             morphology=(opening, closing),
@@ -259,7 +270,16 @@ def label_objects(
                 cavities,
                 shape=shape,
                 block=block,
-                split=dict(spacing=spacing, min_depth_nm=split_min_depth_nm, structure=structure),
+                split=dict(
+                    spacing=spacing,
+                    min_depth_nm=split_min_depth_nm,
+                    structure=structure,
+                    valley_probability=split_valley_probability,
+                ),
+                # the probabilities the mask was made from (excluded sections bridged alike)
+                probability=None
+                if split_valley_probability is None
+                else lambda lo, hi: _passes.read_bridged(prob, lo, hi, bridge, scale),
                 excluded=excluded,
                 max_voxels=split_max_voxels or SPLIT_MAX_VOXELS,
                 voxel_nm3=voxel_nm3,
@@ -310,6 +330,7 @@ def _split_objects(tmp, provisional, component, kept, objects, cavities, **optio
         split=options["split"],
         excluded=options["excluded"],
         max_voxels=options["max_voxels"],
+        probability=options["probability"],
     )
     units, final, piece_final = _passes.number_with_pieces(
         objects, kept, parts, voxel_nm3=options["voxel_nm3"]

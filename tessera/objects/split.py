@@ -8,6 +8,16 @@ least `min_depth_nm` above the lowest point of the best path (the saddle) to a h
 have maxima of depth about r - a, so a neck wider than ``r - min_depth_nm`` keeps them one
 object, and a thin contact splits them. The component's highest maximum always counts; a
 component whose distance never exceeds `min_depth_nm` stays whole.
+
+Organelles pressed flat against each other leave no neck in the mask, so their distance has one
+maximum; the probability map, though, usually dips along the contact (two membranes lie there).
+With a `probability` and a `valley_probability` v, the distance of each voxel is scaled by
+``min(p / v, 1)`` before seeds and watershed are computed (:func:`valley_height`): a voxel as
+sure as v or surer keeps its distance, a less sure one is lowered in proportion. A dip of
+probability across the contact becomes a saddle between two maxima (and the watershed's cut
+follows it), while an organelle whose waist is as sure as v is split by its shape alone. The
+probability only adds seeds: a seed of the shape whose basin the scaled distance leaves without
+one is kept (:func:`valley_seeds`).
 """
 
 import numpy as np
@@ -31,6 +41,87 @@ def check_split_depth(min_depth_nm):
     ok = isinstance(min_depth_nm, (int, float)) and not isinstance(min_depth_nm, bool)
     if not ok or not np.isfinite(min_depth_nm) or min_depth_nm <= 0:
         raise TesseraInputError(f"objects split_min_depth_nm must be > 0 nm, got {min_depth_nm!r}")
+
+
+def check_valley_probability(valley_probability):
+    """Refuse a valley probability that is not a probability above 0.
+
+    Examples
+    --------
+    >>> check_valley_probability(0.8)
+    >>> check_valley_probability(1.5)
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: objects split_valley_probability must be in (0, 1], got 1.5
+    """
+    v = valley_probability
+    ok = isinstance(v, (int, float)) and not isinstance(v, bool)
+    if not ok or not np.isfinite(v) or not 0 < v <= 1:
+        raise TesseraInputError(f"objects split_valley_probability must be in (0, 1], got {v!r}")
+
+
+def valley_height(distance, probability, *, valley_probability):
+    """The distance scaled by how sure each voxel is: ``distance * min(p / v, 1)``.
+
+    Parameters
+    ----------
+    distance : ndarray of float
+        Distance to the background in nm.
+    probability : ndarray of float
+        Probability of the target, same shape.
+    valley_probability : float
+        v: voxels at least this sure keep their distance.
+
+    Examples
+    --------
+    >>> d = np.array([10.0, 40.0, 40.0, 40.0])
+    >>> valley_height(d, np.array([0.9, 1.0, 0.4, 0.8]), valley_probability=0.8).tolist()
+    [10.0, 40.0, 20.0, 40.0]
+    """
+    scale = np.minimum(np.asarray(probability, np.float64) / float(valley_probability), 1.0)
+    return distance * scale
+
+
+def valley_seeds(valley, height, seeds, *, mask, min_depth_nm, structure):
+    """Seeds of the split with the probability: those of `valley`, plus every seed of the shape
+    whose basin holds none of them.
+
+    Scaling can only lower the distance, so a maximum of the shape in an unsure region may sink
+    below `min_depth_nm` in `valley`; its organelle would then be merged with a neighbour the
+    shape alone separates. Keeping the shape's seed of every basin (the watershed of `height`
+    from `seeds`) that `valley` leaves without a seed makes the probability add cuts only; where
+    no voxel is below the valley probability, the seeds are those of the shape.
+
+    Parameters
+    ----------
+    valley, height : ndarray of float
+        The scaled and the plain distance (each with the tie-breaker).
+    seeds : ndarray of int32
+        Seeds of `height` (:func:`split_seeds`).
+    mask : ndarray of bool
+        The object.
+    min_depth_nm, structure
+        As :func:`split_seeds`.
+
+    Examples
+    --------
+    >>> h = np.array([[[0, 5, 2, 5.1, 0]]]); v = np.array([[[0, 5, 2, 2.5, 0]]])
+    >>> st = np.ones((3, 3, 3), bool)
+    >>> s = split_seeds(h, min_depth_nm=1, structure=st)
+    >>> split_seeds(v, min_depth_nm=1, structure=st)[0, 0].tolist()  # the unsure one sank
+    [0, 1, 0, 0, 0]
+    >>> valley_seeds(v, h, s, mask=h > 0, min_depth_nm=1, structure=st)[0, 0].tolist()
+    [0, 1, 0, 2, 0]
+    """
+    found = split_seeds(valley, min_depth_nm=min_depth_nm, structure=structure)
+    if seeds.max() <= 1:
+        return found
+    basins = watershed(-height, seeds, mask=mask, connectivity=structure)
+    lost = np.setdiff1d(np.arange(1, int(seeds.max()) + 1), basins[found > 0])
+    if not lost.size:
+        return found
+    extra = np.isin(seeds, lost)
+    numbers = int(found.max()) + 1 + np.searchsorted(lost, seeds)
+    return np.where(extra, numbers, found).astype(np.int32)
 
 
 def split_seeds(distance, *, min_depth_nm, structure):
@@ -87,7 +178,16 @@ def tie_breaker(shape, origin=(0, 0, 0)):
     return (phase % 1.0) * 1e-3
 
 
-def split_touching(mask, *, spacing, min_depth_nm, structure, origin=(0, 0, 0)):
+def split_touching(
+    mask,
+    *,
+    spacing,
+    min_depth_nm,
+    structure,
+    origin=(0, 0, 0),
+    probability=None,
+    valley_probability=None,
+):
     """Split one object (a connected mask) into the organelles it holds.
 
     Parameters
@@ -103,6 +203,11 @@ def split_touching(mask, *, spacing, min_depth_nm, structure, origin=(0, 0, 0)):
         Neighbourhood of the objects' connectivity; each piece is connected under it.
     origin : (int, int, int)
         Position of the box's first voxel in the volume (for :func:`tie_breaker`).
+    probability : (Z, Y, X) ndarray of float, optional
+        Probability of the target in the same box (0..1).
+    valley_probability : float, optional
+        With `probability`: the distance is lowered where the probability is below this level
+        (:func:`valley_height`). Either one None: the shape alone decides.
 
     Returns
     -------
@@ -117,13 +222,30 @@ def split_touching(mask, *, spacing, min_depth_nm, structure, origin=(0, 0, 0)):
     ...                         structure=np.ones((3, 3, 3), bool))
     >>> int(pieces.max()), int(pieces[0, 4, 3]), int(pieces[0, 4, 12])
     (2, 1, 2)
+
+    A bar with no neck is one object by its shape, two with a probability valley across it:
+
+    >>> bar = np.zeros((1, 7, 24), bool); bar[0, 1:6, 1:23] = True
+    >>> p = np.where(np.abs(np.arange(24) - 12) < 2, 0.5, 1.0) * bar
+    >>> kw = dict(spacing=(10, 10, 10), min_depth_nm=5, structure=np.ones((3, 3, 3), bool))
+    >>> int(split_touching(bar, **kw).max())
+    1
+    >>> int(split_touching(bar, probability=p, valley_probability=0.9, **kw).max())
+    2
     """
     distance = ndimage.distance_transform_edt(mask, sampling=spacing)
-    distance += tie_breaker(mask.shape, origin)
-    seeds = split_seeds(distance, min_depth_nm=min_depth_nm, structure=structure)
+    tie = tie_breaker(mask.shape, origin)
+    height = distance + tie
+    seeds = split_seeds(height, min_depth_nm=min_depth_nm, structure=structure)
+    if probability is not None and valley_probability is not None:
+        valley = valley_height(distance, probability, valley_probability=valley_probability) + tie
+        seeds = valley_seeds(
+            valley, height, seeds, mask=mask, min_depth_nm=min_depth_nm, structure=structure
+        )
+        height = valley
     if seeds.max() <= 1:
         return mask.astype(np.int32)
-    pieces = watershed(-distance, seeds, mask=mask, connectivity=structure)
+    pieces = watershed(-height, seeds, mask=mask, connectivity=structure)
     # number the pieces in raster order of their first voxel, as the objects are numbered
     ids, first = np.unique(pieces.ravel(), return_index=True)
     ids, first = ids[ids > 0], first[ids > 0]

@@ -90,6 +90,8 @@ def objects_job(
     depth = settings.pop("split_min_depth_nm", None)
     split = settings.pop("split", False)
     settings["split_min_depth_nm"] = depth if split else None
+    valley = settings.pop("split_valley_probability", None)
+    settings["split_valley_probability"] = valley if split else None
     level_paths = [d["path"] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
     # Labelling keeps large scratch arrays beside the results (not in a small /tmp). A job killed
     # outright (SIGKILL, a node lost) cannot clean up, so each run clears its own target's scratch

@@ -1,0 +1,175 @@
+"""Choosing the default valley probability (objects.split_valley_probability) on synthetic
+validation volumes.
+
+Validation data (none of it the demo study's datasets, seeds used nowhere else):
+
+* demo volumes rendered with seeds of their own, both condition scales, at the mitochondria's
+  working level (16 nm in-plane, 40 nm sections). Their clusters hold mitochondria pressed
+  together, often with no neck at all. A probability map is made from the true instances: 1
+  inside, lowered to `dip` on the voxels where two instances touch (two membranes lie there),
+  an interior that wanders smoothly between 0.7 and 1 (a classifier is seldom sure everywhere),
+  narrow gaps and necks between organelles (a closing by a 50 nm ball) filled at `dip` too (a
+  classifier sees a pressed cluster as one dark mass), and a Gaussian blur of 2 voxels in-plane
+  (the output smoothing of a prediction). ``dip`` 1.0
+  is a map with no valley at all, which must not be made worse.
+* pairs of touching ellipsoids (two sizes, pressed to 0.95 of the sum of their semi-axes along
+  the line of centres) with the same valley and blur, at 50 x 12 x 12 nm voxels;
+* dumbbells: two balls joined by a waist wider than the split depth allows by shape, whose
+  probability is as high as the rest; each must stay one object.
+
+Each map is filtered like the demo config does (threshold 0.5, opening 16 nm, min 0.02 um^3),
+split with the default depth and each candidate valley probability (None = by shape alone),
+and scored by F1 of one-to-one matches at IoU >= 0.5 against the true instances (a dumbbell
+counts as one). The default is the smallest candidate whose mean F1 is within 0.01 of the best:
+the lower the valley probability, the fewer voxels the probability map can lower, so of
+near-equal candidates the lower is the safer against a noisy interior (the maps without a
+valley check that the probability adds no false cuts there). The pipeline's own evaluation
+against held-out annotation remains the check on real data.
+
+Usage: python benchmarks/split_valley.py [--quick]
+"""
+
+import sys
+
+import numpy as np
+from _common import report
+from scipy import ndimage
+from split_depth import match_f1
+
+from tessera.objects.label import label_objects
+from tessera.objects.morphology import ball
+from tessera_demo.render import render_dataset
+
+SEEDS = (71001, 71002, 71003)  # validation seeds: used nowhere else
+SCALES = (1.0, 1.25)
+DIPS = (0.55, 0.7, 1.0)  # probability set on the contact voxels before the blur
+VALLEYS = (None, 0.6, 0.7, 0.8, 0.9, 0.95, 1.0)
+SPACING = (40.0, 16.0, 16.0)
+DEPTH_NM = 30.0  # the default split depth
+
+
+def contacts(instances):
+    """Voxels of an instance with a 26-neighbour in another (non-zero) instance."""
+    big = np.iinfo(instances.dtype).max
+    hi = ndimage.maximum_filter(instances, size=3)
+    lo = ndimage.minimum_filter(np.where(instances > 0, instances, big), size=3)
+    return (instances > 0) & ((hi > instances) | (lo < instances))
+
+
+def probability_map(instances, *, dip, seed, spacing, sigma=(0.5, 2.0, 2.0)):
+    """A probability map of `instances`: 0.7-1 inside, `dip` on contacts and gaps, blurred.
+
+    A classifier sees organelles pressed together as one dark mass: the narrow gaps and necks
+    between them (closed by a ball of 50 nm) are foreground too, as unsure as the contacts."""
+    rng = np.random.default_rng(seed)
+    wander = ndimage.gaussian_filter(rng.standard_normal(instances.shape), (1.0, 3.0, 3.0))
+    wander = (wander - wander.min()) / max(np.ptp(wander), 1e-9)
+    inside = instances > 0
+    p = np.where(inside, 1.0 - 0.3 * wander, 0.0)
+    closed = ndimage.binary_closing(inside, ball(50.0, spacing), border_value=0)
+    p[contacts(instances) | (closed & ~inside)] = dip
+    return ndimage.gaussian_filter(p, sigma).astype(np.float32)
+
+
+def ellipsoid_pairs(spacing=(50.0, 12.0, 12.0)):
+    """Instances of two pairs of ellipsoids pressed flat (semi-axes in nm z, y, x).
+
+    The centres are 0.65 and 0.6 of the sum of the x semi-axes apart; each voxel of the union
+    belongs to the ellipsoid it is deeper in, so the two meet on a wide contact where the mask
+    has almost no neck (by shape alone the depth of the smaller maximum is near 30 nm)."""
+    shape = (24, 100, 200)
+    zz, yy, xx = (np.arange(n) * s for n, s in zip(shape, spacing, strict=True))
+    zz, yy, xx = zz[:, None, None], yy[None, :, None], xx[None, None, :]
+    out = np.zeros(shape, np.uint16)
+    pairs = (
+        ((250.0, 160.0, 200.0), (200.0, 150.0, 170.0), 300.0, 0.65),
+        ((200.0, 140.0, 150.0), (200.0, 140.0, 150.0), 850.0, 0.6),
+    )
+    for k, (a, b, y0, apart) in enumerate(pairs):
+        x1 = 400.0
+        x2 = x1 + apart * (a[2] + b[2])
+        depth = [
+            ((zz - 600.0) / ax[0]) ** 2 + ((yy - y0) / ax[1]) ** 2 + ((xx - x0) / ax[2]) ** 2
+            for ax, x0 in ((a, x1), (b, x2))
+        ]
+        out[(depth[0] <= 1) & (depth[0] <= depth[1])] = 2 * k + 1
+        out[(depth[1] <= 1) & (depth[1] < depth[0])] = 2 * k + 2
+    return out, spacing
+
+
+def dumbbells(spacing=(50.0, 12.0, 12.0), radius=200.0):
+    """Instances of two dumbbells (balls joined by a rod wider than ``radius - depth``)."""
+    shape = (20, 90, 220)
+    zz, yy, xx = (np.arange(n) * s for n, s in zip(shape, spacing, strict=True))
+    zz, yy, xx = zz[:, None, None], yy[None, :, None], xx[None, None, :]
+    out = np.zeros(shape, np.uint16)
+    for k, (y0, waist) in enumerate(((300.0, radius - 0.6 * DEPTH_NM), (750.0, radius - 15.0))):
+        centres = (250.0, 1000.0)
+        body = np.zeros(shape, bool)
+        for x0 in centres:
+            body |= (zz - 500.0) ** 2 + (yy - y0) ** 2 + (xx - x0) ** 2 <= radius**2
+        rod = (zz - 500.0) ** 2 + (yy - y0) ** 2 <= waist**2
+        body |= rod & (xx >= centres[0]) & (xx <= centres[1])
+        out[body] = k + 1
+    return out, spacing
+
+
+def cases(quick):
+    seeds = SEEDS[:1] if quick else SEEDS
+    shape = (32, 384, 384) if quick else (64, 512, 512)
+    for seed in seeds:
+        for scale in SCALES:
+            truth = render_dataset(
+                seed=seed, shape=shape, spacing=(40.0, 8.0, 8.0), mito_volume_scale=scale
+            )["mitochondria"][:, ::2, ::2]
+            yield f"render {seed} x{scale}", truth, SPACING, seed
+    yield "ellipsoid pairs", *ellipsoid_pairs(), 1
+    yield "dumbbells", *dumbbells(), 2
+
+
+def main(quick=False):
+    scores = {str(v): [] for v in VALLEYS}
+    counts = {str(v): [] for v in VALLEYS}
+    per_case = {}
+    for name, truth, spacing, seed in cases(quick):
+        for dip in DIPS:
+            if name == "dumbbells" and dip != 1.0:
+                continue  # a dumbbell is one organelle: no contact, no valley
+            prob = probability_map(truth, dip=dip, seed=seed, spacing=spacing)
+            for valley in VALLEYS:
+                out = np.zeros(truth.shape, np.uint32)
+                label_objects(
+                    prob,
+                    out,
+                    spacing=spacing,
+                    high=0.5,
+                    open_radius_nm=16,
+                    min_volume_um3=0.02,
+                    block=(32, 256, 256),
+                    split_min_depth_nm=DEPTH_NM,
+                    split_valley_probability=valley,
+                )
+                f1, n_objects, n_true = match_f1(out, truth)
+                scores[str(valley)].append(f1)
+                counts[str(valley)].append(n_objects / n_true)
+                per_case[f"{name} dip {dip} valley {valley}"] = {
+                    "f1": f1,
+                    "objects": n_objects,
+                    "true": n_true,
+                }
+    rows, figures = [], {"quick": quick, "depth_nm": DEPTH_NM, "valleys": {}, "cases": per_case}
+    for valley in VALLEYS:
+        f1, ratio = float(np.mean(scores[str(valley)])), float(np.mean(counts[str(valley)]))
+        label = "shape alone" if valley is None else f"valley {valley}"
+        rows += [(f"{label}: F1 at IoU 0.5", f1, ""), (f"{label}: objects / true", ratio, "")]
+        figures["valleys"][str(valley)] = {"f1": f1, "objects_per_true": ratio}
+    top = max(v["f1"] for v in figures["valleys"].values())
+    candidates = [v for v in VALLEYS if v is not None]
+    chosen = min(v for v in candidates if figures["valleys"][str(v)]["f1"] >= top - 0.01)
+    figures["chosen"] = chosen
+    rows.append(("chosen split_valley_probability (within 0.01 of the best F1)", chosen, ""))
+    report("split_valley", rows, figures)
+
+
+if __name__ == "__main__":
+    main(quick="--quick" in sys.argv)
