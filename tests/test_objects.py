@@ -568,3 +568,23 @@ def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley):
     used = json.loads((tmp_path / "o.json").read_text())
     assert used["split"] is split and used["split_min_depth_nm"] == 20
     assert used["split_valley_probability"] == valley
+
+
+def test_scratch_chunks_divide_the_block_and_stay_small():
+    # Storage only: each scratch chunk must tile the block (clipped to the volume) exactly, so
+    # that the passes write whole chunks, and hold at most SCRATCH_CHUNK_VOXELS where the
+    # block's even sides allow (divisibility, plain arithmetic).
+    from tessera.objects.label import SCRATCH_CHUNK_VOXELS, scratch_chunks
+
+    for block, shape in [
+        ((32, 512, 512), (64, 256, 256)),
+        ((32, 512, 512), (1000, 3000, 3000)),
+        ((16, 250, 250), (40, 1000, 1000)),
+        ((7, 9, 11), (100, 100, 100)),
+        ((64, 64, 64), (5, 3, 2)),
+    ]:
+        chunks = scratch_chunks(block, shape)
+        clipped = [min(b, s) for b, s in zip(block, shape)]
+        assert all(c >= 1 and k % c == 0 for c, k in zip(chunks, clipped)), (block, shape)
+        if any(c % 2 == 0 for c in chunks):
+            assert np.prod(chunks) <= SCRATCH_CHUNK_VOXELS, (block, shape, chunks)

@@ -18,6 +18,10 @@ from tessera.objects.split import check_split_depth, check_valley_probability
 #: scikit-image 0.26), so 2**23 voxels (e.g. 64 x 362 x 362) need about 1 GB on top of the
 #: rest of the objects job.
 SPLIT_MAX_VOXELS = 2**23
+# Voxels of one chunk of the scratch label stores at most (1 MiB of int64), where a block's
+# divisors allow: objects are read back box by box, and a small box should not decode a chunk
+# of a whole block (64 MB at the default block).
+SCRATCH_CHUNK_VOXELS = 2**17
 
 #: Columns of the object table, in order.
 OBJECT_COLUMNS = (
@@ -208,7 +212,7 @@ def label_objects(
             store=str(Path(tmp) / "provisional.zarr"),
             shape=shape,
             dtype=np.int64,
-            chunks=block,
+            chunks=scratch_chunks(block, shape),
             fill_value=0,
             zarr_format=3,
         )
@@ -296,6 +300,30 @@ def label_objects(
     return _object_table(units, spacing=spacing, shape=shape)
 
 
+def scratch_chunks(block, shape):
+    """Chunks of the scratch label stores: the block clipped to the volume, halved along its
+    longest even axis until a chunk holds at most :data:`SCRATCH_CHUNK_VOXELS` voxels.
+
+    Every chunk divides the block (or the volume where the block is larger), so the passes
+    still write whole chunks; only how the scratch is stored changes, never a label.
+
+    Examples
+    --------
+    >>> scratch_chunks((32, 512, 512), (64, 256, 256))
+    (32, 64, 64)
+    >>> scratch_chunks((3, 5, 7), (100, 100, 100))
+    (3, 5, 7)
+    """
+    chunks = [min(int(b), int(s)) for b, s in zip(block, shape, strict=True)]
+    while np.prod(chunks) > SCRATCH_CHUNK_VOXELS:
+        even = [a for a in range(len(chunks)) if chunks[a] % 2 == 0]
+        if not even:
+            break
+        axis = max(even, key=lambda a: chunks[a])
+        chunks[axis] //= 2
+    return tuple(chunks)
+
+
 def _whole_objects(objects, kept, final, volume, *, fill_holes, unfilled):
     """The measures of the kept components, in label order (no splitting)."""
     if not len(kept):
@@ -315,7 +343,7 @@ def _split_objects(tmp, provisional, component, kept, objects, cavities, **optio
         store=str(tmp / "pieces.zarr"),
         shape=shape,
         dtype=np.int64,
-        chunks=block,
+        chunks=scratch_chunks(block, shape),
         fill_value=0,
         zarr_format=3,
     )
