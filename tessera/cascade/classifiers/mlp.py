@@ -43,10 +43,10 @@ class MLPBinaryClassifier(BinaryClassifier):
     (:func:`tessera.cascade.classifiers.network_fit.fit_network`) minimises the sample-weighted
     cross-entropy with an L2 penalty by minibatch Adam, in float32; the network is the one of
     scikit-learn's binary ``MLPClassifier`` with ReLU units, and its forward pass agrees with
-    that class's ``predict_proba`` given the same weights (tested). A node's four fits take
-    about a second each instead of ten to twenty with the general-purpose trainer, which spent
-    most of its time in per-batch bookkeeping. The state is ``coefs_`` and ``intercepts_`` as
-    float32.
+    that class's ``predict_proba`` given the same weights (tested). A fit of 80 000 rows of
+    105 features (30 epochs) takes about 3 s; the general-purpose trainer took about 9 s (under
+    a profiler), most of it in per-batch bookkeeping. The state is ``coefs_`` and
+    ``intercepts_`` as float32.
     """
 
     kind = "mlp"
