@@ -10,9 +10,9 @@ bookkeeping rather than arithmetic. This one does only the arithmetic:
   (B the batch size; biases are not penalised);
 * gradients by backpropagation (``∂loss/∂z = w (p - y) / Σ w`` at the output);
 * Adam (Kingma & Ba, ICLR 2015: β1 = 0.9, β2 = 0.999, ε = 1e-8, bias-corrected step size);
-* weights drawn uniformly within ``±sqrt(6 / (fan_in + fan_out))`` (Glorot & Bengio 2010;
-  ``sqrt(2 / ...)`` for the logistic output), biases likewise; rows shuffled every epoch;
-  a fixed number of epochs.
+* weights drawn uniformly within ``±sqrt(6 / (fan_in + fan_out))`` (Glorot & Bengio 2010),
+  ``±sqrt(2 / (fan_in + fan_out))`` for the logistic output (a narrower start, our choice),
+  biases likewise; rows shuffled every epoch; a fixed number of epochs.
 """
 
 import numpy as np
