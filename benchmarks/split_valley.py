@@ -34,9 +34,8 @@ import sys
 import numpy as np
 from _common import report
 from scipy import ndimage
-from split_depth import match_f1
+from split_depth import label_validation, match_f1
 
-from tessera.objects.label import label_objects
 from tessera.objects.morphology import ball
 from tessera_demo.render import render_dataset
 
@@ -137,17 +136,8 @@ def main(quick=False):
                 continue  # a dumbbell is one organelle: no contact, no valley
             prob = probability_map(truth, dip=dip, seed=seed, spacing=spacing)
             for valley in VALLEYS:
-                out = np.zeros(truth.shape, np.uint32)
-                label_objects(
-                    prob,
-                    out,
-                    spacing=spacing,
-                    high=0.5,
-                    open_radius_nm=16,
-                    min_volume_um3=0.02,
-                    block=(32, 256, 256),
-                    split_min_depth_nm=DEPTH_NM,
-                    split_valley_probability=valley,
+                out = label_validation(
+                    prob, spacing, split_min_depth_nm=DEPTH_NM, split_valley_probability=valley
                 )
                 f1, n_objects, n_true = match_f1(out, truth)
                 scores[str(valley)].append(f1)
