@@ -19,7 +19,8 @@ The steps, in order (every one defined on the whole volume, computed out of core
    the distance is first scaled by the probability, so a probability valley between organelles
    pressed together adds a cut where the mask has no neck. Objects whose box exceeds
    ``split_max_voxels`` stay whole and are flagged (``split_checked`` False). The size range
-   applies to the objects before they are split.
+   applies to the objects before they are split; a piece below `min_volume_um3` is a fragment
+   and joins the pieces around it (its seed is dropped and the watershed run again).
 7. *Labels*: objects are numbered 1..N in raster order of their first voxel, which is what
    ``scipy.ndimage.label`` does on a volume held in memory (without splitting).
 

@@ -149,8 +149,9 @@ def label_objects(
     split_min_depth_nm : float, optional
         Separate touching organelles (:mod:`tessera.objects.split`): each kept object is split
         by a seeded watershed on its distance transform in nm, seeded by the maxima that rise
-        at least this far (nm) above their saddle with a higher one. None = no splitting (the
-        table then has no ``split_checked`` column).
+        at least this far (nm) above their saddle with a higher one. A piece smaller than
+        `min_volume_um3` is handed to the pieces around it, so no object in the table is
+        smaller than that. None = no splitting (the table then has no ``split_checked`` column).
     split_valley_probability : float, optional
         With splitting: the distance is scaled by ``min(p / split_valley_probability, 1)``
         first, so a dip of probability between organelles pressed together (no neck in the
@@ -279,6 +280,7 @@ def label_objects(
                     min_depth_nm=split_min_depth_nm,
                     structure=structure,
                     valley_probability=split_valley_probability,
+                    min_volume_um3=min_volume_um3,
                 ),
                 # the probabilities the mask was made from (excluded sections bridged alike)
                 probability=None
