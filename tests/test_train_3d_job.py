@@ -65,7 +65,7 @@ def _tiles(root, volumes):
     return root / "tiles"
 
 
-def _train(root, pyramids, downsample=1):
+def _train(root, pyramids, downsample=1, cascade=CASCADE):
     out = root / "stage1_level0.npz"
     train_node_job(
         _tiles(root, {name: vol for name, (_, vol) in pyramids.items()}),
@@ -74,7 +74,7 @@ def _train(root, pyramids, downsample=1):
         out,
         target="blob",
         downsample=downsample,
-        cascade=CASCADE,
+        cascade=cascade,
         stage=1,
         level=0,
     )
@@ -126,3 +126,30 @@ def test_a_3d_model_is_not_applied_to_data_of_another_aspect(tmp_path):
     message = "working-level voxel aspect (z / in-plane) 4, but the 3D model was trained at 2"
     assert message in str(refused.value) and str(other) in str(refused.value)
     assert not plan.exists()
+
+
+@pytest.mark.parametrize(
+    ("spacing", "downsample", "neighbours", "dims"),
+    [
+        ((5, 5, 5), 1, 0, 3),  # FIB-SEM: isotropic voxels
+        ((10, 5, 5), 1, 0, 3),  # aspect 2, the edge of near-isotropic
+        ((10, 4, 4), 1, 0, 2),  # aspect 2.5
+        ((40, 8, 8), 1, 0, 2),  # SBEM at full resolution: aspect 5
+        ((50, 4, 4), 2, 0, 2),  # serial-section TEM, in-plane reduced 2x: aspect 6.25
+        ((5, 5, 5), 1, 1, 2),  # neighbours asks for 2D channels of the sections around
+    ],
+)
+def test_dims_auto_is_3d_for_near_isotropic_data_only(
+    tmp_path, spacing, downsample, neighbours, dims
+):
+    # Common practice: FIB-SEM stacks (z spacing about the pixel size) are segmented in 3D,
+    # serial-section TEM and SBEM (sections 3-10x thicker than the pixels) section by section;
+    # the rule is z spacing at most 2x the in-plane spacing of the working level (arithmetic on
+    # the voxel sizes given here).
+    pyramids = {"a": _dataset(tmp_path, "a", spacing, 0, downsample)}
+    cascade = {**CASCADE, "dims": "auto", "neighbours": neighbours}
+    model = read_node(_train(tmp_path, pyramids, downsample, cascade), target="blob")
+    assert model.spec.dims == dims
+    if dims == 3:
+        expected = spacing[0] / (spacing[1] * downsample)
+        assert model.spec.voxel_aspect == pytest.approx(expected)

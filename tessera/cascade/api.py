@@ -20,6 +20,7 @@ from tessera.cascade.predict import (
 from tessera.cascade.spec import (
     CascadeSpec,
     ancestors,
+    automatic_dims,
     node_inputs,
     node_settings,
     nodes,
@@ -30,6 +31,7 @@ from tessera.cascade.store import load_node, save_node
 __all__ = [
     "CascadeSpec",
     "ancestors",
+    "automatic_dims",
     "cascade_spec",
     "fit_cascade",
     "frame_memory_bytes",

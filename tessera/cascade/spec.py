@@ -279,6 +279,38 @@ def node_settings(settings):
     return out
 
 
+#: The largest working-level voxel aspect (z spacing over in-plane spacing) that counts as
+#: near-isotropic: ``dims: auto`` filters such data in 3D. Thicker sections (serial-section TEM,
+#: SBEM at fine levels: 3-10x their pixels) stay 2D, where a 3D filter round in nm would be
+#: narrower than one section along z (common practice: FIB-SEM is treated as 3D, ssTEM and SBEM
+#: section by section).
+NEAR_ISOTROPIC_ASPECT = 2.0
+
+
+def automatic_dims(aspects, *, neighbours=0):
+    """The ``dims`` that ``auto`` stands for, from the working-level voxel aspects of the data.
+
+    3 when every aspect is at most :data:`NEAR_ISOTROPIC_ASPECT` and ``neighbours`` is 0 (a 2D
+    setting that asks for the sections around as extra channels); 2 otherwise.
+
+    Parameters
+    ----------
+    aspects : iterable of float
+        Working-level z spacing over in-plane spacing of each dataset the model is trained on.
+    neighbours : int
+
+    Examples
+    --------
+    >>> automatic_dims([1.0, 1.02]), automatic_dims([2.5]), automatic_dims([0.6], neighbours=1)
+    (3, 2, 2)
+    """
+    aspects = [float(a) for a in aspects]
+    if not aspects:
+        raise TesseraInputError("dims auto needs the voxel aspect of at least one dataset")
+    near = all(a <= NEAR_ISOTROPIC_ASPECT for a in aspects)
+    return 3 if near and neighbours == 0 else 2
+
+
 def context_offsets(spec, stage):
     """Section offsets (other than 0) at which nodes of `stage` read the previous stage's map.
 

@@ -39,6 +39,15 @@ def aspects_agree(a, b):
     return 1 / ASPECT_TOLERANCE <= a / b <= ASPECT_TOLERANCE
 
 
+def working_aspects(pyramids, datasets, *, downsample):
+    """Each dataset's working-level z spacing over its in-plane spacing: {dataset: aspect}."""
+    aspects = {}
+    for dataset in sorted(datasets):
+        _, spacing, _ = working_array(pyramids[dataset], downsample)
+        aspects[dataset] = spacing[0] / spacing[1]
+    return aspects
+
+
 def working_aspect(pyramids, datasets, *, downsample):
     """The working level's z spacing over its in-plane spacing, common to `datasets`.
 
@@ -46,10 +55,7 @@ def working_aspect(pyramids, datasets, *, downsample):
     config, it is read from the data here. Datasets whose aspects differ by more than 5 % cannot
     share one 3D model: refused, naming them.
     """
-    aspects = {}
-    for dataset in sorted(datasets):
-        _, spacing, _ = working_array(pyramids[dataset], downsample)
-        aspects[dataset] = spacing[0] / spacing[1]
+    aspects = working_aspects(pyramids, datasets, downsample=downsample)
     low, high = min(aspects, key=aspects.get), max(aspects, key=aspects.get)
     if not aspects_agree(aspects[high], aspects[low]):
         raise TesseraInputError(

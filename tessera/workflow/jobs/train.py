@@ -3,6 +3,7 @@ held-out tiles."""
 
 from tessera.cascade.api import (
     ancestors,
+    automatic_dims,
     cascade_spec,
     predict_frame,
     receptive_radius,
@@ -14,7 +15,7 @@ from tessera.errors import TesseraInputError
 from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
-from tessera.workflow.files.pyramid import level_arrays, working_aspect
+from tessera.workflow.files.pyramid import level_arrays, working_aspect, working_aspects
 from tessera.workflow.files.scores import write_scores
 from tessera.workflow.files.tile_probabilities import write_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
@@ -51,6 +52,8 @@ def train_node_job(
         The target's working level factor.
     cascade : dict
         Cascade settings (see :class:`tessera.cascade.api.CascadeSpec`); ``stages`` is replaced by `stage`.
+        ``dims`` ``"auto"`` is decided here from the data
+        (:func:`tessera.cascade.spec.automatic_dims`), as is an unset ``voxel_aspect``.
     train_datasets : list of str, optional
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
@@ -59,6 +62,10 @@ def train_node_job(
     registry, labels = read_annotation_set(annotations)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
     cascade = dict(cascade)
+    if cascade.get("dims") == "auto":
+        # near-isotropic data (FIB-SEM) in 3D, thick sections in 2D: decided by the data
+        aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=downsample)
+        cascade["dims"] = automatic_dims(aspects.values(), neighbours=cascade.get("neighbours", 0))
     if cascade.get("voxel_aspect") is None:
         # unset: a 3D cascade takes it from the data; a 2D one does not use it
         cascade.pop("voxel_aspect", None)
