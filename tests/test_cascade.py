@@ -529,6 +529,9 @@ def test_config_schema_states_the_limits_the_code_enforces():
     target = _target_schema()
     cascade = target["cascade"]["properties"]
     for name, (low, high) in LIMITS.items():
+        if name == "dims":  # the schema adds auto, which the job training a node resolves
+            assert cascade[name]["enum"] == [*range(low, high + 1), "auto"]
+            continue
         assert cascade[name]["type"] == "integer", name
         assert cascade[name]["minimum"] == low, name
         assert cascade[name].get("maximum") == high, name
@@ -543,10 +546,12 @@ def test_config_schema_states_the_limits_the_code_enforces():
     assert (smoothing["minimum"], smoothing["maximum"]) == (0, MAX_OUTPUT_SIGMA)
     # the schema's defaults are the spec's defaults (the ladder's keys are no node setting;
     # tests/test_ladder.py checks them against tessera.ladder); voxel_aspect is unset in the
-    # config (read from the data, tests/test_train_3d_job.py), the spec's 1.0 is used in 2D only
+    # config (read from the data, tests/test_train_3d_job.py), the spec's 1.0 is used in 2D only;
+    # dims is auto in the config, decided from the data (same test file)
     defaults = CascadeSpec().to_dict()
+    assert cascade["dims"]["default"] == "auto"
     for name, prop in cascade.items():
-        if name not in LADDER_DEFAULTS and name != "voxel_aspect":
+        if name not in LADDER_DEFAULTS and name not in ("voxel_aspect", "dims"):
             assert prop["default"] == defaults[name], name
     assert cascade["voxel_aspect"]["default"] is None
 

@@ -136,6 +136,8 @@ def test_a_3d_model_is_not_applied_to_data_of_another_aspect(tmp_path):
         ((10, 4, 4), 1, 0, 2),  # aspect 2.5
         ((40, 8, 8), 1, 0, 2),  # SBEM at full resolution: aspect 5
         ((50, 4, 4), 2, 0, 2),  # serial-section TEM, in-plane reduced 2x: aspect 6.25
+        ((20, 5, 5), 2, 0, 2),  # aspect 4 as acquired, 2 at the working level: still 2D
+        ((5, 5, 5), 2, 0, 3),  # FIB-SEM in-plane reduced 2x: still 3D (working aspect 0.5)
         ((5, 5, 5), 1, 1, 2),  # neighbours asks for 2D channels of the sections around
     ],
 )
@@ -144,8 +146,9 @@ def test_dims_auto_is_3d_for_near_isotropic_data_only(
 ):
     # Common practice: FIB-SEM stacks (z spacing about the pixel size) are segmented in 3D,
     # serial-section TEM and SBEM (sections 3-10x thicker than the pixels) section by section;
-    # the rule is z spacing at most 2x the in-plane spacing of the working level (arithmetic on
-    # the voxel sizes given here).
+    # the rule is z spacing at most 2x the in-plane spacing as acquired, so every working level
+    # of a stack gets the same mode (arithmetic on the voxel sizes given here). A 3D model
+    # records the aspect of its working level.
     pyramids = {"a": _dataset(tmp_path, "a", spacing, 0, downsample)}
     cascade = {**CASCADE, "dims": "auto", "neighbours": neighbours}
     model = read_node(_train(tmp_path, pyramids, downsample, cascade), target="blob")

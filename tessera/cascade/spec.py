@@ -279,24 +279,25 @@ def node_settings(settings):
     return out
 
 
-#: The largest working-level voxel aspect (z spacing over in-plane spacing) that counts as
-#: near-isotropic: ``dims: auto`` filters such data in 3D. Thicker sections (serial-section TEM,
-#: SBEM at fine levels: 3-10x their pixels) stay 2D, where a 3D filter round in nm would be
-#: narrower than one section along z (common practice: FIB-SEM is treated as 3D, ssTEM and SBEM
-#: section by section).
+#: The largest voxel aspect (z spacing over in-plane spacing, as acquired) that counts as
+#: near-isotropic: ``dims: auto`` filters such stacks in 3D. Thicker sections (serial-section
+#: TEM, SBEM: 3-10x their pixels) stay 2D (common practice: FIB-SEM is segmented in 3D, ssTEM
+#: and SBEM section by section).
 NEAR_ISOTROPIC_ASPECT = 2.0
 
 
 def automatic_dims(aspects, *, neighbours=0):
-    """The ``dims`` that ``auto`` stands for, from the working-level voxel aspects of the data.
+    """The ``dims`` that ``auto`` stands for, from the voxel aspects of the data as acquired.
 
     3 when every aspect is at most :data:`NEAR_ISOTROPIC_ASPECT` and ``neighbours`` is 0 (a 2D
-    setting that asks for the sections around as extra channels); 2 otherwise.
+    setting that asks for the sections around as extra channels); 2 otherwise. The aspects are
+    those of the full-resolution data, not of the working level, so every downsampling factor
+    of a target gets the same mode (a downsampling study then varies the factor alone).
 
     Parameters
     ----------
     aspects : iterable of float
-        Working-level z spacing over in-plane spacing of each dataset the model is trained on.
+        z spacing over in-plane spacing of each dataset the model is trained on.
     neighbours : int
 
     Examples

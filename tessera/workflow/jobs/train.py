@@ -63,8 +63,9 @@ def train_node_job(
     arrays = level_arrays(pyramids, registry, downsample=downsample)
     cascade = dict(cascade)
     if cascade.get("dims") == "auto":
-        # near-isotropic data (FIB-SEM) in 3D, thick sections in 2D: decided by the data
-        aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=downsample)
+        # near-isotropic stacks (FIB-SEM) in 3D, thick sections in 2D: decided by the voxel
+        # size as acquired (the pyramid's full resolution), the same at every working level
+        aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=1)
         cascade["dims"] = automatic_dims(aspects.values(), neighbours=cascade.get("neighbours", 0))
     if cascade.get("voxel_aspect") is None:
         # unset: a 3D cascade takes it from the data; a 2D one does not use it
@@ -90,6 +91,7 @@ def train_node_job(
         "node": list(node),
         "training_tiles": len(tiles),
         "training_pixels": model.meta["training_pixels"],
+        "dims": spec.dims,  # with dims auto, what the data decided
     }
 
 
