@@ -124,9 +124,9 @@ def valley_seeds(valley, height, seeds, *, mask, min_depth_nm, structure):
     return np.where(extra, numbers, found).astype(np.int32)
 
 
-def absorb_small_pieces(pieces, seeds, height, *, mask, structure, min_voxels):
-    """The watershed of `height` again without the seeds of pieces under `min_voxels` voxels,
-    until every piece has at least that many or one piece is left.
+def absorb_small_pieces(pieces, seeds, height, *, mask, structure, voxel_nm3, min_volume_um3):
+    """The watershed of `height` again without the seeds of pieces below `min_volume_um3`,
+    until every piece meets it or one piece is left.
 
     Dropping seeds only lets the remaining basins grow, so the loop ends; a piece's label is
     its seed's.
@@ -139,7 +139,9 @@ def absorb_small_pieces(pieces, seeds, height, *, mask, structure, min_voxels):
     height : ndarray of float
     mask : ndarray of bool
     structure : ndarray of bool
-    min_voxels : float
+    voxel_nm3, min_volume_um3 : float
+        A piece's volume is its voxels times `voxel_nm3`, compared as the objects' size rule
+        compares it (:func:`tessera.objects._passes.number_objects`).
 
     Examples
     --------
@@ -152,14 +154,15 @@ def absorb_small_pieces(pieces, seeds, height, *, mask, structure, min_voxels):
     >>> sorted(np.bincount(p.ravel())[1:].tolist())
     [8, 40]
     >>> st = np.ones((3, 3, 3), bool)
-    >>> np.unique(absorb_small_pieces(p, s, h, mask=m, structure=st, min_voxels=8)).tolist()
+    >>> kw = dict(mask=m, structure=st, voxel_nm3=1e9)  # 1 um^3 voxels
+    >>> np.unique(absorb_small_pieces(p, s, h, min_volume_um3=8, **kw)).tolist()
     [0, 1, 2]
-    >>> np.unique(absorb_small_pieces(p, s, h, mask=m, structure=st, min_voxels=10)).tolist()
+    >>> np.unique(absorb_small_pieces(p, s, h, min_volume_um3=10, **kw)).tolist()
     [0, 1]
     """
     while True:
-        sizes = np.bincount(pieces.ravel())
-        small = np.flatnonzero((sizes[1:] > 0) & (sizes[1:] < min_voxels)) + 1
+        sizes = np.bincount(pieces.ravel())[1:]
+        small = np.flatnonzero((sizes > 0) & (sizes * voxel_nm3 / 1e9 < min_volume_um3)) + 1
         if not small.size:
             return pieces
         seeds = np.where(np.isin(seeds, small), 0, seeds).astype(np.int32)
@@ -295,9 +298,14 @@ def split_touching(
     if seeds.max() <= 1:
         return mask.astype(np.int32)
     pieces = watershed(-height, seeds, mask=mask, connectivity=structure)
-    min_voxels = min_volume_um3 * 1e9 / float(np.prod(spacing))
     pieces = absorb_small_pieces(
-        pieces, seeds, height, mask=mask, structure=structure, min_voxels=min_voxels
+        pieces,
+        seeds,
+        height,
+        mask=mask,
+        structure=structure,
+        voxel_nm3=float(np.prod(spacing)),
+        min_volume_um3=min_volume_um3,
     )
     # number the pieces in raster order of their first voxel, as the objects are numbered
     ids, first = np.unique(pieces.ravel(), return_index=True)
