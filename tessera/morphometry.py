@@ -67,6 +67,10 @@ def surface_area(mask, *, spacing):
     # lets the 0.5 level cut the voxel edges, so the bias then shrinks with resolution.
     sigma = [min(spacing) / s for s in spacing]
     smooth = ndimage.gaussian_filter(padded, sigma, mode="constant", truncate=3.0)
+    if smooth.max() <= 0.5:
+        # thinner than the blur everywhere (a speck or a one-voxel sheet): the blurred mask never
+        # reaches the level, so measure the voxel staircase of the mask itself
+        smooth = padded
     verts, faces, _, _ = marching_cubes(smooth, level=0.5, spacing=spacing)
     return float(mesh_surface_area(verts, faces)) / 1e6
 

@@ -200,6 +200,40 @@ def test_evaluation_uses_the_threshold_chosen_on_validation_tiles():
         assert row.f1 == pytest.approx(f1_score(tile_truth, tile_pred))
 
 
+def test_test_tiles_without_any_target_are_refused_in_one_line():
+    # Precision, recall and the precision-recall curve are undefined without a single positive
+    # (their definitions); the study cannot state its accuracy, so it stops and says why.
+    reg = registry(["validation", "test", "test"])
+    labels = {"t0": np.eye(8, dtype=np.uint8), "t1": np.zeros((8, 8), np.uint8)}
+    labels["t2"] = np.full((8, 8), 255, np.uint8)  # all ignored
+    probs = {t: np.full((8, 8), 0.2, np.float32) for t in labels}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"^tiles/: the 2 test tile\(s\) hold no target pixel, so accuracy cannot be "
+        r"measured; expected target in at least one test tile: raise tiles\.per_dataset",
+    ):
+        evaluate_tiles(reg, labels, probs, source="tiles/")
+    labels["t1"][3, 3] = 1
+    summary = evaluate_tiles(reg, labels, probs, reps=10)[0]
+    # every pixel is above the threshold chosen on t0: 1 true of 64 predicted (t2 is ignored)
+    assert summary.loc[0, "recall"] == 1.0 and summary.loc[0, "precision"] == 1 / 64
+
+
+def test_a_dataset_without_target_or_prediction_has_undefined_pixel_scores():
+    # F1 = 2TP / (2TP + FP + FN) is 0 / 0 on a tile with no target and nothing predicted: the
+    # dataset's row is left empty (NaN), not scored 0, and bootstrap resamples drawing only such
+    # tiles do not drag the pooled interval to 0.
+    reg = registry(["validation", "test", "test"])  # t1 in d1, t2 in d2
+    target = np.zeros((8, 8), np.uint8)
+    target[2:6, 2:6] = 1
+    labels = {"t0": target, "t1": target.copy(), "t2": np.zeros((8, 8), np.uint8)}
+    probs = {t: np.where(labels[t] == 1, 0.9, 0.1).astype(np.float32) for t in labels}
+    summary = evaluate_tiles(reg, labels, probs, reps=200)[0].set_index("dataset")
+    assert np.isnan(summary.loc["d2", ["precision", "recall", "f1", "jaccard"]]).all()
+    assert summary.loc["d1", "f1"] == summary.loc["all", "f1"] == 1.0
+    assert summary.loc["all", "f1_ci_low"] == summary.loc["all", "f1_ci_high"] == 1.0
+
+
 def test_missing_test_tiles_and_leakage_are_refused():
     reg = registry(["train", "validation", "train"])
     with pytest.raises(
