@@ -15,7 +15,9 @@ Conventions (stated in every output):
   and Rand recall the fraction of true same-object pairs kept together (background counts as
   one region); variation of information split = H(prediction | truth) and merge =
   H(truth | prediction), in bits.
-* Intervals are percentile bootstraps over test tiles (the tile is the resampled unit).
+* Intervals are percentile bootstraps over test tiles (the tile is the resampled unit), over
+  the resamples where the score is defined. Test tiles that hold no target and get none
+  predicted have no pixel scores (empty, not 0: 0 / 0 is undefined).
 """
 
 import math
@@ -138,8 +140,19 @@ def bootstrap_interval(tile_counts, statistic, *, reps=1000, confidence=0.95, se
     rng = np.random.default_rng(seed)
     picks = rng.integers(0, len(counts), size=(reps, len(counts)))
     values = np.array([statistic(*counts[p].sum(axis=0)) for p in picks])
+    values = values[~np.isnan(values)]  # resamples where the statistic is undefined
+    if not values.size:
+        return math.nan, math.nan
     tail = (1 - confidence) / 2 * 100
     return float(np.percentile(values, tail)), float(np.percentile(values, 100 - tail))
+
+
+def _pixel_scores(tp, fp, fn):
+    """Pixel scores of pooled counts; undefined (NaN) where tiles hold no target and none is
+    predicted, instead of the 0 that choosing a threshold needs."""
+    if tp + fp + fn == 0:
+        return dict.fromkeys(("precision", "recall", "f1", "jaccard"), math.nan)
+    return scores_from_counts(tp, fp, fn)
 
 
 def _tile_scores(row, prob, truth, threshold):
@@ -172,12 +185,12 @@ def _group_summary(name, group, labels, probabilities, threshold, *, confidence,
     ids = list(group["tile_id"])
     counts = group[["tp", "fp", "fn"]].to_numpy()
     totals = counts.sum(axis=0)
-    pixel = scores_from_counts(*totals)
+    pixel = _pixel_scores(*totals)
     out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
     for metric in ("f1", "jaccard"):
         low, high = bootstrap_interval(
             counts,
-            lambda tp, fp, fn, m=metric: scores_from_counts(tp, fp, fn)[m],
+            lambda tp, fp, fn, m=metric: _pixel_scores(tp, fp, fn)[m],
             reps=reps,
             confidence=confidence,
             seed=seed,
@@ -211,7 +224,9 @@ def _group_summary(name, group, labels, probabilities, threshold, *, confidence,
     return out
 
 
-def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=1000, seed=0):
+def evaluate_tiles(
+    registry, labels, probabilities, *, confidence=0.95, reps=1000, seed=0, source=None
+):
     """All scores of the test tiles of one target (threshold from the validation tiles).
 
     Parameters
@@ -220,6 +235,8 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
         Tile registry with ``tile_id``, ``dataset``, ``role``.
     labels, probabilities : dict
         Tile id → label image (0/1/255) / probability map.
+    source : str, optional
+        The tile set, named in the message when the tiles cannot be scored.
 
     Returns
     -------
@@ -239,6 +256,13 @@ def evaluate_tiles(registry, labels, probabilities, *, confidence=0.95, reps=100
     if "validation" not in roles:
         raise TesseraInputError("the target has no validation tiles to choose the threshold on")
     test = registry[registry["role"] == "test"]
+    if not any((labels[t] == 1).any() for t in test["tile_id"] if t in labels):
+        # no precision, recall or curve is defined without a single target pixel
+        raise TesseraInputError(
+            f"the {len(test)} test tile(s) hold no target pixel, so accuracy cannot be measured; "
+            "expected target in at least one test tile: raise tiles.per_dataset or tiles.size",
+            source=source,
+        )
     missing = [
         t
         for t in registry.loc[registry["role"].isin(["validation", "test"]), "tile_id"]

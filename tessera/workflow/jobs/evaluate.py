@@ -31,7 +31,7 @@ def evaluate_job(
     check_no_leakage(registry, source=annotations)
     probs = read_tile_probabilities(probabilities)
     summary, per_tile, curve = evaluate_tiles(
-        registry, labels, probs, confidence=confidence, reps=reps, seed=seed
+        registry, labels, probs, confidence=confidence, reps=reps, seed=seed, source=annotations
     )
     summary.insert(0, "target", target)
     per_tile.insert(0, "target", target)
