@@ -7,10 +7,12 @@ large enough for the node's receptive field, mirrored beyond the volume
 (:func:`tessera.tile_windows.tile_window`).
 """
 
+from functools import partial
+
 import numpy as np
 import pandas as pd
 
-from tessera.cascade.api import prepare_tile, receptive_radius, z_halo
+from tessera.cascade.api import lazy_tile, receptive_radius, z_halo
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
 from tessera.threshold import GRID, choose_threshold, confusion, scores_from_counts
@@ -86,12 +88,11 @@ def training_tiles(spec, registry, labels, arrays, *, final, train_datasets=None
     tiles = []
     for _, row in train.iterrows():
         array = arrays[row["dataset"]]
-        image = tile_window(array, row, halo, z_halo(spec, final))
         tiles.append(
-            prepare_tile(
+            lazy_tile(
                 spec,
                 row["tile_id"],
-                image,
+                partial(tile_window, array, row, halo, z_halo(spec, final)),
                 labels[row["tile_id"]],
                 fold=folds[row["tile_id"]],
                 final=final,

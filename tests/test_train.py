@@ -162,3 +162,45 @@ def test_training_can_be_restricted_to_some_datasets():
     assert sorted(t.tile_id for t in tiles) == ["b0", "b1"]
     with pytest.raises(TesseraInputError, match=r"train_datasets names dataset\(s\) \['c'\]"):
         _training_tiles(spec, registry, labels, arrays, final=None, train_datasets=["c"])
+
+
+def test_tiles_read_on_use_train_the_same_node_and_are_released():
+    # A training job reads each tile's window when its rows are taken and drops it after, so it
+    # holds one window at a time; the node must be the one made from tiles prepared up front.
+    from tessera.cascade.api import prepare_tile, receptive_radius, train_node, z_halo
+    from tessera.tile_windows import tile_room, tile_window
+
+    spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0, 2.0), folds=2, samples_per_tile=50)
+    rng = np.random.default_rng(3)
+    volume = rng.random((6, 40, 40)).astype(np.float32)
+    rows = [
+        {"tile_id": f"t{z}", "dataset": "a", "z": z, "y0": 4, "x0": 8, "height": 16,
+         "width": 16, "role": "train"}
+        for z in range(1, 5)
+    ]  # fmt: skip
+    registry = pd.DataFrame(rows)
+    labels = {r["tile_id"]: (volume[r["z"], 4:20, 8:24] > 0.5).astype(np.uint8) for r in rows}
+    lazy = _training_tiles(spec, registry, labels, {"a": volume}, final=None)
+    folds = {t.tile_id: t.fold for t in lazy}
+    halo, zh = receptive_radius(spec), z_halo(spec, None)
+    eager = [
+        prepare_tile(
+            spec,
+            r["tile_id"],
+            tile_window(volume, r, halo, zh),
+            labels[r["tile_id"]],
+            fold=folds[r["tile_id"]],
+            room=tile_room(spec, volume, r),
+        )
+        for r in rows
+    ]
+    a = train_node(spec, 1, 0, lazy, {}, target="t")
+    b = train_node(spec, 1, 0, eager, {}, target="t")
+    models = zip(
+        [a.classifier, *a.fold_classifiers], [b.classifier, *b.fold_classifiers], strict=True
+    )
+    for x, y in models:
+        for u, v in zip(x._arrays().values(), y._arrays().values(), strict=True):
+            np.testing.assert_array_equal(u, v)
+    assert all(t._frame is None for t in lazy)  # released after their rows were taken
+    assert all(t._frame is not None for t in eager)  # tiles given whole are kept

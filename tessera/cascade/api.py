@@ -6,7 +6,7 @@ Stages and workflow jobs import from here, not from the cascade's inner modules,
 can be rearranged without touching them.
 """
 
-from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
+from tessera.cascade.fit import fit_cascade, lazy_tile, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import node_feature_names
 from tessera.cascade.geometry import receptive_radius, volume_room, z_halo
 from tessera.cascade.mirror import mirrored_block, mirrored_stack, mirrored_window
@@ -35,6 +35,7 @@ __all__ = [
     "cascade_spec",
     "fit_cascade",
     "frame_memory_bytes",
+    "lazy_tile",
     "load_node",
     "mirrored_block",
     "mirrored_stack",

@@ -76,13 +76,37 @@ def _tile_seed(spec, node, tile_id):
 
 @dataclass
 class TrainingTile:
-    """A labelled tile ready for training: its frame, its labels (core) and its fold."""
+    """A labelled tile ready for training: its frame, its labels (core) and its fold.
+
+    A tile made by :func:`lazy_tile` reads its image and makes its frame on first use, and
+    :meth:`release` drops them again: a training job then holds one tile's image window,
+    features and maps at a time, not every tile's (in 3D a window holds tens of sections).
+    """
 
     tile_id: str
-    frame: object
+    _frame: object
     labels: np.ndarray
     fold: int
     room: tuple = None
+    _make: object = None
+
+    @property
+    def frame(self):
+        if self._frame is None:
+            self._frame = self._make()
+        return self._frame
+
+    def release(self):
+        """Drop the frame (image, features, maps) of a tile that can make it again."""
+        if self._make is not None:
+            self._frame = None
+
+
+def _checked(tile_id, labels, room):
+    labels = np.asarray(labels)
+    if labels.ndim != 2:
+        raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
+    return labels.astype(np.uint8), None if room is None else tuple(int(r) for r in room)
 
 
 def prepare_tile(spec, tile_id, image, labels, *, fold, final=None, room=None):
@@ -93,16 +117,20 @@ def prepare_tile(spec, tile_id, image, labels, *, fold, final=None, room=None):
     `room` (:func:`tessera.cascade.geometry.volume_room`) says where the volume ends around the
     tile: the maps are then mirrored beyond it, as prediction does.
     """
-    labels = np.asarray(labels)
-    if labels.ndim != 2:
-        raise TesseraInputError(f"tile {tile_id}: labels must be 2D, got shape {labels.shape}")
-    return TrainingTile(
-        tile_id,
-        make_frame(spec, image, labels.shape, final=final, room=room),
-        labels.astype(np.uint8),
-        int(fold),
-        None if room is None else tuple(int(r) for r in room),
-    )
+    labels, room = _checked(tile_id, labels, room)
+    frame = make_frame(spec, image, labels.shape, final=final, room=room)
+    return TrainingTile(tile_id, frame, labels, int(fold), room)
+
+
+def lazy_tile(spec, tile_id, read_image, labels, *, fold, final=None, room=None):
+    """:func:`prepare_tile` with the image read by ``read_image()`` when the frame is first
+    used, and read again after :meth:`TrainingTile.release` (the same numbers each time)."""
+    labels, room = _checked(tile_id, labels, room)
+
+    def make():
+        return make_frame(spec, read_image(), labels.shape, final=final, room=room)
+
+    return TrainingTile(tile_id, None, labels, int(fold), room, make)
 
 
 def _training_rows(spec, node, tiles, upstream):
@@ -111,18 +139,19 @@ def _training_rows(spec, node, tiles, upstream):
     rows, ys, groups = [], [], []
     for tile in tiles:
         frame = tile.frame
-        ensure_maps(frame, node, upstream, tile.fold)
         labels = level_labels(tile.labels, level, frame.core_shape)
         pick = _sample_rows(
             labels,
             spec.samples_per_tile,
             np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
         )
-        if pick.size == 0:
-            continue
-        rows.append(node_rows(frame, node, 0, pick))
-        ys.append(labels.ravel()[pick])
-        groups.append(np.full(pick.size, tile.fold))
+        if pick.size:
+            ensure_maps(frame, node, upstream, tile.fold)
+            rows.append(node_rows(frame, node, 0, pick))
+            ys.append(labels.ravel()[pick])
+            groups.append(np.full(pick.size, tile.fold))
+        del frame
+        tile.release()  # its rows are taken: a lazy tile's window and maps are not needed again
     X = np.concatenate(rows)
     y = np.concatenate(ys).astype(np.uint8)
     g = np.concatenate(groups)
