@@ -19,7 +19,7 @@ reported. Every configuration is scored with the final map smoothed
 
 Objects in 3D (key ``objects_3d`` of each configuration): the map of sections 16-19 is turned
 into objects as the objects step does with its default settings (validation threshold, no
-morphology, enclosed cavities filled, 26-connected), and matched one-to-one at IoU > 0.5 with
+morphology, enclosed cavities filled, 26-connected, the default minimum volume), and matched one-to-one at IoU > 0.5 with
 the 26-connected components of the truth on the same sections (tessera.object_scores).
 
 Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--classifier KIND]
@@ -32,6 +32,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import yaml
 from PIL import Image
 from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
 
@@ -52,7 +53,8 @@ from tessera.ladder import choose_rung, ladder_rungs, rung_name  # noqa: E402
 from tessera.object_scores import connected_truth, object_scores  # noqa: E402
 from tessera.objects.label import label_objects  # noqa: E402
 
-DATA = Path(__file__).resolve().parents[2] / "shared" / "data" / "vnc-sstem"
+REPO = Path(__file__).resolve().parents[1]
+DATA = REPO.parent / "shared" / "data" / "vnc-sstem"
 # name: (stages, levels, context_sections)
 CONFIGS = {
     "1x0": (1, 0, 0),
@@ -112,11 +114,34 @@ def scores(prob, truth):
 SPACING = (50.0, 9.2, 9.2)
 
 
+def default_min_volume():
+    """The objects step's default ``min_volume_um3``, read from the config schema."""
+    schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
+    found = []
+
+    def walk(node):
+        if isinstance(node, dict):
+            if "min_volume_um3" in node.get("properties", {}):
+                found.append(node["properties"]["min_volume_um3"]["default"])
+            for value in node.values():
+                walk(value)
+
+    walk(schema)
+    return found[0]
+
+
 def objects_3d(prob, truth, threshold):
     """3D object scores of the thresholded test sections 16-19 against the truth's components."""
     stack = np.stack([prob[z] for z in range(16, 20)]).astype(np.float32)
     predicted = np.zeros(stack.shape, np.uint32)
-    label_objects(stack, predicted, spacing=SPACING, high=threshold, block=(4, 512, 512))
+    label_objects(
+        stack,
+        predicted,
+        spacing=SPACING,
+        high=threshold,
+        min_volume_um3=default_min_volume(),
+        block=(4, 512, 512),
+    )
     scores3d = object_scores(connected_truth(truth[16:20]), predicted)
     return {
         "truth_source": "26-connected components of the truth masks",

@@ -57,3 +57,22 @@ def normalize_spacing(spacing, ndim, *, name="spacing"):
             raise TesseraInputError(f"{name} values must be positive and finite, got {v!r}")
         out.append(f)
     return tuple(out)
+
+
+#: The largest voxel aspect (z spacing over in-plane spacing, as acquired) that counts as
+#: near-isotropic. FIB-SEM stacks (about 1) are filtered in 3D and pooled in z as well as in plane;
+#: thicker sections (serial-section TEM, SBEM: 3-10x their pixels) are handled section by section
+#: (common practice: FIB-SEM is segmented in 3D, ssTEM and SBEM section by section).
+NEAR_ISOTROPIC_ASPECT = 2.0
+
+
+def near_isotropic(spacing):
+    """Whether a volume's voxels, `spacing` (z, y, x) as acquired, count as near-isotropic.
+
+    Examples
+    --------
+    >>> near_isotropic((5, 5, 5)), near_isotropic((10, 6, 6)), near_isotropic((40, 8, 8))
+    (True, True, False)
+    """
+    z, y, _ = normalize_spacing(spacing, 3)
+    return z / y <= NEAR_ISOTROPIC_ASPECT

@@ -98,6 +98,23 @@ def test_pyramid_levels_metadata_and_values(tmp_path, downsample_z):
     assert working_level(info["factors"], 4) == 2
 
 
+@pytest.mark.parametrize(
+    ("spacing", "halved"), [((5, 5, 5), True), ((10, 6, 6), True), ((40, 8, 8), False)]
+)
+def test_auto_halves_z_for_near_isotropic_stacks_only(tmp_path, spacing, halved):
+    # Common practice: FIB-SEM (z about the pixel size) is reduced in all three axes so coarser
+    # levels stay isotropic; SBEM and serial-section TEM (sections 3-10x thicker) in plane only.
+    tifffile.imwrite(tmp_path / "v.tif", np.zeros((8, 32, 32), np.uint8))
+    ingest_job(tmp_path / "v.tif", tmp_path / "a.ome.zarr", fmt="tiff_stack", spacing=spacing)
+    factors = pyramid_job(tmp_path / "a.ome.zarr", tmp_path / "p.ome.zarr", levels=2)
+    fz = 2 if halved else 1
+    assert factors == [(1, 1, 1), (fz, 2, 2), (fz**2, 4, 4)]
+    assert open_image(tmp_path / "p.ome.zarr")[1]["levels"][2].shape == (8 // fz**2, 8, 8)
+    with pytest.raises(TesseraInputError, match="downsample_z must be true, false or 'auto'"):
+        pyramid_job(tmp_path / "a.ome.zarr", tmp_path / "q.ome.zarr", downsample_z="yes")
+    assert not (tmp_path / "q.ome.zarr").exists()
+
+
 def test_level0_shares_storage_with_ingest_output(tmp_path):
     volume = np.full((2, 32, 32), 7, np.uint8)  # zarr skips writing all-fill chunks
     tifffile.imwrite(tmp_path / "v.tif", volume)

@@ -36,7 +36,9 @@ def _dataset(root, name, spacing, seed, downsample=1):
     volume = rng.integers(0, 256, (12, side, side), dtype=np.uint8)
     tifffile.imwrite(root / f"{name}.tif", volume)
     ingest_job(root / f"{name}.tif", root / f"{name}.ome.zarr", fmt="tiff_stack", spacing=spacing)
-    pyramid_job(root / f"{name}.ome.zarr", root / f"{name}_pyr.ome.zarr", levels=1)
+    pyramid_job(
+        root / f"{name}.ome.zarr", root / f"{name}_pyr.ome.zarr", levels=1, downsample_z=False
+    )
     return root / f"{name}_pyr.ome.zarr", volume
 
 

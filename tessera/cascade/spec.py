@@ -28,6 +28,7 @@ from dataclasses import asdict, dataclass, field
 from tessera.cascade.classifiers import KINDS
 from tessera.cascade.features import DEFAULT_SIGMAS, feature_radius
 from tessera.errors import TesseraInputError
+from tessera.spacing import near_isotropic
 
 # Limits of the integer settings, inclusive (None: no upper limit). The config schema
 # (config/schemas/config.schema.yaml, targets.*.cascade) states the same bounds; a test keeps
@@ -279,18 +280,12 @@ def node_settings(settings):
     return out
 
 
-#: The largest voxel aspect (z spacing over in-plane spacing, as acquired) that counts as
-#: near-isotropic: ``dims: auto`` filters such stacks in 3D. Thicker sections (serial-section
-#: TEM, SBEM: 3-10x their pixels) stay 2D (common practice: FIB-SEM is segmented in 3D, ssTEM
-#: and SBEM section by section).
-NEAR_ISOTROPIC_ASPECT = 2.0
-
-
 def automatic_dims(aspects, *, neighbours=0):
     """The ``dims`` that ``auto`` stands for, from the voxel aspects of the data as acquired.
 
-    3 when every aspect is at most :data:`NEAR_ISOTROPIC_ASPECT` and ``neighbours`` is 0 (a 2D
-    setting that asks for the sections around as extra channels); 2 otherwise. The aspects are
+    3 when every aspect counts as near-isotropic (:func:`tessera.spacing.near_isotropic`) and
+    ``neighbours`` is 0 (a 2D setting that asks for the sections around as extra channels); 2
+    otherwise. The aspects are
     those of the full-resolution data, not of the working level, so every downsampling factor
     of a target gets the same mode (a downsampling study then varies the factor alone).
 
@@ -308,7 +303,7 @@ def automatic_dims(aspects, *, neighbours=0):
     aspects = [float(a) for a in aspects]
     if not aspects:
         raise TesseraInputError("dims auto needs the voxel aspect of at least one dataset")
-    near = all(a <= NEAR_ISOTROPIC_ASPECT for a in aspects)
+    near = all(near_isotropic((a, 1.0, 1.0)) for a in aspects)
     return 3 if near and neighbours == 0 else 2
 
 

@@ -1,8 +1,8 @@
 """The pyramid job: a single-level OME-Zarr image -> a multiscale one, by block means.
 
 Level 0 is the ingested array itself, hard-linked into the new store; each further level is the
-one before averaged over 2 x 2 blocks in-plane (and 2 sections when ``downsample_z`` is set),
-written band by band (:func:`tessera.pyramid.downsample_level`).
+one before averaged over 2 x 2 blocks in-plane (and 2 sections when ``downsample_z`` is set, or is
+``"auto"`` and the stack is near-isotropic), written band by band (:func:`tessera.pyramid.downsample_level`).
 """
 
 from pathlib import Path
@@ -15,9 +15,10 @@ from tessera.io.links import link_tree
 from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
 from tessera.pyramid import downsample_level
+from tessera.spacing import near_isotropic
 
 
-def pyramid_job(image_path, out_path, *, levels=3, downsample_z=False):
+def pyramid_job(image_path, out_path, *, levels=3, downsample_z="auto"):
     """Make a multiscale OME-Zarr image from a single-level one.
 
     Parameters
@@ -29,8 +30,10 @@ def pyramid_job(image_path, out_path, *, levels=3, downsample_z=False):
         Multiscale OME-Zarr image to create (atomically).
     levels : int, optional
         Number of reduced levels beyond level 0 (each halves y and x).
-    downsample_z : bool, optional
-        Halve z too at each level (only for near-isotropic data).
+    downsample_z : bool or "auto", optional
+        Halve z too at each level. ``"auto"``: only where the voxels as acquired are
+        near-isotropic (:func:`tessera.spacing.near_isotropic`, as FIB-SEM), so a coarser level
+        stays isotropic; serial-section TEM and SBEM are reduced in plane only.
 
     Returns
     -------
@@ -39,8 +42,12 @@ def pyramid_job(image_path, out_path, *, levels=3, downsample_z=False):
     """
     if not isinstance(levels, int) or levels < 0:
         raise TesseraInputError(f"levels must be an integer >= 0, got {levels!r}")
+    if downsample_z not in (True, False, "auto"):
+        raise TesseraInputError(f"downsample_z must be true, false or 'auto', got {downsample_z!r}")
     group, info = open_image(image_path)
     level0 = info["levels"][0]
+    if downsample_z == "auto":
+        downsample_z = near_isotropic(info["spacing"])
     step = (2 if downsample_z else 1, 2, 2)
     factors = [(1, 1, 1)]
     for _ in range(levels):
