@@ -285,9 +285,9 @@ def automatic_dims(aspects, *, neighbours=0):
 
     3 when every aspect counts as near-isotropic (:func:`tessera.spacing.near_isotropic`) and
     ``neighbours`` is 0 (a 2D setting that asks for the sections around as extra channels); 2
-    otherwise. The aspects are
-    those of the full-resolution data, not of the working level, so every downsampling factor
-    of a target gets the same mode (a downsampling study then varies the factor alone).
+    otherwise. The aspects are those of the full-resolution data, not of the working level, so
+    every downsampling factor of a target gets the same mode (a downsampling study then varies
+    the factor alone).
 
     Parameters
     ----------

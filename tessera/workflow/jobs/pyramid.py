@@ -1,8 +1,9 @@
 """The pyramid job: a single-level OME-Zarr image -> a multiscale one, by block means.
 
 Level 0 is the ingested array itself, hard-linked into the new store; each further level is the
-one before averaged over 2 x 2 blocks in-plane (and 2 sections when ``downsample_z`` is set, or is
-``"auto"`` and the stack is near-isotropic), written band by band (:func:`tessera.pyramid.downsample_level`).
+one before averaged over 2 x 2 blocks in-plane (and 2 sections when ``downsample_z`` is true, or
+``"auto"`` and the stack is near-isotropic), written band by band
+(:func:`tessera.pyramid.downsample_level`).
 """
 
 from pathlib import Path
@@ -42,7 +43,7 @@ def pyramid_job(image_path, out_path, *, levels=3, downsample_z="auto"):
     """
     if not isinstance(levels, int) or levels < 0:
         raise TesseraInputError(f"levels must be an integer >= 0, got {levels!r}")
-    if downsample_z not in (True, False, "auto"):
+    if not (isinstance(downsample_z, bool) or downsample_z == "auto"):
         raise TesseraInputError(f"downsample_z must be true, false or 'auto', got {downsample_z!r}")
     group, info = open_image(image_path)
     level0 = info["levels"][0]
