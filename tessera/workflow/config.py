@@ -5,6 +5,7 @@ errors, values have ranges), defaults from the schema are filled in, and every e
 one line naming the file, the key or row and column, and what was expected.
 """
 
+import json
 import math
 from pathlib import Path
 
@@ -60,6 +61,10 @@ def _describe(error):
         return f"key {where}: {error.message} (check the spelling; allowed keys are in the schema)"
     if error.validator == "required":
         return f"key {where}: {error.message}"
+    if error.validator == "enum":
+        # spelled as in YAML (true, not True), since that is what the user edits
+        allowed = ", ".join(json.dumps(v) for v in error.validator_value)
+        return f"key {where}: {json.dumps(error.instance)} is not one of {allowed}"
     return f"key {where}: {error.message}"
 
 
