@@ -1,7 +1,9 @@
 """The cascaded hierarchical model: structure, out-of-fold context, exact blocks, safe storage."""
 
+import io
 import json
 import os
+import zipfile
 from pathlib import Path
 
 import numpy as np
@@ -317,9 +319,9 @@ def test_model_made_for_something_else_is_refused(trained, tmp_path):
         load_node(foreign)
 
 
-def _flip(data, offset):
+def _flip(data, offset, bit=0x01):
     data = bytearray(data)
-    data[offset] ^= 0x01
+    data[offset] ^= bit
     return bytes(data)
 
 
@@ -344,21 +346,43 @@ def test_damaged_model_file_is_refused_naming_file_and_rule(trained, tmp_path, d
         assert "not a readable model file (truncated or damaged?)" in str(error.value)
 
 
+def _zip_header_offsets(data):
+    """Every byte offset of the archive's local headers, central directory and end record (zip
+    format, PKWARE APPNOTE: 30-byte local headers followed by the name and extra field)."""
+    with zipfile.ZipFile(io.BytesIO(data)) as archive:
+        members = archive.infolist()
+        start = archive.start_dir
+    offsets = set(range(start, len(data)))
+    for info in members:
+        local = info.header_offset
+        name_and_extra = int.from_bytes(data[local + 26 : local + 28], "little") + int.from_bytes(
+            data[local + 28 : local + 30], "little"
+        )
+        offsets.update(range(local, local + 30 + name_and_extra))
+    return sorted(offsets)
+
+
 def test_a_flipped_bit_anywhere_in_a_model_file_is_refused_in_one_line(trained, tmp_path):
     # Wherever one bit flips (zip headers, a deflate stream, the stored checksum), loading gives
     # TesseraInputError, never zlib's or zipfile's own exception (zip format: per-member CRC-32
     # and deflate streams, PKWARE APPNOTE; a flip in a deflate stream can fail before the CRC).
+    # Every header byte is tried, since a flipped method or flag field fails in its own ways
+    # (an unsupported compression method, a member marked encrypted); the members' contents
+    # are sampled.
     spec, _, models = trained
     path = tmp_path / "stage1_level0.npz"
     save_node(models[(1, 0)], path)
     data = path.read_bytes()
-    for offset in range(0, len(data), max(1, len(data) // 97)):
-        path.write_bytes(_flip(data, offset))
-        try:
-            read_node(path, target="blobs")
-        except TesseraInputError as error:
-            assert str(error).startswith(f"{path}: "), offset
-        # a flip in bytes nothing reads (zip comment, padding) may leave the model intact
+    sampled = range(0, len(data), max(1, len(data) // 97))
+    offsets = sorted(set(sampled) | set(_zip_header_offsets(data)))
+    for offset in offsets:
+        for bit in (0x01, 0x08):
+            path.write_bytes(_flip(data, offset, bit))
+            try:
+                read_node(path, target="blobs")
+            except TesseraInputError as error:
+                assert str(error).startswith(f"{path}: "), offset
+            # a flip in bytes nothing reads (zip comment, padding) may leave the model intact
 
 
 def test_the_library_names_no_rule_and_ends_with_the_callers_hint(trained, tmp_path):

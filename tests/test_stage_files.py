@@ -1,6 +1,7 @@
 """The one reader and writer of each file a stage writes and another reads (tessera.workflow.files)."""
 
 import json
+import zipfile
 
 import numpy as np
 import pandas as pd
@@ -70,6 +71,18 @@ def test_tile_probabilities_are_float32_and_unreadable_files_are_named(tmp_path)
         assert sorted(data.files) == ["t1", "t2"] and data["t1"].dtype == np.float32
     read = read_tile_probabilities(path)
     np.testing.assert_array_equal(read["t1"], np.array([[0.25, 1.0]], np.float32))
+    good = path.read_bytes()
+    with zipfile.ZipFile(path) as archive:
+        central = archive.start_dir
+    # zip format (PKWARE APPNOTE): a central directory entry's flag field is at byte 8 (bit 0:
+    # encrypted) and its compression method at byte 10 (8 = deflate; 9 = deflate64, which
+    # Python's zipfile cannot read)
+    for offset in (central + 8, central + 10):
+        damaged = bytearray(good)
+        damaged[offset] ^= 0x01
+        path.write_bytes(bytes(damaged))
+        with pytest.raises(TesseraInputError, match="cannot read the tile predictions"):
+            read_tile_probabilities(path)
     path.write_bytes(b"not a zip file")
     with pytest.raises(TesseraInputError, match="cannot read the tile predictions"):
         read_tile_probabilities(path)

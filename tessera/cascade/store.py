@@ -4,8 +4,6 @@ content checked before use."""
 import hashlib
 import io
 import json
-import zipfile
-import zlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -15,6 +13,7 @@ from tessera.cascade.frame import node_feature_names
 from tessera.cascade.spec import CascadeSpec, node_settings, spec_from_settings
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
+from tessera.io.npz_archives import NPZ_READ_ERRORS
 
 MODEL_FORMAT = 2  # 2: the payload's SHA-256 is recorded in the metadata
 
@@ -205,8 +204,7 @@ def _read_plain_arrays(path, hint):
         raise
     except FileNotFoundError:
         raise TesseraInputError(f"model file not found; {hint}", source=path) from None
-    # zlib.error: a damaged deflate stream can fail before the member's CRC-32 is checked
-    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as exc:
+    except NPZ_READ_ERRORS as exc:
         raise TesseraInputError(
             f"not a readable model file (truncated or damaged?): {exc}; {hint}", source=path
         ) from None

@@ -7,6 +7,7 @@ import numpy as np
 
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
+from tessera.io.npz_archives import NPZ_READ_ERRORS
 
 
 def write_tile_probabilities(path, probabilities):
@@ -21,5 +22,5 @@ def read_tile_probabilities(path):
     try:
         with np.load(path, allow_pickle=False) as data:
             return {k: data[k] for k in data.files}
-    except (OSError, ValueError) as exc:
+    except NPZ_READ_ERRORS as exc:
         raise TesseraInputError(f"cannot read the tile predictions: {exc}", source=path) from None
