@@ -4,6 +4,7 @@
 rule downsampling_study:
     input:
         summaries=study_factors,
+        pyramids=annotated_pyramids,
     output:
         curve="results/study/{target}/downsampling/curve.tsv",
         plot=report(

@@ -17,4 +17,5 @@ run_job(
     out_plot=snakemake.output.plot,
     target=snakemake.wildcards.target,
     tolerance=snakemake.params.tolerance,
+    pyramids=list(snakemake.input.pyramids),
 )

@@ -22,4 +22,5 @@ run_job(
     size=tiles["size"],
     count=tiles["per_dataset"],
     seed=tiles["seed"],
+    allow_fewer=tiles["allow_fewer"],
 )

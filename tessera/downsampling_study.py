@@ -1,6 +1,7 @@
 """Accuracy against downsampling factor, and the cheapest factor that keeps it.
 
-Each factor f of 2 cuts the voxels to predict by f² in-plane. The study scores the same target
+Each factor f cuts the voxels to predict by f² in plane (by f³ where the pyramid of a
+near-isotropic stack is reduced in z as well). The study scores the same target
 trained at every factor on tiles of the same physical size, and recommends the largest factor
 (the cheapest) whose test F1 is within `tolerance` of the best factor's.
 """
@@ -29,7 +30,7 @@ def recommend_factor(curve, *, tolerance):
     return int(ok["factor"].max())
 
 
-def factor_curve(factors, scores, *, target, tolerance):
+def factor_curve(factors, scores, *, target, tolerance, z_factors=None):
     """Test accuracy per downsampling factor with its relative prediction cost; the recommendation.
 
     Parameters
@@ -42,13 +43,16 @@ def factor_curve(factors, scores, *, target, tolerance):
     target : str
     tolerance : float
         F1 a factor may lose against the best one and still be recommended.
+    z_factors : sequence of float, optional
+        For each factor, how much its level is reduced in z as well (1 for anisotropic
+        stacks, whose pyramid keeps every section; f for near-isotropic ones). Default: all 1.
 
     Returns
     -------
     curve : pandas.DataFrame
         One row per factor, sorted: ``target``, ``factor``, the scores, ``test_tiles``,
-        ``relative_cost`` (voxels to predict relative to full resolution), ``recommended`` and
-        ``tolerance``.
+        ``z_factor``, ``relative_cost`` (voxels to predict relative to full resolution),
+        ``recommended`` and ``tolerance``.
     chosen : int
         The recommended factor (:func:`recommend_factor`).
 
@@ -59,9 +63,19 @@ def factor_curve(factors, scores, *, target, tolerance):
     >>> curve, chosen = factor_curve([1, 2, 4], scores, target="mito", tolerance=0.02)
     >>> chosen, curve["relative_cost"].tolist(), curve["recommended"].tolist()
     (2, [1.0, 0.25, 0.0625], [False, True, False])
+
+    Reduced in z too (a near-isotropic pyramid), a factor of 2 predicts an eighth of the voxels:
+
+    >>> curve, _ = factor_curve([1, 2, 4], scores, target="mito", tolerance=0.02,
+    ...                         z_factors=[1, 2, 4])
+    >>> curve["relative_cost"].tolist()
+    [1.0, 0.125, 0.015625]
     """
+    z_factors = [1] * len(factors) if z_factors is None else list(z_factors)
+    if len(z_factors) != len(factors) or any(not z >= 1 for z in z_factors):
+        raise TesseraInputError(f"z_factors must be one number >= 1 per factor, got {z_factors}")
     rows = []
-    for factor, overall in zip(factors, scores, strict=True):
+    for factor, z_factor, overall in zip(factors, z_factors, scores, strict=True):
         rows.append(
             {
                 "factor": int(factor),
@@ -71,8 +85,9 @@ def factor_curve(factors, scores, *, target, tolerance):
                 "jaccard": overall["jaccard"],
                 "object_f1": overall["object_f1"],
                 "test_tiles": int(overall["tiles"]),
-                # voxels to predict relative to full resolution (in-plane reduction f x f)
-                "relative_cost": 1.0 / factor**2,
+                "z_factor": z_factor,
+                # voxels to predict relative to full resolution: f x f in plane, and z
+                "relative_cost": 1.0 / (factor**2 * z_factor),
             }
         )
     curve = pd.DataFrame(rows).sort_values("factor").reset_index(drop=True)
@@ -117,7 +132,11 @@ def plot_curve(curve, path, *, target, chosen):
     ax.set_xscale("log", base=2)
     ax.set_xticks(curve["factor"], [f"{f}x" for f in curve["factor"]])
     ax.set(
-        xlabel="in-plane downsampling (prediction cost 1/f²)",
+        xlabel=(
+            "downsampling in plane, and in z for near-isotropic data (cost ~ 1/f³)"
+            if (curve.get("z_factor", pd.Series([1])) > 1).any()
+            else "in-plane downsampling (prediction cost 1/f²)"
+        ),
         ylabel="test-tile pixel F1",
         ylim=(
             max(

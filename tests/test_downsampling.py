@@ -1,12 +1,16 @@
 """Variants as targets of their own, and the downsampling recommendation."""
 
+import numpy as np
 import pandas as pd
 import pytest
+import tifffile
 
 from tessera.downsampling_study import recommend_factor
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import expand_variants, load_config
-from tessera.workflow.jobs.downsampling_study import downsampling_study_job
+from tessera.workflow.jobs.downsampling_study import downsampling_study_job, effective_z_factors
+from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.pyramid import pyramid_job
 
 
 def base_config(**target):
@@ -65,6 +69,10 @@ def test_downsampling_study_scales_tiles_and_needs_label_volumes(repo):
         and config["targets"]["mito.x8"]["tiles"]["size"] == 25
     )
     assert config["targets"]["mito.x1"]["downsample"] == 1 and "mito.x2" not in config["targets"]
+    # a coarse level may hold fewer tiles of that physical size: the study takes what fits,
+    # the target itself keeps the schema's default (stop and say so)
+    assert config["targets"]["mito.x8"]["tiles"]["allow_fewer"] is True
+    assert config["targets"]["mito"]["tiles"]["allow_fewer"] is False
     painted = base_config(downsampling_study={"factors": [1, 2]})
     painted["targets"]["mito"]["annotations"] = {"painted": {"points": "p.tsv", "masks": "m"}}
     with pytest.raises(TesseraInputError, match="needs label volumes"):
@@ -102,3 +110,30 @@ def test_recommendation_is_the_cheapest_factor_within_tolerance(tmp_path):
     table = pd.read_csv(tmp_path / "curve.tsv", sep="\t")
     assert table["relative_cost"].tolist() == [0.25, 0.0625, 0.015625]
     assert table["recommended"].tolist() == [False, False, True]
+
+
+def test_the_cost_of_a_factor_counts_z_where_the_pyramid_reduces_it(tmp_path):
+    # Voxels predicted at factor f: 1/f^2 of the volume in plane; a near-isotropic pyramid
+    # halves z at every level too, so 1/f^3 there (geometry of the block-averaged levels).
+    # Two datasets of equal size, one of each kind: the mean of the two fractions.
+    raw = np.zeros((8, 32, 32), np.uint8)
+    pyramids = []
+    for name, spacing, downsample_z in (("fib", (8, 8, 8), True), ("sbem", (40, 8, 8), False)):
+        tifffile.imwrite(tmp_path / f"{name}.tif", raw)
+        ingest_job(
+            tmp_path / f"{name}.tif", tmp_path / f"{name}.zarr", fmt="tiff_stack", spacing=spacing
+        )
+        pyramid_job(
+            tmp_path / f"{name}.zarr",
+            tmp_path / f"{name}_p.zarr",
+            levels=2,
+            downsample_z=downsample_z,
+        )
+        pyramids.append(tmp_path / f"{name}_p.zarr")
+    assert effective_z_factors(pyramids[:1], [1, 2, 4]) == [1, 2, 4]
+    assert effective_z_factors(pyramids[1:], [1, 2, 4]) == [1, 1, 1]
+    mixed = effective_z_factors(pyramids, [2, 4])
+    np.testing.assert_allclose(
+        [1 / (f * f * z) for f, z in zip([2, 4], mixed, strict=True)],
+        [(1 / 8 + 1 / 4) / 2, (1 / 64 + 1 / 16) / 2],
+    )

@@ -30,6 +30,9 @@ from tessera.workflow.files.tile_registry import (
     write_split,
 )
 from tessera.workflow.files.to_paint import export_tiles, import_painted, read_painted_mask
+from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.pyramid import pyramid_job
+from tessera.workflow.jobs.sample_tiles import sample_tiles_job
 
 FACTORS = (1, 2, 2)
 
@@ -517,6 +520,41 @@ def test_sampling_min_fraction(tmp_path):
     assert all(labels[t].mean() >= 0.2 for t in reg["tile_id"])
     with pytest.raises(TesseraInputError, match="min_fraction"):
         sampled(np.zeros((8, 96, 96), np.uint8), min_fraction=0.1, max_tries=20)
+
+
+def test_sampling_takes_as_many_tiles_as_fit_only_when_allowed(tmp_path):
+    # Sections of 48 x 48 working pixels hold one non-overlapping tile of 30 (two need 60 along
+    # one axis: pigeonhole), so the 6 allowed sections hold 6 tiles whatever the seed.
+    _, truth = volume(shape=(8, 96, 96))
+    reg, labels = sampled(truth, size=30, count=10, allow_fewer=True)
+    assert len(reg) == len(labels) == 6
+    assert sorted(reg["z"]) == [0, 1, 3, 4, 6, 7]
+    with pytest.raises(TesseraInputError, match="could not place tile 7 of 10"):
+        sampled(truth, size=30, count=10)
+
+
+def test_sample_tiles_job_names_the_label_file_and_the_settings(tmp_path):
+    # A volume too small for the tiles asked for: the one line names the label volume and the
+    # config keys that decide; with allow_fewer the job takes what fits.
+    raw, truth = volume(shape=(6, 64, 64))
+    tifffile.imwrite(tmp_path / "raw.tif", raw)
+    tifffile.imwrite(tmp_path / "truth.tif", truth)
+    ingest_job(
+        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
+    )
+    pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
+    qc = tmp_path / "sections.tsv"
+    pd.DataFrame({"z": range(6), "excluded": [False] * 6}).to_csv(qc, sep="\t", index=False)
+    kw = dict(dataset="d1", target="mito", downsample=2, size=24, count=9, seed=0)
+    args = (tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc)
+    with pytest.raises(TesseraInputError) as error:
+        sample_tiles_job(*args, tmp_path / "tiles", **kw)
+    message = str(error.value)
+    assert message.startswith(f"{tmp_path / 'truth.tif'}: could not place tile 7 of 9")
+    assert "tiles.per_dataset" in message and "tiles.allow_fewer" in message
+    assert "\n" not in message and not (tmp_path / "tiles").exists()
+    summary = sample_tiles_job(*args, tmp_path / "tiles", **kw, allow_fewer=True)
+    assert (summary["tiles"], summary["asked"]) == (6, 9)
 
 
 # --------------------------------------------------------------------------------------------

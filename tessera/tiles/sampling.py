@@ -75,6 +75,7 @@ def sample_tiles_from_labels(
     min_fraction=0.0,
     threshold=0,
     max_tries=200,
+    allow_fewer=False,
 ):
     """Sample annotation tiles from a full label volume.
 
@@ -103,6 +104,9 @@ def sample_tiles_from_labels(
         Target is ``label > threshold`` (see :func:`labels_to_target_mask`).
     max_tries : int, optional
         Random positions tried per tile before giving up.
+    allow_fewer : bool, optional
+        When no allowed section can take the next tile, return the tiles placed so far (at
+        least one) instead of raising.
 
     Returns
     -------
@@ -126,6 +130,13 @@ def sample_tiles_from_labels(
     ...     factors=(1, 2, 2), size=8, count=3, seed=0, exclude_z=[2])
     >>> sorted(reg["z"].tolist()), masks[reg.loc[0, "tile_id"]].shape
     ([0, 1, 3], (8, 8))
+
+    Sections of 16 x 16 working pixels hold one tile of 12 each:
+
+    >>> reg, _ = sample_tiles_from_labels(lab, dataset="d", target="m", level=1,
+    ...     factors=(1, 2, 2), size=12, count=6, seed=0, allow_fewer=True)
+    >>> len(reg)
+    4
     """
     shape0, level, factors, size, count, seed, max_tries, min_fraction = _sampling_options(
         label_source, dataset, target, level, factors, size, count, seed, max_tries, min_fraction
@@ -155,6 +166,8 @@ def sample_tiles_from_labels(
             )
             if placed is not None:
                 break
+        if placed is None and allow_fewer and rows:
+            break
         if placed is None:
             raise TesseraInputError(
                 f"could not place tile {i + 1} of {count} on any allowed level-{level} section "

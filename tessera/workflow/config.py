@@ -364,8 +364,9 @@ def expand_variants(config, *, source="config/config.yaml"):
     A variant ``<target>.<name>`` is the target with the variant's settings merged over it (one
     level deep: ``cascade: {stages: 3}`` changes only the stages). A downsampling study adds
     ``<target>.x<f>`` per factor f other than the target's own, with tiles of the same physical
-    size. Variants get their own result folders and are trained and scored on their own; only
-    label-volume annotations can be re-sampled at another factor.
+    size, as many as fit up to the target's count (a coarse level has fewer sections and
+    pixels). Variants get their own result folders and are trained and scored on their own;
+    only label-volume annotations can be re-sampled at another factor.
 
     Returns
     -------
@@ -395,7 +396,9 @@ def expand_variants(config, *, source="config/config.yaml"):
                     size = max(
                         16, int(round(target["tiles"]["size"] * target["downsample"] / factor))
                     )
-                    wanted[f"x{factor}"] = {"downsample": factor, "tiles": {"size": size}}
+                    # a coarser level may not hold as many tiles of this physical size
+                    tiles = {"size": size, "allow_fewer": True}
+                    wanted[f"x{factor}"] = {"downsample": factor, "tiles": tiles}
         for variant, overrides in wanted.items():
             if "labels" not in target["annotations"] and "downsample" in overrides:
                 raise TesseraInputError(

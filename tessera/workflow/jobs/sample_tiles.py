@@ -1,5 +1,7 @@
 """The sample_tiles rule: annotation tiles of one dataset from a full label volume."""
 
+import logging
+
 import tifffile
 
 from tessera.errors import TesseraInputError
@@ -7,6 +9,8 @@ from tessera.io.omezarr import open_image, working_level
 from tessera.tiles.sampling import sample_tiles_from_labels
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import write_annotation_set
+
+_log = logging.getLogger(__name__)
 
 
 def sample_tiles_job(
@@ -21,11 +25,14 @@ def sample_tiles_job(
     size,
     count,
     seed,
+    allow_fewer=False,
 ):
     """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
 
     The label stack is read whole: full label volumes exist for synthetic and open benchmark
-    data of modest size; real studies annotate tiles (the painted route) instead.
+    data of modest size; real studies annotate tiles (the painted route) instead. With
+    `allow_fewer`, a volume that cannot hold `count` tiles gives as many as fit, and the job
+    logs how many (see :func:`tessera.tiles.sampling.sample_tiles_from_labels`).
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
@@ -42,16 +49,31 @@ def sample_tiles_job(
     # qc.exclude_flagged, and always holds lost (placeholder) sections; level-0 sections,
     # which sample_tiles_from_labels maps to the working level itself
     exclude = excluded_sections(qc_table)
-    registry, tile_labels = sample_tiles_from_labels(
-        labels,
-        dataset=dataset,
-        target=target,
-        level=level,
-        factors=info["factors"][level],
-        size=size,
-        count=count,
-        seed=seed,
-        exclude_z=exclude,
-    )
+    try:
+        registry, tile_labels = sample_tiles_from_labels(
+            labels,
+            dataset=dataset,
+            target=target,
+            level=level,
+            factors=info["factors"][level],
+            size=size,
+            count=count,
+            seed=seed,
+            exclude_z=exclude,
+            allow_fewer=allow_fewer,
+        )
+    except TesseraInputError as exc:
+        raise TesseraInputError(
+            f"{exc} (target {target}: the settings are its tiles.per_dataset and tiles.size; "
+            "tiles.allow_fewer: true takes as many as fit)",
+            source=labels_path,
+        ) from None
+    if len(registry) < count:
+        _log.warning(
+            "only %d of %d tiles fit on the allowed level-%d sections (allow_fewer)",
+            len(registry),
+            count,
+            level,
+        )
     write_annotation_set(out_dir, registry, tile_labels)
-    return {"tiles": len(registry), "excluded_sections": exclude, "level": level}
+    return {"tiles": len(registry), "asked": count, "excluded_sections": exclude, "level": level}
