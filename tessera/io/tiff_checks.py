@@ -13,9 +13,11 @@ the file. :func:`open_checked_tiff` therefore checks, with every reader complain
   and overlap neither another page's pixels nor a page directory.
 """
 
+import lzma
 import math
 import struct
 import xml.etree.ElementTree as ET
+import zlib
 
 import numpy as np
 import tifffile
@@ -25,7 +27,9 @@ from tessera.io.damage import complaints_as_errors, reader_complaints
 
 __all__ = ["expected_page_count", "open_checked_tiff", "read_checked_page"]
 
-# What tifffile raises on malformed structures besides its own error (found by fuzzing)
+# What tifffile raises on malformed structures besides its own error (found by fuzzing). Without
+# imagecodecs, tifffile decodes deflate and LZMA pages (TIFF compression 8, 32946, 34925) with
+# Python's zlib and lzma, whose errors for a damaged stream are not ValueError or OSError.
 _READ_ERRORS = (
     OSError,
     ValueError,
@@ -35,6 +39,8 @@ _READ_ERRORS = (
     AttributeError,
     ArithmeticError,
     struct.error,
+    zlib.error,
+    lzma.LZMAError,
     tifffile.TiffFileError,
 )
 # page fields that must agree with page 0 so that every page decodes the same way
