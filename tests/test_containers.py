@@ -396,6 +396,15 @@ def test_hdf5_with_a_damaged_chunk_index_is_refused(tmp_path, volume):
     assert "wrong B-tree signature" in text
 
 
+@pytest.mark.parametrize("text", ["7", "[1, 2]"])
+def test_zarr_attributes_that_are_not_an_object_are_refused(tmp_path, volume, text):
+    # .zattrs must hold a JSON object (zarr v2 spec); zarr opens the array anyway and its
+    # attribute mapping then raises TypeError. A changed byte can turn "{}" into "7".
+    path, fmt, inner = _write("zarr_plain", tmp_path, volume)
+    (path / ".zattrs").write_text(text)
+    _refused(tmp_path, path, fmt, inner, "the array's attributes are .* expected a JSON object")
+
+
 def test_unreadable_hdf5_file_is_refused(tmp_path):
     path = tmp_path / "stack.h5"
     path.write_bytes(b"not an HDF5 file at all")

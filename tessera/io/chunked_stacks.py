@@ -87,7 +87,16 @@ def open_zarr_array(path, internal_path=None):
         what = f"no zarr array at internal_path {inner!r}" if inner else "cannot open as zarr"
         raise TesseraInputError(f"{what}: {exc}", source=path) from None
     check_chunk_grid(array, path)
-    spacing, attribute = spacing_from_attrs(array.attrs.asdict(), source=label)
+    attrs = array.metadata.attributes
+    if not isinstance(attrs, dict):
+        # zarr opens the array anyway and fails later, on reading its attributes (zarr v2
+        # spec: .zattrs holds a JSON object; v3 spec: "attributes" is a JSON object)
+        raise TesseraInputError(
+            f"the array's attributes are {type(attrs).__name__} {attrs!r:.40}, expected a JSON "
+            "object (damaged .zattrs or zarr.json?)",
+            source=label,
+        )
+    spacing, attribute = spacing_from_attrs(dict(attrs), source=label)
     return ArrayStack(
         array,
         label=label,
