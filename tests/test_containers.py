@@ -405,6 +405,28 @@ def test_zarr_attributes_that_are_not_an_object_are_refused(tmp_path, volume, te
     _refused(tmp_path, path, fmt, inner, "the array's attributes are .* expected a JSON object")
 
 
+def test_n5_dimensions_stating_fewer_sections_than_written_are_refused(tmp_path, volume):
+    # One changed digit in attributes.json ("dimensions": [18, 20, 5] -> [18, 20, 4]): the
+    # blocks of section 4 lie beyond the grid and would be ignored, a section silently lost.
+    path, fmt, inner = _write("n5", tmp_path, volume)
+    meta_file = path / "volumes" / "raw" / "attributes.json"
+    meta = json.loads(meta_file.read_text())
+    meta["dimensions"][2] = 4
+    meta_file.write_text(json.dumps(meta))
+    text = _refused(tmp_path, path, fmt, inner, "attributes.json states less than was written")
+    assert "block file 0/0/2 lies outside the block grid 3/3/2 (x/y/z)" in text
+
+
+def test_n5_gzip_blocks_are_not_read_as_raw_when_compression_is_lost(tmp_path, volume):
+    # A changed byte in the key "compression" leaves a dataset without one, which N5 reads as
+    # raw; the gzip bytes of a block must not become pixels then.
+    path, fmt, inner = _write("n5", tmp_path, volume)
+    meta_file = path / "volumes" / "raw" / "attributes.json"
+    meta_file.write_text(meta_file.read_text().replace('"compression"', '"bompression"'))
+    text = _refused(tmp_path, path, fmt, inner, "section 0 cannot be read")
+    assert "bytes of elements, expected 128" in text
+
+
 def test_unreadable_hdf5_file_is_refused(tmp_path):
     path = tmp_path / "stack.h5"
     path.write_bytes(b"not an HDF5 file at all")
