@@ -427,6 +427,27 @@ def test_n5_gzip_blocks_are_not_read_as_raw_when_compression_is_lost(tmp_path, v
     assert "bytes of elements, expected 128" in text
 
 
+@pytest.mark.parametrize(
+    ("chunks", "message"),
+    [
+        (None, r"the dataset stores 1800 bytes, its shape \(4, 20, 18\) of uint8 needs 1440"),
+        ((2, 8, 8), r"a chunk is stored at offset \(4, 0, 0\), outside the shape \(4, 20, 18\)"),
+    ],
+)
+def test_hdf5_dataspace_stating_fewer_sections_is_refused(tmp_path, volume, chunks, message):
+    # The dataspace message holds the dimensions as 8-byte little-endian sizes, and default
+    # files have no checksum over it (HDF5 File Format Specification, "Dataspace Message",
+    # version 1 object headers): one changed bit turns 5 sections into 4, read without error.
+    path = tmp_path / "stack.h5"
+    with h5py.File(path, "w") as f:
+        f.create_dataset("raw", data=volume, chunks=chunks)
+    data = path.read_bytes()
+    dims = struct.pack("<3Q", *volume.shape)
+    assert data.count(dims) == 2  # the current dimensions, then the maximum ones
+    path.write_bytes(data.replace(dims, struct.pack("<3Q", 4, *volume.shape[1:]), 1))
+    _refused(tmp_path, path, "hdf5", "raw", message)
+
+
 def test_unreadable_hdf5_file_is_refused(tmp_path):
     path = tmp_path / "stack.h5"
     path.write_bytes(b"not an HDF5 file at all")
