@@ -247,6 +247,18 @@ def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
         read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
+def test_points_row_with_extra_cells_is_one_line(tmp_path):
+    # A tab typed into a cell gives its row more fields than the header; pandas' tokenizer
+    # message for it ends in a newline, which must not reach the one-line error.
+    sheet = tmp_path / "points.tsv"
+    sheet.write_text("dataset\ttarget\tz\ty\tx\nd1\tmito\t0\t10\t10\nd1\tmi\tto\t0\t1\t1\n")
+    with pytest.raises(
+        TesseraInputError, match=r"points\.tsv: not a readable tab-separated"
+    ) as info:
+        read_points(sheet, datasets=["d1"], targets=["mito"])
+    assert "\n" not in str(info.value)
+
+
 class _RunsOnLoad:
     """Unpickling this creates a folder: a stand-in for code hidden in a data file."""
 
