@@ -385,15 +385,14 @@ def test_a_truncated_chunk_is_refused(tmp_path, volume, kind):
 def test_hdf5_with_a_damaged_chunk_index_is_refused(tmp_path, volume):
     # The chunks of a dataset are indexed by a version 1 B-tree whose nodes start with the
     # signature "TREE" and a node type, 1 for chunk indexes (HDF5 File Format Specification,
-    # "Version 1 B-trees"). One changed signature byte: h5py raises RuntimeError when the
-    # chunk check looks a chunk up.
+    # "Version 1 B-trees"). One changed signature byte: h5py raises RuntimeError wherever the
+    # index is walked (the stored-extent check on opening, the chunk check of a section).
     path, fmt, inner = _write("hdf5", tmp_path, volume)
     data = bytearray(path.read_bytes())
     at = next(i for i in range(len(data) - 4) if data[i : i + 4] == b"TREE" and data[i + 4] == 1)
     data[at] ^= 0x01
     path.write_bytes(bytes(data))
-    text = _refused(tmp_path, path, fmt, inner, "section 0: the chunk index cannot be read")
-    assert "wrong B-tree signature" in text
+    _refused(tmp_path, path, fmt, inner, "wrong B-tree signature")
 
 
 @pytest.mark.parametrize("text", ["7", "[1, 2]"])
