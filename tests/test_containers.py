@@ -382,6 +382,71 @@ def test_a_truncated_chunk_is_refused(tmp_path, volume, kind):
         assert "section 2 cannot be read (truncated or damaged chunk?)" in text
 
 
+def test_hdf5_with_a_damaged_chunk_index_is_refused(tmp_path, volume):
+    # The chunks of a dataset are indexed by a version 1 B-tree whose nodes start with the
+    # signature "TREE" and a node type, 1 for chunk indexes (HDF5 File Format Specification,
+    # "Version 1 B-trees"). One changed signature byte: h5py raises RuntimeError wherever the
+    # index is walked (the stored-extent check on opening, the chunk check of a section).
+    path, fmt, inner = _write("hdf5", tmp_path, volume)
+    data = bytearray(path.read_bytes())
+    at = next(i for i in range(len(data) - 4) if data[i : i + 4] == b"TREE" and data[i + 4] == 1)
+    data[at] ^= 0x01
+    path.write_bytes(bytes(data))
+    _refused(tmp_path, path, fmt, inner, "wrong B-tree signature")
+
+
+@pytest.mark.parametrize("text", ["7", "[1, 2]"])
+def test_zarr_attributes_that_are_not_an_object_are_refused(tmp_path, volume, text):
+    # .zattrs must hold a JSON object (zarr v2 spec); zarr opens the array anyway and its
+    # attribute mapping then raises TypeError. A changed byte can turn "{}" into "7".
+    path, fmt, inner = _write("zarr_plain", tmp_path, volume)
+    (path / ".zattrs").write_text(text)
+    _refused(tmp_path, path, fmt, inner, "the array's attributes are .* expected a JSON object")
+
+
+def test_n5_dimensions_stating_fewer_sections_than_written_are_refused(tmp_path, volume):
+    # One changed digit in attributes.json ("dimensions": [18, 20, 5] -> [18, 20, 4]): the
+    # blocks of section 4 lie beyond the grid and would be ignored, a section silently lost.
+    path, fmt, inner = _write("n5", tmp_path, volume)
+    meta_file = path / "volumes" / "raw" / "attributes.json"
+    meta = json.loads(meta_file.read_text())
+    meta["dimensions"][2] = 4
+    meta_file.write_text(json.dumps(meta))
+    text = _refused(tmp_path, path, fmt, inner, "attributes.json states less than was written")
+    assert "block file 0/0/2 lies outside the block grid 3/3/2 (x/y/z)" in text
+
+
+def test_n5_gzip_blocks_are_not_read_as_raw_when_compression_is_lost(tmp_path, volume):
+    # A changed byte in the key "compression" leaves a dataset without one, which N5 reads as
+    # raw; the gzip bytes of a block must not become pixels then.
+    path, fmt, inner = _write("n5", tmp_path, volume)
+    meta_file = path / "volumes" / "raw" / "attributes.json"
+    meta_file.write_text(meta_file.read_text().replace('"compression"', '"bompression"'))
+    text = _refused(tmp_path, path, fmt, inner, "section 0 cannot be read")
+    assert "bytes of elements, expected 128" in text
+
+
+@pytest.mark.parametrize(
+    ("chunks", "message"),
+    [
+        (None, r"the dataset stores 1800 bytes, its shape \(4, 20, 18\) of uint8 needs 1440"),
+        ((2, 8, 8), r"a chunk is stored at offset \(4, 0, 0\), outside the shape \(4, 20, 18\)"),
+    ],
+)
+def test_hdf5_dataspace_stating_fewer_sections_is_refused(tmp_path, volume, chunks, message):
+    # The dataspace message holds the dimensions as 8-byte little-endian sizes, and default
+    # files have no checksum over it (HDF5 File Format Specification, "Dataspace Message",
+    # version 1 object headers): one changed bit turns 5 sections into 4, read without error.
+    path = tmp_path / "stack.h5"
+    with h5py.File(path, "w") as f:
+        f.create_dataset("raw", data=volume, chunks=chunks)
+    data = path.read_bytes()
+    dims = struct.pack("<3Q", *volume.shape)
+    assert data.count(dims) == 2  # the current dimensions, then the maximum ones
+    path.write_bytes(data.replace(dims, struct.pack("<3Q", 4, *volume.shape[1:]), 1))
+    _refused(tmp_path, path, "hdf5", "raw", message)
+
+
 def test_unreadable_hdf5_file_is_refused(tmp_path):
     path = tmp_path / "stack.h5"
     path.write_bytes(b"not an HDF5 file at all")

@@ -356,3 +356,25 @@ def test_a_dataset_without_test_tiles_gets_a_row_saying_so(tmp_path):
     # the pooled row holds d1's objects only (by hand, as in the first test) and names d2
     assert table.loc["all", "note"] == "not scored: d2"
     assert (table.loc["all", "truth_objects"], table.loc["all", "matched_objects"]) == (3, 2)
+
+
+@pytest.mark.parametrize(
+    ("damage", "message"),
+    [
+        # cut after the byte-order mark: tifffile's struct.error before any page is read
+        ("cut", r"cannot read as TIFF: unpack requires a buffer"),
+        # ImageWidth of the first page 0 (TIFF 6.0, tag 256): tifffile divides by it
+        ("width", r"integer division or modulo by zero"),
+    ],
+)
+def test_damaged_truth_volume_is_refused_in_one_line(tmp_path, damage, message):
+    tiles, inputs = _scene(tmp_path)
+    labels = inputs["d1"]["labels"]
+    if damage == "cut":
+        labels.write_bytes(labels.read_bytes()[:4])
+    else:
+        with tifffile.TiffFile(labels, mode="r+") as tif:
+            tif.pages[0].tags["ImageWidth"].overwrite(0)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _run(tmp_path, tiles, inputs)
+    assert str(info.value).startswith(str(labels)) and "\n" not in str(info.value)

@@ -556,3 +556,22 @@ def test_zarr_declaring_fewer_sections_than_written_is_refused(tmp_path):
     ) as info:
         _ingest(src, tmp_path, fmt="zarr")
     _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+@pytest.mark.parametrize("compression", ["zlib", "lzma"])
+def test_tiff_with_a_damaged_compressed_stream_is_refused(tmp_path, compression):
+    # A deflate or LZMA page (TIFF compression 8 and 34925) is decoded by Python's zlib or lzma
+    # when imagecodecs is absent; their errors for a broken stream are neither OSError nor
+    # ValueError. One changed byte in the middle of page 1's stream breaks it.
+    src = tmp_path / "stack.tif"
+    volume = np.random.default_rng(3).integers(0, 256, (3, 16, 16), dtype=np.uint8)
+    tifffile.imwrite(src, volume, photometric="minisblack", compression=compression)
+    data = bytearray(src.read_bytes())
+    with tifffile.TiffFile(src) as tif:
+        start, count = tif.pages[1].dataoffsets[0], tif.pages[1].databytecounts[0]
+    data[start + count // 2] ^= 0x10
+    src.write_bytes(bytes(data))
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match="cannot read page 1: ") as info:
+        _ingest(src, tmp_path)
+    _one_line_and_nothing_written(info, src, tmp_path, before)

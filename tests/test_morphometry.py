@@ -283,3 +283,28 @@ def test_region_mask_of_another_shape_is_refused(tmp_path):
 def test_empty_object_is_refused():
     with pytest.raises(TesseraInputError, match="cannot measure an empty object"):
         measure_object(np.zeros((3, 3, 3), bool), spacing=(1, 1, 1))
+
+
+@pytest.mark.parametrize(
+    ("page", "tag", "value", "message"),
+    [
+        # TIFF 6.0 tags of page 2 rewritten in place, as a bit error in its directory would
+        (2, "ImageWidth", 17, r"page 2 has shape \(16, 17\), expected \(16, 16\) like page 0"),
+        (2, "BitsPerSample", 12, r"page 2 has bitspersample 12, expected 16 like page 0"),
+        # page 3's pixels read from page 0's directory: silently other region labels
+        (3, "StripOffsets", 8, r"the directory of page 0 and the pixels of page 3 overlap"),
+        (None, None, None, r"cannot read as TIFF: unpack requires a buffer"),  # cut to 4 bytes
+    ],
+)
+def test_damaged_region_mask_is_refused_in_one_line(tmp_path, page, tag, value, message):
+    path = tmp_path / "cells.tif"
+    regions = (np.arange(6 * 16 * 16) % 7).astype(np.uint16).reshape(6, 16, 16)
+    tifffile.imwrite(path, regions, photometric="minisblack")
+    if tag is None:
+        path.write_bytes(path.read_bytes()[:4])
+    else:
+        with tifffile.TiffFile(path, mode="r+") as tif:
+            tif.pages[page].tags[tag].overwrite(value)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        read_region_mask(path, shape=(6, 16, 16), factors=(1, 1, 1), out=np.zeros((6, 16, 16)))
+    assert str(info.value).startswith(str(path)) and "\n" not in str(info.value)

@@ -7,6 +7,7 @@ common practice of the field (marked so).
 
 import os
 import pickle
+import struct
 from pathlib import Path
 
 import numpy as np
@@ -250,6 +251,18 @@ def test_points_reject_unknown_column_and_duplicate_ids(tmp_path):
         read_points(sheet, datasets=["d1"], targets=["mito"])
 
 
+def test_points_row_with_extra_cells_is_one_line(tmp_path):
+    # A tab typed into a cell gives its row more fields than the header; pandas' tokenizer
+    # message for it ends in a newline, which must not reach the one-line error.
+    sheet = tmp_path / "points.tsv"
+    sheet.write_text("dataset\ttarget\tz\ty\tx\nd1\tmito\t0\t10\t10\nd1\tmi\tto\t0\t1\t1\n")
+    with pytest.raises(
+        TesseraInputError, match=r"points\.tsv: not a readable tab-separated"
+    ) as info:
+        read_points(sheet, datasets=["d1"], targets=["mito"])
+    assert "\n" not in str(info.value)
+
+
 class _RunsOnLoad:
     """Unpickling this creates a folder: a stand-in for code hidden in a data file."""
 
@@ -330,6 +343,34 @@ def test_mask_encodings_read_identically(tmp_path):
         np.testing.assert_array_equal(got, lab, err_msg=name)
 
 
+@pytest.mark.parametrize(
+    ("damage", "message"),
+    [
+        # IDAT's length field 8 too small (PNG specification, section 5.3: length, type, data,
+        # CRC-32): Pillow read the next chunk header from inside the data, SyntaxError
+        ("png length", r"PNG chunk IDAT at byte 33 fails its CRC-32"),
+        ("tiff width", r"integer division or modulo by zero"),  # ImageWidth 0 (TIFF 6.0)
+    ],
+)
+def test_damaged_mask_is_refused_in_one_line(tmp_path, damage, message):
+    lab = mask_pair()
+    if damage == "tiff width":
+        path = tmp_path / "m.tif"
+        tifffile.imwrite(path, lab * 255, photometric="minisblack")
+        with tifffile.TiffFile(path, mode="r+") as tif:
+            tif.pages[0].tags["ImageWidth"].overwrite(0)
+    else:
+        path = save_png(tmp_path / "m.png", lab * 255)
+        data = bytearray(path.read_bytes())
+        at = data.index(b"IDAT") - 4
+        (length,) = struct.unpack(">I", data[at : at + 4])
+        data[at : at + 4] = struct.pack(">I", length - 8)
+        path.write_bytes(bytes(data))
+    with pytest.raises(TesseraInputError, match=message) as info:
+        read_painted_mask(path, shape=lab.shape)
+    assert str(info.value).startswith(str(path)) and "\n" not in str(info.value)
+
+
 def test_zero_one_mask_with_ignore_255(tmp_path):
     lab = mask_pair()
     img = lab.copy()
@@ -389,7 +430,7 @@ def test_mask_files_are_decoded_as_images_never_unpickled(tmp_path, suffix):
     assert (tmp_path / "control").is_dir()
     path = tmp_path / f"t{suffix}"
     path.write_bytes(payload)
-    with pytest.raises(TesseraInputError, match=rf"t\{suffix}: cannot read the image"):
+    with pytest.raises(TesseraInputError, match=rf"t\{suffix}: cannot read (the image|as TIFF)"):
         read_painted_mask(path, shape=(4, 4))
     assert not (tmp_path / "ran").exists()
 

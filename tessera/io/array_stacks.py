@@ -273,7 +273,15 @@ class ArrayStack:
 
     def read(self, z):
         """Section `z` as a native-endian 2D array, after the chunk, decode and finite checks."""
-        problem = self._chunk_problem(z) if self._chunk_problem is not None else None
+        try:
+            # the chunk index is read from the file too: h5py reports a damaged B-tree here
+            problem = self._chunk_problem(z) if self._chunk_problem is not None else None
+        except self._errors as exc:
+            text = str(exc).replace("\n", " ")
+            raise TesseraInputError(
+                f"section {z}: the chunk index cannot be read (damaged?): {text}",
+                source=self.label,
+            ) from None
         if isinstance(problem, MissingChunk) and self.missing_chunks == "fill_value":
             if z not in self.sections_with_missing_chunks:
                 self.sections_with_missing_chunks.append(z)

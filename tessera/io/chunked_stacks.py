@@ -87,7 +87,16 @@ def open_zarr_array(path, internal_path=None):
         what = f"no zarr array at internal_path {inner!r}" if inner else "cannot open as zarr"
         raise TesseraInputError(f"{what}: {exc}", source=path) from None
     check_chunk_grid(array, path)
-    spacing, attribute = spacing_from_attrs(array.attrs.asdict(), source=label)
+    attrs = array.metadata.attributes
+    if not isinstance(attrs, dict):
+        # zarr opens the array anyway and fails later, on reading its attributes (zarr v2
+        # spec: .zattrs holds a JSON object; v3 spec: "attributes" is a JSON object)
+        raise TesseraInputError(
+            f"the array's attributes are {type(attrs).__name__} {attrs!r:.40}, expected a JSON "
+            "object (damaged .zattrs or zarr.json?)",
+            source=label,
+        )
+    spacing, attribute = spacing_from_attrs(dict(attrs), source=label)
     return ArrayStack(
         array,
         label=label,
@@ -245,6 +254,29 @@ class _N5Array:
         self.ndim = len(self.shape)
         self._folder, self._label = folder, label
         self._cells = _grid_rows(self.shape, self.blocks) if self.ndim == 3 else []
+        if self.ndim == 3:
+            self._check_block_grid()
+
+    def _check_block_grid(self):
+        """Refuse block files beyond the grid of ``dimensions`` (the attributes state too little).
+
+        Like zarr (:func:`tessera.io.zarr_checks.check_chunk_grid`), a reader would silently
+        ignore them and return a smaller volume.
+        """
+        grid = [-(-n // b) for n, b in zip(self.shape, self.blocks, strict=True)]  # z, y, x
+        for file in sorted(self._folder.glob("*/*/*")):
+            parts = file.relative_to(self._folder).parts  # x, y, z: the N5 block path
+            if not all(p.isdigit() for p in parts) or not file.is_file():
+                continue
+            i, j, row = (int(p) for p in parts)
+            if row >= grid[0] or j >= grid[1] or i >= grid[2]:
+                raise TesseraInputError(
+                    f"block file {'/'.join(parts)} lies outside the block grid "
+                    f"{'/'.join(map(str, grid[::-1]))} (x/y/z) of dimensions "
+                    f"{list(self.shape[::-1])}: attributes.json states less than was written "
+                    "(damaged or edited?)",
+                    source=self._label,
+                )
 
     def _block_file(self, row, j, i):
         return self._folder / str(i) / str(j) / str(row)  # grid position listed x first
@@ -287,9 +319,10 @@ class _N5Array:
                 f"block {file} does not decompress ({self.compression}): {exc}"
             ) from None
         count = int(np.prod(size))
-        if len(raw) < count * self.dtype.itemsize:
-            raise ValueError(
-                f"block {file} holds {len(raw)} bytes, expected {count * self.dtype.itemsize}"
-            )
+        need = count * self.dtype.itemsize
+        # a raw block is its header and its elements, nothing more (N5 format description), so
+        # surplus bytes are damage: e.g. gzip blocks read as raw after "compression" was lost
+        if len(raw) < need or (self.compression == "raw" and len(raw) != need):
+            raise ValueError(f"block {file} holds {len(raw)} bytes of elements, expected {need}")
         block = np.frombuffer(raw, dtype=self.dtype, count=count).reshape(size)
         return block[: expected[0], : expected[1], : expected[2]]

@@ -61,6 +61,7 @@ def open_hdf5(path, internal_path):
         raise TesseraInputError(f"cannot read as HDF5: {exc}", source=path) from None
     try:
         dataset = _dataset(handle, parts, path, label)
+        _check_stored_extent(dataset, label)
         spacing, attribute = spacing_from_attrs(dict(dataset.attrs), source=label)
     # RuntimeError: h5py's report of a damaged heap or B-tree (found by fuzzing)
     except (TesseraInputError, OSError, KeyError, TypeError, ValueError, RuntimeError) as exc:
@@ -107,6 +108,40 @@ def _dataset(handle, parts, path, label):
             source=label,
         )
     return node
+
+
+def _check_stored_extent(dataset, label):
+    """Refuse a dataset whose stored data reach beyond its dataspace (the shape states less).
+
+    HDF5 files of the default (earliest) format carry no checksum over their object headers
+    (HDF5 File Format Specification, version 1 object headers), so a changed bit in the
+    dataspace's dimensions reads as a smaller array. The data stored tell: a contiguous
+    dataset's size is recorded apart from its shape (data layout message), and chunks are
+    indexed by their offsets.
+    """
+    shape, itemsize = dataset.shape, dataset.dtype.itemsize
+    if dataset.chunks is None:
+        stored = dataset.id.get_storage_size()
+        if stored and stored != dataset.size * itemsize:
+            raise TesseraInputError(
+                f"the dataset stores {stored} bytes, its shape {shape} of {dataset.dtype} "
+                f"needs {dataset.size * itemsize} (damaged header?)",
+                source=label,
+            )
+        return
+    beyond = []
+
+    def visit(chunk):
+        if not beyond and any(o >= n for o, n in zip(chunk.chunk_offset, shape, strict=True)):
+            beyond.append(chunk.chunk_offset)
+
+    dataset.id.chunk_iter(visit)
+    if beyond:
+        raise TesseraInputError(
+            f"a chunk is stored at offset {tuple(beyond[0])}, outside the shape {shape}: the "
+            "dataspace states less than was written (damaged header?)",
+            source=label,
+        )
 
 
 def _names(node):

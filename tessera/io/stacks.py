@@ -15,7 +15,6 @@ A reader holds one section at a time (memory maps and zarr arrays read only what
 """
 
 import contextlib
-import struct
 from pathlib import Path
 
 import mrcfile
@@ -26,6 +25,7 @@ from PIL import Image
 from tessera.errors import TesseraInputError
 from tessera.io.containers import open_container
 from tessera.io.damage import check_file_size, check_section, complaints_as_errors
+from tessera.io.image_files import IMAGE_READ_ERRORS, check_png_chunks
 from tessera.io.omezarr import open_image
 from tessera.io.section_numbers import number_sections
 from tessera.io.tiff_checks import open_checked_tiff, read_checked_page
@@ -100,6 +100,7 @@ def _read_plane(path):
                     f"expected one page per section file, found {len(tif.pages)}", source=path
                 )
             return read_checked_page(tif, 0, path)
+    check_png_chunks(path)
     with complaints_as_errors(path, what="cannot read section image", loggers=("PIL",)):
         with Image.open(path) as im:
             if im.mode not in _GREY_MODES:
@@ -143,7 +144,7 @@ class _SliceFolder(_Source):
             plane = _read_plane(f)
         except TesseraInputError:
             raise
-        except (OSError, ValueError, SyntaxError, EOFError, struct.error) as exc:
+        except IMAGE_READ_ERRORS as exc:
             raise TesseraInputError(f"cannot read section image: {exc}", source=f) from None
         if plane.ndim != 2:
             raise TesseraInputError(

@@ -37,4 +37,7 @@ def read_text_table(path):
     try:
         return pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise TesseraInputError(f"not a readable tab-separated table: {exc}", source=path) from None
+        text = " ".join(str(exc).split())  # pandas ends its tokenizer messages with a newline
+        raise TesseraInputError(
+            f"not a readable tab-separated table: {text}", source=path
+        ) from None

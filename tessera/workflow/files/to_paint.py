@@ -91,7 +91,7 @@ def read_painted_mask(path, *, shape, ignore_value=None, allow_single_class=Fals
     Parameters
     ----------
     path : str or Path
-        PNG or TIFF, 8- or 16-bit (or 1-bit) greyscale; RGB(A) or palette images are accepted
+        PNG or TIFF, 8- or 16-bit (or 1-bit) greyscale; RGB(A) or palette PNGs are accepted
         when every pixel is grey (equal colour channels) and fully opaque.
     shape : (int, int)
         Expected ``(height, width)``.

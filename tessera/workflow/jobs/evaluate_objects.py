@@ -9,14 +9,16 @@ The predicted labels, made at the working level, are repeated onto the full-reso
 the truth, so volumes are counted in the truth's own voxels.
 """
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
-import tifffile
 from scipy import ndimage
 
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import open_image
+from tessera.io.tiff_checks import read_checked_tiff
 from tessera.object_scores import (
     connected_truth,
     match_table,
@@ -67,10 +69,7 @@ COLUMNS = (
 
 
 def _read_volume(path, shape, what):
-    try:
-        volume = tifffile.imread(path)
-    except (OSError, ValueError, tifffile.TiffFileError) as exc:
-        raise TesseraInputError(f"cannot read {what}: {exc}", source=path) from None
+    volume = read_checked_tiff(Path(path))
     if volume.shape != tuple(shape):
         raise TesseraInputError(
             f"{what} has shape {volume.shape}, the image {tuple(shape)}", source=path

@@ -1,14 +1,15 @@
 """The morphometry rule: measure every object of one dataset and target, densities per region."""
 
+import contextlib
 import tempfile
 from pathlib import Path
 
 import numpy as np
-import tifffile
 import zarr
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image
+from tessera.io.tiff_checks import open_checked_tiff, read_checked_page
 from tessera.morphometry import measure_objects, region_densities
 from tessera.workflow.files.morphometry_tables import (
     write_object_measures,
@@ -24,25 +25,19 @@ def read_region_mask(path, *, shape, factors, out):
     Coarser levels take every f-th voxel (labels are not averaged). The TIFF's shape reduced by
     `factors` must equal `shape`.
     """
-    try:
-        with tifffile.TiffFile(path) as tif:
-            pages = tif.pages
-            first = pages[0].shape
-            full = (len(pages), *first)
-            reduced = tuple(-(-n // f) for n, f in zip(full, factors, strict=False))
-            if reduced != tuple(shape):
-                raise TesseraInputError(
-                    f"region mask has shape {full}, which at the working level ({'x'.join(map(str, factors))} smaller) "
-                    f"is {reduced}; the image there is {tuple(shape)} (same stack and voxel size expected)",
-                    source=path,
-                )
-            for oz in range(shape[0]):
-                page = pages[oz * factors[0]].asarray()
-                out[oz] = page[:: factors[1], :: factors[2]]
-    except (tifffile.TiffFileError, OSError) as exc:
-        raise TesseraInputError(
-            f"cannot read the region mask as TIFF: {exc}", source=path
-        ) from None
+    # checked whole first: a damaged mask is refused in one line, never read short or altered
+    with contextlib.closing(open_checked_tiff(Path(path))) as tif:
+        full = (len(tif.pages), *tif.pages[0].shape)
+        reduced = tuple(-(-n // f) for n, f in zip(full, factors, strict=False))
+        if reduced != tuple(shape):
+            raise TesseraInputError(
+                f"region mask has shape {full}, which at the working level ({'x'.join(map(str, factors))} smaller) "
+                f"is {reduced}; the image there is {tuple(shape)} (same stack and voxel size expected)",
+                source=path,
+            )
+        for oz in range(shape[0]):
+            page = read_checked_page(tif, oz * factors[0], path)
+            out[oz] = page[:: factors[1], :: factors[2]]
     return out
 
 

@@ -1,11 +1,11 @@
 """The sample_tiles rule: annotation tiles of one dataset from a full label volume."""
 
 import logging
-
-import tifffile
+from pathlib import Path
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
+from tessera.io.tiff_checks import read_checked_tiff
 from tessera.tiles.sampling import sample_tiles_from_labels
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import write_annotation_set
@@ -36,10 +36,7 @@ def sample_tiles_job(
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
-    try:
-        labels = tifffile.imread(labels_path)
-    except (OSError, ValueError, tifffile.TiffFileError) as exc:
-        raise TesseraInputError(f"cannot read label volume: {exc}", source=labels_path) from None
+    labels = read_checked_tiff(Path(labels_path))
     if labels.shape != tuple(info["levels"][0].shape):
         raise TesseraInputError(
             f"label volume has shape {labels.shape}, the image {tuple(info['levels'][0].shape)}",
