@@ -11,6 +11,7 @@ memory). The ingested volume is compared with the array written.
 import gzip
 import json
 import struct
+import zlib
 
 import h5py
 import numcodecs
@@ -445,6 +446,23 @@ def test_hdf5_dataspace_stating_fewer_sections_is_refused(tmp_path, volume, chun
     assert data.count(dims) == 2  # the current dimensions, then the maximum ones
     path.write_bytes(data.replace(dims, struct.pack("<3Q", 4, *volume.shape[1:]), 1))
     _refused(tmp_path, path, "hdf5", "raw", message)
+
+
+@pytest.mark.parametrize("damage", ["filter skipped", "pipeline lost"])
+def test_hdf5_compressed_chunks_are_never_read_as_pixels(tmp_path, volume, damage):
+    # A chunk's filter mask says which filters were skipped for it, and a dataset without a
+    # filter pipeline stores every chunk whole (HDF5 File Format Specification, "Data Storage -
+    # Filter Pipeline Message" and version 1 B-tree chunk records; neither has a checksum in
+    # default files). Either damage makes h5py return the deflate bytes as pixel values; the
+    # chunks are written directly here as such damage leaves them.
+    path = tmp_path / "stack.h5"
+    chunks = (1, *volume.shape[1:])
+    packed = zlib.compress(np.ascontiguousarray(volume[0]).tobytes())
+    with h5py.File(path, "w") as f:
+        kw = {"compression": "gzip"} if damage == "filter skipped" else {}
+        raw = f.create_dataset("raw", data=volume, chunks=chunks, **kw)
+        raw.id.write_direct_chunk((0, 0, 0), packed, filter_mask=1)
+    _refused(tmp_path, path, "hdf5", "raw", r"the chunk at offset \(0, 0, 0\) is stored unfiltered")
 
 
 def test_unreadable_hdf5_file_is_refused(tmp_path):

@@ -8,6 +8,7 @@ would read as fill value) and data that live in another file (external links, vi
 are refused.
 """
 
+import math
 from pathlib import Path
 
 import h5py
@@ -129,17 +130,33 @@ def _check_stored_extent(dataset, label):
                 source=label,
             )
         return
-    beyond = []
+    beyond, wrong_size = [], []
+    # A chunk no filter was applied to is stored whole, chunk shape x item size bytes; compressed
+    # bytes read as such would become pixels (a changed bit in the filter pipeline message, or
+    # in a chunk's filter mask, both without checksum in default files).
+    whole = math.prod(dataset.chunks) * itemsize
+    filters = dataset.id.get_create_plist().get_nfilters()
+    every_filter = (1 << filters) - 1
 
     def visit(chunk):
         if not beyond and any(o >= n for o, n in zip(chunk.chunk_offset, shape, strict=True)):
             beyond.append(chunk.chunk_offset)
+        unfiltered = filters == 0 or (chunk.filter_mask & every_filter) == every_filter
+        if not wrong_size and unfiltered and chunk.size != whole:
+            wrong_size.append((chunk.chunk_offset, chunk.size))
 
     dataset.id.chunk_iter(visit)
     if beyond:
         raise TesseraInputError(
             f"a chunk is stored at offset {tuple(beyond[0])}, outside the shape {shape}: the "
             "dataspace states less than was written (damaged header?)",
+            source=label,
+        )
+    if wrong_size:
+        offset, size = wrong_size[0]
+        raise TesseraInputError(
+            f"the chunk at offset {tuple(offset)} is stored unfiltered in {size} bytes, a whole "
+            f"chunk takes {whole} (damaged filter pipeline or chunk index?)",
             source=label,
         )
 
