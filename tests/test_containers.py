@@ -462,7 +462,9 @@ def test_hdf5_compressed_chunks_are_never_read_as_pixels(tmp_path, volume, damag
         kw = {"compression": "gzip"} if damage == "filter skipped" else {}
         raw = f.create_dataset("raw", data=volume, chunks=chunks, **kw)
         raw.id.write_direct_chunk((0, 0, 0), packed, filter_mask=1)
-    _refused(tmp_path, path, "hdf5", "raw", r"the chunk at offset \(0, 0, 0\) is stored unfiltered")
+    text = _refused(tmp_path, path, "hdf5", "raw", "is stored unfiltered")
+    assert "the chunk at offset (0, 0, 0) is stored unfiltered in" in text
+    assert f"bytes, a whole chunk takes {volume[0].nbytes}" in text
 
 
 def test_unreadable_hdf5_file_is_refused(tmp_path):
