@@ -12,6 +12,7 @@ from snakemake.exceptions import WorkflowError
 from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_settings
 from tessera.ladder import ladder_rungs, split_cascade_settings
 from tessera.workflow.config import (
+    check_annotated_datasets,
     check_config_paths,
     check_reference_condition,
     expand_variants,
@@ -47,6 +48,7 @@ try:
     check_reference_condition(
         config["statistics"]["reference_condition"], list(DATASETS["condition"])
     )
+    check_annotated_datasets(config["targets"], DATASETS.index)
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 
@@ -150,12 +152,6 @@ def annotated_ids(wildcards):
     if _painted(target):
         return POINTS[target]
     annotated = target_settings(wildcards)["annotated_datasets"]
-    unknown = sorted(set(annotated or ()) - set(DATASETS.index))
-    if unknown:
-        raise WorkflowError(
-            f"invalid input: config/config.yaml: key targets.{target}.annotated_datasets: "
-            f"{unknown} are not datasets of the sheet"
-        )
     return [d for d in DATASETS.index if annotated is None or d in annotated]
 
 

@@ -9,6 +9,7 @@ import yaml
 
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
+    check_annotated_datasets,
     check_config_paths,
     config_paths,
     load_config,
@@ -224,11 +225,16 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
         ),
         (
             ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t8\t8\t"],
-            r"row 2: key voxel_z_nm: 0.0 is less than or equal to the minimum of 0",
+            r"row 2: key voxel_z_nm: 0.0 is less than the minimum of 0.1",
         ),
         (
             ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t-8\t8\t"],
-            r"row 2: key voxel_y_nm: -8.0 is less than or equal",
+            r"row 2: key voxel_y_nm: -8.0 is less than the minimum",
+        ),
+        # 8 nm written in µm: no EM image has pixels below 0.1 nm (common practice)
+        (
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t0.04\t0.008\t0.008\t"],
+            r"row 2: key voxel_x_nm: 0.008 is less than the minimum of 0.1",
         ),
         (
             ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\teight\t"],
@@ -260,6 +266,32 @@ def test_unknown_sheet_column_is_refused(tmp_path, schemas):
     path = _sheet(tmp_path, GOOD + "\tx", header=HEADER + "\tcolour")
     with pytest.raises(
         TesseraInputError, match=r"row 2: key \(top level\): Additional properties.*'colour'"
+    ):
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+
+
+def test_spreadsheet_exports_read_like_the_plain_sheet(tmp_path, schemas):
+    # Spreadsheet exports add a UTF-8 byte-order mark, CRLF line ends and empty cells after the
+    # last column (common practice: Excel's "Unicode text" and CSV exports); they hold nothing.
+    text = "\ufeff" + "\r\n".join([HEADER + "\t\t", GOOD + "\t\t\t", GOOD.replace("a1", "a2")])
+    (tmp_path / "stack.tif").write_bytes(b"")
+    (tmp_path / "datasets.tsv").write_bytes(text.encode() + b"\r\n")
+    sheet = load_datasets(
+        tmp_path / "datasets.tsv", schemas / "datasets.schema.yaml", base_dir=tmp_path
+    )
+    assert list(sheet.index) == ["a1", "a2"]
+    assert list(sheet["format"]) == ["tiff_stack", "tiff_stack"]
+    assert list(sheet["voxel_z_nm"]) == [40.0, 40.0]
+
+
+def test_a_filled_cell_beyond_the_header_is_refused_not_shifted(tmp_path, schemas):
+    # One cell too many would shift a row's cells into other columns (pandas then takes the
+    # first cells as the index): the row is refused instead.
+    path = _sheet(tmp_path, GOOD + "\tsynthetic")
+    with pytest.raises(
+        TesseraInputError,
+        match=r"datasets.tsv: row 2 has a cell beyond the 9 columns of the header \('synthetic'\); "
+        r"expected one cell per header column",
     ):
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
 
@@ -559,3 +591,16 @@ def test_internal_path_column_is_optional_for_zarr_and_absent_for_old_sheets(tmp
     assert sheet["internal_path"].tolist() == [None, "/volumes/raw", "volumes/raw"]
     old = load_datasets(_sheet(tmp_path, GOOD), schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert old.loc["a1", "internal_path"] is None  # the schema's default
+
+
+def test_annotated_datasets_missing_from_the_sheet_are_refused_at_load():
+    # A typo in annotated_datasets is named when the config loads, in one line, instead of
+    # surfacing while Snakemake plans jobs (common practice: validate configuration up front).
+    targets = {"nuclei": {"annotated_datasets": ["a1", "x9"]}, "mito": {"annotated_datasets": None}}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"config/config.yaml: key targets.nuclei.annotated_datasets: \['x9'\] are not "
+        r"datasets of the sheet; its datasets are \['a1', 'a2'\]",
+    ):
+        check_annotated_datasets(targets, ["a1", "a2"])
+    check_annotated_datasets({"nuclei": {"annotated_datasets": ["a2"]}}, ["a1", "a2"])

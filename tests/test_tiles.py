@@ -600,6 +600,69 @@ def test_sample_tiles_job_names_the_label_file_and_the_settings(tmp_path):
     assert (summary["tiles"], summary["asked"]) == (6, 9)
 
 
+@pytest.mark.parametrize(
+    "labels, message",
+    [
+        # every voxel 0: the wrong file, or an export that lost the painting
+        (lambda t: np.zeros_like(t), r"label volume has no mito voxels \(every voxel is 0\)"),
+        (lambda t: np.ones_like(t), r"label volume has no background voxels"),
+        # a uint16 label volume re-saved as int16 wraps its high ids below zero
+        (
+            lambda t: t.astype(np.int16) - 1,
+            r"label volume holds negative values \(lowest -1\); expected 0 for background",
+        ),
+        # a dtype problem is not a matter of tile settings: no tiles.* hint beside it
+        (
+            lambda t: t.astype(np.float32),
+            r"label volume must hold integers \(0 background\), got float32$",
+        ),
+    ],
+)
+def test_sample_tiles_job_refuses_label_volumes_without_both_classes_or_not_labels(
+    tmp_path, labels, message
+):
+    # > 0 is target and 0 background (the README's label volumes); both must be present
+    # (common practice: a binary classifier needs examples of both classes).
+    raw, truth = volume(shape=(6, 64, 64))
+    tifffile.imwrite(tmp_path / "raw.tif", raw)
+    tifffile.imwrite(tmp_path / "truth.tif", labels(truth))
+    ingest_job(
+        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
+    )
+    pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
+    qc = tmp_path / "sections.tsv"
+    pd.DataFrame({"z": range(6), "excluded": [False] * 6}).to_csv(qc, sep="\t", index=False)
+    kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
+    with pytest.raises(TesseraInputError, match=message):
+        sample_tiles_job(
+            tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc, tmp_path / "t", **kw
+        )
+    assert not (tmp_path / "t").exists()
+
+
+def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):
+    # A constant or blank stack is flagged flat throughout: the one line names the QC table
+    # and the QC setting, not the tile settings that cannot help.
+    raw, truth = volume(shape=(5, 64, 64))
+    tifffile.imwrite(tmp_path / "raw.tif", raw)
+    tifffile.imwrite(tmp_path / "truth.tif", truth)
+    ingest_job(
+        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
+    )
+    pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
+    qc = tmp_path / "sections.tsv"
+    pd.DataFrame({"z": range(5), "excluded": [True] * 5}).to_csv(qc, sep="\t", index=False)
+    kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"sections.tsv: section QC excluded every section of dataset d1, so no tile can be "
+        r"cut; look at its sections.png, or set qc.exclude_flagged: false",
+    ):
+        sample_tiles_job(
+            tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc, tmp_path / "t", **kw
+        )
+
+
 # --------------------------------------------------------------------------------------------
 # split
 

@@ -5,6 +5,7 @@ errors, values have ranges), defaults from the schema are filled in, and every e
 one line naming the file, the key or row and column, and what was expected.
 """
 
+import csv
 import json
 import math
 from pathlib import Path
@@ -154,6 +155,30 @@ def check_reference_condition(reference, conditions, *, source="config/config.ya
         )
 
 
+def check_annotated_datasets(targets, dataset_ids, *, source="config/config.yaml"):
+    """Refuse a ``targets.<t>.annotated_datasets`` entry that is not a dataset of the sheet.
+
+    Checked when the config loads, so the mistake is one line before any job is planned.
+
+    Examples
+    --------
+    >>> check_annotated_datasets({"nuclei": {"annotated_datasets": ["a1"]}}, ["a1", "a2"])
+    >>> check_annotated_datasets({"nuclei": {"annotated_datasets": ["a1", "x9"]}}, ["a1"])
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: key targets.nuclei.annotated_datasets: ['x9'] are not datasets of the sheet; its datasets are ['a1']
+    """
+    known = list(dataset_ids)
+    for target, settings in targets.items():
+        unknown = sorted(set(settings.get("annotated_datasets") or ()) - set(known))
+        if unknown:
+            raise TesseraInputError(
+                f"key targets.{target}.annotated_datasets: {unknown} are not datasets of the "
+                f"sheet; its datasets are {known}",
+                source=source,
+            )
+
+
 def _parse_number(text, *, where):
     if text.strip() == "":
         return None
@@ -164,6 +189,51 @@ def _parse_number(text, *, where):
     if not math.isfinite(value):
         raise TesseraInputError(f"expected a finite number in nm, got {text!r}", source=where)
     return value
+
+
+def _sheet_records(sheet_path):
+    """(line number, {column: text}) of every non-blank row of a tab-separated sheet.
+
+    Empty cells after the last column (trailing tabs, as spreadsheet exports leave them) are
+    dropped; a row with a filled cell beyond the header is refused, because reading it would
+    shift its cells into other columns. Missing cells at the end of a row read as blank. A
+    UTF-8 byte-order mark and CRLF line ends are accepted.
+    """
+    try:
+        with open(sheet_path, encoding="utf-8-sig", newline="") as handle:
+            lines = list(csv.reader(handle, delimiter="\t"))
+    except FileNotFoundError:
+        raise TesseraInputError("datasets sheet not found", source=sheet_path) from None
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise TesseraInputError(
+            f"not a readable tab-separated sheet: {exc}", source=sheet_path
+        ) from None
+    numbered = [(i + 1, cells) for i, cells in enumerate(lines) if any(c.strip() for c in cells)]
+    if not numbered:
+        raise TesseraInputError(
+            "not a readable tab-separated sheet: no header line", source=sheet_path
+        )
+    _, header = numbered[0]
+    while header and not header[-1].strip():
+        header = header[:-1]
+    header = [c.strip() for c in header]
+    repeated = sorted({c for c in header if header.count(c) > 1})
+    if repeated:
+        raise TesseraInputError(
+            f"header: column(s) {repeated} appear more than once", source=sheet_path
+        )
+    records = []
+    for line, cells in numbered[1:]:
+        extra = [c for c in cells[len(header) :] if c.strip()]
+        if extra:
+            raise TesseraInputError(
+                f"row {line} has a cell beyond the {len(header)} columns of the header "
+                f"({extra[0]!r}); expected one cell per header column",
+                source=sheet_path,
+            )
+        cells = cells[: len(header)] + [""] * (len(header) - len(cells))
+        records.append((line, dict(zip(header, cells, strict=True))))
+    return records
 
 
 def load_datasets(
@@ -210,19 +280,12 @@ def load_datasets(
         source=f"{config_source}, key datasets",
     )
     schema = read_yaml(schema_path)
-    try:
-        table = pd.read_csv(sheet_path, sep="\t", dtype=str, keep_default_na=False, comment=None)
-    except FileNotFoundError:
-        raise TesseraInputError("datasets sheet not found", source=sheet_path) from None
-    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
-        raise TesseraInputError(
-            f"not a readable tab-separated sheet: {exc}", source=sheet_path
-        ) from None
-    if table.empty:
+    records = _sheet_records(sheet_path)
+    if not records:
         raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
     rows = []
-    for i, raw in enumerate(table.to_dict(orient="records")):
-        row_name = f"{sheet_path}, row {i + 2}"  # header is line 1
+    for line, raw in records:
+        row_name = f"{sheet_path}, row {line}"
         record = {k: v.strip() for k, v in raw.items()}
         for column in SHEET_NUMBER_COLUMNS:
             if column in record:

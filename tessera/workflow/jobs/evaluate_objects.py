@@ -9,8 +9,6 @@ The predicted labels, made at the working level, are repeated onto the full-reso
 the truth, so volumes are counted in the truth's own voxels.
 """
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 from scipy import ndimage
@@ -18,7 +16,6 @@ from scipy import ndimage
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import open_image
-from tessera.io.tiff_checks import read_checked_tiff
 from tessera.object_scores import (
     connected_truth,
     match_table,
@@ -29,6 +26,7 @@ from tessera.object_scores import (
 )
 from tessera.object_views import crop_box, object_crop, plot_object_crops, plot_object_scores
 from tessera.tiles.split import held_out_sections
+from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.objects_3d import write_objects_3d
 from tessera.workflow.files.probability_map import probability_fields
 from tessera.workflow.files.qc_table import excluded_sections
@@ -68,24 +66,11 @@ COLUMNS = (
 )
 
 
-def _read_volume(path, shape, what):
-    volume = read_checked_tiff(Path(path))
-    if volume.shape != tuple(shape):
-        raise TesseraInputError(
-            f"{what} has shape {volume.shape}, the image {tuple(shape)}", source=path
-        )
-    if volume.dtype.kind not in "iub":
-        raise TesseraInputError(
-            f"{what} must hold integers (0 background), got {volume.dtype}", source=path
-        )
-    return volume
-
-
 def _truth(labels, instances, shape):
     """(true objects on the whole volume, source wording)."""
     if instances is not None:
-        return _read_volume(instances, shape, "instance volume"), FROM_INSTANCES
-    return connected_truth(_read_volume(labels, shape, "label volume")), FROM_COMPONENTS
+        return read_label_volume(instances, shape, "instance volume"), FROM_INSTANCES
+    return connected_truth(read_label_volume(labels, shape, "label volume")), FROM_COMPONENTS
 
 
 def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excluded):

@@ -1,12 +1,11 @@
 """The sample_tiles rule: annotation tiles of one dataset from a full label volume."""
 
 import logging
-from pathlib import Path
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
-from tessera.io.tiff_checks import read_checked_tiff
 from tessera.tiles.sampling import sample_tiles_from_labels
+from tessera.workflow.files.label_volumes import check_both_classes, read_label_volume
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import write_annotation_set
 
@@ -36,16 +35,19 @@ def sample_tiles_job(
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
-    labels = read_checked_tiff(Path(labels_path))
-    if labels.shape != tuple(info["levels"][0].shape):
-        raise TesseraInputError(
-            f"label volume has shape {labels.shape}, the image {tuple(info['levels'][0].shape)}",
-            source=labels_path,
-        )
+    labels = read_label_volume(labels_path, info["levels"][0].shape)
+    check_both_classes(labels, labels_path, target)
     # the QC table's `excluded` column is the one record of exclusion: it already honours
     # qc.exclude_flagged, and always holds lost (placeholder) sections; level-0 sections,
     # which sample_tiles_from_labels maps to the working level itself
     exclude = excluded_sections(qc_table)
+    if len(exclude) == labels.shape[0]:
+        # not a matter of tile settings: say where the exclusion comes from
+        raise TesseraInputError(
+            f"section QC excluded every section of dataset {dataset}, so no tile can be cut; "
+            "look at its sections.png, or set qc.exclude_flagged: false in config/config.yaml",
+            source=qc_table,
+        )
     try:
         registry, tile_labels = sample_tiles_from_labels(
             labels,
