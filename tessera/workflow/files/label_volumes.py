@@ -46,7 +46,8 @@ def check_both_classes(volume, path, target):
     if target_voxels == 0:
         raise TesseraInputError(
             f"label volume has no {target} voxels (every voxel is 0); expected values > 0 "
-            f"where the {target} are",
+            f"where the {target} are (if this dataset truly holds none, leave it out of the "
+            "target's annotated_datasets)",
             source=path,
         )
     if target_voxels == volume.size:
