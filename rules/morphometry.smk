@@ -6,6 +6,8 @@ rule morphometry:
         image="results/{dataset}/objects/{target}.ome.zarr",
         table="results/{dataset}/objects/{target}.tsv",
         roi=dataset_roi,
+        # the stack's full-resolution shape, which a region mask must have
+        raw="results/{dataset}/pyramid/raw.ome.zarr",
     output:
         objects="results/{dataset}/morphometry/{target}_objects.tsv",
         regions="results/{dataset}/morphometry/{target}_regions.tsv",

@@ -17,4 +17,5 @@ run_job(
     out_regions=snakemake.output.regions,
     target=snakemake.wildcards.target,
     roi_mask=snakemake.input.roi[0] if snakemake.input.roi else None,
+    raw_image=snakemake.input.raw,
 )

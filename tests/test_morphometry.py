@@ -269,7 +269,9 @@ def test_edge_corrected_count_is_unbiased_where_excluding_cut_objects_is_not():
 
 def test_region_mask_of_another_shape_is_refused(tmp_path):
     path = tmp_path / "cells.tif"
-    tifffile.imwrite(path, np.zeros((6, 40, 40), np.uint16))
+    cells = np.zeros((6, 40, 40), np.uint16)
+    cells[:, 20:, :] = 3
+    tifffile.imwrite(path, cells)
     with pytest.raises(
         TesseraInputError,
         match=r"cells\.tif: region mask has shape \(6, 40, 40\), which at the working level "
@@ -277,7 +279,45 @@ def test_region_mask_of_another_shape_is_refused(tmp_path):
     ):
         read_region_mask(path, shape=(6, 30, 30), factors=(1, 1, 1), out=np.zeros((6, 30, 30)))
     out = read_region_mask(path, shape=(6, 20, 20), factors=(1, 2, 2), out=np.ones((6, 20, 20)))
-    assert (out == 0).all()
+    np.testing.assert_array_equal(out, cells[:, ::2, ::2])  # every 2nd voxel, labels not averaged
+    # one row short reduces to the same working shape (ceil(39 / 2) = 20): the stack's own
+    # full-resolution shape tells
+    tifffile.imwrite(path, cells[:, :39])
+    with pytest.raises(
+        TesseraInputError,
+        match=r"cells\.tif: region mask has shape \(6, 39, 40\), the stack \(6, 40, 40\)",
+    ):
+        read_region_mask(
+            path,
+            shape=(6, 20, 20),
+            factors=(1, 2, 2),
+            out=np.ones((6, 20, 20)),
+            full_shape=(6, 40, 40),
+        )
+
+
+@pytest.mark.parametrize(
+    ("cells", "message"),
+    [
+        # labels are whole numbers >= 0 (0 outside every region): common practice for label
+        # images (scikit-image's regionprops takes non-negative integer labels)
+        (
+            np.full((6, 8, 8), 1.5, np.float32),
+            r"region mask must hold integer labels \(0 outside every region\), got float32",
+        ),
+        (
+            np.full((6, 8, 8), -1, np.int16),
+            r"region mask holds negative values \(lowest -1, page 0\)",
+        ),
+        (np.zeros((6, 8, 8), np.uint16), r"region mask has no region \(every voxel is 0\)"),
+    ],
+)
+def test_region_mask_must_hold_labels_and_a_region(tmp_path, cells, message):
+    path = tmp_path / "cells.tif"
+    tifffile.imwrite(path, cells)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        read_region_mask(path, shape=(6, 8, 8), factors=(1, 1, 1), out=np.zeros((6, 8, 8)))
+    assert str(info.value).startswith(str(path)) and "\n" not in str(info.value)
 
 
 def test_empty_object_is_refused():

@@ -19,25 +19,53 @@ from tessera.workflow.files.object_table import read_object_table
 from tessera.workflow.files.probability_map import probability_fields
 
 
-def read_region_mask(path, *, shape, factors, out):
+def read_region_mask(path, *, shape, factors, out, full_shape=None):
     """Copy a region label TIFF (full resolution) into `out` at a working level, page by page.
 
-    Coarser levels take every f-th voxel (labels are not averaged). The TIFF's shape reduced by
-    `factors` must equal `shape`.
+    Coarser levels take every f-th voxel (labels are not averaged). The TIFF's shape must be
+    `full_shape` (the stack's, when known), and reduced by `factors` it must equal `shape`. Its
+    pages hold integer labels >= 0 (0 outside every region), and at least one region.
     """
     # checked whole first: a damaged mask is refused in one line, never read short or altered
     with contextlib.closing(open_checked_tiff(Path(path))) as tif:
         full = (len(tif.pages), *tif.pages[0].shape)
         reduced = tuple(-(-n // f) for n, f in zip(full, factors, strict=False))
+        if full_shape is not None and full != tuple(full_shape):
+            # a mask one row off reduces to the same working shape: compare at full resolution
+            raise TesseraInputError(
+                f"region mask has shape {full}, the stack {tuple(full_shape)} (same stack and "
+                "voxel size expected)",
+                source=path,
+            )
         if reduced != tuple(shape):
             raise TesseraInputError(
                 f"region mask has shape {full}, which at the working level ({'x'.join(map(str, factors))} smaller) "
                 f"is {reduced}; the image there is {tuple(shape)} (same stack and voxel size expected)",
                 source=path,
             )
+        dtype = tif.pages[0].dtype
+        if dtype is None or dtype.kind not in "iub":
+            raise TesseraInputError(
+                f"region mask must hold integer labels (0 outside every region), got {dtype}",
+                source=path,
+            )
+        regions = False
         for oz in range(shape[0]):
             page = read_checked_page(tif, oz * factors[0], path)
+            if dtype.kind == "i" and page.size and page.min() < 0:
+                raise TesseraInputError(
+                    f"region mask holds negative values (lowest {page.min()}, page "
+                    f"{oz * factors[0]}); expected 0 outside every region and labels > 0",
+                    source=path,
+                )
             out[oz] = page[:: factors[1], :: factors[2]]
+            regions = regions or bool(page.any())
+    if not regions:
+        raise TesseraInputError(
+            "region mask has no region (every voxel is 0); expected a label > 0 for each cell "
+            "or region, or leave roi_mask blank to measure the whole volume",
+            source=path,
+        )
     return out
 
 
@@ -49,11 +77,14 @@ def morphometry_job(
     *,
     target,
     roi_mask=None,
+    raw_image=None,
     block=(16, 512, 512),
 ):
     """Measure every object of one dataset and target; densities per region (ROI labels) or volume.
 
     Writes the object table with the measures and its ``region`` column, and the region table.
+    `raw_image` (the dataset's pyramid) gives the full-resolution shape the region mask must
+    have.
     """
     group, info = open_image(objects_image)
     try:
@@ -79,7 +110,16 @@ def morphometry_job(
                 chunks=(1, *labels.shape[1:]),
                 zarr_format=3,
             )
-            read_region_mask(roi_mask, shape=labels.shape, factors=factors, out=region_labels)
+            full_shape = None
+            if raw_image is not None:
+                full_shape = open_image(raw_image)[1]["levels"][0].shape
+            read_region_mask(
+                roi_mask,
+                shape=labels.shape,
+                factors=factors,
+                out=region_labels,
+                full_shape=full_shape,
+            )
         regions, region_of = region_densities(
             labels, region_labels, measured, spacing=spacing, block=block
         )
