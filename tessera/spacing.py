@@ -65,6 +65,11 @@ def normalize_spacing(spacing, ndim, *, name="spacing"):
 #: (common practice: FIB-SEM is segmented in 3D, ssTEM and SBEM section by section).
 NEAR_ISOTROPIC_ASPECT = 2.0
 
+#: Voxel sizes an EM stack can have, in nm: from below an atom's size (0.1 nm; no electron
+#: micrograph is sampled finer, common practice) to 0.1 mm. A value outside is a size in another
+#: unit (8 nm written as 0.008, in µm). The datasets schema holds the same range.
+VOXEL_NM_RANGE = (0.1, 100000.0)
+
 
 def near_isotropic(spacing):
     """Whether a volume's voxels, `spacing` (z, y, x) as acquired, count as near-isotropic.

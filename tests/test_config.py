@@ -604,3 +604,14 @@ def test_annotated_datasets_missing_from_the_sheet_are_refused_at_load():
     ):
         check_annotated_datasets(targets, ["a1", "a2"])
     check_annotated_datasets({"nuclei": {"annotated_datasets": ["a2"]}}, ["a1", "a2"])
+
+
+def test_the_sheet_holds_voxel_sizes_to_the_range_ingest_holds_file_metadata_to(repo):
+    # One range for voxel sizes, whatever gives them: the schema for the sheet's columns,
+    # tessera.spacing.VOXEL_NM_RANGE for sizes read from a file's header or attributes.
+    from tessera.spacing import VOXEL_NM_RANGE
+
+    schema = yaml.safe_load((repo / "config/schemas/datasets.schema.yaml").read_text())
+    for axis in "zyx":
+        column = schema["properties"][f"voxel_{axis}_nm"]
+        assert (column["minimum"], column["maximum"]) == VOXEL_NM_RANGE

@@ -187,6 +187,13 @@ def test_sheet_fills_the_voxel_size_when_the_attributes_have_none(tmp_path, volu
             r"attributes resolution and element_size_um disagree on the voxel size: "
             r"\(40, 4, 4\) vs \(50, 4, 4\) nm",
         ),
+        (
+            # µm written where nm are expected: 0.04 nm sections are no EM voxel size (below an
+            # atom's size, common practice)
+            {"resolution": [0.04, 0.008, 0.008]},
+            (None, None, None),
+            r"voxel size along z is 0.04 nm, outside 0.1-100000 nm \(a size in another unit",
+        ),
     ],
 )
 def test_bad_or_disagreeing_voxel_attributes_are_one_line(

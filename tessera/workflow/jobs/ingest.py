@@ -22,6 +22,7 @@ from tessera.io.atomic import atomic_path
 from tessera.io.omezarr import AXES, multiscale_attrs
 from tessera.io.stacks import open_stack
 from tessera.io.store_checksums import record_checksums
+from tessera.spacing import VOXEL_NM_RANGE
 from tessera.workflow.files.missing_sections import missing_sections_entry
 
 
@@ -39,6 +40,9 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
     --------
     >>> resolve_spacing((50.0, None, None), (45.0, 4.6, 4.6))
     (50.0, 4.6, 4.6)
+    >>> resolve_spacing((50.0, 8.0, None), (45.0, 4.6, 0.0046))  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: voxel size along x is 0.0046 nm, outside 0.1-100000 nm ...
     """
     out = []
     for axis, given, fallback in zip(
@@ -54,6 +58,16 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
         if not value > 0:
             raise TesseraInputError(
                 f"voxel size along {axis} must be > 0 nm, got {value}", source=source
+            )
+        low, high = VOXEL_NM_RANGE
+        if not low <= value <= high:
+            # the sheet's own values are held to the range by its schema already; those read
+            # from a file's header or array attributes are held to it here
+            raise TesseraInputError(
+                f"voxel size along {axis} is {value:g} nm, outside {low:g}-{high:g} nm (a size "
+                f"in another unit in the file's metadata?); correct it, or for TIFF and MRC "
+                f"set voxel_{axis}_nm in the sheet",
+                source=source,
             )
         out.append(float(value))
     return tuple(out)
