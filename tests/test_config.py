@@ -272,7 +272,7 @@ def test_unknown_sheet_column_is_refused(tmp_path, schemas):
 
 def test_spreadsheet_exports_read_like_the_plain_sheet(tmp_path, schemas):
     # Spreadsheet exports add a UTF-8 byte-order mark, CRLF line ends and empty cells after the
-    # last column (common practice: Excel's "Unicode text" and CSV exports); they hold nothing.
+    # last column (common practice: spreadsheet programs' text and CSV exports); they hold nothing.
     text = "\ufeff" + "\r\n".join([HEADER + "\t\t", GOOD + "\t\t\t", GOOD.replace("a1", "a2")])
     (tmp_path / "stack.tif").write_bytes(b"")
     (tmp_path / "datasets.tsv").write_bytes(text.encode() + b"\r\n")
