@@ -158,3 +158,23 @@ def test_dims_auto_is_3d_for_near_isotropic_data_only(
     if dims == 3:
         expected = spacing[0] / (spacing[1] * downsample)
         assert model.spec.voxel_aspect == pytest.approx(expected)
+
+
+def test_datasets_of_other_pixel_sizes_in_one_model_are_named_in_the_log(tmp_path, caplog):
+    # Filters and stencils count pixels: 8 nm and 5 nm pixels put every structure at scales
+    # 1.6x apart (arithmetic). Trained anyway, with a warning naming both; equal pixels, none.
+    cascade = {**CASCADE, "dims": 2}
+    pyramids = {
+        "a": _dataset(tmp_path, "a", (40, 8, 8), 0),
+        "b": _dataset(tmp_path, "b", (40, 5, 5), 1),
+    }
+    with caplog.at_level("WARNING", logger="tessera.workflow.jobs.train"):
+        _train(tmp_path, pyramids, cascade=cascade)
+    assert "datasets b and a have working-level pixels of 5 and 8 nm" in caplog.text
+    caplog.clear()
+    same = tmp_path / "same"
+    same.mkdir()
+    pyramids = {"a": _dataset(same, "a", (40, 8, 8), 0), "b": _dataset(same, "b", (40, 8, 8), 1)}
+    with caplog.at_level("WARNING", logger="tessera.workflow.jobs.train"):
+        _train(same, pyramids, cascade=cascade)
+    assert "working-level pixels" not in caplog.text

@@ -48,6 +48,23 @@ def working_aspects(pyramids, datasets, *, downsample):
     return aspects
 
 
+def pixel_size_spread(pyramids, datasets, *, downsample):
+    """The datasets of smallest and largest in-plane pixel (nm) at the working level, when they
+    differ by more than the aspect tolerance; else None.
+
+    The filters' sigmas and the context stencils count pixels, so one model applied to pixels
+    of other sizes sees every structure at another scale.
+    """
+    sizes = {}
+    for dataset in sorted(datasets):
+        _, spacing, _ = working_array(pyramids[dataset], downsample)
+        sizes[dataset] = spacing[1]
+    low, high = min(sizes, key=sizes.get), max(sizes, key=sizes.get)
+    if sizes[high] <= sizes[low] * ASPECT_TOLERANCE:
+        return None
+    return (low, sizes[low]), (high, sizes[high])
+
+
 def working_aspect(pyramids, datasets, *, downsample):
     """The working level's z spacing over its in-plane spacing, common to `datasets`.
 

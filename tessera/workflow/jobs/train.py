@@ -1,6 +1,8 @@
 """Jobs of rules train_node and predict_tiles: train one cascade node; predict and score the
 held-out tiles."""
 
+import logging
+
 from tessera.cascade.api import (
     ancestors,
     automatic_dims,
@@ -15,10 +17,17 @@ from tessera.errors import TesseraInputError
 from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
-from tessera.workflow.files.pyramid import level_arrays, working_aspect, working_aspects
+from tessera.workflow.files.pyramid import (
+    level_arrays,
+    pixel_size_spread,
+    working_aspect,
+    working_aspects,
+)
 from tessera.workflow.files.scores import write_scores
 from tessera.workflow.files.tile_probabilities import write_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
+
+_log = logging.getLogger(__name__)
 
 
 def train_node_job(
@@ -74,6 +83,19 @@ def train_node_job(
             cascade["voxel_aspect"] = working_aspect(
                 pyramids, set(registry["dataset"]), downsample=downsample
             )
+    spread = pixel_size_spread(pyramids, set(registry["dataset"]), downsample=downsample)
+    if spread is not None:
+        # not refused (a study may mean it), but the model sees each at another scale
+        (small, small_nm), (large, large_nm) = spread
+        _log.warning(
+            "datasets %s and %s have working-level pixels of %.3g and %.3g nm; filters and "
+            "stencils count pixels, so one model sees their structures at different scales "
+            "(give them their own target, or resample one)",
+            small,
+            large,
+            small_nm,
+            large_nm,
+        )
     spec = spec_from_settings(cascade, stages=stage)
     # refuses models of other settings
     models = load_cascade(upstream, target=target, spec=spec)
