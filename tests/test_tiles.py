@@ -576,10 +576,8 @@ def test_sampling_takes_as_many_tiles_as_fit_only_when_allowed(tmp_path):
         sampled(truth, size=30, count=10)
 
 
-def test_sample_tiles_job_names_the_label_file_and_the_settings(tmp_path):
-    # A volume too small for the tiles asked for: the one line names the label volume and the
-    # config keys that decide; with allow_fewer the job takes what fits.
-    raw, truth = volume(shape=(6, 64, 64))
+def job_inputs(tmp_path, raw, truth, *, excluded):
+    """(label volume, pyramid, QC table) of a sample_tiles job over `raw` and its `truth`."""
     tifffile.imwrite(tmp_path / "raw.tif", raw)
     tifffile.imwrite(tmp_path / "truth.tif", truth)
     ingest_job(
@@ -587,9 +585,16 @@ def test_sample_tiles_job_names_the_label_file_and_the_settings(tmp_path):
     )
     pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
     qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(6), "excluded": [False] * 6}).to_csv(qc, sep="\t", index=False)
+    pd.DataFrame({"z": range(len(raw)), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
+    return tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc
+
+
+def test_sample_tiles_job_names_the_label_file_and_the_settings(tmp_path):
+    # A volume too small for the tiles asked for: the one line names the label volume and the
+    # config keys that decide; with allow_fewer the job takes what fits.
+    raw, truth = volume(shape=(6, 64, 64))
+    args = job_inputs(tmp_path, raw, truth, excluded=[False] * 6)
     kw = dict(dataset="d1", target="mito", downsample=2, size=24, count=9, seed=0)
-    args = (tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc)
     with pytest.raises(TesseraInputError) as error:
         sample_tiles_job(*args, tmp_path / "tiles", **kw)
     message = str(error.value)
@@ -624,19 +629,10 @@ def test_sample_tiles_job_refuses_label_volumes_without_both_classes_or_not_labe
     # > 0 is target and 0 background (the README's label volumes); both must be present
     # (common practice: a binary classifier needs examples of both classes).
     raw, truth = volume(shape=(6, 64, 64))
-    tifffile.imwrite(tmp_path / "raw.tif", raw)
-    tifffile.imwrite(tmp_path / "truth.tif", labels(truth))
-    ingest_job(
-        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
-    )
-    pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
-    qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(6), "excluded": [False] * 6}).to_csv(qc, sep="\t", index=False)
+    args = job_inputs(tmp_path, raw, labels(truth), excluded=[False] * 6)
     kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
     with pytest.raises(TesseraInputError, match=message):
-        sample_tiles_job(
-            tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc, tmp_path / "t", **kw
-        )
+        sample_tiles_job(*args, tmp_path / "t", **kw)
     assert not (tmp_path / "t").exists()
 
 
@@ -644,23 +640,14 @@ def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):
     # A constant or blank stack is flagged flat throughout: the one line names the QC table
     # and the QC setting, not the tile settings that cannot help.
     raw, truth = volume(shape=(5, 64, 64))
-    tifffile.imwrite(tmp_path / "raw.tif", raw)
-    tifffile.imwrite(tmp_path / "truth.tif", truth)
-    ingest_job(
-        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
-    )
-    pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
-    qc = tmp_path / "sections.tsv"
-    pd.DataFrame({"z": range(5), "excluded": [True] * 5}).to_csv(qc, sep="\t", index=False)
+    args = job_inputs(tmp_path, raw, truth, excluded=[True] * 5)
     kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
     with pytest.raises(
         TesseraInputError,
         match=r"sections.tsv: section QC excluded every section of dataset d1, so no tile can be "
         r"cut; look at its sections.png, or set qc.exclude_flagged: false",
     ):
-        sample_tiles_job(
-            tmp_path / "truth.tif", tmp_path / "pyr.ome.zarr", qc, tmp_path / "t", **kw
-        )
+        sample_tiles_job(*args, tmp_path / "t", **kw)
 
 
 # --------------------------------------------------------------------------------------------

@@ -39,13 +39,15 @@ def aspects_agree(a, b):
     return 1 / ASPECT_TOLERANCE <= a / b <= ASPECT_TOLERANCE
 
 
+def working_spacings(pyramids, datasets, *, downsample):
+    """Each dataset's working-level voxel size (z, y, x nm): {dataset: spacing}, sorted."""
+    return {d: working_array(pyramids[d], downsample)[1] for d in sorted(datasets)}
+
+
 def working_aspects(pyramids, datasets, *, downsample):
     """Each dataset's working-level z spacing over its in-plane spacing: {dataset: aspect}."""
-    aspects = {}
-    for dataset in sorted(datasets):
-        _, spacing, _ = working_array(pyramids[dataset], downsample)
-        aspects[dataset] = spacing[0] / spacing[1]
-    return aspects
+    spacings = working_spacings(pyramids, datasets, downsample=downsample)
+    return {d: spacing[0] / spacing[1] for d, spacing in spacings.items()}
 
 
 def pixel_size_spread(pyramids, datasets, *, downsample):
@@ -55,10 +57,8 @@ def pixel_size_spread(pyramids, datasets, *, downsample):
     The filters' sigmas and the context stencils count pixels, so one model applied to pixels
     of other sizes sees every structure at another scale.
     """
-    sizes = {}
-    for dataset in sorted(datasets):
-        _, spacing, _ = working_array(pyramids[dataset], downsample)
-        sizes[dataset] = spacing[1]
+    spacings = working_spacings(pyramids, datasets, downsample=downsample)
+    sizes = {d: spacing[1] for d, spacing in spacings.items()}
     low, high = min(sizes, key=sizes.get), max(sizes, key=sizes.get)
     if sizes[high] <= sizes[low] * ASPECT_TOLERANCE:
         return None
