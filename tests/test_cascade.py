@@ -12,13 +12,15 @@ import yaml
 from scipy import ndimage
 from sklearn.metrics import f1_score, precision_recall_curve
 
-from tessera.cascade.classifiers import CHUNK_ROWS, KINDS
+from tessera.cascade.classifiers import CHUNK_ROWS, KINDS, linear_first_step
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import (
     BAND_ROWS,
+    _banded_map,
     _bands,
     ensure_maps,
     make_frame,
+    mirror_beyond_volume,
     mirrored_stack,
     mirrored_window,
     node_map,
@@ -195,8 +197,9 @@ def test_block_prediction_equals_whole_image(trained):
 def test_banded_node_maps_are_bit_identical_to_the_whole_feature_matrix(trained):
     # Reference: the classifier's own prediction of every node's whole feature matrix at once
     # (numpy/BLAS matrix products over all rows, in the classifier's chunks). A frame of more
-    # than CHUNK_ROWS pixels makes the bands cross into a second chunk; every node's map must
-    # be the same to the last bit, as must the fold models' maps training uses.
+    # than CHUNK_ROWS pixels makes the bands cross into a second chunk; the row-band path
+    # (classifiers whose first step is not a product with a matrix: trees, boosting) must give
+    # every node's map to the last bit, for the fold models too.
     spec, _, models = trained
     image, _ = blobs(102, shape=(532, 548))
     radius = receptive_radius(spec)
@@ -211,9 +214,41 @@ def test_banded_node_maps_are_bit_identical_to_the_whole_feature_matrix(trained)
             whole = clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
             if node[1] == 0:
                 assert whole.size > CHUNK_ROWS
-            np.testing.assert_array_equal(node_map(frame, node, margin, clf), whole)
-            if node in frame.maps:  # the maps ensure_maps cached for the next nodes
-                np.testing.assert_array_equal(frame.maps[node][0], whole)
+            np.testing.assert_array_equal(_banded_map(frame, node, margin, clf, 0), whole)
+
+
+@pytest.fixture(scope="module")
+def trained_two_levels():
+    spec = CascadeSpec(stages=2, levels=2, **SMALL)
+    tiles = make_tiles(spec, count=4)
+    return spec, fit_cascade(spec, tiles, target="blobs")
+
+
+@pytest.mark.parametrize("room", [None, (3, 7, 5, 0)], ids=["halo classified", "volume edges"])
+def test_node_maps_formed_in_parts_equal_the_whole_feature_matrix(trained_two_levels, room):
+    # Reference: the network's own prediction of each node's whole feature matrix (numpy
+    # matrix products over whole rows). node_map forms a network's first layer from parts of
+    # that matrix instead (image features and same-level maps as planes, each coarser map's
+    # part at its own level, repeated up), so its float32 sums are taken in another order:
+    # equal within 1e-6. With volume edges 3, 7, 5 and 0 px from the core, regions are cut to
+    # widths no coarse cell divides, and the coarse parts take the general repeat; with two
+    # coarser levels, level 0 sums two coarse parts.
+    spec, models = trained_two_levels
+    assert linear_first_step(spec.classifier)
+    image, _ = blobs(103, shape=(200, 180))
+    radius = receptive_radius(spec)
+    window = mirrored_window(image[np.newaxis], 0, -radius, 200 + radius, -radius, 180 + radius)
+    frame = make_frame(spec, window, (200, 180), room=room)
+    ensure_maps(frame, (spec.stages, 0), models, -1)
+    for node in nodes(spec):
+        margin = frame.margins[node]
+        clf = models[node].classifier
+        x = node_matrix(frame, node, margin)
+        whole = clf.predict(x.reshape(-1, x.shape[-1])).reshape(x.shape[:2])
+        pads = tuple((margin - c) // 2 ** node[1] for c in frame.section(0).clip(margin))
+        got = node_map(frame, node, margin, clf)
+        np.testing.assert_allclose(got, mirror_beyond_volume(whole, pads), rtol=0, atol=1e-6)
+        assert not np.array_equal(whole, np.zeros_like(whole))
 
 
 def test_bands_stay_inside_the_classifier_chunks():

@@ -84,12 +84,29 @@ class _ChannelWriter:
         for channel in channels:
             self.append(channel)
 
+    def take(self):
+        """The next channel's array, to be written in place (``out=``)."""
+        self.count += 1
+        return self.out[..., self.count - 1]
 
-def _eigvals_sym2(a, b, c):
-    """Eigenvalues (descending) of [[a, b], [b, c]] per pixel."""
-    mean = 0.5 * (a + c)
-    root = np.sqrt(0.25 * (a - c) ** 2 + b * b)
-    return mean + root, mean - root
+
+def _eigvals_sym2(a, b, c, *, scale=None, out=None):
+    """Eigenvalues (descending) of [[a, b], [b, c]] per pixel, times `scale` when given, written
+    into `out` (two arrays) when given."""
+    mean = np.add(a, c)
+    mean *= np.float32(0.5)
+    root = np.subtract(a, c)
+    root *= root
+    root *= np.float32(0.25)
+    root += b * b
+    np.sqrt(root, out=root)
+    first, second = out if out is not None else (np.empty_like(mean), np.empty_like(mean))
+    np.add(mean, root, out=first)
+    np.subtract(mean, root, out=second)
+    if scale is not None:
+        first *= scale
+        second *= scale
+    return first, second
 
 
 def _eigvals_sym3(m):
@@ -102,23 +119,31 @@ def _eigvals_sym3(m):
     return [vals[..., k].astype(np.float32) for k in (2, 1, 0)]
 
 
-def _derivatives(smoothed, steps):
-    # Central differences with mirrored edges: d/dx at the edge of a mirrored image is the
-    # mirror of the inside, which keeps every derived invariant exactly mirror-symmetric.
+def _derivatives(smoothed, steps, axes=None):
+    """Central differences along `axes` (default: every axis) with mirrored edges: d/dx at the
+    edge of a mirrored image is the mirror of the inside, which keeps every derived invariant
+    exactly mirror-symmetric. Half-sample mirroring repeats the edge pixel, so the edge's
+    difference is its neighbour minus itself."""
     grads = []
-    for axis, step in enumerate(steps):
-        padded = np.pad(
-            smoothed,
-            [(1, 1) if a == axis else (0, 0) for a in range(smoothed.ndim)],
-            mode="symmetric",
-        )
-        hi = padded[
-            tuple(slice(2, None) if a == axis else slice(None) for a in range(smoothed.ndim))
-        ]
-        lo = padded[
-            tuple(slice(None, -2) if a == axis else slice(None) for a in range(smoothed.ndim))
-        ]
-        grads.append((hi - lo) * np.float32(0.5 / step))
+    for axis in range(smoothed.ndim) if axes is None else axes:
+        n = smoothed.shape[axis]
+
+        def part(start, stop, axis=axis):
+            return tuple(
+                slice(start, stop) if a == axis else slice(None) for a in range(smoothed.ndim)
+            )
+
+        d = np.empty_like(smoothed)
+        if n == 1:
+            d.fill(0)
+        else:
+            np.subtract(smoothed[part(2, None)], smoothed[part(None, -2)], out=d[part(1, -1)])
+            np.subtract(smoothed[part(1, 2)], smoothed[part(0, 1)], out=d[part(0, 1)])
+            np.subtract(
+                smoothed[part(n - 1, n)], smoothed[part(n - 2, n - 1)], out=d[part(n - 1, n)]
+            )
+        d *= np.float32(0.5 / steps[axis])
+        grads.append(d)
     return grads
 
 
@@ -153,25 +178,31 @@ def _scale_channels(channels, g, following, s, ratio, steps):
     ndim = g.ndim
     grads = _derivatives(g, steps)
     channels.append(g)
-    channels.append(np.sqrt(sum(d * d for d in grads)))
+    magnitude = np.multiply(grads[0], grads[0], out=channels.take())
+    for d in grads[1:]:
+        magnitude += d * d
+    np.sqrt(magnitude, out=magnitude)
     second = [[None] * ndim for _ in range(ndim)]
     for a in range(ndim):
-        da = _derivatives(grads[a], steps)
-        for b in range(a, ndim):
-            second[a][b] = da[b]
+        for b, d in zip(range(a, ndim), _derivatives(grads[a], steps, range(a, ndim))):
+            second[a][b] = d
     # Scale-normalised (σ²) so responses are comparable across scales.
     norm = np.float32(s * s)
-    channels.append(norm * sum(second[a][a] for a in range(ndim)))
+    laplacian = np.add(second[0][0], second[1][1], out=channels.take())
+    for a in range(2, ndim):
+        laplacian += second[a][a]
+    laplacian *= norm
     if following is not None:
-        channels.append(g - following)
+        np.subtract(g, following, out=channels.take())
     integ = [s * r for r in ratio]
     if ndim == 2:
-        channels.extend(norm * e for e in _eigvals_sym2(second[0][0], second[0][1], second[1][1]))
+        hessian = (channels.take(), channels.take())
+        _eigvals_sym2(second[0][0], second[0][1], second[1][1], scale=norm, out=hessian)
         j = [
             gaussian_smooth(p, integ)
             for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
         ]
-        channels.extend(_eigvals_sym2(*j))
+        _eigvals_sym2(*j, out=(channels.take(), channels.take()))
     else:
         h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
         channels.extend(norm * e for e in _eigvals_sym3(h))
@@ -180,7 +211,12 @@ def _scale_channels(channels, g, following, s, ratio, steps):
         channels.extend(_eigvals_sym3(j))
 
 
-def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True):
+def _scale_reach(sigma, ratio):
+    """Pixels per axis that the channels of one scale depend on (:func:`feature_radius`)."""
+    return [2 * kernel_radius(sigma * r) + 4 for r in ratio]
+
+
+def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True, halo=0):
     """Stack of Gaussian-derivative features of a 2D section or a 3D volume.
 
     Parameters
@@ -197,11 +233,17 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         filtering and crop afterwards, so that features at the edges equal those of the
         infinitely mirrored image. Callers that pass an image with a halo of at least that
         radius and keep only its core may switch it off to save time.
+    halo : int, optional
+        With ``mirror_edges=False``: pixels on each side of every axis that are context only;
+        the features of the core inside them are returned. Each scale is filtered over the
+        part of the halo it reaches, so a halo of :func:`feature_radius` costs the small
+        scales only what they need. The core's features are the same numbers as those of the
+        whole image, cropped.
 
     Returns
     -------
     (M, N, C) or (P, M, N, C) ndarray of float32
-        Channels as named by :func:`feature_names`.
+        Channels as named by :func:`feature_names` (axes shortened by 2 `halo`).
 
     Notes
     -----
@@ -214,6 +256,11 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     >>> f = filter_bank(np.zeros((16, 16), np.uint8), sigmas=(1.0, 2.0))
     >>> f.shape, f.dtype
     ((16, 16, 16), dtype('float32'))
+    >>> image = np.random.default_rng(0).random((60, 60))
+    >>> whole = filter_bank(image, sigmas=(1.0, 2.0), mirror_edges=False)
+    >>> core = filter_bank(image, sigmas=(1.0, 2.0), mirror_edges=False, halo=20)
+    >>> bool(np.array_equal(core, whole[20:40, 20:40]))
+    True
     """
     image = _check_image(image)
     sigmas = _check_sigmas(sigmas)
@@ -229,17 +276,41 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         padded, core = _mirror_padded(data, feature_radius(sigmas))
         features = filter_bank(padded, sigmas=sigmas, spacing=spacing, mirror_edges=False)
         return np.ascontiguousarray(features[core])
+    halo = int(halo)
+    if halo < 0 or any(n <= 2 * halo for n in data.shape):
+        raise TesseraInputError(f"a halo of {halo} px leaves no core of an image {data.shape}")
     # each channel goes straight into the output as it is made (no list of arrays, no stacking
     # copy), into a plane of its own: the channels-last result is a view of channel planes, so
     # writing a channel is one contiguous copy
-    planes = np.empty((len(feature_names(sigmas, ndim=ndim)),) + data.shape, dtype=np.float32)
+    names = feature_names(sigmas, ndim=ndim)
+    shape = tuple(n - 2 * halo for n in data.shape)
+    planes = np.empty((len(names),) + shape, dtype=np.float32)
     out = np.moveaxis(planes, 0, -1)
     channels = _ChannelWriter(out)
-    channels.append(data)
-    smoothed_all = [gaussian_smooth(data, [s * r for r in ratio]) for s in sigmas]
+    channels.append(data[tuple(slice(halo, halo + n) for n in shape)])
+    # the part of the halo each scale reaches: its image, and how far in its core starts
+    reach = [[min(halo, k) for k in _scale_reach(s, ratio)] for s in sigmas]
+    smoothed_all = [
+        gaussian_smooth(
+            data[tuple(slice(halo - k, halo + n + k) for k, n in zip(r, shape))],
+            [s * q for q in ratio],
+        )
+        for s, r in zip(sigmas, reach)
+    ]
     for i, s in enumerate(sigmas):
-        following = smoothed_all[i + 1] if i + 1 < len(sigmas) else None
-        _scale_channels(channels, smoothed_all[i], following, s, ratio, steps)
+        g, following = smoothed_all[i], None
+        if i + 1 < len(sigmas):  # the next scale reaches as far or further: crop it to this one
+            cut = [b - a for a, b in zip(reach[i], reach[i + 1])]
+            following = smoothed_all[i + 1][tuple(slice(c, c + n) for c, n in zip(cut, g.shape))]
+        count = 3 + (following is not None) + 2 * ndim  # the scale's channels (feature_names)
+        if not any(reach[i]):
+            _scale_channels(channels, g, following, s, ratio, steps)
+            continue
+        scratch = np.empty((count,) + g.shape, dtype=np.float32)
+        _scale_channels(_ChannelWriter(np.moveaxis(scratch, 0, -1)), g, following, s, ratio, steps)
+        core = tuple(slice(k, k + n) for k, n in zip(reach[i], shape))
+        for plane in scratch:
+            channels.append(plane[core])
     return out
 
 

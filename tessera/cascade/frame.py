@@ -104,16 +104,20 @@ class _Section:
         """The widest margin (level-0 px) any node of this frame reads at `level`."""
         return max([0] + [m for (_, lv), m in self.margins.items() if lv == level])
 
-    def _bank(self, level, stack):
-        """Image features of the centre of `stack` (this section's image at `level`)."""
+    def _bank(self, level, stack, extra):
+        """Image features of the centre of `stack` (this section's image at `level`), without
+        its `extra` pixels of context on each side."""
         sigmas = level_sigmas(self.spec, level)
         if level == 0 and self.spec.dims == 3:
             spacing = (self.spec.voxel_aspect, 1.0, 1.0)
-            return section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing)
+            feats = section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing)
+            # a copy of the core's planes, so the cache does not hold the context too
+            planes = np.moveaxis(feats, -1, 0)[:, extra:-extra, extra:-extra]
+            return np.moveaxis(planes.copy(), 0, -1)
         centre = stack.shape[0] // 2
-        parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False)]
+        parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False, halo=extra)]
         parts += [
-            neighbour_features(stack[k], sigmas=sigmas)
+            neighbour_features(stack[k], sigmas=sigmas)[extra:-extra, extra:-extra]
             for k in range(stack.shape[0])
             if k != centre
         ]
@@ -134,8 +138,7 @@ class _Section:
             stack = self.image(level)[
                 :, rows.start - extra : rows.stop + extra, cols.start - extra : cols.stop + extra
             ]
-            feats = self._bank(level, stack)
-            self._features[level] = (feats[extra:-extra, extra:-extra], widest)
+            self._features[level] = (self._bank(level, stack, extra), widest)
         feats, widest = self._features[level]
         if widest == margin:
             return feats
@@ -192,9 +195,11 @@ class _Frame:
         The maps of the consumer's own section (offset `offset`), then, from stage 2 on, the
         previous stage's final map of each section in ``context_offsets`` around it. Each map
         covers the consumer's core + margin (clipped to the volume, :meth:`_Section.clip`) plus
-        the stencil's reach (level-l pixels `cut` on each side). A finer map is pooled down; a coarser one is repeated up (nearest)
-        and its stencil offsets are scaled by the factor, which equals reading the stencil at the
-        coarse level and upsampling the samples.
+        the stencil's reach (level-l pixels `cut` on each side, as if at the consumer's level).
+        A finer map is pooled down (factor 1); a coarser one is left at its level, with the
+        factor by which the consumer repeats it up (nearest): its stencil's offsets are scaled
+        by the factor, which equals reading the stencil at the coarse level and upsampling the
+        samples (:func:`coarse_index`).
         """
         spec = self.spec
         level = consumer[1]
@@ -213,15 +218,23 @@ class _Frame:
                     (_pool(src, 2 ** (level - p_level), spec.pooling), 1, reach // (2**level))
                 )
             else:
-                factor = 2 ** (p_level - level)
-                out.append(
-                    (
-                        np.repeat(np.repeat(src, factor, axis=0), factor, axis=1),
-                        factor,
-                        reach // (2**level),
-                    )
-                )
+                out.append((src, 2 ** (p_level - level), reach // (2**level)))
         return out
+
+
+def coarse_index(cut, start, stop, factor):
+    """Rows of a coarse map (repeated up by `factor`) that stencil centres start..stop read.
+
+    A map repeated up by `factor` and read `cut` pixels in, at offset ``k * factor``, holds at
+    consumer pixel i the coarse value ``k + (cut + i) // factor``: every stencil sample of row
+    i comes from coarse row ``(cut + i) // factor``, shifted by k.
+
+    Examples
+    --------
+    >>> coarse_index(4, 0, 5, 2)
+    array([2, 2, 3, 3, 4])
+    """
+    return (cut + np.arange(start, stop)) // factor
 
 
 def _stencil_offsets(radii):
@@ -240,6 +253,8 @@ def _row_sources(frame, node, margin, offset=0):
     sources = [feats]
     offsets = _stencil_offsets(frame.spec.stencil_radii)
     for prob, scale, cut in frame.context_maps(node, margin, offset):
+        if scale > 1:
+            prob = np.repeat(np.repeat(prob, scale, axis=0), scale, axis=1)
         # `cut` >= the widest offset, so every sample lies inside the map: no padding needed
         for dy, dx in offsets:
             y0, x0 = cut + dy * scale, cut + dx * scale
@@ -321,6 +336,11 @@ def _bands(n, band=BAND_ROWS):
             start = stop
 
 
+# Pixels whose first-layer products :func:`_linear_map` forms at once (whole image rows, so
+# a band holds up to about this many): fewer, larger bands spend less time on per-band work.
+PLANE_BAND = 2 * BAND_ROWS
+
+
 def _fill_rows(x, sources, start, stop):
     """Pixels start..stop of the flattened (H, W) grid as rows of `x`: every source's channels
     into its columns, in order (a head of one image row, whole rows, a tail)."""
@@ -344,15 +364,9 @@ def _fill_rows(x, sources, start, stop):
         column += source.shape[2]
 
 
-def node_map(frame, node, margin, classifier, offset=0):
-    """(H, W) float32 output of `classifier` on `node`'s features over the core + margin (of
-    section `offset`).
-
-    The same numbers as ``classifier.predict`` on the whole :func:`node_matrix`, computed band
-    by band (:func:`_bands`) in one reused buffer: the full matrix (tens of bytes per feature
-    and pixel) is never made. Only the part inside the volume is classified; the map beyond
-    a volume edge is its mirror (:func:`mirror_beyond_volume`).
-    """
+def _banded_map(frame, node, margin, classifier, offset):
+    """``classifier.predict`` of the whole :func:`node_matrix`, band by band (:func:`_bands`)
+    in one reused buffer, bit for bit."""
     sources = _row_sources(frame, node, margin, offset)
     h, w, _ = sources[0].shape
     n = h * w
@@ -363,9 +377,102 @@ def node_map(frame, node, margin, classifier, offset=0):
         x = buffer[: stop - start]
         _fill_rows(x, sources, start, stop)
         out[start:stop] = classifier.predict(x)
+    return out.reshape(h, w)
+
+
+def _linear_map(frame, node, margin, classifier, offset):
+    """The classifier's output from its first step ``X @ W + b`` formed in parts, never
+    forming X.
+
+    Image features and the stencil samples of maps at the node's own level are written as
+    planes (contiguous copies) of a band of image rows, beside a plane of ones for the bias,
+    and multiplied at once; a coarser map's part is multiplied at its own level, where its
+    stencil is read (a quarter or a sixteenth of the pixels), and repeated up
+    (:func:`coarse_index`).
+    """
+    weights, bias = classifier.linear_weights()
+    feats = frame.features(node[1], margin, offset)
+    h, w, channels = feats.shape
+    planes = np.moveaxis(feats, -1, 0)  # a view: the bank stores channel planes
+    offsets = _stencil_offsets(frame.spec.stencil_radii)
+    k = len(offsets)
+    fine, coarse, rows, column = [], [], [weights[:channels]], channels
+    for prob, factor, cut in frame.context_maps(node, margin, offset):
+        part = weights[column : column + k]
+        if factor == 1:
+            fine.append((prob, cut))
+            rows.append(part)
+        else:
+            coarse.append((prob, factor, cut, np.ascontiguousarray(part)))
+        column += k
+    fine_weights = np.concatenate(rows + [bias[np.newaxis]])
+    coarse.sort(key=lambda read: -read[1])  # coarsest first: each is summed into the next
+    # bands of whole rows, a multiple of the coarsest repeat: a coarse part then adds by
+    # broadcasting over aligned f x f cells
+    step = max([1] + [factor for _, factor, _, _ in coarse])
+    band = min(max(step, PLANE_BAND // w // step * step), -(-h // step) * step)
+    x = np.empty((fine_weights.shape[0], band * w), dtype=np.float32)
+    x[-1] = 1.0  # the bias's plane
+    z = np.empty((band * w, weights.shape[1]), dtype=np.float32)
+    out = np.empty((h, w), dtype=np.float32)
+    with classifier.thread_limit():
+        for y0 in range(0, h, band):
+            y1 = min(h, y0 + band)
+            n = (y1 - y0) * w
+            planar = x[:-1, :n].reshape(-1, y1 - y0, w)
+            planar[:channels] = planes[:, y0:y1]
+            plane = channels
+            for prob, cut in fine:
+                for dy, dx in offsets:
+                    planar[plane] = prob[cut + dy + y0 : cut + dy + y1, cut + dx : cut + dx + w]
+                    plane += 1
+            zb = np.matmul(x[:, :n].T, fine_weights, out=z[:n])
+            aligned = all(cut % f == 0 for _, f, cut, _ in coarse)
+            aligned = aligned and (y1 - y0) % step == 0 and w % step == 0
+            total, at = None, None  # the coarse parts summed on the grid of factor `at`
+            for prob, factor, cut, part in coarse:
+                iy, ix = coarse_index(cut, y0, y1, factor), coarse_index(cut, 0, w, factor)
+                a0, a1, b0, b1 = iy[0], iy[-1] + 1, ix[0], ix[-1] + 1
+                samples = np.empty((k, a1 - a0, b1 - b0), dtype=np.float32)
+                for plane, (dy, dx) in enumerate(offsets):
+                    samples[plane] = prob[a0 + dy : a1 + dy, b0 + dx : b1 + dx]
+                g = (samples.reshape(k, -1).T @ part).reshape(a1 - a0, b1 - b0, -1)
+                if not aligned:  # a region cut by a volume edge: each part repeated up alone
+                    zb += np.take(np.take(g, ix - b0, axis=1), iy - a0, axis=0).reshape(n, -1)
+                elif total is None:
+                    total, at = g, factor
+                else:  # aligned cells: the coarser sum repeats over this grid's cells
+                    r = at // factor
+                    g += np.repeat(np.repeat(total, r, axis=0), r, axis=1)
+                    total, at = g, factor
+            if total is not None:
+                # repeated along x (a contiguous copy), then added to each of the `at` rows
+                # of a cell row in one long run
+                total = np.repeat(total, at, axis=1)
+                zb.reshape(total.shape[0], at, -1)[...] += total.reshape(total.shape[0], 1, -1)
+            out[y0:y1] = classifier.predict_from_linear(zb).reshape(y1 - y0, w)
+    return out
+
+
+def node_map(frame, node, margin, classifier, offset=0):
+    """(H, W) float32 output of `classifier` on `node`'s features over the core + margin (of
+    section `offset`).
+
+    ``classifier.predict`` on the whole :func:`node_matrix`, without making the matrix (tens of
+    bytes per feature and pixel): for a classifier whose first step is linear
+    (:meth:`~tessera.cascade.classifiers.BinaryClassifier.linear_weights`, the networks), the
+    product is formed in parts (:func:`_linear_map`; within float32 rounding of the whole
+    matrix's prediction); for others, band by band in one reused buffer, bit for bit. Only the
+    part inside the volume is classified; the map beyond a volume edge is its mirror
+    (:func:`mirror_beyond_volume`).
+    """
+    if classifier.linear_weights() is None:
+        out = _banded_map(frame, node, margin, classifier, offset)
+    else:
+        out = _linear_map(frame, node, margin, classifier, offset)
     f = 2 ** node[1]
     pads = tuple((margin - c) // f for c in frame.section(offset).clip(margin))
-    return mirror_beyond_volume(out.reshape(h, w), pads)
+    return mirror_beyond_volume(out, pads)
 
 
 def node_feature_names(spec, stage, level):

@@ -3,9 +3,11 @@ memory one frame takes."""
 
 import numpy as np
 
+from tessera.cascade.classifiers import linear_first_step
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
     BAND_ROWS,
+    PLANE_BAND,
     adopt_sections,
     ensure_maps,
     make_frame,
@@ -115,6 +117,9 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
 # Per-row working memory of a classifier on one band of rows beyond the rows themselves and
 # their finite check: hidden layers or per-tree descent state (float32/int64).
 _CLASSIFIER_ROW_BYTES = 256
+# The same for a first step formed in parts (:func:`tessera.cascade.frame._linear_map`): its
+# sums and their finite check, the coarse maps' parts repeated up, and the later layers.
+_LINEAR_ROW_BYTES = 256
 
 
 def _bank_3d(spec, level):
@@ -129,20 +134,24 @@ def _image_channels(spec, level):
 
 
 def _filter_temporaries(spec, level, pixels, channels):
-    """Bytes the filter bank of `level` holds in flight over `pixels`, beyond its output."""
+    """Bytes the filter bank of `level` holds in flight over `pixels` (the region and its
+    context), beyond the region's features."""
     scales = len(level_sigmas(spec, level))
     if not _bank_3d(spec, level):
-        # smoothed images of every scale plus derivatives in flight; with neighbours, the parts
-        # are concatenated (one more copy of the channels)
-        return 4 * pixels * (scales + 8 + (channels if spec.neighbours else 0))
+        # smoothed images of every scale, one scale's channels before they are cropped to the
+        # region, derivatives in flight; with neighbours, the parts are concatenated (one more
+        # copy of the channels)
+        per_scale = -(-channels // scales)
+        return 4 * pixels * (scales + per_scale + 8 + (channels if spec.neighbours else 0))
     # the 3D bank: three weighted sums along z and one smoothed plane per scale, then one
     # scale's derivatives, gradient products and the float64 work of the 3 x 3 eigenvalues
     # (measured with tracemalloc: 4 S + 58 planes; 64 leaves room for other numpy versions);
     # while the sums are made, the sections within reach in float64 (in chunks of at most
     # _CHUNK_VALUES)
+    # and its output over the context too, until the region's features are copied out of it
     sections = 2 * image_z_reach(spec) + 1
     sums = 4 * pixels * 3 * scales + 8 * min(_CHUNK_VALUES, sections * pixels)
-    return max(4 * pixels * (4 * scales + 64), sums)
+    return 4 * pixels * channels + max(4 * pixels * (4 * scales + 64), sums)
 
 
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
@@ -176,9 +185,10 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
         f = 2**level
         widest = max([0] + [m for (_, lv), m in margin.items() if lv == level])
         extra = feature_halo(spec, level)
+        region = ((cy + 2 * widest) // f) * ((cx + 2 * widest) // f)
         pixels = ((cy + 2 * widest) // f + 2 * extra) * ((cx + 2 * widest) // f + 2 * extra)
         channels = _image_channels(spec, level)
-        cached += 4 * pixels * channels * used
+        cached += 4 * region * channels * used  # features of the region only, not its context
         filters = max(filters, _filter_temporaries(spec, level, pixels, channels))
 
     def rows(node, extra_margin=0):
@@ -194,7 +204,13 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
         inputs = node_inputs(spec, *node)
         inputs += [(node[0] - 1, 0)] * len(context_offsets(spec, node[0]))
         context = sum(4 * rows(node, read_reach(spec, node[1], p[1])) for p in inputs)
-        # one band of feature rows (float32), the classifier's finite check and working rows
-        band = min(rows(node), BAND_ROWS + BAND_ROWS // 2)
-        work = max(work, context + band * (5 * width + _CLASSIFIER_ROW_BYTES))
+        if linear_first_step(spec.classifier):
+            # one band of feature planes (float32, with the bias's plane) and the work on it
+            band = min(rows(node), PLANE_BAND + PLANE_BAND // 2)
+            row_bytes = 4 * (width + 1) + _LINEAR_ROW_BYTES
+        else:
+            # one band of feature rows (float32), the classifier's finite check and working rows
+            band = min(rows(node), BAND_ROWS + BAND_ROWS // 2)
+            row_bytes = 5 * width + _CLASSIFIER_ROW_BYTES
+        work = max(work, context + band * row_bytes)
     return int(image + cached + maps + max(filters, work))

@@ -36,7 +36,12 @@ from tessera.cascade.classifiers.base import (
     STATE_VERSION,
     BinaryClassifier,
 )
-from tessera.cascade.classifiers.registry import KINDS, classifier_from_state, make_classifier
+from tessera.cascade.classifiers.registry import (
+    KINDS,
+    classifier_from_state,
+    linear_first_step,
+    make_classifier,
+)
 
 __all__ = [
     "CHUNK_ROWS",
@@ -45,5 +50,6 @@ __all__ = [
     "STATE_VERSION",
     "BinaryClassifier",
     "classifier_from_state",
+    "linear_first_step",
     "make_classifier",
 ]

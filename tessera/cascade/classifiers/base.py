@@ -204,6 +204,7 @@ class BinaryClassifier:
 
     kind = None
     _defaults = {}
+    linear_first_step = False  # True where :meth:`linear_weights` gives the first step
 
     def __init__(self, *, seed, threads=1, **options):
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
@@ -238,6 +239,12 @@ class BinaryClassifier:
         raise NotImplementedError
 
     def _load(self, arrays, meta):
+        raise NotImplementedError
+
+    def _linear_weights(self):
+        return None
+
+    def _predict_from_linear(self, Z):
         raise NotImplementedError
 
     def _versions(self):
@@ -293,6 +300,50 @@ class BinaryClassifier:
                 chunk = _as_float32_finite(X[start : start + CHUNK_ROWS])
                 out[start : start + chunk.shape[0]] = self._predict_chunk(chunk)
         return out
+
+    def linear_weights(self):
+        """(W, b): (C, K) and (K,) float32 when the model's first step is ``X @ W + b``, a
+        product of the features with a matrix (networks); else None.
+
+        A caller that can form the product from parts of X (column blocks, or columns that
+        repeat over pixels) passes it to :meth:`predict_from_linear` instead of building X: the
+        same model, its sums taken in another order (float32 rounding, about 1e-7 relative).
+        """
+        if self.n_features_ is None:
+            raise TesseraInputError(f"this {self.kind} classifier is not fitted yet")
+        return self._linear_weights()
+
+    def predict_from_linear(self, Z):
+        """Probability of class 1 for rows whose first step ``X @ W + b`` (:meth:`linear_weights`)
+        is `Z`.
+
+        Parameters
+        ----------
+        Z : (N, K) ndarray of float32
+            C-contiguous; used as working space and overwritten. Must be finite.
+
+        Returns
+        -------
+        (N,) ndarray of float32
+
+        Examples
+        --------
+        >>> from tessera.cascade.classifiers import make_classifier
+        >>> rng = np.random.default_rng(0)
+        >>> X = rng.normal(size=(200, 3)).astype(np.float32)
+        >>> clf = make_classifier("mlp", seed=0, max_iter=2).fit(X, X[:, 0] > 0)
+        >>> W, b = clf.linear_weights()
+        >>> bool(np.allclose(clf.predict_from_linear(X @ W + b), clf.predict(X), atol=1e-6))
+        True
+        """
+        if not np.isfinite(Z).all():
+            raise TesseraInputError("X contains NaN or infinite values")
+        with _threadpools().limit(limits=self.threads):
+            return self._predict_from_linear(Z)
+
+    def thread_limit(self):
+        """Context that limits BLAS threads to the model's ``threads`` (as :meth:`predict`)."""
+        return _threadpools().limit(limits=self.threads)
 
     def to_state(self):
         """Export the fitted model as numeric arrays plus JSON-able metadata.

@@ -50,6 +50,7 @@ class MLPBinaryClassifier(BinaryClassifier):
     """
 
     kind = "mlp"
+    linear_first_step = True
     _defaults = {
         "hidden_layer_sizes": (32, 16),
         "alpha": 1e-4,
@@ -93,23 +94,28 @@ class MLPBinaryClassifier(BinaryClassifier):
         self.coefs_ = [W for W, _ in layers]
         self.intercepts_ = [b for _, b in layers]
 
-    def _predict_chunk(self, X):
+    def _linear_weights(self):
         if self._folded is None:
             self._folded = folded_first_layer(
                 self.coefs_[0], self.intercepts_[0], self.mean_, self.scale_
             )
-        layers = [self._folded, *zip(self.coefs_[1:], self.intercepts_[1:], strict=True)]
-        h = X
-        last = len(layers) - 1
-        for layer, (W, b) in enumerate(layers):
-            # each layer's output goes into a buffer kept between calls: prediction calls this
-            # for band after band of rows, and fresh arrays of a megabyte or more cost page
-            # faults on every call (the numbers are those of ``h @ W + b``, bit for bit)
-            out = _scratch(layer, X.shape[0], W.shape[1])
+        return self._folded
+
+    def _predict_chunk(self, X):
+        W, b = self._linear_weights()
+        z = np.matmul(X, W, out=_scratch(0, X.shape[0], W.shape[1]))
+        return self._predict_from_linear(np.add(z, b, out=z))
+
+    def _predict_from_linear(self, Z):
+        # each layer's output goes into a buffer kept between calls: prediction calls this
+        # for band after band of rows, and fresh arrays of a megabyte or more cost page
+        # faults on every call (the numbers are those of ``h @ W + b``, bit for bit)
+        h = Z
+        for layer, (W, b) in enumerate(zip(self.coefs_[1:], self.intercepts_[1:], strict=True)):
+            np.maximum(h, np.float32(0), out=h)
+            out = _scratch(layer + 1, h.shape[0], W.shape[1])
             np.matmul(h, W, out=out)
             np.add(out, b, out=out)
-            if layer < last:
-                np.maximum(out, np.float32(0), out=out)
             h = out
         return expit(h[:, 0]).astype(np.float32)
 

@@ -29,6 +29,20 @@ _CLASSES = {
 KINDS = tuple(_CLASSES)
 
 
+def linear_first_step(kind):
+    """Whether models of `kind` start with a product of the features with a matrix, which
+    prediction forms in parts (:meth:`BinaryClassifier.linear_weights`).
+
+    Examples
+    --------
+    >>> linear_first_step("mlp"), linear_first_step("random_forest")
+    (True, False)
+    """
+    if kind not in _CLASSES:
+        raise TesseraInputError(f"unknown classifier kind {kind!r}; known: {list(KINDS)}")
+    return _CLASSES[kind].linear_first_step
+
+
 def make_classifier(kind, *, seed, threads=1, **options):
     """Create an unfitted binary classifier of one kind.
 
