@@ -38,6 +38,7 @@ from tessera.cascade.api import (  # noqa: E402
     prepare_tile,
     receptive_radius,
 )
+from tessera.workflow.resources import keep_freed_memory  # noqa: E402
 
 TRAIN, SCORED, TIMED = range(14), range(14, 20), range(16, 20)
 OUTPUT_SIGMA = 2.0  # the workflow's default smoothing of the final map (px)
@@ -118,6 +119,7 @@ def run_peer(image, truth, per_section):
 
 
 def main():
+    keep_freed_memory()  # as prediction and training jobs do (both models run in this process)
     if not (DATA / "raw").is_dir():
         print(f"peer_speed: skipped, {DATA} is not present (the open VNC stack is needed)")
         return

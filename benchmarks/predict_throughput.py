@@ -30,12 +30,14 @@ from tessera.cascade.api import (  # noqa: E402
     receptive_radius,
 )
 from tessera.cascade.classifiers import KINDS  # noqa: E402
+from tessera.workflow.resources import keep_freed_memory  # noqa: E402
 from tessera_demo.render import render_dataset  # noqa: E402
 
 CORE = 1024
 
 
 def main():
+    keep_freed_memory()  # as prediction and training jobs do
     volume = render_dataset(seed=5, shape=(8, 1024, 1024), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)

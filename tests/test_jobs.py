@@ -2,6 +2,7 @@
 the profile key that gives it more."""
 
 import os
+import platform
 import re
 import subprocess
 import sys
@@ -120,3 +121,14 @@ def test_a_real_allocation_beyond_the_address_space_limit(tmp_path):
         "tessera: rule stitch ran out of memory with mem_mb=300 (Unable to allocate 1.00 GiB"
     )
     assert "set-resources: {stitch: {mem_mb: 600}}" in lines[0]
+
+
+def test_jobs_keep_freed_memory_where_the_c_library_is_glibc():
+    # mallopt(3) (glibc manual): M_MMAP_THRESHOLD up to 32 MiB on 64-bit systems and
+    # M_TRIM_THRESHOLD are accepted (return 1) by glibc; elsewhere the call reports False.
+    # Run in a child process: the setting lasts for the process.
+    code = "from tessera.workflow.resources import keep_freed_memory; print(keep_freed_memory())"
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    ).stdout.strip()
+    assert out == str(platform.libc_ver()[0] == "glibc")

@@ -38,7 +38,7 @@ from tessera.workflow.files.probability_map import probability_metadata
 from tessera.workflow.files.pyramid import aspects_agree, working_array
 from tessera.workflow.files.shard_plan import read_plan, write_plan
 from tessera.workflow.files.shards import verified_blocks, write_shard
-from tessera.workflow.resources import more_memory_hint
+from tessera.workflow.resources import keep_freed_memory, more_memory_hint
 
 # A shard job's interpreter with numpy, scipy, scikit-learn and zarr imported: about 150 MB
 # resident on Linux (tests/test_predict.py measures it), rounded up.
@@ -162,6 +162,7 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
     memory the job was given, MB), a job that would need clearly more stops before it starts
     (see :func:`shard_memory_mb`) instead of being killed by the scheduler part-way.
     """
+    keep_freed_memory()  # arrays of every section and node reuse the freed memory
     plan = read_plan(plan_path)
     if not 0 <= job < len(plan["jobs"]):
         raise TesseraInputError(

@@ -26,6 +26,7 @@ from tessera.workflow.files.pyramid import (
 from tessera.workflow.files.scores import write_scores
 from tessera.workflow.files.tile_probabilities import write_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
+from tessera.workflow.resources import keep_freed_memory
 
 _log = logging.getLogger(__name__)
 
@@ -67,6 +68,7 @@ def train_node_job(
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
     """
+    keep_freed_memory()  # arrays of every section and node reuse the freed memory
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
@@ -134,6 +136,7 @@ def predict_tiles_job(
     Writes every tile's probability map (``<tile_id>`` arrays in an .npz) and a TSV of pixel
     precision, recall, F1 and Jaccard per role.
     """
+    keep_freed_memory()  # arrays of every section and node reuse the freed memory
     registry, labels = read_annotation_set(annotations)
     models = load_cascade(model_paths, target=target)
     arrays = level_arrays(pyramids, registry, downsample=downsample)
