@@ -172,20 +172,28 @@ def _mirror_padded(data, radius):
     return padded, tuple(slice(t, t + n) for t, n in zip(total, data.shape))
 
 
-def _scale_channels(channels, g, following, s, ratio, steps):
+def _scale_channels(channels, g, following, s, ratio, steps, context=None):
     """Append the channels of one scale: `g` is the image smoothed at σ = `s`, `following` at
-    the next σ (None for the last scale)."""
+    the next σ (None for the last scale), both over the core and `context` pixels per axis
+    around it (none by default). The channels are those of the core; only the structure tensor,
+    which smooths the gradients again, is computed over the context too."""
     ndim = g.ndim
+    context = context or [0] * ndim
+    core = tuple(slice(k, n - k) for k, n in zip(context, g.shape))
+    # second derivatives need one pixel around the core, then that pixel is cut off
+    near = [max(k - 1, 0) for k in context]
+    around = tuple(slice(m, n - m) for m, n in zip(near, g.shape))
+    cut = tuple(slice(k - m, n - k - m) for k, m, n in zip(context, near, g.shape))
     grads = _derivatives(g, steps)
-    channels.append(g)
-    magnitude = np.multiply(grads[0], grads[0], out=channels.take())
+    channels.append(g[core])
+    magnitude = np.multiply(grads[0][core], grads[0][core], out=channels.take())
     for d in grads[1:]:
-        magnitude += d * d
+        magnitude += d[core] * d[core]
     np.sqrt(magnitude, out=magnitude)
     second = [[None] * ndim for _ in range(ndim)]
     for a in range(ndim):
-        for b, d in zip(range(a, ndim), _derivatives(grads[a], steps, range(a, ndim))):
-            second[a][b] = d
+        for b, d in zip(range(a, ndim), _derivatives(grads[a][around], steps, range(a, ndim))):
+            second[a][b] = d[cut]
     # Scale-normalised (σ²) so responses are comparable across scales.
     norm = np.float32(s * s)
     laplacian = np.add(second[0][0], second[1][1], out=channels.take())
@@ -193,13 +201,13 @@ def _scale_channels(channels, g, following, s, ratio, steps):
         laplacian += second[a][a]
     laplacian *= norm
     if following is not None:
-        np.subtract(g, following, out=channels.take())
+        np.subtract(g[core], following[core], out=channels.take())
     integ = [s * r for r in ratio]
     if ndim == 2:
         hessian = (channels.take(), channels.take())
         _eigvals_sym2(second[0][0], second[0][1], second[1][1], scale=norm, out=hessian)
         j = [
-            gaussian_smooth(p, integ)
+            gaussian_smooth(p, integ)[core]
             for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
         ]
         _eigvals_sym2(*j, out=(channels.take(), channels.take()))
@@ -207,7 +215,7 @@ def _scale_channels(channels, g, following, s, ratio, steps):
         h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
         channels.extend(norm * e for e in _eigvals_sym3(h))
         pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
-        j = [gaussian_smooth(grads[a] * grads[b], integ) for a, b in pairs]
+        j = [gaussian_smooth(grads[a] * grads[b], integ)[core] for a, b in pairs]
         channels.extend(_eigvals_sym3(j))
 
 
@@ -302,15 +310,7 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
         if i + 1 < len(sigmas):  # the next scale reaches as far or further: crop it to this one
             cut = [b - a for a, b in zip(reach[i], reach[i + 1])]
             following = smoothed_all[i + 1][tuple(slice(c, c + n) for c, n in zip(cut, g.shape))]
-        count = 3 + (following is not None) + 2 * ndim  # the scale's channels (feature_names)
-        if not any(reach[i]):
-            _scale_channels(channels, g, following, s, ratio, steps)
-            continue
-        scratch = np.empty((count,) + g.shape, dtype=np.float32)
-        _scale_channels(_ChannelWriter(np.moveaxis(scratch, 0, -1)), g, following, s, ratio, steps)
-        core = tuple(slice(k, k + n) for k, n in zip(reach[i], shape))
-        for plane in scratch:
-            channels.append(plane[core])
+        _scale_channels(channels, g, following, s, ratio, steps, context=reach[i])
     return out
 
 

@@ -384,19 +384,23 @@ def _linear_map(frame, node, margin, classifier, offset):
     """The classifier's output from its first step ``X @ W + b`` formed in parts, never
     forming X.
 
-    Image features and the stencil samples of maps at the node's own level are written as
-    planes (contiguous copies) of a band of image rows, beside a plane of ones for the bias,
-    and multiplied at once; a coarser map's part is multiplied at its own level, where its
-    stencil is read (a quarter or a sixteenth of the pixels), and repeated up
-    (:func:`coarse_index`).
+    The stencil samples of maps at the node's own level are written as planes (contiguous
+    copies) of a band of image rows, beside a plane of ones for the bias, and multiplied at
+    once; so are the image features, unless their planes are whole (the region the features
+    were made for), which are multiplied where they lie. A coarser map's part is multiplied at
+    its own level, where its stencil is read (a quarter or a sixteenth of the pixels), and
+    repeated up (:func:`coarse_index`).
     """
     weights, bias = classifier.linear_weights()
     feats = frame.features(node[1], margin, offset)
     h, w, channels = feats.shape
     planes = np.moveaxis(feats, -1, 0)  # a view: the bank stores channel planes
+    # each plane's rows follow one another: a band of rows of every plane is one matrix
+    direct = planes.dtype == np.float32 and planes.strides[1:] == (4 * w, 4)
     offsets = _stencil_offsets(frame.spec.stencil_radii)
     k = len(offsets)
-    fine, coarse, rows, column = [], [], [weights[:channels]], channels
+    fine, coarse, column = [], [], channels
+    rows = [] if direct else [weights[:channels]]
     for prob, factor, cut in frame.context_maps(node, margin, offset):
         part = weights[column : column + k]
         if factor == 1:
@@ -414,19 +418,31 @@ def _linear_map(frame, node, margin, classifier, offset):
     x = np.empty((fine_weights.shape[0], band * w), dtype=np.float32)
     x[-1] = 1.0  # the bias's plane
     z = np.empty((band * w, weights.shape[1]), dtype=np.float32)
+    if direct:
+        image_weights = np.ascontiguousarray(weights[:channels])
+        context_sums = np.empty_like(z) if fine else None
     out = np.empty((h, w), dtype=np.float32)
     with classifier.thread_limit():
         for y0 in range(0, h, band):
             y1 = min(h, y0 + band)
             n = (y1 - y0) * w
             planar = x[:-1, :n].reshape(-1, y1 - y0, w)
-            planar[:channels] = planes[:, y0:y1]
-            plane = channels
+            plane = 0
+            if not direct:
+                planar[:channels] = planes[:, y0:y1]
+                plane = channels
             for prob, cut in fine:
                 for dy, dx in offsets:
                     planar[plane] = prob[cut + dy + y0 : cut + dy + y1, cut + dx : cut + dx + w]
                     plane += 1
-            zb = np.matmul(x[:, :n].T, fine_weights, out=z[:n])
+            if not direct:
+                zb = np.matmul(x[:, :n].T, fine_weights, out=z[:n])
+            else:
+                zb = np.matmul(planes[:, y0:y1].reshape(channels, n).T, image_weights, out=z[:n])
+                if fine:
+                    zb += np.matmul(x[:, :n].T, fine_weights, out=context_sums[:n])
+                else:
+                    zb += bias
             aligned = all(cut % f == 0 for _, f, cut, _ in coarse)
             aligned = aligned and (y1 - y0) % step == 0 and w % step == 0
             total, at = None, None  # the coarse parts summed on the grid of factor `at`
