@@ -207,15 +207,15 @@ def _scale_channels(channels, g, following, s, ratio, steps, context=None):
         hessian = (channels.take(), channels.take())
         _eigvals_sym2(second[0][0], second[0][1], second[1][1], scale=norm, out=hessian)
         j = [
-            gaussian_smooth(p, integ)[core]
-            for p in (grads[0] * grads[0], grads[0] * grads[1], grads[1] * grads[1])
+            gaussian_smooth(grads[a], integ, times=grads[b])[core]
+            for a, b in ((0, 0), (0, 1), (1, 1))
         ]
         _eigvals_sym2(*j, out=(channels.take(), channels.take()))
     else:
         h = [second[0][0], second[0][1], second[0][2], second[1][1], second[1][2], second[2][2]]
         channels.extend(norm * e for e in _eigvals_sym3(h))
         pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
-        j = [gaussian_smooth(grads[a] * grads[b], integ)[core] for a, b in pairs]
+        j = [gaussian_smooth(grads[a], integ, times=grads[b])[core] for a, b in pairs]
         channels.extend(_eigvals_sym3(j))
 
 

@@ -73,15 +73,19 @@ def _smooth_columns(rows, sigma):
         cv2.sepFilter2D(rows, -1, _IDENTITY, kernel, dst=rows, borderType=cv2.BORDER_REFLECT)
 
 
-def _smooth_plane(plane, sigma_y, sigma_x):
-    """`plane` smoothed along y, then along x as the columns of its transpose (module notes).
+def _smooth_plane(plane, sigma_y, sigma_x, times=None):
+    """`plane` (times `times`, when given) smoothed along y, then along x as the columns of its
+    transpose (module notes).
 
     Both sides are padded to whole SIMD steps once, so after the transpose the x pass also
     runs on whole steps; the padding's rows are never inside a pass (only its columns are,
     which a column filter keeps apart)."""
     h, w = plane.shape
     buffer = np.zeros((_padded(h), _padded(w)), np.float32)
-    buffer[:h, :w] = plane
+    if times is None:
+        buffer[:h, :w] = plane
+    else:  # the product made where it is smoothed, not in an array of its own first
+        np.multiply(plane, times, out=buffer[:h, :w])
     _smooth_columns(buffer[:h], sigma_y)
     if sigma_x <= 0:
         return buffer[:h, :w].copy()
@@ -91,7 +95,7 @@ def _smooth_plane(plane, sigma_y, sigma_x):
     return cv2.transpose(turned[:w])[:h]
 
 
-def gaussian_smooth(image, sigma):
+def gaussian_smooth(image, sigma, *, times=None):
     """`image` smoothed by a Gaussian of `sigma` pixels per axis, edges mirrored.
 
     Parameters
@@ -100,6 +104,9 @@ def gaussian_smooth(image, sigma):
         Any real dtype; smoothed in float32.
     sigma : float or sequence of float
         σ per axis (z y x), or one σ for all; 0 leaves an axis alone.
+    times : ndarray, optional
+        Smooth the product ``image * times`` (float32, same shape), as the structure tensor
+        does with gradients; a 2D product is made in the smoothing's own buffer.
 
     Returns
     -------
@@ -117,13 +124,19 @@ def gaussian_smooth(image, sigma):
     True
     """
     data = np.asarray(image, dtype=np.float32)
+    if times is not None:
+        times = np.asarray(times, dtype=np.float32)
+        if times.shape != data.shape:
+            raise TesseraInputError(f"times must have the shape {data.shape}, got {times.shape}")
     if data.ndim not in (2, 3) or data.size == 0:
         raise TesseraInputError(f"can only smooth a non-empty 2D or 3D image, got {data.shape}")
     sigmas = [float(sigma)] * data.ndim if np.isscalar(sigma) else [float(s) for s in sigma]
     if len(sigmas) != data.ndim or any(not math.isfinite(s) or s < 0 for s in sigmas):
         raise TesseraInputError(f"sigma must be {data.ndim} numbers >= 0, got {sigma!r}")
     if data.ndim == 2:
-        return _smooth_plane(data, *sigmas)
+        return _smooth_plane(data, *sigmas, times=times)
+    if times is not None:
+        data = data * times
     if sigmas[0] > 0:
         data = ndimage.gaussian_filter1d(data, sigmas[0], axis=0, mode="reflect", truncate=TRUNCATE)
     return np.stack([_smooth_plane(plane, *sigmas[1:]) for plane in data])
