@@ -10,7 +10,7 @@ from skimage.feature import (
     structure_tensor_eigenvalues,
 )
 
-from tessera.cascade.features import feature_names, feature_radius, filter_bank
+from tessera.cascade.features import DEFAULT_SIGMAS, feature_names, feature_radius, filter_bank
 from tessera.errors import TesseraInputError
 
 
@@ -158,3 +158,18 @@ def test_output_dtype_and_bad_input():
         filter_bank(np.zeros(8))
     with pytest.raises(TesseraInputError, match="positive"):
         filter_bank(np.zeros((8, 8)), sigmas=(0.0,))
+
+
+def test_a_core_inside_a_halo_has_the_features_of_the_whole_image_cropped():
+    # filter_bank(halo=) filters each scale over only the part of the halo it reaches and the
+    # per-pixel channels over the core only; every channel must be the crop of filtering the
+    # whole image, to the bit (the Gaussian is exact under translation, tests/test_smoothing.py).
+    # Default scales, with the halo prediction passes (feature_radius + 1).
+    halo = feature_radius(DEFAULT_SIGMAS) + 1
+    image = np.random.default_rng(7).random((30 + 2 * halo, 41 + 2 * halo)).astype(np.float32)
+    whole = filter_bank(image, mirror_edges=False)
+    core = filter_bank(image, mirror_edges=False, halo=halo)
+    assert core.shape == (30, 41, len(feature_names()))
+    np.testing.assert_array_equal(core, whole[halo:-halo, halo:-halo])
+    with pytest.raises(TesseraInputError, match="leaves no core"):
+        filter_bank(image, mirror_edges=False, halo=halo + 15)

@@ -223,3 +223,19 @@ def test_bad_input_is_one_line():
         section_bank_z_reach((1.0,), spacing=(10, 10))
     with pytest.raises(TesseraInputError, match="sigmas must be strictly increasing"):
         section_filter_bank_3d(good, sigmas=(2.0, 1.0), spacing=spacing)
+
+
+@pytest.mark.parametrize("spacing", SPACINGS, ids=["anisotropic", "near-isotropic"])
+def test_a_core_inside_a_halo_has_the_features_of_the_whole_plane_cropped(spacing):
+    # Each scale is filtered over only the part of the halo it reaches, and the channels other
+    # than the structure tensor over the core only: every channel must be the crop of filtering
+    # the whole plane, to the bit (the in-plane Gaussian is exact under translation,
+    # tests/test_smoothing.py). A halo of feature_radius, as prediction passes it.
+    halo = feature_radius(SIGMAS) + 1
+    stack, _ = _stack(spacing, shape=(20 + 2 * halo, 24 + 2 * halo), seed=4)
+    whole = section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing)
+    core = section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing, halo=halo)
+    assert core.shape == (20, 24, len(feature_names(SIGMAS, ndim=3)))
+    np.testing.assert_array_equal(core, whole[halo:-halo, halo:-halo])
+    with pytest.raises(TesseraInputError, match="leaves no core"):
+        section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing, halo=10 + halo + 12)

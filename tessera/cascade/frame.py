@@ -110,10 +110,7 @@ class _Section:
         sigmas = level_sigmas(self.spec, level)
         if level == 0 and self.spec.dims == 3:
             spacing = (self.spec.voxel_aspect, 1.0, 1.0)
-            feats = section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing)
-            # a copy of the core's planes, so the cache does not hold the context too
-            planes = np.moveaxis(feats, -1, 0)[:, extra:-extra, extra:-extra]
-            return np.moveaxis(planes.copy(), 0, -1)
+            return section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing, halo=extra)
         centre = stack.shape[0] // 2
         parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False, halo=extra)]
         parts += [

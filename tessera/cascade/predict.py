@@ -138,20 +138,18 @@ def _filter_temporaries(spec, level, pixels, channels):
     context), beyond the region's features."""
     scales = len(level_sigmas(spec, level))
     if not _bank_3d(spec, level):
-        # smoothed images of every scale, one scale's channels before they are cropped to the
-        # region, derivatives in flight; with neighbours, the parts are concatenated (one more
-        # copy of the channels)
-        per_scale = -(-channels // scales)
-        return 4 * pixels * (scales + per_scale + 8 + (channels if spec.neighbours else 0))
+        # smoothed images of every scale plus one scale's derivatives and gradient products in
+        # flight; with neighbours, the parts are concatenated (one more copy of the channels)
+        return 4 * pixels * (scales + 8 + (channels if spec.neighbours else 0))
     # the 3D bank: three weighted sums along z and one smoothed plane per scale, then one
     # scale's derivatives, gradient products and the float64 work of the 3 x 3 eigenvalues
-    # (measured with tracemalloc: 4 S + 58 planes; 64 leaves room for other numpy versions);
+    # (of the region only; bounded by 4 S + 48 planes with the context, which covers the peaks
+    # tracemalloc measures with some room for other numpy versions);
     # while the sums are made, the sections within reach in float64 (in chunks of at most
     # _CHUNK_VALUES)
-    # and its output over the context too, until the region's features are copied out of it
     sections = 2 * image_z_reach(spec) + 1
     sums = 4 * pixels * 3 * scales + 8 * min(_CHUNK_VALUES, sections * pixels)
-    return 4 * pixels * channels + max(4 * pixels * (4 * scales + 64), sums)
+    return max(4 * pixels * (4 * scales + 48), sums)
 
 
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):

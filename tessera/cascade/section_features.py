@@ -181,30 +181,40 @@ def _check_stack(stack):
     return stack
 
 
-def _scale_channels_3d(channels, planes, following, s, inplane):
+def _scale_channels_3d(channels, planes, following, s, inplane, context=(0, 0)):
     """Append the channels of scale `s`. `planes` holds the centre plane smoothed in 3D (g) and
     the z-smoothed first and second z differences, not yet smoothed in plane; `following` is
-    the centre plane smoothed at the next σ (None for the last scale)."""
+    the centre plane smoothed at the next σ (None for the last scale). All cover the core and
+    `context` pixels (y, x) around it; the channels are those of the core, and only the
+    structure tensor, which smooths the gradient again, is computed over the context too."""
     g, dz, dzz = planes
-    gz, zz = (gaussian_smooth(p, inplane) for p in (dz, dzz))
+    core = tuple(slice(k, n - k) for k, n in zip(context, g.shape, strict=True))
+    # second derivatives need one pixel around the core, then that pixel is cut off
+    near = [max(k - 1, 0) for k in context]
+    around = tuple(slice(m, n - m) for m, n in zip(near, g.shape, strict=True))
+    cut = tuple(slice(k - m, n - k - m) for k, m, n in zip(context, near, g.shape, strict=True))
+    gz = gaussian_smooth(dz, inplane)
+    zz = gaussian_smooth(dzz, inplane)[core]
     gy, gx = _derivatives(g, _UNIT_STEPS)
-    zy, zx = _derivatives(gz, _UNIT_STEPS)
-    yy, yx = _derivatives(gy, _UNIT_STEPS)
-    xx = _derivatives(gx, _UNIT_STEPS)[1]
-    channels.append(g)
-    channels.append(np.sqrt(gz * gz + gy * gy + gx * gx))
+    zy, zx = (d[cut] for d in _derivatives(gz[around], _UNIT_STEPS))
+    yy, yx = (d[cut] for d in _derivatives(gy[around], _UNIT_STEPS))
+    xx = _derivatives(gx[around], _UNIT_STEPS, (1,))[0][cut]
+    channels.append(g[core])
+    cz, cy, cx = gz[core], gy[core], gx[core]
+    channels.append(np.sqrt(cz * cz + cy * cy + cx * cx))
     # Scale-normalised (σ²) as in filter_bank
     norm = np.float32(s * s)
     channels.append(norm * (zz + yy + xx))
     if following is not None:
-        channels.append(g - following)
+        channels.append(g[core] - following[core])
     channels.extend(norm * e for e in symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx))
     grads = (gz, gy, gx)
-    products = [grads[a] * grads[b] for a, b in ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))]
-    channels.extend(symmetric_eigenvalues_3x3(*(gaussian_smooth(p, inplane) for p in products)))
+    pairs = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
+    tensor = (gaussian_smooth(grads[a], inplane, times=grads[b])[core] for a, b in pairs)
+    channels.extend(symmetric_eigenvalues_3x3(*tensor))
 
 
-def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
+def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing, halo=0):
     """3D Gaussian-derivative features of the centre section of a stack.
 
     Parameters
@@ -218,10 +228,14 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
         Increasing scales in pixels of the finest axis.
     spacing : sequence of float
         Voxel size (z, y, x): σ along each axis is ``σ * min(spacing) / spacing[axis]``.
+    halo : int, optional
+        Pixels on each side in plane that are context only: the features of the core inside
+        them are returned, each scale filtered over the part of the halo it reaches (the same
+        numbers as the crop of the whole plane's features).
 
     Returns
     -------
-    (M, N, C) ndarray of float32
+    (M - 2 halo, N - 2 halo, C) ndarray of float32
         Channels as named by ``feature_names(sigmas, ndim=3)``.
 
     Notes
@@ -256,6 +270,9 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
     >>> same = [k for k, name in enumerate(names) if not name.startswith("structure")]
     >>> bool(np.allclose(f[..., same], full[6][..., same], atol=1e-5))
     True
+    >>> core = section_filter_bank_3d(stack, sigmas=(1.0, 2.0), spacing=(20, 10, 10), halo=6)
+    >>> bool(np.array_equal(core, f[6:-6, 6:-6]))
+    True
     """
     stack = _check_stack(stack)
     sigmas = _check_sigmas(sigmas)
@@ -268,19 +285,32 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing):
             f"{sigmas} at spacing {normalize_spacing(spacing, 3)}, got {r}"
         )
     window = stack[r - reach : r + reach + 1]
+    halo = int(halo)
+    if halo < 0 or any(n <= 2 * halo for n in window.shape[1:]):
+        raise TesseraInputError(
+            f"a halo of {halo} px leaves no core of sections {window.shape[1:]}"
+        )
+    shape = tuple(n - 2 * halo for n in window.shape[1:])
     planes = _weighted_sections(window, [_z_weights(s * ratios[0]) for s in sigmas])
     inplane = [(s * ratios[1], s * ratios[2]) for s in sigmas]
-    smoothed = [gaussian_smooth(planes[i, 0], inplane[i]) for i in range(len(sigmas))]
+    # the part of the halo each scale reaches in plane (as feature_radius), and its region
+    context = [[min(halo, 2 * kernel_radius(q) + 4) for q in sigma] for sigma in inplane]
+    regions = [
+        tuple(slice(halo - k, halo + n + k) for k, n in zip(c, shape, strict=True)) for c in context
+    ]
+    smoothed = [gaussian_smooth(planes[i, 0][regions[i]], inplane[i]) for i in range(len(sigmas))]
     # channel planes written in place, the result a channels-last view (as in filter_bank)
-    out_planes = np.empty(
-        (len(feature_names(sigmas, ndim=3)),) + window.shape[1:], dtype=np.float32
-    )
+    out_planes = np.empty((len(feature_names(sigmas, ndim=3)),) + shape, dtype=np.float32)
     out = np.moveaxis(out_planes, 0, -1)
     channels = _ChannelWriter(out)
-    channels.append(window[reach].astype(np.float32))
+    channels.append(window[reach][tuple(slice(halo, halo + n) for n in shape)].astype(np.float32))
     for i, s in enumerate(sigmas):
-        following = smoothed[i + 1] if i + 1 < len(sigmas) else None
-        _scale_channels_3d(
-            channels, (smoothed[i], planes[i, 1], planes[i, 2]), following, s, inplane[i]
-        )
+        following = None
+        if i + 1 < len(sigmas):  # the next scale reaches as far or further: crop it to this one
+            step = [b - a for a, b in zip(context[i], context[i + 1], strict=True)]
+            following = smoothed[i + 1][
+                tuple(slice(d, d + n) for d, n in zip(step, smoothed[i].shape, strict=True))
+            ]
+        z_planes = (smoothed[i], planes[i, 1][regions[i]], planes[i, 2][regions[i]])
+        _scale_channels_3d(channels, z_planes, following, s, inplane[i], context[i])
     return out
