@@ -377,6 +377,38 @@ def _banded_map(frame, node, margin, classifier, offset):
     return out.reshape(h, w)
 
 
+def _add_coarse_parts(zb, coarse, offsets, y0, y1, w, step):
+    """Add to the first-layer sums `zb` of rows y0..y1 (width `w`) the parts of the coarser
+    maps: each multiplied at its own level over the coarse cells those rows read, then repeated
+    up. Where every cell lies whole in the band (rows and width multiples of `step`, the
+    coarsest factor), the parts are summed coarsest first on ever finer grids and added once;
+    a region cut by a volume edge repeats each part up alone."""
+    k = len(offsets)
+    aligned = all(cut % f == 0 for _, f, cut, _ in coarse)
+    aligned = aligned and (y1 - y0) % step == 0 and w % step == 0
+    total, at = None, None  # the coarse parts summed on the grid of factor `at`
+    for prob, factor, cut, part in coarse:
+        iy, ix = coarse_index(cut, y0, y1, factor), coarse_index(cut, 0, w, factor)
+        a0, a1, b0, b1 = iy[0], iy[-1] + 1, ix[0], ix[-1] + 1
+        samples = np.empty((k, a1 - a0, b1 - b0), dtype=np.float32)
+        for plane, (dy, dx) in enumerate(offsets):
+            samples[plane] = prob[a0 + dy : a1 + dy, b0 + dx : b1 + dx]
+        g = (samples.reshape(k, -1).T @ part).reshape(a1 - a0, b1 - b0, -1)
+        if not aligned:
+            zb += np.take(np.take(g, ix - b0, axis=1), iy - a0, axis=0).reshape(zb.shape)
+        elif total is None:
+            total, at = g, factor
+        else:  # the coarser sum repeats over this grid's cells
+            r = at // factor
+            g += np.repeat(np.repeat(total, r, axis=0), r, axis=1)
+            total, at = g, factor
+    if total is not None:
+        # repeated along x (a contiguous copy), then added to each of the `at` rows of a cell
+        # row in one long run
+        total = np.repeat(total, at, axis=1)
+        zb.reshape(total.shape[0], at, -1)[...] += total.reshape(total.shape[0], 1, -1)
+
+
 def _linear_map(frame, node, margin, classifier, offset):
     """The classifier's output from its first step ``X @ W + b`` formed in parts, never
     forming X.
@@ -440,29 +472,7 @@ def _linear_map(frame, node, margin, classifier, offset):
                     zb += np.matmul(x[:, :n].T, fine_weights, out=context_sums[:n])
                 else:
                     zb += bias
-            aligned = all(cut % f == 0 for _, f, cut, _ in coarse)
-            aligned = aligned and (y1 - y0) % step == 0 and w % step == 0
-            total, at = None, None  # the coarse parts summed on the grid of factor `at`
-            for prob, factor, cut, part in coarse:
-                iy, ix = coarse_index(cut, y0, y1, factor), coarse_index(cut, 0, w, factor)
-                a0, a1, b0, b1 = iy[0], iy[-1] + 1, ix[0], ix[-1] + 1
-                samples = np.empty((k, a1 - a0, b1 - b0), dtype=np.float32)
-                for plane, (dy, dx) in enumerate(offsets):
-                    samples[plane] = prob[a0 + dy : a1 + dy, b0 + dx : b1 + dx]
-                g = (samples.reshape(k, -1).T @ part).reshape(a1 - a0, b1 - b0, -1)
-                if not aligned:  # a region cut by a volume edge: each part repeated up alone
-                    zb += np.take(np.take(g, ix - b0, axis=1), iy - a0, axis=0).reshape(n, -1)
-                elif total is None:
-                    total, at = g, factor
-                else:  # aligned cells: the coarser sum repeats over this grid's cells
-                    r = at // factor
-                    g += np.repeat(np.repeat(total, r, axis=0), r, axis=1)
-                    total, at = g, factor
-            if total is not None:
-                # repeated along x (a contiguous copy), then added to each of the `at` rows
-                # of a cell row in one long run
-                total = np.repeat(total, at, axis=1)
-                zb.reshape(total.shape[0], at, -1)[...] += total.reshape(total.shape[0], 1, -1)
+            _add_coarse_parts(zb, coarse, offsets, y0, y1, w, step)
             out[y0:y1] = classifier.predict_from_linear(zb).reshape(y1 - y0, w)
     return out
 
