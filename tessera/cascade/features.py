@@ -65,9 +65,7 @@ def feature_radius(sigmas=DEFAULT_SIGMAS):
     >>> feature_radius((1.0, 2.0))
     20
     """
-    s = max(_check_sigmas(sigmas))
-    reach = kernel_radius(s)
-    return 2 * reach + 4
+    return _scale_reach(max(_check_sigmas(sigmas)), [1.0])[0]
 
 
 class _ChannelWriter:
@@ -172,18 +170,54 @@ def _mirror_padded(data, radius):
     return padded, tuple(slice(t, t + n) for t, n in zip(total, data.shape))
 
 
+def _scale_reach(sigma, ratio):
+    """Pixels per axis that the channels of one scale depend on: Gaussian kernels reach
+    ``int(4 σ + 0.5)``, the structure tensor smooths derivatives of the σ-smoothed image again
+    at σ, and the finite differences add one pixel per order."""
+    return [2 * kernel_radius(sigma * r) + 4 for r in ratio]
+
+
+def _scale_regions(sigmas, ratio, halo, core_shape):
+    """Per scale, the pixels of a `halo` around a core of `core_shape` it reaches on each axis
+    (at most `halo`), and the slices of the image (core plus that halo) it is filtered over."""
+    reaches = [[min(halo, k) for k in _scale_reach(s, ratio)] for s in sigmas]
+    regions = [
+        tuple(slice(halo - k, halo + n + k) for k, n in zip(r, core_shape, strict=True))
+        for r in reaches
+    ]
+    return reaches, regions
+
+
+def _following(smoothed, reaches, i):
+    """Scale i + 1's smoothed image cropped to scale i's region (it reaches as far or further);
+    None for the last scale."""
+    if i + 1 >= len(smoothed):
+        return None
+    step = [b - a for a, b in zip(reaches[i], reaches[i + 1], strict=True)]
+    return smoothed[i + 1][
+        tuple(slice(d, d + n) for d, n in zip(step, smoothed[i].shape, strict=True))
+    ]
+
+
+def _context_slices(context, shape):
+    """Slices of an array of `shape` that holds a core and `context` pixels per axis around it:
+    the core; the core with one pixel around it (where second derivatives are taken); and the
+    core within that."""
+    near = [max(k - 1, 0) for k in context]
+    core = tuple(slice(k, n - k) for k, n in zip(context, shape, strict=True))
+    around = tuple(slice(m, n - m) for m, n in zip(near, shape, strict=True))
+    cut = tuple(slice(k - m, n - k - m) for k, m, n in zip(context, near, shape, strict=True))
+    return core, around, cut
+
+
 def _scale_channels(channels, g, following, s, ratio, steps, context=None):
     """Append the channels of one scale: `g` is the image smoothed at σ = `s`, `following` at
     the next σ (None for the last scale), both over the core and `context` pixels per axis
     around it (none by default). The channels are those of the core; only the structure tensor,
     which smooths the gradients again, is computed over the context too."""
     ndim = g.ndim
-    context = context or [0] * ndim
-    core = tuple(slice(k, n - k) for k, n in zip(context, g.shape))
-    # second derivatives need one pixel around the core, then that pixel is cut off
-    near = [max(k - 1, 0) for k in context]
-    around = tuple(slice(m, n - m) for m, n in zip(near, g.shape))
-    cut = tuple(slice(k - m, n - k - m) for k, m, n in zip(context, near, g.shape))
+    # second derivatives are taken one pixel around the core, then that pixel is cut off
+    core, around, cut = _context_slices(context or [0] * ndim, g.shape)
     grads = _derivatives(g, steps)
     channels.append(g[core])
     magnitude = np.multiply(grads[0][core], grads[0][core], out=channels.take())
@@ -217,11 +251,6 @@ def _scale_channels(channels, g, following, s, ratio, steps, context=None):
         pairs = [(0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2)]
         j = [gaussian_smooth(grads[a], integ, times=grads[b])[core] for a, b in pairs]
         channels.extend(_eigvals_sym3(j))
-
-
-def _scale_reach(sigma, ratio):
-    """Pixels per axis that the channels of one scale depend on (:func:`feature_radius`)."""
-    return [2 * kernel_radius(sigma * r) + 4 for r in ratio]
 
 
 def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True, halo=0):
@@ -297,20 +326,14 @@ def filter_bank(image, *, sigmas=DEFAULT_SIGMAS, spacing=None, mirror_edges=True
     channels = _ChannelWriter(out)
     channels.append(data[tuple(slice(halo, halo + n) for n in shape)])
     # the part of the halo each scale reaches: its image, and how far in its core starts
-    reach = [[min(halo, k) for k in _scale_reach(s, ratio)] for s in sigmas]
+    reaches, regions = _scale_regions(sigmas, ratio, halo, shape)
     smoothed_all = [
-        gaussian_smooth(
-            data[tuple(slice(halo - k, halo + n + k) for k, n in zip(r, shape))],
-            [s * q for q in ratio],
-        )
-        for s, r in zip(sigmas, reach)
+        gaussian_smooth(data[region], [s * q for q in ratio])
+        for s, region in zip(sigmas, regions, strict=True)
     ]
     for i, s in enumerate(sigmas):
-        g, following = smoothed_all[i], None
-        if i + 1 < len(sigmas):  # the next scale reaches as far or further: crop it to this one
-            cut = [b - a for a, b in zip(reach[i], reach[i + 1])]
-            following = smoothed_all[i + 1][tuple(slice(c, c + n) for c, n in zip(cut, g.shape))]
-        _scale_channels(channels, g, following, s, ratio, steps, context=reach[i])
+        following = _following(smoothed_all, reaches, i)
+        _scale_channels(channels, smoothed_all[i], following, s, ratio, steps, context=reaches[i])
     return out
 
 

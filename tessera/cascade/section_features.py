@@ -22,7 +22,10 @@ from tessera.cascade.features import (
     DEFAULT_SIGMAS,
     _ChannelWriter,
     _check_sigmas,
+    _context_slices,
     _derivatives,
+    _following,
+    _scale_regions,
     feature_names,
 )
 from tessera.cascade.smoothing import gaussian_smooth, gaussian_weights, kernel_radius
@@ -188,11 +191,8 @@ def _scale_channels_3d(channels, planes, following, s, inplane, context=(0, 0)):
     `context` pixels (y, x) around it; the channels are those of the core, and only the
     structure tensor, which smooths the gradient again, is computed over the context too."""
     g, dz, dzz = planes
-    core = tuple(slice(k, n - k) for k, n in zip(context, g.shape, strict=True))
-    # second derivatives need one pixel around the core, then that pixel is cut off
-    near = [max(k - 1, 0) for k in context]
-    around = tuple(slice(m, n - m) for m, n in zip(near, g.shape, strict=True))
-    cut = tuple(slice(k - m, n - k - m) for k, m, n in zip(context, near, g.shape, strict=True))
+    # second derivatives are taken one pixel around the core, then that pixel is cut off
+    core, around, cut = _context_slices(context, g.shape)
     gz = gaussian_smooth(dz, inplane)
     zz = gaussian_smooth(dzz, inplane)[core]
     gy, gx = _derivatives(g, _UNIT_STEPS)
@@ -293,11 +293,8 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing, halo=0):
     shape = tuple(n - 2 * halo for n in window.shape[1:])
     planes = _weighted_sections(window, [_z_weights(s * ratios[0]) for s in sigmas])
     inplane = [(s * ratios[1], s * ratios[2]) for s in sigmas]
-    # the part of the halo each scale reaches in plane (as feature_radius), and its region
-    context = [[min(halo, 2 * kernel_radius(q) + 4) for q in sigma] for sigma in inplane]
-    regions = [
-        tuple(slice(halo - k, halo + n + k) for k, n in zip(c, shape, strict=True)) for c in context
-    ]
+    # the part of the halo each scale reaches in plane, and its region
+    reaches, regions = _scale_regions(sigmas, ratios[1:], halo, shape)
     smoothed = [gaussian_smooth(planes[i, 0][regions[i]], inplane[i]) for i in range(len(sigmas))]
     # channel planes written in place, the result a channels-last view (as in filter_bank)
     out_planes = np.empty((len(feature_names(sigmas, ndim=3)),) + shape, dtype=np.float32)
@@ -305,12 +302,7 @@ def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing, halo=0):
     channels = _ChannelWriter(out)
     channels.append(window[reach][tuple(slice(halo, halo + n) for n in shape)].astype(np.float32))
     for i, s in enumerate(sigmas):
-        following = None
-        if i + 1 < len(sigmas):  # the next scale reaches as far or further: crop it to this one
-            step = [b - a for a, b in zip(context[i], context[i + 1], strict=True)]
-            following = smoothed[i + 1][
-                tuple(slice(d, d + n) for d, n in zip(step, smoothed[i].shape, strict=True))
-            ]
         z_planes = (smoothed[i], planes[i, 1][regions[i]], planes[i, 2][regions[i]])
-        _scale_channels_3d(channels, z_planes, following, s, inplane[i], context[i])
+        following = _following(smoothed, reaches, i)
+        _scale_channels_3d(channels, z_planes, following, s, inplane[i], reaches[i])
     return out

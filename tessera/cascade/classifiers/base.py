@@ -204,7 +204,6 @@ class BinaryClassifier:
 
     kind = None
     _defaults = {}
-    linear_first_step = False  # True where :meth:`linear_weights` gives the first step
 
     def __init__(self, *, seed, threads=1, **options):
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
@@ -242,7 +241,7 @@ class BinaryClassifier:
         raise NotImplementedError
 
     def _linear_weights(self):
-        return None
+        return None  # kinds whose first step is a product with a matrix return (W, b)
 
     def _predict_from_linear(self, Z):
         raise NotImplementedError
@@ -295,7 +294,7 @@ class BinaryClassifier:
             raise TesseraInputError(f"this {self.kind} classifier is not fitted yet")
         X = _check_features_shape(X, n_features=self.n_features_, allow_empty=True)
         out = np.empty(X.shape[0], dtype=np.float32)
-        with _threadpools().limit(limits=self.threads):
+        with self.thread_limit():
             for start in range(0, X.shape[0], CHUNK_ROWS):
                 chunk = _as_float32_finite(X[start : start + CHUNK_ROWS])
                 out[start : start + chunk.shape[0]] = self._predict_chunk(chunk)
@@ -338,7 +337,7 @@ class BinaryClassifier:
         """
         if not np.isfinite(Z).all():
             raise TesseraInputError("X contains NaN or infinite values")
-        with _threadpools().limit(limits=self.threads):
+        with self.thread_limit():
             return self._predict_from_linear(Z)
 
     def thread_limit(self):

@@ -50,7 +50,6 @@ class MLPBinaryClassifier(BinaryClassifier):
     """
 
     kind = "mlp"
-    linear_first_step = True
     _defaults = {
         "hidden_layer_sizes": (32, 16),
         "alpha": 1e-4,

@@ -6,7 +6,12 @@ methods text gives the kinds follow it; tests/test_classifiers.py checks that th
 
 import numpy as np
 
-from tessera.cascade.classifiers.base import STATE_FORMAT, STATE_SOURCE, STATE_VERSION
+from tessera.cascade.classifiers.base import (
+    STATE_FORMAT,
+    STATE_SOURCE,
+    STATE_VERSION,
+    BinaryClassifier,
+)
 from tessera.cascade.classifiers.boosting import HistGradientBoostingBinaryClassifier
 from tessera.cascade.classifiers.ldnn import LDNNClassifier
 from tessera.cascade.classifiers.mlp import MLPBinaryClassifier
@@ -40,7 +45,8 @@ def linear_first_step(kind):
     """
     if kind not in _CLASSES:
         raise TesseraInputError(f"unknown classifier kind {kind!r}; known: {list(KINDS)}")
-    return _CLASSES[kind].linear_first_step
+    # the kinds that provide the first step's weights
+    return _CLASSES[kind]._linear_weights is not BinaryClassifier._linear_weights
 
 
 def make_classifier(kind, *, seed, threads=1, **options):
