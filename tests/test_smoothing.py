@@ -7,7 +7,7 @@ from scipy import ndimage
 from tessera.cascade.smoothing import gaussian_smooth, gaussian_weights, kernel_radius
 from tessera.errors import TesseraInputError
 
-SIGMAS = (0.7, 1.6, 3.5, 5.0, 10.0)  # the default filter-bank scales
+SIGMAS = (0.7, 1.6, 3.5, 5.0, 7.0, 10.0)  # the default filter-bank scales and others
 
 
 def _image(shape, seed=0):
