@@ -8,7 +8,7 @@ tiles, with the threshold chosen on validation tiles.
 Part ``fibsem`` (key ``fibsem_2d_vs_3d``): three demo volumes (train, validation and test seeds)
 rendered at 8 nm isotropic voxels and block-averaged 2x in every axis (16 nm voxels;
 tessera_demo.fibsem), no section defects. The same small cascade (2 stages x 1 level, sigmas
-without the largest default) is trained in 2D mode without and with neighbouring sections
+0.7-5 px, as when these figures were first taken) is trained in 2D mode without and with neighbouring sections
 (``neighbours`` 0 and 1) and in 3D mode (``dims`` 3, voxel aspect 1) on whole-section tiles of
 the training volume, predicted section by section (``predict_section``) on the validation and
 test volumes; the threshold maximising F1 on the validation sections is applied to the test
