@@ -9,6 +9,7 @@ paragraph cannot drift from the analysis it describes.
 import math
 
 from tessera import __version__
+from tessera.cascade.features import default_sigmas
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -21,6 +22,24 @@ CLASSIFIER_NAMES = {
 
 def _fmt(values):
     return ", ".join(f"{v:g}" for v in values)
+
+
+def _sigmas_text(cascade):
+    """The finest level's scales as used: unset ones follow the features' dims.
+
+    Examples
+    --------
+    >>> _sigmas_text({"sigmas": [1, 2]}), _sigmas_text({"sigmas": None, "dims": 2})
+    ('1, 2', '0.7, 1.6, 3.5, 7')
+    >>> _sigmas_text({"sigmas": None, "dims": "auto"})
+    '0.7, 1.6, 3.5, 7 for 2D features, 0.7, 1.6, 3.5, 5, 10 for 3D features'
+    """
+    if cascade.get("sigmas") is not None:
+        return _fmt(cascade["sigmas"])
+    dims = cascade.get("dims", 2)
+    if dims in (2, 3):
+        return _fmt(default_sigmas(dims))
+    return f"{_fmt(default_sigmas(2))} for 2D features, {_fmt(default_sigmas(3))} for 3D features"
 
 
 def _ladder_clause(cascade):
@@ -84,7 +103,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"hierarchical model (Seyedhosseini, Sajjadi & Tasdizen, ICCV 2013; Seyedhosseini & Tasdizen, TPAMI 2016) of "
         f"{cascade['stages']} stages × {cascade['levels']} levels{_ladder_clause(cascade)}, each node a "
         f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on a "
-        f"Gaussian-derivative filter bank (σ = {_fmt(cascade['sigmas'])} px; {_fmt(cascade['coarse_sigmas'])} px at "
+        f"Gaussian-derivative filter bank (σ = {_sigmas_text(cascade)} px; {_fmt(cascade['coarse_sigmas'])} px at "
         f"coarser levels) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
         f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile, "
         f"seed {cascade['seed']}). Annotated tiles of {settings['tiles']['size']} px were split per dataset into "

@@ -13,6 +13,7 @@ from scipy import ndimage
 from sklearn.metrics import f1_score, precision_recall_curve
 
 from tessera.cascade.classifiers import CHUNK_ROWS, KINDS, linear_first_step
+from tessera.cascade.features import DEFAULT_SIGMAS, DEFAULT_SIGMAS_3D
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import (
     BAND_ROWS,
@@ -606,11 +607,16 @@ def test_config_schema_states_the_limits_the_code_enforces():
     # the schema's defaults are the spec's defaults (the ladder's keys are no node setting;
     # tests/test_ladder.py checks them against tessera.ladder); voxel_aspect is unset in the
     # config (read from the data, tests/test_train_3d_job.py), the spec's 1.0 is used in 2D only;
-    # dims is auto in the config, decided from the data (same test file)
+    # dims is auto in the config, decided from the data (same test file); sigmas is unset in
+    # both, and the spec takes the default of its dims
     defaults = CascadeSpec().to_dict()
     assert cascade["dims"]["default"] == "auto"
+    assert cascade["sigmas"]["default"] is None
+    assert CascadeSpec(dims=2).sigmas == DEFAULT_SIGMAS
+    assert CascadeSpec(dims=3).sigmas == DEFAULT_SIGMAS_3D
+    assert CascadeSpec(dims=3, sigmas=(1.0, 2.0)).sigmas == (1.0, 2.0)
     for name, prop in cascade.items():
-        if name not in LADDER_DEFAULTS and name not in ("voxel_aspect", "dims"):
+        if name not in LADDER_DEFAULTS and name not in ("voxel_aspect", "dims", "sigmas"):
             assert prop["default"] == defaults[name], name
     assert cascade["voxel_aspect"]["default"] is None
 

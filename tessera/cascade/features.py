@@ -19,9 +19,23 @@ from tessera.cascade.smoothing import gaussian_smooth, kernel_radius
 from tessera.errors import TesseraInputError
 from tessera.spacing import normalize_spacing
 
-# The coarser levels' maps carry the wide context, so the finest level stops at σ 7: a σ of 10
-# there cost a fifth of prediction and gave no held-out gain (README, accuracy section).
+# In 2D the coarser levels' maps carry the wide context, so the finest level stops at σ 7: a σ
+# of 10 there cost a fifth of prediction and gave no held-out gain (README, accuracy section).
 DEFAULT_SIGMAS = (0.7, 1.6, 3.5, 7.0)
+# In 3D the coarser levels stay 2D, so the finest level's bank is the only wide context across
+# sections: it keeps σ 10 (without it, a FIB-SEM-like study split more organelles in two).
+DEFAULT_SIGMAS_3D = (0.7, 1.6, 3.5, 5.0, 10.0)
+
+
+def default_sigmas(dims):
+    """The finest level's filter-bank scales a cascade of `dims` (2 or 3) uses by default.
+
+    Examples
+    --------
+    >>> default_sigmas(2), default_sigmas(3)
+    ((0.7, 1.6, 3.5, 7.0), (0.7, 1.6, 3.5, 5.0, 10.0))
+    """
+    return DEFAULT_SIGMAS_3D if dims == 3 else DEFAULT_SIGMAS
 
 
 def _check_sigmas(sigmas):

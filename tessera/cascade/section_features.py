@@ -19,7 +19,7 @@ import math
 import numpy as np
 
 from tessera.cascade.features import (
-    DEFAULT_SIGMAS,
+    DEFAULT_SIGMAS_3D,
     _ChannelWriter,
     _check_sigmas,
     _context_slices,
@@ -51,7 +51,7 @@ def _reach(sigmas, ratios):
     return kernel_radius(max(sigmas) * ratios[0]) + _Z_DIFFERENCE_REACH
 
 
-def section_bank_z_reach(sigmas=DEFAULT_SIGMAS, *, spacing):
+def section_bank_z_reach(sigmas=DEFAULT_SIGMAS_3D, *, spacing):
     """Sections on each side of the centre that :func:`section_filter_bank_3d` reads.
 
     The Gaussian kernel of the largest σ reaches ``int(4 σ_z + 0.5)`` sections along z, with
@@ -214,7 +214,7 @@ def _scale_channels_3d(channels, planes, following, s, inplane, context=(0, 0)):
     channels.extend(symmetric_eigenvalues_3x3(*tensor))
 
 
-def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS, spacing, halo=0):
+def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS_3D, spacing, halo=0):
     """3D Gaussian-derivative features of the centre section of a stack.
 
     Parameters

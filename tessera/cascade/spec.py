@@ -26,7 +26,7 @@ import math
 from dataclasses import asdict, dataclass, field
 
 from tessera.cascade.classifiers import KINDS
-from tessera.cascade.features import DEFAULT_SIGMAS, feature_radius
+from tessera.cascade.features import default_sigmas, feature_radius
 from tessera.errors import TesseraInputError
 from tessera.spacing import near_isotropic
 
@@ -56,8 +56,9 @@ class CascadeSpec:
     ----------
     stages, levels : int
         S ≥ 1 and L ≥ 0 (limits in ``LIMITS``).
-    sigmas : tuple of float
-        Filter-bank scales at full resolution (pixels of the working level).
+    sigmas : tuple of float, optional
+        Filter-bank scales at full resolution (pixels of the working level). Unset: those of
+        :func:`~tessera.cascade.features.default_sigmas` for `dims`.
     coarse_sigmas : tuple of float
         Scales at levels ≥ 1 (pixels of that level; the level itself supplies the larger scale).
     stencil_radii : tuple of int
@@ -98,7 +99,7 @@ class CascadeSpec:
 
     stages: int = 2
     levels: int = 2
-    sigmas: tuple = DEFAULT_SIGMAS
+    sigmas: tuple = None
     coarse_sigmas: tuple = (0.7, 1.6, 3.5)
     stencil_radii: tuple = (1, 2, 4, 8)
     pooling: str = "mean"
@@ -142,6 +143,8 @@ class CascadeSpec:
                 f"stencil_radii must be integers >= {low} and <= {high}, got {self.stencil_radii!r}"
             )
         object.__setattr__(self, "stencil_radii", radii)
+        if self.sigmas is None:  # unset: the default of 2D or 3D features
+            object.__setattr__(self, "sigmas", default_sigmas(self.dims))
         object.__setattr__(self, "sigmas", tuple(float(s) for s in self.sigmas))
         object.__setattr__(self, "coarse_sigmas", tuple(float(s) for s in self.coarse_sigmas))
         object.__setattr__(self, "classifier_options", dict(self.classifier_options))
