@@ -615,6 +615,8 @@ def test_config_schema_states_the_limits_the_code_enforces():
     assert CascadeSpec(dims=2).sigmas == DEFAULT_SIGMAS
     assert CascadeSpec(dims=3).sigmas == DEFAULT_SIGMAS_3D
     assert CascadeSpec(dims=3, sigmas=(1.0, 2.0)).sigmas == (1.0, 2.0)
+    # the config's unset value reaches the job training a node as None
+    assert spec_from_settings({"sigmas": None, "dims": 3}, stages=1).sigmas == DEFAULT_SIGMAS_3D
     for name, prop in cascade.items():
         if name not in LADDER_DEFAULTS and name not in ("voxel_aspect", "dims", "sigmas"):
             assert prop["default"] == defaults[name], name

@@ -180,7 +180,7 @@ class CascadeSpec:
     def from_dict(cls, data):
         data = dict(data)
         for key in ("sigmas", "coarse_sigmas", "stencil_radii"):
-            if key in data:
+            if data.get(key) is not None:  # unset sigmas stay None: the default of the dims
                 data[key] = tuple(data[key])
         try:
             return cls(**data)
