@@ -99,7 +99,7 @@ class CascadeSpec:
 
     stages: int = 2
     levels: int = 2
-    sigmas: tuple = None
+    sigmas: tuple | None = None
     coarse_sigmas: tuple = (0.7, 1.6, 3.5)
     stencil_radii: tuple = (1, 2, 4, 8)
     pooling: str = "mean"
