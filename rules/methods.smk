@@ -44,6 +44,9 @@ rule methods:
         objects_3d=expand(
             "results/study/{target}/evaluation/objects_3d.tsv", target=LABELLED_TARGETS
         ),
+        first_nodes=expand(
+            "results/study/{target}/cascade/stage1_level0.npz", target=BASE_TARGETS
+        ),
     output:
         report(
             "results/study/methods.md",

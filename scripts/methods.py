@@ -24,6 +24,7 @@ run_job(
     qc_tables=list(snakemake.input.qc),
     out_path=snakemake.output[0],
     ladder=dict(zip(snakemake.params.ladder_targets, snakemake.input.ladder, strict=True)),
+    first_nodes=dict(zip(targets, snakemake.input.first_nodes, strict=True)),
     objects_3d=dict(
         zip(snakemake.params.objects_3d_targets, snakemake.input.objects_3d, strict=True)
     ),

@@ -24,22 +24,31 @@ def _fmt(values):
     return ", ".join(f"{v:g}" for v in values)
 
 
-def _sigmas_text(cascade):
-    """The finest level's scales as used: unset ones follow the features' dims.
+def _bank_text(cascade):
+    """The finest level's filter bank as used: its dims and scales (unset scales follow dims).
 
     Examples
     --------
-    >>> _sigmas_text({"sigmas": [1, 2]}), _sigmas_text({"sigmas": None, "dims": 2})
-    ('1, 2', '0.7, 1.6, 3.5, 7')
-    >>> _sigmas_text({"sigmas": None, "dims": "auto"})
-    '0.7, 1.6, 3.5, 7 for 2D features, 0.7, 1.6, 3.5, 5, 10 for 3D features'
+    >>> _bank_text({"sigmas": [1, 2], "dims": 2})
+    'a 2D Gaussian-derivative filter bank of each section (σ = 1, 2 px'
+    >>> _bank_text({"sigmas": None, "dims": 3})
+    'a 3D Gaussian-derivative filter bank, round in nm (σ = 0.7, 1.6, 3.5, 5, 10 px'
+    >>> _bank_text({"sigmas": None, "dims": "auto"})
+    'a Gaussian-derivative filter bank (σ = 0.7, 1.6, 3.5, 7 px for 2D features, 0.7, 1.6, 3.5, 5, 10 px for 3D features'
     """
-    if cascade.get("sigmas") is not None:
-        return _fmt(cascade["sigmas"])
     dims = cascade.get("dims", 2)
+    kind = {
+        2: "a 2D Gaussian-derivative filter bank of each section",
+        3: "a 3D Gaussian-derivative filter bank, round in nm",
+    }.get(dims, "a Gaussian-derivative filter bank")
+    if cascade.get("sigmas") is not None:
+        return f"{kind} (σ = {_fmt(cascade['sigmas'])} px"
     if dims in (2, 3):
-        return _fmt(default_sigmas(dims))
-    return f"{_fmt(default_sigmas(2))} for 2D features, {_fmt(default_sigmas(3))} for 3D features"
+        return f"{kind} (σ = {_fmt(default_sigmas(dims))} px"
+    return (
+        f"{kind} (σ = {_fmt(default_sigmas(2))} px for 2D features, "
+        f"{_fmt(default_sigmas(3))} px for 3D features"
+    )
 
 
 def _ladder_clause(cascade):
@@ -102,8 +111,8 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"**{name.capitalize()}** were segmented at {settings['downsample']}× in-plane downsampling with a cascaded "
         f"hierarchical model (Seyedhosseini, Sajjadi & Tasdizen, ICCV 2013; Seyedhosseini & Tasdizen, TPAMI 2016) of "
         f"{cascade['stages']} stages × {cascade['levels']} levels{_ladder_clause(cascade)}, each node a "
-        f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on a "
-        f"Gaussian-derivative filter bank (σ = {_sigmas_text(cascade)} px; {_fmt(cascade['coarse_sigmas'])} px at "
+        f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on "
+        f"{_bank_text(cascade)}; {_fmt(cascade['coarse_sigmas'])} px in 2D at "
         f"coarser levels) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
         f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile, "
         f"seed {cascade['seed']}). Annotated tiles of {settings['tiles']['size']} px were split per dataset into "

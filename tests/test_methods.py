@@ -4,11 +4,20 @@ import hashlib
 import json
 import re
 
+import numpy as np
 import pandas as pd
 
+from tessera.cascade.api import (
+    CascadeSpec,
+    fit_cascade,
+    prepare_tile,
+    receptive_radius,
+    z_halo,
+)
 from tessera.io.digests import file_sha256
 from tessera.statistics import compare_conditions
 from tessera.workflow.files.comparison_table import write_comparison_table
+from tessera.workflow.files.node_model import write_node
 from tessera.workflow.files.qc_table import write_qc_table
 from tessera.workflow.jobs.audit import audit_job
 from tessera.workflow.jobs.checksum_inputs import checksum_inputs_job
@@ -25,7 +34,8 @@ def test_checksums_match_hashlib(tmp_path):
     assert (tmp_path / "inputs.sha256").read_text().startswith(hashlib.sha256(data).hexdigest())
 
 
-def test_methods_text_is_written_from_the_run(tmp_path):
+def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None):
+    """The methods text of a small run of one target, mitochondria, written from its files."""
     scores = tmp_path / "scores.tsv"
     pd.DataFrame(
         {
@@ -87,6 +97,7 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "folds": 3,
         "samples_per_tile": 100,
         "seed": 0,
+        **(cascade_changes or {}),
     }
     sections = {
         "ingest": {},
@@ -112,9 +123,15 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         [sums],
         [qc],
         out,
+        first_nodes=first_nodes,
     )
-    text = out.read_text()
+    return out.read_text()
+
+
+def test_methods_text_is_written_from_the_run(tmp_path):
+    text = _methods_of_a_run(tmp_path)
     for fact in (
+        "a 2D Gaussian-derivative filter bank of each section (σ = 0.7, 1.6 px; 0.7 px in 2D at",
         "F1 0.891",
         "Jaccard index 0.803",
         "(0.42)",
@@ -133,6 +150,30 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "validated against held-out annotation",
     ):
         assert fact in text, fact
+
+
+def test_methods_state_the_features_the_trained_model_used(tmp_path):
+    # dims auto and unset sigmas are decided when a node is trained: the text reads the model
+    spec = CascadeSpec(
+        stages=1, levels=0, dims=3, voxel_aspect=1.0, samples_per_tile=60, folds=2, seed=0
+    )
+    rng = np.random.default_rng(1)
+    reach = z_halo(spec)
+    radius = receptive_radius(spec)
+    truth = np.zeros((24, 24), np.uint8)
+    truth[6:16, 8:18] = 1
+    window = rng.normal(150, 10, (2 * reach + 1, 24 + 2 * radius, 24 + 2 * radius))
+    window[:, radius : radius + 24, radius : radius + 24] -= 60 * truth
+    tiles = [prepare_tile(spec, f"t{i}", window, truth, fold=i) for i in range(2)]
+    node = tmp_path / "stage1_level0.npz"
+    write_node(fit_cascade(spec, tiles, target="mitochondria")[(1, 0)], node)
+    text = _methods_of_a_run(
+        tmp_path,
+        cascade_changes={"dims": "auto", "sigmas": None},
+        first_nodes={"mitochondria": node},
+    )
+    # the 3D default scales (tessera.cascade.features.DEFAULT_SIGMAS_3D), not the config's
+    assert "a 3D Gaussian-derivative filter bank, round in nm (σ = 0.7, 1.6, 3.5, 5, 10 px;" in text
 
 
 def test_audit_manifest_and_ro_crate(tmp_path):

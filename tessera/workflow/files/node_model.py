@@ -1,7 +1,7 @@
 """A node's model file, ``results/study/<target>/cascade/stage<s>_level<l>.npz`` (a ladder rung
 with more levels than configured: ``cascade/levels<L>/stage<s>_level<l>.npz``): its one writer
 (rule train_node) and its one reader (train_node for the upstream nodes, predict_tiles,
-shard_plan, predict_shard and score_rung)."""
+shard_plan, predict_shard, score_rung and methods)."""
 
 import zipfile
 

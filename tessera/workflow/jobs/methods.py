@@ -5,6 +5,7 @@ from tessera.methods import methods_text
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
 from tessera.workflow.files.ladder import chosen_rung
+from tessera.workflow.files.node_model import read_node
 from tessera.workflow.files.object_table import read_object_settings
 from tessera.workflow.files.objects_3d import overall_objects_3d
 from tessera.workflow.files.qc_table import count_sections
@@ -23,6 +24,7 @@ def methods_job(
     out_path,
     objects_3d=None,
     ladder=None,
+    first_nodes=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
 
@@ -45,6 +47,10 @@ def methods_job(
     ladder : dict, optional
         Target → the ladder's choice table, for targets whose cascade size a ladder chose: the
         text states the chosen stages and levels, not the configured ones.
+    first_nodes : dict, optional
+        Target → its trained stage-1 level-0 node: the text states the features' dims and scales
+        that node was trained with (``dims: auto`` and unset ``sigmas`` are decided when a node
+        is trained; every node of a target shares them).
     """
     targets = dict(config_sections["targets"])
     for t, path in (ladder or {}).items():
@@ -52,6 +58,12 @@ def methods_job(
         targets[t] = {
             **targets[t],
             "cascade": {**targets[t]["cascade"], "stages": stages, "levels": levels},
+        }
+    for t, path in (first_nodes or {}).items():
+        spec = read_node(path, target=t).spec
+        targets[t] = {
+            **targets[t],
+            "cascade": {**targets[t]["cascade"], "dims": spec.dims, "sigmas": list(spec.sigmas)},
         }
     config_sections = {**config_sections, "targets": targets}
     # every dataset's settings file is read (a damaged one fails here); the text quotes the first
