@@ -22,6 +22,9 @@ into objects as the objects step does with its default settings (validation thre
 morphology, enclosed cavities filled, 26-connected, the default minimum volume), and matched one-to-one at IoU > 0.5 with
 the 26-connected components of the truth on the same sections (tessera.object_scores).
 
+``--orientations N`` trains every configuration on the training sections in N orientations
+(cascade.orientations; the default is the spec's).
+
 Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--classifier KIND]
 """
 
@@ -218,6 +221,9 @@ def main():
     parser.add_argument("--neighbours", type=int, default=1)
     parser.add_argument("--output-sigma", type=float, default=2.0)
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument(
+        "--orientations", type=int, default=CascadeSpec().orientations, help="cascade.orientations"
+    )
     args = parser.parse_args()
     if not (DATA / "raw").is_dir():
         raise SystemExit(f"{DATA} is not present; this benchmark needs the open VNC stack")
@@ -233,6 +239,7 @@ def main():
             samples_per_tile=args.samples,
             neighbours=args.neighbours,
             seed=args.seed,
+            orientations=args.orientations,
         )
         results[name], unsmoothed[name] = evaluate(
             spec, image, truth, threads=args.threads, output_sigma=args.output_sigma
@@ -267,6 +274,7 @@ def main():
             samples_per_tile=args.samples,
             neighbours=args.neighbours,
             seed=args.seed,
+            orientations=args.orientations,
         ),
         threads=args.threads,
         output_sigma=args.output_sigma,
@@ -287,6 +295,7 @@ def main():
             "classifier": args.classifier,
             "neighbours": args.neighbours,
             "seed": args.seed,
+            "orientations": args.orientations,
             "output_sigma": args.output_sigma,
             "vnc_mito": results,
             "vnc_mito_unsmoothed": unsmoothed,

@@ -29,6 +29,7 @@ from tessera.cascade.frame import (
     volume_room,
 )
 from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius, z_halo
+from tessera.cascade.orientations import ORIENTATION_COUNTS
 from tessera.cascade.predict import predict_frame, predict_section
 from tessera.cascade.spec import (
     LIMITS,
@@ -602,6 +603,7 @@ def test_config_schema_states_the_limits_the_code_enforces():
         assert items["exclusiveMinimum"] == 0 and items["maximum"] == MAX_SIGMA, name
     assert cascade["classifier"]["enum"] == list(KINDS)
     assert cascade["pooling"]["enum"] == list(POOLINGS)
+    assert cascade["orientations"]["enum"] == list(ORIENTATION_COUNTS)
     smoothing = target["output_smoothing_px"]
     assert (smoothing["minimum"], smoothing["maximum"]) == (0, MAX_OUTPUT_SIGMA)
     # the schema's defaults are the spec's defaults (the ladder's keys are no node setting;

@@ -24,6 +24,7 @@ from tessera.cascade.frame import (
     share_features,
 )
 from tessera.cascade.geometry import receptive_radius, z_halo
+from tessera.cascade.orientations import ORIENTATIONS, orient_plane, orient_room
 from tessera.cascade.spec import ancestors, node_settings, nodes
 from tessera.cascade.store import MODEL_FORMAT, NodeModel
 from tessera.errors import TesseraInputError
@@ -133,24 +134,53 @@ def lazy_tile(spec, tile_id, read_image, labels, *, fold, final=None, room=None)
     return TrainingTile(tile_id, None, labels, int(fold), room, make)
 
 
+def _oriented_frame(spec, node, tile, orientation):
+    """A frame of `tile` turned to `orientation`, for `node`, and its turned labels."""
+    frame = tile.frame
+    h, w = tile.labels.shape
+    halo = receptive_radius(spec, node)
+    cut = frame.halo - halo
+    z_cut = frame.z_halo - z_halo(spec, node)
+    # the frame's image is the tile's window as given, then the core's extension (node_tile)
+    window = frame.stack[
+        z_cut : frame.stack.shape[0] - z_cut, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo
+    ]
+    labels = orient_plane(tile.labels, orientation)
+    room = orient_room(tile.room, orientation)
+    turned = make_frame(
+        spec, orient_plane(window, orientation), labels.shape, final=node, room=room
+    )
+    return turned, labels
+
+
 def _training_rows(spec, node, tiles, upstream):
-    """Sampled feature rows of `node` over the tiles: (X, labels y, fold of each row g)."""
+    """Sampled feature rows of `node` over the tiles: (X, labels y, fold of each row g).
+
+    With ``spec.orientations`` > 1 every tile also gives rows of its turned copies (each with
+    its own image features and earlier maps), ``samples_per_tile`` shared among them.
+    """
     level = node[1]
+    per_orientation = max(1, spec.samples_per_tile // spec.orientations)
     rows, ys, groups = [], [], []
     for tile in tiles:
-        frame = tile.frame
-        labels = level_labels(tile.labels, level, frame.core_shape)
-        pick = _sample_rows(
-            labels,
-            spec.samples_per_tile,
-            np.random.default_rng(_tile_seed(spec, node, tile.tile_id)),
-        )
-        if pick.size:
-            ensure_maps(frame, node, upstream, tile.fold)
-            rows.append(node_rows(frame, node, 0, pick))
-            ys.append(labels.ravel()[pick])
-            groups.append(np.full(pick.size, tile.fold))
-        del frame
+        for k, orientation in enumerate(ORIENTATIONS[: spec.orientations]):
+            if k == 0:
+                frame, tile_labels, name = tile.frame, tile.labels, tile.tile_id
+            else:
+                frame, tile_labels = _oriented_frame(spec, node, tile, orientation)
+                name = f"{tile.tile_id}:orientation{k}"
+            labels = level_labels(tile_labels, level, frame.core_shape)
+            pick = _sample_rows(
+                labels,
+                per_orientation,
+                np.random.default_rng(_tile_seed(spec, node, name)),
+            )
+            if pick.size:
+                ensure_maps(frame, node, upstream, tile.fold)
+                rows.append(node_rows(frame, node, 0, pick))
+                ys.append(labels.ravel()[pick])
+                groups.append(np.full(pick.size, tile.fold))
+            del frame
         tile.release()  # its rows are taken: a lazy tile's window and maps are not needed again
     X = np.concatenate(rows)
     y = np.concatenate(ys).astype(np.uint8)

@@ -27,6 +27,7 @@ from dataclasses import asdict, dataclass, field
 
 from tessera.cascade.classifiers import KINDS
 from tessera.cascade.features import default_sigmas, feature_radius
+from tessera.cascade.orientations import ORIENTATION_COUNTS
 from tessera.errors import TesseraInputError
 from tessera.spacing import near_isotropic
 
@@ -91,6 +92,12 @@ class CascadeSpec:
         (:func:`tessera.cascade.section_features.section_filter_bank_3d`); coarser levels pool
         in plane only and keep the 2D bank of the section. ``neighbours`` must then be 0 (the
         3D bank already reads the sections around).
+    orientations : {1, 2, 4, 8}
+        Orientations of the pixel grid each training tile is seen in (identity; then transpose,
+        the two flips, the other turns: :data:`tessera.cascade.orientations.ORIENTATIONS`).
+        ``samples_per_tile`` is shared among them, so the rows a node is fitted on stay as
+        many; each orientation's image features and earlier maps are computed on the turned
+        tile. Prediction does not change. 1 (the default) trains on the tiles as they are.
     voxel_aspect : float
         The working level's z spacing over its in-plane spacing (> 0), with ``dims`` = 3: the
         3D bank's σ along z is scaled by it (σ counts in pixels of the finest axis). Not used in
@@ -112,6 +119,7 @@ class CascadeSpec:
     seed: int = 0
     dims: int = 2
     voxel_aspect: float = 1.0
+    orientations: int = 1
 
     def __post_init__(self):
         def fail(msg):
@@ -136,6 +144,9 @@ class CascadeSpec:
         check_int("context_sections")
         check_int("seed")
         self._check_dims(fail, check_int)
+        if isinstance(self.orientations, bool) or self.orientations not in ORIENTATION_COUNTS:
+            counts = ", ".join(str(n) for n in ORIENTATION_COUNTS)
+            fail(f"orientations must be one of {counts}, got {self.orientations!r}")
         radii = tuple(self.stencil_radii)
         low, high = STENCIL_RADIUS_LIMITS
         if not radii or any(not isinstance(r, int) or not low <= r <= high for r in radii):
@@ -251,8 +262,8 @@ def node_settings(settings):
     """The cascade settings a node depends on: every setting but the number of stages.
 
     A node does not depend on how many stages follow it, so raising the number of stages keeps
-    the earlier nodes valid. ``context_sections`` at 0, ``dims`` at 2 and ``voxel_aspect`` at 1.0
-    (or with ``dims`` 2, where it is not used) are left out as well: models made before these
+    the earlier nodes valid. ``context_sections`` at 0, ``orientations`` at 1, ``dims`` at 2 and
+    ``voxel_aspect`` at 1.0 (or with ``dims`` 2, where it is not used) are left out as well: models made before these
     settings existed record no such keys, and stay the same files. This is what a node's model
     records (``meta["spec"]``) and what a workflow passes to the job training a node.
     `settings` is a :class:`CascadeSpec`, or a mapping of settings such as a configuration's
@@ -275,6 +286,8 @@ def node_settings(settings):
     out.pop("stages", None)
     if out.get("context_sections") == 0:
         out.pop("context_sections")
+    if out.get("orientations") == 1:
+        out.pop("orientations")
     if out.get("dims", 2) == 2:
         out.pop("dims", None)
         out.pop("voxel_aspect", None)
