@@ -51,6 +51,22 @@ def _bank_text(cascade):
     )
 
 
+def _orientations_text(orientations):
+    """How many orientations of each training tile were used, when more than one.
+
+    Examples
+    --------
+    >>> _orientations_text(1), _orientations_text(4)
+    ('', ' shared among 4 orientations of the tile (transposed and flipped)')
+    """
+    if orientations == 1:
+        return ""
+    turns = {2: "transposed", 4: "transposed and flipped"}.get(
+        orientations, "every flip and quarter turn"
+    )
+    return f" shared among {orientations} orientations of the tile ({turns})"
+
+
 def _ladder_clause(cascade):
     """How the cascade's size was chosen, when a ladder chose it (tessera.ladder)."""
     if cascade.get("mode") != "ladder":
@@ -114,7 +130,8 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on "
         f"{_bank_text(cascade)}; {_fmt(cascade['coarse_sigmas'])} px in 2D at "
         f"coarser levels) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
-        f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile, "
+        f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile"
+        f"{_orientations_text(cascade.get('orientations', 1))}, "
         f"seed {cascade['seed']}). Annotated tiles of {settings['tiles']['size']} px were split per dataset into "
         f"training, validation and test tiles at least {settings['split']['guard_sections']} sections apart. The "
         f"probability threshold ({val['threshold']:.2f}) was chosen for the best F1 on {int(val['tiles'])} validation "

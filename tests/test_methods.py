@@ -440,3 +440,9 @@ def test_methods_say_flagged_sections_were_kept_when_exclusion_is_off(tmp_path):
         "QC flagged 2 of 4 sections (1 blurred, 1 intensity), which were kept (exclusion "
         "switched off)." in text
     )
+
+
+def test_methods_say_when_tiles_were_trained_in_several_orientations(tmp_path):
+    assert "orientations" not in _methods_of_a_run(tmp_path)
+    text = " ".join(_methods_of_a_run(tmp_path, cascade_changes={"orientations": 4}).split())
+    assert "(100 class-balanced pixels per tile shared among 4 orientations of the tile" in text
