@@ -114,6 +114,12 @@ def test_defaults_are_filled_from_the_schema(schemas):
             lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.5, 0.5]),
             r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short",
         ),
+        (
+            # checked when the config loads, not when the first ingest job runs
+            lambda c: c["ingest"].update(percentiles=[99.9, 0.1]),
+            r"key ingest.percentiles: \[99.9, 0.1\]: expected the lower percentile first and "
+            r"below the upper one",
+        ),
     ],
 )
 def test_bad_config_values_name_the_key(schemas, shipped_config, edit, message):
@@ -253,6 +259,13 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
             r"row 2: column roi_mask: file or folder 'cells.tif' not found",
         ),
         ([], "the sheet has no dataset rows"),
+        (
+            # the animal is the unit of the statistics: a typo in subject would otherwise
+            # surface only when the statistics job runs, after every other job
+            [GOOD, "a2\tcold\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"datasets.tsv: column subject: animal 'm1' appears under conditions \['ctrl', "
+            r"'cold'\] \(rows 2, 3\); expected one condition per animal",
+        ),
     ],
 )
 def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, message):
@@ -260,6 +273,60 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
     with pytest.raises(TesseraInputError, match=message) as info:
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert str(path) in str(info.value)
+
+
+def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas):
+    rows = [GOOD, "a2\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"]
+    sheet = load_datasets(
+        _sheet(tmp_path, *rows), schemas / "datasets.schema.yaml", base_dir=tmp_path
+    )
+    assert list(sheet["subject"]) == ["m1", "m1"]
+
+
+@pytest.mark.parametrize("separator", [",", ";"])
+def test_a_sheet_separated_by_commas_or_semicolons_is_named(tmp_path, schemas, separator):
+    # Spreadsheet programs export "CSV" with commas, or semicolons where the comma is the
+    # decimal mark (common practice); read as tab-separated, the header is one long column.
+    _sheet(tmp_path)
+    path = tmp_path / "datasets.tsv"
+    path.write_text(HEADER.replace("\t", separator) + "\n" + GOOD.replace("\t", separator) + "\n")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: header: one column 'dataset{separator}condition")
+    assert "expected columns separated by tabs" in message
+    assert f"found them separated by {separator!r}: save the sheet as tab-separated text" in message
+    assert "\n" not in message
+
+
+@pytest.mark.parametrize(
+    ("row", "message"),
+    [
+        (
+            "a1\tctrl\tm1\tslices\ttiff_stack\t40\t8\t8\t",
+            "row 2: column path: 'slices' is a folder; format tiff_stack is one file; a folder "
+            "of section images is format slice_folder",
+        ),
+        ("a1\tctrl\tm1\tslices\tmrc\t40\t8\t8\t", "column path: 'slices' is a folder; format mrc"),
+        (
+            "a1\tctrl\tm1\tstack.tif\tslice_folder\t40\t8\t8\t",
+            "row 2: column path: 'stack.tif' is a file; format slice_folder is a folder",
+        ),
+        (
+            "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tslices",
+            "row 2: column roi_mask: 'slices' is a folder; a region mask (a label stack) is one file",
+        ),
+    ],
+)
+def test_a_path_of_the_wrong_kind_for_its_format_is_named(tmp_path, schemas, row, message):
+    # Without this check the ingest job failed with the reader's own words ("Is a directory")
+    # after the run had started.
+    (tmp_path / "slices").mkdir()
+    path = _sheet(tmp_path, row)
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value).startswith(f"{path}, ")
+    assert message in str(info.value)
 
 
 def test_unknown_sheet_column_is_refused(tmp_path, schemas):

@@ -108,6 +108,13 @@ def load_config(config, schema_path, *, source="config/config.yaml"):
 
 def _check_related_keys(config, source):
     """Checks between keys that a JSON Schema cannot express."""
+    low, high = (config.get("ingest") or {}).get("percentiles", (0, 100))
+    if not low < high:
+        raise TesseraInputError(
+            f"key ingest.percentiles: [{low}, {high}]: expected the lower percentile first "
+            "and below the upper one",
+            source=source,
+        )
     for name, target in (config.get("targets") or {}).items():
         objects = target.get("objects") or {}
         high, low = objects.get("high"), objects.get("low")
@@ -217,6 +224,7 @@ def _sheet_records(sheet_path):
     while header and not header[-1].strip():
         header = header[:-1]
     header = [c.strip() for c in header]
+    _check_separator(header, sheet_path)
     repeated = sorted({c for c in header if header.count(c) > 1})
     if repeated:
         raise TesseraInputError(
@@ -234,6 +242,33 @@ def _sheet_records(sheet_path):
         cells = cells[: len(header)] + [""] * (len(header) - len(cells))
         records.append((line, dict(zip(header, cells, strict=True))))
     return records
+
+
+# Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
+# semicolon where the comma is the decimal mark)
+_OTHER_SEPARATORS = (",", ";")
+
+
+def _check_separator(header, sheet_path):
+    """Refuse a header read as one column that another separator than tab splits into several.
+
+    Examples
+    --------
+    >>> _check_separator(["dataset", "condition"], "d.tsv")
+    >>> _check_separator(["dataset,condition,subject"], "d.tsv")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: d.tsv: header: one column 'dataset,condition,subject'; expected columns separated by tabs ...
+    """
+    if len(header) != 1:
+        return
+    for separator in _OTHER_SEPARATORS:
+        if separator in header[0]:
+            raise TesseraInputError(
+                f"header: one column {header[0]!r}; expected columns separated by tabs "
+                f"(dataset, condition, subject, path, format, ...), found them separated by "
+                f"{separator!r}: save the sheet as tab-separated text",
+                source=sheet_path,
+            )
 
 
 def load_datasets(
@@ -283,7 +318,7 @@ def load_datasets(
     records = _sheet_records(sheet_path)
     if not records:
         raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
-    rows = []
+    rows, lines = [], []
     for line, raw in records:
         row_name = f"{sheet_path}, row {line}"
         record = {k: v.strip() for k, v in raw.items()}
@@ -300,18 +335,40 @@ def load_datasets(
                 )
         validate(record, schema, source=row_name)
         rows.append(record)
+        lines.append(line)
     frame = pd.DataFrame(rows, dtype=object)  # keep None for blank cells (no NaN)
     duplicated = frame["dataset"][frame["dataset"].duplicated()].unique()
     if len(duplicated):
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
         )
+    _check_one_condition_per_subject(frame, lines, sheet_path)
     roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
-    _check_paths(frame, sheet_path, Path(base_dir), generated_dir, roots)
+    _check_paths(frame, lines, sheet_path, Path(base_dir), generated_dir, roots)
     return frame.set_index("dataset", drop=False)
 
 
+def _check_one_condition_per_subject(frame, lines, sheet_path):
+    """Refuse an animal (column subject) that appears under more than one condition.
+
+    The animal is the unit of the statistics and belongs to one group; several datasets of one
+    animal are fine. Usually a mistyped subject id.
+    """
+    for subject, rows in frame.groupby("subject", sort=False).groups.items():
+        conditions = list(dict.fromkeys(frame.loc[rows, "condition"]))
+        if len(conditions) > 1:
+            where = ", ".join(str(lines[i]) for i in rows)
+            raise TesseraInputError(
+                f"column subject: animal {subject!r} appears under conditions {conditions} "
+                f"(rows {where}); expected one condition per animal (a mistyped subject id?)",
+                source=sheet_path,
+            )
+
+
 SHEET_PATH_COLUMNS = ("path", "roi_mask")
+# Formats whose path is one file, and those whose path is a folder
+FILE_FORMATS = ("tiff_stack", "mrc", "hdf5")
+FOLDER_FORMATS = ("slice_folder", "n5")
 
 
 def allowed_roots(sheet_path, *, base_dir=".", data_roots=()):
@@ -331,23 +388,39 @@ def allowed_roots(sheet_path, *, base_dir=".", data_roots=()):
     return list(dict.fromkeys(roots))  # unique, first mention first
 
 
-def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
+def _check_paths(frame, lines, sheet_path, base_dir, generated_dir, roots):
     generated = None if generated_dir is None else (base_dir / generated_dir).resolve()
-    for i, row in enumerate(frame.to_dict(orient="records")):
+    for line, row in zip(lines, frame.to_dict(orient="records"), strict=True):
         for column in SHEET_PATH_COLUMNS:
             value = row.get(column)
             if value is None:
                 continue
             full = _check_inside(
-                value, base_dir, roots, source=f"{sheet_path}, row {i + 2}, column {column}"
+                value, base_dir, roots, source=f"{sheet_path}, row {line}, column {column}"
             )
             if generated is not None and full.is_relative_to(generated):
                 continue
             if not full.exists():
                 raise TesseraInputError(
                     f"column {column}: file or folder {value!r} not found",
-                    source=f"{sheet_path}, row {i + 2}",
+                    source=f"{sheet_path}, row {line}",
                 )
+            problem = _kind_problem(full, row["format"] if column == "path" else None)
+            if problem:
+                raise TesseraInputError(
+                    f"column {column}: {value!r} is {problem}", source=f"{sheet_path}, row {line}"
+                )
+
+
+def _kind_problem(path, fmt):
+    """What is wrong with `path` being a file or a folder for format `fmt` (None: a mask file)."""
+    if path.is_dir() and fmt in (*FILE_FORMATS, None):
+        what = "format " + fmt if fmt else "a region mask (a label stack)"
+        hint = "; a folder of section images is format slice_folder" if fmt else ""
+        return f"a folder; {what} is one file{hint}"
+    if not path.is_dir() and fmt in FOLDER_FORMATS:
+        return f"a file; format {fmt} is a folder"
+    return None
 
 
 def _check_inside(value, base_dir, roots, *, source):
