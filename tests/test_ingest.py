@@ -15,6 +15,7 @@ from tessera.errors import TesseraInputError
 from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
 from tessera.io.stacks import open_stack
+from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.qc_table import excluded_sections, read_qc_table
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.section_qc import section_qc_job
@@ -278,6 +279,32 @@ def test_ome_tiff_cut_short_is_refused(tmp_path):
         _ingest(src, tmp_path)
     message = _one_line_and_nothing_written(info, src, tmp_path, before)
     assert "invalid value offset" in message
+
+
+def test_one_bit_mask_tiff_is_read_not_refused_as_damaged(tmp_path):
+    # A bilevel (1 bit per pixel) page packs 8 pixels in a byte, each row starting on a byte
+    # boundary (TIFF 6.0 specification, section 9): 13 rows of 21 pixels take 13 * 3 bytes,
+    # not 13 * 21. Label volumes may be such masks (> 0 = target).
+    mask = np.random.default_rng(2).random((3, 13, 21)) > 0.5
+    src = tmp_path / "mask.tif"
+    tifffile.imwrite(src, mask, photometric="minisblack")
+    with tifffile.TiffFile(src) as tif:
+        assert tif.pages[0].bitspersample == 1
+        assert sum(tif.pages[0].databytecounts) == 13 * 3
+    np.testing.assert_array_equal(read_label_volume(src, mask.shape), mask)
+
+
+def test_one_bit_page_storing_too_few_bytes_is_refused(tmp_path):
+    src = tmp_path / "mask.tif"
+    tifffile.imwrite(src, np.ones((2, 13, 21), bool), photometric="minisblack", contiguous=False)
+    with tifffile.TiffFile(src, mode="r+b") as tif:
+        tif.pages[1].tags["StripByteCounts"].overwrite(20)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"page 1 stores 20 bytes of pixels, expected at least 39 for an uncompressed 13 x "
+        r"21 bool plane \(truncated or damaged\?\)",
+    ):
+        read_label_volume(src, (2, 13, 21))
 
 
 def test_tiff_losing_its_last_bytes_is_refused(tmp_path):

@@ -354,7 +354,7 @@ def _check_extents(tif, pages, path):
             for tag in page.tags.values()
             if tag.valuebytecount > fmt.tagoffsetthreshold  # stored outside the directory
         )
-        need = page.size * page.dtype.itemsize if page.compression == 1 else 0
+        need = _plane_bytes(page) if page.compression == 1 else 0
         total = 0
         for offset, count in zip(page.dataoffsets, page.databytecounts, strict=True):
             if count == 0:
@@ -385,6 +385,23 @@ def _check_extents(tif, pages, path):
             )
         if reach is None or end > reach[0]:
             reach = (end, what)
+
+
+def _plane_bytes(page):
+    """Bytes of an uncompressed greyscale page: rows of fewer than 8 bits per pixel (1-bit
+    bilevel masks) are packed, each row starting on a byte boundary (TIFF 6.0 specification,
+    section 9: bilevel images).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> _plane_bytes(SimpleNamespace(shape=(3, 10), bitspersample=1))
+    6
+    >>> _plane_bytes(SimpleNamespace(shape=(3, 10), bitspersample=16))
+    60
+    """
+    rows, columns = page.shape
+    return rows * math.ceil(columns * page.bitspersample / 8)
 
 
 def read_checked_page(tif, z, path):
