@@ -10,6 +10,7 @@ import yaml
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
     check_annotated_datasets,
+    check_annotation_files,
     check_config_paths,
     config_paths,
     load_config,
@@ -549,6 +550,49 @@ def test_a_labels_template_is_checked_for_every_dataset(layout):
         check_config_paths(config, ["a1", "a2"], base_dir=project)
     config["data_roots"] = ["../mnt/em"]  # relative to the project folder
     check_config_paths(config, ["a1", "a2"], base_dir=project)
+
+
+def test_a_label_volume_missing_for_an_annotated_dataset_is_named_with_its_key(tmp_path):
+    # Before, Snakemake reported the missing input of rule sample_tiles, without the config key.
+    (tmp_path / "truth").mkdir()
+    (tmp_path / "truth" / "a1.tif").write_bytes(b"")
+    config = {
+        "targets": {
+            "mito": {
+                "annotations": {"labels": "truth/{dataset}.tif"},
+                "annotated_datasets": None,
+            }
+        }
+    }
+    with pytest.raises(TesseraInputError) as info:
+        check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    assert str(info.value) == (
+        "config/config.yaml, key targets.mito.annotations.labels: 'truth/a2.tif' (dataset a2) "
+        "not found; expected a multi-page TIFF for every dataset the target is annotated on (or "
+        "name the others in targets.mito.annotated_datasets)"
+    )
+    (tmp_path / "truth" / "a2.tif").mkdir()
+    with pytest.raises(TesseraInputError, match=r"'truth/a2.tif' \(dataset a2\) is a folder"):
+        check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    # a dataset the target is not annotated on needs no volume
+    config["targets"]["mito"]["annotated_datasets"] = ["a1"]
+    check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    # nor do the volumes the demo rule renders
+    config["targets"]["mito"]["annotated_datasets"] = None
+    config["targets"]["mito"]["annotations"]["labels"] = "demo/data/{dataset}/truth.tif"
+    check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path, generated_dir="demo/data")
+
+
+def test_an_instance_volume_missing_is_named_with_its_key(tmp_path):
+    (tmp_path / "labels.tif").write_bytes(b"")
+    annotations = {"labels": "labels.tif", "instances": "{dataset}_instances.tif"}
+    config = {"targets": {"mito": {"annotations": annotations}}}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key targets.mito.annotations.instances: 'a1_instances.tif' \(dataset a1\) not "
+        r"found; expected a multi-page TIFF",
+    ):
+        check_annotation_files(config, ["a1"], base_dir=tmp_path)
 
 
 def test_shipped_config_paths_lie_inside_the_project(repo, schemas, shipped_config):

@@ -489,6 +489,51 @@ def check_config_paths(config, dataset_ids, *, base_dir=".", source="config/conf
         _check_inside(value, base_dir, roots, source=f"{source}, key {key}")
 
 
+def check_annotation_files(
+    config, dataset_ids, *, base_dir=".", generated_dir=None, source="config/config.yaml"
+):
+    """Refuse a label or instance volume missing for a dataset that a target is annotated on.
+
+    Checked when the config loads, so a missing volume is named with its config key before any
+    job runs, instead of Snakemake's missing-input report once the plan is made.
+
+    Parameters
+    ----------
+    config : dict
+        The validated config (``targets`` with ``annotations`` and ``annotated_datasets``).
+    dataset_ids : sequence of str
+        The sheet's datasets; a target's ``annotated_datasets`` (None = all) picks among them.
+    base_dir : str or Path, optional
+        The project folder relative paths start from.
+    generated_dir : str or Path, optional
+        Paths under this folder are made by the workflow (the demo study) and need not exist.
+    source : str, optional
+        The config file, named in the error.
+    """
+    base = Path(base_dir)
+    generated = None if generated_dir is None else (base / generated_dir).resolve()
+    for name, target in (config.get("targets") or {}).items():
+        annotations = target.get("annotations") or {}
+        chosen = target.get("annotated_datasets")
+        datasets = [d for d in dataset_ids if chosen is None or d in chosen]
+        for field in ("labels", "instances"):
+            if field not in annotations:
+                continue
+            for dataset in datasets:
+                value = annotations[field].format(dataset=dataset)
+                full = (base / value).resolve()
+                if generated is not None and full.is_relative_to(generated):
+                    continue
+                if not full.is_file():
+                    found = "is a folder" if full.is_dir() else "not found"
+                    raise TesseraInputError(
+                        f"{value!r} (dataset {dataset}) {found}; expected a multi-page TIFF for "
+                        f"every dataset the target is annotated on (or name the others in "
+                        f"targets.{name}.annotated_datasets)",
+                        source=f"{source}, key targets.{name}.annotations.{field}",
+                    )
+
+
 def sheet_spacing(row):
     """The sheet's voxel size (z, y, x) in nm for one dataset row; None where blank."""
     return tuple(None if pd.isna(row[c]) else float(row[c]) for c in SHEET_NUMBER_COLUMNS)
