@@ -267,6 +267,12 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
             r"datasets.tsv: column subject: animal 'm1' appears under conditions \['ctrl', "
             r"'cold'\] \(rows 2, 3\); expected one condition per animal",
         ),
+        (
+            # each spelling would be a group of its own in the statistics
+            [GOOD, "a2\tCtrl\tm2\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"datasets.tsv: column condition: 'ctrl' \(rows 2\) and 'Ctrl' \(rows 3\) differ only "
+            r"in capitals or spaces; expected one spelling per condition",
+        ),
     ],
 )
 def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, message):

@@ -342,10 +342,31 @@ def load_datasets(
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
         )
+    _check_one_spelling_per_condition(frame, lines, sheet_path)
     _check_one_condition_per_subject(frame, lines, sheet_path)
     roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
     _check_paths(frame, lines, sheet_path, Path(base_dir), generated_dir, roots)
     return frame.set_index("dataset", drop=False)
+
+
+def _check_one_spelling_per_condition(frame, lines, sheet_path):
+    """Refuse conditions that differ only in capitals or inner spaces ('Cold', 'cold').
+
+    Each spelling would be a group of its own in the statistics, holding a part of the animals.
+    """
+    spellings = {}
+    for i, condition in enumerate(frame["condition"]):
+        spellings.setdefault(" ".join(condition.casefold().split()), {}).setdefault(
+            condition, []
+        ).append(str(lines[i]))
+    for found in spellings.values():
+        if len(found) > 1:
+            listed = " and ".join(f"{c!r} (rows {', '.join(rows)})" for c, rows in found.items())
+            raise TesseraInputError(
+                f"column condition: {listed} differ only in capitals or spaces; expected one "
+                "spelling per condition",
+                source=sheet_path,
+            )
 
 
 def _check_one_condition_per_subject(frame, lines, sheet_path):
