@@ -336,6 +336,27 @@ def test_a_path_of_the_wrong_kind_for_its_format_is_named(tmp_path, schemas, row
     assert message in str(info.value)
 
 
+@pytest.mark.parametrize(
+    ("header", "missing"),
+    [
+        (HEADER.replace("\tpath", ""), "path"),
+        (HEADER.replace("\tformat", ""), "format"),
+        # a sheet without its header line: the first row is read as the header
+        (GOOD, "dataset, condition, subject, path, format"),
+    ],
+)
+def test_a_header_without_a_required_column_is_named(tmp_path, schemas, header, missing):
+    # Before, each row was refused for lacking the key ("row 2: key (top level): 'path' is a
+    # required property"), or a missing header line read as repeated columns.
+    path = _sheet(tmp_path, GOOD, header=header)
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}: header: column(s) {missing} missing; expected a first line naming the columns, "
+        "among them dataset, condition, subject, path, format"
+    )
+
+
 def test_unknown_sheet_column_is_refused(tmp_path, schemas):
     path = _sheet(tmp_path, GOOD + "\tx", header=HEADER + "\tcolour")
     with pytest.raises(

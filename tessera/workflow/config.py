@@ -198,8 +198,10 @@ def _parse_number(text, *, where):
     return value
 
 
-def _sheet_records(sheet_path):
+def _sheet_records(sheet_path, *, required=()):
     """(line number, {column: text}) of every non-blank row of a tab-separated sheet.
+
+    The header must name every column of `required`.
 
     Empty cells after the last column (trailing tabs, as spreadsheet exports leave them) are
     dropped; a row with a filled cell beyond the header is refused, because reading it would
@@ -225,6 +227,13 @@ def _sheet_records(sheet_path):
         header = header[:-1]
     header = [c.strip() for c in header]
     _check_separator(header, sheet_path)
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise TesseraInputError(
+            f"header: column(s) {', '.join(missing)} missing; expected a first line naming the "
+            f"columns, among them {', '.join(required)}",
+            source=sheet_path,
+        )
     repeated = sorted({c for c in header if header.count(c) > 1})
     if repeated:
         raise TesseraInputError(
@@ -315,7 +324,7 @@ def load_datasets(
         source=f"{config_source}, key datasets",
     )
     schema = read_yaml(schema_path)
-    records = _sheet_records(sheet_path)
+    records = _sheet_records(sheet_path, required=schema.get("required", ()))
     if not records:
         raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
     rows, lines = [], []
