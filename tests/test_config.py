@@ -290,7 +290,7 @@ def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas)
     assert list(sheet["subject"]) == ["m1", "m1"]
 
 
-@pytest.mark.parametrize("separator", [",", ";"])
+@pytest.mark.parametrize("separator", [",", ";", " "])
 def test_a_sheet_separated_by_commas_or_semicolons_is_named(tmp_path, schemas, separator):
     # Spreadsheet programs export "CSV" with commas, or semicolons where the comma is the
     # decimal mark (common practice); read as tab-separated, the header is one long column.

@@ -254,8 +254,8 @@ def _sheet_records(sheet_path, *, required=()):
 
 
 # Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
-# semicolon where the comma is the decimal mark)
-_OTHER_SEPARATORS = (",", ";")
+# semicolon where the comma is the decimal mark), and the spaces a text editor may put for tabs
+_OTHER_SEPARATORS = (",", ";", " ")
 
 
 def _check_separator(header, sheet_path):
