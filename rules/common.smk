@@ -13,6 +13,7 @@ from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_setti
 from tessera.ladder import ladder_rungs, split_cascade_settings
 from tessera.workflow.config import (
     check_annotated_datasets,
+    check_annotation_files,
     check_config_paths,
     check_reference_condition,
     expand_variants,
@@ -45,6 +46,9 @@ try:
     )
     # label volumes, points sheets and painted masks are held to the same roots
     check_config_paths(config, DATASETS.index)
+    check_annotation_files(
+        config, DATASETS.index, generated_dir=DEMO_DIR if "demo" in config else None
+    )
     check_reference_condition(
         config["statistics"]["reference_condition"], list(DATASETS["condition"])
     )

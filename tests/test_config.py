@@ -10,6 +10,7 @@ import yaml
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
     check_annotated_datasets,
+    check_annotation_files,
     check_config_paths,
     config_paths,
     load_config,
@@ -113,6 +114,12 @@ def test_defaults_are_filled_from_the_schema(schemas):
         (
             lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.5, 0.5]),
             r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short",
+        ),
+        (
+            # checked when the config loads, not when the first ingest job runs
+            lambda c: c["ingest"].update(percentiles=[99.9, 0.1]),
+            r"key ingest.percentiles: \[99.9, 0.1\]: expected the lower percentile first and "
+            r"below the upper one",
         ),
     ],
 )
@@ -253,6 +260,19 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
             r"row 2: column roi_mask: file or folder 'cells.tif' not found",
         ),
         ([], "the sheet has no dataset rows"),
+        (
+            # the animal is the unit of the statistics: a typo in subject would otherwise
+            # surface only when the statistics job runs, after every other job
+            [GOOD, "a2\tcold\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"datasets.tsv: column subject: animal 'm1' appears under conditions \['ctrl', "
+            r"'cold'\] \(rows 2, 3\); expected one condition per animal",
+        ),
+        (
+            # each spelling would be a group of its own in the statistics
+            [GOOD, "a2\tCtrl\tm2\tstack.tif\ttiff_stack\t40\t8\t8\t"],
+            r"datasets.tsv: column condition: 'ctrl' \(rows 2\) and 'Ctrl' \(rows 3\) differ only "
+            r"in capitals or spaces; expected one spelling per condition",
+        ),
     ],
 )
 def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, message):
@@ -260,6 +280,81 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
     with pytest.raises(TesseraInputError, match=message) as info:
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert str(path) in str(info.value)
+
+
+def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas):
+    rows = [GOOD, "a2\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"]
+    sheet = load_datasets(
+        _sheet(tmp_path, *rows), schemas / "datasets.schema.yaml", base_dir=tmp_path
+    )
+    assert list(sheet["subject"]) == ["m1", "m1"]
+
+
+@pytest.mark.parametrize("separator", [",", ";", " "])
+def test_a_sheet_separated_by_commas_or_semicolons_is_named(tmp_path, schemas, separator):
+    # Spreadsheet programs export "CSV" with commas, or semicolons where the comma is the
+    # decimal mark (common practice); read as tab-separated, the header is one long column.
+    _sheet(tmp_path)
+    path = tmp_path / "datasets.tsv"
+    path.write_text(HEADER.replace("\t", separator) + "\n" + GOOD.replace("\t", separator) + "\n")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: header: one column 'dataset{separator}condition")
+    assert "expected columns separated by tabs" in message
+    assert f"found them separated by {separator!r}: save the sheet as tab-separated text" in message
+    assert "\n" not in message
+
+
+@pytest.mark.parametrize(
+    ("row", "message"),
+    [
+        (
+            "a1\tctrl\tm1\tslices\ttiff_stack\t40\t8\t8\t",
+            "row 2: column path: 'slices' is a folder; format tiff_stack is one file; a folder "
+            "of section images is format slice_folder",
+        ),
+        ("a1\tctrl\tm1\tslices\tmrc\t40\t8\t8\t", "column path: 'slices' is a folder; format mrc"),
+        (
+            "a1\tctrl\tm1\tstack.tif\tslice_folder\t40\t8\t8\t",
+            "row 2: column path: 'stack.tif' is a file; format slice_folder is a folder",
+        ),
+        (
+            "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tslices",
+            "row 2: column roi_mask: 'slices' is a folder; a region mask (a label stack) is one file",
+        ),
+    ],
+)
+def test_a_path_of_the_wrong_kind_for_its_format_is_named(tmp_path, schemas, row, message):
+    # Without this check the ingest job failed with the reader's own words ("Is a directory")
+    # after the run had started.
+    (tmp_path / "slices").mkdir()
+    path = _sheet(tmp_path, row)
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value).startswith(f"{path}, ")
+    assert message in str(info.value)
+
+
+@pytest.mark.parametrize(
+    ("header", "missing"),
+    [
+        (HEADER.replace("\tpath", ""), "path"),
+        (HEADER.replace("\tformat", ""), "format"),
+        # a sheet without its header line: the first row is read as the header
+        (GOOD, "dataset, condition, subject, path, format"),
+    ],
+)
+def test_a_header_without_a_required_column_is_named(tmp_path, schemas, header, missing):
+    # Before, each row was refused for lacking the key ("row 2: key (top level): 'path' is a
+    # required property"), or a missing header line read as repeated columns.
+    path = _sheet(tmp_path, GOOD, header=header)
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}: header: column(s) {missing} missing; expected a first line naming the columns, "
+        "among them dataset, condition, subject, path, format"
+    )
 
 
 def test_unknown_sheet_column_is_refused(tmp_path, schemas):
@@ -482,6 +577,49 @@ def test_a_labels_template_is_checked_for_every_dataset(layout):
         check_config_paths(config, ["a1", "a2"], base_dir=project)
     config["data_roots"] = ["../mnt/em"]  # relative to the project folder
     check_config_paths(config, ["a1", "a2"], base_dir=project)
+
+
+def test_a_label_volume_missing_for_an_annotated_dataset_is_named_with_its_key(tmp_path):
+    # Before, Snakemake reported the missing input of rule sample_tiles, without the config key.
+    (tmp_path / "truth").mkdir()
+    (tmp_path / "truth" / "a1.tif").write_bytes(b"")
+    config = {
+        "targets": {
+            "mito": {
+                "annotations": {"labels": "truth/{dataset}.tif"},
+                "annotated_datasets": None,
+            }
+        }
+    }
+    with pytest.raises(TesseraInputError) as info:
+        check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    assert str(info.value) == (
+        "config/config.yaml, key targets.mito.annotations.labels: 'truth/a2.tif' (dataset a2) "
+        "not found; expected a multi-page TIFF for every dataset the target is annotated on (or "
+        "name the others in targets.mito.annotated_datasets)"
+    )
+    (tmp_path / "truth" / "a2.tif").mkdir()
+    with pytest.raises(TesseraInputError, match=r"'truth/a2.tif' \(dataset a2\) is a folder"):
+        check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    # a dataset the target is not annotated on needs no volume
+    config["targets"]["mito"]["annotated_datasets"] = ["a1"]
+    check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path)
+    # nor do the volumes the demo rule renders
+    config["targets"]["mito"]["annotated_datasets"] = None
+    config["targets"]["mito"]["annotations"]["labels"] = "demo/data/{dataset}/truth.tif"
+    check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path, generated_dir="demo/data")
+
+
+def test_an_instance_volume_missing_is_named_with_its_key(tmp_path):
+    (tmp_path / "labels.tif").write_bytes(b"")
+    annotations = {"labels": "labels.tif", "instances": "{dataset}_instances.tif"}
+    config = {"targets": {"mito": {"annotations": annotations}}}
+    with pytest.raises(
+        TesseraInputError,
+        match=r"key targets.mito.annotations.instances: 'a1_instances.tif' \(dataset a1\) not "
+        r"found; expected a multi-page TIFF",
+    ):
+        check_annotation_files(config, ["a1"], base_dir=tmp_path)
 
 
 def test_shipped_config_paths_lie_inside_the_project(repo, schemas, shipped_config):

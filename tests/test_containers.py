@@ -272,6 +272,33 @@ def test_missing_internal_path_is_refused(tmp_path, volume, kind):
     assert wanted in text
 
 
+@pytest.mark.parametrize(
+    ("version", "attrs", "says"),
+    [
+        # OME-Zarr 0.4 keeps "multiscales" at the top of a zarr v2 group's attributes; 0.5 moved
+        # it under "ome" in a zarr v3 group (OME-NGFF 0.4 and 0.5 specifications)
+        (
+            2,
+            {"multiscales": [{"datasets": [{"path": "volumes/raw"}]}]},
+            "an OME-Zarr image of version 0.4 or older (zarr v2); only 0.5 images are read whole",
+        ),
+        (3, {}, "a zarr v3 group, not an OME-Zarr 0.5 image"),
+        (2, {}, "a zarr v2 group, not an OME-Zarr 0.5 image"),
+    ],
+)
+def test_a_zarr_group_without_internal_path_names_its_arrays(
+    tmp_path, volume, version, attrs, says
+):
+    # Before, a v3 group said only that OME-Zarr metadata were missing, and a v2 group that
+    # no v3 group was found: neither named the column that picks the array.
+    path, fmt, inner = _write("zarr_v3" if version == 3 else "zarr_v2", tmp_path, volume)
+    zarr.open_group(str(path), mode="r+").attrs.update(attrs)
+    text = _refused(tmp_path, path, fmt, None, "set column internal_path to the array to read")
+    assert f"{says}; set column internal_path to the array to read (it holds the arrays " in text
+    assert text.endswith("volumes/raw)")
+    ingest_job(path, tmp_path / "out.ome.zarr", fmt=fmt, internal_path=inner, spacing=(30, 4, 4))
+
+
 def test_hdf5_internal_path_to_a_group_is_refused(tmp_path, volume):
     path, fmt, _ = _write("hdf5", tmp_path, volume)
     text = _refused(tmp_path, path, fmt, "volumes", "internal_path volumes")

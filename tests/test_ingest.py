@@ -15,6 +15,7 @@ from tessera.errors import TesseraInputError
 from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
 from tessera.io.stacks import open_stack
+from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.qc_table import excluded_sections, read_qc_table
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.section_qc import section_qc_job
@@ -280,6 +281,32 @@ def test_ome_tiff_cut_short_is_refused(tmp_path):
     assert "invalid value offset" in message
 
 
+def test_one_bit_mask_tiff_is_read_not_refused_as_damaged(tmp_path):
+    # A bilevel (1 bit per pixel) page packs 8 pixels in a byte, each row starting on a byte
+    # boundary (TIFF 6.0 specification, section 9): 13 rows of 21 pixels take 13 * 3 bytes,
+    # not 13 * 21. Label volumes may be such masks (> 0 = target).
+    mask = np.random.default_rng(2).random((3, 13, 21)) > 0.5
+    src = tmp_path / "mask.tif"
+    tifffile.imwrite(src, mask, photometric="minisblack")
+    with tifffile.TiffFile(src) as tif:
+        assert tif.pages[0].bitspersample == 1
+        assert sum(tif.pages[0].databytecounts) == 13 * 3
+    np.testing.assert_array_equal(read_label_volume(src, mask.shape), mask)
+
+
+def test_one_bit_page_storing_too_few_bytes_is_refused(tmp_path):
+    src = tmp_path / "mask.tif"
+    tifffile.imwrite(src, np.ones((2, 13, 21), bool), photometric="minisblack", contiguous=False)
+    with tifffile.TiffFile(src, mode="r+b") as tif:
+        tif.pages[1].tags["StripByteCounts"].overwrite(20)
+    with pytest.raises(
+        TesseraInputError,
+        match=r"page 1 stores 20 bytes of pixels, expected at least 39 for an uncompressed 13 x "
+        r"21 bool plane \(truncated or damaged\?\)",
+    ):
+        read_label_volume(src, (2, 13, 21))
+
+
 def test_tiff_losing_its_last_bytes_is_refused(tmp_path):
     # Page by page, each page's pixels follow its directory: the cut lands in the last pixels.
     src = tmp_path / "stack.tif"
@@ -366,6 +393,69 @@ def test_tiff_page_count_must_match_its_imagej_description(tmp_path):
     ) as info:
         _ingest(src, tmp_path)
     _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+@pytest.mark.parametrize(
+    ("shape", "writer", "states"),
+    [
+        # ImageJ hyperstacks keep channels, slices and frames as consecutive pages, the
+        # channels varying fastest (ImageJ hyperstack page order, as tifffile writes it)
+        (
+            (6, 2, 16, 16),
+            {"imagej": True, "metadata": {"axes": "ZCYX"}},
+            "the ImageJ description states 2 channels",
+        ),
+        (
+            (3, 4, 16, 16),
+            {"imagej": True, "metadata": {"axes": "TZYX"}},
+            "the ImageJ description states 3 time points of 4 slices",
+        ),
+        (
+            (2, 3, 16, 16),
+            {"ome": True, "metadata": {"axes": "ZCYX"}},
+            "the OME-XML states SizeZ=2, SizeC=3, SizeT=1",
+        ),
+        (
+            (2, 3, 16, 16),
+            {"photometric": "minisblack", "metadata": {"axes": "ZCYX"}},
+            "the shape description states shape (2, 3, 16, 16) (axes ZCYX)",
+        ),
+    ],
+)
+def test_tiff_of_several_channels_or_time_points_is_refused(tmp_path, shape, writer, states):
+    # Each channel (or time point) is a page of its own, so read page by page a 6-section,
+    # 2-channel hyperstack would come back as 12 sections alternating between the channels.
+    src = tmp_path / "stack.tif"
+    volume = np.arange(np.prod(shape), dtype=np.uint32).reshape(shape).astype(np.uint8)
+    tifffile.imwrite(src, volume, **writer)
+    before = _listing(tmp_path)
+    with pytest.raises(
+        TesseraInputError, match="expected one page per z section of one greyscale channel"
+    ) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert states in message
+
+
+@pytest.mark.parametrize(
+    "writer",
+    [
+        {"imagej": True, "metadata": {"axes": "ZYX"}},
+        {"imagej": True, "metadata": {"axes": "TYX"}},  # a z stack labelled as frames
+        {"ome": True, "metadata": {"axes": "ZYX"}},
+        # without named axes tifffile states the planes of an OME-TIFF as channels (SizeC)
+        {"ome": True, "photometric": "minisblack"},
+        {"photometric": "minisblack", "metadata": {"axes": "QZYX"}},  # a leading axis of 1
+    ],
+)
+def test_tiff_of_one_z_stack_passes_whatever_its_description(tmp_path, writer):
+    volume = np.random.default_rng(3).integers(0, 256, (5, 16, 16), dtype=np.uint8)
+    src = tmp_path / "stack.tif"
+    data = volume[np.newaxis] if "Q" in writer.get("metadata", {}).get("axes", "") else volume
+    tifffile.imwrite(src, data, **writer)
+    _ingest(src, tmp_path)
+    _, info = open_image(tmp_path / "o.ome.zarr")
+    np.testing.assert_array_equal(info["levels"][0][...], volume)
 
 
 def test_tiff_pages_laid_out_differently_are_refused(tmp_path):

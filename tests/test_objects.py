@@ -342,6 +342,37 @@ def test_objects_job_writes_ngff_labels_table_and_settings(tmp_path):
     np.testing.assert_array_equal(info["levels"][1][:], stored[:, ::2, ::2])
 
 
+def test_objects_job_refuses_a_stack_whose_every_section_qc_excluded(tmp_path):
+    # A blank or constant stack has every section flagged flat: measured, it entered the
+    # statistics as an animal with no objects and region densities of 0.
+    p = smooth_field(5, shape=(4, 32, 32))
+    image, qc, scores, _ = probability_inputs(tmp_path, p)
+    pd.DataFrame({"z": range(4), "excluded": [True] * 4}).to_csv(qc, sep="\t", index=False)
+    settings = dict(
+        high=0.5,
+        low=None,
+        min_volume_um3=0,
+        max_volume_um3=None,
+        connectivity=26,
+        block=[2, 16, 16],
+    )
+    outputs = [tmp_path / "objects.ome.zarr", tmp_path / "objects.tsv", tmp_path / "objects.json"]
+    with pytest.raises(TesseraInputError) as info:
+        objects_job(image, qc, scores, *outputs, target="mito", settings=settings)
+    assert str(info.value) == (
+        f"{qc}: section QC excluded every section of this stack, so no object can be found or "
+        "measured; look at its sections.png, and replace a blank or damaged stack or remove its "
+        "row from the datasets sheet"
+    )
+    assert not any(path.exists() for path in outputs)
+    # one usable section is enough to look for objects
+    pd.DataFrame({"z": range(4), "excluded": [True, True, False, True]}).to_csv(
+        qc, sep="\t", index=False
+    )
+    objects_job(image, qc, scores, *outputs, target="mito", settings=settings)
+    assert all(path.exists() for path in outputs)
+
+
 # --- separating touching organelles --------------------------------------------------------
 
 

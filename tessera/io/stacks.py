@@ -262,6 +262,7 @@ class _Zarr(_Source):
                 f"cannot open as zarr: {type(exc).__name__}: {exc}", source=path
             ) from None
         if isinstance(node, zarr.Group):
+            _check_ome_zarr_group(node, path)
             # input: checked where it carries records
             _, info = open_image(path, checksums="if-present")
             node = info["levels"][0]
@@ -282,6 +283,31 @@ class _Zarr(_Source):
             raise TesseraInputError(
                 f"cannot read section {z}: {type(exc).__name__}: {exc}", source=self._path
             ) from None
+
+
+def _check_ome_zarr_group(group, path, *, limit=10):
+    """Refuse a zarr group that is not an OME-Zarr 0.5 image, naming the arrays it holds.
+
+    OME-Zarr 0.5 images are zarr v3 groups with an ``ome`` attribute (OME-NGFF 0.5
+    specification); any other group needs the array named in column internal_path.
+    """
+    attrs = group.attrs.asdict()
+    if group.metadata.zarr_format == 3 and "ome" in attrs:
+        return
+    arrays = [name for name, node in group.members(max_depth=None) if isinstance(node, zarr.Array)]
+    held = (
+        f"it holds the arrays {_short_list(sorted(arrays), limit)}"
+        if arrays
+        else "it holds no array"
+    )
+    kind = (
+        "an OME-Zarr image of version 0.4 or older (zarr v2); only 0.5 images are read whole"
+        if "multiscales" in attrs
+        else f"a zarr v{group.metadata.zarr_format} group, not an OME-Zarr 0.5 image"
+    )
+    raise TesseraInputError(
+        f"{kind}; set column internal_path to the array to read ({held})", source=path
+    )
 
 
 _READERS = {"tiff_stack": _TiffStack, "slice_folder": _SliceFolder, "mrc": _Mrc, "zarr": _Zarr}

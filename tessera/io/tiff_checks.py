@@ -7,6 +7,8 @@ the file. :func:`open_checked_tiff` therefore checks, with every reader complain
 - the number of pages against the file's own description where it has one (ImageJ ``images=``
   or ``slices=``/``channels=``/``frames=``, OME-XML ``SizeZ x SizeC x SizeT``, tifffile's
   ``{"shape": ...}``);
+- that the description states no axis besides z, y and x: pages of several channels, or of
+  several time points of a z stack, follow each other and would read as extra sections;
 - that every page is a greyscale plane laid out like page 0 (shape, pixel type, compression,
   predictor, bit order);
 - that every page's pixel data lie inside the file, are large enough for an uncompressed page,
@@ -26,7 +28,13 @@ import tifffile
 from tessera.errors import TesseraInputError
 from tessera.io.damage import complaints_as_errors, reader_complaints
 
-__all__ = ["expected_page_count", "open_checked_tiff", "read_checked_page", "read_checked_tiff"]
+__all__ = [
+    "expected_page_count",
+    "open_checked_tiff",
+    "other_axes",
+    "read_checked_page",
+    "read_checked_tiff",
+]
 
 # What tifffile raises on malformed structures besides its own error (found by fuzzing). Without
 # imagecodecs, tifffile decodes deflate and LZMA pages (TIFF compression 8, 32946, 34925) with
@@ -103,6 +111,73 @@ def expected_page_count(tif, plane_size):
         # not a whole number of planes: -1, so that it cannot match
         found["shape description"] = pixels // plane_size if pixels % plane_size == 0 else -1
     return found
+
+
+def other_axes(tif):
+    """What the file's description states besides one z stack of greyscale planes, or None.
+
+    Channels are stored as pages of their own, and so are the time points of a z stack, one
+    after the other (ImageJ hyperstacks, OME-TIFF, tifffile's shape description): read page by
+    page they would interleave with the sections. A stack described along one axis only (an
+    ImageJ stack of frames, an OME-TIFF of SizeC planes, which tifffile writes for an array
+    without named axes) is one sequence of planes and passes; so does one of ImageJ slices.
+    ImageJ channels are refused even alone: ImageJ states them only for a multichannel image.
+
+    Parameters
+    ----------
+    tif : tifffile.TiffFile
+
+    Returns
+    -------
+    str or None
+        E.g. ``"the ImageJ description states 2 channels"``; None when only z is stated.
+
+    Examples
+    --------
+    >>> import io
+    >>> buf = io.BytesIO()
+    >>> tifffile.imwrite(buf, np.zeros((3, 2, 4, 4), np.uint8), imagej=True,
+    ...                  metadata={"axes": "ZCYX"})
+    >>> with tifffile.TiffFile(io.BytesIO(buf.getvalue())) as tif:
+    ...     other_axes(tif)
+    'the ImageJ description states 2 channels'
+    """
+    meta = tif.imagej_metadata
+    if meta:
+        channels, slices, frames = (int(meta.get(k, 1)) for k in ("channels", "slices", "frames"))
+        if channels > 1:
+            return f"the ImageJ description states {channels} channels"
+        if slices > 1 and frames > 1:
+            return f"the ImageJ description states {frames} time points of {slices} slices"
+    if tif.is_ome:
+        found = _ome_other_axes(tif.ome_metadata)
+        if found:
+            return found
+    if tif.is_shaped and tif.shaped_metadata:
+        for m in tif.shaped_metadata:
+            shape = [int(n) for n in m.get("shape", ())]
+            axes = str(m.get("axes", ""))
+            stated = f"shape {tuple(shape)}" + (f" (axes {axes})" if axes else "")
+            leading = list(zip(axes or "?" * len(shape), shape, strict=False))[:-2]
+            if sum(n > 1 for _, n in leading) > 1 or any(a in "CS" and n > 1 for a, n in leading):
+                return f"the shape description states {stated}"
+    return None
+
+
+def _ome_other_axes(xml):
+    try:
+        root = ET.fromstring(xml)
+    except ET.ParseError:
+        return None  # refused by the page count check
+    for element in root.iter():
+        if element.tag.rsplit("}", 1)[-1] == "Pixels":
+            sizes = {k: element.get(f"Size{k}", "1") for k in "ZCT"}
+            if not all(v.isdigit() for v in sizes.values()):
+                return None  # refused by the page count check
+            if sum(int(v) > 1 for v in sizes.values()) > 1:
+                stated = ", ".join(f"Size{k}={v}" for k, v in sizes.items())
+                return f"the OME-XML states {stated}"
+    return None
 
 
 def _shaped_plane(tif):
@@ -220,6 +295,13 @@ def _check_whole(tif, path):
                 "(truncated or damaged?)",
                 source=path,
             )
+    other = other_axes(tif)
+    if other:
+        raise TesseraInputError(
+            f"{other}; expected one page per z section of one greyscale channel (save one "
+            "channel or time point as a stack of its own)",
+            source=path,
+        )
     layout0 = [getattr(first, k) for k in _LAYOUT]
     for z, page in enumerate(pages[1:], start=1):
         _check_layout(page, z, layout0, path)
@@ -272,7 +354,7 @@ def _check_extents(tif, pages, path):
             for tag in page.tags.values()
             if tag.valuebytecount > fmt.tagoffsetthreshold  # stored outside the directory
         )
-        need = page.size * page.dtype.itemsize if page.compression == 1 else 0
+        need = _plane_bytes(page) if page.compression == 1 else 0
         total = 0
         for offset, count in zip(page.dataoffsets, page.databytecounts, strict=True):
             if count == 0:
@@ -303,6 +385,23 @@ def _check_extents(tif, pages, path):
             )
         if reach is None or end > reach[0]:
             reach = (end, what)
+
+
+def _plane_bytes(page):
+    """Bytes of an uncompressed greyscale page: rows of fewer than 8 bits per pixel (1-bit
+    bilevel masks) are packed, each row starting on a byte boundary (TIFF 6.0 specification,
+    section 9: bilevel images).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> _plane_bytes(SimpleNamespace(shape=(3, 10), bitspersample=1))
+    6
+    >>> _plane_bytes(SimpleNamespace(shape=(3, 10), bitspersample=16))
+    60
+    """
+    rows, columns = page.shape
+    return rows * math.ceil(columns * page.bitspersample / 8)
 
 
 def read_checked_page(tif, z, path):

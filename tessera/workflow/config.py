@@ -108,6 +108,13 @@ def load_config(config, schema_path, *, source="config/config.yaml"):
 
 def _check_related_keys(config, source):
     """Checks between keys that a JSON Schema cannot express."""
+    low, high = (config.get("ingest") or {}).get("percentiles", (0, 100))
+    if not low < high:
+        raise TesseraInputError(
+            f"key ingest.percentiles: [{low}, {high}]: expected the lower percentile first "
+            "and below the upper one",
+            source=source,
+        )
     for name, target in (config.get("targets") or {}).items():
         objects = target.get("objects") or {}
         high, low = objects.get("high"), objects.get("low")
@@ -191,8 +198,10 @@ def _parse_number(text, *, where):
     return value
 
 
-def _sheet_records(sheet_path):
+def _sheet_records(sheet_path, *, required=()):
     """(line number, {column: text}) of every non-blank row of a tab-separated sheet.
+
+    The header must name every column of `required`.
 
     Empty cells after the last column (trailing tabs, as spreadsheet exports leave them) are
     dropped; a row with a filled cell beyond the header is refused, because reading it would
@@ -217,6 +226,14 @@ def _sheet_records(sheet_path):
     while header and not header[-1].strip():
         header = header[:-1]
     header = [c.strip() for c in header]
+    _check_separator(header, sheet_path)
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise TesseraInputError(
+            f"header: column(s) {', '.join(missing)} missing; expected a first line naming the "
+            f"columns, among them {', '.join(required)}",
+            source=sheet_path,
+        )
     repeated = sorted({c for c in header if header.count(c) > 1})
     if repeated:
         raise TesseraInputError(
@@ -234,6 +251,33 @@ def _sheet_records(sheet_path):
         cells = cells[: len(header)] + [""] * (len(header) - len(cells))
         records.append((line, dict(zip(header, cells, strict=True))))
     return records
+
+
+# Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
+# semicolon where the comma is the decimal mark), and the spaces a text editor may put for tabs
+_OTHER_SEPARATORS = (",", ";", " ")
+
+
+def _check_separator(header, sheet_path):
+    """Refuse a header read as one column that another separator than tab splits into several.
+
+    Examples
+    --------
+    >>> _check_separator(["dataset", "condition"], "d.tsv")
+    >>> _check_separator(["dataset,condition,subject"], "d.tsv")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: d.tsv: header: one column 'dataset,condition,subject'; expected columns separated by tabs ...
+    """
+    if len(header) != 1:
+        return
+    for separator in _OTHER_SEPARATORS:
+        if separator in header[0]:
+            raise TesseraInputError(
+                f"header: one column {header[0]!r}; expected columns separated by tabs "
+                f"(dataset, condition, subject, path, format, ...), found them separated by "
+                f"{separator!r}: save the sheet as tab-separated text",
+                source=sheet_path,
+            )
 
 
 def load_datasets(
@@ -280,10 +324,10 @@ def load_datasets(
         source=f"{config_source}, key datasets",
     )
     schema = read_yaml(schema_path)
-    records = _sheet_records(sheet_path)
+    records = _sheet_records(sheet_path, required=schema.get("required", ()))
     if not records:
         raise TesseraInputError("the sheet has no dataset rows", source=sheet_path)
-    rows = []
+    rows, lines = [], []
     for line, raw in records:
         row_name = f"{sheet_path}, row {line}"
         record = {k: v.strip() for k, v in raw.items()}
@@ -300,18 +344,61 @@ def load_datasets(
                 )
         validate(record, schema, source=row_name)
         rows.append(record)
+        lines.append(line)
     frame = pd.DataFrame(rows, dtype=object)  # keep None for blank cells (no NaN)
     duplicated = frame["dataset"][frame["dataset"].duplicated()].unique()
     if len(duplicated):
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
         )
+    _check_one_spelling_per_condition(frame, lines, sheet_path)
+    _check_one_condition_per_subject(frame, lines, sheet_path)
     roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
-    _check_paths(frame, sheet_path, Path(base_dir), generated_dir, roots)
+    _check_paths(frame, lines, sheet_path, Path(base_dir), generated_dir, roots)
     return frame.set_index("dataset", drop=False)
 
 
+def _check_one_spelling_per_condition(frame, lines, sheet_path):
+    """Refuse conditions that differ only in capitals or inner spaces ('Cold', 'cold').
+
+    Each spelling would be a group of its own in the statistics, holding a part of the animals.
+    """
+    spellings = {}
+    for i, condition in enumerate(frame["condition"]):
+        spellings.setdefault(" ".join(condition.casefold().split()), {}).setdefault(
+            condition, []
+        ).append(str(lines[i]))
+    for found in spellings.values():
+        if len(found) > 1:
+            listed = " and ".join(f"{c!r} (rows {', '.join(rows)})" for c, rows in found.items())
+            raise TesseraInputError(
+                f"column condition: {listed} differ only in capitals or spaces; expected one "
+                "spelling per condition",
+                source=sheet_path,
+            )
+
+
+def _check_one_condition_per_subject(frame, lines, sheet_path):
+    """Refuse an animal (column subject) that appears under more than one condition.
+
+    The animal is the unit of the statistics and belongs to one group; several datasets of one
+    animal are fine. Usually a mistyped subject id.
+    """
+    for subject, rows in frame.groupby("subject", sort=False).groups.items():
+        conditions = list(dict.fromkeys(frame.loc[rows, "condition"]))
+        if len(conditions) > 1:
+            where = ", ".join(str(lines[i]) for i in rows)
+            raise TesseraInputError(
+                f"column subject: animal {subject!r} appears under conditions {conditions} "
+                f"(rows {where}); expected one condition per animal (a mistyped subject id?)",
+                source=sheet_path,
+            )
+
+
 SHEET_PATH_COLUMNS = ("path", "roi_mask")
+# Formats whose path is one file, and those whose path is a folder
+FILE_FORMATS = ("tiff_stack", "mrc", "hdf5")
+FOLDER_FORMATS = ("slice_folder", "n5")
 
 
 def allowed_roots(sheet_path, *, base_dir=".", data_roots=()):
@@ -331,23 +418,39 @@ def allowed_roots(sheet_path, *, base_dir=".", data_roots=()):
     return list(dict.fromkeys(roots))  # unique, first mention first
 
 
-def _check_paths(frame, sheet_path, base_dir, generated_dir, roots):
+def _check_paths(frame, lines, sheet_path, base_dir, generated_dir, roots):
     generated = None if generated_dir is None else (base_dir / generated_dir).resolve()
-    for i, row in enumerate(frame.to_dict(orient="records")):
+    for line, row in zip(lines, frame.to_dict(orient="records"), strict=True):
         for column in SHEET_PATH_COLUMNS:
             value = row.get(column)
             if value is None:
                 continue
             full = _check_inside(
-                value, base_dir, roots, source=f"{sheet_path}, row {i + 2}, column {column}"
+                value, base_dir, roots, source=f"{sheet_path}, row {line}, column {column}"
             )
             if generated is not None and full.is_relative_to(generated):
                 continue
             if not full.exists():
                 raise TesseraInputError(
                     f"column {column}: file or folder {value!r} not found",
-                    source=f"{sheet_path}, row {i + 2}",
+                    source=f"{sheet_path}, row {line}",
                 )
+            problem = _kind_problem(full, row["format"] if column == "path" else None)
+            if problem:
+                raise TesseraInputError(
+                    f"column {column}: {value!r} is {problem}", source=f"{sheet_path}, row {line}"
+                )
+
+
+def _kind_problem(path, fmt):
+    """What is wrong with `path` being a file or a folder for format `fmt` (None: a mask file)."""
+    if path.is_dir() and fmt in (*FILE_FORMATS, None):
+        what = "format " + fmt if fmt else "a region mask (a label stack)"
+        hint = "; a folder of section images is format slice_folder" if fmt else ""
+        return f"a folder; {what} is one file{hint}"
+    if not path.is_dir() and fmt in FOLDER_FORMATS:
+        return f"a file; format {fmt} is a folder"
+    return None
 
 
 def _check_inside(value, base_dir, roots, *, source):
@@ -414,6 +517,51 @@ def check_config_paths(config, dataset_ids, *, base_dir=".", source="config/conf
     )
     for key, value in config_paths(config, dataset_ids):
         _check_inside(value, base_dir, roots, source=f"{source}, key {key}")
+
+
+def check_annotation_files(
+    config, dataset_ids, *, base_dir=".", generated_dir=None, source="config/config.yaml"
+):
+    """Refuse a label or instance volume missing for a dataset that a target is annotated on.
+
+    Checked when the config loads, so a missing volume is named with its config key before any
+    job runs, instead of Snakemake's missing-input report once the plan is made.
+
+    Parameters
+    ----------
+    config : dict
+        The validated config (``targets`` with ``annotations`` and ``annotated_datasets``).
+    dataset_ids : sequence of str
+        The sheet's datasets; a target's ``annotated_datasets`` (None = all) picks among them.
+    base_dir : str or Path, optional
+        The project folder relative paths start from.
+    generated_dir : str or Path, optional
+        Paths under this folder are made by the workflow (the demo study) and need not exist.
+    source : str, optional
+        The config file, named in the error.
+    """
+    base = Path(base_dir)
+    generated = None if generated_dir is None else (base / generated_dir).resolve()
+    for name, target in (config.get("targets") or {}).items():
+        annotations = target.get("annotations") or {}
+        chosen = target.get("annotated_datasets")
+        datasets = [d for d in dataset_ids if chosen is None or d in chosen]
+        for field in ("labels", "instances"):
+            if field not in annotations:
+                continue
+            for dataset in datasets:
+                value = annotations[field].format(dataset=dataset)
+                full = (base / value).resolve()
+                if generated is not None and full.is_relative_to(generated):
+                    continue
+                if not full.is_file():
+                    found = "is a folder" if full.is_dir() else "not found"
+                    raise TesseraInputError(
+                        f"{value!r} (dataset {dataset}) {found}; expected a multi-page TIFF for "
+                        f"every dataset the target is annotated on (or name the others in "
+                        f"targets.{name}.annotated_datasets)",
+                        source=f"{source}, key targets.{name}.annotations.{field}",
+                    )
 
 
 def sheet_spacing(row):

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import zarr
 
+from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.io.links import link_tree
 from tessera.io.omezarr import AXES, level_zero_origin, multiscale_attrs
@@ -76,6 +77,15 @@ def objects_job(
     prob = info["levels"][0]
     scale, z_factor = fields["scale"], fields["z_factor"]
     excluded = excluded_sections(qc_table, z_factor)
+    if len(excluded) >= prob.shape[0]:
+        # nothing to find objects in: measured, the stack would enter the statistics as an
+        # animal without any object (densities 0) instead of as one not measured
+        raise TesseraInputError(
+            "section QC excluded every section of this stack, so no object can be found or "
+            "measured; look at its sections.png, and replace a blank or damaged stack or "
+            "remove its row from the datasets sheet",
+            source=qc_table,
+        )
     used = {
         "target": target,
         "high": high,
