@@ -357,6 +357,19 @@ def test_a_header_without_a_required_column_is_named(tmp_path, schemas, header, 
     )
 
 
+@pytest.mark.parametrize("dataset", ["study", "Provenance"])
+def test_a_dataset_id_naming_a_folder_of_the_study_is_refused(tmp_path, schemas, dataset):
+    # results/study/ and results/provenance/ hold the study's own files; a dataset's results
+    # would be written among them (on some file systems whatever the case of its id)
+    path = _sheet(tmp_path, GOOD, GOOD.replace("a1", dataset).replace("m1", "m2"))
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}, row 3: column dataset: {dataset!r} is the name of the study's own folder "
+        f"results/{dataset.lower()}; expected another id (not study or provenance)"
+    )
+
+
 def test_unknown_sheet_column_is_refused(tmp_path, schemas):
     path = _sheet(tmp_path, GOOD + "\tx", header=HEADER + "\tcolour")
     with pytest.raises(

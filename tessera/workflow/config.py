@@ -351,11 +351,30 @@ def load_datasets(
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
         )
+    _check_reserved_ids(frame, lines, sheet_path)
     _check_one_spelling_per_condition(frame, lines, sheet_path)
     _check_one_condition_per_subject(frame, lines, sheet_path)
     roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
     _check_paths(frame, lines, sheet_path, Path(base_dir), generated_dir, roots)
     return frame.set_index("dataset", drop=False)
+
+
+#: Folders of results/ that belong to the whole study (rules/*.smk write results/study/… and
+#: results/provenance/…): a dataset of that id would write its own results among them.
+RESERVED_DATASET_IDS = ("study", "provenance")
+
+
+def _check_reserved_ids(frame, lines, sheet_path):
+    """Refuse a dataset id that names one of the study's own result folders (any case, as
+    some file systems ignore it)."""
+    for i, dataset in enumerate(frame["dataset"]):
+        if dataset.casefold() in RESERVED_DATASET_IDS:
+            raise TesseraInputError(
+                f"column dataset: {dataset!r} is the name of the study's own folder "
+                f"results/{dataset.casefold()}; expected another id (not "
+                f"{' or '.join(RESERVED_DATASET_IDS)})",
+                source=f"{sheet_path}, row {lines[i]}",
+            )
 
 
 def _check_one_spelling_per_condition(frame, lines, sheet_path):
