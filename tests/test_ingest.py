@@ -78,6 +78,20 @@ def test_slice_folder_orders_numbers_naturally(tmp_path):
     assert [int(stack.read(z)[0, 0]) for z in range(12)] == list(range(12))
 
 
+def test_slice_folder_skips_hidden_files(tmp_path):
+    # macOS writes a '._<name>' file of metadata beside each file copied to a shared drive
+    # (AppleDouble, common practice); it is no section, and before it was refused as a second
+    # section 0
+    volume = np.arange(3, dtype=np.uint8).reshape(3, 1, 1) * np.ones((1, 4, 4), np.uint8)
+    _write_folder(tmp_path / "s", volume, ".tif")
+    for name in sorted(os.listdir(tmp_path / "s")):
+        (tmp_path / "s" / f"._{name}").write_bytes(b"\x00\x05\x16\x07 not an image")
+    (tmp_path / "s" / ".backup_0001.tif").write_bytes(b"")
+    stack = open_stack(tmp_path / "s", "slice_folder")
+    assert stack.shape == (3, 4, 4)
+    assert [int(stack.read(z)[0, 0]) for z in range(3)] == [0, 1, 2]
+
+
 def test_metadata_validates_against_ngff_reference(tmp_path, volume):
     # Reference implementation of the OME-Zarr (NGFF) 0.5 spec: the ome-zarr-models package.
     tifffile.imwrite(tmp_path / "s.tif", volume)

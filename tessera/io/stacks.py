@@ -116,7 +116,13 @@ class _SliceFolder(_Source):
     def __init__(self, path, missing_sections):
         if not path.is_dir():
             raise TesseraInputError("expected a folder of per-section TIFF/PNG files", source=path)
-        names = sorted(p.name for p in path.iterdir() if p.suffix.lower() in _SLICE_SUFFIXES)
+        # hidden files are no sections: macOS leaves '._<name>' metadata copies beside every
+        # file it writes to a shared drive, and editors leave '.<name>' backups (common practice)
+        names = sorted(
+            p.name
+            for p in path.iterdir()
+            if p.suffix.lower() in _SLICE_SUFFIXES and not p.name.startswith(".")
+        )
         if not names:
             raise TesseraInputError(
                 f"no section images ({', '.join(_SLICE_SUFFIXES)}) in the folder", source=path
