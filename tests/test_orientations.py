@@ -87,7 +87,7 @@ def test_two_orientations_train_the_same_model_as_the_tiles_and_their_transposes
         for label in labels
     ]
     models = fit_cascade(turned, _tiles(turned, windows, labels, ["a", "b"], [0, 1]), target="t")
-    both = [(w, lab) for w, lab in zip(windows, labels, strict=True)]
+    both = list(zip(windows, labels, strict=True))
     expanded = _tiles(
         plain,
         [x for w, _ in both for x in (w, orient_plane(w, ORIENTATIONS[1]))],

@@ -136,15 +136,7 @@ def lazy_tile(spec, tile_id, read_image, labels, *, fold, final=None, room=None)
 
 def _oriented_frame(spec, node, tile, orientation):
     """A frame of `tile` turned to `orientation`, for `node`, and its turned labels."""
-    frame = tile.frame
-    h, w = tile.labels.shape
-    halo = receptive_radius(spec, node)
-    cut = frame.halo - halo
-    z_cut = frame.z_halo - z_halo(spec, node)
-    # the frame's image is the tile's window as given, then the core's extension (node_tile)
-    window = frame.stack[
-        z_cut : frame.stack.shape[0] - z_cut, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo
-    ]
+    window = _node_window(spec, tile, node)
     labels = orient_plane(tile.labels, orientation)
     room = orient_room(tile.room, orientation)
     turned = make_frame(
@@ -296,16 +288,8 @@ def fit_cascade(spec, tiles, *, target="target", threads=1):
     return models
 
 
-def node_tile(spec, tile, node):
-    """`tile` with its image cut to the receptive radius and z halo of `node` (a new frame, maps
-    not cached).
-
-    The maps of earlier nodes are computed over the margins `node` reads, not over the wider
-    ones later nodes of the cascade read. That matters beyond geometry: a classifier's output for
-    a pixel can differ in the last bit with the number of rows predicted at once (BLAS matrix
-    products round rows at the edge of their blocking differently), so a map computed over a
-    wider region is not always bit for bit the crop of a narrower one.
-    """
+def _node_window(spec, tile, node):
+    """The image window of `tile` cut to the receptive radius and z halo of `node`."""
     frame = tile.frame
     halo = receptive_radius(spec, node)
     cut = frame.halo - halo
@@ -319,13 +303,26 @@ def node_tile(spec, tile, node):
     sections = slice(z_cut, frame.stack.shape[0] - z_cut)
     # the frame's image is the tile's window as given; the core's extension to multiples of 2^L
     # was appended after it, so the window is its first rows and columns
-    image = frame.stack[sections, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
+    return frame.stack[sections, cut : cut + h + 2 * halo, cut : cut + w + 2 * halo]
+
+
+def node_tile(spec, tile, node):
+    """`tile` with its image cut to the receptive radius and z halo of `node` (a new frame, maps
+    not cached).
+
+    The maps of earlier nodes are computed over the margins `node` reads, not over the wider
+    ones later nodes of the cascade read. That matters beyond geometry: a classifier's output for
+    a pixel can differ in the last bit with the number of rows predicted at once (BLAS matrix
+    products round rows at the edge of their blocking differently), so a map computed over a
+    wider region is not always bit for bit the crop of a narrower one.
+    """
+    image = _node_window(spec, tile, node)
     out = prepare_tile(
         spec, tile.tile_id, image, tile.labels, fold=tile.fold, final=node, room=tile.room
     )
     # image features do not depend on the region they are computed over: crop the tile's own
     # (computed once for all the nodes of a cascade) instead of filtering again per node
-    share_features(frame, out.frame)
+    share_features(tile.frame, out.frame)
     return out
 
 
