@@ -78,6 +78,7 @@ def finish(proc):
 def train(root):
     from tessera.cascade.api import (
         CascadeSpec,
+        automatic_neighbours,
         fit_cascade,
         mirrored_stack,
         prepare_tile,
@@ -89,7 +90,10 @@ def train(root):
     volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
-    spec = CascadeSpec(stages=2, levels=2, samples_per_tile=1500)
+    # the workflow's default for this SBEM-like volume: 2D, with the sections around
+    spec = CascadeSpec(
+        stages=2, levels=2, samples_per_tile=1500, neighbours=automatic_neighbours(2)
+    )
     radius = receptive_radius(spec)
     tiles = []
     for z in range(6):

@@ -297,13 +297,14 @@ def node_cascade(wildcards):
 
 @functools.lru_cache(maxsize=None)
 def _target_spec(target, stages, levels):
-    """The cascade's structure, for planning (``dims: auto`` and a 3D cascade's voxel_aspect,
-    decided from the data by the job training a node, do not change which nodes exist).
+    """The cascade's structure, for planning (``dims`` and ``neighbours`` ``auto`` and a 3D
+    cascade's voxel_aspect, decided from the data by the job training a node, do not change
+    which nodes exist).
     """
     cascade = {
         k: v
         for k, v in _cascade_and_ladder(target)[0].items()
-        if v is not None and not (k == "dims" and v == "auto")
+        if v is not None and v != "auto"
     }
     return spec_from_settings({**cascade, "levels": levels}, stages=stages)
 

@@ -6,6 +6,7 @@ rule score_rung:
     input:
         tiles="results/study/{target}/tiles",
         images=annotated_pyramids,
+        qc=annotated_qc_tables,
         models=rung_models,
     output:
         score="results/study/{target}/ladder/rung_{stages}x{levels}.tsv",

@@ -5,6 +5,7 @@
 rule shard_plan:
     input:
         image="results/{dataset}/pyramid/raw.ome.zarr",
+        qc="results/{dataset}/qc/sections.tsv",
         models=cascade_models,
     output:
         plan="results/{dataset}/predicted/{target}/plan.json",

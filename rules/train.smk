@@ -7,6 +7,7 @@ rule train_node:
     input:
         tiles="results/study/{target}/tiles",
         images=annotated_pyramids,
+        qc=annotated_qc_tables,
         upstream=upstream_models,
     output:
         model="results/study/{target}/{nodeset}/stage{stage}_level{level}.npz",
@@ -34,6 +35,7 @@ rule predict_tiles:
     input:
         tiles="results/study/{target}/tiles",
         images=annotated_pyramids,
+        qc=annotated_qc_tables,
         models=cascade_models,
     output:
         probabilities="results/study/{target}/tiles_predicted/probabilities.npz",

@@ -13,6 +13,7 @@ run_job(
     predict_tiles_job,
     annotations=snakemake.input.tiles,
     pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
+    qc_tables=dict(zip(snakemake.params.datasets, snakemake.input.qc, strict=True)),
     model_paths=list(snakemake.input.models),
     out_probabilities=snakemake.output.probabilities,
     out_table=snakemake.output.scores,

@@ -13,6 +13,7 @@ run_job(
     score_rung_job,
     annotations=snakemake.input.tiles,
     pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
+    qc_tables=dict(zip(snakemake.params.datasets, snakemake.input.qc, strict=True)),
     model_paths=list(snakemake.input.models),
     out_score=snakemake.output.score,
     target=snakemake.wildcards.target,

@@ -21,4 +21,5 @@ run_job(
     max_halo=snakemake.params.max_halo,
     dtype=snakemake.params.dtype,
     output_sigma=snakemake.params.output_sigma,
+    qc_table=snakemake.input.qc,
 )

@@ -13,6 +13,7 @@ run_job(
     train_node_job,
     annotations=snakemake.input.tiles,
     pyramids=dict(zip(snakemake.params.datasets, snakemake.input.images, strict=False)),
+    qc_tables=dict(zip(snakemake.params.datasets, snakemake.input.qc, strict=True)),
     upstream=list(snakemake.input.upstream),
     out_path=snakemake.output.model,
     target=snakemake.wildcards.target,

@@ -32,6 +32,7 @@ from tessera.io.omezarr import AXES, multiscale_attrs, open_image
 from tessera.io.store_checksums import record_checksums
 from tessera.predict import block_read_bytes, halo_overhead, plan_shards
 from tessera.probability_encoding import encode_probability
+from tessera.workflow.files.shard_plan import read_plan
 from tessera.workflow.jobs import predict
 from tessera.workflow.jobs.predict import predict_shard_job, shard_plan_job, stitch_job
 
@@ -135,7 +136,16 @@ def whole_volume(study, output_sigma=0.0):
 
 
 def run(
-    study, name, *, block, jobs=3, dtype="float32", max_halo=512, output_sigma=0.0, downsample=1
+    study,
+    name,
+    *,
+    block,
+    jobs=3,
+    dtype="float32",
+    max_halo=512,
+    output_sigma=0.0,
+    downsample=1,
+    qc_table=None,
 ):
     out = study["root"] / name
     plan = out / "plan.json"
@@ -150,6 +160,7 @@ def run(
         max_halo=max_halo,
         dtype=dtype,
         output_sigma=output_sigma,
+        qc_table=qc_table,
     )
     shards = [out / f"job{j}" for j in range(jobs)]
     for j, folder in enumerate(shards):
@@ -251,6 +262,26 @@ def test_stitched_map_equals_the_whole_volume_in_one_piece(study, output_sigma):
         assert info["spacing"] == (40.0, 8.0, 8.0)
     assert np.abs(maps[0] - whole).max() <= 1e-6
     assert np.abs(maps[1] - whole).max() <= 1e-6
+
+
+def test_a_section_qc_excluded_is_read_as_its_stand_in_by_the_sections_around(study, tmp_path):
+    # With neighbours 1, sections 1 and 3 read section 2. QC excluded it (blank, say): every
+    # shard job reads section 1 in its place, so the stitched map equals predicting each section
+    # whole from the volume with section 2 replaced by a copy of section 1 (numpy.take of the
+    # stand-in index), and the plan and the map's metadata record the stand-in.
+    qc = tmp_path / "sections.tsv"
+    qc.write_text("z\texcluded\n0\tFalse\n1\tFalse\n2\tTrue\n3\tFalse\n4\tFalse\n")
+    replaced = np.take(study["volume"], [0, 1, 1, 3, 4], axis=0)
+    expected = np.stack([predict_section(study["models"], replaced, z) for z in range(5)])
+    halo = receptive_radius(study["spec"])
+    out = run(study, "stand_in", block=(2, 2 * halo, 2 * halo), jobs=2, qc_table=qc)
+    group, info = open_image(out / "probability.ome.zarr")
+    assert np.abs(info["levels"][0][:] - expected).max() <= 1e-6
+    assert read_plan(out / "plan.json")["section_stand_ins"] == [[2, 1]]
+    assert group.attrs["tessera"]["probability"]["section_stand_ins"] == [[2, 1]]
+    # the premise: without the stand-in, the sections beside it read section 2's own image
+    plain = predict_section(study["models"], study["volume"], 3)
+    assert np.abs(plain - expected[3]).max() > 1e-3
 
 
 def test_stitched_map_with_cross_section_context_equals_the_whole_volume(xsec_study):

@@ -160,6 +160,23 @@ def test_dims_auto_is_3d_for_near_isotropic_data_only(
         assert model.spec.voxel_aspect == pytest.approx(expected)
 
 
+@pytest.mark.parametrize(
+    ("spacing", "dims_setting", "dims", "neighbours"),
+    [
+        ((50, 4, 4), "auto", 2, 1),  # serial-section TEM: 2D, reading the sections around
+        ((5, 5, 5), "auto", 3, 0),  # FIB-SEM: 3D, whose filter bank reads the sections around
+        ((5, 5, 5), 2, 2, 1),  # 2D chosen in the config: the sections around as channels
+    ],
+)
+def test_neighbours_auto_follows_the_dims(tmp_path, spacing, dims_setting, dims, neighbours):
+    # The default: an anisotropic stack read section by section gets the intensity of the
+    # sections above and below (common practice for serial sections); a 3D model needs none.
+    pyramids = {"a": _dataset(tmp_path, "a", spacing, 0)}
+    cascade = {**CASCADE, "dims": dims_setting, "neighbours": "auto"}
+    model = read_node(_train(tmp_path, pyramids, 1, cascade), target="blob")
+    assert (model.spec.dims, model.spec.neighbours) == (dims, neighbours)
+
+
 def test_datasets_of_other_pixel_sizes_in_one_model_are_named_in_the_log(tmp_path, caplog):
     # Filters and stencils count pixels: 8 nm and 5 nm pixels put every structure at scales
     # 1.6x apart (arithmetic). Trained anyway, with a warning naming both; equal pixels, none.

@@ -323,6 +323,26 @@ def automatic_dims(aspects, *, neighbours=0):
     return 3 if near and neighbours == 0 else 2
 
 
+#: Sections on each side whose intensity a 2D cascade reads when ``neighbours`` is ``auto``.
+#: Measured (2 x 2, default settings otherwise): open VNC ssTEM stack, test pixel F1 0.796
+#: against 0.751 with 0 (seed 0); the demo's SBEM-like mitochondria, test tiles 0.984 against
+#: 0.959. An organelle cut obliquely or grazed by a section is told from a membrane by the
+#: sections around it.
+AUTOMATIC_NEIGHBOURS_2D = 1
+
+
+def automatic_neighbours(dims):
+    """The ``neighbours`` that ``auto`` stands for: :data:`AUTOMATIC_NEIGHBOURS_2D` in 2D, 0 in
+    3D (where the 3D filter bank reads the sections around).
+
+    Examples
+    --------
+    >>> automatic_neighbours(2), automatic_neighbours(3)
+    (1, 0)
+    """
+    return AUTOMATIC_NEIGHBOURS_2D if dims == 2 else 0
+
+
 def context_offsets(spec, stage):
     """Section offsets (other than 0) at which nodes of `stage` read the previous stage's map.
 

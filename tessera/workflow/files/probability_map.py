@@ -26,6 +26,8 @@ def probability_metadata(plan):
             "output_smoothing_px": plan.get("output_sigma", 0.0),
             "block": plan["block"],
             "models": plan["models"],
+            # sections QC excluded, each predicted (and read by its neighbours) as the kept one
+            "section_stand_ins": plan.get("section_stand_ins", []),
         }
     }
 

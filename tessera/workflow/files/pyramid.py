@@ -2,6 +2,8 @@
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
+from tessera.section_qc.stand_ins import stand_in_pairs, through_stand_ins
+from tessera.workflow.files.qc_table import excluded_sections
 
 
 def working_array(pyramid, downsample):
@@ -12,15 +14,29 @@ def working_array(pyramid, downsample):
     return info["levels"][level], spacing, info["factors"][level]
 
 
-def level_arrays(pyramids, registry, *, downsample):
-    """Dataset id → the working-level array of every dataset the registry names."""
+def working_stand_ins(qc_table, array, factors):
+    """``[[z, stand-in], ...]`` of a working-level array: each section the section QC table
+    excludes, with the kept section read in its place
+    (:func:`tessera.section_qc.stand_ins.stand_in_sections`)."""
+    return stand_in_pairs(array.shape[0], excluded_sections(qc_table, factors[0]))
+
+
+def level_arrays(pyramids, registry, *, downsample, qc_tables=None):
+    """Dataset id → the working-level array of every dataset the registry names.
+
+    With `qc_tables` (dataset id → section QC table), every read of a section QC excluded
+    takes its stand-in instead, as whole-volume prediction does (:func:`working_stand_ins`).
+    """
     arrays = {}
     for dataset in sorted(set(registry["dataset"])):
         if dataset not in pyramids:
             raise TesseraInputError(
                 f"tiles name dataset {dataset!r}, which has no image in this study"
             )
-        arrays[dataset] = working_array(pyramids[dataset], downsample)[0]
+        array, _, factors = working_array(pyramids[dataset], downsample)
+        if qc_tables is not None:
+            array = through_stand_ins(array, working_stand_ins(qc_tables[dataset], array, factors))
+        arrays[dataset] = array
     return arrays
 
 

@@ -3,7 +3,8 @@
 Rule shard_plan writes it; predict_shard and stitch read it. It holds the block geometry of
 :func:`tessera.predict.plan_shards` (``shape``, ``block``, ``halo``, ``align``, ``blocks``,
 ``jobs``), preceded by ``format`` and followed by what the shard jobs and the stitch need
-(``target``, ``downsample``, ``output_sigma``, ``spacing``, ``factors``, ``dtype``, ``models``).
+(``target``, ``downsample``, ``output_sigma``, ``spacing``, ``factors``, ``dtype``, ``models``,
+``section_stand_ins``: ``[z, stand-in]`` of each section QC excluded, read in its place).
 The halo is derived once, when the plan is made; every later job reads it from here.
 """
 

@@ -31,11 +31,13 @@ def score_rung_job(
     stages,
     levels,
     output_sigma=0.0,
+    qc_tables=None,
 ):
     """Predict the validation tiles with one rung's nodes; write its validation scores.
 
     The threshold is the rung's own best-F1 threshold on these tiles
-    (:func:`tessera.threshold.choose_threshold`), as the rung would be used if chosen.
+    (:func:`tessera.threshold.choose_threshold`), as the rung would be used if chosen. Sections
+    the `qc_tables` exclude are read as their stand-ins, as in training.
     """
     registry, labels = read_annotation_set(annotations, roles=[VALIDATION])
     if registry.empty:
@@ -51,7 +53,7 @@ def score_rung_job(
             f"rung {stages}x{levels} was given the nodes of a {spec.stages}x{spec.levels} cascade",
             source=model_paths[0],
         )
-    arrays = level_arrays(pyramids, registry, downsample=downsample)
+    arrays = level_arrays(pyramids, registry, downsample=downsample, qc_tables=qc_tables)
     probabilities = tile_probabilities(models, arrays, registry, output_sigma=output_sigma)
     prob, truth = pooled_pixels(registry["tile_id"], labels, probabilities)
     threshold = float(choose_threshold(prob, truth))

@@ -33,9 +33,10 @@ from tessera.predict import (
 )
 from tessera.probability_encoding import encode_probability
 from tessera.pyramid import downsample_level
+from tessera.section_qc.stand_ins import through_stand_ins
 from tessera.workflow.files.node_model import load_cascade, models_bytes
 from tessera.workflow.files.probability_map import probability_metadata
-from tessera.workflow.files.pyramid import aspects_agree, working_array
+from tessera.workflow.files.pyramid import aspects_agree, working_array, working_stand_ins
 from tessera.workflow.files.shard_plan import read_plan, write_plan
 from tessera.workflow.files.shards import verified_blocks, write_shard
 from tessera.workflow.resources import keep_freed_memory, more_memory_hint
@@ -58,8 +59,13 @@ def shard_plan_job(
     max_halo,
     dtype,
     output_sigma=0.0,
+    qc_table=None,
 ):
-    """Write the shard plan of one dataset and target (a recorded artifact)."""
+    """Write the shard plan of one dataset and target (a recorded artifact).
+
+    With the dataset's section QC table, the plan records each excluded section with the kept
+    section the shard jobs read in its place (``section_stand_ins``; training read the same).
+    """
     models = load_cascade(model_paths, target=target)
     spec = cascade_spec(models)
     array, spacing, factors = working_array(pyramid, downsample)
@@ -88,6 +94,9 @@ def shard_plan_job(
             "factors": list(factors),
             "dtype": dtype,
             "models": {Path(p).name: file_sha256(p) for p in sorted(model_paths)},
+            "section_stand_ins": (
+                [] if qc_table is None else working_stand_ins(qc_table, array, factors)
+            ),
         }
     )
     write_plan(out_plan, plan)
@@ -182,6 +191,7 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
             f"the plan is for a volume of shape {plan['shape']}, the image has {list(array.shape)}",
             source=plan_path,
         )
+    array = through_stand_ins(array, plan.get("section_stand_ins", []))
     if mem_mb is not None and plan["jobs"][job]:
         _log.info(
             "memory: about %d MB needed, mem_mb=%d given",

@@ -6,6 +6,7 @@ import logging
 from tessera.cascade.api import (
     ancestors,
     automatic_dims,
+    automatic_neighbours,
     cascade_spec,
     predict_frame,
     receptive_radius,
@@ -44,6 +45,7 @@ def train_node_job(
     level,
     threads=1,
     train_datasets=None,
+    qc_tables=None,
 ):
     """Train node (stage, level) of a target's cascade and save it.
 
@@ -63,21 +65,29 @@ def train_node_job(
     cascade : dict
         Cascade settings (see :class:`tessera.cascade.api.CascadeSpec`); ``stages`` is replaced by `stage`.
         ``dims`` ``"auto"`` is decided here from the data
-        (:func:`tessera.cascade.spec.automatic_dims`), as is an unset ``voxel_aspect``.
+        (:func:`tessera.cascade.spec.automatic_dims`), as is an unset ``voxel_aspect``;
+        ``neighbours`` ``"auto"`` then follows the dims
+        (:func:`tessera.cascade.spec.automatic_neighbours`).
     train_datasets : list of str, optional
         Train on the tiles of these datasets only (the others' test tiles then measure how the
         model transfers to other animals).
+    qc_tables : dict, optional
+        Dataset id → section QC table: sections it excludes are read as their stand-ins.
     """
     keep_freed_memory()  # arrays of every section and node reuse the freed memory
     node = (stage, level)
     registry, labels = read_annotation_set(annotations)
-    arrays = level_arrays(pyramids, registry, downsample=downsample)
+    arrays = level_arrays(pyramids, registry, downsample=downsample, qc_tables=qc_tables)
     cascade = dict(cascade)
+    neighbours = cascade.get("neighbours", 0)
     if cascade.get("dims") == "auto":
         # near-isotropic stacks (FIB-SEM) in 3D, thick sections in 2D: decided by the voxel
         # size as acquired (the pyramid's full resolution), the same at every working level
         aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=1)
-        cascade["dims"] = automatic_dims(aspects.values(), neighbours=cascade.get("neighbours", 0))
+        chosen = 0 if neighbours == "auto" else neighbours
+        cascade["dims"] = automatic_dims(aspects.values(), neighbours=chosen)
+    if neighbours == "auto":
+        cascade["neighbours"] = automatic_neighbours(cascade.get("dims", 2))
     if cascade.get("voxel_aspect") is None:
         # unset: a 3D cascade takes it from the data; a 2D one does not use it
         cascade.pop("voxel_aspect", None)
@@ -116,6 +126,7 @@ def train_node_job(
         "training_tiles": len(tiles),
         "training_pixels": model.meta["training_pixels"],
         "dims": spec.dims,  # with dims auto, what the data decided
+        "neighbours": spec.neighbours,
     }
 
 
@@ -129,17 +140,19 @@ def predict_tiles_job(
     target,
     downsample,
     output_sigma=0.0,
+    qc_tables=None,
 ):
     """Predict the validation and test tiles with the finished cascade; score them.
 
     The threshold is the one with the best F1 on the validation tiles; test scores use it.
     Writes every tile's probability map (``<tile_id>`` arrays in an .npz) and a TSV of pixel
-    precision, recall, F1 and Jaccard per role.
+    precision, recall, F1 and Jaccard per role. Sections the `qc_tables` exclude are read as
+    their stand-ins, as in training and whole-volume prediction.
     """
     keep_freed_memory()  # arrays of every section and node reuse the freed memory
     registry, labels = read_annotation_set(annotations)
     models = load_cascade(model_paths, target=target)
-    arrays = level_arrays(pyramids, registry, downsample=downsample)
+    arrays = level_arrays(pyramids, registry, downsample=downsample, qc_tables=qc_tables)
     held = registry[registry["role"].isin(["validation", "test"])]
     probabilities = tile_probabilities(models, arrays, held, output_sigma=output_sigma)
     table = score_tiles(held, labels, probabilities)
