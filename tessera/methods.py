@@ -51,6 +51,20 @@ def _bank_text(cascade):
     )
 
 
+def _neighbours_text(neighbours):
+    """The intensity of the sections around, when a 2D model read it.
+
+    Examples
+    --------
+    >>> _neighbours_text(0), _neighbours_text(1), _neighbours_text(2)
+    ('', ', plus the intensity of the section above and below', ', plus the intensity of the 2 sections above and below')
+    """
+    if not neighbours:
+        return ""
+    which = "the section" if neighbours == 1 else f"the {neighbours} sections"
+    return f", plus the intensity of {which} above and below"
+
+
 def _orientations_text(orientations):
     """How many orientations of each training tile were used, when more than one.
 
@@ -129,7 +143,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"{cascade['stages']} stages × {cascade['levels']} levels{_ladder_clause(cascade)}, each node a "
         f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on "
         f"{_bank_text(cascade)}; {_fmt(cascade['coarse_sigmas'])} px in 2D at "
-        f"coarser levels) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
+        f"coarser levels{_neighbours_text(cascade.get('neighbours', 0))}) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
         f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile"
         f"{_orientations_text(cascade.get('orientations', 1))}, "
         f"seed {cascade['seed']}). Annotated tiles of {settings['tiles']['size']} px were split per dataset into "
@@ -263,12 +277,14 @@ def _qc_sentence(c, section_counts):
         f" ({why})" if why else ""
     )
     which = "which was" if flagged == 1 else "which were"
+    read = " (the model read the nearest kept section in place of each)"
     if excluded == flagged:
-        return f"{text}, {which} excluded from training and flagged in the object tables."
+        return f"{text}, {which} excluded from training and flagged in the object tables{read}."
     if excluded == 0:
         return f"{text}, {which} kept (exclusion switched off)."
     return (
-        f"{text}, of which {excluded} were excluded from training and flagged in the object tables."
+        f"{text}, of which {excluded} were excluded from training and flagged in the object "
+        f"tables{read}."
     )
 
 

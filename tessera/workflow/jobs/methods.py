@@ -63,7 +63,12 @@ def methods_job(
         spec = read_node(path, target=t).spec
         targets[t] = {
             **targets[t],
-            "cascade": {**targets[t]["cascade"], "dims": spec.dims, "sigmas": list(spec.sigmas)},
+            "cascade": {
+                **targets[t]["cascade"],
+                "dims": spec.dims,
+                "sigmas": list(spec.sigmas),
+                "neighbours": spec.neighbours,
+            },
         }
     config_sections = {**config_sections, "targets": targets}
     # every dataset's settings file is read (a damaged one fails here); the text quotes the first
