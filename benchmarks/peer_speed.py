@@ -11,7 +11,7 @@ number of pixels per section for both), choose each model's threshold on 14-15, 
 on 16-19. Speed is core voxels of sections 16-19 per second of process CPU time (one thread:
 seconds on one core, steadier than wall time on a shared machine; wall time is reported too),
 features included, tessera with its halo and its default output smoothing, and with the
-workflow's default ``neighbours`` for a serial-section stack (``auto``: 1 in 2D).
+``neighbours`` advised for mitochondria in serial sections (``auto``: 1 in 2D).
 
 Run from the repository root: .venv/bin/python benchmarks/peer_speed.py
 """
@@ -60,7 +60,7 @@ def timed(fn, sections):
 
 
 def run_tessera(image, truth):
-    # the workflow's default for a serial-section stack: 2D, with the sections around
+    # the setting advised for mitochondria in serial sections (neighbours auto, 2D: 1)
     spec = CascadeSpec(seed=SEED, neighbours=automatic_neighbours(2))
     radius = receptive_radius(spec)
     h, w = image.shape[1:]

@@ -90,7 +90,7 @@ def train(root):
     volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
-    # the workflow's default for this SBEM-like volume: 2D, with the sections around
+    # the setting advised for mitochondria in serial sections (neighbours auto, 2D: 1)
     spec = CascadeSpec(
         stages=2, levels=2, samples_per_tile=1500, neighbours=automatic_neighbours(2)
     )

@@ -2,8 +2,8 @@
 
 Tiles come from a synthetic demo volume (tessera_demo, 20 sections of 1024 x 1024 at full
 resolution), one tile per section, mitochondria as the target, folds 3; the default classifier
-and settings of CascadeSpec unless --classifier is given, with the workflow's default
-``neighbours`` for such a stack (``auto``: 1 in 2D).
+and settings of CascadeSpec unless --classifier is given, with the ``neighbours`` advised for
+mitochondria in serial sections (``auto``: 1 in 2D).
 
 Run from the repository root: .venv/bin/python benchmarks/train_time.py
 """
@@ -37,7 +37,7 @@ def main():
     volume = render_dataset(seed=4, shape=(20, 1024, 1024), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
-    # the workflow's default for this SBEM-like volume: 2D, with the sections around
+    # the setting advised for mitochondria in serial sections (neighbours auto, 2D: 1)
     spec = CascadeSpec(
         stages=2, levels=2, classifier=args.classifier, neighbours=automatic_neighbours(2)
     )

@@ -590,7 +590,7 @@ def test_config_schema_states_the_limits_the_code_enforces():
     target = _target_schema()
     cascade = target["cascade"]["properties"]
     for name, (low, high) in LIMITS.items():
-        if name in ("dims", "neighbours"):  # the schema adds auto, resolved when a node is trained
+        if name in ("dims", "neighbours"):  # the schema adds auto, decided when a node is trained
             assert cascade[name]["enum"] == [*range(low, high + 1), "auto"]
             continue
         assert cascade[name]["type"] == "integer", name
@@ -609,12 +609,10 @@ def test_config_schema_states_the_limits_the_code_enforces():
     # the schema's defaults are the spec's defaults (the ladder's keys are no node setting;
     # tests/test_ladder.py checks them against tessera.ladder); voxel_aspect is unset in the
     # config (read from the data, tests/test_train_3d_job.py), the spec's 1.0 is used in 2D only;
-    # dims is auto in the config, decided from the data (same test file), and neighbours auto
-    # follows the dims (tests/test_train_3d_job.py); sigmas is unset in both, and the spec takes
-    # the default of its dims
+    # dims is auto in the config, decided from the data (same test file); sigmas is unset in
+    # both, and the spec takes the default of its dims
     defaults = CascadeSpec().to_dict()
     assert cascade["dims"]["default"] == "auto"
-    assert cascade["neighbours"]["default"] == "auto"
     assert cascade["sigmas"]["default"] is None
     assert CascadeSpec(dims=2).sigmas == DEFAULT_SIGMAS
     assert CascadeSpec(dims=3).sigmas == DEFAULT_SIGMAS_3D
