@@ -78,7 +78,6 @@ def finish(proc):
 def train(root):
     from tessera.cascade.api import (
         CascadeSpec,
-        automatic_neighbours,
         fit_cascade,
         mirrored_stack,
         prepare_tile,
@@ -90,10 +89,7 @@ def train(root):
     volume = render_dataset(seed=9, shape=(8, SIDE, SIDE), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
-    # the setting advised for mitochondria in serial sections (neighbours auto, 2D: 1)
-    spec = CascadeSpec(
-        stages=2, levels=2, samples_per_tile=1500, neighbours=automatic_neighbours(2)
-    )
+    spec = CascadeSpec(stages=2, levels=2, samples_per_tile=1500)
     radius = receptive_radius(spec)
     tiles = []
     for z in range(6):

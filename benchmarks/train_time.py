@@ -2,8 +2,7 @@
 
 Tiles come from a synthetic demo volume (tessera_demo, 20 sections of 1024 x 1024 at full
 resolution), one tile per section, mitochondria as the target, folds 3; the default classifier
-and settings of CascadeSpec unless --classifier is given, with the ``neighbours`` advised for
-mitochondria in serial sections (``auto``: 1 in 2D).
+and settings of CascadeSpec unless --classifier is given.
 
 Run from the repository root: .venv/bin/python benchmarks/train_time.py
 """
@@ -20,7 +19,6 @@ from _common import report  # noqa: E402
 
 from tessera.cascade.api import (
     CascadeSpec,
-    automatic_neighbours,
     fit_cascade,
     mirrored_stack,
     prepare_tile,
@@ -37,10 +35,7 @@ def main():
     volume = render_dataset(seed=4, shape=(20, 1024, 1024), spacing=(40.0, 8.0, 8.0), defects=False)
     image = volume["raw"].astype(np.float32)
     truth = (volume["mitochondria"] > 0).astype(np.uint8)
-    # the setting advised for mitochondria in serial sections (neighbours auto, 2D: 1)
-    spec = CascadeSpec(
-        stages=2, levels=2, classifier=args.classifier, neighbours=automatic_neighbours(2)
-    )
+    spec = CascadeSpec(stages=2, levels=2, classifier=args.classifier)
     radius = receptive_radius(spec)
     rng = np.random.default_rng(0)
     tiles = []

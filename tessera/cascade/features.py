@@ -373,6 +373,7 @@ def neighbour_features(section, *, sigmas=DEFAULT_SIGMAS):
     Returns
     -------
     (M, N, 1 + 2 len(sigmas)) ndarray of float32
+        A view of channel planes (each channel contiguous), as :func:`filter_bank` returns.
     """
     section = np.asarray(section, dtype=np.float32)
     if section.ndim != 2:
@@ -384,4 +385,5 @@ def neighbour_features(section, *, sigmas=DEFAULT_SIGMAS):
         gy, gx = _derivatives(g, (1.0, 1.0))
         lap = _derivatives(gy, (1.0, 1.0))[0] + _derivatives(gx, (1.0, 1.0))[1]
         channels += [g, np.float32(s * s) * lap]
-    return np.stack(channels, axis=-1)
+    # channel planes, as filter_bank stores them: a node multiplies them where they lie
+    return np.moveaxis(np.stack(channels), 0, -1)

@@ -112,13 +112,19 @@ class _Section:
             spacing = (self.spec.voxel_aspect, 1.0, 1.0)
             return section_filter_bank_3d(stack, sigmas=sigmas, spacing=spacing, halo=extra)
         centre = stack.shape[0] // 2
-        parts = [filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False, halo=extra)]
-        parts += [
-            neighbour_features(stack[k], sigmas=sigmas)[extra:-extra, extra:-extra]
+        bank = filter_bank(stack[centre], sigmas=sigmas, mirror_edges=False, halo=extra)
+        if stack.shape[0] == 1:
+            return bank
+        # one array of channel planes, as the centre's bank is: a node then multiplies the
+        # planes where they lie instead of copying every band of them (about 2x faster)
+        parts = [np.moveaxis(bank, -1, 0)] + [
+            np.moveaxis(neighbour_features(stack[k], sigmas=sigmas), -1, 0)[
+                :, extra:-extra, extra:-extra
+            ]
             for k in range(stack.shape[0])
             if k != centre
         ]
-        return np.concatenate(parts, axis=-1) if len(parts) > 1 else parts[0]
+        return np.moveaxis(np.concatenate(parts), 0, -1)
 
     def features(self, level, margin):
         """Image features of `level` over the core + `margin` (clipped to the volume); computed

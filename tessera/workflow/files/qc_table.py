@@ -4,7 +4,8 @@ One row per section, tab-separated: the metrics of
 :func:`~tessera.section_qc.metrics.measure_sections` and the flags of
 :func:`~tessera.section_qc.flags.flag_sections`, floats with 6 significant digits, booleans as
 ``True``/``False``, the ``reason`` column empty for an unflagged section. The section QC job
-writes it; tile sampling, objects, next tiles and the methods paragraph read it. Reading it
+writes it; tile sampling, training and scoring tiles (for the stand-ins of excluded sections),
+the shard plan, objects, next tiles and the methods paragraph read it. Reading it
 through the functions here keeps every reader in agreement on which sections are excluded.
 """
 
