@@ -8,6 +8,9 @@ from snakemake.utils import min_version
 min_version("9.0")
 
 
+include: "rules/config_file.smk"
+
+
 configfile: "config/config.yaml"
 
 

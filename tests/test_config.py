@@ -11,6 +11,7 @@ from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
     check_annotated_datasets,
     check_annotation_files,
+    check_config_file,
     check_config_paths,
     config_paths,
     load_config,
@@ -766,3 +767,26 @@ def test_the_sheet_holds_voxel_sizes_to_the_range_ingest_holds_file_metadata_to(
     for axis in "zyx":
         column = schema["properties"][f"voxel_{axis}_nm"]
         assert (column["minimum"], column["maximum"]) == VOXEL_NM_RANGE
+
+
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        # a tab where YAML wants spaces (YAML 1.2 spec, section 6.1: tabs never indent)
+        ("study:\n\tname: x\n", "line 2: a tab in the indentation; YAML indents with spaces only"),
+        ("", "the file holds no settings; expected a mapping of keys such as datasets:"),
+        ("# only a comment\n", "the file holds no settings"),
+        ("- a\n- b\n", "expected a mapping of settings at the top level, found a list"),
+        ("study: {name: x\n", "line 2: not valid YAML"),
+    ],
+)
+def test_a_config_file_that_is_no_yaml_mapping_is_named_with_its_line(tmp_path, text, message):
+    path = tmp_path / "config.yaml"
+    path.write_text(text)
+    with pytest.raises(TesseraInputError, match=re.escape(message)) as caught:
+        check_config_file(path)
+    assert str(path) in str(caught.value) and "\n" not in str(caught.value)
+
+
+def test_the_demo_config_file_passes_the_file_check(repo):
+    check_config_file(repo / "config" / "config.yaml")

@@ -32,6 +32,60 @@ def read_yaml(path):
         raise TesseraInputError(f"not valid YAML: {exc}".replace("\n", " "), source=path) from None
 
 
+def check_config_file(path):
+    r"""Refuse a config file that is not a YAML mapping, naming the line where it is not.
+
+    Run before the workflow loads the file, whose own message names neither the file nor the
+    line. A tab in the indentation (YAML indents with spaces only) is named as such.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "config.yaml"
+    >>> _ = p.write_text("study:\n\tname: x\n")
+    >>> check_config_file(p)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: .../config.yaml: line 2: a tab in the indentation; YAML indents with spaces only
+    >>> _ = p.write_text("# nothing yet\n")
+    >>> check_config_file(p)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: .../config.yaml: the file holds no settings; expected a mapping of keys such as datasets: and targets: (see the demo's config/config.yaml)
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise TesseraInputError("file not found", source=path) from None
+    except UnicodeDecodeError:
+        raise TesseraInputError("not UTF-8 text; expected a YAML file", source=path) from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"line {mark.line + 1}: " if mark is not None else ""
+        line = (
+            text.splitlines()[mark.line]
+            if mark is not None and mark.line < len(text.splitlines())
+            else ""
+        )
+        if "\t" in line[: len(line) - len(line.lstrip())] or "found character '\\t'" in str(exc):
+            why = "a tab in the indentation; YAML indents with spaces only"
+        else:
+            why = f"not valid YAML ({getattr(exc, 'problem', None) or exc})".replace("\n", " ")
+        raise TesseraInputError(f"{where}{why}", source=path) from None
+    if data is None:
+        raise TesseraInputError(
+            "the file holds no settings; expected a mapping of keys such as datasets: and "
+            "targets: (see the demo's config/config.yaml)",
+            source=path,
+        )
+    if not isinstance(data, dict):
+        raise TesseraInputError(
+            f"expected a mapping of settings at the top level, found a {type(data).__name__}",
+            source=path,
+        )
+
+
 def _with_defaults(validator_class):
     # Fill "default" values of object properties while validating (jsonschema leaves this to
     # the caller). Defaults are filled before the object's own properties are checked.
