@@ -13,7 +13,12 @@ from scipy import ndimage
 from sklearn.metrics import f1_score, precision_recall_curve
 
 from tessera.cascade.classifiers import CHUNK_ROWS, KINDS, linear_first_step
-from tessera.cascade.features import DEFAULT_SIGMAS, DEFAULT_SIGMAS_3D
+from tessera.cascade.features import (
+    DEFAULT_SIGMAS,
+    DEFAULT_SIGMAS_3D,
+    filter_bank,
+    neighbour_features,
+)
 from tessera.cascade.fit import fit_cascade, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import (
     BAND_ROWS,
@@ -28,7 +33,13 @@ from tessera.cascade.frame import (
     node_matrix,
     volume_room,
 )
-from tessera.cascade.geometry import MAX_OUTPUT_SIGMA, margins, receptive_radius, z_halo
+from tessera.cascade.geometry import (
+    MAX_OUTPUT_SIGMA,
+    feature_halo,
+    margins,
+    receptive_radius,
+    z_halo,
+)
 from tessera.cascade.orientations import ORIENTATION_COUNTS
 from tessera.cascade.predict import predict_frame, predict_section
 from tessera.cascade.spec import (
@@ -756,3 +767,32 @@ def test_a_window_without_the_sections_context_needs_is_refused(xsec_cascades):
         predict_frame(models, window, (96, 96))
     assert "(sections z-1..z+1, core (96, 96)" in str(error.value)
     assert f"got (1, {96 + 2 * radius}, {96 + 2 * radius})" in str(error.value)
+
+
+def test_neighbour_channels_are_planes_beside_the_sections_own_bank():
+    # The frame's level-0 features with neighbours 1 hold, in order, the centre's filter bank
+    # and each neighbour's lighter bank, the same values as concatenating the two banks along
+    # the channel axis; each channel is one contiguous plane, so a node multiplies the planes
+    # where they lie (numpy strides: channel stride = one plane, row stride = one row).
+    spec = CascadeSpec(levels=0, neighbours=1, sigmas=(1.0, 2.0))
+    rng = np.random.default_rng(0)
+    radius = receptive_radius(spec)
+    image = rng.normal(128, 20, (3, 20 + 2 * radius, 24 + 2 * radius)).astype(np.float32)
+    frame = make_frame(spec, image, (20, 24))
+    feats = frame.features(0, frame.margins[(1, 0)])
+    h, w, channels = feats.shape
+    extra = feature_halo(spec, 0)
+    top = radius - frame.margins[(1, 0)] - extra
+    window = image[:, top : top + h + 2 * extra, top : top + w + 2 * extra]
+    crop = (slice(extra, -extra), slice(extra, -extra))
+    expected = np.concatenate(
+        [
+            filter_bank(window[1], sigmas=spec.sigmas, mirror_edges=False, halo=extra),
+            neighbour_features(window[0], sigmas=spec.sigmas)[crop],
+            neighbour_features(window[2], sigmas=spec.sigmas)[crop],
+        ],
+        axis=-1,
+    )
+    assert np.array_equal(feats, expected)
+    planes = np.moveaxis(feats, -1, 0)
+    assert planes.strides == (4 * h * w, 4 * w, 4) and channels == expected.shape[-1]
