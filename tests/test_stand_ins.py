@@ -6,6 +6,7 @@ import pytest
 import zarr
 
 from tessera.cascade.api import mirrored_block
+from tessera.errors import TesseraInputError
 from tessera.section_qc.stand_ins import (
     SectionStandIns,
     stand_in_pairs,
@@ -34,9 +35,17 @@ def test_each_excluded_section_is_read_as_the_nearest_kept_one(seed):
     assert stand_in_sections(n, excluded).tolist() == nearest_by_search(n, excluded)
 
 
-def test_sections_outside_the_volume_are_refused():
-    with pytest.raises(ValueError, match="outside 0..3"):
+def test_sections_outside_the_volume_are_refused(tmp_path):
+    with pytest.raises(TesseraInputError, match=r"outside the volume's sections 0\.\.3"):
         stand_in_sections(4, [4])
+    # a QC table of another, longer stack: named, with what was expected
+    qc = tmp_path / "sections.tsv"
+    write_qc_table(pd.DataFrame({"z": range(6), "excluded": [False] * 5 + [True]}), qc)
+    with pytest.raises(
+        TesseraInputError, match="expected the section QC table of this stack"
+    ) as caught:
+        working_stand_ins(qc, np.zeros((4, 2, 2)), (1, 1, 1))
+    assert str(qc) in str(caught.value)
 
 
 @pytest.mark.parametrize("store", ["numpy", "zarr"])

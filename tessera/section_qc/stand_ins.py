@@ -12,6 +12,8 @@ changed; training, tile prediction and whole-volume prediction read through the 
 
 import numpy as np
 
+from tessera.errors import TesseraInputError
+
 __all__ = ["SectionStandIns", "stand_in_pairs", "stand_in_sections", "through_stand_ins"]
 
 
@@ -43,7 +45,10 @@ def stand_in_sections(n_sections, excluded):
     bad = np.zeros(z.size, bool)
     excluded = np.asarray(list(excluded), dtype=np.int64)
     if excluded.size and (excluded.min() < 0 or excluded.max() >= z.size):
-        raise ValueError(f"excluded sections {excluded.tolist()} lie outside 0..{z.size - 1}")
+        raise TesseraInputError(
+            f"excluded sections {excluded.tolist()} lie outside the volume's sections "
+            f"0..{z.size - 1}; expected the section QC table of this stack"
+        )
     bad[excluded] = True
     kept = z[~bad]
     if not kept.size or not bad.any():
@@ -82,7 +87,7 @@ class SectionStandIns:
         self.array = array
         self.stand_ins = np.asarray(stand_ins, dtype=np.int64)
         if self.stand_ins.shape != (array.shape[0],):
-            raise ValueError(
+            raise TesseraInputError(
                 f"{self.stand_ins.size} stand-ins for a volume of {array.shape[0]} sections"
             )
         self.shape = tuple(array.shape)

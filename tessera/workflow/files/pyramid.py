@@ -18,7 +18,10 @@ def working_stand_ins(qc_table, array, factors):
     """``[[z, stand-in], ...]`` of a working-level array: each section the section QC table
     excludes, with the kept section read in its place
     (:func:`tessera.section_qc.stand_ins.stand_in_sections`)."""
-    return stand_in_pairs(array.shape[0], excluded_sections(qc_table, factors[0]))
+    try:
+        return stand_in_pairs(array.shape[0], excluded_sections(qc_table, factors[0]))
+    except TesseraInputError as error:
+        raise TesseraInputError(str(error), source=qc_table) from None
 
 
 def level_arrays(pyramids, registry, *, downsample, qc_tables=None):
