@@ -152,14 +152,10 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         assert fact in text, fact
 
 
-def test_methods_state_the_features_the_trained_model_used(tmp_path):
-    # dims auto and unset sigmas are decided when a node is trained: the text reads the model
-    spec = CascadeSpec(
-        stages=1, levels=0, dims=3, voxel_aspect=1.0, samples_per_tile=60, folds=2, seed=0
-    )
-    rng = np.random.default_rng(1)
-    reach = z_halo(spec)
-    radius = receptive_radius(spec)
+def _first_node(tmp_path, spec, seed):
+    """A one-node cascade of `spec` trained on a dark square in noise, saved; its path."""
+    rng = np.random.default_rng(seed)
+    reach, radius = z_halo(spec), receptive_radius(spec)
     truth = np.zeros((24, 24), np.uint8)
     truth[6:16, 8:18] = 1
     window = rng.normal(150, 10, (2 * reach + 1, 24 + 2 * radius, 24 + 2 * radius))
@@ -167,10 +163,18 @@ def test_methods_state_the_features_the_trained_model_used(tmp_path):
     tiles = [prepare_tile(spec, f"t{i}", window, truth, fold=i) for i in range(2)]
     node = tmp_path / "stage1_level0.npz"
     write_node(fit_cascade(spec, tiles, target="mitochondria")[(1, 0)], node)
+    return node
+
+
+def test_methods_state_the_features_the_trained_model_used(tmp_path):
+    # dims auto and unset sigmas are decided when a node is trained: the text reads the model
+    spec = CascadeSpec(
+        stages=1, levels=0, dims=3, voxel_aspect=1.0, samples_per_tile=60, folds=2, seed=0
+    )
     text = _methods_of_a_run(
         tmp_path,
         cascade_changes={"dims": "auto", "sigmas": None},
-        first_nodes={"mitochondria": node},
+        first_nodes={"mitochondria": _first_node(tmp_path, spec, 1)},
     )
     # the 3D default scales (tessera.cascade.features.DEFAULT_SIGMAS_3D), not the config's
     assert "a 3D Gaussian-derivative filter bank, round in nm (σ = 0.7, 1.6, 3.5, 5, 10 px;" in text
@@ -181,19 +185,10 @@ def test_methods_state_the_features_the_trained_model_used(tmp_path):
 def test_methods_state_the_sections_a_2d_model_read(tmp_path):
     # neighbours auto is decided when a node is trained (1 in 2D): the text reads the model
     spec = CascadeSpec(stages=1, levels=0, neighbours=1, samples_per_tile=60, folds=2, seed=0)
-    rng = np.random.default_rng(2)
-    radius = receptive_radius(spec)
-    truth = np.zeros((24, 24), np.uint8)
-    truth[6:16, 8:18] = 1
-    window = rng.normal(150, 10, (3, 24 + 2 * radius, 24 + 2 * radius))
-    window[:, radius : radius + 24, radius : radius + 24] -= 60 * truth
-    tiles = [prepare_tile(spec, f"t{i}", window, truth, fold=i) for i in range(2)]
-    node = tmp_path / "stage1_level0.npz"
-    write_node(fit_cascade(spec, tiles, target="mitochondria")[(1, 0)], node)
     text = _methods_of_a_run(
         tmp_path,
         cascade_changes={"dims": "auto", "neighbours": "auto", "sigmas": None},
-        first_nodes={"mitochondria": node},
+        first_nodes={"mitochondria": _first_node(tmp_path, spec, 2)},
     )
     assert "coarser levels, plus the intensity of the section above and below)" in text
 
