@@ -11,7 +11,7 @@ min_version("9.0")
 include: "rules/config_file.smk"
 
 
-configfile: "config/config.yaml"
+configfile: CONFIG_FILE
 
 
 include: "rules/common.smk"

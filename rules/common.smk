@@ -31,12 +31,16 @@ DEMO_DIR = "demo/data"
 
 try:
     config = load_config(
-        config, f"{workflow.basedir}/config/schemas/config.schema.yaml"
+        config,
+        f"{workflow.basedir}/config/schemas/config.schema.yaml",
+        source=CONFIG_FILE,
     )
     # variants become targets of their own, checked like any other
     VARIANT_BASE = expand_variants(config)
     config = load_config(
-        config, f"{workflow.basedir}/config/schemas/config.schema.yaml"
+        config,
+        f"{workflow.basedir}/config/schemas/config.schema.yaml",
+        source=CONFIG_FILE,
     )
     DATASETS = load_datasets(
         config["datasets"],

@@ -7,7 +7,10 @@ from snakemake.exceptions import WorkflowError
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import check_config_file
 
+# the one place naming the study's config file (the Snakefile's configfile: reads it here)
+CONFIG_FILE = "config/config.yaml"
+
 try:
-    check_config_file("config/config.yaml")
+    check_config_file(CONFIG_FILE)
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
