@@ -8,13 +8,22 @@ time per section, best of a few runs; the classifiers' time is the same in both 
 number of image channels differs), the difference is the 3D filter bank and its z halo. Voxel
 aspect 1 (isotropic) and 2 are timed.
 
-One thread (BLAS and OpenMP pools limited to one); seconds are process CPU time.
+End to end (``e2e_3d_mvox_per_s_per_core``): the default 2 x 2 cascade in 3D mode (voxel
+aspect 1, two folds for a quick training, every other setting at its default) predicts a
+volume of E2E_SHAPE through the path the workflow's jobs take (shard plan -> predict_shard_job
+-> stitch_job: read, features, cascade, write, checksums) with the default ``predict.block``
+read from the config schema; voxels per wall-clock second of both jobs. The volume repeats a
+256 x 256 tile of the ball volume in plane.
+
+One thread (BLAS and OpenMP pools limited to one); seconds are process CPU time, except end to
+end (wall clock, as scaling.py).
 
 Run from the repository root: .venv/bin/python benchmarks/cascade_3d.py
 """
 
 import os
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -22,6 +31,8 @@ for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ[var] = "1"  # one core: the figures are per core
 
 import numpy as np  # noqa: E402
+import yaml  # noqa: E402
+import zarr  # noqa: E402
 from scipy import ndimage  # noqa: E402
 from threadpoolctl import threadpool_limits  # noqa: E402
 
@@ -34,11 +45,27 @@ from tessera.cascade.api import (  # noqa: E402
     mirrored_stack,
     prepare_tile,
     receptive_radius,
+    save_node,
     z_halo,
 )
+from tessera.io.omezarr import AXES, multiscale_attrs  # noqa: E402
+from tessera.io.store_checksums import record_checksums  # noqa: E402
 from tessera.predict import predict_block  # noqa: E402
+from tessera.workflow.jobs.predict import (  # noqa: E402
+    predict_shard_job,
+    shard_plan_job,
+    stitch_job,
+)
 
 SIDE, SECTIONS, REPEATS, SEED = 256, 4, 2, 0
+E2E_SHAPE = (16, 1536, 1536)
+REPO = Path(__file__).resolve().parent.parent
+
+
+def default_block():
+    """The default ``predict.block`` (z, y, x), read from the config schema."""
+    schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
+    return tuple(schema["properties"]["predict"]["properties"]["block"]["default"])
 
 
 def balls(shape, seed):
@@ -62,6 +89,53 @@ def train(spec, volume, truth):
         labels = truth[z, 64:128, 64:128]
         tiles.append(prepare_tile(spec, f"z{z}", window, labels, fold=i % 2))
     return fit_cascade(spec, tiles, target="balls")
+
+
+def end_to_end(volume, truth):
+    """Voxels per second (one thread, wall clock) of the default 2 x 2 3D cascade, predicting
+    and stitching a volume of E2E_SHAPE with the default block, and the plan's figures."""
+    spec = CascadeSpec(dims=3, voxel_aspect=1.0, folds=2)
+    models = train(spec, volume, truth)
+    tile, _ = balls((E2E_SHAPE[0], SIDE, SIDE), SEED + 1)
+    big = np.tile(tile, (1, E2E_SHAPE[1] // SIDE, E2E_SHAPE[2] // SIDE))
+    with tempfile.TemporaryDirectory(prefix="tessera-cascade-3d-") as tmp:
+        root = Path(tmp)
+        paths = []
+        for (stage, level), model in models.items():
+            paths.append(str(root / f"stage{stage}_level{level}.npz"))
+            save_node(model, paths[-1])
+        image = root / "raw.ome.zarr"
+        group = zarr.open_group(store=str(image), mode="w", zarr_format=3)
+        group.attrs["ome"] = multiscale_attrs(name="raw", spacing=(8, 8, 8), factors=[(1, 1, 1)])
+        group.create_array(name="0", data=big, chunks=(1, 512, 512), dimension_names=AXES)
+        record_checksums(image)
+        plan = root / "plan.json"
+        block = default_block()
+        summary = shard_plan_job(
+            image,
+            paths,
+            plan,
+            target="balls",
+            downsample=1,
+            block=block,
+            shard_jobs=1,
+            max_halo=1024,
+            dtype="uint8",
+        )
+        start = time.perf_counter()
+        predict_shard_job(plan, image, paths, root / "job0", job=0, target="balls")
+        stitch_job(plan, [root / "job0"], root / "probability.ome.zarr", viewing_levels=1)
+        seconds = time.perf_counter() - start
+    return {
+        "shape": list(E2E_SHAPE),
+        "block": list(block),
+        "stages": spec.stages,
+        "levels": spec.levels,
+        "z_halo": z_halo(spec),
+        "halo_px": summary["halo"],
+        "seconds": round(seconds, 1),
+        "mvox_per_s_per_core": round(big.size / seconds / 1e6, 3),
+    }
 
 
 def main():
@@ -91,6 +165,17 @@ def main():
         ratio = figures[label]["cpu_s_per_section"] / figures["2d"]["cpu_s_per_section"]
         figures[label]["ratio_to_2d"] = round(ratio, 2)
         rows.append((f"{label}: ratio to 2D", ratio, "x"))
+    e2e = end_to_end(volume, truth)
+    figures["e2e_3d"] = e2e
+    figures["e2e_3d_mvox_per_s_per_core"] = e2e["mvox_per_s_per_core"]
+    shape = " x ".join(str(n) for n in E2E_SHAPE)
+    rows.append(
+        (
+            f"end to end, default 2 x 2 3D cascade, {shape}",
+            e2e["mvox_per_s_per_core"],
+            "Mvox/s/core",
+        )
+    )
     report("cascade_3d", rows, figures)
 
 

@@ -179,23 +179,22 @@ def block_read_bytes(spec, shape, *, halo, itemsize=1):
 
     A block of `shape` (z, y, x) is read once with `halo` pixels in plane and the cascade's
     ``z_halo`` sections on each side: the raw values (`itemsize` bytes each) and their mirrored
-    copy while it is read, then the float32 stack every frame takes a view of. One frame's
-    window of ``2 z_halo + 1`` float32 sections is part of
-    :func:`tessera.cascade.api.frame_memory_bytes`; this is the rest.
+    copy, which every frame takes a view of. A frame's own count of its window
+    (:func:`tessera.cascade.api.frame_memory_bytes`, in float32) comes on top.
 
     Examples
     --------
     >>> from tessera.cascade.api import CascadeSpec
     >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
-    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 more float32 sections, 2 x 3 uint8
-    1400
+    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 x 3 sections of uint8
+    600
     """
     z, y, x = (int(v) for v in shape)
     sections = z + 2 * z_halo(spec)
     pixels = (y + 2 * int(halo)) * (x + 2 * int(halo))
-    # the raw read and its mirrored copy are freed before any frame is made: counting them on
-    # top keeps the figure an upper bound without following the order of events
-    return pixels * (4 * (z - 1) + 2 * itemsize * sections)
+    # the raw read is freed once mirrored (where the block crosses an edge): counting both
+    # keeps the figure an upper bound without following the order of events
+    return pixels * 2 * itemsize * sections
 
 
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
@@ -204,7 +203,9 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     The block's sections and the cascade's ``z_halo`` sections on each side (mirrored beyond the
     first and last section) are read once, with a halo of the receptive radius in plane
     (mirrored beyond the volume; a shard plan's ``halo``, or :func:`shard_halo` when not given),
-    and converted to float32 once; each section is predicted from a view of that stack with
+    and kept in their stored dtype (uint8 after ingest: a quarter of float32, and the filter
+    banks convert only what they read, exactly); each section is predicted from a view of that
+    stack with
     :func:`tessera.cascade.api.predict_frames` (consecutive sections share the maps of the
     sections around them). `volume` may be a zarr array.
     """
@@ -216,7 +217,7 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     # and consecutive sections' windows overlap in all but one of them
     stack = mirrored_block(
         volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
-    ).astype(np.float32)
+    )
     windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))

@@ -430,31 +430,46 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, s
     # overstating it by more than half. With cross-section context a frame holds the maps and
     # features of three sections; in 3D mode it also holds 2 x 11 + 1 sections of image, and
     # the 3D filter bank's work (float64 eigenvalues of 3 x 3 matrices) is larger. The block lies a whole halo inside the volume: the worst
-    # case the estimate is for (a block at an edge classifies less of its halo).
+    # case the estimate is for (a block at an edge classifies less of its halo). The volume is
+    # a zarr array, as a shard job reads: a numpy volume would lend the frame a view of itself.
     study = request.getfixturevalue(fixture)
     rng = np.random.default_rng(side)
     halo = receptive_radius(study["spec"])
-    volume = rng.integers(0, 256, (3, side + 2 * halo, side + 2 * halo), dtype=np.uint8)
+    volume = zarr.array(rng.integers(0, 256, (3, side + 2 * halo, side + 2 * halo), dtype=np.uint8))
     tracemalloc.start()
     try:
         predict.predict_block(study["models"], volume, (1, 2, halo, halo + side, halo, halo + side))
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    estimate = frame_memory_bytes(study["spec"], (side, side))
+    estimate = frame_memory_bytes(study["spec"], (side, side), itemsize=1)  # a uint8 volume
     assert peak <= estimate <= 1.5 * peak, (peak, estimate)
+
+
+@pytest.mark.parametrize("fixture", ["study", "xsec_study", "study_3d"])
+def test_an_8_bit_volume_is_predicted_as_its_float32_copy_bit_for_bit(request, fixture):
+    # Frames keep 8-bit grey values as read and every filter converts what it reads; the
+    # conversion is exact, so the maps equal those of the volume converted up front.
+    study = request.getfixturevalue(fixture)
+    halo = receptive_radius(study["spec"])
+    rng = np.random.default_rng(11)
+    volume = rng.integers(0, 256, (5, 40 + 2 * halo, 40 + 2 * halo), dtype=np.uint8)
+    box = (1, 4, halo, halo + 40, halo, halo + 40)
+    as_read = predict.predict_block(study["models"], volume, box)
+    converted = predict.predict_block(study["models"], volume.astype(np.float32), box)
+    assert np.array_equal(as_read, converted)
 
 
 @pytest.mark.parametrize("fixture", ["xsec_study", "study_3d"])
 def test_a_block_of_several_sections_takes_one_frame_and_its_read(request, fixture):
-    # A block is read once (its sections and the z halo, float32) and every section's frame
-    # takes a view of it: the peak (tracemalloc, as above) is one frame's estimate plus the
-    # rest of the read (block_read_bytes) and the block's output, not one frame per section.
+    # A block is read once (its sections and the z halo, uint8 as stored) and every section's
+    # frame takes a view of it: the peak (tracemalloc, as above) is one frame's estimate plus
+    # the rest of the read (block_read_bytes) and the block's output, not one frame per section.
     study = request.getfixturevalue(fixture)
     spec, side = study["spec"], 48
     halo = receptive_radius(spec)
     rng = np.random.default_rng(3)
-    volume = rng.integers(0, 256, (6, side + 2 * halo, side + 2 * halo), dtype=np.uint8)
+    volume = zarr.array(rng.integers(0, 256, (6, side + 2 * halo, side + 2 * halo), dtype=np.uint8))
     peaks, estimates = {}, {}
     for count in (1, 4):
         box = (1, 1 + count, halo, halo + side, halo, halo + side)
@@ -465,15 +480,15 @@ def test_a_block_of_several_sections_takes_one_frame_and_its_read(request, fixtu
         finally:
             tracemalloc.stop()
         estimates[count] = (
-            frame_memory_bytes(spec, (side, side))
+            frame_memory_bytes(spec, (side, side), itemsize=1)
             + block_read_bytes(spec, (count, side, side), halo=halo)
             + 4 * count * side * side
         )
         assert peaks[count] <= estimates[count] <= 1.5 * peaks[count], (count, peaks, estimates)
-    # three more sections held as float32 (4 bytes each, numpy) and their output; the
-    # estimate grows at least as much
+    # three more sections held as read (1 byte each) and their float32 output (4 bytes each,
+    # numpy); the estimate grows at least as much
     grown = peaks[4] - peaks[1]
-    assert 4 * 3 * ((side + 2 * halo) ** 2 + side * side) <= grown, grown
+    assert 3 * ((side + 2 * halo) ** 2 + 4 * side * side) <= grown, grown
     assert grown <= estimates[4] - estimates[1], (grown, estimates)
 
 

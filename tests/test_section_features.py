@@ -152,6 +152,39 @@ def test_closed_form_eigenvalues_equal_numpy_eigvalsh_including_degenerate_cases
     np.testing.assert_array_equal(ours[-10], [0.0, 0.0, 0.0])
 
 
+def test_eigenvalues_of_planes_are_those_of_each_row_and_can_be_written_into_channel_planes():
+    # The formula runs over passes of a few rows; a plane wider and taller than one pass must
+    # give, bit for bit, what each of its rows gives alone, and match numpy.linalg.eigvalsh
+    # (LAPACK) as above. `out` may be the channel planes of a channels-last array (a view).
+    rng = np.random.default_rng(5)
+    a = rng.normal(size=(6, 37, 1100)).astype(np.float32)
+    entries = (a[0], a[1], a[2], a[3], a[4], a[5])
+    planes = np.zeros((3, 37, 1100), np.float32)
+    channels_last = np.moveaxis(planes, 0, -1)
+    out = [channels_last[..., k] for k in range(3)]
+    returned = symmetric_eigenvalues_3x3(*entries, out=out)
+    assert all(r is o for r, o in zip(returned, out, strict=True))
+    for row in (0, 17, 36):
+        alone = symmetric_eigenvalues_3x3(*(e[row] for e in entries))
+        for k in range(3):
+            assert np.array_equal(planes[k, row], alone[k])
+    m = np.stack(
+        [
+            np.stack([a[0], a[1], a[2]], -1),
+            np.stack([a[1], a[3], a[4]], -1),
+            np.stack([a[2], a[4], a[5]], -1),
+        ],
+        -2,
+    ).astype(np.float64)
+    expected = np.moveaxis(np.linalg.eigvalsh(m)[..., ::-1], -1, 0)
+    scale = np.abs(expected).max(axis=0)
+    assert np.all(np.abs(planes - expected) <= 2 * EPS32 * scale)
+    # an `out` whose rows cannot be viewed as one run would lose the values: refused
+    volume = [rng.normal(size=(4, 10, 30)) for _ in range(6)]
+    with pytest.raises(ValueError):
+        symmetric_eigenvalues_3x3(*volume, out=[np.zeros((30, 10, 4), np.float32).T] * 3)
+
+
 def test_z_reach_is_exactly_what_the_centre_depends_on():
     spacing = (20.0, 10.0, 10.0)
     reach = section_bank_z_reach(SIGMAS, spacing=spacing)

@@ -152,7 +152,7 @@ def _filter_temporaries(spec, level, pixels, channels):
     return max(4 * pixels * (4 * scales + 48), sums)
 
 
-def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
+def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0, itemsize=4):
     """Peak bytes :func:`predict_frame` allocates for one core of `core_shape` (y, x).
 
     Follows the frame's geometry: the image levels (with the sections the image features read
@@ -160,7 +160,8 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     every level's cached image features over the widest margin its nodes read, every node's
     map, and the larger of the filter bank's temporaries (2D, or 3D at level 0 with ``dims`` =
     3) and the biggest node's context maps with one band of its feature rows and the
-    classifier's work on it. Everything is float32.
+    classifier's work on it. Everything is float32 but the frame's own image, which holds
+    `itemsize` bytes per grey value (8- and 16-bit images are kept as they are).
 
     Examples
     --------
@@ -177,7 +178,8 @@ def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0):
     used = 2 * section_reach(spec, (1, 0)) + 1
     per_section = 2 * spec.neighbours + 1
     pixels0 = (cy + 2 * halo) * (cx + 2 * halo)
-    image = 4 * pixels0 * (2 * z_halo(spec) + 1 + used * per_section / 3)  # + coarser levels
+    # the sections read, then the coarser levels (float32 means)
+    image = pixels0 * (itemsize * (2 * z_halo(spec) + 1) + 4 * used * per_section / 3)
     cached = filters = 0
     for level in range(spec.levels + 1):
         f = 2**level

@@ -38,6 +38,8 @@ _Z_DIFFERENCE_REACH = 2
 # Sections × rows × columns converted to float64 at a time for the weighted sums along z.
 _CHUNK_VALUES = 4_000_000
 _UNIT_STEPS = (1.0, 1.0)
+# Values per pass of the eigenvalue formula: its float64 temporaries then stay in cache
+_EIGEN_CHUNK = 16_384
 
 
 def _axis_ratios(spacing):
@@ -79,7 +81,7 @@ def section_bank_z_reach(sigmas=DEFAULT_SIGMAS_3D, *, spacing):
     return _reach(_check_sigmas(sigmas), _axis_ratios(spacing))
 
 
-def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22):
+def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     """Eigenvalues, largest first, of symmetric 3 × 3 matrices given by their six entries.
 
     Closed form: the trigonometric solution of the characteristic cubic of the traceless,
@@ -93,39 +95,105 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22):
     ----------
     a00, a01, a02, a11, a12, a22 : array_like
         The upper triangle, all of one shape (broadcast).
+    out : sequence of 3 ndarray of float32, optional
+        Arrays of the broadcast shape to write the eigenvalues into (channel planes, say).
 
     Returns
     -------
     list of 3 ndarray of float32
-        Eigenvalues in descending order, each of the broadcast shape.
+        Eigenvalues in descending order, each of the broadcast shape (`out` when given).
+
+    Notes
+    -----
+    The formula runs over rows of a few thousand values at a time in float64 buffers that are
+    reused, rather than over whole planes: its dozen temporaries then stay in the processor's
+    cache. Every operation and its order is the same either way, so the result is too.
 
     Examples
     --------
     >>> [float(e) for e in symmetric_eigenvalues_3x3(2.0, 1.0, 0.0, 2.0, 0.0, 3.0)]
     [3.0, 3.0, 1.0]
     """
-    a00, a01, a02, a11, a12, a22 = np.broadcast_arrays(
-        *(np.asarray(v, dtype=np.float64) for v in (a00, a01, a02, a11, a12, a22))
-    )
-    q = (a00 + a11 + a22) / 3.0
-    b00, b11, b22 = a00 - q, a11 - q, a22 - q
-    p = np.sqrt(
-        (b00 * b00 + b11 * b11 + b22 * b22 + 2.0 * (a01 * a01 + a02 * a02 + a12 * a12)) / 6.0
-    )
-    det = (
-        b00 * (b11 * b22 - a12 * a12)
-        - a01 * (a01 * b22 - a12 * a02)
-        + a02 * (a01 * a12 - b11 * a02)
-    )
+    entries = np.broadcast_arrays(*(np.asarray(v) for v in (a00, a01, a02, a11, a12, a22)))
+    shape = entries[0].shape
+    if out is None:
+        out = [np.empty(shape, dtype=np.float32) for _ in range(3)]
+    width = shape[-1] if shape else 1
+    rows_in = [e.reshape(-1, width) for e in entries]
+    # views of `out` (a copy would take the values away with it: refused)
+    rows_out = [np.reshape(o, (-1, width), copy=False) for o in out]
+    step = max(1, _EIGEN_CHUNK // width)
+    buffers = np.empty((12, step * width))
+    for start in range(0, rows_in[0].shape[0], step):
+        stop = min(start + step, rows_in[0].shape[0])
+        _eigenvalue_rows(
+            [r[start:stop] for r in rows_in],
+            [r[start:stop] for r in rows_out],
+            buffers[:, : (stop - start) * width],
+        )
+    return list(out)
+
+
+def _eigenvalue_rows(entries, out, buffers):
+    """The closed form of :func:`symmetric_eigenvalues_3x3` on a few rows, in `buffers`."""
+    n = entries[0].shape
+    a00, a01, a02, a11, a12, a22, q, p, t, u, v, s = (b.reshape(n) for b in buffers)
+    for buffer, entry in zip((a00, a01, a02, a11, a12, a22), entries, strict=True):
+        buffer[...] = entry
+    np.add(a00, a11, out=q)
+    q += a22
+    np.divide(q, 3.0, out=q)
+    b00, b11, b22 = a00, a11, a22  # the diagonal of A - qI, in place
+    b00 -= q
+    b11 -= q
+    b22 -= q
+    # p = sqrt((b00² + b11² + b22² + 2 (a01² + a02² + a12²)) / 6)
+    np.multiply(b00, b00, out=p)
+    p += np.multiply(b11, b11, out=t)
+    p += np.multiply(b22, b22, out=t)
+    np.multiply(a01, a01, out=u)
+    u += np.multiply(a02, a02, out=t)
+    u += np.multiply(a12, a12, out=t)
+    u *= 2.0
+    p += u
+    np.divide(p, 6.0, out=p)
+    np.sqrt(p, out=p)
+    # det = b00 (b11 b22 - a12²) - a01 (a01 b22 - a12 a02) + a02 (a01 a12 - b11 a02)
+    np.multiply(b11, b22, out=t)
+    t -= np.multiply(a12, a12, out=u)
+    t *= b00
+    np.multiply(a01, b22, out=u)
+    u -= np.multiply(a12, a02, out=v)
+    u *= a01
+    t -= u
+    np.multiply(a01, a12, out=u)
+    u -= np.multiply(b11, a02, out=v)
+    u *= a02
+    t += u
     # det(B) / 2 = det(A - qI) / (2 p³) lies in [-1, 1]; rounding can step just outside it
+    np.multiply(p, 2.0, out=u)
+    u *= p
+    u *= p
     with np.errstate(divide="ignore", invalid="ignore"):
-        half_det = np.where(p > 0, det / (2.0 * p * p * p), 0.0)
-    phi = np.arccos(np.clip(half_det, -1.0, 1.0)) / 3.0
-    largest = q + 2.0 * p * np.cos(phi)
-    smallest = q + 2.0 * p * np.cos(phi + 2.0 * math.pi / 3.0)
+        np.divide(t, u, out=t)
+    np.copyto(t, 0.0, where=~(p > 0))
+    np.clip(t, -1.0, 1.0, out=t)
+    phi = np.arccos(t, out=t)
+    np.divide(phi, 3.0, out=phi)
+    largest = np.multiply(p, 2.0, out=v)
+    largest *= np.cos(phi, out=u)
+    largest += q
+    phi += 2.0 * math.pi / 3.0
+    smallest = np.multiply(p, 2.0, out=s)
+    smallest *= np.cos(phi, out=u)
+    smallest += q
     # the trace fixes the middle one; clipped so that rounding never breaks the order
-    middle = np.clip(3.0 * q - largest - smallest, smallest, largest)
-    return [e.astype(np.float32) for e in (largest, middle, smallest)]
+    middle = np.multiply(q, 3.0, out=u)
+    middle -= largest
+    middle -= smallest
+    np.clip(middle, smallest, largest, out=middle)
+    for target, values in zip(out, (largest, middle, smallest), strict=True):
+        target[...] = values
 
 
 def _z_weights(sigma_z):
@@ -156,9 +224,15 @@ def _weighted_sections(window, weights):
     centre = n // 2
     out = np.empty((len(weights), 3, h, w), dtype=np.float32)
     rows = max(1, _CHUNK_VALUES // (n * w))
+    # the value filter_bank filters is the image cast to float32; for 8- and 16-bit grey values
+    # that cast is exact, and one conversion straight to float64 gives the same numbers
+    exact = np.issubdtype(window.dtype, np.integer) and window.dtype.itemsize <= 2
     for start in range(0, h, rows):
-        # float32 first: the value filter_bank filters is the image cast to float32
-        block = np.asarray(window[:, start : start + rows], dtype=np.float32).astype(np.float64)
+        rows_of_window = window[:, start : start + rows]
+        if exact:
+            block = rows_of_window.astype(np.float64)
+        else:
+            block = np.asarray(rows_of_window, dtype=np.float32).astype(np.float64)
         for i, rows_of_sigma in enumerate(weights):
             k = rows_of_sigma.shape[1] // 2  # each σ reads only its own reach
             near = block[centre - k : centre + k + 1]
@@ -207,11 +281,14 @@ def _scale_channels_3d(channels, planes, following, s, inplane, context=(0, 0)):
     channels.append(norm * (zz + yy + xx))
     if following is not None:
         channels.append(g[core] - following[core])
-    channels.extend(norm * e for e in symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx))
+    hessian = [channels.take() for _ in range(3)]  # written in place, then scaled
+    symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx, out=hessian)
+    for values in hessian:
+        values *= norm
     grads = (gz, gy, gx)
     pairs = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
-    tensor = (gaussian_smooth(grads[a], inplane, times=grads[b])[core] for a, b in pairs)
-    channels.extend(symmetric_eigenvalues_3x3(*tensor))
+    tensor = [gaussian_smooth(grads[a], inplane, times=grads[b])[core] for a, b in pairs]
+    symmetric_eigenvalues_3x3(*tensor, out=[channels.take() for _ in range(3)])
 
 
 def section_filter_bank_3d(stack, *, sigmas=DEFAULT_SIGMAS_3D, spacing, halo=0):

@@ -141,7 +141,10 @@ def shard_memory_mb(plan, job, spec, model_paths):
             z * y * x * (4 * 4 + itemsize)
         )  # probabilities, clip/scale/round temporaries, encoded
         worst = max(
-            worst, frame_memory_bytes(spec, (y, x), output_sigma=output_sigma) + window + block
+            worst,
+            frame_memory_bytes(spec, (y, x), output_sigma=output_sigma, itemsize=1)
+            + window
+            + block,
         )
     return BASELINE_MB + math.ceil((models_bytes(model_paths) + worst) / 1e6)
 
