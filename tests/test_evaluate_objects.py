@@ -310,12 +310,37 @@ def test_held_out_sections_keep_the_guard_distance_and_skip_other_roles():
         }
     )
     registry.loc[4, "dataset"] = "d2"
-    # by hand: d1's test range is 3..9; sections 5, 6, 7 lie nearer than 2 to the training
-    # section 6, and 4 holds a validation tile
-    assert held_out_sections(registry, "d1", guard_sections=2) == [3, 8, 9]
-    # guard 0 still leaves the training section itself out: whole sections are scored
-    assert held_out_sections(registry, "d1", guard_sections=0) == [3, 5, 7, 8, 9]
-    assert held_out_sections(registry, "d3", guard_sections=2) == []
+    # by hand, d1 in 12 sections: test tiles at 3 and 9, validation at 4, training at 6.
+    # Sections 0-3 are nearest the test tile at 3; 4 holds the validation tile and 5 is nearer
+    # it; 6 is training and 7 nearer it than to 9; 8-11 are nearest 9 and at least 2 from 6
+    assert held_out_sections(registry, "d1", guard_sections=2, depth=12) == [
+        0,
+        1,
+        2,
+        3,
+        8,
+        9,
+        10,
+        11,
+    ]
+    # a section as near training as a test tile is not the test side's: guard 0 changes nothing
+    assert held_out_sections(registry, "d1", guard_sections=0, depth=12) == [
+        0,
+        1,
+        2,
+        3,
+        8,
+        9,
+        10,
+        11,
+    ]
+    # a guard wider than the gap keeps sections away from training even on the test side
+    assert held_out_sections(registry, "d1", guard_sections=3, depth=12) == [0, 1, 2, 3, 9, 10, 11]
+    # guard tiles (dropped by the split) claim no sections: d2's test tiles at 0 and 12 share
+    # its 13 sections, the middle one a tie
+    registry.loc[len(registry)] = {"dataset": "d2", "z": 5, "role": "guard"}
+    assert held_out_sections(registry, "d2", guard_sections=2, depth=13) == list(range(13))
+    assert held_out_sections(registry, "d3", guard_sections=2, depth=12) == []
 
 
 @pytest.mark.parametrize("guard", [1, 2, 3])
@@ -337,13 +362,17 @@ def test_held_out_sections_of_a_real_split_are_test_sections_apart_from_training
         }
     )
     split = split_tiles(registry, guard_sections=guard, seed=guard)
-    sections = np.array(held_out_sections(split, "d", guard_sections=guard))
+    sections = np.array(held_out_sections(split, "d", guard_sections=guard, depth=40))
     train = split.loc[split["role"] == "train", "z"].to_numpy()
     test = split.loc[split["role"] == "test", "z"].to_numpy()
+    validation = split.loc[split["role"] == "validation", "z"].to_numpy()
     # the split's promise (README: held-out tiles are guard_sections apart in z from training)
-    # holds for every scored section, and every test tile's section is scored
+    # holds for every scored section, every test tile's section is scored, no validation
+    # tile's section is, and the scored sections are one run (the test side of the split)
     assert np.abs(sections[:, None] - train[None, :]).min() >= guard
     assert set(test.tolist()) <= set(sections.tolist())
+    assert not set(validation.tolist()) & set(sections.tolist())
+    assert np.all(np.diff(sections) == 1)
 
 
 def test_a_dataset_without_test_tiles_gets_a_row_saying_so(tmp_path):

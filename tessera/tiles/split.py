@@ -123,13 +123,16 @@ def _split_group(z, fr, guard, descending, test_first):
     return roles.tolist()
 
 
-def held_out_sections(registry, dataset, *, guard_sections, role="test"):
-    """Whole sections of a dataset that may be scored as held out: the z range of its `role`
-    tiles, without any section nearer than `guard_sections` to a training tile or holding a
-    tile of another role.
+def held_out_sections(registry, dataset, *, guard_sections, depth, role="test"):
+    """Whole sections of a dataset that may be scored as held out: the `role` side of the split,
+    without any section nearer than `guard_sections` to a training tile.
 
-    Scoring whole sections (3D objects) uses more than the tiles themselves, so every section of
-    the range must keep the split's distance from training; with ``guard_sections`` 0 a
+    The split gives each role one contiguous z range of tiles; between the ranges, and beyond
+    the outermost tiles, lie sections without tiles. A section belongs to the `role` side when
+    its nearest tile (of any role but ``guard``) is a `role` tile, strictly: the side runs from
+    the role's tiles to the midpoints of the gaps and out to the stack's first or last section.
+    Scoring whole sections (3D objects) thus takes every section no other role is nearer to,
+    and a slab of sections rather than only those the tiles lie on; with ``guard_sections`` 0 a
     training tile's own section is still left out.
 
     Parameters
@@ -139,6 +142,8 @@ def held_out_sections(registry, dataset, *, guard_sections, role="test"):
     dataset : str
     guard_sections : int
         The split's guard distance, in the registry's z grid.
+    depth : int
+        Sections of the dataset in the registry's z grid (the working level).
     role : str, optional
         ``"test"`` or ``"validation"``.
 
@@ -151,20 +156,24 @@ def held_out_sections(registry, dataset, *, guard_sections, role="test"):
     --------
     >>> reg = pd.DataFrame({"dataset": "d", "z": [0, 1, 2, 4, 6, 7, 9],
     ...     "role": ["train", "train", "guard", "validation", "test", "test", "test"]})
-    >>> held_out_sections(reg, "d", guard_sections=2)
-    [6, 7, 8, 9]
+    >>> held_out_sections(reg, "d", guard_sections=2, depth=12)
+    [6, 7, 8, 9, 10, 11]
     """
     guard = as_int(guard_sections, low=0, where="guard_sections", source=None)
-    rows = registry[registry["dataset"] == dataset]
+    depth = as_int(depth, low=1, where="depth", source=None)
+    rows = registry[(registry["dataset"] == dataset) & (registry["role"] != "guard")]
     z = rows["z"].to_numpy(dtype=np.int64)
     roles = rows["role"].to_numpy(dtype=object)
-    held = z[roles == role]
+    held, others = z[roles == role], z[roles != role]
     if held.size == 0:
         return []
-    candidates = np.arange(held.min(), held.max() + 1)
-    train = z[roles == "train"]
-    others = z[(roles != role) & (roles != "train")]
-    if train.size:
-        distance = np.abs(candidates[:, None] - train[None, :]).min(axis=1)
-        candidates = candidates[distance >= max(guard, 1)]
-    return [int(v) for v in candidates if v not in set(others.tolist())]
+    sections = np.arange(depth)
+
+    def distance(sites):
+        if sites.size == 0:
+            return np.full(depth, np.iinfo(np.int64).max)
+        return np.abs(sections[:, None] - sites[None, :]).min(axis=1)
+
+    keep = distance(held) < distance(others)
+    keep &= distance(z[roles == "train"]) >= max(guard, 1)
+    return [int(v) for v in sections[keep]]

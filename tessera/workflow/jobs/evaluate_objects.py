@@ -1,7 +1,8 @@
 """Job of rule evaluate_objects: the stitched objects scored in 3D on the held-out sections.
 
-Per dataset, the scored sections are the test split's z range at the working level without any
-section near training (:func:`tessera.tiles.split.held_out_sections`), taken at full resolution
+Per dataset, the scored sections are the test side of the split at the working level (the
+sections nearest a test tile), without any section near training
+(:func:`tessera.tiles.split.held_out_sections`), taken at full resolution
 and without the sections QC excluded. The true objects are the instance volume when the config
 gives one, else the 26-connected components of the label volume, both computed on the whole
 volume and then cut to the scored sections (as the objects were labelled on the whole volume).
@@ -75,7 +76,9 @@ def _truth(labels, instances, shape):
 
 def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excluded):
     """(full-resolution sections scored for `dataset`, ascending; why none, or '')."""
-    working = held_out_sections(registry, dataset, guard_sections=guard_sections)
+    working = held_out_sections(
+        registry, dataset, guard_sections=guard_sections, depth=-(-depth // z_factor)
+    )
     if not working:
         return [], "no test tiles in this dataset: not scored"
     skip = set(excluded)
