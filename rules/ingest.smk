@@ -1,9 +1,34 @@
 # Raw stack (TIFF, PNG slices, MRC, zarr, HDF5, N5) -> single-level OME-Zarr of uint8 sections.
+# The stack is checked by a job of its own first: Snakemake removes a job's earlier outputs when
+# the job starts, so a damaged replacement of a stack is refused before the earlier image goes.
+
+
+rule check_stack:
+    input:
+        stack=dataset_path,
+    output:
+        check="results/{dataset}/ingest/stack_check.json",
+    log:
+        "logs/check_stack/{dataset}.log",
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(500),
+        runtime=scaled_by_attempt(10),
+    params:
+        format=dataset_format,
+        internal_path=dataset_internal_path,
+        spacing=dataset_spacing,
+        missing_sections=config["ingest"]["missing_sections"],
+        code=script_code("check_stack"),
+    script:
+        "../scripts/check_stack.py"
 
 
 rule ingest:
     input:
         stack=dataset_path,
+        check="results/{dataset}/ingest/stack_check.json",
     output:
         image=directory("results/{dataset}/ingest/raw.ome.zarr"),
     log:

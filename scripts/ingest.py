@@ -21,4 +21,5 @@ run_job(
     percentiles=snakemake.params.percentiles,
     missing_sections=snakemake.params.missing_sections,
     missing_chunks=snakemake.params.missing_chunks,
+    checked=snakemake.input.check,
 )

@@ -140,6 +140,15 @@ def test_yaml_is_loaded_safely(tmp_path):
         read_yaml(path)
 
 
+def test_a_yaml_file_not_in_utf8_is_one_line(tmp_path):
+    # YAML files are UTF-8 (YAML 1.2 allows UTF-8/16/32; PyYAML reads what it is given): a
+    # Latin-1 accent is a byte UTF-8 cannot decode
+    path = tmp_path / "c.yaml"
+    path.write_bytes("study: {name: caf\u00e9}\n".encode("latin-1"))
+    with pytest.raises(TesseraInputError, match=r"c\.yaml: not UTF-8 text; expected a YAML file"):
+        read_yaml(path)
+
+
 @pytest.mark.parametrize(
     "tag",
     [

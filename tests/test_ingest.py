@@ -17,7 +17,7 @@ from tessera.io.omezarr import open_image
 from tessera.io.stacks import open_stack
 from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.qc_table import excluded_sections, read_qc_table
-from tessera.workflow.jobs.ingest import ingest_job
+from tessera.workflow.jobs.ingest import check_stack_job, ingest_job
 from tessera.workflow.jobs.section_qc import section_qc_job
 
 SPACING = (40.0, 8.0, 8.0)
@@ -217,6 +217,32 @@ def test_bad_input_is_one_clear_error_and_writes_nothing(tmp_path, make, fmt, sp
         ingest_job(src, tmp_path / "o.ome.zarr", fmt=fmt, spacing=spacing)
     assert str(src) in str(info.value)  # the message names the file
     assert sorted(os.listdir(tmp_path)) == before
+    # the stack check, run before ingest, refuses the same stack with the same line
+    with pytest.raises(TesseraInputError, match=message) as info:
+        check_stack_job(src, tmp_path / "stack_check.json", fmt=fmt, spacing=spacing)
+    assert str(src) in str(info.value)
+    assert sorted(os.listdir(tmp_path)) == before
+
+
+def test_the_stack_check_records_the_stack_and_ingest_converts_only_that_stack(tmp_path):
+    src = tmp_path / "in.tif"
+    stack = np.arange(3 * 8 * 8, dtype=np.uint16).reshape(3, 8, 8)
+    tifffile.imwrite(src, stack, photometric="minisblack")
+    check = tmp_path / "stack_check.json"
+    found = check_stack_job(src, check, fmt="tiff_stack", spacing=(40, 8, 8))
+    # what was written: 3 pages of 8 x 8, uint16, at the sheet's voxel size
+    assert found["shape"] == [3, 8, 8] and found["dtype"] == "uint16"
+    assert found["spacing"] == [40.0, 8.0, 8.0]
+    assert json.loads(check.read_text())["stack"] == found
+    ingest_job(src, tmp_path / "o.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8), checked=check)
+    assert open_image(tmp_path / "o.ome.zarr")[1]["levels"][0].shape == (3, 8, 8)
+    # a stack replaced after its check (here one section fewer) is not converted
+    tifffile.imwrite(src, stack[:2], photometric="minisblack")
+    with pytest.raises(TesseraInputError, match="not the one rule check_stack checked"):
+        ingest_job(
+            src, tmp_path / "p.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8), checked=check
+        )
+    assert not (tmp_path / "p.ome.zarr").exists()
 
 
 def test_real_sstem_stack_ingests_with_its_voxel_size(tmp_path, vnc_sstem):

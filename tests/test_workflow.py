@@ -654,3 +654,45 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     assert len(registry) == 8 and set(registry["source"]) == {"painted"}
     assert set(registry["role"]) <= {"train", "validation", "test", "guard"}
     assert all(set(np.unique(v)) <= {0, 1} for v in labels.values())
+
+
+def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(tmp_path, repo=REPO_ROOT):
+    # Snakemake removes a job's outputs when the job starts (its documented rerun behaviour).
+    # The stack is checked by a job of its own before ingest, so a stack replaced by a damaged
+    # file is refused there, in one line naming it, and the dataset's earlier image stays.
+    import tifffile
+
+    rng = np.random.default_rng(4)
+    (tmp_path / "config").mkdir()
+    (tmp_path / "stacks").mkdir()
+    (tmp_path / "labels").mkdir()
+    stack = tmp_path / "stacks" / "d1.tif"
+    tifffile.imwrite(stack, rng.integers(0, 256, (6, 64, 64), dtype=np.uint8))
+    tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
+    config = tiny_config()
+    config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
+    config["targets"]["nuclei"]["annotated_datasets"] = ["d1"]
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
+    (tmp_path / "config" / "datasets.tsv").write_text(
+        TINY_SHEET.splitlines()[0] + "\nd1\twarm\td1\tstacks/d1.tif\ttiff_stack\t40\t8\t8\t\n"
+    )
+    image = "results/d1/ingest/raw.ome.zarr"
+    args = ("--cores", "1", "--snakefile", str(repo / "Snakefile"), image)
+    snakemake(*args, cwd=tmp_path)
+    written = {
+        p.relative_to(tmp_path): p.read_bytes()
+        for p in sorted((tmp_path / image).rglob("*"))
+        if p.is_file()
+    }
+    assert written
+    stack.write_bytes(stack.read_bytes()[: stack.stat().st_size // 2])  # cut short
+    result = snakemake(*args, cwd=tmp_path, check=False)
+    assert result.returncode != 0
+    told = result.stderr + result.stdout
+    assert "stacks/d1.tif: " in told and "truncated or damaged" in told
+    kept = {
+        p.relative_to(tmp_path): p.read_bytes()
+        for p in sorted((tmp_path / image).rglob("*"))
+        if p.is_file()
+    }
+    assert kept == written

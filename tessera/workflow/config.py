@@ -28,6 +28,8 @@ def read_yaml(path):
             return yaml.safe_load(fh)
     except FileNotFoundError:
         raise TesseraInputError("file not found", source=path) from None
+    except UnicodeDecodeError:
+        raise TesseraInputError("not UTF-8 text; expected a YAML file", source=path) from None
     except yaml.YAMLError as exc:
         raise TesseraInputError(f"not valid YAML: {exc}".replace("\n", " "), source=path) from None
 

@@ -10,6 +10,10 @@ must agree with it (:func:`tessera.io.array_stacks.merge_spacing`).
 A section missing from a numbered slice folder becomes a blank (0) placeholder section, recorded
 in the store's metadata (:mod:`tessera.workflow.files.missing_sections`) for section QC to
 exclude, or stops the job, as ``missing_sections`` says.
+
+The stack is checked first by a job of its own (:func:`check_stack_job`): the workflow removes a
+job's earlier outputs when the job starts, so a damaged or unsuitable replacement of a stack is
+refused there, and the dataset's earlier image survives it.
 """
 
 import numpy as np
@@ -24,6 +28,7 @@ from tessera.io.stacks import open_stack
 from tessera.io.store_checksums import record_checksums
 from tessera.spacing import VOXEL_NM_RANGE
 from tessera.workflow.files.missing_sections import missing_sections_entry
+from tessera.workflow.files.stack_check import read_stack_check, write_stack_check
 
 
 def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
@@ -73,6 +78,64 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
     return tuple(out)
 
 
+def _stack_found(source, source_path, *, fmt, internal_path, spacing):
+    """What a check records of an opened stack; the voxel size resolved as ingest uses it."""
+    spacing = resolve_spacing(
+        merge_spacing(spacing, source), source.header_spacing, source=source_path
+    )
+    found = {"path": str(source_path), "format": fmt}
+    if internal_path is not None:
+        found["internal_path"] = internal_path
+    return {
+        **found,
+        "shape": [int(n) for n in source.shape],
+        "dtype": str(np.dtype(source.dtype)),
+        "spacing": list(spacing),
+        "missing_sections": [int(z) for z in getattr(source, "missing", ())],
+    }
+
+
+def check_stack_job(
+    source_path,
+    out_path,
+    *,
+    fmt,
+    internal_path=None,
+    spacing=(None, None, None),
+    missing_sections="placeholder",
+):
+    """Open a dataset's stack, check it whole and write what was found (the stack check).
+
+    The checks are those ingest makes when it opens a stack (:func:`tessera.io.stacks.open_stack`:
+    the format, every page or file laid out like the first, pixel data inside the file, the
+    numbering of slice files, the array of a container) and the voxel size
+    (:func:`resolve_spacing`); reading the pixels is left to ingest.
+
+    Parameters
+    ----------
+    source_path, fmt, internal_path, spacing, missing_sections
+        As for :func:`ingest_job`.
+    out_path : str or Path
+        The stack check to write (:mod:`tessera.workflow.files.stack_check`).
+
+    Returns
+    -------
+    dict
+        What was found: shape, dtype, spacing, placeholder sections.
+    """
+    source = open_stack(
+        source_path, fmt, internal_path=internal_path, missing_sections=missing_sections
+    )
+    try:
+        found = _stack_found(
+            source, source_path, fmt=fmt, internal_path=internal_path, spacing=spacing
+        )
+    finally:
+        source.close()
+    write_stack_check(out_path, found)
+    return found
+
+
 def ingest_job(
     source_path,
     out_path,
@@ -85,6 +148,7 @@ def ingest_job(
     percentiles=(0.1, 99.9),
     missing_chunks="refuse",
     missing_sections="placeholder",
+    checked=None,
 ):
     """Convert an EM stack into a single-level OME-Zarr 0.5 image of uint8 sections.
 
@@ -115,6 +179,9 @@ def ingest_job(
     missing_sections : {'placeholder', 'refuse'}, optional
         A section missing from a slice folder's numbering becomes a blank placeholder section
         (recorded for section QC to exclude), or stops the job with an error.
+    checked : str or Path, optional
+        The stack check of this stack (:func:`check_stack_job`); the stack is converted only if
+        it is still the one checked.
 
     Returns
     -------
@@ -132,8 +199,16 @@ def ingest_job(
     if hasattr(source, "missing_chunks"):  # arrays in containers (hdf5, n5, zarr)
         source.missing_chunks = missing_chunks
     try:
-        spacing = merge_spacing(spacing, source)
-        spacing = resolve_spacing(spacing, source.header_spacing, source=source_path)
+        found = _stack_found(
+            source, source_path, fmt=fmt, internal_path=internal_path, spacing=spacing
+        )
+        if checked is not None and read_stack_check(checked) != found:
+            raise TesseraInputError(
+                "the stack is not the one rule check_stack checked (it changed since); run the "
+                "workflow again to check it anew",
+                source=source_path,
+            )
+        spacing = tuple(found["spacing"])
         lo_p, hi_p = percentiles
         if not 0 <= lo_p < hi_p <= 100:
             raise TesseraInputError(
