@@ -313,27 +313,10 @@ def test_held_out_sections_keep_the_guard_distance_and_skip_other_roles():
     # by hand, d1 in 12 sections: test tiles at 3 and 9, validation at 4, training at 6.
     # Sections 0-3 are nearest the test tile at 3; 4 holds the validation tile and 5 is nearer
     # it; 6 is training and 7 nearer it than to 9; 8-11 are nearest 9 and at least 2 from 6
-    assert held_out_sections(registry, "d1", guard_sections=2, depth=12) == [
-        0,
-        1,
-        2,
-        3,
-        8,
-        9,
-        10,
-        11,
-    ]
+    test_side = [0, 1, 2, 3, 8, 9, 10, 11]
+    assert held_out_sections(registry, "d1", guard_sections=2, depth=12) == test_side
     # a section as near training as a test tile is not the test side's: guard 0 changes nothing
-    assert held_out_sections(registry, "d1", guard_sections=0, depth=12) == [
-        0,
-        1,
-        2,
-        3,
-        8,
-        9,
-        10,
-        11,
-    ]
+    assert held_out_sections(registry, "d1", guard_sections=0, depth=12) == test_side
     # a guard wider than the gap keeps sections away from training even on the test side
     assert held_out_sections(registry, "d1", guard_sections=3, depth=12) == [0, 1, 2, 3, 9, 10, 11]
     # guard tiles (dropped by the split) claim no sections: d2's test tiles at 0 and 12 share

@@ -118,6 +118,8 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     shape = entries[0].shape
     if out is None:
         out = [np.empty(shape, dtype=np.float32) for _ in range(3)]
+    if entries[0].size == 0:
+        return list(out)
     width = shape[-1] if shape else 1
     rows_in = [e.reshape(-1, width) for e in entries]
     # views of `out` (a copy would take the values away with it: refused)
