@@ -160,6 +160,33 @@ def test_altered_metadata_is_refused_when_the_image_opens(ingested):
         open_image(ingested)
 
 
+def test_a_labels_image_opened_at_its_own_group_is_verified_against_its_own_records(
+    tmp_path, volume
+):
+    # An image with an NGFF labels image below it (labels/cells, as the objects step writes),
+    # recorded once at the root. Opened at labels/cells, its zarr.json must be checked against
+    # the record of labels/cells/zarr.json, not the root's (which differs in size and content).
+    store = tmp_path / "image.ome.zarr"
+    root = zarr.open_group(str(store), mode="w", zarr_format=3)
+    root.attrs["ome"] = multiscale_attrs(name="raw", spacing=SPACING, factors=[(1, 1, 1)])
+    root.create_array("0", data=volume, chunks=(1, 16, 16), dimension_names=AXES)
+    cells = root.create_group("labels").create_group("cells")
+    cells.attrs["ome"] = multiscale_attrs(name="cells", spacing=SPACING, factors=[(1, 1, 1)])
+    labels = (volume > 128).astype(np.uint32)
+    cells.create_array("0", data=labels, chunks=(1, 16, 16), dimension_names=AXES)
+    record_checksums(store)
+    _, info = open_image(store / "labels" / "cells")
+    np.testing.assert_array_equal(info["levels"][0][:], labels)
+    np.testing.assert_array_equal(open_image(store)[1]["levels"][0][:], volume)
+    meta = store / "labels" / "cells" / "zarr.json"
+    meta.write_text(meta.read_text().replace('"cells"', '"cellz"'))  # same size, other bytes
+    with pytest.raises(
+        TesseraInputError,
+        match=r"labels/cells/zarr\.json: file does not match its recorded SHA-256",
+    ):
+        open_image(store / "labels" / "cells")
+
+
 def test_damaged_manifest_is_refused(ingested):
     (ingested / "0" / MANIFEST).write_text("{not json")
     with pytest.raises(

@@ -203,6 +203,32 @@ def _parse_manifest(path):
     return data
 
 
+def _opened_at(folder, manifest):
+    """Where a store opened at one of its groups sits in the store the records were written for:
+    the prefix of its keys there ('' when opened at the root).
+
+    A manifest's ``groups`` are keyed from the root of the store it was written in, and hold
+    every ancestor group of its array, so the deepest of them is the array's parent there; the
+    array's `folder` in the store as opened ends with that parent's tail.
+
+    Examples
+    --------
+    >>> groups = {"zarr.json": {}, "labels/zarr.json": {}, "labels/cells/zarr.json": {}}
+    >>> _opened_at("0", {"groups": groups}), _opened_at("labels/cells/0", {"groups": groups})
+    ('labels/cells/', '')
+    """
+    groups = [key[: -len(_META)].rstrip("/") for key in manifest.get("groups", {})]
+    deepest = max(groups, key=lambda g: (g.count("/") + bool(g), g), default="")
+    parent = folder.rpartition("/")[0]
+    if deepest == parent:
+        return ""
+    if not parent:
+        return deepest + "/"
+    if deepest.endswith("/" + parent):
+        return deepest[: -len(parent)]
+    return ""
+
+
 class _Checker:
     """Finds the record of a store key and compares a file's bytes with it (synchronous)."""
 
@@ -210,7 +236,8 @@ class _Checker:
         self.store = Path(store)
         self.required = required
         self._manifests = {}  # array folder → parsed manifest or None
-        self._group_manifest = {}  # group folder → manifest of the smallest array below it, or None
+        # group folder → (manifest of the smallest array below it, key prefix of its groups), or None
+        self._group_manifest = {}
 
     def _manifest(self, rel):
         if rel not in self._manifests:
@@ -235,11 +262,12 @@ class _Checker:
                     elif (child / _META).is_file():
                         todo.append(child)
             smallest = min(found, key=lambda p: (p / MANIFEST).stat().st_size, default=None)
-            self._group_manifest[group] = (
-                None
-                if smallest is None
-                else self._manifest(smallest.relative_to(self.store).as_posix())
-            )
+            if smallest is None:
+                self._group_manifest[group] = None
+            else:
+                folder = smallest.relative_to(self.store).as_posix()
+                manifest = self._manifest(folder)
+                self._group_manifest[group] = (manifest, _opened_at(folder, manifest))
         return self._group_manifest[group]
 
     def record(self, key):
@@ -251,8 +279,11 @@ class _Checker:
             if manifest is not None:
                 return manifest["files"].get("/".join(parts[i:])), manifest
         if parts[-1] == _META:
-            manifest = self._below("/".join(parts[:-1]))
-            return (None, None) if manifest is None else (manifest["groups"].get(key), manifest)
+            below = self._below("/".join(parts[:-1]))
+            if below is None:
+                return None, None
+            manifest, prefix = below
+            return manifest["groups"].get(prefix + key), manifest
         return None, None
 
     def check(self, key, data):
