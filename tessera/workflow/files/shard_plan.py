@@ -8,30 +8,16 @@ Rule shard_plan writes it; predict_shard and stitch read it. It holds the block 
 The halo is derived once, when the plan is made; every later job reads it from here.
 """
 
-import json
-from pathlib import Path
-
-from tessera.errors import TesseraInputError
-from tessera.io.atomic import write_text
+from tessera.workflow.files.json_records import read_record, write_record
 
 PLAN_FORMAT = 1
 
 
 def write_plan(path, plan):
     """Write `plan` (a dict of plain values) as JSON with its format number first (atomic)."""
-    write_text(path, json.dumps({"format": PLAN_FORMAT, **plan}, indent=1) + "\n")
+    write_record(path, PLAN_FORMAT, plan)
 
 
 def read_plan(path):
     """Read a shard plan written by :func:`write_plan`, checking its format."""
-    try:
-        plan = json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise TesseraInputError(
-            "shard plan not found (rule shard_plan writes it)", source=path
-        ) from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise TesseraInputError(f"shard plan is damaged: {exc}", source=path) from None
-    if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT:
-        raise TesseraInputError(f"not a shard plan of format {PLAN_FORMAT}", source=path)
-    return plan
+    return read_record(path, PLAN_FORMAT, what="shard plan", rule="shard_plan")

@@ -8,30 +8,16 @@ nm, resolved from the sheet and the header) and ``missing_sections`` (placeholde
 write).
 """
 
-import json
-from pathlib import Path
-
-from tessera.errors import TesseraInputError
-from tessera.io.atomic import write_text
+from tessera.workflow.files.json_records import read_record, write_record
 
 CHECK_FORMAT = 1
 
 
 def write_stack_check(path, stack):
     """Write what was found in a stack (a dict of plain values) as JSON (atomic)."""
-    write_text(path, json.dumps({"format": CHECK_FORMAT, "stack": stack}, indent=1) + "\n")
+    write_record(path, CHECK_FORMAT, {"stack": stack})
 
 
 def read_stack_check(path):
     """The ``stack`` entry of a check written by :func:`write_stack_check`."""
-    try:
-        check = json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise TesseraInputError(
-            "stack check not found (rule check_stack writes it)", source=path
-        ) from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise TesseraInputError(f"stack check is damaged: {exc}", source=path) from None
-    if not isinstance(check, dict) or check.get("format") != CHECK_FORMAT:
-        raise TesseraInputError(f"not a stack check of format {CHECK_FORMAT}", source=path)
-    return check["stack"]
+    return read_record(path, CHECK_FORMAT, what="stack check", rule="check_stack")["stack"]
