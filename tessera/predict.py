@@ -179,22 +179,22 @@ def block_read_bytes(spec, shape, *, halo, itemsize=1):
 
     A block of `shape` (z, y, x) is read once with `halo` pixels in plane and the cascade's
     ``z_halo`` sections on each side: the raw values (`itemsize` bytes each) and their mirrored
-    copy, which every frame takes a view of. A frame's own count of its window
-    (:func:`tessera.cascade.api.frame_memory_bytes`, in float32) comes on top.
+    copy, which every frame takes a view of. A frame counts its own window of ``2 z_halo + 1``
+    sections (:func:`tessera.cascade.api.frame_memory_bytes`); the rest is counted here.
 
     Examples
     --------
     >>> from tessera.cascade.api import CascadeSpec
     >>> spec = CascadeSpec(stages=1, levels=0, sigmas=(1.0,))
-    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 x 3 sections of uint8
-    600
+    >>> block_read_bytes(spec, (3, 10, 10), halo=0)  # 2 x 3 sections of uint8, less the frame's 1
+    500
     """
     z, y, x = (int(v) for v in shape)
     sections = z + 2 * z_halo(spec)
     pixels = (y + 2 * int(halo)) * (x + 2 * int(halo))
     # the raw read is freed once mirrored (where the block crosses an edge): counting both
     # keeps the figure an upper bound without following the order of events
-    return pixels * 2 * itemsize * sections
+    return pixels * itemsize * (2 * sections - (2 * z_halo(spec) + 1))
 
 
 def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):

@@ -429,7 +429,7 @@ def test_memory_estimate_covers_the_measured_peak_of_a_frame(request, fixture, s
     # what predicting one section of a block really takes; the estimate must cover it without
     # overstating it by more than half. With cross-section context a frame holds the maps and
     # features of three sections; in 3D mode it also holds 2 x 11 + 1 sections of image, and
-    # the 3D filter bank's work (float64 eigenvalues of 3 x 3 matrices) is larger. The block lies a whole halo inside the volume: the worst
+    # the 3D filter bank's work (weighted sums along z, 3 x 3 eigenvalues) is larger. The block lies a whole halo inside the volume: the worst
     # case the estimate is for (a block at an edge classifies less of its halo). The volume is
     # a zarr array, as a shard job reads: a numpy volume would lend the frame a view of itself.
     study = request.getfixturevalue(fixture)

@@ -142,14 +142,13 @@ def _filter_temporaries(spec, level, pixels, channels):
         # flight; with neighbours, the parts are concatenated (one more copy of the channels)
         return 4 * pixels * (scales + 8 + (channels if spec.neighbours else 0))
     # the 3D bank: three weighted sums along z and one smoothed plane per scale, then one
-    # scale's derivatives, gradient products and the float64 work of the 3 x 3 eigenvalues
-    # (of the region only; bounded by 4 S + 48 planes with the context, which covers the peaks
-    # tracemalloc measures with some room for other numpy versions);
-    # while the sums are made, the sections within reach in float64 (in chunks of at most
-    # _CHUNK_VALUES)
+    # scale's derivatives and gradient products (of the region only; bounded by 4 S + 32
+    # planes with the context, which covers the peaks tracemalloc measures with some room for
+    # other numpy versions); while the sums are made, the sections within reach in float32 (in
+    # chunks of at most _CHUNK_VALUES)
     sections = 2 * image_z_reach(spec) + 1
-    sums = 4 * pixels * 3 * scales + 8 * min(_CHUNK_VALUES, sections * pixels)
-    return max(4 * pixels * (4 * scales + 48), sums)
+    sums = 4 * pixels * 3 * scales + 4 * min(_CHUNK_VALUES, sections * pixels)
+    return max(4 * pixels * (4 * scales + 32), sums)
 
 
 def frame_memory_bytes(spec, core_shape, *, output_sigma=0.0, itemsize=4):
