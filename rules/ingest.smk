@@ -12,14 +12,16 @@ rule check_stack:
         "logs/check_stack/{dataset}.log",
     conda:
         "../envs/tessera.yaml"
+    # reads every section, as ingest does, where an earlier image of the dataset would be lost
     resources:
-        mem_mb=scaled_by_attempt(500),
-        runtime=scaled_by_attempt(10),
+        mem_mb=scaled_by_attempt(2000),
+        runtime=scaled_by_attempt(60),
     params:
         format=dataset_format,
         internal_path=dataset_internal_path,
         spacing=dataset_spacing,
         missing_sections=config["ingest"]["missing_sections"],
+        earlier_image=lambda wildcards: f"results/{wildcards.dataset}/ingest/raw.ome.zarr",
         code=script_code("check_stack"),
     script:
         "../scripts/check_stack.py"

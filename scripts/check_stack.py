@@ -17,4 +17,5 @@ run_job(
     internal_path=snakemake.params.internal_path,
     spacing=snakemake.params.spacing,
     missing_sections=snakemake.params.missing_sections,
+    earlier_image=snakemake.params.earlier_image,
 )

@@ -233,6 +233,7 @@ def test_the_stack_check_records_the_stack_and_ingest_converts_only_that_stack(t
     # what was written: 3 pages of 8 x 8, uint16, at the sheet's voxel size
     assert found["shape"] == [3, 8, 8] and found["dtype"] == "uint16"
     assert found["spacing"] == [40.0, 8.0, 8.0]
+    assert found.pop("sections_read") == 0  # no earlier image: the pixels are left to ingest
     assert json.loads(check.read_text())["stack"] == found
     ingest_job(src, tmp_path / "o.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8), checked=check)
     assert open_image(tmp_path / "o.ome.zarr")[1]["levels"][0].shape == (3, 8, 8)
@@ -705,3 +706,36 @@ def test_tiff_with_a_damaged_compressed_stream_is_refused(tmp_path, compression)
     with pytest.raises(TesseraInputError, match="cannot read page 1: ") as info:
         _ingest(src, tmp_path)
     _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_the_stack_check_reads_every_section_only_where_an_earlier_image_would_be_lost(tmp_path):
+    # A deflate page with one changed byte opens like a sound one; only decoding it finds the
+    # damage. The check leaves decoding to ingest while the dataset has no image (nothing to
+    # lose), and decodes every section when an earlier image exists, refusing the stack in
+    # the line ingest would give.
+    src = tmp_path / "stack.tif"
+    volume = np.random.default_rng(5).integers(0, 256, (3, 16, 16), dtype=np.uint8)
+    tifffile.imwrite(src, volume, photometric="minisblack", compression="zlib")
+    earlier = tmp_path / "raw.ome.zarr"
+    sound = check_stack_job(
+        src, tmp_path / "a.json", fmt="tiff_stack", spacing=SPACING, earlier_image=earlier
+    )
+    assert sound["sections_read"] == 0 and sound["shape"] == [3, 16, 16]
+    earlier.mkdir()
+    sound = check_stack_job(
+        src, tmp_path / "b.json", fmt="tiff_stack", spacing=SPACING, earlier_image=earlier
+    )
+    assert sound["sections_read"] == 3
+    data = bytearray(src.read_bytes())
+    with tifffile.TiffFile(src) as tif:
+        start, count = tif.pages[2].dataoffsets[0], tif.pages[2].databytecounts[0]
+    data[start + count // 2] ^= 0x10
+    src.write_bytes(bytes(data))
+    check = tmp_path / "c.json"
+    with pytest.raises(TesseraInputError, match="cannot read page 2: ") as info:
+        check_stack_job(src, check, fmt="tiff_stack", spacing=SPACING, earlier_image=earlier)
+    assert str(src) in str(info.value) and "\n" not in str(info.value)
+    assert not check.exists()
+    # without an earlier image the damage is left for ingest to find
+    found = check_stack_job(src, check, fmt="tiff_stack", spacing=SPACING)
+    assert found["sections_read"] == 0 and check.exists()

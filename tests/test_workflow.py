@@ -656,10 +656,15 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     assert all(set(np.unique(v)) <= {0, 1} for v in labels.values())
 
 
-def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(tmp_path, repo=REPO_ROOT):
+@pytest.mark.parametrize("damage", ["cut short", "compressed page"])
+def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
+    tmp_path, damage, repo=REPO_ROOT
+):
     # Snakemake removes a job's outputs when the job starts (its documented rerun behaviour).
     # The stack is checked by a job of its own before ingest, so a stack replaced by a damaged
     # file is refused there, in one line naming it, and the dataset's earlier image stays.
+    # A deflate page with one changed byte is laid out like a sound one: only decoding it
+    # finds the damage, which the check does because an earlier image exists.
     import tifffile
 
     rng = np.random.default_rng(4)
@@ -667,7 +672,13 @@ def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(tmp_path, rep
     (tmp_path / "stacks").mkdir()
     (tmp_path / "labels").mkdir()
     stack = tmp_path / "stacks" / "d1.tif"
-    tifffile.imwrite(stack, rng.integers(0, 256, (6, 64, 64), dtype=np.uint8))
+    compression = "zlib" if damage == "compressed page" else None
+    tifffile.imwrite(
+        stack,
+        rng.integers(0, 256, (6, 64, 64), dtype=np.uint8),
+        photometric="minisblack",
+        compression=compression,
+    )
     tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
     config = tiny_config()
     config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
@@ -685,11 +696,20 @@ def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(tmp_path, rep
         if p.is_file()
     }
     assert written
-    stack.write_bytes(stack.read_bytes()[: stack.stat().st_size // 2])  # cut short
+    data = bytearray(stack.read_bytes())
+    if damage == "cut short":
+        data = data[: len(data) // 2]
+        expected = "truncated or damaged"
+    else:
+        with tifffile.TiffFile(stack) as tif:
+            start, count = tif.pages[3].dataoffsets[0], tif.pages[3].databytecounts[0]
+        data[start + count // 2] ^= 0x10
+        expected = "cannot read page 3: "
+    stack.write_bytes(bytes(data))
     result = snakemake(*args, cwd=tmp_path, check=False)
     assert result.returncode != 0
     told = result.stderr + result.stdout
-    assert "stacks/d1.tif: " in told and "truncated or damaged" in told
+    assert "stacks/d1.tif: " in told and expected in told
     kept = {
         p.relative_to(tmp_path): p.read_bytes()
         for p in sorted((tmp_path / image).rglob("*"))

@@ -13,8 +13,11 @@ exclude, or stops the job, as ``missing_sections`` says.
 
 The stack is checked first by a job of its own (:func:`check_stack_job`): the workflow removes a
 job's earlier outputs when the job starts, so a damaged or unsuitable replacement of a stack is
-refused there, and the dataset's earlier image survives it.
+refused there, and the dataset's earlier image survives it. Where such an image exists, the
+check reads every section too (a compressed page can be damaged in a way only decoding finds).
 """
+
+from pathlib import Path
 
 import numpy as np
 import zarr
@@ -103,13 +106,17 @@ def check_stack_job(
     internal_path=None,
     spacing=(None, None, None),
     missing_sections="placeholder",
+    earlier_image=None,
 ):
     """Open a dataset's stack, check it whole and write what was found (the stack check).
 
     The checks are those ingest makes when it opens a stack (:func:`tessera.io.stacks.open_stack`:
     the format, every page or file laid out like the first, pixel data inside the file, the
     numbering of slice files, the array of a container) and the voxel size
-    (:func:`resolve_spacing`); reading the pixels is left to ingest.
+    (:func:`resolve_spacing`). Reading the pixels is left to ingest, unless an earlier image of
+    the dataset exists: then every section is read and checked as ingest reads it (compressed
+    pages decoded, float values finite), because ingest would remove that image before it met
+    a section that cannot be read.
 
     Parameters
     ----------
@@ -117,11 +124,13 @@ def check_stack_job(
         As for :func:`ingest_job`.
     out_path : str or Path
         The stack check to write (:mod:`tessera.workflow.files.stack_check`).
+    earlier_image : str or Path, optional
+        Where ingest writes this dataset's image; if it exists, the stack is read whole.
 
     Returns
     -------
     dict
-        What was found: shape, dtype, spacing, placeholder sections.
+        What was found (shape, dtype, spacing, placeholder sections) and ``sections_read``.
     """
     source = open_stack(
         source_path, fmt, internal_path=internal_path, missing_sections=missing_sections
@@ -130,10 +139,15 @@ def check_stack_job(
         found = _stack_found(
             source, source_path, fmt=fmt, internal_path=internal_path, spacing=spacing
         )
+        read = 0
+        if earlier_image is not None and Path(earlier_image).exists():
+            for z in range(source.shape[0]):
+                source.read(z)  # refuses a section it cannot read, naming the file
+            read = source.shape[0]
     finally:
         source.close()
     write_stack_check(out_path, found)
-    return found
+    return {**found, "sections_read": read}
 
 
 def ingest_job(
