@@ -19,8 +19,10 @@ reported. Every configuration is scored with the final map smoothed
 
 Objects in 3D (key ``objects_3d`` of each configuration): the map of sections 16-19 is turned
 into objects as the objects step does with its default settings (validation threshold, no
-morphology, enclosed cavities filled, 26-connected, the default minimum volume), and matched one-to-one at IoU > 0.5 with
-the 26-connected components of the truth on the same sections (tessera.object_scores).
+morphology, enclosed cavities filled, 26-connected, the default minimum volume, touching
+objects split with the default settings), and matched one-to-one at IoU > 0.5 with the
+26-connected components of the truth on the same sections (tessera.object_scores). Key
+``objects_3d_unsplit``: the same without splitting (the connected components).
 
 ``--orientations N`` trains every configuration on the training sections in N orientations
 (cascade.orientations; the default is the spec's).
@@ -117,15 +119,17 @@ def scores(prob, truth):
 SPACING = (50.0, 9.2, 9.2)
 
 
-def default_min_volume():
-    """The objects step's default ``min_volume_um3``, read from the config schema."""
+def objects_default(key):
+    """The objects step's default for `key` (``min_volume_um3``, ``split`` ...), read from the
+    config schema."""
     schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
     found = []
 
     def walk(node):
         if isinstance(node, dict):
-            if "min_volume_um3" in node.get("properties", {}):
-                found.append(node["properties"]["min_volume_um3"]["default"])
+            properties = node.get("properties", {})
+            if "min_volume_um3" in properties and key in properties:
+                found.append(properties[key]["default"])
             for value in node.values():
                 walk(value)
 
@@ -133,8 +137,13 @@ def default_min_volume():
     return found[0]
 
 
-def objects_3d(prob, truth, threshold):
-    """3D object scores of the thresholded test sections 16-19 against the truth's components."""
+def objects_3d(prob, truth, threshold, *, split=None):
+    """3D object scores of the thresholded test sections 16-19 against the truth's components.
+
+    `split` None follows the objects step's defaults (splitting touching objects when it does);
+    False gives the connected components."""
+    if split is None:
+        split = objects_default("split")
     stack = np.stack([prob[z] for z in range(16, 20)]).astype(np.float32)
     predicted = np.zeros(stack.shape, np.uint32)
     label_objects(
@@ -142,13 +151,16 @@ def objects_3d(prob, truth, threshold):
         predicted,
         spacing=SPACING,
         high=threshold,
-        min_volume_um3=default_min_volume(),
+        min_volume_um3=objects_default("min_volume_um3"),
         block=(4, 512, 512),
+        split_min_depth_nm=objects_default("split_min_depth_nm") if split else None,
+        split_valley_probability=objects_default("split_valley_probability") if split else None,
     )
     scores3d = object_scores(connected_truth(truth[16:20]), predicted)
     return {
         "truth_source": "26-connected components of the truth masks",
         "sections": [16, 17, 18, 19],
+        "split": bool(split),
         **{k: (v.item() if hasattr(v, "item") else v) for k, v in scores3d.items()},
     }
 
@@ -181,6 +193,7 @@ def evaluate(spec, image, truth, *, threads, output_sigma):
         "train_s": train_s,
         "predict_s": predict_s,
         "objects_3d": objects_3d(prob, truth, smoothed["threshold"]),
+        "objects_3d_unsplit": objects_3d(prob, truth, smoothed["threshold"], split=False),
     }, scores(raw, truth)
 
 
@@ -207,7 +220,7 @@ def ladder_pick(results, image, truth, *, make_spec, threads, output_sigma, base
         "levels": int(pick["levels"]),
         "dims": 2,
         **{k: test[k] for k in ("precision", "recall", "f1", "jaccard", "threshold")},
-        **({"objects_3d": test["objects_3d"]} if "objects_3d" in test else {}),
+        **{k: test[k] for k in ("objects_3d", "objects_3d_unsplit") if k in test},
         "validation_f1": dict(zip(table["rung"], table["f1"].round(4).tolist(), strict=True)),
     }
 
@@ -245,7 +258,7 @@ def main():
             spec, image, truth, threads=args.threads, output_sigma=args.output_sigma
         )
         r, u = results[name], unsmoothed[name]
-        o = r["objects_3d"]
+        o, c = r["objects_3d"], r["objects_3d_unsplit"]
         rows.append(
             (
                 f"{name} F1 (P {r['precision']:.3f} R {r['recall']:.3f} J {r['jaccard']:.3f})",
@@ -259,7 +272,8 @@ def main():
                 f"{name} object F1 in 3D (P {o['object_precision']:.3f} R {o['object_recall']:.3f})",
                 o["object_f1"],
                 f"{o['truth_objects']} true, {o['predicted_objects']} predicted objects; "
-                f"ARAND {o['arand']:.3f}, VOI {o['voi_split']:.3f}/{o['voi_merge']:.3f}",
+                f"ARAND {o['arand']:.3f}, VOI {o['voi_split']:.3f}/{o['voi_merge']:.3f}; "
+                f"unsplit {c['object_f1']:.3f} ({c['predicted_objects']} objects)",
             )
         )
         print(rows[-2], rows[-1], sep="\n", flush=True)
