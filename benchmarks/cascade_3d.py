@@ -58,7 +58,7 @@ from tessera.workflow.jobs.predict import (  # noqa: E402
 )
 
 SIDE, SECTIONS, REPEATS, SEED = 256, 4, 2, 0
-E2E_SHAPE = (16, 1536, 1536)
+E2E_SHAPE = (32, 1536, 1536)
 REPO = Path(__file__).resolve().parent.parent
 
 

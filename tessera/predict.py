@@ -25,6 +25,7 @@ from tessera.cascade.api import (
     z_halo,
 )
 from tessera.errors import TesseraInputError
+from tessera.probability_encoding import encode_probability
 
 
 def _axis_step(n, most, align):
@@ -197,8 +198,8 @@ def block_read_bytes(spec, shape, *, halo, itemsize=1):
     return pixels * itemsize * (2 * sections - (2 * z_halo(spec) + 1))
 
 
-def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
-    """Float32 probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
+def predict_block(models, volume, box, *, halo=None, output_sigma=0.0, dtype="float32"):
+    """Probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
     The block's sections and the cascade's ``z_halo`` sections on each side (mirrored beyond the
     first and last section) are read once, with a halo of the receptive radius in plane
@@ -207,7 +208,9 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
     banks convert only what they read, exactly); each section is predicted from a view of that
     stack with
     :func:`tessera.cascade.api.predict_frames` (consecutive sections share the maps of the
-    sections around them). `volume` may be a zarr array.
+    sections around them). `volume` may be a zarr array. Each section's float32 map is stored
+    as `dtype` (:func:`tessera.probability_encoding.encode_probability`: uint8 round(255 p),
+    float16 or float32) as soon as it is made, so the block is held in that dtype only.
     """
     spec = cascade_spec(models)
     halo = shard_halo(spec, output_sigma=output_sigma) if halo is None else halo
@@ -219,9 +222,10 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0):
         volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
     )
     windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
-    out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=np.float32)
+    stored = encode_probability(np.zeros(1, np.float32), dtype).dtype  # refuses another dtype
+    out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=stored)
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
     maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)
     for k, prob in enumerate(maps):
-        out[k] = prob
+        out[k] = encode_probability(prob, dtype)
     return out

@@ -643,3 +643,18 @@ def test_a_shard_job_verifies_only_the_chunks_its_windows_read(study, tmp_path):
         )
     assert str(error.value).startswith(str(damaged))
     assert not (tmp_path / "last").exists()
+
+
+@pytest.mark.parametrize("dtype", ["uint8", "float16"])
+def test_a_block_stored_as_it_is_made_equals_its_float32_map_encoded(study, dtype):
+    # Shard jobs encode each section as soon as it is made (a block is then held as uint8):
+    # the result is the float32 block encoded whole, value for value.
+    halo = receptive_radius(study["spec"])
+    volume = np.random.default_rng(12).integers(0, 256, (4, 40 + 2 * halo, 40 + 2 * halo), np.uint8)
+    box = (0, 4, halo, halo + 40, halo, halo + 40)
+    as_float = predict.predict_block(study["models"], volume, box)
+    stored = predict.predict_block(study["models"], volume, box, dtype=dtype)
+    assert stored.dtype == np.dtype(dtype)
+    assert np.array_equal(stored, encode_probability(as_float, dtype))
+    with pytest.raises(TesseraInputError, match="predict.dtype must be one of"):
+        predict.predict_block(study["models"], volume, box, dtype="int8")

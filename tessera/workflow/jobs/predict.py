@@ -114,8 +114,8 @@ def shard_memory_mb(plan, job, spec, model_paths):
     A block is predicted section by section; one section's frame (core + halo) is estimated by
     :func:`tessera.cascade.api.frame_memory_bytes` from the block's shape, the halo and the
     feature count of each node. The block's image, read once with its halo and z halo
-    (:func:`tessera.predict.block_read_bytes`), its float32 probabilities and their encoding
-    come on top.
+    (:func:`tessera.predict.block_read_bytes`), its probabilities as stored and one section's
+    float32 map being encoded come on top.
 
     Examples
     --------
@@ -137,9 +137,9 @@ def shard_memory_mb(plan, job, spec, model_paths):
     for z, y, x in shapes:
         # the image is read as stored (uint8 after ingest)
         window = block_read_bytes(spec, (z, y, x), halo=halo, itemsize=1)
-        block = (
-            z * y * x * (4 * 4 + itemsize)
-        )  # probabilities, clip/scale/round temporaries, encoded
+        # the block as stored, and one section's float32 map with its clip/scale/round
+        # temporaries (each section is encoded as soon as it is made)
+        block = z * y * x * itemsize + y * x * 4 * 4
         worst = max(
             worst,
             frame_memory_bytes(spec, (y, x), output_sigma=output_sigma, itemsize=1)
@@ -205,8 +205,10 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
     with write_shard(out_dir, job=job) as shard:
         for index in plan["jobs"][job]:
             box = plan["blocks"][index]
-            prob = predict_block(models, array, box, halo=halo, output_sigma=output_sigma)
-            shard.add(index, encode_probability(prob, plan["dtype"]))
+            stored = predict_block(
+                models, array, box, halo=halo, output_sigma=output_sigma, dtype=plan["dtype"]
+            )
+            shard.add(index, stored)
             _log.info("block %d %s done", index, box)
     return {"job": job, "blocks": len(shard.entries)}
 
