@@ -43,7 +43,9 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
     no larger than `block`, of nearly equal size (y and x on the `align` grid), so no thin
     strip of blocks reads a whole halo for a few pixels and no block is larger than the volume.
     A volume with fewer blocks than jobs is cut thinner in z (sections do not depend on each
-    other's halo), so every job gets work. None of this changes a voxel of the result.
+    other's halo), so every job gets work; where the blocks would share unevenly among the jobs
+    (3 blocks for 2 jobs), z is cut into up to twice as many slabs if that evens them out.
+    None of this changes a voxel of the result.
 
     Parameters
     ----------
@@ -101,7 +103,7 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
     ny, nx = (_axis_step(n, -(-b // align) * align, align) for n, b in zip(shape[1:], block[1:]))
     in_plane = -(-shape[1] // ny) * -(-shape[2] // nx)
     z_count = max(-(-shape[0] // block[0]), min(shape[0], -(-jobs // in_plane)))
-    steps = [-(-shape[0] // z_count), ny, nx]
+    steps = [_balanced_z_step(shape[0], z_count, in_plane, jobs), ny, nx]
     blocks = []
     for z0 in range(0, shape[0], steps[0]):
         for y0 in range(0, shape[1], ny):
@@ -126,6 +128,31 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
         "blocks": blocks,
         "jobs": shares,
     }
+
+
+def _balanced_z_step(depth, slabs, in_plane, jobs):
+    """Sections per slab for `slabs` slabs of a volume `depth` sections deep, or for up to twice
+    as many where that shares the blocks evenly among `jobs` and `slabs` would leave the
+    busiest job a fifth or more above the mean (3 blocks for 2 jobs: one job would take 2).
+
+    Examples
+    --------
+    >>> _balanced_z_step(82, 3, 1, 2)  # 4 slabs of 21 rather than 3 of 28 for 2 jobs
+    21
+    >>> _balanced_z_step(82, 3, 1, 7)  # no count up to 6 shares evenly among 7 jobs
+    28
+    >>> _balanced_z_step(7, 3, 9, 4)  # 27 blocks for 4 jobs: 7 at most, near the mean
+    3
+    """
+    step = -(-depth // slabs)
+    blocks = -(-depth // step) * in_plane
+    if -(-blocks // jobs) < 1.2 * blocks / jobs:
+        return step
+    for count in range(slabs + 1, min(depth, 2 * slabs) + 1):
+        even = -(-depth // count)
+        if -(-depth // even) * in_plane % jobs == 0:
+            return even
+    return step
 
 
 def halo_overhead(plan):

@@ -184,6 +184,25 @@ def test_plan_tiles_the_volume_once_on_the_level_grid():
 
 
 @pytest.mark.parametrize(
+    "depth, jobs, blocks_per_job",
+    [
+        (82, 2, [2, 2]),  # 3 slabs of 28 would give one job 2 blocks, the other 1
+        (64, 2, [1, 1]),  # already even: left as it is
+        (200, 3, [3, 3, 3]),  # 7 slabs of 29 would give one job 3, the others 2: 9 of 23
+    ],
+)
+def test_few_blocks_are_shared_evenly_among_the_jobs(depth, jobs, blocks_per_job):
+    # A job that takes twice the blocks of another finishes last: with few blocks the slabs in
+    # z are cut thinner (at most twice as many) where that evens the shares out.
+    plan = plan_shards((depth, 384, 512), block=(32, 1536, 1536), halo=40, align=4, jobs=jobs)
+    assert [len(job) for job in plan["jobs"]] == blocks_per_job
+    cover = np.zeros(depth, int)
+    for z0, z1, *_ in plan["blocks"]:
+        cover[z0:z1] += 1
+    assert (cover == 1).all()
+
+
+@pytest.mark.parametrize(
     "shape, block, jobs",
     [
         ((64, 64, 64), (8, 1024, 1024), 2),  # a volume smaller than a block
