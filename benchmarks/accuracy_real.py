@@ -31,6 +31,7 @@ Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--cl
 """
 
 import argparse
+import functools
 import sys
 import time
 from pathlib import Path
@@ -119,6 +120,7 @@ def scores(prob, truth):
 SPACING = (50.0, 9.2, 9.2)
 
 
+@functools.cache
 def objects_default(key):
     """The objects step's default for `key` (``min_volume_um3``, ``split`` ...), read from the
     config schema."""

@@ -63,3 +63,19 @@ def file_digests():
         }
 
     return digests
+
+
+@pytest.fixture(scope="session")
+def damage_tiff_page():
+    """A function flipping one bit in the middle of page `page`'s pixel data of a TIFF: the
+    file's layout stays sound, so only decoding that page (deflate, LZMA) finds the damage."""
+    import tifffile
+
+    def damage(path, page):
+        data = bytearray(Path(path).read_bytes())
+        with tifffile.TiffFile(path) as tif:
+            start, count = tif.pages[page].dataoffsets[0], tif.pages[page].databytecounts[0]
+        data[start + count // 2] ^= 0x10
+        Path(path).write_bytes(bytes(data))
+
+    return damage

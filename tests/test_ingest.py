@@ -690,25 +690,23 @@ def test_zarr_declaring_fewer_sections_than_written_is_refused(tmp_path):
 
 
 @pytest.mark.parametrize("compression", ["zlib", "lzma"])
-def test_tiff_with_a_damaged_compressed_stream_is_refused(tmp_path, compression):
+def test_tiff_with_a_damaged_compressed_stream_is_refused(tmp_path, compression, damage_tiff_page):
     # A deflate or LZMA page (TIFF compression 8 and 34925) is decoded by Python's zlib or lzma
     # when imagecodecs is absent; their errors for a broken stream are neither OSError nor
     # ValueError. One changed byte in the middle of page 1's stream breaks it.
     src = tmp_path / "stack.tif"
     volume = np.random.default_rng(3).integers(0, 256, (3, 16, 16), dtype=np.uint8)
     tifffile.imwrite(src, volume, photometric="minisblack", compression=compression)
-    data = bytearray(src.read_bytes())
-    with tifffile.TiffFile(src) as tif:
-        start, count = tif.pages[1].dataoffsets[0], tif.pages[1].databytecounts[0]
-    data[start + count // 2] ^= 0x10
-    src.write_bytes(bytes(data))
+    damage_tiff_page(src, 1)
     before = _listing(tmp_path)
     with pytest.raises(TesseraInputError, match="cannot read page 1: ") as info:
         _ingest(src, tmp_path)
     _one_line_and_nothing_written(info, src, tmp_path, before)
 
 
-def test_the_stack_check_reads_every_section_only_where_an_earlier_image_would_be_lost(tmp_path):
+def test_the_stack_check_reads_every_section_only_where_an_earlier_image_would_be_lost(
+    tmp_path, damage_tiff_page
+):
     # A deflate page with one changed byte opens like a sound one; only decoding it finds the
     # damage. The check leaves decoding to ingest while the dataset has no image (nothing to
     # lose), and decodes every section when an earlier image exists, refusing the stack in
@@ -726,11 +724,7 @@ def test_the_stack_check_reads_every_section_only_where_an_earlier_image_would_b
         src, tmp_path / "b.json", fmt="tiff_stack", spacing=SPACING, earlier_image=earlier
     )
     assert sound["sections_read"] == 3
-    data = bytearray(src.read_bytes())
-    with tifffile.TiffFile(src) as tif:
-        start, count = tif.pages[2].dataoffsets[0], tif.pages[2].databytecounts[0]
-    data[start + count // 2] ^= 0x10
-    src.write_bytes(bytes(data))
+    damage_tiff_page(src, 2)
     check = tmp_path / "c.json"
     with pytest.raises(TesseraInputError, match="cannot read page 2: ") as info:
         check_stack_job(src, check, fmt="tiff_stack", spacing=SPACING, earlier_image=earlier)

@@ -658,7 +658,7 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
 
 @pytest.mark.parametrize("damage", ["cut short", "compressed page"])
 def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
-    tmp_path, damage, repo=REPO_ROOT
+    tmp_path, damage, damage_tiff_page, repo=REPO_ROOT
 ):
     # Snakemake removes a job's outputs when the job starts (its documented rerun behaviour).
     # The stack is checked by a job of its own before ingest, so a stack replaced by a damaged
@@ -696,16 +696,12 @@ def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
         if p.is_file()
     }
     assert written
-    data = bytearray(stack.read_bytes())
     if damage == "cut short":
-        data = data[: len(data) // 2]
+        stack.write_bytes(stack.read_bytes()[: stack.stat().st_size // 2])
         expected = "truncated or damaged"
     else:
-        with tifffile.TiffFile(stack) as tif:
-            start, count = tif.pages[3].dataoffsets[0], tif.pages[3].databytecounts[0]
-        data[start + count // 2] ^= 0x10
+        damage_tiff_page(stack, 3)
         expected = "cannot read page 3: "
-    stack.write_bytes(bytes(data))
     result = snakemake(*args, cwd=tmp_path, check=False)
     assert result.returncode != 0
     told = result.stderr + result.stdout
