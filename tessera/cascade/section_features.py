@@ -294,13 +294,20 @@ def _scale_channels_3d(channels, planes, following, s, inplane, context=(0, 0)):
     yy, yx = (d[cut] for d in _derivatives(gy[around], _UNIT_STEPS))
     xx = _derivatives(gx[around], _UNIT_STEPS, (1,))[0][cut]
     channels.append(g[core])
+    # each channel is made in its own plane (the order of operations is that of the formula)
     cz, cy, cx = gz[core], gy[core], gx[core]
-    channels.append(np.sqrt(cz * cz + cy * cy + cx * cx))
+    square = np.empty(cz.shape, dtype=np.float32)
+    magnitude = np.multiply(cz, cz, out=channels.take())
+    magnitude += np.multiply(cy, cy, out=square)
+    magnitude += np.multiply(cx, cx, out=square)
+    np.sqrt(magnitude, out=magnitude)
     # Scale-normalised (σ²) as in filter_bank
     norm = np.float32(s * s)
-    channels.append(norm * (zz + yy + xx))
+    laplacian = np.add(zz, yy, out=channels.take())
+    laplacian += xx
+    laplacian *= norm
     if following is not None:
-        channels.append(g[core] - following[core])
+        np.subtract(g[core], following[core], out=channels.take())
     hessian = [channels.take() for _ in range(3)]  # written in place, then scaled
     symmetric_eigenvalues_3x3(zz, zy, zx, yy, yx, xx, out=hessian)
     for values in hessian:
