@@ -118,7 +118,7 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     share of work; a feature's relative error of 5e-4 is far below the noise of EM images.
 
     The formula runs over rows of about a hundred thousand values at a time in buffers that
-    are reused, rather than over whole planes: its dozen temporaries then stay in the
+    are reused, rather than over whole planes: its temporaries then stay in the
     processor's cache. Every operation and its order is the same either way, so the result is too.
 
     Examples
@@ -137,7 +137,7 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     # views of `out` (a copy would take the values away with it: refused)
     rows_out = [np.reshape(o, (-1, width), copy=False) for o in out]
     step = min(max(1, _EIGEN_CHUNK // width), rows_in[0].shape[0])
-    buffers = np.empty((12, step * width), dtype=np.float32)
+    buffers = np.empty((11, step * width), dtype=np.float32)
     for start in range(0, rows_in[0].shape[0], step):
         stop = min(start + step, rows_in[0].shape[0])
         _eigenvalue_rows(
@@ -148,26 +148,39 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     return list(out)
 
 
+def _float32_rows(entry, buffer):
+    """`entry` itself if it is float32, else its values converted into `buffer`."""
+    if entry.dtype == np.float32:
+        return entry
+    buffer[...] = entry
+    return buffer
+
+
 def _eigenvalue_rows(entries, out, buffers):
-    """The closed form of :func:`symmetric_eigenvalues_3x3` on a few rows, in `buffers`."""
+    """The closed form of :func:`symmetric_eigenvalues_3x3` on a few rows, in `buffers`.
+
+    Float32 entries are read where they lie and the eigenvalues are made in `out`; entries of
+    another dtype are converted into the buffers first (the numbers are the same either way)."""
     n = entries[0].shape
-    a00, a01, a02, a11, a12, a22, q, p, t, u, v, s = (b.reshape(n) for b in buffers)
-    for buffer, entry in zip((a00, a01, a02, a11, a12, a22), entries, strict=True):
-        buffer[...] = entry
-    np.add(a00, a11, out=q)
-    q += a22
+    a00, a01, a02, a11, a12, a22, q, p, t, u, v = (b.reshape(n) for b in buffers)
+    x00, x01, x02, x11, x12, x22 = (
+        _float32_rows(entry, buffer)
+        for buffer, entry in zip((a00, a01, a02, a11, a12, a22), entries, strict=True)
+    )
+    np.add(x00, x11, out=q)
+    q += x22
     np.divide(q, 3.0, out=q)
-    b00, b11, b22 = a00, a11, a22  # the diagonal of A - qI, in place
-    b00 -= q
-    b11 -= q
-    b22 -= q
+    # the diagonal of A - qI
+    b00 = np.subtract(x00, q, out=a00)
+    b11 = np.subtract(x11, q, out=a11)
+    b22 = np.subtract(x22, q, out=a22)
     # p = sqrt((b00² + b11² + b22² + 2 (a01² + a02² + a12²)) / 6)
     np.multiply(b00, b00, out=p)
     p += np.multiply(b11, b11, out=t)
     p += np.multiply(b22, b22, out=t)
-    np.multiply(a01, a01, out=u)
-    u += np.multiply(a02, a02, out=t)
-    u += np.multiply(a12, a12, out=t)
+    np.multiply(x01, x01, out=u)
+    u += np.multiply(x02, x02, out=t)
+    u += np.multiply(x12, x12, out=t)
     u *= 2.0
     p += u
     np.divide(p, 6.0, out=p)
@@ -176,8 +189,11 @@ def _eigenvalue_rows(entries, out, buffers):
     # every entry of A - qI is 0 and stays 0 (the smallest normal float stands in for p)
     np.maximum(p, _TINY, out=t)
     np.divide(1.0, t, out=t)
-    for entry in (b00, b11, b22, a01, a02, a12):
+    for entry in (b00, b11, b22):
         entry *= t
+    np.multiply(x01, t, out=a01)
+    np.multiply(x02, t, out=a02)
+    np.multiply(x12, t, out=a12)
     # det(B) = b00 (b11 b22 - a12²) - a01 (a01 b22 - a12 a02) + a02 (a01 a12 - b11 a02)
     np.multiply(b11, b22, out=t)
     t -= np.multiply(a12, a12, out=u)
@@ -195,20 +211,19 @@ def _eigenvalue_rows(entries, out, buffers):
     np.clip(t, -1.0, 1.0, out=t)
     phi = np.arccos(t, out=t)
     np.divide(phi, 3.0, out=phi)
-    largest = np.multiply(p, 2.0, out=v)
+    largest, middle, smallest = out
+    np.multiply(p, 2.0, out=largest)
     largest *= np.cos(phi, out=u)
     largest += q
     phi += 2.0 * math.pi / 3.0
-    smallest = np.multiply(p, 2.0, out=s)
+    np.multiply(p, 2.0, out=smallest)
     smallest *= np.cos(phi, out=u)
     smallest += q
     # the trace fixes the middle one; clipped so that rounding never breaks the order
-    middle = np.multiply(q, 3.0, out=u)
+    np.multiply(q, 3.0, out=middle)
     middle -= largest
     middle -= smallest
     np.clip(middle, smallest, largest, out=middle)
-    for target, values in zip(out, (largest, middle, smallest), strict=True):
-        target[...] = values
 
 
 def _z_weights(sigma_z):
