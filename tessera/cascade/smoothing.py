@@ -81,7 +81,10 @@ def _smooth_plane(plane, sigma_y, sigma_x, times=None):
     runs on whole steps; the padding's rows are never inside a pass (only its columns are,
     which a column filter keeps apart)."""
     h, w = plane.shape
-    buffer = np.zeros((_padded(h), _padded(w)), np.float32)
+    buffer = np.empty((_padded(h), _padded(w)), np.float32)
+    # only the padding is zeroed: the plane's own part is written over at once
+    buffer[h:] = 0
+    buffer[:h, w:] = 0
     if times is None:
         buffer[:h, :w] = plane
     else:  # the product made where it is smoothed, not in an array of its own first
