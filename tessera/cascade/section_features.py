@@ -118,8 +118,8 @@ def symmetric_eigenvalues_3x3(a00, a01, a02, a11, a12, a22, *, out=None):
     share of work; a feature's relative error of 5e-4 is far below the noise of EM images.
 
     The formula runs over rows of about a hundred thousand values at a time in buffers that
-    are reused, rather than over whole planes: its temporaries then stay in the
-    processor's cache. Every operation and its order is the same either way, so the result is too.
+    are reused, rather than over whole planes: its temporaries then stay in the processor's
+    cache. Every operation and its order is the same either way, so the result is too.
 
     Examples
     --------
