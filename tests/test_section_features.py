@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
+from tessera.cascade import section_features
 from tessera.cascade.features import feature_names, feature_radius, filter_bank
 from tessera.cascade.section_features import (
     EIGENVALUE_TOLERANCE,
@@ -286,3 +287,27 @@ def test_a_core_inside_a_halo_has_the_features_of_the_whole_plane_cropped(spacin
     np.testing.assert_array_equal(core, whole[halo:-halo, halo:-halo])
     with pytest.raises(TesseraInputError, match="leaves no core"):
         section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing, halo=10 + halo + 12)
+
+
+@pytest.mark.parametrize("spacing", SPACINGS, ids=["anisotropic", "near-isotropic"])
+def test_sums_along_z_made_a_few_rows_at_a_time_equal_those_of_the_whole_plane(
+    spacing, monkeypatch
+):
+    # The sums along z of every σ are one matrix product per band of rows (zero weights beyond
+    # each σ's reach). Bands of 3 rows, the last one short, must give the features of one band
+    # over the whole plane within float32 rounding of the sums: the tolerance of the first test
+    # here, and for the structure tensor (products of gradients) 1e-4 of the channel's largest
+    # value. A band read from the wrong rows would miss by about the values themselves.
+    stack, _ = _stack(spacing, shape=(37, 40), seed=5)
+    whole = section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing)
+    monkeypatch.setattr(section_features, "_CHUNK_VALUES", 3 * stack.shape[0] * 40 + 1)
+    banded = section_filter_bank_3d(stack, sigmas=SIGMAS, spacing=spacing)
+    top = float(np.abs(stack).max())
+    for k, name in enumerate(feature_names(SIGMAS, ndim=3)):
+        if name.startswith("structure"):
+            tolerance = 1e-4 * float(np.abs(whole[..., k]).max())
+        else:
+            tolerance = 8 * EPS32 * top * max(1.0, _sigma_of(name) ** 2)
+        np.testing.assert_allclose(
+            banded[..., k], whole[..., k], rtol=0, atol=tolerance, err_msg=name
+        )
