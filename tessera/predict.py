@@ -25,7 +25,7 @@ from tessera.cascade.api import (
     z_halo,
 )
 from tessera.errors import TesseraInputError
-from tessera.probability_encoding import encode_probability
+from tessera.probability_encoding import encode_probability, stored_dtype
 
 
 def _axis_step(n, most, align):
@@ -249,8 +249,7 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0, dtype="fl
         volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
     )
     windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
-    stored = encode_probability(np.zeros(1, np.float32), dtype).dtype  # refuses another dtype
-    out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=stored)
+    out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=stored_dtype(dtype))
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
     maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)
     for k, prob in enumerate(maps):

@@ -31,7 +31,7 @@ from tessera.predict import (
     predict_block,
     shard_halo,
 )
-from tessera.probability_encoding import encode_probability
+from tessera.probability_encoding import stored_dtype
 from tessera.pyramid import downsample_level
 from tessera.section_qc.stand_ins import through_stand_ins
 from tessera.workflow.files.node_model import load_cascade, models_bytes
@@ -84,7 +84,7 @@ def shard_plan_job(
         jobs=shard_jobs,
         max_halo=max_halo,
     )
-    encode_probability(np.zeros(1, np.float32), dtype)  # validates the dtype before any job runs
+    stored_dtype(dtype)  # refuses another dtype before any job runs
     plan.update(
         {
             "target": target,
@@ -128,7 +128,7 @@ def shard_memory_mb(plan, job, spec, model_paths):
     """
     output_sigma = plan.get("output_sigma", 0.0)
     halo = plan["halo"]
-    itemsize = np.dtype(plan["dtype"]).itemsize
+    itemsize = stored_dtype(plan["dtype"]).itemsize
     shapes = {
         (b[1] - b[0], b[3] - b[2], b[5] - b[4])
         for b in (plan["blocks"][i] for i in plan["jobs"][job])
