@@ -1,5 +1,6 @@
 """Shared plumbing of the benchmark scripts: tables on stdout, the same figures as JSON."""
 
+import functools
 import json
 import os
 import subprocess
@@ -7,7 +8,10 @@ import sys
 import time
 from pathlib import Path
 
+import yaml
+
 OUT = Path(__file__).resolve().parent / "out"
+REPO = Path(__file__).resolve().parents[1]
 
 
 def report(name, rows, figures):
@@ -31,3 +35,22 @@ def run_measured(code, *args):
     if status != 0:
         raise SystemExit(f"benchmark child failed with status {status}")
     return seconds, usage.ru_maxrss / 1024.0  # Linux reports kilobytes
+
+
+@functools.cache
+def objects_default(key):
+    """The objects step's default for `key` (``min_volume_um3``, ``split`` ...), read from the
+    config schema."""
+    schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
+    found = []
+
+    def walk(node):
+        if isinstance(node, dict):
+            properties = node.get("properties", {})
+            if "min_volume_um3" in properties and key in properties:
+                found.append(properties[key]["default"])
+            for value in node.values():
+                walk(value)
+
+    walk(schema)
+    return found[0]

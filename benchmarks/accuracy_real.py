@@ -31,19 +31,17 @@ Run from the repository root: .venv/bin/python benchmarks/accuracy_real.py [--cl
 """
 
 import argparse
-import functools
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import yaml
 from PIL import Image
 from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import report  # noqa: E402
+from _common import objects_default, report  # noqa: E402
 
 from tessera.block_reduce import block_mean  # noqa: E402
 from tessera.cascade.api import (
@@ -118,25 +116,6 @@ def scores(prob, truth):
 
 #: Voxel size of the block-averaged stack (z y x, nm): sections ~50 nm apart, 2 x 4.6 nm pixels.
 SPACING = (50.0, 9.2, 9.2)
-
-
-@functools.cache
-def objects_default(key):
-    """The objects step's default for `key` (``min_volume_um3``, ``split`` ...), read from the
-    config schema."""
-    schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
-    found = []
-
-    def walk(node):
-        if isinstance(node, dict):
-            properties = node.get("properties", {})
-            if "min_volume_um3" in properties and key in properties:
-                found.append(properties[key]["default"])
-            for value in node.values():
-                walk(value)
-
-    walk(schema)
-    return found[0]
 
 
 def objects_3d(prob, truth, threshold, *, split=None):

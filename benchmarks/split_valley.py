@@ -32,7 +32,7 @@ Usage: python benchmarks/split_valley.py [--quick]
 import sys
 
 import numpy as np
-from _common import report
+from _common import objects_default, report
 from scipy import ndimage
 from split_depth import label_validation, match_f1
 
@@ -44,7 +44,7 @@ SCALES = (1.0, 1.25)
 DIPS = (0.55, 0.7, 1.0)  # probability set on the contact voxels before the blur
 VALLEYS = (None, 0.6, 0.7, 0.8, 0.9, 0.95, 1.0)
 SPACING = (40.0, 16.0, 16.0)
-DEPTH_NM = 30.0  # the default split depth
+DEPTH_NM = float(objects_default("split_min_depth_nm"))  # the default split depth
 
 
 def contacts(instances):

@@ -598,7 +598,7 @@ def test_config_refuses_bad_split_settings_naming_the_key(repo):
         too_deep.value
     )
     loaded = load_config(config({}), schema)["targets"]["mito"]["objects"]
-    assert loaded["split"] is True and loaded["split_min_depth_nm"] == 30
+    assert loaded["split"] is True and loaded["split_min_depth_nm"] == 40
 
 
 @pytest.mark.parametrize("split, valley", [(False, 0.8), (True, None), (True, 0.8)])
