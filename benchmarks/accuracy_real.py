@@ -55,6 +55,7 @@ from tessera.cascade.api import (
 )  # noqa: E402
 from tessera.ladder import choose_rung, ladder_rungs, rung_name  # noqa: E402
 from tessera.object_scores import connected_truth, object_scores  # noqa: E402
+from tessera.objects.depth_limit import split_depth_nm  # noqa: E402
 from tessera.objects.label import label_objects  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
@@ -134,7 +135,9 @@ def objects_3d(prob, truth, threshold, *, split=None):
         high=threshold,
         min_volume_um3=objects_default("min_volume_um3"),
         block=(4, 512, 512),
-        split_min_depth_nm=objects_default("split_min_depth_nm") if split else None,
+        split_min_depth_nm=split_depth_nm(objects_default("split_min_depth_nm"), SPACING)
+        if split
+        else None,
         split_valley_probability=objects_default("split_valley_probability") if split else None,
     )
     scores3d = object_scores(connected_truth(truth[16:20]), predicted)

@@ -36,6 +36,7 @@ from _common import objects_default, report
 from scipy import ndimage
 from split_depth import label_validation, match_f1
 
+from tessera.objects.depth_limit import split_depth_nm
 from tessera.objects.morphology import ball
 from tessera_demo.render import render_dataset
 
@@ -44,7 +45,8 @@ SCALES = (1.0, 1.25)
 DIPS = (0.55, 0.7, 1.0)  # probability set on the contact voxels before the blur
 VALLEYS = (None, 0.6, 0.7, 0.8, 0.9, 0.95, 1.0)
 SPACING = (40.0, 16.0, 16.0)
-DEPTH_NM = float(objects_default("split_min_depth_nm"))  # the default split depth
+# the default split depth at the demo volumes' voxel size (also used for the other cases)
+DEPTH_NM = split_depth_nm(objects_default("split_min_depth_nm"), SPACING)
 
 
 def contacts(instances):

@@ -62,6 +62,7 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None):
                 "connectivity": 26,
                 "split": True,
                 "split_min_depth_nm": 40,
+                "split_min_depth_setting": "auto",
                 "split_valley_probability": 0.9,
             }
         )
@@ -142,7 +143,7 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "smaller than 0.002 µm³",
         "26-connected",
         "seeded watershed on the Euclidean distance",
-        "at least 40 nm above their saddle",
+        "at least 40 nm above their saddle (the larger of 30 nm and the coarsest voxel side)",
         "scaled by min(p / 0.9, 1) with p the probability",
         "1 of 3 sections",
         "ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)",

@@ -597,12 +597,20 @@ def test_config_refuses_bad_split_settings_naming_the_key(repo):
     assert "key targets.mito.objects: split_min_depth_nm (300 nm) exceeds 229 nm" in str(
         too_deep.value
     )
+    with pytest.raises(TesseraInputError) as unit_in_text:
+        load_config(config({"split_min_depth_nm": "40nm"}), schema)
+    assert "key targets.mito.objects.split_min_depth_nm: '40nm' does not match '^auto$'" in str(
+        unit_in_text.value
+    )
     loaded = load_config(config({}), schema)["targets"]["mito"]["objects"]
-    assert loaded["split"] is True and loaded["split_min_depth_nm"] == 40
+    assert loaded["split"] is True and loaded["split_min_depth_nm"] == "auto"
 
 
-@pytest.mark.parametrize("split, valley", [(False, 0.8), (True, None), (True, 0.8)])
-def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley):
+@pytest.mark.parametrize(
+    "split, valley, setting",
+    [(False, 0.8, 20), (True, None, 20), (True, 0.8, 20), (True, None, "auto")],
+)
+def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley, setting):
     # The config's off switch reaches the library: off = today's labels (scipy reference)
     # whatever the valley probability, on = the scikit-image watershed reference (on the
     # distance scaled by the probability when a valley probability is set); the settings file
@@ -622,7 +630,7 @@ def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley):
         block=[8, 32, 64],
         bridge_excluded=False,
         split=split,
-        split_min_depth_nm=20,
+        split_min_depth_nm=setting,
         split_valley_probability=valley,
     )
     out = tmp_path / "objects.ome.zarr"
@@ -630,14 +638,17 @@ def test_objects_job_passes_the_split_switch_and_depth(tmp_path, split, valley):
     objects_job(*args, target="mito", settings=settings)
     labels = zarr.open_group(store=str(out), mode="r")["labels/mito/0"][:]
     values = stored.astype(np.float32) / 255
+    # auto: the larger of 30 nm and the coarsest voxel side, by hand for SPACING (40, 10, 10)
+    depth = 40 if setting == "auto" else setting
     expected = (split_reference if split else reference)(
-        values, high=0.71, low=0.61, **({"depth": 20, "valley": valley} if split else {})
+        values, high=0.71, low=0.61, **({"depth": depth, "valley": valley} if split else {})
     )
     np.testing.assert_array_equal(labels, expected)
     if split and valley:  # the probability really changes the split here
-        assert not np.array_equal(labels, split_reference(values, high=0.71, low=0.61, depth=20))
+        assert not np.array_equal(labels, split_reference(values, high=0.71, low=0.61, depth=depth))
     used = json.loads((tmp_path / "o.json").read_text())
-    assert used["split"] is split and used["split_min_depth_nm"] == 20
+    assert used["split"] is split and used["split_min_depth_nm"] == depth
+    assert used["split_min_depth_setting"] == setting
     assert used["split_valley_probability"] == valley
 
 

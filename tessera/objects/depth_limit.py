@@ -1,9 +1,37 @@
-"""The largest split depth an object of a given volume allows (plain arithmetic, no arrays).
+"""The split depth of a setting and a voxel size, and the largest depth an object of a given
+volume allows (plain arithmetic, no arrays).
 
-The config loader checks it before anything runs, so it imports nothing heavy.
+The config loader checks the latter before anything runs, so this module imports nothing heavy.
 """
 
 import math
+
+#: The depth ``auto`` gives where every voxel side is finer: chosen on isotropic validation
+#: volumes (16 nm voxels: object F1 0.995 at 30 nm, 1.000 at 20 nm, 0.967 at 40 nm), as the
+#: deepest setting within 0.02 of the best.
+AUTO_DEPTH_FLOOR_NM = 30.0
+
+
+def split_depth_nm(setting, spacing):
+    """The split depth in nm that `setting` means for voxels of `spacing` (z, y, x, nm).
+
+    A number is the depth itself. ``"auto"`` is the larger of :data:`AUTO_DEPTH_FLOOR_NM` and
+    the coarsest voxel side: a distance to the background measured on a voxel grid steps by up to
+    one voxel side where an outline crosses the grid obliquely, so maxima shallower than that
+    are as often the grid's as an organelle's. On the demo's validation volumes (40 nm sections,
+    16 nm pixels) the chosen depth was 40 nm; on the open serial-section stack (50 nm sections)
+    30 nm cut single organelles at narrow places and 50 nm cut none.
+
+    Examples
+    --------
+    >>> split_depth_nm("auto", (40.0, 16.0, 16.0)), split_depth_nm("auto", (10.0, 10.0, 10.0))
+    (40.0, 30.0)
+    >>> split_depth_nm(25, (40.0, 16.0, 16.0))
+    25
+    """
+    if isinstance(setting, str) and setting == "auto":
+        return max(AUTO_DEPTH_FLOOR_NM, *(float(side) for side in spacing))
+    return setting  # a number, checked where it is used (check_split_depth)
 
 
 def split_depth_problem(split_min_depth_nm, max_volume_um3):

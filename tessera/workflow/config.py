@@ -186,7 +186,9 @@ def _check_related_keys(config, source):
                 source=source,
             )
         depth = objects.get("split_min_depth_nm")
-        problem = depth is not None and largest is not None and split_depth_problem(depth, largest)
+        # auto depends on the voxel size: the objects job checks the depth it gives
+        numeric = depth is not None and depth != "auto"
+        problem = numeric and largest is not None and split_depth_problem(depth, largest)
         if problem:
             raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
 

@@ -16,6 +16,7 @@ from tessera.io.atomic import atomic_path
 from tessera.io.links import link_tree
 from tessera.io.omezarr import AXES, level_zero_origin, multiscale_attrs
 from tessera.io.store_checksums import record_checksums, verified_bytes
+from tessera.objects.depth_limit import split_depth_nm
 from tessera.objects.label import label_objects, subsample_labels
 from tessera.workflow.files.object_table import write_object_settings, write_object_table
 from tessera.workflow.files.probability_map import open_probability_map
@@ -86,6 +87,12 @@ def objects_job(
             "remove its row from the datasets sheet",
             source=qc_table,
         )
+    if "split_min_depth_nm" in settings:
+        # recorded as set (auto or a number) and as the depth it means for these voxels
+        settings["split_min_depth_setting"] = settings["split_min_depth_nm"]
+        settings["split_min_depth_nm"] = split_depth_nm(
+            settings["split_min_depth_nm"], info["spacing"]
+        )
     used = {
         "target": target,
         "high": high,
@@ -98,6 +105,7 @@ def objects_job(
     block = settings.pop("block")
     # the off switch and the depth reach the library as one argument: no depth, no splitting
     depth = settings.pop("split_min_depth_nm", None)
+    settings.pop("split_min_depth_setting", None)
     split = settings.pop("split", False)
     settings["split_min_depth_nm"] = depth if split else None
     valley = settings.pop("split_valley_probability", None)
