@@ -597,6 +597,12 @@ def test_config_refuses_bad_split_settings_naming_the_key(repo):
     assert "key targets.mito.objects: split_min_depth_nm (300 nm) exceeds 229 nm" in str(
         too_deep.value
     )
+    with pytest.raises(TesseraInputError) as auto_too_deep:
+        # a ball of radius 29 nm at most
+        load_config(config({"min_volume_um3": 0, "max_volume_um3": 0.0001}), schema)
+    assert "key targets.mito.objects: split_min_depth_nm (auto, at least 30 nm) exceeds 29 nm" in (
+        str(auto_too_deep.value)
+    )
     with pytest.raises(TesseraInputError) as unit_in_text:
         load_config(config({"split_min_depth_nm": "40nm"}), schema)
     assert "key targets.mito.objects.split_min_depth_nm: '40nm' does not match '^auto$'" in str(

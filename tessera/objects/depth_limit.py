@@ -34,12 +34,13 @@ def split_depth_nm(setting, spacing):
     return setting  # a number, checked where it is used (check_split_depth)
 
 
-def split_depth_problem(split_min_depth_nm, max_volume_um3):
+def split_depth_problem(split_min_depth_nm, max_volume_um3, *, shown=None):
     """Why a split depth can never split an object the size range keeps (None if it can).
 
     A seed rises above its saddle by at most its distance to the background, which is at most
     the radius of the largest ball the object holds, and a ball of volume V has radius
-    (3V / 4 pi) ** (1/3).
+    (3V / 4 pi) ** (1/3). `shown` names the depth in the message instead of its value (``auto``
+    and its floor, say).
 
     Examples
     --------
@@ -54,6 +55,7 @@ def split_depth_problem(split_min_depth_nm, max_volume_um3):
     if split_min_depth_nm <= radius_nm:
         return None
     return (
-        f"split_min_depth_nm ({split_min_depth_nm} nm) exceeds {radius_nm:.0f} nm, the radius of a"
+        f"split_min_depth_nm ({shown or f'{split_min_depth_nm} nm'}) exceeds {radius_nm:.0f} nm, "
+        "the radius of a"
         f" ball of max_volume_um3 ({max_volume_um3} um^3): no object could be split"
     )

@@ -15,7 +15,7 @@ import pandas as pd
 import yaml
 
 from tessera.errors import TesseraInputError
-from tessera.objects.depth_limit import split_depth_problem
+from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -185,10 +185,16 @@ def _check_related_keys(config, source):
                 f"key targets.{name}.objects: min_volume_um3 ({smallest}) is larger than max_volume_um3 ({largest})",
                 source=source,
             )
-        depth = objects.get("split_min_depth_nm")
-        # auto depends on the voxel size: the objects job checks the depth it gives
-        numeric = depth is not None and depth != "auto"
-        problem = numeric and largest is not None and split_depth_problem(depth, largest)
+        depth, shown = objects.get("split_min_depth_nm"), None
+        # auto depends on the voxel size, so only its floor is known here; the objects job
+        # checks the depth it gives
+        if depth == "auto":
+            depth, shown = AUTO_DEPTH_FLOOR_NM, f"auto, at least {AUTO_DEPTH_FLOOR_NM:g} nm"
+        problem = (
+            depth is not None
+            and largest is not None
+            and split_depth_problem(depth, largest, shown=shown)
+        )
         if problem:
             raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
 
