@@ -10,7 +10,7 @@ import math
 
 from tessera import __version__
 from tessera.cascade.features import default_sigmas
-from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM
+from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -100,11 +100,7 @@ def _split_text(obj):
         "Touching organelles were then separated by a seeded watershed on the Euclidean distance "
         "to the background in nm, seeds being maxima of that distance at least "
         f"{obj['split_min_depth_nm']:g} nm above their saddle"
-        + (
-            f" (the larger of {AUTO_DEPTH_FLOOR_NM:g} nm and the coarsest voxel side)"
-            if obj.get("split_min_depth_setting") == "auto"
-            else ""
-        )
+        + (f" ({AUTO_DEPTH_RULE})" if obj.get("split_min_depth_setting") == "auto" else "")
         + _valley_text(obj.get("split_valley_probability"))
         + "; size limits applied before splitting. "
     )

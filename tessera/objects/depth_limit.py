@@ -10,6 +10,8 @@ import math
 #: volumes (16 nm voxels: object F1 0.995 at 30 nm, 1.000 at 20 nm, 0.967 at 40 nm), as the
 #: deepest setting within 0.02 of the best.
 AUTO_DEPTH_FLOOR_NM = 30.0
+#: What ``auto`` means, in words (the methods paragraph quotes it).
+AUTO_DEPTH_RULE = f"the larger of {AUTO_DEPTH_FLOOR_NM:g} nm and the coarsest voxel side"
 
 
 def split_depth_nm(setting, spacing):

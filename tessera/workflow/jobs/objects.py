@@ -87,9 +87,10 @@ def objects_job(
             "remove its row from the datasets sheet",
             source=qc_table,
         )
+    # recorded as set (auto or a number) and as the depth it means for these voxels
+    depth_setting = {}
     if "split_min_depth_nm" in settings:
-        # recorded as set (auto or a number) and as the depth it means for these voxels
-        settings["split_min_depth_setting"] = settings["split_min_depth_nm"]
+        depth_setting = {"split_min_depth_setting": settings["split_min_depth_nm"]}
         settings["split_min_depth_nm"] = split_depth_nm(
             settings["split_min_depth_nm"], info["spacing"]
         )
@@ -98,6 +99,7 @@ def objects_job(
         "high": high,
         "low": low,
         **settings,
+        **depth_setting,
         "connectivity_meaning": f"{settings['connectivity']}-connected voxels in 3D belong to one object",
         "excluded_sections": excluded,
         "spacing_nm": list(info["spacing"]),
@@ -105,7 +107,6 @@ def objects_job(
     block = settings.pop("block")
     # the off switch and the depth reach the library as one argument: no depth, no splitting
     depth = settings.pop("split_min_depth_nm", None)
-    settings.pop("split_min_depth_setting", None)
     split = settings.pop("split", False)
     settings["split_min_depth_nm"] = depth if split else None
     valley = settings.pop("split_valley_probability", None)
