@@ -54,3 +54,14 @@ def objects_default(key):
 
     walk(schema)
     return found[0]
+
+
+def target_default(key):
+    """A target's own default for `key` (``output_smoothing_px``, ``output_smoothing_sections``
+    ...), read from the config schema."""
+    schema = yaml.safe_load((REPO / "config" / "schemas" / "config.schema.yaml").read_text())
+    targets = schema["properties"]["targets"]
+    target = targets.get("additionalProperties") or next(
+        iter(targets["patternProperties"].values())
+    )
+    return target["properties"][key]["default"]

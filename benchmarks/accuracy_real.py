@@ -14,8 +14,10 @@ Configurations: 1x0 (one stage, no levels: plain pixel classification), 1x2, 2x2
 on every node also reads the previous stage's map of the sections above and below,
 ``context_sections=1``). Key ``chosen``: the cascade ladder from 2x2 (2x2, 3x2, 2x3; see
 tessera.ladder) picks its rung on the validation sections only, and its test scores are
-reported. Every configuration is scored with the final map smoothed
-(Gaussian, --output-sigma px, the workflow's default) and, for comparison, unsmoothed.
+reported. Every configuration is scored with the final map smoothed as the workflow smooths it
+by default (in plane: Gaussian, --output-sigma px; across sections: --output-sigma-z sections,
+``auto`` = the 2D rule of tessera.cascade.across_sections, each section's map averaged with the
+maps of the sections around it) and, for comparison, unsmoothed (neither).
 
 Objects in 3D (key ``objects_3d`` of each configuration): the map of sections 16-19 is turned
 into objects as the objects step does with its default settings (validation threshold, no
@@ -41,16 +43,19 @@ from PIL import Image
 from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import objects_default, report  # noqa: E402
+from _common import objects_default, report, target_default  # noqa: E402
 
 from tessera.block_reduce import block_mean  # noqa: E402
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
     mirrored_stack,
+    mix_sections,
     predict_section,
     prepare_tile,
     receptive_radius,
+    section_sigma,
+    sections_reach,
     z_halo,
 )  # noqa: E402
 from tessera.ladder import choose_rung, ladder_rungs, rung_name  # noqa: E402
@@ -149,7 +154,22 @@ def objects_3d(prob, truth, threshold, *, split=None):
     }
 
 
-def evaluate(spec, image, truth, *, threads, output_sigma):
+def smoothed_maps(models, image, *, output_sigma, output_sigma_z, sections):
+    """The final maps of `sections`, smoothed in plane and across sections as whole-volume
+    prediction smooths them (tessera.cascade.api.mix_sections over the maps of the sections
+    within reach, each predicted once)."""
+    first = max(min(sections) - sections_reach(output_sigma_z), 0)
+    last = min(max(sections) + sections_reach(output_sigma_z), image.shape[0] - 1)
+    maps = {
+        z: predict_section(models, image, z, output_sigma=output_sigma)
+        for z in range(first, last + 1)
+    }
+    if output_sigma_z <= 0:
+        return {z: maps[z] for z in sections}
+    return {z: mix_sections(maps.__getitem__, z, output_sigma_z, image.shape[0]) for z in sections}
+
+
+def evaluate(spec, image, truth, *, threads, output_sigma, output_sigma_z=0.0):
     radius = receptive_radius(spec)
     h, w = image.shape[1:]
     tiles = [
@@ -168,7 +188,13 @@ def evaluate(spec, image, truth, *, threads, output_sigma):
     models = fit_cascade(spec, tiles, target="mitochondria", threads=threads)
     train_s = time.perf_counter() - start
     start = time.perf_counter()
-    prob = {z: predict_section(models, image, z, output_sigma=output_sigma) for z in range(14, 20)}
+    prob = smoothed_maps(
+        models,
+        image,
+        output_sigma=output_sigma,
+        output_sigma_z=output_sigma_z,
+        sections=range(14, 20),
+    )
     predict_s = time.perf_counter() - start
     raw = {z: predict_section(models, image, z) for z in range(14, 20)}
     smoothed = scores(prob, truth)
@@ -181,7 +207,9 @@ def evaluate(spec, image, truth, *, threads, output_sigma):
     }, scores(raw, truth)
 
 
-def ladder_pick(results, image, truth, *, make_spec, threads, output_sigma, base=(2, 2)):
+def ladder_pick(
+    results, image, truth, *, make_spec, threads, output_sigma, output_sigma_z, base=(2, 2)
+):
     """The cascade ladder from `base` (tessera.ladder): every rung's validation F1 (sections
     14-15), the pick by the workflow's own rule, and the pick's scores on the test sections.
 
@@ -192,7 +220,12 @@ def ladder_pick(results, image, truth, *, make_spec, threads, output_sigma, base
         name = rung_name(stages, levels)
         if name not in results:
             results[name], _ = evaluate(
-                make_spec(stages, levels), image, truth, threads=threads, output_sigma=output_sigma
+                make_spec(stages, levels),
+                image,
+                truth,
+                threads=threads,
+                output_sigma=output_sigma,
+                output_sigma_z=output_sigma_z,
             )
         rows.append((stages, levels, results[name]["validation_f1"]))
     table = choose_rung(pd.DataFrame(rows, columns=["stages", "levels", "f1"]))
@@ -216,7 +249,12 @@ def main():
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--samples", type=int, default=6000)
     parser.add_argument("--neighbours", type=int, default=1)
-    parser.add_argument("--output-sigma", type=float, default=2.0)
+    parser.add_argument("--output-sigma", type=float, default=target_default("output_smoothing_px"))
+    parser.add_argument(
+        "--output-sigma-z",
+        default=target_default("output_smoothing_sections"),
+        help="smoothing across sections: sections, or auto (the default's rule for 2D cascades)",
+    )
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument(
         "--orientations", type=int, default=CascadeSpec().orientations, help="cascade.orientations"
@@ -225,6 +263,8 @@ def main():
     if not (DATA / "raw").is_dir():
         raise SystemExit(f"{DATA} is not present; this benchmark needs the open VNC stack")
     image, truth = load()
+    setting = args.output_sigma_z if args.output_sigma_z == "auto" else float(args.output_sigma_z)
+    output_sigma_z = section_sigma(setting, dims=2)  # every configuration here works in 2D
     results, unsmoothed, rows = {}, {}, []
     for name in args.configs.split(","):
         stages, levels, context_sections = CONFIGS[name]
@@ -239,7 +279,12 @@ def main():
             orientations=args.orientations,
         )
         results[name], unsmoothed[name] = evaluate(
-            spec, image, truth, threads=args.threads, output_sigma=args.output_sigma
+            spec,
+            image,
+            truth,
+            threads=args.threads,
+            output_sigma=args.output_sigma,
+            output_sigma_z=output_sigma_z,
         )
         r, u = results[name], unsmoothed[name]
         o, c = r["objects_3d"], r["objects_3d_unsplit"]
@@ -276,6 +321,7 @@ def main():
         ),
         threads=args.threads,
         output_sigma=args.output_sigma,
+        output_sigma_z=output_sigma_z,
     )
     c = results["chosen"]
     rows.append(
@@ -295,6 +341,7 @@ def main():
             "seed": args.seed,
             "orientations": args.orientations,
             "output_sigma": args.output_sigma,
+            "output_sigma_z": output_sigma_z,
             "vnc_mito": results,
             "vnc_mito_unsmoothed": unsmoothed,
         },

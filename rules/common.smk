@@ -430,6 +430,10 @@ def target_output_sigma(wildcards):
     return target_settings(wildcards)["output_smoothing_px"]
 
 
+def target_output_sigma_z(wildcards):
+    return target_settings(wildcards)["output_smoothing_sections"]
+
+
 def study_results():
     """Every final result of the study (what `rule all` asks for, besides the audit itself)."""
     return [

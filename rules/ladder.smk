@@ -20,6 +20,7 @@ rule score_rung:
     params:
         downsample=target_downsample,
         output_sigma=target_output_sigma,
+        output_smoothing_sections=target_output_sigma_z,
         datasets=annotated_ids,
         code=script_code("score_rung"),
     script:

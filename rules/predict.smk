@@ -23,6 +23,7 @@ rule shard_plan:
         max_halo=config["predict"]["max_halo"],
         dtype=config["predict"]["dtype"],
         output_sigma=target_output_sigma,
+        output_smoothing_sections=target_output_sigma_z,
         code=script_code("shard_plan"),
     script:
         "../scripts/shard_plan.py"

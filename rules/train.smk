@@ -57,6 +57,7 @@ rule predict_tiles:
     params:
         downsample=target_downsample,
         output_sigma=target_output_sigma,
+        output_smoothing_sections=target_output_sigma_z,
         datasets=annotated_ids,
         code=script_code("predict_tiles"),
     script:

@@ -20,4 +20,5 @@ run_job(
     target=snakemake.wildcards.target,
     downsample=snakemake.params.downsample,
     output_sigma=snakemake.params.output_sigma,
+    output_smoothing_sections=snakemake.params.output_smoothing_sections,
 )

@@ -21,4 +21,5 @@ run_job(
     stages=int(snakemake.wildcards.stages),
     levels=int(snakemake.wildcards.levels),
     output_sigma=snakemake.params.output_sigma,
+    output_smoothing_sections=snakemake.params.output_smoothing_sections,
 )

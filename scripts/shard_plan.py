@@ -21,5 +21,6 @@ run_job(
     max_halo=snakemake.params.max_halo,
     dtype=snakemake.params.dtype,
     output_sigma=snakemake.params.output_sigma,
+    output_smoothing_sections=snakemake.params.output_smoothing_sections,
     qc_table=snakemake.input.qc,
 )

@@ -9,6 +9,7 @@ paragraph cannot drift from the analysis it describes.
 import math
 
 from tessera import __version__
+from tessera.cascade.across_sections import AUTO_SECTION_RULE
 from tessera.cascade.features import default_sigmas
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 
@@ -116,6 +117,24 @@ def _valley_text(valley):
     )
 
 
+def _smoothing_text(settings):
+    """The sentence on the final map's smoothing, in plane and across sections."""
+    in_plane = settings.get("output_smoothing_px", 0.0)
+    across = settings.get("output_smoothing_sections", 0.0)
+    if across == "auto":
+        across_text = f"across sections {AUTO_SECTION_RULE}"
+    elif across:
+        across_text = f"across sections a Gaussian of σ {across:g} sections"
+    else:
+        across_text = "no smoothing across sections"
+    if not in_plane and not across:
+        return "The final probability maps were not smoothed. "
+    plane_text = (
+        f"a Gaussian of σ {in_plane:g} px in plane" if in_plane else "no smoothing in plane"
+    )
+    return f"Before thresholding, the final probability maps were smoothed: {plane_text}, {across_text}. "
+
+
 def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
@@ -154,7 +173,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"tiles; on {int(test['tiles'])} held-out test tiles pixel precision was {test['precision']:.3f}, recall "
         f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}. Whole volumes were "
         f"predicted block by block with a halo of the model's receptive field, which gives the same result as "
-        f"predicting each volume in one piece. Probability maps were thresholded with {hysteresis}"
+        f"predicting each volume in one piece. {_smoothing_text(settings)}Probability maps were thresholded with {hysteresis}"
         + (f", {', '.join(morph)}" if morph else "")
         + f"; {size}, and {obj['connectivity']}-connected voxels formed one object. "
         + _split_text(obj)

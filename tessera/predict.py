@@ -16,6 +16,7 @@ probability map, which it alone writes (one writer per zarr chunk).
 
 import numpy as np
 
+from tessera.cascade.across_sections import mix_sections, sections_reach
 from tessera.cascade.api import (
     cascade_spec,
     mirrored_block,
@@ -202,13 +203,15 @@ def plan_fits_cascade(plan, spec):
     return halo == plan["halo"] and spec.align == plan["align"]
 
 
-def block_read_bytes(spec, shape, *, halo, itemsize=1):
+def block_read_bytes(spec, shape, *, halo, itemsize=1, output_sigma_z=0.0):
     """Bytes :func:`predict_block` holds for its image beyond what one frame counts itself.
 
     A block of `shape` (z, y, x) is read once with `halo` pixels in plane and the cascade's
-    ``z_halo`` sections on each side: the raw values (`itemsize` bytes each) and their mirrored
-    copy, which every frame takes a view of. A frame counts its own window of ``2 z_halo + 1``
-    sections (:func:`tessera.cascade.api.frame_memory_bytes`); the rest is counted here.
+    ``z_halo`` sections on each side (and, with smoothing across sections, the sections that
+    smoothing reads): the raw values (`itemsize` bytes each) and their mirrored copy, which
+    every frame takes a view of. A frame counts its own window of ``2 z_halo + 1`` sections
+    (:func:`tessera.cascade.api.frame_memory_bytes`); the rest is counted here, with the
+    float32 maps held for the smoothing across sections.
 
     Examples
     --------
@@ -218,14 +221,18 @@ def block_read_bytes(spec, shape, *, halo, itemsize=1):
     500
     """
     z, y, x = (int(v) for v in shape)
-    sections = z + 2 * z_halo(spec)
+    reach = sections_reach(output_sigma_z)
+    sections = z + 2 * reach + 2 * z_halo(spec)
     pixels = (y + 2 * int(halo)) * (x + 2 * int(halo))
     # the raw read is freed once mirrored (where the block crosses an edge): counting both
     # keeps the figure an upper bound without following the order of events
-    return pixels * itemsize * (2 * sections - (2 * z_halo(spec) + 1))
+    held_maps = (2 * reach + 1) * y * x * 4 if reach else 0
+    return pixels * itemsize * (2 * sections - (2 * z_halo(spec) + 1)) + held_maps
 
 
-def predict_block(models, volume, box, *, halo=None, output_sigma=0.0, dtype="float32"):
+def predict_block(
+    models, volume, box, *, halo=None, output_sigma=0.0, output_sigma_z=0.0, dtype="float32"
+):
     """Probabilities of the core `box` = (z0, z1, y0, y1, x0, x1) of a (Z, Y, X) volume.
 
     The block's sections and the cascade's ``z_halo`` sections on each side (mirrored beyond the
@@ -238,20 +245,44 @@ def predict_block(models, volume, box, *, halo=None, output_sigma=0.0, dtype="fl
     sections around them). `volume` may be a zarr array. Each section's float32 map is stored
     as `dtype` (:func:`tessera.probability_encoding.encode_probability`: uint8 round(255 p),
     float16 or float32) as soon as it is made, so the block is held in that dtype only.
+
+    With `output_sigma_z` (σ in sections) the maps are smoothed across sections
+    (:mod:`tessera.cascade.across_sections`): the block also predicts the sections within that
+    smoothing's reach above and below it that lie inside the volume, holds the few maps the
+    smoothing reads at a time, and stores each section once its smoothed map is complete.
     """
     spec = cascade_spec(models)
     halo = shard_halo(spec, output_sigma=output_sigma) if halo is None else halo
     z0, z1, y0, y1, x0, x1 = (int(v) for v in box)
     sections = z_halo(spec)
+    reach = sections_reach(output_sigma_z)
+    n_sections = volume.shape[0]
+    # sections whose maps the block computes: its own and, inside the volume, those its
+    # smoothing across sections reads (beyond the volume the maps are mirrored, not computed)
+    first, last = max(z0 - reach, 0), min(z1 + reach, n_sections)
     # one read for the whole block: a 3D cascade reads tens of sections around each section,
     # and consecutive sections' windows overlap in all but one of them
     stack = mirrored_block(
-        volume, z0 - sections, z1 + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
+        volume, first - sections, last + sections, y0 - halo, y1 + halo, x0 - halo, x1 + halo
     )
-    windows = (stack[k : k + 2 * sections + 1] for k in range(z1 - z0))
+    windows = (stack[k : k + 2 * sections + 1] for k in range(last - first))
     out = np.empty((z1 - z0, y1 - y0, x1 - x0), dtype=stored_dtype(dtype))
     room = volume_room(spec, volume.shape[1:], (y0, y1, x0, x1))
     maps = predict_frames(models, windows, (y1 - y0, x1 - x0), output_sigma=output_sigma, room=room)
+    if not reach:
+        for k, prob in enumerate(maps):
+            out[k] = encode_probability(prob, dtype)
+        return out
+    held, z = {}, z0
     for k, prob in enumerate(maps):
-        out[k] = encode_probability(prob, dtype)
+        held[first + k] = prob
+        # every section whose smoothing reads no section beyond those made so far
+        while z < z1 and min(z + reach, n_sections - 1) <= first + k:
+            out[z - z0] = encode_probability(
+                mix_sections(held.__getitem__, z, output_sigma_z, n_sections), dtype
+            )
+            z += 1
+            # later sections read nothing below z - reach (mirrored ones lie above it)
+            for old in [s for s in held if s < z - reach]:
+                del held[old]
     return out

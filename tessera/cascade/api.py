@@ -6,6 +6,7 @@ Stages and workflow jobs import from here, not from the cascade's inner modules,
 can be rearranged without touching them.
 """
 
+from tessera.cascade.across_sections import mix_sections, section_sigma, sections_reach
 from tessera.cascade.fit import fit_cascade, lazy_tile, out_of_fold_maps, prepare_tile, train_node
 from tessera.cascade.frame import node_feature_names
 from tessera.cascade.geometry import receptive_radius, volume_room, z_halo
@@ -42,6 +43,7 @@ __all__ = [
     "mirrored_block",
     "mirrored_stack",
     "mirrored_window",
+    "mix_sections",
     "node_feature_names",
     "node_inputs",
     "node_settings",
@@ -53,6 +55,8 @@ __all__ = [
     "prepare_tile",
     "receptive_radius",
     "save_node",
+    "section_sigma",
+    "sections_reach",
     "spec_from_settings",
     "train_node",
     "volume_room",

@@ -3,6 +3,7 @@ memory one frame takes."""
 
 import numpy as np
 
+from tessera.cascade.across_sections import mix_sections
 from tessera.cascade.classifiers import linear_first_step
 from tessera.cascade.features import feature_names
 from tessera.cascade.frame import (
@@ -97,12 +98,14 @@ def predict_frames(models, images, core_shape, *, output_sigma=0.0, room=None):
         yield prob[margin : margin + core_shape[0], margin : margin + core_shape[1]]
 
 
-def predict_section(models, volume, z=None, *, output_sigma=0.0):
+def predict_section(models, volume, z=None, *, output_sigma=0.0, output_sigma_z=0.0):
     """Probability map of one whole section, in one piece (maps mirrored beyond its edges).
 
     `volume` is a 2D section, or a (Z, Y, X) array with `z` the section (needed when the
     cascade reads neighbouring sections: ``z_halo`` of them on each side, mirrored beyond the
-    volume's first and last section).
+    volume's first and last section). With `output_sigma_z` (σ in sections) the maps of the
+    sections around are predicted too and the section's map is smoothed across them
+    (:func:`tessera.cascade.across_sections.mix_sections`).
     """
     spec = cascade_spec(models)
     halo = receptive_radius(spec, output_sigma=output_sigma)
@@ -110,8 +113,21 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0):
     if volume.ndim == 2:
         volume, z = volume[np.newaxis], 0
     h, w = volume.shape[1:]
-    image = mirrored_stack(volume, z, z_halo(spec), -halo, h + halo, -halo, w + halo)
-    return predict_frame(models, image, (h, w), output_sigma=output_sigma, room=(0, 0, 0, 0))
+
+    def one(section):
+        image = mirrored_stack(volume, section, z_halo(spec), -halo, h + halo, -halo, w + halo)
+        return predict_frame(models, image, (h, w), output_sigma=output_sigma, room=(0, 0, 0, 0))
+
+    if output_sigma_z <= 0:
+        return one(z)
+    maps = {}
+
+    def map_of(section):
+        if section not in maps:
+            maps[section] = one(section)
+        return maps[section]
+
+    return mix_sections(map_of, z, output_sigma_z, volume.shape[0])
 
 
 # Per-row working memory of a classifier on one band of rows beyond the rows themselves and

@@ -24,6 +24,7 @@ def probability_metadata(plan):
             "z_factor": plan["factors"][0],
             "halo": plan["halo"],
             "output_smoothing_px": plan.get("output_sigma", 0.0),
+            "output_smoothing_sections": plan.get("output_sigma_z", 0.0),
             "block": plan["block"],
             "models": plan["models"],
             # sections QC excluded, each predicted (and read by its neighbours) as the kept one

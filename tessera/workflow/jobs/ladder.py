@@ -5,7 +5,7 @@ Only validation tiles are opened here (their label images and their image window
 tiles stay held out for the final scores (rule predict_tiles, with the chosen rung).
 """
 
-from tessera.cascade.api import cascade_spec
+from tessera.cascade.api import cascade_spec, section_sigma
 from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path
 from tessera.ladder import choose_rung, plot_ladder
@@ -31,6 +31,7 @@ def score_rung_job(
     stages,
     levels,
     output_sigma=0.0,
+    output_smoothing_sections=0.0,
     qc_tables=None,
 ):
     """Predict the validation tiles with one rung's nodes; write its validation scores.
@@ -54,7 +55,13 @@ def score_rung_job(
             source=model_paths[0],
         )
     arrays = level_arrays(pyramids, registry, downsample=downsample, qc_tables=qc_tables)
-    probabilities = tile_probabilities(models, arrays, registry, output_sigma=output_sigma)
+    probabilities = tile_probabilities(
+        models,
+        arrays,
+        registry,
+        output_sigma=output_sigma,
+        output_sigma_z=section_sigma(output_smoothing_sections, dims=spec.dims),
+    )
     prob, truth = pooled_pixels(registry["tile_id"], labels, probabilities)
     threshold = float(choose_threshold(prob, truth))
     row = {

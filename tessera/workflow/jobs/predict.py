@@ -17,6 +17,7 @@ from tessera.cascade.api import (
     frame_memory_bytes,
     node_feature_names,
     nodes,
+    section_sigma,
 )
 from tessera.errors import TesseraInputError, TesseraResourceError
 from tessera.io.atomic import atomic_path
@@ -59,9 +60,13 @@ def shard_plan_job(
     max_halo,
     dtype,
     output_sigma=0.0,
+    output_smoothing_sections=0.0,
     qc_table=None,
 ):
     """Write the shard plan of one dataset and target (a recorded artifact).
+
+    `output_smoothing_sections` (σ in sections, or ``auto``) is resolved for the cascade's dims
+    (:func:`tessera.cascade.api.section_sigma`) and recorded as ``output_sigma_z``.
 
     With the dataset's section QC table, the plan records each excluded section with the kept
     section the shard jobs read in its place (``section_stand_ins``; training read the same).
@@ -90,6 +95,7 @@ def shard_plan_job(
             "target": target,
             "downsample": downsample,
             "output_sigma": output_sigma,
+            "output_sigma_z": section_sigma(output_smoothing_sections, dims=spec.dims),
             "spacing": list(spacing),
             "factors": list(factors),
             "dtype": dtype,
@@ -136,7 +142,9 @@ def shard_memory_mb(plan, job, spec, model_paths):
     worst = 0
     for z, y, x in shapes:
         # the image is read as stored (uint8 after ingest)
-        window = block_read_bytes(spec, (z, y, x), halo=halo, itemsize=1)
+        window = block_read_bytes(
+            spec, (z, y, x), halo=halo, itemsize=1, output_sigma_z=plan.get("output_sigma_z", 0.0)
+        )
         # the block as stored, and one section's float32 map with its clip/scale/round
         # temporaries (each section is encoded as soon as it is made)
         block = z * y * x * itemsize + y * x * 4 * 4
@@ -206,7 +214,13 @@ def predict_shard_job(plan_path, pyramid, model_paths, out_dir, *, job, target, 
         for index in plan["jobs"][job]:
             box = plan["blocks"][index]
             stored = predict_block(
-                models, array, box, halo=halo, output_sigma=output_sigma, dtype=plan["dtype"]
+                models,
+                array,
+                box,
+                halo=halo,
+                output_sigma=output_sigma,
+                output_sigma_z=plan.get("output_sigma_z", 0.0),
+                dtype=plan["dtype"],
             )
             shard.add(index, stored)
             _log.info("block %d %s done", index, box)

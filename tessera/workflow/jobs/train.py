@@ -8,8 +8,10 @@ from tessera.cascade.api import (
     automatic_dims,
     automatic_neighbours,
     cascade_spec,
+    mix_sections,
     predict_frame,
     receptive_radius,
+    section_sigma,
     spec_from_settings,
     train_node,
     z_halo,
@@ -140,11 +142,14 @@ def predict_tiles_job(
     target,
     downsample,
     output_sigma=0.0,
+    output_smoothing_sections=0.0,
     qc_tables=None,
 ):
     """Predict the validation and test tiles with the finished cascade; score them.
 
     The threshold is the one with the best F1 on the validation tiles; test scores use it.
+    `output_smoothing_sections` (σ in sections, or ``auto``) is resolved for the cascade's dims
+    (:func:`tessera.cascade.api.section_sigma`), as the shard plan resolves it.
     Writes every tile's probability map (``<tile_id>`` arrays in an .npz) and a TSV of pixel
     precision, recall, F1 and Jaccard per role. Sections the `qc_tables` exclude are read as
     their stand-ins, as in training and whole-volume prediction.
@@ -154,26 +159,49 @@ def predict_tiles_job(
     models = load_cascade(model_paths, target=target)
     arrays = level_arrays(pyramids, registry, downsample=downsample, qc_tables=qc_tables)
     held = registry[registry["role"].isin(["validation", "test"])]
-    probabilities = tile_probabilities(models, arrays, held, output_sigma=output_sigma)
+    probabilities = tile_probabilities(
+        models,
+        arrays,
+        held,
+        output_sigma=output_sigma,
+        output_sigma_z=section_sigma(output_smoothing_sections, dims=cascade_spec(models).dims),
+    )
     table = score_tiles(held, labels, probabilities)
     write_tile_probabilities(out_probabilities, probabilities)
     write_scores(out_table, table)
     return table.to_dict(orient="records")
 
 
-def tile_probabilities(models, arrays, rows, *, output_sigma=0.0):
+def tile_probabilities(models, arrays, rows, *, output_sigma=0.0, output_sigma_z=0.0):
     """Tile id → the cascade's probability over the tile's core, for each registry row.
 
     `arrays` maps dataset id → working-level array; each tile is read with the cascade's halo.
+    With `output_sigma_z` (σ in sections) the tile's region is predicted on the sections that
+    smoothing reads too, as whole-volume prediction does, and smoothed across them.
     """
     spec = cascade_spec(models)
     halo = receptive_radius(spec, output_sigma=output_sigma)
     out = {}
     for _, row in rows.iterrows():
         array = arrays[row["dataset"]]
-        image = tile_window(array, row, halo, z_halo(spec))
         core = (int(row["height"]), int(row["width"]))
-        out[row["tile_id"]] = predict_frame(
-            models, image, core, output_sigma=output_sigma, room=tile_room(spec, array, row)
+        room = tile_room(spec, array, row)
+
+        def one(section, array=array, row=row, core=core, room=room):
+            image = tile_window(array, {**row.to_dict(), "z": section}, halo, z_halo(spec))
+            return predict_frame(models, image, core, output_sigma=output_sigma, room=room)
+
+        if output_sigma_z <= 0:
+            out[row["tile_id"]] = one(int(row["z"]))
+            continue
+        maps = {}
+
+        def map_of(section, one=one, maps=maps):
+            if section not in maps:
+                maps[section] = one(section)
+            return maps[section]
+
+        out[row["tile_id"]] = mix_sections(
+            map_of, int(row["z"]), output_sigma_z, int(array.shape[0])
         )
     return out
