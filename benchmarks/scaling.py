@@ -4,7 +4,9 @@ A default 2 x 2 cascade (MLP) is trained quickly on a synthetic demo volume. Vol
 16 sections of 1024 x 1024 voxels (the working level; 1x = 2 sections) are then predicted through the same path
 the workflow uses (shard plan -> predict_shard_job -> stitch_job) with blocks of one section,
 each step in a fresh process on one thread, so the figures include reading, features, the
-cascade, writing and verification. Labelling (label_objects, blocks of 8 x 512 x 512) runs on
+cascade, writing and verification. The smoothing across sections is off here (its default
+reads two sections on each side of a block, which blocks of one section would each predict;
+blocks of the default 32 sections predict at most 4 more, see the README). Labelling (label_objects, blocks of 8 x 512 x 512) runs on
 probability volumes of 8 x 1024 x 1024 and 8 times that.
 
 Figures:

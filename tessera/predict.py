@@ -16,12 +16,13 @@ probability map, which it alone writes (one writer per zarr chunk).
 
 import numpy as np
 
-from tessera.cascade.across_sections import mix_sections, sections_reach
 from tessera.cascade.api import (
     cascade_spec,
     mirrored_block,
+    mix_sections,
     predict_frames,
     receptive_radius,
+    sections_reach,
     volume_room,
     z_halo,
 )
