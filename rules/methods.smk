@@ -3,7 +3,10 @@
 
 rule checksum_inputs:
     input:
-        dataset_inputs,
+        # after the stack's check: a damaged replacement stops there, before its checksum
+        # would replace the record of the stack the results rest on
+        checked="results/{dataset}/ingest/stack_check.json",
+        paths=dataset_inputs,
     output:
         "results/{dataset}/audit/inputs.sha256",
     log:

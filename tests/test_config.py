@@ -117,6 +117,29 @@ def test_defaults_are_filled_from_the_schema(schemas):
             r"key targets.mitochondria.split.fractions: \[0.5, 0.5\] is too short",
         ),
         (
+            # sums to 1.1: checked when the config loads, not when the split job runs
+            lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[0.6, 0.2, 0.3]),
+            r"key targets.mitochondria.split.fractions: \[0.6, 0.2, 0.3\]: expected the "
+            r"training, validation and test fractions, each above 0, summing to 1",
+        ),
+        (
+            # no validation tiles: no threshold could be chosen
+            lambda c: c["targets"]["mitochondria"]["split"].update(fractions=[1, 0, 0]),
+            r"key targets.mitochondria.split.fractions: \[1, 0, 0\]: expected",
+        ),
+        (
+            # a brace too many: str.format would fail inside the workflow
+            lambda c: c["targets"]["mitochondria"]["annotations"].update(labels="t/{dataset}}.tif"),
+            r"key targets.mitochondria.annotations.labels: 't/\{dataset\}\}.tif' is not a path "
+            r"template \(Single '\}' encountered in format string\)",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["annotations"].update(
+                labels="{dataset}_{z}.tif"
+            ),
+            r"annotations.labels: '\{dataset\}_\{z\}.tif' is not a path template \(it holds \{z\}\)",
+        ),
+        (
             # checked when the config loads, not when the first ingest job runs
             lambda c: c["ingest"].update(percentiles=[99.9, 0.1]),
             r"key ingest.percentiles: \[99.9, 0.1\]: expected the lower percentile first and "
@@ -130,6 +153,31 @@ def test_bad_config_values_name_the_key(schemas, shipped_config, edit, message):
     with pytest.raises(TesseraInputError, match=message) as info:
         load_config(config, schemas / "config.schema.yaml", source="config/config.yaml")
     assert str(info.value).startswith("config/config.yaml: ")
+
+
+def test_a_key_given_twice_in_the_config_file_is_refused_naming_both_lines(tmp_path):
+    # YAML readers keep the last of two equal keys (PyYAML does, silently): a second predict:
+    # block would drop the first one's settings without a word.
+    path = tmp_path / "config.yaml"
+    path.write_text(
+        "predict:\n  block: [8, 512, 512]\nstudy: {name: x}\npredict:\n  shard_jobs: 3\n"
+    )
+    with pytest.raises(TesseraInputError) as info:
+        check_config_file(path)
+    assert str(info.value) == (
+        f"{path}: line 4: key 'predict' is given twice in one mapping (first on line 1); YAML "
+        "would keep only the last one"
+    )
+
+
+def test_a_folder_given_as_the_datasets_sheet_is_refused(tmp_path, schemas, monkeypatch):
+    (tmp_path / "config").mkdir()
+    monkeypatch.chdir(tmp_path)  # the project folder: the sheet must lie under it
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets("config", schemas / "datasets.schema.yaml")
+    assert str(info.value) == (
+        "config: is a folder; expected the datasets sheet, a tab-separated file (key datasets)"
+    )
 
 
 def test_yaml_is_loaded_safely(tmp_path):

@@ -619,6 +619,52 @@ def test_lost_section_is_refused_when_asked(tmp_path):
     _one_line_and_nothing_written(info, tmp_path / "slices", tmp_path, before)
 
 
+@pytest.mark.parametrize(
+    ("numbers", "message"),
+    [
+        # a stray file far beyond the others: 4996 blank sections
+        (
+            [0, 1, 2, 3, 5000],
+            r"section numbers 0 to 5000 in steps of 1 make 5001 sections, 4996 of them without a file",
+        ),
+        # depths in steps of 50 with one at 140: the common step becomes 10, 44 blank sections
+        (
+            [0, 50, 100, 140, 200, 250, 300, 350, 400, 450, 500, 550],
+            r"section numbers 0 to 550 in steps of 10 make 56 sections, 44 of them without a file",
+        ),
+    ],
+)
+def test_a_numbering_that_would_be_mostly_blank_sections_is_refused(tmp_path, numbers, message):
+    # A lost section becomes a blank placeholder; a numbering with more lost than a quarter of
+    # its sections is refused in one line instead of becoming a stack of mostly blank sections.
+    volume = np.zeros((len(numbers), 8, 8), np.uint8)
+    _numbered_folder(tmp_path / "slices", volume, numbers)
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError, match=message) as info:
+        _ingest(tmp_path / "slices", tmp_path, fmt="slice_folder")
+    _one_line_and_nothing_written(info, tmp_path / "slices", tmp_path, before)
+    assert (
+        "expected at most a quarter lost (a stray file, or numbers that are not a regular "
+        "sequence? rename or remove them)" in str(info.value)
+    )
+
+
+def test_a_single_section_is_refused_as_a_stack(tmp_path):
+    # One 2D image listed as a stack: objects one section thick would get volumes and
+    # surfaces, and no tile split into sections apart in z exists.
+    src = tmp_path / "one.tif"
+    tifffile.imwrite(src, np.zeros((48, 64), np.uint8))
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert message == (
+        f"{src}: holds a single section of 48 x 64 pixels; expected a stack of sections (z, y, "
+        "x): save every section into one multi-page file, or use format slice_folder for one "
+        "file per section"
+    )
+
+
 def test_numbering_by_a_constant_step_has_no_gap(tmp_path):
     # Files named by cutting depth in nm (z0000, z0050, ...): a step of 50, nothing lost.
     volume = np.random.default_rng(4).integers(0, 256, (4, 8, 8), dtype=np.uint8)

@@ -15,6 +15,10 @@ from tessera.errors import TesseraInputError
 __all__ = ["number_sections"]
 
 _LAST_NUMBER = re.compile(r"(\d+)(?!.*\d)")
+#: The largest share of a numbering's sections that may lack a file: lost sections are a few
+#: (each becomes a blank placeholder); more points to a stray file or an irregular numbering,
+#: which would otherwise turn into a stack of mostly blank sections.
+MOST_LOST = 0.25
 
 
 def number_sections(names, *, source=None):
@@ -41,7 +45,8 @@ def number_sections(names, *, source=None):
     Raises
     ------
     TesseraInputError
-        A name without a number, or two names with the same number.
+        A name without a number, two names with the same number, or more than a quarter of
+        the sections without a file (:data:`MOST_LOST`).
 
     Examples
     --------
@@ -74,6 +79,14 @@ def number_sections(names, *, source=None):
     z = [(n - numbers[0]) // step for n in numbers]
     count = z[-1] + 1 if z else 0
     present = set(z)
+    lost = count - len(present)
+    if lost > count * MOST_LOST:
+        raise TesseraInputError(
+            f"section numbers {numbers[0]} to {numbers[-1]} in steps of {step} make {count} "
+            f"sections, {lost} of them without a file; expected at most a quarter lost (a stray "
+            "file, or numbers that are not a regular sequence? rename or remove them)",
+            source=source,
+        )
     return {
         "names": [numbered[n] for n in numbers],
         "z": z,

@@ -8,6 +8,7 @@ one line naming the file, the key or row and column, and what was expected.
 import csv
 import json
 import math
+import string
 from pathlib import Path
 
 import jsonschema
@@ -32,6 +33,29 @@ def read_yaml(path):
         raise TesseraInputError("not UTF-8 text; expected a YAML file", source=path) from None
     except yaml.YAMLError as exc:
         raise TesseraInputError(f"not valid YAML: {exc}".replace("\n", " "), source=path) from None
+
+
+class _DuplicateKey(Exception):
+    """A key given twice in one mapping of a YAML file."""
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """The safe loader, refusing a key given twice in one mapping: YAML readers keep the last
+    one silently, so a second ``predict:`` block would drop every key of the first."""
+
+    def construct_mapping(self, node, deep=False):
+        seen = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=deep)
+            if not isinstance(key, (str, int, float, bool)) and key is not None:
+                continue  # an unhashable key: the loader itself names it
+            if key in seen:
+                raise _DuplicateKey(
+                    f"line {key_node.start_mark.line + 1}: key {key!r} is given twice in one "
+                    f"mapping (first on line {seen[key] + 1}); YAML would keep only the last one"
+                )
+            seen[key] = key_node.start_mark.line
+        return super().construct_mapping(node, deep=deep)
 
 
 def check_config_file(path):
@@ -61,7 +85,9 @@ def check_config_file(path):
     except UnicodeDecodeError:
         raise TesseraInputError("not UTF-8 text; expected a YAML file", source=path) from None
     try:
-        data = yaml.safe_load(text)
+        data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
+    except _DuplicateKey as exc:
+        raise TesseraInputError(str(exc), source=path) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f"line {mark.line + 1}: " if mark is not None else ""
@@ -172,6 +198,8 @@ def _check_related_keys(config, source):
             source=source,
         )
     for name, target in (config.get("targets") or {}).items():
+        _check_templates(name, target.get("annotations") or {}, source)
+        _check_split(name, target.get("split") or {}, source)
         objects = target.get("objects") or {}
         high, low = objects.get("high"), objects.get("low")
         if high is not None and low is not None and low > high:
@@ -197,6 +225,50 @@ def _check_related_keys(config, source):
         )
         if problem:
             raise TesseraInputError(f"key targets.{name}.objects: {problem}", source=source)
+
+
+def _check_templates(name, annotations, source):
+    """A label or instance path template may hold ``{dataset}`` and nothing else in braces."""
+    for field in ("labels", "instances"):
+        template = annotations.get(field)
+        if not isinstance(template, str):
+            continue
+        try:
+            parts = list(string.Formatter().parse(template))
+        except ValueError as exc:
+            problem = str(exc)
+        else:
+            others = [
+                "{"
+                + f
+                + (f"!{conversion}" if conversion else "")
+                + (f":{spec}" if spec else "")
+                + "}"
+                for _, f, spec, conversion in parts
+                if f is not None and (f != "dataset" or spec or conversion)
+            ]
+            problem = f"it holds {', '.join(others)}" if others else None
+        if problem:
+            raise TesseraInputError(
+                f"key targets.{name}.annotations.{field}: {template!r} is not a path template "
+                f"({problem}); expected a path with {{dataset}} where each dataset's id goes "
+                "and no other braces",
+                source=source,
+            )
+
+
+def _check_split(name, split, source):
+    """Training, validation and test fractions: each above 0 (the threshold is chosen on
+    validation tiles, scores come from test tiles) and together 1."""
+    fractions = split.get("fractions")
+    if fractions is None:
+        return
+    if abs(sum(fractions) - 1.0) > 1e-6 or min(fractions) <= 0:
+        raise TesseraInputError(
+            f"key targets.{name}.split.fractions: {list(fractions)}: expected the training, "
+            "validation and test fractions, each above 0, summing to 1",
+            source=source,
+        )
 
 
 def check_reference_condition(reference, conditions, *, source="config/config.yaml"):
@@ -277,6 +349,11 @@ def _sheet_records(sheet_path, *, required=()):
             lines = list(csv.reader(handle, delimiter="\t"))
     except FileNotFoundError:
         raise TesseraInputError("datasets sheet not found", source=sheet_path) from None
+    except IsADirectoryError:
+        raise TesseraInputError(
+            "is a folder; expected the datasets sheet, a tab-separated file (key datasets)",
+            source=sheet_path,
+        ) from None
     except (UnicodeDecodeError, csv.Error) as exc:
         raise TesseraInputError(
             f"not a readable tab-separated sheet: {exc}", source=sheet_path

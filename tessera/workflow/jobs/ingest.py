@@ -83,6 +83,14 @@ def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
 
 def _stack_found(source, source_path, *, fmt, internal_path, spacing):
     """What a check records of an opened stack; the voxel size resolved as ingest uses it."""
+    if source.shape[0] < 2:
+        # volumes, surfaces and the split into sections apart in z all need a stack
+        raise TesseraInputError(
+            f"holds a single section of {source.shape[1]} x {source.shape[2]} pixels; expected "
+            "a stack of sections (z, y, x): save every section into one multi-page file, or "
+            "use format slice_folder for one file per section",
+            source=source_path,
+        )
     spacing = resolve_spacing(
         merge_spacing(spacing, source), source.header_spacing, source=source_path
     )
