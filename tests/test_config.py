@@ -348,6 +348,22 @@ def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas)
     assert list(sheet["subject"]) == ["m1", "m1"]
 
 
+@pytest.mark.parametrize(("separator", "named"), [(" ", "spaces"), (",", "commas")])
+def test_one_row_separated_by_spaces_or_commas_is_named(tmp_path, schemas, separator, named):
+    # A row typed in a text editor with spaces for tabs reads as one cell: the problem to name
+    # is its separator, not the columns that then look empty.
+    _sheet(tmp_path)
+    path = tmp_path / "datasets.tsv"
+    path.write_text(f"{HEADER}\n{GOOD}\n{GOOD.replace(chr(9), separator)}\n")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value).startswith(f"{path}: row 3 is one cell (")
+    assert (
+        f"where the header names 9 columns; its values look separated by {named}: separate them "
+        "by tabs, like the header"
+    ) in str(info.value)
+
+
 @pytest.mark.parametrize("separator", [",", ";", " "])
 def test_a_sheet_separated_by_commas_or_semicolons_is_named(tmp_path, schemas, separator):
     # Spreadsheet programs export "CSV" with commas, or semicolons where the comma is the

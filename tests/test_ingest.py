@@ -649,6 +649,23 @@ def test_a_numbering_that_would_be_mostly_blank_sections_is_refused(tmp_path, nu
     )
 
 
+def test_a_page_of_another_size_is_named_as_such_by_the_shape_description(tmp_path):
+    # Pages written one by one by tifffile each carry a shape; one of another size is the
+    # problem to name, not a page count.
+    src = tmp_path / "mixed.tif"
+    with tifffile.TiffWriter(src) as writer:
+        for z in range(5):
+            writer.write(np.zeros((20, 20) if z == 3 else (32, 32), np.uint8))
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert message == (
+        f"{src}: the shape description states arrays of shape (32, 32), (20, 20), not a whole "
+        "number of sections of page 0's 32 x 32 pixels; expected one stack of sections of one size"
+    )
+
+
 def test_a_single_section_is_refused_as_a_stack(tmp_path):
     # One 2D image listed as a stack: objects one section thick would get volumes and
     # surfaces, and no tile split into sections apart in z exists.

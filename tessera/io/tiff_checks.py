@@ -289,6 +289,15 @@ def _check_whole(tif, path):
     if unclear:
         raise TesseraInputError(f"cannot read the file's description: {unclear}", source=path)
     for where, count in stated.items():
+        if count == -1:  # the stated shapes hold no whole number of sections like page 0
+            stated_shapes = [tuple(m.get("shape", ())) for m in tif.shaped_metadata]
+            shapes = ", ".join(str(sh) for sh in dict.fromkeys(stated_shapes))
+            raise TesseraInputError(
+                f"the shape description states arrays of shape {shapes}, not a whole number of "
+                f"sections of page 0's {first.shape[0]} x {first.shape[1]} pixels; expected one "
+                "stack of sections of one size",
+                source=path,
+            )
         if count != len(pages):
             raise TesseraInputError(
                 f"the {where} states {count} pages, the file has {len(pages)} "

@@ -382,6 +382,19 @@ def _sheet_records(sheet_path, *, required=()):
         )
     records = []
     for line, cells in numbered[1:]:
+        filled = [c for c in cells if c.strip()]
+        if len(header) > 1 and len(filled) == 1:
+            separator = next((s for s in _OTHER_SEPARATORS if s in filled[0].strip()), None)
+            if separator is not None:
+                shown = {" ": "spaces", ",": "commas", ";": "semicolons"}[separator]
+                text = filled[0].strip()
+                text = text if len(text) <= 40 else text[:40] + "…"
+                raise TesseraInputError(
+                    f"row {line} is one cell ({text!r}) where the header names "
+                    f"{len(header)} columns; its values look separated by {shown}: separate "
+                    "them by tabs, like the header",
+                    source=sheet_path,
+                )
         extra = [c for c in cells[len(header) :] if c.strip()]
         if extra:
             raise TesseraInputError(
