@@ -34,6 +34,7 @@ from tessera.workflow.files.to_paint import export_tiles, import_painted, read_p
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.pyramid import pyramid_job
 from tessera.workflow.jobs.sample_tiles import sample_tiles_job
+from tessera.workflow.jobs.split_tiles import split_tiles_job
 
 FACTORS = (1, 2, 2)
 
@@ -777,3 +778,34 @@ def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):
     assert 0 < whole < 0.5
     standard_error = fractions.std(ddof=1) / np.sqrt(len(fractions))
     assert abs(fractions.mean() - whole) <= 3 * standard_error
+
+
+def test_a_split_that_leaves_a_role_without_tiles_is_refused_before_training(tmp_path):
+    # Four tiles on sections 0-3 and held-out tiles 5 sections from training: no section can be
+    # held out, so no threshold could be chosen and nothing scored. The split job says so with
+    # the settings to change, and writes nothing (no model is trained on it).
+    registry = pd.DataFrame(
+        {
+            "tile_id": [f"d-m-s{z:03d}" for z in range(4)],
+            "dataset": "d",
+            "target": "m",
+            "level": 0,
+            "z": range(4),
+            "y0": 0,
+            "x0": 0,
+            "height": 4,
+            "width": 4,
+            "source": "labels",
+        }
+    )
+    labels = {t: np.eye(4, dtype=np.uint8) for t in registry["tile_id"]}
+    write_annotation_set(tmp_path / "d", registry, labels)
+    out = tmp_path / "split"
+    with pytest.raises(TesseraInputError) as info:
+        split_tiles_job([tmp_path / "d"], out, fractions=[0.6, 0.2, 0.2], guard_sections=5, seed=0)
+    assert str(info.value) == (
+        f"{out}: the split leaves no validation and no test tiles (4 tiles on 4 sections; "
+        "held-out tiles lie at least split.guard_sections = 5 sections from training); annotate "
+        "tiles on more sections, lower split.guard_sections, or change split.fractions"
+    )
+    assert not out.exists()
