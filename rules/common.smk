@@ -128,6 +128,18 @@ def target_labels(wildcards):
     return pattern.format(dataset=wildcards.dataset)
 
 
+def target_labels_check(wildcards):
+    """The label check a target's tiles rest on: one per label file, made under the first
+    target that reads it and shared by the others (variants read their target's file)."""
+    pattern = target_settings(wildcards)["annotations"]["labels"]
+    owner = next(
+        name
+        for name, settings in config["targets"].items()
+        if settings["annotations"].get("labels") == pattern
+    )
+    return f"results/{wildcards.dataset}/labels_check/{owner}.json"
+
+
 def _painted(target):
     return config["targets"][target]["annotations"].get("painted")
 

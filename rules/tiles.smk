@@ -3,9 +3,31 @@
 # test tiles kept apart in z.
 
 
+rule check_labels:
+    # a job of its own: a label volume damaged after a run stops here, and the dataset's
+    # earlier tiles stay (Snakemake clears a job's outputs when the job starts)
+    input:
+        labels=target_labels,
+        image="results/{dataset}/ingest/raw.ome.zarr",
+    output:
+        check="results/{dataset}/labels_check/{target}.json",
+    log:
+        "logs/check_labels/{dataset}_{target}.log",
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(2000),
+        runtime=scaled_by_attempt(30),
+    params:
+        code=script_code("check_labels"),
+    script:
+        "../scripts/check_labels.py"
+
+
 rule sample_tiles:
     input:
         labels=target_labels,
+        check=target_labels_check,
         image="results/{dataset}/pyramid/raw.ome.zarr",
         qc="results/{dataset}/qc/sections.tsv",
     output:

@@ -15,6 +15,7 @@ run_job(
     labels_path=snakemake.input.labels,
     image_path=snakemake.input.image,
     qc_table=snakemake.input.qc,
+    labels_check=snakemake.input.check,
     out_dir=snakemake.output.tiles,
     dataset=snakemake.wildcards.dataset,
     target=snakemake.wildcards.target,

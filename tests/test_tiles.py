@@ -33,7 +33,7 @@ from tessera.workflow.files.tile_registry import (
 from tessera.workflow.files.to_paint import export_tiles, import_painted, read_painted_mask
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.pyramid import pyramid_job
-from tessera.workflow.jobs.sample_tiles import sample_tiles_job
+from tessera.workflow.jobs.sample_tiles import check_labels_job, sample_tiles_job
 from tessera.workflow.jobs.split_tiles import split_tiles_job
 
 FACTORS = (1, 2, 2)
@@ -635,6 +635,36 @@ def test_sample_tiles_job_refuses_label_volumes_without_both_classes_or_not_labe
     with pytest.raises(TesseraInputError, match=message):
         sample_tiles_job(*args, tmp_path / "t", **kw)
     assert not (tmp_path / "t").exists()
+
+
+def test_a_label_volume_is_checked_by_a_job_of_its_own_and_cut_only_as_checked(tmp_path):
+    # The check reads the volume whole and records it; the tiles are cut from that volume
+    # only. A volume damaged after a run fails the check (which writes nothing), so the job
+    # that would clear the earlier tiles never starts; one replaced behind the check's back is
+    # refused by sample_tiles itself.
+    raw, truth = volume(shape=(6, 64, 64))
+    labels, pyramid, qc = job_inputs(tmp_path, raw, truth, excluded=[False] * 6)
+    check = tmp_path / "labels_check.json"
+    found = check_labels_job(labels, tmp_path / "raw.ome.zarr", check, target="mito")
+    assert found["shape"] == [6, 64, 64] and found["target_voxels"] == int((truth > 0).sum())
+    kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
+    assert (
+        sample_tiles_job(labels, pyramid, qc, tmp_path / "t", labels_check=check, **kw)["tiles"]
+        == 2
+    )
+    whole = labels.read_bytes()
+    labels.write_bytes(whole[: len(whole) // 2])  # cut short in copying
+    with pytest.raises(TesseraInputError) as info:
+        check_labels_job(labels, tmp_path / "raw.ome.zarr", tmp_path / "again.json", target="mito")
+    assert str(info.value).startswith(str(labels)) and "\n" not in str(info.value)
+    assert not (tmp_path / "again.json").exists()
+    tifffile.imwrite(labels, truth.astype(np.uint8))  # another volume: another dtype
+    with pytest.raises(TesseraInputError) as info:
+        sample_tiles_job(labels, pyramid, qc, tmp_path / "t2", labels_check=check, **kw)
+    assert "the label volume changed since it was checked (shape [6, 64, 64], dtype " in str(
+        info.value
+    )
+    assert not (tmp_path / "t2").exists()
 
 
 def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):

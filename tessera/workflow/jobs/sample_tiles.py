@@ -1,15 +1,39 @@
-"""The sample_tiles rule: annotation tiles of one dataset from a full label volume."""
+"""Rules check_labels and sample_tiles: a label volume checked whole, then annotation tiles of
+one dataset cut from it."""
 
 import logging
+
+import numpy as np
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
 from tessera.tiles.sampling import sample_tiles_from_labels
 from tessera.workflow.files.label_volumes import check_both_classes, read_label_volume
+from tessera.workflow.files.labels_check import read_labels_check, write_labels_check
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import write_annotation_set
 
 _log = logging.getLogger(__name__)
+
+
+def check_labels_job(labels_path, image_path, out_path, *, target):
+    """Read a label volume whole and check it against the dataset's image; write the check.
+
+    The volume must have the image's level-0 shape, hold integers >= 0 and both target and
+    background (:func:`tessera.workflow.files.label_volumes.read_label_volume`,
+    :func:`~tessera.workflow.files.label_volumes.check_both_classes`).
+    """
+    _, info = open_image(image_path)
+    labels = read_label_volume(labels_path, info["levels"][0].shape)
+    check_both_classes(labels, labels_path, target)
+    found = {
+        "path": str(labels_path),
+        "shape": [int(n) for n in labels.shape],
+        "dtype": str(labels.dtype),
+        "target_voxels": int(np.count_nonzero(labels)),
+    }
+    write_labels_check(out_path, found)
+    return found
 
 
 def sample_tiles_job(
@@ -18,6 +42,7 @@ def sample_tiles_job(
     qc_table,
     out_dir,
     *,
+    labels_check=None,
     dataset,
     target,
     downsample,
@@ -31,12 +56,22 @@ def sample_tiles_job(
     The label stack is read whole: full label volumes exist for synthetic and open benchmark
     data of modest size; real studies annotate tiles (the painted route) instead. With
     `allow_fewer`, a volume that cannot hold `count` tiles gives as many as fit, and the job
-    logs how many (see :func:`tessera.tiles.sampling.sample_tiles_from_labels`).
+    logs how many (see :func:`tessera.tiles.sampling.sample_tiles_from_labels`). With
+    `labels_check` (rule check_labels' record) the volume must still be the one checked.
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
     labels = read_label_volume(labels_path, info["levels"][0].shape)
     check_both_classes(labels, labels_path, target)
+    if labels_check is not None:
+        checked = read_labels_check(labels_check)
+        if checked["shape"] != list(labels.shape) or checked["dtype"] != str(labels.dtype):
+            raise TesseraInputError(
+                f"the label volume changed since it was checked (shape {checked['shape']}, "
+                f"dtype {checked['dtype']}; now {list(labels.shape)}, {labels.dtype}); run the "
+                "workflow again so that rule check_labels checks it",
+                source=labels_path,
+            )
     # the QC table's `excluded` column is the one record of exclusion: it already honours
     # qc.exclude_flagged, and always holds lost (placeholder) sections; level-0 sections,
     # which sample_tiles_from_labels maps to the working level itself
