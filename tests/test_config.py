@@ -260,6 +260,26 @@ def _sheet(tmp_path, *rows, header=HEADER):
 GOOD = "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"
 
 
+def test_dataset_ids_that_differ_only_in_capitals_are_refused(tmp_path, schemas):
+    # results/A1 and results/a1 are one folder where the file system ignores case (common on
+    # laptops): the two datasets would overwrite each other's results.
+    path = _sheet(tmp_path, GOOD, GOOD.replace("a1", "A1", 1).replace("m1", "m2"))
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}: dataset ids A1, a1 differ only in capitals; they would share result folders on "
+        "file systems that ignore case: expected ids that differ otherwise"
+    )
+
+
+def test_a_sheet_saved_as_utf16_is_named_as_not_utf8(tmp_path, schemas):
+    path = _sheet(tmp_path, GOOD)
+    path.write_text(path.read_text(), encoding="utf-16")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == f"{path}: not UTF-8 text; save the sheet as UTF-8 tab-separated text"
+
+
 def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
     sheet = load_datasets(
         _sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.tif\tmrc\t\t\t\t"),

@@ -354,7 +354,11 @@ def _sheet_records(sheet_path, *, required=()):
             "is a folder; expected the datasets sheet, a tab-separated file (key datasets)",
             source=sheet_path,
         ) from None
-    except (UnicodeDecodeError, csv.Error) as exc:
+    except UnicodeDecodeError:
+        raise TesseraInputError(
+            "not UTF-8 text; save the sheet as UTF-8 tab-separated text", source=sheet_path
+        ) from None
+    except csv.Error as exc:
         raise TesseraInputError(
             f"not a readable tab-separated sheet: {exc}", source=sheet_path
         ) from None
@@ -504,6 +508,14 @@ def load_datasets(
     if len(duplicated):
         raise TesseraInputError(
             f"dataset ids must be unique; repeated: {', '.join(duplicated)}", source=sheet_path
+        )
+    folded = frame["dataset"].str.casefold()
+    if folded.duplicated().any():
+        twins = sorted(frame["dataset"][folded.duplicated(keep=False)])
+        raise TesseraInputError(
+            f"dataset ids {', '.join(twins)} differ only in capitals; they would share result "
+            "folders on file systems that ignore case: expected ids that differ otherwise",
+            source=sheet_path,
         )
     _check_reserved_ids(frame, lines, sheet_path)
     _check_one_spelling_per_condition(frame, lines, sheet_path)
