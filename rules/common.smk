@@ -129,8 +129,8 @@ def target_labels(wildcards):
 
 
 def target_labels_check(wildcards):
-    """The label check a target's tiles rest on: one per label file, made under the first
-    target that reads it and shared by the others (variants read their target's file)."""
+    """The label check a target's tiles rest on: one per label file, made under the
+    first target that reads it and shared by the others (variants read its file)."""
     pattern = target_settings(wildcards)["annotations"]["labels"]
     owner = next(
         name

@@ -50,9 +50,9 @@ def number_sections(names, *, source=None):
 
     Examples
     --------
-    >>> out = number_sections(["s10.tif", "s8.tif", "s11.tif", "s13.tif"])
+    >>> out = number_sections(["s10.tif", "s8.tif", "s11.tif", "s12.tif", "s13.tif"])
     >>> out["names"], out["z"], out["missing"], out["numbers"]
-    (['s8.tif', 's10.tif', 's11.tif', 's13.tif'], [0, 2, 3, 5], [1, 4], [8, 9, 10, 11, 12, 13])
+    (['s8.tif', 's10.tif', 's11.tif', 's12.tif', 's13.tif'], [0, 2, 3, 4, 5], [1], [8, 9, 10, 11, 12, 13])
     >>> number_sections(["run2_z000.png", "run2_z050.png", "run2_z100.png"])["missing"]
     []
     """
