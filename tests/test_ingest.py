@@ -649,37 +649,39 @@ def test_a_numbering_that_would_be_mostly_blank_sections_is_refused(tmp_path, nu
     )
 
 
-def test_a_page_of_another_size_is_named_as_such_by_the_shape_description(tmp_path):
-    # Pages written one by one by tifffile each carry a shape; one of another size is the
-    # problem to name, not a page count.
-    src = tmp_path / "mixed.tif"
+def _pages_of_two_sizes(src):
+    # pages written one by one by tifffile each carry a shape of their own
     with tifffile.TiffWriter(src) as writer:
         for z in range(5):
             writer.write(np.zeros((20, 20) if z == 3 else (32, 32), np.uint8))
+
+
+@pytest.mark.parametrize(
+    ("write", "message"),
+    [
+        # one page of another size: the problem to name, not a page count
+        (
+            _pages_of_two_sizes,
+            "the shape description states arrays of shape (32, 32), (20, 20), not a whole number "
+            "of sections of page 0's 32 x 32 pixels; expected one stack of sections of one size",
+        ),
+        # one 2D image: objects one section thick would get volumes and surfaces, and no tile
+        # split into sections apart in z exists
+        (
+            lambda src: tifffile.imwrite(src, np.zeros((48, 64), np.uint8)),
+            "holds a single section of 48 x 64 pixels; expected a stack of sections (z, y, x): "
+            "save every section into one multi-page file, or use format slice_folder for one "
+            "file per section",
+        ),
+    ],
+)
+def test_a_tiff_that_is_not_one_stack_of_equal_sections_is_refused(tmp_path, write, message):
+    src = tmp_path / "stack.tif"
+    write(src)
     before = _listing(tmp_path)
     with pytest.raises(TesseraInputError) as info:
         _ingest(src, tmp_path)
-    message = _one_line_and_nothing_written(info, src, tmp_path, before)
-    assert message == (
-        f"{src}: the shape description states arrays of shape (32, 32), (20, 20), not a whole "
-        "number of sections of page 0's 32 x 32 pixels; expected one stack of sections of one size"
-    )
-
-
-def test_a_single_section_is_refused_as_a_stack(tmp_path):
-    # One 2D image listed as a stack: objects one section thick would get volumes and
-    # surfaces, and no tile split into sections apart in z exists.
-    src = tmp_path / "one.tif"
-    tifffile.imwrite(src, np.zeros((48, 64), np.uint8))
-    before = _listing(tmp_path)
-    with pytest.raises(TesseraInputError) as info:
-        _ingest(src, tmp_path)
-    message = _one_line_and_nothing_written(info, src, tmp_path, before)
-    assert message == (
-        f"{src}: holds a single section of 48 x 64 pixels; expected a stack of sections (z, y, "
-        "x): save every section into one multi-page file, or use format slice_folder for one "
-        "file per section"
-    )
+    assert _one_line_and_nothing_written(info, src, tmp_path, before) == f"{src}: {message}"
 
 
 def test_numbering_by_a_constant_step_has_no_gap(tmp_path):
