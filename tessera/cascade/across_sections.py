@@ -94,7 +94,9 @@ def mix_sections(map_of, z, sigma, n_sections):
     Parameters
     ----------
     map_of : callable
-        Section index (0..n_sections-1) → its (H, W) float32 map.
+        Section index (0..n_sections-1) → its (H, W) float32 map; called once per section,
+        though near the volume's ends a mirrored section is weighed twice (so a caller may
+        pass a function that predicts the map).
     z : int
         The section.
     sigma : float
@@ -114,11 +116,11 @@ def mix_sections(map_of, z, sigma, n_sections):
     """
     reach = sections_reach(sigma)
     weights = gaussian_weights(sigma).astype(np.float32)
+    sections = [int(v) for v in reflect_index(z - reach, z + reach + 1, n_sections)]
+    maps = {section: map_of(section) for section in dict.fromkeys(sections)}
     out = None
-    for weight, section in zip(
-        weights, reflect_index(z - reach, z + reach + 1, n_sections), strict=True
-    ):
-        term = np.multiply(map_of(int(section)), weight, dtype=np.float32)
+    for weight, section in zip(weights, sections, strict=True):
+        term = np.multiply(maps[section], weight, dtype=np.float32)
         if out is None:
             out = term
         else:

@@ -120,14 +120,7 @@ def predict_section(models, volume, z=None, *, output_sigma=0.0, output_sigma_z=
 
     if output_sigma_z <= 0:
         return one(z)
-    maps = {}
-
-    def map_of(section):
-        if section not in maps:
-            maps[section] = one(section)
-        return maps[section]
-
-    return mix_sections(map_of, z, output_sigma_z, volume.shape[0])
+    return mix_sections(one, z, output_sigma_z, volume.shape[0])
 
 
 # Per-row working memory of a classifier on one band of rows beyond the rows themselves and

@@ -191,17 +191,10 @@ def tile_probabilities(models, arrays, rows, *, output_sigma=0.0, output_sigma_z
             image = tile_window(array, {**row.to_dict(), "z": section}, halo, z_halo(spec))
             return predict_frame(models, image, core, output_sigma=output_sigma, room=room)
 
-        if output_sigma_z <= 0:
-            out[row["tile_id"]] = one(int(row["z"]))
-            continue
-        maps = {}
-
-        def map_of(section, one=one, maps=maps):
-            if section not in maps:
-                maps[section] = one(section)
-            return maps[section]
-
-        out[row["tile_id"]] = mix_sections(
-            map_of, int(row["z"]), output_sigma_z, int(array.shape[0])
+        z = int(row["z"])
+        out[row["tile_id"]] = (
+            mix_sections(one, z, output_sigma_z, int(array.shape[0]))
+            if output_sigma_z > 0
+            else one(z)
         )
     return out
