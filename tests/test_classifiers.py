@@ -405,3 +405,24 @@ def test_importing_the_cascade_does_not_import_scikit_learn():
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert done.stdout.strip() == "[]"
+
+
+def test_thread_limit_nested_in_a_limit_keeps_it_and_exiting_restores_the_pools():
+    # Reference: threadpoolctl's own report of the BLAS pools (threadpool_info).
+    from threadpoolctl import threadpool_info
+
+    from tessera.cascade.classifiers import make_classifier
+
+    def blas_threads():
+        return [p["num_threads"] for p in threadpool_info() if p["user_api"] == "blas"]
+
+    before = blas_threads()
+    clf = make_classifier("mlp", seed=0, threads=1)
+    with clf.thread_limit():
+        with clf.thread_limit():
+            assert all(n == 1 for n in blas_threads())
+        assert all(n == 1 for n in blas_threads())
+    assert blas_threads() == before
+    with clf.thread_limit():  # set again once the first limit has ended
+        assert all(n == 1 for n in blas_threads())
+    assert blas_threads() == before

@@ -8,10 +8,12 @@ filter bank on the mirrored image and the classifier's own ``predict`` on the as
 
 import numpy as np
 import pytest
+from scipy import ndimage
 
 from tessera.cascade.api import (
     CascadeSpec,
     fit_cascade,
+    mirrored_block,
     mirrored_stack,
     predict_frame,
     predict_section,
@@ -145,3 +147,26 @@ def test_the_room_of_a_tile_off_the_grid_is_rounded_down_to_it():
     spec = CascadeSpec(levels=2)
     assert volume_room(spec, (30, 30), (7, 15, 0, 30)) == (4, 16, 0, 0)
     assert volume_room(spec, (30, 30), (8, 16, 4, 12)) == (8, 16, 4, 20)
+
+
+@pytest.mark.parametrize(
+    "window",
+    [
+        (0, 5, 0, 7, 0, 6),  # inside
+        (-2, 3, 4, 9, -1, 6),  # across one edge per axis
+        (-4, 9, -7, 14, -6, 12),  # beyond both edges, pads shorter than the volume
+        (-13, 18, -20, 27, -15, 21),  # pads longer than the volume: the mirror repeats
+        (3, 12, 1, 4, 5, 17),  # the mirror reaches past the part inside: gathered instead
+        (7, 9, 8, 10, 7, 9),  # wholly beyond the volume
+    ],
+)
+def test_mirrored_block_reads_as_scipys_reflect_mode(window):
+    # Reference: scipy.ndimage.map_coordinates with order 0 and mode "reflect" (half-sample
+    # symmetric, d c b a | a b c d | d c b a) at the window's integer coordinates.
+    volume = np.random.default_rng(3).integers(0, 256, (5, 7, 6)).astype(np.uint8)
+    z0, z1, y0, y1, x0, x1 = window
+    grid = np.meshgrid(np.arange(z0, z1), np.arange(y0, y1), np.arange(x0, x1), indexing="ij")
+    want = ndimage.map_coordinates(volume, np.stack(grid).astype(float), order=0, mode="reflect")
+    got = mirrored_block(volume, *window)
+    assert got.dtype == volume.dtype
+    np.testing.assert_array_equal(got, want)

@@ -50,7 +50,9 @@ def mirrored_window(array, z, y0, y1, x0, x1):
 
 def mirrored_block(array, z0, z1, y0, y1, x0, x1):
     """Sections z0..z1-1 of a (Z, Y, X) array over rows y0:y1 and columns x0:x1, mirrored beyond
-    every edge (z0 may be negative and z1 beyond the last section), read in one piece.
+    every edge (z0 may be negative and z1 beyond the last section), read in one piece. Where the
+    mirror stays within the part of the volume read, it is padded by slices (about 8x faster
+    than gathering every index for a 3D block with its halo); otherwise it is gathered.
 
     Examples
     --------
@@ -58,9 +60,32 @@ def mirrored_block(array, z0, z1, y0, y1, x0, x1):
     >>> mirrored_block(a, -2, 5, 0, 1, 0, 1).ravel().tolist()
     [1, 0, 0, 1, 2, 2, 1]
     """
-    nz, ny, nx = array.shape
-    indices = (reflect_index(z0, z1, nz), reflect_index(y0, y1, ny), reflect_index(x0, x1, nx))
+    spans = ((z0, z1), (y0, y1), (x0, x1))
+    pads = [_mirror_pads(start, stop, n) for (start, stop), n in zip(spans, array.shape)]
+    if all(p is not None for p in pads):
+        # the part inside the volume, then its mirror: slices copied whole, not gathered
+        box = tuple(
+            slice(max(start, 0), min(stop, n)) for (start, stop), n in zip(spans, array.shape)
+        )
+        block = np.asarray(array[box])
+        return np.pad(block, pads, mode="symmetric") if any(any(p) for p in pads) else block
+    indices = [reflect_index(start, stop, n) for (start, stop), n in zip(spans, array.shape)]
     return _read(array, indices)
+
+
+def _mirror_pads(start, stop, n):
+    """(before, after): the indices start..stop-1 reflected into 0..n-1 are the part inside,
+    padded half-sample symmetric by these widths (numpy's pad mode "symmetric", which reflects
+    again at the far edge of what it has padded so far); None where that does not hold (a
+    window that lies beyond the volume, or whose mirror reaches past the part it read)."""
+    first, last = max(start, 0), min(stop, n)
+    if last <= first:
+        return None
+    before, after = first - start, stop - last
+    whole = first == 0 and last == n
+    if not whole and (before > last - first or after > last - first):
+        return None
+    return before, after
 
 
 def mirrored_stack(array, z, neighbours, y0, y1, x0, x1):
@@ -87,7 +112,6 @@ def mirror_beyond_volume(prob, pads):
     top, bottom, left, right = pads
     if not any(pads):
         return prob
-    h, w = prob.shape
-    rows = reflect_index(-top, h + bottom, h)
-    cols = reflect_index(-left, w + right, w)
-    return prob[np.ix_(rows, cols)]
+    # numpy's "symmetric" pad reflects again at the far edge of what it has padded so far, so
+    # pads wider than the map repeat the mirror as reflect_index does
+    return np.pad(prob, ((top, bottom), (left, right)), mode="symmetric")

@@ -6,6 +6,8 @@ of :data:`CHUNK_ROWS` rows, and exports a fitted model as numeric arrays plus JS
 the fitting, the prediction of one chunk and the layout of its arrays.
 """
 
+import contextlib
+import contextvars
 import functools
 
 import numpy as np
@@ -27,6 +29,24 @@ def _threadpools():
     # in bands sets the limit thousands of times, so the pools are found once. The BLAS a
     # prediction uses is numpy's, loaded with numpy, before this first runs.
     return ThreadpoolController()
+
+
+# The thread count a limit set by this module holds in this context, None outside any: a limit
+# asked for again inside one (a band of rows within a node's map) is then not set once more.
+_LIMITED = contextvars.ContextVar("tessera_thread_limit", default=None)
+
+
+@contextlib.contextmanager
+def _thread_limit(threads):
+    if _LIMITED.get() == threads:
+        yield
+        return
+    token = _LIMITED.set(threads)
+    try:
+        with _threadpools().limit(limits=threads):
+            yield
+    finally:
+        _LIMITED.reset(token)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -341,8 +361,9 @@ class BinaryClassifier:
             return self._predict_from_linear(Z)
 
     def thread_limit(self):
-        """Context that limits BLAS threads to the model's ``threads`` (as :meth:`predict`)."""
-        return _threadpools().limit(limits=self.threads)
+        """Context that limits BLAS threads to the model's ``threads`` (as :meth:`predict`);
+        inside a limit of the same count already set, it sets nothing again."""
+        return _thread_limit(self.threads)
 
     def to_state(self):
         """Export the fitted model as numeric arrays plus JSON-able metadata.
