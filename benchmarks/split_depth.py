@@ -21,9 +21,9 @@ auto at 40 nm sections, in 3D at 16 nm isotropic, as ``dims: auto`` chooses) is 
 whole sections (every fourth) of two volumes rendered with seeds of their own (one per
 condition scale), then predicts every validation volume whole (``tessera.predict.predict_block``,
 with the default output smoothing in plane and across sections); its maps are cut at 0.5 and
-split with each candidate depth (``split_valley_probability`` at its default). The raw grey
-values are stretched to uint8 as ingest does, and at 40 nm sections block-averaged 2x in plane
-as the pyramid does. Each part reports the depth with the best mean F1 (``best_f1_nm``) beside
+split with each candidate depth (``split_valley_probability`` at its default). The rendered
+grey values are uint8, which ingest copies as they are; at 40 nm sections they are
+block-averaged 2x in plane and rounded, as the pyramid does. Each part reports the depth with the best mean F1 (``best_f1_nm``) beside
 the default; whole volumes are scored, whereas the workflow scores held-out slabs of sections
 (see the README on how the two compare).
 
@@ -46,7 +46,6 @@ from tessera.cascade.api import (
     section_sigma,
     z_halo,
 )
-from tessera.intensity import to_uint8
 from tessera.objects.depth_limit import split_depth_nm
 from tessera.objects.label import label_objects
 from tessera.predict import predict_block
@@ -139,15 +138,14 @@ def depth_scores(seeds, shape, spacing):
 
 
 def working_volume(seed, shape, scale, spacing):
-    """(uint8 image at the working level, true instances on it) of one demo-like volume,
-    stretched to uint8 over its 0.1-99.9 percentiles as ingest does. At the demo's 40 nm
-    sections it is rendered at 8 nm in plane and block-averaged 2x in plane, as the pyramid
-    does (the instances taken every other pixel); an isotropic volume is rendered at `spacing`."""
+    """(uint8 image at the working level, true instances on it) of one demo-like volume. At the
+    demo's 40 nm sections it is rendered at 8 nm in plane and block-averaged 2x in plane, as the
+    pyramid does (the instances taken every other pixel); an isotropic volume is rendered at
+    `spacing`. The rendered image is uint8, which ingest copies as it is."""
     anisotropic = tuple(spacing) == SPACING
     render_at = (40.0, 8.0, 8.0) if anisotropic else tuple(spacing)
     out = render_dataset(seed=seed, shape=shape, spacing=render_at, mito_volume_scale=scale)
-    low, high = np.percentile(out["raw"], (0.1, 99.9))
-    image = to_uint8(out["raw"], low, high)
+    image = out["raw"]
     if not anisotropic:
         return image, out["mitochondria"]
     image = np.rint(block_mean(image, (1, 2, 2))).astype(np.uint8)
