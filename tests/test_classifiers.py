@@ -426,3 +426,21 @@ def test_thread_limit_nested_in_a_limit_keeps_it_and_exiting_restores_the_pools(
     with clf.thread_limit():  # set again once the first limit has ended
         assert all(n == 1 for n in blas_threads())
     assert blas_threads() == before
+
+
+@pytest.mark.parametrize("rows, width", [(3, 1), (5000, 16), (20000, 32), (70000, 33)])
+def test_layer_row_operations_equal_numpys_bit_for_bit(rows, width):
+    # Reference: numpy's own broadcasting add and maximum with 0, on values that include -0.0,
+    # NaN and infinities, and bands longer than the kept tiles and zero runs.
+    from tessera.cascade.classifiers.row_ops import add_row, relu
+
+    rng = np.random.default_rng(rows)
+    z = rng.normal(scale=3, size=(rows, width)).astype(np.float32)
+    flat = z.reshape(-1)
+    flat[::11], flat[1::97], flat[2::101], flat[3::103] = -0.0, np.nan, np.inf, -np.inf
+    bias = rng.normal(size=width).astype(np.float32)
+    assert add_row(z.copy(), bias).tobytes() == (z + bias).tobytes()
+    assert relu(z.copy()).tobytes() == np.maximum(z, np.float32(0)).tobytes()
+    # a view that is not contiguous takes numpy's own path
+    view = z.copy()[:, ::-1]
+    assert relu(view).tobytes() == np.maximum(z[:, ::-1], np.float32(0)).tobytes()

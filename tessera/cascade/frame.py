@@ -13,6 +13,7 @@ import numpy as np
 
 from tessera.block_reduce import block_mean
 from tessera.cascade.classifiers import CHUNK_ROWS
+from tessera.cascade.classifiers.row_ops import add_row
 from tessera.cascade.features import (
     feature_names,
     filter_bank,
@@ -488,7 +489,7 @@ def _linear_map(frame, node, margin, classifier, offset):
                 if fine:
                     zb += np.matmul(x[:, :n].T, fine_weights, out=context_sums[:n])
                 else:
-                    zb += bias
+                    add_row(zb, bias)
             _add_coarse_parts(zb, coarse, offsets, y0, y1, w, step)
             out[y0:y1] = classifier.predict_from_linear(zb).reshape(y1 - y0, w)
     return out

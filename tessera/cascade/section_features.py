@@ -219,11 +219,13 @@ def _eigenvalue_rows(entries, out, buffers):
     np.multiply(p, 2.0, out=smallest)
     smallest *= np.cos(phi, out=u)
     smallest += q
-    # the trace fixes the middle one; clipped so that rounding never breaks the order
+    # the trace fixes the middle one; clipped so that rounding never breaks the order (numpy's
+    # clip as its definition, maximum then minimum: clip with array bounds is 3x slower)
     np.multiply(q, 3.0, out=middle)
     middle -= largest
     middle -= smallest
-    np.clip(middle, smallest, largest, out=middle)
+    np.maximum(middle, smallest, out=middle)
+    np.minimum(middle, largest, out=middle)
 
 
 def _z_weights(sigma_z):

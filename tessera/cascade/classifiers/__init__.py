@@ -10,8 +10,8 @@ Five kinds (:data:`KINDS`) share one interface (:class:`~.base.BinaryClassifier`
     The logistic disjunctive normal network of the cascaded hierarchical model, written in numpy
     from its published formula.
 ``mlp`` (:mod:`.mlp`)
-    A small multilayer perceptron trained by scikit-learn's ``MLPClassifier``; predicted by our
-    own numpy forward pass.
+    A small multilayer perceptron trained by minibatch Adam and predicted in numpy (its forward
+    pass agrees with scikit-learn's ``MLPClassifier`` given the same weights).
 ``extra_trees``, ``random_forest`` (:mod:`.trees`)
     scikit-learn's ``ExtraTreesClassifier`` / ``RandomForestClassifier``.
 ``hist_gradient_boosting`` (:mod:`.boosting`)

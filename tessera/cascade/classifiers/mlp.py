@@ -14,6 +14,7 @@ from tessera.cascade.classifiers.base import (
     int_option,
 )
 from tessera.cascade.classifiers.network_fit import fit_network
+from tessera.cascade.classifiers.row_ops import add_row, relu
 from tessera.cascade.classifiers.scaling import (
     check_scale,
     folded_first_layer,
@@ -103,7 +104,7 @@ class MLPBinaryClassifier(BinaryClassifier):
     def _predict_chunk(self, X):
         W, b = self._linear_weights()
         z = np.matmul(X, W, out=_scratch(0, X.shape[0], W.shape[1]))
-        return self._predict_from_linear(np.add(z, b, out=z))
+        return self._predict_from_linear(add_row(z, b))
 
     def _predict_from_linear(self, Z):
         # each layer's output goes into a buffer kept between calls: prediction calls this
@@ -111,11 +112,10 @@ class MLPBinaryClassifier(BinaryClassifier):
         # faults on every call (the numbers are those of ``h @ W + b``, bit for bit)
         h = Z
         for layer, (W, b) in enumerate(zip(self.coefs_[1:], self.intercepts_[1:], strict=True)):
-            np.maximum(h, np.float32(0), out=h)
+            relu(h)
             out = _scratch(layer + 1, h.shape[0], W.shape[1])
             np.matmul(h, W, out=out)
-            np.add(out, b, out=out)
-            h = out
+            h = add_row(out, b)
         return expit(h[:, 0]).astype(np.float32)
 
     def _arrays(self):
