@@ -524,3 +524,84 @@ def test_internal_path_is_refused_for_single_stack_formats(tmp_path, volume):
     path.write_bytes(b"")
     text = _refused(tmp_path, path, "mrc", "raw", "s.mrc")
     assert "internal_path 'raw' is given, but format mrc holds one stack per file" in text
+
+
+def _ome_zarr_input(path, volume, *, scale, unit, drop_level=None):
+    """An OME-Zarr 0.5 image as another writer may leave it: two levels, axes in `unit`."""
+    from tessera.io.omezarr import multiscale_attrs
+
+    group = zarr.open_group(str(path), mode="w", zarr_format=3)
+    ome = multiscale_attrs(name="raw", spacing=(1, 1, 1), factors=[(1, 1, 1), (1, 2, 2)])
+    ms = ome["multiscales"][0]
+    for axis in ms["axes"]:
+        axis.pop("unit")
+        if unit is not None:
+            axis["unit"] = unit
+    for k, dataset in enumerate(ms["datasets"]):
+        dataset["coordinateTransformations"] = [
+            {"type": "scale", "scale": [scale[0], scale[1] * 2**k, scale[2] * 2**k]}
+        ]
+    group.attrs["ome"] = ome
+    group.create_array("0", data=volume, chunks=(1, *volume.shape[1:]))
+    group.create_array("1", data=volume[:, ::2, ::2], chunks=(1, *volume.shape[1:]))
+    if drop_level is not None:
+        import shutil
+
+        shutil.rmtree(path / drop_level)
+    return path
+
+
+@pytest.mark.parametrize(
+    ("scale", "unit", "nm"),
+    [
+        # OME-NGFF 0.5: an axis's unit is a UDUNITS-2 length name; 1 angstrom = 0.1 nm (SI)
+        ((400, 80, 80), "angstrom", (40.0, 8.0, 8.0)),
+        ((0.04, 0.008, 0.008), "micrometer", (40.0, 8.0, 8.0)),
+        ((40, 8, 8), "nanometer", (40.0, 8.0, 8.0)),
+    ],
+)
+def test_ome_zarr_voxel_size_is_read_in_its_axes_units(tmp_path, volume, scale, unit, nm):
+    # Before, the scale was read as nm whatever the unit: 10x too coarse for angstrom.
+    src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=scale, unit=unit)
+    ingest_job(src, tmp_path / "out.ome.zarr", fmt="zarr", spacing=(None, None, None))
+    assert open_image(tmp_path / "out.ome.zarr")[1]["spacing"] == pytest.approx(nm)
+    # the sheet is held to the image's own scale, as to container attributes
+    with pytest.raises(TesseraInputError) as info:
+        ingest_job(src, tmp_path / "o2.ome.zarr", fmt="zarr", spacing=(40, 80, 8))
+    assert (
+        "attribute ome.multiscales scale (converted to nm) gives voxel size 8 nm along y, "
+        "the sheet's voxel_y_nm says 80" in str(info.value)
+    )
+
+
+def test_ome_zarr_without_units_needs_the_sheet(tmp_path, volume):
+    src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=(400, 80, 80), unit=None)
+    with pytest.raises(TesseraInputError) as info:
+        ingest_job(src, tmp_path / "out.ome.zarr", fmt="zarr", spacing=(None, None, None))
+    assert (
+        "voxel size along z is blank in the sheet and the file header has none; "
+        "fill voxel_z_nm (nm, > 0)" in str(info.value)
+    )
+    ingest_job(src, tmp_path / "o2.ome.zarr", fmt="zarr", spacing=(40, 8, 8))
+    assert open_image(tmp_path / "o2.ome.zarr")[1]["spacing"] == (40.0, 8.0, 8.0)
+
+
+@pytest.mark.parametrize("lost", ["0", "1"])
+def test_ome_zarr_with_a_lost_level_is_refused_in_one_line(tmp_path, volume, lost):
+    # Before, a level listed in the metadata but not on disk raised a KeyError traceback.
+    src = _ome_zarr_input(
+        tmp_path / "in.ome.zarr", volume, scale=(40, 8, 8), unit="nanometer", drop_level=lost
+    )
+    with pytest.raises(TesseraInputError) as info:
+        open_stack(src, "zarr")
+    message = str(info.value)
+    assert message.startswith(str(src)) and "\n" not in message
+    assert "the multiscale metadata lists level" in message
+    assert "but the image has no such array (a level lost in copying?)" in message
+
+
+def test_ome_zarr_with_a_length_unit_unknown_is_refused(tmp_path, volume):
+    src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=(40, 8, 8), unit="parsecs")
+    with pytest.raises(TesseraInputError) as info:
+        open_stack(src, "zarr")
+    assert "axis 'z' has unit 'parsecs'; expected a length unit of OME-Zarr (" in str(info.value)

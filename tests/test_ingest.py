@@ -798,3 +798,28 @@ def test_the_stack_check_reads_every_section_only_where_an_earlier_image_would_b
     # without an earlier image the damage is left for ingest to find
     found = check_stack_job(src, check, fmt="tiff_stack", spacing=SPACING)
     assert found["sections_read"] == 0 and check.exists()
+
+
+def test_a_tiff_header_the_sheet_overrides_is_logged(tmp_path, caplog):
+    # ImageJ's TIFF calibration: XResolution/YResolution in pixels per unit, "spacing" and
+    # "unit" in the description (tifffile's imagej=True writer). The sheet wins, and says so.
+    src = tmp_path / "stack.tif"
+    volume = np.zeros((3, 16, 16), np.uint8)
+    tifffile.imwrite(
+        src,
+        volume,
+        imagej=True,
+        resolution=(1 / 8, 1 / 8),
+        metadata={"axes": "ZYX", "spacing": 40, "unit": "nm"},
+    )
+    with caplog.at_level("WARNING"):
+        found = check_stack_job(src, tmp_path / "a.json", fmt="tiff_stack", spacing=(40, 10, 10))
+    assert found["spacing"] == [40.0, 10.0, 10.0]
+    lines = [r.getMessage() for r in caplog.records]
+    assert any(
+        "header gives voxel size 8 nm along y; the sheet's voxel_y_nm (10 nm)" in m for m in lines
+    )
+    caplog.clear()
+    with caplog.at_level("WARNING"):
+        check_stack_job(src, tmp_path / "b.json", fmt="tiff_stack", spacing=(None, None, None))
+    assert not caplog.records  # taken from the header: nothing to say

@@ -125,8 +125,10 @@ def open_image(path, *, checksums="required"):
     -------
     group : zarr.Group
     info : dict
-        ``spacing`` (level-0 nm, z y x), ``factors`` (per level), ``levels`` (list of
-        zarr.Array) and ``extra`` (the ``tessera`` attributes).
+        ``spacing`` (level-0 nm, z y x; converted from the axes' units, taken as nm where
+        an axis states none), ``units_given`` (whether every axis states its unit),
+        ``factors`` (per level), ``levels`` (list of zarr.Array) and ``extra`` (the
+        ``tessera`` attributes).
 
     Examples
     --------
@@ -164,17 +166,88 @@ def open_image(path, *, checksums="required"):
         raise TesseraInputError(
             "missing OME-Zarr 'ome.multiscales' metadata with a scale per level", source=path
         ) from None
-    spacing = tuple(float(s) for s in scales[0])
     factors = [
-        tuple(int(round(s / s0)) for s, s0 in zip(sc, spacing, strict=False)) for sc in scales
+        tuple(int(round(s / s0)) for s, s0 in zip(sc, scales[0], strict=False)) for sc in scales
     ]
-    levels = [group[d["path"]] for d in datasets]
+    units = axis_units(ms, source=path)
+    spacing = tuple(
+        float(s) * (1.0 if unit is None else NM_PER_UNIT[unit])
+        for s, unit in zip(scales[0], units, strict=False)
+    )
+    levels = []
+    for d in datasets:
+        try:
+            levels.append(group[d["path"]])
+        except (KeyError, FileNotFoundError, zarr.errors.BaseZarrError):
+            raise TesseraInputError(
+                f"the multiscale metadata lists level {d['path']!r}, but the image has no such "
+                "array (a level lost in copying?)",
+                source=path,
+            ) from None
     return group, {
         "spacing": spacing,
+        "units_given": all(unit is not None for unit in units),
         "factors": factors,
         "levels": levels,
         "extra": attrs.get("tessera", {}),
     }
+
+
+#: Nanometres per length unit of the OME-Zarr axes (the specification's UDUNITS-2 names).
+NM_PER_UNIT = {
+    "angstrom": 0.1,
+    "attometer": 1e-9,
+    "centimeter": 1e7,
+    "decimeter": 1e8,
+    "femtometer": 1e-6,
+    "foot": 3.048e8,
+    "inch": 2.54e7,
+    "meter": 1e9,
+    "micrometer": 1e3,
+    "millimeter": 1e6,
+    "nanometer": 1.0,
+    "picometer": 1e-3,
+}
+
+
+def axis_units(multiscale, *, source=None):
+    """The unit of each axis of a multiscale's ``axes`` (None where an axis states none).
+
+    Parameters
+    ----------
+    multiscale : dict
+        One entry of an image's ``ome.multiscales``.
+    source : str or Path, optional
+        The image, named in the error message.
+
+    Returns
+    -------
+    list of (str or None)
+        One per axis; each a key of :data:`NM_PER_UNIT`.
+
+    Raises
+    ------
+    TesseraInputError
+        For a unit that is not a length unit of the specification.
+
+    Examples
+    --------
+    >>> axis_units({"axes": [{"name": "z", "unit": "micrometer"}, {"name": "y"}, {"name": "x"}]})
+    ['micrometer', None, None]
+    """
+    axes = multiscale.get("axes") or [{} for _ in AXES]
+    units = []
+    for axis in axes:
+        unit = axis.get("unit") if isinstance(axis, dict) else None
+        if unit is not None and unit not in NM_PER_UNIT:
+            name = axis.get("name", "?")
+            raise TesseraInputError(
+                f"axis {name!r} has unit {unit!r}; expected a length unit of OME-Zarr "
+                f"({', '.join(sorted(NM_PER_UNIT))})",
+                source=source,
+            )
+        units.append(unit)
+    return units
 
 
 def working_level(factors, downsample, *, source=None):

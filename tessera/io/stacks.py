@@ -272,7 +272,11 @@ class _Zarr(_Source):
             # input: checked where it carries records
             _, info = open_image(path, checksums="if-present")
             node = info["levels"][0]
-            self.header_spacing = info["spacing"]
+            if info["units_given"]:
+                # held to the sheet's voxel sizes as container attributes are (merge_spacing)
+                self.header_spacing = info["spacing"]
+                self.spacing_attribute = "ome.multiscales scale (converted to nm)"
+                self.label = str(path)
         if node.ndim != 3:
             raise TesseraInputError(
                 f"expected a 3D z, y, x array, got shape {node.shape}", source=path

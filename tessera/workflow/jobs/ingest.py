@@ -4,8 +4,10 @@ The stack is read one section at a time (:mod:`tessera.io.stacks`); nothing here
 about 32 MiB of sections in memory. Data other than 8-bit are mapped to uint8
 (:mod:`tessera.intensity`), and the mapping and the source are recorded in the image's metadata.
 The voxel size comes from the datasets sheet where given, else from the file header; for
-arrays in HDF5, N5 and zarr files a voxel size in their attributes comes first, and the sheet
-must agree with it (:func:`tessera.io.array_stacks.merge_spacing`).
+arrays in HDF5, N5 and zarr files and OME-Zarr images a voxel size in their attributes comes
+first, and the sheet must agree with it (:func:`tessera.io.array_stacks.merge_spacing`). A TIFF
+or MRC header's size that the sheet overrides is logged: such headers are often left at an
+acquisition program's default, so they do not stop the run.
 
 A section missing from a numbered slice folder becomes a blank (0) placeholder section, recorded
 in the store's metadata (:mod:`tessera.workflow.files.missing_sections`) for section QC to
@@ -17,6 +19,8 @@ refused there, and the dataset's earlier image survives it. Where such an image 
 check reads every section too (a compressed page can be damaged in a way only decoding finds).
 """
 
+import logging
+import math
 from pathlib import Path
 
 import numpy as np
@@ -32,6 +36,8 @@ from tessera.io.store_checksums import record_checksums
 from tessera.spacing import VOXEL_NM_RANGE
 from tessera.workflow.files.missing_sections import missing_sections_entry
 from tessera.workflow.files.stack_check import read_stack_check, write_stack_check
+
+_log = logging.getLogger(__name__)
 
 
 def resolve_spacing(sheet_spacing, header_spacing, *, source=None):
@@ -91,9 +97,19 @@ def _stack_found(source, source_path, *, fmt, internal_path, spacing):
             "use format slice_folder for one file per section",
             source=source_path,
         )
-    spacing = resolve_spacing(
-        merge_spacing(spacing, source), source.header_spacing, source=source_path
-    )
+    given = merge_spacing(spacing, source)
+    spacing = resolve_spacing(given, source.header_spacing, source=source_path)
+    for axis, used, header in zip("zyx", spacing, source.header_spacing or (), strict=False):
+        if not math.isclose(used, header, rel_tol=0.01):
+            _log.warning(
+                "%s: the file header gives voxel size %g nm along %s; the sheet's voxel_%s_nm "
+                "(%g nm) is used",
+                source_path,
+                header,
+                axis,
+                axis,
+                used,
+            )
     found = {"path": str(source_path), "format": fmt}
     if internal_path is not None:
         found["internal_path"] = internal_path
