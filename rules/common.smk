@@ -231,9 +231,16 @@ def painted_masks_folder(wildcards):
 
 
 def painted_masks(wildcards):
-    # Declared as input only once it exists, so that the job can explain what to paint.
-    folder = painted_masks_folder(wildcards)
-    return [folder] if Path(folder).is_dir() else []
+    # Declared as input only once it exists, so that the job can explain what to paint. The
+    # folder's own time changes only when a mask is added or removed; the masks of this
+    # dataset's exported tiles are inputs too, so that one painted again reruns the import.
+    folder = Path(painted_masks_folder(wildcards))
+    if not folder.is_dir():
+        return []
+    exported = Path(f"results/{wildcards.dataset}/to_paint/{wildcards.target}")
+    tile_ids = sorted(p.stem for p in exported.glob("*.tif"))
+    masks = [folder / f"{tile_id}.png" for tile_id in tile_ids]
+    return [str(folder)] + [str(mask) for mask in masks if mask.is_file()]
 
 
 def painted_options(wildcards):

@@ -655,6 +655,14 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     assert set(registry["role"]) <= {"train", "validation", "test", "guard"}
     assert all(set(np.unique(v)) <= {0, 1} for v in labels.values())
 
+    # A mask painted again in place (the folder's own time does not change) is imported again.
+    tile_id = pd.read_csv(tmp_path / "results/w1/to_paint/nuclei/tiles.tsv", sep="\t").tile_id[0]
+    repainted = np.asarray(Image.open(masks / f"{tile_id}.png")) == 0
+    Image.fromarray(repainted.astype(np.uint8) * 255).save(masks / f"{tile_id}.png")
+    snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path)
+    _, labels = read_annotation_set(tmp_path / "results/study/nuclei/tiles")
+    assert np.array_equal(labels[tile_id], repainted.astype(np.uint8))
+
 
 @pytest.mark.parametrize("damage", ["cut short", "compressed page"])
 def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
