@@ -432,14 +432,18 @@ def test_thread_limit_nested_in_a_limit_keeps_it_and_exiting_restores_the_pools(
 def test_layer_row_operations_equal_numpys_bit_for_bit(rows, width):
     # Reference: numpy's own broadcasting add and maximum with 0, on values that include -0.0,
     # NaN and infinities, and bands longer than the kept tiles and zero runs.
-    from tessera.cascade.classifiers.row_ops import add_row, relu
+    from tessera.cascade.classifiers.row_ops import add_row, keep_row, relu
 
     rng = np.random.default_rng(rows)
     z = rng.normal(scale=3, size=(rows, width)).astype(np.float32)
     flat = z.reshape(-1)
     flat[::11], flat[1::97], flat[2::101], flat[3::103] = -0.0, np.nan, np.inf, -np.inf
     bias = rng.normal(size=width).astype(np.float32)
+    kept = keep_row(bias)  # as a network keeps its biases: add_row then adds by the tile
+    assert kept.size == 4096 * width and np.array_equal(kept[:width], bias)
     assert add_row(z.copy(), bias).tobytes() == (z + bias).tobytes()
+    other = bias + np.float32(1)  # a row no network keeps: numpy's own add
+    assert add_row(z.copy(), other).tobytes() == (z + other).tobytes()
     assert relu(z.copy()).tobytes() == np.maximum(z, np.float32(0)).tobytes()
     # a view that is not contiguous takes numpy's own path
     view = z.copy()[:, ::-1]

@@ -281,8 +281,9 @@ def test_a_sheet_saved_as_utf16_is_named_as_not_utf8(tmp_path, schemas):
 
 
 def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
+    (tmp_path / "stack.mrc").write_bytes(b"")
     sheet = load_datasets(
-        _sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.tif\tmrc\t\t\t\t"),
+        _sheet(tmp_path, GOOD, "a2\tctrl\tm2\tstack.mrc\tmrc\t\t\t\t"),
         schemas / "datasets.schema.yaml",
         base_dir=tmp_path,
     )
@@ -361,11 +362,29 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
 
 
 def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas):
-    rows = [GOOD, "a2\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t"]
+    rows = [GOOD, "a2\tctrl\tm1\tstack2.tif\ttiff_stack\t40\t8\t8\t"]
+    (tmp_path / "stack2.tif").write_bytes(b"")
     sheet = load_datasets(
         _sheet(tmp_path, *rows), schemas / "datasets.schema.yaml", base_dir=tmp_path
     )
     assert list(sheet["subject"]) == ["m1", "m1"]
+
+
+@pytest.mark.parametrize("spelling", ["stack.tif", "./sub/../stack.tif"])
+def test_two_rows_naming_one_stack_are_refused(tmp_path, schemas, spelling):
+    # One image under two rows would be measured twice and count as two animals in the
+    # statistics (pseudo-replication; common practice: the animal is the unit).
+    (tmp_path / "sub").mkdir()
+    path = _sheet(tmp_path, GOOD, f"a2\tctrl\tm2\t{spelling}\ttiff_stack\t40\t8\t8\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: ") and "\n" not in message
+    assert f"column path: rows 2 (a1) and 3 (a2) name the same stack '{spelling}'" in message
+    assert (
+        "expected one row per stack (one image under two rows would be measured twice, as two "
+        "animals)" in message
+    )
 
 
 @pytest.mark.parametrize(("separator", "named"), [(" ", "spaces"), (",", "commas")])
@@ -475,8 +494,10 @@ def test_unknown_sheet_column_is_refused(tmp_path, schemas):
 def test_spreadsheet_exports_read_like_the_plain_sheet(tmp_path, schemas):
     # Spreadsheet exports add a UTF-8 byte-order mark, CRLF line ends and empty cells after the
     # last column (common practice: spreadsheet programs' text and CSV exports); they hold nothing.
-    text = "\ufeff" + "\r\n".join([HEADER + "\t\t", GOOD + "\t\t\t", GOOD.replace("a1", "a2")])
+    second = GOOD.replace("a1", "a2").replace("stack.tif", "stack2.tif")
+    text = "\ufeff" + "\r\n".join([HEADER + "\t\t", GOOD + "\t\t\t", second])
     (tmp_path / "stack.tif").write_bytes(b"")
+    (tmp_path / "stack2.tif").write_bytes(b"")
     (tmp_path / "datasets.tsv").write_bytes(text.encode() + b"\r\n")
     sheet = load_datasets(
         tmp_path / "datasets.tsv", schemas / "datasets.schema.yaml", base_dir=tmp_path

@@ -522,7 +522,30 @@ def load_datasets(
     _check_one_condition_per_subject(frame, lines, sheet_path)
     roots = allowed_roots(sheet_path, base_dir=base_dir, data_roots=data_roots)
     _check_paths(frame, lines, sheet_path, Path(base_dir), generated_dir, roots)
+    _check_one_row_per_stack(frame, lines, sheet_path, Path(base_dir))
     return frame.set_index("dataset", drop=False)
+
+
+def _check_one_row_per_stack(frame, lines, sheet_path, base_dir):
+    """Refuse two rows that name the same stack (the same file, and array inside it).
+
+    Each row is a dataset, and its subject an animal of the statistics: one image under two
+    rows would be measured twice and counted as two animals. Usually a path copied into a new
+    row and not changed.
+    """
+    seen = {}
+    for line, row in zip(lines, frame.to_dict(orient="records"), strict=True):
+        key = ((base_dir / row["path"]).resolve(), row.get("internal_path") or "")
+        if key in seen:
+            first_line, first_id = seen[key]
+            inside = f", internal_path {key[1]!r}" if key[1] else ""
+            raise TesseraInputError(
+                f"column path: rows {first_line} ({first_id}) and {line} ({row['dataset']}) name "
+                f"the same stack {row['path']!r}{inside}; expected one row per stack (one image "
+                "under two rows would be measured twice, as two animals)",
+                source=sheet_path,
+            )
+        seen[key] = (line, row["dataset"])
 
 
 #: Folders of results/ that belong to the whole study (rules/*.smk write results/study/… and

@@ -14,7 +14,7 @@ from tessera.cascade.classifiers.base import (
     int_option,
 )
 from tessera.cascade.classifiers.network_fit import fit_network
-from tessera.cascade.classifiers.row_ops import add_row, relu
+from tessera.cascade.classifiers.row_ops import add_row, keep_row, relu
 from tessera.cascade.classifiers.scaling import (
     check_scale,
     folded_first_layer,
@@ -93,6 +93,13 @@ class MLPBinaryClassifier(BinaryClassifier):
             )
         self.coefs_ = [W for W, _ in layers]
         self.intercepts_ = [b for _, b in layers]
+        self._keep_bias_rows()
+
+    def _keep_bias_rows(self):
+        # the tiled biases prediction adds by (row_ops), made now rather than in a prediction
+        # and held as long as the network
+        biases = [self._linear_weights()[1], *self.intercepts_[1:]]
+        self._bias_rows = [keep_row(b) for b in biases]
 
     def _linear_weights(self):
         if self._folded is None:
@@ -141,6 +148,7 @@ class MLPBinaryClassifier(BinaryClassifier):
         self.intercepts_ = [arrays[f"intercept_{i}"] for i in range(n)]
         if not all(np.isfinite(a).all() for a in self.coefs_ + self.intercepts_):
             raise TesseraInputError("MLP weights have non-finite values", source=STATE_SOURCE)
+        self._keep_bias_rows()
 
 
 # Buffers of the layers' outputs, one set per thread, shared by every network of the process:

@@ -8,26 +8,43 @@ single float32 operation.
 """
 
 import threading
+import weakref
 
 import numpy as np
 
-__all__ = ["add_row", "relu"]
+__all__ = ["add_row", "keep_row", "relu"]
 
 # Rows of a bias repeated into one contiguous array; a band is added to in runs of this many.
 _TILE_ROWS = 4096
-# Tiled biases kept per thread (a network has one per layer): beyond this they are dropped.
-_KEPT_TILES = 64
-_LOCAL = threading.local()
+# The tiled rows of live networks, by their values: a network holds its own (keep_row), and an
+# entry goes when no network holds it any more.
+_TILES = weakref.WeakValueDictionary()
+_TILES_LOCK = threading.Lock()
 
 
-def _tile(row):
-    tiles = _LOCAL.__dict__.setdefault("tiles", {})
-    key = (row.shape[0], row.tobytes())
-    tile = tiles.get(key)
-    if tile is None:
-        if len(tiles) >= _KEPT_TILES:
-            tiles.clear()
-        tile = tiles[key] = np.tile(row, _TILE_ROWS)
+def _key(row):
+    return (row.shape[0], row.tobytes())
+
+
+def keep_row(row):
+    """The tiled copy of a bias row that :func:`add_row` adds by; the caller keeps it.
+
+    A network makes these when its weights are set and holds them, so that none is made (and
+    its memory first taken) inside a prediction; while it is held, :func:`add_row` finds it by
+    the row's values.
+
+    Examples
+    --------
+    >>> keep_row(np.ones(3, np.float32)).shape
+    (12288,)
+    """
+    row = np.ascontiguousarray(row, np.float32)
+    with _TILES_LOCK:
+        tile = _TILES.get(_key(row))
+        if tile is None:
+            tile = np.tile(row, _TILE_ROWS)
+            tile.flags.writeable = False
+            _TILES[_key(row)] = tile
     return tile
 
 
@@ -47,13 +64,17 @@ def add_row(z, row):
     Examples
     --------
     >>> z = np.arange(6, dtype=np.float32).reshape(3, 2)
-    >>> add_row(z, np.array([10, 20], np.float32)).tolist()
+    >>> row = np.array([10, 20], np.float32)
+    >>> kept = keep_row(row)  # held by the caller (a network) while it predicts
+    >>> add_row(z, row).tolist()
     [[10.0, 21.0], [12.0, 23.0], [14.0, 25.0]]
     """
-    row = np.asarray(row, np.float32)
-    if not z.flags.c_contiguous or z.ndim != 2 or z.dtype != np.float32:
+    row = np.asarray(row)
+    tile = None
+    if z.flags.c_contiguous and z.ndim == 2 and np.float32 == z.dtype == row.dtype:
+        tile = _TILES.get(_key(row))
+    if tile is None:  # a row no network keeps: numpy's own broadcast
         return np.add(z, row, out=z)
-    tile = _tile(row)
     flat = z.reshape(-1)
     step = tile.size
     for start in range(0, flat.size, step):
