@@ -404,6 +404,14 @@ def dataset_roi(wildcards):
     return [] if roi is None else [roi]
 
 
+def dataset_roi_check(wildcards):
+    return (
+        [f"results/{wildcards.dataset}/roi_check/regions.json"]
+        if dataset_roi(wildcards)
+        else []
+    )
+
+
 def dataset_groups(wildcards):
     """Condition and animal of every dataset, in sheet order (the first condition is the
     default reference)."""

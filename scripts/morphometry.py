@@ -17,5 +17,6 @@ run_job(
     out_regions=snakemake.output.regions,
     target=snakemake.wildcards.target,
     roi_mask=snakemake.input.roi[0] if snakemake.input.roi else None,
+    roi_check=snakemake.input.roi_check[0] if snakemake.input.roi_check else None,
     raw_image=snakemake.input.raw,
 )

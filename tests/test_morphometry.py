@@ -278,8 +278,11 @@ def test_region_mask_of_another_shape_is_refused(tmp_path):
         r"\(1x1x1 smaller\) is \(6, 40, 40\); the image there is \(6, 30, 30\)",
     ):
         read_region_mask(path, shape=(6, 30, 30), factors=(1, 1, 1), out=np.zeros((6, 30, 30)))
-    out = read_region_mask(path, shape=(6, 20, 20), factors=(1, 2, 2), out=np.ones((6, 20, 20)))
+    out, full, _, n_ids = read_region_mask(
+        path, shape=(6, 20, 20), factors=(1, 2, 2), out=np.ones((6, 20, 20))
+    )
     np.testing.assert_array_equal(out, cells[:, ::2, ::2])  # every 2nd voxel, labels not averaged
+    assert full == (6, 40, 40) and n_ids == len(np.unique(cells[cells > 0]))
     # one row short reduces to the same working shape (ceil(39 / 2) = 20): the stack's own
     # full-resolution shape tells
     tifffile.imwrite(path, cells[:, :39])

@@ -2,6 +2,7 @@
 
 import hashlib
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -720,3 +721,32 @@ def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
         if p.is_file()
     }
     assert kept == written
+
+
+def test_a_damaged_region_mask_leaves_the_earlier_morphometry(finished_study, repo=REPO_ROOT):
+    # Snakemake removes a job's outputs when the job starts; the region mask is checked by a
+    # job of its own (check_roi) before morphometry, so a mask cut short after a run is refused
+    # there, in one line naming it, and the morphometry tables of the run before stay.
+    mask = finished_study / "demo/data/w1/cells.tif"
+    tables = sorted((finished_study / "results/w1/morphometry").glob("*.tsv"))
+    assert tables and (finished_study / "results/w1/roi_check/regions.json").exists()
+    before = {p: p.read_bytes() for p in tables}
+    sound, times = mask.read_bytes(), (mask.stat().st_atime_ns, mask.stat().st_mtime_ns)
+    try:
+        mask.write_bytes(sound[: len(sound) // 2])
+        result = snakemake(
+            "--cores",
+            "1",
+            "--snakefile",
+            str(repo / "Snakefile"),
+            *(str(p.relative_to(finished_study)) for p in tables),
+            cwd=finished_study,
+            check=False,
+        )
+        assert result.returncode != 0
+        told = result.stderr + result.stdout
+        assert "demo/data/w1/cells.tif: " in told and "rule check_roi" in told
+        assert {p: p.read_bytes() for p in tables} == before
+    finally:
+        mask.write_bytes(sound)
+        os.utime(mask, ns=times)

@@ -17,6 +17,7 @@ from tessera.workflow.files.morphometry_tables import (
 )
 from tessera.workflow.files.object_table import read_object_table
 from tessera.workflow.files.probability_map import probability_fields
+from tessera.workflow.files.roi_check import read_roi_check, write_roi_check
 
 
 def read_region_mask(path, *, shape, factors, out, full_shape=None):
@@ -24,7 +25,14 @@ def read_region_mask(path, *, shape, factors, out, full_shape=None):
 
     Coarser levels take every f-th voxel (labels are not averaged). The TIFF's shape must be
     `full_shape` (the stack's, when known), and reduced by `factors` it must equal `shape`. Its
-    pages hold integer labels >= 0 (0 outside every region), and at least one region.
+    pages hold integer labels >= 0 (0 outside every region), and at least one region. With
+    `out` None every page is read and checked, and nothing kept.
+
+    Returns
+    -------
+    tuple
+        (`out`, the TIFF's full-resolution shape, its dtype, the number of distinct labels > 0
+        in the pages read).
     """
     # checked whole first: a damaged mask is refused in one line, never read short or altered
     with contextlib.closing(open_checked_tiff(Path(path))) as tif:
@@ -49,7 +57,7 @@ def read_region_mask(path, *, shape, factors, out, full_shape=None):
                 f"region mask must hold integer labels (0 outside every region), got {dtype}",
                 source=path,
             )
-        regions = False
+        ids = set()
         for oz in range(shape[0]):
             page = read_checked_page(tif, oz * factors[0], path)
             if dtype.kind == "i" and page.size and page.min() < 0:
@@ -58,15 +66,32 @@ def read_region_mask(path, *, shape, factors, out, full_shape=None):
                     f"{oz * factors[0]}); expected 0 outside every region and labels > 0",
                     source=path,
                 )
-            out[oz] = page[:: factors[1], :: factors[2]]
-            regions = regions or bool(page.any())
-    if not regions:
+            if out is not None:
+                out[oz] = page[:: factors[1], :: factors[2]]
+            ids.update(np.unique(page).tolist())
+    ids.discard(0)
+    if not ids:
         raise TesseraInputError(
             "region mask has no region (every voxel is 0); expected a label > 0 for each cell "
             "or region, or leave roi_mask blank to measure the whole volume",
             source=path,
         )
-    return out
+    return out, full, str(dtype), len(ids)
+
+
+def check_roi_job(roi_path, image_path, out_path):
+    """Read a dataset's region mask whole and check it against the stack; write the check.
+
+    The mask must have the stack's full-resolution shape and hold integer labels >= 0 with at
+    least one region (:func:`read_region_mask`).
+    """
+    shape = tuple(open_image(image_path)[1]["levels"][0].shape)
+    _, full, dtype, n_ids = read_region_mask(
+        roi_path, shape=shape, factors=(1, 1, 1), out=None, full_shape=shape
+    )
+    found = {"path": str(roi_path), "shape": list(full), "dtype": dtype, "region_ids": n_ids}
+    write_roi_check(out_path, found)
+    return found
 
 
 def morphometry_job(
@@ -77,6 +102,7 @@ def morphometry_job(
     *,
     target,
     roi_mask=None,
+    roi_check=None,
     raw_image=None,
     block=(16, 512, 512),
 ):
@@ -84,7 +110,7 @@ def morphometry_job(
 
     Writes the object table with the measures and its ``region`` column, and the region table.
     `raw_image` (the dataset's pyramid) gives the full-resolution shape the region mask must
-    have.
+    have; with `roi_check` (rule check_roi's record) the mask must still be the one checked.
     """
     group, info = open_image(objects_image)
     try:
@@ -113,13 +139,22 @@ def morphometry_job(
             full_shape = None
             if raw_image is not None:
                 full_shape = open_image(raw_image)[1]["levels"][0].shape
-            read_region_mask(
+            _, full, dtype, _ = read_region_mask(
                 roi_mask,
                 shape=labels.shape,
                 factors=factors,
                 out=region_labels,
                 full_shape=full_shape,
             )
+            if roi_check is not None:
+                checked = read_roi_check(roi_check)
+                if checked["shape"] != list(full) or checked["dtype"] != dtype:
+                    raise TesseraInputError(
+                        f"the region mask changed since it was checked (shape "
+                        f"{checked['shape']}, dtype {checked['dtype']}; now {list(full)}, "
+                        f"{dtype}); run the workflow again so that rule check_roi checks it",
+                        source=roi_mask,
+                    )
         regions, region_of = region_densities(
             labels, region_labels, measured, spacing=spacing, block=block
         )
