@@ -128,6 +128,11 @@ def target_labels(wildcards):
     return pattern.format(dataset=wildcards.dataset)
 
 
+def target_instances(wildcards):
+    pattern = target_settings(wildcards)["annotations"].get("instances")
+    return [] if pattern is None else [pattern.format(dataset=wildcards.dataset)]
+
+
 def target_labels_check(wildcards):
     """The label check a target's tiles rest on: one per label file, made under the
     first target that reads it and shared by the others (variants read its file)."""

@@ -8,6 +8,7 @@ rule check_labels:
     # earlier tiles stay (Snakemake clears a job's outputs when the job starts)
     input:
         labels=target_labels,
+        instances=target_instances,
         image="results/{dataset}/ingest/raw.ome.zarr",
     output:
         check="results/{dataset}/labels_check/{target}.json",

@@ -12,6 +12,7 @@ run_job(
     snakemake,
     check_labels_job,
     labels_path=snakemake.input.labels,
+    instances_path=snakemake.input.instances[0] if snakemake.input.instances else None,
     image_path=snakemake.input.image,
     out_path=snakemake.output.check,
     target=snakemake.wildcards.target,

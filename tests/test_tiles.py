@@ -667,6 +667,43 @@ def test_a_label_volume_is_checked_by_a_job_of_its_own_and_cut_only_as_checked(t
     assert not (tmp_path / "t2").exists()
 
 
+def test_an_instance_volume_must_mark_the_voxels_the_labels_mark(tmp_path):
+    # The instance volume gives the true objects of the 3D object scores and the label volume
+    # the true pixels: both annotate the same organelles. Connected components of the labels
+    # (scipy.ndimage.label) agree exactly; a volume of other objects is refused in one line.
+    from scipy import ndimage
+
+    raw, truth = volume(shape=(6, 64, 64))
+    labels, _, _ = job_inputs(tmp_path, raw, truth, excluded=[False] * 6)
+    instances = tmp_path / "instances.tif"
+    tifffile.imwrite(instances, ndimage.label(truth > 0)[0].astype(np.uint16))
+    found = check_labels_job(
+        labels,
+        tmp_path / "raw.ome.zarr",
+        tmp_path / "a.json",
+        target="mito",
+        instances_path=instances,
+    )
+    assert found["instance_agreement"] == 1.0
+    other = np.zeros(truth.shape, np.uint16)
+    other[:, 5:25, 5:25] = 1  # one square in every section, mostly where the labels say background
+    tifffile.imwrite(instances, other)
+    with pytest.raises(TesseraInputError) as info:
+        check_labels_job(
+            labels,
+            tmp_path / "raw.ome.zarr",
+            tmp_path / "b.json",
+            target="mito",
+            instances_path=instances,
+        )
+    message = str(info.value)
+    assert message.startswith(f"{instances}: its objects (> 0, ") and "\n" not in message
+    assert f"voxels) and the label volume {labels} (" in message
+    assert "target voxels) agree on " in message
+    assert "% of the voxels either marks; expected the same organelles (at least 90%)" in message
+    assert not (tmp_path / "b.json").exists()
+
+
 def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):
     # A constant or blank stack is flagged flat throughout: the one line names the QC table
     # and the QC setting, not the tile settings that cannot help.

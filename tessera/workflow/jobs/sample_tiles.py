@@ -16,12 +16,20 @@ from tessera.workflow.files.tile_registry import write_annotation_set
 _log = logging.getLogger(__name__)
 
 
-def check_labels_job(labels_path, image_path, out_path, *, target):
+#: Least foreground Jaccard between a target's instance volume and its label volume: the two
+#: annotate the same organelles, so they may differ only at a few edge voxels.
+MIN_INSTANCE_AGREEMENT = 0.9
+
+
+def check_labels_job(labels_path, image_path, out_path, *, target, instances_path=None):
     """Read a label volume whole and check it against the dataset's image; write the check.
 
     The volume must have the image's level-0 shape, hold integers >= 0 and both target and
     background (:func:`tessera.workflow.files.label_volumes.read_label_volume`,
-    :func:`~tessera.workflow.files.label_volumes.check_both_classes`).
+    :func:`~tessera.workflow.files.label_volumes.check_both_classes`). An instance volume, when
+    the target has one, must have that shape too and cover the same voxels (> 0): a foreground
+    Jaccard of at least :data:`MIN_INSTANCE_AGREEMENT`, or the objects would be scored against
+    other organelles than the pixels.
     """
     _, info = open_image(image_path)
     labels = read_label_volume(labels_path, info["levels"][0].shape)
@@ -32,6 +40,20 @@ def check_labels_job(labels_path, image_path, out_path, *, target):
         "dtype": str(labels.dtype),
         "target_voxels": int(np.count_nonzero(labels)),
     }
+    if instances_path is not None:
+        instances = read_label_volume(instances_path, labels.shape, "instance volume") > 0
+        target_mask = labels > 0
+        union = int(np.count_nonzero(instances | target_mask))
+        agreement = int(np.count_nonzero(instances & target_mask)) / union if union else 1.0
+        if agreement < MIN_INSTANCE_AGREEMENT:
+            raise TesseraInputError(
+                f"its objects (> 0, {int(instances.sum())} voxels) and the label volume "
+                f"{labels_path} ({found['target_voxels']} target voxels) agree on "
+                f"{agreement:.0%} of the voxels either marks; expected the same organelles "
+                f"(at least {MIN_INSTANCE_AGREEMENT:.0%})",
+                source=instances_path,
+            )
+        found["instance_agreement"] = agreement
     write_labels_check(out_path, found)
     return found
 
