@@ -823,3 +823,19 @@ def test_a_tiff_header_the_sheet_overrides_is_logged(tmp_path, caplog):
     with caplog.at_level("WARNING"):
         check_stack_job(src, tmp_path / "b.json", fmt="tiff_stack", spacing=(None, None, None))
     assert not caplog.records  # taken from the header: nothing to say
+
+
+def test_a_plain_stack_saved_as_imagej_channels_is_refused_with_the_fix(tmp_path):
+    # tifffile's ImageJ writer labels the pages of a 3D array "channels" unless given its axes
+    # (its imagej=True default, checked here on the file it writes): a user's plain z stack
+    # then reads as 12 channels. Refused as any multi-channel TIFF, with how to save it.
+    src = tmp_path / "stack.tif"
+    tifffile.imwrite(src, np.zeros((12, 16, 16), np.uint8), imagej=True)
+    with tifffile.TiffFile(src) as tif:
+        assert tif.imagej_metadata["channels"] == 12 and "slices" not in tif.imagej_metadata
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert "the ImageJ description states 12 channels; expected one page per z section" in message
+    assert "if the pages are z sections, save the stack with ImageJ axes ZYX (slices" in message

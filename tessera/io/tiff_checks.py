@@ -306,9 +306,18 @@ def _check_whole(tif, path):
             )
     other = other_axes(tif)
     if other:
+        meta = tif.imagej_metadata or {}
+        # ImageJ writers label the pages of a plain 3D array as channels unless told its axes
+        only_channels = int(meta.get("channels", 1)) == len(pages) and "slices" not in meta
+        hint = (
+            "; if the pages are z sections, save the stack with ImageJ axes ZYX (slices, "
+            "e.g. tifffile's metadata={'axes': 'ZYX'})"
+            if only_channels
+            else ""
+        )
         raise TesseraInputError(
             f"{other}; expected one page per z section of one greyscale channel (save one "
-            "channel or time point as a stack of its own)",
+            f"channel or time point as a stack of its own){hint}",
             source=path,
         )
     layout0 = [getattr(first, k) for k in _LAYOUT]
