@@ -100,7 +100,7 @@ def _stack_found(source, source_path, *, fmt, internal_path, spacing):
     given = merge_spacing(spacing, source)
     spacing = resolve_spacing(given, source.header_spacing, source=source_path)
     for axis, used, header in zip("zyx", spacing, source.header_spacing or (), strict=False):
-        if not math.isclose(used, header, rel_tol=0.01):
+        if header is not None and not math.isclose(used, header, rel_tol=0.01):
             _log.warning(
                 "%s: the file header gives voxel size %g nm along %s; the sheet's voxel_%s_nm "
                 "(%g nm) is used",
