@@ -39,13 +39,24 @@ def keep_row(row):
     (12288,)
     """
     row = np.ascontiguousarray(row, np.float32)
+    key = _key(row)
     with _TILES_LOCK:
-        tile = _TILES.get(_key(row))
+        tile = _TILES.get(key)
         if tile is None:
             tile = np.tile(row, _TILE_ROWS)
             tile.flags.writeable = False
-            _TILES[_key(row)] = tile
+            _TILES[key] = tile
     return tile
+
+
+def _in_runs(ufunc, z, operand):
+    """``ufunc(z, operand)`` in place over the flattened C-contiguous `z`, in runs of
+    ``operand.size`` (the operand repeats from its start in every run)."""
+    flat = z.reshape(-1)
+    for start in range(0, flat.size, operand.size):
+        part = flat[start : start + operand.size]
+        ufunc(part, operand[: part.size], out=part)
+    return z
 
 
 def add_row(z, row):
@@ -75,12 +86,7 @@ def add_row(z, row):
         tile = _TILES.get(_key(row))
     if tile is None:  # a row no network keeps: numpy's own broadcast
         return np.add(z, row, out=z)
-    flat = z.reshape(-1)
-    step = tile.size
-    for start in range(0, flat.size, step):
-        part = flat[start : start + step]
-        np.add(part, tile[: part.size], out=part)
-    return z
+    return _in_runs(np.add, z, tile)
 
 
 # Zeros a layer is compared with, in runs of this many elements.
@@ -108,8 +114,4 @@ def relu(z):
     """
     if not z.flags.c_contiguous or z.dtype != np.float32:
         return np.maximum(z, np.float32(0), out=z)
-    flat = z.reshape(-1)
-    for start in range(0, flat.size, _ZERO_RUN):
-        part = flat[start : start + _ZERO_RUN]
-        np.maximum(part, _ZEROS[: part.size], out=part)
-    return z
+    return _in_runs(np.maximum, z, _ZEROS)

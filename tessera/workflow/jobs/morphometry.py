@@ -68,7 +68,7 @@ def read_region_mask(path, *, shape, factors, out, full_shape=None):
                 )
             if out is not None:
                 out[oz] = page[:: factors[1], :: factors[2]]
-            ids.update(np.unique(page).tolist())
+            ids.update(_labels_present(page))
     ids.discard(0)
     if not ids:
         raise TesseraInputError(
@@ -77,6 +77,15 @@ def read_region_mask(path, *, shape, factors, out, full_shape=None):
             source=path,
         )
     return out, full, str(dtype), len(ids)
+
+
+def _labels_present(page):
+    """The distinct values of an integer page: counted in one pass where they are small (cell
+    labels), sorted otherwise."""
+    top = int(page.max()) if page.size else 0
+    if page.dtype.kind in "ub" and top < 2**20:
+        return np.flatnonzero(np.bincount(page.ravel().astype(np.intp, copy=False))).tolist()
+    return np.unique(page).tolist()
 
 
 def check_roi_job(roi_path, image_path, out_path):
