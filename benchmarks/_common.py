@@ -5,6 +5,7 @@ import json
 import os
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -26,15 +27,39 @@ def report(name, rows, figures):
     print(f"figures written to {OUT / (name + '.json')}")
 
 
+# Put before a measured child's code: writes its own peak resident memory at exit. proc(5)'s VmHWM
+# starts afresh at exec; getrusage's ru_maxrss does not (Linux carries the parent's high-water
+# mark into a child it starts), so a child smaller than this process would read as its size.
+PEAK_PREAMBLE = """
+import atexit as _atexit
+def _write_peak(path):
+    with open("/proc/self/status") as status:
+        kib = next(int(line.split()[1]) for line in status if line.startswith("VmHWM:"))
+    with open(path, "w") as out:
+        out.write(str(kib))
+_atexit.register(_write_peak, __import__("os").environ["BENCHMARK_PEAK_FILE"])
+"""
+
+
+def peak_mib(path):
+    """The peak written by :data:`PEAK_PREAMBLE`'s child to `path`, in MiB."""
+    return int(Path(path).read_text()) / 1024.0
+
+
 def run_measured(code, *args):
-    """Run Python `code` in a fresh interpreter; return (wall seconds, peak RSS in MiB)."""
-    start = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-c", code, *map(str, args)])
-    _, status, usage = os.wait4(proc.pid, 0)
-    seconds = time.perf_counter() - start
-    if status != 0:
-        raise SystemExit(f"benchmark child failed with status {status}")
-    return seconds, usage.ru_maxrss / 1024.0  # Linux reports kilobytes
+    """Run Python `code` in a fresh interpreter; return (wall seconds, its own peak RSS in MiB)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        peak_file = Path(tmp) / "peak"
+        start = time.perf_counter()
+        proc = subprocess.Popen(
+            [sys.executable, "-c", PEAK_PREAMBLE + code, *map(str, args)],
+            env={**os.environ, "BENCHMARK_PEAK_FILE": str(peak_file)},
+        )
+        status = proc.wait()
+        seconds = time.perf_counter() - start
+        if status != 0:
+            raise SystemExit(f"benchmark child failed with status {status}")
+        return seconds, peak_mib(peak_file)
 
 
 @functools.cache

@@ -39,7 +39,7 @@ from _common import report  # noqa: E402
 SIDE = 1024
 
 CHILD = """
-import json, resource, sys, time
+import json, sys, time
 task = json.loads(sys.argv[1])
 start = time.perf_counter()
 if task["kind"] == "predict":
@@ -56,7 +56,10 @@ else:
     label_objects(prob, out, spacing=(40, 16, 16), high=0.5, open_radius_nm=16, min_volume_um3=0.002,
                   block=(8, 512, 512), scale=255.0, workdir=task["tmp"])
 seconds = time.perf_counter() - start
-print(json.dumps({"seconds": seconds, "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+# proc(5)'s VmHWM: this process's own peak (ru_maxrss would carry the parent's in from exec)
+with open("/proc/self/status") as status:
+    peak_kib = next(int(line.split()[1]) for line in status if line.startswith("VmHWM:"))
+print(json.dumps({"seconds": seconds, "rss_mb": peak_kib / 1024}))
 """
 
 
