@@ -19,7 +19,8 @@ by default (in plane: Gaussian, --output-sigma px; across sections: --output-sig
 ``auto`` = the 2D rule of tessera.cascade.across_sections, each section's map averaged with the
 maps of the sections around it) and, for comparison, unsmoothed (neither).
 
-Objects in 3D (key ``objects_3d`` of each configuration): the map of sections 16-19 is turned
+Objects in 3D (key ``objects_3d`` of each configuration, and at the top level for the chosen
+one): the map of sections 16-19 is turned
 into objects as the objects step does with its default settings (validation threshold, no
 morphology, enclosed cavities filled, 26-connected, the default minimum volume, touching
 objects split with the default settings), and matched one-to-one at IoU > 0.5 with the
@@ -344,6 +345,8 @@ def main():
             "output_sigma_z": output_sigma_z,
             "vnc_mito": results,
             "vnc_mito_unsmoothed": unsmoothed,
+            # the chosen model's objects on sections 16-19 (each configuration has its own)
+            "objects_3d": results["chosen"]["objects_3d"],
         },
     )
 
