@@ -371,7 +371,7 @@ def _objects_3d_text(objects_3d):
     --------
     >>> row = {"truth_source": "instance volume", "sections": 12, "object_f1": 0.8,
     ...        "object_precision": 0.75, "object_recall": 0.857, "arand": 0.1,
-    ...        "voi_split": 0.2, "voi_merge": 0.3}
+    ...        "voi_split": 0.2, "voi_merge": 0.3, "voxel_jaccard": 0.9}
     >>> _objects_3d_text({"mitochondria": row})[:56]
     'In 3D, the mitochondria objects on 12 held-out test sect'
     """
@@ -380,7 +380,7 @@ def _objects_3d_text(objects_3d):
         f"objects ({row['truth_source']}) with F1 {row['object_f1']:.3f} (precision "
         f"{row['object_precision']:.3f}, recall {row['object_recall']:.3f}; adapted Rand error "
         f"{row['arand']:.3f}, VOI split {row['voi_split']:.3f} and merge {row['voi_merge']:.3f} "
-        "bits)"
+        f"bits; voxel Jaccard of the objects mask {row['voxel_jaccard']:.3f} at full resolution)"
         for name, row in (objects_3d or {}).items()
     ]
     if not parts:

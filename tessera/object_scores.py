@@ -14,6 +14,9 @@ Conventions (the output columns say them again):
   over-counted (splits, specks), negative when under-counted (merges, misses).
 * Volume error of matched objects: mean of ``|V_pred − V_true| / V_true`` over the matched pairs
   (and the signed mean as the volume bias), voxel counts inside the mask.
+* Voxel scores compare the two masks (every object's voxels against every true object's),
+  whatever the ids: precision, recall, F1 (= Dice) and Jaccard of the target voxels, with the
+  voxel counts behind them, so that scores of several volumes can be pooled.
 * Partition errors compare the two labelings voxel by voxel, background as one region (as the
   test-tile scores do): adapted Rand error = 1 − F-score of Rand precision and recall
   (Arganda-Carreras et al., Front. Neuroanat. 2015), variation of information split =
@@ -36,6 +39,8 @@ __all__ = [
     "repeat_labels",
     "scores_from_overlaps",
     "size_classes",
+    "voxel_ratios",
+    "voxel_scores",
 ]
 
 #: The ids 0 (background) and the objects a labeling may hold: non-negative integers.
@@ -249,6 +254,70 @@ def partition_scores(overlaps):
     }
 
 
+def voxel_ratios(true, predicted, shared):
+    """Precision, recall, F1 (= Dice) and Jaccard from voxel counts of two masks.
+
+    Parameters
+    ----------
+    true, predicted : int
+        Target voxels of the truth and of the prediction.
+    shared : int
+        Voxels that are target in both.
+
+    Returns
+    -------
+    dict
+        ``voxel_precision``, ``voxel_recall``, ``voxel_f1``, ``voxel_jaccard``; each NaN when
+        its denominator is 0 (no target voxel on that side).
+
+    Examples
+    --------
+    >>> voxel_ratios(4, 3, 2)["voxel_jaccard"]
+    0.4
+    """
+    union = true + predicted - shared
+
+    def ratio(numerator, denominator):
+        return numerator / denominator if denominator else float("nan")
+
+    return {
+        "voxel_precision": ratio(shared, predicted),
+        "voxel_recall": ratio(shared, true),
+        "voxel_f1": ratio(2 * shared, true + predicted),
+        "voxel_jaccard": ratio(shared, union),
+    }
+
+
+def voxel_scores(overlaps):
+    """Voxel counts and :func:`voxel_ratios` of the target masks behind `overlaps`.
+
+    Parameters
+    ----------
+    overlaps : pandas.DataFrame
+        From :func:`overlap_counts` (background included).
+
+    Returns
+    -------
+    dict
+        ``true_voxels``, ``predicted_voxels``, ``shared_voxels`` and the ratios.
+
+    Examples
+    --------
+    >>> s = voxel_scores(overlap_counts(np.array([[[0, 1, 1, 1]]]), np.array([[[3, 3, 0, 4]]])))
+    >>> s["true_voxels"], s["predicted_voxels"], s["shared_voxels"], s["voxel_jaccard"]
+    (3, 3, 2, 0.5)
+    """
+    voxels = overlaps["voxels"].to_numpy(np.int64)
+    in_truth = overlaps["truth"].to_numpy() > 0
+    in_pred = overlaps["pred"].to_numpy() > 0
+    counts = {
+        "true_voxels": int(voxels[in_truth].sum()),
+        "predicted_voxels": int(voxels[in_pred].sum()),
+        "shared_voxels": int(voxels[in_truth & in_pred].sum()),
+    }
+    return {**counts, **voxel_ratios(*counts.values())}
+
+
 def object_scores(truth, pred, *, mask=None, iou=0.5):
     """Object and partition scores of a predicted label volume against true instances.
 
@@ -266,7 +335,8 @@ def object_scores(truth, pred, *, mask=None, iou=0.5):
     dict
         ``truth_objects``, ``predicted_objects``, ``matched_objects``, ``object_precision``,
         ``object_recall``, ``object_f1``, ``count_error``, ``matched_volume_error``,
-        ``matched_volume_bias`` and the entries of :func:`partition_scores`. Precision, recall
+        ``matched_volume_bias``, the entries of :func:`voxel_scores` and of
+        :func:`partition_scores`. Precision, recall
         and F1 are 0 when there is nothing to match; count and volume errors NaN when undefined.
 
     Examples
@@ -298,6 +368,7 @@ def scores_from_overlaps(overlaps, *, iou=0.5):
         "count_error": (n_pred - n_true) / n_true if n_true else float("nan"),
         "matched_volume_error": float(relative.abs().mean()) if k else float("nan"),
         "matched_volume_bias": float(relative.mean()) if k else float("nan"),
+        **voxel_scores(overlaps),
         **partition_scores(overlaps),
     }
 

@@ -126,14 +126,14 @@ def plot_object_crops(crops, path, *, title, columns=4):
 
 
 def plot_object_scores(table, path, *, title):
-    """Object precision, recall and F1 per row of `table` (bars), with the partition errors
-    named under each group.
+    """Object precision, recall and F1 per row of `table` (bars), with the partition errors and
+    the voxel Jaccard of the objects mask named under each group.
 
     Parameters
     ----------
     table : pandas.DataFrame
         ``dataset``, ``object_precision``, ``object_recall``, ``object_f1``, ``arand``,
-        ``voi_split``, ``voi_merge``.
+        ``voi_split``, ``voi_merge``, ``voxel_jaccard``.
     path : str or Path
         PNG to write.
     title : str
@@ -146,6 +146,7 @@ def plot_object_scores(table, path, *, title):
         ax.bar(x + (k - 1) * 0.27, table[name], width=0.27, label=name.replace("object_", ""))
     labels = [
         f"{row.dataset}\nARAND {row.arand:.2f}\nVOI {row.voi_split:.2f}/{row.voi_merge:.2f}"
+        f"\nvoxel J {row.voxel_jaccard:.2f}"
         for row in table.itertuples(index=False)
     ]
     ax.set_xticks(x, labels, fontsize=6)

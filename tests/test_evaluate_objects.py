@@ -176,8 +176,15 @@ def test_objects_are_scored_on_held_out_sections_against_connected_components(tm
     assert (row["sections"], row["first_section"], row["last_section"]) == (1, 8, 8)
     assert row["excluded_sections"] == 0  # section 9 lies outside 8..8
     assert row["truth_source"] == "26-connected components of the labels"
+    # voxels of section 8, by hand: truth A 8 x 8, B 8 x 10, E 6 x 6 = 180; predicted A' 64,
+    # B's halves 8 x 4 each (the gap x 18:20 is B's only missed part), E' 36 = 164, all on truth
+    assert (row["true_voxels"], row["predicted_voxels"], row["shared_voxels"]) == (180, 164, 164)
+    assert row["voxel_precision"] == 1.0
+    assert row["voxel_jaccard"] == pytest.approx(164 / 180)
+    assert row["voxel_f1"] == pytest.approx(2 * 164 / (180 + 164))
     overall = overall_objects_3d(out / "objects_3d.tsv")
     assert overall["object_f1"] == pytest.approx(2 * 2 / (3 + 4))
+    assert overall["voxel_jaccard"] == pytest.approx(164 / 180)
     assert (out / "objects_3d.png").stat().st_size > 0 and (out / "crops.png").stat().st_size > 0
 
 

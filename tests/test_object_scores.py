@@ -6,6 +6,7 @@ import pytest
 from scipy import ndimage
 from skimage.measure import label as sk_label
 from skimage.metrics import adapted_rand_error, variation_of_information
+from sklearn.metrics import f1_score, jaccard_score, precision_score, recall_score
 
 from tessera.errors import TesseraInputError
 from tessera.object_scores import (
@@ -16,6 +17,7 @@ from tessera.object_scores import (
     partition_scores,
     repeat_labels,
     size_classes,
+    voxel_scores,
 )
 
 # The hand-worked example: every row of both sections holds the same 12 columns, so each column
@@ -65,6 +67,38 @@ def test_mask_leaves_out_objects_and_voxels_outside_it():
     assert (s["truth_objects"], s["predicted_objects"], s["matched_objects"]) == (3, 4, 3)
     assert s["object_recall"] == 1.0
     assert s["matched_volume_bias"] == pytest.approx((0 - 1 / 3 + 0) / 3)
+
+
+def test_hand_worked_voxel_scores():
+    s = object_scores(_volume(TRUTH_ROW), _volume(PRED_ROW))
+    # by hand from the rows: 8 target columns in the truth, 9 in the prediction, 8 in both
+    # (every true column is predicted; column 12 is predicted on background), 4 voxels each
+    assert (s["true_voxels"], s["predicted_voxels"], s["shared_voxels"]) == (32, 36, 32)
+    assert s["voxel_precision"] == pytest.approx(8 / 9)
+    assert s["voxel_recall"] == 1.0
+    assert s["voxel_f1"] == pytest.approx(2 * 8 / (8 + 9))
+    assert s["voxel_jaccard"] == pytest.approx(8 / 9)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_voxel_scores_equal_scikit_learn_on_the_masks(seed):
+    truth, pred = _random_labelings(seed)
+    mask = np.zeros(truth.shape, bool)
+    mask[1:5] = True
+    s = voxel_scores(overlap_counts(truth, pred, mask=mask))
+    # scikit-learn's binary scores of the target masks inside the mask (reference library)
+    t, p = truth[mask] > 0, pred[mask] > 0
+    assert s["voxel_precision"] == pytest.approx(precision_score(t, p))
+    assert s["voxel_recall"] == pytest.approx(recall_score(t, p))
+    assert s["voxel_f1"] == pytest.approx(f1_score(t, p))
+    assert s["voxel_jaccard"] == pytest.approx(jaccard_score(t, p))
+
+
+def test_voxel_scores_without_target_voxels_are_undefined():
+    empty = np.zeros((1, 2, 2), np.uint8)
+    s = voxel_scores(overlap_counts(empty, empty))
+    assert (s["true_voxels"], s["predicted_voxels"], s["shared_voxels"]) == (0, 0, 0)
+    assert all(np.isnan(s[k]) for k in ("voxel_precision", "voxel_recall", "voxel_jaccard"))
 
 
 def test_iou_of_exactly_one_half_is_not_a_match():

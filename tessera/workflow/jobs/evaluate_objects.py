@@ -7,7 +7,8 @@ and without the sections QC excluded. The true objects are the instance volume w
 gives one, else the 26-connected components of the label volume, both computed on the whole
 volume and then cut to the scored sections (as the objects were labelled on the whole volume).
 The predicted labels, made at the working level, are repeated onto the full-resolution grid of
-the truth, so volumes are counted in the truth's own voxels.
+the truth, so volumes are counted in the truth's own voxels, and so are the voxel scores of the
+objects mask (its precision, recall, F1 and Jaccard against the true objects' voxels).
 """
 
 import numpy as np
@@ -24,6 +25,7 @@ from tessera.object_scores import (
     repeat_labels,
     scores_from_overlaps,
     size_classes,
+    voxel_ratios,
 )
 from tessera.object_views import crop_box, object_crop, plot_object_crops, plot_object_scores
 from tessera.tiles.split import held_out_sections
@@ -57,6 +59,13 @@ COLUMNS = (
     "count_error",
     "matched_volume_error",
     "matched_volume_bias",
+    "voxel_precision",
+    "voxel_recall",
+    "voxel_f1",
+    "voxel_jaccard",
+    "true_voxels",
+    "predicted_voxels",
+    "shared_voxels",
     "arand",
     "rand_precision",
     "rand_recall",
@@ -157,6 +166,7 @@ def _pooled_row(rows, matches):
     matched = matches[matches["matched"]]
     k = len(matched)
     relative = (matched["pred_voxels"] - matched["truth_voxels"]) / matched["truth_voxels"]
+    voxels = {c: int(table[c].sum()) for c in ("true_voxels", "predicted_voxels", "shared_voxels")}
     sources = sorted(set(table["truth_source"]))
     return {
         "dataset": "all",
@@ -172,6 +182,9 @@ def _pooled_row(rows, matches):
         "count_error": (p - t) / t if t else float("nan"),
         "matched_volume_error": float(relative.abs().mean()) if k else float("nan"),
         "matched_volume_bias": float(relative.mean()) if k else float("nan"),
+        # voxels pooled over datasets, as objects are
+        **voxels,
+        **voxel_ratios(*voxels.values()),
         **{
             c: float(table[c].mean())
             for c in ("arand", "rand_precision", "rand_recall", "voi_split", "voi_merge")
