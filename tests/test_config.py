@@ -387,6 +387,35 @@ def test_two_rows_naming_one_stack_are_refused(tmp_path, schemas, spelling):
     )
 
 
+@pytest.mark.parametrize(
+    ("rows", "where"),
+    [
+        # the open quote swallows the next row: read as it is, a dataset would silently vanish
+        (
+            ['a1\t"ctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\t', "a2\tctrl\tm2\tb.tif"],
+            "row 2, column condition",
+        ),
+        # on the last row it swallows the row's own later cells
+        ([GOOD, 'a2\tctrl\t"m2\tb.tif\ttiff_stack\t40\t8\t8\t'], "row 3, column subject"),
+    ],
+)
+def test_a_quote_left_open_in_the_sheet_is_refused(tmp_path, schemas, rows, where):
+    # Python's csv module (like spreadsheet programs) reads a cell opened by a quote up to the
+    # closing quote, across tabs and lines
+    path = _sheet(tmp_path, *rows)
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: {where}: a quote") and "\n" not in message
+    assert "is not closed, so the cells or rows after it would be read into it" in message
+
+
+def test_quoted_cells_that_close_read_as_plain_ones(tmp_path, schemas):
+    path = _sheet(tmp_path, '"a1"\t"ctrl"\t"m1"\t"stack.tif"\ttiff_stack\t40\t8\t8\t')
+    sheet = load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert list(sheet.index) == ["a1"] and sheet.loc["a1", "condition"] == "ctrl"
+
+
 @pytest.mark.parametrize(("separator", "named"), [(" ", "spaces"), (",", "commas")])
 def test_one_row_separated_by_spaces_or_commas_is_named(tmp_path, schemas, separator, named):
     # A row typed in a text editor with spaces for tabs reads as one cell: the problem to name

@@ -386,6 +386,7 @@ def _sheet_records(sheet_path, *, required=()):
         )
     records = []
     for line, cells in numbered[1:]:
+        _check_quotes(cells, header, line, sheet_path)
         filled = [c for c in cells if c.strip()]
         if len(header) > 1 and len(filled) == 1:
             separator = next((s for s in _OTHER_SEPARATORS if s in filled[0].strip()), None)
@@ -409,6 +410,22 @@ def _sheet_records(sheet_path, *, required=()):
         cells = cells[: len(header)] + [""] * (len(header) - len(cells))
         records.append((line, dict(zip(header, cells, strict=True))))
     return records
+
+
+def _check_quotes(cells, header, line, sheet_path):
+    """Refuse a cell holding a tab or a line end: only a quote left open puts them there, and
+    the cell then swallows the cells, or the rows, after it (a dataset silently lost)."""
+    for k, cell in enumerate(cells):
+        if "\t" in cell or "\n" in cell or "\r" in cell:
+            column = header[k] if k < len(header) else f"{k + 1}"
+            shown = cell.split("\n")[0].split("\t")[0].strip()
+            shown = shown if len(shown) <= 30 else shown[:30] + "…"
+            raise TesseraInputError(
+                f"row {line}, column {column}: a quote (\") opened in this cell ({shown!r}…) is "
+                "not closed, so the cells or rows after it would be read into it; remove the "
+                "quote (cells need none) or close it",
+                source=sheet_path,
+            )
 
 
 # Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
