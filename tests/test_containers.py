@@ -600,6 +600,40 @@ def test_ome_zarr_with_a_lost_level_is_refused_in_one_line(tmp_path, volume, los
     assert "but the image has no such array (a level lost in copying?)" in message
 
 
+@pytest.mark.parametrize("names", [["x", "y", "z"], ["y", "x", "z"]])
+def test_ome_zarr_with_other_axes_than_z_y_x_is_refused(tmp_path, volume, names):
+    # OME-NGFF 0.5 lets an image name its space axes in any order; arrays here are read as
+    # (z, y, x), so an (x, y, z) image read without this check came in transposed
+    src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=(40, 8, 8), unit="nanometer")
+    group = zarr.open_group(str(src), mode="r+")
+    ome = group.attrs["ome"]
+    for axis, name in zip(ome["multiscales"][0]["axes"], names, strict=True):
+        axis["name"] = name
+    group.attrs["ome"] = ome
+    with pytest.raises(TesseraInputError) as info:
+        open_stack(src, "zarr")
+    message = str(info.value)
+    assert message.startswith(str(src)) and "\n" not in message
+    assert f"its axes are {names}; expected the three space axes ['z', 'y', 'x'] in that order" in (
+        message
+    )
+
+
+def test_ome_zarr_whose_first_level_is_not_the_finest_is_refused(tmp_path, volume):
+    # OME-NGFF lists levels from the highest resolution down; the first is read as level 0
+    src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=(40, 8, 8), unit="nanometer")
+    group = zarr.open_group(str(src), mode="r+")
+    ome = group.attrs["ome"]
+    ome["multiscales"][0]["datasets"].reverse()
+    group.attrs["ome"] = ome
+    with pytest.raises(TesseraInputError) as info:
+        open_stack(src, "zarr")
+    assert (
+        "level '0' (scale [40, 8, 8]) is finer than the first level '1' (scale [40, 16, 16]); "
+        "expected the levels listed from the finest to coarser ones" in str(info.value)
+    )
+
+
 def test_ome_zarr_with_a_length_unit_unknown_is_refused(tmp_path, volume):
     src = _ome_zarr_input(tmp_path / "in.ome.zarr", volume, scale=(40, 8, 8), unit="parsecs")
     with pytest.raises(TesseraInputError) as info:

@@ -166,6 +166,8 @@ def open_image(path, *, checksums="required"):
         raise TesseraInputError(
             "missing OME-Zarr 'ome.multiscales' metadata with a scale per level", source=path
         ) from None
+    _check_axis_names(ms, source=path)
+    _check_finest_first(datasets, scales, source=path)
     factors = [
         tuple(int(round(s / s0)) for s, s0 in zip(sc, scales[0], strict=False)) for sc in scales
     ]
@@ -191,6 +193,33 @@ def open_image(path, *, checksums="required"):
         "levels": levels,
         "extra": attrs.get("tessera", {}),
     }
+
+
+def _check_axis_names(multiscale, *, source):
+    """Refuse axes other than z, y, x in that order: arrays are read as (z, y, x), so an image
+    stored as (x, y, z) would otherwise come in transposed, without a word."""
+    axes = multiscale.get("axes")
+    if axes is None:
+        return
+    names = [a.get("name") if isinstance(a, dict) else a for a in axes]
+    if names != list(AXES):
+        raise TesseraInputError(
+            f"its axes are {names}; expected the three space axes {list(AXES)} in that order "
+            "(arrays are read as z, y, x): save the image with axes z, y, x",
+            source=source,
+        )
+
+
+def _check_finest_first(datasets, scales, *, source):
+    """Refuse levels not listed from the finest to coarser ones: the first is read as level 0."""
+    for d, scale in zip(datasets[1:], scales[1:], strict=True):
+        if any(float(s) < float(s0) for s, s0 in zip(scale, scales[0], strict=False)):
+            raise TesseraInputError(
+                f"level {d.get('path')!r} (scale {list(scale)}) is finer than the first level "
+                f"{datasets[0].get('path')!r} (scale {list(scales[0])}); expected the levels "
+                "listed from the finest to coarser ones, as OME-Zarr orders them",
+                source=source,
+            )
 
 
 #: Nanometres per length unit of the OME-Zarr axes (the specification's UDUNITS-2 names).
