@@ -119,6 +119,42 @@ def test_mrc_voxel_size_round_trips_through_header(tmp_path, volume):
     assert open_image(tmp_path / "p.ome.zarr")[1]["spacing"] == pytest.approx((45.0, 4.6, 4.6))
 
 
+def _mode0_mrc(path, grey, *, stamp, flags):
+    """uint8 grey values stored as MRC mode 0 bytes, with IMOD's header words (stamp at bytes
+    152-155, flags at 156-159, in the header's byte order) as given."""
+    with mrcfile.new(path) as mrc:
+        mrc.set_data(grey.view(np.int8))
+        extra = bytearray(bytes(mrc.header.extra2))
+        order = mrc.header.nx.dtype
+        extra[40:48] = np.array([stamp, flags], dtype=order).tobytes()
+        mrc.header.extra2 = bytes(extra)
+    return path
+
+
+@pytest.mark.parametrize(
+    ("stamp", "flags", "unsigned"),
+    [
+        # IMOD's MRC format description: its stamp 1146047817 ("IMOD"), and bit 0 of its flags
+        # set when bytes are signed; without the flag IMOD's mode-0 bytes are unsigned
+        (1146047817, 0, True),
+        (1146047817, 1, False),
+        # no IMOD stamp: MRC2014's own definition, mode 0 = signed 8-bit integers
+        (0, 0, False),
+    ],
+)
+def test_mrc_mode0_bytes_are_read_as_imod_marks_them(tmp_path, stamp, flags, unsigned):
+    grey = np.random.default_rng(5).integers(0, 256, (3, 16, 16), dtype=np.uint8)
+    src = _mode0_mrc(tmp_path / "b.mrc", grey, stamp=stamp, flags=flags)
+    stack = open_stack(src, "mrc")
+    assert stack.dtype == (np.uint8 if unsigned else np.int8)
+    expected = grey if unsigned else grey.view(np.int8)
+    assert np.array_equal(np.stack([stack.read(z) for z in range(3)]), expected)
+    stack.close()
+    if unsigned:  # ingest copies 8-bit grey values exactly
+        ingest_job(src, tmp_path / "o.ome.zarr", fmt="mrc", spacing=SPACING)
+        assert np.array_equal(open_image(tmp_path / "o.ome.zarr")[1]["levels"][0][:], grey)
+
+
 def test_sixteen_bit_mapped_by_recorded_percentiles(tmp_path):
     rng = np.random.default_rng(3)
     volume = rng.normal(20000, 3000, size=(8, 64, 64)).clip(0, 65535).astype(np.uint16)

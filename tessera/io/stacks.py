@@ -192,6 +192,8 @@ class _Mrc(_Source):
             self._mrc.close()
             raise TesseraInputError("expected a 2D or 3D MRC image", source=path)
         self._data = data if data.ndim == 3 else data[np.newaxis]
+        if imod_unsigned_bytes(self._mrc.header):
+            self._data = self._data.view(np.uint8)
         self.shape = self._data.shape
         self.dtype = self._data.dtype
         vs = self._mrc.voxel_size  # Å, ordered x, y, z
@@ -203,6 +205,37 @@ class _Mrc(_Source):
 
     def close(self):
         self._mrc.close()
+
+
+# IMOD's mark in an MRC header (bytes 152-155, "IMOD" as a 32-bit integer), and the bit of its
+# flags (bytes 156-159) saying that mode-0 bytes are signed (IMOD's MRC format description)
+_IMOD_STAMP = 1146047817
+_IMOD_SIGNED_BYTES = 1
+_IMOD_WORDS = slice(152 - 112, 160 - 112)  # within mrcfile's `extra2` field, which starts at 112
+
+
+def imod_unsigned_bytes(header):
+    """Whether an MRC header's mode-0 data are unsigned bytes, as IMOD writes them.
+
+    MRC2014 defines mode 0 as signed 8-bit integers, but IMOD, which wrote much of the EM data
+    in this format, stores unsigned bytes there unless bit 0 of its flags is set, and marks its
+    headers with a stamp. Read as signed, grey values above 127 would wrap around to negative.
+
+    Parameters
+    ----------
+    header : numpy.record
+        An MRC header as mrcfile reads it.
+
+    Returns
+    -------
+    bool
+        True for mode 0 under IMOD's stamp with the signed-bytes flag clear.
+    """
+    if int(header["mode"]) != 0:
+        return False
+    words = np.frombuffer(bytes(header["extra2"])[_IMOD_WORDS], dtype=header["nx"].dtype)
+    stamp, flags = int(words[0]), int(words[1])
+    return stamp == _IMOD_STAMP and not flags & _IMOD_SIGNED_BYTES
 
 
 def _check_mrc_header(path):
