@@ -421,7 +421,7 @@ def _check_quotes(cells, header, line, sheet_path):
             shown = cell.split("\n")[0].split("\t")[0].strip()
             shown = shown if len(shown) <= 30 else shown[:30] + "…"
             raise TesseraInputError(
-                f"row {line}, column {column}: a quote (\") opened in this cell ({shown!r}…) is "
+                f'row {line}, column {column}: a quote (") opened in this cell ({shown!r}…) is '
                 "not closed, so the cells or rows after it would be read into it; remove the "
                 "quote (cells need none) or close it",
                 source=sheet_path,
