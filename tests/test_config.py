@@ -140,6 +140,29 @@ def test_defaults_are_filled_from_the_schema(schemas):
             r"annotations.labels: '\{dataset\}_\{z\}.tif' is not a path template \(it holds \{z\}\)",
         ),
         (
+            # JSON Schema counts 1.0 as an integer; the jobs did not, and refused it only after
+            # Snakemake had cleared their earlier outputs
+            lambda c: c["pyramid"].update(levels=1.0),
+            r"key pyramid.levels: 1.0 is not of type 'integer'; write the whole number without "
+            r"a decimal point \(1\)$",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["tiles"].update(size=48.0),
+            r"key targets.mitochondria.tiles.size: 48.0 is not of type 'integer'",
+        ),
+        (
+            # NaN passes every minimum and maximum (IEEE 754: comparisons with NaN are false);
+            # as a minimum volume it removed every object without a word
+            lambda c: c["targets"]["mitochondria"]["objects"].update(min_volume_um3=float("nan")),
+            r"key targets.mitochondria.objects.min_volume_um3: .nan is not a number; expected a "
+            r"number$",
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"]["objects"].update(high=float("nan")),
+            r"key targets.mitochondria.objects.high: .nan is not a number; expected a number or "
+            r"null$",
+        ),
+        (
             # checked when the config loads, not when the first ingest job runs
             lambda c: c["ingest"].update(percentiles=[99.9, 0.1]),
             r"key ingest.percentiles: \[99.9, 0.1\]: expected the lower percentile first and "
@@ -407,7 +430,9 @@ def test_a_quote_left_open_in_the_sheet_is_refused(tmp_path, schemas, rows, wher
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
     message = str(info.value)
     assert message.startswith(f"{path}: {where}: a quote") and "\n" not in message
+    assert 'a quote (") opened in this cell' in message
     assert "is not closed, so the cells or rows after it would be read into it" in message
+    assert "remove the quote (cells need none) or close it" in message
 
 
 def test_quoted_cells_that_close_read_as_plain_ones(tmp_path, schemas):

@@ -133,7 +133,34 @@ def _copy(value):
     return yaml.safe_load(yaml.safe_dump(value))
 
 
-_Validator = _with_defaults(jsonschema.Draft202012Validator)
+def _is_integer(checker, instance):
+    # a whole number written as 1.0 passes JSON Schema's integer, but the jobs that use it
+    # refuse it, after Snakemake has cleared their earlier outputs: refused here instead
+    return isinstance(instance, int) and not isinstance(instance, bool)
+
+
+def _is_number(checker, instance):
+    # NaN passes every minimum and maximum (each comparison with it is false)
+    if isinstance(instance, float) and math.isnan(instance):
+        return False
+    return isinstance(instance, (int, float)) and not isinstance(instance, bool)
+
+
+_TYPES = jsonschema.Draft202012Validator.TYPE_CHECKER.redefine_many(
+    {"integer": _is_integer, "number": _is_number}
+)
+_Validator = jsonschema.validators.extend(
+    _with_defaults(jsonschema.Draft202012Validator), type_checker=_TYPES
+)
+
+
+def _expected(error):
+    types = error.validator_value
+    types = [types] if isinstance(types, str) else list(types)
+    return " or ".join(_TYPE_WORDS.get(t, t) for t in types)
+
+
+_TYPE_WORDS = {"number": "a number", "integer": "a whole number", "null": "null", "string": "text"}
 
 
 def _describe(error):
@@ -144,6 +171,14 @@ def _describe(error):
         return f"key {where}: {error.message} (check the spelling; allowed keys are in the schema)"
     if error.validator == "required":
         return f"key {where}: {error.message}"
+    if error.validator == "type" and isinstance(error.instance, float):
+        if math.isnan(error.instance):
+            return f"key {where}: .nan is not a number; expected {_expected(error)}"
+        if error.instance.is_integer():
+            return (
+                f"key {where}: {error.instance!r} is not of type 'integer'; write the whole "
+                f"number without a decimal point ({int(error.instance)})"
+            )
     if error.validator == "enum":
         # spelled as in YAML (true, not True), since that is what the user edits
         allowed = ", ".join(json.dumps(v) for v in error.validator_value)
