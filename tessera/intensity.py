@@ -122,8 +122,14 @@ def to_uint8(section, low, high):
     --------
     >>> to_uint8(np.array([[0, 1000, 2000, 4000]], dtype=np.uint16), 1000, 3000)
     array([[  0,   0, 128, 255]], dtype=uint8)
+    >>> to_uint8(np.array([[-1e306, 0.0, 1e306]]), -1e306, 1e306)
+    array([[  0, 128, 255]], dtype=uint8)
     """
-    section = np.asarray(section, dtype=np.float32)
-    scale = 255.0 / max(high - low, np.finfo(np.float32).eps)
-    mapped = (section - np.float32(low)) * np.float32(scale)
+    section = np.asarray(section)
+    # float32 is exact enough for 256 grey levels, but float64 data may hold values beyond its
+    # range (about 3.4e38), which would overflow to infinity: those are mapped in float64
+    work = np.float64 if section.dtype.kind == "f" and section.dtype.itemsize > 4 else np.float32
+    section = section.astype(work, copy=False)
+    scale = 255.0 / max(high - low, np.finfo(work).eps)
+    mapped = (section - work(low)) * work(scale)
     return np.rint(np.clip(np.nan_to_num(mapped, nan=0.0), 0, 255)).astype(np.uint8)

@@ -2,6 +2,7 @@
 
 import json
 import os
+import warnings
 
 import mrcfile
 import numpy as np
@@ -604,6 +605,29 @@ def test_float_stack_with_nan_is_refused(tmp_path):
     ) as info:
         _ingest(src, tmp_path)
     _one_line_and_nothing_written(info, src, tmp_path, before)
+
+
+def test_float64_values_beyond_float32_range_keep_their_grey_levels(tmp_path):
+    # IEEE 754: float32 holds magnitudes up to about 3.4e38; these values overflowed to
+    # infinity in a float32 mapping and came in as a black image
+    rng = np.random.default_rng(2)
+    grey = rng.integers(0, 256, (3, 16, 16)).astype(np.float64)
+    tifffile.imwrite(tmp_path / "big.tif", grey * 1e304, photometric="minisblack")
+    tifffile.imwrite(tmp_path / "small.tif", grey, photometric="minisblack")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow on the way
+        for name in ("big", "small"):
+            ingest_job(
+                tmp_path / f"{name}.tif",
+                tmp_path / f"{name}.ome.zarr",
+                fmt="tiff_stack",
+                spacing=SPACING,
+            )
+    big, small = (
+        open_image(tmp_path / f"{n}.ome.zarr")[1]["levels"][0][:] for n in ("big", "small")
+    )
+    # a scale factor does not change a percentile stretch (up to rounding at a level's edge)
+    assert big.std() > 30 and np.abs(big.astype(int) - small.astype(int)).max() <= 1
 
 
 def _numbered_folder(folder, volume, numbers, name="sec_{:04d}.tif"):
