@@ -79,6 +79,28 @@ def test_slice_folder_orders_numbers_naturally(tmp_path):
     assert [int(stack.read(z)[0, 0]) for z in range(12)] == list(range(12))
 
 
+def test_slice_folder_with_a_jpeg_among_its_sections_is_refused(tmp_path):
+    # a section saved as JPEG (lossy; not read as a section) passed as a lost section and came
+    # in blank; other files (notes, thumbnails caches) are still no sections
+    volume = np.arange(4, dtype=np.uint8).reshape(4, 1, 1) * np.ones((1, 4, 4), np.uint8)
+    _write_folder(tmp_path / "s", volume, ".tif")
+    (tmp_path / "s" / "notes.txt").write_text("acquired on day 3")
+    (tmp_path / "s" / "Thumbs.db").write_bytes(b"\x00")
+    assert open_stack(tmp_path / "s", "slice_folder").shape == (4, 4, 4)
+    victim = sorted((tmp_path / "s").glob("*.tif"))[2]
+    PILImage.fromarray(volume[2]).save(victim.with_suffix(".jpg"))
+    victim.unlink()
+    with pytest.raises(TesseraInputError) as info:
+        open_stack(tmp_path / "s", "slice_folder")
+    message = str(info.value)
+    assert message.startswith(str(tmp_path / "s")) and "\n" not in message
+    assert f"{victim.stem}.jpg: image file(s) of a kind sections are not read from" in message
+    assert (
+        "beside the sections; expected every section as .tif, .tiff, .png (save it again as "
+        "TIFF, or move it out of the folder)" in message
+    )
+
+
 def test_slice_folder_skips_hidden_files(tmp_path):
     # macOS writes a '._<name>' file of metadata beside each file copied to a shared drive
     # (AppleDouble, common practice); it is no section, and before it was refused as a second

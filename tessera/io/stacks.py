@@ -37,6 +37,9 @@ FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr", "hdf5", "n5")
 #: What to do with a section missing from a numbered slice folder.
 MISSING_SECTIONS = ("placeholder", "refuse")
 _SLICE_SUFFIXES = (".tif", ".tiff", ".png")
+# Image formats that are no sections here (lossy, or not read): one among the sections would
+# otherwise pass as a lost section, replaced by a blank one
+_OTHER_IMAGE_SUFFIXES = (".jpg", ".jpeg", ".jp2", ".bmp", ".gif", ".webp", ".dm3", ".dm4", ".mrc")
 # Pillow modes that hold one grey value per pixel, stored as is
 _GREY_MODES = ("L", "I", "I;16", "I;16L", "I;16B", "F")
 
@@ -126,6 +129,18 @@ class _SliceFolder(_Source):
         if not names:
             raise TesseraInputError(
                 f"no section images ({', '.join(_SLICE_SUFFIXES)}) in the folder", source=path
+            )
+        others = sorted(
+            p.name
+            for p in path.iterdir()
+            if p.suffix.lower() in _OTHER_IMAGE_SUFFIXES and not p.name.startswith(".")
+        )
+        if others:
+            raise TesseraInputError(
+                f"{_short_list(others)}: image file(s) of a kind sections are not read from, "
+                f"beside the sections; expected every section as {', '.join(_SLICE_SUFFIXES)} "
+                "(save it again as TIFF, or move it out of the folder)",
+                source=path,
             )
         order = number_sections(names, source=path)
         if order["missing"] and missing_sections == "refuse":
