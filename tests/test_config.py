@@ -350,12 +350,18 @@ def test_good_sheet_with_blank_voxel_size_and_mask(tmp_path, schemas):
             r"row 2, column voxel_x_nm: expected a number in nm, got 'eight'",
         ),
         (
+            # Python's float() reads "4_0" as 40 (digit grouping); in a sheet it is a typo
+            ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t4_0\t8\t8\t"],
+            r"row 2, column voxel_z_nm: expected a number in nm, got '4_0'",
+        ),
+        (
             ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\tnan\t"],
             r"row 2, column voxel_x_nm: expected a finite number",
         ),
         (
             ["a1\tctrl\tm1\tmissing.tif\ttiff_stack\t40\t8\t8\t"],
-            r"row 2: column path: file or folder 'missing.tif' not found",
+            r"row 2: column path: file or folder 'missing.tif' not found \(relative paths are "
+            r"read from the project folder, ",
         ),
         (
             ["a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t8\t8\tcells.tif"],

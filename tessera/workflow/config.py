@@ -361,6 +361,9 @@ def _parse_number(text, *, where):
     if text.strip() == "":
         return None
     try:
+        # Python reads "4_0" as 40 (digit grouping): a typo, not a number in a sheet
+        if "_" in text:
+            raise ValueError(text)
         value = float(text)
     except ValueError:
         raise TesseraInputError(f"expected a number in nm, got {text!r}", source=where) from None
@@ -691,8 +694,13 @@ def _check_paths(frame, lines, sheet_path, base_dir, generated_dir, roots):
             if generated is not None and full.is_relative_to(generated):
                 continue
             if not full.exists():
+                hint = (
+                    ""
+                    if Path(value).is_absolute()
+                    else f" (relative paths are read from the project folder, {base_dir.resolve()})"
+                )
                 raise TesseraInputError(
-                    f"column {column}: file or folder {value!r} not found",
+                    f"column {column}: file or folder {value!r} not found{hint}",
                     source=f"{sheet_path}, row {line}",
                 )
             problem = _kind_problem(full, row["format"] if column == "path" else None)
