@@ -101,6 +101,16 @@ def test_slice_folder_with_a_jpeg_among_its_sections_is_refused(tmp_path):
     )
 
 
+def test_slice_folder_of_one_section_is_told_to_hold_every_section(tmp_path):
+    _write_folder(tmp_path / "s", np.zeros((1, 8, 8), np.uint8), ".tif")
+    with pytest.raises(TesseraInputError) as info:
+        ingest_job(tmp_path / "s", tmp_path / "o.ome.zarr", fmt="slice_folder", spacing=SPACING)
+    assert str(info.value).endswith(
+        "holds a single section of 8 x 8 pixels; expected a stack of sections (z, y, x): put "
+        "every section's file into the folder"
+    )
+
+
 def test_slice_folder_skips_hidden_files(tmp_path):
     # macOS writes a '._<name>' file of metadata beside each file copied to a shared drive
     # (AppleDouble, common practice); it is no section, and before it was refused as a second

@@ -91,10 +91,15 @@ def _stack_found(source, source_path, *, fmt, internal_path, spacing):
     """What a check records of an opened stack; the voxel size resolved as ingest uses it."""
     if source.shape[0] < 2:
         # volumes, surfaces and the split into sections apart in z all need a stack
+        how = (
+            "put every section's file into the folder"
+            if fmt == "slice_folder"
+            else "save every section into one multi-page file, or use format slice_folder for "
+            "one file per section"
+        )
         raise TesseraInputError(
             f"holds a single section of {source.shape[1]} x {source.shape[2]} pixels; expected "
-            "a stack of sections (z, y, x): save every section into one multi-page file, or "
-            "use format slice_folder for one file per section",
+            f"a stack of sections (z, y, x): {how}",
             source=source_path,
         )
     given = merge_spacing(spacing, source)
