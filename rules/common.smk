@@ -446,6 +446,18 @@ def dataset_groups(wildcards):
     }
 
 
+def dataset_stacks(wildcards):
+    """Stack path, array inside it and animal of every dataset, in sheet order."""
+    return {
+        d: {
+            "path": row["path"],
+            "internal_path": row.get("internal_path"),
+            "subject": row["subject"],
+        }
+        for d, row in DATASETS.iterrows()
+    }
+
+
 def dataset_inputs_of(dataset):
     """The files a dataset's results rest on: the stack and the optional ROI mask."""
     row = DATASETS.loc[dataset]
