@@ -803,3 +803,34 @@ def test_a_stack_replaced_by_an_older_file_reruns_its_dataset(tmp_path, repo=REP
     assert after != before  # the image is the corrected stack's
     again = snakemake("-n", *args, cwd=tmp_path)
     assert "Nothing to be done" in again.stdout + again.stderr
+
+
+def test_a_copy_of_a_stack_as_another_animal_stops_before_the_statistics(
+    finished_study, repo=REPO_ROOT
+):
+    # Snakemake removes a job's outputs when the job starts; the stacks' SHA-256 are compared
+    # by a job of its own (check_distinct_stacks) before statistics, so a sheet listing a copy
+    # of a stack as another animal is refused in one line and the earlier statistics stay.
+    sheet = finished_study / "config" / "datasets.tsv"
+    original = sheet.read_text()
+    copy = finished_study / "copies" / "c2.tif"
+    copy.parent.mkdir()
+    shutil.copyfile(finished_study / "demo/data/c1/raw.tif", copy)
+    tables = sorted((finished_study / "results/study/nuclei/statistics").glob("*"))
+    before = {p: p.read_bytes() for p in tables}
+    try:
+        sheet.write_text(original + "c2\tcold\tc2\tcopies/c2.tif\ttiff_stack\t40\t8\t8\t\n")
+        result = snakemake(
+            "--cores", "1", "--snakefile", str(repo / "Snakefile"), cwd=finished_study, check=False
+        )
+        assert result.returncode != 0
+        told = result.stderr + result.stdout
+        assert (
+            "config/datasets.tsv: column path: datasets c1 ('demo/data/c1/raw.tif') and c2 " in told
+        )
+        assert "one animal would count twice (as 'c1' and 'c2')" in told
+        assert {p: p.read_bytes() for p in tables} == before
+    finally:
+        sheet.write_text(original)
+        shutil.rmtree(copy.parent)
+        shutil.rmtree(finished_study / "results" / "c2", ignore_errors=True)
