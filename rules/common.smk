@@ -25,6 +25,7 @@ from tessera.errors import TesseraInputError
 from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.points import read_points
+from tessera.workflow.input_identity import input_identity
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
 DEMO_DIR = "demo/data"
@@ -90,6 +91,21 @@ def dataset_condition(wildcards):
 
 def dataset_subject(wildcards):
     return DATASETS.loc[wildcards.dataset, "subject"]
+
+
+def user_input_identity(path):
+    """The stat identity of a user's file or folder (tessera.workflow.input_identity), a param
+    of the jobs reading it first, so that one replaced by a file with an older time still
+    reruns them. The demo's stacks are outputs of demo_dataset, which Snakemake follows itself.
+    """
+    demo = Path(DEMO_DIR).resolve()
+    if "demo" in config and Path(path).resolve().is_relative_to(demo):
+        return "made by rule demo_dataset"
+    return input_identity(path)
+
+
+def dataset_stack_identity(wildcards):
+    return user_input_identity(dataset_path(wildcards))
 
 
 def dataset_spacing(wildcards):
@@ -409,6 +425,10 @@ def dataset_roi(wildcards):
     return [] if roi is None else [roi]
 
 
+def dataset_roi_identity(wildcards):
+    return [user_input_identity(p) for p in dataset_roi(wildcards)]
+
+
 def dataset_roi_check(wildcards):
     return (
         [f"results/{wildcards.dataset}/roi_check/regions.json"]
@@ -426,6 +446,18 @@ def dataset_groups(wildcards):
     }
 
 
+def dataset_stacks(wildcards):
+    """Stack path, array inside it and animal of every dataset, in sheet order."""
+    return {
+        d: {
+            "path": row["path"],
+            "internal_path": row.get("internal_path"),
+            "subject": row["subject"],
+        }
+        for d, row in DATASETS.iterrows()
+    }
+
+
 def dataset_inputs_of(dataset):
     """The files a dataset's results rest on: the stack and the optional ROI mask."""
     row = DATASETS.loc[dataset]
@@ -434,6 +466,10 @@ def dataset_inputs_of(dataset):
 
 def dataset_inputs(wildcards):
     return dataset_inputs_of(wildcards.dataset)
+
+
+def dataset_inputs_identity(wildcards):
+    return [user_input_identity(p) for p in dataset_inputs(wildcards)]
 
 
 def study_factors(wildcards):

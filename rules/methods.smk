@@ -17,6 +17,8 @@ rule checksum_inputs:
         mem_mb=scaled_by_attempt(500),
         runtime=scaled_by_attempt(120),
     params:
+        # a stack or mask replaced by a file with an older time is hashed again
+        identity=dataset_inputs_identity,
         code=script_code("checksum_inputs"),
     script:
         "../scripts/checksum_inputs.py"

@@ -16,6 +16,7 @@ run_job(
     region_tables=dict(zip(datasets, snakemake.input.regions, strict=True)),
     datasets=datasets,
     scores=snakemake.input.scores,
+    stacks_check=snakemake.input.stacks_check,
     out_animals=snakemake.output.animals,
     out_comparison=snakemake.output.comparison,
     out_plot=snakemake.output.plot,

@@ -750,3 +750,87 @@ def test_a_damaged_region_mask_leaves_the_earlier_morphometry(finished_study, re
     finally:
         mask.write_bytes(sound)
         os.utime(mask, ns=times)
+
+
+def test_a_stack_replaced_by_an_older_file_reruns_its_dataset(tmp_path, repo=REPO_ROOT):
+    # Snakemake reruns a job when an input is newer than its outputs; `cp -p` and `rsync -a`
+    # keep the replacement's own, older time (coreutils cp manual; Python's shutil.copy2 does
+    # the same). check_stack takes the stack's stat identity as a param, and Snakemake reruns a
+    # job whose params changed: the dataset's check, image and checksums follow.
+    import tifffile
+
+    rng = np.random.default_rng(7)
+    (tmp_path / "config").mkdir()
+    (tmp_path / "stacks").mkdir()
+    (tmp_path / "labels").mkdir()
+    stack, corrected = tmp_path / "stacks" / "d1.tif", tmp_path / "corrected.tif"
+    for path in (corrected, stack):  # the corrected file is made first: it is the older
+        tifffile.imwrite(
+            path, rng.integers(0, 256, (6, 64, 64), dtype=np.uint8), photometric="minisblack"
+        )
+    old = stack.stat().st_mtime_ns - 3600 * 10**9
+    os.utime(corrected, ns=(old, old))
+    tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
+    config = tiny_config()
+    config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
+    config["targets"]["nuclei"]["annotated_datasets"] = ["d1"]
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
+    (tmp_path / "config" / "datasets.tsv").write_text(
+        TINY_SHEET.splitlines()[0] + "\nd1\twarm\td1\tstacks/d1.tif\ttiff_stack\t40\t8\t8\t\n"
+    )
+    image, sums = "results/d1/ingest/raw.ome.zarr", "results/d1/audit/inputs.sha256"
+    args = ("--cores", "1", "--snakefile", str(repo / "Snakefile"), image, sums)
+    sums = tmp_path / sums
+    snakemake(*args, cwd=tmp_path)
+    first = sums.read_text()
+    assert hashlib.sha256(stack.read_bytes()).hexdigest() in first  # hashlib: the reference
+    unchanged = snakemake("-n", *args, cwd=tmp_path)
+    assert "Nothing to be done" in unchanged.stdout + unchanged.stderr
+    chunks = [p for p in sorted((tmp_path / image).rglob("*")) if p.is_file()]
+    before = {p: p.read_bytes() for p in chunks}
+    assert len(before) > 3
+    shutil.copy2(corrected, stack)  # same size, same inode, an older time
+    assert stack.stat().st_mtime_ns == old
+    planned = snakemake("-n", "--quiet", "rules", *args, cwd=tmp_path).stdout
+    assert {"check_stack", "ingest", "checksum_inputs"} <= {
+        line.split()[0] for line in planned.splitlines() if line[:1].isalpha()
+    }
+    snakemake(*args, cwd=tmp_path)
+    assert (
+        sums.read_text() == f"{hashlib.sha256(corrected.read_bytes()).hexdigest()}  stacks/d1.tif\n"
+    )
+    after = {p: p.read_bytes() for p in chunks}
+    assert after != before  # the image is the corrected stack's
+    again = snakemake("-n", *args, cwd=tmp_path)
+    assert "Nothing to be done" in again.stdout + again.stderr
+
+
+def test_a_copy_of_a_stack_as_another_animal_stops_before_the_statistics(
+    finished_study, repo=REPO_ROOT
+):
+    # Snakemake removes a job's outputs when the job starts; the stacks' SHA-256 are compared
+    # by a job of its own (check_distinct_stacks) before statistics, so a sheet listing a copy
+    # of a stack as another animal is refused in one line and the earlier statistics stay.
+    sheet = finished_study / "config" / "datasets.tsv"
+    original = sheet.read_text()
+    copy = finished_study / "copies" / "c2.tif"
+    copy.parent.mkdir()
+    shutil.copyfile(finished_study / "demo/data/c1/raw.tif", copy)
+    tables = sorted((finished_study / "results/study/nuclei/statistics").glob("*"))
+    before = {p: p.read_bytes() for p in tables}
+    try:
+        sheet.write_text(original + "c2\tcold\tc2\tcopies/c2.tif\ttiff_stack\t40\t8\t8\t\n")
+        result = snakemake(
+            "--cores", "1", "--snakefile", str(repo / "Snakefile"), cwd=finished_study, check=False
+        )
+        assert result.returncode != 0
+        told = result.stderr + result.stdout
+        assert (
+            "config/datasets.tsv: column path: datasets c1 ('demo/data/c1/raw.tif') and c2 " in told
+        )
+        assert "one animal would count twice (as 'c1' and 'c2')" in told
+        assert {p: p.read_bytes() for p in tables} == before
+    finally:
+        sheet.write_text(original)
+        shutil.rmtree(copy.parent)
+        shutil.rmtree(finished_study / "results" / "c2", ignore_errors=True)

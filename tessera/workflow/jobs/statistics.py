@@ -2,6 +2,7 @@
 
 import math
 
+from tessera.errors import TesseraInputError
 from tessera.io.atomic import atomic_path, write_table
 from tessera.statistics import (
     REGION_MEASURES,
@@ -11,6 +12,7 @@ from tessera.statistics import (
 )
 from tessera.statistics_plot import plot_conditions
 from tessera.workflow.files.comparison_table import write_comparison_table
+from tessera.workflow.files.distinct_stacks import read_distinct_stacks
 from tessera.workflow.files.morphometry_tables import read_object_measures, read_region_densities
 from tessera.workflow.files.scores import read_scores
 
@@ -38,6 +40,7 @@ def statistics_job(
     out_conditions,
     reference=None,
     confidence=0.95,
+    stacks_check=None,
 ):
     """Per-animal summaries, per-condition descriptions and condition comparisons of one target.
 
@@ -57,7 +60,18 @@ def statistics_job(
         (default: the first condition in the sheet). One the sheet lacks is refused when the
         workflow loads (:func:`tessera.workflow.config.check_reference_condition`), and by
         :func:`~tessera.statistics.compare_conditions` before anything is written.
+    stacks_check : path, optional
+        Rule check_distinct_stacks's record: no two datasets hold one stack. The animals are
+        counted only over the datasets it checked.
     """
+    if stacks_check is not None:
+        checked = read_distinct_stacks(stacks_check)
+        if sorted(checked) != sorted(datasets):
+            raise TesseraInputError(
+                f"checked datasets {sorted(checked)}, the statistics count {sorted(datasets)}; "
+                "expected the same (rerun rule check_distinct_stacks)",
+                source=stacks_check,
+            )
     conditions = sheet_conditions(datasets)
     objects = {d: read_object_measures(path) for d, path in object_tables.items()}
     regions = {d: read_region_densities(region_tables[d]) for d in object_tables}
