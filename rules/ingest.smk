@@ -22,7 +22,7 @@ rule check_stack:
         spacing=dataset_spacing,
         missing_sections=config["ingest"]["missing_sections"],
         earlier_image=lambda wildcards: f"results/{wildcards.dataset}/ingest/raw.ome.zarr",
-        # size, time and inode: a replacement with an older time reruns the dataset too
+        # size and time: a replacement with an older time reruns the dataset too
         identity=dataset_stack_identity,
         code=script_code("check_stack"),
     script:

@@ -17,7 +17,7 @@ rule check_roi:
         mem_mb=scaled_by_attempt(1000),
         runtime=scaled_by_attempt(30),
     params:
-        # size, time and inode: a replacement with an older time reruns the morphometry too
+        # size and time: a replacement with an older time reruns the morphometry too
         identity=dataset_roi_identity,
         code=script_code("check_roi"),
     script:

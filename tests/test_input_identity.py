@@ -33,6 +33,20 @@ def test_a_file_replaced_by_one_made_earlier_changes_identity(tmp_path):
     assert input_identity(stack) != before
 
 
+def test_data_moved_with_their_times_keep_their_identity(tmp_path):
+    # `mv` to another disk, or `rsync -a`, writes a new file (a new inode) with the same bytes,
+    # size and modification time (shutil.copy2, Python docs): the same data, nothing to rerun
+    stack = tmp_path / "ds_a.tif"
+    _stack(stack, 0)
+    os.utime(stack, ns=(OLD, OLD))
+    before, inode = input_identity(stack), stack.stat().st_ino
+    moved = tmp_path / "moved.tif"
+    shutil.copy2(stack, moved)
+    stack.unlink()
+    moved.rename(stack)
+    assert stack.stat().st_ino != inode and input_identity(stack) == before
+
+
 def test_a_slice_replaced_in_a_folder_changes_the_folder_identity(tmp_path):
     folder = tmp_path / "slices"
     folder.mkdir()
