@@ -149,6 +149,15 @@ def target_instances(wildcards):
     return [] if pattern is None else [pattern.format(dataset=wildcards.dataset)]
 
 
+def target_labels_identity(wildcards):
+    """The stat identities of a dataset's label volume and instance volume (if any): a param of
+    check_labels, so that one replaced by an older file reruns the tiles and scores."""
+    return [
+        user_input_identity(p)
+        for p in [target_labels(wildcards), *target_instances(wildcards)]
+    ]
+
+
 def target_labels_check(wildcards):
     """The label check a target's tiles rest on: one per label file, made under the
     first target that reads it and shared by the others (variants read its file)."""

@@ -20,6 +20,8 @@ rule check_labels:
         mem_mb=scaled_by_attempt(2000),
         runtime=scaled_by_attempt(30),
     params:
+        # size and time: a volume replaced by an older file reruns the dataset's tiles too
+        identity=target_labels_identity,
         code=script_code("check_labels"),
     script:
         "../scripts/check_labels.py"
