@@ -154,10 +154,13 @@ _Validator = jsonschema.validators.extend(
 )
 
 
-def _expected(error):
+def _expected_types(error):
     types = error.validator_value
-    types = [types] if isinstance(types, str) else list(types)
-    return " or ".join(_TYPE_WORDS.get(t, t) for t in types)
+    return [types] if isinstance(types, str) else list(types)
+
+
+def _expected(error):
+    return " or ".join(_TYPE_WORDS.get(t, t) for t in _expected_types(error))
 
 
 _TYPE_WORDS = {"number": "a number", "integer": "a whole number", "null": "null", "string": "text"}
@@ -174,7 +177,7 @@ def _describe(error):
     if error.validator == "type" and isinstance(error.instance, float):
         if math.isnan(error.instance):
             return f"key {where}: .nan is not a number; expected {_expected(error)}"
-        if error.instance.is_integer():
+        if error.instance.is_integer() and "integer" in _expected_types(error):
             return (
                 f"key {where}: {error.instance!r} is not of type 'integer'; write the whole "
                 f"number without a decimal point ({int(error.instance)})"
