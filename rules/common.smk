@@ -16,6 +16,7 @@ from tessera.workflow.config import (
     check_annotation_files,
     check_config_paths,
     check_reference_condition,
+    check_tiles_fit_checked_stacks,
     expand_variants,
     load_config,
     load_datasets,
@@ -58,6 +59,8 @@ try:
         config["statistics"]["reference_condition"], list(DATASETS["condition"])
     )
     check_annotated_datasets(config["targets"], DATASETS.index)
+    # before rule sample_tiles could clear a dataset's earlier tiles
+    check_tiles_fit_checked_stacks(config["targets"], DATASETS.index, source=CONFIG_FILE)
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 

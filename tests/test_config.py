@@ -13,12 +13,14 @@ from tessera.workflow.config import (
     check_annotation_files,
     check_config_file,
     check_config_paths,
+    check_tiles_fit_checked_stacks,
     config_paths,
     load_config,
     load_datasets,
     read_yaml,
     sheet_spacing,
 )
+from tessera.workflow.files.stack_check import write_stack_check
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 
@@ -917,6 +919,38 @@ def test_internal_path_column_is_optional_for_zarr_and_absent_for_old_sheets(tmp
     assert sheet["internal_path"].tolist() == [None, "/volumes/raw", "volumes/raw"]
     old = load_datasets(_sheet(tmp_path, GOOD), schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert old.loc["a1", "internal_path"] is None  # the schema's default
+
+
+def _checked_stack(results, dataset, shape):
+    write_stack_check(results / dataset / "ingest" / "stack_check.json", {"shape": list(shape)})
+
+
+def test_tiles_larger_than_checked_sections_are_refused_at_load(tmp_path):
+    # rule sample_tiles refuses such a size too, but only after Snakemake has cleared the
+    # dataset's earlier tiles; once a stack is checked its shape is known when the config loads
+    targets = {
+        "mito": {
+            "tiles": {"size": 200},
+            "downsample": 2,
+            "annotations": {"labels": "t/{dataset}.tif"},
+            "annotated_datasets": None,
+        }
+    }
+    _checked_stack(tmp_path, "a1", (16, 401, 500))  # 201 x 250 px at 2x (rounded up)
+    check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)  # a2: not checked yet
+    _checked_stack(tmp_path, "a2", (16, 300, 500))  # 150 x 250 px at 2x
+    with pytest.raises(TesseraInputError) as info:
+        check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)
+    assert str(info.value) == (
+        "config/config.yaml: key targets.mito.tiles.size: 200 px exceeds the sections of "
+        f"dataset a2 at downsample 2 (150 x 250 px, from {tmp_path / 'a2/ingest/stack_check.json'})"
+        "; expected at most 150"
+    )
+    # a dataset that gives the target no tiles, or a painted target, is not held to it
+    targets["mito"]["annotated_datasets"] = ["a1"]
+    check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)
+    painted = {"tiles": {"size": 999}, "downsample": 1, "annotations": {"painted": {}}}
+    check_tiles_fit_checked_stacks({"p": painted}, ["a1"], results=tmp_path)
 
 
 def test_annotated_datasets_missing_from_the_sheet_are_refused_at_load():

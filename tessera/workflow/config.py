@@ -17,6 +17,7 @@ import yaml
 
 from tessera.errors import TesseraInputError
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
+from tessera.workflow.files.stack_check import read_stack_check
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -334,6 +335,54 @@ def check_reference_condition(reference, conditions, *, source="config/config.ya
             f"datasets sheet; its conditions are {known}",
             source=source,
         )
+
+
+def check_tiles_fit_checked_stacks(
+    targets, dataset_ids, *, results="results", source="config/config.yaml"
+):
+    """Refuse a tile size larger than the sections of a stack already checked.
+
+    A dataset's stack check (``results/<dataset>/ingest/stack_check.json``, rule check_stack)
+    records its shape once the workflow has run. A target whose tiles (``tiles.size`` pixels
+    at its working level, ``downsample``) cannot fit on those sections is refused here, when the
+    workflow loads; inside rule sample_tiles the same refusal would come after Snakemake had
+    cleared the dataset's earlier tiles. Datasets not yet checked are left to that rule.
+
+    Parameters
+    ----------
+    targets : dict
+        The config's ``targets`` (variants included).
+    dataset_ids : iterable of str
+        The sheet's datasets.
+    results : str or Path, optional
+        The results folder.
+
+    Examples
+    --------
+    >>> check_tiles_fit_checked_stacks({"m": {"tiles": {"size": 64}, "downsample": 2,
+    ...     "annotations": {"labels": "t/{dataset}.tif"}}}, ["a1"], results="/nonexistent")
+    """
+    for name, target in targets.items():
+        if "labels" not in (target.get("annotations") or {}):
+            continue  # painted tiles are cut around points, and sized per point
+        size, factor = target["tiles"]["size"], target["downsample"]
+        annotated = target.get("annotated_datasets")
+        for dataset in dataset_ids:
+            check = Path(results) / dataset / "ingest" / "stack_check.json"
+            if (annotated is not None and dataset not in annotated) or not check.is_file():
+                continue
+            try:
+                _, rows, cols = read_stack_check(check)["shape"]
+            except (TesseraInputError, KeyError, TypeError, ValueError):
+                continue  # a damaged record: rule check_stack writes it again
+            sides = (-(-rows // factor), -(-cols // factor))
+            if size > min(sides):
+                raise TesseraInputError(
+                    f"key targets.{name}.tiles.size: {size} px exceeds the sections of dataset "
+                    f"{dataset} at downsample {factor} ({sides[0]} x {sides[1]} px, from "
+                    f"{check}); expected at most {min(sides)}",
+                    source=source,
+                )
 
 
 def check_annotated_datasets(targets, dataset_ids, *, source="config/config.yaml"):
