@@ -665,6 +665,21 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     assert np.array_equal(labels[tile_id], repainted.astype(np.uint8))
 
 
+def _one_stack_study(tmp_path):
+    """The config and sheet of a one-dataset study (d1, `stacks/d1.tif`), with a blank label
+    volume, in `tmp_path` (its folders config, stacks and labels made by the caller)."""
+    import tifffile
+
+    tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
+    config = tiny_config()
+    config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
+    config["targets"]["nuclei"]["annotated_datasets"] = ["d1"]
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
+    (tmp_path / "config" / "datasets.tsv").write_text(
+        TINY_SHEET.splitlines()[0] + "\nd1\twarm\td1\tstacks/d1.tif\ttiff_stack\t40\t8\t8\t\n"
+    )
+
+
 @pytest.mark.parametrize("damage", ["cut short", "compressed page"])
 def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
     tmp_path, damage, damage_tiff_page, repo=REPO_ROOT
@@ -688,14 +703,7 @@ def test_a_damaged_replacement_of_a_stack_leaves_the_earlier_image(
         photometric="minisblack",
         compression=compression,
     )
-    tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
-    config = tiny_config()
-    config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
-    config["targets"]["nuclei"]["annotated_datasets"] = ["d1"]
-    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
-    (tmp_path / "config" / "datasets.tsv").write_text(
-        TINY_SHEET.splitlines()[0] + "\nd1\twarm\td1\tstacks/d1.tif\ttiff_stack\t40\t8\t8\t\n"
-    )
+    _one_stack_study(tmp_path)
     image = "results/d1/ingest/raw.ome.zarr"
     args = ("--cores", "1", "--snakefile", str(repo / "Snakefile"), image)
     snakemake(*args, cwd=tmp_path)
@@ -770,14 +778,7 @@ def test_a_stack_replaced_by_an_older_file_reruns_its_dataset(tmp_path, repo=REP
         )
     old = stack.stat().st_mtime_ns - 3600 * 10**9
     os.utime(corrected, ns=(old, old))
-    tifffile.imwrite(tmp_path / "labels" / "d1.tif", np.zeros((6, 64, 64), np.uint8))
-    config = tiny_config()
-    config["targets"]["nuclei"]["annotations"]["labels"] = "labels/{dataset}.tif"
-    config["targets"]["nuclei"]["annotated_datasets"] = ["d1"]
-    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
-    (tmp_path / "config" / "datasets.tsv").write_text(
-        TINY_SHEET.splitlines()[0] + "\nd1\twarm\td1\tstacks/d1.tif\ttiff_stack\t40\t8\t8\t\n"
-    )
+    _one_stack_study(tmp_path)
     image, sums = "results/d1/ingest/raw.ome.zarr", "results/d1/audit/inputs.sha256"
     args = ("--cores", "1", "--snakefile", str(repo / "Snakefile"), image, sums)
     sums = tmp_path / sums
