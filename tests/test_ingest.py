@@ -1,6 +1,7 @@
 """Ingest: every source format, voxel sizes, 16-bit mapping, metadata, and bad input."""
 
 import json
+import logging
 import os
 import warnings
 
@@ -377,6 +378,21 @@ def test_tiff_cut_short_in_copying_is_refused_not_shortened(tmp_path, writer, st
     message = _one_line_and_nothing_written(info, src, tmp_path, before)
     assert "invalid page offset" in message
     assert states in message
+
+
+def test_a_reader_complaint_reaches_the_user_once_in_the_error_line(tmp_path, caplog):
+    # tifffile logs "invalid page offset" (and, for a compressed stack, that its series failed
+    # to reshape) at ERROR level; caught into the one error line, the records are not printed
+    # besides (pytest's caplog sees what would reach the root logger's handlers)
+    src = tmp_path / "stack.tif"
+    volume = np.random.default_rng(1).integers(0, 64, (16, 64, 64), dtype=np.uint8)
+    tifffile.imwrite(src, volume, compression="zlib")
+    src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
+    with caplog.at_level(logging.DEBUG), pytest.raises(TesseraInputError) as info:
+        check_stack_job(src, tmp_path / "check.json", fmt="tiff_stack", spacing=SPACING)
+    assert "invalid page offset" in str(info.value) and "\n" not in str(info.value)
+    assert [r.getMessage() for r in caplog.records if r.name.startswith("tifffile")] == []
+    assert logging.getLogger("tifffile").propagate  # as it was before the check
 
 
 def test_ome_tiff_cut_short_is_refused(tmp_path):

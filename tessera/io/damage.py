@@ -36,7 +36,8 @@ def reader_complaints(loggers=("tifffile",)):
 
     Log records of level WARNING or higher from the named loggers, and Python warnings, raised
     inside the block are appended as one-line texts (a leading ``<object ...>`` tag, as tifffile
-    writes, is dropped).
+    writes, is dropped). Inside the block those loggers do not pass their records on to the
+    handlers above them, so a complaint is not printed besides.
 
     Examples
     --------
@@ -49,9 +50,11 @@ def reader_complaints(loggers=("tifffile",)):
     saved = []
     for name in loggers:
         log = logging.getLogger(name)
-        saved.append((log, log.level))
+        saved.append((log, log.level, log.propagate))
         if not log.isEnabledFor(logging.WARNING):
             log.setLevel(logging.WARNING)  # a quieter root logger must not hide the complaint
+        # collected, not printed too: the complaint reaches the user as part of one error line
+        log.propagate = False
         log.addHandler(handler)
     complaints = []
     try:
@@ -59,9 +62,10 @@ def reader_complaints(loggers=("tifffile",)):
             warnings.simplefilter("always")
             yield complaints
     finally:
-        for log, level in saved:
+        for log, level, propagate in saved:
             log.removeHandler(handler)
             log.setLevel(level)
+            log.propagate = propagate
         for text in handler.messages + [str(w.message) for w in caught]:
             complaints.append(_TAG.sub("", " ".join(text.split())))
 
