@@ -60,7 +60,9 @@ try:
     )
     check_annotated_datasets(config["targets"], DATASETS.index)
     # before rule sample_tiles could clear a dataset's earlier tiles
-    check_tiles_fit_checked_stacks(config["targets"], DATASETS.index, source=CONFIG_FILE)
+    check_tiles_fit_checked_stacks(
+        config["targets"], DATASETS.index, source=CONFIG_FILE
+    )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
 
