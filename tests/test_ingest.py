@@ -154,7 +154,7 @@ def test_mrc_voxel_size_round_trips_through_header(tmp_path, volume):
 
 
 def _mode0_mrc(path, grey, *, stamp, flags):
-    """uint8 grey values stored as MRC mode 0 bytes, with IMOD's header words (stamp at bytes
+    """uint8 grey values stored as MRC mode 0 bytes, with a writer's header words (stamp at bytes
     152-155, flags at 156-159, in the header's byte order) as given."""
     with mrcfile.new(path) as mrc:
         mrc.set_data(grey.view(np.int8))
@@ -168,15 +168,15 @@ def _mode0_mrc(path, grey, *, stamp, flags):
 @pytest.mark.parametrize(
     ("stamp", "flags", "unsigned"),
     [
-        # IMOD's MRC format description: its stamp 1146047817 ("IMOD"), and bit 0 of its flags
-        # set when bytes are signed; without the flag IMOD's mode-0 bytes are unsigned
+        # common practice (from memory): a writer's stamp 1146047817 in bytes 152-155, and bit 0
+        # of its flags set when bytes are signed; without the flag its mode-0 bytes are unsigned
         (1146047817, 0, True),
         (1146047817, 1, False),
-        # no IMOD stamp: MRC2014's own definition, mode 0 = signed 8-bit integers
+        # no stamp: MRC2014's own definition, mode 0 = signed 8-bit integers
         (0, 0, False),
     ],
 )
-def test_mrc_mode0_bytes_are_read_as_imod_marks_them(tmp_path, stamp, flags, unsigned):
+def test_mrc_mode0_bytes_are_read_as_the_writer_stamp_marks_them(tmp_path, stamp, flags, unsigned):
     grey = np.random.default_rng(5).integers(0, 256, (3, 16, 16), dtype=np.uint8)
     src = _mode0_mrc(tmp_path / "b.mrc", grey, stamp=stamp, flags=flags)
     stack = open_stack(src, "mrc")

@@ -207,7 +207,7 @@ class _Mrc(_Source):
             self._mrc.close()
             raise TesseraInputError("expected a 2D or 3D MRC image", source=path)
         self._data = data if data.ndim == 3 else data[np.newaxis]
-        if imod_unsigned_bytes(self._mrc.header):
+        if stamped_unsigned_bytes(self._mrc.header):
             self._data = self._data.view(np.uint8)
         self.shape = self._data.shape
         self.dtype = self._data.dtype
@@ -222,19 +222,20 @@ class _Mrc(_Source):
         self._mrc.close()
 
 
-# IMOD's mark in an MRC header (bytes 152-155, "IMOD" as a 32-bit integer), and the bit of its
-# flags (bytes 156-159) saying that mode-0 bytes are signed (IMOD's MRC format description)
-_IMOD_STAMP = 1146047817
-_IMOD_SIGNED_BYTES = 1
-_IMOD_WORDS = slice(152 - 112, 160 - 112)  # within mrcfile's `extra2` field, which starts at 112
+# A writer's stamp some MRC headers carry (bytes 152-155, a 32-bit integer), and the bit of the
+# flags after it (bytes 156-159) saying that its mode-0 bytes are signed (common practice, from
+# memory: that writer's own description of its header)
+_WRITER_STAMP = 1146047817
+_SIGNED_BYTES_FLAG = 1
+_STAMP_WORDS = slice(152 - 112, 160 - 112)  # within mrcfile's `extra2` field, which starts at 112
 
 
-def imod_unsigned_bytes(header):
-    """Whether an MRC header's mode-0 data are unsigned bytes, as IMOD writes them.
+def stamped_unsigned_bytes(header):
+    """Whether an MRC header's mode-0 data are unsigned bytes, as its writer's stamp says.
 
-    MRC2014 defines mode 0 as signed 8-bit integers, but IMOD, which wrote much of the EM data
-    in this format, stores unsigned bytes there unless bit 0 of its flags is set, and marks its
-    headers with a stamp. Read as signed, grey values above 127 would wrap around to negative.
+    MRC2014 defines mode 0 as signed 8-bit integers, but a widely used writer of EM data in this
+    format stores unsigned bytes there unless bit 0 of its flags is set, and marks its headers
+    with a stamp (:data:`_WRITER_STAMP`). Read as signed, grey values above 127 would wrap around to negative.
 
     Parameters
     ----------
@@ -244,13 +245,13 @@ def imod_unsigned_bytes(header):
     Returns
     -------
     bool
-        True for mode 0 under IMOD's stamp with the signed-bytes flag clear.
+        True for mode 0 under that stamp with the signed-bytes flag clear.
     """
     if int(header["mode"]) != 0:
         return False
-    words = np.frombuffer(bytes(header["extra2"])[_IMOD_WORDS], dtype=header["nx"].dtype)
+    words = np.frombuffer(bytes(header["extra2"])[_STAMP_WORDS], dtype=header["nx"].dtype)
     stamp, flags = int(words[0]), int(words[1])
-    return stamp == _IMOD_STAMP and not flags & _IMOD_SIGNED_BYTES
+    return stamp == _WRITER_STAMP and not flags & _SIGNED_BYTES_FLAG
 
 
 def _check_mrc_header(path):
