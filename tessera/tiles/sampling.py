@@ -8,7 +8,7 @@ from tessera.errors import TesseraInputError
 from tessera.tiles.checks import as_int, check_factors, safe_tile_id
 from tessera.tiles.registry import validate_registry
 
-__all__ = ["labels_to_target_mask", "sample_tiles_from_labels"]
+__all__ = ["labels_to_target_mask", "level_shape", "sample_tiles_from_labels"]
 
 
 def labels_to_target_mask(labels, *, factors, threshold=0):
@@ -219,10 +219,22 @@ def _sampling_options(
     return shape0, level, factors, size, count, seed, max_tries, min_fraction
 
 
+def level_shape(shape0, factors):
+    """The shape of a level reduced by `factors` from level-0 `shape0`: each axis rounded up,
+    as the pyramid keeps a partial block at the far edge.
+
+    Examples
+    --------
+    >>> level_shape((16, 401, 500), (1, 2, 2))
+    (16, 201, 250)
+    """
+    return tuple(-(-int(s) // int(f)) for s, f in zip(shape0, factors, strict=True))
+
+
 def _allowed_sections(shape0, factors, level, size, exclude_z):
     """Working-level sections free of excluded level-0 ones, and the level's rows and columns."""
     excluded = {as_int(z, low=0, where="exclude_z", source=None) for z in exclude_z}
-    nz, ny, nx = (-(-s // f) for s, f in zip(shape0, factors, strict=True))
+    nz, ny, nx = level_shape(shape0, factors)
     if size > ny or size > nx:
         raise TesseraInputError(
             f"size {size} exceeds the level-{level} section ({ny} x {nx} pixels)"

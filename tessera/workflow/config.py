@@ -17,6 +17,7 @@ import yaml
 
 from tessera.errors import TesseraInputError
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
+from tessera.tiles.sampling import level_shape
 from tessera.workflow.files.stack_check import read_stack_check
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
@@ -372,10 +373,10 @@ def check_tiles_fit_checked_stacks(
             if (annotated is not None and dataset not in annotated) or not check.is_file():
                 continue
             try:
-                _, rows, cols = read_stack_check(check)["shape"]
+                shape0 = read_stack_check(check)["shape"]
+                sides = level_shape(shape0, (1, factor, factor))[1:]
             except (TesseraInputError, KeyError, TypeError, ValueError):
                 continue  # a damaged record: rule check_stack writes it again
-            sides = (-(-rows // factor), -(-cols // factor))
             if size > min(sides):
                 raise TesseraInputError(
                     f"key targets.{name}.tiles.size: {size} px exceeds the sections of dataset "
