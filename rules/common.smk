@@ -15,6 +15,7 @@ from tessera.workflow.config import (
     check_annotated_datasets,
     check_annotation_files,
     check_config_paths,
+    check_prediction_block,
     check_reference_condition,
     check_splits_of_written_tiles,
     check_tiles_fit_checked_stacks,
@@ -336,11 +337,17 @@ except TesseraInputError as error:
 
 try:
     # before rule split_tiles could clear a target's earlier split (once its tiles are
-    # written); here, where the annotation sets (of painted targets: from their points) are
-    # known
+    # written) and rule shard_plan a dataset's earlier plan; here, where the annotation sets
+    # (of painted targets: from their points) and the ladder's rungs are known
     check_splits_of_written_tiles(
         config["targets"],
         {t: annotation_sets_of(t) for t in config["targets"]},
+        source=CONFIG_FILE,
+    )
+    check_prediction_block(
+        config["predict"]["block"],
+        {t: config["targets"][t] for t in BASE_TARGETS},
+        {t: _rungs(t) for t in BASE_TARGETS},
         source=CONFIG_FILE,
     )
 except TesseraInputError as error:

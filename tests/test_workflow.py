@@ -671,6 +671,23 @@ def test_a_split_without_held_out_tiles_stops_before_the_earlier_split_is_cleare
     assert _files_below(tmp_path) == before
 
 
+def test_a_prediction_block_below_the_halo_stops_before_the_earlier_plan_is_cleared(
+    tmp_path, repo=REPO_ROOT
+):
+    config = tiny_config()
+    config["predict"] = {"block": [4, 16, 16]}
+    plan = "results/w1/predicted/nuclei/plan.json"
+    before = _tiny_study_with(tmp_path, config, {plan: b'{"made": "by a run before"}'})
+    result = snakemake(
+        "--cores", "1", "--snakefile", str(repo / "Snakefile"), plan, cwd=tmp_path, check=False
+    )
+    assert result.returncode != 0
+    told = result.stderr
+    assert "invalid input: config/config.yaml: predict.block [4, 16, 16] is smaller in y" in told
+    assert "; the halo of target nuclei, from its cascade settings and output_smoothing_px" in told
+    assert _files_below(tmp_path) == before
+
+
 def test_stage_code_version_follows_the_import_graph():
     from tessera.workflow.code_identity import module_closure
 
