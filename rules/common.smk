@@ -15,7 +15,9 @@ from tessera.workflow.config import (
     check_annotated_datasets,
     check_annotation_files,
     check_config_paths,
+    check_prediction_block,
     check_reference_condition,
+    check_splits_of_written_tiles,
     check_tiles_fit_checked_stacks,
     expand_variants,
     load_config,
@@ -201,13 +203,16 @@ def _points_by_target():
 POINTS = _points_by_target()
 
 
-def annotated_ids(wildcards):
+def annotated_ids_of(target):
     """The datasets that give a target's tiles (and so its training and scoring images)."""
-    target = wildcards.target
     if _painted(target):
         return POINTS[target]
-    annotated = target_settings(wildcards)["annotated_datasets"]
+    annotated = config["targets"][target]["annotated_datasets"]
     return [d for d in DATASETS.index if annotated is None or d in annotated]
+
+
+def annotated_ids(wildcards):
+    return annotated_ids_of(wildcards.target)
 
 
 def annotated_pyramids(wildcards):
@@ -248,13 +253,17 @@ def target_guard_sections(wildcards):
     return target_settings(wildcards)["split"]["guard_sections"]
 
 
-def annotation_sets(wildcards):
-    target = wildcards.target
+def annotation_sets_of(target):
+    """The annotation sets (one per dataset) rule split_tiles merges for a target."""
     if _painted(target):
         # a variant of a painted target reuses the base target's painted tiles
         base = VARIANT_BASE[target]
         return [f"results/{d}/tiles_painted/{base}" for d in POINTS[target]]
-    return [f"results/{d}/tiles/{target}" for d in annotated_ids(wildcards)]
+    return [f"results/{d}/tiles/{target}" for d in annotated_ids_of(target)]
+
+
+def annotation_sets(wildcards):
+    return annotation_sets_of(wildcards.target)
 
 
 def target_points(wildcards):
@@ -324,6 +333,25 @@ except TesseraInputError as error:
     raise WorkflowError(
         f"invalid input: config/config.yaml: key targets.{_target}.cascade: {error}"
     ) from None
+
+
+try:
+    # before rule split_tiles could clear a target's earlier split (once its tiles are
+    # written) and rule shard_plan a dataset's earlier plan; here, where the annotation sets
+    # (of painted targets: from their points) and the ladder's rungs are known
+    check_splits_of_written_tiles(
+        config["targets"],
+        {t: annotation_sets_of(t) for t in config["targets"]},
+        source=CONFIG_FILE,
+    )
+    check_prediction_block(
+        config["predict"]["block"],
+        {t: config["targets"][t] for t in BASE_TARGETS},
+        {t: _rungs(t) for t in BASE_TARGETS},
+        source=CONFIG_FILE,
+    )
+except TesseraInputError as error:
+    raise WorkflowError(f"invalid input: {error}") from None
 
 
 # Targets of the study proper whose cascade size a ladder chooses.

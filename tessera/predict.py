@@ -97,11 +97,9 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
             f"the model's receptive field needs a halo of {halo} px, more than predict.max_halo = {max_halo}; "
             "use fewer levels, smaller sigmas or stencil radii, or raise predict.max_halo"
         )
-    if min(block[1:]) < halo:
-        raise TesseraInputError(
-            f"predict.block {block} is smaller in y or x than the model's halo of {halo} px: every block would "
-            f"read more halo than core; use blocks of at least {halo} px (a few times more is efficient)"
-        )
+    problem = block_halo_problem(block, halo)
+    if problem:
+        raise TesseraInputError(problem)
     ny, nx = (_axis_step(n, -(-b // align) * align, align) for n, b in zip(shape[1:], block[1:]))
     in_plane = -(-shape[1] // ny) * -(-shape[2] // nx)
     z_count = max(-(-shape[0] // block[0]), min(shape[0], -(-jobs // in_plane)))
@@ -130,6 +128,40 @@ def plan_shards(shape, *, block, halo, align, jobs, max_halo=None):
         "blocks": blocks,
         "jobs": shares,
     }
+
+
+def block_halo_problem(block, halo):
+    """Why blocks of `block` cannot be read with `halo`: smaller in y or x than it, or None.
+
+    Such a block would read more halo than core. Refused by :func:`plan_shards`, and by the
+    workflow when it loads, for the halo a target's cascade settings give (:func:`shard_halo`).
+
+    Parameters
+    ----------
+    block : sequence of int
+        ``predict.block``, z y x.
+    halo : int
+        In-plane halo, pixels of the working level.
+
+    Returns
+    -------
+    str or None
+
+    Examples
+    --------
+    >>> block_halo_problem([1, 64, 48], 40) is None
+    True
+    >>> block_halo_problem([1, 64, 32], 40)
+    "predict.block [1, 64, 32] is smaller in y or x than the model's halo of 40 px: every block would read more halo than core; use blocks of at least 40 px (a few times more is efficient)"
+    """
+    block = [int(b) for b in block]
+    if min(block[1:]) >= halo:
+        return None
+    return (
+        f"predict.block {block} is smaller in y or x than the model's halo of {halo} px: every "
+        f"block would read more halo than core; use blocks of at least {halo} px (a few times "
+        "more is efficient)"
+    )
 
 
 def _balanced_z_step(depth, slabs, in_plane, jobs):

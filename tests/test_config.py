@@ -4,6 +4,8 @@ import copy
 import os
 import re
 
+import numpy as np
+import pandas as pd
 import pytest
 import yaml
 
@@ -13,6 +15,8 @@ from tessera.workflow.config import (
     check_annotation_files,
     check_config_file,
     check_config_paths,
+    check_prediction_block,
+    check_splits_of_written_tiles,
     check_tiles_fit_checked_stacks,
     config_paths,
     load_config,
@@ -21,6 +25,7 @@ from tessera.workflow.config import (
     sheet_spacing,
 )
 from tessera.workflow.files.stack_check import write_stack_check
+from tessera.workflow.files.tile_registry import write_annotation_set
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 
@@ -951,6 +956,114 @@ def test_tiles_larger_than_checked_sections_are_refused_at_load(tmp_path):
     check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)
     painted = {"tiles": {"size": 999}, "downsample": 1, "annotations": {"painted": {}}}
     check_tiles_fit_checked_stacks({"p": painted}, ["a1"], results=tmp_path)
+
+
+def _written_tiles(folder, dataset, sections):
+    """An annotation set as rule sample_tiles writes it: one invented 4 x 4 tile per section."""
+    registry = pd.DataFrame(
+        {
+            "tile_id": [f"{dataset}-mito-s{z:03d}" for z in sections],
+            "dataset": dataset,
+            "target": "mito",
+            "level": 1,
+            "z": list(sections),
+            "y0": 0,
+            "x0": 0,
+            "height": 4,
+            "width": 4,
+            "source": "labels",
+        }
+    )
+    labels = {t: np.eye(4, dtype=np.uint8) for t in registry["tile_id"]}
+    write_annotation_set(folder, registry, labels)
+
+
+def test_a_split_leaving_a_role_without_tiles_is_refused_at_load(tmp_path):
+    # rule split_tiles refuses such a split too, but only after Snakemake has cleared the
+    # target's earlier split; once every dataset's tiles are written the split is known when
+    # the config loads. Worked by hand: each dataset's tiles lie on sections 0-3, at most 3
+    # apart, so with held-out tiles 10 sections from training none can be held out.
+    sets = [str(tmp_path / d / "tiles" / "mito") for d in ("a1", "a2")]
+    split = {"fractions": [0.6, 0.2, 0.2], "guard_sections": 10, "seed": 0}
+    targets = {"mito": {"split": split}}
+    _written_tiles(sets[0], "a1", range(4))
+    # a2's tiles are not written yet, and could bring the sections a role lacks
+    check_splits_of_written_tiles(targets, {"mito": sets})
+    _written_tiles(sets[1], "a2", range(4))
+    with pytest.raises(TesseraInputError) as info:
+        check_splits_of_written_tiles(targets, {"mito": sets})
+    assert str(info.value) == (
+        "config/config.yaml: key targets.mito.split: the split leaves no validation and no test "
+        "tiles (8 tiles on 8 sections; held-out tiles lie at least split.guard_sections = 10 "
+        "sections from training); annotate tiles on more sections, lower split.guard_sections, "
+        f"or change split.fractions (the tiles already written in {sets[0]} and 1 more "
+        "annotation set)"
+    )
+    # Worked by hand with guard 1: 2.4 of 4 tiles wanted for training; sections 0-1 (or 3-2)
+    # train, the next section is 1 away, and the two held out give one each to validation and
+    # test, in every dataset
+    split["guard_sections"] = 1
+    check_splits_of_written_tiles(targets, {"mito": sets})
+    # a registry that cannot be read is left to the rule that writes it again
+    split["guard_sections"] = 10
+    (tmp_path / "a2" / "tiles" / "mito" / "tiles.tsv").write_text("not a registry\n")
+    check_splits_of_written_tiles(targets, {"mito": sets})
+
+
+# Halos worked by hand from the documented reaches (tessera.cascade.features._scale_reach,
+# tessera.cascade.geometry.receptive_radius): at sigma s a Gaussian reaches int(4 s + 0.5) px,
+# the structure tensor smooths again at s, finite differences add 4 (so 2 int(4 s + 0.5) + 4),
+# the feature halo 1 more and the level grid 1 spare. One stage without levels at sigma 1:
+# 2 * 4 + 4 + 2 = 14 px; the output smoothed at sigma 2 reaches int(8.5) = 8 px more: 22 px.
+def test_a_prediction_block_smaller_than_the_halo_is_refused_at_load():
+    # rule shard_plan refuses such a block too, but only after Snakemake has cleared the
+    # dataset's earlier plan; the halo follows from the cascade settings alone
+    mito = {
+        "cascade": {"stages": 1, "levels": 0, "sigmas": [1.0], "dims": 2},
+        "output_smoothing_px": 2.0,
+    }
+    check_prediction_block([4, 22, 22], {"mito": mito}, {"mito": [(1, 0)]})
+    with pytest.raises(TesseraInputError) as info:
+        check_prediction_block([4, 21, 64], {"mito": mito}, {"mito": [(1, 0)]})
+    assert str(info.value) == (
+        "config/config.yaml: predict.block [4, 21, 64] is smaller in y or x than the model's "
+        "halo of 22 px: every block would read more halo than core; use blocks of at least 22 "
+        "px (a few times more is efficient); the halo of target mito, from its cascade "
+        "settings and output_smoothing_px"
+    )
+
+
+def test_a_block_below_every_halo_a_cascade_may_get_is_refused_at_load():
+    # A ladder of 1 and 2 stages: stage 2 reads stage 1's map up to stencil radius 8 (+ 1 px
+    # of level grid), 9 px beyond the 14 of the image features: 23 px. The smallest halo, 14,
+    # is held against the block, whichever rung is chosen.
+    ladder = {
+        "cascade": {"stages": 1, "levels": 0, "sigmas": [1.0], "dims": 2, "mode": "ladder"},
+        "output_smoothing_px": 0.0,
+    }
+    rungs = {"mito": [(1, 0), (2, 0)]}
+    check_prediction_block([4, 14, 14], {"mito": ladder}, rungs)
+    with pytest.raises(TesseraInputError) as info:
+        check_prediction_block([4, 13, 64], {"mito": ladder}, rungs)
+    assert str(info.value) == (
+        "config/config.yaml: predict.block [4, 13, 64] is smaller in y or x than the model's "
+        "halo of 14 px: every block would read more halo than core; use blocks of at least 14 "
+        "px (a few times more is efficient); the halo of target mito, the smallest its cascade "
+        "settings allow (its ladder's rungs or dims auto may need more)"
+    )
+    # dims auto with sigmas unset: the 2D scales end at 7 (2 * 28 + 4 + 2 = 62 px), the 3D at
+    # 10 (2 * 40 + 4 + 2 = 86 px)
+    auto = {
+        "cascade": {"stages": 1, "levels": 0, "sigmas": None, "dims": "auto"},
+        "output_smoothing_px": 0.0,
+    }
+    check_prediction_block([4, 62, 62], {"mito": auto}, {"mito": [(1, 0)]})
+    with pytest.raises(TesseraInputError, match=r"halo of 62 px: .* the smallest its cascade"):
+        check_prediction_block([4, 61, 61], {"mito": auto}, {"mito": [(1, 0)]})
+    # beside neighbours dims auto can only be 2: the halo is known
+    auto["cascade"]["neighbours"] = 1
+    with pytest.raises(TesseraInputError, match=r"halo of 62 px: .*from its cascade settings"):
+        check_prediction_block([4, 61, 61], {"mito": auto}, {"mito": [(1, 0)]})
 
 
 def test_annotated_datasets_missing_from_the_sheet_are_refused_at_load():

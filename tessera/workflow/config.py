@@ -15,10 +15,15 @@ import jsonschema
 import pandas as pd
 import yaml
 
+from tessera.cascade.api import spec_from_settings
 from tessera.errors import TesseraInputError
+from tessera.ladder import split_cascade_settings
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
+from tessera.predict import block_halo_problem, shard_halo
 from tessera.tiles.sampling import level_shape
+from tessera.tiles.split import empty_roles_problem, split_tiles
 from tessera.workflow.files.stack_check import read_stack_check
+from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -384,6 +389,135 @@ def check_tiles_fit_checked_stacks(
                     f"{check}); expected at most {min(sides)}",
                     source=source,
                 )
+
+
+def check_splits_of_written_tiles(targets, annotation_sets, *, source="config/config.yaml"):
+    """Refuse split settings that leave training, validation or test without tiles.
+
+    Rule split_tiles merges a target's annotation sets (one per dataset, each with its
+    registry ``tiles.tsv``) and splits them with the target's ``split`` settings; a split
+    without tiles of one role is refused there too, but only after Snakemake has cleared the
+    target's earlier split. Once every set of a target is written, the same split is made here,
+    when the workflow loads. A target with a set not yet written, or not readable, is left to
+    that rule: a set still to come may bring the sections a role lacks. The sets are judged as
+    they stand, before any rule samples them again.
+
+    Parameters
+    ----------
+    targets : dict
+        The config's ``targets`` (variants included), each with its ``split`` settings.
+    annotation_sets : dict of str to list
+        Target → the annotation set folders rule split_tiles merges for it.
+    source : str, optional
+        The config file, named in the error.
+
+    Examples
+    --------
+    >>> split = {"fractions": [0.6, 0.2, 0.2], "guard_sections": 2, "seed": 0}
+    >>> check_splits_of_written_tiles({"m": {"split": split}}, {"m": ["/nonexistent/a1/tiles/m"]})
+    """
+    for name, folders in annotation_sets.items():
+        registries = _written_registries(folders)
+        if registries is None:
+            continue
+        settings = targets[name]["split"]
+        try:
+            split = split_tiles(
+                pd.concat(registries, ignore_index=True),
+                fractions=tuple(settings["fractions"]),
+                guard_sections=settings["guard_sections"],
+                seed=settings["seed"],
+            )
+        except TesseraInputError:
+            continue  # sets that cannot be merged (one tile id twice): the rule names them
+        problem = empty_roles_problem(split, guard_sections=settings["guard_sections"])
+        if problem:
+            others = len(folders) - 1
+            also = f" and {others} more annotation set{'s' * (others > 1)}" if others else ""
+            raise TesseraInputError(
+                f"key targets.{name}.split: {problem} (the tiles already written in "
+                f"{folders[0]}{also})",
+                source=source,
+            )
+
+
+def _written_registries(folders):
+    """The registry of every annotation set in `folders`; None if one is missing or unreadable."""
+    registries = []
+    for folder in folders:
+        path = Path(folder) / REGISTRY_FILE
+        if not path.is_file():
+            return None
+        try:
+            registries.append(read_registry(path))
+        except (TesseraInputError, OSError, ValueError):
+            return None  # a damaged registry: the rule that wrote it writes it again
+    return registries or None
+
+
+def check_prediction_block(block, targets, rungs, *, source="config/config.yaml"):
+    """Refuse a ``predict.block`` smaller in y or x than the halo of a target's cascade.
+
+    The halo a shard plan reads its blocks with (:func:`tessera.predict.shard_halo`) follows
+    from the cascade's settings and ``output_smoothing_px`` alone. Rule shard_plan refuses such
+    a block too, from the trained models, but only after Snakemake has cleared the earlier
+    plan; here it is refused when the workflow loads. Where the settings leave the cascade open
+    (a ladder's rungs; ``dims: auto`` with ``sigmas`` unset, whose default scales follow the
+    dims), the smallest halo they allow is held against the block, so a refusal here holds
+    whichever cascade is chosen.
+
+    Parameters
+    ----------
+    block : sequence of int
+        ``predict.block``, z y x.
+    targets : dict
+        Target → its settings (``cascade``, ``output_smoothing_px``), for the targets whose
+        volumes are predicted whole.
+    rungs : dict
+        Target → the (stages, levels) of every cascade it may predict with.
+    source : str, optional
+        The config file, named in the error.
+
+    Examples
+    --------
+    >>> mito = {"cascade": {"stages": 1, "levels": 0, "sigmas": [1.0], "dims": 2},
+    ...         "output_smoothing_px": 0.0}
+    >>> check_prediction_block([8, 14, 14], {"mito": mito}, {"mito": [(1, 0)]})
+    >>> check_prediction_block([8, 13, 64], {"mito": mito}, {"mito": [(1, 0)]})
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: predict.block [8, 13, 64] is smaller in y or x than the model's halo of 14 px: every block would read more halo than core; use blocks of at least 14 px (a few times more is efficient); the halo of target mito, from its cascade settings and output_smoothing_px
+    """
+    for name, target in targets.items():
+        halos = _possible_halos(target, rungs[name])
+        problem = halos and block_halo_problem(block, min(halos))
+        if problem:
+            whence = (
+                "from its cascade settings and output_smoothing_px"
+                if len(set(halos)) == 1
+                else "the smallest its cascade settings allow (its ladder's rungs or dims "
+                "auto may need more)"
+            )
+            raise TesseraInputError(
+                f"{problem}; the halo of target {name}, {whence}", source=source
+            )
+
+
+def _possible_halos(target, rungs):
+    """The shard halo of every cascade a target's settings allow, over `rungs` and, for
+    ``dims: auto``, both dims (a dims the other settings exclude is left out)."""
+    cascade = split_cascade_settings(target["cascade"])[0]
+    fixed = {k: v for k, v in cascade.items() if v is not None and v != "auto"}
+    dims = [{}] if "dims" in fixed else [{"dims": 2}, {"dims": 3}]
+    halos = []
+    for stages, levels in rungs:
+        for chosen in dims:
+            try:
+                spec = spec_from_settings({**fixed, **chosen, "levels": levels}, stages=stages)
+            except TesseraInputError:
+                continue  # dims 3 beside neighbours: not a cascade dims auto chooses
+            halos.append(shard_halo(spec, output_sigma=target["output_smoothing_px"]))
+    return halos
 
 
 def check_annotated_datasets(targets, dataset_ids, *, source="config/config.yaml"):
