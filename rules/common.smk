@@ -17,7 +17,6 @@ from tessera.workflow.config import (
     check_config_paths,
     check_prediction_block,
     check_reference_condition,
-    check_splits_of_written_tiles,
     check_tiles_fit_checked_stacks,
     expand_variants,
     load_config,
@@ -336,14 +335,8 @@ except TesseraInputError as error:
 
 
 try:
-    # before rule split_tiles could clear a target's earlier split (once its tiles are
-    # written) and rule shard_plan a dataset's earlier plan; here, where the annotation sets
-    # (of painted targets: from their points) and the ladder's rungs are known
-    check_splits_of_written_tiles(
-        config["targets"],
-        {t: annotation_sets_of(t) for t in config["targets"]},
-        source=CONFIG_FILE,
-    )
+    # before rule shard_plan could clear a dataset's earlier plan; here, where the
+    # ladder's rungs are known
     check_prediction_block(
         config["predict"]["block"],
         {t: config["targets"][t] for t in BASE_TARGETS},

@@ -4,8 +4,6 @@ import copy
 import os
 import re
 
-import numpy as np
-import pandas as pd
 import pytest
 import yaml
 
@@ -16,7 +14,6 @@ from tessera.workflow.config import (
     check_config_file,
     check_config_paths,
     check_prediction_block,
-    check_splits_of_written_tiles,
     check_tiles_fit_checked_stacks,
     config_paths,
     load_config,
@@ -25,7 +22,6 @@ from tessera.workflow.config import (
     sheet_spacing,
 )
 from tessera.workflow.files.stack_check import write_stack_check
-from tessera.workflow.files.tile_registry import write_annotation_set
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 
@@ -956,58 +952,6 @@ def test_tiles_larger_than_checked_sections_are_refused_at_load(tmp_path):
     check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)
     painted = {"tiles": {"size": 999}, "downsample": 1, "annotations": {"painted": {}}}
     check_tiles_fit_checked_stacks({"p": painted}, ["a1"], results=tmp_path)
-
-
-def _written_tiles(folder, dataset, sections):
-    """An annotation set as rule sample_tiles writes it: one invented 4 x 4 tile per section."""
-    registry = pd.DataFrame(
-        {
-            "tile_id": [f"{dataset}-mito-s{z:03d}" for z in sections],
-            "dataset": dataset,
-            "target": "mito",
-            "level": 1,
-            "z": list(sections),
-            "y0": 0,
-            "x0": 0,
-            "height": 4,
-            "width": 4,
-            "source": "labels",
-        }
-    )
-    labels = {t: np.eye(4, dtype=np.uint8) for t in registry["tile_id"]}
-    write_annotation_set(folder, registry, labels)
-
-
-def test_a_split_leaving_a_role_without_tiles_is_refused_at_load(tmp_path):
-    # rule split_tiles refuses such a split too, but only after Snakemake has cleared the
-    # target's earlier split; once every dataset's tiles are written the split is known when
-    # the config loads. Worked by hand: each dataset's tiles lie on sections 0-3, at most 3
-    # apart, so with held-out tiles 10 sections from training none can be held out.
-    sets = [str(tmp_path / d / "tiles" / "mito") for d in ("a1", "a2")]
-    split = {"fractions": [0.6, 0.2, 0.2], "guard_sections": 10, "seed": 0}
-    targets = {"mito": {"split": split}}
-    _written_tiles(sets[0], "a1", range(4))
-    # a2's tiles are not written yet, and could bring the sections a role lacks
-    check_splits_of_written_tiles(targets, {"mito": sets})
-    _written_tiles(sets[1], "a2", range(4))
-    with pytest.raises(TesseraInputError) as info:
-        check_splits_of_written_tiles(targets, {"mito": sets})
-    assert str(info.value) == (
-        "config/config.yaml: key targets.mito.split: the split leaves no validation and no test "
-        "tiles (8 tiles on 8 sections; held-out tiles lie at least split.guard_sections = 10 "
-        "sections from training); annotate tiles on more sections, lower split.guard_sections, "
-        f"or change split.fractions (the tiles already written in {sets[0]} and 1 more "
-        "annotation set)"
-    )
-    # Worked by hand with guard 1: 2.4 of 4 tiles wanted for training; sections 0-1 (or 3-2)
-    # train, the next section is 1 away, and the two held out give one each to validation and
-    # test, in every dataset
-    split["guard_sections"] = 1
-    check_splits_of_written_tiles(targets, {"mito": sets})
-    # a registry that cannot be read is left to the rule that writes it again
-    split["guard_sections"] = 10
-    (tmp_path / "a2" / "tiles" / "mito" / "tiles.tsv").write_text("not a registry\n")
-    check_splits_of_written_tiles(targets, {"mito": sets})
 
 
 # Halos worked by hand from the documented reaches (tessera.cascade.features._scale_reach,

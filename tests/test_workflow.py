@@ -16,8 +16,6 @@ import pytest
 import yaml
 
 from tessera.io.omezarr import open_image
-from tessera.tiles.split import split_tiles
-from tessera.workflow.files.tile_registry import write_annotation_set
 
 pytestmark = pytest.mark.workflow
 
@@ -614,61 +612,6 @@ def _files_below(folder):
         for p in folder.rglob("*")
         if p.is_file() and ".snakemake" not in p.parts
     }
-
-
-def _written_nuclei_tiles(results):
-    """The tiles rules sample_tiles and split_tiles of a run before left, invented: five 4 x 4
-    tiles per dataset, on sections 0-4 of the working level."""
-    registries, labels = [], {}
-    for dataset in ("w1", "c1"):
-        registry = pd.DataFrame(
-            {
-                "tile_id": [f"{dataset}-nuclei-s{z:03d}" for z in range(5)],
-                "dataset": dataset,
-                "target": "nuclei",
-                "level": 1,
-                "z": range(5),
-                "y0": 0,
-                "x0": 0,
-                "height": 4,
-                "width": 4,
-                "source": "labels",
-            }
-        )
-        tile_labels = {t: np.eye(4, dtype=np.uint8) for t in registry["tile_id"]}
-        write_annotation_set(results / dataset / "tiles" / "nuclei", registry, tile_labels)
-        registries.append(registry)
-        labels.update(tile_labels)
-    split = split_tiles(pd.concat(registries, ignore_index=True), guard_sections=1)
-    write_annotation_set(results / "study" / "nuclei" / "tiles", split, labels)
-
-
-def test_a_split_without_held_out_tiles_stops_before_the_earlier_split_is_cleared(
-    tmp_path, repo=REPO_ROOT
-):
-    # Snakemake removes a job's outputs when the job starts; a guard distance no two written
-    # tiles lie apart (sections 0-4, 50 apart) is refused when the workflow loads, and the
-    # split of the run before stays, as does everything else.
-    config = tiny_config()
-    config["targets"]["nuclei"]["split"]["guard_sections"] = 50
-    _written_nuclei_tiles(tmp_path / "results")
-    before = _tiny_study_with(tmp_path, config, {})
-    result = snakemake(
-        "--cores",
-        "1",
-        "--snakefile",
-        str(repo / "Snakefile"),
-        "results/study/nuclei/tiles",
-        cwd=tmp_path,
-        check=False,
-    )
-    assert result.returncode != 0
-    assert (
-        "invalid input: config/config.yaml: key targets.nuclei.split: the split leaves no "
-        "validation and no test tiles (10 tiles on 10 sections; held-out tiles lie at least "
-        "split.guard_sections = 50 sections from training)"
-    ) in result.stderr
-    assert _files_below(tmp_path) == before
 
 
 def test_a_prediction_block_below_the_halo_stops_before_the_earlier_plan_is_cleared(

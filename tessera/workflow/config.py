@@ -21,9 +21,7 @@ from tessera.ladder import split_cascade_settings
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
 from tessera.predict import block_halo_problem, shard_halo
 from tessera.tiles.sampling import level_shape
-from tessera.tiles.split import empty_roles_problem, split_tiles
 from tessera.workflow.files.stack_check import read_stack_check
-from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -389,70 +387,6 @@ def check_tiles_fit_checked_stacks(
                     f"{check}); expected at most {min(sides)}",
                     source=source,
                 )
-
-
-def check_splits_of_written_tiles(targets, annotation_sets, *, source="config/config.yaml"):
-    """Refuse split settings that leave training, validation or test without tiles.
-
-    Rule split_tiles merges a target's annotation sets (one per dataset, each with its
-    registry ``tiles.tsv``) and splits them with the target's ``split`` settings; a split
-    without tiles of one role is refused there too, but only after Snakemake has cleared the
-    target's earlier split. Once every set of a target is written, the same split is made here,
-    when the workflow loads. A target with a set not yet written, or not readable, is left to
-    that rule: a set still to come may bring the sections a role lacks. The sets are judged as
-    they stand, before any rule samples them again.
-
-    Parameters
-    ----------
-    targets : dict
-        The config's ``targets`` (variants included), each with its ``split`` settings.
-    annotation_sets : dict of str to list
-        Target → the annotation set folders rule split_tiles merges for it.
-    source : str, optional
-        The config file, named in the error.
-
-    Examples
-    --------
-    >>> split = {"fractions": [0.6, 0.2, 0.2], "guard_sections": 2, "seed": 0}
-    >>> check_splits_of_written_tiles({"m": {"split": split}}, {"m": ["/nonexistent/a1/tiles/m"]})
-    """
-    for name, folders in annotation_sets.items():
-        registries = _written_registries(folders)
-        if registries is None:
-            continue
-        settings = targets[name]["split"]
-        try:
-            split = split_tiles(
-                pd.concat(registries, ignore_index=True),
-                fractions=tuple(settings["fractions"]),
-                guard_sections=settings["guard_sections"],
-                seed=settings["seed"],
-            )
-        except TesseraInputError:
-            continue  # sets that cannot be merged (one tile id twice): the rule names them
-        problem = empty_roles_problem(split, guard_sections=settings["guard_sections"])
-        if problem:
-            others = len(folders) - 1
-            also = f" and {others} more annotation set{'s' * (others > 1)}" if others else ""
-            raise TesseraInputError(
-                f"key targets.{name}.split: {problem} (the tiles already written in "
-                f"{folders[0]}{also})",
-                source=source,
-            )
-
-
-def _written_registries(folders):
-    """The registry of every annotation set in `folders`; None if one is missing or unreadable."""
-    registries = []
-    for folder in folders:
-        path = Path(folder) / REGISTRY_FILE
-        if not path.is_file():
-            return None
-        try:
-            registries.append(read_registry(path))
-        except (TesseraInputError, OSError, ValueError):
-            return None  # a damaged registry: the rule that wrote it writes it again
-    return registries or None
 
 
 def check_prediction_block(block, targets, rungs, *, source="config/config.yaml"):
