@@ -15,15 +15,17 @@ from tessera.workflow.config import (
     check_annotated_datasets,
     check_annotation_files,
     check_config_paths,
-    check_prediction_block,
     check_reference_condition,
-    check_tiles_fit_checked_stacks,
     expand_variants,
     load_config,
     load_datasets,
     sheet_spacing,
 )
 from tessera.errors import TesseraInputError
+from tessera.workflow.load_time_checks import (
+    check_prediction_block,
+    check_tiles_fit_checked_stacks,
+)
 from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.points import read_points

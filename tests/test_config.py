@@ -13,8 +13,6 @@ from tessera.workflow.config import (
     check_annotation_files,
     check_config_file,
     check_config_paths,
-    check_prediction_block,
-    check_tiles_fit_checked_stacks,
     config_paths,
     load_config,
     load_datasets,
@@ -22,6 +20,7 @@ from tessera.workflow.config import (
     sheet_spacing,
 )
 from tessera.workflow.files.stack_check import write_stack_check
+from tessera.workflow.load_time_checks import check_prediction_block, check_tiles_fit_checked_stacks
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
 
