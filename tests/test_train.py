@@ -1,5 +1,7 @@
 """Training-stage helpers: folds, and held-out scoring against scikit-learn's metrics."""
 
+import logging
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -204,3 +206,20 @@ def test_tiles_read_on_use_train_the_same_node_and_are_released():
             np.testing.assert_array_equal(u, v)
     assert all(t._frame is None for t in lazy)  # released after their rows were taken
     assert all(t._frame is not None for t in eager)  # tiles given whole are kept
+
+
+def test_mixed_near_isotropic_and_thick_sections_are_named_in_the_log(caplog):
+    # dims auto computes 3D only when every stack is near-isotropic (z spacing at most twice
+    # the in-plane spacing, the README's rule); one stack of 20 nm sections among 5 nm
+    # FIB-SEM-like ones turns the whole target to 2D, and the job's log names that stack
+    from tessera.workflow.jobs.train import _warn_mixed_isotropy
+
+    with caplog.at_level(logging.WARNING):
+        _warn_mixed_isotropy({"fib1": 1.0, "fib2": 1.0, "thick": 4.0})
+    assert len(caplog.records) == 1
+    assert "dataset(s) thick have z spacing 4 times" in caplog.records[0].getMessage()
+    caplog.clear()
+    with caplog.at_level(logging.WARNING):
+        _warn_mixed_isotropy({"fib1": 1.0, "fib2": 1.6})  # all near-isotropic: 3D, no warning
+        _warn_mixed_isotropy({"ss1": 5.0, "ss2": 4.0})  # all thick sections: 2D, as expected
+    assert caplog.records == []

@@ -17,6 +17,7 @@ from tessera.cascade.api import (
     z_halo,
 )
 from tessera.errors import TesseraInputError
+from tessera.spacing import near_isotropic
 from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
@@ -32,6 +33,21 @@ from tessera.workflow.files.tile_registry import read_annotation_set
 from tessera.workflow.resources import keep_freed_memory
 
 _log = logging.getLogger(__name__)
+
+
+def _warn_mixed_isotropy(aspects):
+    """Log which datasets keep dims auto in 2D when only some stacks are near-isotropic."""
+    flat = sorted(d for d, a in aspects.items() if not near_isotropic((a, 1.0, 1.0)))
+    if flat and len(flat) < len(aspects):
+        # not refused (a study may mix modalities), but one mistyped voxel_z_nm would do it
+        _log.warning(
+            "dims auto: dataset(s) %s have z spacing %s times the in-plane spacing, so every "
+            "dataset of this target, the near-isotropic ones too, is computed section by "
+            "section (2D); check voxel_z_nm in the sheet, or give the near-isotropic stacks a "
+            "target of their own",
+            ", ".join(flat),
+            ", ".join(f"{aspects[d]:.3g}" for d in flat),
+        )
 
 
 def train_node_job(
@@ -88,6 +104,7 @@ def train_node_job(
         aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=1)
         chosen = 0 if neighbours == "auto" else neighbours
         cascade["dims"] = automatic_dims(aspects.values(), neighbours=chosen)
+        _warn_mixed_isotropy(aspects)
     if neighbours == "auto":
         cascade["neighbours"] = automatic_neighbours(cascade.get("dims", 2))
     if cascade.get("voxel_aspect") is None:
