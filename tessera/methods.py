@@ -9,7 +9,7 @@ paragraph cannot drift from the analysis it describes.
 import math
 
 from tessera import __version__
-from tessera.cascade.across_sections import AUTO_SECTION_RULE
+from tessera.cascade.across_sections import AUTO_SECTION_RULE, section_sigma
 from tessera.cascade.features import default_sigmas
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 
@@ -121,6 +121,10 @@ def _smoothing_text(settings):
     """The sentence on the final map's smoothing, in plane and across sections."""
     in_plane = settings.get("output_smoothing_px", 0.0)
     across = settings.get("output_smoothing_sections", 0.0)
+    dims = settings.get("cascade", {}).get("dims")
+    if across == "auto" and dims in (2, 3):
+        # the rule applied to the cascade as trained: say what it gave
+        across = section_sigma("auto", dims=dims)
     if across == "auto":
         across_text = f"across sections {AUTO_SECTION_RULE}"
     elif across:

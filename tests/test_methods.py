@@ -111,6 +111,9 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None):
                 "cascade": cascade,
                 "tiles": {"size": 96},
                 "split": {"guard_sections": 2},
+                # the schema's defaults
+                "output_smoothing_px": 2.0,
+                "output_smoothing_sections": "auto",
             }
         },
     }
@@ -181,6 +184,9 @@ def test_methods_state_the_features_the_trained_model_used(tmp_path):
     assert "a 3D Gaussian-derivative filter bank, round in nm (σ = 0.7, 1.6, 3.5, 5, 10 px;" in text
     # a 3D model reads no neighbouring sections as channels, whatever neighbours auto says
     assert "intensity of the section above" not in text
+    # output_smoothing_sections auto, as applied to a 3D model: none (not the rule for both)
+    assert "no smoothing across sections." in text
+    assert "for a cascade working section by section" not in text
 
 
 def test_methods_state_the_sections_a_2d_model_read(tmp_path):
@@ -192,6 +198,8 @@ def test_methods_state_the_sections_a_2d_model_read(tmp_path):
         first_nodes={"mitochondria": _first_node(tmp_path, spec, 2)},
     )
     assert "coarser levels, plus the intensity of the section above and below)" in text
+    # output_smoothing_sections auto, as applied to a 2D model
+    assert "across sections a Gaussian of σ 0.6 sections." in text
 
 
 def test_audit_manifest_and_ro_crate(tmp_path):
