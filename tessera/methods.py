@@ -222,8 +222,8 @@ def _result_phrase(row):
     >>> _result_phrase(row)
     'volume_um3 cold vs warm: ratio 1.24 (95% CI 1.1–1.4; 3 vs 3 animals)'
     >>> _result_phrase({**row, "ci_low": float("nan"), "ci_high": float("nan"), "animals": 1,
-    ...     "warning": "no interval: only 1 animal in 'cold'; use at least 3 animals per condition"})
-    "volume_um3 cold vs warm: ratio 1.24 (1 vs 3 animals; no interval: only 1 animal in 'cold')"
+    ...     "warning": "no interval: only 1 animal measured in 'cold'; use at least 3 animals per condition"})
+    "volume_um3 cold vs warm: ratio 1.24 (1 vs 3 animals; no interval: only 1 animal measured in 'cold')"
     >>> _result_phrase({**row, "effect": float("nan"), "animals": 0, "warning": ""})
     'volume_um3 cold vs warm: not compared (0 vs 3 animals with a value)'
     """

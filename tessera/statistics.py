@@ -225,7 +225,7 @@ def _comparison_warning(counts, ci_low, ci_high):
     >>> _comparison_warning({"cold": 0, "warm": 3}, math.nan, math.nan)
     "no comparison: no animal in 'cold' has a whole object to measure"
     >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan, math.nan)
-    "no interval: only 1 animal in 'cold', and an interval needs 2 per condition; use at least 3 animals per condition"
+    "no interval: only 1 animal measured in 'cold', and an interval needs 2 per condition; use at least 3 animals per condition"
     >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)
     'interval of zero width: the per-animal values do not vary within either condition'
     """
@@ -237,11 +237,11 @@ def _comparison_warning(counts, ci_low, ci_high):
     groups = " and ".join(repr(c) for c, n in counts.items() if n == fewest)
     advice = f"use at least {MIN_ANIMALS} animals per condition"
     if fewest < 2:
-        return f"no interval: only 1 animal in {groups}, and an interval needs 2 per condition; {advice}"
+        return f"no interval: only 1 animal measured in {groups}, and an interval needs 2 per condition; {advice}"
     if ci_low == ci_high:
         return "interval of zero width: the per-animal values do not vary within either condition"
     if fewest < MIN_ANIMALS:
-        return f"interval unreliable: only {fewest} animals in {groups}; {advice}"
+        return f"interval unreliable: only {fewest} animals measured in {groups}; {advice}"
     return ""
 
 

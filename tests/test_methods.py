@@ -407,7 +407,7 @@ def test_methods_without_whole_objects_and_one_animal_per_condition_say_why_in_w
     )
     assert (
         "region_objects cold vs warm: difference 1 (1 vs 1 animals; no interval: only 1 animal "
-        "in 'cold' and 'warm', and an interval needs 2 per condition)" in text
+        "measured in 'cold' and 'warm', and an interval needs 2 per condition)" in text
     )
 
 
@@ -429,7 +429,7 @@ def test_methods_name_the_reference_for_three_conditions(tmp_path):
         "(set in the config)" in text
     )
     assert "volume_um3 cold vs warm: ratio" in text and "volume_um3 hot vs warm: ratio" in text
-    assert "interval unreliable: only 2 animals in 'cold'" in text
+    assert "interval unreliable: only 2 animals measured in 'cold'" in text
 
 
 def test_methods_count_qc_flags_per_reason(tmp_path):

@@ -129,7 +129,7 @@ def test_one_animal_per_condition_warns_instead_of_failing(caplog):
     with caplog.at_level(logging.WARNING):
         row = compare_conditions(animals, measures=["volume_um3"], reference="control").iloc[0]
     assert math.isnan(row["ci_low"]) and row["warning"].startswith(
-        "no interval: only 1 animal in 'treated' and 'control', and an interval needs 2 per condition"
+        "no interval: only 1 animal measured in 'treated' and 'control', and an interval needs 2 per condition"
     )
     assert "use at least 3 animals per condition" in caplog.text
 
@@ -184,7 +184,7 @@ def test_one_animal_per_condition_gives_the_effect_and_says_why_there_is_no_inte
     assert row["effect"] == pytest.approx(1.5)  # ratio of the two animals' values
     assert math.isnan(row["ci_low"]) and math.isnan(row["p_value"])
     assert row["warning"] == (
-        "no interval: only 1 animal in 'cold' and 'warm', and an interval needs 2 per condition; "
+        "no interval: only 1 animal measured in 'cold' and 'warm', and an interval needs 2 per condition; "
         "use at least 3 animals per condition"
     )
     note = describe_conditions(animals, measures=["volume_um3"])["note"]
@@ -208,7 +208,7 @@ def test_three_conditions_each_against_the_stated_reference_in_sheet_order():
         assert row["p_value"] == pytest.approx(ref.pvalue)
         assert (row["ci_low"], row["ci_high"]) == pytest.approx(tuple(ref.confidence_interval()))
     assert table["warning"].tolist() == [
-        "interval unreliable: only 2 animals in 'warm'; use at least 3 animals per condition",
+        "interval unreliable: only 2 animals measured in 'warm'; use at least 3 animals per condition",
         "",
     ]
 

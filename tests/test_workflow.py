@@ -175,7 +175,7 @@ def test_tiny_study_produces_every_output(finished_study):
     assert set(comparison["condition"]) == {"cold"} and set(comparison["reference"]) == {"warm"}
     assert (
         comparison["warning"]
-        .str.contains(r"no comparison: no animal in|no interval: only 1 animal in")
+        .str.contains(r"no comparison: no animal in|no interval: only 1 animal measured in")
         .all()
     )
     assert (finished_study / "results/study/nuclei/statistics/conditions.png").stat().st_size > 0
