@@ -393,6 +393,22 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
     assert str(path) in str(info.value)
 
 
+def test_a_voxel_size_written_in_micrometres_gets_the_nm_value_as_a_hint(tmp_path, schemas):
+    # 5 nm written as 0.005 (µm): 1 µm = 1000 nm, so the hint reads 5 nm
+    path = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t5\t0.005\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}, row 2: key voxel_x_nm: 0.005 is less than the minimum of 0.1; voxel sizes "
+        "are in nm (0.005 µm = 5 nm?)"
+    )
+    # zero is no size in another unit: no hint
+    path = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t5\t5\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value).endswith("key voxel_z_nm: 0.0 is less than the minimum of 0.1")
+
+
 def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas):
     rows = [GOOD, "a2\tctrl\tm1\tstack2.tif\ttiff_stack\t40\t8\t8\t"]
     (tmp_path / "stack2.tif").write_bytes(b"")

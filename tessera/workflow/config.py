@@ -17,6 +17,7 @@ import yaml
 
 from tessera.errors import TesseraInputError
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
+from tessera.spacing import micrometre_hint
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -186,7 +187,16 @@ def _describe(error):
         # spelled as in YAML (true, not True), since that is what the user edits
         allowed = ", ".join(json.dumps(v) for v in error.validator_value)
         return f"key {where}: {json.dumps(error.instance)} is not one of {allowed}"
-    return f"key {where}: {error.message}"
+    return f"key {where}: {error.message}{_unit_hint(error)}"
+
+
+def _unit_hint(error):
+    """'; <hint>' for a sheet voxel size below the minimum that reads as µm, else ''."""
+    path = list(error.absolute_path)
+    if error.validator != "minimum" or not path or path[-1] not in SHEET_NUMBER_COLUMNS:
+        return ""
+    hint = micrometre_hint(error.instance)
+    return f"; {hint}" if hint else ""
 
 
 def validate(instance, schema, *, source):
