@@ -17,6 +17,7 @@ from tessera.workflow.config import (
     check_config_paths,
     check_reference_condition,
     expand_variants,
+    instance_volumes,
     load_config,
     load_datasets,
     sheet_spacing,
@@ -152,9 +153,19 @@ def target_labels(wildcards):
     return pattern.format(dataset=wildcards.dataset)
 
 
+def instance_volumes_of(target, dataset_ids):
+    """Dataset → instance volume, for the datasets that have one; the others are scored
+    against the connected components of their labels (never a missing file as an input).
+    """
+    return instance_volumes(
+        config["targets"][target]["annotations"].get("instances"),
+        dataset_ids,
+        generated_dir=DEMO_DIR if "demo" in config else None,
+    )
+
+
 def target_instances(wildcards):
-    pattern = target_settings(wildcards)["annotations"].get("instances")
-    return [] if pattern is None else [pattern.format(dataset=wildcards.dataset)]
+    return list(instance_volumes_of(wildcards.target, [wildcards.dataset]).values())
 
 
 def target_labels_identity(wildcards):
@@ -240,10 +251,14 @@ def annotated_label_volumes(wildcards):
 
 
 def annotated_instances(wildcards):
-    pattern = target_settings(wildcards)["annotations"].get("instances")
-    if pattern is None:
-        return []
-    return [pattern.format(dataset=d) for d in annotated_ids(wildcards)]
+    return list(
+        instance_volumes_of(wildcards.target, annotated_ids(wildcards)).values()
+    )
+
+
+def annotated_instance_ids(wildcards):
+    """The datasets whose instance volumes annotated_instances lists, in its order."""
+    return list(instance_volumes_of(wildcards.target, annotated_ids(wildcards)))
 
 
 def annotated_qc_tables(wildcards):

@@ -91,6 +91,7 @@ rule evaluate_objects:
         runtime=scaled_by_attempt(30),
     params:
         datasets=annotated_ids,
+        instance_datasets=annotated_instance_ids,
         guard_sections=target_guard_sections,
         code=script_code("evaluate_objects"),
     script:

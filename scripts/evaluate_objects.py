@@ -9,24 +9,23 @@ from tessera.workflow.jobs.evaluate_objects import evaluate_objects_job
 from tessera.workflow.runner import run_job
 
 datasets = list(snakemake.params.datasets)
-instances = list(snakemake.input.instances)  # one per dataset, or none
+# the datasets with an instance volume; the others are scored against their labels' components
+instances = dict(zip(snakemake.params.instance_datasets, snakemake.input.instances, strict=True))
 inputs = {
     dataset: {
         "objects": objects,
         "pyramid": pyramid,
         "labels": labels,
         "qc": qc,
-        **({"instances": instances[k]} if instances else {}),
+        **({"instances": instances[dataset]} if dataset in instances else {}),
     }
-    for k, (dataset, objects, pyramid, labels, qc) in enumerate(
-        zip(
-            datasets,
-            snakemake.input.objects,
-            snakemake.input.images,
-            snakemake.input.labels,
-            snakemake.input.qc,
-            strict=True,
-        )
+    for dataset, objects, pyramid, labels, qc in zip(
+        datasets,
+        snakemake.input.objects,
+        snakemake.input.images,
+        snakemake.input.labels,
+        snakemake.input.qc,
+        strict=True,
     )
 }
 run_job(

@@ -71,6 +71,34 @@ NEAR_ISOTROPIC_ASPECT = 2.0
 VOXEL_NM_RANGE = (0.1, 100000.0)
 
 
+def micrometre_hint(value):
+    """The hint for a voxel size below :data:`VOXEL_NM_RANGE` that reads as µm written for nm.
+
+    Parameters
+    ----------
+    value : float
+        A voxel size as given, meant in nm.
+
+    Returns
+    -------
+    str or None
+        The hint, the value read as µm and converted to nm (× 1000); None for a value that is
+        not positive or not below the range.
+
+    Examples
+    --------
+    >>> micrometre_hint(0.005)
+    'voxel sizes are in nm (0.005 µm = 5 nm?)'
+    >>> micrometre_hint(0.0375)
+    'voxel sizes are in nm (0.0375 µm = 37.5 nm?)'
+    >>> micrometre_hint(8) is None, micrometre_hint(0) is None, micrometre_hint(-0.005) is None
+    (True, True, True)
+    """
+    if not 0 < value < VOXEL_NM_RANGE[0]:
+        return None
+    return f"voxel sizes are in nm ({value:g} µm = {value * 1000:.6g} nm?)"
+
+
 def near_isotropic(spacing):
     """Whether a volume's voxels, `spacing` (z, y, x) as acquired, count as near-isotropic.
 

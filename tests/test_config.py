@@ -14,6 +14,7 @@ from tessera.workflow.config import (
     check_config_file,
     check_config_paths,
     config_paths,
+    instance_volumes,
     load_config,
     load_datasets,
     read_yaml,
@@ -390,6 +391,22 @@ def test_bad_sheet_rows_name_file_row_and_column(tmp_path, schemas, rows, messag
     with pytest.raises(TesseraInputError, match=message) as info:
         load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert str(path) in str(info.value)
+
+
+def test_a_voxel_size_written_in_micrometres_gets_the_nm_value_as_a_hint(tmp_path, schemas):
+    # 5 nm written as 0.005 (µm): 1 µm = 1000 nm, so the hint reads 5 nm
+    path = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t40\t5\t0.005\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}, row 2: key voxel_x_nm: 0.005 is less than the minimum of 0.1; voxel sizes "
+        "are in nm (0.005 µm = 5 nm?)"
+    )
+    # zero is no size in another unit: no hint
+    path = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t0\t5\t5\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value).endswith("key voxel_z_nm: 0.0 is less than the minimum of 0.1")
 
 
 def test_several_datasets_of_one_animal_in_one_condition_load(tmp_path, schemas):
@@ -800,16 +817,45 @@ def test_a_label_volume_missing_for_an_annotated_dataset_is_named_with_its_key(t
     check_annotation_files(config, ["a1", "a2"], base_dir=tmp_path, generated_dir="demo/data")
 
 
-def test_an_instance_volume_missing_is_named_with_its_key(tmp_path):
-    (tmp_path / "labels.tif").write_bytes(b"")
-    annotations = {"labels": "labels.tif", "instances": "{dataset}_instances.tif"}
-    config = {"targets": {"mito": {"annotations": annotations}}}
+def test_an_instance_volume_may_miss_some_datasets_but_not_all(tmp_path):
+    (tmp_path / "labels").mkdir()
+    for dataset in ("a1", "a2", "a3"):
+        (tmp_path / "labels" / f"{dataset}.tif").write_bytes(b"")
+    annotations = {"labels": "labels/{dataset}.tif", "instances": "{dataset}_instances.tif"}
+    config = {"targets": {"mito": {"annotations": annotations, "annotated_datasets": None}}}
+    with pytest.raises(TesseraInputError) as info:
+        check_annotation_files(config, ["a1", "a2", "a3"], base_dir=tmp_path)
+    assert str(info.value) == (
+        "config/config.yaml, key targets.mito.annotations.instances: '{dataset}_instances.tif' "
+        "names no file for any dataset the target is annotated on ('a1_instances.tif', dataset "
+        "a1, not found); expected a multi-page TIFF for one dataset at least (those without one "
+        "are scored against the 26-connected components of their labels)"
+    )
+    # one present: the others fall back to their labels, and are not listed as inputs
+    (tmp_path / "a2_instances.tif").write_bytes(b"")
+    check_annotation_files(config, ["a1", "a2", "a3"], base_dir=tmp_path)
+    found = instance_volumes(annotations["instances"], ["a1", "a2", "a3"], base_dir=tmp_path)
+    assert found == {"a2": "a2_instances.tif"}
+    # a dataset outside annotated_datasets does not count as the one present
+    config["targets"]["mito"]["annotated_datasets"] = ["a1", "a3"]
+    with pytest.raises(TesseraInputError, match="names no file for any dataset"):
+        check_annotation_files(config, ["a1", "a2", "a3"], base_dir=tmp_path)
+    # a folder is refused even when another dataset has its file
+    config["targets"]["mito"]["annotated_datasets"] = None
+    (tmp_path / "a3_instances.tif").mkdir()
     with pytest.raises(
         TesseraInputError,
-        match=r"key targets.mito.annotations.instances: 'a1_instances.tif' \(dataset a1\) not "
-        r"found; expected a multi-page TIFF",
+        match=r"key targets.mito.annotations.instances: 'a3_instances.tif' \(dataset a3\) is a "
+        r"folder; expected a multi-page TIFF of instances",
     ):
-        check_annotation_files(config, ["a1"], base_dir=tmp_path)
+        check_annotation_files(config, ["a1", "a2", "a3"], base_dir=tmp_path)
+    # the volumes the demo rule renders count as present
+    demo = {"labels": "labels/{dataset}.tif", "instances": "demo/data/{dataset}/ids.tif"}
+    assert instance_volumes(
+        demo["instances"], ["a1"], base_dir=tmp_path, generated_dir="demo/data"
+    ) == {"a1": "demo/data/a1/ids.tif"}
+    config["targets"]["mito"]["annotations"] = demo
+    check_annotation_files(config, ["a1"], base_dir=tmp_path, generated_dir="demo/data")
 
 
 def test_shipped_config_paths_lie_inside_the_project(repo, schemas, shipped_config):

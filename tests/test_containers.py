@@ -639,3 +639,98 @@ def test_ome_zarr_with_a_length_unit_unknown_is_refused(tmp_path, volume):
     with pytest.raises(TesseraInputError) as info:
         open_stack(src, "zarr")
     assert "axis 'z' has unit 'parsecs'; expected a length unit of OME-Zarr (" in str(info.value)
+
+
+def _ome_zarr_04(path, volume, *, unit, scale=(0.04, 0.008, 0.008), image="", extra=None):
+    """An invented OME-Zarr 0.4 image in zarr format 2: "multiscales" at the top of the image
+    group's attributes, levels "0" and "1" (the latter 2x coarser in y and x), axes in `unit`.
+    Layout from the OME-NGFF 0.4 specification (from memory)."""
+    root = zarr.open_group(str(path), mode="w", zarr_format=2)
+    group = root.create_group(image) if image else root
+    axes = [{"name": a, "type": "space", **({"unit": unit} if unit else {})} for a in "zyx"]
+    datasets = [
+        {
+            "path": str(k),
+            "coordinateTransformations": [
+                {"type": "scale", "scale": [scale[0], scale[1] * 2**k, scale[2] * 2**k]}
+            ],
+        }
+        for k in range(2)
+    ]
+    multiscale = {"version": "0.4", "name": "raw", "axes": axes, "datasets": datasets}
+    group.attrs["multiscales"] = [multiscale | (extra or {})]
+    group.create_array("0", data=volume, chunks=(1, *volume.shape[1:]))
+    group.create_array("1", data=volume[:, ::2, ::2], chunks=(1, *volume.shape[1:]))
+    return path
+
+
+@pytest.mark.parametrize(
+    ("unit", "scale", "level", "nm"),
+    [
+        # 1 micrometer = 1000 nm (SI); level 1 is 2x coarser in y and x, as its scale says
+        ("micrometer", (0.04, 0.008, 0.008), "0", (40.0, 8.0, 8.0)),
+        ("micrometer", (0.04, 0.008, 0.008), "1", (40.0, 16.0, 16.0)),
+        ("nanometer", (40, 8, 8), "0", (40.0, 8.0, 8.0)),
+    ],
+)
+def test_a_level_of_an_ome_zarr_04_image_takes_its_voxel_size_from_the_multiscales(
+    tmp_path, volume, unit, scale, level, nm
+):
+    src = _ome_zarr_04(tmp_path / "in.ome.zarr", volume, unit=unit, scale=scale)
+    ingest_job(src, tmp_path / "out.ome.zarr", fmt="zarr", internal_path=level, spacing=(None,) * 3)
+    _, info = open_image(tmp_path / "out.ome.zarr")
+    assert info["spacing"] == pytest.approx(nm)
+    expected = volume if level == "0" else volume[:, ::2, ::2]
+    np.testing.assert_array_equal(info["levels"][0][:], expected)
+
+
+def test_an_ome_zarr_04_image_inside_a_container_and_its_multiscale_scale(tmp_path, volume):
+    # the image group "em/raw" inside the container; a multiscale-wide scale (z 2x) applies
+    # after each level's own (OME-NGFF 0.4): 0.02 um x 2 = 40 nm along z
+    src = _ome_zarr_04(
+        tmp_path / "c.zarr",
+        volume,
+        unit="micrometer",
+        scale=(0.02, 0.008, 0.008),
+        image="em/raw",
+        extra={"coordinateTransformations": [{"type": "scale", "scale": [2, 1, 1]}]},
+    )
+    stack = open_stack(src, "zarr", internal_path="em/raw/0")
+    try:
+        assert stack.header_spacing == pytest.approx((40.0, 8.0, 8.0))
+    finally:
+        stack.close()
+
+
+def test_an_ome_zarr_04_scale_is_held_to_the_sheet_and_without_units_the_sheet_is_needed(
+    tmp_path, volume
+):
+    src = _ome_zarr_04(tmp_path / "in.ome.zarr", volume, unit="micrometer")
+    with pytest.raises(TesseraInputError) as info:
+        ingest_job(src, tmp_path / "o.ome.zarr", fmt="zarr", internal_path="0", spacing=(40, 80, 8))
+    assert str(info.value) == (
+        f"{src}, internal_path 0: attribute multiscales scale of the container's top group "
+        "(converted to nm) gives voxel size 8 nm along y, the sheet's voxel_y_nm says 80; "
+        "correct one of them or blank the sheet's cell"
+    )
+    bare = _ome_zarr_04(tmp_path / "bare.ome.zarr", volume, unit=None, scale=(40, 8, 8))
+    with pytest.raises(TesseraInputError) as info:
+        ingest_job(
+            bare, tmp_path / "o.ome.zarr", fmt="zarr", internal_path="0", spacing=(None,) * 3
+        )
+    assert "voxel size along z is blank in the sheet and the file header has none" in str(
+        info.value
+    )
+
+
+def test_an_ome_zarr_04_level_with_a_bad_scale_is_refused_in_one_line(tmp_path, volume):
+    src = _ome_zarr_04(tmp_path / "in.ome.zarr", volume, unit="micrometer")
+    group = zarr.open_group(str(src), mode="r+")
+    multiscales = group.attrs["multiscales"]
+    multiscales[0]["datasets"][0]["coordinateTransformations"][0]["scale"] = [0.04, 0.008]
+    group.attrs["multiscales"] = multiscales
+    text = _refused(tmp_path, src, "zarr", "0", "internal_path 0")
+    assert text == (
+        f"{src}, internal_path 0: attribute multiscales, level '0', has scale [0.04, 0.008]; "
+        "expected 3 numbers > 0 (z, y, x)"
+    )

@@ -213,6 +213,35 @@ def test_instance_volume_is_used_when_given(tmp_path):
     assert row["truth_source"] == "instance volume"
 
 
+def test_datasets_without_an_instance_volume_are_scored_against_label_components(tmp_path):
+    tiles, inputs = _scene(tmp_path)
+    # d2: the same scene under another (invented) id, without an instance volume
+    registry = pd.read_csv(tiles / "tiles.tsv", sep="\t")
+    second = registry.assign(dataset="d2", tile_id="d2_" + registry["tile_id"])
+    pd.concat([registry, second]).to_csv(tiles / "tiles.tsv", sep="\t", index=False)
+    for tile in second["tile_id"]:
+        Image.fromarray(np.zeros((4, 4), np.uint8)).save(tiles / "labels" / f"{tile}.png")
+    inputs["d2"] = dict(inputs["d1"])
+    boxes = dict(TRUTH)
+    boxes["B"] = (8, 10, 14, 22, 14, 19)
+    boxes["B2"] = (8, 10, 14, 22, 19, 24)
+    instances = tmp_path / "instances.tif"
+    tifffile.imwrite(instances, _boxes(boxes.values()))
+    inputs["d1"]["instances"] = instances
+    out = _run(tmp_path, tiles, inputs)
+    table = read_objects_3d(out / "objects_3d.tsv").set_index("dataset")
+    assert table.loc["d1", "truth_source"] == "instance volume"
+    assert table.loc["d2", "truth_source"] == "26-connected components of the labels"
+    # by hand, as in the two tests above: d1 4 true, 4 predicted, 4 matched; d2 3, 4, 2
+    counts = ["truth_objects", "predicted_objects", "matched_objects"]
+    assert list(table.loc["d1", counts]) == [4, 4, 4]
+    assert list(table.loc["d2", counts]) == [3, 4, 2]
+    assert list(table.loc["all", counts]) == [7, 8, 6]
+    assert table.loc["all", "truth_source"] == (
+        "26-connected components of the labels; instance volume"
+    )
+
+
 def test_bad_truth_volumes_and_missing_test_tiles_are_refused(tmp_path):
     tiles, inputs = _scene(tmp_path)
     wrong = tmp_path / "wrong.tif"

@@ -16,6 +16,7 @@ from PIL import Image as PILImage
 from tessera.errors import TesseraInputError
 from tessera.intensity import estimate_intensity_range, to_uint8
 from tessera.io.omezarr import open_image
+from tessera.io.section_numbers import number_sections
 from tessera.io.stacks import open_stack
 from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.qc_table import excluded_sections, read_qc_table
@@ -827,6 +828,63 @@ def test_ambiguous_section_numbers_are_refused(tmp_path, names, message):
     with pytest.raises(TesseraInputError, match=message) as info:
         _ingest(folder, tmp_path, fmt="slice_folder")
     _one_line_and_nothing_written(info, folder, tmp_path, before)
+
+
+@pytest.mark.parametrize(
+    ("names", "numbers"),
+    [
+        # numbers worked by hand from the invented names: the one group of digits that
+        # changes from file to file is the section number, wherever it stands
+        (["s_0000_5nm.tif", "s_0001_5nm.tif", "s_0003_5nm.tif"], [0, 1, 2, 3]),
+        (["em5nm_z0003.tif", "em5nm_z0004.tif", "em5nm_z0005.tif"], [3, 4, 5]),
+        (["run2_sec010_tile1.tif", "run2_sec011_tile1.tif", "run2_sec012_tile1.tif"], [10, 11, 12]),
+        # two groups change and the last tells the files apart: the last one numbers them
+        (["a1_s3.tif", "a2_s4.tif", "a1_s5.tif"], [3, 4, 5]),
+        # one name per section, nothing else in it
+        (["7.tif", "8.tif"], [7, 8]),
+    ],
+)
+def test_the_group_of_digits_that_changes_numbers_the_sections(names, numbers):
+    # `names` are listed in section order by hand; the folder lists them in another
+    out = number_sections(names[::-1])
+    assert out["numbers"] == numbers
+    assert out["names"] == names
+
+
+def test_a_folder_numbered_in_the_middle_of_its_names_is_ingested_in_order(tmp_path):
+    # sections 0, 1, 2 and 4 with the pixel size after the number; section 3 lost
+    volume = np.random.default_rng(9).integers(1, 256, (4, 8, 8), dtype=np.uint8)
+    _numbered_folder(tmp_path / "slices", volume, [0, 1, 2, 4], name="s_{:04d}_5nm.tif")
+    summary = ingest_job(
+        tmp_path / "slices", tmp_path / "o.ome.zarr", fmt="slice_folder", spacing=SPACING
+    )
+    assert summary["shape"] == [5, 8, 8] and summary["missing_sections"] == [3]
+    expected = np.insert(volume, 3, 0, axis=0)  # the planes as written, a blank at z = 3
+    np.testing.assert_array_equal(open_image(tmp_path / "o.ome.zarr")[1]["levels"][0][:], expected)
+
+
+def test_names_where_several_groups_of_digits_change_and_the_last_clashes_are_refused(tmp_path):
+    names = [
+        "run2_sec010_tile1.tif",
+        "run2_sec010_tile2.tif",
+        "run2_sec011_tile1.tif",
+        "run2_sec011_tile2.tif",
+    ]
+    folder = tmp_path / "slices"
+    folder.mkdir()
+    for name in names:
+        tifffile.imwrite(folder / name, np.zeros((8, 8), np.uint8))
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError) as info:
+        _ingest(folder, tmp_path, fmt="slice_folder")
+    message = _one_line_and_nothing_written(info, folder, tmp_path, before)
+    assert message == (
+        f"{folder}: section number 1 appears twice ('run2_sec010_tile1.tif' and "
+        "'run2_sec011_tile1.tif'): digit groups 2 and 3 of the names (counted from the left) "
+        "vary from file to file, so which one numbers the sections is ambiguous, and the last "
+        "one gives both files this number; expected one group of digits that changes from "
+        "section to section (rename the files)"
+    )
 
 
 def test_palette_png_is_refused_not_read_as_indices(tmp_path):

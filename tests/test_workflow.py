@@ -594,6 +594,24 @@ def test_bad_sheet_stops_before_anything_runs(tmp_path, repo):
     assert sorted(p.name for p in tmp_path.iterdir() if p.name != ".snakemake") == ["config"]
 
 
+def test_an_instance_volume_for_one_dataset_only_is_the_only_one_planned(tmp_path, repo):
+    # w1 has an instance volume, c1 none: the plan must not ask for c1's (no rule makes it)
+    config = tiny_config()
+    config["targets"]["nuclei"]["annotations"]["instances"] = "truth/{dataset}_ids.tif"
+    (tmp_path / "config").mkdir()
+    (tmp_path / "truth").mkdir()
+    (tmp_path / "truth" / "w1_ids.tif").write_bytes(b"")
+    (tmp_path / "config" / "config.yaml").write_text(yaml.safe_dump(config))
+    (tmp_path / "config" / "datasets.tsv").write_text(TINY_SHEET)
+    target = "results/study/nuclei/evaluation/objects_3d.tsv"
+    result = snakemake(
+        "-n", "--cores", "1", "--snakefile", str(repo / "Snakefile"), target, cwd=tmp_path
+    )
+    planned = result.stdout + result.stderr
+    assert "truth/w1_ids.tif" in planned
+    assert "c1_ids.tif" not in planned
+
+
 def _tiny_study_with(tmp_path, config, earlier):
     """`config` and the tiny sheet in `tmp_path`, and `earlier`: relative path → bytes of the
     results a run before left (invented); returns the folder's files."""

@@ -12,7 +12,9 @@
     x fastest). Compression raw, gzip, bzip2, xz, blosc and zstd are read; lz4 is not.
 
 Voxel sizes come from the array's attributes (``resolution``: nm, z, y, x for zarr and x, y, z
-for N5; ``pixelResolution``; ``element_size_um``: µm z, y, x). A chunk missing from the folder
+for N5; ``pixelResolution``; ``element_size_um``: µm z, y, x); for a zarr array without them
+that is one level of a multiscale image (OME-Zarr 0.4 or 0.5), from the image's metadata in the
+group above it (:func:`tessera.io.omezarr.level_spacing`). A chunk missing from the folder
 reads as fill value in zarr, so it is refused rather than read as data.
 """
 
@@ -34,6 +36,7 @@ from tessera.io.array_stacks import (
     missing_chunk,
     spacing_from_attrs,
 )
+from tessera.io.omezarr import level_spacing
 from tessera.io.zarr_checks import check_chunk_grid
 
 __all__ = ["open_zarr_array", "open_n5"]
@@ -97,6 +100,8 @@ def open_zarr_array(path, internal_path=None):
             source=label,
         )
     spacing, attribute = spacing_from_attrs(dict(attrs), source=label)
+    if spacing is None and inner and array.ndim == 3:
+        spacing, attribute = _multiscale_spacing(path, inner, label)
     return ArrayStack(
         array,
         label=label,
@@ -105,6 +110,27 @@ def open_zarr_array(path, internal_path=None):
         spacing_attribute=attribute,
         chunk_problem=_zarr_chunk_check(array, path / inner) if array.ndim == 3 else None,
     )
+
+
+def _multiscale_spacing(path, inner, label):
+    """(voxel size, what it was read from) of an array that is one level of a multiscale image
+    (OME-Zarr 0.4 or 0.5): the metadata of the nearest group above it listing it; (None, None)
+    when none does, or when its axes state no unit (the sheet gives the size then)."""
+    parts = inner.split("/")
+    for k in range(len(parts) - 1, -1, -1):
+        try:
+            group = zarr.open_group(store=str(path), path="/".join(parts[:k]), mode="r")
+            attrs = group.attrs.asdict()
+        except _ZARR_ERRORS:
+            continue
+        found = level_spacing(attrs, "/".join(parts[k:]), source=label)
+        if found is None:
+            continue
+        if not found["units_given"]:
+            return None, None
+        group_name = f"group {'/'.join(parts[:k])!r}" if k else "the container's top group"
+        return found["spacing"], f"{found['attribute']} scale of {group_name} (converted to nm)"
+    return None, None
 
 
 def _grid_rows(shape, chunks):

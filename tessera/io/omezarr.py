@@ -1,4 +1,5 @@
-"""OME-Zarr 0.5 (NGFF, zarr format 3) images: metadata, opening, level access.
+"""OME-Zarr 0.5 (NGFF, zarr format 3) images: metadata, opening, level access; and the voxel
+size a multiscale image's metadata (0.5, or 0.4 in zarr format 2) give one of its levels.
 
 Axes are always z, y, x in nanometres (the project's spacing convention). Level ``k`` of a
 multiscale image was reduced by ``factors[k]`` along each axis relative to level 0. Project
@@ -6,6 +7,7 @@ metadata that NGFF has no field for (intensity mapping, pyramid factors, provena
 under the ``"tessera"`` attribute key beside ``"ome"``.
 """
 
+import math
 from pathlib import Path
 
 import zarr
@@ -172,10 +174,7 @@ def open_image(path, *, checksums="required"):
         tuple(int(round(s / s0)) for s, s0 in zip(sc, scales[0], strict=False)) for sc in scales
     ]
     units = axis_units(ms, source=path)
-    spacing = tuple(
-        float(s) * (1.0 if unit is None else NM_PER_UNIT[unit])
-        for s, unit in zip(scales[0], units, strict=False)
-    )
+    spacing = _in_nm(scales[0], units)
     levels = []
     for d in datasets:
         try:
@@ -277,6 +276,121 @@ def axis_units(multiscale, *, source=None):
             )
         units.append(unit)
     return units
+
+
+def _in_nm(scale, units):
+    """A level's scale converted to nm from its axes' units (an axis without one: taken as nm)."""
+    return tuple(
+        float(s) * (1.0 if unit is None else NM_PER_UNIT[unit])
+        for s, unit in zip(scale, units, strict=False)
+    )
+
+
+def _multiscales(attrs):
+    """(the attribute key, the list of multiscales) of a group: 0.5 keeps them under ``ome``,
+    0.4 at the top of the attributes; (None, []) for a group without."""
+    ome = attrs.get("ome")
+    if isinstance(ome, dict) and isinstance(ome.get("multiscales"), list):
+        return "ome.multiscales", ome["multiscales"]
+    if isinstance(attrs.get("multiscales"), list):
+        return "multiscales", attrs["multiscales"]
+    return None, []
+
+
+def _positive_number(value):
+    return (
+        isinstance(value, (int, float))
+        and not isinstance(value, bool)
+        and math.isfinite(value)
+        and value > 0
+    )
+
+
+def _scale_of(transforms, *, where, source):
+    """The ``scale`` of a list of coordinate transformations (None when it holds none)."""
+    for transform in transforms if isinstance(transforms, list) else []:
+        if isinstance(transform, dict) and transform.get("type") == "scale":
+            scale = transform.get("scale")
+            if (
+                not isinstance(scale, list)
+                or len(scale) != len(AXES)
+                or not all(_positive_number(v) for v in scale)
+            ):
+                raise TesseraInputError(
+                    f"{where} has scale {scale!r}; expected {len(AXES)} numbers > 0 (z, y, x)",
+                    source=source,
+                )
+            return [float(v) for v in scale]
+    return None
+
+
+def level_spacing(attrs, level_path, *, source=None):
+    """The voxel size that a multiscale image's metadata give one of its levels.
+
+    Reads OME-Zarr 0.5 (``ome.multiscales``) and 0.4 (``multiscales`` at the top of the
+    group's attributes): the ``scale`` transformation of the dataset whose ``path`` is
+    `level_path`, times the multiscale's own scale where it has one, converted to nm from the
+    axes' units. The axes must be z, y, x in that order.
+
+    Parameters
+    ----------
+    attrs : dict
+        The attributes of the group holding the multiscale image.
+    level_path : str
+        The level's array path relative to that group, e.g. ``"0"``.
+    source : str or Path, optional
+        Named in error messages.
+
+    Returns
+    -------
+    dict or None
+        ``spacing`` (nm; z, y, x), ``units_given`` (whether every axis states its unit) and
+        ``attribute`` (the key read); None when no multiscale of the group lists the level.
+
+    Raises
+    ------
+    TesseraInputError
+        Axes other than z, y, x, a unit that is not a length, or a scale that is not three
+        numbers > 0.
+
+    Examples
+    --------
+    >>> axes = [{"name": a, "type": "space", "unit": "micrometer"} for a in "zyx"]
+    >>> level = {"path": "0", "coordinateTransformations": [
+    ...     {"type": "scale", "scale": [0.04, 0.008, 0.008]}]}
+    >>> found = level_spacing({"multiscales": [{"axes": axes, "datasets": [level]}]}, "0")
+    >>> tuple(round(v, 6) for v in found["spacing"]), found["units_given"], found["attribute"]
+    ((40.0, 8.0, 8.0), True, 'multiscales')
+    >>> level_spacing({"multiscales": [{"axes": axes, "datasets": [level]}]}, "1") is None
+    True
+    """
+    key, multiscales = _multiscales(attrs)
+    for ms in multiscales:
+        datasets = ms.get("datasets") if isinstance(ms, dict) else None
+        for dataset in datasets if isinstance(datasets, list) else []:
+            if isinstance(dataset, dict) and str(dataset.get("path")).strip("/") == level_path:
+                return _level_found(key, ms, dataset, level_path, source=source)
+    return None
+
+
+def _level_found(key, multiscale, dataset, level_path, *, source):
+    _check_axis_names(multiscale, source=source)
+    units = axis_units(multiscale, source=source)
+    where = f"attribute {key}, level {level_path!r},"
+    scale = _scale_of(dataset.get("coordinateTransformations"), where=where, source=source)
+    if scale is None:
+        return None
+    # a multiscale-wide scale applies after each level's own (OME-Zarr 0.4 and 0.5)
+    overall = _scale_of(
+        multiscale.get("coordinateTransformations"), where=f"attribute {key}", source=source
+    )
+    if overall is not None:
+        scale = [a * b for a, b in zip(scale, overall, strict=True)]
+    return {
+        "spacing": _in_nm(scale, units),
+        "units_given": all(unit is not None for unit in units),
+        "attribute": key,
+    }
 
 
 def working_level(factors, downsample, *, source=None):

@@ -17,6 +17,7 @@ import yaml
 
 from tessera.errors import TesseraInputError
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
+from tessera.spacing import micrometre_hint
 
 SHEET_NUMBER_COLUMNS = ("voxel_z_nm", "voxel_y_nm", "voxel_x_nm")
 
@@ -186,7 +187,16 @@ def _describe(error):
         # spelled as in YAML (true, not True), since that is what the user edits
         allowed = ", ".join(json.dumps(v) for v in error.validator_value)
         return f"key {where}: {json.dumps(error.instance)} is not one of {allowed}"
-    return f"key {where}: {error.message}"
+    return f"key {where}: {error.message}{_unit_hint(error)}"
+
+
+def _unit_hint(error):
+    """'; <hint>' for a sheet voxel size below the minimum that reads as µm, else ''."""
+    path = list(error.absolute_path)
+    if error.validator != "minimum" or not path or path[-1] not in SHEET_NUMBER_COLUMNS:
+        return ""
+    hint = micrometre_hint(error.instance)
+    return f"; {hint}" if hint else ""
 
 
 def validate(instance, schema, *, source):
@@ -790,13 +800,70 @@ def check_config_paths(config, dataset_ids, *, base_dir=".", source="config/conf
         _check_inside(value, base_dir, roots, source=f"{source}, key {key}")
 
 
+def _annotation_file(value, base, generated):
+    """'file' (present, or made by the workflow), 'folder' or 'missing'."""
+    full = (base / value).resolve()
+    if generated is not None and full.is_relative_to(generated):
+        return "file"
+    if full.is_file():
+        return "file"
+    return "folder" if full.is_dir() else "missing"
+
+
+def _generated(base_dir, generated_dir):
+    return None if generated_dir is None else (Path(base_dir) / generated_dir).resolve()
+
+
+def instance_volumes(template, dataset_ids, *, base_dir=".", generated_dir=None):
+    """The instance volume of each dataset that has one: the template filled in, where a file.
+
+    Datasets without one are scored against the connected components of their labels, so an
+    ``annotations.instances`` template need not name a file for every dataset.
+
+    Parameters
+    ----------
+    template : str or None
+        The ``annotations.instances`` path template (``{dataset}`` for the id); None = none given.
+    dataset_ids : sequence of str
+        The datasets the target is annotated on.
+    base_dir : str or Path, optional
+        The project folder relative paths start from.
+    generated_dir : str or Path, optional
+        Paths under this folder are made by the workflow (the demo study) and count as present.
+
+    Returns
+    -------
+    dict
+        Dataset id → the instance volume's path as the template gives it, in ``dataset_ids``
+        order; datasets without a file are left out.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> folder = Path(tempfile.mkdtemp())
+    >>> _ = (folder / "b2_ids.tif").write_bytes(b"")
+    >>> instance_volumes("{dataset}_ids.tif", ["a1", "b2"], base_dir=folder)
+    {'b2': 'b2_ids.tif'}
+    >>> instance_volumes(None, ["a1", "b2"], base_dir=folder)
+    {}
+    """
+    if template is None:
+        return {}
+    base, generated = Path(base_dir), _generated(base_dir, generated_dir)
+    paths = {d: template.format(dataset=d) for d in dataset_ids}
+    return {d: p for d, p in paths.items() if _annotation_file(p, base, generated) == "file"}
+
+
 def check_annotation_files(
     config, dataset_ids, *, base_dir=".", generated_dir=None, source="config/config.yaml"
 ):
-    """Refuse a label or instance volume missing for a dataset that a target is annotated on.
+    """Refuse a label volume missing for a dataset that a target is annotated on, and an
+    instance template that names no file for any of them.
 
     Checked when the config loads, so a missing volume is named with its config key before any
-    job runs, instead of Snakemake's missing-input report once the plan is made.
+    job runs, instead of Snakemake's missing-input report once the plan is made. Instance
+    volumes are optional per dataset (:func:`instance_volumes`); one found for no dataset at
+    all is taken for a wrong path. A path that is a folder is refused for either.
 
     Parameters
     ----------
@@ -811,28 +878,57 @@ def check_annotation_files(
     source : str, optional
         The config file, named in the error.
     """
-    base = Path(base_dir)
-    generated = None if generated_dir is None else (base / generated_dir).resolve()
+    base, generated = Path(base_dir), _generated(base_dir, generated_dir)
     for name, target in (config.get("targets") or {}).items():
         annotations = target.get("annotations") or {}
         chosen = target.get("annotated_datasets")
         datasets = [d for d in dataset_ids if chosen is None or d in chosen]
         for field in ("labels", "instances"):
-            if field not in annotations:
+            if field not in annotations or not datasets:
                 continue
-            for dataset in datasets:
-                value = annotations[field].format(dataset=dataset)
-                full = (base / value).resolve()
-                if generated is not None and full.is_relative_to(generated):
-                    continue
-                if not full.is_file():
-                    found = "is a folder" if full.is_dir() else "not found"
-                    raise TesseraInputError(
-                        f"{value!r} (dataset {dataset}) {found}; expected a multi-page TIFF for "
-                        f"every dataset the target is annotated on (or name the others in "
-                        f"targets.{name}.annotated_datasets)",
-                        source=f"{source}, key targets.{name}.annotations.{field}",
-                    )
+            where = f"{source}, key targets.{name}.annotations.{field}"
+            template = annotations[field]
+            kinds = {
+                d: _annotation_file(template.format(dataset=d), base, generated) for d in datasets
+            }
+            if field == "labels":
+                _check_label_files(name, template, kinds, where)
+            else:
+                _check_instance_files(template, kinds, where)
+
+
+def _check_label_files(name, template, kinds, where):
+    """Every dataset the target is annotated on needs its label volume."""
+    missing = [d for d, kind in kinds.items() if kind != "file"]
+    if missing:
+        found = "is a folder" if kinds[missing[0]] == "folder" else "not found"
+        raise TesseraInputError(
+            f"{template.format(dataset=missing[0])!r} (dataset {missing[0]}) {found}; expected "
+            "a multi-page TIFF for every dataset the target is annotated on (or name the others "
+            f"in targets.{name}.annotated_datasets)",
+            source=where,
+        )
+
+
+def _check_instance_files(template, kinds, where):
+    """An instance template may miss some datasets, not all; it may never name a folder."""
+    folders = [d for d, kind in kinds.items() if kind == "folder"]
+    if folders:
+        raise TesseraInputError(
+            f"{template.format(dataset=folders[0])!r} (dataset {folders[0]}) is a folder; "
+            "expected a multi-page TIFF of instances, or nothing at that path for a dataset "
+            "scored against the connected components of its labels",
+            source=where,
+        )
+    if "file" not in kinds.values():
+        first = next(iter(kinds))
+        raise TesseraInputError(
+            f"{template!r} names no file for any dataset the target is annotated on "
+            f"({template.format(dataset=first)!r}, dataset {first}, not found); expected a "
+            "multi-page TIFF for one dataset at least (those without one are scored against "
+            "the 26-connected components of their labels)",
+            source=where,
+        )
 
 
 def sheet_spacing(row):
