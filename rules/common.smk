@@ -13,16 +13,18 @@ from tessera.cascade.api import ancestors, node_settings, nodes, spec_from_setti
 from tessera.ladder import ladder_rungs, split_cascade_settings
 from tessera.workflow.config import (
     check_annotated_datasets,
-    check_annotation_files,
-    check_config_paths,
     check_reference_condition,
     expand_variants,
-    instance_volumes,
     load_config,
     load_datasets,
     sheet_spacing,
 )
 from tessera.errors import TesseraInputError
+from tessera.workflow.config_paths import (
+    check_annotation_files,
+    check_config_paths,
+    instance_volumes,
+)
 from tessera.workflow.load_time_checks import (
     check_prediction_block,
     check_tiles_fit_checked_stacks,

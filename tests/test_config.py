@@ -10,15 +10,17 @@ import yaml
 from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
     check_annotated_datasets,
-    check_annotation_files,
     check_config_file,
-    check_config_paths,
-    config_paths,
-    instance_volumes,
     load_config,
     load_datasets,
     read_yaml,
     sheet_spacing,
+)
+from tessera.workflow.config_paths import (
+    check_annotation_files,
+    check_config_paths,
+    config_paths,
+    instance_volumes,
 )
 from tessera.workflow.files.stack_check import write_stack_check
 from tessera.workflow.load_time_checks import check_prediction_block, check_tiles_fit_checked_stacks
