@@ -197,16 +197,21 @@ def test_sections_qc_keeps_are_scored(tmp_path):
     assert row["sections"] == 2
 
 
+def _b_cut_in_two(folder):
+    """An instance volume of the scene's truth with B cut at x = 19 into B and B2."""
+    boxes = dict(TRUTH)
+    boxes["B"] = (8, 10, 14, 22, 14, 19)
+    boxes["B2"] = (8, 10, 14, 22, 19, 24)
+    instances = folder / "instances.tif"
+    tifffile.imwrite(instances, _boxes(boxes.values()))
+    return instances
+
+
 def test_instance_volume_is_used_when_given(tmp_path):
     tiles, inputs = _scene(tmp_path)
     # the instance volume cuts B into x 14:19 and x 19:24: each half now matches its predicted
     # box with IoU 4/5 (by hand), so every object on section 8 matches
-    boxes = dict(TRUTH)
-    boxes["B"] = (8, 10, 14, 22, 14, 19)
-    boxes["B2"] = (8, 10, 14, 22, 19, 24)
-    instances = tmp_path / "instances.tif"
-    tifffile.imwrite(instances, _boxes(boxes.values()))
-    inputs["d1"]["instances"] = instances
+    inputs["d1"]["instances"] = _b_cut_in_two(tmp_path)
     out = _run(tmp_path, tiles, inputs)
     row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
     assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 4)
@@ -222,12 +227,7 @@ def test_datasets_without_an_instance_volume_are_scored_against_label_components
     for tile in second["tile_id"]:
         Image.fromarray(np.zeros((4, 4), np.uint8)).save(tiles / "labels" / f"{tile}.png")
     inputs["d2"] = dict(inputs["d1"])
-    boxes = dict(TRUTH)
-    boxes["B"] = (8, 10, 14, 22, 14, 19)
-    boxes["B2"] = (8, 10, 14, 22, 19, 24)
-    instances = tmp_path / "instances.tif"
-    tifffile.imwrite(instances, _boxes(boxes.values()))
-    inputs["d1"]["instances"] = instances
+    inputs["d1"]["instances"] = _b_cut_in_two(tmp_path)
     out = _run(tmp_path, tiles, inputs)
     table = read_objects_3d(out / "objects_3d.tsv").set_index("dataset")
     assert table.loc["d1", "truth_source"] == "instance volume"
