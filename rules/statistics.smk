@@ -43,19 +43,19 @@ rule statistics:
         conditions=report(
             "results/study/{target}/statistics/conditions.tsv",
             caption="../report/condition_summary.rst",
-            category="Statistics",
+            category="Conditions compared",
             labels={"target": "{target}", "item": "conditions"},
         ),
         comparison=report(
             "results/study/{target}/statistics/comparison.tsv",
             caption="../report/comparison.rst",
-            category="Statistics",
+            category="Conditions compared",
             labels={"target": "{target}", "item": "table"},
         ),
         plot=report(
             "results/study/{target}/statistics/conditions.png",
             caption="../report/conditions.rst",
-            category="Statistics",
+            category="Conditions compared",
             labels={"target": "{target}", "item": "plot"},
         ),
     log:
