@@ -217,16 +217,13 @@ def _points_by_target():
 POINTS = _points_by_target()
 
 
-def annotated_ids_of(target):
+def annotated_ids(wildcards):
     """The datasets that give a target's tiles (and so its training and scoring images)."""
+    target = wildcards.target
     if _painted(target):
         return POINTS[target]
-    annotated = config["targets"][target]["annotated_datasets"]
+    annotated = target_settings(wildcards)["annotated_datasets"]
     return [d for d in DATASETS.index if annotated is None or d in annotated]
-
-
-def annotated_ids(wildcards):
-    return annotated_ids_of(wildcards.target)
 
 
 def annotated_pyramids(wildcards):
@@ -271,17 +268,13 @@ def target_guard_sections(wildcards):
     return target_settings(wildcards)["split"]["guard_sections"]
 
 
-def annotation_sets_of(target):
-    """The annotation sets (one per dataset) rule split_tiles merges for a target."""
+def annotation_sets(wildcards):
+    target = wildcards.target
     if _painted(target):
         # a variant of a painted target reuses the base target's painted tiles
         base = VARIANT_BASE[target]
         return [f"results/{d}/tiles_painted/{base}" for d in POINTS[target]]
-    return [f"results/{d}/tiles/{target}" for d in annotated_ids_of(target)]
-
-
-def annotation_sets(wildcards):
-    return annotation_sets_of(wildcards.target)
+    return [f"results/{d}/tiles/{target}" for d in annotated_ids(wildcards)]
 
 
 def target_points(wildcards):

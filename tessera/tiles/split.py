@@ -9,7 +9,7 @@ from tessera.errors import TesseraInputError
 from tessera.tiles.checks import as_int
 from tessera.tiles.registry import validate_registry
 
-__all__ = ["empty_roles_problem", "held_out_sections", "split_tiles"]
+__all__ = ["held_out_sections", "split_tiles"]
 
 
 def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0):
@@ -77,47 +77,6 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
         roles.loc[group.index] = _split_group(group["z"], fr, guard, descending, test_first)
     table["role"] = roles.astype(str)
     return table
-
-
-def empty_roles_problem(split, *, guard_sections):
-    """Why a split cannot be used: the roles it leaves without tiles, or None.
-
-    Training needs tiles, the threshold validation tiles and the scores test tiles; a split
-    without one of them is refused before any model is trained on it.
-
-    Parameters
-    ----------
-    split : pandas.DataFrame
-        A split registry (``dataset``, ``z``, ``role``), as :func:`split_tiles` returns it.
-    guard_sections : int
-        The guard distance the split was made with, named in the message.
-
-    Returns
-    -------
-    str or None
-        One line naming the empty roles, the tiles and sections there are and the settings to
-        change; None when every role has tiles.
-
-    Examples
-    --------
-    >>> reg = pd.DataFrame({"tile_id": [f"t{z}" for z in range(4)], "dataset": "d",
-    ...     "target": "m", "level": 0, "z": range(4), "y0": 0, "x0": 0, "height": 4,
-    ...     "width": 4, "source": "labels"})
-    >>> empty_roles_problem(split_tiles(reg, guard_sections=1), guard_sections=1) is None
-    True
-    >>> empty_roles_problem(split_tiles(reg, guard_sections=3), guard_sections=3)
-    'the split leaves no validation and no test tiles (4 tiles on 4 sections; held-out tiles lie at least split.guard_sections = 3 sections from training); annotate tiles on more sections, lower split.guard_sections, or change split.fractions'
-    """
-    empty = [role for role in ("train", "validation", "test") if not (split["role"] == role).any()]
-    if not empty:
-        return None
-    sections = split.groupby("dataset")["z"].nunique().sum()
-    return (
-        f"the split leaves no {' and no '.join(empty)} tiles ({len(split)} tiles on "
-        f"{sections} sections; held-out tiles lie at least split.guard_sections = "
-        f"{guard_sections} sections from training); annotate tiles on more sections, lower "
-        "split.guard_sections, or change split.fractions"
-    )
 
 
 def _split_group(z, fr, guard, descending, test_first):

@@ -3,7 +3,7 @@
 import pandas as pd
 
 from tessera.errors import TesseraInputError
-from tessera.tiles.split import empty_roles_problem, split_tiles
+from tessera.tiles.split import split_tiles
 from tessera.workflow.files.tile_registry import read_annotation_set, write_annotation_set
 
 
@@ -18,10 +18,17 @@ def split_tiles_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed
     split = split_tiles(
         merged, fractions=tuple(fractions), guard_sections=guard_sections, seed=seed
     )
-    # said here, before any model is trained on a split that cannot be scored; the workflow
-    # refuses the same split when it loads, once the tiles are written
-    problem = empty_roles_problem(split, guard_sections=guard_sections)
-    if problem:
-        raise TesseraInputError(problem, source=out_dir)
+    # training needs tiles, the threshold validation tiles and the scores test tiles: say so
+    # here, before any model is trained on a split that cannot be scored
+    empty = [role for role in ("train", "validation", "test") if not (split["role"] == role).any()]
+    if empty:
+        sections = merged.groupby("dataset")["z"].nunique().sum()
+        raise TesseraInputError(
+            f"the split leaves no {' and no '.join(empty)} tiles ({len(merged)} tiles on "
+            f"{sections} sections; held-out tiles lie at least split.guard_sections = "
+            f"{guard_sections} sections from training); annotate tiles on more sections, lower "
+            "split.guard_sections, or change split.fractions",
+            source=out_dir,
+        )
     write_annotation_set(out_dir, split, labels)
     return split["role"].value_counts().to_dict()
