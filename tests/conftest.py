@@ -19,6 +19,31 @@ def repo():
 
 
 @pytest.fixture
+def schemas(repo):
+    """The folder of the config and sheet schemas."""
+    return repo / "config" / "schemas"
+
+
+@pytest.fixture
+def shipped_config(repo):
+    """The shipped config/config.yaml, read as the workflow reads it."""
+    from tessera.workflow.config import read_yaml
+
+    return read_yaml(repo / "config" / "config.yaml")
+
+
+@pytest.fixture
+def layout(tmp_path):
+    """A project folder with its sheet and a stack, and a data folder outside the project."""
+    project, outside = tmp_path / "project", tmp_path / "mnt" / "em"
+    (project / "config").mkdir(parents=True)
+    outside.mkdir(parents=True)
+    for folder in (project, outside):
+        (folder / "stack.tif").write_bytes(b"")
+    return project, outside
+
+
+@pytest.fixture
 def vnc_sstem():
     """The open ssTEM stack (Gerhard et al. 2013, doi:10.6084/m9.figshare.856713), read in place.
 
