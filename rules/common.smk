@@ -179,6 +179,12 @@ def target_labels_identity(wildcards):
     ]
 
 
+def target_annotated_sections(wildcards):
+    """Which sections of the target's label volumes count as annotated: all (the default) or
+    labelled (those holding a target voxel)."""
+    return target_settings(wildcards)["annotations"].get("sections", "all")
+
+
 def target_labels_check(wildcards):
     """The label check a target's tiles rest on: one per label file, made under the
     first target that reads it and shared by the others (variants read its file)."""

@@ -93,6 +93,7 @@ rule evaluate_objects:
         datasets=annotated_ids,
         instance_datasets=annotated_instance_ids,
         guard_sections=target_guard_sections,
+        annotated_sections=target_annotated_sections,
         code=script_code("evaluate_objects"),
     script:
         "../scripts/evaluate_objects.py"

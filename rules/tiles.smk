@@ -45,6 +45,7 @@ rule sample_tiles:
     params:
         downsample=target_downsample,
         tiles=target_tiles,
+        annotated_sections=target_annotated_sections,
         code=script_code("sample_tiles"),
     script:
         "../scripts/sample_tiles.py"

@@ -38,4 +38,5 @@ run_job(
     out_crops=snakemake.output.crops,
     target=snakemake.wildcards.target,
     guard_sections=snakemake.params.guard_sections,
+    sections=snakemake.params.annotated_sections,
 )

@@ -24,4 +24,5 @@ run_job(
     count=tiles["per_dataset"],
     seed=tiles["seed"],
     allow_fewer=tiles["allow_fewer"],
+    sections=snakemake.params.annotated_sections,
 )

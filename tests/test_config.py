@@ -73,6 +73,16 @@ def test_defaults_are_filled_from_the_schema(schemas):
             lambda c: c["ingest"].update(chunks=[1, 256]),
             r"key ingest.chunks: \[1, 256\] is too short",
         ),
+        (
+            lambda c: c["targets"]["mitochondria"]["annotations"].update(sections="some"),
+            r'key targets.mitochondria.annotations.sections: "some" is not one of "all", "labelled"$',
+        ),
+        (
+            lambda c: c["targets"]["mitochondria"].update(
+                annotations={"painted": {"points": "p.tsv", "masks": "m"}, "sections": "all"}
+            ),
+            r"key targets.mitochondria.annotations: 'labels' is a dependency of 'sections'",
+        ),
         (lambda c: c.pop("datasets"), r"'datasets' is a required property"),
         (
             lambda c: c["targets"].update({"Bad Name": {"downsample": 2}}),

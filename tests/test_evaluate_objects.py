@@ -146,7 +146,7 @@ def _scene(tmp_path, *, qc_excludes_9=True, qc_excludes_8_9=False):
     return tiles, {"d1": files}
 
 
-def _run(tmp_path, tiles, inputs):
+def _run(tmp_path, tiles, inputs, **options):
     out = tmp_path / "out"
     evaluate_objects_job(
         tiles,
@@ -156,6 +156,7 @@ def _run(tmp_path, tiles, inputs):
         out / "crops.png",
         target="mito",
         guard_sections=2,
+        **options,
     )
     return out
 
@@ -195,6 +196,27 @@ def test_sections_qc_keeps_are_scored(tmp_path):
     # by hand: sections 8 and 9 now; F (section 9, truth only) joins the true objects
     assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 2)
     assert row["sections"] == 2
+
+
+def test_held_out_sections_without_labels_are_left_out_when_only_labelled_ones_count(tmp_path):
+    # A label volume annotated on some sections only (here: all but section 9, left 0).
+    tiles, inputs = _scene(tmp_path, qc_excludes_9=False)
+    truth = _boxes(TRUTH.values()) > 0
+    truth[9] = False
+    tifffile.imwrite(inputs["d1"]["labels"], truth.astype(np.uint8))
+    out = _run(tmp_path, tiles, inputs)
+    row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
+    # By hand: with every section counted as annotated, sections 8 and 9 are scored and the
+    # true A and E end on section 8 while the predicted ones run on to 9: IoU 0.5 each, not
+    # above the common-practice 0.5, so nothing matches (B is split in two as before).
+    assert (row["sections"], row["matched_objects"]) == (2, 0) and pd.isna(row["note"])
+    out = _run(tmp_path, tiles, inputs, sections="labelled")
+    row = read_objects_3d(out / "objects_3d.tsv").set_index("dataset").loc["d1"]
+    # Section 9 holds no label and is left out: the scores of section 8 alone, as in the first
+    # test (A and E matched, B not).
+    assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (3, 4, 2)
+    assert row["sections"] == 1
+    assert row["note"] == "1 held-out section(s) without labels left out (sections: labelled)"
 
 
 def _b_cut_in_two(folder):

@@ -577,13 +577,11 @@ def test_sampling_takes_as_many_tiles_as_fit_only_when_allowed(tmp_path):
         sampled(truth, size=30, count=10)
 
 
-def job_inputs(tmp_path, raw, truth, *, excluded):
+def job_inputs(tmp_path, raw, truth, *, excluded, spacing=(40, 8, 8)):
     """(label volume, pyramid, QC table) of a sample_tiles job over `raw` and its `truth`."""
     tifffile.imwrite(tmp_path / "raw.tif", raw)
     tifffile.imwrite(tmp_path / "truth.tif", truth)
-    ingest_job(
-        tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8)
-    )
+    ingest_job(tmp_path / "raw.tif", tmp_path / "raw.ome.zarr", fmt="tiff_stack", spacing=spacing)
     pyramid_job(tmp_path / "raw.ome.zarr", tmp_path / "pyr.ome.zarr", levels=1)
     qc = tmp_path / "sections.tsv"
     pd.DataFrame({"z": range(len(raw)), "excluded": excluded}).to_csv(qc, sep="\t", index=False)
@@ -702,6 +700,42 @@ def test_an_instance_volume_must_mark_the_voxels_the_labels_mark(tmp_path):
     assert "target voxels) agree on " in message
     assert "% of the voxels either marks; expected the same organelles (at least 90%)" in message
     assert not (tmp_path / "b.json").exists()
+
+
+def test_only_sections_holding_labels_give_tiles_when_only_those_count_as_annotated(tmp_path):
+    # A volume annotated on sections 2 and 3 only, the others left 0. Counted as annotated
+    # everywhere (the default), sections turn by turn give tiles, so six tiles reach empty
+    # sections and would teach that the organelles there are background; with sections:
+    # labelled they all lie on sections 2 and 3.
+    raw, truth = volume(shape=(8, 96, 96), centres=[(2.5, 48, 48)])
+    truth[[0, 1, 4, 5, 6, 7]] = 0
+    args = job_inputs(tmp_path, raw, truth, excluded=[False] * 8)
+    kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=8, seed=0)
+    sample_tiles_job(*args, tmp_path / "all", **kw)
+    every = pd.read_csv(tmp_path / "all" / "tiles.tsv", sep="\t")
+    assert sorted(set(every["z"])) == list(range(8))
+    summary = sample_tiles_job(*args, tmp_path / "labelled", **kw, sections="labelled")
+    only = pd.read_csv(tmp_path / "labelled" / "tiles.tsv", sep="\t")
+    assert len(only) == 8 and set(only["z"]) == {2, 3}
+    assert summary["excluded_sections"] == [0, 1, 4, 5, 6, 7]
+
+
+def test_sparse_labelled_sections_on_a_pyramid_reduced_in_z_are_refused_with_the_reason(tmp_path):
+    # A near-isotropic stack's working level at downsample 2 averages pairs of sections (the
+    # pyramid reduces z too); labels on every other section leave no pair wholly annotated.
+    raw, truth = volume(shape=(8, 96, 96), centres=[(1, 48, 48), (5, 48, 48)])
+    truth[0::2] = 0
+    args = job_inputs(tmp_path, raw, truth, excluded=[False] * 8, spacing=(8, 8, 8))
+    kw = dict(dataset="d1", target="mito", downsample=2, size=16, count=2, seed=0)
+    with pytest.raises(TesseraInputError) as info:
+        sample_tiles_job(*args, tmp_path / "t", **kw, sections="labelled")
+    assert str(info.value) == (
+        f"{tmp_path / 'truth.tif'}: every level-1 section averages an excluded level-0 section "
+        "(4 of 8 excluded); nothing to sample from: a working-level section averages 2 level-0 "
+        "sections, and with annotations.sections: labelled it counts as annotated only when "
+        "each of them holds mito voxels; annotate runs of consecutive sections"
+    )
+    assert not (tmp_path / "t").exists()
 
 
 def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):

@@ -8,7 +8,56 @@ from tessera.errors import TesseraInputError
 from tessera.tiles.checks import as_int, check_factors, safe_tile_id
 from tessera.tiles.registry import validate_registry
 
-__all__ = ["labels_to_target_mask", "level_shape", "sample_tiles_from_labels"]
+__all__ = [
+    "ANNOTATED_SECTIONS",
+    "labels_to_target_mask",
+    "level_shape",
+    "sample_tiles_from_labels",
+    "unannotated_sections",
+]
+
+#: Which sections of a label volume count as annotated (``targets.<t>.annotations.sections``):
+#: every one, or only those holding a target voxel.
+ANNOTATED_SECTIONS = ("all", "labelled")
+
+
+def unannotated_sections(labels, *, sections="all"):
+    """Level-0 sections of a label volume that count as not annotated, ascending.
+
+    Parameters
+    ----------
+    labels : ndarray
+        ``(P, M, N)`` label volume, > 0 = target.
+    sections : {'all', 'labelled'}, optional
+        ``'all'``: every section is annotated, and 0 is background wherever it stands.
+        ``'labelled'``: only the sections holding a target voxel are; the others (a volume
+        annotated on some sections only, the rest left 0) are neither sampled nor scored. A
+        section truly without the target is then left out too, the price of telling the two
+        apart without a record of which sections were painted.
+
+    Returns
+    -------
+    list of int
+
+    Examples
+    --------
+    >>> lab = np.zeros((4, 3, 3), dtype=np.uint8); lab[1, 1, 1] = lab[3, 0, 0] = 2
+    >>> unannotated_sections(lab, sections="labelled")
+    [0, 2]
+    >>> unannotated_sections(lab)
+    []
+    """
+    if sections not in ANNOTATED_SECTIONS:
+        raise TesseraInputError(
+            f"sections must be one of {', '.join(ANNOTATED_SECTIONS)}, got {sections!r}"
+        )
+    labels = np.asarray(labels)
+    if labels.ndim != 3:
+        raise TesseraInputError(f"expected 3D (z, y, x) labels, got shape {labels.shape}")
+    if sections == "all":
+        return []
+    labelled = labels.reshape(labels.shape[0], -1).any(axis=1)
+    return [int(z) for z in np.flatnonzero(~labelled)]
 
 
 def labels_to_target_mask(labels, *, factors, threshold=0):
@@ -247,7 +296,8 @@ def _allowed_sections(shape0, factors, level, size, exclude_z):
     ]
     if not allowed:
         raise TesseraInputError(
-            f"every section is excluded ({sorted(excluded)}); nothing to sample from"
+            f"every level-{level} section averages an excluded level-0 section ({len(excluded)} "
+            f"of {shape0[0]} excluded); nothing to sample from"
         )
     return allowed, ny, nx
 

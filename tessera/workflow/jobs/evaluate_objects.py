@@ -28,6 +28,7 @@ from tessera.object_scores import (
     voxel_ratios,
 )
 from tessera.object_views import crop_box, object_crop, plot_object_crops, plot_object_scores
+from tessera.tiles.sampling import unannotated_sections
 from tessera.tiles.split import held_out_sections
 from tessera.workflow.files.label_volumes import read_label_volume
 from tessera.workflow.files.objects_3d import write_objects_3d
@@ -76,15 +77,23 @@ COLUMNS = (
 )
 
 
-def _truth(labels, instances, shape):
-    """(true objects on the whole volume, source wording)."""
+def _truth(labels, instances, shape, sections):
+    """(true objects on the whole volume, source wording, the sections not annotated)."""
+    volume = None
+    if instances is None or sections != "all":
+        volume = read_label_volume(labels, shape, "label volume")
+    unannotated = [] if volume is None else unannotated_sections(volume, sections=sections)
     if instances is not None:
-        return read_label_volume(instances, shape, "instance volume"), FROM_INSTANCES
-    return connected_truth(read_label_volume(labels, shape, "label volume")), FROM_COMPONENTS
+        truth = read_label_volume(instances, shape, "instance volume")
+        return truth, FROM_INSTANCES, unannotated
+    return connected_truth(volume), FROM_COMPONENTS, unannotated
 
 
-def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excluded):
-    """(full-resolution sections scored for `dataset`, ascending; why none, or '')."""
+def _scored_sections(
+    registry, dataset, *, guard_sections, z_factor, depth, excluded, unannotated=()
+):
+    """(full-resolution sections scored for `dataset`, ascending; a note on what was left out,
+    or why none is scored, or '')."""
     working = held_out_sections(
         registry, dataset, guard_sections=guard_sections, depth=-(-depth // z_factor)
     )
@@ -97,7 +106,17 @@ def _scored_sections(registry, dataset, *, guard_sections, z_factor, depth, excl
         for z in range(w * z_factor, min((w + 1) * z_factor, depth))
         if z not in skip
     ]
-    return full, "" if full else "every held-out section was excluded by QC: not scored"
+    if not full:
+        return [], "every held-out section was excluded by QC: not scored"
+    kept = [z for z in full if z not in set(unannotated)]
+    if not kept:
+        return [], "no held-out section holds labels (sections: labelled): not scored"
+    if len(kept) < len(full):
+        return kept, (
+            f"{len(full) - len(kept)} held-out section(s) without labels left out "
+            "(sections: labelled)"
+        )
+    return kept, ""
 
 
 def _predicted_slab(objects_image, target, z0, z1, shape):
@@ -116,11 +135,13 @@ def _predicted_slab(objects_image, target, z0, z1, shape):
     return block[z0 - w0 * factors[0] : z1 - w0 * factors[0]], factors
 
 
-def _score_dataset(dataset, files, registry, *, target, guard_sections):
+def _score_dataset(dataset, files, registry, *, target, guard_sections, sections_rule):
     """One row of the table, the dataset's match table, and what its crops need."""
     _, raw_info = open_image(files["pyramid"])
     shape = tuple(raw_info["levels"][0].shape)
-    truth, source = _truth(files["labels"], files.get("instances"), shape)
+    truth, source, unannotated = _truth(
+        files["labels"], files.get("instances"), shape, sections_rule
+    )
     _, objects_info = open_image(files["objects"])
     z_factor = probability_fields(objects_info)["z_factor"]
     excluded = excluded_sections(files["qc"])
@@ -131,6 +152,7 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
         z_factor=z_factor,
         depth=shape[0],
         excluded=excluded,
+        unannotated=unannotated,
     )
     if not sections:
         row = {"dataset": dataset, "truth_source": source, "sections": 0, "excluded_sections": 0}
@@ -150,7 +172,7 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections):
         "excluded_sections": sum(1 for z in excluded if z0 <= z < z1),
         "prediction_factors": "x".join(str(f) for f in factors),
         **scores_from_overlaps(overlaps),
-        "note": "",
+        "note": note,
     }
     matches = match_table(overlaps)
     matches.insert(0, "dataset", dataset)
@@ -237,6 +259,7 @@ def evaluate_objects_job(
     *,
     target,
     guard_sections,
+    sections="all",
 ):
     """Score one target's stitched objects in 3D on each dataset's held-out sections.
 
@@ -247,12 +270,21 @@ def evaluate_objects_job(
     inputs : dict
         Dataset → ``objects`` (objects image), ``pyramid``, ``labels``, ``qc`` and optionally
         ``instances`` paths.
+    sections : {'all', 'labelled'}
+        Which sections of the label volumes count as annotated
+        (:func:`tessera.tiles.sampling.unannotated_sections`); the others are left out of the
+        scores, as sections QC excluded are.
     """
     registry = read_registry(f"{annotations}/{REGISTRY_FILE}")
     rows, matches, slabs = [], [], {}
     for dataset in sorted(inputs):
         row, match, slab = _score_dataset(
-            dataset, inputs[dataset], registry, target=target, guard_sections=guard_sections
+            dataset,
+            inputs[dataset],
+            registry,
+            target=target,
+            guard_sections=guard_sections,
+            sections_rule=sections,
         )
         rows.append(row)
         if match is not None:

@@ -7,7 +7,7 @@ import numpy as np
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
-from tessera.tiles.sampling import sample_tiles_from_labels
+from tessera.tiles.sampling import sample_tiles_from_labels, unannotated_sections
 from tessera.workflow.files.label_volumes import check_both_classes, read_label_volume
 from tessera.workflow.files.labels_check import read_labels_check, write_labels_check
 from tessera.workflow.files.qc_table import excluded_sections
@@ -72,6 +72,7 @@ def sample_tiles_job(
     count,
     seed,
     allow_fewer=False,
+    sections="all",
 ):
     """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
 
@@ -80,6 +81,8 @@ def sample_tiles_job(
     `allow_fewer`, a volume that cannot hold `count` tiles gives as many as fit, and the job
     logs how many (see :func:`tessera.tiles.sampling.sample_tiles_from_labels`). With
     `labels_check` (rule check_labels' record) the volume must still be the one checked.
+    `sections` says which sections count as annotated
+    (:func:`tessera.tiles.sampling.unannotated_sections`); tiles lie on those only.
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
@@ -105,6 +108,24 @@ def sample_tiles_job(
             "look at its sections.png, or set qc.exclude_flagged: false in config/config.yaml",
             source=qc_table,
         )
+    unannotated = unannotated_sections(labels, sections=sections)
+    if unannotated:
+        _log.info(
+            "%d of %d sections hold %s voxels and count as annotated (annotations.sections: %s)",
+            labels.shape[0] - len(unannotated),
+            labels.shape[0],
+            target,
+            sections,
+        )
+        exclude = sorted(set(exclude) | set(unannotated))
+        if len(exclude) == labels.shape[0]:
+            raise TesseraInputError(
+                f"section QC excluded every section of dataset {dataset} that holds {target} "
+                "voxels (with annotations.sections: labelled only those count as annotated), "
+                "so no tile can be cut; look at its sections.png, or set qc.exclude_flagged: "
+                "false in config/config.yaml",
+                source=qc_table,
+            )
     try:
         registry, tile_labels = sample_tiles_from_labels(
             labels,
@@ -119,6 +140,14 @@ def sample_tiles_job(
             allow_fewer=allow_fewer,
         )
     except TesseraInputError as exc:
+        if unannotated and str(exc).startswith("every level-"):
+            # sparse annotated sections on a pyramid reduced in z: no setting of tiles helps
+            raise TesseraInputError(
+                f"{exc}: a working-level section averages {info['factors'][level][0]} level-0 "
+                f"sections, and with annotations.sections: labelled it counts as annotated only "
+                f"when each of them holds {target} voxels; annotate runs of consecutive sections",
+                source=labels_path,
+            ) from None
         raise TesseraInputError(
             f"{exc} (target {target}: the settings are its tiles.per_dataset and tiles.size; "
             "tiles.allow_fewer: true takes as many as fit)",
