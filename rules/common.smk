@@ -291,17 +291,39 @@ def painted_masks_folder(wildcards):
     return _painted(wildcards.target)["masks"]
 
 
-def painted_masks(wildcards):
-    # Declared as input only once it exists, so that the job can explain what to paint. The
-    # folder's own time changes only when a mask is added or removed; the masks of this
-    # dataset's exported tiles are inputs too, so that one painted again reruns the import.
-    folder = Path(painted_masks_folder(wildcards))
+def _painted_mask_inputs(target, datasets):
+    # Declared as input only once it exists, so that the check can explain what to paint. The
+    # folder's own time changes only when a mask is added or removed; the masks of the
+    # datasets' exported tiles are inputs too, so that one painted again reruns the check.
+    folder = Path(_painted(target)["masks"])
     if not folder.is_dir():
         return []
-    exported = Path(f"results/{wildcards.dataset}/to_paint/{wildcards.target}")
-    tile_ids = sorted(p.stem for p in exported.glob("*.tif"))
-    masks = [folder / f"{tile_id}.png" for tile_id in tile_ids]
+    masks = [
+        folder / f"{tile.stem}.png"
+        for dataset in datasets
+        for tile in sorted(Path(f"results/{dataset}/to_paint/{target}").glob("*.tif"))
+    ]
     return [str(folder)] + [str(mask) for mask in masks if mask.is_file()]
+
+
+def painted_masks(wildcards):
+    """The masks folder and the masks of one dataset's exported tiles (import_tiles)."""
+    return _painted_mask_inputs(wildcards.target, [wildcards.dataset])
+
+
+def target_painted_masks(wildcards):
+    """The masks folder and the masks of every dataset's exported tiles (check_masks)."""
+    return _painted_mask_inputs(wildcards.target, annotated_ids(wildcards))
+
+
+def painted_exports(wildcards):
+    """Every dataset's exported tiles of a painted target, in annotated_ids order."""
+    return [f"results/{d}/to_paint/{wildcards.target}" for d in annotated_ids(wildcards)]
+
+
+# Targets annotated by painting tiles: their masks are checked together before import.
+PAINTED_TARGETS = [t for t in config["targets"] if _painted(t)]
+PAINTED_TARGETS_PATTERN = "|".join(re.escape(t) for t in PAINTED_TARGETS) or "(?!)"
 
 
 def painted_options(wildcards):

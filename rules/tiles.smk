@@ -74,10 +74,41 @@ rule export_tiles:
         "../scripts/export_tiles.py"
 
 
+# Every painted mask of a target, of every dataset, is checked by a job of its own before any
+# is imported: a mask painted wrongly after a run stops here, and the earlier tiles stay.
+
+
+rule check_masks:
+    input:
+        exported=painted_exports,
+        masks=target_painted_masks,
+        images=annotated_pyramids,
+        qc=annotated_qc_tables,
+    output:
+        check="results/study/{target}/masks_check.json",
+    log:
+        "logs/check_masks/{target}.log",
+    wildcard_constraints:
+        target=PAINTED_TARGETS_PATTERN,
+    conda:
+        "../envs/tessera.yaml"
+    resources:
+        mem_mb=scaled_by_attempt(1000),
+        runtime=scaled_by_attempt(10),
+    params:
+        datasets=annotated_ids,
+        masks=painted_masks_folder,
+        painted=painted_options,
+        code=script_code("check_masks"),
+    script:
+        "../scripts/check_masks.py"
+
+
 rule import_tiles:
     input:
         exported="results/{dataset}/to_paint/{target}",
         masks=painted_masks,
+        check="results/study/{target}/masks_check.json",
     output:
         tiles=directory("results/{dataset}/tiles_painted/{target}"),
     log:

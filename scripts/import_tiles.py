@@ -14,5 +14,6 @@ run_job(
     exported_dir=snakemake.input.exported,
     masks_dir=snakemake.params.masks,
     out_dir=snakemake.output.tiles,
+    check=snakemake.input.check,
     **snakemake.params.painted,
 )

@@ -83,6 +83,17 @@ def _orientations_text(orientations):
     return f" shared among {orientations} orientations of the tile ({turns})"
 
 
+def _unsure_text(test):
+    """The share of test pixels left out of the scores as unsure, when there were any."""
+    fraction = float(test.get("unsure_fraction", 0.0))
+    if not fraction > 0:  # none, or a table written before the column existed (NaN)
+        return ""
+    return (
+        f" ({fraction:.1%} of the test pixels, marked unsure by the annotator, were left out; "
+        "scores over whole objects, borders included, are lower)"
+    )
+
+
 def _ladder_clause(cascade):
     """How the cascade's size was chosen, when a ladder chose it (tessera.ladder)."""
     if cascade.get("mode") != "ladder":
@@ -175,7 +186,8 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"training, validation and test tiles at least {settings['split']['guard_sections']} sections apart. The "
         f"probability threshold ({val['threshold']:.2f}) was chosen for the best F1 on {int(val['tiles'])} validation "
         f"tiles; on {int(test['tiles'])} held-out test tiles pixel precision was {test['precision']:.3f}, recall "
-        f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}. Whole volumes were "
+        f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}"
+        f"{_unsure_text(test)}. Whole volumes were "
         f"predicted block by block with a halo of the model's receptive field, which gives the same result as "
         f"predicting each volume in one piece. {_smoothing_text(settings)}Probability maps were thresholded with {hysteresis}"
         + (f", {', '.join(morph)}" if morph else "")

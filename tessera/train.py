@@ -123,10 +123,18 @@ def pooled_pixels(tile_ids, labels, probabilities):
     return np.concatenate(probs), np.concatenate(truth)
 
 
+def _unsure_fraction(registry, labels, role):
+    ids = registry.loc[registry["role"] == role, "tile_id"]
+    unsure = sum(int((labels[t] == IGNORE).sum()) for t in ids)
+    return unsure / sum(labels[t].size for t in ids)
+
+
 def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
     """Pixel scores per role; the threshold is chosen by the best F1 on validation tiles.
 
-    Pixels labelled 255 (ignore) are left out. The threshold rule is
+    Pixels labelled 255 (ignore) are left out; ``unsure_fraction`` says what share of the
+    role's tile pixels that was (scores leave out the unsure border pixels an annotator marks,
+    so a wide unsure band raises them). The threshold rule is
     :func:`tessera.threshold.choose_threshold`.
     """
 
@@ -148,6 +156,7 @@ def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
                     "tiles": int((registry["role"] == role).sum()),
                     "threshold": float(best),
                     **scores_from_counts(*confusion(p, t, best)[:3]),
+                    "unsure_fraction": _unsure_fraction(registry, labels, role),
                 }
             )
     return pd.DataFrame(rows)

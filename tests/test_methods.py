@@ -34,10 +34,12 @@ def test_checksums_match_hashlib(tmp_path):
     assert (tmp_path / "inputs.sha256").read_text().startswith(hashlib.sha256(data).hexdigest())
 
 
-def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None):
-    """The methods text of a small run of one target, mitochondria, written from its files."""
+def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None, unsure=None):
+    """The methods text of a small run of one target, mitochondria, written from its files
+    (`unsure`: the tile scores' unsure_fraction of validation and test; a table written before
+    that column when None)."""
     scores = tmp_path / "scores.tsv"
-    pd.DataFrame(
+    table = pd.DataFrame(
         {
             "role": ["validation", "test"],
             "tiles": [4, 5],
@@ -47,7 +49,10 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None):
             "f1": [0.9, 0.891],
             "jaccard": [0.8, 0.803],
         }
-    ).to_csv(scores, sep="\t", index=False)
+    )
+    if unsure is not None:
+        table["unsure_fraction"] = unsure
+    table.to_csv(scores, sep="\t", index=False)
     settings = tmp_path / "objects.json"
     settings.write_text(
         json.dumps(
@@ -154,6 +159,17 @@ def test_methods_text_is_written_from_the_run(tmp_path):
         "validated against held-out annotation",
     ):
         assert fact in text, fact
+
+
+def test_methods_text_says_what_share_of_test_pixels_was_left_out_as_unsure(tmp_path):
+    # Scores leave out the pixels an annotator marked unsure (the ignore value); a wide band of
+    # them along every border raises the scores, so the share is stated beside them.
+    text = _methods_of_a_run(tmp_path, unsure=[0.1, 0.125])
+    assert (
+        "Jaccard index 0.803 (12.5% of the test pixels, marked unsure by the annotator, were "
+        "left out; scores over whole objects, borders included, are lower)." in text
+    )
+    assert "marked unsure" not in _methods_of_a_run(tmp_path, unsure=[0.0, 0.0])
 
 
 def _first_node(tmp_path, spec, seed):

@@ -180,7 +180,7 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
     points = read_points(sheet, datasets=["d1"], targets=["mito"])
     before = listing(tmp_path)
     with pytest.raises(
-        TesseraInputError, match=r"edge\.tsv.*row 2 .*tile around .*outside the image of shape"
+        TesseraInputError, match=r"edge\.tsv.*row 3 .*tile around .*outside the image of shape"
     ):
         export_tiles(
             exported["store"],
@@ -191,10 +191,10 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
             out_dir=tmp_path / "edge_tiles",
         )
     assert listing(tmp_path) == before
-    # a section beyond the stack is outside too
+    # a section beyond the stack (6 sections) is named as such, not as an edge in plane
     sheet = write_points(tmp_path / "deep.tsv", [("d1", "mito", 6, 40, 40)])
     points = read_points(sheet, datasets=["d1"], targets=["mito"])
-    with pytest.raises(TesseraInputError, match=r"deep\.tsv.*row 1"):
+    with pytest.raises(TesseraInputError) as info:
         export_tiles(
             exported["store"],
             points,
@@ -203,7 +203,31 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
             size=16,
             out_dir=tmp_path / "deep_tiles",
         )
+    assert str(info.value) == (
+        f"{sheet}: row 2 (tile 'd1-mito-z6-y40-x40'): section z=6 lies beyond the stack "
+        "(level-1 section 6; the image has 6 sections at level 1, 6 at most at full "
+        "resolution); expected a section of the stack, numbered from 0"
+    )
     assert not (tmp_path / "deep_tiles").exists()
+    # a tile larger than the sections (48 x 48 px at level 1) fits nowhere: the size is named,
+    # in the working level's pixels, not the point
+    sheet = write_points(tmp_path / "big.tsv", [("d1", "mito", 1, 48, 48)])
+    points = read_points(sheet, datasets=["d1"], targets=["mito"])
+    with pytest.raises(TesseraInputError) as info:
+        export_tiles(
+            exported["store"],
+            points,
+            level=1,
+            factors=FACTORS,
+            size=64,
+            out_dir=tmp_path / "big_tiles",
+        )
+    assert str(info.value).endswith(
+        "a tile of 64 x 64 px is larger than the level-1 sections (48 x 48 px); tile sizes "
+        "count pixels of the working level (downsample): set the row's size, or the target's "
+        "tiles.size, to at most 48"
+    )
+    assert not (tmp_path / "big_tiles").exists()
 
 
 def test_export_uses_per_row_size(tmp_path):
@@ -226,11 +250,11 @@ def test_export_uses_per_row_size(tmp_path):
 @pytest.mark.parametrize(
     "row, message",
     [
-        (("d9", "mito", 1, 40, 40), r"row 2, column 'dataset': unknown dataset 'd9'"),
-        (("d1", "golgi", 1, 40, 40), r"row 2.*target.*'golgi'"),
-        (("d1", "mito", 1, -4, 40), r"row 2.*'y'.*-4"),
-        (("d1", "mito", 1.5, 4, 40), r"row 2.*'z'.*1\.5"),
-        (("d1", "mito", 1, "", 40), r"row 2.*'y'.*''"),
+        (("d9", "mito", 1, 40, 40), r"row 3, column 'dataset': unknown dataset 'd9'"),
+        (("d1", "golgi", 1, 40, 40), r"row 3.*target.*'golgi'"),
+        (("d1", "mito", 1, -4, 40), r"row 3.*'y'.*-4"),
+        (("d1", "mito", 1.5, 4, 40), r"row 3.*'z'.*1\.5"),
+        (("d1", "mito", 1, "", 40), r"row 3.*'y'.*''"),
     ],
 )
 def test_points_errors_name_file_and_row(tmp_path, row, message):
@@ -282,11 +306,11 @@ def test_points_cells_are_data_never_code(tmp_path):
     )
     with pytest.raises(
         TesseraInputError,
-        match=r"points\.tsv: row 1, column 'z': expected a whole number >= 0, got",
+        match=r"points\.tsv: row 2, column 'z': expected a whole number >= 0, got",
     ):
         read_points(sheet, datasets=["d1"], targets=["mito"])
     formula = write_points(tmp_path / "f.tsv", [("d1", "mito", "=1+1", 10, 10)])
-    with pytest.raises(TesseraInputError, match=r"f\.tsv: row 1, column 'z'"):
+    with pytest.raises(TesseraInputError, match=r"f\.tsv: row 2, column 'z'"):
         read_points(formula, datasets=["d1"], targets=["mito"])
     assert not marker.exists()
 
@@ -301,7 +325,7 @@ def test_points_tile_ids_cannot_name_other_folders(tmp_path, tile_id):
         columns=("dataset", "target", "z", "y", "x", "tile_id"),
     )
     with pytest.raises(
-        TesseraInputError, match=r"p\.tsv: row 1, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"
+        TesseraInputError, match=r"p\.tsv: row 2, column 'tile_id': .* must match \[A-Za-z0-9_-\]\+"
     ):
         read_points(sheet, datasets=["d1"], targets=["mito"])
 
@@ -389,7 +413,11 @@ def test_zero_one_mask_with_ignore_255(tmp_path):
         ("float", r"integer pixels.*float32"),
         ("seven", r"unexpected values \[7\]"),
         ("both", r"unexpected values \[1, 255\].*ignore"),
-        ("background", r"the mask has no target pixels"),
+        # a grey unsure band without ignore_value: the key that declares it is named
+        ("band", r"unexpected values \[128\]; .*give it as the ignore value \(ignore_value\)$"),
+        # a lossy save: stray grey levels around every edge
+        ("lossy", r"unexpected values \[2, 3, 4, 250\]; .*many grey levels: .*save as PNG$"),
+        ("background", r"the mask has no target pixels.*\(allow_single_class\)$"),
         ("foreground", r"the mask has no background pixels"),
         ("colour", r"colour pixels"),
     ],
@@ -407,6 +435,14 @@ def test_bad_masks_raise_naming_the_file(tmp_path, case, message):
     elif case == "both":
         img = lab * 255
         img[0, 2] = 1
+        save_png(path, img)
+    elif case == "band":
+        img = lab * 255
+        img[0] = 128
+        save_png(path, img)
+    elif case == "lossy":
+        img = lab * 255
+        img[0, :4] = (2, 3, 4, 250)
         save_png(path, img)
     elif case == "background":
         save_png(path, np.zeros_like(lab))

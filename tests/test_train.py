@@ -131,6 +131,10 @@ def test_threshold_comes_from_validation_tiles_not_test_tiles():
     assert table.loc["test", "f1"] == pytest.approx(f1_score(test_t, pred))
     assert table.loc["test", "jaccard"] == pytest.approx(jaccard_score(test_t, pred))
     assert table.loc["validation", "f1"] == pytest.approx(f1_score(val_t, val_p >= expected))
+    # the share of pixels marked unsure (255), counted by hand from the tiles
+    for role, ids in (("validation", ["v1", "v2"]), ("test", ["t1", "t2"])):
+        unsure = sum(int((labels[i] == 255).sum()) for i in ids) / sum(labels[i].size for i in ids)
+        assert table.loc[role, "unsure_fraction"] == pytest.approx(unsure)
 
 
 def test_scoring_needs_validation_tiles():

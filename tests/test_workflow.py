@@ -674,7 +674,7 @@ def test_stage_code_version_follows_the_import_graph():
     assert "tessera.io.omezarr" in module_closure("tessera.workflow.jobs.section_qc")
 
 
-def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, repo):
+def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, repo, file_digests):
     import tifffile
     from PIL import Image
 
@@ -730,6 +730,17 @@ def test_painted_route_exports_waits_for_masks_then_registers_them(tmp_path, rep
     snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path)
     _, labels = read_annotation_set(tmp_path / "results/study/nuclei/tiles")
     assert np.array_equal(labels[tile_id], repainted.astype(np.uint8))
+
+    # A mask saved wrongly later (another size) stops at rule check_masks, before any import,
+    # so the tiles imported earlier stay as they were (Snakemake clears a job's outputs when
+    # the job starts).
+    imported = [tmp_path / f"results/{d}/tiles_painted/nuclei" for d in ("w1", "c1")]
+    before = [file_digests(folder) for folder in imported]
+    Image.fromarray(np.zeros((8, 8), np.uint8)).save(masks / f"{tile_id}.png")
+    result = snakemake(*run, "results/study/nuclei/tiles", cwd=tmp_path, check=False)
+    assert result.returncode != 0
+    assert "expected a mask of shape" in result.stderr + result.stdout
+    assert [file_digests(folder) for folder in imported] == before
 
 
 def _one_stack_study(tmp_path):

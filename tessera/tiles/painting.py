@@ -92,15 +92,25 @@ def _tile_around(idx, p, side, shape, level, factors, where_sheet):
     fz, fy, fx = factors
     z, yc, xc = int(p["z"]) // fz, int(p["y"]) // fy, int(p["x"]) // fx
     y0, x0 = yc - side // 2, xc - side // 2
-    if not (
-        0 <= z < shape[0]
-        and y0 >= 0
-        and x0 >= 0
-        and y0 + side <= shape[1]
-        and x0 + side <= shape[2]
-    ):
+    where = f"row {idx} (tile {p['tile_id']!r})"
+    if not 0 <= z < shape[0]:
         raise TesseraInputError(
-            f"row {idx} (tile {p['tile_id']!r}): the {side} x {side} tile around level-0 "
+            f"{where}: section z={p['z']} lies beyond the stack (level-{level} section {z}; the "
+            f"image has {shape[0]} sections at level {level}, {shape[0] * fz} at most at full "
+            "resolution); expected a section of the stack, numbered from 0",
+            source=where_sheet,
+        )
+    if side > min(shape[1:]):
+        raise TesseraInputError(
+            f"{where}: a tile of {side} x {side} px is larger than the level-{level} sections "
+            f"({shape[1]} x {shape[2]} px); tile sizes count pixels of the working level "
+            f"(downsample): set the row's size, or the target's tiles.size, to at most "
+            f"{min(shape[1:])}",
+            source=where_sheet,
+        )
+    if not (y0 >= 0 and x0 >= 0 and y0 + side <= shape[1] and x0 + side <= shape[2]):
+        raise TesseraInputError(
+            f"{where}: the {side} x {side} tile around level-0 "
             f"point z={p['z']}, y={p['y']}, x={p['x']} covers level-{level} z={z}, rows "
             f"{y0}..{y0 + side - 1}, columns {x0}..{x0 + side - 1}, outside the image of "
             f"shape {shape}; move the point at least {side // 2} pixels (level {level}) "
@@ -194,13 +204,9 @@ def painted_to_labels(array, *, shape, ignore_value=None, allow_single_class=Fal
     unexpected = [v for v in rest if v not in candidates]
     if unexpected or len(rest) > 1:
         bad = unexpected if unexpected else rest
-        hint = (
-            ""
-            if unexpected
-            else "; if one of them marks unsure pixels, give it as the ignore value"
-        )
         raise TesseraInputError(
-            f"unexpected values {bad}; expected {allowed_text}{hint}", source=source
+            f"unexpected values {bad}; expected {allowed_text}{_values_hint(bad, ignore_value)}",
+            source=source,
         )
     out = np.zeros(shape, dtype=np.uint8)
     if rest:
@@ -210,6 +216,22 @@ def painted_to_labels(array, *, shape, ignore_value=None, allow_single_class=Fal
     if not allow_single_class:
         _check_both_classes(out, source=source)
     return out
+
+
+#: More stray grey levels than this in a mask point to a lossy save or a soft brush.
+_FEW_VALUES = 3
+
+
+def _values_hint(bad, ignore_value):
+    """What the unexpected values of a mask most likely are, and the fix."""
+    if len(bad) > _FEW_VALUES:
+        return (
+            "; many grey levels: saved with lossy compression (JPEG) or painted with a soft, "
+            "anti-aliased brush? paint with a hard-edged brush and save as PNG"
+        )
+    if ignore_value is None:
+        return "; if one of them marks unsure pixels, give it as the ignore value (ignore_value)"
+    return ""
 
 
 def _check_both_classes(labels, *, source):
@@ -223,7 +245,8 @@ def _check_both_classes(labels, *, source):
         )
         raise TesseraInputError(
             f"the mask has {what}; a painted tile needs both classes (paint every target "
-            "pixel, leave background at 0) unless single-class tiles are allowed",
+            "pixel, leave background at 0) unless single-class tiles are allowed "
+            "(allow_single_class)",
             source=source,
         )
 

@@ -35,8 +35,9 @@ def read_points(path, *, datasets, targets):
     Returns
     -------
     pandas.DataFrame
-        Columns ``tile_id, dataset, target, z, y, x, size``; the index is the sheet row number
-        (1 = first line below the header), so later errors can name the row. ``size`` is 0
+        Columns ``tile_id, dataset, target, z, y, x, size``; the index is the sheet row as an
+        editor numbers its lines (the header is row 1, the first point row 2), so later errors
+        can name the row. ``size`` is 0
         where not given. Missing tile ids become ``<dataset>-<target>-z<z>-y<y>-x<x>`` (characters
         outside ``[A-Za-z0-9_-]`` replaced by ``-``).
 
@@ -45,7 +46,7 @@ def read_points(path, *, datasets, targets):
     >>> import tempfile
     >>> f = Path(tempfile.mkdtemp()) / "points.tsv"
     >>> _ = f.write_text("dataset\\ttarget\\tz\\ty\\tx\\nd1\\tmito\\t4\\t100\\t200\\n")
-    >>> read_points(f, datasets=["d1"], targets=["mito"]).loc[1, "tile_id"]
+    >>> read_points(f, datasets=["d1"], targets=["mito"]).loc[2, "tile_id"]
     'd1-mito-z4-y100-x200'
     """
     path = Path(path)
@@ -64,13 +65,13 @@ def read_points(path, *, datasets, targets):
     if len(sheet) == 0:
         raise TesseraInputError("the points sheet has no rows", source=path)
     records = [
-        _point_record(row, f"row {i + 1}", datasets, targets, path)
+        _point_record(row, f"row {i + 2}", datasets, targets, path)
         for i, row in enumerate(sheet.to_dict("records"))
     ]
     table = pd.DataFrame(
         records,
         columns=["tile_id", "dataset", "target", "z", "y", "x", "size"],
-        index=pd.RangeIndex(1, len(records) + 1),
+        index=pd.RangeIndex(2, len(records) + 2),
     )
     ids = table["tile_id"].tolist()
     dupes = sorted({t for t in ids if ids.count(t) > 1})

@@ -2,7 +2,8 @@
 
 One row per role (``validation``, ``test``): ``role``, ``tiles``, ``threshold`` (the one chosen
 on the validation tiles, :func:`tessera.threshold.choose_threshold`), ``precision``, ``recall``,
-``f1``, ``jaccard``. Rule predict_tiles writes it; objects (the default threshold), statistics
+``f1``, ``jaccard`` and ``unsure_fraction`` (the share of the tiles' pixels marked unsure, left
+out of the scores). Rule predict_tiles writes it; objects (the default threshold), statistics
 and methods read it.
 """
 

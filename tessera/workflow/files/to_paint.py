@@ -23,7 +23,7 @@ from tessera.tiles.checks import as_int
 from tessera.tiles.painting import contrast_preview, painted_to_labels, tiles_around_points
 from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry
 
-__all__ = ["export_tiles", "import_painted", "read_painted_mask"]
+__all__ = ["export_tiles", "import_painted", "mask_files", "read_painted_mask", "unmatched_masks"]
 
 _MASK_SUFFIXES = (".png", ".tif", ".tiff")
 
@@ -129,6 +129,50 @@ def read_painted_mask(path, *, shape, ignore_value=None, allow_single_class=Fals
     )
 
 
+def mask_files(masks_dir, tile_id):
+    """The files in `masks_dir` that are a mask of tile `tile_id` (``.png``, ``.tif``,
+    ``.tiff``): one when the tile is painted.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp()); (d / "t1.png").write_bytes(b"")
+    0
+    >>> [f.name for f in mask_files(d, "t1")], mask_files(d, "t2")
+    (['t1.png'], [])
+    """
+    masks_dir = Path(masks_dir)
+    return [
+        masks_dir / f"{tile_id}{s}"
+        for s in _MASK_SUFFIXES
+        if (masks_dir / f"{tile_id}{s}").is_file()
+    ]
+
+
+def unmatched_masks(masks_dir, tile_ids):
+    """Names of the image files in `masks_dir` that are the mask of none of `tile_ids` (a name
+    mistyped, a copy an editor saved beside the mask), sorted; hidden files are left out.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> for name in ("t1.png", "t1 copy.png", "notes.txt"):
+    ...     _ = (d / name).write_bytes(b"")
+    >>> unmatched_masks(d, ["t1"])
+    ['t1 copy.png']
+    """
+    tile_ids = set(tile_ids)
+    return sorted(
+        f.name
+        for f in Path(masks_dir).iterdir()
+        if f.is_file()
+        and not f.name.startswith(".")
+        and f.suffix.lower() in _MASK_SUFFIXES
+        and f.stem not in tile_ids
+    )
+
+
 def import_painted(tiles_dir, masks_dir, *, ignore_value=None, allow_single_class=False):
     """Read the painted mask of every exported tile.
 
@@ -160,11 +204,7 @@ def import_painted(tiles_dir, masks_dir, *, ignore_value=None, allow_single_clas
     registry = read_registry(tiles_dir / REGISTRY_FILE)
     labels = {}
     for row in registry.itertuples(index=False):
-        found = [
-            masks_dir / f"{row.tile_id}{s}"
-            for s in _MASK_SUFFIXES
-            if (masks_dir / f"{row.tile_id}{s}").is_file()
-        ]
+        found = mask_files(masks_dir, row.tile_id)
         if not found:
             raise TesseraInputError(
                 f"no mask for tile {row.tile_id!r}; expected {row.tile_id}.png (or "
