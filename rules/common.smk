@@ -32,6 +32,7 @@ from tessera.workflow.load_time_checks import (
 from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.points import read_points
+from tessera.workflow.files.to_paint import mask_files
 from tessera.workflow.input_identity import input_identity
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
@@ -299,11 +300,12 @@ def _painted_mask_inputs(target, datasets):
     if not folder.is_dir():
         return []
     masks = [
-        folder / f"{tile.stem}.png"
+        mask
         for dataset in datasets
         for tile in sorted(Path(f"results/{dataset}/to_paint/{target}").glob("*.tif"))
+        for mask in mask_files(folder, tile.stem)
     ]
-    return [str(folder)] + [str(mask) for mask in masks if mask.is_file()]
+    return [str(folder)] + [str(mask) for mask in masks]
 
 
 def painted_masks(wildcards):
@@ -318,7 +320,9 @@ def target_painted_masks(wildcards):
 
 def painted_exports(wildcards):
     """Every dataset's exported tiles of a painted target, in annotated_ids order."""
-    return [f"results/{d}/to_paint/{wildcards.target}" for d in annotated_ids(wildcards)]
+    return [
+        f"results/{d}/to_paint/{wildcards.target}" for d in annotated_ids(wildcards)
+    ]
 
 
 # Targets annotated by painting tiles: their masks are checked together before import.
