@@ -333,7 +333,7 @@ def _statistics_sentence(c, sheet_rows):
     >>> c = {"statistics": {"confidence": 0.95, "reference_condition": None}}
     >>> rows = {"a": {"condition": "warm"}, "b": {"condition": "cold"}, "c": {"condition": "hot"}}
     >>> print(_statistics_sentence(c, rows).split(". ")[1])
-    Each other condition (cold, hot) was compared with the reference condition warm (the first condition of the datasets sheet) on the per-animal values (Welch interval, 95%, which allows unequal numbers of animals per condition); objects were never treated as independent samples.
+    Each other condition (cold, hot) was compared with the reference condition warm (the first condition of the datasets sheet) on the per-animal values (two-sided Welch t-test and interval, 95%, which allow unequal numbers of animals per condition; sizes on the log scale, as ratios; p-values also Holm-adjusted over every comparison of the target); objects were never treated as independent samples.
     >>> print(_statistics_sentence(c, {"a": {"condition": "warm"}}).split(". ")[1])
     With one condition (warm) nothing was compared: each measure was described per animal and per condition; objects were never treated as independent samples.
     """
@@ -352,8 +352,10 @@ def _statistics_sentence(c, sheet_rows):
         others = ", ".join(x for x in conditions if x != reference)
         text += (
             f"Each other condition ({others}) was compared with the reference condition "
-            f"{reference} ({why}) on the per-animal values (Welch interval, "
-            f"{stats['confidence']:.0%}, which allows unequal numbers of animals per condition)"
+            f"{reference} ({why}) on the per-animal values (two-sided Welch t-test and interval, "
+            f"{stats['confidence']:.0%}, which allow unequal numbers of animals per condition; "
+            "sizes on the log scale, as ratios; p-values also Holm-adjusted over every comparison "
+            "of the target)"
         )
     return text + "; objects were never treated as independent samples."
 

@@ -108,6 +108,7 @@ COMPARISON_COLUMNS = (
     "ci_high",
     "confidence",
     "p_value",
+    "p_holm",
     "warning",
 )
 
@@ -130,8 +131,11 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95, conditi
 
     For measures in :data:`LOG_MEASURES` the comparison is on log values and reported as a
     ratio (condition / reference) with its interval; otherwise as a difference. The interval and
-    p-value are Welch's (unequal variances), so unbalanced designs (3 animals against 5) are
-    handled; an effect without an interval, or no effect at all, carries a ``warning`` in words.
+    p-value are Welch's (a two-sided Welch t-test, unequal variances), so unbalanced designs (3
+    animals against 5) are handled; an effect without an interval, or no effect at all, carries a
+    ``warning`` in words. ``p_holm`` is the p-value adjusted for every comparison of the table
+    (each measure and condition) by Holm's method (:func:`holm_adjusted`): a table of ten
+    measures tests ten hypotheses, and a p-value below 0.05 among them is likely by chance alone.
 
     Parameters
     ----------
@@ -152,7 +156,8 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95, conditi
         reference), none when the study has one condition. ``animals`` and
         ``reference_animals`` count the animals with a value; ``warning`` says in words why an
         interval is missing or unreliable (fewer than 3 animals in a group, no animal measured,
-        no spread between animals), empty otherwise.
+        no spread between animals) and which animals had no whole object to measure, empty
+        otherwise.
 
     Examples
     --------
@@ -173,7 +178,35 @@ def compare_conditions(animals, *, measures, reference, confidence=0.95, conditi
     for measure in measures:
         for condition in (c for c in order if c != reference):
             rows.append(_compare_one(animals, measure, condition, reference, confidence=confidence))
-    return pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
+    table = pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
+    table["p_holm"] = holm_adjusted(table["p_value"].to_numpy(dtype=float))
+    return table
+
+
+def holm_adjusted(p_values):
+    """Holm's step-down adjustment of p-values for multiple comparisons (Holm 1979).
+
+    The k-th smallest of m p-values is multiplied by m - k + 1, each adjusted value is at least
+    the one before it in that order, and none exceeds 1; rejecting where the adjusted value is
+    below α keeps the chance of any false rejection among the m at most α. NaN p-values (no
+    test) stay NaN and are not counted in m.
+
+    Examples
+    --------
+    Worked by hand: sorted 0.005, 0.01, 0.03, 0.04 become 4 × 0.005, 3 × 0.01, 2 × 0.03 and
+    max(1 × 0.04, 0.06).
+
+    >>> holm_adjusted([0.01, 0.04, 0.03, 0.005, float("nan")]).round(4).tolist()
+    [0.03, 0.06, 0.06, 0.02, nan]
+    """
+    p = np.asarray(p_values, dtype=float)
+    out = np.full(p.shape, np.nan)
+    tested = np.flatnonzero(np.isfinite(p))
+    order = tested[np.argsort(p[tested], kind="stable")]
+    m = order.size
+    scaled = p[order] * (m - np.arange(m))
+    out[order] = np.minimum(np.maximum.accumulate(scaled), 1.0)
+    return out
 
 
 def _measured(animals, measure, condition, log):
@@ -196,6 +229,13 @@ def _compare_one(animals, measure, condition, reference, *, confidence):
     b = _group_values(animals, measure, reference, log)
     est, low, high, p = _welch(a, b, confidence)
     warning = _comparison_warning({condition: len(a), reference: len(b)}, low, high)
+    unmeasured = "; ".join(
+        note
+        for group, values in ((condition, a), (reference, b))
+        if (note := _unmeasured_note(animals, group, len(values)))
+    )
+    if unmeasured and len(a) and len(b):
+        warning = f"{warning}; {unmeasured}" if warning else unmeasured
     if warning:
         _log.warning("%s, %s vs %s: %s", measure, condition, reference, warning)
     transform = math.exp if log else float
@@ -215,6 +255,24 @@ def _compare_one(animals, measure, condition, reference, *, confidence):
         "p_value": p,
         "warning": warning,
     }
+
+
+def _unmeasured_note(animals, condition, measured):
+    """Which share of a condition's animals had no value (no whole object), or "".
+
+    Examples
+    --------
+    >>> animals = pd.DataFrame({"condition": ["warm"] * 4})
+    >>> _unmeasured_note(animals, "warm", 3)
+    "1 of 4 animals in 'warm' without a whole object to measure, left out"
+    """
+    total = int((animals["condition"] == condition).sum())
+    if measured >= total:
+        return ""
+    return (
+        f"{total - measured} of {total} animals in {condition!r} without a whole object to "
+        "measure, left out"
+    )
 
 
 def _comparison_warning(counts, ci_low, ci_high):
@@ -347,11 +405,18 @@ def describe_conditions(animals, *, measures, conditions=None):
         log = measure in LOG_MEASURES
         for condition in _ordered_conditions(animals, conditions):
             values = _measured(animals, measure, condition, log)
-            note = ""
+            total = int((animals["condition"] == condition).sum())
+            notes = []
             if values.size == 0:
-                note = "no animal in this condition has a whole object to measure"
-            elif values.size == 1:
-                note = "one animal: no spread between animals"
+                notes.append("no animal in this condition has a whole object to measure")
+            elif values.size < total:
+                notes.append(
+                    f"{total - values.size} of {total} animals without a whole object to "
+                    "measure, left out of the mean"
+                )
+            if values.size == 1:
+                notes.append("one animal: no spread between animals")
+            note = "; ".join(notes)
             mean = math.nan
             if values.size:
                 mean = math.exp(np.log(values).mean()) if log else float(values.mean())
@@ -359,7 +424,7 @@ def describe_conditions(animals, *, measures, conditions=None):
                 {
                     "measure": measure,
                     "condition": condition,
-                    "animals": int((animals["condition"] == condition).sum()),
+                    "animals": total,
                     "measured_animals": int(values.size),
                     "scale": "geometric mean" if log else "mean",
                     "mean": mean,

@@ -19,6 +19,7 @@ from tessera.statistics import (
     animal_summaries,
     compare_conditions,
     describe_conditions,
+    holm_adjusted,
     summarise_study,
 )
 from tessera.statistics_plot import plot_conditions
@@ -240,6 +241,31 @@ def test_no_spread_gives_scipys_zero_width_interval_with_a_warning():
     assert row["warning"].startswith("interval of zero width: the per-animal values do not vary")
 
 
+def test_holm_adjustment_equals_statsmodels():
+    # Reference: statsmodels.stats.multitest.multipletests(method="holm") on the tested p-values;
+    # an untested comparison (NaN) is neither adjusted nor counted.
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.random.default_rng(3).uniform(0, 0.2, 12)
+    p[[2, 7]] = np.nan
+    ours = holm_adjusted(p)
+    tested = np.isfinite(p)
+    assert np.isnan(ours[~tested]).all()
+    np.testing.assert_allclose(ours[tested], multipletests(p[tested], method="holm")[1])
+
+
+def test_comparisons_carry_p_values_adjusted_over_the_whole_table():
+    # Three conditions against a reference on two measures: four tests, one family.
+    rng = np.random.default_rng(4)
+    values = {c: rng.normal(m, 0.2, 4) for c, m in (("ref", 1.0), ("a", 1.3), ("b", 1.05))}
+    animals = animals_table(values, measure="N_V")
+    animals["V_V"] = rng.normal(0.1, 0.01, len(animals))
+    table = compare_conditions(animals, measures=["N_V", "V_V"], reference="ref")
+    assert len(table) == 4
+    np.testing.assert_allclose(table["p_holm"], holm_adjusted(table["p_value"]))
+    assert (table["p_holm"] >= table["p_value"]).all()
+
+
 def small_dataset(boxes, *, shape=(6, 16, 16), spacing=(50, 20, 20)):
     """Object and region tables of one dataset made as the pipeline makes them: labelled from a
     probability volume with cubes of 0.9 at `boxes` (z, y, x, side), then measured."""
@@ -278,6 +304,15 @@ def test_a_dataset_without_objects_keeps_its_animal_with_no_value():
     assert m2["objects"] == 0 and math.isnan(m2["volume_um3"]) and m2["region_objects"] == 0
     volume = comparison.set_index("measure").loc["volume_um3"]
     assert (volume["animals"], volume["reference_animals"]) == (1, 1)
+    # the animal left out is said so, not dropped silently
+    assert volume["warning"].endswith(
+        "; 1 of 2 animals in 'warm' without a whole object to measure, left out"
+    )
+    described = describe_conditions(animals, measures=["volume_um3"]).set_index("condition")
+    assert described.loc["warm", "note"] == (
+        "1 of 2 animals without a whole object to measure, left out of the mean; one animal: no "
+        "spread between animals"
+    )
 
 
 def test_a_target_without_whole_objects_is_not_compared_and_says_why():

@@ -7,7 +7,7 @@ from tessera.io.atomic import write_table
 
 #: Columns that hold numbers but may be empty (no interval with fewer than 2 animals, no mean
 #: for a condition without a whole object); the ``warning`` column says why in words.
-NUMERIC = ("mean", "reference_mean", "effect", "ci_low", "ci_high", "p_value")
+NUMERIC = ("mean", "reference_mean", "effect", "ci_low", "ci_high", "p_value", "p_holm")
 
 
 def write_comparison_table(path, table):
