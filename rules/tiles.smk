@@ -10,6 +10,7 @@ rule check_labels:
         labels=target_labels,
         instances=target_instances,
         image="results/{dataset}/ingest/raw.ome.zarr",
+        pyramid="results/{dataset}/pyramid/raw.ome.zarr",
     output:
         check="results/{dataset}/labels_check/{target}.json",
     log:
@@ -22,6 +23,8 @@ rule check_labels:
     params:
         # size and time: a volume replaced by an older file reruns the dataset's tiles too
         identity=target_labels_identity,
+        downsample=target_downsample,
+        annotated_sections=target_annotated_sections,
         code=script_code("check_labels"),
     script:
         "../scripts/check_labels.py"

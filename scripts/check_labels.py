@@ -16,4 +16,7 @@ run_job(
     image_path=snakemake.input.image,
     out_path=snakemake.output.check,
     target=snakemake.wildcards.target,
+    pyramid_path=snakemake.input.pyramid,
+    downsample=snakemake.params.downsample,
+    sections=snakemake.params.annotated_sections,
 )

@@ -103,14 +103,82 @@ def _isotropic_factors(spacing):
     return tuple(max(1, int(round(s / finest))) for s in spacing)
 
 
+#: A side branch of a skeleton no longer than this many times the distance from its junction
+#: to the object's surface is pruned: shorter than the object is thick there, it is a bump of
+#: the surface (a voxel staircase, say), not a branch.
+SPUR_RADII = 2.0
+
+_NEIGHBOURS = [np.array(o) - 1 for o in np.ndindex(3, 3, 3) if o != (1, 1, 1)]
+
+
+def _near_isotropic(mask, spacing):
+    """`mask` on a grid refined along its coarse axes by whole factors (linear interpolation
+    between voxel centres, kept where >= 1/2), and the refined grid's voxel size.
+
+    A nearest-neighbour copy would turn each section into a slab with a step at its faces,
+    which thinning reads as side branches; interpolating keeps the surface smooth across them.
+    """
+    factors = _isotropic_factors(spacing)
+    step = np.array([s / f for s, f in zip(spacing, factors, strict=True)])
+    mask = np.asarray(mask, bool)
+    if all(f == 1 for f in factors):
+        return mask, step
+    fine = ndimage.zoom(mask.astype(np.float32), factors, order=1, mode="nearest", grid_mode=True)
+    return fine >= 0.5, step
+
+
+def _skeleton_graph(skeleton, step):
+    """Voxels of a skeleton and, for each, its 26-neighbours with the physical distances."""
+    points = np.argwhere(skeleton)
+    index = {tuple(p): i for i, p in enumerate(points)}
+    neighbours = [[] for _ in points]
+    for i, p in enumerate(points):
+        for o in _NEIGHBOURS:
+            j = index.get(tuple(p + o))
+            if j is not None:
+                neighbours[i].append((j, float(np.linalg.norm(o * step))))
+    return points, neighbours
+
+
+def _shortest_spur(alive, neighbours, limit):
+    """(length, voxels) of the shortest side branch shorter than its junction's `limit`, or
+    None. A side branch runs from an end voxel through voxels of two neighbours to a junction
+    (more than two); a path between two ends is the whole skeleton, never a spur."""
+
+    def degree(i):
+        return sum(1 for j, _ in neighbours[i] if alive[j])
+
+    best = None
+    for end in np.flatnonzero(alive):
+        if degree(end) != 1:
+            continue
+        path, previous, current, length = [end], -1, end, 0.0
+        while True:
+            onward = [(j, d) for j, d in neighbours[current] if alive[j] and j != previous]
+            if len(onward) != 1:
+                break
+            following, distance = onward[0]
+            length += distance
+            if degree(following) > 2:
+                if length < limit[following] and (best is None or length < best[0]):
+                    best = (length, path)
+                break
+            if degree(following) == 1:
+                break
+            path.append(following)
+            previous, current = current, following
+    return best
+
+
 def skeleton_measures(mask, *, spacing):
     """Length (µm), branch points and end points of the object's 3D skeleton.
 
-    The mask is first upsampled by whole factors (nearest) so voxels are close to cubes, then
-    thinned (``skimage.morphology.skeletonize``). The length sums the physical distances between
-    26-neighbouring skeleton voxels; a branch point is a cluster of skeleton voxels with more than
-    two neighbours, an end point a voxel with exactly one. A skeleton of one voxel has length 0 and
-    no end points.
+    The mask is first refined to a near-isotropic grid (:func:`_near_isotropic`), then thinned
+    (``skimage.morphology.skeletonize``). Side branches no longer than :data:`SPUR_RADII` times
+    the distance from their junction to the surface are pruned, shortest first, as surface
+    bumps. The length sums the physical distances between 26-neighbouring skeleton voxels; a
+    branch point is a cluster of skeleton voxels with more than two neighbours, an end point a
+    voxel with exactly one. A skeleton of one voxel has length 0 and no end points.
 
     Examples
     --------
@@ -120,31 +188,23 @@ def skeleton_measures(mask, *, spacing):
     (0, 2, True)
     """
     spacing = normalize_spacing(spacing, 3)
-    factors = _isotropic_factors(spacing)
-    fine = np.asarray(mask, bool)
-    for axis, f in enumerate(factors):
-        if f > 1:
-            fine = np.repeat(fine, f, axis=axis)
-    step = np.array([s / f for s, f in zip(spacing, factors, strict=True)])
-    skeleton = skeletonize(np.pad(fine, 1)) > 0
-    points = np.argwhere(skeleton)
+    fine, step = _near_isotropic(mask, spacing)
+    padded = np.pad(fine, 1)
+    skeleton = skeletonize(padded) > 0
+    points, neighbours = _skeleton_graph(skeleton, step)
     if len(points) == 0:
         return 0.0, 0, 0
-    index = {tuple(p): i for i, p in enumerate(points)}
-    offsets = [np.array(o) for o in np.ndindex(3, 3, 3) if o != (1, 1, 1)]
-    degree = np.zeros(len(points), int)
-    length = 0.0
-    for i, p in enumerate(points):
-        for o in offsets:
-            j = index.get(tuple(p + o - 1))
-            if j is not None:
-                degree[i] += 1
-                if j > i:
-                    length += float(np.linalg.norm((o - 1) * step))
+    depth = ndimage.distance_transform_edt(padded, sampling=step)
+    limit = SPUR_RADII * depth[tuple(points.T)]
+    alive = np.ones(len(points), bool)
+    while (spur := _shortest_spur(alive, neighbours, limit)) is not None:
+        alive[spur[1]] = False
+    degree = np.array([sum(1 for j, _ in neighbours[i] if alive[j]) for i in range(len(points))])
+    length = sum(d for i in np.flatnonzero(alive) for j, d in neighbours[i] if alive[j] and j > i)
     junction = np.zeros(skeleton.shape, bool)
-    junction[tuple(points[degree > 2].T)] = True
+    junction[tuple(points[alive & (degree > 2)].T)] = True
     branches = ndimage.label(junction, np.ones((3, 3, 3)))[1]
-    return length / 1000.0, int(branches), int((degree == 1).sum())
+    return length / 1000.0, int(branches), int((alive & (degree == 1)).sum())
 
 
 def complexity_index(surface_um2, volume_um3):

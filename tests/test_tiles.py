@@ -1,10 +1,11 @@
-"""Annotation tiles: export, painted-mask import, sampling from label volumes, split, halos.
+"""Annotation tiles: export, painted-mask import, sampling from label volumes.
 
 References named beside each check: numpy / scikit-image / Pillow / tifffile as reference
 libraries, the open ssTEM stack of Gerhard et al. 2013 (doi:10.6084/m9.figshare.856713), and
 common practice of the field (marked so).
 """
 
+import logging
 import os
 import pickle
 import struct
@@ -20,21 +21,17 @@ from skimage.exposure import rescale_intensity
 from skimage.transform import downscale_local_mean
 
 from tessera.errors import TesseraInputError
-from tessera.tiles.registry import ROLES, tile_slices
 from tessera.tiles.sampling import labels_to_target_mask, sample_tiles_from_labels
-from tessera.tiles.split import split_tiles
 from tessera.workflow.files.points import read_points
 from tessera.workflow.files.tile_registry import (
     read_annotation_set,
     read_registry,
     write_annotation_set,
-    write_split,
 )
 from tessera.workflow.files.to_paint import export_tiles, import_painted, read_painted_mask
 from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.pyramid import pyramid_job
 from tessera.workflow.jobs.sample_tiles import check_labels_job, sample_tiles_job
-from tessera.workflow.jobs.split_tiles import split_tiles_job
 
 FACTORS = (1, 2, 2)
 
@@ -756,6 +753,52 @@ def test_only_sections_holding_labels_give_tiles_when_only_those_count_as_annota
     assert summary["excluded_sections"] == [0, 1, 4, 5, 6, 7]
 
 
+def test_the_label_check_refuses_labelled_sections_no_working_section_holds_whole(tmp_path):
+    # Refused by check_labels, a job of its own, so that rule sample_tiles never starts and the
+    # dataset's earlier tiles stay. A near-isotropic stack's working level at downsample 2
+    # averages pairs of sections; labels on every other section leave no pair whole.
+    raw, truth = volume(shape=(8, 96, 96), centres=[(1, 48, 48), (5, 48, 48)])
+    truth[0::2] = 0
+    labels, pyramid, _ = job_inputs(tmp_path, raw, truth, excluded=[False] * 8, spacing=(8, 8, 8))
+    out = tmp_path / "check.json"
+    kw = dict(target="mito", pyramid_path=pyramid, sections="labelled")
+    with pytest.raises(TesseraInputError) as info:
+        check_labels_job(labels, tmp_path / "raw.ome.zarr", out, downsample=2, **kw)
+    assert str(info.value) == (
+        f"{labels}: with targets.mito.annotations.sections: labelled, no section at downsample 2 "
+        "is wholly labelled (4 of 8 sections hold mito voxels): that level averages 2 sections in "
+        "z and counts one as annotated only where each of them is labelled; label runs of 2 "
+        "consecutive sections starting at a multiple of 2, or use downsample: 1, or set "
+        "pyramid.downsample_z: false"
+    )
+    assert not out.exists()
+    # at full resolution every labelled section is a working section of its own
+    found = check_labels_job(labels, tmp_path / "raw.ome.zarr", out, downsample=1, **kw)
+    assert found["labelled_sections"] == 4
+
+
+def test_a_long_run_of_sections_without_labels_is_logged_when_every_section_counts(
+    tmp_path, caplog
+):
+    raw, truth = volume(shape=(8, 96, 96), centres=[(1, 48, 48)])
+    truth[4:] = 0
+    labels, pyramid, _ = job_inputs(tmp_path, raw, truth, excluded=[False] * 8)
+    with caplog.at_level(logging.WARNING):
+        check_labels_job(
+            labels,
+            tmp_path / "raw.ome.zarr",
+            tmp_path / "check.json",
+            target="mito",
+            pyramid_path=pyramid,
+            downsample=2,
+        )
+    assert (
+        "sections 4 to 7 (4 of 8) hold no mito voxel; every section counts as annotated, so they "
+        "teach that whatever lies there is background. If they were not annotated, set "
+        "targets.mito.annotations.sections: labelled"
+    ) in caplog.text
+
+
 def test_sparse_labelled_sections_on_a_pyramid_reduced_in_z_are_refused_with_the_reason(tmp_path):
     # A near-isotropic stack's working level at downsample 2 averages pairs of sections (the
     # pyramid reduces z too); labels on every other section leave no pair wholly annotated.
@@ -786,89 +829,6 @@ def test_sample_tiles_job_says_qc_excluded_every_section(tmp_path):
         r"cut; look at its sections.png, or set qc.exclude_flagged: false",
     ):
         sample_tiles_job(*args, tmp_path / "t", **kw)
-
-
-# --------------------------------------------------------------------------------------------
-# split
-
-
-def registry_for_split(seed=0):
-    rng = np.random.default_rng(seed)
-    rows = []
-    for dataset in ("d1", "d2"):
-        for target in ("mito", "nuclei"):
-            zs = rng.integers(0, 40, 30)
-            for i, z in enumerate(zs):
-                rows.append(
-                    {
-                        "tile_id": f"{dataset}-{target}-{i}",
-                        "dataset": dataset,
-                        "target": target,
-                        "level": 1,
-                        "z": int(z),
-                        "y0": 0,
-                        "x0": 0,
-                        "height": 8,
-                        "width": 8,
-                        "source": "labels",
-                    }
-                )
-    return pd.DataFrame(rows)
-
-
-@pytest.mark.parametrize("guard", [1, 2, 5])
-def test_split_guard_distance_holds_for_all_pairs(guard):
-    # Held-out tiles must be spatially separate from training tiles (common practice).
-    reg = registry_for_split()
-    out = split_tiles(reg, guard_sections=guard, seed=3)
-    assert out["tile_id"].tolist() == reg["tile_id"].tolist()
-    assert set(out["role"]) <= set(ROLES) and out["role"].notna().all()
-    for (_, _), g in out.groupby(["dataset", "target"]):
-        train = g.loc[g["role"] == "train", "z"].to_numpy()
-        held = g.loc[g["role"].isin(["validation", "test"]), "z"].to_numpy()
-        assert len(train) and len(held)
-        assert np.abs(held[:, None] - train[None, :]).min() >= guard
-        for role in ("train", "validation", "test"):  # a section never shared between roles
-            others = g.loc[g["role"] != role, "z"]
-            assert not set(g.loc[g["role"] == role, "z"]) & set(others)
-        share = (g["role"] == "train").mean()
-        assert abs(share - 0.6) <= 0.25
-
-
-def test_split_is_deterministic_and_written_atomically(tmp_path):
-    reg = registry_for_split()
-    a = split_tiles(reg, seed=7)
-    pd.testing.assert_frame_equal(a, split_tiles(reg, seed=7))
-    write_split(tmp_path / "split.tsv", a)
-    assert listing(tmp_path) == ["split.tsv"]
-    pd.testing.assert_frame_equal(read_registry(tmp_path / "split.tsv"), a)
-    with pytest.raises(TesseraInputError, match="role"):
-        write_split(tmp_path / "nosplit.tsv", reg)
-    with pytest.raises(TesseraInputError, match="fractions"):
-        split_tiles(reg, fractions=(0.5, 0.2, 0.2))
-    assert listing(tmp_path) == ["split.tsv"]
-
-
-def test_split_without_guard_drops_nothing():
-    out = split_tiles(registry_for_split(), guard_sections=0)
-    assert "guard" not in set(out["role"])
-
-
-# --------------------------------------------------------------------------------------------
-# halo
-
-
-@pytest.mark.parametrize("y0, x0, halo", [(0, 0, 5), (10, 30, 4), (34, 1, 7), (12, 12, 0)])
-def test_tile_slices_reflect_pad_matches_numpy_pad_of_section(y0, x0, halo):
-    # Reference: numpy.pad(mode="reflect") of the whole section, then the tile plus halo.
-    section = np.random.default_rng(1).integers(0, 255, (3, 48, 40)).astype(np.uint8)
-    row = {"z": 1, "y0": y0, "x0": x0, "height": 14, "width": 9}
-    index, pad = tile_slices(row, halo=halo, shape=section.shape)
-    got = np.pad(section[index], pad, mode="reflect")
-    ref = np.pad(section[1], halo, mode="reflect")[y0 : y0 + 14 + 2 * halo, x0 : x0 + 9 + 2 * halo]
-    np.testing.assert_array_equal(got, ref)
-    with pytest.raises(TesseraInputError, match="outside"):
-        tile_slices({**row, "y0": 40}, halo=halo, shape=section.shape)
 
 
 # --------------------------------------------------------------------------------------------
@@ -915,34 +875,3 @@ def test_vnc_sstem_sampled_fraction_matches_numpy(vnc_sstem):
     assert 0 < whole < 0.5
     standard_error = fractions.std(ddof=1) / np.sqrt(len(fractions))
     assert abs(fractions.mean() - whole) <= 3 * standard_error
-
-
-def test_a_split_that_leaves_a_role_without_tiles_is_refused_before_training(tmp_path):
-    # Four tiles on sections 0-3 and held-out tiles 5 sections from training: no section can be
-    # held out, so no threshold could be chosen and nothing scored. The split job says so with
-    # the settings to change, and writes nothing (no model is trained on it).
-    registry = pd.DataFrame(
-        {
-            "tile_id": [f"d-m-s{z:03d}" for z in range(4)],
-            "dataset": "d",
-            "target": "m",
-            "level": 0,
-            "z": range(4),
-            "y0": 0,
-            "x0": 0,
-            "height": 4,
-            "width": 4,
-            "source": "labels",
-        }
-    )
-    labels = {t: np.eye(4, dtype=np.uint8) for t in registry["tile_id"]}
-    write_annotation_set(tmp_path / "d", registry, labels)
-    out = tmp_path / "split"
-    with pytest.raises(TesseraInputError) as info:
-        split_tiles_job([tmp_path / "d"], out, fractions=[0.6, 0.2, 0.2], guard_sections=5, seed=0)
-    assert str(info.value) == (
-        f"{out}: the split leaves no validation and no test tiles (4 tiles on 4 sections; "
-        "held-out tiles lie at least split.guard_sections = 5 sections from training); annotate "
-        "tiles on more sections, lower split.guard_sections, or change split.fractions"
-    )
-    assert not out.exists()

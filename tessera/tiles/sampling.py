@@ -12,6 +12,7 @@ __all__ = [
     "ANNOTATED_SECTIONS",
     "labels_to_target_mask",
     "level_shape",
+    "annotated_working_sections",
     "sample_tiles_from_labels",
     "unannotated_sections",
 ]
@@ -58,6 +59,30 @@ def unannotated_sections(labels, *, sections="all"):
         return []
     labelled = labels.reshape(labels.shape[0], -1).any(axis=1)
     return [int(z) for z in np.flatnonzero(~labelled)]
+
+
+def annotated_working_sections(n_sections, unannotated, z_factor):
+    """Working-level sections whose every level-0 section is annotated.
+
+    A working-level section averages `z_factor` level-0 sections (a pyramid reduced in z);
+    its labels are whole only when each of them is annotated.
+
+    Examples
+    --------
+    Labels on every other section of 8, at a working level averaging pairs: no pair is whole.
+
+    >>> annotated_working_sections(8, [0, 2, 4, 6], 2)
+    []
+    >>> annotated_working_sections(8, [0, 1, 6], 2)
+    [1, 2]
+    """
+    skip = set(int(z) for z in unannotated)
+    working = -(-int(n_sections) // int(z_factor))
+    return [
+        w
+        for w in range(working)
+        if not any(z in skip for z in range(w * z_factor, min((w + 1) * z_factor, n_sections)))
+    ]
 
 
 def labels_to_target_mask(labels, *, factors, threshold=0):
@@ -218,10 +243,11 @@ def sample_tiles_from_labels(
         if placed is None and allow_fewer and rows:
             break
         if placed is None:
+            wanted = f", target fraction >= {min_fraction}" if min_fraction > 0 else ""
             raise TesseraInputError(
-                f"could not place tile {i + 1} of {count} on any allowed level-{level} section "
-                f"in {max_tries} tries each (non-overlapping, target fraction >= "
-                f"{min_fraction}); lower count, size or min_fraction"
+                f"could not place tile {i + 1} of {count} on the {len(allowed)} allowed "
+                f"level-{level} section(s) in {max_tries} tries each (non-overlapping{wanted}); "
+                f"lower count or size{' or min_fraction' if wanted else ''}"
             )
         y0, x0, mask = placed
         tid = f"{prefix}-s{i + 1:03d}"

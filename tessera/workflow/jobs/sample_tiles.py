@@ -7,7 +7,11 @@ import numpy as np
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
-from tessera.tiles.sampling import sample_tiles_from_labels, unannotated_sections
+from tessera.tiles.sampling import (
+    annotated_working_sections,
+    sample_tiles_from_labels,
+    unannotated_sections,
+)
 from tessera.workflow.files.label_volumes import check_both_classes, read_label_volume
 from tessera.workflow.files.labels_check import read_labels_check, write_labels_check
 from tessera.workflow.files.qc_table import excluded_sections
@@ -21,7 +25,22 @@ _log = logging.getLogger(__name__)
 MIN_INSTANCE_AGREEMENT = 0.9
 
 
-def check_labels_job(labels_path, image_path, out_path, *, target, instances_path=None):
+#: A run of sections without a target voxel at least this share of the stack (and 3 sections)
+#: is logged as possibly not annotated, when every section counts as annotated.
+UNLABELLED_RUN_SHARE = 0.2
+
+
+def check_labels_job(
+    labels_path,
+    image_path,
+    out_path,
+    *,
+    target,
+    instances_path=None,
+    pyramid_path=None,
+    downsample=None,
+    sections="all",
+):
     """Read a label volume whole and check it against the dataset's image; write the check.
 
     The volume must have the image's level-0 shape, hold integers >= 0 and both target and
@@ -30,6 +49,15 @@ def check_labels_job(labels_path, image_path, out_path, *, target, instances_pat
     the target has one, must have that shape too and cover the same voxels (> 0): a foreground
     Jaccard of at least :data:`MIN_INSTANCE_AGREEMENT`, or the objects would be scored against
     other organelles than the pixels.
+
+    With ``sections: labelled`` (:func:`tessera.tiles.sampling.unannotated_sections`), some
+    section of the target's working level (the `pyramid_path` level at `downsample`) must be
+    wholly labelled, or rule sample_tiles could cut no tile: refused here, before that rule
+    clears the dataset's earlier tiles. (The check is shared by the targets reading the same
+    volume, the variants of a downsampling study among them; it holds the volume to the settings
+    of the target it is made for, so that adding a variant does not rerun it. A variant at
+    another factor is held to it by rule sample_tiles.) With every section counted as annotated,
+    a long run of sections without a target voxel is logged.
     """
     _, info = open_image(image_path)
     labels = read_label_volume(labels_path, info["levels"][0].shape)
@@ -40,6 +68,14 @@ def check_labels_job(labels_path, image_path, out_path, *, target, instances_pat
         "dtype": str(labels.dtype),
         "target_voxels": int(np.count_nonzero(labels)),
     }
+    unlabelled = unannotated_sections(labels, sections="labelled")
+    found["labelled_sections"] = labels.shape[0] - len(unlabelled)
+    if sections == "labelled" and pyramid_path is not None:
+        _check_labelled_sections(
+            labels, unlabelled, pyramid_path, target, downsample, source=labels_path
+        )
+    elif sections == "all":
+        _log_unlabelled_run(unlabelled, labels.shape[0], target)
     if instances_path is not None:
         instances = read_label_volume(instances_path, labels.shape, "instance volume") > 0
         target_mask = labels > 0
@@ -56,6 +92,62 @@ def check_labels_job(labels_path, image_path, out_path, *, target, instances_pat
         found["instance_agreement"] = agreement
     write_labels_check(out_path, found)
     return found
+
+
+def _check_labelled_sections(labels, unlabelled, pyramid_path, target, downsample, *, source):
+    """Refuse ``sections: labelled`` where no section of the target's working level is wholly
+    labelled; log how many are."""
+    _, info = open_image(pyramid_path)
+    level = working_level(info["factors"], downsample, source=pyramid_path)
+    z_factor = info["factors"][level][0]
+    depth = labels.shape[0]
+    allowed = annotated_working_sections(depth, unlabelled, z_factor)
+    if not allowed:
+        raise TesseraInputError(
+            f"with targets.{target}.annotations.sections: labelled, no section at downsample "
+            f"{downsample} is wholly labelled ({depth - len(unlabelled)} of {depth} sections "
+            f"hold {target} voxels): that level averages {z_factor} "
+            "sections in z and counts one as annotated only where each of them is labelled; "
+            f"label runs of {z_factor} consecutive sections starting at a multiple of "
+            f"{z_factor}, or use downsample: 1, or set pyramid.downsample_z: false",
+            source=source,
+        )
+    _log.info(
+        "%s, sections: labelled: %d of %d sections hold its voxels; at downsample %d (%d "
+        "section(s) averaged in z) %d of %d working sections count as annotated",
+        target,
+        depth - len(unlabelled),
+        depth,
+        downsample,
+        z_factor,
+        len(allowed),
+        -(-depth // z_factor),
+    )
+
+
+def _log_unlabelled_run(unlabelled, depth, target):
+    """Log the longest run of sections without a target voxel when it is long: perhaps sections
+    never annotated, which every-section annotation teaches as background."""
+    runs, start = [], None
+    for k, z in enumerate(unlabelled):
+        if start is None or z != unlabelled[k - 1] + 1:
+            start = z
+        runs.append((z - start + 1, start, z))
+    if not runs:
+        return
+    length, first, last = max(runs)
+    if length >= max(3, UNLABELLED_RUN_SHARE * depth):
+        _log.warning(
+            "sections %d to %d (%d of %d) hold no %s voxel; every section counts as annotated, "
+            "so they teach that whatever lies there is background. If they were not annotated, "
+            "set targets.%s.annotations.sections: labelled",
+            first,
+            last,
+            length,
+            depth,
+            target,
+            target,
+        )
 
 
 def sample_tiles_job(
