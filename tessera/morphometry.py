@@ -12,6 +12,7 @@ import math
 import numpy as np
 import pandas as pd
 from scipy import ndimage
+from scipy.spatial import cKDTree
 from skimage.measure import marching_cubes, mesh_surface_area
 from skimage.morphology import skeletonize
 
@@ -128,42 +129,61 @@ def _near_isotropic(mask, spacing):
 
 
 def _skeleton_graph(skeleton, step):
-    """Voxels of a skeleton and, for each, its 26-neighbours with the physical distances."""
+    """Voxels of a skeleton (none on the array's border) and their 26-neighbour links: for voxel
+    i, ``neighbour[start[i]:start[i + 1]]`` with the physical ``distance`` to each."""
     points = np.argwhere(skeleton)
-    index = {tuple(p): i for i, p in enumerate(points)}
-    neighbours = [[] for _ in points]
-    for i, p in enumerate(points):
-        for o in _NEIGHBOURS:
-            j = index.get(tuple(p + o))
-            if j is not None:
-                neighbours[i].append((j, float(np.linalg.norm(o * step))))
-    return points, neighbours
+    index = np.full(skeleton.shape, -1, np.int64)
+    index[tuple(points.T)] = np.arange(len(points))
+    source, neighbour, distance = [], [], []
+    for offset in _NEIGHBOURS:
+        found = index[tuple((points + offset).T)]
+        linked = np.flatnonzero(found >= 0)
+        source.append(linked)
+        neighbour.append(found[linked])
+        distance.append(np.full(linked.size, float(np.linalg.norm(offset * step))))
+    source, neighbour, distance = (np.concatenate(a) for a in (source, neighbour, distance))
+    order = np.argsort(source, kind="stable")
+    start = np.searchsorted(source[order], np.arange(len(points) + 1))
+    return points, start, neighbour[order], distance[order]
 
 
-def _shortest_spur(alive, neighbours, limit):
+def _junction_limits(mask, points, degree, step):
+    """:data:`SPUR_RADII` times the distance (nm) from each junction voxel (more than two
+    neighbours) to the nearest voxel outside `mask`; 0 elsewhere. Pruning only ever consults
+    voxels that were junctions from the start (removing a spur lowers degrees), and the
+    nearest outside voxel of a point inside touches the object, so only those are searched."""
+    limit = np.zeros(len(points))
+    junctions = np.flatnonzero(degree > 2)
+    if junctions.size:
+        outside = np.argwhere(ndimage.binary_dilation(mask, np.ones((3, 3, 3))) & ~mask)
+        depth, _ = cKDTree(outside * step).query(points[junctions] * step)
+        limit[junctions] = SPUR_RADII * depth
+    return limit
+
+
+def _shortest_spur(alive, degree, start, neighbour, distance, limit):
     """(length, voxels) of the shortest side branch shorter than its junction's `limit`, or
     None. A side branch runs from an end voxel through voxels of two neighbours to a junction
     (more than two); a path between two ends is the whole skeleton, never a spur."""
-
-    def degree(i):
-        return sum(1 for j, _ in neighbours[i] if alive[j])
-
     best = None
-    for end in np.flatnonzero(alive):
-        if degree(end) != 1:
-            continue
+    for end in np.flatnonzero(alive & (degree == 1)):
         path, previous, current, length = [end], -1, end, 0.0
         while True:
-            onward = [(j, d) for j, d in neighbours[current] if alive[j] and j != previous]
+            links = slice(start[current], start[current + 1])
+            onward = [
+                (j, d)
+                for j, d in zip(neighbour[links], distance[links], strict=True)
+                if alive[j] and j != previous
+            ]
             if len(onward) != 1:
                 break
-            following, distance = onward[0]
-            length += distance
-            if degree(following) > 2:
+            following, step = onward[0]
+            length += step
+            if degree[following] > 2:
                 if length < limit[following] and (best is None or length < best[0]):
                     best = (length, path)
                 break
-            if degree(following) == 1:
+            if degree[following] == 1:
                 break
             path.append(following)
             previous, current = current, following
@@ -191,20 +211,23 @@ def skeleton_measures(mask, *, spacing):
     fine, step = _near_isotropic(mask, spacing)
     padded = np.pad(fine, 1)
     skeleton = skeletonize(padded) > 0
-    points, neighbours = _skeleton_graph(skeleton, step)
-    if len(points) == 0:
+    if not skeleton.any():
         return 0.0, 0, 0
-    depth = ndimage.distance_transform_edt(padded, sampling=step)
-    limit = SPUR_RADII * depth[tuple(points.T)]
+    points, start, neighbour, distance = _skeleton_graph(skeleton, step)
+    degree = np.diff(start)
+    limit = _junction_limits(padded, points, degree, step)
     alive = np.ones(len(points), bool)
-    while (spur := _shortest_spur(alive, neighbours, limit)) is not None:
-        alive[spur[1]] = False
-    degree = np.array([sum(1 for j, _ in neighbours[i] if alive[j]) for i in range(len(points))])
-    length = sum(d for i in np.flatnonzero(alive) for j, d in neighbours[i] if alive[j] and j > i)
+    while (spur := _shortest_spur(alive, degree, start, neighbour, distance, limit)) is not None:
+        for voxel in spur[1]:
+            alive[voxel] = False
+            degree[neighbour[start[voxel] : start[voxel + 1]]] -= 1
+    source = np.repeat(np.arange(len(points)), np.diff(start))
+    kept = alive[source] & alive[neighbour] & (neighbour > source)
     junction = np.zeros(skeleton.shape, bool)
     junction[tuple(points[alive & (degree > 2)].T)] = True
     branches = ndimage.label(junction, np.ones((3, 3, 3)))[1]
-    return length / 1000.0, int(branches), int((alive & (degree == 1)).sum())
+    ends = int((alive & (degree == 1)).sum())
+    return float(distance[kept].sum()) / 1000.0, int(branches), ends
 
 
 def complexity_index(surface_um2, volume_um3):
