@@ -365,10 +365,11 @@ def _closing_lines(c, sheet_rows, software, checksums):
     lines = [
         (
             "Morphometry used the voxel size throughout: surface area by marching cubes (Lorensen & Cline 1987), "
-            "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons, and "
-            "the mitochondrial complexity index (Vincent et al. 2019). QC-excluded sections were bridged by "
-            "interpolating the probabilities of their neighbours; objects cut by the volume border were left out of "
-            "size and shape summaries. " + _statistics_sentence(c, sheet_rows)
+            "sphericity ψ = π^(1/3)(6V)^(2/3)/A (Wadell 1935), principal axes from second moments, 3D skeletons "
+            "(side branches shorter than twice the local radius pruned), and the mitochondrial complexity index "
+            "(Vincent et al. 2019). QC-excluded sections were bridged by interpolating the probabilities of their "
+            "neighbours; objects cut by the volume border, and those outside every region of a region mask, were "
+            "left out of size and shape summaries. " + _statistics_sentence(c, sheet_rows)
         ),
         "",
         "Automatic segmentation is a research measurement: the accuracies above hold for tiles like the annotated "

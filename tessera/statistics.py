@@ -43,6 +43,8 @@ def animal_summaries(objects, *, measures, subjects=None):
         One row per object with ``subject``, ``condition``, the measures, and the flags
         ``touches_volume_border`` (objects cut by the volume border are left out; objects
         crossing a QC-excluded section are kept, since the objects step bridges such sections).
+        With a ``region`` column (the region of a ``roi_mask`` each object lies in), objects
+        outside every region (region 0) are left out too: the regions are what is measured.
     measures : sequence of str
     subjects : dict, optional
         Subject → condition of every animal of the study, so that animals without any whole
@@ -66,6 +68,8 @@ def animal_summaries(objects, *, measures, subjects=None):
     if missing:
         raise TesseraInputError(f"object table lacks column(s) {missing}")
     whole = objects[~objects["touches_volume_border"].astype(bool)]
+    if "region" in whole.columns:
+        whole = whole[whole["region"] != 0]
     conditions = objects.groupby("subject")["condition"].nunique()
     if (conditions > 1).any():
         raise TesseraInputError(

@@ -124,6 +124,23 @@ def test_cut_objects_are_left_out_and_empty_animals_kept():
     assert math.isnan(animals.set_index("subject").loc["spare", "volume_um3"])
 
 
+def test_objects_outside_every_region_of_a_mask_are_left_out_of_sizes():
+    # With a roi_mask (cells, say; 0 outside every region) the regions are what is measured:
+    # objects in region 0 do not enter the per-animal sizes. Worked by hand: the geometric mean
+    # of the volumes 1 and 4 in region 1 is 2; the 100 outside would make it 7.4.
+    objects = pd.DataFrame(
+        {
+            "subject": "a",
+            "condition": "warm",
+            "volume_um3": [1.0, 4.0, 100.0],
+            "region": [1, 1, 0],
+            "touches_volume_border": False,
+        }
+    )
+    row = animal_summaries(objects, measures=["volume_um3"]).iloc[0]
+    assert (row["objects"], row["volume_um3"]) == (2, pytest.approx(2.0))
+
+
 def test_one_animal_per_condition_warns_instead_of_failing(caplog):
     objects = simulated_study(6, animals=1)
     animals = animal_summaries(objects, measures=["volume_um3", "touches_volume_border"])
