@@ -188,43 +188,34 @@ def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_pat
             out_dir=tmp_path / "edge_tiles",
         )
     assert listing(tmp_path) == before
+
+    def refused(name, point, size):
+        """The one line refusing a sheet of one point, after checking nothing was written."""
+        sheet = write_points(tmp_path / f"{name}.tsv", [("d1", "mito", *point)])
+        points = read_points(sheet, datasets=["d1"], targets=["mito"])
+        out = tmp_path / f"{name}_tiles"
+        with pytest.raises(TesseraInputError) as info:
+            export_tiles(
+                exported["store"], points, level=1, factors=FACTORS, size=size, out_dir=out
+            )
+        assert not out.exists()
+        return sheet, str(info.value)
+
     # a section beyond the stack (6 sections) is named as such, not as an edge in plane
-    sheet = write_points(tmp_path / "deep.tsv", [("d1", "mito", 6, 40, 40)])
-    points = read_points(sheet, datasets=["d1"], targets=["mito"])
-    with pytest.raises(TesseraInputError) as info:
-        export_tiles(
-            exported["store"],
-            points,
-            level=1,
-            factors=FACTORS,
-            size=16,
-            out_dir=tmp_path / "deep_tiles",
-        )
-    assert str(info.value) == (
+    sheet, message = refused("deep", (6, 40, 40), 16)
+    assert message == (
         f"{sheet}: row 2 (tile 'd1-mito-z6-y40-x40'): section z=6 lies beyond the stack "
         "(level-1 section 6; the image has 6 sections at level 1, 6 at most at full "
         "resolution); expected a section of the stack, numbered from 0"
     )
-    assert not (tmp_path / "deep_tiles").exists()
     # a tile larger than the sections (48 x 48 px at level 1) fits nowhere: the size is named,
     # in the working level's pixels, not the point
-    sheet = write_points(tmp_path / "big.tsv", [("d1", "mito", 1, 48, 48)])
-    points = read_points(sheet, datasets=["d1"], targets=["mito"])
-    with pytest.raises(TesseraInputError) as info:
-        export_tiles(
-            exported["store"],
-            points,
-            level=1,
-            factors=FACTORS,
-            size=64,
-            out_dir=tmp_path / "big_tiles",
-        )
-    assert str(info.value).endswith(
+    _, message = refused("big", (1, 48, 48), 64)
+    assert message.endswith(
         "a tile of 64 x 64 px is larger than the level-1 sections (48 x 48 px); tile sizes "
         "count pixels of the working level (downsample): set the row's size, or the target's "
         "tiles.size, to at most 48"
     )
-    assert not (tmp_path / "big_tiles").exists()
 
 
 def test_export_uses_per_row_size(tmp_path):
