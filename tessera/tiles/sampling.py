@@ -10,9 +10,9 @@ from tessera.tiles.registry import validate_registry
 
 __all__ = [
     "ANNOTATED_SECTIONS",
+    "annotated_working_sections",
     "labels_to_target_mask",
     "level_shape",
-    "annotated_working_sections",
     "sample_tiles_from_labels",
     "unannotated_sections",
 ]

@@ -108,7 +108,8 @@ def _scored_sections(
     ]
     if not full:
         return [], "every held-out section was excluded by QC: not scored"
-    kept = [z for z in full if z not in set(unannotated)]
+    unlabelled = set(unannotated)
+    kept = [z for z in full if z not in unlabelled]
     if not kept:
         return [], "no held-out section holds labels (sections: labelled): not scored"
     if len(kept) < len(full):
