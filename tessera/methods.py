@@ -12,6 +12,7 @@ from tessera import __version__
 from tessera.cascade.across_sections import AUTO_SECTION_RULE, section_sigma
 from tessera.cascade.features import default_sigmas
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
+from tessera.spacing import NEAR_ISOTROPIC_ASPECT
 
 CLASSIFIER_NAMES = {
     "mlp": "multilayer perceptron",
@@ -150,6 +151,19 @@ def _smoothing_text(settings):
     return f"Before thresholding, the final probability maps were smoothed: {plane_text}, {across_text}. "
 
 
+def _level_text(downsample):
+    """The working level in words.
+
+    Examples
+    --------
+    >>> _level_text(1), _level_text(2)
+    ('the full-resolution images', 'the pyramid level downsampled 2×')
+    """
+    if downsample == 1:
+        return "the full-resolution images"
+    return f"the pyramid level downsampled {downsample}×"
+
+
 def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
@@ -174,7 +188,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         limits.append(f"larger than {obj['max_volume_um3']:g} µm³")
     size = f"objects {' or '.join(limits)} were removed" if limits else "no size limit was applied"
     text = (
-        f"**{name.capitalize()}** were segmented at {settings['downsample']}× in-plane downsampling with a cascaded "
+        f"**{name.capitalize()}** were segmented on {_level_text(settings['downsample'])} with a cascaded "
         f"hierarchical model (Seyedhosseini, Sajjadi & Tasdizen, ICCV 2013; Seyedhosseini & Tasdizen, TPAMI 2016) of "
         f"{cascade['stages']} stages × {cascade['levels']} levels{_ladder_clause(cascade)}, each node a "
         f"{CLASSIFIER_NAMES.get(cascade['classifier'], cascade['classifier'])} on "
@@ -274,8 +288,29 @@ def _study_text(c, sheet_rows, section_counts):
         f"{'was' if len(sheet_rows) == 1 else 'were'} converted to OME-Zarr (NGFF 0.5; Moore et al. "
         f"2023) with tessera {__version__}, run by Snakemake (Mölder et al. 2021). "
         + _qc_sentence(c, section_counts)
-        + f" A pyramid of {c['pyramid']['levels']} block-averaged levels was built."
+        + f" A pyramid of {c['pyramid']['levels']} block-averaged levels was built"
+        + _pyramid_z_text(c["pyramid"].get("downsample_z", "auto"))
     )
+
+
+def _pyramid_z_text(downsample_z):
+    """What each pyramid level averages, by the ``pyramid.downsample_z`` setting.
+
+    Examples
+    --------
+    >>> _pyramid_z_text(False)
+    ', each level averaging 2 × 2 pixels of the one before within each section.'
+    >>> _pyramid_z_text("auto").split("; ")[1]
+    'in near-isotropic stacks (sections at most 2× their pixel size) 2 sections as well.'
+    """
+    if downsample_z == "auto":
+        return (
+            ", each level averaging 2 × 2 pixels of the one before; in near-isotropic stacks "
+            f"(sections at most {NEAR_ISOTROPIC_ASPECT:g}× their pixel size) 2 sections as well."
+        )
+    if downsample_z:
+        return ", each level averaging 2 × 2 pixels over 2 sections of the one before."
+    return ", each level averaging 2 × 2 pixels of the one before within each section."
 
 
 def _qc_sentence(c, section_counts):

@@ -288,8 +288,8 @@ def _comparison_warning(counts, ci_low, ci_high):
     "no comparison: no animal in 'cold' has a whole object to measure"
     >>> _comparison_warning({"cold": 1, "warm": 3}, math.nan, math.nan)
     "no interval: only 1 animal measured in 'cold', and an interval needs 2 per condition; use at least 3 animals per condition"
-    >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)
-    'interval of zero width: the per-animal values do not vary within either condition'
+    >>> _comparison_warning({"cold": 3, "warm": 3}, 2.0, 2.0)[:60]
+    'no test: the per-animal values do not vary within either con'
     """
     empty = [c for c, n in counts.items() if n == 0]
     if empty:
@@ -301,7 +301,10 @@ def _comparison_warning(counts, ci_low, ci_high):
     if fewest < 2:
         return f"no interval: only 1 animal measured in {groups}, and an interval needs 2 per condition; {advice}"
     if ci_low == ci_high:
-        return "interval of zero width: the per-animal values do not vary within either condition"
+        return (
+            "no test: the per-animal values do not vary within either condition, so the "
+            "interval has zero width and there is no p-value"
+        )
     if fewest < MIN_ANIMALS:
         return f"interval unreliable: only {fewest} animals measured in {groups}; {advice}"
     return ""
@@ -310,7 +313,8 @@ def _comparison_warning(counts, ci_low, ci_high):
 def _welch(a, b, confidence):
     """Difference of means a - b with Welch's t interval and two-sided p-value.
 
-    NaN interval and p-value when a group has fewer than 2 values.
+    NaN interval and p-value when a group has fewer than 2 values; no p-value (NaN) and an
+    interval of zero width when neither group varies.
     """
     if len(a) == 0 or len(b) == 0:
         return math.nan, math.nan, math.nan, math.nan
@@ -319,8 +323,10 @@ def _welch(a, b, confidence):
         return diff, math.nan, math.nan, math.nan
     va, vb = np.var(a, ddof=1) / len(a), np.var(b, ddof=1) / len(b)
     se = math.sqrt(va + vb)
-    if se == 0:  # as scipy's ttest_ind: an interval of zero width, p 0 (or 1 for no difference)
-        return diff, diff, diff, (0.0 if diff else 1.0)
+    if se == 0:
+        # the t statistic is undefined (scipy reports p 0 for any difference, which would read
+        # as certainty from, say, every animal having one nucleus per cell): no p-value
+        return diff, diff, diff, math.nan
     df = (va + vb) ** 2 / (va**2 / (len(a) - 1) + vb**2 / (len(b) - 1))
     q = sps.t.ppf(0.5 + confidence / 2, df)
     p = 2 * sps.t.sf(abs(diff) / se, df)

@@ -142,6 +142,25 @@ def test_evaluate_tiles_pools_test_tiles_only():
     assert list(summary["dataset"]) == ["all", "d1", "d2"]
 
 
+def test_rows_scored_on_few_tiles_say_so():
+    # Reference: a percentile bootstrap (Efron & Tibshirani 1993) that resamples one unit draws
+    # the same unit every time, so it has no interval to give; a row on so few tiles says so.
+    rng = np.random.default_rng(2)
+    reg = registry(["validation"] * 2 + ["test"] * 6)
+    labels = {t: (rng.random((8, 8)) < 0.4).astype(np.uint8) for t in reg["tile_id"]}
+    probs = {
+        t: np.clip(labels[t] * 0.6 + rng.random((8, 8)) * 0.5, 0, 1).astype(np.float32)
+        for t in reg["tile_id"]
+    }
+    reg.loc[reg["tile_id"] == "t3", "dataset"] = "d3"  # the one test tile of dataset d3
+    summary, _, _ = evaluate_tiles(reg, labels, probs, reps=200)
+    rows = summary.set_index("dataset")
+    assert np.isnan(rows.loc["d3", "f1_ci_low"]) and np.isfinite(rows.loc["d3", "f1"])
+    assert rows.loc["d3", "note"] == "only 1 test tile: no interval; annotate at least 5 for one"
+    assert rows.loc["all", "tiles"] == 6 and rows.loc["all", "note"] == ""
+    assert rows.loc["d2", "note"].startswith("only 3 test tiles: the interval is unreliable")
+
+
 def _best_hundredth(truth, prob):
     """Lowest of the hundredths 0.01 .. 0.99 with the best F1 of ``prob >= t``, brute force from
     the definition F1 = 2 TP / (2 TP + FP + FN) (common practice), independent of tessera."""

@@ -245,17 +245,20 @@ def test_unbalanced_animals_use_welch_not_a_pooled_variance():
     assert row["ci_low"] != pytest.approx(student.confidence_interval().low, rel=1e-3)
 
 
-def test_no_spread_gives_scipys_zero_width_interval_with_a_warning():
-    # Reference: scipy.stats.ttest_ind(equal_var=False) gives a zero-width interval and p = 0
-    # when neither group varies; the table keeps scipy's numbers and says why in words.
+def test_no_spread_gives_no_p_value_and_says_why():
+    # Reference: scipy.stats.ttest_ind(equal_var=False) gives t = -inf and p = 0 when neither
+    # group varies but their means differ, and NaN when they are equal: the statistic is
+    # undefined (zero standard error). The table gives no p-value in either case (so nothing
+    # reads as p = 0), keeps scipy's zero-width interval, and says why in words.
     animals = animals_table({"warm": [2.0, 2.0, 2.0], "cold": [3.0, 3.0, 3.0]}, measure="N_V")
     row = compare_conditions(animals, measures=["N_V"], reference="warm").iloc[0]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # scipy warns about the division by zero
         ref = sps.ttest_ind([3.0] * 3, [2.0] * 3, equal_var=False)
+    assert ref.pvalue == 0.0 and np.isinf(ref.statistic)
     assert (row["ci_low"], row["ci_high"]) == tuple(ref.confidence_interval())
-    assert row["p_value"] == ref.pvalue
-    assert row["warning"].startswith("interval of zero width: the per-animal values do not vary")
+    assert np.isnan(row["p_value"]) and np.isnan(row["p_holm"])
+    assert row["warning"].startswith("no test: the per-animal values do not vary")
 
 
 def test_holm_adjustment_equals_statsmodels():

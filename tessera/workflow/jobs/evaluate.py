@@ -1,5 +1,7 @@
 """Job of rule evaluate: score one target's test tiles; write the tables and plots."""
 
+import logging
+
 from tessera.evaluate import check_no_leakage, evaluate_tiles, plot_evaluation, plot_overlays
 from tessera.io.atomic import atomic_path, write_table
 from tessera.tile_windows import tile_window
@@ -7,6 +9,8 @@ from tessera.workflow.files.evaluation_summary import write_evaluation_summary
 from tessera.workflow.files.pyramid import level_arrays
 from tessera.workflow.files.tile_probabilities import read_tile_probabilities
 from tessera.workflow.files.tile_registry import read_annotation_set
+
+_log = logging.getLogger(__name__)
 
 
 def evaluate_job(
@@ -52,6 +56,8 @@ def evaluate_job(
             images, labels, probs, float(summary["threshold"].iloc[0]), tmp, target=target
         )
     overall = summary[summary["dataset"] == "all"].iloc[0]
+    if overall["note"]:
+        _log.warning("%s, all test tiles: %s (tiles.per_dataset)", target, overall["note"])
     return {
         "f1": overall["f1"],
         "f1_ci": [overall["f1_ci_low"], overall["f1_ci_high"]],
