@@ -232,6 +232,23 @@ def test_flags_exactly_the_defective_sections(displaced_only):
     assert table.loc[SHIFT, "shift"] == pytest.approx(np.hypot(*JUMP))
 
 
+def test_sections_sharing_no_detail_are_not_flagged_shifted():
+    # Featureless sections (one grey level plus independent noise) share no detail, so each
+    # measuring tile's phase-correlation peak lands anywhere (Kuglin & Hines 1975: the peak
+    # marks shared structure only) and the tiles disagree. Their median is no measurement: no
+    # such section may be flagged, while the displaced section of a textured stack still is.
+    rng = np.random.default_rng(5)
+    noise = np.clip(np.rint(rng.normal(120, 6, (40, 512, 512))), 0, 255).astype(np.uint8)
+    table = measure_sections(noise)
+    assert (table["shift_agreement"][1:] < 0.5).all()
+    assert not flag_sections(table)["flag_shift"].any()
+    # without the agreement rule, the random medians do raise flags
+    assert flag_sections(table, min_shift_agreement=0.0)["flag_shift"].any()
+    textured_stack = measure_sections(make_stack(displaced_only=True), shift_crop=64)
+    assert textured_stack.loc[SHIFT, "shift_agreement"] == 1.0
+    assert flag_sections(textured_stack).loc[SHIFT, "flag_shift"]
+
+
 def test_drift_alone_is_not_flagged():
     # a steady drift of 3 grey levels per section, 87 over the stack, and no defects
     table = flag_sections(measure_sections(make_stack(drift=3.0, defects=False)))
@@ -267,6 +284,7 @@ def test_measure_sections_zarr_equals_numpy(tmp_path):
         "shift_y",
         "shift_x",
         "shift",
+        "shift_agreement",
     ]
     assert from_numpy["z"].tolist() == list(range(N))
 

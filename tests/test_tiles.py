@@ -569,6 +569,10 @@ def test_sampling_deterministic_inside_and_off_excluded_sections(tmp_path):
     assert all((labels[t] == labels2[t]).all() for t in labels)
     other, _ = sampled(truth, seed=5)
     assert not other[["z", "y0", "x0"]].equals(reg[["z", "y0", "x0"]])
+    # common practice: tiles of each dataset are an independent sample, so two stacks of the
+    # same shape (or the same stack under two names) with the same seed get other places
+    twin, _ = sampled(truth, dataset="twin")
+    assert not twin[["z", "y0", "x0"]].equals(reg[["z", "y0", "x0"]])
     assert len(reg) == 12 and set(reg["source"]) == {"labels"}
     assert not set(reg["z"]) & {2, 5}
     assert set(reg["z"]) == {0, 1, 3, 4, 6, 7}  # spread: every allowed section used

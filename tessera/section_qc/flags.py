@@ -76,6 +76,7 @@ def flag_sections(
     sharpness_z=3.5,
     intensity_z=3.5,
     max_shift_px=20.0,
+    min_shift_agreement=0.5,
     neighbours=8,
     min_sharpness_drop=0.5,
     min_intensity_change=10.0,
@@ -102,6 +103,11 @@ def flag_sections(
         A section whose shift from the previous one departs by more than this many pixels
         from the local trend of its neighbours' shifts (a jump, not a steady drift) is flagged
         ``shift`` (>= 0).
+    min_shift_agreement : float, optional
+        The shift of a section is judged only where at least this share of the measuring
+        tiles agree on it (column ``shift_agreement``, if the table has it; in [0, 1]): two
+        sections that share no detail (nearly featureless, or unrelated) give each tile a
+        random peak, and their median is no evidence of a jump.
     neighbours : int, optional
         Number of nearest other sections that define the local trend of each metric (>= 2).
     min_sharpness_drop : float, optional
@@ -174,6 +180,7 @@ def flag_sections(
     sharpness_z = check_float(sharpness_z, "sharpness_z", low=0.0, low_open=True)
     intensity_z = check_float(intensity_z, "intensity_z", low=0.0, low_open=True)
     max_shift_px = check_float(max_shift_px, "max_shift_px", low=0.0)
+    min_shift_agreement = check_float(min_shift_agreement, "min_shift_agreement", low=0.0, high=1.0)
     neighbours = check_int(neighbours, "neighbours", minimum=2)
     min_sharpness_drop = check_float(min_sharpness_drop, "min_sharpness_drop", low=0.0, high=0.999)
     min_intensity_change = check_float(min_intensity_change, "min_intensity_change", low=0.0)
@@ -198,8 +205,10 @@ def flag_sections(
         use & (np.abs(intensity_score) > intensity_z) & (np.abs(residual) >= min_intensity_change)
     )
 
-    # a flat or blurred image has little shared detail, so its shift estimate is unreliable
-    shifted, jump = _shift_flags(cols, use & ~blurred, max_shift_px, neighbours)
+    # a flat or blurred image has little shared detail, so its shift estimate is unreliable;
+    # so is one the measuring tiles disagree on
+    measured = _agreement(table) >= min_shift_agreement
+    shifted, jump = _shift_flags(cols, use & ~blurred, measured, max_shift_px, neighbours)
 
     out = table.copy()
     out["flag_flat"] = flat
@@ -244,14 +253,27 @@ def _numeric_columns(table):
     return cols
 
 
-def _shift_flags(cols, clear, max_shift_px, neighbours):
+def _agreement(table):
+    """Column ``shift_agreement`` as float64 (1 where the table has none: every shift counts)."""
+    if "shift_agreement" not in table.columns:
+        return np.ones(len(table))
+    try:
+        agreement = table["shift_agreement"].to_numpy(dtype=np.float64)
+    except (TypeError, ValueError):
+        raise TesseraInputError("table column 'shift_agreement' must be numeric") from None
+    if not np.all(np.isfinite(agreement)):
+        raise TesseraInputError("table column 'shift_agreement' must be finite (no NaN or inf)")
+    return agreement
+
+
+def _shift_flags(cols, clear, measured, max_shift_px, neighbours):
     """Sections whose shift from a clear previous section departs from the local trend.
 
     Returns the flags and the length of each departure (0 where the shift is not judged).
     A displaced section whose successor moves back (the two departures cancel to within
-    `max_shift_px`) flags only the displaced one.
+    `max_shift_px`) flags only the displaced one. Only `measured` shifts are judged.
     """
-    judged = clear & np.concatenate([[False], clear[:-1]])
+    judged = clear & np.concatenate([[False], clear[:-1]]) & measured
     z = cols["z"]
     if np.count_nonzero(judged) >= 3:
         ry = _trend_residuals(z, cols["shift_y"], judged, neighbours)

@@ -29,7 +29,17 @@ __all__ = ["METRIC_COLUMNS", "section_metrics", "measure_sections"]
 _STRIP_PIXELS = 1 << 22
 
 #: The columns of the table :func:`measure_sections` returns, in order.
-METRIC_COLUMNS = ("z", "mean", "std", "sharpness", "flat_fraction", "shift_y", "shift_x", "shift")
+METRIC_COLUMNS = (
+    "z",
+    "mean",
+    "std",
+    "sharpness",
+    "flat_fraction",
+    "shift_y",
+    "shift_x",
+    "shift",
+    "shift_agreement",
+)
 
 
 class _Moments:
@@ -202,7 +212,9 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
         ``flat_fraction`` (see :func:`section_metrics`), ``shift_y``, ``shift_x`` (pixels, as
         returned by :func:`~tessera.section_qc.shift.field_shift` with the previous section's
         crop as reference: the displacement of the whole field, not of its strongest
-        structure) and ``shift`` (their Euclidean length). The first section has shift 0.
+        structure), ``shift`` (their Euclidean length) and ``shift_agreement`` (the share of
+        the measuring tiles that agree with it; low where the two sections share no detail).
+        The first section has shift 0 and agreement 1.
 
     Examples
     --------
@@ -210,8 +222,8 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
     >>> vol = rng.integers(0, 255, size=(3, 48, 48), dtype=np.uint8)
     >>> vol[2] = np.roll(vol[1], 4, axis=1)
     >>> t = measure_sections(vol, shift_crop=32)
-    >>> list(t.columns)
-    ['z', 'mean', 'std', 'sharpness', 'flat_fraction', 'shift_y', 'shift_x', 'shift']
+    >>> list(t.columns)[-4:]
+    ['shift_y', 'shift_x', 'shift', 'shift_agreement']
     >>> t.loc[2, ["shift_y", "shift_x", "shift"]].tolist()
     [0.0, -4.0, 4.0]
     """
@@ -236,8 +248,12 @@ def measure_sections(volume, *, flat_block=16, flat_std=2.0, sharpness_sigma=0.0
             )
         )
         crop = np.asarray(section[y0:y1, x0:x1], dtype=np.float64)
-        dy, dx = (0.0, 0.0) if previous is None else field_shift(previous, crop)
-        row.update(shift_y=dy, shift_x=dx, shift=math.hypot(dy, dx))
+        dy, dx, agreement = (
+            (0.0, 0.0, 1.0)
+            if previous is None
+            else field_shift(previous, crop, return_agreement=True)
+        )
+        row.update(shift_y=dy, shift_x=dx, shift=math.hypot(dy, dx), shift_agreement=agreement)
         rows.append(row)
         previous = crop
     table = pd.DataFrame(rows, columns=list(METRIC_COLUMNS))

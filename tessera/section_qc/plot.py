@@ -6,9 +6,19 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from tessera.errors import TesseraInputError
-from tessera.section_qc.metrics import METRIC_COLUMNS
 
 __all__ = ["plot_sections"]
+
+
+#: The panels drawn: column, axis label, flag column shown in red, log scale.
+PANELS = (
+    ("mean", "mean grey value", "flag_intensity", False),
+    ("std", "contrast (std)", None, False),
+    ("sharpness", "sharpness (var. of Laplacian)", "flag_blurred", True),
+    ("flat_fraction", "flat fraction", "flag_flat", False),
+    ("shift", "shift from previous (px)", "flag_shift", False),
+)
+PLOTTED = ("z",) + tuple(panel[0] for panel in PANELS)
 
 
 def plot_sections(table, path, *, title=""):
@@ -47,7 +57,7 @@ def plot_sections(table, path, *, title=""):
     """
     if not isinstance(table, pd.DataFrame):
         raise TesseraInputError(f"table must be a pandas DataFrame, got {type(table).__name__}")
-    missing = [c for c in METRIC_COLUMNS if c not in table.columns]
+    missing = [c for c in PLOTTED if c not in table.columns]
     if missing:
         raise TesseraInputError(
             f"table is missing column(s) {missing}; expected the output of measure_sections"
@@ -56,18 +66,11 @@ def plot_sections(table, path, *, title=""):
         raise TesseraInputError("table must have at least one row")
 
     z = table["z"].to_numpy()
-    panels = [
-        ("mean", "mean grey value", "flag_intensity", False),
-        ("std", "contrast (std)", None, False),
-        ("sharpness", "sharpness (var. of Laplacian)", "flag_blurred", True),
-        ("flat_fraction", "flat fraction", "flag_flat", False),
-        ("shift", "shift from previous (px)", "flag_shift", False),
-    ]
     fig = Figure(figsize=(8, 10), layout="constrained")
     FigureCanvasAgg(fig)
-    axes = fig.subplots(len(panels), 1, sharex=True)
+    axes = fig.subplots(len(PANELS), 1, sharex=True)
     excluded = table["excluded"].to_numpy(dtype=bool) if "excluded" in table.columns else None
-    for ax, (col, label, flag_col, log) in zip(axes, panels, strict=True):
+    for ax, (col, label, flag_col, log) in zip(axes, PANELS, strict=True):
         values = table[col].to_numpy(dtype=np.float64)
         if log:
             values = np.where(values > 0, values, np.nan)

@@ -14,6 +14,11 @@ __all__ = ["field_shift", "phase_shift"]
 # judged at, and the whole image is measured once instead.
 _MIN_TILE_PX = 64
 
+#: Tiles whose shift lies within this many pixels of the median (both components) agree with
+#: it: phase correlation of shared detail lands on the same whole pixel give or take one, while
+#: sections without shared detail put each tile's peak anywhere.
+AGREE_PX = 2.0
+
 
 def _fast_side(n):
     """The largest side <= `n` whose Fourier transform is fast (a product of small primes): a
@@ -125,7 +130,7 @@ def phase_shift(reference, moving, *, upsample=1, window=False):
     return float(ty[ky]), float(tx[kx])
 
 
-def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6):
+def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6, return_agreement=False):
     """Translation of the whole field between two sections: the median over overlapping tiles.
 
     Parameters
@@ -138,12 +143,19 @@ def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6):
     tile_fraction : float, optional
         Side of a tile as a fraction of the image's side, in (0, 1], rounded down to a side
         whose Fourier transform is fast. Tiles overlap when ``tiles * tile_fraction > 1``.
+    return_agreement : bool, optional
+        Also return the agreement of the tiles.
 
     Returns
     -------
     dy, dx : float
         Medians, component by component, of :func:`phase_shift` (with `window`) over the tiles;
         same sign convention as :func:`phase_shift`.
+    agreement : float
+        With `return_agreement`: the fraction of tiles whose shift lies within
+        :data:`AGREE_PX` pixels of the median in both components (1.0 when the image is
+        measured once). Near 1 when the sections share detail; low when they share none
+        (nearly featureless or unrelated sections), where the median is no measurement.
 
     Notes
     -----
@@ -165,6 +177,8 @@ def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6):
     >>> ref = rng.random((128, 128))
     >>> field_shift(ref, np.roll(ref, (3, -5), axis=(0, 1)))
     (-3.0, 5.0)
+    >>> field_shift(ref, np.roll(ref, (3, -5), axis=(0, 1)), return_agreement=True)[2]
+    1.0
     """
     ref = as_section(reference, "reference")
     mov = as_section(moving, "moving")
@@ -176,7 +190,8 @@ def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6):
     tile_fraction = check_float(tile_fraction, "tile_fraction", low=0.0, high=1.0, low_open=True)
     sides = [_fast_side(max(1, int(round(n * tile_fraction)))) for n in ref.shape]
     if tiles == 1 or min(sides) < _MIN_TILE_PX:
-        return phase_shift(ref, mov, window=True)
+        dy, dx = phase_shift(ref, mov, window=True)
+        return (dy, dx, 1.0) if return_agreement else (dy, dx)
     starts = [
         np.linspace(0, n - s, tiles).round().astype(int)
         for n, s in zip(ref.shape, sides, strict=True)
@@ -192,4 +207,8 @@ def field_shift(reference, moving, *, tiles=3, tile_fraction=0.6):
             for x in starts[1]
         ]
     )
-    return float(np.median(found[:, 0])), float(np.median(found[:, 1]))
+    dy, dx = float(np.median(found[:, 0])), float(np.median(found[:, 1]))
+    if not return_agreement:
+        return dy, dx
+    close = np.abs(found - [dy, dx]).max(axis=1) <= AGREE_PX
+    return dy, dx, float(np.mean(close))

@@ -1,5 +1,7 @@
 """Annotation tiles cut from full label volumes: where they go and what they hold."""
 
+import zlib
+
 import numpy as np
 import pandas as pd
 
@@ -168,7 +170,8 @@ def sample_tiles_from_labels(
     count : int
         Number of tiles.
     seed : int
-        Seed; the same inputs and seed give the same tiles.
+        Seed, mixed with `dataset` and `target` so that stacks of the same shape are not
+        sampled at the same places; the same inputs and seed give the same tiles.
     exclude_z : iterable of int, optional
         Level-0 sections never to sample (QC-flagged); a working-level section is skipped when
         any level-0 section it averages is excluded.
@@ -216,7 +219,8 @@ def sample_tiles_from_labels(
         label_source, dataset, target, level, factors, size, count, seed, max_tries, min_fraction
     )
     allowed, ny, nx = _allowed_sections(shape0, factors, level, size, exclude_z)
-    rng = np.random.default_rng(seed)
+    # a stream of its own per dataset and target (the split draws from another one)
+    rng = np.random.default_rng([seed, zlib.crc32(f"tiles\t{dataset}\t{target}".encode())])
     order = [int(z) for z in rng.permutation(allowed)]
     prefix = safe_tile_id(f"{dataset}-{target}")
     rows, masks = [], {}
