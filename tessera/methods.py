@@ -11,6 +11,7 @@ import math
 from tessera import __version__
 from tessera.cascade.across_sections import AUTO_SECTION_RULE, section_sigma
 from tessera.cascade.features import default_sigmas
+from tessera.evaluate import MIN_TEST_TILES
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 from tessera.spacing import NEAR_ISOTROPIC_ASPECT
 
@@ -93,6 +94,21 @@ def _unsure_text(test):
         f" ({fraction:.1%} of the test pixels, marked unsure by the annotator, were left out; "
         "scores over whole objects, borders included, are lower)"
     )
+
+
+def _few_tiles_text(tiles):
+    """A caution when the test scores rest on fewer tiles than an interval needs.
+
+    Examples
+    --------
+    >>> _few_tiles_text(12)
+    ''
+    >>> _few_tiles_text(3)
+    ' (3 test tiles are too few for a dependable interval on these figures)'
+    """
+    if tiles >= MIN_TEST_TILES:
+        return ""
+    return f" ({_plural(tiles, 'test tile')} {'is' if tiles == 1 else 'are'} too few for a dependable interval on these figures)"
 
 
 def _ladder_clause(cascade):
@@ -201,7 +217,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"probability threshold ({val['threshold']:.2f}) was chosen for the best F1 on {int(val['tiles'])} validation "
         f"tiles; on {int(test['tiles'])} held-out test tiles pixel precision was {test['precision']:.3f}, recall "
         f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}"
-        f"{_unsure_text(test)}. Whole volumes were "
+        f"{_unsure_text(test)}{_few_tiles_text(int(test['tiles']))}. Whole volumes were "
         f"predicted block by block with a halo of the model's receptive field, which gives the same result as "
         f"predicting each volume in one piece. {_smoothing_text(settings)}Probability maps were thresholded with {hysteresis}"
         + (f", {', '.join(morph)}" if morph else "")

@@ -230,8 +230,8 @@ def check_profile(profile, *, workflow_dir=_WORKFLOW_DIR):
 
     Examples
     --------
-    >>> check_profile(_WORKFLOW_DIR / "profiles" / "local")["retries"]
-    1
+    >>> check_profile(_WORKFLOW_DIR / "profiles" / "local")["cores"]
+    'all'
     """
     path, settings = _read_settings(profile)
     _check_options(settings, path)
