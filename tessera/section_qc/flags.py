@@ -76,7 +76,7 @@ def flag_sections(
     sharpness_z=3.5,
     intensity_z=3.5,
     max_shift_px=20.0,
-    min_shift_agreement=0.5,
+    min_shift_agreement=1 / 3,
     neighbours=8,
     min_sharpness_drop=0.5,
     min_intensity_change=10.0,

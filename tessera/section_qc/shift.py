@@ -15,9 +15,10 @@ __all__ = ["field_shift", "phase_shift"]
 _MIN_TILE_PX = 64
 
 #: Tiles whose shift lies within this many pixels of the median (both components) agree with
-#: it: phase correlation of shared detail lands on the same whole pixel give or take one, while
-#: sections without shared detail put each tile's peak anywhere.
-AGREE_PX = 2.0
+#: it. Sections that share detail put most tiles' peaks within a few pixels of each other (on the
+#: open VNC ssTEM stack, 50 nm apart, at least 4 of 9 tiles within 5 px); sections that share
+#: none put each tile's peak anywhere in hundreds of pixels.
+AGREE_PX = 5.0
 
 
 def _fast_side(n):
