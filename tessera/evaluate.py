@@ -17,9 +17,9 @@ Conventions (stated in every output):
   H(truth | prediction), in bits.
 * Intervals are percentile bootstraps over test tiles (the tile is the resampled unit), over
   the resamples where the score is defined. Test tiles that hold no target and get none
-  predicted have no pixel scores (empty, not 0: 0 / 0 is undefined). A row scored on fewer
-  than :data:`MIN_TEST_TILES` tiles says so in its ``note`` (one tile gives no interval, a few
-  an interval narrower than the uncertainty).
+  predicted have no pixel scores (empty, not 0: 0 / 0 is undefined). A row scored on too few
+  tiles says so in its ``note`` (:mod:`tessera.interval_caution`: one tile gives no interval, a
+  few an interval narrower than the uncertainty).
 """
 
 import math
@@ -29,37 +29,12 @@ import pandas as pd
 from scipy import ndimage
 
 from tessera.errors import TesseraInputError
+from tessera.interval_caution import few_tiles_note
 from tessera.label_values import IGNORE
 from tessera.plotting import pyplot
 from tessera.threshold import apply_threshold, choose_threshold, confusion, scores_from_counts
 
 EIGHT = np.ones((3, 3), bool)
-
-#: Fewer test tiles than this and a row's interval is flagged: a bootstrap over a handful of
-#: units can only recombine them, so its interval looks narrower than the uncertainty is (one
-#: tile gives none). A judgement, not a published rule.
-MIN_TEST_TILES = 5
-
-
-def few_tiles_note(tiles):
-    """The ``note`` of a summary row scored on `tiles` test tiles ("" when there are enough).
-
-    Examples
-    --------
-    >>> few_tiles_note(12)
-    ''
-    >>> few_tiles_note(1)
-    'only 1 test tile: no interval; annotate at least 5 for one'
-    >>> few_tiles_note(3)
-    'only 3 test tiles: the interval is unreliable; annotate at least 5'
-    """
-    if tiles >= MIN_TEST_TILES:
-        return ""
-    if tiles == 1:
-        return f"only 1 test tile: no interval; annotate at least {MIN_TEST_TILES} for one"
-    return (
-        f"only {tiles} test tiles: the interval is unreliable; annotate at least {MIN_TEST_TILES}"
-    )
 
 
 def precision_recall_curve(prob, truth):

@@ -11,7 +11,7 @@ import math
 from tessera import __version__
 from tessera.cascade.across_sections import AUTO_SECTION_RULE, section_sigma
 from tessera.cascade.features import default_sigmas
-from tessera.evaluate import MIN_TEST_TILES
+from tessera.interval_caution import MIN_TEST_TILES
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 from tessera.spacing import NEAR_ISOTROPIC_ASPECT
 
