@@ -304,7 +304,7 @@ def _study_text(c, sheet_rows, section_counts):
         f"{'was' if len(sheet_rows) == 1 else 'were'} converted to OME-Zarr (NGFF 0.5; Moore et al. "
         f"2023) with tessera {__version__}, run by Snakemake (Mölder et al. 2021). "
         + _qc_sentence(c, section_counts)
-        + f" A pyramid of {c['pyramid']['levels']} block-averaged levels was built"
+        + f" A pyramid of {c['pyramid']['levels']} block-averaged levels beyond full resolution was built"
         + _pyramid_z_text(c["pyramid"].get("downsample_z", "auto"))
     )
 
@@ -384,7 +384,7 @@ def _statistics_sentence(c, sheet_rows):
     >>> c = {"statistics": {"confidence": 0.95, "reference_condition": None}}
     >>> rows = {"a": {"condition": "warm"}, "b": {"condition": "cold"}, "c": {"condition": "hot"}}
     >>> print(_statistics_sentence(c, rows).split(". ")[1])
-    Each other condition (cold, hot) was compared with the reference condition warm (the first condition of the datasets sheet) on the per-animal values (two-sided Welch t-test and interval, 95%, which allow unequal numbers of animals per condition; sizes on the log scale, as ratios; p-values also Holm-adjusted over every comparison of the target); objects were never treated as independent samples.
+    Each other condition (cold, hot) was compared with the reference condition, warm (the first condition of the datasets sheet), on the per-animal values (two-sided Welch t-test and interval, 95%, which allow unequal numbers of animals per condition; sizes on the log scale, as ratios; p-values also Holm-adjusted over every comparison of the target); objects were never treated as independent samples.
     >>> print(_statistics_sentence(c, {"a": {"condition": "warm"}}).split(". ")[1])
     With one condition (warm) nothing was compared: each measure was described per animal and per condition; objects were never treated as independent samples.
     """
@@ -402,8 +402,8 @@ def _statistics_sentence(c, sheet_rows):
         reference = reference or conditions[0]
         others = ", ".join(x for x in conditions if x != reference)
         text += (
-            f"Each other condition ({others}) was compared with the reference condition "
-            f"{reference} ({why}) on the per-animal values (two-sided Welch t-test and interval, "
+            f"Each other condition ({others}) was compared with the reference condition, "
+            f"{reference} ({why}), on the per-animal values (two-sided Welch t-test and interval, "
             f"{stats['confidence']:.0%}, which allow unequal numbers of animals per condition; "
             "sizes on the log scale, as ratios; p-values also Holm-adjusted over every comparison "
             "of the target)"

@@ -40,6 +40,7 @@ __all__ = [
     "scores_from_overlaps",
     "size_classes",
     "voxel_ratios",
+    "whole_in_sections",
     "voxel_scores",
 ]
 
@@ -388,3 +389,40 @@ def size_classes(voxels, *, names=("small", "medium", "large")):
     rank = np.empty(voxels.size, np.int64)
     rank[np.argsort(voxels, kind="stable")] = np.arange(voxels.size)
     return np.asarray(names, dtype=object)[rank * len(names) // voxels.size]
+
+
+def whole_in_sections(labels, z0, z1):
+    """How many objects of `labels` lie wholly within sections ``z0 .. z1 - 1``, and how many
+    have a voxel there.
+
+    An object scored on a slab of sections that it extends beyond is scored on its cut faces
+    only, and the sections it crosses outside the slab may have been used to train or tune the
+    model.
+
+    Parameters
+    ----------
+    labels : (P, M, N) ndarray of int
+        Objects of the whole volume (non-negative ids, 0 background).
+    z0, z1 : int
+        The slab's first section and the one past its last.
+
+    Returns
+    -------
+    whole, present : int
+
+    Examples
+    --------
+    >>> lab = np.zeros((6, 2, 2), np.uint8)
+    >>> lab[1:3, 0, 0] = 1; lab[2:6, 1, 1] = 2
+    >>> whole_in_sections(lab, 1, 4)
+    (1, 2)
+    """
+    labels = _as_labels(labels, "labels")
+    size = int(labels.max(initial=0)) + 1
+
+    def present_in(part):
+        return np.bincount(part.ravel().astype(np.intp, copy=False), minlength=size)[1:] > 0
+
+    inside = present_in(labels[z0:z1])
+    outside = present_in(labels[:z0]) | present_in(labels[z1:])
+    return int(np.count_nonzero(inside & ~outside)), int(np.count_nonzero(inside))

@@ -196,6 +196,23 @@ def test_sections_qc_keeps_are_scored(tmp_path):
     # by hand: sections 8 and 9 now; F (section 9, truth only) joins the true objects
     assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 2)
     assert row["sections"] == 2
+    # by hand: A, B and F lie whole within sections 8-9, E (z 6-9) reaches back into the
+    # validation sections; three of four is no reason for a caution
+    assert row["truth_whole"] == 3 and pd.isna(row["note"])
+
+
+def test_objects_that_extend_beyond_the_scored_sections_are_counted_and_named(tmp_path):
+    # by hand: section 8 alone is scored; A and B go on into section 9, E back to section 6,
+    # so none of the three true objects there is whole in it
+    tiles, inputs = _scene(tmp_path)
+    out = _run(tmp_path, tiles, inputs)
+    table = read_objects_3d(out / "objects_3d.tsv").set_index("dataset")
+    assert table.loc["d1", "truth_whole"] == 0 == table.loc["all", "truth_whole"]
+    for row in ("d1", "all"):
+        assert table.loc[row, "note"].startswith(
+            "only 0 of 3 true objects lie whole within the scored sections: the others are "
+            "scored on their cut part"
+        )
 
 
 def test_held_out_sections_without_labels_are_left_out_when_only_labelled_ones_count(tmp_path):
@@ -424,7 +441,7 @@ def test_a_dataset_without_test_tiles_gets_a_row_saying_so(tmp_path):
     assert table.loc["d2", "note"] == "no test tiles in this dataset: not scored"
     assert table.loc["d2", "sections"] == 0 and np.isnan(table.loc["d2", "object_f1"])
     # the pooled row holds d1's objects only (by hand, as in the first test) and names d2
-    assert table.loc["all", "note"] == "not scored: d2"
+    assert table.loc["all", "note"].startswith("not scored: d2; only 0 of 3 true objects")
     assert (table.loc["all", "truth_objects"], table.loc["all", "matched_objects"]) == (3, 2)
 
 

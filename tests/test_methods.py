@@ -441,8 +441,8 @@ def test_methods_name_the_reference_for_three_conditions(tmp_path):
     table = comparison_of(animals, reference="warm", conditions=["warm", "cold", "hot"])
     text = methods_inputs(tmp_path, table, sheet, reference="warm")
     assert (
-        "Each other condition (cold, hot) was compared with the reference condition warm "
-        "(set in the config)" in text
+        "Each other condition (cold, hot) was compared with the reference condition, warm "
+        "(set in the config), on" in text
     )
     assert "volume_um3 cold vs warm: ratio" in text and "volume_um3 hot vs warm: ratio" in text
     assert "interval unreliable: only 2 animals measured in 'cold'" in text

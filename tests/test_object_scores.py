@@ -18,6 +18,7 @@ from tessera.object_scores import (
     repeat_labels,
     size_classes,
     voxel_scores,
+    whole_in_sections,
 )
 
 # The hand-worked example: every row of both sections holds the same 12 columns, so each column
@@ -192,3 +193,22 @@ def test_huge_object_ids_give_the_hand_worked_scores():
     s = object_scores(truth, pred)
     assert (s["truth_objects"], s["predicted_objects"], s["matched_objects"]) == (4, 5, 3)
     assert s["matched_volume_bias"] == pytest.approx((0 - 1 / 3 + 1 / 2) / 3)
+
+
+@pytest.mark.parametrize("slab", [(0, 5), (3, 9), (10, 16), (4, 5)])
+def test_whole_in_sections_equals_the_bounding_boxes_of_scipy(slab):
+    # Reference: scipy.ndimage.find_objects gives each object's bounding box; an object lies
+    # wholly within sections z0..z1-1 when its box's z range does, and has a voxel there when
+    # the box overlaps them and a voxel of it is in the slab.
+    rng = np.random.default_rng(7)
+    labels = sk_label(ndimage.gaussian_filter(rng.random((16, 24, 24)), 1.5) > 0.52)
+    z0, z1 = slab
+    boxes = ndimage.find_objects(labels)
+    in_slab = set(np.unique(labels[z0:z1])) - {0}
+    whole = sum(
+        1
+        for k, box in enumerate(boxes, 1)
+        if k in in_slab and z0 <= box[0].start and box[0].stop <= z1
+    )
+    assert whole_in_sections(labels, z0, z1) == (whole, len(in_slab))
+    assert len(in_slab) > 0

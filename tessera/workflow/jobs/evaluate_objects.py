@@ -26,6 +26,7 @@ from tessera.object_scores import (
     scores_from_overlaps,
     size_classes,
     voxel_ratios,
+    whole_in_sections,
 )
 from tessera.object_views import crop_box, object_crop, plot_object_crops, plot_object_scores
 from tessera.tiles.sampling import unannotated_sections
@@ -52,6 +53,7 @@ COLUMNS = (
     "excluded_sections",
     "prediction_factors",
     "truth_objects",
+    "truth_whole",
     "predicted_objects",
     "matched_objects",
     "object_precision",
@@ -160,6 +162,8 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections, sections
         row["note"] = note
         return {**row, "truth_objects": 0, "predicted_objects": 0, "matched_objects": 0}, None, None
     z0, z1 = sections[0], sections[-1] + 1
+    whole, present = whole_in_sections(truth, z0, z1)
+    note = "; ".join(n for n in (note, _cut_objects_note(whole, present)) if n)
     truth = np.ascontiguousarray(truth[z0:z1])
     pred, factors = _predicted_slab(files["objects"], target, z0, z1, shape)
     mask = np.broadcast_to(np.isin(np.arange(z0, z1), sections)[:, None, None], truth.shape)
@@ -173,12 +177,33 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections, sections
         "excluded_sections": sum(1 for z in excluded if z0 <= z < z1),
         "prediction_factors": "x".join(str(f) for f in factors),
         **scores_from_overlaps(overlaps),
+        "truth_whole": whole,
         "note": note,
     }
     matches = match_table(overlaps)
     matches.insert(0, "dataset", dataset)
     slab = {"truth": truth, "pred": pred, "mask": mask, "z0": z0, "raw": raw_info["levels"][0]}
     return row, matches, slab
+
+
+def _cut_objects_note(whole, present):
+    """A caution when most true objects of the scored sections extend beyond them ("" else).
+
+    Examples
+    --------
+    >>> _cut_objects_note(8, 10)
+    ''
+    >>> _cut_objects_note(1, 10)[:62]
+    'only 1 of 10 true objects lies whole within the scored section'
+    """
+    if not present or 2 * whole >= present:
+        return ""
+    return (
+        f"only {whole} of {present} true objects {'lies' if whole == 1 else 'lie'} whole within "
+        "the scored sections: the others are scored on their cut part, and reach into "
+        "sections used for training or the threshold (more, or larger, test tiles give a "
+        "thicker held-out slab)"
+    )
 
 
 def _pooled_row(rows, matches):
@@ -197,6 +222,7 @@ def _pooled_row(rows, matches):
         "sections": int(table["sections"].sum()),
         "excluded_sections": int(table["excluded_sections"].sum()),
         "truth_objects": t,
+        "truth_whole": int(table["truth_whole"].sum()),
         "predicted_objects": p,
         "matched_objects": k,
         "object_precision": k / p if p else 0.0,
@@ -212,7 +238,14 @@ def _pooled_row(rows, matches):
             c: float(table[c].mean())
             for c in ("arand", "rand_precision", "rand_recall", "voi_split", "voi_merge")
         },
-        "note": f"not scored: {', '.join(skipped)}" if skipped else "",
+        "note": "; ".join(
+            n
+            for n in (
+                f"not scored: {', '.join(skipped)}" if skipped else "",
+                _cut_objects_note(int(table["truth_whole"].sum()), t),
+            )
+            if n
+        ),
     }
 
 
