@@ -23,6 +23,7 @@ run_job(
     size=tiles["size"],
     count=tiles["per_dataset"],
     seed=tiles["seed"],
+    min_fraction=tiles["min_target_fraction"],
     allow_fewer=tiles["allow_fewer"],
     sections=snakemake.params.annotated_sections,
 )

@@ -552,6 +552,25 @@ def test_single_class_training_is_refused():
         fit_cascade(spec, tiles)
 
 
+def test_a_fold_whose_complement_holds_one_class_is_named_with_its_tiles():
+    # the target lies in fold 0's tile only, so the model fitted without fold 0 would see
+    # background alone: refused, naming the tiles it would have seen and the settings to change
+    spec = CascadeSpec(stages=1, levels=0, **SMALL)
+    radius = receptive_radius(spec)
+    labels = [np.zeros((32, 32), np.uint8) for _ in range(3)]
+    labels[0][8:24, 8:24] = 1
+    tiles = [
+        prepare_tile(spec, f"t{i}", np.zeros((32 + 2 * radius,) * 2, np.float32), lab, fold=i % 2)
+        for i, lab in enumerate(labels)
+    ]
+    with pytest.raises(
+        TesseraInputError,
+        match=r"without fold 0 the training pixels hold one class only \(class 0 in tiles t1\); "
+        r"out-of-fold context needs both classes outside every fold: raise tiles.per_dataset",
+    ):
+        fit_cascade(spec, tiles)
+
+
 def test_bad_settings_are_named():
     with pytest.raises(TesseraInputError, match="stages must be an integer >= 1"):
         CascadeSpec(stages=0)

@@ -223,8 +223,14 @@ def train_node(spec, stage, level, tiles, upstream, *, target="target", threads=
 
     for k in range(spec.folds):
         if np.unique(y[g != k]).size < 2:
+            others = [t.tile_id for t in tiles if t.fold != k]
             raise TesseraInputError(
-                f"target {target}: without fold {k} the training pixels hold one class only"
+                f"target {target}: without fold {k} the training pixels hold one class only "
+                f"(class {int(y[g != k][0])} in tiles {', '.join(others[:6])}"
+                f"{' …' if len(others) > 6 else ''}); out-of-fold context needs both classes "
+                "outside every fold: raise tiles.per_dataset, or tiles.min_target_fraction for "
+                "label volumes, annotate tiles holding the target in more sections, or lower "
+                "cascade.folds"
             )
     seed = spec.seed + 7919 * stage + 104729 * level
     # the fold models (each without one fold's tiles) and the full model, in that order

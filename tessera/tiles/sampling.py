@@ -251,7 +251,7 @@ def sample_tiles_from_labels(
             raise TesseraInputError(
                 f"could not place tile {i + 1} of {count} on the {len(allowed)} allowed "
                 f"level-{level} section(s) in {max_tries} tries each (non-overlapping{wanted}); "
-                f"lower count or size{' or min_fraction' if wanted else ''}"
+                f"lower count or size{', or the target fraction' if wanted else ''}"
             )
         y0, x0, mask = placed
         tid = f"{prefix}-s{i + 1:03d}"

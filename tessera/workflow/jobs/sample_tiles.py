@@ -165,6 +165,7 @@ def sample_tiles_job(
     seed,
     allow_fewer=False,
     sections="all",
+    min_fraction=0.0,
 ):
     """Sample annotation tiles of one dataset from a full label volume (TIFF stack, >0 = target).
 
@@ -174,7 +175,8 @@ def sample_tiles_job(
     logs how many (see :func:`tessera.tiles.sampling.sample_tiles_from_labels`). With
     `labels_check` (rule check_labels' record) the volume must still be the one checked.
     `sections` says which sections count as annotated
-    (:func:`tessera.tiles.sampling.unannotated_sections`); tiles lie on those only.
+    (:func:`tessera.tiles.sampling.unannotated_sections`); tiles lie on those only. Each tile
+    holds at least `min_fraction` of target pixels (``tiles.min_target_fraction``).
     """
     _, info = open_image(image_path)
     level = working_level(info["factors"], downsample, source=image_path)
@@ -230,6 +232,7 @@ def sample_tiles_job(
             seed=seed,
             exclude_z=exclude,
             allow_fewer=allow_fewer,
+            min_fraction=min_fraction,
         )
     except TesseraInputError as exc:
         if unannotated and str(exc).startswith("every level-"):
