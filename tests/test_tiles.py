@@ -590,7 +590,10 @@ def test_sampling_min_fraction(tmp_path):
     _, truth = volume(shape=(8, 96, 96))
     reg, labels = sampled(truth, min_fraction=0.2, count=6)
     assert all(labels[t].mean() >= 0.2 for t in reg["tile_id"])
-    with pytest.raises(TesseraInputError, match="min_fraction"):
+    with pytest.raises(
+        TesseraInputError,
+        match=r"target fraction >= 0.1\); lower count or size, or the target fraction",
+    ):
         sampled(np.zeros((8, 96, 96), np.uint8), min_fraction=0.1, max_tries=20)
 
 
