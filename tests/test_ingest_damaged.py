@@ -625,6 +625,9 @@ def test_tiff_with_a_damaged_compressed_stream_is_refused(tmp_path, compression,
     before = _listing(tmp_path)
     with pytest.raises(TesseraInputError, match="cannot read page 1: ") as info:
         _ingest(src, tmp_path)
+    assert str(info.value).endswith(
+        "expected a page that decodes whole: the file is damaged (copy or export it again)"
+    )
     _one_line_and_nothing_written(info, src, tmp_path, before)
 
 

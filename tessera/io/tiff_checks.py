@@ -442,7 +442,9 @@ def read_checked_page(tif, z, path):
         raise
     except _READ_ERRORS as exc:
         raise TesseraInputError(
-            f"cannot read page {z}: {type(exc).__name__}: {exc}", source=path
+            f"cannot read page {z}: {type(exc).__name__}: {exc}; expected a page that decodes "
+            "whole: the file is damaged (copy or export it again)",
+            source=path,
         ) from None
 
 
