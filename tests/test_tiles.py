@@ -731,6 +731,25 @@ def test_an_instance_volume_must_mark_the_voxels_the_labels_mark(tmp_path):
     assert "target voxels) agree on " in message
     assert "% of the voxels either marks; expected the same organelles (at least 90%)" in message
     assert not (tmp_path / "b.json").exists()
+    # the labels' own mask given as instances: one id for all of them; scipy.ndimage.label
+    # (26-connectivity) counts the separate objects the message names
+    components = ndimage.label(truth > 0, np.ones((3, 3, 3), bool))[1]
+    assert components > 1
+    tifffile.imwrite(instances, (truth > 0).astype(np.uint8) * 255)
+    with pytest.raises(TesseraInputError) as info:
+        check_labels_job(
+            labels,
+            tmp_path / "raw.ome.zarr",
+            tmp_path / "c.json",
+            target="mito",
+            instances_path=instances,
+        )
+    assert str(info.value) == (
+        f"{instances}: it numbers every voxel 255 where the label volume holds {components} "
+        "separate objects (26-connected); expected one integer id per object (0 background): "
+        "a mask, not an instance volume"
+    )
+    assert not (tmp_path / "c.json").exists()
 
 
 def test_only_sections_holding_labels_give_tiles_when_only_those_count_as_annotated(tmp_path):

@@ -4,6 +4,7 @@ one dataset cut from it."""
 import logging
 
 import numpy as np
+from scipy import ndimage
 
 from tessera.errors import TesseraInputError
 from tessera.io.omezarr import open_image, working_level
@@ -77,7 +78,8 @@ def check_labels_job(
     elif sections == "all":
         _log_unlabelled_run(unlabelled, labels.shape[0], target)
     if instances_path is not None:
-        instances = read_label_volume(instances_path, labels.shape, "instance volume") > 0
+        ids = read_label_volume(instances_path, labels.shape, "instance volume")
+        instances = ids > 0
         target_mask = labels > 0
         union = int(np.count_nonzero(instances | target_mask))
         agreement = int(np.count_nonzero(instances & target_mask)) / union if union else 1.0
@@ -89,9 +91,27 @@ def check_labels_job(
                 f"(at least {MIN_INSTANCE_AGREEMENT:.0%})",
                 source=instances_path,
             )
+        _refuse_a_mask_as_instances(ids, target_mask, instances_path)
         found["instance_agreement"] = agreement
     write_labels_check(out_path, found)
     return found
+
+
+def _refuse_a_mask_as_instances(ids, target_mask, instances_path):
+    """Refuse an instance volume that gives one id to organelles the labels hold apart (a
+    mask, such as the label volume itself, given as instances): every object would be scored
+    against one true object."""
+    marked = ids[ids > 0]
+    if not marked.size or marked.min() != marked.max():
+        return
+    _, components = ndimage.label(target_mask, np.ones((3, 3, 3), bool))
+    if components > 1:
+        raise TesseraInputError(
+            f"it numbers every voxel {int(marked[0])} where the label volume holds "
+            f"{components} separate objects (26-connected); expected one integer id per "
+            "object (0 background): a mask, not an instance volume",
+            source=instances_path,
+        )
 
 
 def _check_labelled_sections(labels, unlabelled, pyramid_path, target, downsample, *, source):
