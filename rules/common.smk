@@ -18,6 +18,7 @@ from tessera.workflow.config import (
     load_config,
     load_datasets,
     sheet_spacing,
+    unusual_voxel_sizes,
 )
 from tessera.errors import TesseraInputError
 from tessera.workflow.config_paths import (
@@ -72,6 +73,10 @@ try:
     )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None
+
+# a voxel size far from the rest of the study: named, not refused (a study may mix instruments)
+for warning in unusual_voxel_sizes(DATASETS, sheet_path=config["datasets"]):
+    print(f"tessera: warning: {warning}", file=sys.stderr)
 
 
 def script_code(rule):

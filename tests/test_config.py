@@ -15,6 +15,7 @@ from tessera.workflow.config import (
     load_datasets,
     read_yaml,
     sheet_spacing,
+    unusual_voxel_sizes,
 )
 
 HEADER = "dataset\tcondition\tsubject\tpath\tformat\tvoxel_z_nm\tvoxel_y_nm\tvoxel_x_nm\troi_mask"
@@ -290,6 +291,25 @@ def test_dataset_ids_that_differ_only_in_capitals_are_refused(tmp_path, schemas)
         f"{path}: dataset ids A1, a1 differ only in capitals; they would share result folders on "
         "file systems that ignore case: expected ids that differ otherwise"
     )
+
+
+def test_an_in_plane_voxel_size_far_from_the_rest_is_named(tmp_path, schemas):
+    # Common practice: the datasets of one study are imaged at in-plane voxel sizes of one
+    # order; 0.8 beside 8 nm is the typing slip of a 10x unit mistake (20x is named, 2x not).
+    rows = [
+        GOOD.replace("a1", f"a{k}", 1).replace("m1", f"m{k}", 1).replace("stack.tif", f"s{k}.tif")
+        for k in range(1, 4)
+    ]
+    rows.append("b1\tctrl\tm9\tstack.tif\ttiff_stack\t40\t0.4\t16\t")
+    path = _sheet(tmp_path, *rows)
+    for k in range(1, 4):
+        (tmp_path / f"s{k}.tif").write_bytes(b"")
+    sheet = load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert unusual_voxel_sizes(sheet, sheet_path=path) == [
+        f"{path}: dataset b1: voxel_y_nm 0.4 nm is 20x finer than the study's median in-plane "
+        "voxel size (8 nm); expected sizes within 10x of it (a unit slip?)"
+    ]
+    assert unusual_voxel_sizes(sheet.iloc[:3], sheet_path=path) == []
 
 
 def test_a_sheet_saved_as_utf16_is_named_as_not_utf8(tmp_path, schemas):

@@ -594,6 +594,50 @@ def load_datasets(
     return frame.set_index("dataset", drop=False)
 
 
+#: A dataset whose in-plane voxel size differs from the study's median by more than this
+#: factor is named in a warning: within one study such a gap is far likelier a unit or typing
+#: slip (0.5 for 5 nm) than a real difference, and it silently moves every object size and the
+#: size filters. A warning, not a refusal, since a study may mix instruments on purpose.
+VOXEL_SIZE_WARNING_FACTOR = 10.0
+
+
+def unusual_voxel_sizes(datasets, *, sheet_path, factor=VOXEL_SIZE_WARNING_FACTOR):
+    """Warnings (one line each) for datasets whose in-plane voxel size in the sheet lies more
+    than `factor` times away from the median of the study's in-plane voxel sizes.
+
+    Blank cells (sizes taken from the file's header) are not compared.
+
+    Examples
+    --------
+    >>> sheet = pd.DataFrame({"dataset": ["a", "b", "c"], "voxel_y_nm": [10.0, 0.5, 10.0],
+    ...                       "voxel_x_nm": [10.0, 0.5, None]}).set_index("dataset", drop=False)
+    >>> for line in unusual_voxel_sizes(sheet, sheet_path="datasets.tsv"):
+    ...     print(line)
+    datasets.tsv: dataset b: voxel_y_nm 0.5 nm is 20x finer than the study's median in-plane voxel size (10 nm); expected sizes within 10x of it (a unit slip?)
+    datasets.tsv: dataset b: voxel_x_nm 0.5 nm is 20x finer than the study's median in-plane voxel size (10 nm); expected sizes within 10x of it (a unit slip?)
+    """
+    columns = [c for c in ("voxel_y_nm", "voxel_x_nm") if c in datasets.columns]
+    given = [float(v) for c in columns for v in datasets[c] if v is not None and v == v]
+    if len(given) < 2:
+        return []
+    median = float(pd.Series(given).median())
+    lines = []
+    for dataset, row in datasets.iterrows():
+        for column in columns:
+            value = row[column]
+            if value is None or value != value:
+                continue
+            ratio = max(value / median, median / value)
+            if ratio > factor:
+                how = "finer" if value < median else "coarser"
+                lines.append(
+                    f"{sheet_path}: dataset {dataset}: {column} {value:g} nm is {ratio:.0f}x "
+                    f"{how} than the study's median in-plane voxel size ({median:g} nm); "
+                    f"expected sizes within {factor:g}x of it (a unit slip?)"
+                )
+    return lines
+
+
 def _check_one_row_per_stack(frame, lines, sheet_path, base_dir):
     """Refuse two rows that name the same stack (the same file, and array inside it).
 
