@@ -49,7 +49,8 @@ def check_labels_job(
     :func:`~tessera.workflow.files.label_volumes.check_both_classes`). An instance volume, when
     the target has one, must have that shape too and cover the same voxels (> 0): a foreground
     Jaccard of at least :data:`MIN_INSTANCE_AGREEMENT`, or the objects would be scored against
-    other organelles than the pixels.
+    other organelles than the pixels; and it must number them: one id over objects the labels
+    hold apart is a mask, refused.
 
     With ``sections: labelled`` (:func:`tessera.tiles.sampling.unannotated_sections`), some
     section of the target's working level (the `pyramid_path` level at `downsample`) must be
