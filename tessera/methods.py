@@ -434,6 +434,25 @@ def _closing_lines(c, sheet_rows, software, checksums):
     return lines + [f"- `{name}`: `{digest}`" for digest, name in checksums]
 
 
+def _whole_text(row):
+    """How many true objects lay whole within the scored sections, when fewer than half did.
+
+    Examples
+    --------
+    >>> _whole_text({"truth_whole": 7, "truth_objects": 102})
+    '; only 7 of the 102 true objects lay whole within those sections, so most were scored on their cut part'
+    >>> _whole_text({"truth_whole": 60, "truth_objects": 102}), _whole_text({})
+    ('', '')
+    """
+    whole, total = row.get("truth_whole"), row.get("truth_objects")
+    if whole is None or not total or whole != whole or 2 * whole >= total:
+        return ""
+    return (
+        f"; only {int(whole)} of the {int(total)} true objects lay whole within those sections, "
+        "so most were scored on their cut part"
+    )
+
+
 def _objects_3d_text(objects_3d):
     """One sentence on the 3D object scores of every target that has them ('' if none).
 
@@ -450,7 +469,8 @@ def _objects_3d_text(objects_3d):
         f"objects ({row['truth_source']}) with F1 {row['object_f1']:.3f} (precision "
         f"{row['object_precision']:.3f}, recall {row['object_recall']:.3f}; adapted Rand error "
         f"{row['arand']:.3f}, VOI split {row['voi_split']:.3f} and merge {row['voi_merge']:.3f} "
-        f"bits; voxel Jaccard of the objects mask {row['voxel_jaccard']:.3f} at full resolution)"
+        f"bits; voxel Jaccard of the objects mask {row['voxel_jaccard']:.3f} at full resolution"
+        f"{_whole_text(row)})"
         for name, row in (objects_3d or {}).items()
     ]
     if not parts:

@@ -374,6 +374,8 @@ def test_methods_paragraph_quotes_the_3d_scores_it_is_given(tmp_path):
     assert f"F1 {4 / 7:.3f} (precision 0.500, recall {2 / 3:.3f}" in text
     assert "the mito objects on 1 held-out test sections" in text
     assert "(26-connected components of the labels)" in text
+    # by hand: none of A, B and E lies whole within section 8
+    assert "only 0 of the 3 true objects lay whole within those sections" in text
 
 
 def test_held_out_sections_keep_the_guard_distance_and_skip_other_roles():
