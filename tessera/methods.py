@@ -12,6 +12,7 @@ from tessera import __version__
 from tessera.cascade.across_sections import AUTO_SECTION_RULE, section_sigma
 from tessera.cascade.features import default_sigmas
 from tessera.interval_caution import MIN_TEST_TILES
+from tessera.object_scores import mostly_cut
 from tessera.objects.depth_limit import AUTO_DEPTH_RULE
 from tessera.spacing import NEAR_ISOTROPIC_ASPECT
 
@@ -445,7 +446,7 @@ def _whole_text(row):
     ('', '')
     """
     whole, total = row.get("truth_whole"), row.get("truth_objects")
-    if whole is None or not total or whole != whole or 2 * whole >= total:
+    if whole is None or whole != whole or not mostly_cut(whole, total):
         return ""
     return (
         f"; only {int(whole)} of the {int(total)} true objects lay whole within those sections, "

@@ -33,6 +33,7 @@ from tessera.errors import TesseraInputError
 __all__ = [
     "connected_truth",
     "match_table",
+    "mostly_cut",
     "object_scores",
     "overlap_counts",
     "partition_scores",
@@ -40,8 +41,8 @@ __all__ = [
     "scores_from_overlaps",
     "size_classes",
     "voxel_ratios",
-    "whole_in_sections",
     "voxel_scores",
+    "whole_in_sections",
 ]
 
 #: The ids 0 (background) and the objects a labeling may hold: non-negative integers.
@@ -426,3 +427,15 @@ def whole_in_sections(labels, z0, z1):
     inside = present_in(labels[z0:z1])
     outside = present_in(labels[:z0]) | present_in(labels[z1:])
     return int(np.count_nonzero(inside & ~outside)), int(np.count_nonzero(inside))
+
+
+def mostly_cut(whole, present):
+    """Whether fewer than half of the objects present in a slab lie whole within it (the rule
+    behind the cautions of the 3D object scores and the methods paragraph).
+
+    Examples
+    --------
+    >>> mostly_cut(7, 102), mostly_cut(60, 102), mostly_cut(0, 0)
+    (True, False, False)
+    """
+    return bool(present) and 2 * whole < present

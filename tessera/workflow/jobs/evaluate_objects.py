@@ -21,6 +21,7 @@ from tessera.io.omezarr import open_image
 from tessera.object_scores import (
     connected_truth,
     match_table,
+    mostly_cut,
     overlap_counts,
     repeat_labels,
     scores_from_overlaps,
@@ -196,7 +197,7 @@ def _cut_objects_note(whole, present):
     >>> _cut_objects_note(1, 10)[:62]
     'only 1 of 10 true objects lies whole within the scored section'
     """
-    if not present or 2 * whole >= present:
+    if not mostly_cut(whole, present):
         return ""
     return (
         f"only {whole} of {present} true objects {'lies' if whole == 1 else 'lie'} whole within "
@@ -216,13 +217,14 @@ def _pooled_row(rows, matches):
     relative = (matched["pred_voxels"] - matched["truth_voxels"]) / matched["truth_voxels"]
     voxels = {c: int(table[c].sum()) for c in ("true_voxels", "predicted_voxels", "shared_voxels")}
     sources = sorted(set(table["truth_source"]))
+    whole = int(table["truth_whole"].sum())
     return {
         "dataset": "all",
         "truth_source": sources[0] if len(sources) == 1 else "; ".join(sources),
         "sections": int(table["sections"].sum()),
         "excluded_sections": int(table["excluded_sections"].sum()),
         "truth_objects": t,
-        "truth_whole": int(table["truth_whole"].sum()),
+        "truth_whole": whole,
         "predicted_objects": p,
         "matched_objects": k,
         "object_precision": k / p if p else 0.0,
@@ -242,7 +244,7 @@ def _pooled_row(rows, matches):
             n
             for n in (
                 f"not scored: {', '.join(skipped)}" if skipped else "",
-                _cut_objects_note(int(table["truth_whole"].sum()), t),
+                _cut_objects_note(whole, t),
             )
             if n
         ),

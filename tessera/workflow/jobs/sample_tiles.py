@@ -92,17 +92,17 @@ def check_labels_job(
                 f"(at least {MIN_INSTANCE_AGREEMENT:.0%})",
                 source=instances_path,
             )
-        _refuse_a_mask_as_instances(ids, target_mask, instances_path)
+        _refuse_a_mask_as_instances(ids, instances, target_mask, instances_path)
         found["instance_agreement"] = agreement
     write_labels_check(out_path, found)
     return found
 
 
-def _refuse_a_mask_as_instances(ids, target_mask, instances_path):
+def _refuse_a_mask_as_instances(ids, marked_voxels, target_mask, instances_path):
     """Refuse an instance volume that gives one id to organelles the labels hold apart (a
     mask, such as the label volume itself, given as instances): every object would be scored
     against one true object."""
-    marked = ids[ids > 0]
+    marked = ids[marked_voxels]
     if not marked.size or marked.min() != marked.max():
         return
     _, components = ndimage.label(target_mask, np.ones((3, 3, 3), bool))
