@@ -17,9 +17,10 @@ Conventions (stated in every output):
   H(truth | prediction), in bits.
 * Intervals are percentile bootstraps over test tiles (the tile is the resampled unit), over
   the resamples where the score is defined. Test tiles that hold no target and get none
-  predicted have no pixel scores (empty, not 0: 0 / 0 is undefined). A row scored on too few
-  tiles says so in its ``note`` (:mod:`tessera.interval_caution`: one tile gives no interval, a
-  few an interval narrower than the uncertainty).
+  predicted have no pixel scores (empty, not 0: 0 / 0 is undefined), per tile as in the pooled
+  rows. A row scored on too few tiles that hold a true or predicted target pixel
+  (``informative_tiles``) says so in its ``note`` (:mod:`tessera.interval_caution`: one such
+  tile gives no interval, a few an interval narrower than the uncertainty).
 """
 
 import math
@@ -32,7 +33,13 @@ from tessera.errors import TesseraInputError
 from tessera.interval_caution import few_tiles_note
 from tessera.label_values import IGNORE
 from tessera.plotting import pyplot
-from tessera.threshold import apply_threshold, choose_threshold, confusion, scores_from_counts
+from tessera.threshold import (
+    apply_threshold,
+    choose_threshold,
+    confusion,
+    informative,
+    scores_from_counts,
+)
 
 EIGHT = np.ones((3, 3), bool)
 
@@ -136,9 +143,12 @@ def partition_errors(truth_labels, pred_labels):
 
 
 def bootstrap_interval(tile_counts, statistic, *, reps=1000, confidence=0.95, seed=0):
-    """Percentile interval of `statistic(summed counts)` over tiles resampled with replacement."""
+    """Percentile interval of `statistic(summed counts)` over tiles (rows of tp, fp, fn)
+    resampled with replacement."""
     counts = np.asarray(tile_counts, dtype=np.float64)
-    if len(counts) < 2:
+    # tiles of background alone, predicted as such, only repeat the others' sums: with fewer
+    # than two tiles that hold anything every resample gives the same value
+    if len(counts) < 2 or np.count_nonzero(informative(*counts.T)) < 2:
         return math.nan, math.nan
     rng = np.random.default_rng(seed)
     picks = rng.integers(0, len(counts), size=(reps, len(counts)))
@@ -177,7 +187,7 @@ def _tile_scores(row, prob, truth, threshold):
         "fp": fp,
         "fn": fn,
         "tn": tn,
-        **scores_from_counts(tp, fp, fn),
+        **_pixel_scores(tp, fp, fn),
         **objects,
         **partition_errors(t_lab, p_lab),
     }
@@ -189,7 +199,9 @@ def _group_summary(name, group, labels, probabilities, threshold, *, confidence,
     counts = group[["tp", "fp", "fn"]].to_numpy()
     totals = counts.sum(axis=0)
     pixel = _pixel_scores(*totals)
-    out = {"dataset": name, "tiles": len(group), "threshold": threshold, **pixel}
+    k = int(informative(*counts.T).sum())
+    out = {"dataset": name, "tiles": len(group), "informative_tiles": k}
+    out.update({"threshold": threshold, **pixel})
     for metric in ("f1", "jaccard"):
         low, high = bootstrap_interval(
             counts,
@@ -222,7 +234,7 @@ def _group_summary(name, group, labels, probabilities, threshold, *, confidence,
             "voi_merge": float(group["voi_merge"].mean()),
             "confidence": confidence,
             "object_rule": "8-connected per tile, IoU > 0.5",
-            "note": few_tiles_note(len(group)),
+            "note": few_tiles_note(len(group), k),
         }
     )
     return out
@@ -362,6 +374,8 @@ def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
     fig, ax = plt.subplots(figsize=(max(4, 0.3 * len(per_tile) + 1), 3.5))
     colours = {d: f"C{i % 10}" for i, d in enumerate(sorted(per_tile["dataset"].unique()))}
     ax.bar(range(len(per_tile)), per_tile["f1"], color=[colours[d] for d in per_tile["dataset"]])
+    for i in np.flatnonzero(per_tile["f1"].isna().to_numpy()):  # no target, none predicted
+        ax.text(i, 0.02, "empty", rotation=90, ha="center", va="bottom", fontsize=6)
     ax.set_xticks(range(len(per_tile)), per_tile["tile_id"], rotation=90, fontsize=6)
     ax.set(ylabel="pixel F1", ylim=(0, 1), title=f"{target}: F1 per test tile (colour = dataset)")
     fig.tight_layout()

@@ -97,19 +97,28 @@ def _unsure_text(test):
     )
 
 
-def _few_tiles_text(tiles):
-    """A caution when the test scores rest on fewer tiles than an interval needs.
+def _few_tiles_text(tiles, informative_tiles):
+    """A caution when the test scores rest on fewer tiles than an interval needs, counting
+    only the tiles that hold a true or predicted target pixel.
 
     Examples
     --------
-    >>> _few_tiles_text(12)
+    >>> _few_tiles_text(12, 12)
     ''
-    >>> _few_tiles_text(3)
+    >>> _few_tiles_text(3, 3)
     ' (3 test tiles are too few for a dependable interval on these figures)'
+    >>> _few_tiles_text(5, 1)
+    ' (only 1 of the 5 test tiles held the target or a prediction: too few for a dependable interval on these figures)'
     """
-    if tiles >= MIN_TEST_TILES:
+    k = informative_tiles
+    if k >= MIN_TEST_TILES:
         return ""
-    return f" ({_plural(tiles, 'test tile')} {'is' if tiles == 1 else 'are'} too few for a dependable interval on these figures)"
+    if k == tiles:
+        return f" ({_plural(tiles, 'test tile')} {'is' if tiles == 1 else 'are'} too few for a dependable interval on these figures)"
+    return (
+        f" (only {k} of the {tiles} test tiles held the target or a prediction: too few for a "
+        "dependable interval on these figures)"
+    )
 
 
 def _ladder_clause(cascade):
@@ -218,7 +227,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"probability threshold ({val['threshold']:.2f}) was chosen for the best F1 on {int(val['tiles'])} validation "
         f"tiles; on {int(test['tiles'])} held-out test tiles pixel precision was {test['precision']:.3f}, recall "
         f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}"
-        f"{_unsure_text(test)}{_few_tiles_text(int(test['tiles']))}. Whole volumes were "
+        f"{_unsure_text(test)}{_few_tiles_text(int(test['tiles']), int(test['informative_tiles']))}. Whole volumes were "
         f"predicted block by block with a halo of the model's receptive field, which gives the same result as "
         f"predicting each volume in one piece. {_smoothing_text(settings)}Probability maps were thresholded with {hysteresis}"
         + (f", {', '.join(morph)}" if morph else "")

@@ -79,3 +79,18 @@ def choose_threshold(prob, truth, *, grid=GRID):
     """
     scores = [scores_from_counts(*confusion(prob, truth, t)[:3])["f1"] for t in grid]
     return grid[int(np.argmax(scores))]
+
+
+def informative(tp, fp, fn):
+    """Which tiles bear on pixel scores: those holding a true or a predicted target pixel.
+
+    A tile of background alone, predicted as such, adds nothing to pooled precision, recall or
+    F1, nor to a bootstrap's spread; such tiles do not count towards the tiles an interval needs
+    (:mod:`tessera.interval_caution`).
+
+    Examples
+    --------
+    >>> informative([5, 0, 0], [1, 0, 2], [0, 0, 0]).tolist()
+    [True, False, True]
+    """
+    return (np.asarray(tp) + np.asarray(fp) + np.asarray(fn)) > 0

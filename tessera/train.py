@@ -15,7 +15,7 @@ import pandas as pd
 from tessera.cascade.api import lazy_tile, receptive_radius, z_halo
 from tessera.errors import TesseraInputError
 from tessera.label_values import IGNORE
-from tessera.threshold import GRID, choose_threshold, confusion, scores_from_counts
+from tessera.threshold import GRID, choose_threshold, confusion, informative, scores_from_counts
 from tessera.tile_windows import tile_room, tile_window
 
 
@@ -134,13 +134,19 @@ def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
 
     Pixels labelled 255 (ignore) are left out; ``unsure_fraction`` says what share of the
     role's tile pixels that was (scores leave out the unsure border pixels an annotator marks,
-    so a wide unsure band raises them). The threshold rule is
-    :func:`tessera.threshold.choose_threshold`.
+    so a wide unsure band raises them); ``informative_tiles`` counts the tiles holding a true
+    or predicted target pixel at the threshold (:func:`tessera.threshold.informative`).
+    The threshold rule is :func:`tessera.threshold.choose_threshold`.
     """
 
     def pooled(role):
         ids = registry.loc[registry["role"] == role, "tile_id"]
         return pooled_pixels(ids, labels, probabilities) if len(ids) else (None, None)
+
+    def informative_tiles(role, threshold):
+        ids = registry.loc[registry["role"] == role, "tile_id"]
+        counts = [confusion(*pooled_pixels([t], labels, probabilities), threshold)[:3] for t in ids]
+        return int(informative(*np.asarray(counts).reshape(-1, 3).T).sum())
 
     val_p, val_t = pooled("validation")
     if val_p is None:
@@ -154,6 +160,7 @@ def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
                 {
                     "role": role,
                     "tiles": int((registry["role"] == role).sum()),
+                    "informative_tiles": informative_tiles(role, best),
                     "threshold": float(best),
                     **scores_from_counts(*confusion(p, t, best)[:3]),
                     "unsure_fraction": _unsure_fraction(registry, labels, role),

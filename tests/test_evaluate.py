@@ -240,17 +240,45 @@ def test_test_tiles_without_any_target_are_refused_in_one_line():
 
 def test_a_dataset_without_target_or_prediction_has_undefined_pixel_scores():
     # F1 = 2TP / (2TP + FP + FN) is 0 / 0 on a tile with no target and nothing predicted: the
-    # dataset's row is left empty (NaN), not scored 0, and bootstrap resamples drawing only such
-    # tiles do not drag the pooled interval to 0.
+    # dataset's row and the tile's own row are left empty (NaN), not scored 0; and a pooled
+    # row resting on one tile that holds anything has no interval (every bootstrap resample
+    # sums copies of that one tile: Efron & Tibshirani 1993, the resampled unit is the tile).
     reg = registry(["validation", "test", "test"])  # t1 in d1, t2 in d2
     target = np.zeros((8, 8), np.uint8)
     target[2:6, 2:6] = 1
     labels = {"t0": target, "t1": target.copy(), "t2": np.zeros((8, 8), np.uint8)}
     probs = {t: np.where(labels[t] == 1, 0.9, 0.1).astype(np.float32) for t in labels}
-    summary = evaluate_tiles(reg, labels, probs, reps=200)[0].set_index("dataset")
+    summary, per_tile, _ = evaluate_tiles(reg, labels, probs, reps=200)
+    summary = summary.set_index("dataset")
     assert np.isnan(summary.loc["d2", ["precision", "recall", "f1", "jaccard"]]).all()
+    empty = per_tile.set_index("tile_id").loc["t2", ["precision", "recall", "f1", "jaccard"]]
+    assert np.isnan(empty.astype(float)).all()
     assert summary.loc["d1", "f1"] == summary.loc["all", "f1"] == 1.0
-    assert summary.loc["all", "f1_ci_low"] == summary.loc["all", "f1_ci_high"] == 1.0
+    assert summary.loc["all", "tiles"] == 2 and summary.loc["all", "informative_tiles"] == 1
+    assert np.isnan(summary.loc["all", ["f1_ci_low", "f1_ci_high"]].astype(float)).all()
+    assert summary.loc["all", "note"].startswith(
+        "only 1 of 2 test tiles holds the target or a prediction: no interval"
+    )
+
+
+def test_tiles_of_background_alone_do_not_count_towards_an_interval():
+    # Six test tiles, two holding target: the pooled F1 is that of the two (the empty tiles add
+    # nothing to TP, FP or FN; F1 = 2TP / (2TP + FP + FN), common practice), and the note says
+    # the interval rests on two tiles, not six.
+    reg = registry(["validation"] + ["test"] * 6)
+    target = np.zeros((8, 8), np.uint8)
+    target[2:6, 2:6] = 1
+    labels = {t: np.zeros((8, 8), np.uint8) for t in reg["tile_id"]}
+    labels["t0"], labels["t1"], labels["t2"] = target, target.copy(), target.copy()
+    probs = {t: np.where(labels[t] == 1, 0.9, 0.1).astype(np.float32) for t in labels}
+    probs["t2"][2, 2] = 0.0  # one true pixel missed
+    reg["dataset"] = "d1"
+    summary = evaluate_tiles(reg, labels, probs, reps=200)[0].set_index("dataset")
+    assert summary.loc["all", "f1"] == pytest.approx(2 * 31 / (2 * 31 + 0 + 1))
+    assert summary.loc["all", "informative_tiles"] == 2
+    assert summary.loc["all", "note"].startswith(
+        "only 2 of 6 test tiles hold the target or a prediction: the interval is unreliable"
+    )
 
 
 def test_missing_test_tiles_and_leakage_are_refused():

@@ -436,7 +436,12 @@ def test_methods_text_states_the_chosen_rung_and_how_it_was_chosen(tmp_path, f1,
     # a ladder target's methods paragraph names the cascade the predictions used, not the
     # configured one
     pd.DataFrame(
-        {"role": ["validation", "test"], "tiles": [4, 5], "threshold": [0.4, 0.4]}
+        {
+            "role": ["validation", "test"],
+            "tiles": [4, 5],
+            "informative_tiles": [4, 5],
+            "threshold": [0.4, 0.4],
+        }
         | {k: [0.9, 0.8] for k in ("precision", "recall", "f1", "jaccard")}
     ).to_csv(tmp_path / "scores.tsv", sep="\t", index=False)
     (tmp_path / "objects.json").write_text(

@@ -43,6 +43,7 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None, unsur
         {
             "role": ["validation", "test"],
             "tiles": [4, 5],
+            "informative_tiles": [4, 5],
             "threshold": [0.42, 0.42],
             "precision": [0.9, 0.871],
             "recall": [0.9, 0.912],
@@ -309,6 +310,7 @@ def methods_inputs(tmp_path, comparison_table, sheet, *, reference=None, qc_rows
         {
             "role": ["validation", "test"],
             "tiles": [4, 5],
+            "informative_tiles": [4, 5],
             "threshold": [0.5, 0.5],
             "precision": [0.9, 0.9],
             "recall": [0.9, 0.9],

@@ -79,6 +79,23 @@ def test_scores_match_sklearn_with_threshold_chosen_on_validation():
     assert table.loc["test", "jaccard"] == pytest.approx(jaccard_score(test_t, test_pred))
 
 
+def test_tiles_holding_nothing_are_not_counted_as_informative():
+    # A test tile of background alone with nothing predicted adds nothing to TP, FP or FN
+    # (F1 = 2TP / (2TP + FP + FN), common practice); one with a false positive does.
+    registry = pd.DataFrame(
+        {"tile_id": ["v1", "t1", "t2", "t3"], "role": ["validation", "test", "test", "test"]}
+    )
+    target = np.zeros((6, 6), np.uint8)
+    target[1:4, 1:4] = 1
+    labels = {"v1": target, "t1": target.copy()}
+    labels.update({t: np.zeros((6, 6), np.uint8) for t in ("t2", "t3")})
+    probs = {t: np.where(labels[t] == 1, 0.9, 0.1).astype(np.float32) for t in labels}
+    probs["t3"][0, 0] = 0.95  # a false positive on an otherwise empty tile
+    table = score_tiles(registry, labels, probs).set_index("role")
+    assert table.loc["test", "tiles"] == 3 and table.loc["test", "informative_tiles"] == 2
+    assert table.loc["validation", "informative_tiles"] == 1
+
+
 # Probabilities on half-hundredths (0.005, 0.015, ..., 0.995): never equal to a grid value, so
 # the decisions at each hundredth do not depend on how the grid's floats are rounded.
 HALF_HUNDREDTHS = (np.arange(100) + 0.5) / 100

@@ -1,6 +1,7 @@
 """The tile scores, ``results/study/<target>/tiles_predicted/scores.tsv``: its one writer and reader.
 
-One row per role (``validation``, ``test``): ``role``, ``tiles``, ``threshold`` (the one chosen
+One row per role (``validation``, ``test``): ``role``, ``tiles``, ``informative_tiles`` (those
+holding a true or predicted target pixel), ``threshold`` (the one chosen
 on the validation tiles, :func:`tessera.threshold.choose_threshold`), ``precision``, ``recall``,
 ``f1``, ``jaccard`` and ``unsure_fraction`` (the share of the tiles' pixels marked unsure, left
 out of the scores). Rule predict_tiles writes it; objects (the default threshold), statistics
