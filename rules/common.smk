@@ -34,6 +34,7 @@ from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.ladder import chosen_rung
 from tessera.workflow.files.points import read_points
 from tessera.workflow.files.to_paint import mask_files
+from tessera.io.stacks import slice_folder_files
 from tessera.workflow.input_identity import input_identity
 
 # Where the demo rule writes; sheet paths below it need not exist yet.
@@ -110,7 +111,7 @@ def dataset_subject(wildcards):
     return DATASETS.loc[wildcards.dataset, "subject"]
 
 
-def user_input_identity(path):
+def user_input_identity(path, files=None):
     """The stat identity of a user's file or folder (tessera.workflow.input_identity), a param
     of the jobs reading it first, so that one replaced by a file with an older time still
     reruns them. The demo's stacks are outputs of demo_dataset, which Snakemake follows itself.
@@ -118,11 +119,29 @@ def user_input_identity(path):
     demo = Path(DEMO_DIR).resolve()
     if "demo" in config and Path(path).resolve().is_relative_to(demo):
         return "made by rule demo_dataset"
-    return input_identity(path)
+    return input_identity(path, files=files)
+
+
+def stack_identity(dataset):
+    """The identity of a dataset's stack; of a slice folder, over the files its reader looks
+    at (a .DS_Store or a note added beside the sections reruns nothing)."""
+    path = DATASETS.loc[dataset, "path"]
+    if DATASETS.loc[dataset, "format"] == "slice_folder" and Path(path).is_dir():
+        return user_input_identity(path, files=slice_folder_files(path))
+    return user_input_identity(path)
 
 
 def dataset_stack_identity(wildcards):
-    return user_input_identity(dataset_path(wildcards))
+    return stack_identity(wildcards.dataset)
+
+
+def dataset_stack_input(wildcards):
+    """The stack as an input of the jobs reading it. A folder's own time changes whenever a
+    file is added or removed beside the sections (and not when a section is edited in place),
+    so it is left out of Snakemake's time check: the folder's identity (a param) decides.
+    """
+    path = dataset_path(wildcards)
+    return ancient(path) if Path(path).is_dir() else path
 
 
 def dataset_spacing(wildcards):
@@ -549,11 +568,17 @@ def dataset_inputs_of(dataset):
 
 
 def dataset_inputs(wildcards):
-    return dataset_inputs_of(wildcards.dataset)
+    # a folder's own time is left out, as for the stack's readers (dataset_stack_input)
+    return [
+        ancient(p) if Path(p).is_dir() else p
+        for p in dataset_inputs_of(wildcards.dataset)
+    ]
 
 
 def dataset_inputs_identity(wildcards):
-    return [user_input_identity(p) for p in dataset_inputs(wildcards)]
+    row = DATASETS.loc[wildcards.dataset]
+    mask = [user_input_identity(row["roi_mask"])] if row["roi_mask"] else []
+    return [stack_identity(wildcards.dataset), *mask]
 
 
 def study_factors(wildcards):

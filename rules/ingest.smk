@@ -5,7 +5,7 @@
 
 rule check_stack:
     input:
-        stack=dataset_path,
+        stack=dataset_stack_input,
     output:
         check="results/{dataset}/ingest/stack_check.json",
     log:
@@ -31,7 +31,7 @@ rule check_stack:
 
 rule ingest:
     input:
-        stack=dataset_path,
+        stack=dataset_stack_input,
         check="results/{dataset}/ingest/stack_check.json",
     output:
         image=directory("results/{dataset}/ingest/raw.ome.zarr"),

@@ -168,6 +168,27 @@ def _pixel_scores(tp, fp, fn):
     return scores_from_counts(tp, fp, fn)
 
 
+def _object_scores(true_objects, predicted_objects, matched):
+    """Object precision, recall and F1; undefined (NaN) where there is no object at all, as the
+    pixel scores are (:func:`_pixel_scores`), else 0 where one side has none.
+
+    Examples
+    --------
+    >>> _object_scores(4, 2, 2)["object_f1"], _object_scores(3, 0, 0)["object_recall"]
+    (0.6666666666666666, 0.0)
+    >>> _object_scores(0, 0, 0)["object_f1"]
+    nan
+    """
+    t, p, k = true_objects, predicted_objects, matched
+    if t + p == 0:
+        return dict.fromkeys(("object_precision", "object_recall", "object_f1"), math.nan)
+    return {
+        "object_precision": k / p if p else 0.0,
+        "object_recall": k / t if t else 0.0,
+        "object_f1": 2 * k / (t + p),
+    }
+
+
 def _tile_scores(row, prob, truth, threshold):
     """Pixel counts and scores, object matches and partition errors of one test tile."""
     if prob.shape != truth.shape:
@@ -226,9 +247,7 @@ def _group_summary(name, group, labels, probabilities, threshold, *, confidence,
             "true_objects": t_obj,
             "predicted_objects": p_obj,
             "matched_objects": matched,
-            "object_precision": matched / p_obj if p_obj else 0.0,
-            "object_recall": matched / t_obj if t_obj else 0.0,
-            "object_f1": 2 * matched / (t_obj + p_obj) if t_obj + p_obj else 0.0,
+            **_object_scores(t_obj, p_obj, matched),
             "adapted_rand_error": float(group["adapted_rand_error"].mean()),
             "voi_split": float(group["voi_split"].mean()),
             "voi_merge": float(group["voi_merge"].mean()),
@@ -377,7 +396,8 @@ def plot_evaluation(summary, per_tile, curve, out_curve, out_tiles, *, target):
     for i in np.flatnonzero(per_tile["f1"].isna().to_numpy()):  # no target, none predicted
         ax.text(i, 0.02, "empty", rotation=90, ha="center", va="bottom", fontsize=6)
     ax.set_xticks(range(len(per_tile)), per_tile["tile_id"], rotation=90, fontsize=6)
-    ax.set(ylabel="pixel F1", ylim=(0, 1), title=f"{target}: F1 per test tile (colour = dataset)")
+    # two lines: a figure of a few tiles is narrow
+    ax.set(ylabel="pixel F1", ylim=(0, 1), title=f"{target}: F1 per test tile\n(colour = dataset)")
     fig.tight_layout()
     fig.savefig(out_tiles, dpi=100, format="png")
     plt.close(fig)

@@ -770,15 +770,26 @@ def test_internal_path_column_is_checked_per_format(tmp_path, schemas, row, mess
 
 def test_internal_path_column_is_optional_for_zarr_and_absent_for_old_sheets(tmp_path, schemas):
     (tmp_path / "stack.tif").write_bytes(b"")
+    (tmp_path / "other.h5").write_bytes(b"")
     rows = [
         "a1\tctrl\tm1\tstack.tif\tzarr\t40\t8\t8\t\t",
         "a2\tctrl\tm2\tstack.tif\tzarr\t40\t8\t8\t\t/volumes/raw",
-        "a3\tctrl\tm3\tstack.tif\thdf5\t40\t8\t8\t\tvolumes/raw",
+        "a3\tctrl\tm3\tother.h5\thdf5\t40\t8\t8\t\tvolumes/raw/",
     ]
     sheet = load_datasets(
         _sheet(tmp_path, *rows, header=INNER), schemas / "datasets.schema.yaml", base_dir=tmp_path
     )
-    assert sheet["internal_path"].tolist() == [None, "/volumes/raw", "volumes/raw"]
+    # one spelling per array: HDF5, zarr and N5 paths inside a container are relative to its
+    # root whether or not they start with "/" (h5py and zarr read both alike)
+    assert sheet["internal_path"].tolist() == [None, "volumes/raw", "volumes/raw"]
+    # so the same array under two spellings is one stack named twice
+    twice = rows[:2] + ["a4\tctrl\tm4\tstack.tif\tzarr\t40\t8\t8\t\tvolumes//raw"]
+    with pytest.raises(TesseraInputError, match=r"rows 3 \(a2\) and 4 \(a4\) name the same stack"):
+        load_datasets(
+            _sheet(tmp_path, *twice, header=INNER),
+            schemas / "datasets.schema.yaml",
+            base_dir=tmp_path,
+        )
     old = load_datasets(_sheet(tmp_path, GOOD), schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert old.loc["a1", "internal_path"] is None  # the schema's default
 

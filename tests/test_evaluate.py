@@ -251,6 +251,9 @@ def test_a_dataset_without_target_or_prediction_has_undefined_pixel_scores():
     summary, per_tile, _ = evaluate_tiles(reg, labels, probs, reps=200)
     summary = summary.set_index("dataset")
     assert np.isnan(summary.loc["d2", ["precision", "recall", "f1", "jaccard"]]).all()
+    objects = ["object_precision", "object_recall", "object_f1"]
+    assert np.isnan(summary.loc["d2", objects].astype(float)).all()  # 0 true, 0 predicted
+    assert (summary.loc["d1", objects] == 1.0).all()
     empty = per_tile.set_index("tile_id").loc["t2", ["precision", "recall", "f1", "jaccard"]]
     assert np.isnan(empty.astype(float)).all()
     assert summary.loc["d1", "f1"] == summary.loc["all", "f1"] == 1.0

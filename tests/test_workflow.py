@@ -7,6 +7,7 @@ import re
 import shutil
 import subprocess
 import sys
+import time
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -887,6 +888,43 @@ def test_a_stack_replaced_by_an_older_file_reruns_its_dataset(tmp_path, repo=REP
     assert after != before  # the image is the corrected stack's
     again = snakemake("-n", *args, cwd=tmp_path)
     assert "Nothing to be done" in again.stdout + again.stderr
+
+
+def test_files_a_slice_folder_reader_ignores_rerun_nothing(tmp_path, repo=REPO_ROOT):
+    # A folder's own time changes when any file is added beside the sections (POSIX: adding a
+    # directory entry updates the directory's modification time), e.g. the .DS_Store macOS
+    # leaves; the sections are read from the TIFF and PNG files only, so such a file reruns
+    # nothing, while a section edited in place (the folder's time unchanged) reruns the dataset.
+    import tifffile
+
+    rng = np.random.default_rng(8)
+    (tmp_path / "config").mkdir()
+    (tmp_path / "labels").mkdir()
+    folder = tmp_path / "stacks" / "d1"
+    folder.mkdir(parents=True)
+    for z in range(6):
+        section = rng.integers(0, 256, (64, 64), dtype=np.uint8)
+        tifffile.imwrite(folder / f"s{z:02d}.tif", section, photometric="minisblack")
+    _one_stack_study(tmp_path)
+    sheet = tmp_path / "config" / "datasets.tsv"
+    sheet.write_text(
+        sheet.read_text().replace("stacks/d1.tif\ttiff_stack", "stacks/d1\tslice_folder")
+    )
+    image, sums = "results/d1/ingest/raw.ome.zarr", "results/d1/audit/inputs.sha256"
+    args = ("--cores", "1", "--snakefile", str(repo / "Snakefile"), image, sums)
+    snakemake(*args, cwd=tmp_path)
+    (folder / ".DS_Store").write_bytes(b"\0" * 10)
+    (folder / "notes.txt").write_text("imaged on the second day\n")
+    unchanged = snakemake("-n", *args, cwd=tmp_path)
+    assert "Nothing to be done" in unchanged.stdout + unchanged.stderr
+    folder_time = folder.stat().st_mtime_ns
+    time.sleep(0.01)
+    tifffile.imwrite(folder / "s03.tif", np.zeros((64, 64), np.uint8), photometric="minisblack")
+    assert folder.stat().st_mtime_ns == folder_time  # edited in place: the folder's time stays
+    planned = snakemake("-n", "--quiet", "rules", *args, cwd=tmp_path).stdout
+    assert {"check_stack", "ingest", "checksum_inputs"} <= {
+        line.split()[0] for line in planned.splitlines() if line[:1].isalpha()
+    }
 
 
 def test_a_copy_of_a_stack_as_another_animal_stops_before_the_statistics(

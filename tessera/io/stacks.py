@@ -31,7 +31,7 @@ from tessera.io.section_numbers import number_sections
 from tessera.io.tiff_checks import open_checked_tiff, read_checked_page
 from tessera.io.zarr_checks import check_chunk_grid
 
-__all__ = ["FORMATS", "MISSING_SECTIONS", "open_stack"]
+__all__ = ["FORMATS", "MISSING_SECTIONS", "open_stack", "slice_folder_files"]
 
 FORMATS = ("tiff_stack", "slice_folder", "mrc", "zarr", "hdf5", "n5")
 #: What to do with a section missing from a numbered slice folder.
@@ -115,26 +115,42 @@ def _read_plane(path):
             return np.asarray(im)
 
 
+def slice_folder_files(path):
+    """The files of a slice folder that reading it looks at, sorted: its image files, hidden
+    ones left out. Sections are read from the TIFF and PNG files among them; an image of
+    another kind is refused (it may be a section saved in the wrong format). Other files (notes,
+    macOS ``.DS_Store``) are not looked at, so adding or editing them changes nothing.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> d = pathlib.Path(tempfile.mkdtemp())
+    >>> for name in ("s1.tif", "._s1.tif", ".DS_Store", "notes.txt", "s2.PNG"):
+    ...     _ = (d / name).write_bytes(b"")
+    >>> [p.name for p in slice_folder_files(d)]
+    ['s1.tif', 's2.PNG']
+    """
+    # hidden files are no sections: macOS leaves '._<name>' metadata copies beside every
+    # file it writes to a shared drive, and editors leave '.<name>' backups (common practice)
+    suffixes = _SLICE_SUFFIXES + _OTHER_IMAGE_SUFFIXES
+    return sorted(
+        p
+        for p in Path(path).iterdir()
+        if p.suffix.lower() in suffixes and not p.name.startswith(".") and p.is_file()
+    )
+
+
 class _SliceFolder(_Source):
     def __init__(self, path, missing_sections):
         if not path.is_dir():
             raise TesseraInputError("expected a folder of per-section TIFF/PNG files", source=path)
-        # hidden files are no sections: macOS leaves '._<name>' metadata copies beside every
-        # file it writes to a shared drive, and editors leave '.<name>' backups (common practice)
-        names = sorted(
-            p.name
-            for p in path.iterdir()
-            if p.suffix.lower() in _SLICE_SUFFIXES and not p.name.startswith(".")
-        )
+        files = slice_folder_files(path)
+        names = [p.name for p in files if p.suffix.lower() in _SLICE_SUFFIXES]
         if not names:
             raise TesseraInputError(
                 f"no section images ({', '.join(_SLICE_SUFFIXES)}) in the folder", source=path
             )
-        others = sorted(
-            p.name
-            for p in path.iterdir()
-            if p.suffix.lower() in _OTHER_IMAGE_SUFFIXES and not p.name.startswith(".")
-        )
+        others = [p.name for p in files if p.suffix.lower() in _OTHER_IMAGE_SUFFIXES]
         if others:
             raise TesseraInputError(
                 f"{_short_list(others)}: image file(s) of a kind sections are not read from, "

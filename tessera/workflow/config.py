@@ -560,6 +560,10 @@ def load_datasets(
         for column in SHEET_NUMBER_COLUMNS:
             if column in record:
                 record[column] = _parse_number(record[column], where=f"{row_name}, column {column}")
+        if record.get("internal_path"):
+            # one spelling per array ("/volumes/raw" and "volumes/raw/" are "volumes/raw"), so a
+            # rewritten path to the same array reruns nothing
+            record["internal_path"] = "/".join(p for p in record["internal_path"].split("/") if p)
         for column in ("roi_mask", "internal_path"):
             if record.get(column) == "":
                 record[column] = None

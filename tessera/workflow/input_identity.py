@@ -27,13 +27,16 @@ def _stat_fields(stat):
     return f"{stat.st_size}:{stat.st_mtime_ns}"
 
 
-def input_identity(path):
+def input_identity(path, *, files=None):
     """A short text that changes when the file or folder at `path` is replaced or edited.
 
     Parameters
     ----------
     path : str or Path
         An input file, or a folder (every file below it counts, links followed).
+    files : sequence of path, optional
+        For a folder: only these files below it count (those its reader looks at), so adding
+        a file the reader ignores changes nothing.
 
     Returns
     -------
@@ -56,6 +59,10 @@ def input_identity(path):
     >>> os.utime(p, ns=(10**18, 10**18 - 1))  # an older time: still another identity
     >>> input_identity(p.parent) == before
     False
+    >>> before = input_identity(p.parent, files=[p])
+    >>> _ = (p.parent / ".DS_Store").write_bytes(b"x")  # a file its reader ignores
+    >>> input_identity(p.parent, files=[p]) == before
+    True
     """
     path = Path(path)
     try:
@@ -64,14 +71,14 @@ def input_identity(path):
         return "missing"
     if not path.is_dir():
         return f"file {_stat_fields(stat)}"
+    if files is None:
+        files = [Path(d) / n for d, _, names in os.walk(path, followlinks=True) for n in names]
     entries = []
-    for folder, _, names in os.walk(path, followlinks=True):
-        for name in names:
-            file = Path(folder) / name
-            try:
-                fields = _stat_fields(file.stat())
-            except FileNotFoundError:  # a broken link, or removed while walking
-                fields = "missing"
-            entries.append(f"{file.relative_to(path).as_posix()}\0{fields}")
+    for file in map(Path, files):
+        try:
+            fields = _stat_fields(file.stat())
+        except FileNotFoundError:  # a broken link, or removed while walking
+            fields = "missing"
+        entries.append(f"{file.relative_to(path).as_posix()}\0{fields}")
     digest = hashlib.sha256("\n".join(sorted(entries)).encode()).hexdigest()[:16]
     return f"folder {len(entries)} files {digest}"
