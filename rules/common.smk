@@ -32,7 +32,7 @@ from tessera.workflow.load_time_checks import (
 )
 from tessera.workflow.code_identity import script_code as code_version_of_script
 from tessera.workflow.files.ladder import chosen_rung
-from tessera.workflow.files.points import read_points
+from tessera.workflow.files.points import check_points_in_annotated, read_points
 from tessera.workflow.files.to_paint import mask_files
 from tessera.io.stacks import slice_folder_files
 from tessera.workflow.input_identity import input_identity
@@ -241,6 +241,14 @@ def _points_by_target():
             except TesseraInputError as error:
                 raise WorkflowError(f"invalid input: {error}") from None
             base = VARIANT_BASE[target]
+            try:
+                check_points_in_annotated(
+                    points,
+                    target=base,
+                    annotated=config["targets"][target]["annotated_datasets"],
+                )
+            except TesseraInputError as error:
+                raise WorkflowError(f"invalid input: {error}") from None
             out[target] = sorted(set(points.loc[points["target"] == base, "dataset"]))
     return out
 

@@ -22,7 +22,7 @@ from skimage.transform import downscale_local_mean
 
 from tessera.errors import TesseraInputError
 from tessera.tiles.sampling import labels_to_target_mask, sample_tiles_from_labels
-from tessera.workflow.files.points import read_points
+from tessera.workflow.files.points import check_points_in_annotated, read_points
 from tessera.workflow.files.tile_registry import (
     read_annotation_set,
     read_registry,
@@ -168,6 +168,25 @@ def test_missing_mask_names_tile_and_expected_file(exported):
     (exported["tmp"] / "masks" / f"{gone}.png").unlink()
     with pytest.raises(TesseraInputError, match=rf"{gone}.*{gone}\.png"):
         import_painted(exported["out"], exported["tmp"] / "masks")
+
+
+def test_points_in_a_dataset_left_out_of_annotated_datasets_are_refused(tmp_path):
+    # annotated_datasets names the datasets that give a target's tiles (config schema); a
+    # point elsewhere would make a measured-only dataset a training one without a word.
+    sheet = write_points(
+        tmp_path / "points.tsv",
+        [("d1", "mito", 0, 40, 40), ("d2", "mito", 1, 10, 60), ("d2", "nuclei", 1, 10, 60)],
+    )
+    points = read_points(sheet, datasets=["d1", "d2"], targets=["mito", "nuclei"])
+    check_points_in_annotated(points, target="mito", annotated=None)
+    check_points_in_annotated(points, target="nuclei", annotated=["d2"])
+    with pytest.raises(TesseraInputError) as info:
+        check_points_in_annotated(points, target="mito", annotated=["d1"])
+    assert str(info.value) == (
+        f"{sheet}: row 3, column 'dataset': mito points in d2, which "
+        "targets.mito.annotated_datasets leaves out (['d1']); expected points in those "
+        "datasets only: add d2 to annotated_datasets or remove its rows"
+    )
 
 
 def test_export_rejects_tile_outside_volume_and_writes_nothing(exported, tmp_path):

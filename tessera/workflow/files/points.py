@@ -86,6 +86,38 @@ def read_points(path, *, datasets, targets):
     return table
 
 
+def check_points_in_annotated(points, *, target, annotated):
+    """Refuse points of `target` in datasets outside its ``annotated_datasets`` (None: any).
+
+    That setting names the datasets that give the target's tiles; the others are only
+    predicted and measured. A point elsewhere (one merged from another run's suggestions, say)
+    would quietly make a dataset a training one.
+
+    Examples
+    --------
+    >>> pts = pd.DataFrame({"dataset": ["d1", "d3"], "target": "mito"}, index=[2, 3])
+    >>> check_points_in_annotated(pts, target="mito", annotated=None)
+    >>> check_points_in_annotated(pts, target="mito", annotated=["d1", "d2"])
+    Traceback (most recent call last):
+    tessera.errors.TesseraInputError: row 3, column 'dataset': mito points in d3, which targets.mito.annotated_datasets leaves out (['d1', 'd2']); expected points in those datasets only: add d3 to annotated_datasets or remove its rows
+    """
+    if annotated is None:
+        return
+    mine = points[points["target"] == target]
+    outside = mine[~mine["dataset"].isin(annotated)]
+    if outside.empty:
+        return
+    names = ", ".join(sorted(set(outside["dataset"])))
+    rows = ", ".join(str(i) for i in outside.index[:10]) + (", ..." if len(outside) > 10 else "")
+    raise TesseraInputError(
+        f"row{'s' if len(outside) > 1 else ''} {rows}, column 'dataset': {target} points in "
+        f"{names}, which targets.{target}.annotated_datasets leaves out ({list(annotated)}); "
+        f"expected points in those datasets only: add {names} to annotated_datasets or remove "
+        "its rows",
+        source=points.attrs.get("source"),
+    )
+
+
 def _point_record(row, where, datasets, targets, path):
     """One sheet row checked: known dataset and target, whole-number position, size, tile id."""
     rec = {}
