@@ -256,13 +256,16 @@ def _points_by_target():
 POINTS = _points_by_target()
 
 
-def annotated_ids(wildcards):
+def annotated_ids_of(target):
     """The datasets that give a target's tiles (and so its training and scoring images)."""
-    target = wildcards.target
     if _painted(target):
         return POINTS[target]
-    annotated = target_settings(wildcards)["annotated_datasets"]
+    annotated = config["targets"][target]["annotated_datasets"]
     return [d for d in DATASETS.index if annotated is None or d in annotated]
+
+
+def annotated_ids(wildcards):
+    return annotated_ids_of(wildcards.target)
 
 
 def annotated_pyramids(wildcards):

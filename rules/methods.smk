@@ -43,6 +43,8 @@ rule methods:
             "results/{dataset}/audit/inputs.sha256", dataset=DATASETS.index
         ),
         qc=expand("results/{dataset}/qc/sections.tsv", dataset=DATASETS.index),
+        # their attributes record how each stack's grey values were brought to 8 bits
+        ingest=expand("results/{dataset}/ingest/raw.ome.zarr", dataset=DATASETS.index),
         ladder=expand(
             "results/study/{target}/ladder/choice.tsv", target=LADDER_BASE_TARGETS
         ),
@@ -72,6 +74,7 @@ rule methods:
         dataset_ids=list(DATASETS.index),
         ladder_targets=LADDER_BASE_TARGETS,
         objects_3d_targets=LABELLED_TARGETS,
+        annotated={t: annotated_ids_of(t) for t in BASE_TARGETS},
         code=script_code("methods"),
     script:
         "../scripts/methods.py"

@@ -22,6 +22,8 @@ run_job(
     comparisons=dict(zip(targets, snakemake.input.comparisons, strict=True)),
     checksums=list(snakemake.input.checksums),
     qc_tables=list(snakemake.input.qc),
+    ingest_images=dict(zip(datasets, snakemake.input.ingest, strict=True)),
+    annotated=dict(snakemake.params.annotated),
     out_path=snakemake.output[0],
     ladder=dict(zip(snakemake.params.ladder_targets, snakemake.input.ladder, strict=True)),
     first_nodes=dict(zip(targets, snakemake.input.first_nodes, strict=True)),

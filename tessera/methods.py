@@ -304,8 +304,9 @@ def _plural(count, word, plural=None):
     return f"{count} {word if count == 1 else plural or word + 's'}"
 
 
-def _study_text(c, sheet_rows, section_counts):
-    """The paragraph on the data: datasets, animals, conditions, section QC and the pyramid."""
+def _study_text(c, sheet_rows, section_counts, grey_mappings=None):
+    """The paragraph on the data: datasets, animals, conditions, grey values, section QC and
+    the pyramid."""
     animals = {r["subject"] for r in sheet_rows.values()}
     conditions = list(dict.fromkeys(r["condition"] for r in sheet_rows.values()))
     return (
@@ -313,9 +314,63 @@ def _study_text(c, sheet_rows, section_counts):
         f"{_plural(len(conditions), 'condition')} ({', '.join(conditions)}) "
         f"{'was' if len(sheet_rows) == 1 else 'were'} converted to OME-Zarr (NGFF 0.5; Moore et al. "
         f"2023) with tessera {__version__}, run by Snakemake (Mölder et al. 2021). "
+        + _grey_text(grey_mappings or {})
         + _qc_sentence(c, section_counts)
         + f" A pyramid of {c['pyramid']['levels']} block-averaged levels beyond full resolution was built"
         + _pyramid_z_text(c["pyramid"].get("downsample_z", "auto"))
+    )
+
+
+def _unannotated_text(name, annotated, sheet_rows):
+    """Which datasets gave no tiles of a target ("" when all did, or when not known).
+
+    Examples
+    --------
+    >>> rows = {d: {} for d in ("a1", "a2", "b1")}
+    >>> _unannotated_text("mitochondria", ["a1", "a2", "b1"], rows)
+    ''
+    >>> _unannotated_text("mitochondria", ["a1"], rows)
+    'Datasets a2 and b1 gave no mitochondria tiles: they were predicted and measured with the model trained on the others, without a held-out accuracy of their own. '
+    """
+    if annotated is None:
+        return ""
+    others = [d for d in sheet_rows if d not in set(annotated)]
+    if not others:
+        return ""
+    names = others[0] if len(others) == 1 else ", ".join(others[:-1]) + " and " + others[-1]
+    return (
+        f"{'Dataset' if len(others) == 1 else 'Datasets'} {names} gave no {name} tiles: "
+        f"{'it was' if len(others) == 1 else 'they were'} predicted and measured with the model "
+        "trained on the others, without a held-out accuracy of "
+        f"{'its' if len(others) == 1 else 'their'} own. "
+    )
+
+
+def _grey_text(grey_mappings):
+    """How stacks of more than 8 bits were brought to 8 bits (ingest's recorded mappings).
+
+    Examples
+    --------
+    >>> _grey_text({"a": None, "b": None})
+    ''
+    >>> m = {"method": "percentile stretch", "percentiles": [0.1, 99.9], "source_dtype": "uint16"}
+    >>> print(_grey_text({"a": m, "b": None}))  # doctest: +NORMALIZE_WHITESPACE
+    1 of the 2 stacks (uint16) was mapped linearly to 8 bits between its own grey-value
+    percentiles 0.1 and 99.9, which depend on what the stack holds: grey values are comparable
+    within a stack, not between stacks.
+    """
+    stretched = [m for m in grey_mappings.values() if m and m["method"] == "percentile stretch"]
+    if not stretched:
+        return ""
+    k, n = len(stretched), len(grey_mappings)
+    dtypes = ", ".join(sorted({m["source_dtype"] for m in stretched}))
+    low, high = (f"{p:g}" for p in stretched[0]["percentiles"])
+    which = "all stacks" if k == n else f"{k} of the {n} stacks"
+    its, was = ("its", "was") if k == 1 else ("their", "were")
+    return (
+        f"{which[0].upper()}{which[1:]} ({dtypes}) {was} mapped linearly to 8 bits between "
+        f"{its} own grey-value percentiles {low} and {high}, which depend on what the stack "
+        "holds: grey values are comparable within a stack, not between stacks. "
     )
 
 
@@ -502,6 +557,8 @@ def methods_text(
     checksums,
     software,
     objects_3d=None,
+    grey_mappings=None,
+    annotated=None,
 ):
     """The methods paragraph (Markdown) of the study.
 
@@ -528,6 +585,11 @@ def methods_text(
         Target → the pooled 3D object scores on the held-out sections (``truth_source``,
         ``sections``, ``object_f1``, ``object_precision``, ``object_recall``, ``arand``,
         ``voi_split``, ``voi_merge``); targets without them get no sentence.
+    grey_mappings : dict, optional
+        Dataset → how ingest brought its stack to 8 bits (None for 8-bit data).
+    annotated : dict, optional
+        Target → the datasets that gave its tiles; the others are named as measured without
+        a held-out accuracy of their own.
 
     Returns
     -------
@@ -552,14 +614,15 @@ def methods_text(
     text = [
         "# Methods (generated from this run)",
         "",
-        _study_text(c, sheet_rows, section_counts),
+        _study_text(c, sheet_rows, section_counts, grey_mappings),
         "",
     ]
     for target, settings in c["targets"].items():
         text += [
             _target_text(
                 target, settings, scores[target], object_settings[target], comparisons.get(target)
-            ),
+            )
+            + _unannotated_text(target, (annotated or {}).get(target), sheet_rows),
             "",
         ]
     text += [_objects_3d_text(objects_3d), ""] if objects_3d else []

@@ -6,6 +6,7 @@ import re
 
 import numpy as np
 import pandas as pd
+import tifffile
 
 from tessera.cascade.api import (
     CascadeSpec,
@@ -21,6 +22,7 @@ from tessera.workflow.files.node_model import write_node
 from tessera.workflow.files.qc_table import write_qc_table
 from tessera.workflow.jobs.audit import audit_job
 from tessera.workflow.jobs.checksum_inputs import checksum_inputs_job
+from tessera.workflow.jobs.ingest import ingest_job
 from tessera.workflow.jobs.methods import methods_job
 from tessera.workflow.provenance import _file_entry
 
@@ -34,10 +36,12 @@ def test_checksums_match_hashlib(tmp_path):
     assert (tmp_path / "inputs.sha256").read_text().startswith(hashlib.sha256(data).hexdigest())
 
 
-def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None, unsure=None):
+def _methods_of_a_run(
+    tmp_path, *, cascade_changes=None, first_nodes=None, unsure=None, sheet=None, **more
+):
     """The methods text of a small run of one target, mitochondria, written from its files
     (`unsure`: the tile scores' unsure_fraction of validation and test; a table written before
-    that column when None)."""
+    that column when None; `more`: further inputs of methods_job)."""
     scores = tmp_path / "scores.tsv"
     table = pd.DataFrame(
         {
@@ -126,7 +130,7 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None, unsur
     out = tmp_path / "methods.md"
     methods_job(
         sections,
-        {"a": {"condition": "warm", "subject": "a"}},
+        sheet or {"a": {"condition": "warm", "subject": "a"}},
         {"mitochondria": scores},
         {"mitochondria": [settings]},
         {"mitochondria": comparison},
@@ -134,8 +138,41 @@ def _methods_of_a_run(tmp_path, *, cascade_changes=None, first_nodes=None, unsur
         [qc],
         out,
         first_nodes=first_nodes,
+        **more,
     )
     return out.read_text()
+
+
+def test_methods_say_how_grey_values_were_mapped_and_which_datasets_gave_no_tiles(tmp_path):
+    # A 16-bit stack is stretched between its own percentiles (ingest), so its grey values
+    # depend on what it holds; a dataset without tiles has no held-out accuracy of its own.
+    # Both are facts a reader of the methods needs (common practice in reporting).
+    rng = np.random.default_rng(3)
+    images = {}
+    for dataset, dtype in (("a", np.uint16), ("b", np.uint8)):
+        stack = tmp_path / f"{dataset}.tif"
+        top = 30000 if dtype == np.uint16 else 255
+        data = rng.integers(0, top, (3, 16, 16)).astype(dtype)
+        tifffile.imwrite(stack, data, photometric="minisblack")
+        images[dataset] = tmp_path / f"{dataset}.ome.zarr"
+        ingest_job(stack, images[dataset], fmt="tiff_stack", spacing=(40, 8, 8))
+    sheet = {d: {"condition": "warm", "subject": d} for d in ("a", "b", "c")}
+    text = " ".join(
+        _methods_of_a_run(
+            tmp_path,
+            sheet=sheet,
+            ingest_images=images,
+            annotated={"mitochondria": ["a"]},
+        ).split()
+    )
+    assert (
+        "1 of the 2 stacks (uint16) was mapped linearly to 8 bits between its own grey-value "
+        "percentiles 0.1 and 99.9" in text
+    )
+    assert (
+        "Datasets b and c gave no mitochondria tiles: they were predicted and measured with "
+        "the model trained on the others, without a held-out accuracy of their own." in text
+    )
 
 
 def test_methods_text_is_written_from_the_run(tmp_path):

@@ -1,6 +1,7 @@
 """The methods rule: the study's methods paragraph, from the files the run wrote."""
 
 from tessera.io.atomic import write_text
+from tessera.io.omezarr import open_image
 from tessera.methods import methods_text
 from tessera.workflow.files.comparison_table import read_comparison_table
 from tessera.workflow.files.input_checksums import read_input_checksums
@@ -25,6 +26,8 @@ def methods_job(
     objects_3d=None,
     ladder=None,
     first_nodes=None,
+    ingest_images=None,
+    annotated=None,
 ):
     """Write the methods paragraph (Markdown) of the study.
 
@@ -51,6 +54,11 @@ def methods_job(
         Target → its trained stage-1 level-0 node: the text states the features' dims and scales
         that node was trained with (``dims: auto`` and unset ``sigmas`` are decided when a node
         is trained; every node of a target shares them).
+    ingest_images : dict, optional
+        Dataset → its ingested image, whose attributes record how its grey values were brought
+        to 8 bits.
+    annotated : dict, optional
+        Target → the datasets that gave its tiles.
     """
     targets = dict(config_sections["targets"])
     for t, path in (ladder or {}).items():
@@ -84,6 +92,11 @@ def methods_job(
         checksums=[pair for path in checksums for pair in read_input_checksums(path)],
         software=software_versions(),
         objects_3d={t: overall_objects_3d(p) for t, p in (objects_3d or {}).items()},
+        grey_mappings={
+            d: open_image(p)[1]["extra"].get("intensity_mapping")
+            for d, p in (ingest_images or {}).items()
+        },
+        annotated=annotated,
     )
     write_text(out_path, text)
     return {"words": len(text.split())}
