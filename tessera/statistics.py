@@ -19,12 +19,13 @@ from scipy import stats as sps
 
 from tessera.errors import TesseraInputError
 
-# size-like measures are compared on the log scale: the effect is a ratio (cold / reference)
+# size-like measures are compared on the log scale: the effect is a ratio (cold / reference).
+# The skeleton length is not among them: a compact object's skeleton is a point, of length 0,
+# which has no logarithm (leaving such objects out would average the elongated ones only).
 LOG_MEASURES = (
     "volume_um3",
     "surface_um2",
     "equivalent_diameter_um",
-    "skeleton_length_um",
     "complexity_index",
     "major_axis_um",
     "intermediate_axis_um",
@@ -333,16 +334,24 @@ def _welch(a, b, confidence):
     return diff, diff - q * se, diff + q * se, float(p)
 
 
-REGION_MEASURES = ("objects", "V_V", "S_V", "N_V")
+REGION_DENSITIES = ("V_V", "S_V", "N_V")
+REGION_MEASURES = ("objects", *REGION_DENSITIES)
 
 
 def region_animal_summaries(regions):
-    """Per-animal mean over its regions of the region densities (objects per region, V_V, S_V, N_V).
+    """Per-animal region measures: the mean count of objects per region, and the densities
+    (V_V, S_V, N_V) of all its regions taken together.
+
+    An animal's density is that of its regions pooled, the ratio of the summed contents to the
+    summed region volume (the ratio estimator of stereology, common practice): each region's
+    density weighs by its volume, so a sliver of a cell at the volume's side counts as little
+    as it holds, where a plain mean over regions would weigh it as much as a whole cell.
 
     Parameters
     ----------
     regions : pandas.DataFrame
-        One row per region with ``subject`` and the columns of :data:`REGION_MEASURES`.
+        One row per region with ``subject``, ``region_volume_um3`` and the columns of
+        :data:`REGION_MEASURES`.
 
     Returns
     -------
@@ -351,15 +360,23 @@ def region_animal_summaries(regions):
 
     Examples
     --------
-    >>> r = pd.DataFrame({"subject": ["b", "a", "a"], "objects": [4, 2, 6], "V_V": [0.1, 0.2, 0.4],
+    >>> r = pd.DataFrame({"subject": ["b", "a", "a"], "region_volume_um3": [2.0, 3.0, 1.0],
+    ...                   "objects": [4, 2, 6], "V_V": [0.1, 0.2, 0.4],
     ...                   "S_V": [1.0, 2.0, 3.0], "N_V": [5.0, 1.0, 3.0]})
-    >>> region_animal_summaries(r).values.tolist()
-    [['a', 2, 4.0, 0.30000000000000004, 2.5, 2.0], ['b', 1, 4.0, 0.1, 1.0, 5.0]]
+    >>> a, b = region_animal_summaries(r).round(4).values.tolist()
+    >>> a  # V_V (0.2 * 3 + 0.4 * 1) / 4, N_V (1 * 3 + 3 * 1) / 4
+    ['a', 2, 4.0, 0.25, 2.25, 1.5]
     """
     rows = []
     for subject, group in regions.groupby("subject", sort=True):
-        row = {"subject": subject, "regions": len(group)}
-        row.update({f"region_{m}": float(group[m].mean()) for m in REGION_MEASURES})
+        row = {"subject": subject, "regions": len(group), "region_objects": group["objects"].mean()}
+        volume = group["region_volume_um3"].to_numpy(dtype=float)
+        for m in REGION_DENSITIES:
+            row[f"region_{m}"] = (
+                float(np.sum(group[m].to_numpy(dtype=float) * volume) / volume.sum())
+                if volume.sum() > 0
+                else math.nan
+            )
         rows.append(row)
     return pd.DataFrame(
         rows, columns=["subject", "regions", *[f"region_{m}" for m in REGION_MEASURES]]
@@ -506,8 +523,8 @@ def summarise_study(
     >>> objects = {d: pd.DataFrame({"volume_um3": [1.0 + k, 2.0 + k],
     ...                             "touches_volume_border": False})
     ...            for k, d in enumerate(sheet)}
-    >>> regions = {d: pd.DataFrame({"objects": [2], "V_V": [0.1], "S_V": [1.0], "N_V": [2.0]})
-    ...            for d in sheet}
+    >>> regions = {d: pd.DataFrame({"region_volume_um3": [5.0], "objects": [2], "V_V": [0.1],
+    ...                             "S_V": [1.0], "N_V": [2.0]}) for d in sheet}
     >>> _, animals, comparison = summarise_study(
     ...     objects, regions, sheet, target="mito", measures=["volume_um3"],
     ...     accuracy={"test_f1": 0.9, "test_jaccard": 0.8})

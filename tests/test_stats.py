@@ -20,6 +20,7 @@ from tessera.statistics import (
     compare_conditions,
     describe_conditions,
     holm_adjusted,
+    region_animal_summaries,
     summarise_study,
 )
 from tessera.statistics_plot import plot_conditions
@@ -360,6 +361,45 @@ def test_a_target_without_whole_objects_is_not_compared_and_says_why():
     assert titles[0] == "volume_um3\ncold/warm: not compared"
     assert "no test-tile F1 (no test tiles)" in titles[-1]
     assert not any("nan" in title.lower() for title in titles)
+
+
+def test_skeleton_lengths_of_zero_count_in_the_animals_mean():
+    # A compact object's skeleton is one point, of length 0; a geometric mean cannot hold a 0,
+    # and leaving such objects out would average only the elongated ones. The arithmetic mean
+    # of 0, 0 and 1.5 is 0.5, and conditions are compared as a difference.
+    table = pd.DataFrame(
+        {
+            "subject": ["a", "a", "a", "b"],
+            "condition": ["x", "x", "x", "y"],
+            "skeleton_length_um": [0.0, 0.0, 1.5, 2.0],
+            "touches_volume_border": False,
+        }
+    )
+    animals = animal_summaries(table, measures=["skeleton_length_um"]).set_index("subject")
+    assert animals.loc["a", "skeleton_length_um"] == pytest.approx(0.5)
+    row = compare_conditions(animals.reset_index(), measures=["skeleton_length_um"], reference="x")
+    assert row.iloc[0]["scale"] == "difference"
+
+
+def test_an_animals_density_pools_its_regions_by_volume():
+    # The ratio estimator of stereology (common practice): the density of several regions
+    # together is their summed contents over their summed volume. A sliver of a cell at the
+    # volume's side (0.31 um^3, no objects) beside a cell of 10 um^3 with N_V 3.8 per um^3
+    # barely moves the animal's N_V; a plain mean over the two regions would halve it.
+    regions = pd.DataFrame(
+        {
+            "subject": ["m1", "m1"],
+            "region_volume_um3": [10.0, 0.31],
+            "objects": [38, 0],
+            "V_V": [0.12, 0.0],
+            "S_V": [1.5, 0.0],
+            "N_V": [3.8, 0.0],
+        }
+    )
+    row = region_animal_summaries(regions).iloc[0]
+    assert row["region_N_V"] == pytest.approx(3.8 * 10.0 / 10.31)  # 38 objects in 10.31 um^3
+    assert row["region_V_V"] == pytest.approx(0.12 * 10.0 / 10.31)
+    assert row["region_objects"] == 19.0  # objects per region stays a plain mean
 
 
 # --- the statistics job on written tables, as the rule runs it ---
