@@ -185,7 +185,7 @@ def test_points_in_a_dataset_left_out_of_annotated_datasets_are_refused(tmp_path
     assert str(info.value) == (
         f"{sheet}: row 3, column 'dataset': mito points in d2, which "
         "targets.mito.annotated_datasets leaves out (['d1']); expected points in those "
-        "datasets only: add d2 to annotated_datasets or remove its rows"
+        "datasets only: add d2 to annotated_datasets or remove those rows"
     )
 
 

@@ -136,7 +136,7 @@ def slice_folder_files(path):
     return sorted(
         p
         for p in Path(path).iterdir()
-        if p.suffix.lower() in suffixes and not p.name.startswith(".") and p.is_file()
+        if p.suffix.lower() in suffixes and not p.name.startswith(".")
     )
 
 

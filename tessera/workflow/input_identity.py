@@ -8,7 +8,8 @@ Snakemake reruns a job whose params changed, and everything downstream follows.
 
 Only ``stat`` is called, never a byte of image data read, because the identity is computed for
 every dataset each time the workflow is planned. It changes with the size or the modification
-time (in ns) of the file, or of any file below a folder (a slice folder, a zarr or N5 store); so
+time (in ns) of the file, or of any file below a folder (a zarr or N5 store; of a slice folder,
+any file its reader looks at, so a .DS_Store or a note beside the sections changes nothing); so
 a file copied back with the same content but a new time changes it too, and its dataset reruns
 (a rerun too many, never a changed stack missed). The inode is left out: data moved to another
 disk with their times kept (``rsync -a``, ``mv``) are the same data, and a terabyte study should

@@ -99,7 +99,7 @@ def check_points_in_annotated(points, *, target, annotated):
     >>> check_points_in_annotated(pts, target="mito", annotated=None)
     >>> check_points_in_annotated(pts, target="mito", annotated=["d1", "d2"])
     Traceback (most recent call last):
-    tessera.errors.TesseraInputError: row 3, column 'dataset': mito points in d3, which targets.mito.annotated_datasets leaves out (['d1', 'd2']); expected points in those datasets only: add d3 to annotated_datasets or remove its rows
+    tessera.errors.TesseraInputError: row 3, column 'dataset': mito points in d3, which targets.mito.annotated_datasets leaves out (['d1', 'd2']); expected points in those datasets only: add d3 to annotated_datasets or remove those rows
     """
     if annotated is None:
         return
@@ -113,7 +113,7 @@ def check_points_in_annotated(points, *, target, annotated):
         f"row{'s' if len(outside) > 1 else ''} {rows}, column 'dataset': {target} points in "
         f"{names}, which targets.{target}.annotated_datasets leaves out ({list(annotated)}); "
         f"expected points in those datasets only: add {names} to annotated_datasets or remove "
-        "its rows",
+        "those rows",
         source=points.attrs.get("source"),
     )
 
