@@ -358,6 +358,8 @@ def _grey_text(grey_mappings):
     1 of the 2 stacks (uint16) was mapped linearly to 8 bits between its own grey-value
     percentiles 0.1 and 99.9, which depend on what the stack holds: grey values are comparable
     within a stack, not between stacks.
+    >>> _grey_text({"a": m})[:40], _grey_text({"a": m, "b": m})[:42]
+    ('The stack (uint16) was mapped linearly t', 'All 2 stacks (uint16) were mapped linearly')
     """
     stretched = [m for m in grey_mappings.values() if m and m["method"] == "percentile stretch"]
     if not stretched:
@@ -365,7 +367,7 @@ def _grey_text(grey_mappings):
     k, n = len(stretched), len(grey_mappings)
     dtypes = ", ".join(sorted({m["source_dtype"] for m in stretched}))
     low, high = (f"{p:g}" for p in stretched[0]["percentiles"])
-    which = "all stacks" if k == n else f"{k} of the {n} stacks"
+    which = {n: "the stack" if n == 1 else f"all {n} stacks"}.get(k, f"{k} of the {n} stacks")
     its, was = ("its", "was") if k == 1 else ("their", "were")
     return (
         f"{which[0].upper()}{which[1:]} ({dtypes}) {was} mapped linearly to 8 bits between "
