@@ -42,8 +42,8 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
     >>> objects = {d: pd.DataFrame({"volume_um3": [1.0 + k, 2.0 + k],
     ...                             "touches_volume_border": False})
     ...            for k, d in enumerate(sheet)}
-    >>> regions = {d: pd.DataFrame({"objects": [2], "V_V": [0.1], "S_V": [1.0], "N_V": [2.0]})
-    ...            for d in sheet}
+    >>> regions = {d: pd.DataFrame({"region_volume_um3": [5.0], "objects": [2], "V_V": [0.1],
+    ...                             "S_V": [1.0], "N_V": [2.0]}) for d in sheet}
     >>> accuracy = {"test_f1": 0.9, "test_jaccard": 0.8}
     >>> tables = summarise_study(objects, regions, sheet, target="mito", measures=["volume_um3"],
     ...                          accuracy=accuracy)
