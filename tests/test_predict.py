@@ -8,6 +8,7 @@ import sys
 import tracemalloc
 from pathlib import Path
 
+import numcodecs
 import numpy as np
 import pandas as pd
 import pytest
@@ -427,7 +428,7 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
     plan = out / "plan.json"
     shards = [out / "job0", out / "job1"]
     target = tmp_path / "probability.ome.zarr"
-    block_file = sorted(shards[1].glob("block_*.npy"))[0]
+    block_file = sorted(shards[1].glob("block_*.zst"))[0]
     good = block_file.read_bytes()
 
     block_file.write_bytes(good[:-10])  # truncated
@@ -439,15 +440,23 @@ def test_damaged_or_missing_shard_output_is_refused_and_nothing_published(study,
         stitch_job(plan, shards, target)
     assert not target.exists() and not list(tmp_path.iterdir())
 
-    wrong = np.zeros((1, 2, 3), np.uint8)  # wrong shape, checksum updated to match
-    np.save(block_file, wrong)
+    # six values where the block has more, checksum updated to match (Zstandard frames from
+    # numcodecs, the reference codec)
+    block_file.write_bytes(numcodecs.Zstd(level=1).encode(np.zeros((1, 2, 3), np.uint8)))
     manifest = json.loads((shards[1] / "manifest.json").read_text())
     for entry in manifest["blocks"]:
         if entry["file"] == block_file.name:
             entry["sha256"] = file_sha256(block_file)
     (shards[1] / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(TesseraInputError, match=rf"{block_file.name}: block file unreadable"):
+        stitch_job(plan, shards, target)
+    for entry in manifest["blocks"]:  # a manifest that records another shape
+        if entry["file"] == block_file.name:
+            entry["shape"] = [1, 2, 3]
+    (shards[1] / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(TesseraInputError, match=r"the plan expects uint8 \["):
         stitch_job(plan, shards, target)
+    assert not target.exists()
 
     (shards[0] / "manifest.json").unlink()
     with pytest.raises(

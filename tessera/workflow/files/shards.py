@@ -1,15 +1,19 @@
 """The shard outputs, ``results/<dataset>/predicted/<target>/shards/job<j>/``: one writer, one reader.
 
-Rule predict_shard writes one folder per shard job: a ``.npy`` file per block and
-``manifest.json`` (``format``, ``job``, and per block its index, file, shape, dtype and SHA-256).
-The folder appears only when every block is written (atomic rename). Rule stitch reads them,
-checking every block against the plan and the manifest.
+Rule predict_shard writes one folder per shard job: a file per block and ``manifest.json``
+(``format``, ``job``, and per block its index, file, shape, dtype and SHA-256). A block file
+holds the block's values in C order, compressed with Zstandard at level 1 (about 4× smaller
+for probability maps: uncompressed, the shards of a large volume would keep as many bytes as
+its working level has voxels, beside the stitched map). The folder appears
+only when every block is written (atomic rename). Rule stitch reads them, checking every
+block against the plan and the manifest.
 """
 
 import json
 from contextlib import contextmanager
 from pathlib import Path
 
+import numcodecs
 import numpy as np
 
 from tessera.errors import TesseraInputError
@@ -17,9 +21,13 @@ from tessera.io.atomic import atomic_path
 from tessera.io.digests import file_sha256
 from tessera.workflow.files.shard_plan import PLAN_FORMAT
 
+# level 1: on the demo's probability maps 4.1x smaller at about 760 MB/s, against 4.7x at 450
+# MB/s for level 3 (measured on one core); a block takes far longer to predict than either
+_CODEC = numcodecs.Zstd(level=1)
+
 
 def _block_name(index):
-    return f"block_{index:07d}.npy"
+    return f"block_{index:07d}.zst"
 
 
 class _Shard:
@@ -31,7 +39,7 @@ class _Shard:
     def add(self, index, values):
         """Write block `index` (an encoded array) and record it for the manifest."""
         path = self.folder / _block_name(index)
-        np.save(path, values, allow_pickle=False)
+        path.write_bytes(_CODEC.encode(np.ascontiguousarray(values)))
         self.entries.append(
             {
                 "block": index,
@@ -103,15 +111,17 @@ def verified_blocks(plan, shard_dirs):
                     f"block file does not match its recorded checksum (truncated or altered); {hint}",
                     source=path,
                 )
+            if list(entry["shape"]) != expected or entry["dtype"] != plan["dtype"]:
+                raise TesseraInputError(
+                    f"block holds {entry['dtype']} {list(entry['shape'])}, the plan expects {plan['dtype']} {expected}; {hint}",
+                    source=path,
+                )
+            dtype = np.dtype(plan["dtype"])
             try:
-                values = np.load(path, allow_pickle=False)
-            except (ValueError, OSError, EOFError) as exc:
+                values = np.frombuffer(_CODEC.decode(path.read_bytes()), dtype=dtype)
+                values = values.reshape(expected)
+            except (ValueError, RuntimeError, OSError) as exc:
                 raise TesseraInputError(
                     f"block file unreadable ({exc}); {hint}", source=path
                 ) from None
-            if list(values.shape) != expected or str(values.dtype) != plan["dtype"]:
-                raise TesseraInputError(
-                    f"block holds {values.dtype} {list(values.shape)}, the plan expects {plan['dtype']} {expected}; {hint}",
-                    source=path,
-                )
             yield box, values
