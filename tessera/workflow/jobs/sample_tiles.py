@@ -80,35 +80,58 @@ def check_labels_job(
         _log_unlabelled_run(unlabelled, labels.shape[0], target)
     if instances_path is not None:
         ids = read_label_volume(instances_path, labels.shape, "instance volume")
-        instances = ids > 0
-        target_mask = labels > 0
-        union = int(np.count_nonzero(instances | target_mask))
-        agreement = int(np.count_nonzero(instances & target_mask)) / union if union else 1.0
+        counts = _instance_counts(ids, labels)
+        union = counts["union"]
+        agreement = counts["shared"] / union if union else 1.0
         if agreement < MIN_INSTANCE_AGREEMENT:
             raise TesseraInputError(
-                f"its objects (> 0, {int(instances.sum())} voxels) and the label volume "
+                f"its objects (> 0, {counts['marked']} voxels) and the label volume "
                 f"{labels_path} ({found['target_voxels']} target voxels) agree on "
                 f"{agreement:.0%} of the voxels either marks; expected the same organelles "
                 f"(at least {MIN_INSTANCE_AGREEMENT:.0%})",
                 source=instances_path,
             )
-        _refuse_a_mask_as_instances(ids, instances, target_mask, instances_path)
+        _refuse_a_mask_as_instances(counts, labels, instances_path)
         found["instance_agreement"] = agreement
     write_labels_check(out_path, found)
     return found
 
 
-def _refuse_a_mask_as_instances(ids, marked_voxels, target_mask, instances_path):
+def _instance_counts(ids, labels):
+    """Voxels an instance volume marks (> 0), those the label volume marks too, those either
+    marks, and the lowest and highest id marked; section by section, so that no temporary the
+    size of the volume is made (the two volumes themselves are already in memory).
+
+    Examples
+    --------
+    >>> ids = np.array([[[0, 3, 3, 5]]]); labels = np.array([[[1, 1, 0, 1]]])
+    >>> _instance_counts(ids, labels)
+    {'marked': 3, 'shared': 2, 'union': 4, 'lowest': 3, 'highest': 5}
+    """
+    out = {"marked": 0, "shared": 0, "union": 0, "lowest": None, "highest": None}
+    for z in range(ids.shape[0]):
+        marked, target = ids[z] > 0, labels[z] > 0
+        out["marked"] += int(np.count_nonzero(marked))
+        out["shared"] += int(np.count_nonzero(marked & target))
+        out["union"] += int(np.count_nonzero(marked | target))
+        values = ids[z][marked]
+        if values.size:
+            low, high = int(values.min()), int(values.max())
+            out["lowest"] = low if out["lowest"] is None else min(out["lowest"], low)
+            out["highest"] = high if out["highest"] is None else max(out["highest"], high)
+    return out
+
+
+def _refuse_a_mask_as_instances(counts, labels, instances_path):
     """Refuse an instance volume that gives one id to organelles the labels hold apart (a
     mask, such as the label volume itself, given as instances): every object would be scored
-    against one true object."""
-    marked = ids[marked_voxels]
-    if not marked.size or marked.min() != marked.max():
+    against one true object. `counts` as :func:`_instance_counts` gives them."""
+    if counts["lowest"] is None or counts["lowest"] != counts["highest"]:
         return
-    _, components = ndimage.label(target_mask, np.ones((3, 3, 3), bool))
+    _, components = ndimage.label(labels > 0, np.ones((3, 3, 3), bool))
     if components > 1:
         raise TesseraInputError(
-            f"it numbers every voxel {int(marked[0])} where the label volume holds "
+            f"it numbers every voxel {counts['lowest']} where the label volume holds "
             f"{components} separate objects (26-connected); expected one integer id per "
             "object (0 background): a mask, not an instance volume",
             source=instances_path,
