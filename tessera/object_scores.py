@@ -420,12 +420,13 @@ def whole_in_sections(labels, z0, z1):
     """
     labels = _as_labels(labels, "labels")
     size = int(labels.max(initial=0)) + 1
-
-    def present_in(part):
-        return np.bincount(part.ravel().astype(np.intp, copy=False), minlength=size)[1:] > 0
-
-    inside = present_in(labels[z0:z1])
-    outside = present_in(labels[:z0]) | present_in(labels[z1:])
+    inside, outside = np.zeros(size, bool), np.zeros(size, bool)
+    # a section at a time: a bincount needs its ids as intp, 8 bytes each, and a copy of the
+    # whole volume so converted would take several times the memory of the labels themselves
+    for z in range(labels.shape[0]):
+        ids = labels[z].ravel().astype(np.intp, copy=False)
+        (inside if z0 <= z < z1 else outside)[np.bincount(ids, minlength=size) > 0] = True
+    inside[0] = outside[0] = False  # background
     return int(np.count_nonzero(inside & ~outside)), int(np.count_nonzero(inside))
 
 
