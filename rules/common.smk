@@ -135,13 +135,15 @@ def dataset_stack_identity(wildcards):
     return stack_identity(wildcards.dataset)
 
 
-def dataset_stack_input(wildcards):
-    """The stack as an input of the jobs reading it. A folder's own time changes whenever a
-    file is added or removed beside the sections (and not when a section is edited in place),
-    so it is left out of Snakemake's time check: the folder's identity (a param) decides.
-    """
-    path = dataset_path(wildcards)
+def user_input(path):
+    """A user's file or folder as a rule input. A folder's own time changes whenever a file is
+    added or removed in it (and not when one is edited in place), so it is left out of
+    Snakemake's time check: the folder's identity, a param of the rule, decides."""
     return ancient(path) if Path(path).is_dir() else path
+
+
+def dataset_stack_input(wildcards):
+    return user_input(dataset_path(wildcards))
 
 
 def dataset_spacing(wildcards):
@@ -232,16 +234,13 @@ def _points_by_target():
     for target in config["targets"]:
         painted = _painted(target)
         if painted:
+            base = VARIANT_BASE[target]
             try:
                 points = read_points(
                     painted["points"],
                     datasets=DATASETS.index,
                     targets=config["targets"],
                 )
-            except TesseraInputError as error:
-                raise WorkflowError(f"invalid input: {error}") from None
-            base = VARIANT_BASE[target]
-            try:
                 check_points_in_annotated(
                     points,
                     target=base,
@@ -579,11 +578,7 @@ def dataset_inputs_of(dataset):
 
 
 def dataset_inputs(wildcards):
-    # a folder's own time is left out, as for the stack's readers (dataset_stack_input)
-    return [
-        ancient(p) if Path(p).is_dir() else p
-        for p in dataset_inputs_of(wildcards.dataset)
-    ]
+    return [user_input(p) for p in dataset_inputs_of(wildcards.dataset)]
 
 
 def dataset_inputs_identity(wildcards):

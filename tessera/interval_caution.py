@@ -8,22 +8,22 @@ evaluation summary and the methods paragraph. Which tiles count is
 MIN_TEST_TILES = 5
 
 
-def few_tiles_note(tiles, informative_tiles=None):
+def few_tiles_note(tiles, informative_tiles):
     """The ``note`` of a summary row scored on `tiles` test tiles, of which `informative_tiles`
-    hold a true or predicted target pixel (all of them when not given); "" when enough do.
+    hold a true or predicted target pixel; "" when enough do.
 
     Examples
     --------
-    >>> few_tiles_note(12)
+    >>> few_tiles_note(12, 12)
     ''
-    >>> few_tiles_note(1)
+    >>> few_tiles_note(1, 1)
     'only 1 test tile: no interval; annotate at least 5 for one'
-    >>> few_tiles_note(3)
+    >>> few_tiles_note(3, 3)
     'only 3 test tiles: the interval is unreliable; annotate at least 5'
     >>> few_tiles_note(5, 1)[:71]
     'only 1 of 5 test tiles holds the target or a prediction: no interval; a'
     """
-    k = tiles if informative_tiles is None else int(informative_tiles)
+    k = int(informative_tiles)
     if k >= MIN_TEST_TILES:
         return ""
     if k == tiles:

@@ -139,30 +139,27 @@ def score_tiles(registry, labels, probabilities, *, thresholds=GRID):
     The threshold rule is :func:`tessera.threshold.choose_threshold`.
     """
 
-    def pooled(role):
-        ids = registry.loc[registry["role"] == role, "tile_id"]
-        return pooled_pixels(ids, labels, probabilities) if len(ids) else (None, None)
-
-    def informative_tiles(role, threshold):
+    def tile_counts(role, threshold):
+        """(tiles, 3) counts tp, fp, fn of each tile: pooled scores are of their sums."""
         ids = registry.loc[registry["role"] == role, "tile_id"]
         counts = [confusion(*pooled_pixels([t], labels, probabilities), threshold)[:3] for t in ids]
-        return int(informative(*np.asarray(counts).reshape(-1, 3).T).sum())
+        return np.asarray(counts, dtype=np.int64).reshape(-1, 3)
 
-    val_p, val_t = pooled("validation")
-    if val_p is None:
+    val_ids = registry.loc[registry["role"] == "validation", "tile_id"]
+    if not len(val_ids):
         raise TesseraInputError("no validation tiles to choose the threshold on")
-    best = choose_threshold(val_p, val_t, grid=thresholds)
+    best = choose_threshold(*pooled_pixels(val_ids, labels, probabilities), grid=thresholds)
     rows = []
     for role in ("validation", "test"):
-        p, t = pooled(role)
-        if p is not None:
+        counts = tile_counts(role, best)
+        if len(counts):
             rows.append(
                 {
                     "role": role,
-                    "tiles": int((registry["role"] == role).sum()),
-                    "informative_tiles": informative_tiles(role, best),
+                    "tiles": len(counts),
+                    "informative_tiles": int(informative(*counts.T).sum()),
                     "threshold": float(best),
-                    **scores_from_counts(*confusion(p, t, best)[:3]),
+                    **scores_from_counts(*(int(c) for c in counts.sum(axis=0))),
                     "unsure_fraction": _unsure_fraction(registry, labels, role),
                 }
             )
