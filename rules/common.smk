@@ -617,6 +617,15 @@ def target_output_sigma_z(wildcards):
     return target_settings(wildcards)["output_smoothing_sections"]
 
 
+def target_objects_3d(wildcards):
+    """The target's 3D object scores when it has label volumes: its statistics quote them."""
+    if wildcards.target in LABELLED_TARGETS:
+        return {
+            "objects_3d": f"results/study/{wildcards.target}/evaluation/objects_3d.tsv"
+        }
+    return {}
+
+
 def study_results():
     """Every final result of the study (what `rule all` asks for, besides the audit itself)."""
     return [

@@ -28,6 +28,7 @@ rule check_distinct_stacks:
 
 rule statistics:
     input:
+        unpack(target_objects_3d),
         objects=expand(
             "results/{dataset}/morphometry/{{target}}_objects.tsv",
             dataset=DATASETS.index,

@@ -17,6 +17,7 @@ run_job(
     datasets=datasets,
     scores=snakemake.input.scores,
     stacks_check=snakemake.input.stacks_check,
+    objects_3d=snakemake.input.get("objects_3d"),
     out_animals=snakemake.output.animals,
     out_comparison=snakemake.output.comparison,
     out_plot=snakemake.output.plot,

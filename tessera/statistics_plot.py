@@ -23,7 +23,8 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
         Where the PNG goes.
     target : str
     accuracy : dict
-        ``test_f1`` of the target, printed in the title.
+        ``test_f1`` of the target, and ``object_f1_3d`` and ``count_error_3d`` where it has
+        them, printed in the title.
     measures : sequence of str, optional
         Default: the first six compared measures that objects have.
 
@@ -92,10 +93,8 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
         lines = [_title_line(r) for r in rows.to_dict("records")] or ["no comparison"]
         titles.append("\n".join([m, *lines]))
         ax.set_title(titles[-1], fontsize=8)
-    f1 = accuracy.get("test_f1", math.nan)
-    f1 = f"test-tile F1 {f1:.3f}" if math.isfinite(f1) else "no test-tile F1 (no test tiles)"
     titles.append(
-        f"{target}: objects (grey) and animals (dots); {f1}\n"
+        f"{target}: objects (grey) and animals (dots); {_accuracy_text(accuracy)}\n"
         "automatic segmentation: validate on held-out annotation"
     )
     fig.suptitle(titles[-1], fontsize=8)
@@ -103,6 +102,27 @@ def plot_conditions(objects, animals, comparison, path, *, target, accuracy, mea
     fig.savefig(path, dpi=100, format="png")
     plt.close(fig)
     return titles
+
+
+def _accuracy_text(accuracy):
+    """The segmentation's held-out accuracy in a few words: test-tile F1, and the 3D object F1
+    and count error where the target has them.
+
+    Examples
+    --------
+    >>> _accuracy_text({"test_f1": 0.91, "object_f1_3d": 0.85, "count_error_3d": -0.06})
+    'test-tile F1 0.910; 3D object F1 0.850, count -6 %'
+    >>> _accuracy_text({"test_f1": float("nan")})
+    'no test-tile F1 (no test tiles)'
+    """
+    f1 = accuracy.get("test_f1", math.nan)
+    text = f"test-tile F1 {f1:.3f}" if math.isfinite(f1) else "no test-tile F1 (no test tiles)"
+    objects = accuracy.get("object_f1_3d", math.nan)
+    if math.isfinite(objects):
+        text += f"; 3D object F1 {objects:.3f}"
+        count = accuracy.get("count_error_3d", math.nan)
+        text += f", count {100 * count:+.0f} %" if math.isfinite(count) else ""
+    return text
 
 
 def _title_line(row):

@@ -469,6 +469,24 @@ def test_job_compares_three_conditions_with_the_configured_reference(tmp_path):
     ]
 
 
+def test_job_quotes_the_3d_object_scores_beside_every_comparison(tmp_path):
+    # Counts are what a study publishes: the all row of the target's 3D object scores (a table
+    # written here by hand) is copied beside each comparison; without it the columns are empty.
+    made = {f"d{k}": small_dataset(INSIDE) for k in range(4)}
+    conditions = ["warm", "cold", "warm", "cold"]
+    scores_3d = tmp_path / "objects_3d.tsv"
+    scores_3d.write_text(
+        "dataset\ttruth_source\tobject_f1\tcount_error\n"
+        "d0\tinstance volume\t0.8\t-0.1\nall\tinstance volume\t0.85\t-0.06\n"
+    )
+    tables, _ = run_statistics(tmp_path, made, conditions, objects_3d=scores_3d)
+    comparison = tables["comparison"]
+    assert comparison["object_f1_3d"].tolist() == [0.85] * len(comparison)
+    assert comparison["count_error_3d"].tolist() == [-0.06] * len(comparison)
+    without, _ = run_statistics(tmp_path / "none", made, conditions)
+    assert without["comparison"]["object_f1_3d"].isna().all()
+
+
 def test_job_default_reference_is_the_first_condition_of_the_sheet(tmp_path):
     made = {f"d{k}": small_dataset(INSIDE) for k in range(4)}
     tables, _ = run_statistics(tmp_path, made, ["warm", "cold", "warm", "cold"])

@@ -6,8 +6,21 @@ import pandas as pd
 from tessera.io.atomic import write_table
 
 #: Columns that hold numbers but may be empty (no interval with fewer than 2 animals, no mean
-#: for a condition without a whole object); the ``warning`` column says why in words.
-NUMERIC = ("mean", "reference_mean", "effect", "ci_low", "ci_high", "p_value", "p_holm")
+#: for a condition without a whole object, no test tiles, no label volumes to score objects
+#: on); the ``warning`` column says why in words.
+NUMERIC = (
+    "mean",
+    "reference_mean",
+    "effect",
+    "ci_low",
+    "ci_high",
+    "p_value",
+    "p_holm",
+    "test_f1",
+    "test_jaccard",
+    "object_f1_3d",
+    "count_error_3d",
+)
 
 
 def write_comparison_table(path, table):

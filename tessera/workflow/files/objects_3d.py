@@ -1,5 +1,5 @@
 """The 3D object scores, ``results/study/<target>/evaluation/objects_3d.tsv``: its one writer
-(rule evaluate_objects) and its one reader (rule methods).
+(rule evaluate_objects) and its one reader (rules methods and statistics).
 
 One row per dataset and one ``all`` row: the stitched objects on the held-out test sections
 against the true objects (an instance volume, or the connected components of the labels).

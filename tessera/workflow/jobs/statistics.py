@@ -14,6 +14,7 @@ from tessera.statistics_plot import plot_conditions
 from tessera.workflow.files.comparison_table import write_comparison_table
 from tessera.workflow.files.distinct_stacks import read_distinct_stacks
 from tessera.workflow.files.morphometry_tables import read_object_measures, read_region_densities
+from tessera.workflow.files.objects_3d import overall_objects_3d
 from tessera.workflow.files.scores import read_scores
 
 
@@ -24,6 +25,20 @@ def _test_accuracy(scores_path):
     if test.empty:
         return {"test_f1": math.nan, "test_jaccard": math.nan}
     return {"test_f1": float(test["f1"].iloc[0]), "test_jaccard": float(test["jaccard"].iloc[0])}
+
+
+def _object_accuracy(objects_3d):
+    """3D object F1 and count error of the target on the held-out test sections (the ``all`` row
+    of its 3D object scores); NaN for a target without label volumes (`objects_3d` None)."""
+    if objects_3d is None:
+        return {"object_f1_3d": math.nan, "count_error_3d": math.nan}
+    row = overall_objects_3d(objects_3d)
+    return {key: float(row[column]) for key, column in _OBJECT_COLUMNS.items()}
+
+
+# Counts and sizes are what a study publishes: beside every comparison, how well the objects
+# themselves matched the truth, not only the pixels
+_OBJECT_COLUMNS = {"object_f1_3d": "object_f1", "count_error_3d": "count_error"}
 
 
 def statistics_job(
@@ -41,6 +56,7 @@ def statistics_job(
     reference=None,
     confidence=0.95,
     stacks_check=None,
+    objects_3d=None,
 ):
     """Per-animal summaries, per-condition descriptions and condition comparisons of one target.
 
@@ -63,6 +79,9 @@ def statistics_job(
     stacks_check : path, optional
         Rule check_distinct_stacks's record: no two datasets hold one stack. The animals are
         counted only over the datasets it checked.
+    objects_3d : path, optional
+        The target's 3D object scores (targets with label volumes): their object F1 and count
+        error on the held-out test sections join the accuracy columns and the chart's title.
     """
     if stacks_check is not None:
         checked = read_distinct_stacks(stacks_check)
@@ -75,7 +94,7 @@ def statistics_job(
     conditions = sheet_conditions(datasets)
     objects = {d: read_object_measures(path) for d, path in object_tables.items()}
     regions = {d: read_region_densities(region_tables[d]) for d in object_tables}
-    accuracy = _test_accuracy(scores)
+    accuracy = _test_accuracy(scores) | _object_accuracy(objects_3d)
     objects, animals, comparison = summarise_study(
         objects,
         regions,
