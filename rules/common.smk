@@ -14,6 +14,7 @@ from tessera.ladder import ladder_rungs, split_cascade_settings
 from tessera.workflow.config import (
     check_annotated_datasets,
     check_reference_condition,
+    check_test_datasets,
     expand_variants,
     load_config,
     load_datasets,
@@ -68,6 +69,7 @@ try:
         config["statistics"]["reference_condition"], list(DATASETS["condition"])
     )
     check_annotated_datasets(config["targets"], DATASETS.index)
+    check_test_datasets(config["targets"], DATASETS.index)
     # before rule sample_tiles could clear a dataset's earlier tiles
     check_tiles_fit_checked_stacks(
         config["targets"], DATASETS.index, source=CONFIG_FILE

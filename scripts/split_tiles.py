@@ -17,4 +17,5 @@ run_job(
     fractions=split["fractions"],
     guard_sections=split["guard_sections"],
     seed=split["seed"],
+    test_datasets=split["test_datasets"],
 )

@@ -190,6 +190,40 @@ def _level_text(downsample):
     return f"the pyramid level downsampled {downsample}×"
 
 
+def _tile_split_text(size, split, dims):
+    """How the annotated tiles were divided between training, validation and test.
+
+    Examples
+    --------
+    >>> _tile_split_text(128, {"guard_sections": 2, "test_datasets": None}, 2)[:62]
+    'Annotated tiles of 128 px were split per dataset into contiguo'
+    >>> _tile_split_text(128, {"guard_sections": 2, "test_datasets": ["f2"]}, 3)[:66]
+    'Annotated tiles of 128 px of dataset f2 were held out whole as the'
+    """
+    guard = split["guard_sections"]
+    held = list(split.get("test_datasets") or ())
+    if held:
+        names = ", ".join(held)
+        return (
+            f"Annotated tiles of {size} px of dataset{'s' if len(held) > 1 else ''} {names} were "
+            "held out whole as the test set; the other datasets' tiles were split per dataset "
+            "into contiguous ranges of sections for training and validation (threshold choice), "
+            f"the validation tiles at least {guard} sections from every training tile."
+        )
+    text = (
+        f"Annotated tiles of {size} px were split per dataset into contiguous ranges of sections "
+        "for training, validation (threshold choice) and test, every held-out tile at least "
+        f"{guard} sections from every training tile."
+    )
+    if dims == 3:
+        text += (
+            " In a near-isotropic stack an organelle spans many sections, so test tiles may lie "
+            "on organelles whose other sections were trained on; the test scores are therefore "
+            "not fully independent of training."
+        )
+    return text
+
+
 def _target_text(name, settings, scores, objects_settings, comparison):
     cascade = settings["cascade"]
     test = scores[scores["role"] == "test"].iloc[0]
@@ -222,8 +256,7 @@ def _target_text(name, settings, scores, objects_settings, comparison):
         f"coarser levels{_neighbours_text(cascade.get('neighbours', 0))}) with context sampled at radii {_fmt(cascade['stencil_radii'])} px, trained with "
         f"{cascade['folds']}-fold out-of-fold context ({cascade['samples_per_tile']} class-balanced pixels per tile"
         f"{_orientations_text(cascade.get('orientations', 1))}, "
-        f"seed {cascade['seed']}). Annotated tiles of {settings['tiles']['size']} px were split per dataset into "
-        f"training, validation and test tiles at least {settings['split']['guard_sections']} sections apart. The "
+        f"seed {cascade['seed']}). {_tile_split_text(settings['tiles']['size'], settings['split'], cascade.get('dims'))} The "
         f"probability threshold ({val['threshold']:.2f}) was chosen for the best F1 on {int(val['tiles'])} validation "
         f"tiles; on {int(test['tiles'])} held-out test tiles pixel precision was {test['precision']:.3f}, recall "
         f"{test['recall']:.3f}, F1 {test['f1']:.3f} and Jaccard index {test['jaccard']:.3f}"

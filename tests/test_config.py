@@ -11,6 +11,7 @@ from tessera.errors import TesseraInputError
 from tessera.workflow.config import (
     check_annotated_datasets,
     check_config_file,
+    check_test_datasets,
     load_config,
     load_datasets,
     read_yaml,
@@ -805,6 +806,35 @@ def test_annotated_datasets_missing_from_the_sheet_are_refused_at_load():
     ):
         check_annotated_datasets(targets, ["a1", "a2"])
     check_annotated_datasets({"nuclei": {"annotated_datasets": ["a2"]}}, ["a1", "a2"])
+
+
+@pytest.mark.parametrize(
+    ("settings", "expected"),
+    [
+        ({"split": {"test_datasets": ["x9"]}}, r"\['x9'\] are not in the sheet"),
+        (
+            {"annotated_datasets": ["a1"], "split": {"test_datasets": ["a2"]}},
+            r"\['a2'\] are not in annotated_datasets",
+        ),
+        (
+            {"split": {"test_datasets": ["a1", "a2"]}},
+            "hold out every annotated dataset; expected at least one left to train on",
+        ),
+        (
+            {"train_datasets": ["a2"], "split": {"test_datasets": ["a2"]}},
+            r"\['a2'\] are also in train_datasets",
+        ),
+    ],
+)
+def test_datasets_held_out_whole_are_checked_at_load(settings, expected):
+    # A held-out test set must be annotated, leave something to train on, and never be trained
+    # on (common practice); each mistake is one line naming the key before anything runs.
+    with pytest.raises(
+        TesseraInputError, match=r"config/config.yaml: key targets.mito.split.test_datasets: "
+    ) as error:
+        check_test_datasets({"mito": settings}, ["a1", "a2"])
+    assert re.search(expected, str(error.value))
+    check_test_datasets({"mito": {"split": {"test_datasets": ["a2"]}}}, ["a1", "a2"])
 
 
 def test_the_sheet_holds_voxel_sizes_to_the_range_ingest_holds_file_metadata_to(repo):

@@ -176,6 +176,7 @@ def test_every_path_key_of_the_config_schema_is_held_to_the_data_roots(schemas):
         "data_roots[]",  # the roots themselves
         "targets.*.annotated_datasets[]",  # dataset ids
         "targets.*.train_datasets[]",
+        "targets.*.split.test_datasets[]",
     }
 
     def strings(node, where):

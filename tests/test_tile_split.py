@@ -72,6 +72,24 @@ def test_split_is_deterministic_and_written_atomically(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["split.tsv"]
 
 
+def test_a_dataset_held_out_whole_is_the_whole_test_set():
+    # A test set that shares no specimen with training is the independent check (common
+    # practice): every tile of d2 is a test tile, d1 gives training and validation tiles only,
+    # in the 3 : 1 ratio of the fractions 0.6 and 0.2, and the guard still holds within d1.
+    reg = registry_for_split()
+    out = split_tiles(reg, guard_sections=2, seed=3, test_datasets=["d2"])
+    assert set(out.loc[out["dataset"] == "d2", "role"]) == {"test"}
+    for _, g in out[out["dataset"] == "d1"].groupby("target"):
+        assert set(g["role"]) <= {"train", "validation", "guard"}
+        train = g.loc[g["role"] == "train", "z"].to_numpy()
+        held = g.loc[g["role"] == "validation", "z"].to_numpy()
+        assert np.abs(held[:, None] - train[None, :]).min() >= 2
+        kept = g[g["role"] != "guard"]
+        assert abs((kept["role"] == "train").mean() - 0.75) <= 0.1
+    with pytest.raises(TesseraInputError, match="test_datasets"):
+        split_tiles(reg, fractions=(0.0, 0.0, 1.0), test_datasets=["d2"])
+
+
 def test_split_without_guard_drops_nothing():
     out = split_tiles(registry_for_split(), guard_sections=0)
     assert "guard" not in set(out["role"])

@@ -50,7 +50,8 @@ def config():
                     "instances": "demo/data/{dataset}/truth/mitochondria_instances.tif",
                 },
                 "tiles": {"size": 48, "per_dataset": 8},
-                "split": {"fractions": [0.6, 0.2, 0.2], "guard_sections": 1},
+                # as the README advises for near-isotropic stacks: one stack held out whole
+                "split": {"guard_sections": 1, "test_datasets": ["f2"]},
                 "cascade": {
                     "stages": 2,
                     "levels": 1,
@@ -108,7 +109,18 @@ def test_near_isotropic_study_segments_and_measures_in_3d(study):
     # the finished objects' voxels against the rendered truth at full resolution (working voxels
     # repeated 2 x 2 x 2): Jaccard J = F1 / (2 - F1), so 0.6 is a pixel F1 of 0.75
     assert total["voxel_jaccard"] >= 0.6
-    assert set(scores.loc[scores["dataset"] != "all", "prediction_factors"]) == {"2x2x2"}
+    # f2 is held out whole: every one of its 48 sections is scored but those QC excluded, so
+    # each true object lies whole within them; f1 gives training and validation tiles only
+    rows = scores.set_index("dataset")
+    assert rows.loc["f2", "sections"] + rows.loc["f2", "excluded_sections"] == 48
+    assert (rows.loc["f2", "first_section"], rows.loc["f2", "last_section"]) == (0, 47)
+    assert rows.loc["f2", "truth_whole"] == rows.loc["f2", "truth_objects"]
+    assert rows.loc["f1", "sections"] == 0 and rows.loc["f2", "prediction_factors"] == "2x2x2"
+    tiles = pd.read_csv(target / "tiles/tiles.tsv", sep="\t")
+    assert set(tiles.loc[tiles["dataset"] == "f2", "role"]) == {"test"}
+    assert set(tiles.loc[tiles["dataset"] == "f1", "role"]) <= {"train", "validation", "guard"}
+    methods = (study / "results/study/methods.md").read_text()
+    assert "of dataset f2 were held out whole as the test set" in methods
     for dataset in ("f1", "f2"):
         objects = pd.read_csv(study / f"results/{dataset}/objects/mitochondria.tsv", sep="\t")
         measured = pd.read_csv(

@@ -12,7 +12,9 @@ from tessera.tiles.registry import validate_registry
 __all__ = ["held_out_sections", "split_tiles"]
 
 
-def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0):
+def split_tiles(
+    registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0, test_datasets=None
+):
     """Assign every tile a role: train, validation, test, or guard (unused).
 
     Parameters
@@ -28,6 +30,11 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
     seed : int, optional
         Chooses, per dataset and target, whether training takes the low or the high end of z and
         whether validation or test sits next to it.
+    test_datasets : sequence of str, optional
+        Datasets held out whole: every tile of theirs is a test tile, and the other datasets'
+        tiles are split into training and validation only, in the ratio of the first two
+        `fractions`. An organelle then never lies partly in training and partly in the test
+        set, which a split within a stack cannot promise where organelles span many sections.
 
     Returns
     -------
@@ -51,6 +58,10 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
     ...     "width": 4, "source": "labels"})
     >>> split_tiles(reg, guard_sections=2, seed=0)["role"].value_counts().sort_index().to_dict()
     {'guard': 1, 'test': 1, 'train': 6, 'validation': 2}
+    >>> two = pd.concat([reg, reg.assign(dataset="e", tile_id=reg["tile_id"] + "e")])
+    >>> roles = split_tiles(two, seed=0, test_datasets=["e"])
+    >>> roles.groupby("dataset")["role"].value_counts().sort_index().to_dict()
+    {('d', 'guard'): 1, ('d', 'train'): 7, ('d', 'validation'): 2, ('e', 'test'): 10}
     """
     table = validate_registry(
         registry.drop(columns=["role"], errors="ignore")
@@ -68,8 +79,21 @@ def split_tiles(registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0
         )
     guard = as_int(guard_sections, low=0, where="guard_sections", source=None)
     seed = as_int(seed, low=0, where="seed", source=None)
+    held_whole = set(test_datasets or ())
+    if held_whole:
+        # the test set is the held-out datasets: the others give training and validation tiles
+        kept = fr[0] + fr[1]
+        if kept <= 0:
+            raise TesseraInputError(
+                f"fractions {fractions!r} leave nothing for training and validation beside the "
+                "datasets held out whole (test_datasets)"
+            )
+        fr = [fr[0] / kept, fr[1] / kept, 0.0]
     roles = pd.Series("", index=table.index, dtype=object)
     for (dataset, target), group in table.groupby(["dataset", "target"], sort=True):
+        if dataset in held_whole:
+            roles.loc[group.index] = "test"
+            continue
         key = zlib.crc32(f"{dataset}\t{target}".encode())
         rng = np.random.default_rng([seed, key])
         descending = bool(rng.integers(2))

@@ -370,6 +370,51 @@ def check_annotated_datasets(targets, dataset_ids, *, source="config/config.yaml
             )
 
 
+def check_test_datasets(targets, dataset_ids, *, source="config/config.yaml"):
+    """Refuse ``targets.<t>.split.test_datasets`` that would leave the split without meaning.
+
+    Each must be a dataset of the sheet whose annotations the target uses (its
+    ``annotated_datasets``, when set) and not one of its ``train_datasets``, and at least one
+    annotated dataset must remain to train on. Checked when the config loads.
+
+    Examples
+    --------
+    >>> check_test_datasets({"m": {"split": {"test_datasets": ["a2"]}}}, ["a1", "a2"])
+    >>> check_test_datasets({"m": {"split": {"test_datasets": ["a1", "a2"]}}}, ["a1", "a2"])
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: config/config.yaml: key targets.m.split.test_datasets: ['a1', 'a2'] hold out every annotated dataset; expected at least one left to train on
+    """
+    known = list(dataset_ids)
+    for target, settings in targets.items():
+        held = list((settings.get("split") or {}).get("test_datasets") or ())
+        if not held:
+            continue
+        key = f"key targets.{target}.split.test_datasets"
+        annotated = settings.get("annotated_datasets") or known
+        outside = sorted(set(held) - set(annotated))
+        if outside:
+            where = "annotated_datasets" if settings.get("annotated_datasets") else "the sheet"
+            raise TesseraInputError(
+                f"{key}: {outside} are not in {where}; expected datasets whose annotations "
+                f"this target uses ({list(annotated)})",
+                source=source,
+            )
+        if not set(annotated) - set(held):
+            raise TesseraInputError(
+                f"{key}: {held} hold out every annotated dataset; expected at least one left "
+                "to train on",
+                source=source,
+            )
+        both = sorted(set(held) & set(settings.get("train_datasets") or ()))
+        if both:
+            raise TesseraInputError(
+                f"{key}: {both} are also in train_datasets; expected a dataset held out whole "
+                "to be used for testing only",
+                source=source,
+            )
+
+
 def _parse_number(text, *, where):
     if text.strip() == "":
         return None

@@ -202,8 +202,8 @@ def _cut_objects_note(whole, present):
     return (
         f"only {whole} of {present} true objects {'lies' if whole == 1 else 'lie'} whole within "
         "the scored sections: the others are scored on their cut part, and reach into "
-        "sections used for training or the threshold (a larger test share in split.fractions "
-        "gives a thicker held-out slab)"
+        "sections used for training or the threshold (hold out a whole annotated stack with "
+        "split.test_datasets for an independent test)"
     )
 
 

@@ -7,8 +7,11 @@ from tessera.tiles.split import split_tiles
 from tessera.workflow.files.tile_registry import read_annotation_set, write_annotation_set
 
 
-def split_tiles_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed):
-    """Merge the annotation sets of one target and split them into train / validation / test."""
+def split_tiles_job(
+    annotation_dirs, out_dir, *, fractions, guard_sections, seed, test_datasets=None
+):
+    """Merge the annotation sets of one target and split them into train / validation / test
+    (the datasets of `test_datasets` held out whole as the test set)."""
     registries, labels = [], {}
     for path in annotation_dirs:
         registry, tile_labels = read_annotation_set(path)
@@ -16,7 +19,11 @@ def split_tiles_job(annotation_dirs, out_dir, *, fractions, guard_sections, seed
         labels.update(tile_labels)
     merged = pd.concat(registries, ignore_index=True)
     split = split_tiles(
-        merged, fractions=tuple(fractions), guard_sections=guard_sections, seed=seed
+        merged,
+        fractions=tuple(fractions),
+        guard_sections=guard_sections,
+        seed=seed,
+        test_datasets=test_datasets,
     )
     # training needs tiles, the threshold validation tiles and the scores test tiles: say so
     # here, before any model is trained on a split that cannot be scored

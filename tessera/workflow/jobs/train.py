@@ -17,7 +17,7 @@ from tessera.cascade.api import (
     z_halo,
 )
 from tessera.errors import TesseraInputError
-from tessera.spacing import near_isotropic
+from tessera.spacing import NEAR_ISOTROPIC_ASPECT, near_isotropic
 from tessera.tile_windows import tile_room, tile_window
 from tessera.train import score_tiles, training_tiles
 from tessera.workflow.files.node_model import load_cascade, write_node
@@ -104,6 +104,13 @@ def train_node_job(
         aspects = working_aspects(pyramids, set(registry["dataset"]), downsample=1)
         chosen = 0 if neighbours == "auto" else neighbours
         cascade["dims"] = automatic_dims(aspects.values(), neighbours=chosen)
+        _log.info(
+            "dims auto -> %d: z spacing over in-plane spacing as acquired %s (3D where every "
+            "dataset's is at most %g and neighbours is 0 or auto)",
+            cascade["dims"],
+            ", ".join(f"{d} {a:.3g}" for d, a in sorted(aspects.items())),
+            NEAR_ISOTROPIC_ASPECT,
+        )
         _warn_mixed_isotropy(aspects)
     if neighbours == "auto":
         cascade["neighbours"] = automatic_neighbours(cascade.get("dims", 2))
