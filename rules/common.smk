@@ -72,7 +72,13 @@ try:
     check_test_datasets(config["targets"], DATASETS.index)
     # before rule sample_tiles could clear a dataset's earlier tiles
     check_tiles_fit_checked_stacks(
-        config["targets"], DATASETS.index, source=CONFIG_FILE
+        config["targets"],
+        DATASETS.index,
+        source=CONFIG_FILE,
+        stacks={
+            d: (row["path"], row["format"], row.get("internal_path"))
+            for d, row in DATASETS.iterrows()
+        },
     )
 except TesseraInputError as error:
     raise WorkflowError(f"invalid input: {error}") from None

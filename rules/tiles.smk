@@ -102,6 +102,12 @@ rule check_masks:
         datasets=annotated_ids,
         masks=painted_masks_folder,
         painted=painted_options,
+        # the earlier imports' records, read before rule import_tiles replaces them: not an
+        # input, since the first run has none
+        painted_on=lambda wildcards: {
+            d: f"results/{d}/tiles_painted/{wildcards.target}.painted_on.json"
+            for d in annotated_ids(wildcards)
+        },
         code=script_code("check_masks"),
     script:
         "../scripts/check_masks.py"
@@ -114,6 +120,7 @@ rule import_tiles:
         check="results/study/{target}/masks_check.json",
     output:
         tiles=directory("results/{dataset}/tiles_painted/{target}"),
+        painted_on="results/{dataset}/tiles_painted/{target}.painted_on.json",
     log:
         "logs/import_tiles/{dataset}_{target}.log",
     conda:

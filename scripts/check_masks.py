@@ -17,5 +17,6 @@ run_job(
     pyramids=dict(zip(datasets, snakemake.input.images, strict=True)),
     qc_tables=dict(zip(datasets, snakemake.input.qc, strict=True)),
     out_path=snakemake.output.check,
+    painted_on=snakemake.params.painted_on,
     **snakemake.params.painted,
 )

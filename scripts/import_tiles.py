@@ -15,5 +15,6 @@ run_job(
     masks_dir=snakemake.params.masks,
     out_dir=snakemake.output.tiles,
     check=snakemake.input.check,
+    out_painted_on=snakemake.output.painted_on,
     **snakemake.params.painted,
 )

@@ -296,21 +296,41 @@ def test_dataset_ids_that_differ_only_in_capitals_are_refused(tmp_path, schemas)
 
 def test_an_in_plane_voxel_size_far_from_the_rest_is_named(tmp_path, schemas):
     # Common practice: the datasets of one study are imaged at in-plane voxel sizes of one
-    # order; 0.8 beside 8 nm is the typing slip of a 10x unit mistake (20x is named, 2x not).
+    # order; 0.4 beside 8 nm is a typing slip (20x), and 80 beside 8 nm is ångström typed for
+    # nanometres, exactly 10x: both are named; 16 nm (2x) is not.
     rows = [
         GOOD.replace("a1", f"a{k}", 1).replace("m1", f"m{k}", 1).replace("stack.tif", f"s{k}.tif")
-        for k in range(1, 4)
+        for k in range(1, 5)
     ]
-    rows.append("b1\tctrl\tm9\tstack.tif\ttiff_stack\t40\t0.4\t16\t")
+    rows.append("b1\tctrl\tm9\tstack.tif\ttiff_stack\t40\t0.4\t0.4\t")
+    rows.append("c1\tctrl\tm8\tc.tif\ttiff_stack\t400\t80\t80\t")
+    rows.append("d1\tctrl\tm7\td.tif\ttiff_stack\t40\t16\t16\t")
     path = _sheet(tmp_path, *rows)
-    for k in range(1, 4):
-        (tmp_path / f"s{k}.tif").write_bytes(b"")
+    for name in ("s1", "s2", "s3", "s4", "c", "d"):
+        (tmp_path / f"{name}.tif").write_bytes(b"")
     sheet = load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
     assert unusual_voxel_sizes(sheet, sheet_path=path) == [
-        f"{path}: dataset b1: voxel_y_nm 0.4 nm is 20x finer than the study's median in-plane "
+        f"{path}: dataset {d}: {c} {v} nm is {r}x {how} than the study's median in-plane "
         "voxel size (8 nm); expected sizes within 10x of it (a unit slip?)"
+        for d, v, r, how in (("b1", "0.4", 20, "finer"), ("c1", "80", 10, "coarser"))
+        for c in ("voxel_y_nm", "voxel_x_nm")
     ]
-    assert unusual_voxel_sizes(sheet.iloc[:3], sheet_path=path) == []
+    assert unusual_voxel_sizes(sheet.iloc[:4], sheet_path=path) == []
+
+
+def test_voxel_sizes_typed_in_another_order_are_refused(tmp_path, schemas):
+    # EM pixels are square or nearly so (common practice; a tilt-corrected FIB-SEM image: 1.27):
+    # a row with 8, 8, 40 nm under z, y, x is a stack of 40 nm sections typed as x, y, z, which
+    # would run silently in 3D with every surface wrong. Refused in one line naming the row.
+    path = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t8\t8\t40\t")
+    with pytest.raises(TesseraInputError) as info:
+        load_datasets(path, schemas / "datasets.schema.yaml", base_dir=tmp_path)
+    assert str(info.value) == (
+        f"{path}, row 2: voxel_y_nm 8 and voxel_x_nm 40 differ 5x; expected near-square pixels "
+        "(sides within 2x), with the columns in the order z, y, x"
+    )
+    tilted = _sheet(tmp_path, "a1\tctrl\tm1\tstack.tif\ttiff_stack\t5\t6.35\t5\t")
+    assert load_datasets(tilted, schemas / "datasets.schema.yaml", base_dir=tmp_path).shape[0] == 1
 
 
 def test_a_sheet_saved_as_utf16_is_named_as_not_utf8(tmp_path, schemas):

@@ -44,6 +44,22 @@ def _one_line_and_nothing_written(info, src, tmp_path, before):
     return message
 
 
+def test_a_tiff_written_with_one_directory_for_all_pages_is_named_as_such(tmp_path):
+    # tifffile's truncate=True writes one page directory and the stack's shape in the
+    # description: an intact file whose sections cannot be checked one by one. The message says
+    # so and how to save it, instead of calling it damaged (tifffile documents the option).
+    src = tmp_path / "stack.tif"
+    tifffile.imwrite(src, np.zeros((12, 32, 32), np.uint8), truncate=True)
+    before = _listing(tmp_path)
+    with pytest.raises(TesseraInputError) as info:
+        _ingest(src, tmp_path)
+    message = _one_line_and_nothing_written(info, src, tmp_path, before)
+    assert "the shape description states 12 pages, and the file holds one page directory" in message
+    assert "(tifffile's truncate=True)" in message
+    assert "expected an ordinary multi-page TIFF (save it again without truncate=True)" in message
+    assert "damaged" not in message
+
+
 @pytest.mark.parametrize(
     ("writer", "states"),
     [

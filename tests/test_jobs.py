@@ -71,6 +71,20 @@ def test_out_of_memory_with_only_a_log_path_still_says_what_to_raise(tmp_path, c
     assert "set-resources: {<rule>: {mem_mb: <MB>}}" in err
 
 
+def test_ctrl_c_in_a_job_is_one_line_and_exit_status_130(tmp_path, capsys):
+    # Ctrl-C reaches a job as KeyboardInterrupt; shells report a job stopped by SIGINT as
+    # 128 + 2 = 130 (common practice). The user sees one line, not a traceback.
+    def interrupted():
+        raise KeyboardInterrupt
+
+    with pytest.raises(SystemExit) as stopped:
+        run_job(script_object(tmp_path, rule="ingest", mem_mb=1000), interrupted)
+    assert stopped.value.code == 130
+    err = capsys.readouterr().err
+    assert err == "tessera: interrupted (Ctrl-C); the next run redoes this job\n"
+    assert "interrupted" in (tmp_path / "job.log").read_text()
+
+
 def test_other_failures_keep_their_traceback(tmp_path):
     def broken():
         raise ZeroDivisionError("a bug, not a resource problem")

@@ -1,6 +1,8 @@
 """Settings held, when the workflow loads, against what they imply: the tile size against the
 sections of stacks already checked, the prediction block against the cascade's halo."""
 
+import os
+
 import pytest
 
 from tessera.errors import TesseraInputError
@@ -38,6 +40,26 @@ def test_tiles_larger_than_checked_sections_are_refused_at_load(tmp_path):
     check_tiles_fit_checked_stacks(targets, ["a1", "a2"], results=tmp_path)
     painted = {"tiles": {"size": 999}, "downsample": 1, "annotations": {"painted": {}}}
     check_tiles_fit_checked_stacks({"p": painted}, ["a1"], results=tmp_path)
+
+
+def test_the_check_of_a_stack_since_replaced_refuses_nothing(tmp_path):
+    # A stack refused as too small and then replaced by a corrected file must not stay refused
+    # by the record of the file it replaced: rule check_stack checks the new one first. The
+    # record still holds for the file it describes, unchanged since.
+    targets = {"mito": {"tiles": {"size": 200}, "downsample": 1, "annotations": {"labels": "x"}}}
+    stack = tmp_path / "small.tif"
+    stack.write_bytes(b"old")
+    check = tmp_path / "a1" / "ingest" / "stack_check.json"
+    write_stack_check(check, {"path": str(stack), "format": "tiff_stack", "shape": [4, 48, 48]})
+    os.utime(stack, (1_000_000, 1_000_000))  # written before its check
+    stacks = {"a1": (str(stack), "tiff_stack", None)}
+    with pytest.raises(TesseraInputError, match="expected at most 48"):
+        check_tiles_fit_checked_stacks(targets, ["a1"], results=tmp_path, stacks=stacks)
+    stack.write_bytes(b"new")  # replaced after its check
+    check_tiles_fit_checked_stacks(targets, ["a1"], results=tmp_path, stacks=stacks)
+    os.utime(stack, (1_000_000, 1_000_000))
+    moved = {"a1": (str(tmp_path / "elsewhere.tif"), "tiff_stack", None)}  # another file named
+    check_tiles_fit_checked_stacks(targets, ["a1"], results=tmp_path, stacks=moved)
 
 
 # Halos worked by hand from the documented reaches (tessera.cascade.features._scale_reach,

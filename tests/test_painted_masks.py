@@ -19,16 +19,17 @@ from tessera.workflow.jobs.pyramid import pyramid_job
 POINTS = {"d1": [(1, 40, 40), (4, 50, 60)], "d2": [(2, 60, 30)]}
 
 
-def _dataset(root, dataset, *, excluded=()):
-    """Stack, truth, pyramid, QC table and exported tiles of one dataset; returns its paths."""
+def _dataset(root, dataset, *, excluded=(), shift=0):
+    """Stack, truth, pyramid, QC table and exported tiles of one dataset; returns its paths.
+    `shift` moves the content by that many pixels along x (a stack aligned again)."""
     rng = np.random.default_rng(len(dataset))
     zz, yy, xx = np.indices((6, 96, 96))
     truth = np.zeros((6, 96, 96), np.uint8)
     for z, y, x in POINTS[dataset]:
-        truth[(yy - y) ** 2 + (xx - x) ** 2 + (8 * (zz - z)) ** 2 < 100] = 1
+        truth[(yy - y) ** 2 + (xx - x - shift) ** 2 + (8 * (zz - z)) ** 2 < 100] = 1
     raw = np.clip(np.where(truth > 0, 90, 170) + rng.normal(0, 10, truth.shape), 0, 255)
     folder = root / dataset
-    folder.mkdir()
+    folder.mkdir(parents=True)
     tifffile.imwrite(folder / "raw.tif", raw.astype(np.uint8))
     ingest_job(folder / "raw.tif", folder / "raw.ome.zarr", fmt="tiff_stack", spacing=(40, 8, 8))
     pyramid_job(folder / "raw.ome.zarr", folder / "pyr.ome.zarr", levels=1)
@@ -70,14 +71,49 @@ def _paint(data, masks):
     return list(table["tile_id"])
 
 
-def _check(data, masks, out):
+def _check(data, masks, out, **options):
     return check_masks_job(
         {d: v["exported"] for d, v in data.items()},
         masks,
         {d: v["pyramid"] for d, v in data.items()},
         {d: v["qc"] for d, v in data.items()},
         out,
+        **options,
     )
+
+
+def test_masks_painted_before_a_stack_was_aligned_again_are_refused(tmp_path):
+    # A mask labels the pixels it was painted on (common practice: annotations belong to one
+    # image). After the stack is aligned again (content moved 12 px), its tiles are exported
+    # again under the same ids; the earlier masks would label other pixels, so they are refused
+    # until painted again. Re-exporting identical pixels, or new masks, pass.
+    record = tmp_path / "d1.painted_on.json"
+    before = {"d1": _dataset(tmp_path / "before", "d1")}
+    masks = tmp_path / "masks"
+    tiles = _paint(before["d1"], masks)
+    _check(before, masks, tmp_path / "check.json", painted_on={"d1": record})
+    import_tiles_job(
+        before["d1"]["exported"],
+        masks,
+        tmp_path / "set",
+        check=tmp_path / "check.json",
+        out_painted_on=record,
+    )
+    same = {"d1": _dataset(tmp_path / "same", "d1")}
+    _check(same, masks, tmp_path / "check.json", painted_on={"d1": record})
+    aligned = {"d1": _dataset(tmp_path / "aligned", "d1", shift=12)}
+    with pytest.raises(TesseraInputError) as info:
+        _check(aligned, masks, tmp_path / "again.json", painted_on={"d1": record})
+    assert str(info.value) == (
+        f"{masks / (tiles[0] + '.png')}: the pixels of 2 painted tile(s) ({tiles[0]}, "
+        f"{tiles[1]}) changed since their masks were imported, the masks did not: the stack "
+        "was replaced or re-aligned after painting, and the masks would label other pixels; "
+        f"expected masks painted on the new tiles: paint them again, or delete {record} to "
+        "accept them as they are"
+    )
+    assert not (tmp_path / "again.json").exists()
+    _paint(aligned["d1"], masks)  # painted again on the aligned tiles
+    _check(aligned, masks, tmp_path / "again.json", painted_on={"d1": record})
 
 
 def test_missing_masks_of_every_dataset_are_listed_in_one_line_with_stray_files(tmp_path):

@@ -295,6 +295,31 @@ def test_points_row_with_extra_cells_is_one_line(tmp_path):
     assert "\n" not in str(info.value)
 
 
+def test_points_sheet_as_spreadsheets_save_it_reads_like_the_datasets_sheet(tmp_path):
+    # Spreadsheet exports (common practice) leave trailing tabs, a byte-order mark or CRLF line
+    # ends: read as the plain sheet. A sheet saved comma-separated is named as such, one line.
+    plain = read_points(
+        write_points(tmp_path / "a.tsv", [("d1", "mito", 0, 10, 10)]),
+        datasets=["d1"],
+        targets=["mito"],
+    )
+    exported = tmp_path / "b.tsv"
+    exported.write_bytes(
+        "\ufeffdataset\ttarget\tz\ty\tx\t\t\r\nd1\tmito\t0\t10\t10\t\t\r\n".encode()
+    )
+    pd.testing.assert_frame_equal(
+        read_points(exported, datasets=["d1"], targets=["mito"]), plain, check_like=True
+    )
+    commas = tmp_path / "c.tsv"
+    commas.write_text("dataset,target,z,y,x\nd1,mito,0,10,10\n")
+    with pytest.raises(TesseraInputError) as info:
+        read_points(commas, datasets=["d1"], targets=["mito"])
+    assert str(info.value) == (
+        f"{commas}: header: one column 'dataset,target,z,y,x'; expected columns separated by "
+        "tabs, found them separated by ',': save the table as tab-separated text"
+    )
+
+
 class _RunsOnLoad:
     """Unpickling this creates a folder: a stand-in for code hidden in a data file."""
 

@@ -14,6 +14,9 @@ __all__ = ["read_text_table"]
 def read_text_table(path):
     """A tab-separated file with a header line, every cell as text (blank cells as ``""``).
 
+    Empty columns after the last named one (trailing tabs) are dropped; a header read as one
+    column that commas or semicolons split is refused with a hint to save tab-separated text.
+
     Parameters
     ----------
     path : Path
@@ -31,13 +34,33 @@ def read_text_table(path):
     >>> _ = f.write_text("z\\tnote\\n007\\t\\n")
     >>> read_text_table(f).to_dict("records")
     [{'z': '007', 'note': ''}]
+    >>> _ = f.write_text("z\\tnote\\t\\t\\n007\\tok\\t\\t\\n")  # trailing tabs
+    >>> read_text_table(f).columns.tolist()
+    ['z', 'note']
     """
     if not path.is_file():
         raise TesseraInputError("file not found", source=path)
     try:
-        return pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
+        # a byte-order mark, as some spreadsheet programs write, is not part of the first name
+        table = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False, encoding="utf-8-sig")
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         text = " ".join(str(exc).split())  # pandas ends its tokenizer messages with a newline
         raise TesseraInputError(
             f"not a readable tab-separated table: {text}", source=path
         ) from None
+    table.columns = [str(c).strip() for c in table.columns]
+    # empty columns after the last named one (trailing tabs, as spreadsheet exports leave them)
+    while len(table.columns) and table.columns[-1].startswith("Unnamed:"):
+        if (table.iloc[:, -1].str.strip() != "").any():
+            break  # a filled cell without a column name: left for the caller to name
+        table = table.iloc[:, :-1]
+    if len(table.columns) == 1:
+        for separator in (",", ";"):
+            if separator in table.columns[0]:
+                raise TesseraInputError(
+                    f"header: one column {table.columns[0]!r}; expected columns separated by "
+                    f"tabs, found them separated by {separator!r}: save the table as "
+                    "tab-separated text",
+                    source=path,
+                )
+    return table

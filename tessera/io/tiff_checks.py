@@ -251,6 +251,15 @@ def open_checked_tiff(path):
     return tif
 
 
+def _written_truncated(tif):
+    """Whether tifffile wrote the file with one page directory for the whole stack: its shape
+    description then says so (``"truncated": true``)."""
+    try:
+        return any(bool(m.get("truncated")) for m in tif.shaped_metadata or ())
+    except (AttributeError, TypeError, ValueError):
+        return False
+
+
 def _check_whole(tif, path):
     pages, problem = _list_pages(tif)
     if not pages:
@@ -296,6 +305,14 @@ def _check_whole(tif, path):
                 f"the shape description states arrays of shape {shapes}, not a whole number of "
                 f"sections of page 0's {first.shape[0]} x {first.shape[1]} pixels; expected one "
                 "stack of sections of one size",
+                source=path,
+            )
+        if count != len(pages) and _written_truncated(tif):
+            raise TesseraInputError(
+                f"the {where} states {count} pages, and the file holds one page directory for "
+                "all of them (tifffile's truncate=True), so its sections cannot be checked one "
+                "by one; expected an ordinary multi-page TIFF (save it again without "
+                "truncate=True)",
                 source=path,
             )
         if count != len(pages):

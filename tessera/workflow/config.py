@@ -618,6 +618,7 @@ def load_datasets(
                     f"column {column} is empty; every dataset needs a {column}", source=row_name
                 )
         validate(record, schema, source=row_name)
+        _check_square_pixels(record, row_name)
         rows.append(record)
         lines.append(line)
     frame = pd.DataFrame(rows, dtype=object)  # keep None for blank cells (no NaN)
@@ -643,16 +644,47 @@ def load_datasets(
     return frame.set_index("dataset", drop=False)
 
 
-#: A dataset whose in-plane voxel size differs from the study's median by more than this
-#: factor is named in a warning: within one study such a gap is far likelier a unit or typing
-#: slip (0.5 for 5 nm) than a real difference, and it silently moves every object size and the
-#: size filters. A warning, not a refusal, since a study may mix instruments on purpose.
+#: Largest ratio of the in-plane voxel sides a sheet row may give. EM pixels are square or
+#: nearly so (a FIB-SEM image corrected for its tilt: 1 / sin 52° = 1.27; common practice), so
+#: sides 2x or more apart are far likelier the sizes typed in another order (x, y, z) than real.
+MAX_PIXEL_ASPECT = 2.0
+
+
+def _check_square_pixels(record, row_name):
+    """Refuse in-plane voxel sides :data:`MAX_PIXEL_ASPECT` or more apart (blank cells pass).
+
+    Examples
+    --------
+    >>> _check_square_pixels({"voxel_y_nm": 5.0, "voxel_x_nm": 6.35}, "s.tsv, row 2")
+    >>> _check_square_pixels({"voxel_z_nm": 8.0, "voxel_y_nm": 8.0, "voxel_x_nm": 40.0},
+    ...                      "s.tsv, row 2")
+    Traceback (most recent call last):
+    ...
+    tessera.errors.TesseraInputError: s.tsv, row 2: voxel_y_nm 8 and voxel_x_nm 40 differ 5x; expected near-square pixels (sides within 2x), with the columns in the order z, y, x
+    """
+    y, x = record.get("voxel_y_nm"), record.get("voxel_x_nm")
+    if y is None or x is None or min(y, x) <= 0:
+        return  # blank, or refused by the schema
+    if max(y, x) / min(y, x) >= MAX_PIXEL_ASPECT:
+        raise TesseraInputError(
+            f"voxel_y_nm {y:g} and voxel_x_nm {x:g} differ {max(y, x) / min(y, x):.3g}x; "
+            f"expected near-square pixels (sides within {MAX_PIXEL_ASPECT:g}x), with the columns "
+            "in the order z, y, x",
+            source=row_name,
+        )
+
+
+#: A dataset whose in-plane voxel size differs from the study's median by this
+#: factor or more is named in a warning: within one study such a gap is far likelier a unit or
+#: typing slip (0.5 for 5 nm, or ångström for nm: exactly 10x) than a real difference, and it
+#: silently moves every object size and the size filters. A warning, not a refusal, since a
+#: study may mix instruments on purpose.
 VOXEL_SIZE_WARNING_FACTOR = 10.0
 
 
 def unusual_voxel_sizes(datasets, *, sheet_path, factor=VOXEL_SIZE_WARNING_FACTOR):
-    """Warnings (one line each) for datasets whose in-plane voxel size in the sheet lies more
-    than `factor` times away from the median of the study's in-plane voxel sizes.
+    """Warnings (one line each) for datasets whose in-plane voxel size in the sheet lies
+    `factor` times or more away from the median of the study's in-plane voxel sizes.
 
     Blank cells (sizes taken from the file's header) are not compared.
 
@@ -677,7 +709,7 @@ def unusual_voxel_sizes(datasets, *, sheet_path, factor=VOXEL_SIZE_WARNING_FACTO
             if value is None or value != value:
                 continue
             ratio = max(value / median, median / value)
-            if ratio > factor:
+            if ratio >= factor:
                 how = "finer" if value < median else "coarser"
                 lines.append(
                     f"{sheet_path}: dataset {dataset}: {column} {value:g} nm is {ratio:.0f}x "

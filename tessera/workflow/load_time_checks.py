@@ -17,8 +17,36 @@ from tessera.tiles.sampling import level_shape
 from tessera.workflow.files.stack_check import read_stack_check
 
 
+def _latest_time(path):
+    """The latest modification time of a stack: a file's own, or a folder's and its files'."""
+    path = Path(path)
+    times = [path.stat().st_mtime]
+    if path.is_dir():
+        times += [entry.stat().st_mtime for entry in path.iterdir()]
+    return max(times)
+
+
+def _still_the_stack_checked(record, check, stack):
+    """Whether a stack check describes the stack the sheet names now: the same path, format
+    and array, not changed since the check was written. A check of a stack since replaced,
+    moved or edited is stale: rule check_stack checks the stack again before anything uses it.
+    """
+    if stack is None:
+        return True
+    path, fmt, internal = stack
+    try:
+        same = (
+            Path(record["path"]).resolve() == Path(path).resolve()
+            and record["format"] == fmt
+            and record.get("internal_path") == internal
+        )
+        return same and _latest_time(path) <= check.stat().st_mtime
+    except (KeyError, TypeError, OSError):
+        return False
+
+
 def check_tiles_fit_checked_stacks(
-    targets, dataset_ids, *, results="results", source="config/config.yaml"
+    targets, dataset_ids, *, results="results", source="config/config.yaml", stacks=None
 ):
     """Refuse a tile size larger than the sections of a stack already checked.
 
@@ -36,6 +64,11 @@ def check_tiles_fit_checked_stacks(
         The sheet's datasets.
     results : str or Path, optional
         The results folder.
+    stacks : dict, optional
+        Dataset → (path, format, internal_path) of its stack as the sheet names it now. A check
+        of another stack, or of one changed since it was checked, is left out: rule check_stack
+        checks the new one first (without this a corrected stack would be refused by the
+        record of the one it replaced).
 
     Examples
     --------
@@ -52,10 +85,12 @@ def check_tiles_fit_checked_stacks(
             if (annotated is not None and dataset not in annotated) or not check.is_file():
                 continue
             try:
-                shape0 = read_stack_check(check)["shape"]
-                sides = level_shape(shape0, (1, factor, factor))[1:]
+                record = read_stack_check(check)
+                sides = level_shape(record["shape"], (1, factor, factor))[1:]
             except (TesseraInputError, KeyError, TypeError, ValueError):
                 continue  # a damaged record: rule check_stack writes it again
+            if not _still_the_stack_checked(record, check, (stacks or {}).get(dataset)):
+                continue
             if size > min(sides):
                 raise TesseraInputError(
                     f"key targets.{name}.tiles.size: {size} px exceeds the sections of dataset "

@@ -21,15 +21,28 @@ from tessera.errors import TesseraInputError
 from tessera.workflow.provenance import write_job_record
 from tessera.workflow.resources import job_info, out_of_memory_message
 
+#: Exit status of a job stopped by Ctrl-C (128 + SIGINT, as shells report it).
+INTERRUPTED_STATUS = 130
+
 
 def run_job(job, func, /, **kwargs):
     """Run ``func(**kwargs)`` with logging to the job's log; exit 1 with a one-line message on bad
-    input or when memory runs out.
+    input or when memory runs out, and 130 with one line when interrupted (Ctrl-C).
 
     `job` is the script's ``snakemake`` object (log, rule and ``mem_mb`` are read from it, so an
     out-of-memory message can name them, and a provenance record is written on success) or,
     outside Snakemake, a log path (no record).
     """
+    try:
+        return _run_logged(job, func, kwargs)
+    except KeyboardInterrupt:
+        # the job's outputs are incomplete: Snakemake removes them and the next run redoes it
+        logging.getLogger("tessera").error("interrupted")
+        print("tessera: interrupted (Ctrl-C); the next run redoes this job", file=sys.stderr)
+        raise SystemExit(INTERRUPTED_STATUS) from None
+
+
+def _run_logged(job, func, kwargs):
     info = job_info(job)
     started = datetime.now(UTC)
     handler = logging.FileHandler(info.log, mode="w", encoding="utf-8")

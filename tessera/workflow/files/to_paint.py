@@ -10,6 +10,7 @@ Painted masks come back as ``<masks>/<tile_id>.png`` (or ``.tif`` / ``.tiff``): 
 background and one value (1 or 255, or 65535 in a 16-bit file) for every target pixel.
 """
 
+import hashlib
 from pathlib import Path
 
 import numpy as np
@@ -23,7 +24,14 @@ from tessera.tiles.checks import as_int
 from tessera.tiles.painting import contrast_preview, painted_to_labels, tiles_around_points
 from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry
 
-__all__ = ["export_tiles", "import_painted", "mask_files", "read_painted_mask", "unmatched_masks"]
+__all__ = [
+    "export_tiles",
+    "exported_tile_sha256",
+    "import_painted",
+    "mask_files",
+    "read_painted_mask",
+    "unmatched_masks",
+]
 
 _MASK_SUFFIXES = (".png", ".tif", ".tiff")
 
@@ -171,6 +179,24 @@ def unmatched_masks(masks_dir, tile_ids):
         and f.suffix.lower() in _MASK_SUFFIXES
         and f.stem not in tile_ids
     )
+
+
+def exported_tile_sha256(tiles_dir, tile_id):
+    """SHA-256 of an exported tile's pixels (shape, dtype and values; not the file's bytes, so
+    a TIFF written again with other tags gives the same digest).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> tifffile.imwrite(d / "t1.tif", np.zeros((2, 3), np.uint8))
+    >>> exported_tile_sha256(d, "t1")[:12]
+    'eeead995c675'
+    """
+    pixels = np.ascontiguousarray(tifffile.imread(Path(tiles_dir) / f"{tile_id}.tif"))
+    digest = hashlib.sha256(f"{pixels.shape}{pixels.dtype.str}".encode())
+    digest.update(pixels.tobytes())
+    return digest.hexdigest()
 
 
 def import_painted(tiles_dir, masks_dir, *, ignore_value=None, allow_single_class=False):

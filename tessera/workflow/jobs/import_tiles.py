@@ -8,9 +8,15 @@ from tessera.errors import TesseraInputError
 from tessera.io.digests import file_sha256
 from tessera.io.omezarr import open_image
 from tessera.workflow.files.masks_check import read_masks_check, write_masks_check
+from tessera.workflow.files.painted_on import read_painted_on, write_painted_on
 from tessera.workflow.files.qc_table import read_qc_table
 from tessera.workflow.files.tile_registry import REGISTRY_FILE, read_registry, write_annotation_set
-from tessera.workflow.files.to_paint import import_painted, mask_files, unmatched_masks
+from tessera.workflow.files.to_paint import (
+    exported_tile_sha256,
+    import_painted,
+    mask_files,
+    unmatched_masks,
+)
 
 _log = logging.getLogger(__name__)
 
@@ -58,6 +64,30 @@ def _tiles_on_kept_sections(registry, pyramid, qc_table, *, dataset):
         )
 
 
+def _painted_on_other_pixels(found, exported, painted_on):
+    """Refuse masks imported before whose tile's pixels have changed since, the mask unchanged:
+    the stack was replaced or re-aligned after painting, and the mask no longer matches.
+    `painted_on` maps each dataset to the path of its earlier import's record."""
+    earlier = {d: read_painted_on(path) for d, path in painted_on.items()}
+    moved = []
+    for tile_id, entry in found.items():
+        before = earlier.get(entry["dataset"], {}).get(tile_id)
+        if before is None or before["mask_sha256"] != entry["sha256"]:
+            continue  # a new tile, or a mask painted again
+        if before["tile_sha256"] != exported_tile_sha256(exported[entry["dataset"]], tile_id):
+            moved.append(tile_id)
+    if moved:
+        datasets = sorted({found[t]["dataset"] for t in moved})
+        records = ", ".join(str(painted_on[d]) for d in datasets)
+        raise TesseraInputError(
+            f"the pixels of {len(moved)} painted tile(s) ({_listed(moved)}) changed since their "
+            "masks were imported, the masks did not: the stack was replaced or re-aligned after "
+            "painting, and the masks would label other pixels; expected masks painted on the "
+            f"new tiles: paint them again, or delete {records} to accept them as they are",
+            source=found[moved[0]]["file"],
+        )
+
+
 def check_masks_job(
     exported,
     masks_dir,
@@ -67,6 +97,7 @@ def check_masks_job(
     *,
     ignore_value=None,
     allow_single_class=False,
+    painted_on=None,
 ):
     """Check every painted mask of one target, over all its datasets, before any is imported.
 
@@ -86,6 +117,9 @@ def check_masks_job(
         The folder of painted masks (``annotations.painted.masks``).
     ignore_value, allow_single_class
         As in :func:`tessera.workflow.files.to_paint.read_painted_mask`.
+    painted_on : dict, optional
+        Dataset → the painted-on record of its earlier import (rule import_tiles; absent before
+        the first). A mask imported before whose tile's pixels have changed since is refused.
     """
     folders = ", ".join(str(exported[d]) for d in sorted(exported))
     if masks_dir is None or not Path(masks_dir).is_dir():
@@ -118,6 +152,11 @@ def check_masks_job(
         for tile_id in registry["tile_id"]:
             (path,) = mask_files(masks_dir, tile_id)
             found[tile_id] = {"dataset": dataset, "file": path.name, "sha256": file_sha256(path)}
+    _painted_on_other_pixels(
+        {t: {**e, "file": str(masks_dir / e["file"])} for t, e in found.items()},
+        exported,
+        painted_on or {},
+    )
     write_masks_check(out_path, found)
     return {"masks": len(found), "datasets": len(registries), "unmatched_files": strays}
 
@@ -130,10 +169,13 @@ def import_tiles_job(
     check=None,
     ignore_value=None,
     allow_single_class=False,
+    out_painted_on=None,
 ):
     """Read the painted masks of exported tiles and register them as an annotation set.
 
-    With `check` (rule check_masks' record) every mask must still be the one checked.
+    With `check` (rule check_masks' record) every mask must still be the one checked. With
+    `out_painted_on`, what each mask was paired with is recorded there
+    (:mod:`tessera.workflow.files.painted_on`) for the next run's check.
     """
     if masks_dir is None or not Path(masks_dir).is_dir():
         raise _no_masks_yet(exported_dir, masks_dir)
@@ -152,4 +194,13 @@ def import_tiles_job(
                     source=masks_dir,
                 )
     write_annotation_set(out_dir, registry, labels)
+    if out_painted_on is not None:
+        pairs = {}
+        for tile_id in registry["tile_id"]:
+            (path,) = mask_files(masks_dir, tile_id)
+            pairs[tile_id] = {
+                "mask_sha256": file_sha256(path),
+                "tile_sha256": exported_tile_sha256(exported_dir, tile_id),
+            }
+        write_painted_on(out_painted_on, pairs)
     return {"tiles": len(registry)}
