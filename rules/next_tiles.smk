@@ -28,6 +28,8 @@ rule next_tiles:
         datasets=list(DATASETS.index),
         size=lambda wildcards: target_tiles(wildcards)["size"],
         suggest=lambda wildcards: target_settings(wildcards)["next_tiles"],
+        held_out=lambda wildcards: target_settings(wildcards)["split"]["test_datasets"]
+        or [],
         code=script_code("next_tiles"),
     script:
         "../scripts/next_tiles.py"

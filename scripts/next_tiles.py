@@ -21,4 +21,5 @@ run_job(
     size=snakemake.params.size,
     count=snakemake.params.suggest["count"],
     min_sections=snakemake.params.suggest["min_sections"],
+    held_out=snakemake.params.held_out,
 )

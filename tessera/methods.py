@@ -540,7 +540,7 @@ def _whole_text(row):
     Examples
     --------
     >>> _whole_text({"truth_whole": 7, "truth_objects": 102})
-    '; only 7 of the 102 true objects lay whole within those sections, so most were scored on their cut part'
+    '; only 7 of the 102 true objects lay whole within those sections and the volume, so most were scored on their cut part'
     >>> _whole_text({"truth_whole": 60, "truth_objects": 102}), _whole_text({})
     ('', '')
     """
@@ -548,8 +548,8 @@ def _whole_text(row):
     if whole is None or whole != whole or not mostly_cut(whole, total):
         return ""
     return (
-        f"; only {int(whole)} of the {int(total)} true objects lay whole within those sections, "
-        "so most were scored on their cut part"
+        f"; only {int(whole)} of the {int(total)} true objects lay whole within those sections "
+        "and the volume, so most were scored on their cut part"
     )
 
 

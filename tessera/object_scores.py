@@ -393,12 +393,14 @@ def size_classes(voxels, *, names=("small", "medium", "large")):
 
 
 def whole_in_sections(labels, z0, z1):
-    """How many objects of `labels` lie wholly within sections ``z0 .. z1 - 1``, and how many
-    have a voxel there.
+    """How many objects of `labels` lie wholly within sections ``z0 .. z1 - 1`` and inside the
+    volume, and how many have a voxel there.
 
     An object scored on a slab of sections that it extends beyond is scored on its cut faces
     only, and the sections it crosses outside the slab may have been used to train or tune the
-    model.
+    model. An object touching a face of the volume (its first or last section, or the border of
+    the sections) is cut by it as well, so it is not whole either, wherever the slab lies: a
+    stack thinner than the organelles are long holds few whole ones.
 
     Parameters
     ----------
@@ -413,19 +415,32 @@ def whole_in_sections(labels, z0, z1):
 
     Examples
     --------
-    >>> lab = np.zeros((6, 2, 2), np.uint8)
-    >>> lab[1:3, 0, 0] = 1; lab[2:6, 1, 1] = 2
-    >>> whole_in_sections(lab, 1, 4)
-    (1, 2)
+    >>> lab = np.zeros((6, 4, 4), np.uint8)
+    >>> lab[1:3, 1, 1] = 1  # whole within sections 1-3
+    >>> lab[2:5, 2, 2] = 2  # runs on to section 4
+    >>> lab[1:3, 0, 2] = 3  # cut by the border of the sections
+    >>> whole_in_sections(lab, 1, 4), whole_in_sections(lab, 0, 6)
+    ((1, 3), (2, 3))
     """
     labels = _as_labels(labels, "labels")
     size = int(labels.max(initial=0)) + 1
     inside, outside = np.zeros(size, bool), np.zeros(size, bool)
+    last = labels.shape[0] - 1
+
+    def seen(values):
+        return np.bincount(values.ravel().astype(np.intp, copy=False), minlength=size) > 0
+
     # a section at a time: a bincount needs its ids as intp, 8 bytes each, and a copy of the
     # whole volume so converted would take several times the memory of the labels themselves
     for z in range(labels.shape[0]):
-        ids = labels[z].ravel().astype(np.intp, copy=False)
-        (inside if z0 <= z < z1 else outside)[np.bincount(ids, minlength=size) > 0] = True
+        section = labels[z]
+        present = seen(section)
+        (inside if z0 <= z < z1 else outside)[present] = True
+        if z in (0, last):  # the volume's first and last sections are faces
+            outside[present] = True
+        else:
+            border = np.concatenate([section[0], section[-1], section[:, 0], section[:, -1]])
+            outside[seen(border)] = True
     inside[0] = outside[0] = False  # background
     return int(np.count_nonzero(inside & ~outside)), int(np.count_nonzero(inside))
 

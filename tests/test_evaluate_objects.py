@@ -196,9 +196,11 @@ def test_sections_qc_keeps_are_scored(tmp_path):
     # by hand: sections 8 and 9 now; F (section 9, truth only) joins the true objects
     assert (row["truth_objects"], row["predicted_objects"], row["matched_objects"]) == (4, 4, 2)
     assert row["sections"] == 2
-    # by hand: A, B and F lie whole within sections 8-9, E (z 6-9) reaches back into the
-    # validation sections; three of four is no reason for a caution
-    assert row["truth_whole"] == 3 and pd.isna(row["note"])
+    # by hand: A, B and F lie within sections 8-9 but reach section 9, the volume's last, whose
+    # face cuts them (what lies beyond was never imaged); E (z 6-9) reaches back into the
+    # validation sections: none is whole, and the note says so
+    assert row["truth_whole"] == 0
+    assert row["note"].startswith("only 0 of 4 true objects lie whole within the scored sections")
 
 
 def test_objects_that_extend_beyond_the_scored_sections_are_counted_and_named(tmp_path):

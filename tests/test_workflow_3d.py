@@ -15,7 +15,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+import tifffile
 import yaml
+from scipy import ndimage
 
 from tessera.io.omezarr import open_image
 
@@ -109,16 +111,29 @@ def test_near_isotropic_study_segments_and_measures_in_3d(study):
     # the finished objects' voxels against the rendered truth at full resolution (working voxels
     # repeated 2 x 2 x 2): Jaccard J = F1 / (2 - F1), so 0.6 is a pixel F1 of 0.75
     assert total["voxel_jaccard"] >= 0.6
-    # f2 is held out whole: every one of its 48 sections is scored but those QC excluded, so
-    # each true object lies whole within them; f1 gives training and validation tiles only
+    # f2 is held out whole: every one of its 48 sections is scored but those QC excluded; f1
+    # gives training and validation tiles only
     rows = scores.set_index("dataset")
     assert rows.loc["f2", "sections"] + rows.loc["f2", "excluded_sections"] == 48
     assert (rows.loc["f2", "first_section"], rows.loc["f2", "last_section"]) == (0, 47)
-    assert rows.loc["f2", "truth_whole"] == rows.loc["f2", "truth_objects"]
+    # so the whole true objects are those that no face of the volume cuts. Reference: the
+    # bounding boxes of scipy.ndimage.find_objects on the rendered instances
+    instances = tifffile.imread(study / "demo/data/f2/truth/mitochondria_instances.tif")
+    boxes = [b for b in ndimage.find_objects(instances) if b is not None]
+    inside = [
+        b
+        for b in boxes
+        if all(0 < a.start and a.stop < n for a, n in zip(b, instances.shape, strict=True))
+    ]
+    assert rows.loc["f2", "truth_whole"] == len(inside) and len(inside) >= 1
     assert rows.loc["f1", "sections"] == 0 and rows.loc["f2", "prediction_factors"] == "2x2x2"
     tiles = pd.read_csv(target / "tiles/tiles.tsv", sep="\t")
     assert set(tiles.loc[tiles["dataset"] == "f2", "role"]) == {"test"}
     assert set(tiles.loc[tiles["dataset"] == "f1", "role"]) <= {"train", "validation", "guard"}
+    # nothing of the held-out stack is proposed for annotation: merged into the points, such a
+    # tile would join the test set as drawn
+    suggested = pd.read_csv(target / "next_tiles/points.tsv", sep="\t")
+    assert len(suggested) and set(suggested["dataset"]) == {"f1"}
     methods = (study / "results/study/methods.md").read_text()
     assert "of dataset f2 were held out whole as the test set" in methods
     for dataset in ("f1", "f2"):

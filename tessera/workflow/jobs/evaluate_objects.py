@@ -164,7 +164,9 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections, sections
         return {**row, "truth_objects": 0, "predicted_objects": 0, "matched_objects": 0}, None, None
     z0, z1 = sections[0], sections[-1] + 1
     whole, present = whole_in_sections(truth, z0, z1)
-    note = "; ".join(n for n in (note, _cut_objects_note(whole, present)) if n)
+    every_section = z0 == 0 and z1 == shape[0]
+    cut_note = _cut_objects_note(whole, present, every_section=every_section)
+    note = "; ".join(n for n in (note, cut_note) if n)
     truth = np.ascontiguousarray(truth[z0:z1])
     pred, factors = _predicted_slab(files["objects"], target, z0, z1, shape)
     mask = np.broadcast_to(np.isin(np.arange(z0, z1), sections)[:, None, None], truth.shape)
@@ -179,6 +181,7 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections, sections
         "prediction_factors": "x".join(str(f) for f in factors),
         **scores_from_overlaps(overlaps),
         "truth_whole": whole,
+        "every_section": every_section,
         "note": note,
     }
     matches = match_table(overlaps)
@@ -187,8 +190,9 @@ def _score_dataset(dataset, files, registry, *, target, guard_sections, sections
     return row, matches, slab
 
 
-def _cut_objects_note(whole, present):
-    """A caution when most true objects of the scored sections extend beyond them ("" else).
+def _cut_objects_note(whole, present, *, every_section=False):
+    """A caution when most true objects of the scored sections extend beyond them or are cut by
+    the volume's faces ("" else). `every_section`: the whole stack was scored.
 
     Examples
     --------
@@ -196,9 +200,17 @@ def _cut_objects_note(whole, present):
     ''
     >>> _cut_objects_note(1, 10)[:62]
     'only 1 of 10 true objects lies whole within the scored section'
+    >>> _cut_objects_note(1, 10, every_section=True)[:70]
+    'only 1 of 10 true objects lies whole within the stack: the others are '
     """
     if not mostly_cut(whole, present):
         return ""
+    if every_section:
+        return (
+            f"only {whole} of {present} true objects {'lies' if whole == 1 else 'lie'} whole "
+            "within the stack: the others are cut by its faces and scored on the part inside "
+            "(a stack thinner or narrower than the organelles are long holds few whole ones)"
+        )
     return (
         f"only {whole} of {present} true objects {'lies' if whole == 1 else 'lie'} whole within "
         "the scored sections: the others are scored on their cut part, and reach into "
@@ -244,7 +256,7 @@ def _pooled_row(rows, matches):
             n
             for n in (
                 f"not scored: {', '.join(skipped)}" if skipped else "",
-                _cut_objects_note(whole, t),
+                _cut_objects_note(whole, t, every_section=bool(table["every_section"].all())),
             )
             if n
         ),
@@ -336,7 +348,9 @@ def evaluate_objects_job(
     matches = pd.concat(matches, ignore_index=True)
     table = pd.DataFrame([*rows, _pooled_row(rows, matches)])
     table.insert(0, "target", target)
-    for column in ("first_section", "last_section"):  # none in the pooled row
+    # counts stay whole numbers where some rows leave them blank (the pooled row has no range,
+    # a dataset without test tiles no whole objects)
+    for column in ("first_section", "last_section", "truth_whole"):
         table[column] = table[column].astype("Int64")
     table["object_rule"] = OBJECT_RULE
     table = table.reindex(columns=list(COLUMNS))

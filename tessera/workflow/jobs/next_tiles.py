@@ -20,14 +20,19 @@ def next_tiles_job(
     size,
     count,
     min_sections=2,
+    held_out=(),
 ):
     """Suggest the next tiles to annotate for one target; write a points sheet and a preview.
 
     `probabilities` and `qc_tables` map dataset ids to the stitched probability maps and the QC
     tables. The sheet's coordinates are full-resolution voxels, as the tile export expects.
+    Datasets of `held_out` (``split.test_datasets``) get no suggestion: a tile annotated there
+    and merged into the points would be a test tile, and the test set is kept as it was drawn.
     """
     registry, _ = read_annotation_set(annotations)
     volumes, factors, scales = {}, {}, {}
+    probabilities = {d: p for d, p in probabilities.items() if d not in set(held_out)}
+    qc_tables = {d: p for d, p in qc_tables.items() if d not in set(held_out)}
     for dataset, path in probabilities.items():
         _, info, fields = open_probability_map(path)
         volumes[dataset] = info["levels"][0]
