@@ -354,6 +354,37 @@ def _study_text(c, sheet_rows, section_counts, grey_mappings=None):
     )
 
 
+def _held_out_animals_text(split, annotated, sheet_rows):
+    """Whether the stacks held out whole come from animals that training stacks come from too
+    ("" when they do not, or when no stack is held out).
+
+    Examples
+    --------
+    >>> rows = {"a1": {"subject": "m1"}, "a2": {"subject": "m1"}, "b1": {"subject": "m2"}}
+    >>> _held_out_animals_text({"test_datasets": ["b1"]}, None, rows)
+    ''
+    >>> _held_out_animals_text({"test_datasets": ["a2"]}, None, rows)
+    'The held-out stack a2 comes from animal m1, whose other stacks were trained on: it tests the model on new stacks, not on new animals. '
+    """
+    held = list(split.get("test_datasets") or ())
+    if not held:
+        return ""
+    trained = [d for d in (annotated or sheet_rows) if d not in set(held)]
+    shared = sorted(
+        {sheet_rows[d]["subject"] for d in held if d in sheet_rows}
+        & {sheet_rows[d]["subject"] for d in trained if d in sheet_rows}
+    )
+    if not shared:
+        return ""
+    many = len(held) > 1
+    return (
+        f"The held-out {'stacks' if many else 'stack'} {', '.join(held)} "
+        f"{'come' if many else 'comes'} from {'animals' if len(shared) > 1 else 'animal'} "
+        f"{', '.join(shared)}, whose other stacks were trained on: "
+        f"{'they test' if many else 'it tests'} the model on new stacks, not on new animals. "
+    )
+
+
 def _unannotated_text(name, annotated, sheet_rows):
     """Which datasets gave no tiles of a target ("" when all did, or when not known).
 
@@ -657,7 +688,8 @@ def methods_text(
             _target_text(
                 target, settings, scores[target], object_settings[target], comparisons.get(target)
             )
-            + _unannotated_text(target, (annotated or {}).get(target), sheet_rows),
+            + _unannotated_text(target, (annotated or {}).get(target), sheet_rows)
+            + _held_out_animals_text(settings["split"], (annotated or {}).get(target), sheet_rows),
             "",
         ]
     text += [_objects_3d_text(objects_3d), ""] if objects_3d else []
