@@ -237,8 +237,9 @@ def _painted(target):
 
 
 def _points_by_target():
-    """Datasets with points per painted target, read (and validated) before anything runs."""
-    out = {}
+    """Datasets with points per painted target, read (and validated) before anything runs, and
+    the tile ids of the points marked to be trained on (``role: train``)."""
+    out, train = {}, {}
     for target in config["targets"]:
         painted = _painted(target)
         if painted:
@@ -256,11 +257,18 @@ def _points_by_target():
                 )
             except TesseraInputError as error:
                 raise WorkflowError(f"invalid input: {error}") from None
-            out[target] = sorted(set(points.loc[points["target"] == base, "dataset"]))
-    return out
+            mine = points[points["target"] == base]
+            out[target] = sorted(set(mine["dataset"]))
+            train[target] = sorted(mine.loc[mine["role"] == "train", "tile_id"])
+    return out, train
 
 
-POINTS = _points_by_target()
+POINTS, POINTS_TO_TRAIN = _points_by_target()
+
+
+def points_to_train(wildcards):
+    """Tile ids of a painted target's points marked ``role: train`` (none for label volumes)."""
+    return POINTS_TO_TRAIN.get(wildcards.target, [])
 
 
 def annotated_ids_of(target):

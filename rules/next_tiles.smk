@@ -30,6 +30,7 @@ rule next_tiles:
         suggest=lambda wildcards: target_settings(wildcards)["next_tiles"],
         held_out=lambda wildcards: target_settings(wildcards)["split"]["test_datasets"]
         or [],
+        guard=target_guard_sections,
         code=script_code("next_tiles"),
     script:
         "../scripts/next_tiles.py"

@@ -150,6 +150,7 @@ rule split_tiles:
         runtime=scaled_by_attempt(10),
     params:
         split=target_split,
+        train_tiles=points_to_train,
         code=script_code("split_tiles"),
     script:
         "../scripts/split_tiles.py"

@@ -22,4 +22,5 @@ run_job(
     count=snakemake.params.suggest["count"],
     min_sections=snakemake.params.suggest["min_sections"],
     held_out=snakemake.params.held_out,
+    guard_sections=snakemake.params.guard,
 )

@@ -18,4 +18,5 @@ run_job(
     guard_sections=split["guard_sections"],
     seed=split["seed"],
     test_datasets=split["test_datasets"],
+    train_tiles=snakemake.params.train_tiles,
 )

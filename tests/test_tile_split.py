@@ -90,6 +90,36 @@ def test_a_dataset_held_out_whole_is_the_whole_test_set():
         split_tiles(reg, fractions=(0.0, 0.0, 1.0), test_datasets=["d2"])
 
 
+def test_tiles_painted_to_be_trained_on_change_no_other_role():
+    # Tiles painted where the model was unsure are added to learn from: the test set as drawn
+    # must stay as it was (common practice: never tune the test set to the model's mistakes),
+    # so the other tiles keep their roles, and an added tile is trained on, or dropped as guard
+    # where it lies nearer than the guard distance to a held-out tile.
+    reg = registry_for_split()
+    before = split_tiles(reg, guard_sections=2, seed=3)
+    rows = []
+    for (dataset, target), g in before.groupby(["dataset", "target"]):
+        held = g.loc[g["role"].isin(["validation", "test"]), "z"].to_numpy()
+        trained = g.loc[g["role"] == "train", "z"].to_numpy()
+        far = trained[np.argmax([np.abs(held - z).min() for z in trained])]  # in the train range
+        near = g.loc[g["role"] == "test", "z"].iloc[0]  # on a test tile's section
+        for k, z in enumerate((near, far)):
+            tile = {**g.iloc[0].drop("role").to_dict(), "tile_id": f"new-{dataset}-{target}-{k}"}
+            rows.append({**tile, "z": int(z)})
+    extra = pd.DataFrame(rows)
+    added = pd.concat([reg, extra], ignore_index=True)
+    after = split_tiles(added, guard_sections=2, seed=3, train_tiles=extra["tile_id"])
+    pd.testing.assert_series_equal(after["role"].iloc[: len(reg)], before["role"])
+    new = after.iloc[len(reg) :].set_index("tile_id")["role"]
+    assert set(new[new.index.str.endswith("-0")]) == {"guard"}  # on a test tile's section
+    for tile_id, role in new[new.index.str.endswith("-1")].items():
+        row = after[after["tile_id"] == tile_id].iloc[0]
+        g = after[(after["dataset"] == row["dataset"]) & (after["target"] == row["target"])]
+        held = g.loc[g["role"].isin(["validation", "test"]), "z"].to_numpy()
+        assert role == ("train" if np.abs(held - row["z"]).min() >= 2 else "guard")
+    assert "train" in set(new)
+
+
 def test_split_without_guard_drops_nothing():
     out = split_tiles(registry_for_split(), guard_sections=0)
     assert "guard" not in set(out["role"])

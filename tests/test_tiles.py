@@ -320,6 +320,23 @@ def test_points_sheet_as_spreadsheets_save_it_reads_like_the_datasets_sheet(tmp_
     )
 
 
+def test_points_may_mark_a_tile_to_be_trained_on(tmp_path):
+    # The optional role column: blank (the split decides) or train; anything else is one line
+    # naming the row and column.
+    sheet = tmp_path / "p.tsv"
+    sheet.write_text(
+        "dataset\ttarget\tz\ty\tx\trole\nd1\tmito\t0\t10\t10\ttrain\nd1\tmito\t2\t10\t10\t\n"
+    )
+    points = read_points(sheet, datasets=["d1"], targets=["mito"])
+    assert points["role"].tolist() == ["train", ""]
+    sheet.write_text("dataset\ttarget\tz\ty\tx\trole\nd1\tmito\t0\t10\t10\ttest\n")
+    with pytest.raises(TesseraInputError) as info:
+        read_points(sheet, datasets=["d1"], targets=["mito"])
+    assert str(info.value) == (
+        f"{sheet}: row 2, column 'role': 'test'; expected blank (the split decides) or 'train'"
+    )
+
+
 class _RunsOnLoad:
     """Unpickling this creates a folder: a stand-in for code hidden in a data file."""
 

@@ -134,6 +134,11 @@ def test_near_isotropic_study_segments_and_measures_in_3d(study):
     # tile would join the test set as drawn
     suggested = pd.read_csv(target / "next_tiles/points.tsv", sep="\t")
     assert len(suggested) and set(suggested["dataset"]) == {"f1"}
+    # and they are to be trained on, so none lies on a section of f1's validation tiles (the
+    # guard here is 1 section; the sheet counts full-resolution sections, 2 per working one)
+    assert set(suggested["role"]) == {"train"}
+    validation = tiles.loc[(tiles["dataset"] == "f1") & (tiles["role"] == "validation"), "z"]
+    assert len(validation) and not set(suggested["z"] // 2) & set(validation)
     methods = (study / "results/study/methods.md").read_text()
     assert "of dataset f2 were held out whole as the test set" in methods
     for dataset in ("f1", "f2"):

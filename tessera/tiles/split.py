@@ -13,7 +13,13 @@ __all__ = ["held_out_sections", "split_tiles"]
 
 
 def split_tiles(
-    registry, *, fractions=(0.6, 0.2, 0.2), guard_sections=2, seed=0, test_datasets=None
+    registry,
+    *,
+    fractions=(0.6, 0.2, 0.2),
+    guard_sections=2,
+    seed=0,
+    test_datasets=None,
+    train_tiles=(),
 ):
     """Assign every tile a role: train, validation, test, or guard (unused).
 
@@ -35,6 +41,11 @@ def split_tiles(
         tiles are split into training and validation only, in the ratio of the first two
         `fractions`. An organelle then never lies partly in training and partly in the test
         set, which a split within a stack cannot promise where organelles span many sections.
+    train_tiles : iterable of str, optional
+        Tile ids that are training tiles whatever their place (tiles painted where the model
+        was unsure, to be learnt from). The other tiles are split as if these were not there,
+        so adding them changes no other tile's role; one nearer than `guard_sections` to a
+        held-out tile of its dataset becomes a guard tile instead.
 
     Returns
     -------
@@ -90,15 +101,22 @@ def split_tiles(
             )
         fr = [fr[0] / kept, fr[1] / kept, 0.0]
     roles = pd.Series("", index=table.index, dtype=object)
+    forced = table["tile_id"].isin(set(train_tiles))
     for (dataset, target), group in table.groupby(["dataset", "target"], sort=True):
         if dataset in held_whole:
             roles.loc[group.index] = "test"
             continue
-        key = zlib.crc32(f"{dataset}\t{target}".encode())
-        rng = np.random.default_rng([seed, key])
-        descending = bool(rng.integers(2))
-        test_first = bool(rng.integers(2))
-        roles.loc[group.index] = _split_group(group["z"], fr, guard, descending, test_first)
+        chosen = group[~forced.loc[group.index]]
+        if len(chosen):
+            key = zlib.crc32(f"{dataset}\t{target}".encode())
+            rng = np.random.default_rng([seed, key])
+            descending = bool(rng.integers(2))
+            test_first = bool(rng.integers(2))
+            roles.loc[chosen.index] = _split_group(chosen["z"], fr, guard, descending, test_first)
+        held = chosen["z"][roles.loc[chosen.index].isin(["validation", "test"])].to_numpy()
+        for index in group.index[forced.loc[group.index]]:
+            near = held.size and np.abs(held - table.at[index, "z"]).min() < max(guard, 1)
+            roles.loc[index] = "guard" if near else "train"
     table["role"] = roles.astype(str)
     return table
 

@@ -17,7 +17,10 @@ from tessera.tiles.checks import TILE_ID, as_int, is_blank, safe_tile_id
 __all__ = ["read_points"]
 
 _POINT_COLUMNS = ("dataset", "target", "z", "y", "x")
-_POINT_OPTIONAL = ("tile_id", "size")
+_POINT_OPTIONAL = ("tile_id", "size", "role")
+#: What the optional ``role`` column may say: blank (the split decides) or ``train`` (a tile
+#: suggested where the model was unsure, painted to be learnt from: never a held-out tile).
+POINT_ROLES = ("", "train")
 
 
 def read_points(path, *, datasets, targets):
@@ -27,17 +30,18 @@ def read_points(path, *, datasets, targets):
     ----------
     path : str or Path
         TSV with columns ``dataset``, ``target``, ``z``, ``y``, ``x`` (level-0 voxel
-        coordinates of the tile centre) and optionally ``tile_id`` and ``size`` (tile side in
-        pixels at the working level; blank = the export default).
+        coordinates of the tile centre) and optionally ``tile_id``, ``size`` (tile side in
+        pixels at the working level; blank = the export default) and ``role`` (blank, or
+        ``train`` for a tile that must be trained on: :data:`POINT_ROLES`).
     datasets, targets : iterable of str
         Known dataset and target names.
 
     Returns
     -------
     pandas.DataFrame
-        Columns ``tile_id, dataset, target, z, y, x, size``; the index is the sheet row as an
+        Columns ``tile_id, dataset, target, z, y, x, size, role``; the index is the sheet row as an
         editor numbers its lines (the header is row 1, the first point row 2), so later errors
-        can name the row. ``size`` is 0
+        can name the row. ``size`` is 0 and ``role`` blank
         where not given. Missing tile ids become ``<dataset>-<target>-z<z>-y<y>-x<x>`` (characters
         outside ``[A-Za-z0-9_-]`` replaced by ``-``).
 
@@ -70,7 +74,7 @@ def read_points(path, *, datasets, targets):
     ]
     table = pd.DataFrame(
         records,
-        columns=["tile_id", "dataset", "target", "z", "y", "x", "size"],
+        columns=["tile_id", "dataset", "target", "z", "y", "x", "size", "role"],
         index=pd.RangeIndex(2, len(records) + 2),
     )
     ids = table["tile_id"].tolist()
@@ -144,4 +148,11 @@ def _point_record(row, where, datasets, targets, path):
             f"{where}, column 'tile_id': {tid!r} must match [A-Za-z0-9_-]+", source=path
         )
     rec["tile_id"] = tid
+    role = "" if is_blank(row.get("role")) else str(row.get("role")).strip()
+    if role not in POINT_ROLES:
+        raise TesseraInputError(
+            f"{where}, column 'role': {role!r}; expected blank (the split decides) or 'train'",
+            source=path,
+        )
+    rec["role"] = role
     return rec

@@ -1,5 +1,7 @@
 """Job of rule next_tiles: suggest the next tiles to annotate; write a points sheet and a preview."""
 
+import logging
+
 import pandas as pd
 
 from tessera.io.atomic import atomic_path, write_table
@@ -7,6 +9,8 @@ from tessera.next_tiles import plot_suggestions, rank_tiles
 from tessera.workflow.files.probability_map import StoredProbability, open_probability_map
 from tessera.workflow.files.qc_table import excluded_sections
 from tessera.workflow.files.tile_registry import read_annotation_set
+
+_log = logging.getLogger(__name__)
 
 
 def next_tiles_job(
@@ -21,6 +25,7 @@ def next_tiles_job(
     count,
     min_sections=2,
     held_out=(),
+    guard_sections=0,
 ):
     """Suggest the next tiles to annotate for one target; write a points sheet and a preview.
 
@@ -28,6 +33,8 @@ def next_tiles_job(
     tables. The sheet's coordinates are full-resolution voxels, as the tile export expects.
     Datasets of `held_out` (``split.test_datasets``) get no suggestion: a tile annotated there
     and merged into the points would be a test tile, and the test set is kept as it was drawn.
+    Nor do sections nearer than `guard_sections` to a validation or test tile: the suggested
+    points are marked to be trained on, and there they would be dropped as guard tiles.
     """
     registry, _ = read_annotation_set(annotations)
     volumes, factors, scales = {}, {}, {}
@@ -39,10 +46,19 @@ def next_tiles_job(
         scales[dataset] = fields["scale"]
         factors[dataset] = (fields["z_factor"], fields["downsample"])
     scaled = {d: StoredProbability(v, scales[d]) for d, v in volumes.items()}
-    excluded = {d: excluded_sections(qc_tables[d], factors[d][0]) for d in qc_tables}
-    picks = rank_tiles(
-        scaled, registry, size=size, count=count, excluded=excluded, min_sections=min_sections
-    )
+    excluded = {d: set(excluded_sections(qc_tables[d], factors[d][0])) for d in qc_tables}
+    held = registry[registry["role"].isin(["validation", "test"])]
+    for dataset, z in zip(held["dataset"], held["z"], strict=True):
+        if dataset in excluded:
+            reach = range(z - max(guard_sections, 1) + 1, z + max(guard_sections, 1))
+            excluded[dataset].update(reach)
+    if any(len(set(range(v.shape[0])) - excluded.get(d, set())) for d, v in volumes.items()):
+        picks = rank_tiles(
+            scaled, registry, size=size, count=count, excluded=excluded, min_sections=min_sections
+        )
+    else:  # every section is QC excluded or near a held-out tile: nothing to learn from
+        _log.warning("no section is free for a suggestion (QC excluded or near held-out tiles)")
+        picks = pd.DataFrame(columns=["dataset", "z", "y", "x", "score"])
     points = pd.DataFrame(
         {
             "dataset": picks["dataset"],
@@ -51,6 +67,8 @@ def next_tiles_job(
             "y": [y * factors[d][1] for d, y in zip(picks["dataset"], picks["y"], strict=False)],
             "x": [x * factors[d][1] for d, x in zip(picks["dataset"], picks["x"], strict=False)],
             "size": size,
+            # painted where the model is unsure, to be learnt from: never a held-out tile
+            "role": "train",
         }
     )
     # the sheet holds only the columns the tile export reads; the scores go to the log and preview

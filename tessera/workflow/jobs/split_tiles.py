@@ -8,10 +8,18 @@ from tessera.workflow.files.tile_registry import read_annotation_set, write_anno
 
 
 def split_tiles_job(
-    annotation_dirs, out_dir, *, fractions, guard_sections, seed, test_datasets=None
+    annotation_dirs,
+    out_dir,
+    *,
+    fractions,
+    guard_sections,
+    seed,
+    test_datasets=None,
+    train_tiles=(),
 ):
     """Merge the annotation sets of one target and split them into train / validation / test
-    (the datasets of `test_datasets` held out whole as the test set)."""
+    (the datasets of `test_datasets` held out whole as the test set, the tiles of
+    `train_tiles` trained on: points marked ``role: train``)."""
     registries, labels = [], {}
     for path in annotation_dirs:
         registry, tile_labels = read_annotation_set(path)
@@ -24,6 +32,7 @@ def split_tiles_job(
         guard_sections=guard_sections,
         seed=seed,
         test_datasets=test_datasets,
+        train_tiles=train_tiles,
     )
     # training needs tiles, the threshold validation tiles and the scores test tiles: say so
     # here, before any model is trained on a split that cannot be scored
