@@ -550,3 +550,23 @@ def test_qc_table_without_excluded_column_names_file_and_column(tmp_path):
         f"{path}: missing column(s) ['excluded']; expected a section QC table with columns z and "
         "excluded"
     )
+
+
+def test_a_blurred_section_partly_flat_is_reported_blurred_not_flat():
+    # Defocus lowers the variance of the Laplacian (Pech-Pacheco et al., ICPR 2000) and evens
+    # out fine texture, so a blurred section can pass the flat test in part of its area; a
+    # blank one is flat nearly everywhere. Both are excluded; the reason tells them apart.
+    table = pd.DataFrame(
+        {
+            "z": range(7),
+            "mean": [100, 101, 102, 103, 104, 105, 106.0],
+            "sharpness": [50, 52, 49, 1, 1, 51, 50.0],
+            "flat_fraction": [0, 0, 0, 1.0, 0.3, 0, 0.0],
+            "shift_y": 0.0,
+            "shift_x": 0.0,
+            "shift": 0.0,
+        }
+    )
+    flagged = flag_sections(table)
+    assert flagged["reason"].tolist() == ["", "", "", "flat", "blurred", "", ""]
+    assert flagged["excluded"].tolist() == [False, False, False, True, True, False, False]

@@ -41,6 +41,12 @@ def _robust_z(values, use):
     return (values - centre) / scale
 
 
+#: Flat fraction from which a section that is also far less sharp than its neighbours is
+#: reported as flat (blank or torn) rather than blurred: a blank section is flat nearly
+#: everywhere, a defocused one only where its content had little texture to lose.
+_MOSTLY_FLAT = 0.5
+
+
 def _trend_residuals(z, values, use, neighbours):
     """Each value minus the local trend of its nearest usable neighbours (itself excluded).
 
@@ -195,9 +201,13 @@ def flag_sections(
     log_sharp = np.log(np.maximum(cols["sharpness"], np.finfo(np.float64).tiny))
     sharp_residual = _trend_residuals(z, log_sharp, use, neighbours)
     sharp_score = _robust_z(sharp_residual, use)
-    blurred = (
-        use & (sharp_score < -sharpness_z) & (sharp_residual < math.log1p(-min_sharpness_drop))
-    )
+    unsharp = (sharp_score < -sharpness_z) & (sharp_residual < math.log1p(-min_sharpness_drop))
+    # defocus evens out the fine texture, so a blurred section can also pass the flat test; it
+    # is named blurred when only part of it is flat (a blank one is flat nearly everywhere).
+    # Either way it is flagged, so what is excluded does not change, only the reason given
+    blurred_flat = flat & unsharp & (cols["flat_fraction"] < _MOSTLY_FLAT)
+    blurred = (use & unsharp) | blurred_flat
+    flat = flat & ~blurred_flat
 
     residual = _trend_residuals(z, cols["mean"], use, neighbours)
     intensity_score = _robust_z(residual, use)
