@@ -8,14 +8,30 @@ import pandas as pd
 
 from tessera.errors import TesseraInputError
 
-__all__ = ["read_text_table"]
+__all__ = ["OTHER_SEPARATORS", "other_separator", "read_text_table"]
+
+# Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
+# semicolon where the comma is the decimal mark), and the spaces a text editor may put for tabs
+OTHER_SEPARATORS = (",", ";", " ")
+
+
+def other_separator(cell):
+    """The first of :data:`OTHER_SEPARATORS` in `cell` (a header read as one column), or None.
+
+    Examples
+    --------
+    >>> other_separator("dataset,target,z"), other_separator("dataset")
+    (',', None)
+    """
+    return next((s for s in OTHER_SEPARATORS if s in cell.strip()), None)
 
 
 def read_text_table(path):
     """A tab-separated file with a header line, every cell as text (blank cells as ``""``).
 
     Empty columns after the last named one (trailing tabs) are dropped; a header read as one
-    column that commas or semicolons split is refused with a hint to save tab-separated text.
+    column that another separator splits (:func:`other_separator`) is refused with a hint to
+    save tab-separated text.
 
     Parameters
     ----------
@@ -54,13 +70,11 @@ def read_text_table(path):
         if (table.iloc[:, -1].str.strip() != "").any():
             break  # a filled cell without a column name: left for the caller to name
         table = table.iloc[:, :-1]
-    if len(table.columns) == 1:
-        for separator in (",", ";"):
-            if separator in table.columns[0]:
-                raise TesseraInputError(
-                    f"header: one column {table.columns[0]!r}; expected columns separated by "
-                    f"tabs, found them separated by {separator!r}: save the table as "
-                    "tab-separated text",
-                    source=path,
-                )
+    separator = other_separator(table.columns[0]) if len(table.columns) == 1 else None
+    if separator is not None:
+        raise TesseraInputError(
+            f"header: one column {table.columns[0]!r}; expected columns separated by tabs, "
+            f"found them separated by {separator!r}: save the table as tab-separated text",
+            source=path,
+        )
     return table

@@ -16,6 +16,7 @@ import pandas as pd
 import yaml
 
 from tessera.errors import TesseraInputError
+from tessera.io.text_tables import other_separator
 from tessera.objects.depth_limit import AUTO_DEPTH_FLOOR_NM, split_depth_problem
 from tessera.spacing import micrometre_hint
 
@@ -485,7 +486,7 @@ def _sheet_records(sheet_path, *, required=()):
         _check_quotes(cells, header, line, sheet_path)
         filled = [c for c in cells if c.strip()]
         if len(header) > 1 and len(filled) == 1:
-            separator = next((s for s in _OTHER_SEPARATORS if s in filled[0].strip()), None)
+            separator = other_separator(filled[0])
             if separator is not None:
                 shown = {" ": "spaces", ",": "commas", ";": "semicolons"}[separator]
                 text = filled[0].strip()
@@ -524,11 +525,6 @@ def _check_quotes(cells, header, line, sheet_path):
             )
 
 
-# Separators spreadsheet programs write into "CSV" exports (common practice: comma, or
-# semicolon where the comma is the decimal mark), and the spaces a text editor may put for tabs
-_OTHER_SEPARATORS = (",", ";", " ")
-
-
 def _check_separator(header, sheet_path):
     """Refuse a header read as one column that another separator than tab splits into several.
 
@@ -539,16 +535,14 @@ def _check_separator(header, sheet_path):
     Traceback (most recent call last):
     tessera.errors.TesseraInputError: d.tsv: header: one column 'dataset,condition,subject'; expected columns separated by tabs ...
     """
-    if len(header) != 1:
-        return
-    for separator in _OTHER_SEPARATORS:
-        if separator in header[0]:
-            raise TesseraInputError(
-                f"header: one column {header[0]!r}; expected columns separated by tabs "
-                f"(dataset, condition, subject, path, format, ...), found them separated by "
-                f"{separator!r}: save the sheet as tab-separated text",
-                source=sheet_path,
-            )
+    separator = other_separator(header[0]) if len(header) == 1 else None
+    if separator is not None:
+        raise TesseraInputError(
+            f"header: one column {header[0]!r}; expected columns separated by tabs "
+            f"(dataset, condition, subject, path, format, ...), found them separated by "
+            f"{separator!r}: save the sheet as tab-separated text",
+            source=sheet_path,
+        )
 
 
 def load_datasets(

@@ -182,12 +182,14 @@ def import_tiles_job(
     registry, labels = import_painted(
         exported_dir, masks_dir, ignore_value=ignore_value, allow_single_class=allow_single_class
     )
+    # each mask's file and digest, read once for the check and the painted-on record
+    masks = {t: mask_files(masks_dir, t)[0] for t in registry["tile_id"]}
+    digests = {t: file_sha256(path) for t, path in masks.items()}
     if check is not None:
         checked = read_masks_check(check)
-        for tile_id in registry["tile_id"]:
-            (path,) = mask_files(masks_dir, tile_id)
+        for tile_id, path in masks.items():
             entry = checked.get(tile_id)
-            if entry is None or entry["file"] != path.name or entry["sha256"] != file_sha256(path):
+            if entry is None or entry["file"] != path.name or entry["sha256"] != digests[tile_id]:
                 raise TesseraInputError(
                     f"mask {path.name} changed since it was checked; run the workflow again so "
                     "that rule check_masks checks it",
@@ -195,12 +197,9 @@ def import_tiles_job(
                 )
     write_annotation_set(out_dir, registry, labels)
     if out_painted_on is not None:
-        pairs = {}
-        for tile_id in registry["tile_id"]:
-            (path,) = mask_files(masks_dir, tile_id)
-            pairs[tile_id] = {
-                "mask_sha256": file_sha256(path),
-                "tile_sha256": exported_tile_sha256(exported_dir, tile_id),
-            }
+        pairs = {
+            t: {"mask_sha256": digests[t], "tile_sha256": exported_tile_sha256(exported_dir, t)}
+            for t in masks
+        }
         write_painted_on(out_painted_on, pairs)
     return {"tiles": len(registry)}

@@ -38,8 +38,9 @@ def next_tiles_job(
     """
     registry, _ = read_annotation_set(annotations)
     volumes, factors, scales = {}, {}, {}
-    probabilities = {d: p for d, p in probabilities.items() if d not in set(held_out)}
-    qc_tables = {d: p for d, p in qc_tables.items() if d not in set(held_out)}
+    held_out = set(held_out)
+    probabilities = {d: p for d, p in probabilities.items() if d not in held_out}
+    qc_tables = {d: p for d, p in qc_tables.items() if d not in held_out}
     for dataset, path in probabilities.items():
         _, info, fields = open_probability_map(path)
         volumes[dataset] = info["levels"][0]
